@@ -1,0 +1,91 @@
+//! Time for the engine and the simulated bench: a simulation clock that
+//! jumps straight to the next sample (a ten-hour procedure in well under a
+//! second) and a paced clock that follows the wall clock, optionally sped
+//! up. Times are seconds since the clock started.
+
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+/// A source of run time shared by the engine and the simulated bench.
+pub trait Clock: Send + Sync {
+    /// Seconds since the clock started.
+    fn now(&self) -> f64;
+    /// Wait until `t` seconds (returns at once if already past).
+    fn sleep_until(&self, t: f64) -> futures::future::BoxFuture<'_, ()>;
+    /// Whether this clock is simulated (time does not pass by itself).
+    fn is_simulated(&self) -> bool;
+}
+
+/// Simulation clock: time advances only when someone sleeps.
+#[derive(Debug, Default)]
+pub struct SimClock {
+    bits: AtomicU64,
+}
+
+impl SimClock {
+    pub fn new() -> Arc<SimClock> {
+        Arc::new(SimClock::default())
+    }
+    pub fn set(&self, t: f64) {
+        self.bits.store(t.to_bits(), Ordering::SeqCst);
+    }
+}
+
+impl Clock for SimClock {
+    fn now(&self) -> f64 {
+        f64::from_bits(self.bits.load(Ordering::SeqCst))
+    }
+    fn sleep_until(&self, t: f64) -> futures::future::BoxFuture<'_, ()> {
+        if t > self.now() {
+            self.set(t);
+        }
+        Box::pin(std::future::ready(()))
+    }
+    fn is_simulated(&self) -> bool {
+        true
+    }
+}
+
+/// Paced clock: run time = wall time × speed (speed 1 = real time).
+#[derive(Debug)]
+pub struct PacedClock {
+    start: Instant,
+    speed: f64,
+}
+
+impl PacedClock {
+    pub fn new(speed: f64) -> Arc<PacedClock> {
+        Arc::new(PacedClock {
+            start: Instant::now(),
+            speed: if speed > 0.0 { speed } else { 1.0 },
+        })
+    }
+}
+
+impl Clock for PacedClock {
+    fn now(&self) -> f64 {
+        self.start.elapsed().as_secs_f64() * self.speed
+    }
+    fn sleep_until(&self, t: f64) -> futures::future::BoxFuture<'_, ()> {
+        let wait = ((t - self.now()) / self.speed).max(0.0);
+        Box::pin(tokio::time::sleep(Duration::from_secs_f64(wait)))
+    }
+    fn is_simulated(&self) -> bool {
+        false
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn sim_clock_jumps_and_never_goes_back() {
+        let c = SimClock::new();
+        futures::executor::block_on(c.sleep_until(36_000.0));
+        assert_eq!(c.now(), 36_000.0);
+        futures::executor::block_on(c.sleep_until(10.0));
+        assert_eq!(c.now(), 36_000.0);
+    }
+}

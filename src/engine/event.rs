@@ -1,0 +1,105 @@
+//! Run events and the sink trait. The engine pushes samples and events to
+//! a sink; the run log, progress displays and test collectors are sinks.
+
+use crate::sample::Sample;
+use serde::{Deserialize, Serialize};
+
+/// Why a step ended, machine-readable.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum EndKind {
+    VoltageAbove,
+    VoltageBelow,
+    CurrentBelow,
+    Time,
+    Charge,
+    Energy,
+    TemperatureAbove,
+    Settled,
+    PeakDrop,
+    /// A pulse step's levels are done.
+    LevelsDone,
+    /// The run stopped on a safety limit or instrument fault in this step.
+    Aborted,
+    /// The run was interrupted (Ctrl-C) in this step.
+    Interrupted,
+}
+
+/// One line of `events.jsonl`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "event", rename_all = "snake_case")]
+pub enum Event {
+    RunStart {
+        t_s: f64,
+        steps: u32,
+    },
+    StepStart {
+        t_s: f64,
+        step: u32,
+        phase: String,
+        repeat: u32,
+        cycle: u32,
+        kind: String,
+        name: Option<String>,
+        description: String,
+        result: Option<String>,
+    },
+    StepEnd {
+        t_s: f64,
+        step: u32,
+        end_kind: EndKind,
+        end_reason: String,
+    },
+    /// An envelope limit was crossed.
+    Breach {
+        t_s: f64,
+        step: u32,
+        limit: String,
+        value: f64,
+        threshold: f64,
+        message: String,
+    },
+    InstrumentError {
+        t_s: f64,
+        step: u32,
+        instrument: String,
+        kind: String,
+        message: String,
+    },
+    /// Outputs switched off at the end of the run, with read-back results.
+    OutputsOff {
+        t_s: f64,
+        reason: String,
+        source_off_confirmed: bool,
+        load_off_confirmed: bool,
+    },
+    RunEnd {
+        t_s: f64,
+        status: String,
+        reason: Option<String>,
+    },
+}
+
+/// Where samples and events go. Errors stop the run safely.
+pub trait Sink {
+    fn sample(&mut self, s: &Sample) -> std::io::Result<()>;
+    fn event(&mut self, e: &Event) -> std::io::Result<()>;
+}
+
+/// A sink that keeps everything in memory (tests, dry runs).
+#[derive(Debug, Default)]
+pub struct Collect {
+    pub samples: Vec<Sample>,
+    pub events: Vec<Event>,
+}
+
+impl Sink for Collect {
+    fn sample(&mut self, s: &Sample) -> std::io::Result<()> {
+        self.samples.push(*s);
+        Ok(())
+    }
+    fn event(&mut self, e: &Event) -> std::io::Result<()> {
+        self.events.push(e.clone());
+        Ok(())
+    }
+}

@@ -1,0 +1,454 @@
+//! Executes a [`Plan`] on a source and a load: the step loop, sampling,
+//! end conditions, the safety envelope on every sample, and the safe stop
+//! that ends every run (load input off, source output off, confirmed by
+//! read-back). Speaks to instruments only through their physical-unit
+//! methods; knows nothing of SCPI text, the simulator, CSV or reports.
+
+pub mod control;
+pub mod event;
+pub mod safety;
+pub mod state;
+pub mod step;
+
+use crate::clock::Clock;
+use crate::instrument::{ErrorKind, InstrumentError, Load, LoadSetting, Reading, Source};
+use crate::procedure::{DischargeMode, Plan, PlanStep, StepKind};
+use crate::sample::Sample;
+use crate::truth::{GroundTruth, TruthCounters};
+use control::StopHandle;
+use event::{EndKind, Event, Sink};
+use futures::FutureExt;
+use serde::Serialize;
+use state::{RunState, Trigger};
+use std::panic::AssertUnwindSafe;
+use std::sync::Arc;
+use step::StepTracker;
+
+/// The instruments of one station.
+pub struct Station {
+    pub source: Source,
+    pub load: Load,
+}
+
+/// Which instrument drives the pack.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Active {
+    None,
+    Source,
+    Load,
+}
+
+/// Retries of an idempotent measurement after a timeout.
+pub const MEASURE_RETRIES: usize = 2;
+
+/// Simulation truth for one step.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct TruthStep {
+    pub step: u32,
+    pub charge_ah: f64,
+    pub energy_wh: f64,
+}
+
+/// How a run ended.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct RunOutcome {
+    pub status: RunState,
+    pub reason: Option<String>,
+    pub source_off_confirmed: bool,
+    pub load_off_confirmed: bool,
+    pub truth: Vec<TruthStep>,
+    pub duration_s: f64,
+}
+
+enum Stop {
+    Breach(String),
+    Instrument(InstrumentError),
+    Interrupted,
+    Log(std::io::Error),
+}
+
+/// One run of a plan on a station.
+pub struct Engine<'a> {
+    plan: &'a Plan,
+    station: &'a mut Station,
+    clock: Arc<dyn Clock>,
+    sink: &'a mut dyn Sink,
+    truth: Option<Arc<dyn GroundTruth>>,
+    stop: StopHandle,
+    t_start: f64,
+    active: Active,
+    truth_steps: Vec<TruthStep>,
+    truth_open: Option<TruthCounters>,
+    current_step: u32,
+    step_open: bool,
+}
+
+impl<'a> Engine<'a> {
+    pub fn new(
+        plan: &'a Plan,
+        station: &'a mut Station,
+        clock: Arc<dyn Clock>,
+        sink: &'a mut dyn Sink,
+        truth: Option<Arc<dyn GroundTruth>>,
+        stop: StopHandle,
+    ) -> Engine<'a> {
+        let t_start = clock.now();
+        Engine {
+            plan,
+            station,
+            clock,
+            sink,
+            truth,
+            stop,
+            t_start,
+            active: Active::None,
+            truth_steps: Vec::new(),
+            truth_open: None,
+            current_step: 0,
+            step_open: false,
+        }
+    }
+
+    fn t(&self) -> f64 {
+        self.clock.now() - self.t_start
+    }
+
+    /// Run every step, then stop safely whatever happened.
+    pub async fn run(mut self) -> RunOutcome {
+        let mut state = RunState::Ready;
+        let _ = self.sink.event(&Event::RunStart {
+            t_s: 0.0,
+            steps: self.plan.steps.len() as u32,
+        });
+        state = state.next(Trigger::Start).unwrap_or(state);
+        let result = AssertUnwindSafe(self.run_steps()).catch_unwind().await;
+        let (trigger, reason, interrupted) = match result {
+            Ok(Ok(())) => (Trigger::LastStepDone, None, false),
+            Ok(Err(Stop::Breach(m))) => (Trigger::Breach, Some(m), false),
+            Ok(Err(Stop::Instrument(e))) => {
+                (Trigger::InstrumentFault, Some(format!("instrument fault: {e}")), false)
+            }
+            Ok(Err(Stop::Log(e))) => (Trigger::InstrumentFault, Some(format!("cannot write the log: {e}")), false),
+            Ok(Err(Stop::Interrupted)) => (Trigger::StopRequested, Some("interrupted by the operator".into()), true),
+            Err(panic) => {
+                let msg = panic
+                    .downcast_ref::<&str>()
+                    .map(|s| s.to_string())
+                    .or_else(|| panic.downcast_ref::<String>().cloned())
+                    .unwrap_or_else(|| "unknown".into());
+                (Trigger::InstrumentFault, Some(format!("internal error: {msg}")), false)
+            }
+        };
+        state = state.next(trigger).unwrap_or(RunState::Stopping);
+        if let (Some(r), true) = (&reason, self.step_open) {
+            let kind = if interrupted { EndKind::Interrupted } else { EndKind::Aborted };
+            self.close_truth_step(self.current_step);
+            self.step_open = false;
+            let _ = self.sink.event(&Event::StepEnd {
+                t_s: self.t(),
+                step: self.current_step,
+                end_kind: kind,
+                end_reason: r.clone(),
+            });
+        }
+        let (src_ok, load_ok) = self.outputs_off().await;
+        let _ = self.sink.event(&Event::OutputsOff {
+            t_s: self.t(),
+            reason: reason.clone().unwrap_or_else(|| "procedure complete".into()),
+            source_off_confirmed: src_ok,
+            load_off_confirmed: load_ok,
+        });
+        let mut reason = reason;
+        let finished = reason.is_none() && src_ok && load_ok;
+        if reason.is_none() && !finished {
+            reason = Some("outputs could not be confirmed off at the end".into());
+        }
+        state = state
+            .next(Trigger::OutputsOff { finished, interrupted })
+            .unwrap_or(RunState::Aborted);
+        let _ = self.sink.event(&Event::RunEnd {
+            t_s: self.t(),
+            status: state.name().into(),
+            reason: reason.clone(),
+        });
+        RunOutcome {
+            status: state,
+            reason,
+            source_off_confirmed: src_ok,
+            load_off_confirmed: load_ok,
+            truth: std::mem::take(&mut self.truth_steps),
+            duration_s: self.t(),
+        }
+    }
+
+    /// Load off first (it draws from the pack), then the source.
+    async fn outputs_off(&mut self) -> (bool, bool) {
+        let load = self.station.load.0.make_safe().await.unwrap_or(false);
+        let src = self.station.source.0.make_safe().await.unwrap_or(false);
+        self.active = Active::None;
+        (src, load)
+    }
+
+    fn emit(&mut self, e: Event) -> Result<(), Stop> {
+        self.sink.event(&e).map_err(Stop::Log)
+    }
+
+    async fn switch_off_active(&mut self) -> Result<(), Stop> {
+        match self.active {
+            Active::Source => self.station.source.0.disable().await.map_err(Stop::Instrument)?,
+            Active::Load => self.station.load.0.disable().await.map_err(Stop::Instrument)?,
+            Active::None => {}
+        }
+        self.active = Active::None;
+        Ok(())
+    }
+
+    /// Apply a drive: the old instrument off before the new one on. A
+    /// change of level on the instrument already driving is made in place.
+    async fn drive(&mut self, want: Active, setting: Drive) -> Result<(), Stop> {
+        if self.active != want {
+            self.switch_off_active().await?;
+        }
+        match (want, setting) {
+            (Active::Source, Drive::Charge { voltage_v, current_a }) => {
+                self.station
+                    .source
+                    .program(voltage_v, current_a)
+                    .await
+                    .map_err(Stop::Instrument)?;
+                if self.active != Active::Source {
+                    self.station.source.0.enable().await.map_err(Stop::Instrument)?;
+                }
+            }
+            (Active::Load, Drive::Load(s)) => {
+                self.station.load.program(s).await.map_err(Stop::Instrument)?;
+                if self.active != Active::Load {
+                    self.station.load.0.enable().await.map_err(Stop::Instrument)?;
+                }
+            }
+            _ => {}
+        }
+        self.active = want;
+        Ok(())
+    }
+
+    async fn measure_once(&mut self) -> Result<(Reading, Option<f64>), InstrumentError> {
+        let reading = match self.active {
+            Active::Source => self.station.source.measure().await?,
+            Active::Load => self.station.load.measure().await?,
+            // Both outputs are off: the pack current is zero by
+            // construction; the voltage comes from the load's input.
+            Active::None => Reading {
+                voltage_v: self.station.load.0.measure_voltage().await?,
+                current_a: 0.0,
+            },
+        };
+        let temp = match self.station.load.0.measure_temperature().await? {
+            Some(t) => Some(t),
+            None => self.station.source.0.measure_temperature().await?,
+        };
+        Ok((reading, temp))
+    }
+
+    async fn measure(&mut self) -> Result<(Reading, Option<f64>), Stop> {
+        let mut tries = 0;
+        loop {
+            match self.measure_once().await {
+                Ok(r) => return Ok(r),
+                Err(e) if e.kind == ErrorKind::Timeout && tries < MEASURE_RETRIES => {
+                    tries += 1;
+                    let step = self.current_step;
+                    self.emit(Event::InstrumentError {
+                        t_s: self.t(),
+                        step,
+                        instrument: e.instrument.clone(),
+                        kind: "timeout_retry".into(),
+                        message: e.message.clone(),
+                    })?;
+                }
+                Err(e) => {
+                    let step = self.current_step;
+                    self.emit(Event::InstrumentError {
+                        t_s: self.t(),
+                        step,
+                        instrument: e.instrument.clone(),
+                        kind: format!("{:?}", e.kind).to_lowercase(),
+                        message: e.message.clone(),
+                    })?;
+                    return Err(Stop::Instrument(e));
+                }
+            }
+        }
+    }
+
+    fn close_truth_step(&mut self, step: u32) {
+        if let (Some(t), Some(start)) = (&self.truth, self.truth_open.take()) {
+            let now = t.counters();
+            self.truth_steps.push(TruthStep {
+                step,
+                charge_ah: now.charge_ah - start.charge_ah,
+                energy_wh: now.energy_wh - start.energy_wh,
+            });
+        }
+    }
+
+    fn end_step(&mut self, t_s: f64, step: u32, end_kind: EndKind, end_reason: String) -> Result<(), Stop> {
+        self.close_truth_step(step);
+        self.step_open = false;
+        self.emit(Event::StepEnd { t_s, step, end_kind, end_reason })
+    }
+
+    async fn run_steps(&mut self) -> Result<(), Stop> {
+        let plan = self.plan;
+        for st in &plan.steps {
+            self.run_step(st).await?;
+        }
+        self.switch_off_active().await?;
+        Ok(())
+    }
+
+    async fn run_step(&mut self, st: &PlanStep) -> Result<(), Stop> {
+        self.current_step = st.index;
+        self.step_open = true;
+        let t0 = self.t();
+        self.emit(Event::StepStart {
+            t_s: t0,
+            step: st.index,
+            phase: st.phase.clone(),
+            repeat: st.repeat,
+            cycle: st.cycle,
+            kind: st.kind.name().into(),
+            name: st.name.clone(),
+            description: st.kind.to_string(),
+            result: st.result.map(|_| "capacity".to_string()),
+        })?;
+        let env = &self.plan.envelope;
+        // Pulse levels as (end time, drive).
+        let mut levels: Vec<(f64, Active, Drive)> = Vec::new();
+        let (want, drive) = match &st.kind {
+            StepKind::Charge { current_a, voltage_v } => (
+                Active::Source,
+                Drive::Charge { voltage_v: *voltage_v, current_a: *current_a },
+            ),
+            StepKind::Discharge { load } => (
+                Active::Load,
+                Drive::Load(match *load {
+                    DischargeMode::Current { current_a } => LoadSetting::Current(current_a),
+                    DischargeMode::Power { power_w } => LoadSetting::Power(power_w),
+                    DischargeMode::Resistance { resistance_ohm } => LoadSetting::Resistance(resistance_ohm),
+                }),
+            ),
+            StepKind::Rest => (Active::None, Drive::Off),
+            StepKind::Pulse { levels: ls } => {
+                let mut end = t0;
+                for l in ls {
+                    end += l.duration_s;
+                    levels.push((end, level_active(l.current_a), level_drive(l.current_a, env.voltage_max_v)));
+                }
+                let (_, a, d) = levels[0];
+                (a, d)
+            }
+        };
+        if want == Active::None {
+            self.switch_off_active().await?;
+        } else {
+            self.drive(want, drive).await?;
+        }
+        self.truth_open = self.truth.as_ref().map(|t| t.counters());
+        let mut tracker = StepTracker::new(self.t());
+        let mut level = 0usize;
+        let every = self.plan.sample_every_s;
+        let time_limit = tracker.time_limit(st);
+        let cap_time = tracker.t0 + env.step_time_max_s;
+        loop {
+            let t = self.t();
+            let (reading, temp) = self.measure().await?;
+            let s = Sample {
+                t_s: t,
+                step: st.index,
+                cycle: st.cycle,
+                voltage_v: reading.voltage_v,
+                current_a: reading.current_a,
+                temperature_c: temp,
+            };
+            self.sink.sample(&s).map_err(Stop::Log)?;
+            tracker.push(&s);
+            let so_far = safety::StepSoFar {
+                elapsed_s: tracker.elapsed(),
+                charge_in_ah: tracker.counters.ah_in,
+            };
+            if let Some(b) = safety::check(&s, &so_far, env) {
+                self.emit(Event::Breach {
+                    t_s: t,
+                    step: st.index,
+                    limit: b.limit.into(),
+                    value: b.value,
+                    threshold: b.threshold,
+                    message: b.message.clone(),
+                })?;
+                return Err(Stop::Breach(format!("safety limit {}: {}", b.limit, b.message)));
+            }
+            if let Some((kind, cond)) = tracker.end_reached(st) {
+                return self.end_step(t, st.index, kind, cond.to_string());
+            }
+            if !levels.is_empty() && t >= levels[level].0 - 1e-9 {
+                level += 1;
+                if level == levels.len() {
+                    return self.end_step(t, st.index, EndKind::LevelsDone, "pulse levels done".into());
+                }
+                let (_, a, d) = levels[level];
+                if a == Active::None {
+                    self.switch_off_active().await?;
+                } else {
+                    self.drive(a, d).await?;
+                }
+                // Sample again at once: the edge is what a pulse is for.
+                continue;
+            }
+            if self.stop.stop_requested() {
+                return Err(Stop::Interrupted);
+            }
+            let mut next = t + every;
+            if let Some(tl) = time_limit {
+                if tl > t + 1e-9 {
+                    next = next.min(tl);
+                }
+            }
+            if let Some((end, _, _)) = levels.get(level) {
+                next = next.min(*end);
+            }
+            if cap_time > t + 1e-9 {
+                next = next.min(cap_time + 1e-3);
+            }
+            self.clock.sleep_until(self.t_start + next).await;
+        }
+    }
+}
+
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum Drive {
+    Off,
+    Charge { voltage_v: f64, current_a: f64 },
+    Load(LoadSetting),
+}
+
+fn level_active(current: f64) -> Active {
+    if current > 0.0 {
+        Active::Source
+    } else if current < 0.0 {
+        Active::Load
+    } else {
+        Active::None
+    }
+}
+
+/// A charge pulse is limited to 1 % under the envelope's maximum voltage.
+fn level_drive(current: f64, voltage_max: f64) -> Drive {
+    if current > 0.0 {
+        Drive::Charge { voltage_v: voltage_max * 0.99, current_a: current }
+    } else if current < 0.0 {
+        Drive::Load(LoadSetting::Current(-current))
+    } else {
+        Drive::Off
+    }
+}

@@ -1,0 +1,360 @@
+//! Instruments in physical units: a DC source (power supply) and a DC load
+//! (electronic load), each an SCPI session driven by a profile. Errors have
+//! a small kind the engine can act on. Knows nothing of plans or logs.
+//!
+//! Sign convention at this boundary: the source reports the current it
+//! delivers (into the pack), the load the current it sinks (out of the
+//! pack); [`Source::measure`] and [`Load::measure`] return pack current,
+//! positive into the pack.
+
+pub mod command;
+pub mod link;
+pub mod profile;
+pub mod scpi;
+
+use link::Link;
+use profile::{Profile, ProfileRole};
+use scpi::Session;
+use serde::Serialize;
+use std::time::Duration;
+
+/// What kind of failure, for the engine's decisions.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ErrorKind {
+    /// No reply in time.
+    Timeout,
+    /// The link closed or failed.
+    LinkLost,
+    /// A reply that does not parse, or the wrong number of values.
+    Protocol,
+    /// The instrument reported an error in its queue, or a read-back differs.
+    Reported,
+}
+
+/// An instrument failure.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+#[error("{instrument}: {message}")]
+pub struct InstrumentError {
+    pub instrument: String,
+    pub kind: ErrorKind,
+    pub message: String,
+}
+
+/// How a load regulates.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum LoadSetting {
+    Current(f64),
+    Power(f64),
+    Resistance(f64),
+}
+
+/// A reading from an instrument, in pack convention.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Reading {
+    pub voltage_v: f64,
+    pub current_a: f64,
+}
+
+fn render(template: &str, value: f64) -> String {
+    let mut s = format!("{value:.6}");
+    while s.ends_with('0') {
+        s.pop();
+    }
+    if s.ends_with('.') {
+        s.pop();
+    }
+    template.replace("{value}", &s)
+}
+
+/// One SCPI instrument with its profile.
+pub struct Instrument {
+    session: Session,
+    profile: Profile,
+    idn: String,
+}
+
+impl Instrument {
+    /// Open a session: identify, send the profile's init commands and
+    /// clear the error queue. Outputs are then switched off.
+    pub async fn connect(name: &str, link: Link, profile: Profile) -> Result<Instrument, InstrumentError> {
+        let session = Session::new(
+            name,
+            link,
+            &profile.transport.write_termination,
+            Duration::from_millis(profile.transport.timeout_ms),
+        );
+        let mut inst = Instrument {
+            session,
+            profile,
+            idn: String::new(),
+        };
+        let id_cmd = inst.profile.commands.identify.clone();
+        inst.idn = inst.session.query(&id_cmd).await?;
+        for c in inst.profile.session.init.clone() {
+            inst.session.write(&c).await?;
+        }
+        inst.drain_errors().await?;
+        inst.make_safe().await?;
+        Ok(inst)
+    }
+
+    pub fn idn(&self) -> &str {
+        &self.idn
+    }
+
+    pub fn profile(&self) -> &Profile {
+        &self.profile
+    }
+
+    pub fn lines_written(&self) -> u64 {
+        self.session.lines_written
+    }
+
+    fn err(&self, kind: ErrorKind, message: String) -> InstrumentError {
+        InstrumentError {
+            instrument: self.session.name().to_string(),
+            kind,
+            message,
+        }
+    }
+
+    /// Read the error queue until it is empty; return the entries found.
+    pub async fn drain_errors(&mut self) -> Result<Vec<(i32, String)>, InstrumentError> {
+        let Some(q) = self.profile.commands.error_query.clone() else {
+            return Ok(Vec::new());
+        };
+        let mut found = Vec::new();
+        for _ in 0..32 {
+            let reply = self.session.query(&q).await?;
+            let (code, text) = scpi::parse_error_entry(&reply)
+                .map_err(|m| self.err(ErrorKind::Protocol, m))?;
+            if code == 0 {
+                return Ok(found);
+            }
+            found.push((code, text));
+        }
+        Ok(found)
+    }
+
+    async fn checked_write(&mut self, message: &str) -> Result<(), InstrumentError> {
+        self.session.write(message).await?;
+        if self.profile.session.check_errors_after_set {
+            let errs = self.drain_errors().await?;
+            if let Some((code, text)) = errs.first() {
+                return Err(self.err(
+                    ErrorKind::Reported,
+                    format!("'{message}' was refused: {code},\"{text}\""),
+                ));
+            }
+        }
+        Ok(())
+    }
+
+    async fn set_value(
+        &mut self,
+        set: Option<String>,
+        get: Option<String>,
+        value: f64,
+        what: &str,
+    ) -> Result<(), InstrumentError> {
+        let Some(set) = set else {
+            return Err(self.err(
+                ErrorKind::Reported,
+                format!("the profile has no command to set {what}"),
+            ));
+        };
+        self.checked_write(&render(&set, value)).await?;
+        if let (true, Some(get)) = (self.profile.session.read_back, get) {
+            let back = self.session.query_number(&get).await?;
+            // Instruments round to their setting resolution: accept 0.5 %
+            // or 2 mV/mA/mW, whichever is larger (common practice).
+            let tol = (value.abs() * 0.005).max(0.002);
+            if (back - value).abs() > tol {
+                return Err(self.err(
+                    ErrorKind::Reported,
+                    format!("{what} set to {value} but reads back {back}"),
+                ));
+            }
+        }
+        Ok(())
+    }
+
+    /// Switch the output (source) or input (load) on, confirmed by read-back.
+    pub async fn enable(&mut self) -> Result<(), InstrumentError> {
+        let c = self.profile.commands.enable.clone();
+        self.checked_write(&c).await?;
+        if let Some(q) = self.profile.commands.enabled_query.clone() {
+            if !self.session.query_bool(&q).await? {
+                return Err(self.err(ErrorKind::Reported, "output did not switch on".into()));
+            }
+        }
+        Ok(())
+    }
+
+    /// Switch off, confirmed by read-back where the profile allows.
+    pub async fn disable(&mut self) -> Result<(), InstrumentError> {
+        let c = self.profile.commands.disable.clone();
+        self.session.write(&c).await?;
+        if let Some(q) = self.profile.commands.enabled_query.clone() {
+            if self.session.query_bool(&q).await? {
+                return Err(self.err(ErrorKind::Reported, "output did not switch off".into()));
+            }
+        }
+        Ok(())
+    }
+
+    /// The safe state: the profile's safe-state commands (output/input
+    /// off), confirmed by read-back; retried a few times, resynchronising
+    /// after a timeout. Returns whether the off state was confirmed.
+    pub async fn make_safe(&mut self) -> Result<bool, InstrumentError> {
+        let mut last: Option<InstrumentError> = None;
+        for _ in 0..3 {
+            for c in self.profile.session.safe_state.clone() {
+                if let Err(e) = self.session.write(&c).await {
+                    last = Some(e);
+                }
+            }
+            let Some(q) = self.profile.commands.enabled_query.clone() else {
+                // Sent, but this instrument cannot confirm it.
+                return match last {
+                    None => Ok(false),
+                    Some(e) => Err(e),
+                };
+            };
+            match self.session.query_bool(&q).await {
+                Ok(false) => return Ok(true),
+                Ok(true) => last = Some(self.err(ErrorKind::Reported, "output stays on".into())),
+                Err(e) => {
+                    if e.kind == ErrorKind::Timeout {
+                        let _ = self.session.resync().await;
+                    }
+                    last = Some(e);
+                }
+            }
+            if last.as_ref().is_some_and(|e| e.kind == ErrorKind::LinkLost) {
+                break;
+            }
+        }
+        Err(last.unwrap_or_else(|| self.err(ErrorKind::Reported, "output stays on".into())))
+    }
+
+    /// Voltage and current as the instrument reports them (magnitudes).
+    async fn measure_raw(&mut self) -> Result<(f64, f64), InstrumentError> {
+        let c = &self.profile.commands;
+        if let Some(both) = c.measure_voltage_current.clone() {
+            let v = self.session.query_numbers(&both, 2).await?;
+            Ok((v[0], v[1]))
+        } else {
+            let (mv, mc) = (c.measure_voltage.clone(), c.measure_current.clone());
+            let v = self.session.query_number(&mv).await?;
+            let i = self.session.query_number(&mc).await?;
+            Ok((v, i))
+        }
+    }
+
+    /// Voltage only.
+    pub async fn measure_voltage(&mut self) -> Result<f64, InstrumentError> {
+        let c = self.profile.commands.measure_voltage.clone();
+        self.session.query_number(&c).await
+    }
+
+    /// Temperature from the instrument's sensor input, if it has one.
+    pub async fn measure_temperature(&mut self) -> Result<Option<f64>, InstrumentError> {
+        match self.profile.commands.measure_temperature.clone() {
+            Some(c) => Ok(Some(self.session.query_number(&c).await?)),
+            None => Ok(None),
+        }
+    }
+}
+
+/// A programmable DC supply charging the pack.
+pub struct Source(pub Instrument);
+
+impl Source {
+    pub async fn connect(link: Link, profile: Profile) -> Result<Source, InstrumentError> {
+        if profile.role != ProfileRole::Source {
+            return Err(InstrumentError {
+                instrument: "source".into(),
+                kind: ErrorKind::Reported,
+                message: format!("profile '{}' is not a source profile", profile.name),
+            });
+        }
+        Ok(Source(Instrument::connect("source", link, profile).await?))
+    }
+
+    /// Program a CC-CV charge: voltage limit and current limit (output off).
+    pub async fn program(&mut self, voltage_v: f64, current_a: f64) -> Result<(), InstrumentError> {
+        let c = self.0.profile.commands.clone();
+        self.0.set_value(c.set_voltage, c.get_voltage, voltage_v, "voltage").await?;
+        self.0.set_value(c.set_current, c.get_current, current_a, "current").await
+    }
+
+    /// Pack voltage and pack current (positive: into the pack).
+    pub async fn measure(&mut self) -> Result<Reading, InstrumentError> {
+        let (v, i) = self.0.measure_raw().await?;
+        Ok(Reading {
+            voltage_v: v,
+            current_a: i,
+        })
+    }
+}
+
+/// A DC electronic load discharging the pack.
+pub struct Load(pub Instrument);
+
+impl Load {
+    pub async fn connect(link: Link, profile: Profile) -> Result<Load, InstrumentError> {
+        if profile.role != ProfileRole::Load {
+            return Err(InstrumentError {
+                instrument: "load".into(),
+                kind: ErrorKind::Reported,
+                message: format!("profile '{}' is not a load profile", profile.name),
+            });
+        }
+        Ok(Load(Instrument::connect("load", link, profile).await?))
+    }
+
+    /// Program the load's mode and setpoint (input off).
+    pub async fn program(&mut self, setting: LoadSetting) -> Result<(), InstrumentError> {
+        let c = self.0.profile.commands.clone();
+        let words = self.0.profile.mode_words.clone();
+        if let (Some(set_mode), Some(words)) = (&c.set_mode, &words) {
+            let w = match setting {
+                LoadSetting::Current(_) => &words.current,
+                LoadSetting::Power(_) => &words.power,
+                LoadSetting::Resistance(_) => &words.resistance,
+            };
+            self.0.checked_write(&set_mode.replace("{mode}", w)).await?;
+        }
+        match setting {
+            LoadSetting::Current(a) => self.0.set_value(c.set_current, c.get_current, a, "current").await,
+            LoadSetting::Power(w) => self.0.set_value(c.set_power, c.get_power, w, "power").await,
+            LoadSetting::Resistance(r) => {
+                self.0.set_value(c.set_resistance, c.get_resistance, r, "resistance").await
+            }
+        }
+    }
+
+    /// Pack voltage and pack current (negative: out of the pack).
+    pub async fn measure(&mut self) -> Result<Reading, InstrumentError> {
+        let (v, i) = self.0.measure_raw().await?;
+        Ok(Reading {
+            voltage_v: v,
+            current_a: -i,
+        })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn values_render_without_float_noise() {
+        assert_eq!(render("VOLT {value}", 42.0), "VOLT 42");
+        assert_eq!(render("CURR {value}", 2.8000000000000003), "CURR 2.8");
+        assert_eq!(render("CURR {value}", 0.0005), "CURR 0.0005");
+    }
+}

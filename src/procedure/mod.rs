@@ -1,0 +1,57 @@
+//! Procedure files: the TOML as written ([`raw`]), its validation against a
+//! pack ([`validate`]) and the resolved, immutable [`plan::Plan`].
+//! Nothing here touches an instrument or a clock.
+
+pub mod plan;
+pub mod raw;
+pub mod validate;
+
+pub use plan::{DischargeMode, EndCondition, Envelope, Plan, PlanStep, PulseLevel, ResultTag, StepKind};
+
+use crate::location::{InputErrors, LocatedError, Location};
+use crate::pack::PackSpec;
+use sha2::{Digest, Sha256};
+use std::path::{Path, PathBuf};
+
+/// A procedure read from disk: its text (copied into `run.json`), its hash
+/// and the plan it resolves to for one pack.
+#[derive(Debug, Clone)]
+pub struct LoadedProcedure {
+    pub path: PathBuf,
+    pub text: String,
+    pub sha256: String,
+    pub plan: Plan,
+}
+
+/// Read and validate a procedure file for a pack.
+pub fn load(path: &Path, pack: &PackSpec) -> Result<LoadedProcedure, InputErrors> {
+    let bytes = std::fs::read(path).map_err(|e| {
+        InputErrors(vec![LocatedError {
+            location: Location {
+                file: path.to_path_buf(),
+                line: 1,
+                column: 1,
+            },
+            message: format!("cannot read the procedure: {e}"),
+        }])
+    })?;
+    let text = String::from_utf8(bytes).map_err(|e| {
+        let offset = e.utf8_error().valid_up_to();
+        let valid = String::from_utf8_lossy(&e.as_bytes()[..offset]).into_owned();
+        InputErrors(vec![LocatedError {
+            location: Location::at(path, &valid, offset),
+            message: "the file is not valid UTF-8 text".into(),
+        }])
+    })?;
+    let plan = validate::plan_from_text(path, &text, pack)?;
+    Ok(LoadedProcedure {
+        path: path.to_path_buf(),
+        sha256: sha256_hex(text.as_bytes()),
+        text,
+        plan,
+    })
+}
+
+pub fn sha256_hex(bytes: &[u8]) -> String {
+    hex::encode(Sha256::digest(bytes))
+}

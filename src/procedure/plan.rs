@@ -1,0 +1,244 @@
+//! The validated plan: every value resolved against the pack, every step
+//! with at least one end condition its setpoints can reach. Immutable.
+
+use crate::pack::PackSpec;
+use crate::units::HumanDuration;
+use serde::Serialize;
+use std::fmt;
+
+/// The safety envelope, checked on every sample of every step.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Envelope {
+    pub voltage_max_v: f64,
+    pub voltage_min_v: f64,
+    pub current_max_a: f64,
+    pub temperature_max_c: f64,
+    pub temperature_min_c: Option<f64>,
+    /// Charge into the pack within one step that stops the run.
+    pub charge_max_ah: f64,
+    /// Longest any single step may last.
+    pub step_time_max_s: f64,
+}
+
+/// How a discharge step loads the pack. Values are magnitudes.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[serde(tag = "mode", rename_all = "snake_case")]
+pub enum DischargeMode {
+    Current { current_a: f64 },
+    Power { power_w: f64 },
+    Resistance { resistance_ohm: f64 },
+}
+
+/// One level of a pulse step. Current is signed: positive charges the pack.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct PulseLevel {
+    pub current_a: f64,
+    pub duration_s: f64,
+}
+
+/// What a step does.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum StepKind {
+    /// Constant current up to `voltage_v`, then constant voltage.
+    Charge { current_a: f64, voltage_v: f64 },
+    Discharge { load: DischargeMode },
+    Rest,
+    Pulse { levels: Vec<PulseLevel> },
+}
+
+impl StepKind {
+    pub fn name(&self) -> &'static str {
+        match self {
+            StepKind::Charge { .. } => "charge",
+            StepKind::Discharge { .. } => "discharge",
+            StepKind::Rest => "rest",
+            StepKind::Pulse { .. } => "pulse",
+        }
+    }
+}
+
+/// A condition that ends a step when reached. Thresholds are resolved to
+/// SI units; current thresholds are magnitudes.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[serde(tag = "when", rename_all = "snake_case")]
+pub enum EndCondition {
+    VoltageAbove { voltage_v: f64 },
+    VoltageBelow { voltage_v: f64 },
+    /// |current| at or below the threshold (taper); on a charge step only
+    /// counted once the supply is holding its voltage.
+    CurrentBelow { current_a: f64 },
+    Time { seconds: f64 },
+    /// |charge| passed in the step.
+    Charge { ah: f64 },
+    /// |energy| passed in the step.
+    Energy { wh: f64 },
+    TemperatureAbove { celsius: f64 },
+    /// |dV/dt| over the settling window at or below the rate.
+    Settled { volts_per_s: f64 },
+    /// The voltage has fallen this far below the step's peak.
+    PeakDrop { voltage_v: f64 },
+}
+
+impl fmt::Display for EndCondition {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match *self {
+            EndCondition::VoltageAbove { voltage_v } => write!(f, "voltage > {voltage_v:.3} V"),
+            EndCondition::VoltageBelow { voltage_v } => write!(f, "voltage < {voltage_v:.3} V"),
+            EndCondition::CurrentBelow { current_a } => write!(f, "current < {current_a:.3} A"),
+            EndCondition::Time { seconds } => write!(f, "time > {}", HumanDuration(seconds)),
+            EndCondition::Charge { ah } => write!(f, "charge > {ah:.3} Ah"),
+            EndCondition::Energy { wh } => write!(f, "energy > {wh:.2} Wh"),
+            EndCondition::TemperatureAbove { celsius } => {
+                write!(f, "temperature > {celsius:.1} degC")
+            }
+            EndCondition::Settled { volts_per_s } => {
+                write!(f, "dv/dt < {:.3} mV/min", volts_per_s * 60_000.0)
+            }
+            EndCondition::PeakDrop { voltage_v } => {
+                write!(f, "peak_drop > {:.1} mV", voltage_v * 1000.0)
+            }
+        }
+    }
+}
+
+/// What a tagged step's result stands for.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ResultTag {
+    Capacity,
+}
+
+/// One concrete step of the plan.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct PlanStep {
+    /// 1-based position in the expanded plan (the `step` column of the log).
+    pub index: u32,
+    pub phase: String,
+    /// 1-based repetition of the phase.
+    pub repeat: u32,
+    /// Charge/discharge cycle number: 0 before the first charge, then one
+    /// more at each charge that follows a discharge.
+    pub cycle: u32,
+    pub name: Option<String>,
+    #[serde(flatten)]
+    pub kind: StepKind,
+    pub ends: Vec<EndCondition>,
+    pub result: Option<ResultTag>,
+    /// Line of the step in the procedure file, for messages.
+    pub line: usize,
+}
+
+impl PlanStep {
+    /// The duration a pulse step's levels add up to.
+    pub fn pulse_duration_s(&self) -> Option<f64> {
+        match &self.kind {
+            StepKind::Pulse { levels } => Some(levels.iter().map(|l| l.duration_s).sum()),
+            _ => None,
+        }
+    }
+}
+
+/// A validated, pack-resolved procedure.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Plan {
+    pub title: String,
+    pub pack: PackSpec,
+    pub envelope: Envelope,
+    pub sample_every_s: f64,
+    pub steps: Vec<PlanStep>,
+}
+
+impl Plan {
+    /// The step tagged as the capacity measurement, if any.
+    pub fn capacity_step(&self) -> Option<&PlanStep> {
+        self.steps
+            .iter()
+            .rev()
+            .find(|s| s.result == Some(ResultTag::Capacity))
+    }
+}
+
+impl fmt::Display for StepKind {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            StepKind::Charge {
+                current_a,
+                voltage_v,
+            } => write!(f, "charge {current_a:.3} A to {voltage_v:.3} V (CC-CV)"),
+            StepKind::Discharge { load } => match load {
+                DischargeMode::Current { current_a } => {
+                    write!(f, "discharge {current_a:.3} A (constant current)")
+                }
+                DischargeMode::Power { power_w } => {
+                    write!(f, "discharge {power_w:.2} W (constant power)")
+                }
+                DischargeMode::Resistance { resistance_ohm } => {
+                    write!(f, "discharge {resistance_ohm:.4} ohm (constant resistance)")
+                }
+            },
+            StepKind::Rest => write!(f, "rest"),
+            StepKind::Pulse { levels } => {
+                write!(f, "pulse")?;
+                for l in levels {
+                    write!(f, " [{:+.3} A for {}]", l.current_a, HumanDuration(l.duration_s))?;
+                }
+                Ok(())
+            }
+        }
+    }
+}
+
+impl fmt::Display for Plan {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        let p = &self.pack;
+        writeln!(f, "Procedure: {}", self.title)?;
+        writeln!(
+            f,
+            "Pack: {} {}S, rated {:.3} Ah ({:.1} Wh)",
+            p.chemistry,
+            p.series,
+            p.rated_capacity_ah,
+            p.rated_energy_or_nominal()
+        )?;
+        let e = &self.envelope;
+        writeln!(
+            f,
+            "Envelope: {:.3}..{:.3} V, |I| <= {:.3} A, T <= {:.1} degC{}, charge <= {:.3} Ah per step, step <= {}",
+            e.voltage_min_v,
+            e.voltage_max_v,
+            e.current_max_a,
+            e.temperature_max_c,
+            e.temperature_min_c
+                .map(|t| format!(" and >= {t:.1} degC"))
+                .unwrap_or_default(),
+            e.charge_max_ah,
+            HumanDuration(e.step_time_max_s)
+        )?;
+        writeln!(f, "Sampling: every {} s", self.sample_every_s)?;
+        for s in &self.steps {
+            write!(
+                f,
+                "  {:>3}. [{}{} | cycle {}] {}",
+                s.index,
+                s.phase,
+                if s.repeat > 1 {
+                    format!(" #{}", s.repeat)
+                } else {
+                    String::new()
+                },
+                s.cycle,
+                s.kind
+            )?;
+            if !s.ends.is_empty() {
+                let ends: Vec<String> = s.ends.iter().map(|c| c.to_string()).collect();
+                write!(f, "; ends: {}", ends.join(" or "))?;
+            }
+            if s.result.is_some() {
+                write!(f, "  <- capacity result")?;
+            }
+            writeln!(f)?;
+        }
+        Ok(())
+    }
+}

@@ -1,0 +1,69 @@
+//! The procedure file as written: a serde mirror of the TOML, every value
+//! kept as text with its position so validation can point at it.
+
+use serde::Deserialize;
+use toml::Spanned;
+
+pub type Text = Spanned<String>;
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawProcedure {
+    pub title: Text,
+    pub description: Option<Text>,
+    pub envelope: Option<Spanned<RawEnvelope>>,
+    pub sampling: Option<Spanned<RawSampling>>,
+    #[serde(default)]
+    pub phase: Vec<Spanned<RawPhase>>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawEnvelope {
+    pub voltage_max: Option<Text>,
+    pub voltage_min: Option<Text>,
+    pub current_max: Option<Text>,
+    pub temperature_max: Option<Text>,
+    pub temperature_min: Option<Text>,
+    pub charge_max: Option<Text>,
+    pub step_time_max: Option<Text>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawSampling {
+    pub every: Text,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawPhase {
+    pub name: Text,
+    pub repeat: Option<Spanned<i64>>,
+    #[serde(default)]
+    pub step: Vec<Spanned<RawStep>>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawStep {
+    pub kind: Text,
+    pub name: Option<Text>,
+    /// Discharge only: `current` (default), `power` or `resistance`.
+    pub mode: Option<Text>,
+    pub current: Option<Text>,
+    pub voltage: Option<Text>,
+    pub power: Option<Text>,
+    pub resistance: Option<Text>,
+    pub levels: Option<Spanned<Vec<Spanned<RawLevel>>>>,
+    #[serde(default)]
+    pub ends: Vec<Text>,
+    pub result: Option<Text>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawLevel {
+    pub current: Text,
+    pub duration: Text,
+}

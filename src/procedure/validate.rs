@@ -1,0 +1,734 @@
+//! Raw procedure + pack spec → validated [`Plan`], in one conversion that
+//! collects every problem with its file:line:column. Nothing here talks to
+//! an instrument.
+
+use super::plan::*;
+use super::raw::*;
+use crate::location::{toml_error, InputErrors, LocatedError, Location};
+use crate::pack::PackSpec;
+use crate::units::{self, UnitError};
+use std::ops::Range;
+use std::path::Path;
+use toml::Spanned;
+
+/// The most steps a procedure may expand to (phases × repeats × steps).
+pub const MAX_STEPS: usize = 100_000;
+/// The shortest sampling interval accepted.
+pub const MIN_SAMPLE_S: f64 = 0.01;
+
+struct Ctx<'a> {
+    file: &'a Path,
+    text: &'a str,
+    errors: Vec<LocatedError>,
+}
+
+impl Ctx<'_> {
+    fn err(&mut self, span: &Range<usize>, message: impl Into<String>) {
+        self.errors.push(LocatedError {
+            location: Location::of_span(self.file, self.text, span),
+            message: message.into(),
+        });
+    }
+
+    fn unit<T>(&mut self, t: &Text, f: impl Fn(&str) -> Result<T, UnitError>) -> Option<T> {
+        match f(t.get_ref()) {
+            Ok(v) => Some(v),
+            Err(e) => {
+                self.err(&t.span(), e.to_string());
+                None
+            }
+        }
+    }
+
+    fn line(&self, span: &Range<usize>) -> usize {
+        Location::of_span(self.file, self.text, span).line
+    }
+}
+
+/// Parse and validate a procedure file's text for a given pack.
+pub fn plan_from_text(file: &Path, text: &str, pack: &PackSpec) -> Result<Plan, InputErrors> {
+    let raw: RawProcedure =
+        toml::from_str(text).map_err(|e| InputErrors(vec![toml_error(file, text, &e)]))?;
+    let mut cx = Ctx {
+        file,
+        text,
+        errors: Vec::new(),
+    };
+    let plan = build(&mut cx, &raw, pack);
+    match plan {
+        Some(p) if cx.errors.is_empty() => Ok(p),
+        _ => {
+            if cx.errors.is_empty() {
+                cx.err(&(0..0), "the procedure is not valid");
+            }
+            Err(InputErrors(cx.errors))
+        }
+    }
+}
+
+fn positive(cx: &mut Ctx, t: &Text, x: f64, what: &str) -> Option<f64> {
+    if x > 0.0 && x.is_finite() {
+        Some(x)
+    } else {
+        cx.err(&t.span(), format!("{what} must be above zero, got '{}'", t.get_ref()));
+        None
+    }
+}
+
+fn build_envelope(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<Envelope> {
+    let Some(env) = &raw.envelope else {
+        cx.err(
+            &(0..0),
+            "the procedure has no [envelope]; expected voltage_max, voltage_min, current_max and temperature_max",
+        );
+        return None;
+    };
+    let span = env.span();
+    let env = env.get_ref();
+    let series = pack.series;
+    let rated = pack.rated_capacity_ah;
+    let need = |cx: &mut Ctx, v: &Option<Text>, key: &str, example: &str| -> Option<Text> {
+        match v {
+            Some(t) => Some(t.clone()),
+            None => {
+                cx.err(
+                    &span,
+                    format!("[envelope] is missing {key}; expected e.g. {key} = \"{example}\""),
+                );
+                None
+            }
+        }
+    };
+    let vmax_t = need(cx, &env.voltage_max, "voltage_max", "4.25V/cell");
+    let vmin_t = need(cx, &env.voltage_min, "voltage_min", "2.5V/cell");
+    let imax_t = need(cx, &env.current_max, "current_max", "1C");
+    let tmax_t = need(cx, &env.temperature_max, "temperature_max", "55degC");
+    let vmax = vmax_t
+        .as_ref()
+        .and_then(|t| cx.unit(t, units::voltage).map(|v| (t, v.resolve(series))))
+        .and_then(|(t, v)| positive(cx, t, v, "voltage_max"));
+    let vmin = vmin_t
+        .as_ref()
+        .and_then(|t| cx.unit(t, units::voltage).map(|v| (t, v.resolve(series))))
+        .and_then(|(t, v)| positive(cx, t, v, "voltage_min"));
+    let imax = imax_t
+        .as_ref()
+        .and_then(|t| cx.unit(t, units::current).map(|v| (t, v.resolve(rated))))
+        .and_then(|(t, v)| positive(cx, t, v, "current_max"));
+    let tmax = tmax_t
+        .as_ref()
+        .and_then(|t| cx.unit(t, units::temperature_c));
+    let tmin = env
+        .temperature_min
+        .as_ref()
+        .and_then(|t| cx.unit(t, units::temperature_c));
+    let charge_max = match &env.charge_max {
+        Some(t) => cx
+            .unit(t, units::charge)
+            .map(|c| c.resolve(rated))
+            .and_then(|c| positive(cx, t, c, "charge_max")),
+        None => Some(pack.chemistry.default_charge_cap() * rated),
+    };
+    let step_time_max = match &env.step_time_max {
+        Some(t) => cx
+            .unit(t, units::duration)
+            .and_then(|s| positive(cx, t, s, "step_time_max")),
+        None => Some(48.0 * 3600.0),
+    };
+    if let (Some(hi), Some(lo), Some(t)) = (vmax, vmin, &vmin_t) {
+        if lo >= hi {
+            cx.err(
+                &t.span(),
+                format!("voltage_min ({lo:.3} V) must be below voltage_max ({hi:.3} V)"),
+            );
+        }
+    }
+    if let (Some(hi), Some(lo), Some(t)) = (tmax, tmin, &env.temperature_min) {
+        if lo >= hi {
+            cx.err(
+                &t.span(),
+                format!("temperature_min ({lo} degC) must be below temperature_max ({hi} degC)"),
+            );
+        }
+    }
+    Some(Envelope {
+        voltage_max_v: vmax?,
+        voltage_min_v: vmin?,
+        current_max_a: imax?,
+        temperature_max_c: tmax?,
+        temperature_min_c: tmin,
+        charge_max_ah: charge_max?,
+        step_time_max_s: step_time_max?,
+    })
+}
+
+/// Parse one end condition, e.g. `voltage < 3.0V/cell`.
+fn parse_end(cx: &mut Ctx, t: &Text, pack: &PackSpec) -> Option<EndCondition> {
+    let s = t.get_ref().trim();
+    let ops = ["<=", ">=", "<", ">"];
+    let Some((pos, op)) = ops
+        .iter()
+        .filter_map(|op| s.find(op).map(|p| (p, *op)))
+        .min_by_key(|(p, _)| *p)
+    else {
+        cx.err(
+            &t.span(),
+            format!("end condition '{s}' has no '<' or '>'; expected e.g. \"voltage < 3.0V/cell\" or \"time > 2h\""),
+        );
+        return None;
+    };
+    let what = s[..pos].trim().to_ascii_lowercase();
+    let value = s[pos + op.len()..].trim();
+    let below = op.starts_with('<');
+    let series = pack.series;
+    let rated = pack.rated_capacity_ah;
+    let wrong_op = |cx: &mut Ctx, expected: &str| {
+        cx.err(
+            &t.span(),
+            format!("end condition '{s}': {what} takes '{expected}', not '{op}'"),
+        );
+        None
+    };
+    let parsed = |cx: &mut Ctx, r: Result<f64, UnitError>| match r {
+        Ok(v) if v.is_finite() => Some(v),
+        Ok(_) => {
+            cx.err(&t.span(), format!("end condition '{s}': value is not finite"));
+            None
+        }
+        Err(e) => {
+            cx.err(&t.span(), format!("end condition '{s}': {e}"));
+            None
+        }
+    };
+    let cond = match what.as_str() {
+        "voltage" => {
+            let v = parsed(cx, units::voltage(value).map(|v| v.resolve(series)))?;
+            if below {
+                EndCondition::VoltageBelow { voltage_v: v }
+            } else {
+                EndCondition::VoltageAbove { voltage_v: v }
+            }
+        }
+        "current" => {
+            if !below {
+                return wrong_op(cx, "<");
+            }
+            let a = parsed(cx, units::current(value).map(|c| c.resolve(rated).abs()))?;
+            EndCondition::CurrentBelow { current_a: a }
+        }
+        "time" => {
+            if below {
+                return wrong_op(cx, ">");
+            }
+            EndCondition::Time {
+                seconds: parsed(cx, units::duration(value))?,
+            }
+        }
+        "charge" => {
+            if below {
+                return wrong_op(cx, ">");
+            }
+            EndCondition::Charge {
+                ah: parsed(cx, units::charge(value).map(|c| c.resolve(rated).abs()))?,
+            }
+        }
+        "energy" => {
+            if below {
+                return wrong_op(cx, ">");
+            }
+            EndCondition::Energy {
+                wh: parsed(cx, units::energy_wh(value).map(f64::abs))?,
+            }
+        }
+        "temperature" => {
+            if below {
+                return wrong_op(cx, ">");
+            }
+            EndCondition::TemperatureAbove {
+                celsius: parsed(cx, units::temperature_c(value))?,
+            }
+        }
+        "dv/dt" | "dvdt" => {
+            if !below {
+                return wrong_op(cx, "<");
+            }
+            EndCondition::Settled {
+                volts_per_s: parsed(cx, units::voltage_rate(value).map(|r| r.resolve(series).abs()))?,
+            }
+        }
+        "peak_drop" => {
+            if below {
+                return wrong_op(cx, ">");
+            }
+            EndCondition::PeakDrop {
+                voltage_v: parsed(cx, units::voltage(value).map(|v| v.resolve(series).abs()))?,
+            }
+        }
+        other => {
+            cx.err(
+                &t.span(),
+                format!(
+                    "unknown end condition '{other}'; expected one of voltage, current, time, charge, energy, temperature, dv/dt, peak_drop"
+                ),
+            );
+            return None;
+        }
+    };
+    Some(cond)
+}
+
+/// Can this condition end this kind of step, given its setpoints?
+fn reachable(kind: &StepKind, c: &EndCondition, env: &Envelope) -> bool {
+    use EndCondition as E;
+    match (kind, c) {
+        (_, E::Time { seconds }) => *seconds > 0.0,
+        (StepKind::Rest, E::Settled { volts_per_s }) => *volts_per_s > 0.0,
+        (StepKind::Rest, _) => false,
+        (_, E::TemperatureAbove { .. }) => false,
+        (StepKind::Pulse { .. }, _) => true,
+        (_, E::Charge { ah }) => *ah > 0.0,
+        (_, E::Energy { wh }) => *wh > 0.0,
+        (StepKind::Charge { voltage_v, current_a }, E::VoltageAbove { voltage_v: x }) => {
+            *x < *voltage_v && *current_a > 0.0
+        }
+        (StepKind::Charge { current_a, .. }, E::CurrentBelow { current_a: x }) => {
+            *x > 0.0 && *x < *current_a
+        }
+        (StepKind::Charge { .. }, E::PeakDrop { voltage_v }) => *voltage_v > 0.0,
+        (StepKind::Charge { .. }, E::Settled { .. }) => false,
+        (StepKind::Charge { .. }, E::VoltageBelow { .. }) => false,
+        (StepKind::Discharge { .. }, E::VoltageBelow { voltage_v }) => {
+            *voltage_v > env.voltage_min_v
+        }
+        (StepKind::Discharge { load }, E::CurrentBelow { current_a: x }) => match load {
+            DischargeMode::Current { .. } => false,
+            // Current falls with the voltage under constant resistance and
+            // rises under constant power.
+            DischargeMode::Resistance { resistance_ohm } => {
+                *x > env.voltage_min_v / resistance_ohm
+            }
+            DischargeMode::Power { .. } => false,
+        },
+        (StepKind::Discharge { .. }, _) => false,
+    }
+}
+
+fn build_step(
+    cx: &mut Ctx,
+    raw: &Spanned<RawStep>,
+    env: &Envelope,
+    pack: &PackSpec,
+) -> Option<(StepKind, Vec<EndCondition>, Option<ResultTag>, Option<String>)> {
+    let span = raw.span();
+    let st = raw.get_ref();
+    let series = pack.series;
+    let rated = pack.rated_capacity_ah;
+    let kind_name = st.kind.get_ref().trim().to_ascii_lowercase();
+    let errors_before = cx.errors.len();
+    // Keys that do not belong to the kind are errors, not silently ignored.
+    let forbid = |cx: &mut Ctx, v: &Option<Text>, key: &str| {
+        if let Some(t) = v {
+            cx.err(
+                &t.span(),
+                format!("a {kind_name} step takes no '{key}'"),
+            );
+        }
+    };
+    let current_sp = |cx: &mut Ctx, t: &Text| -> Option<f64> {
+        let a = cx.unit(t, units::current)?.resolve(rated);
+        if !(a > 0.0 && a.is_finite()) {
+            cx.err(
+                &t.span(),
+                format!(
+                    "current must be a positive magnitude (the step kind sets the direction), got '{}'",
+                    t.get_ref()
+                ),
+            );
+            return None;
+        }
+        if a > env.current_max_a {
+            cx.err(
+                &t.span(),
+                format!(
+                    "current {a:.3} A is outside the envelope (current_max {:.3} A)",
+                    env.current_max_a
+                ),
+            );
+            return None;
+        }
+        Some(a)
+    };
+    let kind = match kind_name.as_str() {
+        "charge" => {
+            forbid(cx, &st.mode, "mode");
+            forbid(cx, &st.power, "power");
+            forbid(cx, &st.resistance, "resistance");
+            let current = match &st.current {
+                Some(t) => current_sp(cx, t),
+                None => {
+                    cx.err(&span, "a charge step needs a current, e.g. current = \"0.5C\"");
+                    None
+                }
+            };
+            let voltage = match &st.voltage {
+                Some(t) => cx.unit(t, units::voltage).map(|v| (t, v.resolve(series))),
+                None => {
+                    cx.err(
+                        &span,
+                        "a charge step needs a voltage limit, e.g. voltage = \"4.2V/cell\"",
+                    );
+                    None
+                }
+            };
+            let voltage = voltage.and_then(|(t, v)| {
+                if v >= env.voltage_max_v {
+                    cx.err(
+                        &t.span(),
+                        format!(
+                            "charge voltage {v:.3} V is outside the envelope (must be below voltage_max {:.3} V)",
+                            env.voltage_max_v
+                        ),
+                    );
+                    None
+                } else if v <= env.voltage_min_v {
+                    cx.err(
+                        &t.span(),
+                        format!(
+                            "charge voltage {v:.3} V is below the envelope's voltage_min {:.3} V",
+                            env.voltage_min_v
+                        ),
+                    );
+                    None
+                } else {
+                    Some(v)
+                }
+            });
+            StepKind::Charge {
+                current_a: current?,
+                voltage_v: voltage?,
+            }
+        }
+        "discharge" => {
+            forbid(cx, &st.voltage, "voltage");
+            let mode = st
+                .mode
+                .as_ref()
+                .map(|m| m.get_ref().trim().to_ascii_lowercase())
+                .unwrap_or_else(|| "current".into());
+            let load = match mode.as_str() {
+                "current" => {
+                    forbid(cx, &st.power, "power");
+                    forbid(cx, &st.resistance, "resistance");
+                    match &st.current {
+                        Some(t) => current_sp(cx, t).map(|a| DischargeMode::Current { current_a: a }),
+                        None => {
+                            cx.err(&span, "a constant-current discharge needs a current, e.g. current = \"0.2C\"");
+                            None
+                        }
+                    }
+                }
+                "power" => {
+                    forbid(cx, &st.current, "current");
+                    forbid(cx, &st.resistance, "resistance");
+                    match &st.power {
+                        Some(t) => cx
+                            .unit(t, units::power)
+                            .map(|p| p.resolve(series))
+                            .and_then(|p| positive(cx, t, p, "power"))
+                            .and_then(|p| {
+                                // At the lowest allowed voltage the current is highest.
+                                let worst = p / env.voltage_min_v;
+                                if worst > env.current_max_a {
+                                    cx.err(&t.span(), format!(
+                                        "power {p:.2} W draws {worst:.3} A at voltage_min, outside the envelope (current_max {:.3} A)",
+                                        env.current_max_a));
+                                    None
+                                } else {
+                                    Some(DischargeMode::Power { power_w: p })
+                                }
+                            }),
+                        None => {
+                            cx.err(&span, "a constant-power discharge needs power = \"...W\"");
+                            None
+                        }
+                    }
+                }
+                "resistance" => {
+                    forbid(cx, &st.current, "current");
+                    forbid(cx, &st.power, "power");
+                    match &st.resistance {
+                        Some(t) => cx
+                            .unit(t, units::resistance_ohm)
+                            .and_then(|r| positive(cx, t, r, "resistance"))
+                            .and_then(|r| {
+                                let worst = env.voltage_max_v / r;
+                                if worst > env.current_max_a {
+                                    cx.err(&t.span(), format!(
+                                        "resistance {r:.4} ohm draws {worst:.3} A at voltage_max, outside the envelope (current_max {:.3} A)",
+                                        env.current_max_a));
+                                    None
+                                } else {
+                                    Some(DischargeMode::Resistance { resistance_ohm: r })
+                                }
+                            }),
+                        None => {
+                            cx.err(&span, "a constant-resistance discharge needs resistance = \"...ohm\"");
+                            None
+                        }
+                    }
+                }
+                other => {
+                    if let Some(m) = &st.mode {
+                        cx.err(
+                            &m.span(),
+                            format!("unknown discharge mode '{other}'; expected current, power or resistance"),
+                        );
+                    }
+                    None
+                }
+            };
+            StepKind::Discharge { load: load? }
+        }
+        "rest" => {
+            for (v, k) in [
+                (&st.current, "current"),
+                (&st.voltage, "voltage"),
+                (&st.power, "power"),
+                (&st.resistance, "resistance"),
+                (&st.mode, "mode"),
+            ] {
+                forbid(cx, v, k);
+            }
+            StepKind::Rest
+        }
+        "pulse" => {
+            for (v, k) in [
+                (&st.current, "current"),
+                (&st.voltage, "voltage"),
+                (&st.power, "power"),
+                (&st.resistance, "resistance"),
+                (&st.mode, "mode"),
+            ] {
+                forbid(cx, v, k);
+            }
+            let Some(levels) = &st.levels else {
+                cx.err(
+                    &span,
+                    "a pulse step needs levels, e.g. levels = [{ current = \"-0.2C\", duration = \"10s\" }]",
+                );
+                return None;
+            };
+            if levels.get_ref().is_empty() {
+                cx.err(&levels.span(), "a pulse step needs at least one level");
+            }
+            let mut out = Vec::new();
+            for l in levels.get_ref() {
+                let lv = l.get_ref();
+                let a = cx.unit(&lv.current, units::current).map(|c| c.resolve(rated));
+                let d = cx
+                    .unit(&lv.duration, units::duration)
+                    .and_then(|d| positive(cx, &lv.duration, d, "duration"));
+                if let Some(a) = a {
+                    if a.abs() > env.current_max_a {
+                        cx.err(
+                            &lv.current.span(),
+                            format!(
+                                "pulse current {a:.3} A is outside the envelope (current_max {:.3} A)",
+                                env.current_max_a
+                            ),
+                        );
+                        continue;
+                    }
+                }
+                if let (Some(a), Some(d)) = (a, d) {
+                    out.push(PulseLevel {
+                        current_a: a,
+                        duration_s: d,
+                    });
+                }
+            }
+            StepKind::Pulse { levels: out }
+        }
+        other => {
+            cx.err(
+                &st.kind.span(),
+                format!("unknown step kind '{other}'; expected charge, discharge, rest or pulse"),
+            );
+            return None;
+        }
+    };
+    if kind_name != "pulse" {
+        if let Some(l) = &st.levels {
+            cx.err(&l.span(), format!("a {kind_name} step takes no 'levels'"));
+        }
+    }
+    let mut ends = Vec::new();
+    for t in &st.ends {
+        if let Some(c) = parse_end(cx, t, pack) {
+            // Thresholds beyond the envelope would never be met before a trip.
+            match c {
+                EndCondition::VoltageBelow { voltage_v } if voltage_v <= env.voltage_min_v => cx.err(
+                    &t.span(),
+                    format!(
+                        "cutoff {voltage_v:.3} V is outside the envelope (must be above voltage_min {:.3} V)",
+                        env.voltage_min_v
+                    ),
+                ),
+                EndCondition::VoltageAbove { voltage_v } if voltage_v >= env.voltage_max_v => cx.err(
+                    &t.span(),
+                    format!(
+                        "end voltage {voltage_v:.3} V is outside the envelope (must be below voltage_max {:.3} V)",
+                        env.voltage_max_v
+                    ),
+                ),
+                EndCondition::TemperatureAbove { celsius } if celsius >= env.temperature_max_c => cx.err(
+                    &t.span(),
+                    format!(
+                        "end temperature {celsius} degC is at or above the envelope's temperature_max {} degC",
+                        env.temperature_max_c
+                    ),
+                ),
+                _ => ends.push(c),
+            }
+        }
+    }
+    let result = match &st.result {
+        None => None,
+        Some(t) => match t.get_ref().trim() {
+            "capacity" => {
+                if !matches!(kind, StepKind::Discharge { .. }) {
+                    cx.err(&t.span(), "result = \"capacity\" belongs on a discharge step");
+                }
+                Some(ResultTag::Capacity)
+            }
+            other => {
+                cx.err(
+                    &t.span(),
+                    format!("unknown result tag '{other}'; expected \"capacity\""),
+                );
+                None
+            }
+        },
+    };
+    if cx.errors.len() == errors_before {
+        let can_end = matches!(kind, StepKind::Pulse { .. })
+            || ends.iter().any(|c| reachable(&kind, c, env));
+        if !can_end {
+            let hint = match kind {
+                StepKind::Charge { .. } => "a charge step can end on current < (taper below its current), voltage > (below its voltage limit), charge >, energy >, peak_drop > or time >",
+                StepKind::Discharge { .. } => "a discharge step can end on voltage < (above voltage_min), charge >, energy > or time >",
+                StepKind::Rest => "a rest can end on time > or dv/dt <",
+                StepKind::Pulse { .. } => "",
+            };
+            cx.err(
+                &span,
+                format!("this {kind_name} step cannot end: none of its end conditions can be reached with its setpoints; {hint}"),
+            );
+        }
+    }
+    let name = st.name.as_ref().map(|n| n.get_ref().clone());
+    Some((kind, ends, result, name))
+}
+
+fn build(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<Plan> {
+    if let Err(m) = pack.check() {
+        cx.err(&(0..0), format!("pack spec: {m}"));
+        return None;
+    }
+    let env = build_envelope(cx, raw, pack);
+    let every = match &raw.sampling {
+        Some(s) => {
+            let t = &s.get_ref().every;
+            cx.unit(t, units::duration).and_then(|v| {
+                if v >= MIN_SAMPLE_S && v <= 3600.0 {
+                    Some(v)
+                } else {
+                    cx.err(
+                        &t.span(),
+                        format!("sampling interval must be between {MIN_SAMPLE_S} s and 1 h, got '{}'", t.get_ref()),
+                    );
+                    None
+                }
+            })
+        }
+        None => Some(1.0),
+    };
+    if raw.phase.is_empty() {
+        cx.err(&(0..0), "the procedure has no [[phase]]; expected at least one phase with steps");
+    }
+    let env = env?;
+    // Validate each written step once, then expand repeats.
+    let mut expanded_count: usize = 0;
+    let mut written = Vec::new();
+    for ph in &raw.phase {
+        let p = ph.get_ref();
+        let repeat = match &p.repeat {
+            None => 1,
+            Some(r) => match u32::try_from(*r.get_ref()) {
+                Ok(n) if (1..=10_000).contains(&n) => n,
+                _ => {
+                    cx.err(&r.span(), format!("repeat must be between 1 and 10000, got {}", r.get_ref()));
+                    1
+                }
+            },
+        };
+        if p.step.is_empty() {
+            cx.err(&ph.span(), format!("phase '{}' has no steps", p.name.get_ref()));
+        }
+        expanded_count = expanded_count.saturating_add(p.step.len().saturating_mul(repeat as usize));
+        if expanded_count > MAX_STEPS {
+            cx.err(&ph.span(), format!("the procedure expands to more than {MAX_STEPS} steps"));
+            return None;
+        }
+        let mut steps = Vec::new();
+        for s in &p.step {
+            let line = cx.line(&s.span());
+            if let Some(b) = build_step(cx, s, &env, pack) {
+                steps.push((b, line));
+            }
+        }
+        written.push((p.name.get_ref().clone(), repeat, steps));
+    }
+    let every = every?;
+    if !cx.errors.is_empty() {
+        return None;
+    }
+    let mut steps = Vec::new();
+    let mut cycle = 0u32;
+    let mut last_direction: Option<bool> = None; // true = charge
+    for (phase, repeat, ws) in written {
+        for r in 1..=repeat {
+            for ((kind, ends, result, name), line) in &ws {
+                let dir = match kind {
+                    StepKind::Charge { .. } => Some(true),
+                    StepKind::Discharge { .. } => Some(false),
+                    _ => None,
+                };
+                if dir == Some(true) && last_direction != Some(true) {
+                    cycle += 1;
+                }
+                if dir.is_some() {
+                    last_direction = dir;
+                }
+                steps.push(PlanStep {
+                    index: steps.len() as u32 + 1,
+                    phase: phase.clone(),
+                    repeat: r,
+                    cycle,
+                    name: name.clone(),
+                    kind: kind.clone(),
+                    ends: ends.clone(),
+                    result: *result,
+                    line: *line,
+                });
+            }
+        }
+    }
+    Some(Plan {
+        title: raw.title.get_ref().clone(),
+        pack: pack.clone(),
+        envelope: env,
+        sample_every_s: every,
+        steps,
+    })
+}

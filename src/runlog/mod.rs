@@ -1,0 +1,68 @@
+//! The run record on disk:
+//!
+//! ```text
+//! results/<pack-id>/pack.toml
+//! results/<pack-id>/<run-id>/run.json       manifest (rewritten at the end)
+//! results/<pack-id>/<run-id>/samples.csv    one row per sample, flushed every second
+//! results/<pack-id>/<run-id>/events.jsonl   step starts/ends, breaches, faults
+//! results/<pack-id>/<run-id>/summary.json   computed figures and status
+//! ```
+//!
+//! JSON records are written to a temporary name and renamed, so a crash
+//! never leaves one half-written. No statistics here.
+
+pub mod read;
+pub mod write;
+
+use crate::analysis::{CapacityResult, CycleSummary, StepSummary};
+use crate::pack::PackSpec;
+use serde::{Deserialize, Serialize};
+
+pub const SAMPLES_CSV: &str = "samples.csv";
+pub const EVENTS_JSONL: &str = "events.jsonl";
+pub const RUN_JSON: &str = "run.json";
+pub const SUMMARY_JSON: &str = "summary.json";
+pub const PACK_TOML: &str = "pack.toml";
+
+/// The columns of `samples.csv`, in order.
+pub const CSV_COLUMNS: [&str; 6] = ["t_s", "step", "cycle", "voltage_v", "current_a", "temperature_c"];
+
+/// `summary.json`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Summary {
+    /// `completed`, `aborted` or `interrupted`.
+    pub status: String,
+    pub stop_reason: Option<String>,
+    pub pack_id: String,
+    pub run_id: String,
+    pub procedure_title: String,
+    pub pack: PackSummary,
+    pub capacity: Option<CapacityResult>,
+    pub steps: Vec<StepSummary>,
+    pub cycles: Vec<CycleSummary>,
+    pub warnings: Vec<String>,
+    pub samples: usize,
+    pub duration_s: f64,
+}
+
+/// The pack spec as it appears in JSON records.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PackSummary {
+    pub chemistry: String,
+    pub series: u32,
+    pub rated_capacity_ah: f64,
+    pub rated_energy_wh: Option<f64>,
+    pub rated_rate_c: Option<f64>,
+}
+
+impl From<&PackSpec> for PackSummary {
+    fn from(p: &PackSpec) -> Self {
+        PackSummary {
+            chemistry: p.chemistry.to_string(),
+            series: p.series,
+            rated_capacity_ah: p.rated_capacity_ah,
+            rated_energy_wh: p.rated_energy_wh,
+            rated_rate_c: p.rated_rate_c,
+        }
+    }
+}

@@ -1,0 +1,225 @@
+//! The simulated bench's shared state: one pack, one simulated supply and
+//! one simulated load wired to it, measurement error, injected faults and
+//! the ground-truth counters. Time advances lazily to the clock's present
+//! whenever an instrument is spoken to.
+
+use super::battery::{LoadMode, PackCondition, PackModel};
+use super::config::{Faults, MeterConfig, SimConfig};
+use crate::clock::Clock;
+use crate::pack::PackSpec;
+use crate::truth::TruthCounters;
+use rand::rngs::SmallRng;
+use rand::{Rng, SeedableRng};
+use rand_distr::StandardNormal;
+use std::sync::Arc;
+
+/// Largest integration step of the model, seconds.
+pub const MAX_DT: f64 = 1.0;
+
+/// Measurement error of one measured quantity.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Meter {
+    pub gain: f64,
+    pub offset: f64,
+    pub noise_sd: f64,
+    pub resolution: f64,
+}
+
+impl Meter {
+    pub const IDEAL: Meter = Meter {
+        gain: 1.0,
+        offset: 0.0,
+        noise_sd: 0.0,
+        resolution: 0.0,
+    };
+
+    fn apply(&self, x: f64, rng: &mut SmallRng) -> f64 {
+        let noise = if self.noise_sd > 0.0 {
+            let z: f64 = rng.sample(StandardNormal);
+            z * self.noise_sd
+        } else {
+            0.0
+        };
+        let y = x * self.gain + self.offset + noise;
+        if self.resolution > 0.0 {
+            (y / self.resolution).round() * self.resolution
+        } else {
+            y
+        }
+    }
+}
+
+#[derive(Debug, Clone)]
+pub struct SupplyState {
+    pub output_on: bool,
+    pub voltage_set: f64,
+    pub current_set: f64,
+    pub voltage_max: f64,
+    pub current_max: f64,
+    pub volts: Meter,
+    pub amps: Meter,
+}
+
+#[derive(Debug, Clone)]
+pub struct LoadState {
+    pub input_on: bool,
+    pub mode: LoadMode,
+    pub current_set: f64,
+    pub power_set: f64,
+    pub resistance_set: f64,
+    pub voltage_max: f64,
+    pub current_max: f64,
+    pub power_max: f64,
+    pub resistance_max: f64,
+    pub volts: Meter,
+    pub amps: Meter,
+}
+
+/// Everything on the simulated bench.
+pub struct SimBench {
+    clock: Arc<dyn Clock>,
+    pub pack: PackModel,
+    pub supply: SupplyState,
+    pub load: LoadState,
+    pub thermometer: Meter,
+    pub faults: Faults,
+    last_t: f64,
+    truth: TruthCounters,
+    rng: SmallRng,
+}
+
+fn meter(cfg: &MeterConfig, ideal: bool) -> Meter {
+    if ideal {
+        Meter::IDEAL
+    } else {
+        Meter {
+            gain: 1.0 + cfg.gain_error_pct / 100.0,
+            offset: cfg.offset,
+            noise_sd: cfg.noise,
+            resolution: cfg.resolution,
+        }
+    }
+}
+
+impl SimBench {
+    pub fn new(spec: &PackSpec, cfg: &SimConfig, clock: Arc<dyn Clock>) -> SimBench {
+        let cond = PackCondition {
+            capacity_factor: cfg.pack.capacity_factor,
+            resistance_factor: cfg.pack.resistance_factor,
+            initial_soc: cfg.pack.initial_soc,
+            ambient_c: cfg.pack.ambient_c,
+        };
+        let last_t = clock.now();
+        SimBench {
+            clock,
+            pack: PackModel::new(spec, cond),
+            supply: SupplyState {
+                output_on: false,
+                voltage_set: 0.0,
+                current_set: 0.0,
+                voltage_max: 150.0,
+                current_max: 60.0,
+                volts: meter(&cfg.source.voltage, cfg.ideal),
+                amps: meter(&cfg.source.current, cfg.ideal),
+            },
+            load: LoadState {
+                input_on: false,
+                mode: LoadMode::Current,
+                current_set: 0.0,
+                power_set: 0.0,
+                resistance_set: 10_000.0,
+                voltage_max: 150.0,
+                current_max: 60.0,
+                power_max: 1500.0,
+                resistance_max: 10_000.0,
+                volts: meter(&cfg.load.voltage, cfg.ideal),
+                amps: meter(&cfg.load.current, cfg.ideal),
+            },
+            thermometer: meter(&cfg.temperature, cfg.ideal),
+            faults: cfg.faults.clone(),
+            last_t,
+            truth: TruthCounters::default(),
+            rng: SmallRng::seed_from_u64(cfg.seed),
+        }
+    }
+
+    pub fn now(&self) -> f64 {
+        self.clock.now()
+    }
+
+    /// Current the supply drives (≥ 0).
+    fn supply_current(&self) -> f64 {
+        if !self.supply.output_on {
+            return 0.0;
+        }
+        let v = self.supply.voltage_set * (1.0 + self.faults.source_voltage_error_pct / 100.0);
+        self.pack.supply_current(v, self.supply.current_set)
+    }
+
+    /// Current the load sinks, as a pack current (≤ 0).
+    fn load_current(&self) -> f64 {
+        if !self.load.input_on {
+            return 0.0;
+        }
+        let value = match self.load.mode {
+            LoadMode::Current => self.load.current_set,
+            LoadMode::Power => self.load.power_set,
+            LoadMode::Resistance => self.load.resistance_set,
+        };
+        self.pack.load_current(self.load.mode, value)
+    }
+
+    /// Pack current now (positive into the pack).
+    pub fn pack_current(&self) -> f64 {
+        self.supply_current() + self.load_current()
+    }
+
+    /// Integrate the model up to the clock's present.
+    pub fn advance(&mut self) {
+        let t = self.clock.now();
+        while self.last_t < t {
+            let dt = (t - self.last_t).min(MAX_DT);
+            if let Some(after) = self.faults.heat_after_s {
+                if self.last_t >= after {
+                    self.pack.fault_heat_w = self.faults.heat_w;
+                }
+            }
+            let i = self.pack_current();
+            let (ah, wh) = self.pack.step(dt, i);
+            self.truth.charge_ah += ah;
+            self.truth.energy_wh += wh;
+            self.last_t += dt;
+        }
+    }
+
+    pub fn truth(&self) -> TruthCounters {
+        self.truth
+    }
+
+    pub fn terminal_voltage(&self) -> f64 {
+        self.pack.terminal_voltage(self.pack_current())
+    }
+
+    pub fn measure_supply(&mut self) -> (f64, f64) {
+        let v = self.terminal_voltage();
+        let i = self.supply_current();
+        (
+            self.supply.volts.apply(v, &mut self.rng),
+            self.supply.amps.apply(i, &mut self.rng),
+        )
+    }
+
+    pub fn measure_load(&mut self) -> (f64, f64) {
+        let v = self.terminal_voltage();
+        let i = -self.load_current();
+        (
+            self.load.volts.apply(v, &mut self.rng),
+            self.load.amps.apply(i, &mut self.rng),
+        )
+    }
+
+    pub fn measure_temperature(&mut self) -> f64 {
+        let t = self.pack.temperature_c;
+        self.thermometer.apply(t, &mut self.rng)
+    }
+}

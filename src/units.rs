@@ -1,0 +1,511 @@
+//! Quantities as people write them on a bench: `4.2V`, `4.2V/cell`, `0.5C`,
+//! `500mA`, `1h30m`, `2800mAh`, `50degC`, `25W`, `2ohm`, `80%`, `1mV/min`.
+//!
+//! Parsing is split in two: [`parse`] turns text into a [`Quantity`] of some
+//! kind, and the typed helpers ([`Quantity::voltage`], …) check the kind a
+//! field expects. Values that depend on the pack (per cell, C-rate, percent
+//! of rated capacity) stay symbolic here and are resolved by the procedure
+//! planner against a pack spec. No I/O.
+
+use serde::{Deserialize, Serialize};
+use std::fmt;
+
+/// What went wrong with a quantity. The message says what was expected.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum UnitError {
+    #[error("empty value; expected a number with a unit, e.g. {expected}")]
+    Empty { expected: &'static str },
+    #[error("'{text}' does not start with a number; expected e.g. {expected}")]
+    NoNumber { text: String, expected: &'static str },
+    #[error("unknown unit '{unit}' in '{text}'; known units: {known}")]
+    UnknownUnit {
+        text: String,
+        unit: String,
+        known: &'static str,
+    },
+    #[error("'{text}' is {found}, but {expected} was expected")]
+    WrongKind {
+        text: String,
+        found: &'static str,
+        expected: &'static str,
+    },
+    #[error("'{text}' is not a finite number")]
+    NotFinite { text: String },
+}
+
+const KNOWN: &str = "V mV kV V/cell mV/cell A mA C s ms min h (and 1h30m) Ah mAh Wh kWh mWh \
+W mW kW W/cell degC ohm mohm kohm % V/s mV/s mV/min mV/h mV/min/cell";
+
+/// A parsed quantity. Pack-relative kinds keep their symbolic form.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "kind", content = "value", rename_all = "snake_case")]
+pub enum Quantity {
+    /// Volts for the whole pack.
+    Volts(f64),
+    /// Volts per series cell.
+    VoltsPerCell(f64),
+    /// Amperes.
+    Amps(f64),
+    /// Multiple of the rated capacity per hour (C-rate).
+    CRate(f64),
+    /// Seconds.
+    Seconds(f64),
+    /// Ampere-hours.
+    AmpHours(f64),
+    /// Watt-hours.
+    WattHours(f64),
+    /// Watts for the whole pack.
+    Watts(f64),
+    /// Watts per series cell.
+    WattsPerCell(f64),
+    /// Degrees Celsius.
+    Celsius(f64),
+    /// Ohms.
+    Ohms(f64),
+    /// Percent (of rated capacity where a charge is meant).
+    Percent(f64),
+    /// Volts per second for the whole pack.
+    VoltsPerSecond(f64),
+    /// Volts per second per series cell.
+    VoltsPerSecondPerCell(f64),
+}
+
+impl Quantity {
+    /// A short description of the kind, for error messages.
+    pub fn kind_name(&self) -> &'static str {
+        match self {
+            Quantity::Volts(_) | Quantity::VoltsPerCell(_) => "a voltage",
+            Quantity::Amps(_) | Quantity::CRate(_) => "a current",
+            Quantity::Seconds(_) => "a duration",
+            Quantity::AmpHours(_) => "a charge",
+            Quantity::WattHours(_) => "an energy",
+            Quantity::Watts(_) | Quantity::WattsPerCell(_) => "a power",
+            Quantity::Celsius(_) => "a temperature",
+            Quantity::Ohms(_) => "a resistance",
+            Quantity::Percent(_) => "a percentage",
+            Quantity::VoltsPerSecond(_) | Quantity::VoltsPerSecondPerCell(_) => {
+                "a voltage rate"
+            }
+        }
+    }
+
+    /// The bare number, whatever the kind.
+    pub fn number(&self) -> f64 {
+        match *self {
+            Quantity::Volts(x)
+            | Quantity::VoltsPerCell(x)
+            | Quantity::Amps(x)
+            | Quantity::CRate(x)
+            | Quantity::Seconds(x)
+            | Quantity::AmpHours(x)
+            | Quantity::WattHours(x)
+            | Quantity::Watts(x)
+            | Quantity::WattsPerCell(x)
+            | Quantity::Celsius(x)
+            | Quantity::Ohms(x)
+            | Quantity::Percent(x)
+            | Quantity::VoltsPerSecond(x)
+            | Quantity::VoltsPerSecondPerCell(x) => x,
+        }
+    }
+}
+
+/// A voltage, absolute or per cell.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub enum VoltageSpec {
+    Pack(f64),
+    PerCell(f64),
+}
+
+impl VoltageSpec {
+    pub fn resolve(&self, series: u32) -> f64 {
+        match *self {
+            VoltageSpec::Pack(v) => v,
+            VoltageSpec::PerCell(v) => v * f64::from(series),
+        }
+    }
+}
+
+/// A current, absolute or as a C-rate.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub enum CurrentSpec {
+    Amps(f64),
+    CRate(f64),
+}
+
+impl CurrentSpec {
+    pub fn resolve(&self, rated_ah: f64) -> f64 {
+        match *self {
+            CurrentSpec::Amps(a) => a,
+            CurrentSpec::CRate(c) => c * rated_ah,
+        }
+    }
+}
+
+/// A charge, absolute or as a percentage of the rated capacity.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub enum ChargeSpec {
+    AmpHours(f64),
+    PercentOfRated(f64),
+}
+
+impl ChargeSpec {
+    pub fn resolve(&self, rated_ah: f64) -> f64 {
+        match *self {
+            ChargeSpec::AmpHours(a) => a,
+            ChargeSpec::PercentOfRated(p) => p / 100.0 * rated_ah,
+        }
+    }
+}
+
+/// A power, absolute or per cell.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub enum PowerSpec {
+    Pack(f64),
+    PerCell(f64),
+}
+
+impl PowerSpec {
+    pub fn resolve(&self, series: u32) -> f64 {
+        match *self {
+            PowerSpec::Pack(w) => w,
+            PowerSpec::PerCell(w) => w * f64::from(series),
+        }
+    }
+}
+
+/// A voltage rate (for settling), absolute or per cell, in V/s.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub enum RateSpec {
+    Pack(f64),
+    PerCell(f64),
+}
+
+impl RateSpec {
+    pub fn resolve(&self, series: u32) -> f64 {
+        match *self {
+            RateSpec::Pack(v) => v,
+            RateSpec::PerCell(v) => v * f64::from(series),
+        }
+    }
+}
+
+/// Split `"4.2V/cell"` into `(4.2, "V/cell")`.
+fn split_number(text: &str) -> Option<(f64, &str)> {
+    let bytes = text.as_bytes();
+    let mut end = 0;
+    let mut seen_digit = false;
+    let mut seen_e = false;
+    while end < bytes.len() {
+        let c = bytes[end];
+        let ok = match c {
+            b'0'..=b'9' => {
+                seen_digit = true;
+                true
+            }
+            b'+' | b'-' => end == 0 || matches!(bytes[end - 1], b'e' | b'E') && seen_e,
+            b'.' => true,
+            // An exponent only when followed by a digit or sign (so "1e3" parses
+            // but the unit letters never get swallowed).
+            b'e' | b'E' if seen_digit && !seen_e => {
+                let next = bytes.get(end + 1).copied();
+                let next_ok = matches!(next, Some(b'0'..=b'9'))
+                    || (matches!(next, Some(b'+' | b'-'))
+                        && matches!(bytes.get(end + 2), Some(b'0'..=b'9')));
+                if next_ok {
+                    seen_e = true;
+                }
+                next_ok
+            }
+            _ => false,
+        };
+        if !ok {
+            break;
+        }
+        end += 1;
+    }
+    if !seen_digit {
+        return None;
+    }
+    let value: f64 = text[..end].parse().ok()?;
+    Some((value, text[end..].trim_start()))
+}
+
+fn unit_value(x: f64, unit: &str) -> Option<Quantity> {
+    use Quantity::*;
+    // Units are case-sensitive where case carries meaning (mV vs MV is not a
+    // bench unit; m = milli). `degC`, `ohm` accept a few common spellings.
+    Some(match unit {
+        "V" => Volts(x),
+        "mV" => Volts(x / 1000.0),
+        "kV" => Volts(x * 1000.0),
+        "V/cell" => VoltsPerCell(x),
+        "mV/cell" => VoltsPerCell(x / 1000.0),
+        "A" => Amps(x),
+        "mA" => Amps(x / 1000.0),
+        "C" => CRate(x),
+        "s" | "sec" => Seconds(x),
+        "ms" => Seconds(x / 1000.0),
+        "min" | "m" => Seconds(x * 60.0),
+        "h" | "hr" => Seconds(x * 3600.0),
+        "d" | "day" | "days" => Seconds(x * 86400.0),
+        "Ah" => AmpHours(x),
+        "mAh" => AmpHours(x / 1000.0),
+        "Wh" => WattHours(x),
+        "mWh" => WattHours(x / 1000.0),
+        "kWh" => WattHours(x * 1000.0),
+        "W" => Watts(x),
+        "mW" => Watts(x / 1000.0),
+        "kW" => Watts(x * 1000.0),
+        "W/cell" => WattsPerCell(x),
+        "degC" | "°C" | "C°" => Celsius(x),
+        "ohm" | "Ohm" | "Ω" => Ohms(x),
+        "mohm" | "mOhm" | "mΩ" => Ohms(x / 1000.0),
+        "kohm" | "kOhm" | "kΩ" => Ohms(x * 1000.0),
+        "%" => Percent(x),
+        "V/s" => VoltsPerSecond(x),
+        "mV/s" => VoltsPerSecond(x / 1000.0),
+        "mV/min" => VoltsPerSecond(x / 1000.0 / 60.0),
+        "mV/h" => VoltsPerSecond(x / 1000.0 / 3600.0),
+        "mV/s/cell" => VoltsPerSecondPerCell(x / 1000.0),
+        "mV/min/cell" => VoltsPerSecondPerCell(x / 1000.0 / 60.0),
+        "mV/h/cell" => VoltsPerSecondPerCell(x / 1000.0 / 3600.0),
+        _ => return None,
+    })
+}
+
+/// Parse a compound duration such as `1h30m`, `2h 15min 10s`.
+fn parse_compound_duration(text: &str) -> Option<f64> {
+    let mut rest = text.trim();
+    let mut total = 0.0;
+    let mut parts = 0;
+    while !rest.is_empty() {
+        let (x, after) = split_number(rest)?;
+        let unit_end = after
+            .find(|c: char| !c.is_ascii_alphabetic())
+            .unwrap_or(after.len());
+        let unit = &after[..unit_end];
+        match unit_value(x, unit)? {
+            Quantity::Seconds(s) => total += s,
+            _ => return None,
+        }
+        parts += 1;
+        rest = after[unit_end..].trim_start();
+    }
+    (parts >= 2).then_some(total)
+}
+
+/// Parse any quantity. `expected` is a hint for error messages.
+pub fn parse_with_hint(text: &str, expected: &'static str) -> Result<Quantity, UnitError> {
+    let t = text.trim();
+    if t.is_empty() {
+        return Err(UnitError::Empty { expected });
+    }
+    let Some((x, unit)) = split_number(t) else {
+        return Err(UnitError::NoNumber {
+            text: t.to_string(),
+            expected,
+        });
+    };
+    if !x.is_finite() {
+        return Err(UnitError::NotFinite { text: t.to_string() });
+    }
+    if let Some(q) = unit_value(x, unit) {
+        return Ok(q);
+    }
+    if let Some(s) = parse_compound_duration(t) {
+        return Ok(Quantity::Seconds(s));
+    }
+    Err(UnitError::UnknownUnit {
+        text: t.to_string(),
+        unit: unit.to_string(),
+        known: KNOWN,
+    })
+}
+
+/// Parse any quantity.
+pub fn parse(text: &str) -> Result<Quantity, UnitError> {
+    parse_with_hint(text, "4.2V, 0.5C, 30min")
+}
+
+fn wrong(text: &str, q: &Quantity, expected: &'static str) -> UnitError {
+    UnitError::WrongKind {
+        text: text.trim().to_string(),
+        found: q.kind_name(),
+        expected,
+    }
+}
+
+/// Typed parsers used by the procedure and pack parsers.
+pub fn voltage(text: &str) -> Result<VoltageSpec, UnitError> {
+    const E: &str = "a voltage (V, mV or V/cell)";
+    match parse_with_hint(text, "4.2V/cell or 42V")? {
+        Quantity::Volts(v) => Ok(VoltageSpec::Pack(v)),
+        Quantity::VoltsPerCell(v) => Ok(VoltageSpec::PerCell(v)),
+        q => Err(wrong(text, &q, E)),
+    }
+}
+
+pub fn current(text: &str) -> Result<CurrentSpec, UnitError> {
+    const E: &str = "a current (A, mA or a C-rate such as 0.5C)";
+    match parse_with_hint(text, "0.5C or 2A")? {
+        Quantity::Amps(a) => Ok(CurrentSpec::Amps(a)),
+        Quantity::CRate(c) => Ok(CurrentSpec::CRate(c)),
+        q => Err(wrong(text, &q, E)),
+    }
+}
+
+pub fn duration(text: &str) -> Result<f64, UnitError> {
+    const E: &str = "a duration (s, min, h, or 1h30m)";
+    match parse_with_hint(text, "30min or 1h30m")? {
+        Quantity::Seconds(s) => Ok(s),
+        q => Err(wrong(text, &q, E)),
+    }
+}
+
+pub fn charge(text: &str) -> Result<ChargeSpec, UnitError> {
+    const E: &str = "a charge (Ah, mAh, or % of rated capacity)";
+    match parse_with_hint(text, "14Ah or 110%")? {
+        Quantity::AmpHours(a) => Ok(ChargeSpec::AmpHours(a)),
+        Quantity::Percent(p) => Ok(ChargeSpec::PercentOfRated(p)),
+        q => Err(wrong(text, &q, E)),
+    }
+}
+
+pub fn capacity_ah(text: &str) -> Result<f64, UnitError> {
+    const E: &str = "a capacity (Ah or mAh)";
+    match parse_with_hint(text, "14Ah or 2800mAh")? {
+        Quantity::AmpHours(a) => Ok(a),
+        q => Err(wrong(text, &q, E)),
+    }
+}
+
+pub fn energy_wh(text: &str) -> Result<f64, UnitError> {
+    const E: &str = "an energy (Wh, kWh or mWh)";
+    match parse_with_hint(text, "500Wh")? {
+        Quantity::WattHours(w) => Ok(w),
+        q => Err(wrong(text, &q, E)),
+    }
+}
+
+pub fn power(text: &str) -> Result<PowerSpec, UnitError> {
+    const E: &str = "a power (W, mW, kW or W/cell)";
+    match parse_with_hint(text, "25W")? {
+        Quantity::Watts(w) => Ok(PowerSpec::Pack(w)),
+        Quantity::WattsPerCell(w) => Ok(PowerSpec::PerCell(w)),
+        q => Err(wrong(text, &q, E)),
+    }
+}
+
+pub fn temperature_c(text: &str) -> Result<f64, UnitError> {
+    const E: &str = "a temperature (degC)";
+    match parse_with_hint(text, "50degC")? {
+        Quantity::Celsius(c) => Ok(c),
+        q => Err(wrong(text, &q, E)),
+    }
+}
+
+pub fn resistance_ohm(text: &str) -> Result<f64, UnitError> {
+    const E: &str = "a resistance (ohm, mohm or kohm)";
+    match parse_with_hint(text, "2ohm")? {
+        Quantity::Ohms(r) => Ok(r),
+        q => Err(wrong(text, &q, E)),
+    }
+}
+
+pub fn voltage_rate(text: &str) -> Result<RateSpec, UnitError> {
+    const E: &str = "a voltage rate (V/s, mV/s, mV/min, mV/h, optionally /cell)";
+    match parse_with_hint(text, "1mV/min")? {
+        Quantity::VoltsPerSecond(r) => Ok(RateSpec::Pack(r)),
+        Quantity::VoltsPerSecondPerCell(r) => Ok(RateSpec::PerCell(r)),
+        q => Err(wrong(text, &q, E)),
+    }
+}
+
+/// Print a duration as `2h05m30s`, `12min`, `45s`.
+pub struct HumanDuration(pub f64);
+
+impl fmt::Display for HumanDuration {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        let total = self.0.max(0.0).round() as u64;
+        let (h, m, s) = (total / 3600, (total % 3600) / 60, total % 60);
+        if h > 0 {
+            write!(f, "{h}h{m:02}m{s:02}s")
+        } else if m > 0 {
+            write!(f, "{m}min{s:02}s")
+        } else {
+            write!(f, "{s}s")
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn close(a: f64, b: f64) -> bool {
+        (a - b).abs() < 1e-9 * (1.0 + b.abs())
+    }
+
+    #[test]
+    fn bench_spellings_parse_to_si() {
+        assert_eq!(parse("4.2V").unwrap(), Quantity::Volts(4.2));
+        assert_eq!(parse("4.2V/cell").unwrap(), Quantity::VoltsPerCell(4.2));
+        assert_eq!(parse("0.5C").unwrap(), Quantity::CRate(0.5));
+        assert_eq!(parse("2A").unwrap(), Quantity::Amps(2.0));
+        assert!(close(parse("500mA").unwrap().number(), 0.5));
+        assert_eq!(parse("30min").unwrap(), Quantity::Seconds(1800.0));
+        assert_eq!(parse("1h30m").unwrap(), Quantity::Seconds(5400.0));
+        assert_eq!(parse("2h 15min 10s").unwrap(), Quantity::Seconds(8110.0));
+        assert_eq!(parse("14Ah").unwrap(), Quantity::AmpHours(14.0));
+        assert!(close(parse("2800mAh").unwrap().number(), 2.8));
+        assert_eq!(parse("50degC").unwrap(), Quantity::Celsius(50.0));
+        assert_eq!(parse("-10degC").unwrap(), Quantity::Celsius(-10.0));
+        assert_eq!(parse("25W").unwrap(), Quantity::Watts(25.0));
+        assert_eq!(parse("2ohm").unwrap(), Quantity::Ohms(2.0));
+        assert!(close(parse("40mohm").unwrap().number(), 0.04));
+        assert_eq!(parse("110%").unwrap(), Quantity::Percent(110.0));
+        assert!(close(parse("1mV/min").unwrap().number(), 1e-3 / 60.0));
+        assert_eq!(parse("1e-3A").unwrap(), Quantity::Amps(1e-3));
+        assert_eq!(parse(" 3.0 V ").unwrap(), Quantity::Volts(3.0));
+    }
+
+    #[test]
+    fn unknown_unit_is_named() {
+        let e = parse("4.2Vx").unwrap_err();
+        match e {
+            UnitError::UnknownUnit { unit, .. } => assert_eq!(unit, "Vx"),
+            other => panic!("unexpected {other:?}"),
+        }
+        assert!(matches!(parse("volts"), Err(UnitError::NoNumber { .. })));
+        assert!(matches!(parse(""), Err(UnitError::Empty { .. })));
+    }
+
+    #[test]
+    fn wrong_kind_says_what_was_expected() {
+        let e = voltage("2A").unwrap_err();
+        let msg = e.to_string();
+        assert!(msg.contains("a current"), "{msg}");
+        assert!(msg.contains("a voltage"), "{msg}");
+        assert!(current("4.2V").is_err());
+        assert!(duration("14Ah").is_err());
+        assert!(capacity_ah("14Wh").is_err());
+    }
+
+    #[test]
+    fn pack_relative_values_resolve() {
+        // Common practice: per-cell voltages scale with the series count,
+        // C-rates with the rated capacity.
+        assert!(close(voltage("4.2V/cell").unwrap().resolve(10), 42.0));
+        assert!(close(current("0.2C").unwrap().resolve(14.0), 2.8));
+        assert!(close(charge("130%").unwrap().resolve(10.0), 13.0));
+        assert!(close(power("2W/cell").unwrap().resolve(6), 12.0));
+    }
+
+    #[test]
+    fn human_durations() {
+        assert_eq!(HumanDuration(5400.0).to_string(), "1h30m00s");
+        assert_eq!(HumanDuration(61.0).to_string(), "1min01s");
+        assert_eq!(HumanDuration(9.4).to_string(), "9s");
+    }
+}
