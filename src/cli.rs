@@ -21,7 +21,11 @@ pub const EXIT_FAILURE: i32 = 1;
 pub const EXIT_BAD_INPUT: i32 = 2;
 
 #[derive(Debug, Parser)]
-#[command(name = "packbench", version, about = "Battery capacity test bench controller")]
+#[command(
+    name = "packbench",
+    version,
+    about = "Battery capacity test bench controller"
+)]
 pub struct Cli {
     #[command(subcommand)]
     pub command: Command,
@@ -108,7 +112,9 @@ fn pack_from_args(a: &PackArgs) -> Result<Option<PackSpec>, RunError> {
     }
     if a.chemistry.is_none() && a.series.is_none() && a.rated.is_none() {
         if a.rated_energy.is_some() || a.rated_rate.is_some() {
-            return Err(RunError::Pack("--rated-energy and --rated-rate need --chemistry, --series and --rated".into()));
+            return Err(RunError::Pack(
+                "--rated-energy and --rated-rate need --chemistry, --series and --rated".into(),
+            ));
         }
         return Ok(None);
     }
@@ -122,10 +128,19 @@ fn pack_from_args(a: &PackArgs) -> Result<Option<PackSpec>, RunError> {
     .map(|(n, _)| *n)
     .collect();
     if !missing.is_empty() {
-        return Err(RunError::Pack(format!("a pack spec needs {}", missing.join(", "))));
+        return Err(RunError::Pack(format!(
+            "a pack spec needs {}",
+            missing.join(", ")
+        )));
     }
-    let chemistry: Chemistry = a.chemistry.as_deref().unwrap_or_default().parse().map_err(RunError::Pack)?;
-    let rated = units::capacity_ah(a.rated.as_deref().unwrap_or_default()).map_err(|e| RunError::Pack(format!("--rated: {e}")))?;
+    let chemistry: Chemistry = a
+        .chemistry
+        .as_deref()
+        .unwrap_or_default()
+        .parse()
+        .map_err(RunError::Pack)?;
+    let rated = units::capacity_ah(a.rated.as_deref().unwrap_or_default())
+        .map_err(|e| RunError::Pack(format!("--rated: {e}")))?;
     let energy = a
         .rated_energy
         .as_deref()
@@ -155,7 +170,9 @@ fn parse_speed(s: &str) -> Result<Speed, RunError> {
     }
     match s.parse::<f64>() {
         Ok(f) if f.is_finite() && f > 0.0 && f <= 1e6 => Ok(Speed::Factor(f)),
-        _ => Err(RunError::Pack(format!("--speed '{s}': expected max or a number of bench seconds per second (1 = real time)"))),
+        _ => Err(RunError::Pack(format!(
+            "--speed '{s}': expected max or a number of bench seconds per second (1 = real time)"
+        ))),
     }
 }
 
@@ -179,13 +196,18 @@ pub fn cmd_run(a: RunArgs) -> i32 {
             pack_id: a.pack.clone(),
             pack: match given {
                 Some(p) => PackSource::Given(p),
-                None => PackSource::Saved { allow_sim_default: true },
+                None => PackSource::Saved {
+                    allow_sim_default: true,
+                },
             },
             results: a.results.clone(),
         };
         let mut cfg = match &a.sim_config {
             Some(path) => {
-                let text = std::fs::read_to_string(path).map_err(|source| RunError::Io { path: path.clone(), source })?;
+                let text = std::fs::read_to_string(path).map_err(|source| RunError::Io {
+                    path: path.clone(),
+                    source,
+                })?;
                 SimConfig::from_toml(path, &text)?
             }
             None => SimConfig::default(),
@@ -204,7 +226,10 @@ pub fn cmd_run(a: RunArgs) -> i32 {
             eprintln!("note: {n}");
         }
     }
-    let rt = match tokio::runtime::Builder::new_current_thread().enable_all().build() {
+    let rt = match tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+    {
         Ok(rt) => rt,
         Err(e) => {
             eprintln!("error: cannot start the runtime: {e}");
@@ -229,7 +254,11 @@ pub fn cmd_run(a: RunArgs) -> i32 {
                     "{} {} {}",
                     r.summary.status,
                     r.run_dir.display(),
-                    r.summary.capacity.as_ref().map(|c| format!("{:.3}Ah", c.measured_ah)).unwrap_or_default()
+                    r.summary
+                        .capacity
+                        .as_ref()
+                        .map(|c| format!("{:.3}Ah", c.measured_ah))
+                        .unwrap_or_default()
                 );
             } else {
                 print!("{}", report::text::summary(&r.summary));
@@ -248,7 +277,9 @@ pub fn cmd_check(a: CheckArgs) -> anyhow::Result<i32> {
         (Some(id), g) => {
             let src = match g {
                 Some(p) => PackSource::Given(p),
-                None => PackSource::Saved { allow_sim_default: true },
+                None => PackSource::Saved {
+                    allow_sim_default: true,
+                },
             };
             let (p, _, note) = run::resolve_pack(id, &src, &a.results)?;
             (p, note)
@@ -265,11 +296,19 @@ pub fn cmd_check(a: CheckArgs) -> anyhow::Result<i32> {
     let loaded = procedure::load(&a.procedure, &pack).map_err(RunError::from)?;
     run::check_ranges(
         &loaded,
-        &crate::instrument::profile::Profile::builtin(crate::instrument::profile::ProfileRole::Source),
-        &crate::instrument::profile::Profile::builtin(crate::instrument::profile::ProfileRole::Load),
+        &crate::instrument::profile::Profile::builtin(
+            crate::instrument::profile::ProfileRole::Source,
+        ),
+        &crate::instrument::profile::Profile::builtin(
+            crate::instrument::profile::ProfileRole::Load,
+        ),
     )?;
     print!("{}", loaded.plan);
-    println!("OK: {} steps, sha256 {}", loaded.plan.steps.len(), &loaded.sha256[..16]);
+    println!(
+        "OK: {} steps, sha256 {}",
+        loaded.plan.steps.len(),
+        &loaded.sha256[..16]
+    );
     Ok(EXIT_OK)
 }
 
@@ -279,7 +318,11 @@ pub fn main() -> i32 {
         Ok(c) => c,
         Err(e) => {
             let _ = e.print();
-            return if e.use_stderr() { EXIT_BAD_INPUT } else { EXIT_OK };
+            return if e.use_stderr() {
+                EXIT_BAD_INPUT
+            } else {
+                EXIT_OK
+            };
         }
     };
     match cli.command {

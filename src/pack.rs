@@ -77,9 +77,7 @@ impl FromStr for Chemistry {
         match s.trim().to_ascii_lowercase().as_str() {
             "li-ion" | "liion" | "nmc" | "lithium-ion" => Ok(Chemistry::LiIon),
             "lfp" | "lifepo4" => Ok(Chemistry::Lfp),
-            "lead-acid" | "leadacid" | "pb" | "agm" | "vrla" | "flooded" => {
-                Ok(Chemistry::LeadAcid)
-            }
+            "lead-acid" | "leadacid" | "pb" | "agm" | "vrla" | "flooded" => Ok(Chemistry::LeadAcid),
             "nimh" => Ok(Chemistry::Nimh),
             other => Err(format!(
                 "unknown chemistry '{other}'; expected one of li-ion, lfp, lead-acid, nimh"
@@ -103,9 +101,7 @@ impl PackSpec {
     /// Rated energy: the given one, or rated Ah × nominal voltage.
     pub fn rated_energy_or_nominal(&self) -> f64 {
         self.rated_energy_wh.unwrap_or(
-            self.rated_capacity_ah
-                * self.chemistry.nominal_cell_voltage()
-                * f64::from(self.series),
+            self.rated_capacity_ah * self.chemistry.nominal_cell_voltage() * f64::from(self.series),
         )
     }
 
@@ -133,7 +129,9 @@ impl PackSpec {
         }
         if let Some(c) = self.rated_rate_c {
             if !(c.is_finite() && c > 0.0 && c <= 100.0) {
-                return Err(format!("rated rate must be above 0C and at most 100C, got {c}C"));
+                return Err(format!(
+                    "rated rate must be above 0C and at most 100C, got {c}C"
+                ));
             }
         }
         Ok(())
@@ -144,7 +142,10 @@ impl PackSpec {
         let mut s = String::from("# Pack spec, written by packbench on the pack's first test.\n");
         s.push_str(&format!("chemistry = \"{}\"\n", self.chemistry));
         s.push_str(&format!("series = {}\n", self.series));
-        s.push_str(&format!("rated_capacity = \"{}Ah\"\n", self.rated_capacity_ah));
+        s.push_str(&format!(
+            "rated_capacity = \"{}Ah\"\n",
+            self.rated_capacity_ah
+        ));
         if let Some(e) = self.rated_energy_wh {
             s.push_str(&format!("rated_energy = \"{e}Wh\"\n"));
         }
@@ -165,8 +166,8 @@ impl PackSpec {
             rated_energy: Option<Spanned<String>>,
             rated_rate: Option<Spanned<String>>,
         }
-        let raw: Raw = toml::from_str(text)
-            .map_err(|e| InputErrors(vec![toml_error(file, text, &e)]))?;
+        let raw: Raw =
+            toml::from_str(text).map_err(|e| InputErrors(vec![toml_error(file, text, &e)]))?;
         let mut errors = Vec::new();
         let at = |s: &std::ops::Range<usize>, message: String| LocatedError {
             location: Location::of_span(file, text, s),
@@ -183,7 +184,10 @@ impl PackSpec {
             _ => {
                 errors.push(at(
                     &raw.series.span(),
-                    format!("series must be a whole number of cells >= 1, got {}", raw.series.get_ref()),
+                    format!(
+                        "series must be a whole number of cells >= 1, got {}",
+                        raw.series.get_ref()
+                    ),
                 ));
                 None
             }

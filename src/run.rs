@@ -46,7 +46,10 @@ pub enum RunError {
 impl RunError {
     /// Bad input (exit code 2) as opposed to a failure while running.
     pub fn is_input(&self) -> bool {
-        matches!(self, RunError::Input(_) | RunError::PackId(_) | RunError::Pack(_))
+        matches!(
+            self,
+            RunError::Input(_) | RunError::PackId(_) | RunError::Pack(_)
+        )
     }
 }
 
@@ -109,7 +112,11 @@ pub fn read_pack_file(path: &Path) -> Result<PackSpec, RunError> {
 
 /// Decide the pack spec: the one given, or the one saved on the pack's
 /// first test. A given spec that differs from the saved one is refused.
-pub fn resolve_pack(pack_id: &str, source: &PackSource, results: &Path) -> Result<(PackSpec, bool, Option<String>), RunError> {
+pub fn resolve_pack(
+    pack_id: &str,
+    source: &PackSource,
+    results: &Path,
+) -> Result<(PackSpec, bool, Option<String>), RunError> {
     check_pack_id(pack_id)?;
     let saved_path = results.join(pack_id).join(PACK_TOML);
     let saved = if saved_path.exists() {
@@ -155,36 +162,65 @@ pub fn check_ranges(p: &LoadedProcedure, source: &Profile, load: &Profile) -> Re
             column: 1,
         };
         let _ = text;
-        let mut out = |what: String| errors.push(LocatedError { location: at.clone(), message: what });
+        let mut out = |what: String| {
+            errors.push(LocatedError {
+                location: at.clone(),
+                message: what,
+            })
+        };
         let (sr, lr) = (source.ranges, load.ranges);
         let over = |v: f64, max: Option<f64>| max.is_some_and(|m| v > m);
         match &st.kind {
-            StepKind::Charge { current_a, voltage_v } => {
+            StepKind::Charge {
+                current_a,
+                voltage_v,
+            } => {
                 if over(*voltage_v, sr.voltage_max_v) {
-                    out(format!("charge voltage {voltage_v:.3} V is beyond the source's range ({} V)", sr.voltage_max_v.unwrap_or(0.0)));
+                    out(format!(
+                        "charge voltage {voltage_v:.3} V is beyond the source's range ({} V)",
+                        sr.voltage_max_v.unwrap_or(0.0)
+                    ));
                 }
                 if over(*current_a, sr.current_max_a) {
-                    out(format!("charge current {current_a:.3} A is beyond the source's range ({} A)", sr.current_max_a.unwrap_or(0.0)));
+                    out(format!(
+                        "charge current {current_a:.3} A is beyond the source's range ({} A)",
+                        sr.current_max_a.unwrap_or(0.0)
+                    ));
                 }
             }
             StepKind::Discharge { load: m } => match *m {
                 DischargeMode::Current { current_a } if over(current_a, lr.current_max_a) => {
-                    out(format!("discharge current {current_a:.3} A is beyond the load's range ({} A)", lr.current_max_a.unwrap_or(0.0)))
+                    out(format!(
+                        "discharge current {current_a:.3} A is beyond the load's range ({} A)",
+                        lr.current_max_a.unwrap_or(0.0)
+                    ))
                 }
-                DischargeMode::Power { power_w } if over(power_w, lr.power_max_w) => {
-                    out(format!("discharge power {power_w:.2} W is beyond the load's range ({} W)", lr.power_max_w.unwrap_or(0.0)))
-                }
-                DischargeMode::Resistance { resistance_ohm } if over(resistance_ohm, lr.resistance_max_ohm) => out(format!(
+                DischargeMode::Power { power_w } if over(power_w, lr.power_max_w) => out(format!(
+                    "discharge power {power_w:.2} W is beyond the load's range ({} W)",
+                    lr.power_max_w.unwrap_or(0.0)
+                )),
+                DischargeMode::Resistance { resistance_ohm }
+                    if over(resistance_ohm, lr.resistance_max_ohm) =>
+                {
+                    out(format!(
                     "discharge resistance {resistance_ohm} ohm is beyond the load's range ({} ohm)",
                     lr.resistance_max_ohm.unwrap_or(0.0)
-                )),
+                ))
+                }
                 _ => {}
             },
             StepKind::Pulse { levels } => {
                 for l in levels {
-                    let r = if l.current_a > 0.0 { sr.current_max_a } else { lr.current_max_a };
+                    let r = if l.current_a > 0.0 {
+                        sr.current_max_a
+                    } else {
+                        lr.current_max_a
+                    };
                     if over(l.current_a.abs(), r) {
-                        out(format!("pulse current {:.3} A is beyond the instrument's range", l.current_a));
+                        out(format!(
+                            "pulse current {:.3} A is beyond the instrument's range",
+                            l.current_a
+                        ));
                     }
                 }
             }
@@ -192,7 +228,10 @@ pub fn check_ranges(p: &LoadedProcedure, source: &Profile, load: &Profile) -> Re
         }
     }
     let vmax = p.plan.envelope.voltage_max_v;
-    for (name, r) in [("source", source.ranges.voltage_max_v), ("load", load.ranges.voltage_max_v)] {
+    for (name, r) in [
+        ("source", source.ranges.voltage_max_v),
+        ("load", load.ranges.voltage_max_v),
+    ] {
         if let Some(m) = r {
             if vmax > m {
                 errors.push(LocatedError {
@@ -319,49 +358,84 @@ fn procedure_stem(p: &Path) -> String {
         .and_then(|s| s.to_str())
         .map(|s| {
             s.chars()
-                .map(|c| if c.is_ascii_alphanumeric() || c == '-' || c == '_' { c } else { '_' })
+                .map(|c| {
+                    if c.is_ascii_alphanumeric() || c == '-' || c == '_' {
+                        c
+                    } else {
+                        '_'
+                    }
+                })
                 .collect()
         })
         .unwrap_or_else(|| "run".into())
 }
 
-/// Run a prepared test on the simulated bench.
-pub async fn execute_sim(p: &Prepared, cfg: &SimConfig, speed: Speed, stop: StopHandle) -> Result<RunReport, RunError> {
+/// Reply timeout on the in-memory link to the simulated bench, ms.
+pub const SIM_TIMEOUT_MS: u64 = 200;
+
+/// Run a prepared test on a new simulated bench.
+pub async fn execute_sim(
+    p: &Prepared,
+    cfg: &SimConfig,
+    speed: Speed,
+    stop: StopHandle,
+) -> Result<RunReport, RunError> {
     let clock: Arc<dyn Clock> = match speed {
         Speed::Max => SimClock::new(),
         Speed::Factor(f) => PacedClock::new(f),
     };
     let links = sim::build(&p.pack, cfg, Arc::clone(&clock));
-    let handle = links.handle.clone();
     let speed_text = match speed {
         Speed::Max => "max (simulation clock)".to_string(),
         Speed::Factor(f) => format!("{f}x real time"),
     };
+    execute_sim_links(p, cfg, clock, links, &speed_text, stop).await
+}
+
+/// Run a prepared test on a given simulated bench (tests keep its handle
+/// to look at the instruments afterwards).
+pub async fn execute_sim_links(
+    p: &Prepared,
+    cfg: &SimConfig,
+    clock: Arc<dyn Clock>,
+    links: sim::SimLinks,
+    speed_text: &str,
+    stop: StopHandle,
+) -> Result<RunReport, RunError> {
+    let handle = links.handle.clone();
     let truth: Arc<dyn GroundTruth> = Arc::new(handle.clone());
-    let mut report = execute(
+    // The in-memory link answers at once or never: a short timeout keeps
+    // fault tests quick without changing any behaviour.
+    let mut source_profile = Profile::builtin(ProfileRole::Source);
+    let mut load_profile = Profile::builtin(ProfileRole::Load);
+    source_profile.transport.timeout_ms = SIM_TIMEOUT_MS;
+    load_profile.transport.timeout_ms = SIM_TIMEOUT_MS;
+    execute(
         p,
         BenchLinks {
             source: links.source,
             load: links.load,
+            source_profile,
+            load_profile,
             source_link: "sim".into(),
             load_link: "sim".into(),
             kind: "simulated".into(),
-            speed: speed_text,
+            speed: speed_text.to_string(),
         },
         clock,
         Some(truth),
         stop,
         Some((cfg.clone(), handle.true_capacity_ah())),
     )
-    .await?;
-    report.run_dir = report.run_dir.clone();
-    Ok(report)
+    .await
 }
 
 /// The links of a station and how to describe them.
 pub struct BenchLinks {
     pub source: Link,
     pub load: Link,
+    pub source_profile: Profile,
+    pub load_profile: Profile,
     pub source_link: String,
     pub load_link: String,
     pub kind: String,
@@ -379,17 +453,25 @@ pub async fn execute(
     sim: Option<(SimConfig, f64)>,
 ) -> Result<RunReport, RunError> {
     let started = chrono::Utc::now();
-    let base_id = format!("{}-{}", started.format("%Y%m%dT%H%M%SZ"), procedure_stem(&p.procedure.path));
+    let base_id = format!(
+        "{}-{}",
+        started.format("%Y%m%dT%H%M%SZ"),
+        procedure_stem(&p.procedure.path)
+    );
     if p.save_pack {
         std::fs::create_dir_all(&p.pack_dir).map_err(io_err(&p.pack_dir))?;
         let path = p.pack_dir.join(PACK_TOML);
-        crate::runlog::write::atomic_write(&path, p.pack.to_toml().as_bytes()).map_err(io_err(&path))?;
+        crate::runlog::write::atomic_write(&path, p.pack.to_toml().as_bytes())
+            .map_err(io_err(&path))?;
     }
     let (run_id, dir) = create_run_folder(&p.pack_dir, &base_id).map_err(io_err(&p.pack_dir))?;
-    let source_profile = Profile::builtin(ProfileRole::Source);
-    let load_profile = Profile::builtin(ProfileRole::Load);
+    let source_profile = links.source_profile.clone();
+    let load_profile = links.load_profile.clone();
     let mut manifest = Manifest {
-        tool: ToolInfo { name: "packbench", version: env!("CARGO_PKG_VERSION") },
+        tool: ToolInfo {
+            name: "packbench",
+            version: env!("CARGO_PKG_VERSION"),
+        },
         run_id: run_id.clone(),
         pack_id: p.pack_id.clone(),
         started_utc: utc_now(),
@@ -403,7 +485,10 @@ pub async fn execute(
             text: p.procedure.text.clone(),
         },
         pack: PackSummary::from(&p.pack),
-        bench: BenchRecord { kind: links.kind.clone(), speed: links.speed.clone() },
+        bench: BenchRecord {
+            kind: links.kind.clone(),
+            speed: links.speed.clone(),
+        },
         instruments: Vec::new(),
         simulation: None,
     };
@@ -423,17 +508,43 @@ pub async fn execute(
         }
     };
     manifest.instruments = vec![
-        InstrumentRecord { role: "source".into(), link: links.source_link, profile: source_profile.name.clone(), idn: source.0.idn().to_string() },
-        InstrumentRecord { role: "load".into(), link: links.load_link, profile: load_profile.name.clone(), idn: load.0.idn().to_string() },
+        InstrumentRecord {
+            role: "source".into(),
+            link: links.source_link,
+            profile: source_profile.name.clone(),
+            idn: source.0.idn().to_string(),
+        },
+        InstrumentRecord {
+            role: "load".into(),
+            link: links.load_link,
+            profile: load_profile.name.clone(),
+            idn: load.0.idn().to_string(),
+        },
     ];
     write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
     let mut station = Station { source, load };
-    let outcome = Engine::new(&p.procedure.plan, &mut station, clock, &mut sink, truth, stop).run().await;
+    let outcome = Engine::new(
+        &p.procedure.plan,
+        &mut station,
+        clock,
+        &mut sink,
+        truth,
+        stop,
+    )
+    .run()
+    .await;
     sink.flush().map_err(io_err(&dir))?;
     drop(sink);
     // The summary comes from the log on disk, through the same code as
     // `analyze` uses afterwards.
-    let summary = summarize_run_dir(&dir, &p.pack, &p.pack_id, &run_id, &p.procedure.plan.title, Some(&outcome))?;
+    let summary = summarize_run_dir(
+        &dir,
+        &p.pack,
+        &p.pack_id,
+        &run_id,
+        &p.procedure.plan.title,
+        Some(&outcome),
+    )?;
     let summary_path = dir.join(SUMMARY_JSON);
     write_json(&summary_path, &summary).map_err(io_err(&summary_path))?;
     manifest.status = outcome.status.name().into();
@@ -446,7 +557,11 @@ pub async fn execute(
         steps: outcome.truth.clone(),
     });
     write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
-    Ok(RunReport { run_dir: dir, summary, outcome })
+    Ok(RunReport {
+        run_dir: dir,
+        summary,
+        outcome,
+    })
 }
 
 /// Build a run's summary from its folder.
@@ -462,7 +577,8 @@ pub fn summarize_run_dir(
     let infos = read::step_infos(&events);
     let mut a = analysis::analyze(&log.samples, &infos, pack);
     if log.dropped_partial_line {
-        a.warnings.push("the last line of samples.csv was incomplete and was left out".into());
+        a.warnings
+            .push("the last line of samples.csv was incomplete and was left out".into());
     }
     let (status, reason) = match outcome {
         Some(o) => (o.status.name().to_string(), o.reason.clone()),
@@ -470,10 +586,17 @@ pub fn summarize_run_dir(
             .iter()
             .rev()
             .find_map(|e| match e {
-                crate::engine::event::Event::RunEnd { status, reason, .. } => Some((status.clone(), reason.clone())),
+                crate::engine::event::Event::RunEnd { status, reason, .. } => {
+                    Some((status.clone(), reason.clone()))
+                }
                 _ => None,
             })
-            .unwrap_or_else(|| ("interrupted".into(), Some("the run has no end record (killed or power cut)".into()))),
+            .unwrap_or_else(|| {
+                (
+                    "interrupted".into(),
+                    Some("the run has no end record (killed or power cut)".into()),
+                )
+            }),
     };
     let duration = match (log.samples.first(), log.samples.last()) {
         (Some(a), Some(b)) => b.t_s - a.t_s,

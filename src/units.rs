@@ -16,7 +16,10 @@ pub enum UnitError {
     #[error("empty value; expected a number with a unit, e.g. {expected}")]
     Empty { expected: &'static str },
     #[error("'{text}' does not start with a number; expected e.g. {expected}")]
-    NoNumber { text: String, expected: &'static str },
+    NoNumber {
+        text: String,
+        expected: &'static str,
+    },
     #[error("unknown unit '{unit}' in '{text}'; known units: {known}")]
     UnknownUnit {
         text: String,
@@ -83,9 +86,7 @@ impl Quantity {
             Quantity::Celsius(_) => "a temperature",
             Quantity::Ohms(_) => "a resistance",
             Quantity::Percent(_) => "a percentage",
-            Quantity::VoltsPerSecond(_) | Quantity::VoltsPerSecondPerCell(_) => {
-                "a voltage rate"
-            }
+            Quantity::VoltsPerSecond(_) | Quantity::VoltsPerSecondPerCell(_) => "a voltage rate",
         }
     }
 
@@ -308,7 +309,9 @@ pub fn parse_with_hint(text: &str, expected: &'static str) -> Result<Quantity, U
         });
     };
     if !x.is_finite() {
-        return Err(UnitError::NotFinite { text: t.to_string() });
+        return Err(UnitError::NotFinite {
+            text: t.to_string(),
+        });
     }
     if let Some(q) = unit_value(x, unit) {
         return Ok(q);

@@ -209,7 +209,8 @@ pub fn analyze(samples: &[Sample], steps: &[StepInfo], pack: &PackSpec) -> Analy
         if c.charge_ah > 0.0 && c.discharge_ah > 0.0 {
             let ce = c.discharge_ah / c.charge_ah * 100.0;
             c.coulombic_efficiency_pct = Some(ce);
-            c.energy_efficiency_pct = (c.charge_wh > 0.0).then(|| c.discharge_wh / c.charge_wh * 100.0);
+            c.energy_efficiency_pct =
+                (c.charge_wh > 0.0).then(|| c.discharge_wh / c.charge_wh * 100.0);
             if ce > 100.0 {
                 // Fact sheet §8: CE above 100 % points at a current-sensor
                 // offset or an incomplete discharge before the charge.
@@ -324,12 +325,26 @@ mod tests {
         let mut samples = Vec::new();
         // Charge: 1 A for 7200 s at 3.8 V = 2 Ah, 7.6 Wh.
         for k in 0..=7200 {
-            samples.push(Sample { t_s: k as f64, step: 1, cycle: 1, voltage_v: 3.8, current_a: 1.0, temperature_c: None });
+            samples.push(Sample {
+                t_s: k as f64,
+                step: 1,
+                cycle: 1,
+                voltage_v: 3.8,
+                current_a: 1.0,
+                temperature_c: None,
+            });
         }
         // Discharge: 0.995 A for 7200 s at 7.16/1.99 V.
         let v = 7.16 / 1.99;
         for k in 0..=7200 {
-            samples.push(Sample { t_s: 8000.0 + k as f64, step: 2, cycle: 1, voltage_v: v, current_a: -0.995, temperature_c: None });
+            samples.push(Sample {
+                t_s: 8000.0 + k as f64,
+                step: 2,
+                cycle: 1,
+                voltage_v: v,
+                current_a: -0.995,
+                temperature_c: None,
+            });
         }
         let info = |step, kind: &str| StepInfo {
             step,

@@ -125,23 +125,41 @@ impl<'a> Engine<'a> {
         let (trigger, reason, interrupted) = match result {
             Ok(Ok(())) => (Trigger::LastStepDone, None, false),
             Ok(Err(Stop::Breach(m))) => (Trigger::Breach, Some(m), false),
-            Ok(Err(Stop::Instrument(e))) => {
-                (Trigger::InstrumentFault, Some(format!("instrument fault: {e}")), false)
-            }
-            Ok(Err(Stop::Log(e))) => (Trigger::InstrumentFault, Some(format!("cannot write the log: {e}")), false),
-            Ok(Err(Stop::Interrupted)) => (Trigger::StopRequested, Some("interrupted by the operator".into()), true),
+            Ok(Err(Stop::Instrument(e))) => (
+                Trigger::InstrumentFault,
+                Some(format!("instrument fault: {e}")),
+                false,
+            ),
+            Ok(Err(Stop::Log(e))) => (
+                Trigger::InstrumentFault,
+                Some(format!("cannot write the log: {e}")),
+                false,
+            ),
+            Ok(Err(Stop::Interrupted)) => (
+                Trigger::StopRequested,
+                Some("interrupted by the operator".into()),
+                true,
+            ),
             Err(panic) => {
                 let msg = panic
                     .downcast_ref::<&str>()
                     .map(|s| s.to_string())
                     .or_else(|| panic.downcast_ref::<String>().cloned())
                     .unwrap_or_else(|| "unknown".into());
-                (Trigger::InstrumentFault, Some(format!("internal error: {msg}")), false)
+                (
+                    Trigger::InstrumentFault,
+                    Some(format!("internal error: {msg}")),
+                    false,
+                )
             }
         };
         state = state.next(trigger).unwrap_or(RunState::Stopping);
         if let (Some(r), true) = (&reason, self.step_open) {
-            let kind = if interrupted { EndKind::Interrupted } else { EndKind::Aborted };
+            let kind = if interrupted {
+                EndKind::Interrupted
+            } else {
+                EndKind::Aborted
+            };
             self.close_truth_step(self.current_step);
             self.step_open = false;
             let _ = self.sink.event(&Event::StepEnd {
@@ -154,7 +172,9 @@ impl<'a> Engine<'a> {
         let (src_ok, load_ok) = self.outputs_off().await;
         let _ = self.sink.event(&Event::OutputsOff {
             t_s: self.t(),
-            reason: reason.clone().unwrap_or_else(|| "procedure complete".into()),
+            reason: reason
+                .clone()
+                .unwrap_or_else(|| "procedure complete".into()),
             source_off_confirmed: src_ok,
             load_off_confirmed: load_ok,
         });
@@ -164,7 +184,10 @@ impl<'a> Engine<'a> {
             reason = Some("outputs could not be confirmed off at the end".into());
         }
         state = state
-            .next(Trigger::OutputsOff { finished, interrupted })
+            .next(Trigger::OutputsOff {
+                finished,
+                interrupted,
+            })
             .unwrap_or(RunState::Aborted);
         let _ = self.sink.event(&Event::RunEnd {
             t_s: self.t(),
@@ -195,8 +218,20 @@ impl<'a> Engine<'a> {
 
     async fn switch_off_active(&mut self) -> Result<(), Stop> {
         match self.active {
-            Active::Source => self.station.source.0.disable().await.map_err(Stop::Instrument)?,
-            Active::Load => self.station.load.0.disable().await.map_err(Stop::Instrument)?,
+            Active::Source => self
+                .station
+                .source
+                .0
+                .disable()
+                .await
+                .map_err(Stop::Instrument)?,
+            Active::Load => self
+                .station
+                .load
+                .0
+                .disable()
+                .await
+                .map_err(Stop::Instrument)?,
             Active::None => {}
         }
         self.active = Active::None;
@@ -210,20 +245,40 @@ impl<'a> Engine<'a> {
             self.switch_off_active().await?;
         }
         match (want, setting) {
-            (Active::Source, Drive::Charge { voltage_v, current_a }) => {
+            (
+                Active::Source,
+                Drive::Charge {
+                    voltage_v,
+                    current_a,
+                },
+            ) => {
                 self.station
                     .source
                     .program(voltage_v, current_a)
                     .await
                     .map_err(Stop::Instrument)?;
                 if self.active != Active::Source {
-                    self.station.source.0.enable().await.map_err(Stop::Instrument)?;
+                    self.station
+                        .source
+                        .0
+                        .enable()
+                        .await
+                        .map_err(Stop::Instrument)?;
                 }
             }
             (Active::Load, Drive::Load(s)) => {
-                self.station.load.program(s).await.map_err(Stop::Instrument)?;
+                self.station
+                    .load
+                    .program(s)
+                    .await
+                    .map_err(Stop::Instrument)?;
                 if self.active != Active::Load {
-                    self.station.load.0.enable().await.map_err(Stop::Instrument)?;
+                    self.station
+                        .load
+                        .0
+                        .enable()
+                        .await
+                        .map_err(Stop::Instrument)?;
                 }
             }
             _ => {}
@@ -292,10 +347,21 @@ impl<'a> Engine<'a> {
         }
     }
 
-    fn end_step(&mut self, t_s: f64, step: u32, end_kind: EndKind, end_reason: String) -> Result<(), Stop> {
+    fn end_step(
+        &mut self,
+        t_s: f64,
+        step: u32,
+        end_kind: EndKind,
+        end_reason: String,
+    ) -> Result<(), Stop> {
         self.close_truth_step(step);
         self.step_open = false;
-        self.emit(Event::StepEnd { t_s, step, end_kind, end_reason })
+        self.emit(Event::StepEnd {
+            t_s,
+            step,
+            end_kind,
+            end_reason,
+        })
     }
 
     async fn run_steps(&mut self) -> Result<(), Stop> {
@@ -326,16 +392,24 @@ impl<'a> Engine<'a> {
         // Pulse levels as (end time, drive).
         let mut levels: Vec<(f64, Active, Drive)> = Vec::new();
         let (want, drive) = match &st.kind {
-            StepKind::Charge { current_a, voltage_v } => (
+            StepKind::Charge {
+                current_a,
+                voltage_v,
+            } => (
                 Active::Source,
-                Drive::Charge { voltage_v: *voltage_v, current_a: *current_a },
+                Drive::Charge {
+                    voltage_v: *voltage_v,
+                    current_a: *current_a,
+                },
             ),
             StepKind::Discharge { load } => (
                 Active::Load,
                 Drive::Load(match *load {
                     DischargeMode::Current { current_a } => LoadSetting::Current(current_a),
                     DischargeMode::Power { power_w } => LoadSetting::Power(power_w),
-                    DischargeMode::Resistance { resistance_ohm } => LoadSetting::Resistance(resistance_ohm),
+                    DischargeMode::Resistance { resistance_ohm } => {
+                        LoadSetting::Resistance(resistance_ohm)
+                    }
                 }),
             ),
             StepKind::Rest => (Active::None, Drive::Off),
@@ -343,7 +417,11 @@ impl<'a> Engine<'a> {
                 let mut end = t0;
                 for l in ls {
                     end += l.duration_s;
-                    levels.push((end, level_active(l.current_a), level_drive(l.current_a, env.voltage_max_v)));
+                    levels.push((
+                        end,
+                        level_active(l.current_a),
+                        level_drive(l.current_a, env.voltage_max_v),
+                    ));
                 }
                 let (_, a, d) = levels[0];
                 (a, d)
@@ -386,7 +464,10 @@ impl<'a> Engine<'a> {
                     threshold: b.threshold,
                     message: b.message.clone(),
                 })?;
-                return Err(Stop::Breach(format!("safety limit {}: {}", b.limit, b.message)));
+                return Err(Stop::Breach(format!(
+                    "safety limit {}: {}",
+                    b.limit, b.message
+                )));
             }
             if let Some((kind, cond)) = tracker.end_reached(st) {
                 return self.end_step(t, st.index, kind, cond.to_string());
@@ -394,7 +475,12 @@ impl<'a> Engine<'a> {
             if !levels.is_empty() && t >= levels[level].0 - 1e-9 {
                 level += 1;
                 if level == levels.len() {
-                    return self.end_step(t, st.index, EndKind::LevelsDone, "pulse levels done".into());
+                    return self.end_step(
+                        t,
+                        st.index,
+                        EndKind::LevelsDone,
+                        "pulse levels done".into(),
+                    );
                 }
                 let (_, a, d) = levels[level];
                 if a == Active::None {
@@ -445,7 +531,10 @@ fn level_active(current: f64) -> Active {
 /// A charge pulse is limited to 1 % under the envelope's maximum voltage.
 fn level_drive(current: f64, voltage_max: f64) -> Drive {
     if current > 0.0 {
-        Drive::Charge { voltage_v: voltage_max * 0.99, current_a: current }
+        Drive::Charge {
+            voltage_v: voltage_max * 0.99,
+            current_a: current,
+        }
     } else if current < 0.0 {
         Drive::Load(LoadSetting::Current(-current))
     } else {

@@ -36,14 +36,23 @@ impl RunState {
             (Ready, Start) => Some(Running),
             (Running, LastStepDone | Breach | InstrumentFault | StopRequested) => Some(Stopping),
             (Stopping, OutputsOff { finished: true, .. }) => Some(Completed),
-            (Stopping, OutputsOff { interrupted: true, finished: false }) => Some(Interrupted),
+            (
+                Stopping,
+                OutputsOff {
+                    interrupted: true,
+                    finished: false,
+                },
+            ) => Some(Interrupted),
             (Stopping, OutputsOff { .. }) => Some(Aborted),
             _ => None,
         }
     }
 
     pub fn is_final(self) -> bool {
-        matches!(self, RunState::Completed | RunState::Aborted | RunState::Interrupted)
+        matches!(
+            self,
+            RunState::Completed | RunState::Aborted | RunState::Interrupted
+        )
     }
 
     pub fn name(self) -> &'static str {
@@ -71,7 +80,10 @@ mod tests {
             let s = Ready.next(Start).and_then(|s| s.next(t));
             assert_eq!(s, Some(Stopping), "{t:?}");
         }
-        let off = |finished, interrupted| OutputsOff { finished, interrupted };
+        let off = |finished, interrupted| OutputsOff {
+            finished,
+            interrupted,
+        };
         assert_eq!(Stopping.next(off(true, false)), Some(Completed));
         assert_eq!(Stopping.next(off(false, true)), Some(Interrupted));
         assert_eq!(Stopping.next(off(false, false)), Some(Aborted));

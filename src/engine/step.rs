@@ -98,7 +98,9 @@ impl StepTracker {
                 EndCondition::VoltageBelow { voltage_v } => s.voltage_v <= voltage_v,
                 EndCondition::CurrentBelow { current_a } => {
                     let armed = match step.kind {
-                        StepKind::Charge { voltage_v, .. } => s.voltage_v >= TAPER_ARM_FRACTION * voltage_v,
+                        StepKind::Charge { voltage_v, .. } => {
+                            s.voltage_v >= TAPER_ARM_FRACTION * voltage_v
+                        }
                         _ => true,
                     };
                     armed && s.current_a.abs() <= current_a
@@ -169,13 +171,23 @@ mod tests {
     }
 
     fn sample(t: f64, v: f64, i: f64) -> Sample {
-        Sample { t_s: t, step: 1, cycle: 1, voltage_v: v, current_a: i, temperature_c: None }
+        Sample {
+            t_s: t,
+            step: 1,
+            cycle: 1,
+            voltage_v: v,
+            current_a: i,
+            temperature_c: None,
+        }
     }
 
     #[test]
     fn taper_waits_for_the_voltage_limit() {
         let st = step(
-            StepKind::Charge { current_a: 7.0, voltage_v: 42.0 },
+            StepKind::Charge {
+                current_a: 7.0,
+                voltage_v: 42.0,
+            },
             vec![EndCondition::CurrentBelow { current_a: 0.7 }],
         );
         let mut tr = StepTracker::new(0.0);
@@ -183,12 +195,20 @@ mod tests {
         tr.push(&sample(0.0, 38.0, 0.1));
         assert_eq!(tr.end_reached(&st), None);
         tr.push(&sample(1.0, 42.0, 0.69));
-        assert_eq!(tr.end_reached(&st).map(|e| e.0), Some(EndKind::CurrentBelow));
+        assert_eq!(
+            tr.end_reached(&st).map(|e| e.0),
+            Some(EndKind::CurrentBelow)
+        );
     }
 
     #[test]
     fn settling_uses_a_fitted_slope() {
-        let st = step(StepKind::Rest, vec![EndCondition::Settled { volts_per_s: 1e-3 / 60.0 }]);
+        let st = step(
+            StepKind::Rest,
+            vec![EndCondition::Settled {
+                volts_per_s: 1e-3 / 60.0,
+            }],
+        );
         let mut tr = StepTracker::new(0.0);
         // Relaxing at 2 mV/min: not settled.
         for k in 0..=300 {
@@ -211,7 +231,10 @@ mod tests {
     #[test]
     fn peak_drop_after_holdoff() {
         let st = step(
-            StepKind::Charge { current_a: 1.0, voltage_v: 9.6 },
+            StepKind::Charge {
+                current_a: 1.0,
+                voltage_v: 9.6,
+            },
             vec![EndCondition::PeakDrop { voltage_v: 0.03 }],
         );
         let mut tr = StepTracker::new(0.0);
@@ -219,7 +242,11 @@ mod tests {
         for k in 0..2000 {
             let t = k as f64;
             // Rises to 8.9 V at 1000 s, then falls 1 mV/s.
-            let v = if t < 1000.0 { 8.0 + 0.0009 * t } else { 8.9 - 0.001 * (t - 1000.0) };
+            let v = if t < 1000.0 {
+                8.0 + 0.0009 * t
+            } else {
+                8.9 - 0.001 * (t - 1000.0)
+            };
             tr.push(&sample(t, v, 1.0));
             if tr.end_reached(&st).is_some() {
                 ended = Some(k);
@@ -227,7 +254,10 @@ mod tests {
             }
         }
         // The 5-sample average lags 2 s: about 32 s after the peak.
-        assert!(ended.is_some_and(|k| (1030..=1036).contains(&k)), "{ended:?}");
+        assert!(
+            ended.is_some_and(|k| (1030..=1036).contains(&k)),
+            "{ended:?}"
+        );
         let _ = DischargeMode::Current { current_a: 1.0 };
     }
 }

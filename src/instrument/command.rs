@@ -54,10 +54,19 @@ pub const TREE: &[(&str, Cmd)] = &[
     ("SYSTem:ERRor[:NEXT]", Cmd::SystemError),
     ("SYSTem:ERRor:COUNt", Cmd::SystemErrorCount),
     ("SYSTem:VERSion", Cmd::SystemVersion),
-    ("[SOURce:]VOLTage[:LEVel][:IMMediate][:AMPLitude]", Cmd::Voltage),
-    ("[SOURce:]CURRent[:LEVel][:IMMediate][:AMPLitude]", Cmd::Current),
+    (
+        "[SOURce:]VOLTage[:LEVel][:IMMediate][:AMPLitude]",
+        Cmd::Voltage,
+    ),
+    (
+        "[SOURce:]CURRent[:LEVel][:IMMediate][:AMPLitude]",
+        Cmd::Current,
+    ),
     ("[SOURce:]POWer[:LEVel][:IMMediate][:AMPLitude]", Cmd::Power),
-    ("[SOURce:]RESistance[:LEVel][:IMMediate][:AMPLitude]", Cmd::Resistance),
+    (
+        "[SOURce:]RESistance[:LEVel][:IMMediate][:AMPLitude]",
+        Cmd::Resistance,
+    ),
     ("[SOURce:]FUNCtion[:MODE]", Cmd::Function),
     ("OUTPut[:STATe]", Cmd::Output),
     ("INPut[:STATe]", Cmd::Input),
@@ -100,7 +109,10 @@ fn parse_pattern(p: &str) -> Vec<Node> {
             let end = rest.find(']').unwrap_or(rest.len());
             (&rest[1..end], rest.get(end + 1..).unwrap_or(""))
         } else {
-            let end = rest[1..].find(['[', ':']).map(|e| e + 1).unwrap_or(rest.len());
+            let end = rest[1..]
+                .find(['[', ':'])
+                .map(|e| e + 1)
+                .unwrap_or(rest.len());
             (&rest[..end], &rest[end..])
         };
         let word = chunk.trim_matches(':');
@@ -421,7 +433,12 @@ pub fn nr3(x: f64) -> String {
         mant /= 10.0;
         exp += 1;
     }
-    format!("{:+.5}E{}{:02}", mant, if exp < 0 { '-' } else { '+' }, exp.abs())
+    format!(
+        "{:+.5}E{}{:02}",
+        mant,
+        if exp < 0 { '-' } else { '+' },
+        exp.abs()
+    )
 }
 
 #[cfg(test)]
@@ -469,10 +486,19 @@ mod tests {
     fn header_path_rule_for_compound_messages() {
         // Examples from the SCPI fact sheet (IEEE 488.2 header path).
         let cmds = |s: &str| -> Vec<Result<Cmd, ScpiError>> {
-            parse_message(s).into_iter().map(|u| u.map(|u| u.cmd)).collect()
+            parse_message(s)
+                .into_iter()
+                .map(|u| u.map(|u| u.cmd))
+                .collect()
         };
-        assert_eq!(cmds("VOLT 12;CURR 1"), vec![Ok(Cmd::Voltage), Ok(Cmd::Current)]);
-        assert_eq!(cmds("SOUR:VOLT 12;CURR 1"), vec![Ok(Cmd::Voltage), Ok(Cmd::Current)]);
+        assert_eq!(
+            cmds("VOLT 12;CURR 1"),
+            vec![Ok(Cmd::Voltage), Ok(Cmd::Current)]
+        );
+        assert_eq!(
+            cmds("SOUR:VOLT 12;CURR 1"),
+            vec![Ok(Cmd::Voltage), Ok(Cmd::Current)]
+        );
         assert_eq!(
             cmds("MEAS:VOLT?;CURR?"),
             vec![Ok(Cmd::MeasureVoltage), Ok(Cmd::MeasureCurrent)]

@@ -78,7 +78,11 @@ pub struct Instrument {
 impl Instrument {
     /// Open a session: identify, send the profile's init commands and
     /// clear the error queue. Outputs are then switched off.
-    pub async fn connect(name: &str, link: Link, profile: Profile) -> Result<Instrument, InstrumentError> {
+    pub async fn connect(
+        name: &str,
+        link: Link,
+        profile: Profile,
+    ) -> Result<Instrument, InstrumentError> {
         let session = Session::new(
             name,
             link,
@@ -128,8 +132,8 @@ impl Instrument {
         let mut found = Vec::new();
         for _ in 0..32 {
             let reply = self.session.query(&q).await?;
-            let (code, text) = scpi::parse_error_entry(&reply)
-                .map_err(|m| self.err(ErrorKind::Protocol, m))?;
+            let (code, text) =
+                scpi::parse_error_entry(&reply).map_err(|m| self.err(ErrorKind::Protocol, m))?;
             if code == 0 {
                 return Ok(found);
             }
@@ -287,8 +291,12 @@ impl Source {
     /// Program a CC-CV charge: voltage limit and current limit (output off).
     pub async fn program(&mut self, voltage_v: f64, current_a: f64) -> Result<(), InstrumentError> {
         let c = self.0.profile.commands.clone();
-        self.0.set_value(c.set_voltage, c.get_voltage, voltage_v, "voltage").await?;
-        self.0.set_value(c.set_current, c.get_current, current_a, "current").await
+        self.0
+            .set_value(c.set_voltage, c.get_voltage, voltage_v, "voltage")
+            .await?;
+        self.0
+            .set_value(c.set_current, c.get_current, current_a, "current")
+            .await
     }
 
     /// Pack voltage and pack current (positive: into the pack).
@@ -329,10 +337,16 @@ impl Load {
             self.0.checked_write(&set_mode.replace("{mode}", w)).await?;
         }
         match setting {
-            LoadSetting::Current(a) => self.0.set_value(c.set_current, c.get_current, a, "current").await,
+            LoadSetting::Current(a) => {
+                self.0
+                    .set_value(c.set_current, c.get_current, a, "current")
+                    .await
+            }
             LoadSetting::Power(w) => self.0.set_value(c.set_power, c.get_power, w, "power").await,
             LoadSetting::Resistance(r) => {
-                self.0.set_value(c.set_resistance, c.get_resistance, r, "resistance").await
+                self.0
+                    .set_value(c.set_resistance, c.get_resistance, r, "resistance")
+                    .await
             }
         }
     }

@@ -136,19 +136,22 @@ impl Profile {
             let off = text.find(needle).unwrap_or(0);
             Location::at(file, text, off)
         };
-        let mut range = |v: &Option<String>, key: &str, f: fn(&str) -> Option<f64>| -> Option<f64> {
-            let s = v.as_ref()?;
-            match f(s) {
-                Some(x) if x > 0.0 => Some(x),
-                _ => {
-                    errors.push(LocatedError {
-                        location: locate(key),
-                        message: format!("ranges.{key} = '{s}' is not a positive value of the right unit"),
-                    });
-                    None
+        let mut range =
+            |v: &Option<String>, key: &str, f: fn(&str) -> Option<f64>| -> Option<f64> {
+                let s = v.as_ref()?;
+                match f(s) {
+                    Some(x) if x > 0.0 => Some(x),
+                    _ => {
+                        errors.push(LocatedError {
+                            location: locate(key),
+                            message: format!(
+                                "ranges.{key} = '{s}' is not a positive value of the right unit"
+                            ),
+                        });
+                        None
+                    }
                 }
-            }
-        };
+            };
         let ranges = Ranges {
             voltage_max_v: range(&raw.ranges.voltage_max, "voltage_max", |s| {
                 units::voltage(s).ok().and_then(|v| match v {
@@ -177,7 +180,8 @@ impl Profile {
             if !ok {
                 errors.push(LocatedError {
                     location: locate("[commands]"),
-                    message: format!("a {:?} profile needs commands.{what}", raw.role).to_lowercase(),
+                    message: format!("a {:?} profile needs commands.{what}", raw.role)
+                        .to_lowercase(),
                 });
             }
         };
@@ -189,7 +193,10 @@ impl Profile {
             ProfileRole::Load => {
                 need(c.set_current.is_some(), "set_current");
                 need(c.set_mode.is_some(), "set_mode");
-                need(raw.mode_words.is_some(), "mode_words (a [mode_words] table)");
+                need(
+                    raw.mode_words.is_some(),
+                    "mode_words (a [mode_words] table)",
+                );
             }
         }
         for (key, t) in [
@@ -302,7 +309,11 @@ mod tests {
     fn profile_errors_are_located() {
         let bad = GENERIC_SOURCE.replace("timeout_ms = 2000", "timeout_ms = 2000\nbaud = 9600");
         let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
-        assert!(e.to_string().starts_with("p.toml:7:1"), "{e}");
+        assert!(
+            e.to_string()
+                .starts_with("p.toml:9:1: unknown field `baud`"),
+            "{e}"
+        );
         let bad = GENERIC_SOURCE.replace("VOLT {value}", "VOLT 1");
         let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
         assert!(e.to_string().contains("{value}"), "{e}");

@@ -59,7 +59,10 @@ impl Session {
                 Ok(())
             }
             Ok(Err(e)) => Err(self.err(ErrorKind::LinkLost, format!("write failed: {e}"))),
-            Err(_) => Err(self.err(ErrorKind::Timeout, format!("write of '{message}' timed out"))),
+            Err(_) => Err(self.err(
+                ErrorKind::Timeout,
+                format!("write of '{message}' timed out"),
+            )),
         }
     }
 
@@ -83,7 +86,9 @@ impl Session {
             match tokio::time::timeout_at(deadline, self.link.read(&mut buf)).await {
                 Ok(Ok(0)) => return Err(self.err(ErrorKind::LinkLost, "link closed".into())),
                 Ok(Ok(n)) => self.pending.extend_from_slice(&buf[..n]),
-                Ok(Err(e)) => return Err(self.err(ErrorKind::LinkLost, format!("read failed: {e}"))),
+                Ok(Err(e)) => {
+                    return Err(self.err(ErrorKind::LinkLost, format!("read failed: {e}")))
+                }
                 Err(_) => {
                     return Err(self.err(
                         ErrorKind::Timeout,
@@ -112,7 +117,8 @@ impl Session {
     /// Query and parse a number.
     pub async fn query_number(&mut self, message: &str) -> Result<f64, InstrumentError> {
         let reply = self.query(message).await?;
-        parse_number(&reply).map_err(|m| self.err(ErrorKind::Protocol, format!("'{message}' -> {m}")))
+        parse_number(&reply)
+            .map_err(|m| self.err(ErrorKind::Protocol, format!("'{message}' -> {m}")))
     }
 
     /// Query and parse several `;`-separated numbers (a compound query).
@@ -126,19 +132,26 @@ impl Session {
         if parts.len() != expect {
             return Err(self.err(
                 ErrorKind::Protocol,
-                format!("'{message}' -> '{reply}': expected {expect} values, got {}", parts.len()),
+                format!(
+                    "'{message}' -> '{reply}': expected {expect} values, got {}",
+                    parts.len()
+                ),
             ));
         }
         parts
             .iter()
-            .map(|p| parse_number(p).map_err(|m| self.err(ErrorKind::Protocol, format!("'{message}' -> {m}"))))
+            .map(|p| {
+                parse_number(p)
+                    .map_err(|m| self.err(ErrorKind::Protocol, format!("'{message}' -> {m}")))
+            })
             .collect()
     }
 
     /// Query and parse a boolean (`0`/`1`, or `ON`/`OFF` on some firmware).
     pub async fn query_bool(&mut self, message: &str) -> Result<bool, InstrumentError> {
         let reply = self.query(message).await?;
-        parse_bool_reply(&reply).map_err(|m| self.err(ErrorKind::Protocol, format!("'{message}' -> {m}")))
+        parse_bool_reply(&reply)
+            .map_err(|m| self.err(ErrorKind::Protocol, format!("'{message}' -> {m}")))
     }
 
     /// After a timeout: drain stale input and check the instrument answers
@@ -153,7 +166,10 @@ impl Session {
                 }
             }
         }
-        Err(self.err(ErrorKind::Protocol, "could not resynchronise with *OPC?".into()))
+        Err(self.err(
+            ErrorKind::Protocol,
+            "could not resynchronise with *OPC?".into(),
+        ))
     }
 }
 

@@ -6,7 +6,9 @@ pub mod plan;
 pub mod raw;
 pub mod validate;
 
-pub use plan::{DischargeMode, EndCondition, Envelope, Plan, PlanStep, PulseLevel, ResultTag, StepKind};
+pub use plan::{
+    DischargeMode, EndCondition, Envelope, Plan, PlanStep, PulseLevel, ResultTag, StepKind,
+};
 
 use crate::location::{InputErrors, LocatedError, Location};
 use crate::pack::PackSpec;

@@ -41,10 +41,17 @@ pub struct PulseLevel {
 #[serde(tag = "kind", rename_all = "snake_case")]
 pub enum StepKind {
     /// Constant current up to `voltage_v`, then constant voltage.
-    Charge { current_a: f64, voltage_v: f64 },
-    Discharge { load: DischargeMode },
+    Charge {
+        current_a: f64,
+        voltage_v: f64,
+    },
+    Discharge {
+        load: DischargeMode,
+    },
     Rest,
-    Pulse { levels: Vec<PulseLevel> },
+    Pulse {
+        levels: Vec<PulseLevel>,
+    },
 }
 
 impl StepKind {
@@ -63,21 +70,39 @@ impl StepKind {
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
 #[serde(tag = "when", rename_all = "snake_case")]
 pub enum EndCondition {
-    VoltageAbove { voltage_v: f64 },
-    VoltageBelow { voltage_v: f64 },
+    VoltageAbove {
+        voltage_v: f64,
+    },
+    VoltageBelow {
+        voltage_v: f64,
+    },
     /// |current| at or below the threshold (taper); on a charge step only
     /// counted once the supply is holding its voltage.
-    CurrentBelow { current_a: f64 },
-    Time { seconds: f64 },
+    CurrentBelow {
+        current_a: f64,
+    },
+    Time {
+        seconds: f64,
+    },
     /// |charge| passed in the step.
-    Charge { ah: f64 },
+    Charge {
+        ah: f64,
+    },
     /// |energy| passed in the step.
-    Energy { wh: f64 },
-    TemperatureAbove { celsius: f64 },
+    Energy {
+        wh: f64,
+    },
+    TemperatureAbove {
+        celsius: f64,
+    },
     /// |dV/dt| over the settling window at or below the rate.
-    Settled { volts_per_s: f64 },
+    Settled {
+        volts_per_s: f64,
+    },
     /// The voltage has fallen this far below the step's peak.
-    PeakDrop { voltage_v: f64 },
+    PeakDrop {
+        voltage_v: f64,
+    },
 }
 
 impl fmt::Display for EndCondition {
@@ -181,7 +206,12 @@ impl fmt::Display for StepKind {
             StepKind::Pulse { levels } => {
                 write!(f, "pulse")?;
                 for l in levels {
-                    write!(f, " [{:+.3} A for {}]", l.current_a, HumanDuration(l.duration_s))?;
+                    write!(
+                        f,
+                        " [{:+.3} A for {}]",
+                        l.current_a,
+                        HumanDuration(l.duration_s)
+                    )?;
                 }
                 Ok(())
             }

@@ -16,6 +16,14 @@ pub const MAX_STEPS: usize = 100_000;
 /// The shortest sampling interval accepted.
 pub const MIN_SAMPLE_S: f64 = 0.01;
 
+/// A validated step before expansion: kind, ends, result tag, name.
+type BuiltStep = (
+    StepKind,
+    Vec<EndCondition>,
+    Option<ResultTag>,
+    Option<String>,
+);
+
 struct Ctx<'a> {
     file: &'a Path,
     text: &'a str,
@@ -70,7 +78,10 @@ fn positive(cx: &mut Ctx, t: &Text, x: f64, what: &str) -> Option<f64> {
     if x > 0.0 && x.is_finite() {
         Some(x)
     } else {
-        cx.err(&t.span(), format!("{what} must be above zero, got '{}'", t.get_ref()));
+        cx.err(
+            &t.span(),
+            format!("{what} must be above zero, got '{}'", t.get_ref()),
+        );
         None
     }
 }
@@ -192,7 +203,10 @@ fn parse_end(cx: &mut Ctx, t: &Text, pack: &PackSpec) -> Option<EndCondition> {
     let parsed = |cx: &mut Ctx, r: Result<f64, UnitError>| match r {
         Ok(v) if v.is_finite() => Some(v),
         Ok(_) => {
-            cx.err(&t.span(), format!("end condition '{s}': value is not finite"));
+            cx.err(
+                &t.span(),
+                format!("end condition '{s}': value is not finite"),
+            );
             None
         }
         Err(e) => {
@@ -253,7 +267,10 @@ fn parse_end(cx: &mut Ctx, t: &Text, pack: &PackSpec) -> Option<EndCondition> {
                 return wrong_op(cx, "<");
             }
             EndCondition::Settled {
-                volts_per_s: parsed(cx, units::voltage_rate(value).map(|r| r.resolve(series).abs()))?,
+                volts_per_s: parsed(
+                    cx,
+                    units::voltage_rate(value).map(|r| r.resolve(series).abs()),
+                )?,
             }
         }
         "peak_drop" => {
@@ -288,9 +305,13 @@ fn reachable(kind: &StepKind, c: &EndCondition, env: &Envelope) -> bool {
         (StepKind::Pulse { .. }, _) => true,
         (_, E::Charge { ah }) => *ah > 0.0,
         (_, E::Energy { wh }) => *wh > 0.0,
-        (StepKind::Charge { voltage_v, current_a }, E::VoltageAbove { voltage_v: x }) => {
-            *x < *voltage_v && *current_a > 0.0
-        }
+        (
+            StepKind::Charge {
+                voltage_v,
+                current_a,
+            },
+            E::VoltageAbove { voltage_v: x },
+        ) => *x < *voltage_v && *current_a > 0.0,
         (StepKind::Charge { current_a, .. }, E::CurrentBelow { current_a: x }) => {
             *x > 0.0 && *x < *current_a
         }
@@ -304,9 +325,7 @@ fn reachable(kind: &StepKind, c: &EndCondition, env: &Envelope) -> bool {
             DischargeMode::Current { .. } => false,
             // Current falls with the voltage under constant resistance and
             // rises under constant power.
-            DischargeMode::Resistance { resistance_ohm } => {
-                *x > env.voltage_min_v / resistance_ohm
-            }
+            DischargeMode::Resistance { resistance_ohm } => *x > env.voltage_min_v / resistance_ohm,
             DischargeMode::Power { .. } => false,
         },
         (StepKind::Discharge { .. }, _) => false,
@@ -318,7 +337,7 @@ fn build_step(
     raw: &Spanned<RawStep>,
     env: &Envelope,
     pack: &PackSpec,
-) -> Option<(StepKind, Vec<EndCondition>, Option<ResultTag>, Option<String>)> {
+) -> Option<BuiltStep> {
     let span = raw.span();
     let st = raw.get_ref();
     let series = pack.series;
@@ -328,10 +347,7 @@ fn build_step(
     // Keys that do not belong to the kind are errors, not silently ignored.
     let forbid = |cx: &mut Ctx, v: &Option<Text>, key: &str| {
         if let Some(t) = v {
-            cx.err(
-                &t.span(),
-                format!("a {kind_name} step takes no '{key}'"),
-            );
+            cx.err(&t.span(), format!("a {kind_name} step takes no '{key}'"));
         }
     };
     let current_sp = |cx: &mut Ctx, t: &Text| -> Option<f64> {
@@ -366,7 +382,10 @@ fn build_step(
             let current = match &st.current {
                 Some(t) => current_sp(cx, t),
                 None => {
-                    cx.err(&span, "a charge step needs a current, e.g. current = \"0.5C\"");
+                    cx.err(
+                        &span,
+                        "a charge step needs a current, e.g. current = \"0.5C\"",
+                    );
                     None
                 }
             };
@@ -420,7 +439,9 @@ fn build_step(
                     forbid(cx, &st.power, "power");
                     forbid(cx, &st.resistance, "resistance");
                     match &st.current {
-                        Some(t) => current_sp(cx, t).map(|a| DischargeMode::Current { current_a: a }),
+                        Some(t) => {
+                            current_sp(cx, t).map(|a| DischargeMode::Current { current_a: a })
+                        }
                         None => {
                             cx.err(&span, "a constant-current discharge needs a current, e.g. current = \"0.2C\"");
                             None
@@ -524,7 +545,9 @@ fn build_step(
             let mut out = Vec::new();
             for l in levels.get_ref() {
                 let lv = l.get_ref();
-                let a = cx.unit(&lv.current, units::current).map(|c| c.resolve(rated));
+                let a = cx
+                    .unit(&lv.current, units::current)
+                    .map(|c| c.resolve(rated));
                 let d = cx
                     .unit(&lv.duration, units::duration)
                     .and_then(|d| positive(cx, &lv.duration, d, "duration"));
@@ -597,7 +620,10 @@ fn build_step(
         Some(t) => match t.get_ref().trim() {
             "capacity" => {
                 if !matches!(kind, StepKind::Discharge { .. }) {
-                    cx.err(&t.span(), "result = \"capacity\" belongs on a discharge step");
+                    cx.err(
+                        &t.span(),
+                        "result = \"capacity\" belongs on a discharge step",
+                    );
                 }
                 Some(ResultTag::Capacity)
             }
@@ -611,8 +637,8 @@ fn build_step(
         },
     };
     if cx.errors.len() == errors_before {
-        let can_end = matches!(kind, StepKind::Pulse { .. })
-            || ends.iter().any(|c| reachable(&kind, c, env));
+        let can_end =
+            matches!(kind, StepKind::Pulse { .. }) || ends.iter().any(|c| reachable(&kind, c, env));
         if !can_end {
             let hint = match kind {
                 StepKind::Charge { .. } => "a charge step can end on current < (taper below its current), voltage > (below its voltage limit), charge >, energy >, peak_drop > or time >",
@@ -640,12 +666,15 @@ fn build(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<Plan> {
         Some(s) => {
             let t = &s.get_ref().every;
             cx.unit(t, units::duration).and_then(|v| {
-                if v >= MIN_SAMPLE_S && v <= 3600.0 {
+                if (MIN_SAMPLE_S..=3600.0).contains(&v) {
                     Some(v)
                 } else {
                     cx.err(
                         &t.span(),
-                        format!("sampling interval must be between {MIN_SAMPLE_S} s and 1 h, got '{}'", t.get_ref()),
+                        format!(
+                            "sampling interval must be between {MIN_SAMPLE_S} s and 1 h, got '{}'",
+                            t.get_ref()
+                        ),
                     );
                     None
                 }
@@ -654,7 +683,10 @@ fn build(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<Plan> {
         None => Some(1.0),
     };
     if raw.phase.is_empty() {
-        cx.err(&(0..0), "the procedure has no [[phase]]; expected at least one phase with steps");
+        cx.err(
+            &(0..0),
+            "the procedure has no [[phase]]; expected at least one phase with steps",
+        );
     }
     let env = env?;
     // Validate each written step once, then expand repeats.
@@ -667,17 +699,27 @@ fn build(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<Plan> {
             Some(r) => match u32::try_from(*r.get_ref()) {
                 Ok(n) if (1..=10_000).contains(&n) => n,
                 _ => {
-                    cx.err(&r.span(), format!("repeat must be between 1 and 10000, got {}", r.get_ref()));
+                    cx.err(
+                        &r.span(),
+                        format!("repeat must be between 1 and 10000, got {}", r.get_ref()),
+                    );
                     1
                 }
             },
         };
         if p.step.is_empty() {
-            cx.err(&ph.span(), format!("phase '{}' has no steps", p.name.get_ref()));
+            cx.err(
+                &ph.span(),
+                format!("phase '{}' has no steps", p.name.get_ref()),
+            );
         }
-        expanded_count = expanded_count.saturating_add(p.step.len().saturating_mul(repeat as usize));
+        expanded_count =
+            expanded_count.saturating_add(p.step.len().saturating_mul(repeat as usize));
         if expanded_count > MAX_STEPS {
-            cx.err(&ph.span(), format!("the procedure expands to more than {MAX_STEPS} steps"));
+            cx.err(
+                &ph.span(),
+                format!("the procedure expands to more than {MAX_STEPS} steps"),
+            );
             return None;
         }
         let mut steps = Vec::new();

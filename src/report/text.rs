@@ -14,8 +14,16 @@ pub fn summary(s: &Summary) -> String {
     if let Some(r) = &s.stop_reason {
         let _ = writeln!(o, "  stopped: {r}");
     }
-    let _ = writeln!(o, "  {} samples over {}", s.samples, HumanDuration(s.duration_s));
-    let _ = writeln!(o, "  step  kind       duration      charge Ah   energy Wh   end");
+    let _ = writeln!(
+        o,
+        "  {} samples over {}",
+        s.samples,
+        HumanDuration(s.duration_s)
+    );
+    let _ = writeln!(
+        o,
+        "  step  kind       duration      charge Ah   energy Wh   end"
+    );
     for st in &s.steps {
         let _ = writeln!(
             o,
@@ -37,9 +45,17 @@ pub fn summary(s: &Summary) -> String {
                 c.measured_wh,
                 c.mean_current_a,
                 c.c_rate,
-                if c.ended_on_cutoff { "to the cutoff" } else { "NOT to the cutoff (lower bound)" }
+                if c.ended_on_cutoff {
+                    "to the cutoff"
+                } else {
+                    "NOT to the cutoff (lower bound)"
+                }
             );
-            let _ = writeln!(o, "  State of health:   {:.1} % of rated {:.3} Ah", c.soh_pct, c.rated_ah);
+            let _ = writeln!(
+                o,
+                "  State of health:   {:.1} % of rated {:.3} Ah",
+                c.soh_pct, c.rated_ah
+            );
         }
         None => {
             let _ = writeln!(o, "  Measured capacity: none (no completed capacity step)");

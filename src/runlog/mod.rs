@@ -25,7 +25,14 @@ pub const SUMMARY_JSON: &str = "summary.json";
 pub const PACK_TOML: &str = "pack.toml";
 
 /// The columns of `samples.csv`, in order.
-pub const CSV_COLUMNS: [&str; 6] = ["t_s", "step", "cycle", "voltage_v", "current_a", "temperature_c"];
+pub const CSV_COLUMNS: [&str; 6] = [
+    "t_s",
+    "step",
+    "cycle",
+    "voltage_v",
+    "current_a",
+    "temperature_c",
+];
 
 /// `summary.json`.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]

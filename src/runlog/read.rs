@@ -46,7 +46,11 @@ pub fn read_samples(path: &Path) -> Result<SampleLog, ReadError> {
     // A crash can leave the last row without its newline: drop it.
     let mut end = bytes.len();
     if end > 0 && bytes[end - 1] != b'\n' {
-        end = bytes[..end].iter().rposition(|&b| b == b'\n').map(|p| p + 1).unwrap_or(0);
+        end = bytes[..end]
+            .iter()
+            .rposition(|&b| b == b'\n')
+            .map(|p| p + 1)
+            .unwrap_or(0);
         log.dropped_partial_line = true;
     }
     let mut rdr = csv::ReaderBuilder::new()
@@ -73,7 +77,10 @@ pub fn read_samples(path: &Path) -> Result<SampleLog, ReadError> {
                     path: path.to_path_buf(),
                     line: 1,
                     column: 1,
-                    message: format!("missing column '{n}'; expected {}", super::CSV_COLUMNS.join(",")),
+                    message: format!(
+                        "missing column '{n}'; expected {}",
+                        super::CSV_COLUMNS.join(",")
+                    ),
                 })
             }
         }
@@ -94,10 +101,16 @@ pub fn read_samples(path: &Path) -> Result<SampleLog, ReadError> {
             message: format!("'{}' is not {what}", field(&rec, i)),
         };
         let num = |i: usize| -> Result<f64, ReadError> {
-            field(&rec, i).parse::<f64>().ok().filter(|x| x.is_finite()).ok_or_else(|| bad(i, "a finite number"))
+            field(&rec, i)
+                .parse::<f64>()
+                .ok()
+                .filter(|x| x.is_finite())
+                .ok_or_else(|| bad(i, "a finite number"))
         };
         let int = |i: usize| -> Result<u32, ReadError> {
-            field(&rec, i).parse::<u32>().map_err(|_| bad(i, "a whole number"))
+            field(&rec, i)
+                .parse::<u32>()
+                .map_err(|_| bad(i, "a whole number"))
         };
         let temperature_c = match temp {
             Some(i) if !field(&rec, i).is_empty() => Some(num(i)?),

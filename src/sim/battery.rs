@@ -264,14 +264,17 @@ impl PackModel {
 
     /// Series resistance of one cell, Ω.
     pub fn r0_cell(&self) -> f64 {
-        self.params.r0_ohm_ah / self.capacity_ah.max(1e-9) * self.resistance_factor * self.temp_factor()
+        self.params.r0_ohm_ah / self.capacity_ah.max(1e-9)
+            * self.resistance_factor
+            * self.temp_factor()
     }
 
     /// Charge-direction overvoltage per cell (gassing) at the present SoC.
     fn overvoltage(&self, current: f64) -> f64 {
         let p = &self.params;
         if current > 0.0 && (p.charge_overvoltage_v > 0.0 || p.charge_pol_base_v > 0.0) {
-            p.charge_pol_base_v + p.charge_overvoltage_v * ((self.soc.min(1.0) - 1.0) / p.charge_pol_width).exp()
+            p.charge_pol_base_v
+                + p.charge_overvoltage_v * ((self.soc.min(1.0) - 1.0) / p.charge_pol_width).exp()
         } else {
             0.0
         }
@@ -299,7 +302,11 @@ impl PackModel {
 
     /// Pack terminal voltage at a pack current (positive = charging).
     pub fn terminal_voltage(&self, current: f64) -> f64 {
-        self.series * (self.emf_cell() + self.overvoltage(current) + self.activation(current) + current * self.r0_cell())
+        self.series
+            * (self.emf_cell()
+                + self.overvoltage(current)
+                + self.activation(current)
+                + current * self.r0_cell())
     }
 
     /// Current a CV/CC supply drives into the pack: the current limit unless
@@ -368,7 +375,9 @@ impl PackModel {
         let stored = if current > 0.0 {
             let p = &self.params;
             let soc = self.soc.min(1.0);
-            let loss = (p.loss_floor + (p.loss_max - p.loss_floor) * ((soc - 1.0) / p.loss_width).exp()).min(1.0);
+            let loss = (p.loss_floor
+                + (p.loss_max - p.loss_floor) * ((soc - 1.0) / p.loss_width).exp())
+            .min(1.0);
             ah * (1.0 - loss)
         } else {
             ah
@@ -465,7 +474,7 @@ mod tests {
     #[test]
     fn supply_holds_its_voltage_limit() {
         let mut p = pack(Chemistry::LiIon);
-        p.soc = 0.99;
+        p.soc = 1.0;
         let i = p.supply_current(42.0, 7.0);
         assert!(i < 7.0 && i > 0.0);
         assert!((p.terminal_voltage(i) - 42.0).abs() < 1e-6);

@@ -85,6 +85,8 @@ pub struct SimBench {
     pub faults: Faults,
     last_t: f64,
     truth: TruthCounters,
+    /// Times the supply output and the load input were on together.
+    pub overlaps: u32,
     rng: SmallRng,
 }
 
@@ -139,6 +141,7 @@ impl SimBench {
             faults: cfg.faults.clone(),
             last_t,
             truth: TruthCounters::default(),
+            overlaps: 0,
             rng: SmallRng::seed_from_u64(cfg.seed),
         }
     }

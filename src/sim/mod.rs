@@ -12,7 +12,7 @@ pub mod server;
 pub use config::SimConfig;
 
 use crate::clock::Clock;
-use crate::instrument::link::{InMemoryLink, Link, LineResponder};
+use crate::instrument::link::{InMemoryLink, LineResponder, Link};
 use crate::pack::PackSpec;
 use crate::truth::{GroundTruth, TruthCounters};
 use bench::SimBench;
@@ -42,6 +42,10 @@ impl SimHandle {
     }
     pub fn load_input_on(&self) -> bool {
         self.with(|b| b.load.input_on)
+    }
+    /// Times the supply and the load were switched on together.
+    pub fn overlaps(&self) -> u32 {
+        self.with(|b| b.overlaps)
     }
     pub fn pack_soc(&self) -> f64 {
         self.with(|b| b.pack.soc)

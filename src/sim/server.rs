@@ -38,7 +38,11 @@ pub struct SimInstrument {
 }
 
 impl SimInstrument {
-    pub fn new(bench: Arc<Mutex<SimBench>>, role: SimRole, received: Arc<Mutex<Vec<String>>>) -> SimInstrument {
+    pub fn new(
+        bench: Arc<Mutex<SimBench>>,
+        role: SimRole,
+        received: Arc<Mutex<Vec<String>>>,
+    ) -> SimInstrument {
         SimInstrument {
             bench,
             role,
@@ -62,7 +66,10 @@ impl SimInstrument {
         if self.errors.len() >= QUEUE_DEPTH {
             // The newest entry is replaced by -350 when the queue is full.
             if let Some(last) = self.errors.back_mut() {
-                *last = (ScpiError::QueueOverflow.code(), ScpiError::QueueOverflow.text());
+                *last = (
+                    ScpiError::QueueOverflow.code(),
+                    ScpiError::QueueOverflow.text(),
+                );
             }
         } else {
             self.errors.push_back((e.code(), e.text()));
@@ -130,10 +137,28 @@ impl SimInstrument {
         Ok(None)
     }
 
-    fn execute(&mut self, b: &mut SimBench, cmd: Cmd, query: bool, params: &[String]) -> Result<Option<String>, ScpiError> {
+    fn execute(
+        &mut self,
+        b: &mut SimBench,
+        cmd: Cmd,
+        query: bool,
+        params: &[String],
+    ) -> Result<Option<String>, ScpiError> {
         let role = self.role;
-        let set_only = |q: bool| if q { Err(ScpiError::UndefinedHeader) } else { Ok(()) };
-        let query_only = |q: bool| if q { Ok(()) } else { Err(ScpiError::UndefinedHeader) };
+        let set_only = |q: bool| {
+            if q {
+                Err(ScpiError::UndefinedHeader)
+            } else {
+                Ok(())
+            }
+        };
+        let query_only = |q: bool| {
+            if q {
+                Ok(())
+            } else {
+                Err(ScpiError::UndefinedHeader)
+            }
+        };
         match cmd {
             Cmd::Idn => {
                 query_only(query)?;
@@ -142,7 +167,10 @@ impl SimInstrument {
                     SimRole::Source => "simulated-source",
                     SimRole::Load => "simulated-load",
                 };
-                Ok(Some(format!("packbench-sim,{model},0,{}", env!("CARGO_PKG_VERSION"))))
+                Ok(Some(format!(
+                    "packbench-sim,{model},0,{}",
+                    env!("CARGO_PKG_VERSION")
+                )))
             }
             Cmd::Rst => {
                 set_only(query)?;
@@ -192,7 +220,11 @@ impl SimInstrument {
                 Ok(Some(v.to_string()))
             }
             Cmd::Ese | Cmd::Sre => {
-                let reg = if cmd == Cmd::Ese { &mut self.ese } else { &mut self.sre };
+                let reg = if cmd == Cmd::Ese {
+                    &mut self.ese
+                } else {
+                    &mut self.sre
+                };
                 if query {
                     Self::no_params(params)?;
                     return Ok(Some(reg.to_string()));
@@ -257,7 +289,8 @@ impl SimInstrument {
             Cmd::Resistance => match role {
                 SimRole::Load => {
                     let max = b.load.resistance_max;
-                    let r = Self::level(query, params, "OHM", &mut b.load.resistance_set, max, max)?;
+                    let r =
+                        Self::level(query, params, "OHM", &mut b.load.resistance_set, max, max)?;
                     if b.load.resistance_set <= 0.0 {
                         b.load.resistance_set = max;
                         return Err(ScpiError::DataOutOfRange);
@@ -305,6 +338,9 @@ impl SimInstrument {
                     return Ok(Some(if *state { "1" } else { "0" }.into()));
                 }
                 *state = parse_bool(Self::one_param(params)?)?;
+                if b.supply.output_on && b.load.input_on {
+                    b.overlaps += 1;
+                }
                 Ok(None)
             }
             Cmd::MeasureVoltage | Cmd::MeasureCurrent | Cmd::MeasurePower => {
@@ -344,10 +380,17 @@ impl LineResponder for SimInstrument {
         let f = b.faults.clone();
         let (silent, disconnect, garbage) = match self.role {
             SimRole::Source => (f.source_silent_after_s, None, None),
-            SimRole::Load => (f.load_silent_after_s, f.load_disconnect_after_s, f.load_garbage_after_s),
+            SimRole::Load => (
+                f.load_silent_after_s,
+                f.load_disconnect_after_s,
+                f.load_garbage_after_s,
+            ),
         };
         if disconnect.is_some_and(|t| now >= t) {
-            return Err(io::Error::new(io::ErrorKind::ConnectionReset, "simulated disconnect"));
+            return Err(io::Error::new(
+                io::ErrorKind::ConnectionReset,
+                "simulated disconnect",
+            ));
         }
         if silent.is_some_and(|t| now >= t) {
             return Ok(None);

@@ -1,0 +1,296 @@
+//! The `packbench` binary as a user runs it.
+
+use std::path::Path;
+use std::process::{Command, Output};
+
+fn packbench(args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_packbench"))
+        .args(args)
+        .output()
+        .expect("run packbench")
+}
+
+fn text(b: &[u8]) -> String {
+    String::from_utf8_lossy(b).into_owned()
+}
+
+#[test]
+fn the_readme_command_runs_a_capacity_check() {
+    let dir = tempfile::tempdir().unwrap();
+    let results = dir.path().join("results");
+    let out = packbench(&[
+        "run",
+        "procedures/capacity-check.toml",
+        "--sim",
+        "--pack",
+        "DEMO-01",
+        "--results",
+        results.to_str().unwrap(),
+    ]);
+    let stdout = text(&out.stdout);
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{stdout}\n{}",
+        text(&out.stderr)
+    );
+    for needle in [
+        "Measured capacity:",
+        "Ah,",
+        "Wh",
+        "State of health:",
+        "coulombic efficiency",
+    ] {
+        assert!(stdout.contains(needle), "missing '{needle}' in:\n{stdout}");
+    }
+    let pack_dir = results.join("DEMO-01");
+    assert!(pack_dir.join("pack.toml").is_file());
+    let runs: Vec<_> = std::fs::read_dir(&pack_dir)
+        .unwrap()
+        .filter_map(|e| e.ok())
+        .filter(|e| e.path().is_dir())
+        .collect();
+    assert_eq!(runs.len(), 1);
+    let run = runs[0].path();
+    for f in ["run.json", "samples.csv", "events.jsonl", "summary.json"] {
+        assert!(run.join(f).is_file(), "{f} missing");
+    }
+    let s: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(run.join("summary.json")).unwrap()).unwrap();
+    assert_eq!(s["status"], "completed");
+    for k in ["measured_ah", "measured_wh", "soh_pct"] {
+        assert!(s["capacity"][k].is_f64(), "capacity.{k}");
+    }
+    for st in s["steps"].as_array().unwrap() {
+        for k in ["kind", "duration_s", "charge_ah", "energy_wh", "end_reason"] {
+            assert!(!st[k].is_null(), "steps[].{k}");
+        }
+    }
+    let cycle = &s["cycles"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|c| c["cycle"] == 1)
+        .unwrap()
+        .clone();
+    for k in [
+        "charge_ah",
+        "discharge_ah",
+        "coulombic_efficiency_pct",
+        "energy_efficiency_pct",
+    ] {
+        assert!(cycle[k].is_f64(), "cycles[].{k}");
+    }
+    let header = std::fs::read_to_string(run.join("samples.csv")).unwrap();
+    assert!(header.starts_with("t_s,step,cycle,voltage_v,current_a,temperature_c\n"));
+
+    // A second test of the same pack reuses its saved spec ...
+    let again = packbench(&[
+        "run",
+        "procedures/capacity-check.toml",
+        "--pack",
+        "DEMO-01",
+        "--results",
+        results.to_str().unwrap(),
+        "--quiet",
+    ]);
+    assert_eq!(again.status.code(), Some(0), "{}", text(&again.stderr));
+    assert!(text(&again.stdout).starts_with("completed "));
+    // ... and refuses a different one.
+    let clash = packbench(&[
+        "run",
+        "procedures/capacity-check.toml",
+        "--pack",
+        "DEMO-01",
+        "--results",
+        results.to_str().unwrap(),
+        "--chemistry",
+        "lfp",
+        "--series",
+        "4",
+        "--rated",
+        "100Ah",
+    ]);
+    assert_eq!(clash.status.code(), Some(2));
+    assert!(
+        text(&clash.stderr).contains("was first tested as"),
+        "{}",
+        text(&clash.stderr)
+    );
+}
+
+/// Write a broken copy of the capacity check and run it.
+fn run_broken(from: &str, to: &str) -> (Output, tempfile::TempDir) {
+    let dir = tempfile::tempdir().unwrap();
+    let proc_text = std::fs::read_to_string("procedures/capacity-check.toml").unwrap();
+    assert!(proc_text.contains(from), "fixture text '{from}' not found");
+    let path = dir.path().join("broken.toml");
+    std::fs::write(&path, proc_text.replacen(from, to, 1)).unwrap();
+    let results = dir.path().join("results");
+    let out = packbench(&[
+        "run",
+        path.to_str().unwrap(),
+        "--sim",
+        "--pack",
+        "P1",
+        "--results",
+        results.to_str().unwrap(),
+    ]);
+    (out, dir)
+}
+
+fn assert_refused(out: &Output, dir: &Path, needle: &str) {
+    let err = text(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{err}");
+    assert!(err.contains(needle), "expected '{needle}' in:\n{err}");
+    assert!(
+        !dir.join("results").exists(),
+        "a results folder was created for bad input"
+    );
+}
+
+#[test]
+fn bad_procedures_are_refused_with_a_location_and_nothing_is_created() {
+    let (o, d) = run_broken("current_max = \"1C\"", "curent_max = \"1C\"");
+    assert_refused(&o, d.path(), "broken.toml:15:1: unknown field `curent_max`");
+    let (o, d) = run_broken("current = \"0.5C\"", "current = \"0.5K\"");
+    assert_refused(&o, d.path(), "broken.toml:39:13: unknown unit 'K'");
+    let (o, d) = run_broken(
+        "ends = [\"current < 0.05C\", \"time > 5h\"]",
+        "ends = [\"voltage > 4.3V/cell\"]",
+    );
+    assert_refused(&o, d.path(), "outside the envelope");
+    let (o, d) = run_broken(
+        "ends = [\"current < 0.05C\", \"time > 5h\"]",
+        "ends = [\"current < 0.6C\"]",
+    );
+    assert_refused(&o, d.path(), "cannot end");
+    let (o, d) = run_broken("current = \"0.5C\"", "current = \"2C\"");
+    assert_refused(
+        &o,
+        d.path(),
+        "broken.toml:39:13: current 28.000 A is outside the envelope",
+    );
+}
+
+#[test]
+fn unsafe_pack_ids_are_refused() {
+    for id in ["../escape", "a/b", "..", ".", ""] {
+        let dir = tempfile::tempdir().unwrap();
+        let results = dir.path().join("results");
+        let out = packbench(&[
+            "run",
+            "procedures/capacity-check.toml",
+            "--sim",
+            "--pack",
+            id,
+            "--results",
+            results.to_str().unwrap(),
+        ]);
+        assert_eq!(
+            out.status.code(),
+            Some(2),
+            "id '{id}': {}",
+            text(&out.stderr)
+        );
+        assert!(
+            text(&out.stderr).contains("pack id"),
+            "{}",
+            text(&out.stderr)
+        );
+        assert!(!results.exists());
+        assert!(!dir.path().join("escape").exists());
+    }
+}
+
+#[test]
+fn bad_pack_options_are_refused() {
+    let out = packbench(&[
+        "check",
+        "procedures/capacity-check.toml",
+        "--chemistry",
+        "li-ion",
+        "--series",
+        "10",
+        "--rated",
+        "14V",
+    ]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(
+        text(&out.stderr).contains("a capacity (Ah or mAh)"),
+        "{}",
+        text(&out.stderr)
+    );
+    let out = packbench(&[
+        "check",
+        "procedures/capacity-check.toml",
+        "--chemistry",
+        "zinc",
+        "--series",
+        "10",
+        "--rated",
+        "14Ah",
+    ]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(text(&out.stderr).contains("unknown chemistry"));
+}
+
+#[test]
+fn check_prints_the_resolved_plan() {
+    let out = packbench(&[
+        "check",
+        "procedures/lead-acid-c20.toml",
+        "--chemistry",
+        "lead-acid",
+        "--series",
+        "6",
+        "--rated",
+        "100Ah",
+    ]);
+    let s = text(&out.stdout);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    assert!(s.contains("discharge 5.000 A (constant current)"), "{s}");
+    assert!(s.contains("charge 10.000 A to 14.400 V (CC-CV)"), "{s}");
+    assert!(s.contains("voltage < 10.500 V"), "{s}");
+    assert!(s.contains("<- capacity result"), "{s}");
+}
+
+#[test]
+fn a_safety_stop_exits_non_zero() {
+    let dir = tempfile::tempdir().unwrap();
+    let cfg = dir.path().join("sim.toml");
+    std::fs::write(&cfg, "[faults]\nsource_voltage_error_pct = 3.0\n").unwrap();
+    let results = dir.path().join("results");
+    let out = packbench(&[
+        "run",
+        "procedures/capacity-check.toml",
+        "--sim",
+        "--pack",
+        "HOT-1",
+        "--results",
+        results.to_str().unwrap(),
+        "--sim-config",
+        cfg.to_str().unwrap(),
+    ]);
+    assert_eq!(out.status.code(), Some(3), "{}", text(&out.stdout));
+    assert!(text(&out.stdout).contains("aborted"));
+    assert!(text(&out.stdout).contains("voltage_max"));
+    // A misspelt simulator setting is bad input too.
+    std::fs::write(&cfg, "[faults]\nsource_voltage_eror_pct = 3.0\n").unwrap();
+    let out = packbench(&[
+        "run",
+        "procedures/capacity-check.toml",
+        "--pack",
+        "HOT-2",
+        "--results",
+        results.to_str().unwrap(),
+        "--sim-config",
+        cfg.to_str().unwrap(),
+    ]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(
+        text(&out.stderr).contains("sim.toml:2:1"),
+        "{}",
+        text(&out.stderr)
+    );
+}

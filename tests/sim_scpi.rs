@@ -1,0 +1,138 @@
+//! The simulated instruments as SCPI endpoints, spoken to through the same
+//! session layer and in-memory link the engine uses.
+
+use packbench::clock::{Clock, SimClock};
+use packbench::instrument::scpi::{parse_error_entry, Session};
+use packbench::run::default_sim_pack;
+use packbench::sim::{self, SimConfig};
+use std::sync::Arc;
+use std::time::Duration;
+
+fn sessions() -> (Session, Session, sim::SimHandle, Arc<SimClock>) {
+    let clock = SimClock::new();
+    let c: Arc<dyn Clock> = clock.clone();
+    let links = sim::build(&default_sim_pack(), &SimConfig::ideal(), c);
+    let t = Duration::from_millis(100);
+    (
+        Session::new("source", links.source, "\n", t),
+        Session::new("load", links.load, "\n", t),
+        links.handle,
+        clock,
+    )
+}
+
+async fn next_error(s: &mut Session) -> i32 {
+    parse_error_entry(&s.query("SYST:ERR?").await.unwrap())
+        .unwrap()
+        .0
+}
+
+#[tokio::test]
+async fn identify_and_common_commands() {
+    let (mut src, mut load, _, _) = sessions();
+    let idn = src.query("*IDN?").await.unwrap();
+    assert_eq!(idn.split(',').count(), 4, "{idn}");
+    assert!(load
+        .query("*idn?")
+        .await
+        .unwrap()
+        .contains("simulated-load"));
+    assert_eq!(src.query("*OPC?").await.unwrap(), "1");
+    assert_eq!(src.query("SYST:VERS?").await.unwrap(), "1999.0");
+    assert_eq!(src.query("SYST:ERR?").await.unwrap(), "0,\"No error\"");
+}
+
+#[tokio::test]
+async fn errors_go_to_the_queue_with_standard_numbers() {
+    let (mut src, _, _, _) = sessions();
+    src.write("VOLTA 12").await.unwrap();
+    src.write("VOLT").await.unwrap();
+    src.write("VOLT 1000").await.unwrap();
+    src.write("OUTP ON,1").await.unwrap();
+    src.write("*CLS 1").await.unwrap();
+    assert_eq!(src.query("SYST:ERR:COUN?").await.unwrap(), "5");
+    assert_eq!(next_error(&mut src).await, -113); // undefined header
+    assert_eq!(next_error(&mut src).await, -109); // missing parameter
+    assert_eq!(next_error(&mut src).await, -222); // data out of range
+    assert_eq!(next_error(&mut src).await, -108); // parameter not allowed
+    assert_eq!(next_error(&mut src).await, -108);
+    assert_eq!(next_error(&mut src).await, 0);
+    // Command error sets ESR bit 5, execution error bit 4; *ESR? clears.
+    src.write("FOO").await.unwrap();
+    src.write("VOLT -1").await.unwrap();
+    assert_eq!(src.query("*ESR?").await.unwrap(), "48");
+    assert_eq!(src.query("*ESR?").await.unwrap(), "0");
+    // *CLS empties the queue.
+    src.write("*CLS").await.unwrap();
+    assert_eq!(next_error(&mut src).await, 0);
+}
+
+#[tokio::test]
+async fn queue_overflow_replaces_the_newest_entry() {
+    let (mut src, _, _, _) = sessions();
+    for _ in 0..25 {
+        src.write("BOGUS").await.unwrap();
+    }
+    let mut codes = Vec::new();
+    loop {
+        let c = next_error(&mut src).await;
+        if c == 0 {
+            break;
+        }
+        codes.push(c);
+    }
+    assert_eq!(codes.len(), packbench::sim::server::QUEUE_DEPTH);
+    assert_eq!(*codes.last().unwrap(), -350);
+    assert!(codes[..codes.len() - 1].iter().all(|&c| c == -113));
+}
+
+#[tokio::test]
+async fn compound_messages_and_forms() {
+    let (mut src, mut load, handle, clock) = sessions();
+    src.write("SOUR:VOLT 41.5;CURR 2.5").await.unwrap();
+    assert_eq!(
+        src.query("VOLT?;CURR?").await.unwrap(),
+        "+4.15000E+01;+2.50000E+00"
+    );
+    src.write("source:voltage:level:immediate:amplitude 40")
+        .await
+        .unwrap();
+    assert_eq!(src.query_number("SOUR:VOLT?").await.unwrap(), 40.0);
+    assert_eq!(src.query("VOLT? MAX").await.unwrap(), "+1.50000E+02");
+    // MIN/MAX/DEF and unit suffixes on parameters.
+    load.write("CURR 2800mA").await.unwrap();
+    assert!((load.query_number("CURR?").await.unwrap() - 2.8).abs() < 1e-12);
+    load.write("FUNC RESistance").await.unwrap();
+    assert_eq!(load.query("FUNC?").await.unwrap(), "RES");
+    load.write("FUNC CURR;:INP ON").await.unwrap();
+    assert!(handle.load_input_on());
+    clock.set(3600.0);
+    // One hour at 2.8 A: the state of charge fell by 2.8 Ah of the true capacity.
+    let soc = handle.pack_soc();
+    let expected = 0.5 - 2.8 / handle.true_capacity_ah();
+    assert!((soc - expected).abs() < 1e-9, "{soc} vs {expected}");
+    let reply = load.query("MEAS:VOLT?;CURR?").await.unwrap();
+    let parts: Vec<f64> = reply.split(';').map(|p| p.parse().unwrap()).collect();
+    assert!((parts[1] - 2.8).abs() < 1e-12);
+    // *RST switches the input off.
+    load.write("*RST").await.unwrap();
+    assert!(!handle.load_input_on());
+    assert_eq!(load.query("INP?").await.unwrap(), "0");
+    // A header path error inside a compound message (SCPI fact sheet example).
+    load.write("MEAS:VOLT?;MEAS:CURR?").await.ok();
+    let _ = load.query("*OPC?").await; // drain the partial reply, if any
+}
+
+#[tokio::test]
+async fn a_silent_instrument_times_out_instead_of_answering_zero() {
+    let clock = SimClock::new();
+    let c: Arc<dyn Clock> = clock.clone();
+    let mut cfg = SimConfig::ideal();
+    cfg.faults.load_silent_after_s = Some(10.0);
+    let links = sim::build(&default_sim_pack(), &cfg, c);
+    let mut load = Session::new("load", links.load, "\n", Duration::from_millis(50));
+    assert!(load.query_number("MEAS:VOLT?").await.is_ok());
+    clock.set(11.0);
+    let e = load.query_number("MEAS:VOLT?").await.unwrap_err();
+    assert_eq!(e.kind, packbench::instrument::ErrorKind::Timeout);
+}
