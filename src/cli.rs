@@ -66,7 +66,8 @@ pub struct PackArgs {
 pub struct RunArgs {
     /// Procedure file (TOML).
     pub procedure: PathBuf,
-    /// Use the simulated bench (the default while no bench file is given).
+    /// Use the simulated bench. It is also the default: this version has
+    /// no bench files yet, so every run uses the simulated bench.
     #[arg(long)]
     pub sim: bool,
     /// Pack id: letters, digits, '-', '_', '.'; becomes the results folder.
@@ -187,7 +188,6 @@ fn report_error(e: &RunError) -> i32 {
 
 /// `packbench run`.
 pub fn cmd_run(a: RunArgs) -> i32 {
-    let _ = a.sim; // the simulated bench is the only bench until bench files exist
     let prepared = (|| -> Result<_, RunError> {
         let speed = parse_speed(&a.speed)?;
         let given = pack_from_args(&a.pack_args)?;

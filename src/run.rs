@@ -154,14 +154,12 @@ pub fn resolve_pack(
 /// Check the plan's setpoints against the instruments' declared ranges.
 pub fn check_ranges(p: &LoadedProcedure, source: &Profile, load: &Profile) -> Result<(), RunError> {
     let mut errors = Vec::new();
-    let text = &p.text;
     for st in &p.plan.steps {
         let at = Location {
             file: p.path.clone(),
             line: st.line,
             column: 1,
         };
-        let _ = text;
         let mut out = |what: String| {
             errors.push(LocatedError {
                 location: at.clone(),

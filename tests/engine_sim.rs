@@ -354,3 +354,110 @@ async fn step_transitions_switch_the_old_instrument_off_first() {
     // The simulated bench counts every moment both were on together.
     assert_eq!(h.overlaps(), 0);
 }
+
+#[tokio::test]
+async fn bad_input_sends_nothing_to_an_instrument() {
+    let dir = tempfile::tempdir().unwrap();
+    let clock = SimClock::new();
+    let c: Arc<dyn Clock> = clock;
+    let cfg = SimConfig::default();
+    let links = sim::build(&li_ion(), &cfg, Arc::clone(&c));
+    let h = links.handle.clone();
+    let bad = dir.path().join("bad.toml");
+    let text = std::fs::read_to_string("procedures/capacity-check.toml").unwrap();
+    std::fs::write(&bad, text.replace("\"0.5C\"", "\"5C\"")).unwrap();
+    let req = RunRequest {
+        procedure: bad,
+        pack_id: "TEST-1".into(),
+        pack: PackSource::Given(li_ion()),
+        results: dir.path().join("results"),
+    };
+    // Validation fails before any link is used or any folder is made ...
+    assert!(run::prepare(&req).unwrap_err().is_input());
+    assert_eq!(h.messages_received(), 0);
+    assert!(!dir.path().join("results").exists());
+    // ... while a valid request does talk to the instruments (the counter works).
+    let good = RunRequest {
+        procedure: "procedures/capacity-check.toml".into(),
+        ..req
+    };
+    let p = run::prepare(&good).unwrap();
+    run::execute_sim_links(&p, &cfg, c, links, "max", StopHandle::new())
+        .await
+        .unwrap();
+    assert!(h.messages_received() > 1000);
+}
+
+/// A sink that fails after some samples: by panicking, or by an I/O error
+/// (a full disk).
+struct FailingSink {
+    after: usize,
+    panic: bool,
+    seen: usize,
+}
+
+impl packbench::engine::event::Sink for FailingSink {
+    fn sample(&mut self, _: &packbench::sample::Sample) -> std::io::Result<()> {
+        self.seen += 1;
+        if self.seen > self.after {
+            if self.panic {
+                panic!("sink failure injected by the test");
+            }
+            return Err(std::io::Error::other("disk full (injected)"));
+        }
+        Ok(())
+    }
+    fn event(&mut self, _: &packbench::engine::event::Event) -> std::io::Result<()> {
+        Ok(())
+    }
+}
+
+#[tokio::test]
+async fn a_panic_or_a_log_failure_mid_run_still_ends_with_outputs_off() {
+    use packbench::engine::{Engine, Station};
+    use packbench::instrument::profile::{Profile, ProfileRole};
+    use packbench::instrument::{Load, Source};
+    for panic in [true, false] {
+        let dir = tempfile::tempdir().unwrap();
+        let p = prepare("procedures/capacity-check.toml", li_ion(), dir.path());
+        let clock = SimClock::new();
+        let c: Arc<dyn Clock> = clock;
+        let links = sim::build(&p.pack, &SimConfig::default(), Arc::clone(&c));
+        let h = links.handle.clone();
+        let mut station = Station {
+            source: Source::connect(links.source, Profile::builtin(ProfileRole::Source))
+                .await
+                .unwrap(),
+            load: Load::connect(links.load, Profile::builtin(ProfileRole::Load))
+                .await
+                .unwrap(),
+        };
+        let mut sink = FailingSink {
+            after: 100,
+            panic,
+            seen: 0,
+        };
+        let out = Engine::new(
+            &p.procedure.plan,
+            &mut station,
+            c,
+            &mut sink,
+            None,
+            StopHandle::new(),
+        )
+        .run()
+        .await;
+        assert_eq!(out.status, RunState::Aborted);
+        let reason = out.reason.unwrap();
+        if panic {
+            assert!(
+                reason.contains("internal error") && reason.contains("injected"),
+                "{reason}"
+            );
+        } else {
+            assert!(reason.contains("cannot write the log"), "{reason}");
+        }
+        assert!(out.source_off_confirmed && out.load_off_confirmed);
+        assert!(!h.load_input_on() && !h.source_output_on());
+    }
+}

@@ -494,7 +494,12 @@ impl<'a> Engine<'a> {
             if self.stop.stop_requested() {
                 return Err(Stop::Interrupted);
             }
-            let mut next = t + every;
+            // Samples follow a grid from the step's start, so a paced clock
+            // that wakes late does not stretch the interval (a late sample
+            // is taken at once), and extra samples at pulse edges do not
+            // shift it.
+            let k = ((t - tracker.t0) / every + 1e-9).floor() + 1.0;
+            let mut next = tracker.t0 + k * every;
             if let Some(tl) = time_limit {
                 if tl > t + 1e-9 {
                     next = next.min(tl);

@@ -154,7 +154,7 @@ impl StepTracker {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::procedure::{DischargeMode, PlanStep, StepKind};
+    use crate::procedure::{PlanStep, StepKind};
 
     fn step(kind: StepKind, ends: Vec<EndCondition>) -> PlanStep {
         PlanStep {
@@ -258,6 +258,5 @@ mod tests {
             ended.is_some_and(|k| (1030..=1036).contains(&k)),
             "{ended:?}"
         );
-        let _ = DischargeMode::Current { current_a: 1.0 };
     }
 }
