@@ -245,29 +245,30 @@ impl Instrument {
     }
 
     /// Voltage and current as the instrument reports them (magnitudes).
+    /// Called once per sample: borrows the templates, clones nothing.
     async fn measure_raw(&mut self) -> Result<(f64, f64), InstrumentError> {
         let c = &self.profile.commands;
-        if let Some(both) = c.measure_voltage_current.clone() {
-            let v = self.session.query_numbers(&both, 2).await?;
+        if let Some(both) = &c.measure_voltage_current {
+            let v = self.session.query_numbers(both, 2).await?;
             Ok((v[0], v[1]))
         } else {
-            let (mv, mc) = (c.measure_voltage.clone(), c.measure_current.clone());
-            let v = self.session.query_number(&mv).await?;
-            let i = self.session.query_number(&mc).await?;
+            let v = self.session.query_number(&c.measure_voltage).await?;
+            let i = self.session.query_number(&c.measure_current).await?;
             Ok((v, i))
         }
     }
 
     /// Voltage only.
     pub async fn measure_voltage(&mut self) -> Result<f64, InstrumentError> {
-        let c = self.profile.commands.measure_voltage.clone();
-        self.session.query_number(&c).await
+        self.session
+            .query_number(&self.profile.commands.measure_voltage)
+            .await
     }
 
     /// Temperature from the instrument's sensor input, if it has one.
     pub async fn measure_temperature(&mut self) -> Result<Option<f64>, InstrumentError> {
-        match self.profile.commands.measure_temperature.clone() {
-            Some(c) => Ok(Some(self.session.query_number(&c).await?)),
+        match &self.profile.commands.measure_temperature {
+            Some(c) => Ok(Some(self.session.query_number(c).await?)),
             None => Ok(None),
         }
     }

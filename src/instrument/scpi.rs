@@ -17,6 +17,7 @@ pub struct Session {
     name: String,
     link: Link,
     pending: Vec<u8>,
+    out: Vec<u8>,
     write_term: String,
     timeout: Duration,
     /// Count of lines written, for diagnostics and tests.
@@ -29,6 +30,7 @@ impl Session {
             name: name.to_string(),
             link,
             pending: Vec::new(),
+            out: Vec::with_capacity(128),
             write_term: write_term.to_string(),
             timeout,
             lines_written: 0,
@@ -49,10 +51,11 @@ impl Session {
 
     /// Send one program message.
     pub async fn write(&mut self, message: &str) -> Result<(), InstrumentError> {
-        let mut bytes = Vec::with_capacity(message.len() + 2);
-        bytes.extend_from_slice(message.as_bytes());
-        bytes.extend_from_slice(self.write_term.as_bytes());
-        let r = tokio::time::timeout(self.timeout, self.link.write_all(&bytes)).await;
+        // One buffer, one write: the message and its terminator leave together.
+        self.out.clear();
+        self.out.extend_from_slice(message.as_bytes());
+        self.out.extend_from_slice(self.write_term.as_bytes());
+        let r = tokio::time::timeout(self.timeout, self.link.write_all(&self.out)).await;
         match r {
             Ok(Ok(())) => {
                 self.lines_written += 1;

@@ -65,7 +65,7 @@ pub fn summary(s: &Summary) -> String {
         if let (Some(ce), Some(ee)) = (c.coulombic_efficiency_pct, c.energy_efficiency_pct) {
             let _ = writeln!(
                 o,
-                "  Cycle {}: charged {:.3} Ah / {:.2} Wh, discharged {:.3} Ah / {:.2} Wh; coulombic efficiency {:.2} %, energy efficiency {:.2} %",
+                "  Cycle {}: charged {:.3} Ah / {:.2} Wh, discharged {:.3} Ah / {:.2} Wh; coulombic efficiency {:.3} %, energy efficiency {:.2} %",
                 c.cycle, c.charge_ah, c.charge_wh, c.discharge_ah, c.discharge_wh, ce, ee
             );
         }
