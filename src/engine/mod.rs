@@ -312,6 +312,12 @@ impl<'a> Engine<'a> {
                 Ok(r) => return Ok(r),
                 Err(e) if e.kind == ErrorKind::Timeout && tries < MEASURE_RETRIES => {
                     tries += 1;
+                    // Best effort: if it fails, the retry below fails too.
+                    let _ = if e.instrument == "source" {
+                        self.station.source.0.resync().await
+                    } else {
+                        self.station.load.0.resync().await
+                    };
                     let step = self.current_step;
                     self.emit(Event::InstrumentError {
                         t_s: self.t(),

@@ -124,6 +124,13 @@ impl Instrument {
         }
     }
 
+    /// After a timeout: drop stale input and check the instrument answers
+    /// `*OPC?` before the next query, so a late reply is never taken for
+    /// the answer to another query.
+    pub async fn resync(&mut self) -> Result<(), InstrumentError> {
+        self.session.resync().await
+    }
+
     /// Read the error queue until it is empty; return the entries found.
     pub async fn drain_errors(&mut self) -> Result<Vec<(i32, String)>, InstrumentError> {
         let Some(q) = self.profile.commands.error_query.clone() else {
