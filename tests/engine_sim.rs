@@ -461,3 +461,73 @@ async fn a_panic_or_a_log_failure_mid_run_still_ends_with_outputs_off() {
         assert!(!h.load_input_on() && !h.source_output_on());
     }
 }
+
+#[tokio::test]
+async fn every_step_kind_and_mode_runs_on_the_simulated_bench() {
+    let dir = tempfile::tempdir().unwrap();
+    let p = prepare("tests/fixtures/all-step-kinds.toml", li_ion(), dir.path());
+    let (r, h) = run_sim(&p, &SimConfig::ideal(), StopHandle::new()).await;
+    assert_eq!(
+        r.outcome.status,
+        RunState::Completed,
+        "{:?}",
+        r.outcome.reason
+    );
+    assert_eq!(h.overlaps(), 0);
+    let ends: Vec<&str> = r
+        .summary
+        .steps
+        .iter()
+        .map(|s| s.end_kind.as_deref().unwrap())
+        .collect();
+    assert_eq!(
+        ends,
+        [
+            "voltage_above",
+            "settled",
+            "levels_done",
+            "levels_done",
+            "energy",
+            "charge"
+        ]
+    );
+    let log = read_samples(&r.run_dir.join("samples.csv")).unwrap();
+    // Pulse: samples at the end of each level (before the edge) and just
+    // after it (same time, new current), as a two-level resistance reading needs.
+    let pulse = r.summary.steps.iter().find(|s| s.kind == "pulse").unwrap();
+    let at = |dt: f64| -> Vec<f64> {
+        log.samples
+            .iter()
+            .filter(|s| s.step == pulse.step && (s.t_s - pulse.start_s - dt).abs() < 1e-6)
+            .map(|s| s.current_a)
+            .collect()
+    };
+    assert_eq!(at(10.0), vec![-2.8, -14.0]);
+    assert_eq!(at(11.0), vec![-14.0, 0.0]);
+    assert_eq!(at(16.0), vec![0.0, 7.0]);
+    assert!((pulse.duration_s - 21.0).abs() < 1e-9);
+    assert!(pulse.charge_in_ah > 0.0 && pulse.charge_out_ah > 0.0);
+    // Constant power: V·I stays at 100 W; the step ended past 20 Wh.
+    let cp = r
+        .summary
+        .steps
+        .iter()
+        .find(|s| s.end_kind.as_deref() == Some("energy"))
+        .unwrap();
+    for s in log.samples.iter().filter(|s| s.step == cp.step) {
+        assert!((s.voltage_v * -s.current_a - 100.0).abs() < 0.01, "{s:?}");
+    }
+    assert!(cp.energy_out_wh >= 20.0 && cp.energy_out_wh < 20.1);
+    // Constant resistance: I = V / R.
+    let cr = r
+        .summary
+        .steps
+        .iter()
+        .find(|s| s.end_kind.as_deref() == Some("charge"))
+        .unwrap();
+    for s in log.samples.iter().filter(|s| s.step == cr.step) {
+        // The log keeps 6 decimals.
+        assert!((s.voltage_v / 20.0 + s.current_a).abs() < 2e-5, "{s:?}");
+    }
+    assert!(cr.charge_out_ah >= 0.5 && cr.charge_out_ah < 0.501);
+}
