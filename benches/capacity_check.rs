@@ -30,6 +30,7 @@ fn main() {
             pack_id: "BENCH-1".into(),
             pack: PackSource::Given(run::default_sim_pack()),
             results: dir.path().to_path_buf(),
+            options: Default::default(),
         };
         let t = Instant::now();
         let prepared = run::prepare(&req).expect("valid procedure");

@@ -6,13 +6,16 @@
 //! 3 safety stop or instrument fault (run aborted), 5 interrupted (Ctrl-C).
 
 use crate::engine::control::StopHandle;
+use crate::fade::grade::Policy;
+use crate::fade::{fleet, history, model};
 use crate::pack::{parse_rate, Chemistry, PackSpec};
 use crate::procedure;
 use crate::report;
-use crate::run::{self, PackSource, RunError, RunRequest, Speed};
+use crate::run::{self, PackSource, RunError, RunOptions, RunRequest, Speed};
 use crate::sim::SimConfig;
 use crate::units;
 use anyhow::{anyhow, Context};
+use chrono::NaiveDate;
 use clap::{Args, Parser, Subcommand};
 use std::path::PathBuf;
 
@@ -37,6 +40,73 @@ pub enum Command {
     Run(RunArgs),
     /// Validate a procedure for a pack and print the resolved plan.
     Check(CheckArgs),
+    /// Write (again) the HTML report of a run folder.
+    Report(ReportArgs),
+    /// Capacity fade of one pack across its tests, with the end-of-life projection.
+    Fade(FadeArgs),
+    /// Rank every pack under a results folder.
+    Fleet(FleetArgs),
+    /// Run the fictional rental-fleet demo on the simulated bench.
+    Demo(DemoArgs),
+}
+
+#[derive(Debug, Args)]
+pub struct ReportArgs {
+    /// A run folder (results/<pack>/<run>).
+    pub run_dir: PathBuf,
+}
+
+#[derive(Debug, Args)]
+pub struct FadeArgs {
+    /// Pack id.
+    pub pack: String,
+    /// Results folder.
+    #[arg(long, default_value = "results")]
+    pub results: PathBuf,
+    /// End of life, % of rated capacity.
+    #[arg(long, default_value = "80%")]
+    pub threshold: String,
+    /// Earlier measurements: CSV with date,cycles,capacity_ah,resistance_mohm.
+    #[arg(long)]
+    pub history: Option<PathBuf>,
+    /// Print JSON instead of text.
+    #[arg(long)]
+    pub json: bool,
+    /// Where to write the HTML report (default results/<pack>/fade.html).
+    #[arg(long)]
+    pub html: Option<PathBuf>,
+}
+
+#[derive(Debug, Args)]
+pub struct FleetArgs {
+    /// Results folder.
+    #[arg(default_value = "results")]
+    pub results: PathBuf,
+    /// End of life, % of rated capacity.
+    #[arg(long, default_value = "80%")]
+    pub threshold: String,
+    /// A test is overdue after this long, e.g. 90d or 13w... in days: 90d.
+    #[arg(long, default_value = "92d")]
+    pub interval: String,
+    /// The date to judge overdue tests against (default: today, UTC).
+    #[arg(long)]
+    pub today: Option<String>,
+    /// Print CSV instead of a table.
+    #[arg(long, conflicts_with = "json")]
+    pub csv: bool,
+    /// Print JSON instead of a table.
+    #[arg(long)]
+    pub json: bool,
+    /// Also write the HTML fleet report here.
+    #[arg(long)]
+    pub html: Option<PathBuf>,
+}
+
+#[derive(Debug, Args)]
+pub struct DemoArgs {
+    /// Folder for the demo's results and reports.
+    #[arg(long, default_value = "demo")]
+    pub out: PathBuf,
 }
 
 /// The pack under test, given on the command line or as a file.
@@ -57,8 +127,11 @@ pub struct PackArgs {
     /// Rated discharge rate, e.g. 0.2C or 20h.
     #[arg(long)]
     pub rated_rate: Option<String>,
+    /// The maker's DC resistance of the new pack, e.g. 60mohm.
+    #[arg(long)]
+    pub rated_resistance: Option<String>,
     /// A pack spec TOML file instead of the options above.
-    #[arg(long, conflicts_with_all = ["chemistry", "series", "rated", "rated_energy", "rated_rate"])]
+    #[arg(long, conflicts_with_all = ["chemistry", "series", "rated", "rated_energy", "rated_rate", "rated_resistance"])]
     pub pack_spec: Option<PathBuf>,
 }
 
@@ -90,6 +163,15 @@ pub struct RunArgs {
     /// Print only the final summary line.
     #[arg(long)]
     pub quiet: bool,
+    /// The day the test counts for, YYYY-MM-DD (default: today, UTC).
+    #[arg(long)]
+    pub test_date: Option<String>,
+    /// The pack's equivalent full cycles from its own counter, if known.
+    #[arg(long)]
+    pub cycle_count: Option<f64>,
+    /// Grading policy (TOML); default: the built-in policy.
+    #[arg(long)]
+    pub policy: Option<PathBuf>,
 }
 
 #[derive(Debug, Args)]
@@ -112,9 +194,9 @@ fn pack_from_args(a: &PackArgs) -> Result<Option<PackSpec>, RunError> {
         return run::read_pack_file(path).map(Some);
     }
     if a.chemistry.is_none() && a.series.is_none() && a.rated.is_none() {
-        if a.rated_energy.is_some() || a.rated_rate.is_some() {
+        if a.rated_energy.is_some() || a.rated_rate.is_some() || a.rated_resistance.is_some() {
             return Err(RunError::Pack(
-                "--rated-energy and --rated-rate need --chemistry, --series and --rated".into(),
+                "--rated-energy, --rated-rate and --rated-resistance need --chemistry, --series and --rated".into(),
             ));
         }
         return Ok(None);
@@ -154,7 +236,15 @@ fn pack_from_args(a: &PackArgs) -> Result<Option<PackSpec>, RunError> {
         .map(parse_rate)
         .transpose()
         .map_err(|e| RunError::Pack(format!("--rated-rate: {e}")))?;
+    let resistance = a
+        .rated_resistance
+        .as_deref()
+        .map(units::resistance_ohm)
+        .transpose()
+        .map_err(|e| RunError::Pack(format!("--rated-resistance: {e}")))?
+        .map(|r| r * 1000.0);
     let spec = PackSpec {
+        rated_resistance_mohm: resistance,
         chemistry,
         series: a.series.unwrap_or(0),
         rated_capacity_ah: rated,
@@ -191,6 +281,25 @@ pub fn cmd_run(a: RunArgs) -> i32 {
     let prepared = (|| -> Result<_, RunError> {
         let speed = parse_speed(&a.speed)?;
         let given = pack_from_args(&a.pack_args)?;
+        let mut options = RunOptions::default();
+        if let Some(d) = &a.test_date {
+            options.test_date = parse_date(d)?;
+        }
+        if let Some(c) = a.cycle_count {
+            if !(c.is_finite() && c >= 0.0) {
+                return Err(RunError::Pack(format!(
+                    "--cycle-count {c}: expected a count of 0 or more"
+                )));
+            }
+            options.cycle_count = Some(c);
+        }
+        if let Some(path) = &a.policy {
+            let text = std::fs::read_to_string(path).map_err(|source| RunError::Io {
+                path: path.clone(),
+                source,
+            })?;
+            options.policy = Policy::from_toml(path, &text)?;
+        }
         let req = RunRequest {
             procedure: a.procedure.clone(),
             pack_id: a.pack.clone(),
@@ -201,6 +310,7 @@ pub fn cmd_run(a: RunArgs) -> i32 {
                 },
             },
             results: a.results.clone(),
+            options,
         };
         let mut cfg = match &a.sim_config {
             Some(path) => {
@@ -312,6 +422,129 @@ pub fn cmd_check(a: CheckArgs) -> anyhow::Result<i32> {
     Ok(EXIT_OK)
 }
 
+fn parse_date(s: &str) -> Result<NaiveDate, RunError> {
+    NaiveDate::parse_from_str(s.trim(), "%Y-%m-%d")
+        .map_err(|_| RunError::Pack(format!("'{s}' is not a date; expected YYYY-MM-DD")))
+}
+
+fn parse_threshold(s: &str) -> Result<f64, RunError> {
+    match units::parse(s) {
+        Ok(units::Quantity::Percent(p)) if p > 0.0 && p < 100.0 => Ok(p),
+        _ => Err(RunError::Pack(format!(
+            "threshold '{s}': expected a percentage such as 80%"
+        ))),
+    }
+}
+
+/// `packbench report`.
+pub fn cmd_report(a: ReportArgs) -> anyhow::Result<i32> {
+    let summary_path = a.run_dir.join(crate::runlog::SUMMARY_JSON);
+    let text = std::fs::read_to_string(&summary_path)
+        .with_context(|| format!("reading {}", summary_path.display()))?;
+    let summary: crate::runlog::Summary = serde_json::from_str(&text)
+        .with_context(|| format!("{} is not a packbench summary", summary_path.display()))?;
+    let log = crate::runlog::read::read_samples(&a.run_dir.join(crate::runlog::SAMPLES_CSV))?;
+    let out = a.run_dir.join(crate::runlog::REPORT_HTML);
+    crate::runlog::write::atomic_write(
+        &out,
+        report::html::run_report(&summary, &log.samples).as_bytes(),
+    )
+    .with_context(|| format!("writing {}", out.display()))?;
+    print!("{}", report::text::summary(&summary));
+    println!("  Report: {}", out.display());
+    Ok(EXIT_OK)
+}
+
+/// `packbench fade`.
+pub fn cmd_fade(a: FadeArgs) -> anyhow::Result<i32> {
+    let threshold = parse_threshold(&a.threshold)?;
+    let h = history::load(&a.results, &a.pack, a.history.as_deref())?;
+    let fa = model::analyze(&h, threshold);
+    let out = a
+        .html
+        .clone()
+        .unwrap_or_else(|| a.results.join(&a.pack).join("fade.html"));
+    let html = report::html::pack_report(&h, &fa, &history::capacity_curves(&h));
+    std::fs::write(&out, html).with_context(|| format!("writing {}", out.display()))?;
+    if a.json {
+        #[derive(serde::Serialize)]
+        struct FadeJson<'a> {
+            history: &'a history::PackHistory,
+            fade: &'a model::FadeAnalysis,
+        }
+        println!(
+            "{}",
+            serde_json::to_string_pretty(&FadeJson {
+                history: &h,
+                fade: &fa
+            })?
+        );
+    } else {
+        print!("{}", report::text::fade(&h, &fa));
+        println!("  Report: {}", out.display());
+    }
+    Ok(EXIT_OK)
+}
+
+/// `packbench fleet`.
+pub fn cmd_fleet(a: FleetArgs) -> anyhow::Result<i32> {
+    let threshold = parse_threshold(&a.threshold)?;
+    let interval = match units::parse(&a.interval) {
+        Ok(units::Quantity::Seconds(s)) if s >= 86_400.0 => (s / 86_400.0).round() as i64,
+        _ => {
+            return Err(RunError::Pack(format!(
+                "--interval '{}': expected a duration in days, e.g. 92d",
+                a.interval
+            ))
+            .into())
+        }
+    };
+    let today = match &a.today {
+        Some(d) => parse_date(d)?,
+        None => chrono::Utc::now().date_naive(),
+    };
+    let f = fleet::build(&a.results, today, interval, threshold)?;
+    if let Some(path) = &a.html {
+        let mut hs = Vec::new();
+        for r in &f.rows {
+            hs.push(history::load(&a.results, &r.pack_id, None)?);
+        }
+        std::fs::write(path, report::html::fleet_report(&f, &hs, "Battery fleet"))
+            .with_context(|| format!("writing {}", path.display()))?;
+    }
+    if a.json {
+        println!("{}", serde_json::to_string_pretty(&f)?);
+    } else if a.csv {
+        print!("{}", fleet::to_csv(&f)?);
+    } else {
+        print!("{}", report::text::fleet(&f));
+    }
+    Ok(EXIT_OK)
+}
+
+/// `packbench demo`.
+pub fn cmd_demo(a: DemoArgs) -> anyhow::Result<i32> {
+    let t = std::time::Instant::now();
+    let d = crate::demo::run_demo(&a.out)?;
+    print!("{}", report::text::fleet(&d.fleet));
+    println!(
+        "\nDemo: {} tests of {} packs on the simulated bench in {:.1} s.",
+        d.runs,
+        d.pack_reports.len(),
+        t.elapsed().as_secs_f64()
+    );
+    println!("Open the fleet report:   {}", d.fleet_report.display());
+    println!(
+        "Pack fade reports:       {}",
+        d.results.join("<pack>/fade.html").display()
+    );
+    println!(
+        "Run reports and grades:  {}",
+        d.results.join("<pack>/<run>/report.html").display()
+    );
+    Ok(EXIT_OK)
+}
+
 /// Parse arguments, dispatch, return the exit code.
 pub fn main() -> i32 {
     let cli = match Cli::try_parse() {
@@ -325,19 +558,30 @@ pub fn main() -> i32 {
             };
         }
     };
-    match cli.command {
-        Command::Run(a) => cmd_run(a),
-        Command::Check(a) => match cmd_check(a).context("check failed") {
-            Ok(code) => code,
-            Err(e) => {
-                let input = e.downcast_ref::<RunError>().is_some_and(RunError::is_input);
-                eprintln!("error: {:#}", anyhow!(e));
-                if input {
-                    EXIT_BAD_INPUT
-                } else {
-                    EXIT_FAILURE
-                }
+    let result = match cli.command {
+        Command::Run(a) => return cmd_run(a),
+        Command::Check(a) => cmd_check(a).context("check failed"),
+        Command::Report(a) => cmd_report(a).context("report failed"),
+        Command::Fade(a) => cmd_fade(a).context("fade analysis failed"),
+        Command::Fleet(a) => cmd_fleet(a).context("fleet view failed"),
+        Command::Demo(a) => cmd_demo(a).context("demo failed"),
+    };
+    match result {
+        Ok(code) => code,
+        Err(e) => {
+            let input = e.downcast_ref::<RunError>().is_some_and(RunError::is_input)
+                || e.downcast_ref::<history::HistoryError>().is_some_and(|h| {
+                    matches!(
+                        h,
+                        history::HistoryError::Bad(_) | history::HistoryError::Pack(_)
+                    )
+                });
+            eprintln!("error: {:#}", anyhow!(e));
+            if input {
+                EXIT_BAD_INPUT
+            } else {
+                EXIT_FAILURE
             }
-        },
+        }
     }
 }

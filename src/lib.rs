@@ -25,7 +25,9 @@
 pub mod analysis;
 pub mod cli;
 pub mod clock;
+pub mod demo;
 pub mod engine;
+pub mod fade;
 pub mod instrument;
 pub mod location;
 pub mod pack;

@@ -11,7 +11,7 @@ use std::str::FromStr;
 use toml::Spanned;
 
 /// Cell chemistry families the bench knows defaults for.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize, Deserialize)]
 #[serde(rename_all = "kebab-case")]
 pub enum Chemistry {
     /// Lithium-ion with a layered oxide cathode (NMC-class), 4.2 V/cell full.
@@ -95,6 +95,9 @@ pub struct PackSpec {
     pub rated_energy_wh: Option<f64>,
     /// The rated discharge rate as a C-rate (e.g. 0.2 for the 5-hour rate).
     pub rated_rate_c: Option<f64>,
+    /// The maker's DC resistance of the new pack, mΩ (for grading
+    /// resistance growth when the pack's first test is not a new pack).
+    pub rated_resistance_mohm: Option<f64>,
 }
 
 impl PackSpec {
@@ -127,6 +130,13 @@ impl PackSpec {
                 return Err(format!("rated energy must be above 0 Wh, got {e} Wh"));
             }
         }
+        if let Some(r) = self.rated_resistance_mohm {
+            if !(r.is_finite() && r > 0.0) {
+                return Err(format!(
+                    "rated resistance must be above 0 mohm, got {r} mohm"
+                ));
+            }
+        }
         if let Some(c) = self.rated_rate_c {
             if !(c.is_finite() && c > 0.0 && c <= 100.0) {
                 return Err(format!(
@@ -152,6 +162,9 @@ impl PackSpec {
         if let Some(c) = self.rated_rate_c {
             s.push_str(&format!("rated_rate = \"{c}C\"\n"));
         }
+        if let Some(r) = self.rated_resistance_mohm {
+            s.push_str(&format!("rated_resistance = \"{r}mohm\"\n"));
+        }
         s
     }
 
@@ -165,6 +178,7 @@ impl PackSpec {
             rated_capacity: Spanned<String>,
             rated_energy: Option<Spanned<String>>,
             rated_rate: Option<Spanned<String>>,
+            rated_resistance: Option<Spanned<String>>,
         }
         let raw: Raw =
             toml::from_str(text).map_err(|e| InputErrors(vec![toml_error(file, text, &e)]))?;
@@ -207,6 +221,13 @@ impl PackSpec {
                 .ok(),
             None => None,
         };
+        let resistance = match &raw.rated_resistance {
+            Some(s) => units::resistance_ohm(s.get_ref())
+                .map(|r| r * 1000.0)
+                .map_err(|e| errors.push(at(&s.span(), e.to_string())))
+                .ok(),
+            None => None,
+        };
         if !errors.is_empty() {
             return Err(InputErrors(errors));
         }
@@ -219,6 +240,7 @@ impl PackSpec {
             rated_capacity_ah: rated,
             rated_energy_wh: energy,
             rated_rate_c: rate,
+            rated_resistance_mohm: resistance,
         };
         spec.check().map_err(|m| {
             InputErrors(vec![LocatedError {
@@ -301,6 +323,7 @@ mod tests {
             rated_capacity_ah: 100.0,
             rated_energy_wh: Some(1280.0),
             rated_rate_c: Some(0.2),
+            rated_resistance_mohm: Some(12.5),
         };
         let back = PackSpec::from_toml(Path::new("p.toml"), &spec.to_toml()).unwrap();
         assert_eq!(back, spec);

@@ -8,6 +8,7 @@ use crate::clock::{Clock, PacedClock, SimClock};
 use crate::engine::control::StopHandle;
 use crate::engine::state::RunState;
 use crate::engine::{Engine, RunOutcome, Station, TruthStep};
+use crate::fade::grade::{GradeInputs, Policy};
 use crate::instrument::link::Link;
 use crate::instrument::profile::{Profile, ProfileRole};
 use crate::instrument::{InstrumentError, Load, Source};
@@ -16,9 +17,10 @@ use crate::pack::{check_pack_id, Chemistry, PackIdError, PackSpec};
 use crate::procedure::{self, DischargeMode, LoadedProcedure, StepKind};
 use crate::runlog::read::{self, ReadError};
 use crate::runlog::write::{create_run_folder, write_json, RunLogSink};
-use crate::runlog::{PackSummary, Summary, PACK_TOML, RUN_JSON, SUMMARY_JSON};
+use crate::runlog::{PackSummary, Summary, PACK_TOML, REPORT_HTML, RUN_JSON, SUMMARY_JSON};
 use crate::sim::{self, SimConfig};
 use crate::truth::GroundTruth;
+use chrono::NaiveDate;
 use serde::Serialize;
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
@@ -69,6 +71,7 @@ pub fn default_sim_pack() -> PackSpec {
         rated_capacity_ah: 14.0,
         rated_energy_wh: Some(504.0),
         rated_rate_c: Some(0.2),
+        rated_resistance_mohm: None,
     }
 }
 
@@ -89,6 +92,28 @@ pub struct RunRequest {
     pub pack_id: String,
     pub pack: PackSource,
     pub results: PathBuf,
+    pub options: RunOptions,
+}
+
+/// What a test records besides its measurements.
+#[derive(Debug, Clone, PartialEq)]
+pub struct RunOptions {
+    /// The day the test counts for (default: today, UTC).
+    pub test_date: NaiveDate,
+    /// The pack's equivalent full cycles from its own counter, if known.
+    pub cycle_count: Option<f64>,
+    /// The shop's grading policy.
+    pub policy: Policy,
+}
+
+impl Default for RunOptions {
+    fn default() -> Self {
+        RunOptions {
+            test_date: chrono::Utc::now().date_naive(),
+            cycle_count: None,
+            policy: Policy::default_policy(),
+        }
+    }
 }
 
 /// A request that has passed every check.
@@ -102,6 +127,7 @@ pub struct Prepared {
     pub save_pack: bool,
     /// A note for the operator about where the spec came from.
     pub pack_note: Option<String>,
+    pub options: RunOptions,
 }
 
 /// Read a pack spec file.
@@ -262,6 +288,7 @@ pub fn prepare(req: &RunRequest) -> Result<Prepared, RunError> {
         pack,
         save_pack,
         pack_note,
+        options: req.options.clone(),
     })
 }
 
@@ -282,6 +309,8 @@ pub struct Manifest {
     pub pack_id: String,
     pub started_utc: String,
     pub finished_utc: Option<String>,
+    pub test_date: String,
+    pub cycle_count: Option<f64>,
     pub status: String,
     pub stop_reason: Option<String>,
     pub procedure: ProcedureRecord,
@@ -451,11 +480,14 @@ pub async fn execute(
     sim: Option<(SimConfig, f64)>,
 ) -> Result<RunReport, RunError> {
     let started = chrono::Utc::now();
+    // Sorted by the day the test counts for, then the wall-clock start.
     let base_id = format!(
-        "{}-{}",
-        started.format("%Y%m%dT%H%M%SZ"),
+        "{}-{}Z-{}",
+        p.options.test_date.format("%Y%m%d"),
+        started.format("%H%M%S"),
         procedure_stem(&p.procedure.path)
     );
+
     if p.save_pack {
         std::fs::create_dir_all(&p.pack_dir).map_err(io_err(&p.pack_dir))?;
         let path = p.pack_dir.join(PACK_TOML);
@@ -474,6 +506,8 @@ pub async fn execute(
         pack_id: p.pack_id.clone(),
         started_utc: utc_now(),
         finished_utc: None,
+        test_date: p.options.test_date.to_string(),
+        cycle_count: p.options.cycle_count,
         status: "running".into(),
         stop_reason: None,
         procedure: ProcedureRecord {
@@ -535,16 +569,22 @@ pub async fn execute(
     drop(sink);
     // The summary comes from the log on disk, through the same code as
     // `analyze` uses afterwards.
-    let summary = summarize_run_dir(
-        &dir,
-        &p.pack,
-        &p.pack_id,
-        &run_id,
-        &p.procedure.plan.title,
-        Some(&outcome),
-    )?;
+    let ctx = SummaryContext {
+        pack: &p.pack,
+        pack_id: &p.pack_id,
+        run_id: &run_id,
+        title: &p.procedure.plan.title,
+        test_date: p.options.test_date,
+        cycle_count: p.options.cycle_count,
+        policy: &p.options.policy,
+    };
+    let (summary, log) = summarize_run_dir(&dir, &ctx, Some(&outcome))?;
     let summary_path = dir.join(SUMMARY_JSON);
     write_json(&summary_path, &summary).map_err(io_err(&summary_path))?;
+    let report_path = dir.join(REPORT_HTML);
+    let html = crate::report::html::run_report(&summary, &log.samples);
+    crate::runlog::write::atomic_write(&report_path, html.as_bytes())
+        .map_err(io_err(&report_path))?;
     manifest.status = outcome.status.name().into();
     manifest.stop_reason = outcome.reason.clone();
     manifest.finished_utc = Some(utc_now());
@@ -562,18 +602,44 @@ pub async fn execute(
     })
 }
 
-/// Build a run's summary from its folder.
+/// What a summary needs besides the log.
+#[derive(Debug, Clone, Copy)]
+pub struct SummaryContext<'a> {
+    pub pack: &'a PackSpec,
+    pub pack_id: &'a str,
+    pub run_id: &'a str,
+    pub title: &'a str,
+    pub test_date: NaiveDate,
+    pub cycle_count: Option<f64>,
+    pub policy: &'a Policy,
+}
+
+/// The resistance growth is measured against: the rated resistance when
+/// the spec has one, else the first reading of an earlier completed run of
+/// the pack, else (first reading ever) this run's own.
+pub fn reference_resistance(pack_dir: &Path, ctx: &SummaryContext<'_>) -> Option<f64> {
+    if let Some(r) = ctx.pack.rated_resistance_mohm {
+        return Some(r);
+    }
+    let date = ctx.test_date.to_string();
+    let runs = crate::fade::history::run_summaries(pack_dir).ok()?;
+    runs.iter()
+        .filter(|(_, s)| {
+            s.status == "completed"
+                && (s.test_date.as_str(), s.run_id.as_str()) < (date.as_str(), ctx.run_id)
+        })
+        .find_map(|(_, s)| s.resistance.as_ref().map(|r| r.dcir_mohm))
+}
+
+/// Build a run's summary from its folder; also returns the samples read.
 pub fn summarize_run_dir(
     dir: &Path,
-    pack: &PackSpec,
-    pack_id: &str,
-    run_id: &str,
-    title: &str,
+    ctx: &SummaryContext<'_>,
     outcome: Option<&RunOutcome>,
-) -> Result<Summary, RunError> {
+) -> Result<(Summary, read::SampleLog), RunError> {
     let (log, events) = read::read_run(dir)?;
     let infos = read::step_infos(&events);
-    let mut a = analysis::analyze(&log.samples, &infos, pack);
+    let mut a = analysis::analyze(&log.samples, &infos, ctx.pack);
     if log.dropped_partial_line {
         a.warnings
             .push("the last line of samples.csv was incomplete and was left out".into());
@@ -600,18 +666,42 @@ pub fn summarize_run_dir(
         (Some(a), Some(b)) => b.t_s - a.t_s,
         _ => 0.0,
     };
-    Ok(Summary {
+    let grade = (status == "completed").then(|| {
+        let pack_dir = dir.parent().unwrap_or(dir);
+        let own = a.resistance.as_ref().map(|r| r.dcir_mohm);
+        let reference = reference_resistance(pack_dir, ctx).or(own);
+        let growth = match (own, reference) {
+            (Some(r), Some(r0)) if r0 > 0.0 => Some((r / r0 - 1.0) * 100.0),
+            _ => None,
+        };
+        ctx.policy.grade(&GradeInputs {
+            chemistry: ctx.pack.chemistry,
+            soh_pct: a.capacity.as_ref().map(|c| c.soh_pct),
+            resistance_growth_pct: growth,
+            coulombic_efficiency_pct: a
+                .cycles
+                .iter()
+                .rev()
+                .find_map(|c| c.coulombic_efficiency_pct),
+        })
+    });
+    let summary = Summary {
         status,
         stop_reason: reason,
-        pack_id: pack_id.to_string(),
-        run_id: run_id.to_string(),
-        procedure_title: title.to_string(),
-        pack: PackSummary::from(pack),
+        pack_id: ctx.pack_id.to_string(),
+        run_id: ctx.run_id.to_string(),
+        procedure_title: ctx.title.to_string(),
+        pack: PackSummary::from(ctx.pack),
+        test_date: ctx.test_date.to_string(),
+        cycle_count: ctx.cycle_count,
         capacity: a.capacity,
+        resistance: a.resistance,
+        grade,
         steps: a.steps,
         cycles: a.cycles,
         warnings: a.warnings,
         samples: log.samples.len(),
         duration_s: duration,
-    })
+    };
+    Ok((summary, log))
 }

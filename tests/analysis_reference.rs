@@ -34,6 +34,7 @@ fn step_integrals_match_numpy_trapezoid() {
         rated_capacity_ah: 14.0,
         rated_energy_wh: None,
         rated_rate_c: None,
+        rated_resistance_mohm: None,
     };
     let infos = vec![
         info(1, "charge"),
@@ -76,6 +77,7 @@ fn rated_capacity_check_value() {
         rated_capacity_ah: 2.5,
         rated_energy_wh: None,
         rated_rate_c: Some(0.2),
+        rated_resistance_mohm: None,
     };
     let samples: Vec<_> = (0..=18_360)
         .map(|k| packbench::sample::Sample {

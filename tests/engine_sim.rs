@@ -18,6 +18,7 @@ fn prepare(procedure: &str, pack: PackSpec, results: &Path) -> Prepared {
         pack_id: "TEST-1".into(),
         pack: PackSource::Given(pack),
         results: results.to_path_buf(),
+        options: Default::default(),
     })
     .unwrap()
 }
@@ -109,6 +110,7 @@ fn shipped() -> Vec<(&'static str, PackSpec)> {
         rated_capacity_ah,
         rated_energy_wh: None,
         rated_rate_c: None,
+        rated_resistance_mohm: None,
     };
     vec![
         (
@@ -323,16 +325,22 @@ async fn live_and_offline_summaries_agree() {
         dir.path(),
     );
     let (r, _) = run_sim(&p, &SimConfig::default(), StopHandle::new()).await;
-    let again = run::summarize_run_dir(
-        &r.run_dir,
-        &p.pack,
-        "TEST-1",
-        &r.summary.run_id,
-        &r.summary.procedure_title,
-        None,
-    )
-    .unwrap();
+    let ctx = run::SummaryContext {
+        pack: &p.pack,
+        pack_id: "TEST-1",
+        run_id: &r.summary.run_id,
+        title: &r.summary.procedure_title,
+        test_date: p.options.test_date,
+        cycle_count: p.options.cycle_count,
+        policy: &p.options.policy,
+    };
+    let (again, _) = run::summarize_run_dir(&r.run_dir, &ctx, None).unwrap();
     assert_eq!(again, r.summary);
+    // And both equal what is on disk.
+    let on_disk: packbench::runlog::Summary =
+        serde_json::from_str(&std::fs::read_to_string(r.run_dir.join("summary.json")).unwrap())
+            .unwrap();
+    assert_eq!(on_disk, r.summary);
 }
 
 #[tokio::test]
@@ -371,6 +379,7 @@ async fn bad_input_sends_nothing_to_an_instrument() {
         pack_id: "TEST-1".into(),
         pack: PackSource::Given(li_ion()),
         results: dir.path().join("results"),
+        options: Default::default(),
     };
     // Validation fails before any link is used or any folder is made ...
     assert!(run::prepare(&req).unwrap_err().is_input());

@@ -13,6 +13,7 @@ fn pack() -> PackSpec {
         rated_capacity_ah: 14.0,
         rated_energy_wh: None,
         rated_rate_c: None,
+        rated_resistance_mohm: None,
     }
 }
 

@@ -5,11 +5,15 @@
 //! Conventions: current positive into the pack; step charge and energy are
 //! signed; cycle and capacity figures are magnitudes.
 
+pub mod curves;
+pub mod fit;
 pub mod integrate;
+pub mod resistance;
 
 use crate::pack::PackSpec;
 use crate::sample::Sample;
 use integrate::Integrator;
+use resistance::ResistanceReading;
 use serde::{Deserialize, Serialize};
 
 /// What the analysis needs to know about a step besides its samples.
@@ -86,10 +90,20 @@ pub struct CapacityResult {
     pub ended_on_cutoff: bool,
 }
 
+/// The pack's DC resistance from the steps tagged `dcir`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ResistanceResult {
+    /// The first reading's resistance, mΩ (the pack's figure).
+    pub dcir_mohm: f64,
+    pub method: String,
+    pub readings: Vec<ResistanceReading>,
+}
+
 /// Everything the analysis finds in one run.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Analysis {
     pub capacity: Option<CapacityResult>,
+    pub resistance: Option<ResistanceResult>,
     pub steps: Vec<StepSummary>,
     pub cycles: Vec<CycleSummary>,
     pub warnings: Vec<String>,
@@ -162,6 +176,7 @@ pub fn analyze(samples: &[Sample], steps: &[StepInfo], pack: &PackSpec) -> Analy
         by_step.push((step, &samples[start..end]));
         start = end;
     }
+    let mut readings: Vec<ResistanceReading> = Vec::new();
     for info in steps {
         let parts: Vec<&[Sample]> = by_step
             .iter()
@@ -177,7 +192,25 @@ pub fn analyze(samples: &[Sample], steps: &[StepInfo], pack: &PackSpec) -> Analy
         }
         let joined: Vec<Sample> = parts.concat();
         summaries.push(summarize_step(info, &joined));
+        if info.result.as_deref() == Some("dcir") {
+            let complete = !matches!(
+                info.end_kind.as_deref(),
+                None | Some("aborted") | Some("interrupted")
+            );
+            match resistance::two_level_from_step(info.step, &joined) {
+                Some(r) if complete => readings.push(r),
+                _ => warnings.push(format!(
+                    "the resistance step {} gave no reading (unfinished, or fewer than two current levels)",
+                    info.step
+                )),
+            }
+        }
     }
+    let resistance = readings.first().map(|r| ResistanceResult {
+        dcir_mohm: r.dcir_mohm,
+        method: r.method.clone(),
+        readings: readings.clone(),
+    });
     // Cycles: charge and discharge steps; pulse steps count both ways.
     let mut cycles: Vec<CycleSummary> = Vec::new();
     for s in &summaries {
@@ -259,6 +292,7 @@ pub fn analyze(samples: &[Sample], steps: &[StepInfo], pack: &PackSpec) -> Analy
         });
     Analysis {
         capacity,
+        resistance,
         steps: summaries,
         cycles,
         warnings,
@@ -283,6 +317,7 @@ mod tests {
             rated_capacity_ah: 1.0,
             rated_energy_wh: None,
             rated_rate_c: None,
+            rated_resistance_mohm: None,
         };
         let samples: Vec<Sample> = (0..=3000)
             .map(|k| Sample {
@@ -321,6 +356,7 @@ mod tests {
             rated_capacity_ah: 2.0,
             rated_energy_wh: None,
             rated_rate_c: None,
+            rated_resistance_mohm: None,
         };
         let mut samples = Vec::new();
         // Charge: 1 A for 7200 s at 3.8 V = 2 Ah, 7.6 Wh.

@@ -392,7 +392,7 @@ impl<'a> Engine<'a> {
             kind: st.kind.name().into(),
             name: st.name.clone(),
             description: st.kind.to_string(),
-            result: st.result.map(|_| "capacity".to_string()),
+            result: st.result.map(|r| r.name().to_string()),
         })?;
         let env = &self.plan.envelope;
         // Pulse levels as (end time, drive).

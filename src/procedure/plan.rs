@@ -132,6 +132,17 @@ impl fmt::Display for EndCondition {
 #[serde(rename_all = "snake_case")]
 pub enum ResultTag {
     Capacity,
+    /// A pulse step whose first two levels give the DC resistance.
+    Dcir,
+}
+
+impl ResultTag {
+    pub fn name(&self) -> &'static str {
+        match self {
+            ResultTag::Capacity => "capacity",
+            ResultTag::Dcir => "dcir",
+        }
+    }
 }
 
 /// One concrete step of the plan.
@@ -264,8 +275,8 @@ impl fmt::Display for Plan {
                 let ends: Vec<String> = s.ends.iter().map(|c| c.to_string()).collect();
                 write!(f, "; ends: {}", ends.join(" or "))?;
             }
-            if s.result.is_some() {
-                write!(f, "  <- capacity result")?;
+            if let Some(r) = s.result {
+                write!(f, "  <- {} result", r.name())?;
             }
             writeln!(f)?;
         }

@@ -627,10 +627,21 @@ fn build_step(
                 }
                 Some(ResultTag::Capacity)
             }
+            "dcir" => {
+                let ok = matches!(&kind, StepKind::Pulse { levels } if levels.len() >= 2
+                    && (levels[0].current_a - levels[1].current_a).abs() > 0.0);
+                if !ok {
+                    cx.err(
+                        &t.span(),
+                        "result = \"dcir\" belongs on a pulse step whose first two levels differ in current",
+                    );
+                }
+                Some(ResultTag::Dcir)
+            }
             other => {
                 cx.err(
                     &t.span(),
-                    format!("unknown result tag '{other}'; expected \"capacity\""),
+                    format!("unknown result tag '{other}'; expected \"capacity\" or \"dcir\""),
                 );
                 None
             }

@@ -1,4 +1,6 @@
 //! Renderings of computed results for people. Presentation only: every
-//! figure comes from the analysis.
+//! figure comes from the analysis or the fade module.
 
+pub mod html;
+pub mod svg;
 pub mod text;

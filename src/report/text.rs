@@ -61,6 +61,22 @@ pub fn summary(s: &Summary) -> String {
             let _ = writeln!(o, "  Measured capacity: none (no completed capacity step)");
         }
     }
+    if let Some(r) = &s.resistance {
+        let _ = writeln!(
+            o,
+            "  DC resistance:     {:.2} mOhm (two-level, IEC 61960 scheme)",
+            r.dcir_mohm
+        );
+    }
+    if let Some(g) = &s.grade {
+        let _ = writeln!(
+            o,
+            "  Grade:             {} ({}) — {}",
+            g.label,
+            g.meaning,
+            g.reasons.join("; ")
+        );
+    }
     for c in &s.cycles {
         if let (Some(ce), Some(ee)) = (c.coulombic_efficiency_pct, c.energy_efficiency_pct) {
             let _ = writeln!(
@@ -72,6 +88,162 @@ pub fn summary(s: &Summary) -> String {
     }
     for w in &s.warnings {
         let _ = writeln!(o, "  warning: {w}");
+    }
+    o
+}
+
+/// The fade analysis of one pack for a terminal.
+pub fn fade(
+    h: &crate::fade::history::PackHistory,
+    fa: &crate::fade::model::FadeAnalysis,
+) -> String {
+    let mut o = String::new();
+    let _ = writeln!(
+        o,
+        "Pack {} ({} {}S, rated {} Ah): {} measurements, end of life at {} % of rated",
+        h.pack_id,
+        h.spec.chemistry,
+        h.spec.series,
+        h.spec.rated_capacity_ah,
+        h.points.len(),
+        fa.threshold_pct
+    );
+    let _ = writeln!(
+        o,
+        "  date        cycles   capacity Ah  SOH %   resistance mOhm  grade  source"
+    );
+    for p in &h.points {
+        let _ = writeln!(
+            o,
+            "  {}  {:>7.0}{} {:>10.3}  {:>6.2}  {:>15}  {:>5}  {}",
+            p.date,
+            p.cycles,
+            if p.cycles_given { " " } else { "*" },
+            p.capacity_ah,
+            p.soh_pct,
+            p.resistance_mohm
+                .map(|r| format!("{r:.1}"))
+                .unwrap_or_else(|| "-".into()),
+            p.grade.as_deref().unwrap_or("-"),
+            p.source
+        );
+    }
+    if h.points.iter().any(|p| !p.cycles_given) {
+        let _ = writeln!(
+            o,
+            "  (* cycles counted from the discharge Ah packbench measured)"
+        );
+    }
+    for m in &fa.models {
+        let _ = writeln!(
+            o,
+            "  fade {}: {:.4} {} (R² {:.4}, n {})",
+            m.description, m.fade_per_unit, m.unit, m.fit.r_squared, m.fit.n
+        );
+    }
+    if let Some(p) = &fa.eol_cycles {
+        let _ = writeln!(
+            o,
+            "  End of life at about {:.0} cycles (95 % band {} to {}; {})",
+            p.cycles,
+            p.cycles_early
+                .map(|c| format!("{c:.0}"))
+                .unwrap_or_else(|| "-".into()),
+            p.cycles_late
+                .map(|c| format!("{c:.0}"))
+                .unwrap_or_else(|| "not bounded".into()),
+            p.basis
+        );
+    }
+    if let Some(p) = &fa.eol_date {
+        let _ = writeln!(
+            o,
+            "  End of life about {} (95 % band {} to {})",
+            p.date,
+            p.date_early
+                .map(|d| d.to_string())
+                .unwrap_or_else(|| "-".into()),
+            p.date_late
+                .map(|d| d.to_string())
+                .unwrap_or_else(|| "not bounded".into())
+        );
+    }
+    if let Some(a) = &fa.accelerating {
+        let _ = writeln!(
+            o,
+            "  ACCELERATING FADE: {:.3} %/100 cycles recently against {:.3} earlier ({:.1}x)",
+            a.recent_pct_per_100_cycles, a.earlier_pct_per_100_cycles, a.ratio
+        );
+    }
+    for n in &fa.notes {
+        let _ = writeln!(o, "  note: {n}");
+    }
+    for l in &h.left_out {
+        let _ = writeln!(
+            o,
+            "  left out: run {} ({}): {}",
+            l.run_id, l.status, l.reason
+        );
+    }
+    o
+}
+
+/// The fleet table for a terminal.
+pub fn fleet(f: &crate::fade::fleet::Fleet) -> String {
+    let mut o = String::new();
+    let _ = writeln!(
+        o,
+        "Fleet as of {} ({} packs; a test is due every {} days; end of life at {} %)",
+        f.today,
+        f.rows.len(),
+        f.interval_days,
+        f.threshold_pct
+    );
+    let _ = writeln!(
+        o,
+        "{:>4}  {:<10} {:<13} {:>5} {:<10} {:>6} {:>6} {:>8} {:>7} {:>9} {:>7} {:<10} {:<5} flags",
+        "rank",
+        "pack",
+        "chemistry",
+        "tests",
+        "last test",
+        "cycles",
+        "SOH%",
+        "R mOhm",
+        "R grow%",
+        "fade%/100",
+        "EOL cyc",
+        "EOL date",
+        "grade"
+    );
+    let n = |v: Option<f64>, d: usize| v.map(|x| format!("{x:.d$}")).unwrap_or_else(|| "-".into());
+    for r in &f.rows {
+        let mut flags = Vec::new();
+        if r.overdue {
+            flags.push("OVERDUE");
+        }
+        if r.accelerating {
+            flags.push("ACCELERATING");
+        }
+        let _ =
+            writeln!(
+            o,
+            "{:>4}  {:<10} {:<13} {:>5} {:<10} {:>6} {:>6} {:>8} {:>7} {:>9} {:>7} {:<10} {:<5} {}",
+            r.rank,
+            r.pack_id,
+            format!("{} {}S", r.chemistry, r.series),
+            r.tests,
+            r.last_test.map(|d| d.to_string()).unwrap_or_else(|| "-".into()),
+            n(r.cycles, 0),
+            n(r.soh_pct, 1),
+            n(r.resistance_mohm, 1),
+            n(r.resistance_growth_pct, 0),
+            n(r.fade_pct_per_100_cycles, 3),
+            n(r.eol_cycles, 0),
+            r.eol_date.map(|d| d.to_string()).unwrap_or_else(|| "-".into()),
+            r.grade.as_deref().unwrap_or("-"),
+            flags.join(" ")
+        );
     }
     o
 }

@@ -14,7 +14,7 @@
 pub mod read;
 pub mod write;
 
-use crate::analysis::{CapacityResult, CycleSummary, StepSummary};
+use crate::analysis::{CapacityResult, CycleSummary, ResistanceResult, StepSummary};
 use crate::pack::PackSpec;
 use serde::{Deserialize, Serialize};
 
@@ -23,6 +23,7 @@ pub const EVENTS_JSONL: &str = "events.jsonl";
 pub const RUN_JSON: &str = "run.json";
 pub const SUMMARY_JSON: &str = "summary.json";
 pub const PACK_TOML: &str = "pack.toml";
+pub const REPORT_HTML: &str = "report.html";
 
 /// The columns of `samples.csv`, in order.
 pub const CSV_COLUMNS: [&str; 6] = [
@@ -44,7 +45,15 @@ pub struct Summary {
     pub run_id: String,
     pub procedure_title: String,
     pub pack: PackSummary,
+    /// The day the test counts for (UTC date, `YYYY-MM-DD`).
+    pub test_date: String,
+    /// The pack's equivalent full cycles at the test, when known from
+    /// outside packbench (the pack's own counter or the operator).
+    pub cycle_count: Option<f64>,
     pub capacity: Option<CapacityResult>,
+    pub resistance: Option<ResistanceResult>,
+    /// The grade under the shop's policy.
+    pub grade: Option<crate::fade::grade::Grade>,
     pub steps: Vec<StepSummary>,
     pub cycles: Vec<CycleSummary>,
     pub warnings: Vec<String>,
@@ -60,6 +69,7 @@ pub struct PackSummary {
     pub rated_capacity_ah: f64,
     pub rated_energy_wh: Option<f64>,
     pub rated_rate_c: Option<f64>,
+    pub rated_resistance_mohm: Option<f64>,
 }
 
 impl From<&PackSpec> for PackSummary {
@@ -70,6 +80,7 @@ impl From<&PackSpec> for PackSummary {
             rated_capacity_ah: p.rated_capacity_ah,
             rated_energy_wh: p.rated_energy_wh,
             rated_rate_c: p.rated_rate_c,
+            rated_resistance_mohm: p.rated_resistance_mohm,
         }
     }
 }

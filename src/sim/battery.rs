@@ -230,6 +230,9 @@ pub struct PackModel {
     pub series: f64,
     /// True capacity, Ah.
     pub capacity_ah: f64,
+    /// The cells' size (rated Ah): resistances and thermal mass scale with
+    /// it, not with the faded capacity.
+    pub size_ah: f64,
     pub resistance_factor: f64,
     pub soc: f64,
     pub v1: f64,
@@ -246,6 +249,7 @@ impl PackModel {
             params: CellParams::for_chemistry(spec.chemistry),
             series: f64::from(spec.series),
             capacity_ah: spec.rated_capacity_ah * cond.capacity_factor,
+            size_ah: spec.rated_capacity_ah,
             resistance_factor: cond.resistance_factor,
             soc: cond.initial_soc,
             v1: 0.0,
@@ -264,9 +268,7 @@ impl PackModel {
 
     /// Series resistance of one cell, Ω.
     pub fn r0_cell(&self) -> f64 {
-        self.params.r0_ohm_ah / self.capacity_ah.max(1e-9)
-            * self.resistance_factor
-            * self.temp_factor()
+        self.params.r0_ohm_ah / self.size_ah.max(1e-9) * self.resistance_factor * self.temp_factor()
     }
 
     /// Charge-direction overvoltage per cell (gassing) at the present SoC.
@@ -285,7 +287,7 @@ impl PackModel {
             Some((b, ln_k_half, slope, knee)) if current > 0.0 => {
                 let s = self.soc.min(1.0);
                 let ln_k = ln_k_half - slope * (s - 0.5) - knee * (s - 0.85).max(0.0).powi(2);
-                let rel = current / self.capacity_ah.max(1e-9);
+                let rel = current / self.size_ah.max(1e-9);
                 b * (1.0 + rel / ln_k.exp()).ln()
             }
             _ => 0.0,
@@ -390,7 +392,7 @@ impl PackModel {
             (&mut self.v1, self.params.r1_ohm_ah, self.params.tau1_s),
             (&mut self.v2, self.params.r2_ohm_ah, self.params.tau2_s),
         ] {
-            let r = r_ah / self.capacity_ah.max(1e-9) * self.resistance_factor * tf;
+            let r = r_ah / self.size_ah.max(1e-9) * self.resistance_factor * tf;
             let a = (-dt / tau).exp();
             *v = *v * a + current * r * (1.0 - a);
         }
@@ -405,8 +407,8 @@ impl PackModel {
                 0.0
             };
         let heat = heat_cell.max(0.0) * self.series + self.fault_heat_w;
-        let c_th = self.params.heat_capacity_j_per_k_ah * self.capacity_ah * self.series;
-        let g = self.params.conductance_w_per_k_ah * self.capacity_ah * self.series;
+        let c_th = self.params.heat_capacity_j_per_k_ah * self.size_ah * self.series;
+        let g = self.params.conductance_w_per_k_ah * self.size_ah * self.series;
         // Exact update of the first-order thermal model.
         let t_inf = self.ambient_c + heat / g.max(1e-12);
         let a = (-dt * g / c_th.max(1e-12)).exp();
@@ -434,6 +436,7 @@ mod tests {
             rated_capacity_ah: 14.0,
             rated_energy_wh: None,
             rated_rate_c: None,
+            rated_resistance_mohm: None,
         };
         PackModel::new(
             &spec,

@@ -1,0 +1,656 @@
+//! Single-file HTML reports with inline SVG plots: per run (with a grade
+//! card a shop can print and attach to the pack), per pack (fade), per
+//! fleet. No scripts, no external resources. Presentation only.
+
+use super::svg::{self, Band, Chart, HLine, Mark, Series};
+use crate::analysis::curves;
+use crate::fade::fleet::Fleet;
+use crate::fade::history::PackHistory;
+use crate::fade::model::FadeAnalysis;
+use crate::runlog::Summary;
+use crate::sample::Sample;
+use crate::units::HumanDuration;
+use std::fmt::Write;
+
+/// Most points per plotted series (thinned evenly).
+pub const MAX_POINTS: usize = 1500;
+
+/// Escape text for HTML.
+pub fn escape(s: &str) -> String {
+    let mut o = String::with_capacity(s.len());
+    for c in s.chars() {
+        match c {
+            '&' => o.push_str("&amp;"),
+            '<' => o.push_str("&lt;"),
+            '>' => o.push_str("&gt;"),
+            '"' => o.push_str("&quot;"),
+            '\'' => o.push_str("&#39;"),
+            c => o.push(c),
+        }
+    }
+    o
+}
+
+const STYLE: &str = r#"
+body { font-family: sans-serif; margin: 24px auto; max-width: 1000px; color: #222; }
+h1 { font-size: 22px; margin-bottom: 4px; } h2 { font-size: 17px; margin-top: 28px; border-bottom: 1px solid #ccc; }
+.sub { color: #555; margin-top: 0; }
+table { border-collapse: collapse; margin: 8px 0; font-size: 13px; }
+th, td { border: 1px solid #ccc; padding: 3px 8px; text-align: right; }
+th { background: #f2f2f2; } td.l, th.l { text-align: left; }
+.status-completed { color: #1a7f1a; } .status-aborted, .status-interrupted { color: #b00; }
+.card { border: 2px solid #222; padding: 12px 16px; width: 420px; page-break-inside: avoid; }
+.card .grade { font-size: 56px; font-weight: bold; float: right; margin-left: 12px; line-height: 1; }
+.card dl { display: grid; grid-template-columns: auto auto; gap: 2px 12px; margin: 6px 0; font-size: 13px; }
+.card dt { color: #555; } .card dd { margin: 0; font-weight: bold; }
+.warn { color: #8a5a00; } .flag { color: #b00; font-weight: bold; }
+svg { display: block; margin: 8px 0; max-width: 100%; height: auto; }
+@media print { body { margin: 0; } h2 { page-break-after: avoid; } }
+"#;
+
+fn page(title: &str, body: &str) -> String {
+    format!(
+        "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\"><title>{}</title><style>{STYLE}</style></head><body>\n{body}\n<p class=\"sub\">Written by packbench {}.</p></body></html>\n",
+        escape(title),
+        env!("CARGO_PKG_VERSION")
+    )
+}
+
+fn f(v: Option<f64>, d: usize) -> String {
+    v.map(|x| format!("{x:.d$}")).unwrap_or_else(|| "–".into())
+}
+
+/// The printable grade card of a run.
+fn grade_card(s: &Summary) -> String {
+    let mut o = String::new();
+    let label = s.grade.as_ref().map(|g| g.label.as_str()).unwrap_or("–");
+    let _ = write!(
+        o,
+        "<div class=\"card\"><div class=\"grade\">{}</div><b>Pack {}</b><br>{} {}S, rated {} Ah<br>tested {}",
+        escape(label),
+        escape(&s.pack_id),
+        escape(&s.pack.chemistry),
+        s.pack.series,
+        s.pack.rated_capacity_ah,
+        escape(&s.test_date)
+    );
+    let _ = write!(o, "<dl>");
+    let ce = s
+        .cycles
+        .iter()
+        .rev()
+        .find_map(|c| c.coulombic_efficiency_pct);
+    let rows = [
+        (
+            "State of health",
+            s.capacity.as_ref().map(|c| format!("{:.1} %", c.soh_pct)),
+        ),
+        (
+            "Measured capacity",
+            s.capacity
+                .as_ref()
+                .map(|c| format!("{:.3} Ah / {:.1} Wh", c.measured_ah, c.measured_wh)),
+        ),
+        (
+            "At",
+            s.capacity
+                .as_ref()
+                .map(|c| format!("{:.2}C to {} V", c.c_rate, f(c.end_voltage_v, 2))),
+        ),
+        (
+            "DC resistance",
+            s.resistance
+                .as_ref()
+                .map(|r| format!("{:.1} mΩ", r.dcir_mohm)),
+        ),
+        ("Coulombic efficiency", ce.map(|c| format!("{c:.2} %"))),
+        ("Cycles", s.cycle_count.map(|c| format!("{c:.0}"))),
+    ];
+    for (k, v) in rows {
+        let _ = write!(
+            o,
+            "<dt>{k}</dt><dd>{}</dd>",
+            escape(&v.unwrap_or_else(|| "–".into()))
+        );
+    }
+    let _ = write!(o, "</dl>");
+    if let Some(g) = &s.grade {
+        let _ = write!(
+            o,
+            "<div><i>{}</i></div><ul style=\"font-size:12px;margin:4px 0 0 16px;padding:0\">",
+            escape(&g.meaning)
+        );
+        for r in &g.reasons {
+            let _ = write!(o, "<li>{}</li>", escape(r));
+        }
+        let _ = write!(
+            o,
+            "</ul><div style=\"font-size:11px;color:#555\">policy: {}</div>",
+            escape(&g.policy)
+        );
+    }
+    let _ = write!(
+        o,
+        "<div style=\"font-size:11px;color:#555\">run {}</div></div>",
+        escape(&s.run_id)
+    );
+    o
+}
+
+/// The report of one run.
+pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
+    let mut b = String::new();
+    let _ = write!(
+        b,
+        "<h1>Capacity test of pack {}</h1><p class=\"sub\">{} · test date {} · run {} · <span class=\"status-{st}\">{st}</span></p>",
+        escape(&s.pack_id),
+        escape(&s.procedure_title),
+        escape(&s.test_date),
+        escape(&s.run_id),
+        st = escape(&s.status)
+    );
+    if let Some(r) = &s.stop_reason {
+        let _ = write!(b, "<p class=\"flag\">Stopped: {}</p>", escape(r));
+    }
+    let _ = write!(b, "<h2>Grade card</h2>{}", grade_card(s));
+    // Summary table.
+    let _ = write!(b, "<h2>Summary</h2><table>");
+    let mut row = |k: &str, v: String| {
+        let _ = write!(
+            b,
+            "<tr><th class=\"l\">{k}</th><td>{}</td></tr>",
+            escape(&v)
+        );
+    };
+    if let Some(c) = &s.capacity {
+        row(
+            "Measured capacity",
+            format!("{:.4} Ah, {:.2} Wh", c.measured_ah, c.measured_wh),
+        );
+        row(
+            "State of health",
+            format!("{:.2} % of rated {} Ah", c.soh_pct, c.rated_ah),
+        );
+        row(
+            "Discharge",
+            format!(
+                "{:.3} A ({:.3}C) for {}",
+                c.mean_current_a,
+                c.c_rate,
+                HumanDuration(c.duration_s)
+            ),
+        );
+        row(
+            "Ended on cutoff",
+            if c.ended_on_cutoff {
+                "yes".into()
+            } else {
+                "no (lower bound)".into()
+            },
+        );
+    } else {
+        row(
+            "Measured capacity",
+            "none (no completed capacity step)".into(),
+        );
+    }
+    if let Some(r) = &s.resistance {
+        row(
+            "DC resistance",
+            format!("{:.2} mΩ — {}", r.dcir_mohm, r.method),
+        );
+    }
+    for c in &s.cycles {
+        if let (Some(ce), Some(ee)) = (c.coulombic_efficiency_pct, c.energy_efficiency_pct) {
+            row(
+                &format!("Cycle {}", c.cycle),
+                format!("coulombic efficiency {ce:.3} %, energy efficiency {ee:.2} %"),
+            );
+        }
+    }
+    row(
+        "Samples",
+        format!("{} over {}", s.samples, HumanDuration(s.duration_s)),
+    );
+    let _ = write!(b, "</table>");
+    for w in &s.warnings {
+        let _ = write!(b, "<p class=\"warn\">Warning: {}</p>", escape(w));
+    }
+    // Plots.
+    let _ = write!(b, "<h2>Voltage, current and temperature</h2>");
+    let hours = |pts: Vec<(f64, f64)>| -> Vec<(f64, f64)> { svg::thin(&pts, MAX_POINTS) };
+    let mut c = Chart::new("Pack voltage", "time since start (h)", "voltage (V)");
+    c.series.push(Series {
+        name: "voltage".into(),
+        points: hours(
+            samples
+                .iter()
+                .map(|x| (x.t_s / 3600.0, x.voltage_v))
+                .collect(),
+        ),
+        color: svg::BLUE_,
+        mark: Mark::Line,
+    });
+    b.push_str(&svg::render(&c));
+    let mut c = Chart::new(
+        "Pack current (positive into the pack)",
+        "time since start (h)",
+        "current (A)",
+    );
+    c.series.push(Series {
+        name: "current".into(),
+        points: hours(
+            samples
+                .iter()
+                .map(|x| (x.t_s / 3600.0, x.current_a))
+                .collect(),
+        ),
+        color: svg::ORANGE_,
+        mark: Mark::Line,
+    });
+    b.push_str(&svg::render(&c));
+    let temps: Vec<(f64, f64)> = samples
+        .iter()
+        .filter_map(|x| x.temperature_c.map(|t| (x.t_s / 3600.0, t)))
+        .collect();
+    if !temps.is_empty() {
+        let mut c = Chart::new(
+            "Pack temperature",
+            "time since start (h)",
+            "temperature (°C)",
+        );
+        c.series.push(Series {
+            name: "temperature".into(),
+            points: hours(temps),
+            color: svg::RED_,
+            mark: Mark::Line,
+        });
+        b.push_str(&svg::render(&c));
+    }
+    if let Some(cap) = &s.capacity {
+        let step: Vec<Sample> = samples
+            .iter()
+            .filter(|x| x.step == cap.step)
+            .copied()
+            .collect();
+        let curve = curves::charge_curve(&step);
+        let _ = write!(b, "<h2>Capacity discharge</h2>");
+        let mut c = Chart::new(
+            "Voltage against discharged charge",
+            "discharged (Ah)",
+            "voltage (V)",
+        );
+        c.series.push(Series {
+            name: "capacity step".into(),
+            points: svg::thin(&curve, MAX_POINTS),
+            color: svg::BLUE_,
+            mark: Mark::Line,
+        });
+        b.push_str(&svg::render(&c));
+        // Incremental capacity with 10 mV/cell bins (common practice for
+        // a C/5 discharge; finer bins need a slower rate).
+        let bin = 0.010 * f64::from(s.pack.series);
+        let ica = curves::incremental_capacity(&curve, bin);
+        if ica.len() >= 3 {
+            let mut c = Chart::new(
+                &format!("Incremental capacity, {:.0} mV bins", bin * 1000.0),
+                "voltage (V)",
+                "dQ/dV (Ah/V)",
+            );
+            c.series.push(Series {
+                name: "dQ/dV".into(),
+                points: ica,
+                color: svg::PURPLE_,
+                mark: Mark::LineAndDots,
+            });
+            b.push_str(&svg::render(&c));
+        }
+    }
+    // Step table.
+    let _ = write!(
+        b,
+        "<h2>Steps</h2><table><tr><th>step</th><th class=\"l\">phase</th><th class=\"l\">kind</th><th>cycle</th><th>duration</th><th>charge (Ah)</th><th>energy (Wh)</th><th>start V</th><th>end V</th><th>max °C</th><th class=\"l\">end</th></tr>"
+    );
+    for st in &s.steps {
+        let _ = write!(
+            b,
+            "<tr><td>{}</td><td class=\"l\">{}</td><td class=\"l\">{}</td><td>{}</td><td>{}</td><td>{:.4}</td><td>{:.3}</td><td>{}</td><td>{}</td><td>{}</td><td class=\"l\">{}</td></tr>",
+            st.step,
+            escape(&st.phase),
+            escape(&st.kind),
+            st.cycle,
+            HumanDuration(st.duration_s),
+            st.charge_ah,
+            st.energy_wh,
+            f(st.start_voltage_v, 3),
+            f(st.end_voltage_v, 3),
+            f(st.max_temperature_c, 1),
+            escape(st.end_reason.as_deref().unwrap_or(""))
+        );
+    }
+    let _ = write!(b, "</table>");
+    page(&format!("packbench — {} — {}", s.pack_id, s.run_id), &b)
+}
+
+fn day_number(d: chrono::NaiveDate) -> f64 {
+    use chrono::Datelike;
+    f64::from(d.num_days_from_ce())
+}
+
+/// The fade report of one pack. `curves_by_run` holds each run's
+/// capacity-step curve (discharged Ah, V) with its label.
+pub fn pack_report(
+    h: &PackHistory,
+    fa: &FadeAnalysis,
+    curves_by_run: &[(String, Vec<(f64, f64)>)],
+) -> String {
+    let mut b = String::new();
+    let spec = &h.spec;
+    let _ = write!(
+        b,
+        "<h1>Capacity fade of pack {}</h1><p class=\"sub\">{} {}S, rated {} Ah · {} measurements · end of life at {} % of rated</p>",
+        escape(&h.pack_id),
+        spec.chemistry,
+        spec.series,
+        spec.rated_capacity_ah,
+        h.points.len(),
+        fa.threshold_pct
+    );
+    let _ = write!(b, "<h2>Projection</h2>");
+    match &fa.eol_cycles {
+        Some(p) => {
+            let _ = write!(
+                b,
+                "<p>State of health reaches {} % at about <b>{:.0} equivalent full cycles</b> (95 % prediction band: {} to {}; basis: {}).</p>",
+                fa.threshold_pct,
+                p.cycles,
+                f(p.cycles_early, 0),
+                p.cycles_late.map(|c| format!("{c:.0}")).unwrap_or_else(|| "not bounded".into()),
+                escape(&p.basis)
+            );
+        }
+        None => {
+            let _ = write!(b, "<p>No end-of-life cycle count projected.</p>");
+        }
+    }
+    if let Some(p) = &fa.eol_date {
+        let _ = write!(
+            b,
+            "<p>By date: about <b>{}</b> (band {} to {}).</p>",
+            p.date,
+            p.date_early
+                .map(|d| d.to_string())
+                .unwrap_or_else(|| "–".into()),
+            p.date_late
+                .map(|d| d.to_string())
+                .unwrap_or_else(|| "not bounded".into())
+        );
+    }
+    if let Some(a) = &fa.accelerating {
+        let _ = write!(
+            b,
+            "<p class=\"flag\">Accelerating fade: {:.3} % per 100 cycles recently against {:.3} % earlier ({:.1}×).</p>",
+            a.recent_pct_per_100_cycles, a.earlier_pct_per_100_cycles, a.ratio
+        );
+    }
+    for n in &fa.notes {
+        let _ = write!(b, "<p class=\"warn\">{}</p>", escape(n));
+    }
+    // SOH against cycles with fit, band and threshold.
+    let pts: Vec<(f64, f64)> = h
+        .points
+        .iter()
+        .filter(|p| p.cycles.is_finite())
+        .map(|p| (p.cycles, p.soh_pct))
+        .collect();
+    let mut c = Chart::new(
+        "State of health against equivalent full cycles",
+        "equivalent full cycles",
+        "state of health (% of rated)",
+    );
+    c.series.push(Series {
+        name: "measured".into(),
+        points: pts.clone(),
+        color: svg::BLUE_,
+        mark: Mark::Dots,
+    });
+    if let Some(m) = fa
+        .models
+        .iter()
+        .find(|m| m.kind == crate::fade::model::ModelKind::LinearCycles)
+    {
+        let x0 = pts.first().map(|p| p.0).unwrap_or(0.0);
+        let x1 = fa
+            .eol_cycles
+            .as_ref()
+            .map(|p| p.cycles.max(pts.last().map(|p| p.0).unwrap_or(0.0)))
+            .unwrap_or_else(|| pts.last().map(|p| p.0).unwrap_or(1.0))
+            .min(x0 + 10.0 * (pts.last().map(|p| p.0).unwrap_or(1.0) - x0).max(1.0));
+        let xs: Vec<f64> = (0..=60).map(|k| x0 + (x1 - x0) * k as f64 / 60.0).collect();
+        c.series.push(Series {
+            name: format!("fit, all points (R² {:.3})", m.fit.r_squared),
+            points: xs.iter().map(|x| (*x, m.fit.predict(*x))).collect(),
+            color: svg::GREY_,
+            mark: Mark::Line,
+        });
+        let (mut up, mut lo) = (Vec::new(), Vec::new());
+        for x in &xs {
+            if let Some((l, u)) = m.fit.prediction_interval(*x, crate::fade::model::LEVEL) {
+                up.push((*x, u));
+                lo.push((*x, l));
+            }
+        }
+        c.bands.push(Band {
+            name: "95 % prediction band".into(),
+            upper: up,
+            lower: lo,
+            color: svg::GREY_,
+        });
+        if fa.accelerating.is_some() {
+            if let Some(p) = &fa.eol_cycles {
+                // The recent-half line the projection rests on.
+                let n = pts.len();
+                let recent = &pts[n / 2..];
+                let (x, y): (Vec<f64>, Vec<f64>) = recent.iter().copied().unzip();
+                if let Some(rf) = crate::analysis::fit::LinearFit::fit(&x, &y) {
+                    let a = recent.first().map(|p| p.0).unwrap_or(0.0);
+                    c.series.push(Series {
+                        name: "fit, recent half".into(),
+                        points: vec![(a, rf.predict(a)), (p.cycles, rf.predict(p.cycles))],
+                        color: svg::RED_,
+                        mark: Mark::Line,
+                    });
+                }
+            }
+        }
+    }
+    c.hlines.push(HLine {
+        y: fa.threshold_pct,
+        name: "end of life".into(),
+        color: svg::RED_,
+    });
+    b.push_str(&svg::render(&c));
+    // SOH against date.
+    let mut c = Chart::new(
+        "State of health against date",
+        "test date",
+        "state of health (% of rated)",
+    );
+    c.x_is_date = true;
+    c.series.push(Series {
+        name: "measured".into(),
+        points: h
+            .points
+            .iter()
+            .map(|p| (day_number(p.date), p.soh_pct))
+            .collect(),
+        color: svg::BLUE_,
+        mark: Mark::LineAndDots,
+    });
+    c.hlines.push(HLine {
+        y: fa.threshold_pct,
+        name: "end of life".into(),
+        color: svg::RED_,
+    });
+    b.push_str(&svg::render(&c));
+    // Resistance.
+    let rp: Vec<(f64, f64)> = h
+        .points
+        .iter()
+        .filter_map(|p| p.resistance_mohm.map(|r| (p.cycles, r)))
+        .collect();
+    if !rp.is_empty() {
+        let mut c = Chart::new(
+            "DC resistance against equivalent full cycles",
+            "equivalent full cycles",
+            "resistance (mΩ)",
+        );
+        c.series.push(Series {
+            name: "measured".into(),
+            points: rp,
+            color: svg::ORANGE_,
+            mark: Mark::LineAndDots,
+        });
+        if let Some((r0, what)) = h.reference_resistance() {
+            c.hlines.push(HLine {
+                y: 2.0 * r0,
+                name: format!("twice the {what} resistance"),
+                color: svg::RED_,
+            });
+        }
+        b.push_str(&svg::render(&c));
+    }
+    // Overlaid discharge curves.
+    if !curves_by_run.is_empty() {
+        let mut c = Chart::new(
+            "Capacity discharges, every test",
+            "discharged (Ah)",
+            "voltage (V)",
+        );
+        for (i, (name, pts)) in curves_by_run.iter().enumerate() {
+            c.series.push(Series {
+                name: name.clone(),
+                points: svg::thin(pts, 400),
+                color: svg::palette(i),
+                mark: Mark::Line,
+            });
+        }
+        c.height = 420;
+        b.push_str(&svg::render(&c));
+    }
+    // Tables.
+    let _ = write!(b, "<h2>Models</h2><table><tr><th class=\"l\">model</th><th>slope</th><th class=\"l\">unit</th><th>R²</th><th>points</th></tr>");
+    for m in &fa.models {
+        let _ = write!(
+            b,
+            "<tr><td class=\"l\">{}</td><td>{:.4}</td><td class=\"l\">{}</td><td>{:.4}</td><td>{}</td></tr>",
+            escape(m.description),
+            m.fade_per_unit,
+            escape(m.unit),
+            m.fit.r_squared,
+            m.fit.n
+        );
+    }
+    let _ = write!(b, "</table><h2>Measurements</h2><table><tr><th class=\"l\">date</th><th>cycles</th><th>capacity (Ah)</th><th>SOH (%)</th><th>resistance (mΩ)</th><th>CE (%)</th><th class=\"l\">grade</th><th class=\"l\">source</th></tr>");
+    for p in &h.points {
+        let _ = write!(
+            b,
+            "<tr><td class=\"l\">{}</td><td>{:.0}{}</td><td>{:.3}</td><td>{:.2}</td><td>{}</td><td>{}</td><td class=\"l\">{}</td><td class=\"l\">{}</td></tr>",
+            p.date,
+            p.cycles,
+            if p.cycles_given { "" } else { " (counted)" },
+            p.capacity_ah,
+            p.soh_pct,
+            f(p.resistance_mohm, 1),
+            f(p.coulombic_efficiency_pct, 2),
+            escape(p.grade.as_deref().unwrap_or("")),
+            escape(&p.source)
+        );
+    }
+    let _ = write!(b, "</table>");
+    if !h.left_out.is_empty() {
+        let _ = write!(b, "<h2>Runs left out of the fits</h2><ul>");
+        for l in &h.left_out {
+            let _ = write!(
+                b,
+                "<li>{} — {}: {}</li>",
+                escape(&l.run_id),
+                escape(&l.status),
+                escape(&l.reason)
+            );
+        }
+        let _ = write!(b, "</ul>");
+    }
+    page(&format!("packbench — fade of {}", h.pack_id), &b)
+}
+
+/// The fleet report. `histories` gives each pack's points for the
+/// fleet-wide plot.
+pub fn fleet_report(fleet: &Fleet, histories: &[PackHistory], title: &str) -> String {
+    let mut b = String::new();
+    let _ = write!(
+        b,
+        "<h1>{}</h1><p class=\"sub\">{} packs · as of {} · a test is due every {} days · end of life at {} % of rated</p>",
+        escape(title),
+        fleet.rows.len(),
+        fleet.today,
+        fleet.interval_days,
+        fleet.threshold_pct
+    );
+    let _ = write!(b, "<table><tr><th>rank</th><th class=\"l\">pack</th><th class=\"l\">chemistry</th><th>tests</th><th class=\"l\">last test</th><th>cycles</th><th>SOH (%)</th><th>resistance (mΩ)</th><th>growth (%)</th><th>fade (%/100 cyc)</th><th>EOL cycles</th><th class=\"l\">EOL date</th><th class=\"l\">grade</th><th class=\"l\">flags</th></tr>");
+    for r in &fleet.rows {
+        let mut flags = Vec::new();
+        if r.overdue {
+            flags.push("test overdue");
+        }
+        if r.accelerating {
+            flags.push("fade accelerating");
+        }
+        let _ = write!(
+            b,
+            "<tr><td>{}</td><td class=\"l\">{}</td><td class=\"l\">{} {}S</td><td>{}</td><td class=\"l\">{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td class=\"l\">{}</td><td class=\"l\"><b>{}</b></td><td class=\"l flag\">{}</td></tr>",
+            r.rank,
+            escape(&r.pack_id),
+            escape(&r.chemistry),
+            r.series,
+            r.tests,
+            r.last_test.map(|d| d.to_string()).unwrap_or_default(),
+            f(r.cycles, 0),
+            f(r.soh_pct, 1),
+            f(r.resistance_mohm, 1),
+            f(r.resistance_growth_pct, 0),
+            f(r.fade_pct_per_100_cycles, 3),
+            f(r.eol_cycles, 0),
+            r.eol_date.map(|d| d.to_string()).unwrap_or_default(),
+            escape(r.grade.as_deref().unwrap_or("")),
+            flags.join(", ")
+        );
+    }
+    let _ = write!(b, "</table>");
+    let mut c = Chart::new(
+        "State of health of every pack",
+        "equivalent full cycles",
+        "state of health (% of rated)",
+    );
+    for (i, h) in histories.iter().enumerate() {
+        c.series.push(Series {
+            name: h.pack_id.clone(),
+            points: h
+                .points
+                .iter()
+                .filter(|p| p.cycles.is_finite())
+                .map(|p| (p.cycles, p.soh_pct))
+                .collect(),
+            color: svg::palette(i),
+            mark: Mark::LineAndDots,
+        });
+    }
+    c.hlines.push(HLine {
+        y: fleet.threshold_pct,
+        name: "end of life".into(),
+        color: svg::RED_,
+    });
+    c.height = 440;
+    b.push_str(&svg::render(&c));
+    page(title, &b)
+}
