@@ -129,6 +129,14 @@ fn shipped() -> Vec<(&'static str, PackSpec)> {
             "procedures/nimh-capacity.toml",
             spec(Chemistry::Nimh, 6, 2.0),
         ),
+        (
+            "procedures/quarterly-check-li-ion.toml",
+            spec(Chemistry::LiIon, 10, 14.0),
+        ),
+        (
+            "procedures/quarterly-check-lfp.toml",
+            spec(Chemistry::Lfp, 12, 15.0),
+        ),
     ]
 }
 
