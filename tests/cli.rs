@@ -294,3 +294,91 @@ fn a_safety_stop_exits_non_zero() {
         text(&out.stderr)
     );
 }
+
+#[test]
+fn demo_then_fade_fleet_and_report_on_its_results() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("demo");
+    let o = packbench(&["demo", "--out", out.to_str().unwrap()]);
+    assert_eq!(o.status.code(), Some(0), "{}", text(&o.stderr));
+    let s = text(&o.stdout);
+    assert!(
+        s.contains("Open the fleet report:") && s.contains("fleet.html"),
+        "{s}"
+    );
+    assert!(s.contains("OVERDUE") && s.contains("ACCELERATING"), "{s}");
+    let results = out.join("results");
+    let r = results.to_str().unwrap();
+    // Rerunning the demo into its own folder is allowed; into a foreign one is not.
+    let foreign = dir.path().join("mine");
+    std::fs::create_dir_all(&foreign).unwrap();
+    std::fs::write(foreign.join("notes.txt"), "keep me").unwrap();
+    let o = packbench(&["demo", "--out", foreign.to_str().unwrap()]);
+    assert_eq!(o.status.code(), Some(1));
+    assert!(foreign.join("notes.txt").exists());
+
+    // fade: text, JSON and the HTML report.
+    let o = packbench(&["fade", "FR-L04", "--results", r]);
+    assert_eq!(o.status.code(), Some(0), "{}", text(&o.stderr));
+    let s = text(&o.stdout);
+    assert!(
+        s.contains("ACCELERATING FADE") && s.contains("End of life at about"),
+        "{s}"
+    );
+    assert!(results.join("FR-L04/fade.html").is_file());
+    let o = packbench(&[
+        "fade",
+        "FR-P01",
+        "--results",
+        r,
+        "--json",
+        "--threshold",
+        "85%",
+    ]);
+    let j: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert_eq!(j["fade"]["threshold_pct"], 85.0);
+    assert_eq!(j["history"]["points"].as_array().unwrap().len(), 9);
+    assert!(j["fade"]["eol_cycles"]["cycles"].as_f64().unwrap() > 1000.0);
+    let o = packbench(&["fade", "../FR-P01", "--results", r]);
+    assert_eq!(o.status.code(), Some(2));
+
+    // fleet: table, CSV, JSON, HTML.
+    let o = packbench(&["fleet", r, "--today", "2026-11-23"]);
+    let s = text(&o.stdout);
+    assert_eq!(o.status.code(), Some(0), "{}", text(&o.stderr));
+    assert_eq!(s.lines().count(), 10, "{s}");
+    let o = packbench(&["fleet", r, "--today", "2026-11-23", "--csv"]);
+    let s = text(&o.stdout);
+    assert!(s.starts_with("rank,pack_id,chemistry"));
+    assert_eq!(s.lines().count(), 9);
+    let html = dir.path().join("fleet.html");
+    let o = packbench(&[
+        "fleet",
+        r,
+        "--today",
+        "2026-11-23",
+        "--json",
+        "--html",
+        html.to_str().unwrap(),
+    ]);
+    let j: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    let rows = j["rows"].as_array().unwrap();
+    assert_eq!(rows.len(), 8);
+    assert_eq!(rows.iter().filter(|r| r["overdue"] == true).count(), 1);
+    assert!(std::fs::read_to_string(&html).unwrap().contains("<svg"));
+    let o = packbench(&["fleet", r, "--today", "yesterday"]);
+    assert_eq!(o.status.code(), Some(2));
+
+    // report: rewrite a run's report from its folder.
+    let run = std::fs::read_dir(results.join("FR-L01"))
+        .unwrap()
+        .filter_map(|e| e.ok())
+        .map(|e| e.path())
+        .find(|p| p.is_dir())
+        .unwrap();
+    std::fs::remove_file(run.join("report.html")).unwrap();
+    let o = packbench(&["report", run.to_str().unwrap()]);
+    assert_eq!(o.status.code(), Some(0), "{}", text(&o.stderr));
+    let page = std::fs::read_to_string(run.join("report.html")).unwrap();
+    assert!(page.contains("Grade card") && page.matches("<svg").count() >= 4);
+}

@@ -36,7 +36,7 @@ body { font-family: sans-serif; margin: 24px auto; max-width: 1000px; color: #22
 h1 { font-size: 22px; margin-bottom: 4px; } h2 { font-size: 17px; margin-top: 28px; border-bottom: 1px solid #ccc; }
 .sub { color: #555; margin-top: 0; }
 table { border-collapse: collapse; margin: 8px 0; font-size: 13px; }
-th, td { border: 1px solid #ccc; padding: 3px 8px; text-align: right; }
+th, td { border: 1px solid #ccc; padding: 3px 8px; text-align: right; white-space: nowrap; }
 th { background: #f2f2f2; } td.l, th.l { text-align: left; }
 .status-completed { color: #1a7f1a; } .status-aborted, .status-interrupted { color: #b00; }
 .card { border: 2px solid #222; padding: 12px 16px; width: 420px; page-break-inside: avoid; }

@@ -82,7 +82,7 @@ pub fn palette(i: usize) -> RGBColor {
         RGBColor(31, 119, 180),
         RGBColor(214, 95, 14),
         RGBColor(44, 140, 44),
-        RGBColor(200, 30, 30),
+        RGBColor(0, 128, 128),
         RGBColor(120, 80, 170),
         RGBColor(140, 86, 75),
         RGBColor(210, 90, 170),
@@ -187,7 +187,9 @@ fn draw(c: &Chart, xr: (f64, f64), yr: (f64, f64), out: &mut String) -> DrawResu
     let date_fmt = |v: &f64| date_label(*v);
     let num_fmt = |v: &f64| {
         let a = v.abs();
-        if a != 0.0 && !(0.01..1e5).contains(&a) {
+        if a < 1e-12 {
+            "0".to_string()
+        } else if a != 0.0 && !(0.01..1e5).contains(&a) {
             format!("{v:.2e}")
         } else if a >= 100.0 {
             format!("{v:.0}")
