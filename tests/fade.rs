@@ -293,3 +293,54 @@ fn demo_fleet_projections_match_the_simulated_ageing() {
     let again = fleet::build(&out.results, demo::scenario_today(), 92, 80.0).unwrap();
     assert_eq!(again, out.fleet);
 }
+
+/// Aborted runs are listed and left out; cycles are counted from the
+/// measured throughput when the operator gives none.
+#[tokio::test]
+async fn history_from_runs_counts_cycles_and_leaves_out_aborted_runs() {
+    use packbench::engine::control::StopHandle;
+    use packbench::run::{self, PackSource, RunOptions, RunRequest, Speed};
+    use packbench::sim::SimConfig;
+    let dir = tempfile::tempdir().unwrap();
+    let mut discharged = Vec::new();
+    for (day, fault) in [
+        ("2026-01-05", false),
+        ("2026-02-05", true),
+        ("2026-03-05", false),
+    ] {
+        let req = RunRequest {
+            procedure: "procedures/capacity-check.toml".into(),
+            pack_id: "H-1".into(),
+            pack: PackSource::Given(run::default_sim_pack()),
+            results: dir.path().to_path_buf(),
+            options: RunOptions {
+                test_date: history::parse_date(day).unwrap(),
+                ..RunOptions::default()
+            },
+        };
+        let p = run::prepare(&req).unwrap();
+        let mut cfg = SimConfig::default();
+        if fault {
+            cfg.faults.source_voltage_error_pct = 3.0;
+        }
+        let r = run::execute_sim(&p, &cfg, Speed::Max, StopHandle::new())
+            .await
+            .unwrap();
+        discharged.push(r.summary.steps.iter().map(|s| s.charge_out_ah).sum::<f64>());
+    }
+    let h = history::load(dir.path(), "H-1", None).unwrap();
+    assert_eq!(h.points.len(), 2);
+    assert_eq!(h.left_out.len(), 1);
+    assert_eq!(h.left_out[0].status, "aborted");
+    assert!(h.left_out[0].reason.contains("voltage_max"));
+    // Counted cycles: nothing before the first run, then the discharge Ah
+    // of the first two runs (the aborted one moved charge too) over 14 Ah.
+    assert_eq!(h.points[0].cycles, 0.0);
+    assert!(!h.points[1].cycles_given);
+    let want = (discharged[0] + discharged[1]) / 14.0;
+    assert!(
+        (h.points[1].cycles - want).abs() < 1e-9,
+        "{} vs {want}",
+        h.points[1].cycles
+    );
+}
