@@ -75,14 +75,12 @@ pub struct DemoPack {
     pub procedure: &'static str,
 }
 
+/// The simulated bench's default pack (a 36 V, 14 Ah e-bike pack) with the
+/// maker's resistance figure.
 fn li_ion(rated_resistance: f64) -> PackSpec {
     PackSpec {
-        chemistry: Chemistry::LiIon,
-        series: 10,
-        rated_capacity_ah: 14.0,
-        rated_energy_wh: Some(504.0),
-        rated_rate_c: Some(0.2),
         rated_resistance_mohm: Some(rated_resistance),
+        ..run::default_sim_pack()
     }
 }
 
