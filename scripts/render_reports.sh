@@ -23,7 +23,7 @@ for page in "$run_report" "$fade_report" "$fleet_report"; do
   chromium --headless --no-sandbox --disable-gpu --disable-quic --no-first-run \
     --disable-background-networking --disable-component-update --disable-sync \
     --user-data-dir="$profile" --enable-logging=stderr --v=0 \
-    --hide-scrollbars --window-size=1100,2400 \
+    --hide-scrollbars --window-size=1100,3400 \
     --screenshot="$out/$name.png" "file://$page" 2>"$log" >/dev/null || true
   rm -rf "$profile"
   svgs=$(grep -o '<svg' "$page" | wc -l)

@@ -470,13 +470,14 @@ pub fn pack_report(
         color: svg::RED_,
     });
     b.push_str(&svg::render(&c));
-    // SOH against date.
+    // SOH against date, with the time model and its band.
     let mut c = Chart::new(
         "State of health against date",
         "test date",
         "state of health (% of rated)",
     );
     c.x_is_date = true;
+    let d0 = h.points.first().map(|p| day_number(p.date)).unwrap_or(0.0);
     c.series.push(Series {
         name: "measured".into(),
         points: h
@@ -485,33 +486,97 @@ pub fn pack_report(
             .map(|p| (day_number(p.date), p.soh_pct))
             .collect(),
         color: svg::BLUE_,
-        mark: Mark::LineAndDots,
+        mark: Mark::Dots,
     });
+    if let Some(m) = fa
+        .models
+        .iter()
+        .find(|m| m.kind == crate::fade::model::ModelKind::LinearTime)
+    {
+        let last = h.points.last().map(|p| day_number(p.date)).unwrap_or(d0);
+        let end = fa
+            .eol_date
+            .as_ref()
+            .map(|p| day_number(p.date).max(last))
+            .unwrap_or(last)
+            .min(last + 4.0 * (last - d0).max(30.0));
+        let xs: Vec<f64> = (0..=60)
+            .map(|k| d0 + (end - d0) * k as f64 / 60.0)
+            .collect();
+        c.series.push(Series {
+            name: format!("fit, linear in time (R² {:.3})", m.fit.r_squared),
+            points: xs.iter().map(|x| (*x, m.fit.predict(x - d0))).collect(),
+            color: svg::GREY_,
+            mark: Mark::Line,
+        });
+        let (mut up, mut lo) = (Vec::new(), Vec::new());
+        for x in &xs {
+            if let Some((l, u)) = m.fit.prediction_interval(x - d0, crate::fade::model::LEVEL) {
+                up.push((*x, u));
+                lo.push((*x, l));
+            }
+        }
+        c.bands.push(Band {
+            name: "95 % prediction band".into(),
+            upper: up,
+            lower: lo,
+            color: svg::GREY_,
+        });
+    }
     c.hlines.push(HLine {
         y: fa.threshold_pct,
         name: "end of life".into(),
         color: svg::RED_,
     });
     b.push_str(&svg::render(&c));
-    // Resistance.
-    let rp: Vec<(f64, f64)> = h
-        .points
-        .iter()
-        .filter_map(|p| p.resistance_mohm.map(|r| (p.cycles, r)))
-        .collect();
-    if !rp.is_empty() {
-        let mut c = Chart::new(
-            "DC resistance against equivalent full cycles",
-            "equivalent full cycles",
-            "resistance (mΩ)",
-        );
+    // Resistance against cycles and against date.
+    let reference = h.reference_resistance();
+    for by_date in [false, true] {
+        let rp: Vec<(f64, f64)> = h
+            .points
+            .iter()
+            .filter_map(|p| {
+                p.resistance_mohm.map(|r| {
+                    (
+                        if by_date {
+                            day_number(p.date)
+                        } else {
+                            p.cycles
+                        },
+                        r,
+                    )
+                })
+            })
+            .collect();
+        if rp.is_empty() {
+            break;
+        }
+        let mut c = if by_date {
+            Chart::new("DC resistance against date", "test date", "resistance (mΩ)")
+        } else {
+            Chart::new(
+                "DC resistance against equivalent full cycles",
+                "equivalent full cycles",
+                "resistance (mΩ)",
+            )
+        };
+        c.x_is_date = by_date;
+        if let (false, Some(f)) = (by_date, &fa.resistance_fit) {
+            let (a, z) = (rp[0].0, rp[rp.len() - 1].0);
+            c.series.push(Series {
+                name: format!("fit ({:+.2} mΩ per 100 cycles)", f.slope * 100.0),
+                points: vec![(a, f.predict(a)), (z, f.predict(z))],
+                color: svg::GREY_,
+                mark: Mark::Line,
+            });
+        }
         c.series.push(Series {
             name: "measured".into(),
             points: rp,
             color: svg::ORANGE_,
             mark: Mark::LineAndDots,
         });
-        if let Some((r0, what)) = h.reference_resistance() {
+        if let Some((r0, what)) = reference {
             c.hlines.push(HLine {
                 y: 2.0 * r0,
                 name: format!("twice the {what} resistance"),
