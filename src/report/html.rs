@@ -137,6 +137,15 @@ fn grade_card(s: &Summary) -> String {
     o
 }
 
+/// A trace against time: title, y label, series name, colour, value.
+type Trace = (
+    &'static str,
+    &'static str,
+    &'static str,
+    svg::RGBColor,
+    fn(&Sample) -> Option<f64>,
+);
+
 /// The report of one run.
 pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
     let mut b = String::new();
@@ -218,51 +227,39 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
     }
     // Plots.
     let _ = write!(b, "<h2>Voltage, current and temperature</h2>");
-    let hours = |pts: Vec<(f64, f64)>| -> Vec<(f64, f64)> { svg::thin(&pts, MAX_POINTS) };
-    let mut c = Chart::new("Pack voltage", "time since start (h)", "voltage (V)");
-    c.series.push(Series {
-        name: "voltage".into(),
-        points: hours(
-            samples
-                .iter()
-                .map(|x| (x.t_s / 3600.0, x.voltage_v))
-                .collect(),
+    // One chart per quantity against time in hours, thinned for plotting.
+    let traces: [Trace; 3] = [
+        ("Pack voltage", "voltage (V)", "voltage", svg::BLUE_, |x| {
+            Some(x.voltage_v)
+        }),
+        (
+            "Pack current (positive into the pack)",
+            "current (A)",
+            "current",
+            svg::ORANGE_,
+            |x| Some(x.current_a),
         ),
-        color: svg::BLUE_,
-        mark: Mark::Line,
-    });
-    b.push_str(&svg::render(&c));
-    let mut c = Chart::new(
-        "Pack current (positive into the pack)",
-        "time since start (h)",
-        "current (A)",
-    );
-    c.series.push(Series {
-        name: "current".into(),
-        points: hours(
-            samples
-                .iter()
-                .map(|x| (x.t_s / 3600.0, x.current_a))
-                .collect(),
-        ),
-        color: svg::ORANGE_,
-        mark: Mark::Line,
-    });
-    b.push_str(&svg::render(&c));
-    let temps: Vec<(f64, f64)> = samples
-        .iter()
-        .filter_map(|x| x.temperature_c.map(|t| (x.t_s / 3600.0, t)))
-        .collect();
-    if !temps.is_empty() {
-        let mut c = Chart::new(
+        (
             "Pack temperature",
-            "time since start (h)",
             "temperature (°C)",
-        );
+            "temperature",
+            svg::RED_,
+            |x| x.temperature_c,
+        ),
+    ];
+    for (title, y_label, name, color, value) in traces {
+        let pts: Vec<(f64, f64)> = samples
+            .iter()
+            .filter_map(|x| value(x).map(|v| (x.t_s / 3600.0, v)))
+            .collect();
+        if pts.is_empty() {
+            continue;
+        }
+        let mut c = Chart::new(title, "time since start (h)", y_label);
         c.series.push(Series {
-            name: "temperature".into(),
-            points: hours(temps),
-            color: svg::RED_,
+            name: name.into(),
+            points: svg::thin(&pts, MAX_POINTS),
+            color,
             mark: Mark::Line,
         });
         b.push_str(&svg::render(&c));

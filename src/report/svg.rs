@@ -3,6 +3,7 @@
 //! Presentation only: every point comes from the caller.
 
 use plotters::prelude::*;
+pub use plotters::style::RGBColor;
 
 /// How a series is drawn.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
