@@ -329,6 +329,39 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
     page(&format!("packbench — {} — {}", s.pack_id, s.run_id), &b)
 }
 
+/// Draw a fitted line over `range` and its 95 % prediction band; the fit's
+/// x is the chart's x minus `offset`.
+fn add_fit_with_band(
+    c: &mut Chart,
+    fit: &crate::analysis::fit::LinearFit,
+    range: (f64, f64),
+    offset: f64,
+    name: &str,
+) {
+    let xs: Vec<f64> = (0..=60)
+        .map(|k| range.0 + (range.1 - range.0) * k as f64 / 60.0)
+        .collect();
+    c.series.push(Series {
+        name: name.into(),
+        points: xs.iter().map(|x| (*x, fit.predict(x - offset))).collect(),
+        color: svg::GREY_,
+        mark: Mark::Line,
+    });
+    let (mut up, mut lo) = (Vec::new(), Vec::new());
+    for x in &xs {
+        if let Some((l, u)) = fit.prediction_interval(x - offset, crate::fade::model::LEVEL) {
+            up.push((*x, u));
+            lo.push((*x, l));
+        }
+    }
+    c.bands.push(Band {
+        name: "95 % prediction band".into(),
+        upper: up,
+        lower: lo,
+        color: svg::GREY_,
+    });
+}
+
 fn day_number(d: chrono::NaiveDate) -> f64 {
     use chrono::Datelike;
     f64::from(d.num_days_from_ce())
@@ -423,26 +456,13 @@ pub fn pack_report(
             .map(|p| p.cycles.max(pts.last().map(|p| p.0).unwrap_or(0.0)))
             .unwrap_or_else(|| pts.last().map(|p| p.0).unwrap_or(1.0))
             .min(x0 + 10.0 * (pts.last().map(|p| p.0).unwrap_or(1.0) - x0).max(1.0));
-        let xs: Vec<f64> = (0..=60).map(|k| x0 + (x1 - x0) * k as f64 / 60.0).collect();
-        c.series.push(Series {
-            name: format!("fit, all points (R² {:.3})", m.fit.r_squared),
-            points: xs.iter().map(|x| (*x, m.fit.predict(*x))).collect(),
-            color: svg::GREY_,
-            mark: Mark::Line,
-        });
-        let (mut up, mut lo) = (Vec::new(), Vec::new());
-        for x in &xs {
-            if let Some((l, u)) = m.fit.prediction_interval(*x, crate::fade::model::LEVEL) {
-                up.push((*x, u));
-                lo.push((*x, l));
-            }
-        }
-        c.bands.push(Band {
-            name: "95 % prediction band".into(),
-            upper: up,
-            lower: lo,
-            color: svg::GREY_,
-        });
+        add_fit_with_band(
+            &mut c,
+            &m.fit,
+            (x0, x1),
+            0.0,
+            &format!("fit, all points (R² {:.3})", m.fit.r_squared),
+        );
         if fa.accelerating.is_some() {
             if let Some(p) = &fa.eol_cycles {
                 // The recent-half line the projection rests on.
@@ -497,28 +517,13 @@ pub fn pack_report(
             .map(|p| day_number(p.date).max(last))
             .unwrap_or(last)
             .min(last + 4.0 * (last - d0).max(30.0));
-        let xs: Vec<f64> = (0..=60)
-            .map(|k| d0 + (end - d0) * k as f64 / 60.0)
-            .collect();
-        c.series.push(Series {
-            name: format!("fit, linear in time (R² {:.3})", m.fit.r_squared),
-            points: xs.iter().map(|x| (*x, m.fit.predict(x - d0))).collect(),
-            color: svg::GREY_,
-            mark: Mark::Line,
-        });
-        let (mut up, mut lo) = (Vec::new(), Vec::new());
-        for x in &xs {
-            if let Some((l, u)) = m.fit.prediction_interval(x - d0, crate::fade::model::LEVEL) {
-                up.push((*x, u));
-                lo.push((*x, l));
-            }
-        }
-        c.bands.push(Band {
-            name: "95 % prediction band".into(),
-            upper: up,
-            lower: lo,
-            color: svg::GREY_,
-        });
+        add_fit_with_band(
+            &mut c,
+            &m.fit,
+            (d0, end),
+            d0,
+            &format!("fit, linear in time (R² {:.3})", m.fit.r_squared),
+        );
     }
     c.hlines.push(HLine {
         y: fa.threshold_pct,
