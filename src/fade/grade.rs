@@ -223,7 +223,10 @@ impl Policy {
                             (false, true) => "<=",
                             (false, false) => ">",
                         };
-                        let line = format!("{name} {v:.1} % {op} {limit} %");
+                        // Efficiencies sit close to their floors: two decimals so 99.96 %
+                        // does not print as 100.0 %.
+                        let d = if name == "coulombic efficiency" { 2 } else { 1 };
+                        let line = format!("{name} {v:.d$} % {op} {limit} %");
                         if ok {
                             reasons.push(line)
                         } else {
