@@ -17,7 +17,9 @@ use crate::units;
 use anyhow::{anyhow, Context};
 use chrono::NaiveDate;
 use clap::{Args, Parser, Subcommand};
+use crate::clock::{Clock, PacedClock};
 use std::path::PathBuf;
+use std::sync::Arc;
 
 pub const EXIT_OK: i32 = 0;
 pub const EXIT_FAILURE: i32 = 1;
@@ -48,6 +50,12 @@ pub enum Command {
     Fleet(FleetArgs),
     /// Run the fictional rental-fleet demo on the simulated bench.
     Demo(DemoArgs),
+    /// List the serial ports of this machine.
+    Ports,
+    /// Check an instrument's link and profile: identify, error queue, voltage, current.
+    Probe(crate::setup::ProbeArgs),
+    /// The simulated bench as real endpoints.
+    Sim(crate::setup::SimArgs),
 }
 
 #[derive(Debug, Args)]
@@ -139,10 +147,22 @@ pub struct PackArgs {
 pub struct RunArgs {
     /// Procedure file (TOML).
     pub procedure: PathBuf,
-    /// Use the simulated bench. It is also the default: this version has
-    /// no bench files yet, so every run uses the simulated bench.
-    #[arg(long)]
+    /// Use the embedded simulated bench (the default without --bench).
+    #[arg(long, conflicts_with = "bench")]
     pub sim: bool,
+    /// Bench file (TOML) binding the station's instruments to links and profiles.
+    #[arg(long)]
+    pub bench: Option<PathBuf>,
+    /// The station of the bench file to use (needed when it has several).
+    #[arg(long, requires = "bench")]
+    pub station: Option<String>,
+    /// Write the raw instrument traffic with timestamps to trace.log in the run folder.
+    #[arg(long)]
+    pub trace: bool,
+    /// Inject a link fault into the simulated bench: INSTRUMENT:KIND@TIME[:DELAY],
+    /// KIND one of no-reply, garbage, slow, disconnect, error, wrong-read-back.
+    #[arg(long, conflicts_with = "bench")]
+    pub fault: Vec<String>,
     /// Pack id: letters, digits, '-', '_', '.'; becomes the results folder.
     #[arg(long)]
     pub pack: String,
@@ -151,7 +171,9 @@ pub struct RunArgs {
     /// Results folder.
     #[arg(long, default_value = "results")]
     pub results: PathBuf,
-    /// Pace of the simulated bench: max, or bench seconds per second (1 = real time).
+    /// Pace of the simulated bench: max, or bench seconds per second (1 = real
+    /// time). With --bench the default is real time; a factor is only for a
+    /// sped-up simulator served with `packbench sim serve --speed`.
     #[arg(long, default_value = "max")]
     pub speed: String,
     /// Simulated bench settings (pack condition, meter errors, faults), TOML.
@@ -189,7 +211,7 @@ pub struct CheckArgs {
 }
 
 /// Build a pack spec from the options, if any were given.
-fn pack_from_args(a: &PackArgs) -> Result<Option<PackSpec>, RunError> {
+pub fn pack_from_args(a: &PackArgs) -> Result<Option<PackSpec>, RunError> {
     if let Some(path) = &a.pack_spec {
         return run::read_pack_file(path).map(Some);
     }
@@ -312,6 +334,11 @@ pub fn cmd_run(a: RunArgs) -> i32 {
             results: a.results.clone(),
             options,
         };
+        if a.bench.is_some() && (a.sim_config.is_some() || a.sim_ideal) {
+            return Err(RunError::Pack(
+                "--sim-config and --sim-ideal are for the embedded simulated bench, not --bench".into(),
+            ));
+        }
         let mut cfg = match &a.sim_config {
             Some(path) => {
                 let text = std::fs::read_to_string(path).map_err(|source| RunError::Io {
@@ -325,9 +352,35 @@ pub fn cmd_run(a: RunArgs) -> i32 {
         if a.sim_ideal {
             cfg.ideal = true;
         }
-        Ok((run::prepare(&req)?, cfg, speed))
+        for f in &a.fault {
+            cfg.faults.link.push(f.parse().map_err(RunError::Pack)?);
+        }
+        let mut req = req;
+        req.options.trace = a.trace;
+        if a.bench.is_some() {
+            if let PackSource::Saved { allow_sim_default } = &mut req.pack {
+                *allow_sim_default = false;
+            }
+        }
+        let prepared = run::prepare(&req)?;
+        // The bench file and the station's profiles are checked before any
+        // link is opened.
+        let station = match &a.bench {
+            Some(path) => {
+                let bench = crate::benchfile::BenchFile::load(path)?;
+                let st = bench
+                    .station(a.station.as_deref())
+                    .map_err(RunError::Pack)?
+                    .clone();
+                let (sp, lp) = st.profiles();
+                run::check_ranges(&prepared.procedure, sp, lp)?;
+                Some(st)
+            }
+            None => None,
+        };
+        Ok((prepared, cfg, speed, station))
     })();
-    let (prepared, cfg, speed) = match prepared {
+    let (prepared, cfg, speed, station) = match prepared {
         Ok(p) => p,
         Err(e) => return report_error(&e),
     };
@@ -355,7 +408,26 @@ pub fn cmd_run(a: RunArgs) -> i32 {
                 s.request_stop();
             }
         });
-        run::execute_sim(&prepared, &cfg, speed, stop.clone()).await
+        match &station {
+            None => run::execute_sim(&prepared, &cfg, speed, stop.clone()).await,
+            Some(st) => {
+                let factor = match speed {
+                    Speed::Max => 1.0,
+                    Speed::Factor(f) => f,
+                };
+                if factor != 1.0 {
+                    eprintln!("note: pacing the bench at {factor}x real time: only meaningful against a sped-up simulator");
+                }
+                let mut links = run::open_station(st).await?;
+                links.speed = if factor == 1.0 {
+                    "real time".into()
+                } else {
+                    format!("{factor}x real time")
+                };
+                let clock: Arc<dyn Clock> = PacedClock::new(factor);
+                run::execute(&prepared, links, clock, None, stop.clone(), None).await
+            }
+        }
     });
     match result {
         Ok(r) => {
@@ -565,6 +637,9 @@ pub fn main() -> i32 {
         Command::Fade(a) => cmd_fade(a).context("fade analysis failed"),
         Command::Fleet(a) => cmd_fleet(a).context("fleet view failed"),
         Command::Demo(a) => cmd_demo(a).context("demo failed"),
+        Command::Ports => crate::setup::cmd_ports().context("listing ports failed"),
+        Command::Probe(a) => crate::setup::cmd_probe(a).context("probe failed"),
+        Command::Sim(a) => crate::setup::cmd_sim(a).context("sim failed"),
     };
     match result {
         Ok(code) => code,

@@ -23,6 +23,7 @@
 //! | [`cli`] | the command line |
 
 pub mod analysis;
+pub mod benchfile;
 pub mod cli;
 pub mod clock;
 pub mod demo;
@@ -36,6 +37,7 @@ pub mod report;
 pub mod run;
 pub mod runlog;
 pub mod sample;
+pub mod setup;
 pub mod sim;
 pub mod truth;
 pub mod units;

@@ -9,9 +9,12 @@ use crate::engine::control::StopHandle;
 use crate::engine::state::RunState;
 use crate::engine::{Engine, RunOutcome, Station, TruthStep};
 use crate::fade::grade::{GradeInputs, Policy};
-use crate::instrument::link::Link;
+use crate::benchfile::{Drivers, StationSpec};
+use crate::instrument::link::{Link, SharedLink};
 use crate::instrument::profile::{Profile, ProfileRole};
-use crate::instrument::{InstrumentError, Load, Source};
+use crate::instrument::scpi::{Reopen, Trace};
+use crate::instrument::transport::{self, LinkSpec};
+use crate::instrument::{Attach, InstrumentError, Load, Meter, Source};
 use crate::location::{InputErrors, LocatedError, Location};
 use crate::pack::{check_pack_id, Chemistry, PackIdError, PackSpec};
 use crate::procedure::{self, DischargeMode, LoadedProcedure, StepKind};
@@ -104,6 +107,8 @@ pub struct RunOptions {
     pub cycle_count: Option<f64>,
     /// The shop's grading policy.
     pub policy: Policy,
+    /// Write the raw instrument traffic to `trace.log` in the run folder.
+    pub trace: bool,
 }
 
 impl Default for RunOptions {
@@ -112,6 +117,7 @@ impl Default for RunOptions {
             test_date: chrono::Utc::now().date_naive(),
             cycle_count: None,
             policy: Policy::default_policy(),
+            trace: false,
         }
     }
 }
@@ -419,6 +425,15 @@ pub async fn execute_sim(
     execute_sim_links(p, cfg, clock, links, &speed_text, stop).await
 }
 
+/// A reopen function for an in-memory link to a simulated instrument.
+fn sim_reopen(r: &Arc<std::sync::Mutex<dyn crate::instrument::link::LineResponder>>) -> Reopen {
+    let r = Arc::clone(r);
+    Arc::new(move || {
+        let link = sim::link_to(&r);
+        Box::pin(async move { Ok(link) })
+    })
+}
+
 /// Run a prepared test on a given simulated bench (tests keep its handle
 /// to look at the instruments afterwards).
 pub async fn execute_sim_links(
@@ -440,12 +455,26 @@ pub async fn execute_sim_links(
     execute(
         p,
         BenchLinks {
-            source: links.source,
-            load: links.load,
-            source_profile,
-            load_profile,
-            source_link: "sim".into(),
-            load_link: "sim".into(),
+            source: BoundLink {
+                link: links.source,
+                profile: source_profile,
+                text: "sim".into(),
+                attach: Attach {
+                    trace: None,
+                    reopen: Some(sim_reopen(&links.source_responder)),
+                },
+            },
+            load: BoundLink {
+                link: links.load,
+                profile: load_profile,
+                text: "sim".into(),
+                attach: Attach {
+                    trace: None,
+                    reopen: Some(sim_reopen(&links.load_responder)),
+                },
+            },
+            meter: None,
+            shared: false,
             kind: "simulated".into(),
             speed: speed_text.to_string(),
         },
@@ -457,23 +486,123 @@ pub async fn execute_sim_links(
     .await
 }
 
+/// One instrument's open link, its profile and how to describe it.
+pub struct BoundLink {
+    pub link: Link,
+    pub profile: Profile,
+    pub text: String,
+    pub attach: Attach,
+}
+
 /// The links of a station and how to describe them.
 pub struct BenchLinks {
-    pub source: Link,
-    pub load: Link,
-    pub source_profile: Profile,
-    pub load_profile: Profile,
-    pub source_link: String,
-    pub load_link: String,
+    pub source: BoundLink,
+    pub load: BoundLink,
+    pub meter: Option<BoundLink>,
+    /// Source and load are one source-sink instrument on one link.
+    pub shared: bool,
     pub kind: String,
     pub speed: String,
+}
+
+fn reopen_for(role: &'static str, spec: &LinkSpec, profile: &Profile) -> Reopen {
+    let spec = spec.clone();
+    let timeout = std::time::Duration::from_millis(profile.transport.timeout_ms);
+    Arc::new(move || {
+        let spec = spec.clone();
+        Box::pin(async move { transport::open(role, &spec, timeout).await })
+    })
+}
+
+/// Open the links of a station (no message is sent yet).
+pub async fn open_station(station: &StationSpec) -> Result<BenchLinks, RunError> {
+    let timeout = |p: &Profile| std::time::Duration::from_millis(p.transport.timeout_ms);
+    let meter = match &station.meter {
+        Some(m) => Some(BoundLink {
+            link: transport::open("meter", &m.link, timeout(&m.profile)).await?,
+            profile: m.profile.clone(),
+            text: m.link_text.clone(),
+            attach: Attach {
+                trace: None,
+                reopen: Some(reopen_for("meter", &m.link, &m.profile)),
+            },
+        }),
+        None => None,
+    };
+    match &station.drivers {
+        Drivers::Pair { source, load } => {
+            let s = transport::open("source", &source.link, timeout(&source.profile)).await?;
+            let l = transport::open("load", &load.link, timeout(&load.profile)).await?;
+            Ok(BenchLinks {
+                source: BoundLink {
+                    link: s,
+                    profile: source.profile.clone(),
+                    text: source.link_text.clone(),
+                    attach: Attach {
+                        trace: None,
+                        reopen: Some(reopen_for("source", &source.link, &source.profile)),
+                    },
+                },
+                load: BoundLink {
+                    link: l,
+                    profile: load.profile.clone(),
+                    text: load.link_text.clone(),
+                    attach: Attach {
+                        trace: None,
+                        reopen: Some(reopen_for("load", &load.link, &load.profile)),
+                    },
+                },
+                meter,
+                shared: false,
+                kind: format!("station {}", station.name),
+                speed: "real time".into(),
+            })
+        }
+        Drivers::SourceSink(b) => {
+            let raw = transport::open("source-sink", &b.link, timeout(&b.profile)).await?;
+            let shared = SharedLink::new(raw);
+            let inner = reopen_for("source-sink", &b.link, &b.profile);
+            let slot = shared.clone();
+            // Reopening puts the new link into the shared slot, so both
+            // roles use it.
+            let reopen: Reopen = Arc::new(move || {
+                let inner = Arc::clone(&inner);
+                let slot = slot.clone();
+                Box::pin(async move {
+                    let link = inner().await?;
+                    if let Ok(mut g) = slot.0.lock() {
+                        *g = link;
+                    }
+                    let l: Link = Box::new(slot);
+                    Ok(l)
+                })
+            });
+            let bound = |attach_reopen: Reopen| BoundLink {
+                link: Box::new(shared.clone()),
+                profile: b.profile.clone(),
+                text: b.link_text.clone(),
+                attach: Attach {
+                    trace: None,
+                    reopen: Some(attach_reopen),
+                },
+            };
+            Ok(BenchLinks {
+                source: bound(Arc::clone(&reopen)),
+                load: bound(reopen),
+                meter,
+                shared: true,
+                kind: format!("station {}", station.name),
+                speed: "real time".into(),
+            })
+        }
+    }
 }
 
 /// Connect, run, record. The run folder is created only here, after
 /// [`prepare`] has passed.
 pub async fn execute(
     p: &Prepared,
-    links: BenchLinks,
+    mut links: BenchLinks,
     clock: Arc<dyn Clock>,
     truth: Option<Arc<dyn GroundTruth>>,
     stop: StopHandle,
@@ -495,8 +624,15 @@ pub async fn execute(
             .map_err(io_err(&path))?;
     }
     let (run_id, dir) = create_run_folder(&p.pack_dir, &base_id).map_err(io_err(&p.pack_dir))?;
-    let source_profile = links.source_profile.clone();
-    let load_profile = links.load_profile.clone();
+    if p.options.trace {
+        let path = dir.join(TRACE_LOG);
+        let trace = Trace::create(&path).map_err(io_err(&path))?;
+        links.source.attach.trace = Some(trace.clone());
+        links.load.attach.trace = Some(trace.clone());
+        if let Some(m) = links.meter.as_mut() {
+            m.attach.trace = Some(trace);
+        }
+    }
     let mut manifest = Manifest {
         tool: ToolInfo {
             name: "packbench",
@@ -527,11 +663,51 @@ pub async fn execute(
     let run_json = dir.join(RUN_JSON);
     write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
     let mut sink = RunLogSink::create(&dir).map_err(io_err(&dir))?;
-    let source = Source::connect(links.source, source_profile.clone()).await;
-    let load = Load::connect(links.load, load_profile.clone()).await;
-    let (source, load) = match (source, load) {
-        (Ok(s), Ok(l)) => (s, l),
-        (Err(e), _) | (_, Err(e)) => {
+    let mut records = Vec::new();
+    let record = |role: &str, b: &BoundLink, idn: &str| InstrumentRecord {
+        role: role.into(),
+        link: b.text.clone(),
+        profile: b.profile.name.clone(),
+        idn: idn.to_string(),
+    };
+    let (src_rec, load_rec) = (
+        record("source", &links.source, ""),
+        record("load", &links.load, ""),
+    );
+    let connected = async {
+        let source =
+            Source::connect_with(links.source.link, links.source.profile, links.source.attach)
+                .await?;
+        let load = Load::connect_with(links.load.link, links.load.profile, links.load.attach).await;
+        let load = match load {
+            Ok(l) => l,
+            Err(e) => {
+                let mut source = source;
+                let _ = source.0.make_safe().await;
+                return Err(e);
+            }
+        };
+        let meter = match links.meter {
+            Some(m) => {
+                let rec = record("meter", &m, "");
+                match Meter::connect_with(m.link, m.profile, m.attach).await {
+                    Ok(x) => Some((x, rec)),
+                    Err(e) => {
+                        let (mut source, mut load) = (source, load);
+                        let _ = load.0.make_safe().await;
+                        let _ = source.0.make_safe().await;
+                        return Err(e);
+                    }
+                }
+            }
+            None => None,
+        };
+        Ok((source, load, meter))
+    }
+    .await;
+    let (source, load, meter) = match connected {
+        Ok(x) => x,
+        Err(e) => {
             manifest.status = "aborted".into();
             manifest.stop_reason = Some(format!("could not connect: {e}"));
             manifest.finished_utc = Some(utc_now());
@@ -539,22 +715,29 @@ pub async fn execute(
             return Err(RunError::Instrument(e));
         }
     };
-    manifest.instruments = vec![
-        InstrumentRecord {
-            role: "source".into(),
-            link: links.source_link,
-            profile: source_profile.name.clone(),
-            idn: source.0.idn().to_string(),
-        },
-        InstrumentRecord {
-            role: "load".into(),
-            link: links.load_link,
-            profile: load_profile.name.clone(),
-            idn: load.0.idn().to_string(),
-        },
-    ];
+    records.push(InstrumentRecord {
+        idn: source.0.idn().to_string(),
+        ..src_rec
+    });
+    records.push(InstrumentRecord {
+        idn: load.0.idn().to_string(),
+        ..load_rec
+    });
+    let meter = meter.map(|(m, rec)| {
+        records.push(InstrumentRecord {
+            idn: m.0.idn().to_string(),
+            ..rec
+        });
+        m
+    });
+    manifest.instruments = records;
     write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
-    let mut station = Station { source, load };
+    let mut station = Station {
+        source,
+        load,
+        meter,
+        shared_link: links.shared,
+    };
     let outcome = Engine::new(
         &p.procedure.plan,
         &mut station,
@@ -601,6 +784,9 @@ pub async fn execute(
         outcome,
     })
 }
+
+/// The raw-traffic trace of a run (`run --trace`).
+pub const TRACE_LOG: &str = "trace.log";
 
 /// What a summary needs besides the log.
 #[derive(Debug, Clone, Copy)]

@@ -275,7 +275,7 @@ async fn a_load_that_stops_answering_ends_in_a_safe_stop() {
     let dir = tempfile::tempdir().unwrap();
     let p = prepare("procedures/capacity-check.toml", li_ion(), dir.path());
     let mut cfg = SimConfig::default();
-    cfg.faults.load_silent_after_s = Some(600.0);
+    cfg.faults.link.push("load:no-reply@600s".parse().unwrap());
     let (r, h) = run_sim(&p, &cfg, StopHandle::new()).await;
     assert_eq!(r.outcome.status, RunState::Aborted);
     assert!(
@@ -300,7 +300,7 @@ async fn garbage_replies_are_errors_never_zeros() {
     let dir = tempfile::tempdir().unwrap();
     let p = prepare("procedures/capacity-check.toml", li_ion(), dir.path());
     let mut cfg = SimConfig::default();
-    cfg.faults.load_garbage_after_s = Some(100.0);
+    cfg.faults.link.push("load:garbage@100s".parse().unwrap());
     let (r, h) = run_sim(&p, &cfg, StopHandle::new()).await;
     assert_eq!(r.outcome.status, RunState::Aborted);
     assert!(!h.load_input_on() && !h.source_output_on());
@@ -441,14 +441,14 @@ async fn a_panic_or_a_log_failure_mid_run_still_ends_with_outputs_off() {
         let c: Arc<dyn Clock> = clock;
         let links = sim::build(&p.pack, &SimConfig::default(), Arc::clone(&c));
         let h = links.handle.clone();
-        let mut station = Station {
-            source: Source::connect(links.source, Profile::builtin(ProfileRole::Source))
+        let mut station = Station::new(
+            Source::connect(links.source, Profile::builtin(ProfileRole::Source))
                 .await
                 .unwrap(),
-            load: Load::connect(links.load, Profile::builtin(ProfileRole::Load))
+            Load::connect(links.load, Profile::builtin(ProfileRole::Load))
                 .await
                 .unwrap(),
-        };
+        );
         let mut sink = FailingSink {
             after: 100,
             panic,

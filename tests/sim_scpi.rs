@@ -128,7 +128,7 @@ async fn a_silent_instrument_times_out_instead_of_answering_zero() {
     let clock = SimClock::new();
     let c: Arc<dyn Clock> = clock.clone();
     let mut cfg = SimConfig::ideal();
-    cfg.faults.load_silent_after_s = Some(10.0);
+    cfg.faults.link.push("load:no-reply@10s".parse().unwrap());
     let links = sim::build(&default_sim_pack(), &cfg, c);
     let mut load = Session::new("load", links.load, "\n", Duration::from_millis(50));
     assert!(load.query_number("MEAS:VOLT?").await.is_ok());

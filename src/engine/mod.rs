@@ -11,7 +11,7 @@ pub mod state;
 pub mod step;
 
 use crate::clock::Clock;
-use crate::instrument::{ErrorKind, InstrumentError, Load, LoadSetting, Reading, Source};
+use crate::instrument::{ErrorKind, InstrumentError, Load, LoadSetting, Meter, Reading, Source};
 use crate::procedure::{DischargeMode, Plan, PlanStep, StepKind};
 use crate::sample::Sample;
 use crate::truth::{GroundTruth, TruthCounters};
@@ -28,7 +28,28 @@ use step::StepTracker;
 pub struct Station {
     pub source: Source,
     pub load: Load,
+    /// A separate voltmeter at the pack terminals: when present, the pack
+    /// voltage (and temperature, if it has an input) come from it.
+    pub meter: Option<Meter>,
+    /// Source and load are the two roles of one source-sink instrument on
+    /// one link.
+    pub shared_link: bool,
 }
+
+impl Station {
+    pub fn new(source: Source, load: Load) -> Station {
+        Station {
+            source,
+            load,
+            meter: None,
+            shared_link: false,
+        }
+    }
+}
+
+/// How often the instruments' error queues are read while a step runs,
+/// run seconds.
+pub const ERROR_POLL_S: f64 = 1.0;
 
 /// Which instrument drives the pack.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -81,6 +102,7 @@ pub struct Engine<'a> {
     truth_open: Option<TruthCounters>,
     current_step: u32,
     step_open: bool,
+    next_error_poll: f64,
 }
 
 impl<'a> Engine<'a> {
@@ -106,6 +128,7 @@ impl<'a> Engine<'a> {
             truth_open: None,
             current_step: 0,
             step_open: false,
+            next_error_poll: ERROR_POLL_S,
         }
     }
 
@@ -204,12 +227,54 @@ impl<'a> Engine<'a> {
         }
     }
 
-    /// Load off first (it draws from the pack), then the source.
+    /// Every instrument to its safe state, each confirmed by read-back
+    /// where possible. Separate links are handled at the same time, so a
+    /// silent instrument does not delay the other's switch-off; one
+    /// source-sink link is handled in turn, load role first.
     async fn outputs_off(&mut self) -> (bool, bool) {
-        let load = self.station.load.0.make_safe().await.unwrap_or(false);
-        let src = self.station.source.0.make_safe().await.unwrap_or(false);
+        let st = &mut *self.station;
+        let (load, src) = if st.shared_link {
+            let l = st.load.0.make_safe().await;
+            let s = st.source.0.make_safe().await;
+            (l, s)
+        } else {
+            tokio::join!(st.load.0.make_safe(), st.source.0.make_safe())
+        };
         self.active = Active::None;
-        (src, load)
+        (src.unwrap_or(false), load.unwrap_or(false))
+    }
+
+    /// Read the error queues about once a second: an error an instrument
+    /// raises by itself (protection trip, over-temperature) stops the run.
+    async fn poll_errors(&mut self, t: f64) -> Result<(), Stop> {
+        if t < self.next_error_poll {
+            return Ok(());
+        }
+        self.next_error_poll = t + ERROR_POLL_S;
+        let st = &mut *self.station;
+        let mut r = st.source.0.poll_errors().await;
+        if r.is_ok() && !st.shared_link {
+            r = st.load.0.poll_errors().await;
+        }
+        if r.is_ok() {
+            if let Some(m) = st.meter.as_mut() {
+                r = m.0.poll_errors().await;
+            }
+        }
+        match r {
+            Ok(()) => Ok(()),
+            Err(e) => {
+                let step = self.current_step;
+                self.emit(Event::InstrumentError {
+                    t_s: self.t(),
+                    step,
+                    instrument: e.instrument.clone(),
+                    kind: format!("{:?}", e.kind).to_lowercase(),
+                    message: e.message.clone(),
+                })?;
+                Err(Stop::Instrument(e))
+            }
+        }
     }
 
     fn emit(&mut self, e: Event) -> Result<(), Stop> {
@@ -288,16 +353,28 @@ impl<'a> Engine<'a> {
     }
 
     async fn measure_once(&mut self) -> Result<(Reading, Option<f64>), InstrumentError> {
-        let reading = match self.active {
+        let mut reading = match self.active {
             Active::Source => self.station.source.measure().await?,
             Active::Load => self.station.load.measure().await?,
             // Both outputs are off: the pack current is zero by
-            // construction; the voltage comes from the load's input.
+            // construction; the voltage comes from the meter, or else the
+            // load's input.
+            Active::None if self.station.meter.is_some() => Reading {
+                voltage_v: f64::NAN,
+                current_a: 0.0,
+            },
             Active::None => Reading {
                 voltage_v: self.station.load.0.measure_voltage().await?,
                 current_a: 0.0,
             },
         };
+        if let Some(m) = self.station.meter.as_mut() {
+            // Sense leads at the pack terminals: no lead drop.
+            reading.voltage_v = m.0.measure_voltage().await?;
+            if let Some(t) = m.0.measure_temperature().await? {
+                return Ok((reading, Some(t)));
+            }
+        }
         let temp = match self.station.load.0.measure_temperature().await? {
             Some(t) => Some(t),
             None => self.station.source.0.measure_temperature().await?,
@@ -310,22 +387,47 @@ impl<'a> Engine<'a> {
         loop {
             match self.measure_once().await {
                 Ok(r) => return Ok(r),
-                Err(e) if e.kind == ErrorKind::Timeout && tries < MEASURE_RETRIES => {
+                Err(e)
+                    if matches!(e.kind, ErrorKind::Timeout | ErrorKind::Protocol)
+                        && tries < MEASURE_RETRIES =>
+                {
                     tries += 1;
-                    // Best effort: if it fails, the retry below fails too.
-                    let _ = if e.instrument == "source" {
-                        self.station.source.0.resync().await
-                    } else {
-                        self.station.load.0.resync().await
-                    };
                     let step = self.current_step;
+                    let kind = if e.kind == ErrorKind::Timeout {
+                        "timeout_retry"
+                    } else {
+                        "protocol_retry"
+                    };
                     self.emit(Event::InstrumentError {
                         t_s: self.t(),
                         step,
                         instrument: e.instrument.clone(),
-                        kind: "timeout_retry".into(),
+                        kind: kind.into(),
                         message: e.message.clone(),
                     })?;
+                    // Measurements are idempotent: retry once the session
+                    // is back in step. An instrument that cannot even
+                    // resynchronise is not retried further.
+                    let st = &mut *self.station;
+                    let inst = match e.instrument.as_str() {
+                        "source" => &mut st.source.0,
+                        "meter" if st.meter.is_some() => match st.meter.as_mut() {
+                            Some(m) => &mut m.0,
+                            None => &mut st.load.0,
+                        },
+                        _ => &mut st.load.0,
+                    };
+                    if let Err(r) = inst.resync().await {
+                        let step = self.current_step;
+                        self.emit(Event::InstrumentError {
+                            t_s: self.t(),
+                            step,
+                            instrument: r.instrument.clone(),
+                            kind: format!("{:?}", r.kind).to_lowercase(),
+                            message: r.message.clone(),
+                        })?;
+                        return Err(Stop::Instrument(e));
+                    }
                 }
                 Err(e) => {
                     let step = self.current_step;
@@ -457,6 +559,7 @@ impl<'a> Engine<'a> {
             };
             self.sink.sample(&s).map_err(Stop::Log)?;
             tracker.push(&s);
+            self.poll_errors(t).await?;
             let so_far = safety::StepSoFar {
                 elapsed_s: tracker.elapsed(),
                 charge_in_ah: tracker.counters.ah_in,

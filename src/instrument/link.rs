@@ -1,14 +1,18 @@
 //! Links are byte streams: serial, TCP and in-memory are interchangeable
 //! below the SCPI session. This file holds the in-memory link, which hands
 //! each complete line to a responder (the simulated instruments) and
-//! queues its reply for reading, with no task switch.
+//! queues its reply for reading, with no task switch, and the shared link
+//! through which the two roles of one source-sink instrument speak.
 
 use std::collections::VecDeque;
 use std::io;
+use std::future::Future;
 use std::pin::Pin;
 use std::sync::{Arc, Mutex};
 use std::task::{Context, Poll, Waker};
+use std::time::Duration;
 use tokio::io::{AsyncRead, AsyncWrite, ReadBuf};
+use tokio::time::{Instant, Sleep};
 
 /// Any duplex byte stream a session can run over.
 pub trait ByteStream: AsyncRead + AsyncWrite + Send + Unpin {}
@@ -17,12 +21,22 @@ impl<T: AsyncRead + AsyncWrite + Send + Unpin> ByteStream for T {}
 /// A boxed link.
 pub type Link = Box<dyn ByteStream>;
 
+/// What an instrument sends back for one program message.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Response {
+    /// Nothing (no query in the message, or a reply path that is dead).
+    Nothing,
+    /// A response message, without terminator.
+    Reply(String),
+    /// A response message that leaves only after a delay.
+    Late(String, Duration),
+}
+
 /// Something that answers program messages line by line (an instrument).
 pub trait LineResponder: Send {
-    /// Handle one message (without its terminator). Returns the response
-    /// message (without terminator) if the message held queries, or
-    /// `None`. `Err` means the link should drop (a simulated disconnect).
-    fn respond(&mut self, line: &str) -> Result<Option<String>, io::Error>;
+    /// Handle one message (without its terminator). `Err` means the link
+    /// should drop (a simulated disconnect).
+    fn respond(&mut self, line: &str) -> Result<Response, io::Error>;
 }
 
 /// An in-memory link to a responder.
@@ -30,6 +44,9 @@ pub struct InMemoryLink {
     responder: Arc<Mutex<dyn LineResponder>>,
     incoming: Vec<u8>,
     outgoing: VecDeque<u8>,
+    /// Late replies, each with the time it may be read.
+    held: VecDeque<(Instant, Vec<u8>)>,
+    sleep: Option<Pin<Box<Sleep>>>,
     reader: Option<Waker>,
     closed: bool,
 }
@@ -40,6 +57,8 @@ impl InMemoryLink {
             responder,
             incoming: Vec::new(),
             outgoing: VecDeque::new(),
+            held: VecDeque::new(),
+            sleep: None,
             reader: None,
             closed: false,
         }
@@ -70,14 +89,27 @@ impl AsyncWrite for InMemoryLink {
                 r.respond(text.trim_end_matches('\r'))
             };
             match answer {
-                Ok(Some(reply)) => {
-                    self.outgoing.extend(reply.as_bytes());
-                    self.outgoing.push_back(b'\n');
+                Ok(Response::Reply(reply)) => {
+                    if self.held.is_empty() {
+                        self.outgoing.extend(reply.as_bytes());
+                        self.outgoing.push_back(b'\n');
+                    } else {
+                        // Replies keep their order behind a late one.
+                        let at = self.held.back().map(|h| h.0).unwrap_or_else(Instant::now);
+                        self.held.push_back((at, line_bytes(reply)));
+                    }
                     if let Some(w) = self.reader.take() {
                         w.wake();
                     }
                 }
-                Ok(None) => {}
+                Ok(Response::Late(reply, delay)) => {
+                    let at = Instant::now() + delay;
+                    self.held.push_back((at, line_bytes(reply)));
+                    if let Some(w) = self.reader.take() {
+                        w.wake();
+                    }
+                }
+                Ok(Response::Nothing) => {}
                 Err(e) => {
                     self.closed = true;
                     if let Some(w) = self.reader.take() {
@@ -106,6 +138,21 @@ impl AsyncRead for InMemoryLink {
         cx: &mut Context<'_>,
         buf: &mut ReadBuf<'_>,
     ) -> Poll<io::Result<()>> {
+        let now = Instant::now();
+        while self.held.front().is_some_and(|h| h.0 <= now) {
+            if let Some((_, bytes)) = self.held.pop_front() {
+                self.outgoing.extend(bytes);
+            }
+        }
+        if self.outgoing.is_empty() && !self.closed {
+            if let Some(&(at, _)) = self.held.front() {
+                let mut sleep = Box::pin(tokio::time::sleep_until(at));
+                if sleep.as_mut().poll(cx).is_ready() {
+                    cx.waker().wake_by_ref();
+                }
+                self.sleep = Some(sleep);
+            }
+        }
         if self.outgoing.is_empty() {
             if self.closed {
                 return Poll::Ready(Ok(()));
@@ -122,5 +169,56 @@ impl AsyncRead for InMemoryLink {
         }
         self.outgoing.drain(..n);
         Poll::Ready(Ok(()))
+    }
+}
+
+fn line_bytes(reply: String) -> Vec<u8> {
+    let mut b = reply.into_bytes();
+    b.push(b'\n');
+    b
+}
+
+/// One link used by two sessions in turn: the source and load roles of a
+/// single source-sink instrument. The engine never has two exchanges in
+/// flight, so the two sessions cannot interleave on the wire.
+#[derive(Clone)]
+pub struct SharedLink(pub Arc<Mutex<Link>>);
+
+impl SharedLink {
+    pub fn new(link: Link) -> SharedLink {
+        SharedLink(Arc::new(Mutex::new(link)))
+    }
+    fn with<T>(&self, f: impl FnOnce(&mut Link) -> T) -> T {
+        let mut g = match self.0.lock() {
+            Ok(g) => g,
+            Err(p) => p.into_inner(),
+        };
+        f(&mut g)
+    }
+}
+
+impl AsyncWrite for SharedLink {
+    fn poll_write(
+        self: Pin<&mut Self>,
+        cx: &mut Context<'_>,
+        buf: &[u8],
+    ) -> Poll<io::Result<usize>> {
+        self.with(|l| Pin::new(&mut **l).poll_write(cx, buf))
+    }
+    fn poll_flush(self: Pin<&mut Self>, cx: &mut Context<'_>) -> Poll<io::Result<()>> {
+        self.with(|l| Pin::new(&mut **l).poll_flush(cx))
+    }
+    fn poll_shutdown(self: Pin<&mut Self>, cx: &mut Context<'_>) -> Poll<io::Result<()>> {
+        self.with(|l| Pin::new(&mut **l).poll_shutdown(cx))
+    }
+}
+
+impl AsyncRead for SharedLink {
+    fn poll_read(
+        self: Pin<&mut Self>,
+        cx: &mut Context<'_>,
+        buf: &mut ReadBuf<'_>,
+    ) -> Poll<io::Result<()>> {
+        self.with(|l| Pin::new(&mut **l).poll_read(cx, buf))
     }
 }

@@ -11,10 +11,11 @@ pub mod command;
 pub mod link;
 pub mod profile;
 pub mod scpi;
+pub mod transport;
 
 use link::Link;
 use profile::{Profile, ProfileRole};
-use scpi::Session;
+use scpi::{Reopen, Session, Trace};
 use serde::Serialize;
 use std::time::Duration;
 
@@ -68,6 +69,14 @@ fn render(template: &str, value: f64) -> String {
     template.replace("{value}", &s)
 }
 
+/// What a session gets besides its link: a traffic trace and a way to
+/// open the link again.
+#[derive(Clone, Default)]
+pub struct Attach {
+    pub trace: Option<Trace>,
+    pub reopen: Option<Reopen>,
+}
+
 /// One SCPI instrument with its profile.
 pub struct Instrument {
     session: Session,
@@ -83,12 +92,19 @@ impl Instrument {
         link: Link,
         profile: Profile,
     ) -> Result<Instrument, InstrumentError> {
-        let session = Session::new(
-            name,
-            link,
-            &profile.transport.write_termination,
-            Duration::from_millis(profile.transport.timeout_ms),
-        );
+        Instrument::connect_with(name, link, profile, Attach::default()).await
+    }
+
+    /// [`Instrument::connect`] with a trace and a way to reopen the link.
+    pub async fn connect_with(
+        name: &str,
+        link: Link,
+        profile: Profile,
+        attach: Attach,
+    ) -> Result<Instrument, InstrumentError> {
+        let mut session = Session::with_framing(name, link, profile.framing());
+        session.set_trace(attach.trace);
+        session.set_reopen(attach.reopen);
         let mut inst = Instrument {
             session,
             profile,
@@ -114,6 +130,34 @@ impl Instrument {
 
     pub fn lines_written(&self) -> u64 {
         self.session.lines_written
+    }
+
+    pub fn name(&self) -> &str {
+        self.session.name()
+    }
+
+    /// Read the error queue (when the profile polls it) and fail on any
+    /// entry: an error the instrument raised by itself mid-step (an
+    /// over-temperature, a protection trip) leaves its state unknown.
+    pub async fn poll_errors(&mut self) -> Result<(), InstrumentError> {
+        if !self.profile.session.poll_errors {
+            return Ok(());
+        }
+        let errs = self.drain_errors().await?;
+        match errs.first() {
+            None => Ok(()),
+            Some((code, text)) => Err(self.err(
+                ErrorKind::Reported,
+                format!("the instrument reported {code},\"{text}\""),
+            )),
+        }
+    }
+
+    async fn settle(&self) {
+        let ms = self.profile.session.settle_ms;
+        if ms > 0 {
+            tokio::time::sleep(Duration::from_millis(ms)).await;
+        }
     }
 
     fn err(&self, kind: ErrorKind, message: String) -> InstrumentError {
@@ -177,6 +221,7 @@ impl Instrument {
             ));
         };
         self.checked_write(&render(&set, value)).await?;
+        self.settle().await;
         if let (true, Some(get)) = (self.profile.session.read_back, get) {
             let back = self.session.query_number(&get).await?;
             // Instruments round to their setting resolution: accept 0.5 %
@@ -194,8 +239,11 @@ impl Instrument {
 
     /// Switch the output (source) or input (load) on, confirmed by read-back.
     pub async fn enable(&mut self) -> Result<(), InstrumentError> {
-        let c = self.profile.commands.enable.clone();
+        let Some(c) = self.profile.commands.enable.clone() else {
+            return Err(self.err(ErrorKind::Reported, "the profile has no enable command".into()));
+        };
         self.checked_write(&c).await?;
+        self.settle().await;
         if let Some(q) = self.profile.commands.enabled_query.clone() {
             if !self.session.query_bool(&q).await? {
                 return Err(self.err(ErrorKind::Reported, "output did not switch on".into()));
@@ -206,7 +254,9 @@ impl Instrument {
 
     /// Switch off, confirmed by read-back where the profile allows.
     pub async fn disable(&mut self) -> Result<(), InstrumentError> {
-        let c = self.profile.commands.disable.clone();
+        let Some(c) = self.profile.commands.disable.clone() else {
+            return Ok(());
+        };
         self.session.write(&c).await?;
         if let Some(q) = self.profile.commands.enabled_query.clone() {
             if self.session.query_bool(&q).await? {
@@ -216,36 +266,66 @@ impl Instrument {
         Ok(())
     }
 
-    /// The safe state: the profile's safe-state commands (output/input
-    /// off), confirmed by read-back; retried a few times, resynchronising
-    /// after a timeout. Returns whether the off state was confirmed.
-    pub async fn make_safe(&mut self) -> Result<bool, InstrumentError> {
-        let mut last: Option<InstrumentError> = None;
-        for _ in 0..3 {
-            for c in self.profile.session.safe_state.clone() {
-                if let Err(e) = self.session.write(&c).await {
-                    last = Some(e);
+    /// Send the safe-state commands (output/input off) without waiting for
+    /// anything. A lost link is opened again once to send them.
+    pub async fn send_safe_state(&mut self) -> Result<(), InstrumentError> {
+        let cmds = self.profile.session.safe_state.clone();
+        let mut reopened = false;
+        loop {
+            let mut failed = None;
+            for c in &cmds {
+                if let Err(e) = self.session.write(c).await {
+                    failed = Some(e);
+                    break;
                 }
             }
+            match failed {
+                None => return Ok(()),
+                Some(e) if e.kind == ErrorKind::LinkLost && !reopened => {
+                    reopened = true;
+                    self.session.reopen().await?;
+                }
+                Some(e) => return Err(e),
+            }
+        }
+    }
+
+    /// The safe state: the profile's safe-state commands (output/input
+    /// off), confirmed by read-back. A lost link is opened again once; a
+    /// timeout is not waited out twice. Returns whether the off state was
+    /// confirmed (`Ok(false)`: sent, but this instrument cannot confirm).
+    pub async fn make_safe(&mut self) -> Result<bool, InstrumentError> {
+        if self.profile.session.safe_state.is_empty() {
+            return Ok(false);
+        }
+        let mut last: Option<InstrumentError> = None;
+        for _ in 0..2 {
+            if let Err(e) = self.send_safe_state().await {
+                last = Some(e);
+                break;
+            }
             let Some(q) = self.profile.commands.enabled_query.clone() else {
-                // Sent, but this instrument cannot confirm it.
-                return match last {
-                    None => Ok(false),
-                    Some(e) => Err(e),
-                };
+                return Ok(false);
             };
             match self.session.query_bool(&q).await {
                 Ok(false) => return Ok(true),
                 Ok(true) => last = Some(self.err(ErrorKind::Reported, "output stays on".into())),
-                Err(e) => {
-                    if e.kind == ErrorKind::Timeout {
-                        let _ = self.session.resync().await;
-                    }
+                Err(e) if e.kind == ErrorKind::LinkLost => {
                     last = Some(e);
+                    if self.session.reopen().await.is_err() {
+                        break;
+                    }
                 }
-            }
-            if last.as_ref().is_some_and(|e| e.kind == ErrorKind::LinkLost) {
-                break;
+                Err(e) => {
+                    let timeout = e.kind == ErrorKind::Timeout;
+                    last = Some(e);
+                    if timeout || self.session.resync().await.is_err() {
+                        // Sent twice at most; a silent instrument is not
+                        // waited for again.
+                        let _ = self.send_safe_state().await;
+                        break;
+                    }
+                }
             }
         }
         Err(last.unwrap_or_else(|| self.err(ErrorKind::Reported, "output stays on".into())))
@@ -260,7 +340,13 @@ impl Instrument {
             Ok((v[0], v[1]))
         } else {
             let v = self.session.query_number(&c.measure_voltage).await?;
-            let i = self.session.query_number(&c.measure_current).await?;
+            let Some(mc) = &c.measure_current else {
+                return Err(self.err(
+                    ErrorKind::Reported,
+                    "the profile has no command to measure current".into(),
+                ));
+            };
+            let i = self.session.query_number(mc).await?;
             Ok((v, i))
         }
     }
@@ -286,19 +372,35 @@ pub struct Source(pub Instrument);
 
 impl Source {
     pub async fn connect(link: Link, profile: Profile) -> Result<Source, InstrumentError> {
-        if profile.role != ProfileRole::Source {
+        Source::connect_with(link, profile, Attach::default()).await
+    }
+
+    pub async fn connect_with(
+        link: Link,
+        profile: Profile,
+        attach: Attach,
+    ) -> Result<Source, InstrumentError> {
+        if !matches!(profile.role, ProfileRole::Source | ProfileRole::SourceSink) {
             return Err(InstrumentError {
                 instrument: "source".into(),
                 kind: ErrorKind::Reported,
                 message: format!("profile '{}' is not a source profile", profile.name),
             });
         }
-        Ok(Source(Instrument::connect("source", link, profile).await?))
+        Ok(Source(
+            Instrument::connect_with("source", link, profile, attach).await?,
+        ))
     }
 
     /// Program a CC-CV charge: voltage limit and current limit (output off).
     pub async fn program(&mut self, voltage_v: f64, current_a: f64) -> Result<(), InstrumentError> {
         let c = self.0.profile.commands.clone();
+        if let (Some(set_mode), Some(Some(w))) = (
+            &c.set_mode,
+            self.0.profile.mode_words.as_ref().map(|w| w.voltage.clone()),
+        ) {
+            self.0.checked_write(&set_mode.replace("{mode}", &w)).await?;
+        }
         self.0
             .set_value(c.set_voltage, c.get_voltage, voltage_v, "voltage")
             .await?;
@@ -322,14 +424,24 @@ pub struct Load(pub Instrument);
 
 impl Load {
     pub async fn connect(link: Link, profile: Profile) -> Result<Load, InstrumentError> {
-        if profile.role != ProfileRole::Load {
+        Load::connect_with(link, profile, Attach::default()).await
+    }
+
+    pub async fn connect_with(
+        link: Link,
+        profile: Profile,
+        attach: Attach,
+    ) -> Result<Load, InstrumentError> {
+        if !matches!(profile.role, ProfileRole::Load | ProfileRole::SourceSink) {
             return Err(InstrumentError {
                 instrument: "load".into(),
                 kind: ErrorKind::Reported,
                 message: format!("profile '{}' is not a load profile", profile.name),
             });
         }
-        Ok(Load(Instrument::connect("load", link, profile).await?))
+        Ok(Load(
+            Instrument::connect_with("load", link, profile, attach).await?,
+        ))
     }
 
     /// Program the load's mode and setpoint (input off).
@@ -359,13 +471,38 @@ impl Load {
         }
     }
 
-    /// Pack voltage and pack current (negative: out of the pack).
+    /// Pack voltage and pack current (negative: out of the pack). A
+    /// source-sink instrument reports signed current already.
     pub async fn measure(&mut self) -> Result<Reading, InstrumentError> {
         let (v, i) = self.0.measure_raw().await?;
+        let signed = self.0.profile.role == ProfileRole::SourceSink;
         Ok(Reading {
             voltage_v: v,
-            current_a: -i,
+            current_a: if signed { i } else { -i },
         })
+    }
+}
+
+/// A separate voltmeter with sense leads at the pack terminals, and a
+/// temperature input.
+pub struct Meter(pub Instrument);
+
+impl Meter {
+    pub async fn connect_with(
+        link: Link,
+        profile: Profile,
+        attach: Attach,
+    ) -> Result<Meter, InstrumentError> {
+        if profile.role != ProfileRole::Meter {
+            return Err(InstrumentError {
+                instrument: "meter".into(),
+                kind: ErrorKind::Reported,
+                message: format!("profile '{}' is not a meter profile", profile.name),
+            });
+        }
+        Ok(Meter(
+            Instrument::connect_with("meter", link, profile, attach).await?,
+        ))
     }
 }
 

@@ -9,6 +9,17 @@ use std::path::Path;
 
 pub const GENERIC_SOURCE: &str = include_str!("../../profiles/generic-scpi-source.toml");
 pub const GENERIC_LOAD: &str = include_str!("../../profiles/generic-scpi-load.toml");
+pub const GENERIC_SOURCE_SINK: &str =
+    include_str!("../../profiles/generic-scpi-source-sink.toml");
+pub const GENERIC_METER: &str = include_str!("../../profiles/generic-scpi-meter.toml");
+
+/// The built-in profiles by name.
+pub const BUILTIN: &[(&str, &str)] = &[
+    ("generic-scpi-source", GENERIC_SOURCE),
+    ("generic-scpi-load", GENERIC_LOAD),
+    ("generic-scpi-source-sink", GENERIC_SOURCE_SINK),
+    ("generic-scpi-meter", GENERIC_METER),
+];
 
 /// Which role an instrument can play.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]
@@ -16,6 +27,21 @@ pub const GENERIC_LOAD: &str = include_str!("../../profiles/generic-scpi-load.to
 pub enum ProfileRole {
     Source,
     Load,
+    /// One bidirectional instrument that both charges and discharges.
+    SourceSink,
+    /// A voltmeter at the pack terminals, with a temperature input.
+    Meter,
+}
+
+impl ProfileRole {
+    pub fn name(self) -> &'static str {
+        match self {
+            ProfileRole::Source => "source",
+            ProfileRole::Load => "load",
+            ProfileRole::SourceSink => "source-sink",
+            ProfileRole::Meter => "meter",
+        }
+    }
 }
 
 #[derive(Debug, Clone, Deserialize)]
@@ -23,8 +49,14 @@ pub enum ProfileRole {
 pub struct Transport {
     #[serde(default = "default_term")]
     pub write_termination: String,
+    /// The character that ends a reply: "\n" (LF) or "\r" (CR).
+    #[serde(default = "default_term")]
+    pub read_termination: String,
     #[serde(default = "default_timeout")]
     pub timeout_ms: u64,
+    /// Least pause between the end of one exchange and the next message, ms.
+    #[serde(default)]
+    pub delay_ms: u64,
 }
 
 fn default_term() -> String {
@@ -45,6 +77,16 @@ pub struct SessionSetup {
     pub check_errors_after_set: bool,
     #[serde(default)]
     pub read_back: bool,
+    /// Wait this long after a setting before the next exchange, ms.
+    #[serde(default)]
+    pub settle_ms: u64,
+    /// Read the error queue about once a second while a step runs.
+    #[serde(default = "default_true")]
+    pub poll_errors: bool,
+}
+
+fn default_true() -> bool {
+    true
 }
 
 /// Command templates; `{value}` and `{mode}` are filled in.
@@ -64,12 +106,12 @@ pub struct Commands {
     pub get_resistance: Option<String>,
     pub set_mode: Option<String>,
     pub get_mode: Option<String>,
-    pub enable: String,
-    pub disable: String,
+    pub enable: Option<String>,
+    pub disable: Option<String>,
     pub enabled_query: Option<String>,
     pub measure_voltage_current: Option<String>,
     pub measure_voltage: String,
-    pub measure_current: String,
+    pub measure_current: Option<String>,
     pub measure_power: Option<String>,
     pub measure_temperature: Option<String>,
     pub error_query: Option<String>,
@@ -78,6 +120,8 @@ pub struct Commands {
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct ModeWords {
+    /// The source function of a source-sink instrument (CC-CV charging).
+    pub voltage: Option<String>,
     pub current: String,
     pub power: String,
     pub resistance: String,
@@ -176,28 +220,51 @@ impl Profile {
             }),
         };
         let c = &raw.commands;
+        let role_name = raw.role.name();
         let mut need = |ok: bool, what: &str| {
             if !ok {
+                let at = if what.starts_with('[') { "name" } else { "[commands]" };
                 errors.push(LocatedError {
-                    location: locate("[commands]"),
-                    message: format!("a {:?} profile needs commands.{what}", raw.role)
-                        .to_lowercase(),
+                    location: locate(at),
+                    message: format!("a {role_name} profile needs the operation {what}"),
                 });
             }
         };
-        match raw.role {
-            ProfileRole::Source => {
-                need(c.set_voltage.is_some(), "set_voltage");
-                need(c.set_current.is_some(), "set_current");
-            }
-            ProfileRole::Load => {
-                need(c.set_current.is_some(), "set_current");
-                need(c.set_mode.is_some(), "set_mode");
-                need(
-                    raw.mode_words.is_some(),
-                    "mode_words (a [mode_words] table)",
-                );
-            }
+        let drives = raw.role != ProfileRole::Meter;
+        if drives {
+            need(c.enable.is_some(), "commands.enable");
+            need(c.disable.is_some(), "commands.disable");
+            need(
+                c.measure_current.is_some() || c.measure_voltage_current.is_some(),
+                "commands.measure_current",
+            );
+        }
+        if matches!(raw.role, ProfileRole::Source | ProfileRole::SourceSink) {
+            need(c.set_voltage.is_some(), "commands.set_voltage");
+            need(c.set_current.is_some(), "commands.set_current");
+        }
+        if matches!(raw.role, ProfileRole::Load | ProfileRole::SourceSink) {
+            need(c.set_current.is_some(), "commands.set_current");
+            need(c.set_mode.is_some(), "commands.set_mode");
+            need(raw.mode_words.is_some(), "[mode_words]");
+        }
+        if raw.role == ProfileRole::SourceSink {
+            need(
+                raw.mode_words.as_ref().is_some_and(|w| w.voltage.is_some()),
+                "[mode_words] voltage (the source function)",
+            );
+        }
+        if !matches!(raw.transport.read_termination.as_str(), "\n" | "\r") {
+            errors.push(LocatedError {
+                location: locate("read_termination"),
+                message: "transport.read_termination must be \"\\n\" or \"\\r\"".into(),
+            });
+        }
+        if raw.transport.write_termination.is_empty() {
+            errors.push(LocatedError {
+                location: locate("write_termination"),
+                message: "transport.write_termination must not be empty".into(),
+            });
         }
         for (key, t) in [
             ("set_voltage", &c.set_voltage),
@@ -212,6 +279,17 @@ impl Profile {
                         message: format!("commands.{key} must contain {{value}}"),
                     });
                 }
+            }
+        }
+        for (key, v, max) in [
+            ("delay_ms", raw.transport.delay_ms, 10_000),
+            ("settle_ms", raw.session.settle_ms, 60_000),
+        ] {
+            if v > max {
+                errors.push(LocatedError {
+                    location: locate(key),
+                    message: format!("{key} must be at most {max}"),
+                });
             }
         }
         if raw.transport.timeout_ms == 0 || raw.transport.timeout_ms > 600_000 {
@@ -234,11 +312,36 @@ impl Profile {
         })
     }
 
-    /// The built-in generic SCPI profiles.
+    /// The framing of this profile's sessions.
+    pub fn framing(&self) -> crate::instrument::scpi::Framing {
+        crate::instrument::scpi::Framing {
+            write_term: self.transport.write_termination.clone(),
+            read_term: self.transport.read_termination.bytes().last().unwrap_or(b'\n'),
+            timeout: std::time::Duration::from_millis(self.transport.timeout_ms),
+            delay: std::time::Duration::from_millis(self.transport.delay_ms),
+        }
+    }
+
+    /// A built-in profile by name, if there is one.
+    pub fn builtin_named(name: &str) -> Option<Profile> {
+        let text = BUILTIN.iter().find(|(n, _)| *n == name)?.1;
+        let file = format!("<built-in>/{name}.toml");
+        match Profile::from_toml(Path::new(&file), text) {
+            Ok(p) => Some(p),
+            Err(e) => panic!("built-in profile is invalid: {e}"),
+        }
+    }
+
+    /// The built-in generic SCPI profile of a role.
     pub fn builtin(role: ProfileRole) -> Profile {
         let (name, text) = match role {
             ProfileRole::Source => ("<built-in>/generic-scpi-source.toml", GENERIC_SOURCE),
             ProfileRole::Load => ("<built-in>/generic-scpi-load.toml", GENERIC_LOAD),
+            ProfileRole::SourceSink => (
+                "<built-in>/generic-scpi-source-sink.toml",
+                GENERIC_SOURCE_SINK,
+            ),
+            ProfileRole::Meter => ("<built-in>/generic-scpi-meter.toml", GENERIC_METER),
         };
         match Profile::from_toml(Path::new(name), text) {
             Ok(p) => p,
@@ -251,10 +354,11 @@ impl Profile {
     /// Every command template, for checking them against the SCPI tree.
     pub fn templates(&self) -> Vec<String> {
         let c = &self.commands;
-        let mut v = vec![c.identify.clone(), c.enable.clone(), c.disable.clone()];
-        v.push(c.measure_voltage.clone());
-        v.push(c.measure_current.clone());
+        let mut v = vec![c.identify.clone(), c.measure_voltage.clone()];
         for t in [
+            &c.enable,
+            &c.disable,
+            &c.measure_current,
             &c.reset,
             &c.clear,
             &c.set_voltage,
@@ -281,6 +385,9 @@ impl Profile {
             for w in [&words.current, &words.power, &words.resistance] {
                 v.push(m.replace("{mode}", w));
             }
+            if let Some(w) = &words.voltage {
+                v.push(m.replace("{mode}", w));
+            }
         }
         v.extend(self.session.init.iter().cloned());
         v.extend(self.session.safe_state.iter().cloned());
@@ -295,8 +402,14 @@ mod tests {
 
     #[test]
     fn builtin_profiles_speak_only_the_scpi_tree() {
-        for role in [ProfileRole::Source, ProfileRole::Load] {
+        for role in [
+            ProfileRole::Source,
+            ProfileRole::Load,
+            ProfileRole::SourceSink,
+            ProfileRole::Meter,
+        ] {
             let p = Profile::builtin(role);
+            assert_eq!(p.role, role);
             for t in p.templates() {
                 for u in parse_message(&t) {
                     assert!(u.is_ok(), "{}: '{t}' does not parse: {u:?}", p.name);
@@ -311,11 +424,29 @@ mod tests {
         let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
         assert!(
             e.to_string()
-                .starts_with("p.toml:9:1: unknown field `baud`"),
+                .starts_with("p.toml:10:1: unknown field `baud`"),
             "{e}"
         );
         let bad = GENERIC_SOURCE.replace("VOLT {value}", "VOLT 1");
         let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
         assert!(e.to_string().contains("{value}"), "{e}");
+        // An unknown operation.
+        let bad = GENERIC_LOAD.replace("get_mode = ", "read_mode = ");
+        let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
+        assert!(
+            e.to_string().starts_with("p.toml:25:1: unknown field `read_mode`"),
+            "{e}"
+        );
+        // A missing required operation, located at the [commands] table.
+        let bad = GENERIC_LOAD.replace("set_mode = \"FUNC {mode}\"\n", "");
+        let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
+        assert!(
+            e.to_string()
+                .starts_with("p.toml:20:1: a load profile needs the operation commands.set_mode"),
+            "{e}"
+        );
+        let bad = GENERIC_SOURCE_SINK.replace("voltage = \"VOLT\"\n", "");
+        let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
+        assert!(e.to_string().contains("the source function"), "{e}");
     }
 }

@@ -6,8 +6,74 @@
 
 use super::link::Link;
 use super::{ErrorKind, InstrumentError};
-use std::time::Duration;
+use futures::future::BoxFuture;
+use std::io::Write;
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
 use tokio::io::{AsyncReadExt, AsyncWriteExt};
+
+/// Opens the link again after it was lost (a new TCP connection, the
+/// serial device opened again), so a safe state can still be sent.
+pub type Reopen = Arc<dyn Fn() -> BoxFuture<'static, Result<Link, InstrumentError>> + Send + Sync>;
+
+/// A trace of the raw traffic of every session of a run, with timestamps
+/// (seconds since the trace was opened): `>` sent, `<` received, `!` an
+/// event of the session (timeout, resynchronisation, link reopened).
+#[derive(Clone)]
+pub struct Trace {
+    start: Instant,
+    out: Arc<Mutex<Box<dyn Write + Send>>>,
+}
+
+impl Trace {
+    pub fn new(out: Box<dyn Write + Send>) -> Trace {
+        Trace {
+            start: Instant::now(),
+            out: Arc::new(Mutex::new(out)),
+        }
+    }
+
+    /// A trace file, created (or truncated).
+    pub fn create(path: &std::path::Path) -> std::io::Result<Trace> {
+        let f = std::fs::File::create(path)?;
+        Ok(Trace::new(Box::new(std::io::BufWriter::new(f))))
+    }
+
+    fn line(&self, who: &str, dir: char, bytes: &[u8]) {
+        let t = self.start.elapsed().as_secs_f64();
+        let text: String = bytes.escape_ascii().to_string();
+        if let Ok(mut o) = self.out.lock() {
+            // Tracing is for debugging: a failed trace write never stops a run.
+            let _ = writeln!(o, "{t:.6} {who} {dir} {text}");
+            let _ = o.flush();
+        }
+    }
+}
+
+/// How a session frames and paces its messages.
+#[derive(Debug, Clone)]
+pub struct Framing {
+    /// Appended to every program message.
+    pub write_term: String,
+    /// The byte that ends a response message (LF or CR); a CR before an
+    /// LF is dropped.
+    pub read_term: u8,
+    /// Reply timeout.
+    pub timeout: Duration,
+    /// Least time between the end of one exchange and the next message.
+    pub delay: Duration,
+}
+
+impl Framing {
+    pub fn simple(write_term: &str, timeout: Duration) -> Framing {
+        Framing {
+            write_term: write_term.to_string(),
+            read_term: b'\n',
+            timeout,
+            delay: Duration::ZERO,
+        }
+    }
+}
 
 /// Longest reply accepted before a terminator.
 pub const MAX_REPLY: usize = 64 * 1024;
@@ -18,23 +84,67 @@ pub struct Session {
     link: Link,
     pending: Vec<u8>,
     out: Vec<u8>,
-    write_term: String,
-    timeout: Duration,
+    framing: Framing,
+    last_io: Option<Instant>,
+    trace: Option<Trace>,
+    reopen: Option<Reopen>,
     /// Count of lines written, for diagnostics and tests.
     pub lines_written: u64,
 }
 
 impl Session {
     pub fn new(name: &str, link: Link, write_term: &str, timeout: Duration) -> Session {
+        Session::with_framing(name, link, Framing::simple(write_term, timeout))
+    }
+
+    pub fn with_framing(name: &str, link: Link, framing: Framing) -> Session {
         Session {
             name: name.to_string(),
             link,
             pending: Vec::new(),
             out: Vec::with_capacity(128),
-            write_term: write_term.to_string(),
-            timeout,
+            framing,
+            last_io: None,
+            trace: None,
+            reopen: None,
             lines_written: 0,
         }
+    }
+
+    pub fn set_trace(&mut self, trace: Option<Trace>) {
+        self.trace = trace;
+    }
+
+    pub fn set_reopen(&mut self, reopen: Option<Reopen>) {
+        self.reopen = reopen;
+    }
+
+    pub fn timeout(&self) -> Duration {
+        self.framing.timeout
+    }
+
+    fn note(&self, what: &str) {
+        if let Some(t) = &self.trace {
+            t.line(&self.name, '!', what.as_bytes());
+        }
+    }
+
+    /// Open the link again after it was lost. Input pending on the old
+    /// link is dropped.
+    pub async fn reopen(&mut self) -> Result<(), InstrumentError> {
+        let Some(r) = self.reopen.clone() else {
+            return Err(self.err(
+                ErrorKind::LinkLost,
+                "link lost and it cannot be opened again".into(),
+            ));
+        };
+        self.note("reopening the link");
+        let link = tokio::time::timeout(self.framing.timeout * 2, r())
+            .await
+            .map_err(|_| self.err(ErrorKind::LinkLost, "reopening the link timed out".into()))??;
+        self.link = link;
+        self.pending.clear();
+        Ok(())
     }
 
     pub fn name(&self) -> &str {
@@ -51,11 +161,25 @@ impl Session {
 
     /// Send one program message.
     pub async fn write(&mut self, message: &str) -> Result<(), InstrumentError> {
+        if let Some(last) = self.last_io {
+            let since = last.elapsed();
+            if since < self.framing.delay {
+                tokio::time::sleep(self.framing.delay - since).await;
+            }
+        }
         // One buffer, one write: the message and its terminator leave together.
         self.out.clear();
         self.out.extend_from_slice(message.as_bytes());
-        self.out.extend_from_slice(self.write_term.as_bytes());
-        let r = tokio::time::timeout(self.timeout, self.link.write_all(&self.out)).await;
+        self.out.extend_from_slice(self.framing.write_term.as_bytes());
+        if let Some(t) = &self.trace {
+            t.line(&self.name, '>', message.as_bytes());
+        }
+        let r = tokio::time::timeout(self.framing.timeout, async {
+            self.link.write_all(&self.out).await?;
+            self.link.flush().await
+        })
+        .await;
+        self.last_io = Some(Instant::now());
         match r {
             Ok(Ok(())) => {
                 self.lines_written += 1;
@@ -69,13 +193,25 @@ impl Session {
         }
     }
 
-    /// Read one response message (up to LF; a CR before it is dropped).
+    /// Read one response message (up to the read terminator; a CR before
+    /// an LF is dropped).
     async fn read_line(&mut self) -> Result<String, InstrumentError> {
-        let deadline = tokio::time::Instant::now() + self.timeout;
+        let r = self.read_line_within(self.framing.timeout).await;
+        self.last_io = Some(Instant::now());
+        r
+    }
+
+    async fn read_line_within(&mut self, within: Duration) -> Result<String, InstrumentError> {
+        let deadline = tokio::time::Instant::now() + within;
+        let term = self.framing.read_term;
         loop {
-            if let Some(pos) = self.pending.iter().position(|&b| b == b'\n') {
+            if let Some(pos) = self.pending.iter().position(|&b| b == term) {
                 let line: Vec<u8> = self.pending.drain(..=pos).collect();
-                let text = String::from_utf8_lossy(&line[..line.len() - 1]);
+                let body = &line[..line.len() - 1];
+                if let Some(t) = &self.trace {
+                    t.line(&self.name, '<', body);
+                }
+                let text = String::from_utf8_lossy(body);
                 return Ok(text.trim_end_matches('\r').to_string());
             }
             if self.pending.len() > MAX_REPLY {
@@ -95,7 +231,7 @@ impl Session {
                 Err(_) => {
                     return Err(self.err(
                         ErrorKind::Timeout,
-                        format!("no reply within {} ms", self.timeout.as_millis()),
+                        format!("no reply within {} ms", within.as_millis()),
                     ))
                 }
             }
@@ -111,6 +247,7 @@ impl Session {
                 // Drop whatever partial reply arrived so a late answer is
                 // never taken for the next query's.
                 self.pending.clear();
+                self.note(&format!("timeout on '{message}'"));
                 Err(e)
             }
             Err(e) => Err(e),
@@ -157,21 +294,62 @@ impl Session {
             .map_err(|m| self.err(ErrorKind::Protocol, format!("'{message}' -> {m}")))
     }
 
-    /// After a timeout: drain stale input and check the instrument answers
-    /// a `*OPC?` with `1` before going on.
-    pub async fn resync(&mut self) -> Result<(), InstrumentError> {
+    /// Read and drop input until the link has been quiet for `quiet`
+    /// (bounded by the reply timeout).
+    async fn drain_input(&mut self, quiet: Duration) -> Result<(), InstrumentError> {
         self.pending.clear();
-        for _ in 0..3 {
-            let r = self.query("*OPC?").await;
-            if let Ok(s) = r {
-                if s.trim() == "1" || s.trim() == "+1" {
-                    return Ok(());
+        let limit = tokio::time::Instant::now() + self.framing.timeout;
+        let mut buf = [0u8; 1024];
+        loop {
+            let until = (tokio::time::Instant::now() + quiet).min(limit);
+            match tokio::time::timeout_at(until, self.link.read(&mut buf)).await {
+                Err(_) => return Ok(()),
+                Ok(Ok(0)) => return Err(self.err(ErrorKind::LinkLost, "link closed".into())),
+                Ok(Ok(n)) => {
+                    if let Some(t) = &self.trace {
+                        t.line(&self.name, '<', &buf[..n]);
+                    }
+                    if tokio::time::Instant::now() >= limit {
+                        return Ok(());
+                    }
+                }
+                Ok(Err(e)) => {
+                    return Err(self.err(ErrorKind::LinkLost, format!("read failed: {e}")))
                 }
             }
         }
+    }
+
+    /// After a timeout or a reply that did not parse: drop stale input,
+    /// then send `*OPC?` and wait for its `1`, skipping any late reply
+    /// that arrives first; then make sure nothing else is pending, so a
+    /// late reply is never taken for the answer to the next query.
+    pub async fn resync(&mut self) -> Result<(), InstrumentError> {
+        self.note("resynchronising");
+        let quiet = (self.framing.timeout / 10).clamp(Duration::from_millis(5), Duration::from_millis(100));
+        self.drain_input(quiet).await?;
+        self.write("*OPC?").await?;
+        let deadline = Instant::now() + self.framing.timeout;
+        loop {
+            let left = deadline.saturating_duration_since(Instant::now());
+            if left.is_zero() {
+                break;
+            }
+            match self.read_line_within(left).await {
+                Ok(s) if matches!(s.trim(), "1" | "+1") => {
+                    self.drain_input(quiet).await?;
+                    self.last_io = Some(Instant::now());
+                    return Ok(());
+                }
+                Ok(_) => continue,
+                Err(e) if e.kind == ErrorKind::LinkLost => return Err(e),
+                Err(_) => break,
+            }
+        }
+        self.pending.clear();
         Err(self.err(
             ErrorKind::Protocol,
-            "could not resynchronise with *OPC?".into(),
+            "could not resynchronise: no '1' in reply to *OPC?".into(),
         ))
     }
 }

@@ -82,6 +82,7 @@ pub struct SimBench {
     pub supply: SupplyState,
     pub load: LoadState,
     pub thermometer: Meter,
+    pub voltmeter: Meter,
     pub faults: Faults,
     last_t: f64,
     truth: TruthCounters,
@@ -138,6 +139,7 @@ impl SimBench {
                 amps: meter(&cfg.load.current, cfg.ideal),
             },
             thermometer: meter(&cfg.temperature, cfg.ideal),
+            voltmeter: meter(&cfg.meter, cfg.ideal),
             faults: cfg.faults.clone(),
             last_t,
             truth: TruthCounters::default(),
@@ -219,6 +221,12 @@ impl SimBench {
             self.load.volts.apply(v, &mut self.rng),
             self.load.amps.apply(i, &mut self.rng),
         )
+    }
+
+    /// The separate voltmeter at the pack terminals.
+    pub fn measure_meter(&mut self) -> f64 {
+        let v = self.terminal_voltage();
+        self.voltmeter.apply(v, &mut self.rng)
     }
 
     pub fn measure_temperature(&mut self) -> f64 {

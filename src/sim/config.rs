@@ -18,6 +18,9 @@ pub struct SimConfig {
     pub source: InstrumentMeters,
     pub load: InstrumentMeters,
     pub temperature: MeterConfig,
+    /// A separate voltmeter with sense leads at the pack terminals (a
+    /// bench-grade multimeter: ±0.01 % + 0.2 mV, 0.1 mV resolution).
+    pub meter: MeterConfig,
     pub faults: Faults,
 }
 
@@ -103,14 +106,149 @@ pub struct Faults {
     /// Extra heat inside the pack (an internal fault), W, from a time on.
     pub heat_w: f64,
     pub heat_after_s: Option<f64>,
-    /// The source stops answering from this time on, s.
-    pub source_silent_after_s: Option<f64>,
-    /// The load stops answering from this time on, s.
-    pub load_silent_after_s: Option<f64>,
-    /// The load's link drops at this time, s.
-    pub load_disconnect_after_s: Option<f64>,
-    /// The load answers measurement queries with garbage from this time on, s.
-    pub load_garbage_after_s: Option<f64>,
+    /// Link and protocol faults, each on one instrument from a time on.
+    pub link: Vec<LinkFault>,
+}
+
+/// Which simulated instrument a fault hits.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum FaultTarget {
+    Source,
+    Load,
+    SourceSink,
+    Meter,
+}
+
+impl FaultTarget {
+    pub fn name(self) -> &'static str {
+        match self {
+            FaultTarget::Source => "source",
+            FaultTarget::Load => "load",
+            FaultTarget::SourceSink => "source-sink",
+            FaultTarget::Meter => "meter",
+        }
+    }
+}
+
+/// The kinds of link fault the simulated instruments can show.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum FaultKind {
+    /// From the fault on, queries get no answer (a dead reply path);
+    /// commands still take effect.
+    NoReply,
+    /// From the fault on, every reply is garbled.
+    Garbage,
+    /// From the fault on, every reply comes `delay_ms` late.
+    Slow,
+    /// At the fault the link drops once; a new connection is accepted.
+    Disconnect,
+    /// At the fault one error is pushed into the error queue.
+    Error,
+    /// From the fault on, level settings are accepted without error but
+    /// do not take (the read-back shows the old value).
+    WrongReadBack,
+}
+
+impl FaultKind {
+    pub const ALL: [FaultKind; 6] = [
+        FaultKind::NoReply,
+        FaultKind::Garbage,
+        FaultKind::Slow,
+        FaultKind::Disconnect,
+        FaultKind::Error,
+        FaultKind::WrongReadBack,
+    ];
+    pub fn name(self) -> &'static str {
+        match self {
+            FaultKind::NoReply => "no-reply",
+            FaultKind::Garbage => "garbage",
+            FaultKind::Slow => "slow",
+            FaultKind::Disconnect => "disconnect",
+            FaultKind::Error => "error",
+            FaultKind::WrongReadBack => "wrong-read-back",
+        }
+    }
+}
+
+/// One injected link fault.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct LinkFault {
+    pub instrument: FaultTarget,
+    pub kind: FaultKind,
+    /// Bench time the fault starts, s.
+    pub after_s: f64,
+    /// Reply delay of a `slow` fault, ms.
+    #[serde(default = "default_delay_ms")]
+    pub delay_ms: u64,
+    /// Error code pushed by an `error` fault (default −300, device-specific error).
+    #[serde(default = "default_error_code")]
+    pub error_code: i32,
+}
+
+fn default_delay_ms() -> u64 {
+    1500
+}
+fn default_error_code() -> i32 {
+    -300
+}
+
+impl std::str::FromStr for LinkFault {
+    type Err = String;
+    /// `INSTRUMENT:KIND@TIME[:DELAY]`, e.g. `load:no-reply@600s`,
+    /// `source:slow@10s:800ms`, `load:error@5s`.
+    fn from_str(s: &str) -> Result<LinkFault, String> {
+        let expected = "expected INSTRUMENT:KIND@TIME[:DELAY], e.g. load:no-reply@600s or source:slow@10s:800ms";
+        let (who, rest) = s
+            .split_once(':')
+            .ok_or_else(|| format!("fault '{s}': {expected}"))?;
+        let instrument = match who {
+            "source" => FaultTarget::Source,
+            "load" => FaultTarget::Load,
+            "source-sink" => FaultTarget::SourceSink,
+            "meter" => FaultTarget::Meter,
+            other => {
+                return Err(format!(
+                    "fault '{s}': unknown instrument '{other}', expected source, load, source-sink or meter"
+                ))
+            }
+        };
+        let (kind, when) = rest
+            .split_once('@')
+            .ok_or_else(|| format!("fault '{s}': {expected}"))?;
+        let kind = FaultKind::ALL
+            .into_iter()
+            .find(|k| k.name() == kind)
+            .ok_or_else(|| {
+                let names: Vec<&str> = FaultKind::ALL.iter().map(|k| k.name()).collect();
+                format!(
+                    "fault '{s}': unknown kind '{kind}', expected one of {}",
+                    names.join(", ")
+                )
+            })?;
+        let (time, delay) = match when.split_once(':') {
+            Some((t, d)) => (t, Some(d)),
+            None => (when, None),
+        };
+        let after_s = crate::units::duration(time).map_err(|e| format!("fault '{s}': {e}"))?;
+        let mut f = LinkFault {
+            instrument,
+            kind,
+            after_s,
+            delay_ms: default_delay_ms(),
+            error_code: default_error_code(),
+        };
+        if let Some(d) = delay {
+            if kind != FaultKind::Slow {
+                return Err(format!("fault '{s}': only a slow fault takes a delay"));
+            }
+            let secs = crate::units::duration(d).map_err(|e| format!("fault '{s}': {e}"))?;
+            f.delay_ms = (secs * 1000.0).round() as u64;
+        }
+        Ok(f)
+    }
 }
 
 impl Default for SimConfig {
@@ -126,6 +264,12 @@ impl Default for SimConfig {
                 offset: 0.2,
                 noise: 0.05,
                 resolution: 0.1,
+            },
+            meter: MeterConfig {
+                gain_error_pct: 0.01,
+                offset: 0.0002,
+                noise: 0.0002,
+                resolution: 0.0001,
             },
             faults: Faults::default(),
         }

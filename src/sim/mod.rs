@@ -7,6 +7,7 @@
 pub mod battery;
 pub mod bench;
 pub mod config;
+pub mod serve;
 pub mod server;
 
 pub use config::SimConfig;
@@ -29,6 +30,18 @@ pub struct SimHandle {
 }
 
 impl SimHandle {
+    /// A handle on a bench whose instruments are served elsewhere.
+    pub fn from_bench(bench: Arc<Mutex<SimBench>>) -> SimHandle {
+        SimHandle {
+            bench,
+            source_traffic: Arc::new(Mutex::new(Vec::new())),
+            load_traffic: Arc::new(Mutex::new(Vec::new())),
+        }
+    }
+    /// Bench seconds on the simulated clock.
+    pub fn bench_time(&self) -> f64 {
+        self.with(|b| b.now())
+    }
     fn with<T>(&self, f: impl FnOnce(&mut SimBench) -> T) -> T {
         let mut g = match self.bench.lock() {
             Ok(g) => g,
@@ -73,7 +86,16 @@ impl GroundTruth for SimHandle {
 pub struct SimLinks {
     pub source: Link,
     pub load: Link,
+    /// The instruments behind the links, to open a link again after a
+    /// simulated disconnect.
+    pub source_responder: Arc<Mutex<dyn LineResponder>>,
+    pub load_responder: Arc<Mutex<dyn LineResponder>>,
     pub handle: SimHandle,
+}
+
+/// A new in-memory link to an instrument.
+pub fn link_to(responder: &Arc<Mutex<dyn LineResponder>>) -> Link {
+    Box::new(InMemoryLink::new(Arc::clone(responder)))
 }
 
 /// Build a simulated bench for a pack.
@@ -92,8 +114,10 @@ pub fn build(spec: &PackSpec, cfg: &SimConfig, clock: Arc<dyn Clock>) -> SimLink
         Arc::clone(&load_traffic),
     )));
     SimLinks {
-        source: Box::new(InMemoryLink::new(src)),
-        load: Box::new(InMemoryLink::new(load)),
+        source: link_to(&src),
+        load: link_to(&load),
+        source_responder: src,
+        load_responder: load,
         handle: SimHandle {
             bench,
             source_traffic,

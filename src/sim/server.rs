@@ -7,10 +7,11 @@
 
 use super::battery::LoadMode;
 use super::bench::SimBench;
+use super::config::{FaultKind, FaultTarget, LinkFault};
 use crate::instrument::command::{
     nr3, parse_bool, parse_message, parse_nrf, Cmd, NumericParam, ScpiError, FUNCTION_WORDS,
 };
-use crate::instrument::link::LineResponder;
+use crate::instrument::link::{LineResponder, Response};
 use std::collections::VecDeque;
 use std::io;
 use std::sync::{Arc, Mutex};
@@ -21,8 +22,41 @@ pub const QUEUE_DEPTH: usize = 20;
 /// Which simulated instrument.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum SimRole {
+    /// A programmable DC supply (CC-CV).
     Source,
+    /// A DC electronic load (CC, CP, CR).
     Load,
+    /// One bidirectional instrument: `FUNC VOLT` sources (CC-CV, `CURR`
+    /// is the current limit), `FUNC CURR|POW|RES` sinks; one `OUTPut`.
+    SourceSink,
+    /// A voltmeter with sense leads at the pack terminals and a
+    /// temperature input.
+    Meter,
+}
+
+impl SimRole {
+    pub fn target(self) -> FaultTarget {
+        match self {
+            SimRole::Source => FaultTarget::Source,
+            SimRole::Load => FaultTarget::Load,
+            SimRole::SourceSink => FaultTarget::SourceSink,
+            SimRole::Meter => FaultTarget::Meter,
+        }
+    }
+}
+
+/// The source-sink instrument's function.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum SinkFunction {
+    Voltage,
+    Sink(LoadMode),
+}
+
+/// A fault taking effect, for the server's state log.
+#[derive(Debug, Clone, PartialEq)]
+pub struct FaultFired {
+    pub fault: LinkFault,
+    pub bench_s: f64,
 }
 
 /// One simulated instrument's SCPI state.
@@ -33,6 +67,12 @@ pub struct SimInstrument {
     esr: u8,
     ese: u8,
     sre: u8,
+    function: SinkFunction,
+    output: bool,
+    /// Which of the bench's link faults have taken effect on this instrument.
+    fired: Vec<bool>,
+    /// Faults that took effect, in order (drained by the server's state log).
+    pub fired_log: Vec<FaultFired>,
     /// Every message received, for tests that check what was sent.
     pub received: Arc<Mutex<Vec<String>>>,
 }
@@ -50,7 +90,34 @@ impl SimInstrument {
             esr: 0,
             ese: 0,
             sre: 0,
+            function: SinkFunction::Voltage,
+            output: false,
+            fired: Vec::new(),
+            fired_log: Vec::new(),
             received,
+        }
+    }
+
+    pub fn role(&self) -> SimRole {
+        self.role
+    }
+
+    /// Put the source-sink's function and output state onto the bench.
+    fn apply_source_sink(&self, b: &mut SimBench) {
+        match (self.output, self.function) {
+            (false, _) => {
+                b.supply.output_on = false;
+                b.load.input_on = false;
+            }
+            (true, SinkFunction::Voltage) => {
+                b.load.input_on = false;
+                b.supply.output_on = true;
+            }
+            (true, SinkFunction::Sink(mode)) => {
+                b.supply.output_on = false;
+                b.load.mode = mode;
+                b.load.input_on = true;
+            }
         }
     }
 
@@ -166,6 +233,8 @@ impl SimInstrument {
                 let model = match role {
                     SimRole::Source => "simulated-source",
                     SimRole::Load => "simulated-load",
+                    SimRole::SourceSink => "simulated-source-sink",
+                    SimRole::Meter => "simulated-meter",
                 };
                 Ok(Some(format!(
                     "packbench-sim,{model},0,{}",
@@ -188,6 +257,17 @@ impl SimInstrument {
                         b.load.power_set = 0.0;
                         b.load.resistance_set = b.load.resistance_max;
                     }
+                    SimRole::SourceSink => {
+                        self.output = false;
+                        self.function = SinkFunction::Voltage;
+                        b.supply.voltage_set = 0.0;
+                        b.supply.current_set = 0.0;
+                        b.load.current_set = 0.0;
+                        b.load.power_set = 0.0;
+                        b.load.resistance_set = b.load.resistance_max;
+                        self.apply_source_sink(b);
+                    }
+                    SimRole::Meter => {}
                 }
                 Ok(None)
             }
@@ -262,32 +342,33 @@ impl SimInstrument {
                 Ok(Some("1999.0".into()))
             }
             Cmd::Voltage => match role {
-                SimRole::Source => {
+                SimRole::Source | SimRole::SourceSink => {
                     let max = b.supply.voltage_max;
                     Self::level(query, params, "V", &mut b.supply.voltage_set, max, 0.0)
                 }
                 // Constant-voltage loading is not offered by the simulated load.
-                SimRole::Load => Err(ScpiError::UndefinedHeader),
+                _ => Err(ScpiError::UndefinedHeader),
             },
-            Cmd::Current => match role {
-                SimRole::Source => {
+            Cmd::Current => match (role, self.function) {
+                (SimRole::Source, _) | (SimRole::SourceSink, SinkFunction::Voltage) => {
                     let max = b.supply.current_max;
                     Self::level(query, params, "A", &mut b.supply.current_set, max, 0.0)
                 }
-                SimRole::Load => {
+                (SimRole::Load, _) | (SimRole::SourceSink, _) => {
                     let max = b.load.current_max;
                     Self::level(query, params, "A", &mut b.load.current_set, max, 0.0)
                 }
+                _ => Err(ScpiError::UndefinedHeader),
             },
             Cmd::Power => match role {
-                SimRole::Load => {
+                SimRole::Load | SimRole::SourceSink => {
                     let max = b.load.power_max;
                     Self::level(query, params, "W", &mut b.load.power_set, max, 0.0)
                 }
-                SimRole::Source => Err(ScpiError::UndefinedHeader),
+                _ => Err(ScpiError::UndefinedHeader),
             },
             Cmd::Resistance => match role {
-                SimRole::Load => {
+                SimRole::Load | SimRole::SourceSink => {
                     let max = b.load.resistance_max;
                     let r =
                         Self::level(query, params, "OHM", &mut b.load.resistance_set, max, max)?;
@@ -297,15 +378,20 @@ impl SimInstrument {
                     }
                     Ok(r)
                 }
-                SimRole::Source => Err(ScpiError::UndefinedHeader),
+                _ => Err(ScpiError::UndefinedHeader),
             },
             Cmd::Function => {
-                if role != SimRole::Load {
+                if !matches!(role, SimRole::Load | SimRole::SourceSink) {
                     return Err(ScpiError::UndefinedHeader);
                 }
                 if query {
                     Self::no_params(params)?;
-                    let w = match b.load.mode {
+                    let mode = match (role, self.function) {
+                        (SimRole::SourceSink, SinkFunction::Voltage) => return Ok(Some("VOLT".into())),
+                        (SimRole::SourceSink, SinkFunction::Sink(m)) => m,
+                        _ => b.load.mode,
+                    };
+                    let w = match mode {
                         LoadMode::Current => "CURR",
                         LoadMode::Power => "POW",
                         LoadMode::Resistance => "RES",
@@ -318,6 +404,17 @@ impl SimInstrument {
                     .find(|(long, short)| p == long.to_ascii_uppercase() || p == *short)
                     .map(|(_, s)| *s)
                     .ok_or(ScpiError::IllegalParameterValue)?;
+                if role == SimRole::SourceSink {
+                    self.function = match word {
+                        "VOLT" => SinkFunction::Voltage,
+                        "CURR" => SinkFunction::Sink(LoadMode::Current),
+                        "POW" => SinkFunction::Sink(LoadMode::Power),
+                        "RES" => SinkFunction::Sink(LoadMode::Resistance),
+                        _ => return Err(ScpiError::IllegalParameterValue),
+                    };
+                    self.apply_source_sink(b);
+                    return Ok(None);
+                }
                 let mode = match word {
                     "CURR" => LoadMode::Current,
                     "POW" => LoadMode::Power,
@@ -325,6 +422,15 @@ impl SimInstrument {
                     _ => return Err(ScpiError::IllegalParameterValue),
                 };
                 b.load.mode = mode;
+                Ok(None)
+            }
+            Cmd::Output if role == SimRole::SourceSink => {
+                if query {
+                    Self::no_params(params)?;
+                    return Ok(Some(if self.output { "1" } else { "0" }.into()));
+                }
+                self.output = parse_bool(Self::one_param(params)?)?;
+                self.apply_source_sink(b);
                 Ok(None)
             }
             Cmd::Output | Cmd::Input => {
@@ -349,6 +455,21 @@ impl SimInstrument {
                 let (v, i) = match role {
                     SimRole::Source => b.measure_supply(),
                     SimRole::Load => b.measure_load(),
+                    // Signed: positive while sourcing into the pack.
+                    SimRole::SourceSink => {
+                        if b.load.input_on {
+                            let (v, i) = b.measure_load();
+                            (v, -i)
+                        } else {
+                            b.measure_supply()
+                        }
+                    }
+                    SimRole::Meter => {
+                        if cmd != Cmd::MeasureVoltage {
+                            return Err(ScpiError::UndefinedHeader);
+                        }
+                        (b.measure_meter(), 0.0)
+                    }
                 };
                 Ok(Some(nr3(match cmd {
                     Cmd::MeasureVoltage => v,
@@ -365,8 +486,45 @@ impl SimInstrument {
     }
 }
 
+impl SimInstrument {
+    /// The link faults on this instrument that are in effect at `now`,
+    /// marking first firings.
+    fn faults_now(&mut self, b: &SimBench, now: f64) -> Vec<LinkFault> {
+        let target = self.role.target();
+        if self.fired.len() != b.faults.link.len() {
+            self.fired.resize(b.faults.link.len(), false);
+        }
+        let mut active = Vec::new();
+        for (i, f) in b.faults.link.iter().enumerate() {
+            if f.instrument != target || now < f.after_s {
+                continue;
+            }
+            let once = matches!(f.kind, FaultKind::Disconnect | FaultKind::Error);
+            if !self.fired[i] {
+                self.fired[i] = true;
+                self.fired_log.push(FaultFired {
+                    fault: f.clone(),
+                    bench_s: now,
+                });
+                active.push(f.clone());
+            } else if !once {
+                active.push(f.clone());
+            }
+        }
+        active
+    }
+}
+
+/// Commands whose setting a wrong-read-back fault drops.
+fn is_level(cmd: Cmd) -> bool {
+    matches!(
+        cmd,
+        Cmd::Voltage | Cmd::Current | Cmd::Power | Cmd::Resistance
+    )
+}
+
 impl LineResponder for SimInstrument {
-    fn respond(&mut self, line: &str) -> Result<Option<String>, io::Error> {
+    fn respond(&mut self, line: &str) -> Result<Response, io::Error> {
         if let Ok(mut r) = self.received.lock() {
             r.push(line.to_string());
         }
@@ -377,37 +535,41 @@ impl LineResponder for SimInstrument {
         };
         b.advance();
         let now = b.now();
-        let f = b.faults.clone();
-        let (silent, disconnect, garbage) = match self.role {
-            SimRole::Source => (f.source_silent_after_s, None, None),
-            SimRole::Load => (
-                f.load_silent_after_s,
-                f.load_disconnect_after_s,
-                f.load_garbage_after_s,
-            ),
-        };
-        if disconnect.is_some_and(|t| now >= t) {
+        let faults = self.faults_now(&b, now);
+        let has = |k: FaultKind| faults.iter().find(|f| f.kind == k);
+        if has(FaultKind::Disconnect).is_some() {
             return Err(io::Error::new(
                 io::ErrorKind::ConnectionReset,
                 "simulated disconnect",
             ));
         }
-        if silent.is_some_and(|t| now >= t) {
-            return Ok(None);
+        if let Some(f) = has(FaultKind::Error) {
+            let code = f.error_code;
+            self.esr |= 1 << 3;
+            if self.errors.len() < QUEUE_DEPTH {
+                self.errors.push_back((code, "Device-specific error; injected fault"));
+            }
         }
+        let drop_levels = has(FaultKind::WrongReadBack).is_some();
         let mut replies = Vec::new();
         for unit in parse_message(line) {
             match unit {
-                Ok(u) => match self.execute(&mut b, u.cmd, u.query, &u.params) {
-                    Ok(Some(r)) => replies.push(r),
-                    Ok(None) => {}
-                    Err(e) => {
-                        self.push_error(e);
-                        if e.is_command_error() {
-                            break;
+                Ok(u) => {
+                    if drop_levels && !u.query && is_level(u.cmd) {
+                        // Accepted, silently not applied.
+                        continue;
+                    }
+                    match self.execute(&mut b, u.cmd, u.query, &u.params) {
+                        Ok(Some(r)) => replies.push(r),
+                        Ok(None) => {}
+                        Err(e) => {
+                            self.push_error(e);
+                            if e.is_command_error() {
+                                break;
+                            }
                         }
                     }
-                },
+                }
                 Err(e) => {
                     self.push_error(e);
                     if e.is_command_error() {
@@ -416,12 +578,20 @@ impl LineResponder for SimInstrument {
                 }
             }
         }
-        if replies.is_empty() {
-            return Ok(None);
+        if replies.is_empty() || has(FaultKind::NoReply).is_some() {
+            return Ok(Response::Nothing);
         }
-        if garbage.is_some_and(|t| now >= t) && line.to_ascii_uppercase().contains("MEAS") {
-            return Ok(Some("#@!garbled".into()));
+        let reply = if has(FaultKind::Garbage).is_some() {
+            "#@!garbled".to_string()
+        } else {
+            replies.join(";")
+        };
+        match has(FaultKind::Slow) {
+            Some(f) => Ok(Response::Late(
+                reply,
+                std::time::Duration::from_millis(f.delay_ms),
+            )),
+            None => Ok(Response::Reply(reply)),
         }
-        Ok(Some(replies.join(";")))
     }
 }

@@ -1,0 +1,350 @@
+//! Bench files (`bench.toml`): the stations of a shop's bench, each
+//! binding roles — a source and a load, or one source-sink instrument, and
+//! an optional meter (a voltmeter with sense leads at the pack terminals
+//! and a temperature input) — to a link and an instrument profile.
+//! Validated completely, with file:line:column errors, before any link is
+//! opened.
+//!
+//! ```toml
+//! [[station]]
+//! name = "bay-1"
+//! [station.source]
+//! link = "serial:/dev/ttyUSB0?baud=115200&parity=none&flow=none"
+//! profile = "generic-scpi-source"     # built-in, or a file relative to this one
+//! [station.load]
+//! link = "tcp:192.168.1.40:5025"
+//! profile = "generic-scpi-load"
+//! timeout = "500ms"                   # overrides the profile's reply timeout
+//! ```
+
+use crate::instrument::profile::{Profile, ProfileRole};
+use crate::instrument::transport::LinkSpec;
+use crate::location::{toml_error, InputErrors, LocatedError, Location};
+use serde::Deserialize;
+use std::path::{Path, PathBuf};
+use toml::Spanned;
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawBench {
+    station: Vec<Spanned<RawStation>>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawStation {
+    name: Spanned<String>,
+    source: Option<RawBinding>,
+    load: Option<RawBinding>,
+    source_sink: Option<RawBinding>,
+    meter: Option<RawBinding>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawBinding {
+    link: Spanned<String>,
+    profile: Spanned<String>,
+    timeout: Option<Spanned<String>>,
+    delay: Option<Spanned<String>>,
+}
+
+/// One instrument of a station, validated.
+#[derive(Debug, Clone)]
+pub struct Binding {
+    pub link: LinkSpec,
+    pub link_text: String,
+    pub profile: Profile,
+}
+
+/// What drives the pack at a station.
+#[derive(Debug, Clone)]
+pub enum Drivers {
+    Pair { source: Binding, load: Binding },
+    SourceSink(Binding),
+}
+
+/// A validated station.
+#[derive(Debug, Clone)]
+pub struct StationSpec {
+    pub name: String,
+    pub drivers: Drivers,
+    pub meter: Option<Binding>,
+}
+
+impl StationSpec {
+    /// The source and load profiles (the same one for a source-sink).
+    pub fn profiles(&self) -> (&Profile, &Profile) {
+        match &self.drivers {
+            Drivers::Pair { source, load } => (&source.profile, &load.profile),
+            Drivers::SourceSink(b) => (&b.profile, &b.profile),
+        }
+    }
+
+    /// Every binding with its role name.
+    pub fn bindings(&self) -> Vec<(&'static str, &Binding)> {
+        let mut v = match &self.drivers {
+            Drivers::Pair { source, load } => vec![("source", source), ("load", load)],
+            Drivers::SourceSink(b) => vec![("source-sink", b)],
+        };
+        if let Some(m) = &self.meter {
+            v.push(("meter", m));
+        }
+        v
+    }
+}
+
+/// A validated bench file.
+#[derive(Debug, Clone)]
+pub struct BenchFile {
+    pub path: PathBuf,
+    pub stations: Vec<StationSpec>,
+}
+
+impl BenchFile {
+    /// Read and validate a bench file.
+    pub fn load(path: &Path) -> Result<BenchFile, InputErrors> {
+        let text = std::fs::read_to_string(path).map_err(|e| {
+            InputErrors(vec![LocatedError {
+                location: Location {
+                    file: path.to_path_buf(),
+                    line: 1,
+                    column: 1,
+                },
+                message: format!("cannot read the bench file: {e}"),
+            }])
+        })?;
+        BenchFile::parse(path, &text)
+    }
+
+    /// Validate bench-file text; profile paths are relative to `path`'s folder.
+    pub fn parse(path: &Path, text: &str) -> Result<BenchFile, InputErrors> {
+        let raw: RawBench =
+            toml::from_str(text).map_err(|e| InputErrors(vec![toml_error(path, text, &e)]))?;
+        let base = path.parent().unwrap_or(Path::new("."));
+        let mut errors = Vec::new();
+        let mut stations = Vec::new();
+        let at = |span: std::ops::Range<usize>, extra: usize| Location::at(path, text, span.start + extra);
+        if raw.station.is_empty() {
+            errors.push(LocatedError {
+                location: Location::at(path, text, 0),
+                message: "a bench file needs at least one [[station]]".into(),
+            });
+        }
+        for st in &raw.station {
+            let span = st.span();
+            let st = st.get_ref();
+            let name = st.name.get_ref().clone();
+            if name.is_empty() || !name.chars().all(|c| c.is_ascii_alphanumeric() || "-_.".contains(c)) {
+                errors.push(LocatedError {
+                    location: at(st.name.span(), 1),
+                    message: format!("station name '{name}': expected letters, digits, '-', '_' or '.'"),
+                });
+            }
+            if stations.iter().any(|s: &StationSpec| s.name == name) {
+                errors.push(LocatedError {
+                    location: at(st.name.span(), 1),
+                    message: format!("station '{name}' is named twice"),
+                });
+            }
+            let bind = |b: &RawBinding, role: ProfileRole, errors: &mut Vec<LocatedError>| -> Option<Binding> {
+                let link_text = b.link.get_ref().clone();
+                let link = match link_text.parse::<LinkSpec>() {
+                    Ok(l) => Some(l),
+                    Err(e) => {
+                        errors.push(LocatedError {
+                            location: at(b.link.span(), 1 + e.offset),
+                            message: e.message,
+                        });
+                        None
+                    }
+                };
+                let pname = b.profile.get_ref();
+                let profile = match Profile::builtin_named(pname) {
+                    Some(p) => Some(p),
+                    None => {
+                        let file = base.join(pname);
+                        match std::fs::read_to_string(&file) {
+                            Ok(ptext) => match Profile::from_toml(&file, &ptext) {
+                                Ok(p) => Some(p),
+                                Err(e) => {
+                                    errors.extend(e.0);
+                                    None
+                                }
+                            },
+                            Err(e) => {
+                                let names: Vec<&str> = crate::instrument::profile::BUILTIN.iter().map(|(n, _)| *n).collect();
+                                errors.push(LocatedError {
+                                    location: at(b.profile.span(), 1),
+                                    message: format!(
+                                        "profile '{pname}' is neither a built-in ({}) nor a readable file ({}: {e})",
+                                        names.join(", "),
+                                        file.display()
+                                    ),
+                                });
+                                None
+                            }
+                        }
+                    }
+                };
+                let mut profile = profile?;
+                if profile.role != role {
+                    errors.push(LocatedError {
+                        location: at(b.profile.span(), 1),
+                        message: format!(
+                            "profile '{}' is a {} profile, bound here as {}",
+                            profile.name,
+                            profile.role.name(),
+                            role.name()
+                        ),
+                    });
+                    return None;
+                }
+                for (field, target) in [(&b.timeout, 0usize), (&b.delay, 1usize)] {
+                    if let Some(t) = field {
+                        match crate::units::duration(t.get_ref()) {
+                            Ok(s) if s > 0.0 && s <= 600.0 || (target == 1 && s == 0.0) => {
+                                let ms = (s * 1000.0).round() as u64;
+                                if target == 0 {
+                                    profile.transport.timeout_ms = ms.max(1);
+                                } else {
+                                    profile.transport.delay_ms = ms;
+                                }
+                            }
+                            _ => errors.push(LocatedError {
+                                location: at(t.span(), 1),
+                                message: format!("'{}': expected a duration from 1 ms to 600 s, e.g. 500ms", t.get_ref()),
+                            }),
+                        }
+                    }
+                }
+                Some(Binding {
+                    link: link?,
+                    link_text,
+                    profile,
+                })
+            };
+            let drivers = match (&st.source, &st.load, &st.source_sink) {
+                (Some(s), Some(l), None) => {
+                    let s = bind(s, ProfileRole::Source, &mut errors);
+                    let l = bind(l, ProfileRole::Load, &mut errors);
+                    match (s, l) {
+                        (Some(source), Some(load)) => Some(Drivers::Pair { source, load }),
+                        _ => None,
+                    }
+                }
+                (None, None, Some(b)) => bind(b, ProfileRole::SourceSink, &mut errors).map(Drivers::SourceSink),
+                (_, _, Some(_)) => {
+                    errors.push(LocatedError {
+                        location: at(span.clone(), 0),
+                        message: format!("station '{name}': bind either source and load, or source_sink, not both"),
+                    });
+                    None
+                }
+                _ => {
+                    errors.push(LocatedError {
+                        location: at(span.clone(), 0),
+                        message: format!("station '{name}': needs a source and a load, or a source_sink"),
+                    });
+                    None
+                }
+            };
+            let meter = st.meter.as_ref().map(|m| bind(m, ProfileRole::Meter, &mut errors));
+            if let (Some(drivers), Some(true) | None) = (drivers, meter.as_ref().map(|m| m.is_some())) {
+                stations.push(StationSpec {
+                    name,
+                    drivers,
+                    meter: meter.flatten(),
+                });
+            }
+        }
+        if !errors.is_empty() {
+            return Err(InputErrors(errors));
+        }
+        Ok(BenchFile {
+            path: path.to_path_buf(),
+            stations,
+        })
+    }
+
+    /// A station by name, or the only one.
+    pub fn station(&self, name: Option<&str>) -> Result<&StationSpec, String> {
+        let names: Vec<&str> = self.stations.iter().map(|s| s.name.as_str()).collect();
+        match name {
+            Some(n) => self.stations.iter().find(|s| s.name == n).ok_or_else(|| {
+                format!(
+                    "{}: no station '{n}' (stations: {})",
+                    self.path.display(),
+                    names.join(", ")
+                )
+            }),
+            None if self.stations.len() == 1 => Ok(&self.stations[0]),
+            None => Err(format!(
+                "{}: several stations ({}): choose one with --station",
+                self.path.display(),
+                names.join(", ")
+            )),
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const GOOD: &str = r#"
+[[station]]
+name = "bay-1"
+[station.source]
+link = "serial:/dev/ttyUSB0?baud=115200&parity=none&flow=none"
+profile = "generic-scpi-source"
+[station.load]
+link = "tcp:127.0.0.1:5025"
+profile = "generic-scpi-load"
+timeout = "300ms"
+
+[[station]]
+name = "bay-2"
+[station.source_sink]
+link = "tcp:127.0.0.1:5030"
+profile = "generic-scpi-source-sink"
+[station.meter]
+link = "tcp:127.0.0.1:5031"
+profile = "generic-scpi-meter"
+"#;
+
+    #[test]
+    fn a_bench_file_binds_roles_to_links_and_profiles() {
+        let b = BenchFile::parse(Path::new("bench.toml"), GOOD).unwrap();
+        assert_eq!(b.stations.len(), 2);
+        let s1 = b.station(Some("bay-1")).unwrap();
+        assert_eq!(s1.profiles().1.transport.timeout_ms, 300);
+        let s2 = b.station(Some("bay-2")).unwrap();
+        assert!(matches!(s2.drivers, Drivers::SourceSink(_)));
+        assert!(s2.meter.is_some());
+        assert!(b.station(None).is_err());
+        assert!(b.station(Some("bay-9")).is_err());
+    }
+
+    fn err(text: &str) -> String {
+        BenchFile::parse(Path::new("bench.toml"), text)
+            .unwrap_err()
+            .to_string()
+    }
+
+    #[test]
+    fn bad_bench_files_are_located() {
+        let e = err(&GOOD.replace("[station.load]", "[station.lod]"));
+        assert!(e.starts_with("bench.toml:7:"), "{e}");
+        assert!(e.contains("unknown field `lod`"), "{e}");
+        let e = err(&GOOD.replace("tcp:127.0.0.1:5025", "tcp:127.0.0.1:50x25"));
+        assert!(e.starts_with("bench.toml:8:23:"), "{e}");
+        let e = err(&GOOD.replace("profile = \"generic-scpi-load\"", "profile = \"generic-scpi-source\""));
+        assert!(e.starts_with("bench.toml:9:12:"), "{e}");
+        assert!(e.contains("bound here as load"), "{e}");
+        let e = err(&GOOD.replace("timeout = \"300ms\"", "timeout = \"soon\""));
+        assert!(e.starts_with("bench.toml:10:12:"), "{e}");
+        let e = err(&GOOD.replace("generic-scpi-meter", "no-such-profile.toml"));
+        assert!(e.contains("neither a built-in"), "{e}");
+    }
+}
