@@ -65,6 +65,26 @@ struct Shared {
 }
 
 impl Shared {
+    /// Log an event of the link (a client connecting).
+    fn note(&self, what: &str) {
+        let Some(log) = &self.log else { return };
+        let (src, load) = match self.last.lock() {
+            Ok(g) => *g,
+            Err(p) => *p.into_inner(),
+        };
+        let e = StateEntry {
+            wall_s: self.start.elapsed().as_secs_f64(),
+            bench_s: self.handle.bench_time(),
+            what: what.to_string(),
+            source_output_on: src,
+            load_input_on: load,
+        };
+        if let (Ok(mut w), Ok(line)) = (log.lock(), serde_json::to_string(&e)) {
+            let _ = writeln!(w, "{line}");
+            let _ = w.flush();
+        }
+    }
+
     /// After each message: log output changes and faults that fired.
     fn record(&self, inst: &mut SimInstrument) {
         let Some(log) = &self.log else {
@@ -133,6 +153,9 @@ fn serve_lines<R: Read, W: Write>(
 ) -> io::Result<()> {
     let mut pending: Vec<u8> = Vec::new();
     let mut buf = [0u8; 4096];
+    // A client that went away cannot take replies, but the commands it
+    // sent before going (an output off) still take effect.
+    let mut can_write = true;
     loop {
         let n = reader.read(&mut buf)?;
         if n == 0 {
@@ -163,8 +186,9 @@ fn serve_lines<R: Read, W: Write>(
             let mut out = reply.into_bytes();
             out.push(b'\n');
             wire_sleep(opts.baud, out.len());
-            writer.write_all(&out)?;
-            writer.flush()?;
+            if can_write && writer.write_all(&out).and_then(|_| writer.flush()).is_err() {
+                can_write = false;
+            }
         }
     }
 }
@@ -241,6 +265,7 @@ pub fn serve(
                 std::thread::spawn(move || {
                     for conn in listener.incoming() {
                         let Ok(stream) = conn else { continue };
+                        shared.note(&format!("{} client connected", role_name(inst_role(&inst))));
                         let _ = stream.set_nodelay(true);
                         let Ok(mut reader) = stream.try_clone() else {
                             continue;

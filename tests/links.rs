@@ -1,0 +1,442 @@
+//! Real links: `packbench run --bench` against `packbench sim serve` on
+//! pseudo-terminals and on loopback TCP, compared with the in-memory run of
+//! the same scenario; every injected link fault ends in the safe stop
+//! (outputs off in the simulator within 2 s of the fault, status aborted,
+//! samples kept); bad bench and profile files touch no instrument.
+
+use packbench::engine::state::RunState;
+use packbench::runlog::read::read_samples;
+use packbench::runlog::Summary;
+use std::io::{BufRead, BufReader};
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::time::Duration;
+
+const BIN: &str = env!("CARGO_BIN_EXE_packbench");
+const PACK: [&str; 6] = ["--chemistry", "li-ion", "--series", "4", "--rated", "2Ah"];
+/// Bench seconds per wall second on both ends of a served run.
+const SPEED: &str = "200";
+
+/// A `packbench sim serve` child, killed when dropped.
+struct Served {
+    child: Child,
+    bench: PathBuf,
+    state_log: PathBuf,
+}
+
+impl Drop for Served {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+fn sim_config(dir: &Path) -> PathBuf {
+    let p = dir.join("sim.toml");
+    std::fs::write(&p, "seed = 3\n[pack]\ninitial_soc = 1.0\n").unwrap();
+    p
+}
+
+/// Start `sim serve` (with `how` = ["--pty", ...] or ["--tcp", ...]) and
+/// wait until it is ready.
+fn serve(dir: &Path, how: &[&str], faults: &[&str]) -> Served {
+    let bench = dir.join("bench.toml");
+    let state_log = dir.join("state.jsonl");
+    let cfg = sim_config(dir);
+    let mut cmd = Command::new(BIN);
+    cmd.args(["sim", "serve", "--speed", SPEED])
+        .args(how)
+        .args(PACK)
+        .arg("--sim-config")
+        .arg(&cfg)
+        .arg("--bench-out")
+        .arg(&bench)
+        .args(["--bench-timeout", "300ms"])
+        .arg("--state-log")
+        .arg(&state_log);
+    for f in faults {
+        cmd.args(["--fault", f]);
+    }
+    let mut child = cmd
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let out = child.stdout.take().unwrap();
+    let mut lines = BufReader::new(out).lines();
+    loop {
+        match lines.next() {
+            Some(Ok(l)) if l.starts_with("ready") => break,
+            Some(Ok(_)) => continue,
+            _ => panic!("sim serve ended before it was ready"),
+        }
+    }
+    Served {
+        child,
+        bench,
+        state_log,
+    }
+}
+
+fn run_bench(dir: &Path, bench: &Path, procedure: &str) -> (i32, PathBuf) {
+    let results = dir.join("results");
+    let out = Command::new(BIN)
+        .args(["run", procedure, "--pack", "P1", "--quiet", "--speed", SPEED])
+        .args(PACK)
+        .arg("--bench")
+        .arg(bench)
+        .arg("--results")
+        .arg(&results)
+        .output()
+        .unwrap();
+    (out.status.code().unwrap_or(-1), only_run(&results.join("P1")))
+}
+
+fn run_in_memory(dir: &Path, procedure: &str, faults: &[&str]) -> (i32, PathBuf) {
+    let results = dir.join("mem");
+    let cfg = sim_config(dir);
+    let mut cmd = Command::new(BIN);
+    cmd.args(["run", procedure, "--sim", "--pack", "P1", "--quiet"])
+        .args(PACK)
+        .arg("--sim-config")
+        .arg(&cfg)
+        .arg("--results")
+        .arg(&results);
+    for f in faults {
+        cmd.args(["--fault", f]);
+    }
+    let out = cmd.output().unwrap();
+    (out.status.code().unwrap_or(-1), only_run(&results.join("P1")))
+}
+
+fn only_run(pack_dir: &Path) -> PathBuf {
+    let mut runs: Vec<PathBuf> = std::fs::read_dir(pack_dir)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.is_dir())
+        .collect();
+    assert_eq!(runs.len(), 1, "{runs:?}");
+    runs.pop().unwrap()
+}
+
+fn summary(run: &Path) -> Summary {
+    serde_json::from_str(&std::fs::read_to_string(run.join("summary.json")).unwrap()).unwrap()
+}
+
+fn capacity(run: &Path) -> f64 {
+    summary(run).capacity.expect("a capacity").measured_ah
+}
+
+/// Measured capacity over a real link equals the in-memory run's within
+/// the simulated measurement error (meters: 0.1 % gain, 2 mA offset and
+/// noise) plus one sample of timing (2 s of 1C in ~3300 s).
+fn same_capacity(served: f64, in_memory: f64) {
+    let rel = (served - in_memory).abs() / in_memory;
+    assert!(
+        rel < 0.002,
+        "served {served:.4} Ah vs in-memory {in_memory:.4} Ah ({:.3} %)",
+        rel * 100.0
+    );
+}
+
+#[test]
+fn a_run_through_a_pseudo_terminal_measures_what_the_in_memory_run_measures() {
+    let dir = tempfile::tempdir().unwrap();
+    let link_dir = dir.path().join("dev");
+    let s = serve(
+        dir.path(),
+        &["--pty", "--link-dir", link_dir.to_str().unwrap()],
+        &[],
+    );
+    let bench = std::fs::read_to_string(&s.bench).unwrap();
+    assert!(bench.contains("serial:"), "{bench}");
+    let (code, run) = run_bench(dir.path(), &s.bench, "tests/fixtures/short-discharge.toml");
+    assert_eq!(code, 0);
+    let (code_mem, mem) = run_in_memory(dir.path(), "tests/fixtures/short-discharge.toml", &[]);
+    assert_eq!(code_mem, 0);
+    same_capacity(capacity(&run), capacity(&mem));
+    let m: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(run.join("run.json")).unwrap()).unwrap();
+    assert!(m["instruments"][0]["idn"]
+        .as_str()
+        .unwrap()
+        .contains("simulated-source"));
+}
+
+#[test]
+fn a_run_through_tcp_measures_what_the_in_memory_run_measures() {
+    let dir = tempfile::tempdir().unwrap();
+    let s = serve(dir.path(), &["--tcp", "127.0.0.1:0"], &[]);
+    let (code, run) = run_bench(dir.path(), &s.bench, "tests/fixtures/short-discharge.toml");
+    assert_eq!(code, 0);
+    let (_, mem) = run_in_memory(dir.path(), "tests/fixtures/short-discharge.toml", &[]);
+    same_capacity(capacity(&run), capacity(&mem));
+}
+
+#[test]
+fn a_source_sink_instrument_with_a_meter_runs_the_same_test() {
+    let dir = tempfile::tempdir().unwrap();
+    let s = serve(
+        dir.path(),
+        &["--tcp", "127.0.0.1:0", "--role", "source-sink,meter"],
+        &[],
+    );
+    let bench = std::fs::read_to_string(&s.bench).unwrap();
+    assert!(bench.contains("[station.source_sink]") && bench.contains("[station.meter]"));
+    let (code, run) = run_bench(dir.path(), &s.bench, "tests/fixtures/short-discharge.toml");
+    assert_eq!(code, 0);
+    let (_, mem) = run_in_memory(dir.path(), "tests/fixtures/short-discharge.toml", &[]);
+    same_capacity(capacity(&run), capacity(&mem));
+}
+
+#[derive(Debug, serde::Deserialize)]
+struct StateEntry {
+    wall_s: f64,
+    what: String,
+    source_output_on: bool,
+    load_input_on: bool,
+}
+
+fn state_log(path: &Path) -> Vec<StateEntry> {
+    std::fs::read_to_string(path)
+        .unwrap()
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect()
+}
+
+/// The safe stop after a fault: exit 3, status aborted with the fault,
+/// samples kept, and outputs off in the simulator within 2 s (wall) of the
+/// fault taking effect.
+fn assert_safe_stop_after_fault(code: i32, run: &Path, log: &Path, fault: &str) {
+    assert_eq!(code, 3, "{fault}: exit code");
+    let s = summary(run);
+    assert_eq!(s.status, RunState::Aborted.name(), "{fault}");
+    let reason = s.stop_reason.clone().unwrap_or_default();
+    assert!(reason.contains("instrument fault"), "{fault}: {reason}");
+    let events = std::fs::read_to_string(run.join("events.jsonl")).unwrap();
+    assert!(events.contains("\"outputs_off\""), "{fault}");
+    let samples = read_samples(&run.join("samples.csv")).unwrap();
+    assert!(samples.samples.len() > 50, "{fault}: samples kept");
+    // The simulator may still be working through messages the run sent
+    // before it exited (a slow instrument): give it a moment.
+    let mut entries = state_log(log);
+    for _ in 0..40 {
+        if entries
+            .last()
+            .is_some_and(|e| !e.source_output_on && !e.load_input_on)
+        {
+            break;
+        }
+        std::thread::sleep(Duration::from_millis(100));
+        entries = state_log(log);
+    }
+    let fired = entries
+        .iter()
+        .find(|e| e.what.starts_with("fault"))
+        .unwrap_or_else(|| panic!("{fault}: the fault never took effect: {entries:?}"));
+    let last = entries.last().unwrap();
+    assert!(
+        !last.source_output_on && !last.load_input_on,
+        "{fault}: outputs left on: {last:?}"
+    );
+    let off = entries
+        .iter()
+        .filter(|e| e.wall_s >= fired.wall_s && !e.source_output_on && !e.load_input_on)
+        .map(|e| e.wall_s)
+        .next()
+        .unwrap_or(fired.wall_s);
+    assert!(
+        off - fired.wall_s <= 2.0,
+        "{fault}: outputs off {:.2} s after the fault",
+        off - fired.wall_s
+    );
+}
+
+fn fault_over(how: &[&str], fault: &str) {
+    let dir = tempfile::tempdir().unwrap();
+    let mut how: Vec<String> = how.iter().map(|s| s.to_string()).collect();
+    if how[0] == "--pty" {
+        how.push("--link-dir".into());
+        how.push(dir.path().join("dev").display().to_string());
+    }
+    let how: Vec<&str> = how.iter().map(|s| s.as_str()).collect();
+    let s = serve(dir.path(), &how, &[fault]);
+    let (code, run) = run_bench(dir.path(), &s.bench, "tests/fixtures/fault-discharge.toml");
+    assert_safe_stop_after_fault(code, &run, &s.state_log, fault);
+}
+
+#[test]
+fn every_link_fault_over_tcp_ends_in_a_safe_stop() {
+    // Faults at 200 s: during the first discharge step, whose setpoint the
+    // second step changes in place at 330 s (the wrong read-back shows there).
+    for fault in [
+        "load:no-reply@200s",
+        "load:garbage@200s",
+        "load:slow@200s:500ms",
+        "load:disconnect@200s",
+        "load:error@200s",
+        "load:wrong-read-back@200s",
+    ] {
+        fault_over(&["--tcp", "127.0.0.1:0"], fault);
+    }
+}
+
+#[test]
+fn a_disconnect_on_a_pseudo_terminal_ends_in_a_safe_stop() {
+    fault_over(&["--pty"], "load:disconnect@200s");
+}
+
+#[test]
+fn a_silent_load_on_a_pseudo_terminal_ends_in_a_safe_stop() {
+    fault_over(&["--pty"], "load:no-reply@200s");
+}
+
+#[test]
+fn a_lost_source_never_leaves_the_load_driving() {
+    // The source stops answering while the load drives the pack: the
+    // engine fails on the source's error-queue poll and switches the load
+    // off too.
+    let dir = tempfile::tempdir().unwrap();
+    let s = serve(dir.path(), &["--tcp", "127.0.0.1:0"], &["source:no-reply@200s"]);
+    let (code, run) = run_bench(dir.path(), &s.bench, "tests/fixtures/fault-discharge.toml");
+    assert_safe_stop_after_fault(code, &run, &s.state_log, "source:no-reply");
+}
+
+#[test]
+fn in_memory_faults_end_in_the_same_safe_stop() {
+    for fault in [
+        "load:slow@200s:500ms",
+        "load:disconnect@200s",
+        "load:error@200s",
+        "load:wrong-read-back@200s",
+    ] {
+        let dir = tempfile::tempdir().unwrap();
+        let (code, run) = run_in_memory(dir.path(), "tests/fixtures/fault-discharge.toml", &[fault]);
+        assert_eq!(code, 3, "{fault}");
+        let s = summary(&run);
+        assert_eq!(s.status, "aborted", "{fault}");
+        assert!(
+            s.stop_reason.unwrap_or_default().contains("instrument fault"),
+            "{fault}"
+        );
+        let samples = read_samples(&run.join("samples.csv")).unwrap();
+        assert!(samples.samples.len() > 50, "{fault}");
+        let m: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(run.join("run.json")).unwrap()).unwrap();
+        assert_eq!(m["status"], "aborted");
+    }
+}
+
+#[test]
+fn a_slow_reply_within_the_timeout_is_only_slow() {
+    let dir = tempfile::tempdir().unwrap();
+    let s = serve(dir.path(), &["--tcp", "127.0.0.1:0"], &["load:slow@3000s:5ms"]);
+    let (code, run) = run_bench(dir.path(), &s.bench, "tests/fixtures/short-discharge.toml");
+    assert_eq!(code, 0);
+    assert!(capacity(&run) > 1.7);
+}
+
+#[test]
+fn the_trace_option_records_the_raw_traffic() {
+    let dir = tempfile::tempdir().unwrap();
+    let results = dir.path().join("r");
+    let out = Command::new(BIN)
+        .args(["run", "tests/fixtures/short-discharge.toml", "--sim", "--pack", "T", "--quiet", "--trace"])
+        .args(PACK)
+        .arg("--results")
+        .arg(&results)
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(0));
+    let run = only_run(&results.join("T"));
+    let trace = std::fs::read_to_string(run.join("trace.log")).unwrap();
+    let first = trace.lines().next().unwrap();
+    let fields: Vec<&str> = first.splitn(4, ' ').collect();
+    assert!(fields[0].parse::<f64>().is_ok(), "{first}");
+    assert_eq!(&fields[1..], &["source", ">", "*IDN?"]);
+    assert!(trace.contains("load < "), "replies are traced");
+}
+
+fn write(dir: &Path, name: &str, text: &str) -> PathBuf {
+    let p = dir.join(name);
+    std::fs::write(&p, text).unwrap();
+    p
+}
+
+/// A bad bench or profile file: exit 2, a file:line:col error, and no
+/// instrument touched (the served simulator receives no message).
+#[test]
+fn bad_bench_and_profile_files_touch_no_instrument() {
+    let dir = tempfile::tempdir().unwrap();
+    let s = serve(dir.path(), &["--tcp", "127.0.0.1:0"], &[]);
+    let good = std::fs::read_to_string(&s.bench).unwrap();
+    let custom = packbench::instrument::profile::GENERIC_LOAD
+        .replace("name = \"generic-scpi-load\"", "name = \"my-load\"");
+    let cases: Vec<(&str, String, &str)> = vec![
+        (
+            "unknown role",
+            good.replace("[station.load]", "[station.loader]"),
+            "unknown field `loader`",
+        ),
+        (
+            "bad link syntax",
+            good.replacen("link = \"tcp:", "link = \"tcp;", 1),
+            "expected sim, serial:",
+        ),
+        (
+            "unknown operation",
+            good.replace("generic-scpi-load", "my-load.toml"),
+            "unknown field `read_mode`",
+        ),
+        (
+            "missing required operation",
+            good.replace("generic-scpi-load", "my-load2.toml"),
+            "needs the operation commands.set_mode",
+        ),
+    ];
+    write(dir.path(), "my-load.toml", &custom.replace("get_mode =", "read_mode ="));
+    write(
+        dir.path(),
+        "my-load2.toml",
+        &custom.replace("set_mode = \"FUNC {mode}\"\n", ""),
+    );
+    for (what, text, expect) in cases {
+        let bench = write(dir.path(), "bad-bench.toml", &text);
+        let out = Command::new(BIN)
+            .args(["run", "tests/fixtures/short-discharge.toml", "--pack", "P1"])
+            .args(PACK)
+            .arg("--bench")
+            .arg(&bench)
+            .arg("--results")
+            .arg(dir.path().join("results"))
+            .output()
+            .unwrap();
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert_eq!(out.status.code(), Some(2), "{what}: {err}");
+        assert!(err.contains(expect), "{what}: {err}");
+        let located = err
+            .lines()
+            .any(|l| l.contains(".toml:") && l.split(':').nth(2).is_some_and(|c| c.parse::<u32>().is_ok()));
+        assert!(located, "{what}: no file:line:col in {err}");
+    }
+    assert!(!dir.path().join("results").exists(), "nothing created");
+    // No client ever connected to the simulated instruments.
+    assert_eq!(std::fs::read_to_string(&s.state_log).unwrap(), "");
+    // A probe does connect (the check above can fail).
+    let out = Command::new(BIN)
+        .args(["probe", &good_link(&good), "--profile", "generic-scpi-load"])
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert_eq!(out.status.code(), Some(0), "{text}");
+    assert!(text.contains("simulated-load") && text.contains("errors      SYST:ERR? -> none"), "{text}");
+    assert!(std::fs::read_to_string(&s.state_log).unwrap().contains("client connected"));
+}
+
+/// The load's link address in a bench file written by `sim serve`.
+fn good_link(bench: &str) -> String {
+    let after = bench.split("[station.load]").nth(1).unwrap();
+    let line = after.lines().find(|l| l.starts_with("link")).unwrap();
+    line.split('"').nth(1).unwrap().to_string()
+}
