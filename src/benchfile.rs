@@ -60,8 +60,11 @@ pub struct Binding {
 /// What drives the pack at a station.
 #[derive(Debug, Clone)]
 pub enum Drivers {
-    Pair { source: Binding, load: Binding },
-    SourceSink(Binding),
+    Pair {
+        source: Box<Binding>,
+        load: Box<Binding>,
+    },
+    SourceSink(Box<Binding>),
 }
 
 /// A validated station.
@@ -83,9 +86,9 @@ impl StationSpec {
 
     /// Every binding with its role name.
     pub fn bindings(&self) -> Vec<(&'static str, &Binding)> {
-        let mut v = match &self.drivers {
-            Drivers::Pair { source, load } => vec![("source", source), ("load", load)],
-            Drivers::SourceSink(b) => vec![("source-sink", b)],
+        let mut v: Vec<(&'static str, &Binding)> = match &self.drivers {
+            Drivers::Pair { source, load } => vec![("source", &**source), ("load", &**load)],
+            Drivers::SourceSink(b) => vec![("source-sink", &**b)],
         };
         if let Some(m) = &self.meter {
             v.push(("meter", m));
@@ -124,7 +127,9 @@ impl BenchFile {
         let base = path.parent().unwrap_or(Path::new("."));
         let mut errors = Vec::new();
         let mut stations = Vec::new();
-        let at = |span: std::ops::Range<usize>, extra: usize| Location::at(path, text, span.start + extra);
+        let at = |span: std::ops::Range<usize>, extra: usize| {
+            Location::at(path, text, span.start + extra)
+        };
         if raw.station.is_empty() {
             errors.push(LocatedError {
                 location: Location::at(path, text, 0),
@@ -135,10 +140,16 @@ impl BenchFile {
             let span = st.span();
             let st = st.get_ref();
             let name = st.name.get_ref().clone();
-            if name.is_empty() || !name.chars().all(|c| c.is_ascii_alphanumeric() || "-_.".contains(c)) {
+            if name.is_empty()
+                || !name
+                    .chars()
+                    .all(|c| c.is_ascii_alphanumeric() || "-_.".contains(c))
+            {
                 errors.push(LocatedError {
                     location: at(st.name.span(), 1),
-                    message: format!("station name '{name}': expected letters, digits, '-', '_' or '.'"),
+                    message: format!(
+                        "station name '{name}': expected letters, digits, '-', '_' or '.'"
+                    ),
                 });
             }
             if stations.iter().any(|s: &StationSpec| s.name == name) {
@@ -147,7 +158,10 @@ impl BenchFile {
                     message: format!("station '{name}' is named twice"),
                 });
             }
-            let bind = |b: &RawBinding, role: ProfileRole, errors: &mut Vec<LocatedError>| -> Option<Binding> {
+            let bind = |b: &RawBinding,
+                        role: ProfileRole,
+                        errors: &mut Vec<LocatedError>|
+             -> Option<Binding> {
                 let link_text = b.link.get_ref().clone();
                 let link = match link_text.parse::<LinkSpec>() {
                     Ok(l) => Some(l),
@@ -173,7 +187,10 @@ impl BenchFile {
                                 }
                             },
                             Err(e) => {
-                                let names: Vec<&str> = crate::instrument::profile::BUILTIN.iter().map(|(n, _)| *n).collect();
+                                let names: Vec<&str> = crate::instrument::profile::BUILTIN
+                                    .iter()
+                                    .map(|(n, _)| *n)
+                                    .collect();
                                 errors.push(LocatedError {
                                     location: at(b.profile.span(), 1),
                                     message: format!(
@@ -213,7 +230,10 @@ impl BenchFile {
                             }
                             _ => errors.push(LocatedError {
                                 location: at(t.span(), 1),
-                                message: format!("'{}': expected a duration from 1 ms to 600 s, e.g. 500ms", t.get_ref()),
+                                message: format!(
+                                    "'{}': expected a duration from 1 ms to 600 s, e.g. 500ms",
+                                    t.get_ref()
+                                ),
                             }),
                         }
                     }
@@ -229,11 +249,15 @@ impl BenchFile {
                     let s = bind(s, ProfileRole::Source, &mut errors);
                     let l = bind(l, ProfileRole::Load, &mut errors);
                     match (s, l) {
-                        (Some(source), Some(load)) => Some(Drivers::Pair { source, load }),
+                        (Some(source), Some(load)) => Some(Drivers::Pair {
+                            source: Box::new(source),
+                            load: Box::new(load),
+                        }),
                         _ => None,
                     }
                 }
-                (None, None, Some(b)) => bind(b, ProfileRole::SourceSink, &mut errors).map(Drivers::SourceSink),
+                (None, None, Some(b)) => bind(b, ProfileRole::SourceSink, &mut errors)
+                    .map(|b| Drivers::SourceSink(Box::new(b))),
                 (_, _, Some(_)) => {
                     errors.push(LocatedError {
                         location: at(span.clone(), 0),
@@ -244,13 +268,20 @@ impl BenchFile {
                 _ => {
                     errors.push(LocatedError {
                         location: at(span.clone(), 0),
-                        message: format!("station '{name}': needs a source and a load, or a source_sink"),
+                        message: format!(
+                            "station '{name}': needs a source and a load, or a source_sink"
+                        ),
                     });
                     None
                 }
             };
-            let meter = st.meter.as_ref().map(|m| bind(m, ProfileRole::Meter, &mut errors));
-            if let (Some(drivers), Some(true) | None) = (drivers, meter.as_ref().map(|m| m.is_some())) {
+            let meter = st
+                .meter
+                .as_ref()
+                .map(|m| bind(m, ProfileRole::Meter, &mut errors));
+            if let (Some(drivers), Some(true) | None) =
+                (drivers, meter.as_ref().map(|m| m.is_some()))
+            {
                 stations.push(StationSpec {
                     name,
                     drivers,
@@ -339,7 +370,10 @@ profile = "generic-scpi-meter"
         assert!(e.contains("unknown field `lod`"), "{e}");
         let e = err(&GOOD.replace("tcp:127.0.0.1:5025", "tcp:127.0.0.1:50x25"));
         assert!(e.starts_with("bench.toml:8:23:"), "{e}");
-        let e = err(&GOOD.replace("profile = \"generic-scpi-load\"", "profile = \"generic-scpi-source\""));
+        let e = err(&GOOD.replace(
+            "profile = \"generic-scpi-load\"",
+            "profile = \"generic-scpi-source\"",
+        ));
         assert!(e.starts_with("bench.toml:9:12:"), "{e}");
         assert!(e.contains("bound here as load"), "{e}");
         let e = err(&GOOD.replace("timeout = \"300ms\"", "timeout = \"soon\""));

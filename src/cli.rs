@@ -5,6 +5,7 @@
 //! connection), 2 bad input (arguments, procedure, pack spec, pack id),
 //! 3 safety stop or instrument fault (run aborted), 5 interrupted (Ctrl-C).
 
+use crate::clock::{Clock, PacedClock};
 use crate::engine::control::StopHandle;
 use crate::fade::grade::Policy;
 use crate::fade::{fleet, history, model};
@@ -17,7 +18,6 @@ use crate::units;
 use anyhow::{anyhow, Context};
 use chrono::NaiveDate;
 use clap::{Args, Parser, Subcommand};
-use crate::clock::{Clock, PacedClock};
 use std::path::PathBuf;
 use std::sync::Arc;
 
@@ -336,7 +336,8 @@ pub fn cmd_run(a: RunArgs) -> i32 {
         };
         if a.bench.is_some() && (a.sim_config.is_some() || a.sim_ideal) {
             return Err(RunError::Pack(
-                "--sim-config and --sim-ideal are for the embedded simulated bench, not --bench".into(),
+                "--sim-config and --sim-ideal are for the embedded simulated bench, not --bench"
+                    .into(),
             ));
         }
         let mut cfg = match &a.sim_config {

@@ -4,12 +4,12 @@
 //! folder and its summary ([`execute`]).
 
 use crate::analysis;
+use crate::benchfile::{Drivers, StationSpec};
 use crate::clock::{Clock, PacedClock, SimClock};
 use crate::engine::control::StopHandle;
 use crate::engine::state::RunState;
 use crate::engine::{Engine, RunOutcome, Station, TruthStep};
 use crate::fade::grade::{GradeInputs, Policy};
-use crate::benchfile::{Drivers, StationSpec};
 use crate::instrument::link::{Link, SharedLink};
 use crate::instrument::profile::{Profile, ProfileRole};
 use crate::instrument::scpi::{Reopen, Trace};

@@ -231,13 +231,18 @@ fn cmd_serve(a: ServeArgs) -> anyhow::Result<i32> {
         }
     }
     if !(a.speed.is_finite() && a.speed > 0.0 && a.speed <= 1e6) {
-        bail!("--speed {}: expected bench seconds per wall second, above 0", a.speed);
+        bail!(
+            "--speed {}: expected bench seconds per wall second, above 0",
+            a.speed
+        );
     }
     let pack = pack_from_args(&a.pack_args)?.unwrap_or_else(run::default_sim_pack);
     let mut cfg = match &a.sim_config {
         Some(path) => {
-            let text = std::fs::read_to_string(path)
-                .map_err(|source| RunError::Io { path: path.clone(), source })?;
+            let text = std::fs::read_to_string(path).map_err(|source| RunError::Io {
+                path: path.clone(),
+                source,
+            })?;
             SimConfig::from_toml(path, &text)?
         }
         None => SimConfig::default(),
@@ -246,7 +251,9 @@ fn cmd_serve(a: ServeArgs) -> anyhow::Result<i32> {
         cfg.ideal = true;
     }
     for f in &a.fault {
-        cfg.faults.link.push(f.parse().map_err(|e: String| anyhow!(e))?);
+        cfg.faults
+            .link
+            .push(f.parse().map_err(|e: String| anyhow!(e))?);
     }
     if let Some(t) = &a.bench_timeout {
         crate::units::duration(t).map_err(|e| anyhow!("--bench-timeout: {e}"))?;
@@ -328,8 +335,11 @@ fn cmd_serve(a: ServeArgs) -> anyhow::Result<i32> {
                 );
             }
         }
-        std::fs::write(path, serve::bench_file_text(&served, a.bench_timeout.as_deref()))
-            .with_context(|| format!("cannot write {}", path.display()))?;
+        std::fs::write(
+            path,
+            serve::bench_file_text(&served, a.bench_timeout.as_deref()),
+        )
+        .with_context(|| format!("cannot write {}", path.display()))?;
         println!("bench file   {}", path.display());
     }
     println!("ready (Ctrl-C to stop)");
@@ -354,6 +364,9 @@ mod tests {
     fn roles_parse() {
         assert_eq!(parse_role("source-sink").unwrap(), SimRole::SourceSink);
         assert!(parse_role("oven").is_err());
-        assert_eq!(load_profile("generic-scpi-meter").unwrap().role, ProfileRole::Meter);
+        assert_eq!(
+            load_profile("generic-scpi-meter").unwrap().role,
+            ProfileRole::Meter
+        );
     }
 }

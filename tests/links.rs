@@ -81,7 +81,9 @@ fn serve(dir: &Path, how: &[&str], faults: &[&str]) -> Served {
 fn run_bench(dir: &Path, bench: &Path, procedure: &str) -> (i32, PathBuf) {
     let results = dir.join("results");
     let out = Command::new(BIN)
-        .args(["run", procedure, "--pack", "P1", "--quiet", "--speed", SPEED])
+        .args([
+            "run", procedure, "--pack", "P1", "--quiet", "--speed", SPEED,
+        ])
         .args(PACK)
         .arg("--bench")
         .arg(bench)
@@ -89,7 +91,10 @@ fn run_bench(dir: &Path, bench: &Path, procedure: &str) -> (i32, PathBuf) {
         .arg(&results)
         .output()
         .unwrap();
-    (out.status.code().unwrap_or(-1), only_run(&results.join("P1")))
+    (
+        out.status.code().unwrap_or(-1),
+        only_run(&results.join("P1")),
+    )
 }
 
 fn run_in_memory(dir: &Path, procedure: &str, faults: &[&str]) -> (i32, PathBuf) {
@@ -106,7 +111,10 @@ fn run_in_memory(dir: &Path, procedure: &str, faults: &[&str]) -> (i32, PathBuf)
         cmd.args(["--fault", f]);
     }
     let out = cmd.output().unwrap();
-    (out.status.code().unwrap_or(-1), only_run(&results.join("P1")))
+    (
+        out.status.code().unwrap_or(-1),
+        only_run(&results.join("P1")),
+    )
 }
 
 fn only_run(pack_dir: &Path) -> PathBuf {
@@ -298,7 +306,11 @@ fn a_lost_source_never_leaves_the_load_driving() {
     // engine fails on the source's error-queue poll and switches the load
     // off too.
     let dir = tempfile::tempdir().unwrap();
-    let s = serve(dir.path(), &["--tcp", "127.0.0.1:0"], &["source:no-reply@200s"]);
+    let s = serve(
+        dir.path(),
+        &["--tcp", "127.0.0.1:0"],
+        &["source:no-reply@200s"],
+    );
     let (code, run) = run_bench(dir.path(), &s.bench, "tests/fixtures/fault-discharge.toml");
     assert_safe_stop_after_fault(code, &run, &s.state_log, "source:no-reply");
 }
@@ -312,12 +324,15 @@ fn in_memory_faults_end_in_the_same_safe_stop() {
         "load:wrong-read-back@200s",
     ] {
         let dir = tempfile::tempdir().unwrap();
-        let (code, run) = run_in_memory(dir.path(), "tests/fixtures/fault-discharge.toml", &[fault]);
+        let (code, run) =
+            run_in_memory(dir.path(), "tests/fixtures/fault-discharge.toml", &[fault]);
         assert_eq!(code, 3, "{fault}");
         let s = summary(&run);
         assert_eq!(s.status, "aborted", "{fault}");
         assert!(
-            s.stop_reason.unwrap_or_default().contains("instrument fault"),
+            s.stop_reason
+                .unwrap_or_default()
+                .contains("instrument fault"),
             "{fault}"
         );
         let samples = read_samples(&run.join("samples.csv")).unwrap();
@@ -331,7 +346,11 @@ fn in_memory_faults_end_in_the_same_safe_stop() {
 #[test]
 fn a_slow_reply_within_the_timeout_is_only_slow() {
     let dir = tempfile::tempdir().unwrap();
-    let s = serve(dir.path(), &["--tcp", "127.0.0.1:0"], &["load:slow@3000s:5ms"]);
+    let s = serve(
+        dir.path(),
+        &["--tcp", "127.0.0.1:0"],
+        &["load:slow@3000s:5ms"],
+    );
     let (code, run) = run_bench(dir.path(), &s.bench, "tests/fixtures/short-discharge.toml");
     assert_eq!(code, 0);
     assert!(capacity(&run) > 1.7);
@@ -342,7 +361,15 @@ fn the_trace_option_records_the_raw_traffic() {
     let dir = tempfile::tempdir().unwrap();
     let results = dir.path().join("r");
     let out = Command::new(BIN)
-        .args(["run", "tests/fixtures/short-discharge.toml", "--sim", "--pack", "T", "--quiet", "--trace"])
+        .args([
+            "run",
+            "tests/fixtures/short-discharge.toml",
+            "--sim",
+            "--pack",
+            "T",
+            "--quiet",
+            "--trace",
+        ])
         .args(PACK)
         .arg("--results")
         .arg(&results)
@@ -395,7 +422,11 @@ fn bad_bench_and_profile_files_touch_no_instrument() {
             "needs the operation commands.set_mode",
         ),
     ];
-    write(dir.path(), "my-load.toml", &custom.replace("get_mode =", "read_mode ="));
+    write(
+        dir.path(),
+        "my-load.toml",
+        &custom.replace("get_mode =", "read_mode ="),
+    );
     write(
         dir.path(),
         "my-load2.toml",
@@ -415,9 +446,12 @@ fn bad_bench_and_profile_files_touch_no_instrument() {
         let err = String::from_utf8_lossy(&out.stderr);
         assert_eq!(out.status.code(), Some(2), "{what}: {err}");
         assert!(err.contains(expect), "{what}: {err}");
-        let located = err
-            .lines()
-            .any(|l| l.contains(".toml:") && l.split(':').nth(2).is_some_and(|c| c.parse::<u32>().is_ok()));
+        let located = err.lines().any(|l| {
+            l.contains(".toml:")
+                && l.split(':')
+                    .nth(2)
+                    .is_some_and(|c| c.parse::<u32>().is_ok())
+        });
         assert!(located, "{what}: no file:line:col in {err}");
     }
     assert!(!dir.path().join("results").exists(), "nothing created");
@@ -430,8 +464,13 @@ fn bad_bench_and_profile_files_touch_no_instrument() {
         .unwrap();
     let text = String::from_utf8_lossy(&out.stdout);
     assert_eq!(out.status.code(), Some(0), "{text}");
-    assert!(text.contains("simulated-load") && text.contains("errors      SYST:ERR? -> none"), "{text}");
-    assert!(std::fs::read_to_string(&s.state_log).unwrap().contains("client connected"));
+    assert!(
+        text.contains("simulated-load") && text.contains("errors      SYST:ERR? -> none"),
+        "{text}"
+    );
+    assert!(std::fs::read_to_string(&s.state_log)
+        .unwrap()
+        .contains("client connected"));
 }
 
 /// The load's link address in a bench file written by `sim serve`.

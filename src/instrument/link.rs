@@ -5,8 +5,8 @@
 //! through which the two roles of one source-sink instrument speak.
 
 use std::collections::VecDeque;
-use std::io;
 use std::future::Future;
+use std::io;
 use std::pin::Pin;
 use std::sync::{Arc, Mutex};
 use std::task::{Context, Poll, Waker};

@@ -240,7 +240,10 @@ impl Instrument {
     /// Switch the output (source) or input (load) on, confirmed by read-back.
     pub async fn enable(&mut self) -> Result<(), InstrumentError> {
         let Some(c) = self.profile.commands.enable.clone() else {
-            return Err(self.err(ErrorKind::Reported, "the profile has no enable command".into()));
+            return Err(self.err(
+                ErrorKind::Reported,
+                "the profile has no enable command".into(),
+            ));
         };
         self.checked_write(&c).await?;
         self.settle().await;
@@ -397,9 +400,15 @@ impl Source {
         let c = self.0.profile.commands.clone();
         if let (Some(set_mode), Some(Some(w))) = (
             &c.set_mode,
-            self.0.profile.mode_words.as_ref().map(|w| w.voltage.clone()),
+            self.0
+                .profile
+                .mode_words
+                .as_ref()
+                .map(|w| w.voltage.clone()),
         ) {
-            self.0.checked_write(&set_mode.replace("{mode}", &w)).await?;
+            self.0
+                .checked_write(&set_mode.replace("{mode}", &w))
+                .await?;
         }
         self.0
             .set_value(c.set_voltage, c.get_voltage, voltage_v, "voltage")

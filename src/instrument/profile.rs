@@ -9,8 +9,7 @@ use std::path::Path;
 
 pub const GENERIC_SOURCE: &str = include_str!("../../profiles/generic-scpi-source.toml");
 pub const GENERIC_LOAD: &str = include_str!("../../profiles/generic-scpi-load.toml");
-pub const GENERIC_SOURCE_SINK: &str =
-    include_str!("../../profiles/generic-scpi-source-sink.toml");
+pub const GENERIC_SOURCE_SINK: &str = include_str!("../../profiles/generic-scpi-source-sink.toml");
 pub const GENERIC_METER: &str = include_str!("../../profiles/generic-scpi-meter.toml");
 
 /// The built-in profiles by name.
@@ -223,7 +222,11 @@ impl Profile {
         let role_name = raw.role.name();
         let mut need = |ok: bool, what: &str| {
             if !ok {
-                let at = if what.starts_with('[') { "name" } else { "[commands]" };
+                let at = if what.starts_with('[') {
+                    "name"
+                } else {
+                    "[commands]"
+                };
                 errors.push(LocatedError {
                     location: locate(at),
                     message: format!("a {role_name} profile needs the operation {what}"),
@@ -316,7 +319,12 @@ impl Profile {
     pub fn framing(&self) -> crate::instrument::scpi::Framing {
         crate::instrument::scpi::Framing {
             write_term: self.transport.write_termination.clone(),
-            read_term: self.transport.read_termination.bytes().last().unwrap_or(b'\n'),
+            read_term: self
+                .transport
+                .read_termination
+                .bytes()
+                .last()
+                .unwrap_or(b'\n'),
             timeout: std::time::Duration::from_millis(self.transport.timeout_ms),
             delay: std::time::Duration::from_millis(self.transport.delay_ms),
         }
@@ -434,7 +442,8 @@ mod tests {
         let bad = GENERIC_LOAD.replace("get_mode = ", "read_mode = ");
         let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
         assert!(
-            e.to_string().starts_with("p.toml:25:1: unknown field `read_mode`"),
+            e.to_string()
+                .starts_with("p.toml:25:1: unknown field `read_mode`"),
             "{e}"
         );
         // A missing required operation, located at the [commands] table.

@@ -170,7 +170,8 @@ impl Session {
         // One buffer, one write: the message and its terminator leave together.
         self.out.clear();
         self.out.extend_from_slice(message.as_bytes());
-        self.out.extend_from_slice(self.framing.write_term.as_bytes());
+        self.out
+            .extend_from_slice(self.framing.write_term.as_bytes());
         if let Some(t) = &self.trace {
             t.line(&self.name, '>', message.as_bytes());
         }
@@ -326,7 +327,8 @@ impl Session {
     /// late reply is never taken for the answer to the next query.
     pub async fn resync(&mut self) -> Result<(), InstrumentError> {
         self.note("resynchronising");
-        let quiet = (self.framing.timeout / 10).clamp(Duration::from_millis(5), Duration::from_millis(100));
+        let quiet =
+            (self.framing.timeout / 10).clamp(Duration::from_millis(5), Duration::from_millis(100));
         self.drain_input(quiet).await?;
         self.write("*OPC?").await?;
         let deadline = Instant::now() + self.framing.timeout;

@@ -42,7 +42,10 @@ pub enum LinkSpec {
     /// The embedded simulated bench.
     Sim,
     Serial(SerialSpec),
-    Tcp { host: String, port: u16 },
+    Tcp {
+        host: String,
+        port: u16,
+    },
 }
 
 /// A link address that does not parse; `offset` is the byte in the text
@@ -79,7 +82,10 @@ impl std::str::FromStr for LinkSpec {
             };
             let host = rest[..colon].trim_start_matches('[').trim_end_matches(']');
             if host.is_empty() || host.contains(char::is_whitespace) {
-                return Err(bad(base, format!("link '{text}': expected a host name or address before ':PORT'")));
+                return Err(bad(
+                    base,
+                    format!("link '{text}': expected a host name or address before ':PORT'"),
+                ));
             }
             let port_text = &rest[colon + 1..];
             let port: u16 = match port_text.parse() {
@@ -87,7 +93,9 @@ impl std::str::FromStr for LinkSpec {
                 _ => {
                     return Err(bad(
                         base + colon + 1,
-                        format!("link '{text}': port '{port_text}' is not a number from 1 to 65535"),
+                        format!(
+                            "link '{text}': port '{port_text}' is not a number from 1 to 65535"
+                        ),
                     ))
                 }
             };
@@ -103,7 +111,10 @@ impl std::str::FromStr for LinkSpec {
                 None => (rest, None),
             };
             if path.is_empty() {
-                return Err(bad(base, format!("link '{text}': expected a device path after 'serial:'")));
+                return Err(bad(
+                    base,
+                    format!("link '{text}': expected a device path after 'serial:'"),
+                ));
             }
             let mut spec = SerialSpec {
                 path: path.to_string(),
@@ -117,10 +128,14 @@ impl std::str::FromStr for LinkSpec {
                 let mut off = base + path.len() + 1;
                 for pair in q.split('&') {
                     let (k, v) = pair.split_once('=').ok_or_else(|| {
-                        bad(off, format!("link '{text}': option '{pair}' needs a value (key=value)"))
+                        bad(
+                            off,
+                            format!("link '{text}': option '{pair}' needs a value (key=value)"),
+                        )
                     })?;
                     let voff = off + k.len() + 1;
-                    let what = |e: &str| bad(voff, format!("link '{text}': {k}='{v}': expected {e}"));
+                    let what =
+                        |e: &str| bad(voff, format!("link '{text}': {k}='{v}': expected {e}"));
                     match k {
                         "baud" => {
                             spec.baud = match v.parse::<u32>() {
@@ -322,7 +337,9 @@ mod tests {
         let e = "tcp:host:99999".parse::<LinkSpec>().unwrap_err();
         assert_eq!(e.offset, 9);
         assert!(e.message.contains("1 to 65535"), "{e}");
-        let e = "serial:/dev/ttyS0?baud=fast".parse::<LinkSpec>().unwrap_err();
+        let e = "serial:/dev/ttyS0?baud=fast"
+            .parse::<LinkSpec>()
+            .unwrap_err();
         assert_eq!(e.offset, 23);
         let e = "serial:/dev/ttyS0?baud=9600&colour=red"
             .parse::<LinkSpec>()

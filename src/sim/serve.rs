@@ -91,14 +91,17 @@ impl Shared {
             inst.fired_log.clear();
             return;
         };
-        let now = (
-            self.handle.source_output_on(),
-            self.handle.load_input_on(),
-        );
+        let now = (self.handle.source_output_on(), self.handle.load_input_on());
         let mut whats: Vec<String> = inst
             .fired_log
             .drain(..)
-            .map(|f| format!("fault {}:{}", f.fault.instrument.name(), f.fault.kind.name()))
+            .map(|f| {
+                format!(
+                    "fault {}:{}",
+                    f.fault.instrument.name(),
+                    f.fault.kind.name()
+                )
+            })
             .collect();
         if let Ok(mut last) = self.last.lock() {
             if *last != now {
@@ -206,7 +209,11 @@ fn new_pty() -> io::Result<(std::fs::File, std::fs::File, PathBuf)> {
     let r = nix::pty::openpty(None, None).map_err(io::Error::from)?;
     set_raw(&r.slave)?;
     let path = nix::unistd::ttyname(&r.slave).map_err(io::Error::from)?;
-    Ok((std::fs::File::from(r.master), std::fs::File::from(r.slave), path))
+    Ok((
+        std::fs::File::from(r.master),
+        std::fs::File::from(r.slave),
+        path,
+    ))
 }
 
 fn point_symlink(link: &Path, target: &Path) -> io::Result<()> {
@@ -300,7 +307,11 @@ pub fn serve(
                         if let Some(tx) = first.take() {
                             let _ = tx.send(Ok(path.clone()));
                         } else {
-                            eprintln!("{} moved to {}", role_name(inst_role(&inst)), path.display());
+                            eprintln!(
+                                "{} moved to {}",
+                                role_name(inst_role(&inst)),
+                                path.display()
+                            );
                         }
                         let Ok(mut reader) = master.try_clone() else {
                             return;

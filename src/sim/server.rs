@@ -387,7 +387,9 @@ impl SimInstrument {
                 if query {
                     Self::no_params(params)?;
                     let mode = match (role, self.function) {
-                        (SimRole::SourceSink, SinkFunction::Voltage) => return Ok(Some("VOLT".into())),
+                        (SimRole::SourceSink, SinkFunction::Voltage) => {
+                            return Ok(Some("VOLT".into()))
+                        }
                         (SimRole::SourceSink, SinkFunction::Sink(m)) => m,
                         _ => b.load.mode,
                     };
@@ -547,7 +549,8 @@ impl LineResponder for SimInstrument {
             let code = f.error_code;
             self.esr |= 1 << 3;
             if self.errors.len() < QUEUE_DEPTH {
-                self.errors.push_back((code, "Device-specific error; injected fault"));
+                self.errors
+                    .push_back((code, "Device-specific error; injected fault"));
             }
         }
         let drop_levels = has(FaultKind::WrongReadBack).is_some();
