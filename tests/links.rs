@@ -15,7 +15,7 @@ use std::time::Duration;
 const BIN: &str = env!("CARGO_BIN_EXE_packbench");
 const PACK: [&str; 6] = ["--chemistry", "li-ion", "--series", "4", "--rated", "2Ah"];
 /// Bench seconds per wall second on both ends of a served run.
-const SPEED: &str = "200";
+const SPEED: &str = "400";
 
 /// A `packbench sim serve` child, killed when dropped.
 struct Served {
@@ -169,6 +169,16 @@ fn a_run_through_a_pseudo_terminal_measures_what_the_in_memory_run_measures() {
         .as_str()
         .unwrap()
         .contains("simulated-source"));
+    // The pseudo-terminal stays usable after the run closed it: a new
+    // client (a probe) reaches the same instrument through the stable name.
+    let link = format!("serial:{}?baud=115200", link_dir.join("load").display());
+    let out = Command::new(BIN)
+        .args(["probe", &link, "--profile", "generic-scpi-load"])
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert_eq!(out.status.code(), Some(0), "{text}");
+    assert!(text.contains("simulated-load"), "{text}");
 }
 
 #[test]
@@ -254,6 +264,10 @@ fn assert_safe_stop_after_fault(code: i32, run: &Path, log: &Path, fault: &str) 
         .map(|e| e.wall_s)
         .next()
         .unwrap_or(fired.wall_s);
+    eprintln!(
+        "{fault}: outputs off {:.3} s after the fault took effect",
+        off - fired.wall_s
+    );
     assert!(
         off - fired.wall_s <= 2.0,
         "{fault}: outputs off {:.2} s after the fault",
@@ -478,4 +492,59 @@ fn good_link(bench: &str) -> String {
     let after = bench.split("[station.load]").nth(1).unwrap();
     let line = after.lines().find(|l| l.starts_with("link")).unwrap();
     line.split('"').nth(1).unwrap().to_string()
+}
+
+/// The served instruments follow SCPI-1999 / IEEE 488.2 on the wire, as any
+/// SCPI client would see them (a raw TCP socket, no packbench session).
+#[test]
+fn served_instruments_speak_standard_scpi_on_the_wire() {
+    use std::io::Write;
+    let dir = tempfile::tempdir().unwrap();
+    let s = serve(dir.path(), &["--tcp", "127.0.0.1:0"], &[]);
+    let bench = std::fs::read_to_string(&s.bench).unwrap();
+    let addr = good_link(&bench).trim_start_matches("tcp:").to_string();
+    let stream = std::net::TcpStream::connect(&addr).unwrap();
+    stream
+        .set_read_timeout(Some(Duration::from_secs(2)))
+        .unwrap();
+    let w = std::cell::RefCell::new(stream.try_clone().unwrap());
+    let mut r = BufReader::new(stream);
+    // A command with no query gets no reply.
+    let w_only = |c: &str| {
+        w.borrow_mut()
+            .write_all(format!("{c}\n").as_bytes())
+            .unwrap()
+    };
+    let mut ask = |q: &str| -> String {
+        w.borrow_mut()
+            .write_all(format!("{q}\n").as_bytes())
+            .unwrap();
+        let mut line = String::new();
+        r.read_line(&mut line)
+            .unwrap_or_else(|e| panic!("no reply to '{q}': {e}"));
+        line.trim_end().to_string()
+    };
+    assert_eq!(ask("*IDN?").split(',').count(), 4);
+    assert_eq!(ask("SYST:ERR?"), "0,\"No error\"");
+    // Long, short and mixed-case forms; a compound message; MIN/MAX.
+    assert_eq!(ask("SOURce:CURRent 1.5;CURR?"), "+1.50000E+00");
+    assert_eq!(ask("curr 2.5;:sour:curr?"), "+2.50000E+00");
+    assert_eq!(ask("CURR? MAX"), "+6.00000E+01");
+    assert_eq!(ask("CURR? MIN"), "+0.00000E+00");
+    assert!(ask("MEASure:VOLTage:DC?").starts_with('+'));
+    assert!(ask("MEAS:CURR?").starts_with('+'));
+    assert_eq!(ask("INPut:STATe?"), "0");
+    // Errors with their standard numbers.
+    for (bad, code) in [
+        ("CURR 1.0, 2.0", -108),
+        ("CURR", -109),
+        ("NOSUCH:THING 1", -113),
+        ("CURR 1000", -222),
+        ("INP MAYBE", -224),
+    ] {
+        w_only(bad);
+        let e = ask("SYST:ERR?");
+        assert!(e.starts_with(&format!("{code},")), "{bad} -> {e}");
+    }
+    assert_eq!(ask("*CLS;*OPC?"), "1");
 }

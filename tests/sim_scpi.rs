@@ -136,3 +136,51 @@ async fn a_silent_instrument_times_out_instead_of_answering_zero() {
     let e = load.query_number("MEAS:VOLT?").await.unwrap_err();
     assert_eq!(e.kind, packbench::instrument::ErrorKind::Timeout);
 }
+
+/// Answers its first query 250 ms late, every other at once.
+struct LateOnce {
+    n: usize,
+}
+
+impl packbench::instrument::link::LineResponder for LateOnce {
+    fn respond(
+        &mut self,
+        line: &str,
+    ) -> Result<packbench::instrument::link::Response, std::io::Error> {
+        use packbench::instrument::link::Response;
+        self.n += 1;
+        let reply = match line {
+            "*OPC?" => "1".to_string(),
+            "*IDN?" => "packbench-test,late-once,0,1".to_string(),
+            other => format!("reply to {other}"),
+        };
+        Ok(if self.n == 1 {
+            Response::Late(reply, Duration::from_millis(250))
+        } else {
+            Response::Reply(reply)
+        })
+    }
+}
+
+#[tokio::test]
+async fn a_late_reply_is_never_taken_for_the_next_query() {
+    use packbench::instrument::link::{InMemoryLink, LineResponder};
+    use std::sync::Mutex;
+    let r: Arc<Mutex<dyn LineResponder>> = Arc::new(Mutex::new(LateOnce { n: 0 }));
+    let mut s = Session::new(
+        "x",
+        Box::new(InMemoryLink::new(r)),
+        "\n",
+        Duration::from_millis(200),
+    );
+    let e = s.query("MEAS:VOLT?").await.unwrap_err();
+    assert_eq!(e.kind, packbench::instrument::ErrorKind::Timeout);
+    // The late "reply to MEAS:VOLT?" arrives during resynchronisation and
+    // is skipped; the next query gets its own answer.
+    s.resync().await.unwrap();
+    assert_eq!(
+        s.query("*IDN?").await.unwrap(),
+        "packbench-test,late-once,0,1"
+    );
+    assert_eq!(s.query("MEAS:CURR?").await.unwrap(), "reply to MEAS:CURR?");
+}

@@ -413,6 +413,10 @@ pub fn parse_bool(param: &str) -> Result<bool, ScpiError> {
     match param.trim().to_ascii_uppercase().as_str() {
         "ON" => Ok(true),
         "OFF" => Ok(false),
+        // Character data that is not one of the allowed words.
+        other if other.starts_with(|c: char| c.is_ascii_alphabetic()) => {
+            Err(ScpiError::IllegalParameterValue)
+        }
         other => other
             .parse::<f64>()
             .map(|x| x.round() != 0.0)
