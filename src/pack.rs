@@ -41,6 +41,16 @@ impl Chemistry {
         }
     }
 
+    /// The rate a capacity is rated at when the spec gives none, C-rate:
+    /// 0.2 It for Li-ion, LFP and NiMH (IEC 61960-3 / IEC 61951-2 scheme),
+    /// the 20-h rate for lead-acid (US practice; standards fact sheet §2, §4e).
+    pub fn default_rated_rate_c(&self) -> f64 {
+        match self {
+            Chemistry::LeadAcid => 0.05,
+            _ => 0.2,
+        }
+    }
+
     /// Nominal cell voltage (common practice): used for rated energy when
     /// none is given.
     pub fn nominal_cell_voltage(&self) -> f64 {

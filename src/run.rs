@@ -829,6 +829,7 @@ pub fn summarize_run_dir(
     if log.dropped_partial_line {
         a.warnings
             .push("the last line of samples.csv was incomplete and was left out".into());
+        a.quality.partial_last_line = true;
     }
     let (status, reason) = match outcome {
         Some(o) => (o.status.name().to_string(), o.reason.clone()),
@@ -888,6 +889,11 @@ pub fn summarize_run_dir(
         warnings: a.warnings,
         samples: log.samples.len(),
         duration_s: duration,
+        recalibration: a.recalibration,
+        curves: a.curves,
+        pulse_resistance: a.pulse,
+        gaps: a.gaps,
+        log: a.quality,
     };
     Ok((summary, log))
 }

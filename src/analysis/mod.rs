@@ -5,16 +5,21 @@
 //! Conventions: current positive into the pack; step charge and energy are
 //! signed; cycle and capacity figures are magnitudes.
 
+pub mod correct;
 pub mod curves;
 pub mod fit;
 pub mod integrate;
+pub mod pulse;
 pub mod resistance;
+pub mod stream;
 
 use crate::pack::PackSpec;
 use crate::sample::Sample;
-use integrate::Integrator;
+use correct::Correction;
+use pulse::PulseReading;
 use resistance::ResistanceReading;
 use serde::{Deserialize, Serialize};
+pub use stream::{AnalysisOptions, Analyzer};
 
 /// What the analysis needs to know about a step besides its samples.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -88,6 +93,138 @@ pub struct CapacityResult {
     pub end_voltage_v: Option<f64>,
     /// Did the step end on its voltage cutoff (as a capacity test must)?
     pub ended_on_cutoff: bool,
+    /// The capacity at rated conditions (temperature, rate); `soh_pct` is
+    /// on this value.
+    #[serde(default)]
+    pub corrected_ah: f64,
+    /// The corrections applied, each with its factor and why.
+    #[serde(default)]
+    pub corrections: Vec<Correction>,
+    /// Temperature at the start of the discharge, °C.
+    #[serde(default)]
+    pub initial_temperature_c: Option<f64>,
+    /// State of health on the measured (uncorrected) capacity.
+    #[serde(default)]
+    pub soh_measured_pct: f64,
+    /// IEEE 450 time-adjusted percent capacity (lead-acid at its rated
+    /// current, to its cutoff).
+    #[serde(default)]
+    pub ieee450_percent: Option<f64>,
+}
+
+/// A gap in the log: an interval much longer than the typical one.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Gap {
+    pub step: u32,
+    pub from_s: f64,
+    pub to_s: f64,
+    pub duration_s: f64,
+    pub typical_interval_s: f64,
+    /// Charge integrated across the gap (straight line between the two
+    /// samples either side), Ah; 0 across a step boundary.
+    pub charge_across_ah: f64,
+}
+
+/// What reading the log found.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct LogQuality {
+    pub rows: u64,
+    pub duplicates_dropped: u64,
+    pub out_of_order_dropped: u64,
+    /// Rows with the same time as the row before but other values (kept:
+    /// an instant change, such as a current edge).
+    pub repeated_timestamps: u64,
+    pub gaps: u64,
+    pub charge_in_gaps_ah: f64,
+    /// A last line without its newline was left out.
+    pub partial_last_line: bool,
+}
+
+/// A peak of dQ/dV (position in V) or dV/dQ (position in Ah).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PeakSummary {
+    pub position: f64,
+    pub position_per_cell: f64,
+    pub height: f64,
+    pub prominence: f64,
+}
+
+/// Incremental capacity of one step.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct IcaSummary {
+    pub step: u32,
+    pub direction: String,
+    pub rate_c: f64,
+    pub bin_mv_per_cell: f64,
+    pub smoothing_bins: f64,
+    /// Main peaks (Ah/V), at most three, in voltage order.
+    pub peaks: Vec<PeakSummary>,
+}
+
+/// Differential voltage of one step.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct DvaSummary {
+    pub step: u32,
+    pub direction: String,
+    pub bin_ah: f64,
+    pub smoothing_bins: f64,
+    /// Main peaks (V/Ah), at most three, in charge order.
+    pub peaks: Vec<PeakSummary>,
+}
+
+/// One row of the open-circuit-voltage table.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct OcvPoint {
+    pub soc_pct: f64,
+    pub charge_v: f64,
+    pub discharge_v: f64,
+    pub ocv_v: f64,
+    pub ocv_per_cell_v: f64,
+}
+
+/// Open-circuit voltage against state of charge, the average of a slow
+/// charge from empty and the slow discharge from full.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct OcvTable {
+    pub charge_step: u32,
+    pub discharge_step: u32,
+    pub charge_rate_c: f64,
+    pub discharge_rate_c: f64,
+    pub points: Vec<OcvPoint>,
+}
+
+/// Curves of the capacity test.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct CurvesSummary {
+    pub ica: Vec<IcaSummary>,
+    pub dva: Vec<DvaSummary>,
+    pub ocv: Option<OcvTable>,
+}
+
+/// The curves themselves, for CSV export: (step, direction, x, y, smoothed y).
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct CurveData {
+    pub ica: Vec<(u32, String, f64, f64, f64)>,
+    pub dva: Vec<(u32, String, f64, f64, f64)>,
+    pub ocv: Vec<OcvPoint>,
+}
+
+/// For engineers recalibrating a battery management system or fuel gauge.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Recalibration {
+    /// The measured full-charge capacity at rated conditions, Ah.
+    pub full_charge_capacity_ah: f64,
+    /// Suggested as the new nominal (rounded to 1 mAh).
+    pub suggested_nominal_ah: f64,
+    pub measured_ah: f64,
+    pub energy_wh: f64,
+    pub rate_c: f64,
+    pub current_a: f64,
+    pub end_voltage_v: Option<f64>,
+    pub initial_temperature_c: Option<f64>,
+    pub ended_on_cutoff: bool,
+    /// The test conditions the figure holds for.
+    pub conditions: String,
 }
 
 /// The pack's DC resistance from the steps tagged `dcir`.
@@ -100,13 +237,20 @@ pub struct ResistanceResult {
 }
 
 /// Everything the analysis finds in one run.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq)]
 pub struct Analysis {
     pub capacity: Option<CapacityResult>,
     pub resistance: Option<ResistanceResult>,
     pub steps: Vec<StepSummary>,
     pub cycles: Vec<CycleSummary>,
     pub warnings: Vec<String>,
+    /// The pulse method at every current edge of the log.
+    pub pulse: Vec<PulseReading>,
+    pub curves: Option<CurvesSummary>,
+    pub curve_data: CurveData,
+    pub recalibration: Option<Recalibration>,
+    pub gaps: Vec<Gap>,
+    pub quality: LogQuality,
 }
 
 /// State of health, % of rated (fact sheet §6: SOH = C_measured / C_rated × 100).
@@ -114,189 +258,25 @@ pub fn soh_pct(measured_ah: f64, rated_ah: f64) -> f64 {
     measured_ah / rated_ah * 100.0
 }
 
-/// Summarise one step's samples.
-pub fn summarize_step(info: &StepInfo, samples: &[Sample]) -> StepSummary {
-    let mut g = Integrator::default();
-    let mut vmin = f64::INFINITY;
-    let mut vmax = f64::NEG_INFINITY;
-    let mut tmax: Option<f64> = None;
-    for s in samples {
-        g.push(s.t_s, s.voltage_v, s.current_a);
-        vmin = vmin.min(s.voltage_v);
-        vmax = vmax.max(s.voltage_v);
-        if let Some(t) = s.temperature_c {
-            tmax = Some(tmax.map_or(t, |m: f64| m.max(t)));
-        }
-    }
-    let start = samples.first().map(|s| s.t_s).unwrap_or(0.0);
-    let end = samples.last().map(|s| s.t_s).unwrap_or(start);
-    let duration = end - start;
-    let mean_current = (duration > 0.0).then(|| g.ah * 3600.0 / duration);
-    StepSummary {
-        step: info.step,
-        phase: info.phase.clone(),
-        cycle: info.cycle,
-        kind: info.kind.clone(),
-        name: info.name.clone(),
-        samples: samples.len(),
-        start_s: start,
-        duration_s: duration,
-        charge_ah: g.ah,
-        energy_wh: g.wh,
-        charge_in_ah: g.ah_in,
-        charge_out_ah: g.ah_out,
-        energy_in_wh: g.wh_in,
-        energy_out_wh: g.wh_out,
-        start_voltage_v: samples.first().map(|s| s.voltage_v),
-        end_voltage_v: samples.last().map(|s| s.voltage_v),
-        min_voltage_v: vmin.is_finite().then_some(vmin),
-        max_voltage_v: vmax.is_finite().then_some(vmax),
-        mean_current_a: mean_current,
-        max_temperature_c: tmax,
-        end_kind: info.end_kind.clone(),
-        end_reason: info.end_reason.clone(),
-    }
+/// Analyse a run held in memory: per step, per cycle, capacity (measured
+/// and at rated conditions), state of health, resistance, curves. The same
+/// streaming code as every other path ([`Analyzer`]).
+pub fn analyze(samples: &[Sample], steps: &[StepInfo], pack: &PackSpec) -> Analysis {
+    analyze_with(samples, steps, pack, AnalysisOptions::default())
 }
 
-/// Analyse a run: per step, per cycle, measured capacity and state of health.
-/// `samples` must be in time order; steps are matched by their number.
-pub fn analyze(samples: &[Sample], steps: &[StepInfo], pack: &PackSpec) -> Analysis {
-    let mut warnings = Vec::new();
-    let mut summaries = Vec::new();
-    // Samples of one step are contiguous in a log written by the engine.
-    let mut start = 0;
-    let mut by_step: Vec<(u32, &[Sample])> = Vec::new();
-    while start < samples.len() {
-        let step = samples[start].step;
-        let end = samples[start..]
-            .iter()
-            .position(|s| s.step != step)
-            .map(|p| start + p)
-            .unwrap_or(samples.len());
-        by_step.push((step, &samples[start..end]));
-        start = end;
+/// [`analyze`] with settings.
+pub fn analyze_with(
+    samples: &[Sample],
+    steps: &[StepInfo],
+    pack: &PackSpec,
+    opts: AnalysisOptions,
+) -> Analysis {
+    let mut a = Analyzer::new(pack, steps, opts);
+    for s in samples {
+        a.push(s);
     }
-    let mut readings: Vec<ResistanceReading> = Vec::new();
-    for info in steps {
-        let parts: Vec<&[Sample]> = by_step
-            .iter()
-            .filter(|(n, _)| *n == info.step)
-            .map(|(_, s)| *s)
-            .collect();
-        if parts.len() > 1 {
-            warnings.push(format!(
-                "step {} appears in {} separate stretches of the log; they are summed",
-                info.step,
-                parts.len()
-            ));
-        }
-        let joined: Vec<Sample> = parts.concat();
-        summaries.push(summarize_step(info, &joined));
-        if info.result.as_deref() == Some("dcir") {
-            let complete = !matches!(
-                info.end_kind.as_deref(),
-                None | Some("aborted") | Some("interrupted")
-            );
-            match resistance::two_level_from_step(info.step, &joined) {
-                Some(r) if complete => readings.push(r),
-                _ => warnings.push(format!(
-                    "the resistance step {} gave no reading (unfinished, or fewer than two current levels)",
-                    info.step
-                )),
-            }
-        }
-    }
-    let resistance = readings.first().map(|r| ResistanceResult {
-        dcir_mohm: r.dcir_mohm,
-        method: r.method.clone(),
-        readings: readings.clone(),
-    });
-    // Cycles: charge and discharge steps; pulse steps count both ways.
-    let mut cycles: Vec<CycleSummary> = Vec::new();
-    for s in &summaries {
-        if !matches!(s.kind.as_str(), "charge" | "discharge") {
-            continue;
-        }
-        let c = match cycles.iter_mut().find(|c| c.cycle == s.cycle) {
-            Some(c) => c,
-            None => {
-                cycles.push(CycleSummary {
-                    cycle: s.cycle,
-                    charge_ah: 0.0,
-                    discharge_ah: 0.0,
-                    charge_wh: 0.0,
-                    discharge_wh: 0.0,
-                    coulombic_efficiency_pct: None,
-                    energy_efficiency_pct: None,
-                });
-                let n = cycles.len() - 1;
-                &mut cycles[n]
-            }
-        };
-        c.charge_ah += s.charge_in_ah;
-        c.discharge_ah += s.charge_out_ah;
-        c.charge_wh += s.energy_in_wh;
-        c.discharge_wh += s.energy_out_wh;
-    }
-    for c in &mut cycles {
-        if c.charge_ah > 0.0 && c.discharge_ah > 0.0 {
-            let ce = c.discharge_ah / c.charge_ah * 100.0;
-            c.coulombic_efficiency_pct = Some(ce);
-            c.energy_efficiency_pct =
-                (c.charge_wh > 0.0).then(|| c.discharge_wh / c.charge_wh * 100.0);
-            if ce > 100.0 {
-                // Fact sheet §8: CE above 100 % points at a current-sensor
-                // offset or an incomplete discharge before the charge.
-                warnings.push(format!(
-                    "cycle {}: coulombic efficiency {ce:.2} % is above 100 % (current offset, or the pack was not empty before the charge)",
-                    c.cycle
-                ));
-            }
-        }
-    }
-    let capacity = steps
-        .iter()
-        .rev()
-        .find(|s| s.result.as_deref() == Some("capacity"))
-        .and_then(|info| {
-            let s = summaries.iter().find(|x| x.step == info.step)?;
-            let complete = !matches!(info.end_kind.as_deref(), None | Some("aborted") | Some("interrupted"));
-            if !complete {
-                warnings.push(format!(
-                    "the capacity step {} did not finish; no capacity is reported",
-                    info.step
-                ));
-                return None;
-            }
-            let ended_on_cutoff = info.end_kind.as_deref() == Some("voltage_below");
-            if !ended_on_cutoff {
-                warnings.push(format!(
-                    "the capacity step {} ended on '{}', not on its cutoff voltage: the capacity is a lower bound",
-                    info.step,
-                    info.end_reason.clone().unwrap_or_default()
-                ));
-            }
-            let mean = if s.duration_s > 0.0 { s.charge_out_ah * 3600.0 / s.duration_s } else { 0.0 };
-            Some(CapacityResult {
-                step: s.step,
-                measured_ah: s.charge_out_ah,
-                measured_wh: s.energy_out_wh,
-                rated_ah: pack.rated_capacity_ah,
-                soh_pct: soh_pct(s.charge_out_ah, pack.rated_capacity_ah),
-                mean_current_a: mean,
-                c_rate: mean / pack.rated_capacity_ah,
-                duration_s: s.duration_s,
-                end_voltage_v: s.end_voltage_v,
-                ended_on_cutoff,
-            })
-        });
-    Analysis {
-        capacity,
-        resistance,
-        steps: summaries,
-        cycles,
-        warnings,
-    }
+    a.finish()
 }
 
 #[cfg(test)]

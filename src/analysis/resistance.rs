@@ -20,7 +20,17 @@ pub struct ResistanceReading {
     /// Time of the two readings, s since the run started.
     pub t1_s: f64,
     pub t2_s: f64,
+    /// State of charge at the reading, %, when the log holds a full charge
+    /// before it.
+    #[serde(default)]
+    pub soc_pct: Option<f64>,
+    #[serde(skip)]
+    pub ah_since_full: Option<f64>,
 }
+
+/// How the two-level reading is made.
+pub const TWO_LEVEL_METHOD: &str =
+    "two-level, IEC 61960 scheme: (U1 - U2) / (I2 - I1) at the ends of the levels";
 
 /// The IEC 61960 two-level formula in pack sign convention:
 /// R = (U1 − U2) / (I1 − I2). For two discharge levels (negative currents)
@@ -58,14 +68,15 @@ pub fn two_level_from_step(step: u32, samples: &[Sample]) -> Option<ResistanceRe
     Some(ResistanceReading {
         step,
         dcir_mohm: r * 1000.0,
-        method: "two-level, IEC 61960 scheme: (U1 - U2) / (I2 - I1) at the ends of the levels"
-            .into(),
+        method: TWO_LEVEL_METHOD.into(),
         u1_v: e1.voltage_v,
         i1_a: e1.current_a,
         u2_v: e2.voltage_v,
         i2_a: e2.current_a,
         t1_s: e1.t_s,
         t2_s: e2.t_s,
+        soc_pct: None,
+        ah_since_full: None,
     })
 }
 

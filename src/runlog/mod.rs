@@ -14,7 +14,11 @@
 pub mod read;
 pub mod write;
 
-use crate::analysis::{CapacityResult, CycleSummary, ResistanceResult, StepSummary};
+use crate::analysis::pulse::PulseReading;
+use crate::analysis::{
+    CapacityResult, CurvesSummary, CycleSummary, Gap, LogQuality, Recalibration,
+    ResistanceResult, StepSummary,
+};
 use crate::pack::PackSpec;
 use serde::{Deserialize, Serialize};
 
@@ -59,6 +63,23 @@ pub struct Summary {
     pub warnings: Vec<String>,
     pub samples: usize,
     pub duration_s: f64,
+    /// The measured capacity as a new nominal for a battery management
+    /// system, with the conditions it holds for.
+    #[serde(default)]
+    pub recalibration: Option<Recalibration>,
+    /// Incremental capacity and differential voltage peaks, and the
+    /// open-circuit-voltage table.
+    #[serde(default)]
+    pub curves: Option<CurvesSummary>,
+    /// The pulse method (ΔV/ΔI at set times after each current edge).
+    #[serde(default)]
+    pub pulse_resistance: Vec<PulseReading>,
+    /// Gaps in the log, each flagged.
+    #[serde(default)]
+    pub gaps: Vec<Gap>,
+    /// What reading the log found (duplicates, out-of-order rows, gaps).
+    #[serde(default)]
+    pub log: LogQuality,
 }
 
 /// The pack spec as it appears in JSON records.
