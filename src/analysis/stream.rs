@@ -611,11 +611,19 @@ impl<'a> Analyzer<'a> {
             .as_ref()
             .map(|c| c.measured_ah)
             .unwrap_or(pack.rated_capacity_ah);
+        // (The coulomb count is working state only: records read back from
+        // disk carry the state of charge, not it.)
         for r in &mut pulse_readings {
-            r.soc_pct = r.ah_since_full.map(|q| (100.0 * (1.0 - q / c_ref)).clamp(-5.0, 105.0));
+            r.soc_pct = r
+                .ah_since_full
+                .take()
+                .map(|q| (100.0 * (1.0 - q / c_ref)).clamp(-5.0, 105.0));
         }
         for r in &mut two_levels {
-            r.soc_pct = r.ah_since_full.map(|q| (100.0 * (1.0 - q / c_ref)).clamp(-5.0, 105.0));
+            r.soc_pct = r
+                .ah_since_full
+                .take()
+                .map(|q| (100.0 * (1.0 - q / c_ref)).clamp(-5.0, 105.0));
         }
         let resistance = resistance_figure(two_levels, &pulse_readings, self.opts.imported);
         let quality = self.quality.clone();
