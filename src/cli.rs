@@ -50,6 +50,10 @@ pub enum Command {
     Fleet(FleetArgs),
     /// Run the fictional rental-fleet demo on the simulated bench.
     Demo(DemoArgs),
+    /// Analyse a log: one of our run folders, or any bench's CSV.
+    Analyze(crate::analyze_cmd::AnalyzeArgs),
+    /// Peukert exponent from two capacity runs of a pack at different rates.
+    Peukert(crate::analyze_cmd::PeukertArgs),
     /// List the serial ports of this machine.
     Ports,
     /// Check an instrument's link and profile: identify, error queue, voltage, current.
@@ -638,6 +642,8 @@ pub fn main() -> i32 {
         Command::Fade(a) => cmd_fade(a).context("fade analysis failed"),
         Command::Fleet(a) => cmd_fleet(a).context("fleet view failed"),
         Command::Demo(a) => cmd_demo(a).context("demo failed"),
+        Command::Analyze(a) => crate::analyze_cmd::cmd_analyze(a).context("analysis failed"),
+        Command::Peukert(a) => crate::analyze_cmd::cmd_peukert(a).context("peukert failed"),
         Command::Ports => crate::setup::cmd_ports().context("listing ports failed"),
         Command::Probe(a) => crate::setup::cmd_probe(a).context("probe failed"),
         Command::Sim(a) => crate::setup::cmd_sim(a).context("sim failed"),

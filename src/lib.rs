@@ -23,6 +23,7 @@
 //! | [`cli`] | the command line |
 
 pub mod analysis;
+pub mod analyze_cmd;
 pub mod benchfile;
 pub mod cli;
 pub mod clock;
@@ -31,6 +32,7 @@ pub mod engine;
 pub mod fade;
 pub mod instrument;
 pub mod location;
+pub mod offline;
 pub mod pack;
 pub mod procedure;
 pub mod report;

@@ -9,7 +9,7 @@ use crate::clock::{Clock, PacedClock, SimClock};
 use crate::engine::control::StopHandle;
 use crate::engine::state::RunState;
 use crate::engine::{Engine, RunOutcome, Station, TruthStep};
-use crate::fade::grade::{GradeInputs, Policy};
+use crate::fade::grade::Policy;
 use crate::instrument::link::{Link, SharedLink};
 use crate::instrument::profile::{Profile, ProfileRole};
 use crate::instrument::scpi::{Reopen, Trace};
@@ -817,83 +817,24 @@ pub fn reference_resistance(pack_dir: &Path, ctx: &SummaryContext<'_>) -> Option
         .find_map(|(_, s)| s.resistance.as_ref().map(|r| r.dcir_mohm))
 }
 
-/// Build a run's summary from its folder; also returns the samples read.
+/// Build a run's summary from its folder (the log streamed through the
+/// same code as `packbench analyze`); also returns the samples, read again
+/// for the report's charts.
 pub fn summarize_run_dir(
     dir: &Path,
     ctx: &SummaryContext<'_>,
     outcome: Option<&RunOutcome>,
 ) -> Result<(Summary, read::SampleLog), RunError> {
-    let (log, events) = read::read_run(dir)?;
-    let infos = read::step_infos(&events);
-    let mut a = analysis::analyze(&log.samples, &infos, ctx.pack);
-    if log.dropped_partial_line {
-        a.warnings
-            .push("the last line of samples.csv was incomplete and was left out".into());
-        a.quality.partial_last_line = true;
-    }
-    let (status, reason) = match outcome {
-        Some(o) => (o.status.name().to_string(), o.reason.clone()),
-        None => events
-            .iter()
-            .rev()
-            .find_map(|e| match e {
-                crate::engine::event::Event::RunEnd { status, reason, .. } => {
-                    Some((status.clone(), reason.clone()))
-                }
-                _ => None,
-            })
-            .unwrap_or_else(|| {
-                (
-                    "interrupted".into(),
-                    Some("the run has no end record (killed or power cut)".into()),
-                )
-            }),
-    };
-    let duration = match (log.samples.first(), log.samples.last()) {
-        (Some(a), Some(b)) => b.t_s - a.t_s,
-        _ => 0.0,
-    };
-    let grade = (status == "completed").then(|| {
-        let pack_dir = dir.parent().unwrap_or(dir);
-        let own = a.resistance.as_ref().map(|r| r.dcir_mohm);
-        let reference = reference_resistance(pack_dir, ctx).or(own);
-        let growth = match (own, reference) {
-            (Some(r), Some(r0)) if r0 > 0.0 => Some((r / r0 - 1.0) * 100.0),
-            _ => None,
-        };
-        ctx.policy.grade(&GradeInputs {
-            chemistry: ctx.pack.chemistry,
-            soh_pct: a.capacity.as_ref().map(|c| c.soh_pct),
-            resistance_growth_pct: growth,
-            coulombic_efficiency_pct: a
-                .cycles
-                .iter()
-                .rev()
-                .find_map(|c| c.coulombic_efficiency_pct),
-        })
+    let outcome = outcome.map(|o| crate::offline::Outcome {
+        status: o.status.name().to_string(),
+        reason: o.reason.clone(),
     });
-    let summary = Summary {
-        status,
-        stop_reason: reason,
-        pack_id: ctx.pack_id.to_string(),
-        run_id: ctx.run_id.to_string(),
-        procedure_title: ctx.title.to_string(),
-        pack: PackSummary::from(ctx.pack),
-        test_date: ctx.test_date.to_string(),
-        cycle_count: ctx.cycle_count,
-        capacity: a.capacity,
-        resistance: a.resistance,
-        grade,
-        steps: a.steps,
-        cycles: a.cycles,
-        warnings: a.warnings,
-        samples: log.samples.len(),
-        duration_s: duration,
-        recalibration: a.recalibration,
-        curves: a.curves,
-        pulse_resistance: a.pulse,
-        gaps: a.gaps,
-        log: a.quality,
-    };
+    let summary = crate::offline::summarize_run(
+        dir,
+        ctx,
+        outcome,
+        analysis::AnalysisOptions::default(),
+    )?;
+    let log = read::read_samples(&dir.join(crate::runlog::SAMPLES_CSV))?;
     Ok((summary, log))
 }

@@ -68,6 +68,8 @@ const GRID_FRACTION: f64 = 0.001;
 const GRID_MAX_POINTS: usize = 3001;
 /// Intervals remembered for the typical sampling interval.
 const INTERVAL_WINDOW: usize = 32;
+/// A gap is also at least this long, s.
+pub const MIN_GAP_S: f64 = 2.0;
 /// Most gaps listed one by one.
 const MAX_GAPS: usize = 1000;
 /// Curves are drawn from steps no faster than this, C-rate (common practice:
@@ -181,6 +183,10 @@ pub struct Analyzer<'a> {
     best_discharge_ah: f64,
     spare_grid: Option<ChargeGrid>,
     warnings: Vec<String>,
+    cycle: u32,
+    seen_discharge: bool,
+    /// Charge delivered from the last full charge to a discharge cutoff.
+    full_to_empty_ah: Option<f64>,
 }
 
 impl<'a> Analyzer<'a> {
@@ -213,6 +219,9 @@ impl<'a> Analyzer<'a> {
             best_discharge_ah: 0.0,
             spare_grid: None,
             warnings: Vec::new(),
+            cycle: 0,
+            seen_discharge: false,
+            full_to_empty_ah: None,
         }
     }
 
@@ -262,18 +271,18 @@ impl<'a> Analyzer<'a> {
                 self.quality.duplicates_dropped += 1;
                 return;
             }
-            if dt == 0.0 {
+            if p.step != s.step {
+                // A new step: its own sampling rate is learnt afresh.
+                self.n_intervals = 0;
+            } else if dt == 0.0 {
                 self.quality.repeated_timestamps += 1;
             } else {
+                // Gaps are judged against the step's own sampling rate
+                // (a pulse sampled fast next to a slow step is no gap).
                 if let Some(typ) = self.typical_interval() {
-                    if dt > self.opts.gap_factor * typ {
+                    if dt > self.opts.gap_factor * typ && dt >= MIN_GAP_S {
                         self.quality.gaps += 1;
-                        let same_step = p.step == s.step;
-                        let across = if same_step {
-                            (p.current_a + s.current_a) * 0.5 * dt / 3600.0
-                        } else {
-                            0.0
-                        };
+                        let across = (p.current_a + s.current_a) * 0.5 * dt / 3600.0;
                         self.quality.charge_in_gaps_ah += across.abs();
                         if self.gaps.len() < MAX_GAPS {
                             self.gaps.push(Gap {
@@ -309,27 +318,51 @@ impl<'a> Analyzer<'a> {
         self.prev = Some(*s);
     }
 
-    fn kind_of(&self, step: u32, acc: &StepAcc) -> String {
-        match self.infos.get(&step) {
-            Some(i) => i.kind.clone(),
-            None => {
-                let q = acc.g.ah;
-                if q > 0.0 {
-                    "charge".into()
-                } else if q < 0.0 {
-                    "discharge".into()
-                } else {
-                    "rest".into()
-                }
-            }
+    /// A step's kind: from its record, or (a foreign log) from its mean
+    /// current: rest under C/100, else charge or discharge by its sign.
+    /// A foreign log's steps get their record here, numbered into cycles
+    /// as ours are (a cycle starts at a charge that follows a discharge).
+    fn kind_of(&mut self, step: u32, acc: &StepAcc) -> String {
+        if let Some(i) = self.infos.get(&step) {
+            return i.kind.clone();
         }
+        let span = match (acc.first, acc.last) {
+            (Some(f), Some(l)) if l.t_s > f.t_s => l.t_s - f.t_s,
+            _ => 0.0,
+        };
+        let mean = if span > 0.0 { acc.g.ah * 3600.0 / span } else { 0.0 };
+        let kind = if mean.abs() < 0.01 * self.pack.rated_capacity_ah {
+            "rest"
+        } else if mean > 0.0 {
+            "charge"
+        } else {
+            "discharge"
+        };
+        if kind == "charge" && self.seen_discharge {
+            self.cycle += 1;
+            self.seen_discharge = false;
+        }
+        if kind == "discharge" {
+            self.seen_discharge = true;
+        }
+        self.set_info(StepInfo {
+            step,
+            phase: String::new(),
+            cycle: self.cycle,
+            kind: kind.into(),
+            name: None,
+            result: None,
+            end_kind: None,
+            end_reason: None,
+        });
+        kind.into()
     }
 
     fn close_step(&mut self) {
         let Some(acc) = self.cur.take() else { return };
         let step = acc.step;
-        let info = self.infos.get(&step).cloned();
         let kind = self.kind_of(step, &acc);
+        let info = self.infos.get(&step).cloned();
         let two_level = match (&acc.level_ends[0], &acc.level_ends[1]) {
             (Some(a), Some(b)) if acc.level >= 1 => two_level_ohm(
                 a.voltage_v,
@@ -385,6 +418,13 @@ impl<'a> Analyzer<'a> {
                 self.spare_grid = Some(old.grid);
             }
             keep_grid = true;
+        }
+        if kind == "discharge"
+            && info.as_ref().and_then(|i| i.end_kind.as_deref()) == Some("voltage_below")
+        {
+            if let Some(q) = self.ah_since_full {
+                self.full_to_empty_ah = Some(q);
+            }
         }
         if kind == "discharge" {
             let tagged = info.as_ref().and_then(|i| i.result.clone()).as_deref() == Some("capacity");
@@ -607,9 +647,12 @@ impl<'a> Analyzer<'a> {
                 pulse::MAX_READINGS
             ));
         }
+        // The charge the pack holds: the capacity step's, else what it gave
+        // from a full charge to a cutoff, else the rated capacity.
         let c_ref = capacity
             .as_ref()
             .map(|c| c.measured_ah)
+            .or(self.full_to_empty_ah.filter(|q| *q > 0.0))
             .unwrap_or(pack.rated_capacity_ah);
         // (The coulomb count is working state only: records read back from
         // disk carry the state of charge, not it.)

@@ -543,7 +543,7 @@ impl<'a> Engine<'a> {
         self.truth_open = self.truth.as_ref().map(|t| t.counters());
         let mut tracker = StepTracker::new(self.t());
         let mut level = 0usize;
-        let every = self.plan.sample_every_s;
+        let every = st.sample_every_s.unwrap_or(self.plan.sample_every_s);
         let time_limit = tracker.time_limit(st);
         let cap_time = tracker.t0 + env.step_time_max_s;
         loop {

@@ -166,6 +166,7 @@ mod tests {
             kind,
             ends,
             result: None,
+            sample_every_s: None,
             line: 1,
         }
     }

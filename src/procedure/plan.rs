@@ -161,6 +161,9 @@ pub struct PlanStep {
     pub kind: StepKind,
     pub ends: Vec<EndCondition>,
     pub result: Option<ResultTag>,
+    /// The step's own sampling interval, s, when it sets one.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub sample_every_s: Option<f64>,
     /// Line of the step in the procedure file, for messages.
     pub line: usize,
 }
@@ -274,6 +277,9 @@ impl fmt::Display for Plan {
             if !s.ends.is_empty() {
                 let ends: Vec<String> = s.ends.iter().map(|c| c.to_string()).collect();
                 write!(f, "; ends: {}", ends.join(" or "))?;
+            }
+            if let Some(e) = s.sample_every_s {
+                write!(f, "; sampled every {e} s")?;
             }
             if let Some(r) = s.result {
                 write!(f, "  <- {} result", r.name())?;

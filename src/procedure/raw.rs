@@ -59,6 +59,8 @@ pub struct RawStep {
     #[serde(default)]
     pub ends: Vec<Text>,
     pub result: Option<Text>,
+    /// This step's sampling interval (e.g. fast sampling in a pulse).
+    pub every: Option<Text>,
 }
 
 #[derive(Debug, Deserialize)]

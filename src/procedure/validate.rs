@@ -736,8 +736,24 @@ fn build(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<Plan> {
         let mut steps = Vec::new();
         for s in &p.step {
             let line = cx.line(&s.span());
+            let own_every = s.get_ref().every.as_ref().and_then(|t| {
+                cx.unit(t, units::duration).and_then(|v| {
+                    if (MIN_SAMPLE_S..=3600.0).contains(&v) {
+                        Some(v)
+                    } else {
+                        cx.err(
+                            &t.span(),
+                            format!(
+                                "sampling interval must be between {MIN_SAMPLE_S} s and 1 h, got '{}'",
+                                t.get_ref()
+                            ),
+                        );
+                        None
+                    }
+                })
+            });
             if let Some(b) = build_step(cx, s, &env, pack) {
-                steps.push((b, line));
+                steps.push((b, line, own_every));
             }
         }
         written.push((p.name.get_ref().clone(), repeat, steps));
@@ -751,7 +767,7 @@ fn build(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<Plan> {
     let mut last_direction: Option<bool> = None; // true = charge
     for (phase, repeat, ws) in written {
         for r in 1..=repeat {
-            for ((kind, ends, result, name), line) in &ws {
+            for ((kind, ends, result, name), line, own_every) in &ws {
                 let dir = match kind {
                     StepKind::Charge { .. } => Some(true),
                     StepKind::Discharge { .. } => Some(false),
@@ -772,6 +788,7 @@ fn build(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<Plan> {
                     kind: kind.clone(),
                     ends: ends.clone(),
                     result: *result,
+                    sample_every_s: *own_every,
                     line: *line,
                 });
             }

@@ -51,21 +51,78 @@ pub fn summary(s: &Summary) -> String {
                     "NOT to the cutoff (lower bound)"
                 }
             );
+            if c.corrected_ah > 0.0 {
+                let _ = writeln!(
+                    o,
+                    "  At rated conditions: {:.3} Ah{}",
+                    c.corrected_ah,
+                    c.corrections
+                        .iter()
+                        .filter(|x| x.factor != 1.0)
+                        .map(|x| format!("; {} ×{:.4} ({})", x.kind, x.factor, x.method))
+                        .collect::<String>()
+                );
+            }
             let _ = writeln!(
                 o,
                 "  State of health:   {:.1} % of rated {:.3} Ah",
                 c.soh_pct, c.rated_ah
             );
+            if let Some(p) = c.ieee450_percent {
+                let _ = writeln!(o, "  IEEE 450 percent capacity: {p:.1} %");
+            }
         }
         None => {
             let _ = writeln!(o, "  Measured capacity: none (no completed capacity step)");
         }
     }
     if let Some(r) = &s.resistance {
+        let _ = writeln!(o, "  DC resistance:     {:.2} mOhm ({})", r.dcir_mohm, r.method);
+        if r.readings.len() > 1 {
+            for x in &r.readings {
+                let _ = writeln!(
+                    o,
+                    "    step {:>3}: {:.2} mOhm{}",
+                    x.step,
+                    x.dcir_mohm,
+                    x.soc_pct
+                        .map(|s| format!(" at {s:.0} % state of charge"))
+                        .unwrap_or_default()
+                );
+            }
+        }
+    }
+    if let Some(c) = &s.curves {
+        for i in &c.ica {
+            if !i.peaks.is_empty() {
+                let peaks: Vec<String> = i
+                    .peaks
+                    .iter()
+                    .map(|p| format!("{:.3} V/cell ({:.2} Ah/V)", p.position_per_cell, p.height))
+                    .collect();
+                let _ = writeln!(
+                    o,
+                    "  dQ/dV peaks ({} step {}): {}",
+                    i.direction,
+                    i.step,
+                    peaks.join(", ")
+                );
+            }
+        }
+    }
+    if let Some(r) = &s.recalibration {
         let _ = writeln!(
             o,
-            "  DC resistance:     {:.2} mOhm (two-level, IEC 61960 scheme)",
-            r.dcir_mohm
+            "  Recalibration:     new nominal {:.3} Ah ({})",
+            r.suggested_nominal_ah, r.conditions
+        );
+    }
+    if !s.gaps.is_empty() {
+        let _ = writeln!(
+            o,
+            "  Gaps:              {} flagged (longest {:.1} s)",
+            s.gaps.len(),
+            s.gaps.iter().map(|g| g.duration_s).fold(0.0, f64::max)
         );
     }
     if let Some(g) = &s.grade {

@@ -11,6 +11,7 @@
 //! JSON records are written to a temporary name and renamed, so a crash
 //! never leaves one half-written. No statistics here.
 
+pub mod import;
 pub mod read;
 pub mod write;
 

@@ -1,0 +1,329 @@
+//! `packbench analyze`: the summary of a log after the fact — one of our
+//! run folders (identical to its `summary.json`) or any bench's CSV.
+
+use crate::analysis::correct::CorrectionPolicy;
+use crate::analysis::{AnalysisOptions, CurveData};
+use crate::cli::{pack_from_args, PackArgs};
+use crate::fade::grade::Policy;
+use crate::offline::{self, ForeignLog};
+use crate::pack::{Chemistry, PackSpec};
+use crate::report;
+use crate::run::SummaryContext;
+use crate::runlog::import::{ColumnNames, CurrentSign, LogFormat, TimeUnit};
+use crate::runlog::{PackSummary, Summary, RUN_JSON, SAMPLES_CSV};
+use crate::units;
+use anyhow::{anyhow, bail, Context};
+use clap::Args;
+use std::io::Write;
+use std::path::{Path, PathBuf};
+
+#[derive(Debug, Args)]
+pub struct AnalyzeArgs {
+    /// A run folder, its samples.csv, or any bench's CSV log.
+    pub log: PathBuf,
+    /// Which column is which: time=NAME,voltage=NAME,current=NAME[,temperature=NAME][,step=NAME].
+    /// Without it, common header names are recognised.
+    #[arg(long)]
+    pub columns: Option<String>,
+    /// Sign of current in the log.
+    #[arg(long, default_value = "charge-positive")]
+    pub current_sign: String,
+    /// Unit of a numeric time column: s, ms, min or h.
+    #[arg(long, default_value = "s")]
+    pub time_unit: String,
+    /// Skip (and count) rows that do not parse instead of stopping.
+    #[arg(long)]
+    pub skip_bad_rows: bool,
+    #[command(flatten)]
+    pub pack_args: PackArgs,
+    /// Pack id for an imported log (default: the file's name).
+    #[arg(long)]
+    pub pack: Option<String>,
+    /// The day the test counts for, YYYY-MM-DD (imported logs; default today).
+    #[arg(long)]
+    pub test_date: Option<String>,
+    /// Grading policy (TOML); default: the built-in policy.
+    #[arg(long)]
+    pub policy: Option<PathBuf>,
+    /// Print the summary as JSON (the shape of summary.json).
+    #[arg(long)]
+    pub json: bool,
+    /// Write ica.csv, dva.csv and ocv.csv here.
+    #[arg(long)]
+    pub curves_dir: Option<PathBuf>,
+    /// Incremental-capacity voltage bin per cell, e.g. 5mV.
+    #[arg(long)]
+    pub ica_bin: Option<String>,
+    /// Gaussian smoothing of dQ/dV, standard deviation in bins (0: none).
+    #[arg(long)]
+    pub ica_smooth: Option<f64>,
+    /// Differential-voltage charge bin, % of rated capacity.
+    #[arg(long)]
+    pub dva_bin: Option<String>,
+    /// Gaussian smoothing of dV/dQ, standard deviation in bins.
+    #[arg(long)]
+    pub dva_smooth: Option<f64>,
+    /// Delays after a current edge for the pulse method, e.g. 0.1s,1s,10s,18s.
+    #[arg(long, value_delimiter = ',')]
+    pub pulse_delays: Option<Vec<String>>,
+    /// A gap is an interval longer than this many typical intervals.
+    #[arg(long)]
+    pub gap_factor: Option<f64>,
+    /// Peukert exponent for the rate correction (default per chemistry).
+    #[arg(long)]
+    pub peukert_k: Option<f64>,
+    /// Do not correct the capacity for temperature.
+    #[arg(long)]
+    pub no_temperature_correction: bool,
+    /// Do not correct the capacity for rate.
+    #[arg(long)]
+    pub no_rate_correction: bool,
+}
+
+fn options(a: &AnalyzeArgs) -> anyhow::Result<AnalysisOptions> {
+    let mut o = AnalysisOptions::default();
+    if let Some(b) = &a.ica_bin {
+        let v = match units::voltage(b).map_err(|e| anyhow!("--ica-bin: {e}"))? {
+            units::VoltageSpec::Pack(v) | units::VoltageSpec::PerCell(v) => v,
+        };
+        if !(v > 0.0 && v <= 0.1) {
+            bail!("--ica-bin {b}: expected 0.1 mV to 100 mV per cell");
+        }
+        o.ica_bin_v_per_cell = v;
+    }
+    for (name, given, slot) in [
+        ("--ica-smooth", a.ica_smooth, &mut o.ica_smooth_bins),
+        ("--dva-smooth", a.dva_smooth, &mut o.dva_smooth_bins),
+    ] {
+        if let Some(x) = given {
+            if !(x.is_finite() && (0.0..=50.0).contains(&x)) {
+                bail!("{name} {x}: expected 0 to 50 bins");
+            }
+            *slot = x;
+        }
+    }
+    if let Some(b) = &a.dva_bin {
+        let t = b.trim().trim_end_matches('%');
+        let x: f64 = t
+            .parse()
+            .map_err(|_| anyhow!("--dva-bin {b}: expected a percentage of rated capacity, e.g. 1%"))?;
+        if !(x > 0.0 && x <= 20.0) {
+            bail!("--dva-bin {b}: expected 0.01 % to 20 %");
+        }
+        o.dva_bin_fraction = x / 100.0;
+    }
+    if let Some(ds) = &a.pulse_delays {
+        let mut v = Vec::new();
+        for d in ds {
+            let s = units::duration(d).map_err(|e| anyhow!("--pulse-delays: {e}"))?;
+            if !(s > 0.0 && s <= 3600.0) {
+                bail!("--pulse-delays {d}: expected a delay from 1 ms to 1 h");
+            }
+            v.push(s);
+        }
+        v.sort_by(f64::total_cmp);
+        v.dedup();
+        o.pulse_delays_s = v;
+    }
+    if let Some(g) = a.gap_factor {
+        if !(g.is_finite() && g >= 1.5) {
+            bail!("--gap-factor {g}: expected 1.5 or more");
+        }
+        o.gap_factor = g;
+    }
+    if let Some(k) = a.peukert_k {
+        if !(k.is_finite() && (1.0..=2.0).contains(&k)) {
+            bail!("--peukert-k {k}: expected 1.0 to 2.0");
+        }
+    }
+    o.correction = CorrectionPolicy {
+        temperature: !a.no_temperature_correction,
+        rate: !a.no_rate_correction,
+        peukert_k: a.peukert_k,
+    };
+    Ok(o)
+}
+
+fn spec_from_summary(p: &PackSummary) -> anyhow::Result<PackSpec> {
+    let chemistry: Chemistry = p.chemistry.parse().map_err(|e: String| anyhow!(e))?;
+    Ok(PackSpec {
+        chemistry,
+        series: p.series,
+        rated_capacity_ah: p.rated_capacity_ah,
+        rated_energy_wh: p.rated_energy_wh,
+        rated_rate_c: p.rated_rate_c,
+        rated_resistance_mohm: p.rated_resistance_mohm,
+    })
+}
+
+/// Our run folder for a path (the folder, or its samples.csv), if it is one.
+fn our_run(path: &Path) -> Option<PathBuf> {
+    let dir = if path.is_dir() {
+        path.to_path_buf()
+    } else if path.file_name().and_then(|n| n.to_str()) == Some(SAMPLES_CSV) {
+        path.parent()?.to_path_buf()
+    } else {
+        return None;
+    };
+    dir.join(RUN_JSON).exists().then_some(dir)
+}
+
+fn write_curves(dir: &Path, d: &CurveData) -> anyhow::Result<()> {
+    std::fs::create_dir_all(dir).with_context(|| format!("cannot create {}", dir.display()))?;
+    let mut w = csv::Writer::from_path(dir.join("ica.csv"))?;
+    w.write_record(["step", "direction", "voltage_v", "dq_dv_ah_per_v", "dq_dv_smoothed_ah_per_v"])?;
+    for (s, dir_, x, y, ys) in &d.ica {
+        w.write_record([s.to_string(), dir_.clone(), x.to_string(), y.to_string(), ys.to_string()])?;
+    }
+    w.flush()?;
+    let mut w = csv::Writer::from_path(dir.join("dva.csv"))?;
+    w.write_record(["step", "direction", "charge_ah", "dv_dq_v_per_ah", "dv_dq_smoothed_v_per_ah"])?;
+    for (s, dir_, x, y, ys) in &d.dva {
+        w.write_record([s.to_string(), dir_.clone(), x.to_string(), y.to_string(), ys.to_string()])?;
+    }
+    w.flush()?;
+    let mut w = csv::Writer::from_path(dir.join("ocv.csv"))?;
+    w.write_record(["soc_pct", "charge_v", "discharge_v", "ocv_v", "ocv_per_cell_v"])?;
+    for p in &d.ocv {
+        w.write_record([
+            p.soc_pct.to_string(),
+            p.charge_v.to_string(),
+            p.discharge_v.to_string(),
+            p.ocv_v.to_string(),
+            p.ocv_per_cell_v.to_string(),
+        ])?;
+    }
+    w.flush()?;
+    Ok(())
+}
+
+/// Analyse a log and return its summary and curves.
+pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
+    let opts = options(a)?;
+    let policy = match &a.policy {
+        Some(p) => {
+            let text = std::fs::read_to_string(p)
+                .with_context(|| format!("cannot read {}", p.display()))?;
+            Policy::from_toml(p, &text)?
+        }
+        None => Policy::default_policy(),
+    };
+    if let Some(dir) = our_run(&a.log) {
+        let text = std::fs::read_to_string(dir.join(RUN_JSON))
+            .with_context(|| format!("cannot read {}", dir.join(RUN_JSON).display()))?;
+        let m: serde_json::Value = serde_json::from_str(&text)
+            .with_context(|| format!("{} is not a run record", dir.join(RUN_JSON).display()))?;
+        let field = |k: &str| m[k].as_str().map(str::to_string).ok_or_else(|| anyhow!("run.json has no {k}"));
+        let pack_summary: PackSummary = serde_json::from_value(m["pack"].clone())
+            .context("run.json has no pack spec")?;
+        let pack = spec_from_summary(&pack_summary)?;
+        let (pack_id, run_id) = (field("pack_id")?, field("run_id")?);
+        let title = m["procedure"]["title"].as_str().unwrap_or_default().to_string();
+        let test_date = crate::fade::history::parse_date(&field("test_date")?)
+            .ok_or_else(|| anyhow!("run.json: bad test_date"))?;
+        let ctx = SummaryContext {
+            pack: &pack,
+            pack_id: &pack_id,
+            run_id: &run_id,
+            title: &title,
+            test_date,
+            cycle_count: m["cycle_count"].as_f64(),
+            policy: &policy,
+        };
+        // The same path as the summary written at the end of the run.
+        return Ok(offline::summarize_run_with_curves(&dir, &ctx, None, opts)?);
+    }
+    let pack = pack_from_args(&a.pack_args)?.ok_or_else(|| {
+        anyhow!("a log from another bench needs the pack spec: --chemistry, --series and --rated, or --pack-spec FILE")
+    })?;
+    let format = LogFormat {
+        columns: match &a.columns {
+            Some(c) => c.parse::<ColumnNames>().map_err(|e| anyhow!(e))?,
+            None => ColumnNames::default(),
+        },
+        sign: a.current_sign.parse::<CurrentSign>().map_err(|e| anyhow!(e))?,
+        time_unit: a.time_unit.parse::<TimeUnit>().map_err(|e| anyhow!(e))?,
+        skip_bad_rows: a.skip_bad_rows,
+    };
+    let stem = a
+        .log
+        .file_stem()
+        .and_then(|s| s.to_str())
+        .unwrap_or("imported")
+        .to_string();
+    let pack_id = a.pack.clone().unwrap_or(stem);
+    let test_date = match &a.test_date {
+        Some(d) => crate::fade::history::parse_date(d)
+            .ok_or_else(|| anyhow!("--test-date {d}: expected YYYY-MM-DD"))?,
+        None => chrono::Utc::now().date_naive(),
+    };
+    let log = ForeignLog {
+        path: &a.log,
+        format,
+        pack: &pack,
+        pack_id: &pack_id,
+        test_date,
+        policy: &policy,
+    };
+    let (s, _, data) = offline::summarize_foreign(&log, opts)?;
+    Ok((s, data))
+}
+
+/// `packbench analyze`.
+pub fn cmd_analyze(a: AnalyzeArgs) -> anyhow::Result<i32> {
+    let (s, data) = analyze(&a)?;
+    if let Some(dir) = &a.curves_dir {
+        write_curves(dir, &data)?;
+    }
+    let mut out = std::io::stdout().lock();
+    if a.json {
+        serde_json::to_writer_pretty(&mut out, &s)?;
+        writeln!(out)?;
+    } else {
+        write!(out, "{}", report::text::summary(&s))?;
+        if let Some(dir) = &a.curves_dir {
+            writeln!(out, "  Curves: {}", dir.display())?;
+        }
+    }
+    Ok(0)
+}
+
+#[derive(Debug, Args)]
+pub struct PeukertArgs {
+    /// Two run folders of the same pack whose capacity steps ran at different rates.
+    pub runs: Vec<PathBuf>,
+}
+
+/// `packbench peukert RUN_A RUN_B`: k = ln(t2/t1) / ln(I1/I2) from the two
+/// capacity steps (standards fact sheet §5).
+pub fn cmd_peukert(a: PeukertArgs) -> anyhow::Result<i32> {
+    if a.runs.len() != 2 {
+        bail!("give exactly two run folders");
+    }
+    let mut pts = Vec::new();
+    for r in &a.runs {
+        let path = r.join(crate::runlog::SUMMARY_JSON);
+        let text = std::fs::read_to_string(&path)
+            .with_context(|| format!("cannot read {}", path.display()))?;
+        let s: Summary = serde_json::from_str(&text)
+            .with_context(|| format!("{} is not a run summary", path.display()))?;
+        let c = s
+            .capacity
+            .ok_or_else(|| anyhow!("{}: no capacity step", r.display()))?;
+        if !c.ended_on_cutoff {
+            bail!("{}: the capacity step did not end on its cutoff", r.display());
+        }
+        pts.push((c.mean_current_a, c.duration_s / 3600.0, s.pack_id));
+    }
+    if pts[0].2 != pts[1].2 {
+        bail!("the runs are of different packs ({} and {})", pts[0].2, pts[1].2);
+    }
+    let k = crate::analysis::correct::peukert_exponent(pts[0].0, pts[0].1, pts[1].0, pts[1].1)
+        .ok_or_else(|| anyhow!("the two runs ran at the same current: no exponent"))?;
+    println!(
+        "pack {}: {:.3} A for {:.3} h and {:.3} A for {:.3} h -> Peukert exponent k = {k:.4}",
+        pts[0].2, pts[0].0, pts[0].1, pts[1].0, pts[1].1
+    );
+    println!("use it with: packbench analyze RUN --peukert-k {k:.3}");
+    Ok(0)
+}

@@ -1,0 +1,348 @@
+//! Analysing a log after the fact: one of our run folders (steps from its
+//! events, the same code path as the summary written at the end of the run,
+//! so the figures are identical), or any bench's CSV (steps found from the
+//! current when the log has no step column). Streams the log once.
+
+use crate::analysis::pulse::is_jump;
+use crate::analysis::{AnalysisOptions, Analyzer, CurveData};
+use crate::engine::event::Event;
+use crate::fade::grade::{GradeInputs, Policy};
+use crate::pack::PackSpec;
+use crate::run::{reference_resistance, RunError, SummaryContext};
+use crate::runlog::import::{stream_log, LogFormat, ReadReport, Row};
+use crate::runlog::read::{read_events, step_infos};
+use crate::runlog::{PackSummary, Summary, EVENTS_JSONL, SAMPLES_CSV};
+use crate::sample::Sample;
+use std::path::Path;
+
+/// Finds steps in a log without a step column: a new step where the
+/// current changes class (rest, charge, discharge; with hysteresis) or
+/// jumps between two samples (a pulse level); a constant-voltage taper,
+/// whose current falls smoothly, stays one step.
+#[derive(Debug, Clone)]
+pub struct StepDetector {
+    rest_a: f64,
+    jump_a: f64,
+    class: i8,
+    prev_i: Option<f64>,
+    step: u32,
+}
+
+impl StepDetector {
+    /// Thresholds from the rated capacity: rest below C/100 (at least
+    /// 5 mA), a jump above C/20 or 10 % of the level (common practice).
+    pub fn new(rated_ah: f64) -> StepDetector {
+        StepDetector {
+            rest_a: (0.01 * rated_ah).max(0.005),
+            jump_a: (0.05 * rated_ah).max(0.01),
+            class: 2,
+            prev_i: None,
+            step: 0,
+        }
+    }
+
+    /// The step number of a sample with current `i` (pack convention).
+    pub fn step_of(&mut self, i: f64) -> u32 {
+        let class = match self.class {
+            // Hysteresis: leaving rest needs twice the rest threshold.
+            0 if i.abs() <= 2.0 * self.rest_a => 0,
+            _ if i.abs() <= self.rest_a => 0,
+            _ if i > 0.0 => 1,
+            _ => -1,
+        };
+        let jump = match self.prev_i {
+            Some(p) if class != 0 => {
+                (i - p).abs() > self.jump_a.max(0.1 * p.abs()) && is_jump(p, i, self.rest_a)
+            }
+            _ => false,
+        };
+        if class != self.class || jump {
+            self.step += 1;
+            self.class = class;
+        }
+        self.prev_i = Some(i);
+        self.step
+    }
+}
+
+/// How a summary's status and stop reason were found.
+pub struct Outcome {
+    pub status: String,
+    pub reason: Option<String>,
+}
+
+/// Build a summary from an analysis and its context.
+pub fn build_summary(
+    a: crate::analysis::Analysis,
+    ctx: &SummaryContext<'_>,
+    outcome: Outcome,
+    samples: usize,
+    duration_s: f64,
+    pack_dir: Option<&Path>,
+) -> Summary {
+    let gradeable = matches!(outcome.status.as_str(), "completed" | "imported");
+    let grade = gradeable.then(|| {
+        let own = a.resistance.as_ref().map(|r| r.dcir_mohm);
+        let reference = pack_dir
+            .and_then(|d| reference_resistance(d, ctx))
+            .or(ctx.pack.rated_resistance_mohm)
+            .or(own);
+        let growth = match (own, reference) {
+            (Some(r), Some(r0)) if r0 > 0.0 => Some((r / r0 - 1.0) * 100.0),
+            _ => None,
+        };
+        ctx.policy.grade(&GradeInputs {
+            chemistry: ctx.pack.chemistry,
+            soh_pct: a.capacity.as_ref().map(|c| c.soh_pct),
+            resistance_growth_pct: growth,
+            // The cycle of the capacity step (a full charge and the full
+            // discharge); without a capacity step, the last complete cycle.
+            coulombic_efficiency_pct: match &a.capacity {
+                Some(c) => {
+                    let cycle = a.steps.iter().find(|s| s.step == c.step).map(|s| s.cycle);
+                    a.cycles
+                        .iter()
+                        .find(|x| Some(x.cycle) == cycle)
+                        .and_then(|x| x.coulombic_efficiency_pct)
+                }
+                None => a
+                    .cycles
+                    .iter()
+                    .rev()
+                    .find_map(|c| c.coulombic_efficiency_pct),
+            },
+        })
+    });
+    Summary {
+        status: outcome.status,
+        stop_reason: outcome.reason,
+        pack_id: ctx.pack_id.to_string(),
+        run_id: ctx.run_id.to_string(),
+        procedure_title: ctx.title.to_string(),
+        pack: PackSummary::from(ctx.pack),
+        test_date: ctx.test_date.to_string(),
+        cycle_count: ctx.cycle_count,
+        capacity: a.capacity,
+        resistance: a.resistance,
+        grade,
+        steps: a.steps,
+        cycles: a.cycles,
+        warnings: a.warnings,
+        samples,
+        duration_s,
+        recalibration: a.recalibration,
+        curves: a.curves,
+        pulse_resistance: a.pulse,
+        gaps: a.gaps,
+        log: a.quality,
+    }
+}
+
+/// Feed a log's rows to the analyzer, counting samples and span.
+struct Feed {
+    n: usize,
+    first: Option<f64>,
+    last: f64,
+}
+
+impl Feed {
+    fn new() -> Feed {
+        Feed {
+            n: 0,
+            first: None,
+            last: 0.0,
+        }
+    }
+    fn note(&mut self, t: f64) {
+        self.n += 1;
+        if self.first.is_none() {
+            self.first = Some(t);
+        }
+        self.last = t;
+    }
+    fn duration(&self) -> f64 {
+        self.first.map(|f| self.last - f).unwrap_or(0.0)
+    }
+}
+
+/// Summarise one of our run folders from its log and events.
+pub fn summarize_run(
+    dir: &Path,
+    ctx: &SummaryContext<'_>,
+    outcome: Option<Outcome>,
+    opts: AnalysisOptions,
+) -> Result<Summary, RunError> {
+    summarize_run_with_curves(dir, ctx, outcome, opts).map(|x| x.0)
+}
+
+/// [`summarize_run`] and the curves for CSV export.
+pub fn summarize_run_with_curves(
+    dir: &Path,
+    ctx: &SummaryContext<'_>,
+    outcome: Option<Outcome>,
+    opts: AnalysisOptions,
+) -> Result<(Summary, CurveData), RunError> {
+    let events = read_events(&dir.join(EVENTS_JSONL))?;
+    let infos = step_infos(&events);
+    let mut an = Analyzer::new(ctx.pack, &infos, opts);
+    let mut feed = Feed::new();
+    let rep = stream_log(&dir.join(SAMPLES_CSV), &LogFormat::default(), |r: Row| {
+        feed.note(r.t_s);
+        an.push(&Sample {
+            t_s: r.t_s,
+            step: r.step.unwrap_or(0),
+            cycle: r.cycle.unwrap_or(0),
+            voltage_v: r.voltage_v,
+            current_a: r.current_a,
+            temperature_c: r.temperature_c,
+        });
+    })?;
+    let mut a = an.finish();
+    if rep.partial_last_line {
+        a.warnings
+            .push("the last line of samples.csv was incomplete and was left out".into());
+        a.quality.partial_last_line = true;
+    }
+    let outcome = outcome.unwrap_or_else(|| {
+        events
+            .iter()
+            .rev()
+            .find_map(|e| match e {
+                Event::RunEnd { status, reason, .. } => Some(Outcome {
+                    status: status.clone(),
+                    reason: reason.clone(),
+                }),
+                _ => None,
+            })
+            .unwrap_or(Outcome {
+                status: "interrupted".into(),
+                reason: Some("the run has no end record (killed or power cut)".into()),
+            })
+    });
+    let pack_dir = dir.parent().unwrap_or(dir);
+    let curves = std::mem::take(&mut a.curve_data);
+    Ok((
+        build_summary(a, ctx, outcome, feed.n, feed.duration(), Some(pack_dir)),
+        curves,
+    ))
+}
+
+/// What an imported log is and how to read it.
+pub struct ForeignLog<'a> {
+    pub path: &'a Path,
+    pub format: LogFormat,
+    pub pack: &'a PackSpec,
+    pub pack_id: &'a str,
+    pub test_date: chrono::NaiveDate,
+    pub policy: &'a Policy,
+}
+
+/// Analyse any bench's CSV log.
+pub fn summarize_foreign(
+    log: &ForeignLog<'_>,
+    mut opts: AnalysisOptions,
+) -> Result<(Summary, ReadReport, CurveData), RunError> {
+    opts.imported = true;
+    opts.detect_capacity = true;
+    let mut an = Analyzer::new(log.pack, &[], opts);
+    let mut det = StepDetector::new(log.pack.rated_capacity_ah);
+    let mut feed = Feed::new();
+    let rep = stream_log(log.path, &log.format, |r: Row| {
+        let step = match r.step {
+            Some(s) => s,
+            None => det.step_of(r.current_a),
+        };
+        feed.note(r.t_s);
+        an.push(&Sample {
+            t_s: r.t_s,
+            step,
+            cycle: 0,
+            voltage_v: r.voltage_v,
+            current_a: r.current_a,
+            temperature_c: r.temperature_c,
+        });
+    })?;
+    let mut a = an.finish();
+    if rep.partial_last_line {
+        a.warnings
+            .push("the last line of the log was incomplete and was left out".into());
+        a.quality.partial_last_line = true;
+    }
+    if rep.bad_rows_skipped > 0 {
+        a.warnings.push(format!(
+            "{} row(s) that did not parse were skipped (first: {})",
+            rep.bad_rows_skipped,
+            rep.bad_rows
+                .first()
+                .map(|(l, m)| format!("line {l}: {m}"))
+                .unwrap_or_default()
+        ));
+    }
+    let name = log
+        .path
+        .file_name()
+        .and_then(|n| n.to_str())
+        .unwrap_or("log")
+        .to_string();
+    let title = format!("imported log {name}");
+    let ctx = SummaryContext {
+        pack: log.pack,
+        pack_id: log.pack_id,
+        run_id: &name,
+        title: &title,
+        test_date: log.test_date,
+        cycle_count: None,
+        policy: log.policy,
+    };
+    let curves = std::mem::take(&mut a.curve_data);
+    let s = build_summary(
+        a,
+        &ctx,
+        Outcome {
+            status: "imported".into(),
+            reason: None,
+        },
+        feed.n,
+        feed.duration(),
+        None,
+    );
+    Ok((s, rep, curves))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn steps_are_found_from_the_current() {
+        let mut d = StepDetector::new(10.0);
+        let mut steps = Vec::new();
+        // rest, CC charge 5 A tapering smoothly to 0.3 A, rest, 2 A
+        // discharge, a 10 A pulse, back to 2 A, rest.
+        for _ in 0..5 {
+            steps.push(d.step_of(0.001));
+        }
+        for k in 0..50 {
+            let i = if k < 20 { 5.0 } else { 5.0 * (0.94f64).powi(k - 20) };
+            steps.push(d.step_of(i.max(0.3)));
+        }
+        for _ in 0..5 {
+            steps.push(d.step_of(-0.002));
+        }
+        for _ in 0..10 {
+            steps.push(d.step_of(-2.0));
+        }
+        for _ in 0..3 {
+            steps.push(d.step_of(-10.0));
+        }
+        for _ in 0..10 {
+            steps.push(d.step_of(-2.0));
+        }
+        steps.push(d.step_of(0.0));
+        let mut distinct = steps.clone();
+        distinct.dedup();
+        assert_eq!(distinct, vec![1, 2, 3, 4, 5, 6, 7]);
+        assert_eq!(steps[5], 2);
+        assert_eq!(steps[54], 2, "the taper stays in the charge step");
+    }
+}
