@@ -174,6 +174,7 @@ pub struct Analyzer<'a> {
     prev: Option<Sample>,
     intervals: [f64; INTERVAL_WINDOW],
     n_intervals: usize,
+    typical: Option<f64>,
     quality: LogQuality,
     gaps: Vec<Gap>,
     pulse: PulseTracker,
@@ -210,6 +211,7 @@ impl<'a> Analyzer<'a> {
             prev: None,
             intervals: [0.0; INTERVAL_WINDOW],
             n_intervals: 0,
+            typical: None,
             quality: LogQuality::default(),
             gaps: Vec::new(),
             pulse,
@@ -247,15 +249,20 @@ impl<'a> Analyzer<'a> {
         }
     }
 
-    fn typical_interval(&self) -> Option<f64> {
+    /// The median of the step's recent sampling intervals, recomputed
+    /// every few intervals (a sort per sample would dominate the cost).
+    fn typical_interval(&mut self) -> Option<f64> {
         if self.n_intervals < 4 {
             return None;
         }
-        let n = self.n_intervals.min(INTERVAL_WINDOW);
-        let mut w = self.intervals;
-        let w = &mut w[..n];
-        w.sort_by(f64::total_cmp);
-        Some(w[n / 2])
+        if self.n_intervals < 16 || self.n_intervals % 8 == 0 || self.typical.is_none() {
+            let n = self.n_intervals.min(INTERVAL_WINDOW);
+            let mut w = self.intervals;
+            let w = &mut w[..n];
+            w.sort_unstable_by(f64::total_cmp);
+            self.typical = Some(w[n / 2]);
+        }
+        self.typical
     }
 
     /// Add the next sample of the log.
@@ -274,6 +281,7 @@ impl<'a> Analyzer<'a> {
             if p.step != s.step {
                 // A new step: its own sampling rate is learnt afresh.
                 self.n_intervals = 0;
+                self.typical = None;
             } else if dt == 0.0 {
                 self.quality.repeated_timestamps += 1;
             } else {
@@ -407,18 +415,6 @@ impl<'a> Analyzer<'a> {
             (Some(f), Some(l)) if l.t_s > f.t_s => acc.g.ah * 3600.0 / (l.t_s - f.t_s),
             _ => 0.0,
         };
-        let kept = Kept {
-            step,
-            grid: acc.grid.clone(),
-            mean_current_a: mean_current,
-        };
-        let mut keep_grid = false;
-        if kind == "charge" && acc.g.ah_in > 0.0 {
-            if let Some(old) = self.last_charge.replace(kept.clone()) {
-                self.spare_grid = Some(old.grid);
-            }
-            keep_grid = true;
-        }
         if kind == "discharge"
             && info.as_ref().and_then(|i| i.end_kind.as_deref()) == Some("voltage_below")
         {
@@ -426,22 +422,35 @@ impl<'a> Analyzer<'a> {
                 self.full_to_empty_ah = Some(q);
             }
         }
-        if kind == "discharge" {
-            let tagged = info.as_ref().and_then(|i| i.result.clone()).as_deref() == Some("capacity");
-            let pick = if self.opts.detect_capacity {
-                acc.g.ah_out >= self.best_discharge_ah && acc.g.ah_out > 0.0
+        let tagged = info.as_ref().and_then(|i| i.result.as_deref()) == Some("capacity");
+        let pick = kind == "discharge"
+            && if self.opts.detect_capacity {
+                acc.g.ah_out > self.best_discharge_ah
             } else {
                 tagged
             };
-            if pick {
-                self.best_discharge_ah = acc.g.ah_out;
-                let t0 = acc.first.and_then(|f| f.temperature_c);
-                self.capacity_pick = Some((kept, self.last_charge.clone(), t0));
-                keep_grid = true;
+        // The step's charge grid is moved, not copied: into the last
+        // charge, into the capacity pick, or back to be reused.
+        let mut acc = acc;
+        let grid = std::mem::replace(&mut acc.grid, ChargeGrid::new(1.0, 0));
+        let kept = Kept {
+            step,
+            grid,
+            mean_current_a: mean_current,
+        };
+        if kind == "charge" && acc.g.ah_in > 0.0 {
+            if let Some(old) = self.last_charge.replace(kept) {
+                self.spare_grid = Some(old.grid);
             }
-        }
-        if !keep_grid {
-            self.spare_grid = Some(acc.grid);
+        } else if pick {
+            self.best_discharge_ah = acc.g.ah_out;
+            let t0 = acc.first.and_then(|f| f.temperature_c);
+            let before = self.last_charge.clone();
+            if let Some((old, _, _)) = self.capacity_pick.replace((kept, before, t0)) {
+                self.spare_grid = Some(old.grid);
+            }
+        } else {
+            self.spare_grid = Some(kept.grid);
         }
         match self.done.get_mut(&step) {
             Some(d) => {

@@ -1,0 +1,138 @@
+//! Big-log benchmark: a 10-million-row log (about 16 weeks of 1 Hz samples,
+//! many steps) analysed by `packbench analyze`, side by side with a pandas
+//! + numpy script computing the same per-step Ah and Wh
+//! (scripts/analyze_reference.py). Prints both wall times, the ratio, and
+//! both peak memory figures (maximum resident set size of each process),
+//! and checks the per-step figures agree.
+//!
+//! Targets: packbench at least 3x faster, peak memory at most 64 MB.
+//! Run: `cargo bench --bench analyze_big` (needs python3 with pandas and
+//! numpy for the comparison; the file is written under target/).
+
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::time::Instant;
+
+const ROWS: u64 = 10_000_000;
+const BIN: &str = env!("CARGO_BIN_EXE_packbench");
+
+/// Write the log: repeated cycles of a CC-CV-like charge, a rest, a
+/// discharge with a pulse in it, and a rest, on a 10S 50 Ah pack.
+fn generate(path: &Path) -> std::io::Result<u64> {
+    let f = std::fs::File::create(path)?;
+    let mut w = std::io::BufWriter::with_capacity(1 << 20, f);
+    writeln!(w, "t_s,step,cycle,voltage_v,current_a,temperature_c")?;
+    let mut step: u64 = 0;
+    let mut t: u64 = 0;
+    let mut cycle = 0u64;
+    let mut rng: u64 = 1;
+    let mut noise = || {
+        rng = rng.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+        ((rng >> 40) as f64 / (1u64 << 24) as f64 - 0.5) * 0.004
+    };
+    let phases: [(&str, u64); 5] = [("charge", 5400), ("rest", 1200), ("discharge", 2400), ("pulse", 30), ("discharge2", 2400)];
+    'outer: loop {
+        cycle += 1;
+        for (kind, len) in phases.iter().chain(std::iter::once(&("rest", 1200))) {
+            step += 1;
+            for k in 0..*len {
+                if t >= ROWS {
+                    break 'outer;
+                }
+                let x = k as f64 / *len as f64;
+                let (v, i) = match *kind {
+                    "charge" => (36.0 + 5.5 * x, if x < 0.6 { 25.0 } else { 25.0 * (1.0 - x) / 0.4 + 0.5 }),
+                    "rest" => (38.0 - 0.2 * x, 0.0),
+                    "discharge" => (40.0 - 2.0 * x, -25.0),
+                    "pulse" => (37.0, if k < 10 { -10.0 } else { -50.0 }),
+                    _ => (38.0 - 3.5 * x, -25.0),
+                };
+                writeln!(
+                    w,
+                    "{t}.000,{step},{cycle},{:.4},{:.4},25.0",
+                    v + noise(),
+                    i + noise()
+                )?;
+                t += 1;
+            }
+        }
+    }
+    w.flush()?;
+    Ok(step)
+}
+
+/// Run a command, return (wall seconds, peak RSS in MB, stdout).
+fn measure(cmd: &mut Command) -> std::io::Result<(f64, f64, String, bool)> {
+    let start = Instant::now();
+    let child = cmd.stdout(Stdio::piped()).stderr(Stdio::piped()).spawn()?;
+    let pid = child.id() as libc::pid_t;
+    let mut out = String::new();
+    let mut stdout = child.stdout.expect("stdout");
+    let reader = std::thread::spawn(move || {
+        let mut s = String::new();
+        std::io::Read::read_to_string(&mut stdout, &mut s).map(|_| s)
+    });
+    let mut status = 0;
+    let mut usage: libc::rusage = unsafe { std::mem::zeroed() };
+    // wait4 gives this child's own resource usage, peak RSS included.
+    let r = unsafe { libc::wait4(pid, &mut status, 0, &mut usage) };
+    let secs = start.elapsed().as_secs_f64();
+    if r < 0 {
+        return Err(std::io::Error::last_os_error());
+    }
+    if let Ok(Ok(s)) = reader.join() {
+        out = s;
+    }
+    let ok = libc::WIFEXITED(status) && libc::WEXITSTATUS(status) == 0;
+    Ok((secs, usage.ru_maxrss as f64 / 1024.0, out, ok))
+}
+
+fn main() -> std::io::Result<()> {
+    let dir = PathBuf::from(env!("CARGO_TARGET_TMPDIR"));
+    let path = dir.join("big-log.csv");
+    let t = Instant::now();
+    let steps = generate(&path)?;
+    let size = std::fs::metadata(&path)?.len() as f64 / 1e6;
+    println!(
+        "generated {ROWS} rows, {steps} steps, {size:.0} MB in {:.1} s: {}",
+        t.elapsed().as_secs_f64(),
+        path.display()
+    );
+    let (pb_s, pb_mb, pb_out, ok) = measure(
+        Command::new(BIN)
+            .arg("analyze")
+            .arg(&path)
+            .args(["--chemistry", "li-ion", "--series", "10", "--rated", "50Ah", "--json"]),
+    )?;
+    if !ok {
+        println!("packbench analyze failed");
+        return Ok(());
+    }
+    println!("packbench analyze : {pb_s:7.2} s, peak memory {pb_mb:6.1} MB (target <= 64 MB)");
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("scripts/analyze_reference.py");
+    match measure(Command::new("python3").arg(&script).arg(&path)) {
+        Ok((py_s, py_mb, py_out, true)) => {
+            println!("pandas + numpy    : {py_s:7.2} s, peak memory {py_mb:6.1} MB");
+            println!("speed ratio       : {:.1}x (target >= 3x)", py_s / pb_s);
+            // The per-step figures agree.
+            let pb: serde_json::Value = serde_json::from_str(&pb_out).unwrap_or_default();
+            let py: serde_json::Value = serde_json::from_str(&py_out).unwrap_or_default();
+            let mut worst: f64 = 0.0;
+            let mut n = 0;
+            if let (Some(a), Some(b)) = (pb["steps"].as_array(), py["steps"].as_array()) {
+                for (x, y) in a.iter().zip(b) {
+                    let ah = x["charge_ah"].as_f64().unwrap_or(f64::NAN);
+                    let wh = x["energy_wh"].as_f64().unwrap_or(f64::NAN);
+                    let (yah, ywh) = (y[1].as_f64().unwrap_or(0.0), y[2].as_f64().unwrap_or(0.0));
+                    worst = worst.max((ah - yah).abs()).max((wh - ywh).abs() / 40.0);
+                    n += 1;
+                }
+            }
+            println!("per-step Ah and Wh: {n} steps compared, largest difference {worst:.2e} Ah");
+        }
+        Ok((_, _, _, false)) => println!("pandas + numpy script failed (is pandas installed? pip install pandas numpy)"),
+        Err(e) => println!("python3 not available: {e}"),
+    }
+    Ok(())
+}
