@@ -1,6 +1,6 @@
 //! Big-log benchmark: a 10-million-row log (about 16 weeks of 1 Hz samples,
-//! many steps) analysed by `packbench analyze`, side by side with a pandas
-//! + numpy script computing the same per-step Ah and Wh
+//! many steps) analysed by `packbench analyze`, side by side with a script
+//! using pandas and numpy to compute the same per-step Ah and Wh
 //! (scripts/analyze_reference.py). Prints both wall times, the ratio, and
 //! both peak memory figures (maximum resident set size of each process),
 //! and checks the per-step figures agree.
@@ -28,10 +28,18 @@ fn generate(path: &Path) -> std::io::Result<u64> {
     let mut cycle = 0u64;
     let mut rng: u64 = 1;
     let mut noise = || {
-        rng = rng.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+        rng = rng
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
         ((rng >> 40) as f64 / (1u64 << 24) as f64 - 0.5) * 0.004
     };
-    let phases: [(&str, u64); 5] = [("charge", 5400), ("rest", 1200), ("discharge", 2400), ("pulse", 30), ("discharge2", 2400)];
+    let phases: [(&str, u64); 5] = [
+        ("charge", 5400),
+        ("rest", 1200),
+        ("discharge", 2400),
+        ("pulse", 30),
+        ("discharge2", 2400),
+    ];
     'outer: loop {
         cycle += 1;
         for (kind, len) in phases.iter().chain(std::iter::once(&("rest", 1200))) {
@@ -42,7 +50,14 @@ fn generate(path: &Path) -> std::io::Result<u64> {
                 }
                 let x = k as f64 / *len as f64;
                 let (v, i) = match *kind {
-                    "charge" => (36.0 + 5.5 * x, if x < 0.6 { 25.0 } else { 25.0 * (1.0 - x) / 0.4 + 0.5 }),
+                    "charge" => (
+                        36.0 + 5.5 * x,
+                        if x < 0.6 {
+                            25.0
+                        } else {
+                            25.0 * (1.0 - x) / 0.4 + 0.5
+                        },
+                    ),
                     "rest" => (38.0 - 0.2 * x, 0.0),
                     "discharge" => (40.0 - 2.0 * x, -25.0),
                     "pulse" => (37.0, if k < 10 { -10.0 } else { -50.0 }),
@@ -99,12 +114,15 @@ fn main() -> std::io::Result<()> {
         t.elapsed().as_secs_f64(),
         path.display()
     );
-    let (pb_s, pb_mb, pb_out, ok) = measure(
-        Command::new(BIN)
-            .arg("analyze")
-            .arg(&path)
-            .args(["--chemistry", "li-ion", "--series", "10", "--rated", "50Ah", "--json"]),
-    )?;
+    let (pb_s, pb_mb, pb_out, ok) = measure(Command::new(BIN).arg("analyze").arg(&path).args([
+        "--chemistry",
+        "li-ion",
+        "--series",
+        "10",
+        "--rated",
+        "50Ah",
+        "--json",
+    ]))?;
     if !ok {
         println!("packbench analyze failed");
         return Ok(());
@@ -131,7 +149,9 @@ fn main() -> std::io::Result<()> {
             }
             println!("per-step Ah and Wh: {n} steps compared, largest difference {worst:.2e} Ah");
         }
-        Ok((_, _, _, false)) => println!("pandas + numpy script failed (is pandas installed? pip install pandas numpy)"),
+        Ok((_, _, _, false)) => {
+            println!("pandas + numpy script failed (is pandas installed? pip install pandas numpy)")
+        }
         Err(e) => println!("python3 not available: {e}"),
     }
     Ok(())

@@ -104,9 +104,9 @@ fn options(a: &AnalyzeArgs) -> anyhow::Result<AnalysisOptions> {
     }
     if let Some(b) = &a.dva_bin {
         let t = b.trim().trim_end_matches('%');
-        let x: f64 = t
-            .parse()
-            .map_err(|_| anyhow!("--dva-bin {b}: expected a percentage of rated capacity, e.g. 1%"))?;
+        let x: f64 = t.parse().map_err(|_| {
+            anyhow!("--dva-bin {b}: expected a percentage of rated capacity, e.g. 1%")
+        })?;
         if !(x > 0.0 && x <= 20.0) {
             bail!("--dva-bin {b}: expected 0.01 % to 20 %");
         }
@@ -171,19 +171,49 @@ fn our_run(path: &Path) -> Option<PathBuf> {
 fn write_curves(dir: &Path, d: &CurveData) -> anyhow::Result<()> {
     std::fs::create_dir_all(dir).with_context(|| format!("cannot create {}", dir.display()))?;
     let mut w = csv::Writer::from_path(dir.join("ica.csv"))?;
-    w.write_record(["step", "direction", "voltage_v", "dq_dv_ah_per_v", "dq_dv_smoothed_ah_per_v"])?;
+    w.write_record([
+        "step",
+        "direction",
+        "voltage_v",
+        "dq_dv_ah_per_v",
+        "dq_dv_smoothed_ah_per_v",
+    ])?;
     for (s, dir_, x, y, ys) in &d.ica {
-        w.write_record([s.to_string(), dir_.clone(), x.to_string(), y.to_string(), ys.to_string()])?;
+        w.write_record([
+            s.to_string(),
+            dir_.clone(),
+            x.to_string(),
+            y.to_string(),
+            ys.to_string(),
+        ])?;
     }
     w.flush()?;
     let mut w = csv::Writer::from_path(dir.join("dva.csv"))?;
-    w.write_record(["step", "direction", "charge_ah", "dv_dq_v_per_ah", "dv_dq_smoothed_v_per_ah"])?;
+    w.write_record([
+        "step",
+        "direction",
+        "charge_ah",
+        "dv_dq_v_per_ah",
+        "dv_dq_smoothed_v_per_ah",
+    ])?;
     for (s, dir_, x, y, ys) in &d.dva {
-        w.write_record([s.to_string(), dir_.clone(), x.to_string(), y.to_string(), ys.to_string()])?;
+        w.write_record([
+            s.to_string(),
+            dir_.clone(),
+            x.to_string(),
+            y.to_string(),
+            ys.to_string(),
+        ])?;
     }
     w.flush()?;
     let mut w = csv::Writer::from_path(dir.join("ocv.csv"))?;
-    w.write_record(["soc_pct", "charge_v", "discharge_v", "ocv_v", "ocv_per_cell_v"])?;
+    w.write_record([
+        "soc_pct",
+        "charge_v",
+        "discharge_v",
+        "ocv_v",
+        "ocv_per_cell_v",
+    ])?;
     for p in &d.ocv {
         w.write_record([
             p.soc_pct.to_string(),
@@ -213,12 +243,19 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
             .with_context(|| format!("cannot read {}", dir.join(RUN_JSON).display()))?;
         let m: serde_json::Value = serde_json::from_str(&text)
             .with_context(|| format!("{} is not a run record", dir.join(RUN_JSON).display()))?;
-        let field = |k: &str| m[k].as_str().map(str::to_string).ok_or_else(|| anyhow!("run.json has no {k}"));
-        let pack_summary: PackSummary = serde_json::from_value(m["pack"].clone())
-            .context("run.json has no pack spec")?;
+        let field = |k: &str| {
+            m[k].as_str()
+                .map(str::to_string)
+                .ok_or_else(|| anyhow!("run.json has no {k}"))
+        };
+        let pack_summary: PackSummary =
+            serde_json::from_value(m["pack"].clone()).context("run.json has no pack spec")?;
         let pack = spec_from_summary(&pack_summary)?;
         let (pack_id, run_id) = (field("pack_id")?, field("run_id")?);
-        let title = m["procedure"]["title"].as_str().unwrap_or_default().to_string();
+        let title = m["procedure"]["title"]
+            .as_str()
+            .unwrap_or_default()
+            .to_string();
         let test_date = crate::fade::history::parse_date(&field("test_date")?)
             .ok_or_else(|| anyhow!("run.json: bad test_date"))?;
         let ctx = SummaryContext {
@@ -241,7 +278,10 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
             Some(c) => c.parse::<ColumnNames>().map_err(|e| anyhow!(e))?,
             None => ColumnNames::default(),
         },
-        sign: a.current_sign.parse::<CurrentSign>().map_err(|e| anyhow!(e))?,
+        sign: a
+            .current_sign
+            .parse::<CurrentSign>()
+            .map_err(|e| anyhow!(e))?,
         time_unit: a.time_unit.parse::<TimeUnit>().map_err(|e| anyhow!(e))?,
         skip_bad_rows: a.skip_bad_rows,
     };
@@ -311,12 +351,19 @@ pub fn cmd_peukert(a: PeukertArgs) -> anyhow::Result<i32> {
             .capacity
             .ok_or_else(|| anyhow!("{}: no capacity step", r.display()))?;
         if !c.ended_on_cutoff {
-            bail!("{}: the capacity step did not end on its cutoff", r.display());
+            bail!(
+                "{}: the capacity step did not end on its cutoff",
+                r.display()
+            );
         }
         pts.push((c.mean_current_a, c.duration_s / 3600.0, s.pack_id));
     }
     if pts[0].2 != pts[1].2 {
-        bail!("the runs are of different packs ({} and {})", pts[0].2, pts[1].2);
+        bail!(
+            "the runs are of different packs ({} and {})",
+            pts[0].2,
+            pts[1].2
+        );
     }
     let k = crate::analysis::correct::peukert_exponent(pts[0].0, pts[0].1, pts[1].0, pts[1].1)
         .ok_or_else(|| anyhow!("the two runs ran at the same current: no exponent"))?;

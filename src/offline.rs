@@ -323,7 +323,11 @@ mod tests {
             steps.push(d.step_of(0.001));
         }
         for k in 0..50 {
-            let i = if k < 20 { 5.0 } else { 5.0 * (0.94f64).powi(k - 20) };
+            let i = if k < 20 {
+                5.0
+            } else {
+                5.0 * (0.94f64).powi(k - 20)
+            };
             steps.push(d.step_of(i.max(0.3)));
         }
         for _ in 0..5 {

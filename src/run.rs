@@ -829,12 +829,8 @@ pub fn summarize_run_dir(
         status: o.status.name().to_string(),
         reason: o.reason.clone(),
     });
-    let summary = crate::offline::summarize_run(
-        dir,
-        ctx,
-        outcome,
-        analysis::AnalysisOptions::default(),
-    )?;
+    let summary =
+        crate::offline::summarize_run(dir, ctx, outcome, analysis::AnalysisOptions::default())?;
     let log = read::read_samples(&dir.join(crate::runlog::SAMPLES_CSV))?;
     Ok((summary, log))
 }

@@ -61,10 +61,9 @@ fn analyze_on_our_log_gives_exactly_its_summary() {
         "procedures/dcir-soc-sweep-li-ion.toml",
     ] {
         let run_dir = sim_run(procedure, dir.path());
-        let on_disk: serde_json::Value = serde_json::from_str(
-            &std::fs::read_to_string(run_dir.join("summary.json")).unwrap(),
-        )
-        .unwrap();
+        let on_disk: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(run_dir.join("summary.json")).unwrap())
+                .unwrap();
         // The folder and its samples.csv alike.
         let a = analyze_json(&[run_dir.to_str().unwrap()]);
         assert_eq!(a, on_disk, "{procedure}: analyze differs from summary.json");
@@ -100,10 +99,19 @@ fn resistance_is_reported_at_each_state_of_charge() {
         .iter()
         .find(|p| p.step == r.readings[1].step && p.current_after_a < -10.0)
         .unwrap();
-    let at = |d: f64| edge.values.iter().find(|v| v.delay_s == d).map(|v| v.resistance_mohm);
+    let at = |d: f64| {
+        edge.values
+            .iter()
+            .find(|v| v.delay_s == d)
+            .map(|v| v.resistance_mohm)
+    };
     assert!(at(0.1).is_some());
     let one = at(1.0).unwrap();
-    assert!((one - r.readings[1].dcir_mohm).abs() < 1e-9, "{one} vs {}", r.readings[1].dcir_mohm);
+    assert!(
+        (one - r.readings[1].dcir_mohm).abs() < 1e-9,
+        "{one} vs {}",
+        r.readings[1].dcir_mohm
+    );
 }
 
 /// A log produced by a published battery model from a general-purpose
@@ -132,10 +140,14 @@ fn a_pybamm_log_matches_the_library_within_half_a_percent() {
     ]);
     let rel = |a: f64, b: f64| (a - b).abs() / b.abs();
     let cap = s["capacity"]["measured_ah"].as_f64().unwrap();
-    let want = expected["capacity_step_discharge_capacity_ah"].as_f64().unwrap();
+    let want = expected["capacity_step_discharge_capacity_ah"]
+        .as_f64()
+        .unwrap();
     assert!(rel(cap, want) < 0.005, "capacity {cap} vs PyBaMM {want}");
     let wh = s["capacity"]["measured_wh"].as_f64().unwrap();
-    let want = expected["capacity_step_discharge_energy_wh"].as_f64().unwrap();
+    let want = expected["capacity_step_discharge_energy_wh"]
+        .as_f64()
+        .unwrap();
     assert!(rel(wh, want) < 0.005, "energy {wh} vs PyBaMM {want}");
     // PyBaMM's "Local ECM resistance" is (OCV − V)/I with the open-circuit
     // voltage of the present state of charge; the pulse method takes the
@@ -149,7 +161,10 @@ fn a_pybamm_log_matches_the_library_within_half_a_percent() {
         .iter()
         .find(|p| (p["t_edge_s"].as_f64().unwrap() - edge_t).abs() < 0.01)
         .expect("the pulse edge");
-    for (delay, key) in [(0.1, "resistance_ohm_at_0_1_s"), (1.0, "resistance_ohm_at_1_s")] {
+    for (delay, key) in [
+        (0.1, "resistance_ohm_at_0_1_s"),
+        (1.0, "resistance_ohm_at_1_s"),
+    ] {
         let got = pulse["values"]
             .as_array()
             .unwrap()
@@ -159,10 +174,16 @@ fn a_pybamm_log_matches_the_library_within_half_a_percent() {
             .as_f64()
             .unwrap();
         let want = expected[key].as_f64().unwrap() * 1000.0;
-        assert!(rel(got, want) < 0.005, "{delay} s: {got} mOhm vs PyBaMM {want}");
+        assert!(
+            rel(got, want) < 0.005,
+            "{delay} s: {got} mOhm vs PyBaMM {want}"
+        );
     }
     // The pack figure is the pulse method at 1 s, at about half charge.
-    assert!(s["resistance"]["method"].as_str().unwrap().contains("pulse method"));
+    assert!(s["resistance"]["method"]
+        .as_str()
+        .unwrap()
+        .contains("pulse method"));
     assert_eq!(s["status"], "imported");
 }
 
@@ -197,7 +218,11 @@ fn smoothing_and_peaks_match_scipy() {
         .collect();
     assert_eq!(idx, want);
     for (p, w) in peaks.iter().zip(f("prominences")) {
-        assert!((p.prominence - w).abs() < 1e-9, "{} vs scipy {w}", p.prominence);
+        assert!(
+            (p.prominence - w).abs() < 1e-9,
+            "{} vs scipy {w}",
+            p.prominence
+        );
     }
 }
 
@@ -275,7 +300,9 @@ fn irregular_sampling_changes_nothing_for_a_linear_log() {
     rows.extend(clean_rows().into_iter().filter(|r| r.0 < 720.0));
     while t < 4320.0 {
         rows.push((t, 40.0 - 4.0 * (t - 720.0) / 3600.0, -5.0));
-        state = state.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+        state = state
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
         t += 0.3 + (state >> 33) as f64 / (1u64 << 31) as f64 * 1.4;
     }
     rows.push((4320.0, 36.0, -5.0));
@@ -306,7 +333,10 @@ fn a_60_s_gap_is_reported_and_integrated_across() {
     let across = gaps[0]["charge_across_ah"].as_f64().unwrap();
     assert!((across + 5.0 * 60.0 / 3600.0).abs() < 1e-9);
     let warnings = s["warnings"].to_string();
-    assert!(warnings.contains("gap") && warnings.contains("trapezoid"), "{warnings}");
+    assert!(
+        warnings.contains("gap") && warnings.contains("trapezoid"),
+        "{warnings}"
+    );
 }
 
 #[test]
@@ -343,7 +373,9 @@ fn noise_and_resolution_steps_move_figures_only_by_their_size() {
     let dir = tempfile::tempdir().unwrap();
     let mut state: u64 = 11;
     let mut noise = || {
-        state = state.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+        state = state
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
         ((state >> 33) as f64 / (1u64 << 31) as f64 - 0.5) * 0.02
     };
     let rows: Vec<_> = clean_rows()
@@ -375,15 +407,29 @@ fn out_of_order_and_bad_rows_never_pass_silently() {
     let p = dir.path().join("bad.csv");
     std::fs::write(&p, &text).unwrap();
     let out = Command::new(BIN)
-        .args(["analyze", p.to_str().unwrap(), "--chemistry", "li-ion", "--series", "10", "--rated", "5Ah"])
+        .args([
+            "analyze",
+            p.to_str().unwrap(),
+            "--chemistry",
+            "li-ion",
+            "--series",
+            "10",
+            "--rated",
+            "5Ah",
+        ])
         .output()
         .unwrap();
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(!out.status.success());
-    assert!(err.contains("bad.csv:2502:3: 'n/a' is not a current"), "{err}");
+    assert!(
+        err.contains("bad.csv:2502:3: 'n/a' is not a current"),
+        "{err}"
+    );
     // ... or, asked for, a counted skip.
     let s = analyze_log(&p, &["--skip-bad-rows"]);
-    assert!(s["warnings"].to_string().contains("1 row(s) that did not parse were skipped"));
+    assert!(s["warnings"]
+        .to_string()
+        .contains("1 row(s) that did not parse were skipped"));
 }
 
 #[test]
@@ -392,11 +438,23 @@ fn curves_are_exported_as_csv() {
     let run_dir = sim_run("procedures/capacity-check.toml", dir.path());
     let curves = dir.path().join("curves");
     let out = Command::new(BIN)
-        .args(["analyze", run_dir.to_str().unwrap(), "--ica-bin", "2mV", "--ica-smooth", "3", "--curves-dir"])
+        .args([
+            "analyze",
+            run_dir.to_str().unwrap(),
+            "--ica-bin",
+            "2mV",
+            "--ica-smooth",
+            "3",
+            "--curves-dir",
+        ])
         .arg(&curves)
         .output()
         .unwrap();
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let ica = std::fs::read_to_string(curves.join("ica.csv")).unwrap();
     assert!(ica.starts_with("step,direction,voltage_v,dq_dv_ah_per_v"));
     // 2 mV per cell on a 10S pack: 20 mV bins.
@@ -410,5 +468,11 @@ fn curves_are_exported_as_csv() {
     assert!(((v[0] - v[1]).abs() - 0.02).abs() < 1e-9, "{v:?}");
     let ocv = std::fs::read_to_string(curves.join("ocv.csv")).unwrap();
     assert_eq!(ocv.lines().count(), 22, "header and 0..100 % in 5 % steps");
-    assert!(std::fs::read_to_string(curves.join("dva.csv")).unwrap().lines().count() > 50);
+    assert!(
+        std::fs::read_to_string(curves.join("dva.csv"))
+            .unwrap()
+            .lines()
+            .count()
+            > 50
+    );
 }

@@ -224,10 +224,38 @@ fn every_shipped_procedure_validates() {
             ..pack()
         };
         let plan = plan_from_text(&path, &text, &p).unwrap_or_else(|e| panic!("{e}"));
+        // Every procedure measures something: a capacity or resistance.
+        let dcir = plan
+            .steps
+            .iter()
+            .filter(|s| s.result.map(|r| r.name()) == Some("dcir"))
+            .count();
         assert!(
-            plan.capacity_step().is_some(),
-            "{}: no capacity step",
+            plan.capacity_step().is_some() || dcir > 0,
+            "{}: measures nothing",
             path.display()
         );
     }
+}
+
+#[test]
+fn a_step_may_set_its_own_sampling_interval() {
+    let pack = packbench::run::default_sim_pack();
+    let p = packbench::procedure::load(
+        std::path::Path::new("procedures/dcir-soc-sweep-li-ion.toml"),
+        &pack,
+    )
+    .unwrap();
+    let fast: Vec<f64> = p.plan.steps.iter().filter_map(|s| s.sample_every_s).collect();
+    assert_eq!(fast, vec![0.1, 0.1, 0.1]);
+    let dir = tempfile::tempdir().unwrap();
+    let bad = std::fs::read_to_string("procedures/dcir-soc-sweep-li-ion.toml")
+        .unwrap()
+        .replacen("every = \"0.1s\"", "every = \"0.001s\"", 1);
+    let path = dir.path().join("bad.toml");
+    std::fs::write(&path, &bad).unwrap();
+    let e = packbench::procedure::load(&path, &pack).unwrap_err().to_string();
+    let line = bad.lines().position(|l| l.contains("0.001s")).unwrap() + 1;
+    assert!(e.contains(&format!("bad.toml:{line}:")), "{e}");
+    assert!(e.contains("sampling interval must be between"), "{e}");
 }

@@ -222,7 +222,8 @@ pub fn correct(test: &CapacityTest, policy: &CorrectionPolicy) -> (f64, Vec<Corr
                 kind: "temperature".into(),
                 method: "none".into(),
                 factor: 1.0,
-                why: "no temperature was logged at the start of the discharge: not corrected".into(),
+                why: "no temperature was logged at the start of the discharge: not corrected"
+                    .into(),
             }),
         }
     }
@@ -294,7 +295,9 @@ mod tests {
             assert!((y - k).abs() <= 0.015, "{t} °C: table {k}, fit {y}");
             assert!((ieee_k(t) - k).abs() < 1e-12);
         }
-        assert!((ieee_k(20.0) - (1.08 + (1.04 - 1.08) * (20.0 - 18.3) / (21.1 - 18.3))).abs() < 1e-12);
+        assert!(
+            (ieee_k(20.0) - (1.08 + (1.04 - 1.08) * (20.0 - 18.3) / (21.1 - 18.3))).abs() < 1e-12
+        );
     }
 
     #[test]

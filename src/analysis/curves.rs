@@ -148,7 +148,11 @@ impl ChargeGrid {
             return Some(c[c.len() - 1].1);
         }
         let (a, b) = (c[k - 1], c[k]);
-        let f = if b.0 > a.0 { (q - a.0) / (b.0 - a.0) } else { 1.0 };
+        let f = if b.0 > a.0 {
+            (q - a.0) / (b.0 - a.0)
+        } else {
+            1.0
+        };
         Some(a.1 + f * (b.1 - a.1))
     }
 }

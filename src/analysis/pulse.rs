@@ -72,7 +72,11 @@ fn take(o: &mut Open, delays: &[f64], t: f64, v: f64, i: f64) {
         let value = if hit {
             Some((v, i))
         } else if bracket {
-            let f = if t > pt { (target - pt) / (t - pt) } else { 1.0 };
+            let f = if t > pt {
+                (target - pt) / (t - pt)
+            } else {
+                1.0
+            };
             Some((pv + f * (v - pv), pi + f * (i - pi)))
         } else {
             None
@@ -214,7 +218,12 @@ mod tests {
         assert_eq!(first.values.len(), 4);
         for v in &first.values {
             let want = r(v.delay_s) * 1000.0;
-            assert!((v.resistance_mohm - want).abs() < 1e-6, "{} s: {} vs {want}", v.delay_s, v.resistance_mohm);
+            assert!(
+                (v.resistance_mohm - want).abs() < 1e-6,
+                "{} s: {} vs {want}",
+                v.delay_s,
+                v.resistance_mohm
+            );
         }
     }
 
@@ -231,6 +240,9 @@ mod tests {
         let (r, _) = p.finish();
         let delays: Vec<f64> = r[0].values.iter().map(|v| v.delay_s).collect();
         assert_eq!(delays, vec![1.0, 10.0, 18.0]);
-        assert!(r[0].values.iter().all(|v| (v.resistance_mohm - 20.0).abs() < 1e-9));
+        assert!(r[0]
+            .values
+            .iter()
+            .all(|v| (v.resistance_mohm - 20.0).abs() < 1e-9));
     }
 }

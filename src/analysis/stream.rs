@@ -242,10 +242,7 @@ impl<'a> Analyzer<'a> {
                 g.reset();
                 g
             }
-            None => ChargeGrid::new(
-                GRID_FRACTION * self.pack.rated_capacity_ah,
-                GRID_MAX_POINTS,
-            ),
+            None => ChargeGrid::new(GRID_FRACTION * self.pack.rated_capacity_ah, GRID_MAX_POINTS),
         }
     }
 
@@ -338,7 +335,11 @@ impl<'a> Analyzer<'a> {
             (Some(f), Some(l)) if l.t_s > f.t_s => l.t_s - f.t_s,
             _ => 0.0,
         };
-        let mean = if span > 0.0 { acc.g.ah * 3600.0 / span } else { 0.0 };
+        let mean = if span > 0.0 {
+            acc.g.ah * 3600.0 / span
+        } else {
+            0.0
+        };
         let kind = if mean.abs() < 0.01 * self.pack.rated_capacity_ah {
             "rest"
         } else if mean > 0.0 {
@@ -372,38 +373,40 @@ impl<'a> Analyzer<'a> {
         let kind = self.kind_of(step, &acc);
         let info = self.infos.get(&step).cloned();
         let two_level = match (&acc.level_ends[0], &acc.level_ends[1]) {
-            (Some(a), Some(b)) if acc.level >= 1 => two_level_ohm(
-                a.voltage_v,
-                a.current_a,
-                b.voltage_v,
-                b.current_a,
-            )
-            .map(|r| ResistanceReading {
-                step,
-                dcir_mohm: r * 1000.0,
-                method: super::resistance::TWO_LEVEL_METHOD.into(),
-                u1_v: a.voltage_v,
-                i1_a: a.current_a,
-                u2_v: b.voltage_v,
-                i2_a: b.current_a,
-                t1_s: a.t_s,
-                t2_s: b.t_s,
-                soc_pct: None,
-                ah_since_full: acc.ah_since_full_at_start,
-            }),
+            (Some(a), Some(b)) if acc.level >= 1 => {
+                two_level_ohm(a.voltage_v, a.current_a, b.voltage_v, b.current_a).map(|r| {
+                    ResistanceReading {
+                        step,
+                        dcir_mohm: r * 1000.0,
+                        method: super::resistance::TWO_LEVEL_METHOD.into(),
+                        u1_v: a.voltage_v,
+                        i1_a: a.current_a,
+                        u2_v: b.voltage_v,
+                        i2_a: b.current_a,
+                        t1_s: a.t_s,
+                        t2_s: b.t_s,
+                        soc_pct: None,
+                        ah_since_full: acc.ah_since_full_at_start,
+                    }
+                })
+            }
             _ => None,
         };
         // Full charge: a charge that ended on its taper or its −ΔV.
         if kind == "charge" {
             let full = match &info {
                 Some(i) if !self.opts.imported => {
-                    matches!(i.end_kind.as_deref(), Some("current_below") | Some("peak_drop"))
+                    matches!(
+                        i.end_kind.as_deref(),
+                        Some("current_below") | Some("peak_drop")
+                    )
                 }
                 _ => {
                     // A foreign log: a constant-voltage taper to under a
                     // fifth of the step's highest current.
                     acc.last.is_some_and(|l| {
-                        l.current_a.abs() < 0.2 * acc.imax && l.voltage_v >= acc.vmax - 0.005 * acc.vmax
+                        l.current_a.abs() < 0.2 * acc.imax
+                            && l.voltage_v >= acc.vmax - 0.005 * acc.vmax
                     })
                 }
             };
@@ -602,7 +605,9 @@ impl<'a> Analyzer<'a> {
                         && (mean / (rated_rate * pack.rated_capacity_ah) - 1.0).abs() <= 0.02)
                         .then_some(t0)
                         .flatten()
-                        .map(|t| correct::ieee450_percent(s.duration_s / 3600.0, 1.0 / rated_rate, t));
+                        .map(|t| {
+                            correct::ieee450_percent(s.duration_s / 3600.0, 1.0 / rated_rate, t)
+                        });
                     let c = CapacityResult {
                         step: s.step,
                         measured_ah: s.charge_out_ah,
@@ -764,7 +769,8 @@ impl<'a> Analyzer<'a> {
                     .collect(),
             });
             for (idx, (v, y)) in ica.iter().enumerate() {
-                data.ica.push((k.step, dir.to_string(), *v, *y, smooth[idx]));
+                data.ica
+                    .push((k.step, dir.to_string(), *v, *y, smooth[idx]));
             }
             let dva = curves::differential_voltage(&k.grid, dva_bin);
             let ys: Vec<f64> = dva.iter().map(|p| p.1).collect();
@@ -790,7 +796,8 @@ impl<'a> Analyzer<'a> {
                     .collect(),
             });
             for (idx, (q, y)) in dva.iter().enumerate() {
-                data.dva.push((k.step, dir.to_string(), *q, *y, smooth[idx]));
+                data.dva
+                    .push((k.step, dir.to_string(), *q, *y, smooth[idx]));
             }
         }
         // Open-circuit voltage: the average of a slow charge from empty and

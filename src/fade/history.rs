@@ -298,7 +298,11 @@ pub fn load(
                     date,
                     cycles,
                     cycles_given: s.cycle_count.is_some(),
-                    capacity_ah: if c.corrected_ah > 0.0 { c.corrected_ah } else { c.measured_ah },
+                    capacity_ah: if c.corrected_ah > 0.0 {
+                        c.corrected_ah
+                    } else {
+                        c.measured_ah
+                    },
                     soh_pct: c.soh_pct,
                     resistance_mohm: s.resistance.as_ref().map(|r| r.dcir_mohm),
                     coulombic_efficiency_pct: s

@@ -77,7 +77,11 @@ pub fn summary(s: &Summary) -> String {
         }
     }
     if let Some(r) = &s.resistance {
-        let _ = writeln!(o, "  DC resistance:     {:.2} mOhm ({})", r.dcir_mohm, r.method);
+        let _ = writeln!(
+            o,
+            "  DC resistance:     {:.2} mOhm ({})",
+            r.dcir_mohm, r.method
+        );
         if r.readings.len() > 1 {
             for x in &r.readings {
                 let _ = writeln!(

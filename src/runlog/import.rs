@@ -161,27 +161,67 @@ fn norm(h: &str) -> String {
 fn guess(headers: &[String], role: &str) -> Option<usize> {
     let names: &[&str] = match role {
         "time" => &[
-            "t_s", "time", "time_s", "time [s]", "time (s)", "time/s", "test_time", "test time",
-            "elapsed", "elapsed_s", "seconds", "timestamp", "datetime", "date_time", "time [h]",
-            "time_h", "time [ms]", "time_ms",
+            "t_s",
+            "time",
+            "time_s",
+            "time [s]",
+            "time (s)",
+            "time/s",
+            "test_time",
+            "test time",
+            "elapsed",
+            "elapsed_s",
+            "seconds",
+            "timestamp",
+            "datetime",
+            "date_time",
+            "time [h]",
+            "time_h",
+            "time [ms]",
+            "time_ms",
         ],
         "voltage" => &[
-            "voltage_v", "voltage", "voltage [v]", "voltage (v)", "voltage/v", "v", "u", "u_v",
-            "volts", "terminal voltage [v]", "pack voltage",
+            "voltage_v",
+            "voltage",
+            "voltage [v]",
+            "voltage (v)",
+            "voltage/v",
+            "v",
+            "u",
+            "u_v",
+            "volts",
+            "terminal voltage [v]",
+            "pack voltage",
         ],
         "current" => &[
-            "current_a", "current", "current [a]", "current (a)", "current/a", "i", "i_a", "amps",
+            "current_a",
+            "current",
+            "current [a]",
+            "current (a)",
+            "current/a",
+            "i",
+            "i_a",
+            "amps",
             "pack current",
         ],
         "temperature" => &[
-            "temperature_c", "temperature", "temperature [degc]", "temperature [c]",
-            "temperature (c)", "temp", "temp_c", "t_c", "cell temperature",
+            "temperature_c",
+            "temperature",
+            "temperature [degc]",
+            "temperature [c]",
+            "temperature (c)",
+            "temp",
+            "temp_c",
+            "t_c",
+            "cell temperature",
         ],
         "step" => &["step", "step_index", "step index", "step number", "step_no"],
         "cycle" => &["cycle", "cycle_index", "cycle index", "cycle number"],
         _ => &[],
     };
-    headers.iter().position(|h| names.contains(&norm(h).as_str()))
+    headers
+        .iter()
+        .position(|h| names.contains(&norm(h).as_str()))
 }
 
 fn find(headers: &[String], name: &str) -> Option<usize> {
@@ -200,7 +240,11 @@ fn parse_time(s: &str, unit: TimeUnit) -> Option<f64> {
     if let Ok(d) = chrono::DateTime::parse_from_rfc3339(s) {
         return Some(d.timestamp_micros() as f64 / 1e6);
     }
-    for f in ["%Y-%m-%d %H:%M:%S%.f", "%Y-%m-%dT%H:%M:%S%.f", "%Y/%m/%d %H:%M:%S%.f"] {
+    for f in [
+        "%Y-%m-%d %H:%M:%S%.f",
+        "%Y-%m-%dT%H:%M:%S%.f",
+        "%Y/%m/%d %H:%M:%S%.f",
+    ] {
         if let Ok(d) = chrono::NaiveDateTime::parse_from_str(s, f) {
             return Some(d.and_utc().timestamp_micros() as f64 / 1e6);
         }
@@ -216,8 +260,14 @@ fn trim(b: &[u8]) -> &[u8] {
     match (b.first(), b.last()) {
         (Some(f), Some(l)) if !f.is_ascii_whitespace() && !l.is_ascii_whitespace() => b,
         _ => {
-            let start = b.iter().position(|c| !c.is_ascii_whitespace()).unwrap_or(b.len());
-            let end = b.iter().rposition(|c| !c.is_ascii_whitespace()).map_or(start, |e| e + 1);
+            let start = b
+                .iter()
+                .position(|c| !c.is_ascii_whitespace())
+                .unwrap_or(b.len());
+            let end = b
+                .iter()
+                .rposition(|c| !c.is_ascii_whitespace())
+                .map_or(start, |e| e + 1);
             &b[start..end]
         }
     }
@@ -286,12 +336,15 @@ fn parse_row<'r, G: Fn(usize) -> &'r [u8], B: Fn(u64, usize, String) -> ReadErro
     let cell_bytes = |i: usize| trim(rec(i));
     let cell_text = |i: usize| String::from_utf8_lossy(cell_bytes(i)).into_owned();
     let num = |i: usize, what: &str| -> Result<f64, ReadError> {
-        number(cell_bytes(i)).ok_or_else(|| bad(l, i + 1, format!("'{}' is not {what}", cell_text(i))))
+        number(cell_bytes(i))
+            .ok_or_else(|| bad(l, i + 1, format!("'{}' is not {what}", cell_text(i))))
     };
     let t_b = cell_bytes(cols.time);
     let t_s = match number(t_b) {
         Some(x) => Some(x * fmt.time_unit.factor()),
-        None => std::str::from_utf8(t_b).ok().and_then(|t| parse_time(t, fmt.time_unit)),
+        None => std::str::from_utf8(t_b)
+            .ok()
+            .and_then(|t| parse_time(t, fmt.time_unit)),
     }
     .ok_or_else(|| {
         bad(
@@ -365,7 +418,11 @@ pub fn stream_log(
         }
         carry.extend_from_slice(&buf[..n]);
         if carry.len() > 1 << 20 {
-            return Err(bad(1, 1, "no line end in the first megabyte: not a CSV log".into()));
+            return Err(bad(
+                1,
+                1,
+                "no line end in the first megabyte: not a CSV log".into(),
+            ));
         }
     };
     let headers: Vec<String> = {
@@ -465,8 +522,7 @@ pub fn stream_log(
     // the numbers and analyses, chunk by chunk (a bounded channel: memory
     // stays a few chunks). A line with a quote is parsed whole by the csv
     // reader here instead.
-    let (tx, rx) = std::sync::mpsc::sync_channel::<Batch>(3);
-    let mut report = report;
+    let (tx, rx) = std::sync::mpsc::sync_channel::<Batch>(2);
     let mut handle = |l: u64, r: Result<Row, ReadError>| -> Result<(), ReadError> {
         match r {
             Ok(row) => {
@@ -672,15 +728,27 @@ mod tests {
     fn the_fast_number_path_gives_the_same_doubles_as_a_full_parser() {
         let mut state: u64 = 99;
         for _ in 0..200_000 {
-            state = state.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+            state = state
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
             let x = (state >> 11) as f64 / (1u64 << 53) as f64 * 2000.0 - 1000.0;
             for d in [0usize, 1, 3, 4, 6, 9, 12] {
                 let text = format!("{x:.d$}");
                 let want: f64 = text.parse().unwrap();
-                assert_eq!(number(text.as_bytes()).map(f64::to_bits), Some(want.to_bits()), "{text}");
+                assert_eq!(
+                    number(text.as_bytes()).map(f64::to_bits),
+                    Some(want.to_bits()),
+                    "{text}"
+                );
             }
         }
-        for t in ["1e3", "-2.5E-01", "+7", "0.1234567890123456789", "123456789012345678"] {
+        for t in [
+            "1e3",
+            "-2.5E-01",
+            "+7",
+            "0.1234567890123456789",
+            "123456789012345678",
+        ] {
             assert_eq!(number(t.as_bytes()), Some(t.parse::<f64>().unwrap()), "{t}");
         }
         for t in ["", "-", ".", "1.2.3", "12V", "nan", "inf", "1e400"] {

@@ -17,8 +17,8 @@ pub mod write;
 
 use crate::analysis::pulse::PulseReading;
 use crate::analysis::{
-    CapacityResult, CurvesSummary, CycleSummary, Gap, LogQuality, Recalibration,
-    ResistanceResult, StepSummary,
+    CapacityResult, CurvesSummary, CycleSummary, Gap, LogQuality, Recalibration, ResistanceResult,
+    StepSummary,
 };
 use crate::pack::PackSpec;
 use serde::{Deserialize, Serialize};
