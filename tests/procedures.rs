@@ -246,7 +246,12 @@ fn a_step_may_set_its_own_sampling_interval() {
         &pack,
     )
     .unwrap();
-    let fast: Vec<f64> = p.plan.steps.iter().filter_map(|s| s.sample_every_s).collect();
+    let fast: Vec<f64> = p
+        .plan
+        .steps
+        .iter()
+        .filter_map(|s| s.sample_every_s)
+        .collect();
     assert_eq!(fast, vec![0.1, 0.1, 0.1]);
     let dir = tempfile::tempdir().unwrap();
     let bad = std::fs::read_to_string("procedures/dcir-soc-sweep-li-ion.toml")
@@ -254,7 +259,9 @@ fn a_step_may_set_its_own_sampling_interval() {
         .replacen("every = \"0.1s\"", "every = \"0.001s\"", 1);
     let path = dir.path().join("bad.toml");
     std::fs::write(&path, &bad).unwrap();
-    let e = packbench::procedure::load(&path, &pack).unwrap_err().to_string();
+    let e = packbench::procedure::load(&path, &pack)
+        .unwrap_err()
+        .to_string();
     let line = bad.lines().position(|l| l.contains("0.001s")).unwrap() + 1;
     assert!(e.contains(&format!("bad.toml:{line}:")), "{e}");
     assert!(e.contains("sampling interval must be between"), "{e}");

@@ -176,10 +176,24 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
             "Measured capacity",
             format!("{:.4} Ah, {:.2} Wh", c.measured_ah, c.measured_wh),
         );
+        if c.corrected_ah > 0.0 {
+            let why: Vec<String> = c
+                .corrections
+                .iter()
+                .map(|x| format!("{} ×{:.4}: {}", x.kind, x.factor, x.why))
+                .collect();
+            row(
+                "At rated conditions",
+                format!("{:.4} Ah ({})", c.corrected_ah, why.join("; ")),
+            );
+        }
         row(
             "State of health",
             format!("{:.2} % of rated {} Ah", c.soh_pct, c.rated_ah),
         );
+        if let Some(p) = c.ieee450_percent {
+            row("IEEE 450 percent capacity", format!("{p:.1} %"));
+        }
         row(
             "Discharge",
             format!(
@@ -207,6 +221,52 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
         row(
             "DC resistance",
             format!("{:.2} mΩ — {}", r.dcir_mohm, r.method),
+        );
+        if r.readings.len() > 1 {
+            for x in &r.readings {
+                row(
+                    &format!("  step {}", x.step),
+                    format!(
+                        "{:.2} mΩ{}",
+                        x.dcir_mohm,
+                        x.soc_pct
+                            .map(|s| format!(" at {s:.0} % state of charge"))
+                            .unwrap_or_default()
+                    ),
+                );
+            }
+        }
+    }
+    if let Some(rc) = &s.recalibration {
+        row(
+            "Recalibration",
+            format!(
+                "new nominal {:.3} Ah — {}",
+                rc.suggested_nominal_ah, rc.conditions
+            ),
+        );
+    }
+    if let Some(cv) = &s.curves {
+        for i in cv.ica.iter().filter(|i| !i.peaks.is_empty()) {
+            let peaks: Vec<String> = i
+                .peaks
+                .iter()
+                .map(|p| format!("{:.3} V/cell ({:.2} Ah/V)", p.position_per_cell, p.height))
+                .collect();
+            row(
+                &format!("dQ/dV peaks, {} step {}", i.direction, i.step),
+                peaks.join(", "),
+            );
+        }
+    }
+    if !s.gaps.is_empty() {
+        row(
+            "Gaps in the log",
+            format!(
+                "{} (longest {:.1} s); integrated across by straight lines",
+                s.gaps.len(),
+                s.gaps.iter().map(|g| g.duration_s).fold(0.0, f64::max)
+            ),
         );
     }
     for c in &s.cycles {
