@@ -476,3 +476,128 @@ fn curves_are_exported_as_csv() {
             > 50
     );
 }
+
+fn sim_run_with(
+    procedure: &Path,
+    pack: packbench::pack::PackSpec,
+    results: &Path,
+    id: &str,
+) -> PathBuf {
+    let p = run::prepare(&RunRequest {
+        procedure: procedure.to_path_buf(),
+        pack_id: id.into(),
+        pack: PackSource::Given(pack),
+        results: results.to_path_buf(),
+        options: Default::default(),
+    })
+    .unwrap();
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .unwrap();
+    rt.block_on(run::execute_sim(
+        &p,
+        &SimConfig::default(),
+        Speed::Max,
+        StopHandle::new(),
+    ))
+    .unwrap()
+    .run_dir
+}
+
+#[test]
+fn a_lead_acid_test_at_its_rated_current_gets_the_ieee_450_figure() {
+    let dir = tempfile::tempdir().unwrap();
+    let pack = packbench::pack::PackSpec {
+        chemistry: packbench::pack::Chemistry::LeadAcid,
+        series: 6,
+        rated_capacity_ah: 100.0,
+        rated_energy_wh: None,
+        rated_rate_c: Some(0.05),
+        rated_resistance_mohm: None,
+    };
+    let run_dir = sim_run_with(
+        Path::new("procedures/lead-acid-c20.toml"),
+        pack,
+        dir.path(),
+        "LA-1",
+    );
+    let s: Summary =
+        serde_json::from_str(&std::fs::read_to_string(run_dir.join("summary.json")).unwrap())
+            .unwrap();
+    let c = s.capacity.unwrap();
+    // IEEE 450 (fact sheet §4c): actual time over rated time (20 h),
+    // corrected with K at the initial temperature.
+    let t0 = c.initial_temperature_c.unwrap();
+    let want = c.duration_s / 3600.0 / 20.0 * packbench::analysis::correct::ieee_k(t0) * 100.0;
+    assert!((c.ieee450_percent.unwrap() - want).abs() < 1e-9);
+    // IEC 60896-11 to 20 °C with λ = 0.006 (a 20-h discharge).
+    let t = &c.corrections[0];
+    assert_eq!(t.method, "IEC 60896-11");
+    assert!((t.factor - 1.0 / (1.0 + 0.006 * (t0 - 20.0))).abs() < 1e-12);
+    assert!((c.corrected_ah - c.measured_ah * t.factor).abs() < 1e-9);
+    assert!(
+        (c.soh_pct - c.corrected_ah).abs() < 1e-9,
+        "SOH on the corrected value"
+    );
+}
+
+#[test]
+fn the_peukert_exponent_comes_from_two_runs_at_different_rates() {
+    let dir = tempfile::tempdir().unwrap();
+    let fast = std::fs::read_to_string("procedures/capacity-check.toml")
+        .unwrap()
+        .replace(
+            "name = \"measure\"\n  [[phase.step]]\n  kind = \"discharge\"\n  current = \"0.2C\"",
+            "name = \"measure\"\n  [[phase.step]]\n  kind = \"discharge\"\n  current = \"0.8C\"",
+        );
+    assert!(fast.contains("0.8C"));
+    let fast_path = dir.path().join("fast-check.toml");
+    std::fs::write(&fast_path, fast).unwrap();
+    let a = sim_run_with(
+        Path::new("procedures/capacity-check.toml"),
+        run::default_sim_pack(),
+        dir.path(),
+        "PK-1",
+    );
+    let b = sim_run_with(&fast_path, run::default_sim_pack(), dir.path(), "PK-1");
+    let out = Command::new(BIN)
+        .arg("peukert")
+        .arg(&a)
+        .arg(&b)
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{text}{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let k: f64 = text
+        .split("k = ")
+        .nth(1)
+        .and_then(|x| x.split_whitespace().next())
+        .unwrap()
+        .parse()
+        .unwrap();
+    // Recomputed from the two summaries with the fact sheet's formula.
+    let load = |d: &Path| -> (f64, f64) {
+        let s: Summary =
+            serde_json::from_str(&std::fs::read_to_string(d.join("summary.json")).unwrap())
+                .unwrap();
+        let c = s.capacity.unwrap();
+        (c.mean_current_a, c.duration_s / 3600.0)
+    };
+    let ((i1, t1), (i2, t2)) = (load(&a), load(&b));
+    let want = (t2 / t1).ln() / (i1 / i2).ln();
+    assert!((k - want).abs() < 1e-4, "{k} vs {want}");
+    // The simulated pack loses capacity at the higher rate: k above 1.
+    assert!(k > 1.0 && k < 1.3, "{k}");
+}
+
+#[test]
+fn ports_lists_without_failing() {
+    let out = Command::new(BIN).arg("ports").output().unwrap();
+    assert!(out.status.success());
+    assert!(!out.stdout.is_empty());
+}
