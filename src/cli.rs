@@ -281,6 +281,32 @@ pub fn pack_from_args(a: &PackArgs) -> Result<Option<PackSpec>, RunError> {
     Ok(Some(spec))
 }
 
+/// The simulated bench's settings from `--sim-config`, `--sim-ideal` and
+/// `--fault` options.
+pub fn sim_config(
+    path: Option<&std::path::Path>,
+    ideal: bool,
+    faults: &[String],
+) -> Result<SimConfig, RunError> {
+    let mut cfg = match path {
+        Some(path) => {
+            let text = std::fs::read_to_string(path).map_err(|source| RunError::Io {
+                path: path.to_path_buf(),
+                source,
+            })?;
+            SimConfig::from_toml(path, &text)?
+        }
+        None => SimConfig::default(),
+    };
+    if ideal {
+        cfg.ideal = true;
+    }
+    for f in faults {
+        cfg.faults.link.push(f.parse().map_err(RunError::Pack)?);
+    }
+    Ok(cfg)
+}
+
 fn parse_speed(s: &str) -> Result<Speed, RunError> {
     if s.eq_ignore_ascii_case("max") {
         return Ok(Speed::Max);
@@ -344,22 +370,7 @@ pub fn cmd_run(a: RunArgs) -> i32 {
                     .into(),
             ));
         }
-        let mut cfg = match &a.sim_config {
-            Some(path) => {
-                let text = std::fs::read_to_string(path).map_err(|source| RunError::Io {
-                    path: path.clone(),
-                    source,
-                })?;
-                SimConfig::from_toml(path, &text)?
-            }
-            None => SimConfig::default(),
-        };
-        if a.sim_ideal {
-            cfg.ideal = true;
-        }
-        for f in &a.fault {
-            cfg.faults.link.push(f.parse().map_err(RunError::Pack)?);
-        }
+        let cfg = sim_config(a.sim_config.as_deref(), a.sim_ideal, &a.fault)?;
         let mut req = req;
         req.options.trace = a.trace;
         if a.bench.is_some() {

@@ -165,6 +165,15 @@ impl Feed {
     }
 }
 
+fn note_partial_line(a: &mut crate::analysis::Analysis, partial: bool, what: &str) {
+    if partial {
+        a.warnings.push(format!(
+            "the last line of {what} was incomplete and was left out"
+        ));
+        a.quality.partial_last_line = true;
+    }
+}
+
 /// Summarise one of our run folders from its log and events.
 pub fn summarize_run(
     dir: &Path,
@@ -198,11 +207,7 @@ pub fn summarize_run_with_curves(
         });
     })?;
     let mut a = an.finish();
-    if rep.partial_last_line {
-        a.warnings
-            .push("the last line of samples.csv was incomplete and was left out".into());
-        a.quality.partial_last_line = true;
-    }
+    note_partial_line(&mut a, rep.partial_last_line, "samples.csv");
     let outcome = outcome.unwrap_or_else(|| {
         events
             .iter()
@@ -263,11 +268,7 @@ pub fn summarize_foreign(
         });
     })?;
     let mut a = an.finish();
-    if rep.partial_last_line {
-        a.warnings
-            .push("the last line of the log was incomplete and was left out".into());
-        a.quality.partial_last_line = true;
-    }
+    note_partial_line(&mut a, rep.partial_last_line, "the log");
     if rep.bad_rows_skipped > 0 {
         a.warnings.push(format!(
             "{} row(s) that did not parse were skipped (first: {})",

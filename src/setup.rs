@@ -8,10 +8,9 @@ use crate::clock::{Clock, PacedClock};
 use crate::instrument::profile::Profile;
 use crate::instrument::scpi::{self, Session};
 use crate::instrument::transport::{self, LinkSpec};
-use crate::run::{self, RunError};
+use crate::run;
 use crate::sim::serve::{self, Endpoint, ServeOptions};
 use crate::sim::server::SimRole;
-use crate::sim::SimConfig;
 use anyhow::{anyhow, bail, Context};
 use clap::{Args, Subcommand};
 use std::net::SocketAddr;
@@ -237,24 +236,7 @@ fn cmd_serve(a: ServeArgs) -> anyhow::Result<i32> {
         );
     }
     let pack = pack_from_args(&a.pack_args)?.unwrap_or_else(run::default_sim_pack);
-    let mut cfg = match &a.sim_config {
-        Some(path) => {
-            let text = std::fs::read_to_string(path).map_err(|source| RunError::Io {
-                path: path.clone(),
-                source,
-            })?;
-            SimConfig::from_toml(path, &text)?
-        }
-        None => SimConfig::default(),
-    };
-    if a.sim_ideal {
-        cfg.ideal = true;
-    }
-    for f in &a.fault {
-        cfg.faults
-            .link
-            .push(f.parse().map_err(|e: String| anyhow!(e))?);
-    }
+    let cfg = crate::cli::sim_config(a.sim_config.as_deref(), a.sim_ideal, &a.fault)?;
     if let Some(t) = &a.bench_timeout {
         crate::units::duration(t).map_err(|e| anyhow!("--bench-timeout: {e}"))?;
     }

@@ -16,26 +16,12 @@ use std::process::Command;
 const BIN: &str = env!("CARGO_BIN_EXE_packbench");
 
 fn sim_run(procedure: &str, results: &Path) -> PathBuf {
-    let p = run::prepare(&RunRequest {
-        procedure: procedure.into(),
-        pack_id: "AN-1".into(),
-        pack: PackSource::Given(run::default_sim_pack()),
-        results: results.to_path_buf(),
-        options: Default::default(),
-    })
-    .unwrap();
-    let rt = tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-        .unwrap();
-    rt.block_on(run::execute_sim(
-        &p,
-        &SimConfig::default(),
-        Speed::Max,
-        StopHandle::new(),
-    ))
-    .unwrap()
-    .run_dir
+    sim_run_with(
+        Path::new(procedure),
+        run::default_sim_pack(),
+        results,
+        "AN-1",
+    )
 }
 
 fn analyze_json(args: &[&str]) -> serde_json::Value {

@@ -264,17 +264,29 @@ impl<'a> Engine<'a> {
         match r {
             Ok(()) => Ok(()),
             Err(e) => {
-                let step = self.current_step;
-                self.emit(Event::InstrumentError {
-                    t_s: self.t(),
-                    step,
-                    instrument: e.instrument.clone(),
-                    kind: format!("{:?}", e.kind).to_lowercase(),
-                    message: e.message.clone(),
-                })?;
+                self.record_instrument_error(&e, None)?;
                 Err(Stop::Instrument(e))
             }
         }
+    }
+
+    /// Record an instrument error in the events; `kind` defaults to the
+    /// error's own kind.
+    fn record_instrument_error(
+        &mut self,
+        e: &InstrumentError,
+        kind: Option<&str>,
+    ) -> Result<(), Stop> {
+        let step = self.current_step;
+        self.emit(Event::InstrumentError {
+            t_s: self.t(),
+            step,
+            instrument: e.instrument.clone(),
+            kind: kind
+                .map(str::to_string)
+                .unwrap_or_else(|| format!("{:?}", e.kind).to_lowercase()),
+            message: e.message.clone(),
+        })
     }
 
     fn emit(&mut self, e: Event) -> Result<(), Stop> {
@@ -392,19 +404,12 @@ impl<'a> Engine<'a> {
                         && tries < MEASURE_RETRIES =>
                 {
                     tries += 1;
-                    let step = self.current_step;
                     let kind = if e.kind == ErrorKind::Timeout {
                         "timeout_retry"
                     } else {
                         "protocol_retry"
                     };
-                    self.emit(Event::InstrumentError {
-                        t_s: self.t(),
-                        step,
-                        instrument: e.instrument.clone(),
-                        kind: kind.into(),
-                        message: e.message.clone(),
-                    })?;
+                    self.record_instrument_error(&e, Some(kind))?;
                     // Measurements are idempotent: retry once the session
                     // is back in step. An instrument that cannot even
                     // resynchronise is not retried further.
@@ -418,26 +423,12 @@ impl<'a> Engine<'a> {
                         _ => &mut st.load.0,
                     };
                     if let Err(r) = inst.resync().await {
-                        let step = self.current_step;
-                        self.emit(Event::InstrumentError {
-                            t_s: self.t(),
-                            step,
-                            instrument: r.instrument.clone(),
-                            kind: format!("{:?}", r.kind).to_lowercase(),
-                            message: r.message.clone(),
-                        })?;
+                        self.record_instrument_error(&r, None)?;
                         return Err(Stop::Instrument(e));
                     }
                 }
                 Err(e) => {
-                    let step = self.current_step;
-                    self.emit(Event::InstrumentError {
-                        t_s: self.t(),
-                        step,
-                        instrument: e.instrument.clone(),
-                        kind: format!("{:?}", e.kind).to_lowercase(),
-                        message: e.message.clone(),
-                    })?;
+                    self.record_instrument_error(&e, None)?;
                     return Err(Stop::Instrument(e));
                 }
             }

@@ -667,6 +667,24 @@ fn build_step(
     Some((kind, ends, result, name))
 }
 
+/// A sampling interval, between [`MIN_SAMPLE_S`] and an hour.
+fn sample_interval(cx: &mut Ctx, t: &Text) -> Option<f64> {
+    cx.unit(t, units::duration).and_then(|v| {
+        if (MIN_SAMPLE_S..=3600.0).contains(&v) {
+            Some(v)
+        } else {
+            cx.err(
+                &t.span(),
+                format!(
+                    "sampling interval must be between {MIN_SAMPLE_S} s and 1 h, got '{}'",
+                    t.get_ref()
+                ),
+            );
+            None
+        }
+    })
+}
+
 fn build(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<Plan> {
     if let Err(m) = pack.check() {
         cx.err(&(0..0), format!("pack spec: {m}"));
@@ -674,23 +692,7 @@ fn build(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<Plan> {
     }
     let env = build_envelope(cx, raw, pack);
     let every = match &raw.sampling {
-        Some(s) => {
-            let t = &s.get_ref().every;
-            cx.unit(t, units::duration).and_then(|v| {
-                if (MIN_SAMPLE_S..=3600.0).contains(&v) {
-                    Some(v)
-                } else {
-                    cx.err(
-                        &t.span(),
-                        format!(
-                            "sampling interval must be between {MIN_SAMPLE_S} s and 1 h, got '{}'",
-                            t.get_ref()
-                        ),
-                    );
-                    None
-                }
-            })
-        }
+        Some(s) => sample_interval(cx, &s.get_ref().every),
         None => Some(1.0),
     };
     if raw.phase.is_empty() {
@@ -736,22 +738,11 @@ fn build(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<Plan> {
         let mut steps = Vec::new();
         for s in &p.step {
             let line = cx.line(&s.span());
-            let own_every = s.get_ref().every.as_ref().and_then(|t| {
-                cx.unit(t, units::duration).and_then(|v| {
-                    if (MIN_SAMPLE_S..=3600.0).contains(&v) {
-                        Some(v)
-                    } else {
-                        cx.err(
-                            &t.span(),
-                            format!(
-                                "sampling interval must be between {MIN_SAMPLE_S} s and 1 h, got '{}'",
-                                t.get_ref()
-                            ),
-                        );
-                        None
-                    }
-                })
-            });
+            let own_every = s
+                .get_ref()
+                .every
+                .as_ref()
+                .and_then(|t| sample_interval(cx, t));
             if let Some(b) = build_step(cx, s, &env, pack) {
                 steps.push((b, line, own_every));
             }
