@@ -38,6 +38,7 @@ h1 { font-size: 22px; margin-bottom: 4px; } h2 { font-size: 17px; margin-top: 28
 table { border-collapse: collapse; margin: 8px 0; font-size: 13px; }
 th, td { border: 1px solid #ccc; padding: 3px 8px; text-align: right; white-space: nowrap; }
 th { background: #f2f2f2; } td.l, th.l { text-align: left; }
+td.wrap { white-space: normal; max-width: 46em; }
 .status-completed { color: #1a7f1a; } .status-aborted, .status-interrupted { color: #b00; }
 .card { border: 2px solid #222; padding: 12px 16px; width: 420px; page-break-inside: avoid; }
 .card .grade { font-size: 56px; font-weight: bold; float: right; margin-left: 12px; line-height: 1; }
@@ -167,7 +168,7 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
     let mut row = |k: &str, v: String| {
         let _ = write!(
             b,
-            "<tr><th class=\"l\">{k}</th><td>{}</td></tr>",
+            "<tr><th class=\"l\">{k}</th><td class=\"l wrap\">{}</td></tr>",
             escape(&v)
         );
     };
