@@ -84,6 +84,12 @@ impl StationSpec {
         }
     }
 
+    /// A station on the embedded simulated bench (its links are `sim`).
+    pub fn is_simulated(&self) -> bool {
+        matches!(&self.drivers, Drivers::Pair { source, load }
+            if source.link == LinkSpec::Sim && load.link == LinkSpec::Sim)
+    }
+
     /// Every binding with its role name.
     pub fn bindings(&self) -> Vec<(&'static str, &Binding)> {
         let mut v: Vec<(&'static str, &Binding)> = match &self.drivers {
@@ -279,6 +285,28 @@ impl BenchFile {
                 .meter
                 .as_ref()
                 .map(|m| bind(m, ProfileRole::Meter, &mut errors));
+            // The embedded simulated bench is a supply and a load on one
+            // simulated pack: `sim` is all of a station's links or none.
+            let links: Vec<&Spanned<String>> = [&st.source, &st.load, &st.source_sink, &st.meter]
+                .into_iter()
+                .flatten()
+                .map(|b| &b.link)
+                .collect();
+            let sims = links.iter().filter(|l| l.get_ref() == "sim").count();
+            let sim_ok = st.source_sink.is_none() && st.meter.is_none();
+            if sims > 0 && (sims < links.len() || !sim_ok) {
+                let first = links
+                    .iter()
+                    .find(|l| l.get_ref() == "sim")
+                    .map(|l| l.span())
+                    .unwrap_or(span.clone());
+                errors.push(LocatedError {
+                    location: at(first, 1),
+                    message: format!(
+                        "station '{name}': link \"sim\" (the embedded simulated bench) binds a source and a load together, with no meter or source-sink, and no real link beside it"
+                    ),
+                });
+            }
             if let (Some(drivers), Some(true) | None) =
                 (drivers, meter.as_ref().map(|m| m.is_some()))
             {
@@ -361,6 +389,17 @@ profile = "generic-scpi-meter"
         BenchFile::parse(Path::new("bench.toml"), text)
             .unwrap_err()
             .to_string()
+    }
+
+    #[test]
+    fn sim_links_make_a_simulated_station() {
+        let text = "[[station]]\nname = \"s\"\n[station.source]\nlink = \"sim\"\nprofile = \"generic-scpi-source\"\n[station.load]\nlink = \"sim\"\nprofile = \"generic-scpi-load\"\n";
+        let b = BenchFile::parse(Path::new("bench.toml"), text).unwrap();
+        assert!(b.stations[0].is_simulated());
+        let mixed = text.replacen("link = \"sim\"", "link = \"tcp:127.0.0.1:5025\"", 1);
+        let e = err(&mixed);
+        assert!(e.starts_with("bench.toml:7:9:"), "{e}");
+        assert!(e.contains("no real link beside it"), "{e}");
     }
 
     #[test]

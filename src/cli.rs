@@ -165,7 +165,7 @@ pub struct RunArgs {
     pub trace: bool,
     /// Inject a link fault into the simulated bench: INSTRUMENT:KIND@TIME[:DELAY],
     /// KIND one of no-reply, garbage, slow, disconnect, error, wrong-read-back.
-    #[arg(long, conflicts_with = "bench")]
+    #[arg(long)]
     pub fault: Vec<String>,
     /// Pack id: letters, digits, '-', '_', '.'; becomes the results folder.
     #[arg(long)]
@@ -364,12 +364,7 @@ pub fn cmd_run(a: RunArgs) -> i32 {
             results: a.results.clone(),
             options,
         };
-        if a.bench.is_some() && (a.sim_config.is_some() || a.sim_ideal) {
-            return Err(RunError::Pack(
-                "--sim-config and --sim-ideal are for the embedded simulated bench, not --bench"
-                    .into(),
-            ));
-        }
+
         let cfg = sim_config(a.sim_config.as_deref(), a.sim_ideal, &a.fault)?;
         let mut req = req;
         req.options.trace = a.trace;
@@ -390,6 +385,13 @@ pub fn cmd_run(a: RunArgs) -> i32 {
                     .clone();
                 let (sp, lp) = st.profiles();
                 run::check_ranges(&prepared.procedure, sp, lp)?;
+                if !st.is_simulated()
+                    && (a.sim_config.is_some() || a.sim_ideal || !a.fault.is_empty())
+                {
+                    return Err(RunError::Pack(
+                        "--sim-config, --sim-ideal and --fault are for the embedded simulated bench (links \"sim\"), not for real instruments".into(),
+                    ));
+                }
                 Some(st)
             }
             None => None,
@@ -426,6 +428,11 @@ pub fn cmd_run(a: RunArgs) -> i32 {
         });
         match &station {
             None => run::execute_sim(&prepared, &cfg, speed, stop.clone()).await,
+            Some(st) if st.is_simulated() => {
+                let (sp, lp) = st.profiles();
+                run::execute_sim_station(&prepared, &cfg, speed, stop.clone(), sp.clone(), lp.clone())
+                    .await
+            }
             Some(st) => {
                 let factor = match speed {
                     Speed::Max => 1.0,

@@ -425,6 +425,38 @@ pub async fn execute_sim(
     execute_sim_links(p, cfg, clock, links, &speed_text, stop).await
 }
 
+/// Run on the embedded simulated bench with a station's own profiles (a
+/// bench-file station whose links are `sim`).
+pub async fn execute_sim_station(
+    p: &Prepared,
+    cfg: &SimConfig,
+    speed: Speed,
+    stop: StopHandle,
+    source_profile: Profile,
+    load_profile: Profile,
+) -> Result<RunReport, RunError> {
+    let clock: Arc<dyn Clock> = match speed {
+        Speed::Max => SimClock::new(),
+        Speed::Factor(f) => PacedClock::new(f),
+    };
+    let links = sim::build(&p.pack, cfg, Arc::clone(&clock));
+    let speed_text = match speed {
+        Speed::Max => "max (simulation clock)".to_string(),
+        Speed::Factor(f) => format!("{f}x real time"),
+    };
+    run_sim_links(
+        p,
+        cfg,
+        clock,
+        links,
+        &speed_text,
+        stop,
+        source_profile,
+        load_profile,
+    )
+    .await
+}
+
 /// A reopen function for an in-memory link to a simulated instrument.
 fn sim_reopen(r: &Arc<std::sync::Mutex<dyn crate::instrument::link::LineResponder>>) -> Reopen {
     let r = Arc::clone(r);
@@ -444,14 +476,38 @@ pub async fn execute_sim_links(
     speed_text: &str,
     stop: StopHandle,
 ) -> Result<RunReport, RunError> {
-    let handle = links.handle.clone();
-    let truth: Arc<dyn GroundTruth> = Arc::new(handle.clone());
     // The in-memory link answers at once or never: a short timeout keeps
     // fault tests quick without changing any behaviour.
     let mut source_profile = Profile::builtin(ProfileRole::Source);
     let mut load_profile = Profile::builtin(ProfileRole::Load);
     source_profile.transport.timeout_ms = SIM_TIMEOUT_MS;
     load_profile.transport.timeout_ms = SIM_TIMEOUT_MS;
+    run_sim_links(
+        p,
+        cfg,
+        clock,
+        links,
+        speed_text,
+        stop,
+        source_profile,
+        load_profile,
+    )
+    .await
+}
+
+#[allow(clippy::too_many_arguments)]
+async fn run_sim_links(
+    p: &Prepared,
+    cfg: &SimConfig,
+    clock: Arc<dyn Clock>,
+    links: sim::SimLinks,
+    speed_text: &str,
+    stop: StopHandle,
+    source_profile: Profile,
+    load_profile: Profile,
+) -> Result<RunReport, RunError> {
+    let handle = links.handle.clone();
+    let truth: Arc<dyn GroundTruth> = Arc::new(handle.clone());
     execute(
         p,
         BenchLinks {

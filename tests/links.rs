@@ -548,3 +548,31 @@ fn served_instruments_speak_standard_scpi_on_the_wire() {
     }
     assert_eq!(ask("*CLS;*OPC?"), "1");
 }
+
+#[test]
+fn a_bench_station_with_sim_links_runs_on_the_embedded_simulator() {
+    let dir = tempfile::tempdir().unwrap();
+    let bench = write(
+        dir.path(),
+        "sim-bench.toml",
+        "[[station]]\nname = \"desk\"\n[station.source]\nlink = \"sim\"\nprofile = \"generic-scpi-source\"\n[station.load]\nlink = \"sim\"\nprofile = \"generic-scpi-load\"\n",
+    );
+    let cfg = sim_config(dir.path());
+    let results = dir.path().join("results");
+    let out = Command::new(BIN)
+        .args(["run", "tests/fixtures/short-discharge.toml", "--pack", "P1", "--quiet"])
+        .args(PACK)
+        .arg("--bench")
+        .arg(&bench)
+        .arg("--sim-config")
+        .arg(&cfg)
+        .arg("--results")
+        .arg(&results)
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    let run = only_run(&results.join("P1"));
+    let (_, mem) = run_in_memory(dir.path(), "tests/fixtures/short-discharge.toml", &[]);
+    // The same simulator, seed and sampling: the same figure exactly.
+    assert_eq!(capacity(&run), capacity(&mem));
+}
