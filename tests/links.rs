@@ -137,11 +137,17 @@ fn capacity(run: &Path) -> f64 {
 
 /// Measured capacity over a real link equals the in-memory run's within
 /// the simulated measurement error (meters: 0.1 % gain, 2 mA offset and
-/// noise) plus one sample of timing (2 s of 1C in ~3300 s).
+/// noise) plus timing: one 2-s sample of a 55-min 1C discharge is 0.06 %,
+/// and at 400x a sample a few milliseconds late is a second of bench time.
+/// Measured here: within 0.05 %.
 fn same_capacity(served: f64, in_memory: f64) {
     let rel = (served - in_memory).abs() / in_memory;
+    eprintln!(
+        "served {served:.4} Ah, in memory {in_memory:.4} Ah: {:+.3} %",
+        (served / in_memory - 1.0) * 100.0
+    );
     assert!(
-        rel < 0.002,
+        rel < 0.003,
         "served {served:.4} Ah vs in-memory {in_memory:.4} Ah ({:.3} %)",
         rel * 100.0
     );
@@ -560,7 +566,13 @@ fn a_bench_station_with_sim_links_runs_on_the_embedded_simulator() {
     let cfg = sim_config(dir.path());
     let results = dir.path().join("results");
     let out = Command::new(BIN)
-        .args(["run", "tests/fixtures/short-discharge.toml", "--pack", "P1", "--quiet"])
+        .args([
+            "run",
+            "tests/fixtures/short-discharge.toml",
+            "--pack",
+            "P1",
+            "--quiet",
+        ])
         .args(PACK)
         .arg("--bench")
         .arg(&bench)
@@ -570,7 +582,12 @@ fn a_bench_station_with_sim_links_runs_on_the_embedded_simulator() {
         .arg(&results)
         .output()
         .unwrap();
-    assert_eq!(out.status.code(), Some(0), "{}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let run = only_run(&results.join("P1"));
     let (_, mem) = run_in_memory(dir.path(), "tests/fixtures/short-discharge.toml", &[]);
     // The same simulator, seed and sampling: the same figure exactly.
