@@ -259,6 +259,56 @@ pub fn find_peaks(y: &[f64], min_prominence: f64) -> Vec<Peak> {
     out
 }
 
+/// The grid a step's samples make (0.1 % of the rated capacity per
+/// point, as the streaming analysis builds it).
+pub fn grid_of(samples: &[Sample], rated_ah: f64) -> ChargeGrid {
+    let mut g = ChargeGrid::new(GRID_FRACTION * rated_ah, GRID_MAX_POINTS);
+    for s in samples {
+        g.push(s.t_s, s.voltage_v, s.current_a);
+    }
+    g
+}
+
+/// Charge grid resolution: a fraction of the rated capacity, and the most
+/// points a grid holds (three times the rated capacity).
+pub const GRID_FRACTION: f64 = 0.001;
+pub const GRID_MAX_POINTS: usize = 3001;
+
+/// A differential curve: bins (x, y), the smoothed y, and its main peaks
+/// (at most three by height, in x order, each at least 5 % of the highest
+/// smoothed value in prominence).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Differential {
+    pub points: Vec<(f64, f64)>,
+    pub smoothed: Vec<f64>,
+    pub peaks: Vec<Peak>,
+}
+
+fn differential(points: Vec<(f64, f64)>, sigma: f64) -> Differential {
+    let ys: Vec<f64> = points.iter().map(|p| p.1).collect();
+    let smoothed = gaussian_smooth(&ys, sigma);
+    let top = smoothed.iter().cloned().fold(0.0, f64::max);
+    let mut peaks = find_peaks(&smoothed, 0.05 * top);
+    peaks.sort_by(|a, b| b.height.total_cmp(&a.height));
+    peaks.truncate(3);
+    peaks.sort_by_key(|p| p.index);
+    Differential {
+        points,
+        smoothed,
+        peaks,
+    }
+}
+
+/// dQ/dV of a step's grid: voltage bins of `bin_v`, smoothed with `sigma` bins.
+pub fn ica(grid: &ChargeGrid, bin_v: f64, sigma: f64) -> Differential {
+    differential(incremental_capacity(&grid.curve(), bin_v), sigma)
+}
+
+/// dV/dQ of a step's grid: charge bins of `bin_ah`, smoothed with `sigma` bins.
+pub fn dva(grid: &ChargeGrid, bin_ah: f64, sigma: f64) -> Differential {
+    differential(differential_voltage(grid, bin_ah), sigma)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -63,9 +63,7 @@ impl Default for AnalysisOptions {
     }
 }
 
-/// Charge grid resolution: 0.1 % of the rated capacity, up to 3 × rated.
-const GRID_FRACTION: f64 = 0.001;
-const GRID_MAX_POINTS: usize = 3001;
+use super::curves::{GRID_FRACTION, GRID_MAX_POINTS};
 /// Intervals remembered for the typical sampling interval.
 const INTERVAL_WINDOW: usize = 32;
 /// A gap is also at least this long, s.
@@ -743,61 +741,48 @@ impl<'a> Analyzer<'a> {
                 ));
                 continue;
             }
-            let curve = k.grid.curve();
-            let ica = curves::incremental_capacity(&curve, bin_v);
-            let ys: Vec<f64> = ica.iter().map(|p| p.1).collect();
-            let smooth = curves::gaussian_smooth(&ys, self.opts.ica_smooth_bins);
-            let top = smooth.iter().cloned().fold(0.0, f64::max);
-            let mut peaks = curves::find_peaks(&smooth, 0.05 * top);
-            peaks.sort_by(|a, b| b.height.total_cmp(&a.height));
-            peaks.truncate(3);
-            peaks.sort_by_key(|p| p.index);
+            let ica = curves::ica(&k.grid, bin_v, self.opts.ica_smooth_bins);
             sum.ica.push(IcaSummary {
                 step: k.step,
                 direction: dir.into(),
                 rate_c: rate,
                 bin_mv_per_cell: self.opts.ica_bin_v_per_cell * 1000.0,
                 smoothing_bins: self.opts.ica_smooth_bins,
-                peaks: peaks
+                peaks: ica
+                    .peaks
                     .iter()
                     .map(|p| PeakSummary {
-                        position: ica[p.index].0,
-                        position_per_cell: ica[p.index].0 / series,
+                        position: ica.points[p.index].0,
+                        position_per_cell: ica.points[p.index].0 / series,
                         height: p.height,
                         prominence: p.prominence,
                     })
                     .collect(),
             });
-            for (idx, (v, y)) in ica.iter().enumerate() {
+            for (idx, (v, y)) in ica.points.iter().enumerate() {
                 data.ica
-                    .push((k.step, dir.to_string(), *v, *y, smooth[idx]));
+                    .push((k.step, dir.to_string(), *v, *y, ica.smoothed[idx]));
             }
-            let dva = curves::differential_voltage(&k.grid, dva_bin);
-            let ys: Vec<f64> = dva.iter().map(|p| p.1).collect();
-            let smooth = curves::gaussian_smooth(&ys, self.opts.dva_smooth_bins);
-            let top = smooth.iter().cloned().fold(0.0, f64::max);
-            let mut peaks = curves::find_peaks(&smooth, 0.05 * top);
-            peaks.sort_by(|a, b| b.height.total_cmp(&a.height));
-            peaks.truncate(3);
-            peaks.sort_by_key(|p| p.index);
+            let dva = curves::dva(&k.grid, dva_bin, self.opts.dva_smooth_bins);
             sum.dva.push(DvaSummary {
                 step: k.step,
                 direction: dir.into(),
                 bin_ah: dva_bin,
                 smoothing_bins: self.opts.dva_smooth_bins,
-                peaks: peaks
+                peaks: dva
+                    .peaks
                     .iter()
                     .map(|p| PeakSummary {
-                        position: dva[p.index].0,
-                        position_per_cell: dva[p.index].0,
+                        position: dva.points[p.index].0,
+                        position_per_cell: dva.points[p.index].0,
                         height: p.height,
                         prominence: p.prominence,
                     })
                     .collect(),
             });
-            for (idx, (q, y)) in dva.iter().enumerate() {
+            for (idx, (q, y)) in dva.points.iter().enumerate() {
                 data.dva
-                    .push((k.step, dir.to_string(), *q, *y, smooth[idx]));
+                    .push((k.step, dir.to_string(), *q, *y, dva.smoothed[idx]));
             }
         }
         // Open-circuit voltage: the average of a slow charge from empty and

@@ -147,6 +147,45 @@ type Trace = (
     fn(&Sample) -> Option<f64>,
 );
 
+/// A differential curve: the binned values as dots, the smoothed curve,
+/// and its main peaks.
+fn differential_chart(b: &mut String, title: &str, x: &str, y: &str, d: &curves::Differential) {
+    if d.points.len() < 3 {
+        return;
+    }
+    let mut c = Chart::new(title, x, y);
+    c.series.push(Series {
+        name: "binned".into(),
+        points: d.points.clone(),
+        color: svg::GREY_,
+        mark: Mark::Dots,
+    });
+    c.series.push(Series {
+        name: "smoothed".into(),
+        points: d
+            .points
+            .iter()
+            .zip(&d.smoothed)
+            .map(|(p, y)| (p.0, *y))
+            .collect(),
+        color: svg::PURPLE_,
+        mark: Mark::Line,
+    });
+    if !d.peaks.is_empty() {
+        c.series.push(Series {
+            name: "main peaks".into(),
+            points: d
+                .peaks
+                .iter()
+                .map(|p| (d.points[p.index].0, p.height))
+                .collect(),
+            color: svg::RED_,
+            mark: Mark::Dots,
+        });
+    }
+    b.push_str(&svg::render(&c));
+}
+
 /// The report of one run.
 pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
     let mut b = String::new();
@@ -345,23 +384,48 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
             mark: Mark::Line,
         });
         b.push_str(&svg::render(&c));
-        // Incremental capacity with 10 mV/cell bins (common practice for
-        // a C/5 discharge; finer bins need a slower rate).
-        let bin = 0.010 * f64::from(s.pack.series);
-        let ica = curves::incremental_capacity(&curve, bin);
-        if ica.len() >= 3 {
-            let mut c = Chart::new(
-                &format!("Incremental capacity, {:.0} mV bins", bin * 1000.0),
+    }
+    // The differential curves the summary's peaks come from: the same
+    // grid, bins and smoothing as the analysis.
+    if let Some(cv) = &s.curves {
+        let series = f64::from(s.pack.series.max(1));
+        for i in &cv.ica {
+            let step: Vec<Sample> = samples
+                .iter()
+                .filter(|x| x.step == i.step)
+                .copied()
+                .collect();
+            let grid = curves::grid_of(&step, s.pack.rated_capacity_ah);
+            let d = curves::ica(&grid, i.bin_mv_per_cell / 1000.0 * series, i.smoothing_bins);
+            differential_chart(
+                &mut b,
+                &format!(
+                    "Incremental capacity, {} step {}: {} mV/cell bins, smoothed over {} bins",
+                    i.direction, i.step, i.bin_mv_per_cell, i.smoothing_bins
+                ),
                 "voltage (V)",
                 "dQ/dV (Ah/V)",
+                &d,
             );
-            c.series.push(Series {
-                name: "dQ/dV".into(),
-                points: ica,
-                color: svg::PURPLE_,
-                mark: Mark::LineAndDots,
-            });
-            b.push_str(&svg::render(&c));
+        }
+        for v in &cv.dva {
+            let step: Vec<Sample> = samples
+                .iter()
+                .filter(|x| x.step == v.step)
+                .copied()
+                .collect();
+            let grid = curves::grid_of(&step, s.pack.rated_capacity_ah);
+            let d = curves::dva(&grid, v.bin_ah, v.smoothing_bins);
+            differential_chart(
+                &mut b,
+                &format!(
+                    "Differential voltage, {} step {}: {:.3} Ah bins, smoothed over {} bins",
+                    v.direction, v.step, v.bin_ah, v.smoothing_bins
+                ),
+                "charge passed (Ah)",
+                "|dV/dQ| (V/Ah)",
+                &d,
+            );
         }
     }
     // Step table.
