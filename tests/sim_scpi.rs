@@ -184,3 +184,45 @@ async fn a_late_reply_is_never_taken_for_the_next_query() {
     );
     assert_eq!(s.query("MEAS:CURR?").await.unwrap(), "reply to MEAS:CURR?");
 }
+
+/// Answers every query at once with a CR-terminated reply (an instrument
+/// set to end its responses with CR).
+struct CrEcho;
+
+impl packbench::instrument::link::LineResponder for CrEcho {
+    fn respond(
+        &mut self,
+        line: &str,
+    ) -> Result<packbench::instrument::link::Response, std::io::Error> {
+        Ok(packbench::instrument::link::Response::Reply(format!(
+            "{line}-ok\r"
+        )))
+    }
+}
+
+#[tokio::test]
+async fn framing_follows_the_profile_terminator_and_delay() {
+    use packbench::instrument::link::{InMemoryLink, LineResponder};
+    use packbench::instrument::scpi::Framing;
+    use std::sync::Mutex;
+    let r: Arc<Mutex<dyn LineResponder>> = Arc::new(Mutex::new(CrEcho));
+    // The in-memory link ends replies with LF after the instrument's CR
+    // (a CR LF terminator); a session reading up to CR drops the LF left
+    // over at the start of the next reply.
+    let framing = Framing {
+        write_term: "\n".into(),
+        read_term: b'\r',
+        timeout: Duration::from_millis(200),
+        delay: Duration::from_millis(40),
+    };
+    let mut s = Session::with_framing("x", Box::new(InMemoryLink::new(r)), framing);
+    let t0 = std::time::Instant::now();
+    assert_eq!(s.query("A?").await.unwrap(), "A?-ok");
+    assert_eq!(s.query("B?").await.unwrap(), "B?-ok");
+    // The second exchange waited out the inter-command delay.
+    assert!(
+        t0.elapsed() >= Duration::from_millis(40),
+        "{:?}",
+        t0.elapsed()
+    );
+}

@@ -213,7 +213,9 @@ impl Session {
                     t.line(&self.name, '<', body);
                 }
                 let text = String::from_utf8_lossy(body);
-                return Ok(text.trim_end_matches('\r').to_string());
+                // A CR or LF left over from a two-character terminator
+                // belongs to no reply.
+                return Ok(text.trim_matches(['\r', '\n']).to_string());
             }
             if self.pending.len() > MAX_REPLY {
                 self.pending.clear();
