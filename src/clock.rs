@@ -47,6 +47,9 @@ impl Clock for SimClock {
     }
 }
 
+/// The last stretch of a paced wait spent yielding instead of on the timer, s.
+const FINE_WAIT_S: f64 = 0.002;
+
 /// Paced clock: run time = wall time × speed (speed 1 = real time).
 #[derive(Debug)]
 pub struct PacedClock {
@@ -67,9 +70,22 @@ impl Clock for PacedClock {
     fn now(&self) -> f64 {
         self.start.elapsed().as_secs_f64() * self.speed
     }
+    /// At (about) real time the timer sleeps until shortly before the
+    /// instant (its resolution is a millisecond and it may wake late), and
+    /// the last stretch is waited out by yielding the thread, so samples
+    /// keep their schedule to well under a millisecond. A sped-up clock
+    /// (a simulator on the other end) only uses the timer.
     fn sleep_until(&self, t: f64) -> futures::future::BoxFuture<'_, ()> {
-        let wait = ((t - self.now()) / self.speed).max(0.0);
-        Box::pin(tokio::time::sleep(Duration::from_secs_f64(wait)))
+        Box::pin(async move {
+            let fine = if self.speed <= 2.0 { FINE_WAIT_S } else { 0.0 };
+            let wait = ((t - self.now()) / self.speed).max(0.0);
+            if wait > fine {
+                tokio::time::sleep(Duration::from_secs_f64(wait - fine)).await;
+            }
+            while fine > 0.0 && self.now() < t {
+                std::thread::yield_now();
+            }
+        })
     }
     fn is_simulated(&self) -> bool {
         false
