@@ -413,6 +413,16 @@ pub async fn execute_sim(
     speed: Speed,
     stop: StopHandle,
 ) -> Result<RunReport, RunError> {
+    let (clock, links, speed_text) = new_sim_bench(p, cfg, speed);
+    execute_sim_links(p, cfg, clock, links, &speed_text, stop).await
+}
+
+/// A new simulated bench for a prepared test: its clock, links and pace.
+fn new_sim_bench(
+    p: &Prepared,
+    cfg: &SimConfig,
+    speed: Speed,
+) -> (Arc<dyn Clock>, sim::SimLinks, String) {
     let clock: Arc<dyn Clock> = match speed {
         Speed::Max => SimClock::new(),
         Speed::Factor(f) => PacedClock::new(f),
@@ -422,7 +432,7 @@ pub async fn execute_sim(
         Speed::Max => "max (simulation clock)".to_string(),
         Speed::Factor(f) => format!("{f}x real time"),
     };
-    execute_sim_links(p, cfg, clock, links, &speed_text, stop).await
+    (clock, links, speed_text)
 }
 
 /// Run on the embedded simulated bench with a station's own profiles (a
@@ -435,15 +445,7 @@ pub async fn execute_sim_station(
     source_profile: Profile,
     load_profile: Profile,
 ) -> Result<RunReport, RunError> {
-    let clock: Arc<dyn Clock> = match speed {
-        Speed::Max => SimClock::new(),
-        Speed::Factor(f) => PacedClock::new(f),
-    };
-    let links = sim::build(&p.pack, cfg, Arc::clone(&clock));
-    let speed_text = match speed {
-        Speed::Max => "max (simulation clock)".to_string(),
-        Speed::Factor(f) => format!("{f}x real time"),
-    };
+    let (clock, links, speed_text) = new_sim_bench(p, cfg, speed);
     run_sim_links(
         p,
         cfg,

@@ -748,16 +748,7 @@ impl<'a> Analyzer<'a> {
                 rate_c: rate,
                 bin_mv_per_cell: self.opts.ica_bin_v_per_cell * 1000.0,
                 smoothing_bins: self.opts.ica_smooth_bins,
-                peaks: ica
-                    .peaks
-                    .iter()
-                    .map(|p| PeakSummary {
-                        position: ica.points[p.index].0,
-                        position_per_cell: ica.points[p.index].0 / series,
-                        height: p.height,
-                        prominence: p.prominence,
-                    })
-                    .collect(),
+                peaks: peak_summaries(&ica, series),
             });
             for (idx, (v, y)) in ica.points.iter().enumerate() {
                 data.ica
@@ -769,16 +760,7 @@ impl<'a> Analyzer<'a> {
                 direction: dir.into(),
                 bin_ah: dva_bin,
                 smoothing_bins: self.opts.dva_smooth_bins,
-                peaks: dva
-                    .peaks
-                    .iter()
-                    .map(|p| PeakSummary {
-                        position: dva.points[p.index].0,
-                        position_per_cell: dva.points[p.index].0,
-                        height: p.height,
-                        prominence: p.prominence,
-                    })
-                    .collect(),
+                peaks: peak_summaries(&dva, 1.0),
             });
             for (idx, (q, y)) in dva.points.iter().enumerate() {
                 data.dva
@@ -827,6 +809,20 @@ impl<'a> Analyzer<'a> {
         }
         (sum, data)
     }
+}
+
+/// The main peaks of a differential curve; positions also per cell
+/// (`per` cells; 1 for a charge axis).
+fn peak_summaries(d: &curves::Differential, per: f64) -> Vec<PeakSummary> {
+    d.peaks
+        .iter()
+        .map(|p| PeakSummary {
+            position: d.points[p.index].0,
+            position_per_cell: d.points[p.index].0 / per,
+            height: p.height,
+            prominence: p.prominence,
+        })
+        .collect()
 }
 
 fn step_summary(info: &StepInfo, d: Option<&StepDone>) -> StepSummary {
