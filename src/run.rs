@@ -254,6 +254,13 @@ pub fn check_ranges(p: &LoadedProcedure, source: &Profile, load: &Profile) -> Re
                     }
                 }
             }
+            StepKind::Drain { current_limit_a } => {
+                if over(*current_limit_a, sr.current_max_a) {
+                    out(format!(
+                        "drain current limit {current_limit_a:.3} A is beyond the source's range"
+                    ));
+                }
+            }
             StepKind::Rest => {}
         }
     }

@@ -42,6 +42,13 @@ fn split(y0: f64, y1: f64, dt: f64) -> (f64, f64) {
 }
 
 impl Integrator {
+    /// Forget the last sample, keeping the sums: the next sample starts a
+    /// new segment and nothing is integrated across the break (a run
+    /// resumed after an interruption, when no current was flowing).
+    pub fn break_segment(&mut self) {
+        self.last = None;
+    }
+
     /// Add a sample (time s, voltage V, current A).
     pub fn push(&mut self, t: f64, v: f64, i: f64) {
         let p = v * i;

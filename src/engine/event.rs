@@ -78,6 +78,43 @@ pub enum Event {
         status: String,
         reason: Option<String>,
     },
+    /// Read before the first step, outputs off: the pack at rest and each
+    /// instrument's current reading with nothing flowing (its zero offset,
+    /// pack sign convention).
+    Preflight {
+        t_s: f64,
+        voltage_v: f64,
+        temperature_c: Option<f64>,
+        source_zero_a: Option<f64>,
+        load_zero_a: Option<f64>,
+        /// The zero offsets are subtracted from the current readings.
+        corrected: bool,
+    },
+    /// Something the operator should know that does not stop the run.
+    Warning {
+        t_s: f64,
+        step: u32,
+        message: String,
+    },
+    /// An alarm the run raises and goes on (e.g. low capacity).
+    Alarm {
+        t_s: f64,
+        step: u32,
+        kind: String,
+        message: String,
+    },
+    /// The run goes on after an interruption (`packbench resume`).
+    Resumed {
+        t_s: f64,
+        /// The step the run continues with.
+        step: u32,
+        /// Run time of the last sample before the interruption, s.
+        last_sample_t_s: f64,
+        /// Time between the interruption and the resume, s.
+        gap_s: f64,
+        /// How the step continues (the documented rule for its kind).
+        rule: String,
+    },
 }
 
 /// Where samples and events go. Errors stop the run safely.

@@ -10,9 +10,10 @@ pub mod safety;
 pub mod state;
 pub mod step;
 
+use crate::analysis::integrate::Integrator;
 use crate::clock::Clock;
 use crate::instrument::{ErrorKind, InstrumentError, Load, LoadSetting, Meter, Reading, Source};
-use crate::procedure::{DischargeMode, Plan, PlanStep, StepKind};
+use crate::procedure::{DischargeMode, EndCondition, Plan, PlanStep, StepKind};
 use crate::sample::Sample;
 use crate::truth::{GroundTruth, TruthCounters};
 use control::StopHandle;
@@ -79,6 +80,70 @@ pub struct RunOutcome {
     pub load_off_confirmed: bool,
     pub truth: Vec<TruthStep>,
     pub duration_s: f64,
+    pub timing: Timing,
+    pub zero: ZeroOffsets,
+}
+
+/// How well samples kept their schedule.
+#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize)]
+pub struct Timing {
+    /// Samples taken after a wait.
+    pub scheduled_samples: u64,
+    /// Of those, taken more than [`LATE_S`] after their time.
+    pub late_samples: u64,
+    /// The latest sample, s behind its time.
+    pub max_late_s: f64,
+}
+
+/// A sample is late when taken this long after its time, s.
+pub const LATE_S: f64 = 0.1;
+
+/// Each instrument's current reading with its output off (pack sign).
+#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize)]
+pub struct ZeroOffsets {
+    pub source_a: Option<f64>,
+    pub load_a: Option<f64>,
+}
+
+/// Readings averaged for a zero offset.
+pub const ZERO_READINGS: usize = 5;
+
+/// How a step that was interrupted goes on when a run resumes.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ResumePoint {
+    /// Position in the plan's steps of the step the run continues with.
+    pub position: usize,
+    /// Run time to continue at, s (after the last logged sample and the gap).
+    pub t_run_s: f64,
+    /// Run time of the last sample before the interruption, s.
+    pub last_sample_t_s: f64,
+    pub gap_s: f64,
+    /// What the interrupted step had done, when it goes on rather than
+    /// starting again.
+    pub carried: Option<Carried>,
+}
+
+/// Elapsed time and counted charge of an interrupted step that continues.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Carried {
+    pub elapsed_s: f64,
+    pub counters: Integrator,
+}
+
+/// The rule for each step kind when a run resumes inside the step.
+pub fn resume_rule(kind: &StepKind) -> &'static str {
+    match kind {
+        StepKind::Rest => "a rest restarts its timer",
+        StepKind::Charge { .. } => "a charge continues: same setpoints, the supply takes up constant current or its taper where the pack's voltage puts it; elapsed time and charge counted so far carry over (the dv/dt and peak-drop windows start afresh)",
+        StepKind::Discharge { .. } => "a discharge continues to its end condition; elapsed time and charge and energy counted so far carry over",
+        StepKind::Pulse { .. } => "a pulse starts again from its first level (a resistance reading needs a whole pulse)",
+        StepKind::Drain { .. } => "a drain measurement starts again (its voltage is read afresh)",
+    }
+}
+
+/// Whether a step kind goes on (true) or starts again (false) on resume.
+pub fn resume_continues(kind: &StepKind) -> bool {
+    matches!(kind, StepKind::Charge { .. } | StepKind::Discharge { .. })
 }
 
 enum Stop {
@@ -103,6 +168,10 @@ pub struct Engine<'a> {
     current_step: u32,
     step_open: bool,
     next_error_poll: f64,
+    timing: Timing,
+    zero: ZeroOffsets,
+    alarm_capacity_ah: Option<f64>,
+    resume: Option<ResumePoint>,
 }
 
 impl<'a> Engine<'a> {
@@ -129,20 +198,166 @@ impl<'a> Engine<'a> {
             current_step: 0,
             step_open: false,
             next_error_poll: ERROR_POLL_S,
+            timing: Timing::default(),
+            zero: ZeroOffsets::default(),
+            alarm_capacity_ah: None,
+            resume: None,
         }
+    }
+
+    /// Raise an alarm (an event, the run goes on) when the capacity step
+    /// reaches its cutoff having given less than this, Ah.
+    pub fn with_capacity_alarm(mut self, ah: Option<f64>) -> Self {
+        self.alarm_capacity_ah = ah;
+        self
+    }
+
+    /// Continue an interrupted run instead of starting at the first step.
+    pub fn resume_from(mut self, point: ResumePoint) -> Self {
+        self.t_start = self.clock.now() - point.t_run_s;
+        self.next_error_poll = point.t_run_s + ERROR_POLL_S;
+        self.resume = Some(point);
+        self
     }
 
     fn t(&self) -> f64 {
         self.clock.now() - self.t_start
     }
 
+    /// Wait until run time `t`, or less if a stop is asked for.
+    async fn wait_until(&mut self, t: f64) {
+        let at = self.t_start + t;
+        let stop = self.stop.clone();
+        tokio::select! {
+            _ = self.clock.sleep_until(at) => {}
+            _ = stop.wait() => {}
+        }
+    }
+
+    /// Before the first step, outputs off: read the pack at rest and each
+    /// instrument's zero; a pack outside the envelope is not driven.
+    async fn preflight(&mut self) -> Result<(), Stop> {
+        let (reading, temp) = self.measure().await?;
+        let st = &mut *self.station;
+        let mut zero = ZeroOffsets::default();
+        let avg = |v: &[f64]| v.iter().sum::<f64>() / v.len().max(1) as f64;
+        let mut src = Vec::new();
+        let mut ld = Vec::new();
+        for _ in 0..ZERO_READINGS {
+            src.push(
+                st.source
+                    .measure()
+                    .await
+                    .map_err(Stop::Instrument)?
+                    .current_a,
+            );
+            if !st.shared_link {
+                ld.push(st.load.measure().await.map_err(Stop::Instrument)?.current_a);
+            }
+        }
+        zero.source_a = Some(avg(&src));
+        zero.load_a = if st.shared_link {
+            zero.source_a
+        } else {
+            Some(avg(&ld))
+        };
+        self.zero = zero;
+        let policy = self.plan.offsets;
+        let t = self.t();
+        self.emit(Event::Preflight {
+            t_s: t,
+            voltage_v: reading.voltage_v,
+            temperature_c: temp,
+            source_zero_a: zero.source_a,
+            load_zero_a: zero.load_a,
+            corrected: policy.correct,
+        })?;
+        for (name, z) in [("source", zero.source_a), ("load", zero.load_a)] {
+            if let Some(z) = z {
+                if z.abs() > policy.warn_above_a {
+                    self.emit(Event::Warning {
+                        t_s: t,
+                        step: 0,
+                        message: format!(
+                            "the {name} reads {:.1} mA with its output off (above {:.1} mA){}",
+                            z * 1000.0,
+                            policy.warn_above_a * 1000.0,
+                            if policy.correct {
+                                "; subtracted from its readings"
+                            } else {
+                                "; not corrected (set [offsets] correct = true to subtract it)"
+                            }
+                        ),
+                    })?;
+                }
+            }
+        }
+        let s = Sample {
+            t_s: t,
+            step: 0,
+            cycle: 0,
+            voltage_v: reading.voltage_v,
+            current_a: 0.0,
+            temperature_c: temp,
+        };
+        if let Some(b) = safety::check(&s, &safety::StepSoFar::default(), &self.plan.envelope) {
+            self.emit(Event::Breach {
+                t_s: t,
+                step: 0,
+                limit: b.limit.into(),
+                value: b.value,
+                threshold: b.threshold,
+                message: format!("before the first step: {}", b.message),
+            })?;
+            return Err(Stop::Breach(format!(
+                "safety limit {} before the first step: {}",
+                b.limit, b.message
+            )));
+        }
+        Ok(())
+    }
+
+    /// The zero offset to subtract from a reading of the active instrument.
+    fn zero_of(&self, step: &PlanStep) -> f64 {
+        let correct = self.plan.offsets.correct || matches!(step.kind, StepKind::Drain { .. });
+        if !correct {
+            return 0.0;
+        }
+        match self.active {
+            Active::Source => self.zero.source_a.unwrap_or(0.0),
+            Active::Load => self.zero.load_a.unwrap_or(0.0),
+            Active::None => 0.0,
+        }
+    }
+
     /// Run every step, then stop safely whatever happened.
     pub async fn run(mut self) -> RunOutcome {
         let mut state = RunState::Ready;
-        let _ = self.sink.event(&Event::RunStart {
-            t_s: 0.0,
-            steps: self.plan.steps.len() as u32,
-        });
+        match &self.resume {
+            None => {
+                let _ = self.sink.event(&Event::RunStart {
+                    t_s: 0.0,
+                    steps: self.plan.steps.len() as u32,
+                });
+            }
+            Some(r) => {
+                let step = self.plan.steps.get(r.position);
+                let _ = self.sink.event(&Event::Resumed {
+                    t_s: r.t_run_s,
+                    step: step.map(|s| s.index).unwrap_or(0),
+                    last_sample_t_s: r.last_sample_t_s,
+                    gap_s: r.gap_s,
+                    rule: match (step, &r.carried) {
+                        (Some(s), Some(_)) => resume_rule(&s.kind).to_string(),
+                        (Some(s), None) if resume_continues(&s.kind) => {
+                            "the step had not started: it starts from the beginning".to_string()
+                        }
+                        (Some(s), None) => resume_rule(&s.kind).to_string(),
+                        (None, _) => "no step left to run".to_string(),
+                    },
+                });
+            }
+        }
         state = state.next(Trigger::Start).unwrap_or(state);
         let result = AssertUnwindSafe(self.run_steps()).catch_unwind().await;
         let (trigger, reason, interrupted) = match result {
@@ -224,6 +439,8 @@ impl<'a> Engine<'a> {
             load_off_confirmed: load_ok,
             truth: std::mem::take(&mut self.truth_steps),
             duration_s: self.t(),
+            timing: self.timing,
+            zero: self.zero,
         }
     }
 
@@ -465,17 +682,29 @@ impl<'a> Engine<'a> {
 
     async fn run_steps(&mut self) -> Result<(), Stop> {
         let plan = self.plan;
-        for st in &plan.steps {
-            self.run_step(st).await?;
+        self.preflight().await?;
+        let (from, mut carried) = match &self.resume {
+            Some(r) => (r.position, r.carried),
+            None => (0, None),
+        };
+        for st in plan.steps.iter().skip(from) {
+            self.run_step(st, carried.take()).await?;
         }
         self.switch_off_active().await?;
         Ok(())
     }
 
-    async fn run_step(&mut self, st: &PlanStep) -> Result<(), Stop> {
+    async fn run_step(&mut self, st: &PlanStep, carried: Option<Carried>) -> Result<(), Stop> {
         self.current_step = st.index;
         self.step_open = true;
         let t0 = self.t();
+        if carried.is_none() {
+            self.step_start_event(st, t0)?;
+        }
+        self.run_step_body(st, carried, t0).await
+    }
+
+    fn step_start_event(&mut self, st: &PlanStep, t0: f64) -> Result<(), Stop> {
         self.emit(Event::StepStart {
             t_s: t0,
             step: st.index,
@@ -486,7 +715,15 @@ impl<'a> Engine<'a> {
             name: st.name.clone(),
             description: st.kind.to_string(),
             result: st.result.map(|r| r.name().to_string()),
-        })?;
+        })
+    }
+
+    async fn run_step_body(
+        &mut self,
+        st: &PlanStep,
+        carried: Option<Carried>,
+        t0: f64,
+    ) -> Result<(), Stop> {
         let env = &self.plan.envelope;
         // Pulse levels as (end time, drive).
         let mut levels: Vec<(f64, Active, Drive)> = Vec::new();
@@ -512,6 +749,18 @@ impl<'a> Engine<'a> {
                 }),
             ),
             StepKind::Rest => (Active::None, Drive::Off),
+            StepKind::Drain { current_limit_a } => {
+                // Hold the pack at its own voltage, read with outputs off.
+                self.switch_off_active().await?;
+                let (r, _) = self.measure().await?;
+                (
+                    Active::Source,
+                    Drive::Charge {
+                        voltage_v: r.voltage_v,
+                        current_a: *current_limit_a,
+                    },
+                )
+            }
             StepKind::Pulse { levels: ls } => {
                 let mut end = t0;
                 for l in ls {
@@ -533,19 +782,37 @@ impl<'a> Engine<'a> {
         }
         self.truth_open = self.truth.as_ref().map(|t| t.counters());
         let mut tracker = StepTracker::new(self.t());
+        if let Some(c) = carried {
+            // Elapsed time and counts go on from the log; nothing is
+            // integrated across the interruption.
+            tracker.t0 = self.t() - c.elapsed_s;
+            tracker.counters = c.counters;
+            tracker.counters.break_segment();
+        }
         let mut level = 0usize;
         let every = st.sample_every_s.unwrap_or(self.plan.sample_every_s);
+        let fine = self.plan.fine.filter(|f| f.every_s < every);
         let time_limit = tracker.time_limit(st);
         let cap_time = tracker.t0 + env.step_time_max_s;
+        let mut scheduled: Option<f64> = None;
+        let mut prev: Option<Sample> = None;
         loop {
             let t = self.t();
+            if let Some(due) = scheduled.take() {
+                let late = t - due;
+                self.timing.scheduled_samples += 1;
+                if late > LATE_S {
+                    self.timing.late_samples += 1;
+                }
+                self.timing.max_late_s = self.timing.max_late_s.max(late);
+            }
             let (reading, temp) = self.measure().await?;
             let s = Sample {
                 t_s: t,
                 step: st.index,
                 cycle: st.cycle,
                 voltage_v: reading.voltage_v,
-                current_a: reading.current_a,
+                current_a: reading.current_a - self.zero_of(st),
                 temperature_c: temp,
             };
             self.sink.sample(&s).map_err(Stop::Log)?;
@@ -570,6 +837,7 @@ impl<'a> Engine<'a> {
                 )));
             }
             if let Some((kind, cond)) = tracker.end_reached(st) {
+                self.capacity_alarm(st, kind, &tracker, t)?;
                 return self.end_step(t, st.index, kind, cond.to_string());
             }
             if !levels.is_empty() && t >= levels[level].0 - 1e-9 {
@@ -600,6 +868,12 @@ impl<'a> Engine<'a> {
             // shift it.
             let k = ((t - tracker.t0) / every + 1e-9).floor() + 1.0;
             let mut next = tracker.t0 + k * every;
+            if let Some(f) = fine {
+                if near_end(st, &s, prev.as_ref(), every, f.within_fraction) {
+                    next = next.min(t + f.every_s);
+                }
+            }
+            prev = Some(s);
             if let Some(tl) = time_limit {
                 if tl > t + 1e-9 {
                     next = next.min(tl);
@@ -611,9 +885,63 @@ impl<'a> Engine<'a> {
             if cap_time > t + 1e-9 {
                 next = next.min(cap_time + 1e-3);
             }
-            self.clock.sleep_until(self.t_start + next).await;
+            scheduled = Some(next);
+            self.wait_until(next).await;
+            if self.stop.stop_requested() {
+                return Err(Stop::Interrupted);
+            }
         }
     }
+
+    /// The low-capacity alarm: the capacity step reached its cutoff with
+    /// less than the threshold. An event; the run goes on.
+    fn capacity_alarm(
+        &mut self,
+        st: &PlanStep,
+        kind: EndKind,
+        tracker: &StepTracker,
+        t: f64,
+    ) -> Result<(), Stop> {
+        let (Some(limit), Some(crate::procedure::ResultTag::Capacity)) =
+            (self.alarm_capacity_ah, st.result)
+        else {
+            return Ok(());
+        };
+        let got = tracker.counters.ah_out;
+        if kind == EndKind::VoltageBelow && got < limit {
+            self.emit(Event::Alarm {
+                t_s: t,
+                step: st.index,
+                kind: "low_capacity".into(),
+                message: format!(
+                    "low capacity: {got:.3} Ah to the cutoff, under the alarm threshold {limit:.3} Ah"
+                ),
+            })?;
+        }
+        Ok(())
+    }
+}
+
+/// Whether a step is near one of its ends: a voltage end within the given
+/// fraction of its threshold or, at the present rate of change, less than
+/// three base intervals away; a charge or energy end less than three base
+/// intervals away at the present current.
+pub fn near_end(st: &PlanStep, s: &Sample, prev: Option<&Sample>, every: f64, within: f64) -> bool {
+    let horizon = 3.0 * every;
+    let rate = prev
+        .filter(|p| s.t_s > p.t_s && p.step == s.step)
+        .map(|p| (s.voltage_v - p.voltage_v) / (s.t_s - p.t_s));
+    st.ends.iter().any(|c| match *c {
+        EndCondition::VoltageBelow { voltage_v } => {
+            s.voltage_v <= voltage_v * (1.0 + within)
+                || rate.is_some_and(|r| r < 0.0 && (s.voltage_v - voltage_v) / -r < horizon)
+        }
+        EndCondition::VoltageAbove { voltage_v } => {
+            s.voltage_v >= voltage_v * (1.0 - within)
+                || rate.is_some_and(|r| r > 0.0 && (voltage_v - s.voltage_v) / r < horizon)
+        }
+        _ => false,
+    })
 }
 
 #[derive(Debug, Clone, Copy, PartialEq)]

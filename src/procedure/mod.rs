@@ -7,7 +7,8 @@ pub mod raw;
 pub mod validate;
 
 pub use plan::{
-    DischargeMode, EndCondition, Envelope, Plan, PlanStep, PulseLevel, ResultTag, StepKind,
+    DischargeMode, EndCondition, Envelope, FineSampling, OffsetPolicy, Plan, PlanStep, PulseLevel,
+    ResultTag, StepKind,
 };
 
 use crate::location::{InputErrors, LocatedError, Location};

@@ -52,6 +52,12 @@ pub enum StepKind {
     Pulse {
         levels: Vec<PulseLevel>,
     },
+    /// Standby drain: the source holds the pack at its own open-circuit
+    /// voltage (read as the step starts) with a small current limit; what
+    /// it then supplies is what the pack's own electronics draw.
+    Drain {
+        current_limit_a: f64,
+    },
 }
 
 impl StepKind {
@@ -61,6 +67,7 @@ impl StepKind {
             StepKind::Discharge { .. } => "discharge",
             StepKind::Rest => "rest",
             StepKind::Pulse { .. } => "pulse",
+            StepKind::Drain { .. } => "drain",
         }
     }
 }
@@ -178,6 +185,39 @@ impl PlanStep {
     }
 }
 
+/// Finer sampling near a step's end.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct FineSampling {
+    /// The finer interval, s.
+    pub every_s: f64,
+    /// A voltage end is near within this fraction of its threshold.
+    pub within_fraction: f64,
+}
+
+/// Default nearness of a voltage end for fine sampling (3 %).
+pub const FINE_WITHIN_DEFAULT: f64 = 0.03;
+/// Default zero-offset warning threshold, A (10 mA; common practice for a
+/// bench load's zero on a 10 A range, about 0.1 % of full scale).
+pub const OFFSET_WARN_DEFAULT_A: f64 = 0.010;
+
+/// What to do with the instruments' zero offsets, read before the run.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct OffsetPolicy {
+    /// Warn above this magnitude, A.
+    pub warn_above_a: f64,
+    /// Subtract each instrument's zero reading from its current readings.
+    pub correct: bool,
+}
+
+impl Default for OffsetPolicy {
+    fn default() -> Self {
+        OffsetPolicy {
+            warn_above_a: OFFSET_WARN_DEFAULT_A,
+            correct: false,
+        }
+    }
+}
+
 /// A validated, pack-resolved procedure.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct Plan {
@@ -185,6 +225,9 @@ pub struct Plan {
     pub pack: PackSpec,
     pub envelope: Envelope,
     pub sample_every_s: f64,
+    /// Finer sampling near step ends, when the procedure asks for it.
+    pub fine: Option<FineSampling>,
+    pub offsets: OffsetPolicy,
     pub steps: Vec<PlanStep>,
 }
 
@@ -217,6 +260,11 @@ impl fmt::Display for StepKind {
                 }
             },
             StepKind::Rest => write!(f, "rest"),
+            StepKind::Drain { current_limit_a } => write!(
+                f,
+                "standby drain (hold the open-circuit voltage, limit {:.0} mA)",
+                current_limit_a * 1000.0
+            ),
             StepKind::Pulse { levels } => {
                 write!(f, "pulse")?;
                 for l in levels {
@@ -259,7 +307,26 @@ impl fmt::Display for Plan {
             e.charge_max_ah,
             HumanDuration(e.step_time_max_s)
         )?;
-        writeln!(f, "Sampling: every {} s", self.sample_every_s)?;
+        write!(f, "Sampling: every {} s", self.sample_every_s)?;
+        if let Some(fine) = self.fine {
+            write!(
+                f,
+                ", every {} s near a step's end (voltage within {} %)",
+                fine.every_s,
+                fine.within_fraction * 100.0
+            )?;
+        }
+        writeln!(f)?;
+        writeln!(
+            f,
+            "Zero offsets: warn above {:.1} mA{}",
+            self.offsets.warn_above_a * 1000.0,
+            if self.offsets.correct {
+                ", subtracted from the current readings"
+            } else {
+                ""
+            }
+        )?;
         for s in &self.steps {
             write!(
                 f,

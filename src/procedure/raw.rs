@@ -13,6 +13,7 @@ pub struct RawProcedure {
     pub description: Option<Text>,
     pub envelope: Option<Spanned<RawEnvelope>>,
     pub sampling: Option<Spanned<RawSampling>>,
+    pub offsets: Option<Spanned<RawOffsets>>,
     #[serde(default)]
     pub phase: Vec<Spanned<RawPhase>>,
 }
@@ -32,7 +33,21 @@ pub struct RawEnvelope {
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct RawSampling {
-    pub every: Text,
+    pub every: Option<Text>,
+    /// The finer interval used when a step nears its end.
+    pub fine: Option<Text>,
+    /// How near a voltage end counts as near, e.g. "3%".
+    pub fine_within: Option<Text>,
+}
+
+/// Zero offsets read before the run with the outputs off.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawOffsets {
+    /// Warn when an instrument reads more than this with its output off.
+    pub warn_above: Option<Text>,
+    /// Subtract each instrument's zero reading from its current readings.
+    pub correct: Option<Spanned<bool>>,
 }
 
 #[derive(Debug, Deserialize)]

@@ -15,6 +15,8 @@ use toml::Spanned;
 pub const MAX_STEPS: usize = 100_000;
 /// The shortest sampling interval accepted.
 pub const MIN_SAMPLE_S: f64 = 0.01;
+/// A drain step's current limit when it gives none, A.
+pub const DRAIN_LIMIT_DEFAULT_A: f64 = 0.1;
 
 /// A validated step before expansion: kind, ends, result tag, name.
 type BuiltStep = (
@@ -301,6 +303,7 @@ fn reachable(kind: &StepKind, c: &EndCondition, env: &Envelope) -> bool {
         (_, E::Time { seconds }) => *seconds > 0.0,
         (StepKind::Rest, E::Settled { volts_per_s }) => *volts_per_s > 0.0,
         (StepKind::Rest, _) => false,
+        (StepKind::Drain { .. }, _) => false,
         (_, E::TemperatureAbove { .. }) => false,
         (StepKind::Pulse { .. }, _) => true,
         (_, E::Charge { ah }) => *ah > 0.0,
@@ -522,6 +525,25 @@ fn build_step(
             }
             StepKind::Rest
         }
+        "drain" => {
+            for (v, k) in [
+                (&st.voltage, "voltage"),
+                (&st.power, "power"),
+                (&st.resistance, "resistance"),
+                (&st.mode, "mode"),
+            ] {
+                forbid(cx, v, k);
+            }
+            // The source's current limit while it holds the voltage: small,
+            // so a wrong voltage cannot push much charge either way.
+            let limit = match &st.current {
+                Some(t) => current_sp(cx, t)?,
+                None => DRAIN_LIMIT_DEFAULT_A.min(env.current_max_a),
+            };
+            StepKind::Drain {
+                current_limit_a: limit,
+            }
+        }
         "pulse" => {
             for (v, k) in [
                 (&st.current, "current"),
@@ -575,7 +597,9 @@ fn build_step(
         other => {
             cx.err(
                 &st.kind.span(),
-                format!("unknown step kind '{other}'; expected charge, discharge, rest or pulse"),
+                format!(
+                    "unknown step kind '{other}'; expected charge, discharge, rest, pulse or drain"
+                ),
             );
             return None;
         }
@@ -655,6 +679,7 @@ fn build_step(
                 StepKind::Charge { .. } => "a charge step can end on current < (taper below its current), voltage > (below its voltage limit), charge >, energy >, peak_drop > or time >",
                 StepKind::Discharge { .. } => "a discharge step can end on voltage < (above voltage_min), charge >, energy > or time >",
                 StepKind::Rest => "a rest can end on time > or dv/dt <",
+                StepKind::Drain { .. } => "a drain step ends on time > (it measures over a set time)",
                 StepKind::Pulse { .. } => "",
             };
             cx.err(
@@ -691,10 +716,16 @@ fn build(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<Plan> {
         return None;
     }
     let env = build_envelope(cx, raw, pack);
-    let every = match &raw.sampling {
-        Some(s) => sample_interval(cx, &s.get_ref().every),
+    let every = match raw
+        .sampling
+        .as_ref()
+        .and_then(|s| s.get_ref().every.as_ref())
+    {
+        Some(t) => sample_interval(cx, t),
         None => Some(1.0),
     };
+    let fine = build_fine(cx, raw, every);
+    let offsets = build_offsets(cx, raw);
     if raw.phase.is_empty() {
         cx.err(
             &(0..0),
@@ -790,6 +821,78 @@ fn build(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<Plan> {
         pack: pack.clone(),
         envelope: env,
         sample_every_s: every,
+        fine,
+        offsets,
         steps,
     })
+}
+
+/// `[sampling] fine` and `fine_within`.
+fn build_fine(cx: &mut Ctx, raw: &RawProcedure, every: Option<f64>) -> Option<FineSampling> {
+    let s = raw.sampling.as_ref()?.get_ref();
+    let Some(t) = &s.fine else {
+        if let Some(w) = &s.fine_within {
+            cx.err(
+                &w.span(),
+                "fine_within needs fine = \"...\" (the finer interval)",
+            );
+        }
+        return None;
+    };
+    let fine = sample_interval(cx, t)?;
+    if every.is_some_and(|e| fine >= e) {
+        cx.err(
+            &t.span(),
+            format!(
+                "the fine interval must be shorter than the base interval ({} s), got '{}'",
+                every.unwrap_or(0.0),
+                t.get_ref()
+            ),
+        );
+        return None;
+    }
+    let within = match &s.fine_within {
+        None => FINE_WITHIN_DEFAULT,
+        Some(w) => match units::parse(w.get_ref()) {
+            Ok(units::Quantity::Percent(p)) if p > 0.0 && p <= 50.0 => p / 100.0,
+            _ => {
+                cx.err(
+                    &w.span(),
+                    format!(
+                        "fine_within must be a percentage between 0 and 50 %, got '{}'",
+                        w.get_ref()
+                    ),
+                );
+                return None;
+            }
+        },
+    };
+    Some(FineSampling {
+        every_s: fine,
+        within_fraction: within,
+    })
+}
+
+/// `[offsets] warn_above` and `correct`.
+fn build_offsets(cx: &mut Ctx, raw: &RawProcedure) -> OffsetPolicy {
+    let mut p = OffsetPolicy::default();
+    let Some(o) = &raw.offsets else { return p };
+    let o = o.get_ref();
+    if let Some(t) = &o.warn_above {
+        match units::current(t.get_ref()) {
+            Ok(units::CurrentSpec::Amps(a)) if a > 0.0 && a.is_finite() => p.warn_above_a = a,
+            Ok(_) => cx.err(
+                &t.span(),
+                format!(
+                    "warn_above must be a current above zero in A or mA, got '{}'",
+                    t.get_ref()
+                ),
+            ),
+            Err(e) => cx.err(&t.span(), e.to_string()),
+        }
+    }
+    if let Some(c) = &o.correct {
+        p.correct = *c.get_ref();
+    }
+    p
 }

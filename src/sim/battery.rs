@@ -210,6 +210,8 @@ pub struct PackCondition {
     pub resistance_factor: f64,
     pub initial_soc: f64,
     pub ambient_c: f64,
+    /// Current the pack's own electronics draw from its cells, A.
+    pub standby_drain_a: f64,
 }
 
 impl Default for PackCondition {
@@ -219,6 +221,7 @@ impl Default for PackCondition {
             resistance_factor: 1.25,
             initial_soc: 0.5,
             ambient_c: 25.0,
+            standby_drain_a: 0.0,
         }
     }
 }
@@ -241,6 +244,9 @@ pub struct PackModel {
     pub ambient_c: f64,
     /// Extra heat from an injected fault, W (whole pack).
     pub fault_heat_w: f64,
+    /// The pack's electronics (behind its terminals) draw this from the
+    /// cells all the time, A.
+    pub drain_a: f64,
 }
 
 impl PackModel {
@@ -257,6 +263,7 @@ impl PackModel {
             temperature_c: cond.ambient_c,
             ambient_c: cond.ambient_c,
             fault_heat_w: 0.0,
+            drain_a: cond.standby_drain_a.max(0.0),
         }
     }
 
@@ -302,8 +309,10 @@ impl PackModel {
             + self.params.docv_dt_v_per_k * (self.temperature_c - 25.0)
     }
 
-    /// Pack terminal voltage at a pack current (positive = charging).
+    /// Pack terminal voltage at a pack current (positive = charging). The
+    /// cells carry the terminal current less the electronics' drain.
     pub fn terminal_voltage(&self, current: f64) -> f64 {
+        let current = current - self.drain_a;
         self.series
             * (self.emf_cell()
                 + self.overvoltage(current)
@@ -371,8 +380,11 @@ impl PackModel {
             return (0.0, 0.0);
         }
         let v_term = self.terminal_voltage(current);
-        let ah = current * dt / 3600.0;
+        let ah_terminal = current * dt / 3600.0;
         let wh = v_term * current * dt / 3600.0;
+        // The cells also feed the pack's own electronics.
+        let current = current - self.drain_a;
+        let ah = current * dt / 3600.0;
         // Charge that reaches the active material.
         let stored = if current > 0.0 {
             let p = &self.params;
@@ -413,7 +425,7 @@ impl PackModel {
         let t_inf = self.ambient_c + heat / g.max(1e-12);
         let a = (-dt * g / c_th.max(1e-12)).exp();
         self.temperature_c = t_inf + (self.temperature_c - t_inf) * a;
-        (ah, wh)
+        (ah_terminal, wh)
     }
 }
 
@@ -445,6 +457,7 @@ mod tests {
                 resistance_factor: 1.0,
                 initial_soc: 0.5,
                 ambient_c: 25.0,
+                standby_drain_a: 0.0,
             },
         )
     }

@@ -111,6 +111,7 @@ impl SimBench {
             resistance_factor: cfg.pack.resistance_factor,
             initial_soc: cfg.pack.initial_soc,
             ambient_c: cfg.pack.ambient_c,
+            standby_drain_a: cfg.pack.standby_drain_a,
         };
         let last_t = clock.now();
         SimBench {

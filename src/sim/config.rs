@@ -34,6 +34,8 @@ pub struct PackConfig {
     /// State of charge when the bench is switched on (0..1).
     pub initial_soc: f64,
     pub ambient_c: f64,
+    /// Current the pack's own electronics draw all the time, A.
+    pub standby_drain_a: f64,
 }
 
 impl Default for PackConfig {
@@ -43,6 +45,7 @@ impl Default for PackConfig {
             resistance_factor: 1.25,
             initial_soc: 0.5,
             ambient_c: 25.0,
+            standby_drain_a: 0.0,
         }
     }
 }
