@@ -135,6 +135,60 @@ pub fn build_summary(
         pulse_resistance: a.pulse,
         gaps: a.gaps,
         log: a.quality,
+        standby_drain: a.standby_drain,
+        preflight: None,
+        resumed: Vec::new(),
+        alarms: Vec::new(),
+    }
+}
+
+/// What the events add to a summary: the preflight readings, resumes,
+/// alarms and warnings.
+fn add_event_records(s: &mut Summary, events: &[Event]) {
+    for e in events {
+        match e {
+            Event::Preflight {
+                voltage_v,
+                temperature_c,
+                source_zero_a,
+                load_zero_a,
+                corrected,
+                ..
+            } => {
+                // The first preflight is the run's; a resume's is newer.
+                s.preflight = Some(crate::runlog::Preflight {
+                    voltage_v: *voltage_v,
+                    temperature_c: *temperature_c,
+                    source_zero_ma: source_zero_a.map(|a| a * 1000.0),
+                    load_zero_ma: load_zero_a.map(|a| a * 1000.0),
+                    corrected: *corrected,
+                })
+            }
+            Event::Resumed {
+                t_s,
+                step,
+                last_sample_t_s,
+                gap_s,
+                rule,
+            } => s.resumed.push(crate::runlog::ResumeNote {
+                t_s: *t_s,
+                step: *step,
+                last_sample_t_s: *last_sample_t_s,
+                gap_s: *gap_s,
+                rule: rule.clone(),
+            }),
+            Event::Alarm { message, .. } => s.alarms.push(message.clone()),
+            Event::Warning { message, .. } => s.warnings.push(message.clone()),
+            _ => {}
+        }
+    }
+    if !s.resumed.is_empty() {
+        let down: f64 = s.resumed.iter().map(|r| r.gap_s).sum();
+        s.warnings.push(format!(
+            "the run was resumed {} time(s) after an interruption ({:.0} s down in all); nothing is counted across an interruption",
+            s.resumed.len(),
+            down
+        ));
     }
 }
 
@@ -194,6 +248,15 @@ pub fn summarize_run_with_curves(
     let events = read_events(&dir.join(EVENTS_JSONL))?;
     let infos = step_infos(&events);
     let mut an = Analyzer::new(ctx.pack, &infos, opts);
+    an.set_breaks(
+        events
+            .iter()
+            .filter_map(|e| match e {
+                Event::Resumed { t_s, .. } => Some(*t_s),
+                _ => None,
+            })
+            .collect(),
+    );
     let mut feed = Feed::new();
     let rep = stream_log(&dir.join(SAMPLES_CSV), &LogFormat::default(), |r: Row| {
         feed.note(r.t_s);
@@ -226,10 +289,9 @@ pub fn summarize_run_with_curves(
     });
     let pack_dir = dir.parent().unwrap_or(dir);
     let curves = std::mem::take(&mut a.curve_data);
-    Ok((
-        build_summary(a, ctx, outcome, feed.n, feed.duration(), Some(pack_dir)),
-        curves,
-    ))
+    let mut s = build_summary(a, ctx, outcome, feed.n, feed.duration(), Some(pack_dir));
+    add_event_records(&mut s, &events);
+    Ok((s, curves))
 }
 
 /// What an imported log is and how to read it.

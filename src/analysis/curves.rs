@@ -103,8 +103,15 @@ impl ChargeGrid {
         self.end = None;
     }
 
+    /// Nothing is integrated from the last sample to the next (a run
+    /// resumed after an interruption): the grid goes on from its count.
+    pub fn break_segment(&mut self) {
+        self.last = None;
+    }
+
     pub fn push(&mut self, t: f64, v: f64, i: f64) {
         match self.last {
+            None if !self.points.is_empty() => {}
             None => self.points.push((0.0, v)),
             Some((t0, v0, i0)) => {
                 let dq = ((i0 + i) * 0.5 * (t - t0) / 3600.0).abs();

@@ -251,6 +251,49 @@ pub struct Analysis {
     pub recalibration: Option<Recalibration>,
     pub gaps: Vec<Gap>,
     pub quality: LogQuality,
+    pub standby_drain: Option<DrainResult>,
+}
+
+/// A standby-drain measurement: what the source supplied to hold the pack
+/// at its own voltage, averaged over the second half of the step (the first
+/// half lets the pack's relaxation die away).
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct DrainResult {
+    pub step: u32,
+    /// Mean drain, mA.
+    pub current_ma: f64,
+    /// The same as a share of the capacity per month (30.44 days), %.
+    pub pct_per_month: f64,
+    /// The capacity the share is of: measured in this run, else rated, Ah.
+    pub capacity_ref_ah: f64,
+    /// The averaging window, s.
+    pub window_s: f64,
+    pub samples: usize,
+}
+
+/// Hours in an average month (365.25 / 12 days).
+pub const HOURS_PER_MONTH: f64 = 730.5;
+
+/// A drain in mA as % of a capacity lost per month.
+pub fn drain_pct_per_month(current_ma: f64, capacity_ah: f64) -> f64 {
+    current_ma / 1000.0 * HOURS_PER_MONTH / capacity_ah * 100.0
+}
+
+/// Mean current over the second half of a series of (t, I) points, by the
+/// trapezoid (None under two points in the window).
+pub fn second_half_mean(points: &[(f64, f64)]) -> Option<(f64, f64, usize)> {
+    let (first, last) = (points.first()?, points.last()?);
+    let mid = 0.5 * (first.0 + last.0);
+    let w: Vec<&(f64, f64)> = points.iter().filter(|p| p.0 >= mid).collect();
+    if w.len() < 2 {
+        return None;
+    }
+    let mut q = 0.0;
+    for pair in w.windows(2) {
+        q += (pair[0].1 + pair[1].1) * 0.5 * (pair[1].0 - pair[0].0);
+    }
+    let span = w[w.len() - 1].0 - w[0].0;
+    (span > 0.0).then(|| (q / span, span, w.len()))
 }
 
 /// State of health, % of rated (fact sheet §6: SOH = C_measured / C_rated × 100).

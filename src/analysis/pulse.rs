@@ -147,6 +147,12 @@ impl PulseTracker {
 
     /// Add a sample. `ah_since_full`: charge taken out since the last full
     /// charge, if known.
+    /// No edge is read across a break in the log (a resumed run).
+    pub fn break_segment(&mut self) {
+        self.close();
+        self.prev = None;
+    }
+
     pub fn push(&mut self, t: f64, v: f64, i: f64, step: u32, ah_since_full: Option<f64>) {
         if let Some(o) = self.open.as_mut() {
             if is_jump(o.level, i, self.min_edge_a) {

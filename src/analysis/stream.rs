@@ -92,6 +92,8 @@ struct StepAcc {
     level_i: f64,
     grid: ChargeGrid,
     ah_since_full_at_start: Option<f64>,
+    /// (t, I) of a drain step, for its second-half mean.
+    drain: Option<Vec<(f64, f64)>>,
 }
 
 impl StepAcc {
@@ -111,6 +113,7 @@ impl StepAcc {
             level_i: 0.0,
             grid,
             ah_since_full_at_start: ah_since_full,
+            drain: None,
         }
     }
 
@@ -135,8 +138,16 @@ impl StepAcc {
         }
         self.last = Some(*s);
         self.n += 1;
+        if let Some(d) = self.drain.as_mut() {
+            if d.len() < MAX_DRAIN_POINTS {
+                d.push((s.t_s, s.current_a));
+            }
+        }
     }
 }
+
+/// Most points kept of a drain step (a week at 1 s).
+const MAX_DRAIN_POINTS: usize = 604_800;
 
 /// Figures of one step, merged over its stretches.
 #[derive(Debug, Clone)]
@@ -186,6 +197,11 @@ pub struct Analyzer<'a> {
     seen_discharge: bool,
     /// Charge delivered from the last full charge to a discharge cutoff.
     full_to_empty_ah: Option<f64>,
+    /// Run times where the log resumes after an interruption: nothing is
+    /// integrated across them (no current flowed while the run was down).
+    breaks: Vec<f64>,
+    /// Points of the drain step being read, kept across its stretches.
+    drain_points: Option<(u32, Vec<(f64, f64)>)>,
 }
 
 impl<'a> Analyzer<'a> {
@@ -222,7 +238,15 @@ impl<'a> Analyzer<'a> {
             cycle: 0,
             seen_discharge: false,
             full_to_empty_ah: None,
+            breaks: Vec::new(),
+            drain_points: None,
         }
+    }
+
+    /// Run times at which the log resumes after an interruption.
+    pub fn set_breaks(&mut self, mut breaks: Vec<f64>) {
+        breaks.sort_by(f64::total_cmp);
+        self.breaks = breaks;
     }
 
     /// Add (or complete) the record of a step; a foreign log's steps are
@@ -263,12 +287,28 @@ impl<'a> Analyzer<'a> {
     /// Add the next sample of the log.
     pub fn push(&mut self, s: &Sample) {
         self.quality.rows += 1;
+        let mut resumed = false;
         if let Some(p) = self.prev {
             let dt = s.t_s - p.t_s;
             if dt < 0.0 {
                 self.quality.out_of_order_dropped += 1;
                 return;
             }
+            resumed = self.breaks.iter().any(|b| p.t_s < *b && *b <= s.t_s);
+        }
+        if resumed {
+            // A resumed run: no gap, no charge across the interruption.
+            self.n_intervals = 0;
+            self.typical = None;
+            if let Some(c) = self.cur.as_mut() {
+                c.g.break_segment();
+                c.grid.break_segment();
+            }
+            self.pulse.break_segment();
+            self.prev = None;
+        }
+        if let Some(p) = self.prev {
+            let dt = s.t_s - p.t_s;
             if dt == 0.0 && p == *s {
                 self.quality.duplicates_dropped += 1;
                 return;
@@ -311,7 +351,14 @@ impl<'a> Analyzer<'a> {
         if new_step {
             self.close_step();
             let grid = self.new_grid();
-            self.cur = Some(StepAcc::new(s.step, grid, self.ah_since_full));
+            let mut acc = StepAcc::new(s.step, grid, self.ah_since_full);
+            if self.infos.get(&s.step).is_some_and(|i| i.kind == "drain") {
+                acc.drain = Some(match self.drain_points.take() {
+                    Some((step, pts)) if step == s.step => pts,
+                    _ => Vec::new(),
+                });
+            }
+            self.cur = Some(acc);
         }
         if let Some(c) = self.cur.as_mut() {
             c.push(s);
@@ -366,8 +413,13 @@ impl<'a> Analyzer<'a> {
     }
 
     fn close_step(&mut self) {
-        let Some(acc) = self.cur.take() else { return };
+        let Some(mut acc) = self.cur.take() else {
+            return;
+        };
         let step = acc.step;
+        if let Some(pts) = acc.drain.take() {
+            self.drain_points = Some((step, pts));
+        }
         let kind = self.kind_of(step, &acc);
         let info = self.infos.get(&step).cloned();
         let two_level = match (&acc.level_ends[0], &acc.level_ends[1]) {
@@ -432,7 +484,6 @@ impl<'a> Analyzer<'a> {
             };
         // The step's charge grid is moved, not copied: into the last
         // charge, into the capacity pick, or back to be reused.
-        let mut acc = acc;
         let grid = std::mem::replace(&mut acc.grid, ChargeGrid::new(1.0, 0));
         let kept = Kept {
             step,
@@ -681,6 +732,22 @@ impl<'a> Analyzer<'a> {
                 .map(|q| (100.0 * (1.0 - q / c_ref)).clamp(-5.0, 105.0));
         }
         let resistance = resistance_figure(two_levels, &pulse_readings, self.opts.imported);
+        let standby_drain = self.drain_points.take().and_then(|(step, pts)| {
+            let (mean_a, window_s, samples) = super::second_half_mean(&pts)?;
+            let cap = capacity
+                .as_ref()
+                .map(|c: &CapacityResult| c.measured_ah)
+                .unwrap_or(pack.rated_capacity_ah);
+            let current_ma = mean_a * 1000.0;
+            Some(super::DrainResult {
+                step,
+                current_ma,
+                pct_per_month: super::drain_pct_per_month(current_ma, cap),
+                capacity_ref_ah: cap,
+                window_s,
+                samples,
+            })
+        });
         let quality = self.quality.clone();
         if quality.gaps > 0 {
             warnings.push(format!(
@@ -712,6 +779,7 @@ impl<'a> Analyzer<'a> {
             recalibration,
             gaps: self.gaps,
             quality,
+            standby_drain,
         }
     }
 

@@ -81,6 +81,44 @@ pub struct Summary {
     /// What reading the log found (duplicates, out-of-order rows, gaps).
     #[serde(default)]
     pub log: LogQuality,
+    /// The pack's standby drain, when the procedure measured it.
+    #[serde(default)]
+    pub standby_drain: Option<crate::analysis::DrainResult>,
+    /// The pack at rest and the instruments' zero offsets before the first step.
+    #[serde(default)]
+    pub preflight: Option<Preflight>,
+    /// Each time the run was resumed after an interruption.
+    #[serde(default)]
+    pub resumed: Vec<ResumeNote>,
+    /// Alarms raised during the run (the run went on).
+    #[serde(default)]
+    pub alarms: Vec<String>,
+}
+
+/// What was read before the first step, outputs off.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Preflight {
+    pub voltage_v: f64,
+    pub temperature_c: Option<f64>,
+    /// Source current reading with its output off, mA (pack sign).
+    pub source_zero_ma: Option<f64>,
+    /// Load current reading with its input off, mA (pack sign).
+    pub load_zero_ma: Option<f64>,
+    /// The zero offsets were subtracted from the current readings.
+    pub corrected: bool,
+}
+
+/// A resume after an interruption.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ResumeNote {
+    /// Run time the run went on at, s.
+    pub t_s: f64,
+    pub step: u32,
+    /// Run time of the last sample before the interruption, s.
+    pub last_sample_t_s: f64,
+    /// How long the run was down, s.
+    pub gap_s: f64,
+    pub rule: String,
 }
 
 /// The pack spec as it appears in JSON records.

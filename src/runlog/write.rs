@@ -11,8 +11,12 @@ use std::io::{self, BufWriter, Write};
 use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant};
 
-/// How often buffered samples reach the disk (wall clock).
+/// How often buffered samples reach the disk (wall clock, with a sync).
 pub const FLUSH_INTERVAL: Duration = Duration::from_secs(1);
+/// Buffered samples are handed to the operating system at least every
+/// this many seconds of run time, so a killed process (not a power cut)
+/// loses at most this much of the log even when the bench runs sped up.
+pub const HANDOFF_RUN_S: f64 = 10.0;
 
 /// Write `bytes` to `path` through a temporary file and a rename.
 pub fn atomic_write(path: &Path, bytes: &[u8]) -> io::Result<()> {
@@ -59,6 +63,7 @@ pub struct RunLogSink {
     samples: BufWriter<File>,
     events: File,
     last_flush: Instant,
+    last_handoff_t: f64,
     pub rows: usize,
     line: String,
 }
@@ -76,6 +81,33 @@ impl RunLogSink {
             samples,
             events,
             last_flush: Instant::now(),
+            last_handoff_t: f64::NEG_INFINITY,
+            rows: 0,
+            line: String::with_capacity(96),
+        })
+    }
+
+    /// Open an interrupted run's log to go on writing it. A line left
+    /// half-written by the interruption is cut off first.
+    pub fn append(dir: &Path) -> io::Result<RunLogSink> {
+        for name in [SAMPLES_CSV, EVENTS_JSONL] {
+            cut_partial_line(&dir.join(name))?;
+        }
+        let samples = BufWriter::with_capacity(
+            64 * 1024,
+            OpenOptions::new()
+                .append(true)
+                .open(dir.join(SAMPLES_CSV))?,
+        );
+        let events = OpenOptions::new()
+            .create(true)
+            .append(true)
+            .open(dir.join(EVENTS_JSONL))?;
+        Ok(RunLogSink {
+            samples,
+            events,
+            last_flush: Instant::now(),
+            last_handoff_t: f64::NEG_INFINITY,
             rows: 0,
             line: String::with_capacity(96),
         })
@@ -88,6 +120,35 @@ impl RunLogSink {
         self.last_flush = Instant::now();
         Ok(())
     }
+}
+
+/// Cut a file back to its last complete line (a line the process was
+/// killed while writing).
+pub fn cut_partial_line(path: &Path) -> io::Result<()> {
+    use std::io::{Read, Seek, SeekFrom};
+    let mut f = OpenOptions::new().read(true).write(true).open(path)?;
+    let len = f.metadata()?.len();
+    // Read back from the end in blocks until a line end is found.
+    let mut end = len;
+    let mut buf = vec![0u8; 64 * 1024];
+    let keep = loop {
+        if end == 0 {
+            break 0;
+        }
+        let start = end.saturating_sub(buf.len() as u64);
+        let n = (end - start) as usize;
+        f.seek(SeekFrom::Start(start))?;
+        f.read_exact(&mut buf[..n])?;
+        if let Some(p) = buf[..n].iter().rposition(|&b| b == b'\n') {
+            break start + p as u64 + 1;
+        }
+        end = start;
+    };
+    if keep < len {
+        f.set_len(keep)?;
+        f.sync_all()?;
+    }
+    Ok(())
 }
 
 /// Format one CSV row (no quoting needed: numbers only).
@@ -115,6 +176,10 @@ impl Sink for RunLogSink {
         self.rows += 1;
         if self.last_flush.elapsed() >= FLUSH_INTERVAL {
             self.flush()?;
+            self.last_handoff_t = s.t_s;
+        } else if s.t_s - self.last_handoff_t >= HANDOFF_RUN_S {
+            self.samples.flush()?;
+            self.last_handoff_t = s.t_s;
         }
         Ok(())
     }
@@ -132,5 +197,25 @@ impl Sink for RunLogSink {
 impl Drop for RunLogSink {
     fn drop(&mut self) {
         let _ = self.samples.flush();
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_half_written_line_is_cut_off() {
+        let d = tempfile::tempdir().expect("tmp");
+        let p = d.path().join("x.csv");
+        fs::write(&p, b"a,b\n1,2\n3,").expect("write");
+        cut_partial_line(&p).expect("cut");
+        assert_eq!(fs::read(&p).expect("read"), b"a,b\n1,2\n");
+        // Complete files are left alone; a file with no line end is emptied.
+        cut_partial_line(&p).expect("cut");
+        assert_eq!(fs::read(&p).expect("read"), b"a,b\n1,2\n");
+        fs::write(&p, b"partial").expect("write");
+        cut_partial_line(&p).expect("cut");
+        assert_eq!(fs::read(&p).expect("read").len(), 0);
     }
 }

@@ -89,6 +89,30 @@ pub struct SimBench {
     /// Times the supply output and the load input were on together.
     pub overlaps: u32,
     rng: SmallRng,
+    checkpoint: Option<Checkpoint>,
+}
+
+/// The simulated pack's state, kept in a file as the run goes, so a run
+/// whose controller died can go on with the same pack (a real pack keeps
+/// its charge when the controller stops; the simulated one lives in the
+/// controller's process).
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct PackState {
+    /// Bench time of the state, s.
+    pub t_s: f64,
+    pub soc: f64,
+    pub v1: f64,
+    pub v2: f64,
+    pub temperature_c: f64,
+    pub truth_charge_ah: f64,
+    pub truth_energy_wh: f64,
+}
+
+#[derive(Debug, Clone)]
+struct Checkpoint {
+    path: std::path::PathBuf,
+    every_s: f64,
+    last_s: f64,
 }
 
 fn meter(cfg: &MeterConfig, ideal: bool) -> Meter {
@@ -146,6 +170,57 @@ impl SimBench {
             truth: TruthCounters::default(),
             overlaps: 0,
             rng: SmallRng::seed_from_u64(cfg.seed),
+            checkpoint: None,
+        }
+    }
+
+    /// Keep the pack's state in `path`, rewritten every `every_s` bench
+    /// seconds as time advances.
+    pub fn keep_state(&mut self, path: std::path::PathBuf, every_s: f64) {
+        self.checkpoint = Some(Checkpoint {
+            path,
+            every_s,
+            last_s: f64::NEG_INFINITY,
+        });
+        self.write_state();
+    }
+
+    pub fn state(&self) -> PackState {
+        PackState {
+            t_s: self.last_t,
+            soc: self.pack.soc,
+            v1: self.pack.v1,
+            v2: self.pack.v2,
+            temperature_c: self.pack.temperature_c,
+            truth_charge_ah: self.truth.charge_ah,
+            truth_energy_wh: self.truth.energy_wh,
+        }
+    }
+
+    /// Put the pack in a kept state, then let it stand open-circuit for
+    /// `rest_s` (the time the run was down): its polarisation relaxes and
+    /// it cools; its electronics, if any, go on drawing.
+    pub fn restore(&mut self, st: &PackState, rest_s: f64) {
+        self.pack.soc = st.soc;
+        self.pack.v1 = st.v1;
+        self.pack.v2 = st.v2;
+        self.pack.temperature_c = st.temperature_c;
+        if rest_s > 0.0 {
+            let _ = self.pack.step(rest_s, 0.0);
+        }
+    }
+
+    fn write_state(&mut self) {
+        let state = self.state();
+        if let Some(c) = self.checkpoint.as_mut() {
+            c.last_s = state.t_s;
+            if let Ok(bytes) = serde_json::to_vec(&state) {
+                // Written aside and renamed: never half a state.
+                let tmp = c.path.with_extension("json.tmp");
+                if std::fs::write(&tmp, bytes).is_ok() {
+                    let _ = std::fs::rename(&tmp, &c.path);
+                }
+            }
         }
     }
 
@@ -195,6 +270,13 @@ impl SimBench {
             self.truth.charge_ah += ah;
             self.truth.energy_wh += wh;
             self.last_t += dt;
+        }
+        if self
+            .checkpoint
+            .as_ref()
+            .is_some_and(|c| self.last_t - c.last_s >= c.every_s)
+        {
+            self.write_state();
         }
     }
 

@@ -69,6 +69,14 @@ impl SimHandle {
     pub fn true_capacity_ah(&self) -> f64 {
         self.with(|b| b.pack.capacity_ah)
     }
+    /// Keep the pack's state in a file (see [`bench::PackState`]).
+    pub fn keep_state(&self, path: std::path::PathBuf, every_s: f64) {
+        self.with(|b| b.keep_state(path, every_s))
+    }
+    /// Put the pack in a kept state after `rest_s` open-circuit.
+    pub fn restore(&self, st: &bench::PackState, rest_s: f64) {
+        self.with(|b| b.restore(st, rest_s))
+    }
     /// Number of messages both instruments received.
     pub fn messages_received(&self) -> usize {
         let n = |m: &Arc<Mutex<Vec<String>>>| m.lock().map(|v| v.len()).unwrap_or(0);
