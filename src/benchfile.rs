@@ -38,6 +38,14 @@ struct RawStation {
     load: Option<RawBinding>,
     source_sink: Option<RawBinding>,
     meter: Option<RawBinding>,
+    /// The pack on this station, for runs of several stations at once.
+    pack: Option<Spanned<String>>,
+    /// Its spec file (relative to the bench file), for a first test.
+    pack_spec: Option<Spanned<String>>,
+    /// This station's own procedure (relative to the bench file).
+    procedure: Option<Spanned<String>>,
+    /// Settings of a simulated station (pack condition, faults).
+    sim_config: Option<Spanned<String>>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -73,6 +81,11 @@ pub struct StationSpec {
     pub name: String,
     pub drivers: Drivers,
     pub meter: Option<Binding>,
+    /// The pack id this station tests when several run at once.
+    pub pack_id: Option<String>,
+    pub pack_spec: Option<PathBuf>,
+    pub procedure: Option<PathBuf>,
+    pub sim_config: Option<PathBuf>,
 }
 
 impl StationSpec {
@@ -310,10 +323,31 @@ impl BenchFile {
             if let (Some(drivers), Some(true) | None) =
                 (drivers, meter.as_ref().map(|m| m.is_some()))
             {
+                if let Some(pk) = &st.pack {
+                    if let Err(e) = crate::pack::check_pack_id(pk.get_ref()) {
+                        errors.push(LocatedError {
+                            location: at(pk.span(), 1),
+                            message: e.to_string(),
+                        });
+                    }
+                }
+                let file = |f: &Option<Spanned<String>>| f.as_ref().map(|t| base.join(t.get_ref()));
+                if st.sim_config.is_some() && !(sims > 0) {
+                    if let Some(t) = &st.sim_config {
+                        errors.push(LocatedError {
+                            location: at(t.span(), 1),
+                            message: "sim_config is for a simulated station (links \"sim\")".into(),
+                        });
+                    }
+                }
                 stations.push(StationSpec {
                     name,
                     drivers,
                     meter: meter.flatten(),
+                    pack_id: st.pack.as_ref().map(|p| p.get_ref().clone()),
+                    pack_spec: file(&st.pack_spec),
+                    procedure: file(&st.procedure),
+                    sim_config: file(&st.sim_config),
                 });
             }
         }

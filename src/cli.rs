@@ -5,7 +5,6 @@
 //! connection), 2 bad input (arguments, procedure, pack spec, pack id),
 //! 3 safety stop or instrument fault (run aborted), 5 interrupted (Ctrl-C).
 
-use crate::clock::{Clock, PacedClock};
 use crate::engine::control::StopHandle;
 use crate::fade::grade::Policy;
 use crate::fade::{fleet, history, model};
@@ -19,7 +18,6 @@ use anyhow::{anyhow, Context};
 use chrono::NaiveDate;
 use clap::{Args, Parser, Subcommand};
 use std::path::PathBuf;
-use std::sync::Arc;
 
 pub const EXIT_OK: i32 = 0;
 pub const EXIT_FAILURE: i32 = 1;
@@ -168,8 +166,9 @@ pub struct RunArgs {
     #[arg(long)]
     pub fault: Vec<String>,
     /// Pack id: letters, digits, '-', '_', '.'; becomes the results folder.
+    /// With a bench file of several stations, each station names its pack.
     #[arg(long)]
-    pub pack: String,
+    pub pack: Option<String>,
     #[command(flatten)]
     pub pack_args: PackArgs,
     /// Results folder.
@@ -186,9 +185,16 @@ pub struct RunArgs {
     /// Simulated instruments without measurement error.
     #[arg(long)]
     pub sim_ideal: bool,
-    /// Print only the final summary line.
+    /// No live status; print only the final summary line (one per station).
     #[arg(long)]
     pub quiet: bool,
+    /// Live status lines every so often when the output is not a terminal.
+    #[arg(long, default_value = "60s")]
+    pub status_every: String,
+    /// Raise a low-capacity alarm (the run goes on) when the capacity step
+    /// reaches its cutoff under this share of the rated capacity, e.g. 80%.
+    #[arg(long)]
+    pub alarm_below: Option<String>,
     /// The day the test counts for, YYYY-MM-DD (default: today, UTC).
     #[arg(long)]
     pub test_date: Option<String>,
@@ -328,33 +334,49 @@ fn report_error(e: &RunError) -> i32 {
     }
 }
 
-/// `packbench run`.
-pub fn cmd_run(a: RunArgs) -> i32 {
-    let prepared = (|| -> Result<_, RunError> {
-        let speed = parse_speed(&a.speed)?;
-        let given = pack_from_args(&a.pack_args)?;
-        let mut options = RunOptions::default();
-        if let Some(d) = &a.test_date {
-            options.test_date = parse_date(d)?;
+/// Exit code after a second Ctrl-C (the shell's convention for SIGINT).
+pub const EXIT_SECOND_INTERRUPT: i32 = 130;
+
+/// Everything `run` checks before it touches an instrument.
+fn prepare_run(a: &RunArgs) -> Result<Vec<run::StationJob>, RunError> {
+    let speed = parse_speed(&a.speed)?;
+    let given = pack_from_args(&a.pack_args)?;
+    let mut options = RunOptions::default();
+    if let Some(d) = &a.test_date {
+        options.test_date = parse_date(d)?;
+    }
+    if let Some(c) = a.cycle_count {
+        if !(c.is_finite() && c >= 0.0) {
+            return Err(RunError::Pack(format!(
+                "--cycle-count {c}: expected a count of 0 or more"
+            )));
         }
-        if let Some(c) = a.cycle_count {
-            if !(c.is_finite() && c >= 0.0) {
-                return Err(RunError::Pack(format!(
-                    "--cycle-count {c}: expected a count of 0 or more"
-                )));
-            }
-            options.cycle_count = Some(c);
-        }
-        if let Some(path) = &a.policy {
-            let text = std::fs::read_to_string(path).map_err(|source| RunError::Io {
-                path: path.clone(),
-                source,
-            })?;
-            options.policy = Policy::from_toml(path, &text)?;
-        }
+        options.cycle_count = Some(c);
+    }
+    if let Some(path) = &a.policy {
+        let text = std::fs::read_to_string(path).map_err(|source| RunError::Io {
+            path: path.clone(),
+            source,
+        })?;
+        options.policy = Policy::from_toml(path, &text)?;
+    }
+    if let Some(t) = &a.alarm_below {
+        options.alarm_below_pct = Some(parse_threshold(t).map_err(|_| {
+            RunError::Pack(format!(
+                "--alarm-below '{t}': expected a percentage of the rated capacity, e.g. 80%"
+            ))
+        })?);
+    }
+    options.trace = a.trace;
+    let cfg = sim_config(a.sim_config.as_deref(), a.sim_ideal, &a.fault)?;
+    let Some(path) = &a.bench else {
+        let pack_id = a
+            .pack
+            .clone()
+            .ok_or_else(|| RunError::Pack("--pack is needed: the pack's id".into()))?;
         let req = RunRequest {
             procedure: a.procedure.clone(),
-            pack_id: a.pack.clone(),
+            pack_id: pack_id.clone(),
             pack: match given {
                 Some(p) => PackSource::Given(p),
                 None => PackSource::Saved {
@@ -364,47 +386,136 @@ pub fn cmd_run(a: RunArgs) -> i32 {
             results: a.results.clone(),
             options,
         };
-
-        let cfg = sim_config(a.sim_config.as_deref(), a.sim_ideal, &a.fault)?;
-        let mut req = req;
-        req.options.trace = a.trace;
-        if a.bench.is_some() {
-            if let PackSource::Saved { allow_sim_default } = &mut req.pack {
-                *allow_sim_default = false;
+        let prepared = run::prepare(&req)?;
+        return Ok(vec![run::StationJob {
+            name: "sim".into(),
+            board: crate::live::Board::new("sim", &pack_id),
+            prepared,
+            station: None,
+            cfg,
+            speed,
+        }]);
+    };
+    // A bench file: one station, or all of them at once. The bench file,
+    // every station's pack, procedure and profiles are checked before any
+    // link is opened.
+    let bench = crate::benchfile::BenchFile::load(path)?;
+    let stations: Vec<crate::benchfile::StationSpec> = match (&a.station, bench.stations.len()) {
+        (Some(n), _) => vec![bench.station(Some(n)).map_err(RunError::Pack)?.clone()],
+        (None, 1) => vec![bench.stations[0].clone()],
+        (None, _) => bench.stations.clone(),
+    };
+    let several = stations.len() > 1;
+    if several && (a.pack.is_some() || given.is_some()) {
+        return Err(RunError::Pack(format!(
+            "{} has {} stations: each names its pack (pack = \"...\", pack_spec = \"...\"); --pack and the pack options are for one station (--station NAME)",
+            path.display(),
+            stations.len()
+        )));
+    }
+    let mut jobs = Vec::new();
+    for st in stations {
+        let pack_id = match (&a.pack, &st.pack_id) {
+            (Some(p), _) => p.clone(),
+            (None, Some(p)) => p.clone(),
+            (None, None) => {
+                return Err(RunError::Pack(format!(
+                    "station '{}' names no pack: give --pack or pack = \"...\" in {}",
+                    st.name,
+                    path.display()
+                )))
+            }
+        };
+        let pack = match (&given, &st.pack_spec) {
+            (Some(g), _) => PackSource::Given(g.clone()),
+            (None, Some(f)) => PackSource::Given(run::read_pack_file(f)?),
+            (None, None) => PackSource::Saved {
+                allow_sim_default: st.is_simulated(),
+            },
+        };
+        let mut opts = options.clone();
+        opts.test_date = options.test_date;
+        let req = RunRequest {
+            procedure: st.procedure.clone().unwrap_or_else(|| a.procedure.clone()),
+            pack_id: pack_id.clone(),
+            pack,
+            results: a.results.clone(),
+            options: opts,
+        };
+        let prepared = run::prepare(&req)?;
+        let (sp, lp) = st.profiles();
+        run::check_ranges(&prepared.procedure, sp, lp)?;
+        let station_cfg = match &st.sim_config {
+            Some(f) => sim_config(Some(f), a.sim_ideal, &a.fault)?,
+            None => cfg.clone(),
+        };
+        if !st.is_simulated() && (a.sim_config.is_some() || a.sim_ideal || !a.fault.is_empty()) {
+            return Err(RunError::Pack(
+                "--sim-config, --sim-ideal and --fault are for the embedded simulated bench (links \"sim\"), not for real instruments".into(),
+            ));
+        }
+        let speed = match (speed, st.is_simulated()) {
+            (Speed::Max, false) => Speed::Factor(1.0),
+            (s, _) => s,
+        };
+        jobs.push(run::StationJob {
+            name: st.name.clone(),
+            board: crate::live::Board::new(&st.name, &pack_id),
+            prepared,
+            station: Some((st, path.clone())),
+            cfg: station_cfg,
+            speed,
+        });
+    }
+    if several {
+        let mut seen = std::collections::HashSet::new();
+        for j in &jobs {
+            if !seen.insert(j.prepared.pack_dir.clone()) {
+                return Err(RunError::Pack(format!(
+                    "pack '{}' is on two stations at once",
+                    j.prepared.pack_id
+                )));
             }
         }
-        let prepared = run::prepare(&req)?;
-        // The bench file and the station's profiles are checked before any
-        // link is opened.
-        let station = match &a.bench {
-            Some(path) => {
-                let bench = crate::benchfile::BenchFile::load(path)?;
-                let st = bench
-                    .station(a.station.as_deref())
-                    .map_err(RunError::Pack)?
-                    .clone();
-                let (sp, lp) = st.profiles();
-                run::check_ranges(&prepared.procedure, sp, lp)?;
-                if !st.is_simulated()
-                    && (a.sim_config.is_some() || a.sim_ideal || !a.fault.is_empty())
-                {
-                    return Err(RunError::Pack(
-                        "--sim-config, --sim-ideal and --fault are for the embedded simulated bench (links \"sim\"), not for real instruments".into(),
-                    ));
-                }
-                Some(st)
-            }
-            None => None,
-        };
-        Ok((prepared, cfg, speed, station))
-    })();
-    let (prepared, cfg, speed, station) = match prepared {
-        Ok(p) => p,
+    }
+    Ok(jobs)
+}
+
+/// How the live status is shown for this invocation.
+fn display_mode(a: &RunArgs) -> Result<crate::live::DisplayMode, RunError> {
+    use std::io::IsTerminal;
+    if a.quiet {
+        return Ok(crate::live::DisplayMode::Quiet);
+    }
+    if std::io::stderr().is_terminal() {
+        return Ok(crate::live::DisplayMode::Terminal);
+    }
+    match units::duration(&a.status_every) {
+        Ok(s) if s >= 0.1 => Ok(crate::live::DisplayMode::Lines(s)),
+        _ => Err(RunError::Pack(format!(
+            "--status-every '{}': expected a duration of 0.1 s or more, e.g. 60s",
+            a.status_every
+        ))),
+    }
+}
+
+/// `packbench run`: one station, or every station of a bench file at once
+/// (one task each, each with its own results folder and envelope).
+pub fn cmd_run(a: RunArgs) -> i32 {
+    let (jobs, mode) = match prepare_run(&a).and_then(|j| Ok((j, display_mode(&a)?))) {
+        Ok(x) => x,
         Err(e) => return report_error(&e),
     };
-    if let Some(n) = &prepared.pack_note {
-        if !a.quiet {
-            eprintln!("note: {n}");
+    for j in &jobs {
+        if let (Some(n), false) = (&j.prepared.pack_note, a.quiet) {
+            eprintln!("note: {}: {n}", j.name);
+        }
+        if j.speed != Speed::Max && j.station.as_ref().is_some_and(|(s, _)| !s.is_simulated()) {
+            if let Speed::Factor(f) = j.speed {
+                if f != 1.0 {
+                    eprintln!("note: pacing the bench at {f}x real time: only meaningful against a sped-up simulator");
+                }
+            }
         }
     }
     let rt = match tokio::runtime::Builder::new_current_thread()
@@ -418,60 +529,111 @@ pub fn cmd_run(a: RunArgs) -> i32 {
         }
     };
     let stop = StopHandle::new();
-    let result = rt.block_on(async {
-        let s = stop.clone();
-        tokio::spawn(async move {
+    let emergency = run::Emergency::default();
+    let several = jobs.len() > 1;
+    let local = tokio::task::LocalSet::new();
+    let jobs = std::rc::Rc::new(jobs);
+    let results = local.block_on(&rt, async {
+        let (s, em) = (stop.clone(), emergency.clone());
+        tokio::task::spawn_local(async move {
+            if tokio::signal::ctrl_c().await.is_err() {
+                return;
+            }
+            eprintln!("\nCtrl-C: stopping safely (outputs off, confirmed) ... press Ctrl-C again to quit at once");
+            s.request_stop();
             if tokio::signal::ctrl_c().await.is_ok() {
-                eprintln!("\nCtrl-C: stopping safely (outputs off) ...");
-                s.request_stop();
+                eprintln!("\nsecond Ctrl-C: one more switch-off on fresh links, then quitting");
+                for (who, sent) in em.all_off(std::time::Duration::from_millis(1500)).await {
+                    eprintln!("  {who}: {}", if sent { "off sent" } else { "NOT REACHED: switch it off by hand" });
+                }
+                std::process::exit(EXIT_SECOND_INTERRUPT);
             }
         });
-        match &station {
-            None => run::execute_sim(&prepared, &cfg, speed, stop.clone()).await,
-            Some(st) if st.is_simulated() => {
-                let (sp, lp) = st.profiles();
-                run::execute_sim_station(&prepared, &cfg, speed, stop.clone(), sp.clone(), lp.clone())
-                    .await
-            }
-            Some(st) => {
-                let factor = match speed {
-                    Speed::Max => 1.0,
-                    Speed::Factor(f) => f,
-                };
-                if factor != 1.0 {
-                    eprintln!("note: pacing the bench at {factor}x real time: only meaningful against a sped-up simulator");
-                }
-                let mut links = run::open_station(st).await?;
-                links.speed = if factor == 1.0 {
-                    "real time".into()
-                } else {
-                    format!("{factor}x real time")
-                };
-                let clock: Arc<dyn Clock> = PacedClock::new(factor);
-                run::execute(&prepared, links, clock, None, stop.clone(), None).await
-            }
+        let boards: Vec<crate::live::Board> = jobs.iter().map(|j| j.board.clone()).collect();
+        let shown = tokio::task::spawn_local(crate::live::display(boards, mode));
+        let mut tasks = Vec::new();
+        for k in 0..jobs.len() {
+            let (jobs, stop, em) = (std::rc::Rc::clone(&jobs), stop.clone(), emergency.clone());
+            tasks.push(tokio::task::spawn_local(async move {
+                run::run_job(&jobs[k], stop, em, several).await
+            }));
         }
+        let mut out = Vec::new();
+        for t in tasks {
+            out.push(match t.await {
+                Ok(r) => r,
+                Err(e) => Err(RunError::Pack(format!("station task failed: {e}"))),
+            });
+        }
+        let _ = shown.await;
+        out
     });
-    match result {
-        Ok(r) => {
-            if a.quiet {
+    if !several {
+        return match results.into_iter().next() {
+            Some(Ok(r)) => {
+                print_result(&r, a.quiet);
+                r.exit_code()
+            }
+            Some(Err(e)) => report_error(&e),
+            None => EXIT_FAILURE,
+        };
+    }
+    // One line per station.
+    let (mut failed, mut aborted, mut interrupted) = (false, false, false);
+    for (j, r) in jobs.iter().zip(&results) {
+        match r {
+            Ok(r) => {
+                match r.exit_code() {
+                    0 => {}
+                    5 => interrupted = true,
+                    _ => aborted = true,
+                }
                 println!(
-                    "{} {} {}",
+                    "{:<12} {:<10} {:<11} {} {}",
+                    j.name,
+                    j.prepared.pack_id,
                     r.summary.status,
-                    r.run_dir.display(),
                     r.summary
                         .capacity
                         .as_ref()
-                        .map(|c| format!("{:.3}Ah", c.measured_ah))
-                        .unwrap_or_default()
+                        .map(|c| format!("{:.3} Ah (SOH {:.1} %)", c.measured_ah, c.soh_pct))
+                        .or_else(|| r.summary.stop_reason.clone())
+                        .unwrap_or_default(),
+                    r.run_dir.display()
                 );
-            } else {
-                print!("{}", report::text::summary(&r.summary));
-                println!("  Results: {}", r.run_dir.display());
             }
-            r.exit_code()
+            Err(e) => {
+                failed = true;
+                println!("{:<12} {:<10} failed      {e}", j.name, j.prepared.pack_id);
+            }
         }
-        Err(e) => report_error(&e),
+    }
+    if failed {
+        EXIT_FAILURE
+    } else if aborted {
+        3
+    } else if interrupted {
+        5
+    } else {
+        EXIT_OK
+    }
+}
+
+fn print_result(r: &run::RunReport, quiet: bool) {
+    if quiet {
+        println!(
+            "{} {} {}",
+            r.summary.status,
+            r.run_dir.display(),
+            r.summary
+                .capacity
+                .as_ref()
+                .map(|c| format!("{:.3}Ah", c.measured_ah))
+                .unwrap_or_default()
+        );
+    } else {
+        print!("{}", report::text::summary(&r.summary));
+        println!("  Results: {}", r.run_dir.display());
     }
 }
 

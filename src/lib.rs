@@ -31,6 +31,7 @@ pub mod demo;
 pub mod engine;
 pub mod fade;
 pub mod instrument;
+pub mod live;
 pub mod location;
 pub mod offline;
 pub mod pack;

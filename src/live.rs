@@ -277,10 +277,7 @@ impl<'a> Estimator<'a> {
                     .find(|p| p.index == *step)
                     .map(|p| &p.kind);
                 match (kind, end_kind) {
-                    (
-                        Some(StepKind::Charge { .. }),
-                        EndKind::CurrentBelow | EndKind::PeakDrop,
-                    ) => {
+                    (Some(StepKind::Charge { .. }), EndKind::CurrentBelow | EndKind::PeakDrop) => {
                         self.anchor = Some(Anchor {
                             soc: 1.0,
                             net_ah: self.run.ah,
@@ -387,13 +384,19 @@ pub async fn display(boards: Vec<Board>, mode: DisplayMode) {
         }
         DisplayMode::Lines(every) => {
             let every = std::time::Duration::from_secs_f64(every.max(0.1));
+            let poll = std::time::Duration::from_millis(100).min(every);
+            let mut last = std::time::Instant::now();
             loop {
-                tokio::time::sleep(every).await;
+                tokio::time::sleep(poll).await;
+                let due = last.elapsed() >= every;
+                if due {
+                    last = std::time::Instant::now();
+                }
                 let mut all_done = true;
                 for board in &boards {
                     let l = board.get();
                     all_done &= l.is_final();
-                    if !l.is_final() {
+                    if due && !l.is_final() {
                         eprintln!("{}", l.line());
                     }
                 }

@@ -109,6 +109,9 @@ pub struct RunOptions {
     pub policy: Policy,
     /// Write the raw instrument traffic to `trace.log` in the run folder.
     pub trace: bool,
+    /// Raise a low-capacity alarm (the run goes on) when the capacity step
+    /// reaches its cutoff under this % of the rated capacity.
+    pub alarm_below_pct: Option<f64>,
 }
 
 impl Default for RunOptions {
@@ -118,7 +121,53 @@ impl Default for RunOptions {
             cycle_count: None,
             policy: Policy::default_policy(),
             trace: false,
+            alarm_below_pct: None,
         }
+    }
+}
+
+/// What a caller attaches to a run besides its instruments.
+#[derive(Clone, Default)]
+pub struct Hooks {
+    /// The live status board of the run's station.
+    pub board: Option<crate::live::Board>,
+    /// Where the station's instruments are registered for a last
+    /// switch-off on fresh links (a second Ctrl-C).
+    pub emergency: Option<Emergency>,
+    /// The station's name in a bench file, and the file.
+    pub station: Option<(String, PathBuf)>,
+    /// Pace with the timer only (many stations on one thread).
+    pub coarse_clock: bool,
+}
+
+/// Every running station's instruments, to switch off on fresh links
+/// when the running sessions cannot be waited for (a second Ctrl-C).
+#[derive(Clone, Default)]
+pub struct Emergency(Arc<std::sync::Mutex<Vec<(String, Reopen, Profile)>>>);
+
+impl Emergency {
+    pub fn register(&self, name: String, reopen: Reopen, profile: Profile) {
+        if let Ok(mut g) = self.0.lock() {
+            g.push((name, reopen, profile));
+        }
+    }
+
+    /// Send every registered instrument its safe state on a fresh link,
+    /// all at once, each within `timeout`. Returns (instrument, sent).
+    pub async fn all_off(&self, timeout: std::time::Duration) -> Vec<(String, bool)> {
+        let list = match self.0.lock() {
+            Ok(g) => g.clone(),
+            Err(p) => p.into_inner().clone(),
+        };
+        let tries = list.iter().map(|(name, reopen, profile)| async move {
+            let r = tokio::time::timeout(
+                timeout,
+                crate::instrument::safe_state_on_new_link(name, reopen, profile),
+            )
+            .await;
+            (name.clone(), matches!(r, Ok(Ok(()))))
+        });
+        futures::future::join_all(tries).await
     }
 }
 
@@ -315,7 +364,7 @@ pub enum Speed {
 }
 
 /// `run.json`.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, serde::Deserialize)]
 pub struct Manifest {
     pub tool: ToolInfo,
     pub run_id: String,
@@ -331,15 +380,34 @@ pub struct Manifest {
     pub bench: BenchRecord,
     pub instruments: Vec<InstrumentRecord>,
     pub simulation: Option<SimulationRecord>,
+    /// How well samples kept their schedule.
+    #[serde(default)]
+    pub timing: Option<crate::engine::Timing>,
+    /// Low-capacity alarm threshold, % of rated, if set.
+    #[serde(default)]
+    pub alarm_below_pct: Option<f64>,
+    /// Each resume of the run after an interruption.
+    #[serde(default)]
+    pub resumes: Vec<ResumeRecord>,
 }
 
-#[derive(Debug, Clone, Serialize)]
+/// One resume, as `run.json` keeps it.
+#[derive(Debug, Clone, Serialize, serde::Deserialize)]
+pub struct ResumeRecord {
+    pub at_utc: String,
+    pub step: u32,
+    pub t_s: f64,
+    pub gap_s: f64,
+    pub rule: String,
+}
+
+#[derive(Debug, Clone, Serialize, serde::Deserialize)]
 pub struct ToolInfo {
-    pub name: &'static str,
-    pub version: &'static str,
+    pub name: String,
+    pub version: String,
 }
 
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, serde::Deserialize)]
 pub struct ProcedureRecord {
     pub path: String,
     pub title: String,
@@ -347,13 +415,21 @@ pub struct ProcedureRecord {
     pub text: String,
 }
 
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, serde::Deserialize)]
 pub struct BenchRecord {
     pub kind: String,
     pub speed: String,
+    /// Bench seconds per wall second when paced; none at full speed.
+    #[serde(default)]
+    pub speed_factor: Option<f64>,
+    /// The bench file and station, for a real bench.
+    #[serde(default)]
+    pub bench_file: Option<String>,
+    #[serde(default)]
+    pub station: Option<String>,
 }
 
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, serde::Deserialize)]
 pub struct InstrumentRecord {
     pub role: String,
     pub link: String,
@@ -362,9 +438,9 @@ pub struct InstrumentRecord {
 }
 
 /// Simulation truth: what the model says really flowed.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Serialize, serde::Deserialize)]
 pub struct SimulationRecord {
-    pub label: &'static str,
+    pub label: String,
     pub config: SimConfig,
     pub true_capacity_ah: f64,
     pub steps: Vec<TruthStep>,
@@ -420,8 +496,25 @@ pub async fn execute_sim(
     speed: Speed,
     stop: StopHandle,
 ) -> Result<RunReport, RunError> {
-    let (clock, links, speed_text) = new_sim_bench(p, cfg, speed);
-    execute_sim_links(p, cfg, clock, links, &speed_text, stop).await
+    execute_sim_with(p, cfg, speed, stop, Hooks::default()).await
+}
+
+/// [`execute_sim`] with a live board and the emergency registry.
+pub async fn execute_sim_with(
+    p: &Prepared,
+    cfg: &SimConfig,
+    speed: Speed,
+    stop: StopHandle,
+    hooks: Hooks,
+) -> Result<RunReport, RunError> {
+    let (clock, links, speed_text) = new_sim_bench(p, cfg, speed, hooks.coarse_clock);
+    let mut sp = Profile::builtin(ProfileRole::Source);
+    let mut lp = Profile::builtin(ProfileRole::Load);
+    sp.transport.timeout_ms = SIM_TIMEOUT_MS;
+    lp.transport.timeout_ms = SIM_TIMEOUT_MS;
+    let mut bl = sim_bench_links(cfg, links, &speed_text, sp, lp, speed);
+    bl.0.hooks = hooks;
+    execute(p, bl.0, clock, bl.1, stop, bl.2).await
 }
 
 /// A new simulated bench for a prepared test: its clock, links and pace.
@@ -429,9 +522,11 @@ fn new_sim_bench(
     p: &Prepared,
     cfg: &SimConfig,
     speed: Speed,
+    coarse: bool,
 ) -> (Arc<dyn Clock>, sim::SimLinks, String) {
     let clock: Arc<dyn Clock> = match speed {
         Speed::Max => SimClock::new(),
+        Speed::Factor(f) if coarse => PacedClock::coarse(f),
         Speed::Factor(f) => PacedClock::new(f),
     };
     let links = sim::build(&p.pack, cfg, Arc::clone(&clock));
@@ -451,19 +546,13 @@ pub async fn execute_sim_station(
     stop: StopHandle,
     source_profile: Profile,
     load_profile: Profile,
+    hooks: Hooks,
 ) -> Result<RunReport, RunError> {
-    let (clock, links, speed_text) = new_sim_bench(p, cfg, speed);
-    run_sim_links(
-        p,
-        cfg,
-        clock,
-        links,
-        &speed_text,
-        stop,
-        source_profile,
-        load_profile,
-    )
-    .await
+    let (clock, links, speed_text) = new_sim_bench(p, cfg, speed, hooks.coarse_clock);
+    let (mut bl, truth, sim) =
+        sim_bench_links(cfg, links, &speed_text, source_profile, load_profile, speed);
+    bl.hooks = hooks;
+    execute(p, bl, clock, truth, stop, sim).await
 }
 
 /// A reopen function for an in-memory link to a simulated instrument.
@@ -491,34 +580,29 @@ pub async fn execute_sim_links(
     let mut load_profile = Profile::builtin(ProfileRole::Load);
     source_profile.transport.timeout_ms = SIM_TIMEOUT_MS;
     load_profile.transport.timeout_ms = SIM_TIMEOUT_MS;
-    run_sim_links(
-        p,
-        cfg,
-        clock,
-        links,
-        speed_text,
-        stop,
-        source_profile,
-        load_profile,
-    )
-    .await
+    let speed = if clock.is_simulated() {
+        Speed::Max
+    } else {
+        Speed::Factor(1.0)
+    };
+    let (bl, truth, sim) =
+        sim_bench_links(cfg, links, speed_text, source_profile, load_profile, speed);
+    execute(p, bl, clock, truth, stop, sim).await
 }
 
-#[allow(clippy::too_many_arguments)]
-async fn run_sim_links(
-    p: &Prepared,
+/// The simulated bench's links, its truth and its record.
+fn sim_bench_links(
     cfg: &SimConfig,
-    clock: Arc<dyn Clock>,
     links: sim::SimLinks,
     speed_text: &str,
-    stop: StopHandle,
     source_profile: Profile,
     load_profile: Profile,
-) -> Result<RunReport, RunError> {
+    speed: Speed,
+) -> (BenchLinks, Option<Arc<dyn GroundTruth>>, Option<SimRun>) {
     let handle = links.handle.clone();
     let truth: Arc<dyn GroundTruth> = Arc::new(handle.clone());
-    execute(
-        p,
+    let cap = handle.true_capacity_ah();
+    (
         BenchLinks {
             source: BoundLink {
                 link: links.source,
@@ -540,15 +624,38 @@ async fn run_sim_links(
             },
             meter: None,
             shared: false,
-            kind: "simulated".into(),
+            kind: SIMULATED.into(),
             speed: speed_text.to_string(),
+            hooks: Hooks::default(),
         },
-        clock,
         Some(truth),
-        stop,
-        Some((cfg.clone(), handle.true_capacity_ah())),
+        Some(SimRun {
+            config: cfg.clone(),
+            true_capacity_ah: cap,
+            handle,
+            speed_factor: match speed {
+                Speed::Max => None,
+                Speed::Factor(f) => Some(f),
+            },
+        }),
     )
-    .await
+}
+
+/// The bench kind recorded for the embedded simulated bench.
+pub const SIMULATED: &str = "simulated";
+/// The simulated pack's kept state in a run folder.
+pub const SIM_STATE_JSON: &str = "sim-pack.json";
+/// The process running a run folder (removed when the run is recorded).
+pub const RUN_LOCK: &str = "run.lock";
+
+/// A run on the embedded simulated bench.
+#[derive(Clone)]
+pub struct SimRun {
+    pub config: SimConfig,
+    pub true_capacity_ah: f64,
+    pub handle: sim::SimHandle,
+    /// Bench seconds per wall second when paced.
+    pub speed_factor: Option<f64>,
 }
 
 /// One instrument's open link, its profile and how to describe it.
@@ -568,6 +675,7 @@ pub struct BenchLinks {
     pub shared: bool,
     pub kind: String,
     pub speed: String,
+    pub hooks: Hooks,
 }
 
 fn reopen_for(role: &'static str, spec: &LinkSpec, profile: &Profile) -> Reopen {
@@ -621,6 +729,7 @@ pub async fn open_station(station: &StationSpec) -> Result<BenchLinks, RunError>
                 shared: false,
                 kind: format!("station {}", station.name),
                 speed: "real time".into(),
+                hooks: Hooks::default(),
             })
         }
         Drivers::SourceSink(b) => {
@@ -658,6 +767,7 @@ pub async fn open_station(station: &StationSpec) -> Result<BenchLinks, RunError>
                 shared: true,
                 kind: format!("station {}", station.name),
                 speed: "real time".into(),
+                hooks: Hooks::default(),
             })
         }
     }
@@ -667,11 +777,11 @@ pub async fn open_station(station: &StationSpec) -> Result<BenchLinks, RunError>
 /// [`prepare`] has passed.
 pub async fn execute(
     p: &Prepared,
-    mut links: BenchLinks,
+    links: BenchLinks,
     clock: Arc<dyn Clock>,
     truth: Option<Arc<dyn GroundTruth>>,
     stop: StopHandle,
-    sim: Option<(SimConfig, f64)>,
+    sim: Option<SimRun>,
 ) -> Result<RunReport, RunError> {
     let started = chrono::Utc::now();
     // Sorted by the day the test counts for, then the wall-clock start.
@@ -689,19 +799,10 @@ pub async fn execute(
             .map_err(io_err(&path))?;
     }
     let (run_id, dir) = create_run_folder(&p.pack_dir, &base_id).map_err(io_err(&p.pack_dir))?;
-    if p.options.trace {
-        let path = dir.join(TRACE_LOG);
-        let trace = Trace::create(&path).map_err(io_err(&path))?;
-        links.source.attach.trace = Some(trace.clone());
-        links.load.attach.trace = Some(trace.clone());
-        if let Some(m) = links.meter.as_mut() {
-            m.attach.trace = Some(trace);
-        }
-    }
-    let mut manifest = Manifest {
+    let manifest = Manifest {
         tool: ToolInfo {
-            name: "packbench",
-            version: env!("CARGO_PKG_VERSION"),
+            name: "packbench".into(),
+            version: env!("CARGO_PKG_VERSION").into(),
         },
         run_id: run_id.clone(),
         pack_id: p.pack_id.clone(),
@@ -721,13 +822,111 @@ pub async fn execute(
         bench: BenchRecord {
             kind: links.kind.clone(),
             speed: links.speed.clone(),
+            speed_factor: match &sim {
+                Some(s) => s.speed_factor,
+                None if clock.is_simulated() => None,
+                None => Some(1.0),
+            },
+            bench_file: links
+                .hooks
+                .station
+                .as_ref()
+                .map(|(_, f)| f.display().to_string()),
+            station: links.hooks.station.as_ref().map(|(n, _)| n.clone()),
         },
         instruments: Vec::new(),
-        simulation: None,
+        simulation: sim.as_ref().map(|s| SimulationRecord {
+            label: SIM_TRUTH_LABEL.into(),
+            config: s.config.clone(),
+            true_capacity_ah: s.true_capacity_ah,
+            steps: Vec::new(),
+        }),
+        timing: None,
+        alarm_below_pct: p.options.alarm_below_pct,
+        resumes: Vec::new(),
     };
+    let sink = RunLogSink::create(&dir).map_err(io_err(&dir))?;
+    let rec = Recording {
+        dir,
+        run_id,
+        manifest,
+        resume: None,
+    };
+    drive(p, rec, links, clock, truth, stop, sim, sink).await
+}
+
+const SIM_TRUTH_LABEL: &str = "simulation truth: charge and energy the model integrated at the pack terminals (not a measurement)";
+
+/// A run folder being written.
+pub struct Recording {
+    pub dir: PathBuf,
+    pub run_id: String,
+    pub manifest: Manifest,
+    /// Where an interrupted run goes on.
+    pub resume: Option<crate::engine::ResumePoint>,
+}
+
+/// Write the lock naming this process.
+fn write_lock(dir: &Path) -> Result<(), RunError> {
+    let path = dir.join(RUN_LOCK);
+    crate::runlog::write::atomic_write(&path, format!("{}\n", std::process::id()).as_bytes())
+        .map_err(io_err(&path))
+}
+
+/// Connect to a station, run (or go on with) the plan, record the result.
+#[allow(clippy::too_many_arguments)]
+pub async fn drive(
+    p: &Prepared,
+    rec: Recording,
+    mut links: BenchLinks,
+    clock: Arc<dyn Clock>,
+    truth: Option<Arc<dyn GroundTruth>>,
+    stop: StopHandle,
+    sim: Option<SimRun>,
+    mut sink: RunLogSink,
+) -> Result<RunReport, RunError> {
+    let Recording {
+        dir,
+        run_id,
+        mut manifest,
+        resume,
+    } = rec;
+    write_lock(&dir)?;
+    if let Some(s) = &sim {
+        // The simulated pack keeps its state beside the log (every 10
+        // bench seconds when paced, every minute at full speed).
+        let every = if s.speed_factor.is_some() { 10.0 } else { 60.0 };
+        s.handle.keep_state(dir.join(SIM_STATE_JSON), every);
+    }
+    if p.options.trace {
+        let path = dir.join(TRACE_LOG);
+        let trace = Trace::create(&path).map_err(io_err(&path))?;
+        links.source.attach.trace = Some(trace.clone());
+        links.load.attach.trace = Some(trace.clone());
+        if let Some(m) = links.meter.as_mut() {
+            m.attach.trace = Some(trace);
+        }
+    }
+    if let Some(em) = &links.hooks.emergency {
+        let who = links
+            .hooks
+            .station
+            .as_ref()
+            .map(|(n, _)| format!("{n} "))
+            .unwrap_or_default();
+        for (role, b) in [("source", Some(&links.source)), ("load", Some(&links.load))]
+            .into_iter()
+            .chain([("meter", links.meter.as_ref())])
+        {
+            if let (Some(b), true) = (b, role != "meter") {
+                if let Some(r) = &b.attach.reopen {
+                    em.register(format!("{who}{role}"), Arc::clone(r), b.profile.clone());
+                }
+            }
+        }
+    }
     let run_json = dir.join(RUN_JSON);
     write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
-    let mut sink = RunLogSink::create(&dir).map_err(io_err(&dir))?;
     let mut records = Vec::new();
     let record = |role: &str, b: &BoundLink, idn: &str| InstrumentRecord {
         role: role.into(),
@@ -739,6 +938,7 @@ pub async fn execute(
         record("source", &links.source, ""),
         record("load", &links.load, ""),
     );
+    let board = links.hooks.board.clone();
     let connected = async {
         let source =
             Source::connect_with(links.source.link, links.source.profile, links.source.attach)
@@ -777,25 +977,38 @@ pub async fn execute(
             manifest.stop_reason = Some(format!("could not connect: {e}"));
             manifest.finished_utc = Some(utc_now());
             write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
+            let _ = std::fs::remove_file(dir.join(RUN_LOCK));
+            if let Some(b) = &board {
+                b.update(|l| {
+                    l.state = "failed".into();
+                    l.alarms.push(format!("could not connect: {e}"));
+                });
+            }
             return Err(RunError::Instrument(e));
         }
     };
-    records.push(InstrumentRecord {
-        idn: source.0.idn().to_string(),
-        ..src_rec
-    });
-    records.push(InstrumentRecord {
-        idn: load.0.idn().to_string(),
-        ..load_rec
-    });
-    let meter = meter.map(|(m, rec)| {
+    if manifest.instruments.is_empty() {
         records.push(InstrumentRecord {
-            idn: m.0.idn().to_string(),
-            ..rec
+            idn: source.0.idn().to_string(),
+            ..src_rec
         });
+        records.push(InstrumentRecord {
+            idn: load.0.idn().to_string(),
+            ..load_rec
+        });
+    }
+    let meter = meter.map(|(m, rec)| {
+        if manifest.instruments.is_empty() {
+            records.push(InstrumentRecord {
+                idn: m.0.idn().to_string(),
+                ..rec
+            });
+        }
         m
     });
-    manifest.instruments = records;
+    if manifest.instruments.is_empty() {
+        manifest.instruments = records;
+    }
     write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
     let mut station = Station {
         source,
@@ -803,30 +1016,65 @@ pub async fn execute(
         meter,
         shared_link: links.shared,
     };
-    let outcome = Engine::new(
-        &p.procedure.plan,
-        &mut station,
-        clock,
-        &mut sink,
-        truth,
-        stop,
-    )
-    .run()
-    .await;
+    let alarm_ah = p
+        .options
+        .alarm_below_pct
+        .map(|pct| pct / 100.0 * p.pack.rated_capacity_ah);
+    let outcome = {
+        let mut live;
+        let sink_ref: &mut dyn crate::engine::event::Sink = match &board {
+            Some(b) => {
+                live = crate::live::LiveSink {
+                    inner: &mut sink,
+                    board: b.clone(),
+                    est: crate::live::Estimator::new(&p.procedure.plan),
+                };
+                &mut live
+            }
+            None => &mut sink,
+        };
+        let mut engine = Engine::new(
+            &p.procedure.plan,
+            &mut station,
+            clock,
+            sink_ref,
+            truth,
+            stop,
+        )
+        .with_capacity_alarm(alarm_ah);
+        if let Some(r) = resume {
+            engine = engine.resume_from(r);
+        }
+        engine.run().await
+    };
     sink.flush().map_err(io_err(&dir))?;
     drop(sink);
+    finish_record(p, &dir, &run_id, manifest, outcome, sim)
+}
+
+/// Write the summary, the report and the final manifest of a run whose
+/// engine has stopped (or that was found stopped).
+fn finish_record(
+    p: &Prepared,
+    dir: &Path,
+    run_id: &str,
+    mut manifest: Manifest,
+    outcome: RunOutcome,
+    sim: Option<SimRun>,
+) -> Result<RunReport, RunError> {
+    let run_json = dir.join(RUN_JSON);
     // The summary comes from the log on disk, through the same code as
     // `analyze` uses afterwards.
     let ctx = SummaryContext {
         pack: &p.pack,
         pack_id: &p.pack_id,
-        run_id: &run_id,
+        run_id,
         title: &p.procedure.plan.title,
         test_date: p.options.test_date,
         cycle_count: p.options.cycle_count,
         policy: &p.options.policy,
     };
-    let (summary, log) = summarize_run_dir(&dir, &ctx, Some(&outcome))?;
+    let (summary, log) = summarize_run_dir(dir, &ctx, Some(&outcome))?;
     let summary_path = dir.join(SUMMARY_JSON);
     write_json(&summary_path, &summary).map_err(io_err(&summary_path))?;
     let report_path = dir.join(REPORT_HTML);
@@ -836,18 +1084,108 @@ pub async fn execute(
     manifest.status = outcome.status.name().into();
     manifest.stop_reason = outcome.reason.clone();
     manifest.finished_utc = Some(utc_now());
-    manifest.simulation = sim.map(|(config, cap)| SimulationRecord {
-        label: "simulation truth: charge and energy the model integrated at the pack terminals (not a measurement)",
-        config,
-        true_capacity_ah: cap,
-        steps: outcome.truth.clone(),
-    });
+    manifest.timing = Some(outcome.timing);
+    if let Some(s) = sim {
+        let mut steps = manifest
+            .simulation
+            .take()
+            .map(|r| r.steps)
+            .unwrap_or_default();
+        // A resumed step's truth adds to what the interrupted part counted.
+        for t in &outcome.truth {
+            match steps.iter_mut().find(|x| x.step == t.step) {
+                Some(x) => {
+                    x.charge_ah += t.charge_ah;
+                    x.energy_wh += t.energy_wh;
+                }
+                None => steps.push(*t),
+            }
+        }
+        manifest.simulation = Some(SimulationRecord {
+            label: SIM_TRUTH_LABEL.into(),
+            config: s.config,
+            true_capacity_ah: s.true_capacity_ah,
+            steps,
+        });
+    }
     write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
+    let _ = std::fs::remove_file(dir.join(RUN_LOCK));
     Ok(RunReport {
-        run_dir: dir,
+        run_dir: dir.to_path_buf(),
         summary,
         outcome,
     })
+}
+
+/// One station's run in a request: what to run, where, and its board.
+pub struct StationJob {
+    /// The station's name (the bench file's, or "sim").
+    pub name: String,
+    pub prepared: Prepared,
+    /// The bench-file station; none for the default simulated bench.
+    pub station: Option<(StationSpec, PathBuf)>,
+    pub cfg: SimConfig,
+    pub speed: Speed,
+    pub board: crate::live::Board,
+}
+
+/// Run one station's job: the embedded simulated bench, or the station's
+/// own links (opened only now, after everything validated).
+pub async fn run_job(
+    job: &StationJob,
+    stop: StopHandle,
+    emergency: Emergency,
+    coarse_clock: bool,
+) -> Result<RunReport, RunError> {
+    let hooks = Hooks {
+        board: Some(job.board.clone()),
+        emergency: Some(emergency),
+        station: job
+            .station
+            .as_ref()
+            .map(|(s, f)| (s.name.clone(), f.clone())),
+        coarse_clock,
+    };
+    let p = &job.prepared;
+    let result = match &job.station {
+        None => execute_sim_with(p, &job.cfg, job.speed, stop, hooks).await,
+        Some((st, _)) if st.is_simulated() => {
+            let (sp, lp) = st.profiles();
+            execute_sim_station(p, &job.cfg, job.speed, stop, sp.clone(), lp.clone(), hooks).await
+        }
+        Some((st, _)) => {
+            let factor = match job.speed {
+                Speed::Max => 1.0,
+                Speed::Factor(f) => f,
+            };
+            match open_station(st).await {
+                Ok(mut links) => {
+                    links.speed = if factor == 1.0 {
+                        "real time".into()
+                    } else {
+                        format!("{factor}x real time")
+                    };
+                    links.hooks = hooks;
+                    let clock: Arc<dyn Clock> = if coarse_clock {
+                        PacedClock::coarse(factor)
+                    } else {
+                        PacedClock::new(factor)
+                    };
+                    execute(p, links, clock, None, stop, None).await
+                }
+                Err(e) => Err(e),
+            }
+        }
+    };
+    if let Err(e) = &result {
+        job.board.update(|l| {
+            if !l.is_final() {
+                l.state = "failed".into();
+                l.alarms.push(e.to_string());
+            }
+        });
+    }
+    result
 }
 
 /// The raw-traffic trace of a run (`run --trace`).

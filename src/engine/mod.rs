@@ -64,7 +64,7 @@ enum Active {
 pub const MEASURE_RETRIES: usize = 2;
 
 /// Simulation truth for one step.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, serde::Deserialize)]
 pub struct TruthStep {
     pub step: u32,
     pub charge_ah: f64,
@@ -85,7 +85,7 @@ pub struct RunOutcome {
 }
 
 /// How well samples kept their schedule.
-#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, serde::Deserialize)]
 pub struct Timing {
     /// Samples taken after a wait.
     pub scheduled_samples: u64,

@@ -77,6 +77,21 @@ pub struct Attach {
     pub reopen: Option<Reopen>,
 }
 
+/// One last switch-off on a link opened afresh (the running session may
+/// be stuck): the profile's safe-state commands, not waited on.
+pub async fn safe_state_on_new_link(
+    name: &str,
+    reopen: &Reopen,
+    profile: &Profile,
+) -> Result<(), InstrumentError> {
+    let link = reopen().await?;
+    let mut s = Session::with_framing(name, link, profile.framing());
+    for c in &profile.session.safe_state {
+        s.write(c).await?;
+    }
+    Ok(())
+}
+
 /// One SCPI instrument with its profile.
 pub struct Instrument {
     session: Session,
