@@ -38,7 +38,9 @@ pub struct Cli {
 pub enum Command {
     /// Run a procedure on a pack and record it under the results folder.
     Run(RunArgs),
-    /// Validate a procedure for a pack and print the resolved plan.
+    /// Go on with an interrupted run (Ctrl-C, killed process, power cut) from its record.
+    Resume(ResumeArgs),
+    /// Validate a procedure for a pack, print the plan, and simulate it (dry run).
     Check(CheckArgs),
     /// Write (again) the HTML report of a run folder.
     Report(ReportArgs),
@@ -58,6 +60,27 @@ pub enum Command {
     Probe(crate::setup::ProbeArgs),
     /// The simulated bench as real endpoints.
     Sim(crate::setup::SimArgs),
+}
+
+#[derive(Debug, Args)]
+pub struct ResumeArgs {
+    /// The run folder (results/<pack>/<run>).
+    pub run_dir: PathBuf,
+    /// The bench file, when the run's recorded one has moved.
+    #[arg(long)]
+    pub bench: Option<PathBuf>,
+    /// Pace of a simulated bench (default: the run's own).
+    #[arg(long)]
+    pub speed: Option<String>,
+    /// Grading policy (TOML); default: the built-in policy.
+    #[arg(long)]
+    pub policy: Option<PathBuf>,
+    /// No live status; print only the final summary line.
+    #[arg(long)]
+    pub quiet: bool,
+    /// Live status lines every so often when the output is not a terminal.
+    #[arg(long, default_value = "60s")]
+    pub status_every: String,
 }
 
 #[derive(Debug, Args)]
@@ -218,6 +241,15 @@ pub struct CheckArgs {
     /// Results folder (for a saved pack spec).
     #[arg(long, default_value = "results")]
     pub results: PathBuf,
+    /// Simulated pack for the dry run (TOML, as for run --sim-config).
+    #[arg(long)]
+    pub sim_config: Option<PathBuf>,
+    /// Only validate; skip the dry run.
+    #[arg(long)]
+    pub no_dry_run: bool,
+    /// Print the dry run as JSON (after the plan).
+    #[arg(long)]
+    pub json: bool,
 }
 
 /// Build a pack spec from the options, if any were given.
@@ -534,21 +566,7 @@ pub fn cmd_run(a: RunArgs) -> i32 {
     let local = tokio::task::LocalSet::new();
     let jobs = std::rc::Rc::new(jobs);
     let results = local.block_on(&rt, async {
-        let (s, em) = (stop.clone(), emergency.clone());
-        tokio::task::spawn_local(async move {
-            if tokio::signal::ctrl_c().await.is_err() {
-                return;
-            }
-            eprintln!("\nCtrl-C: stopping safely (outputs off, confirmed) ... press Ctrl-C again to quit at once");
-            s.request_stop();
-            if tokio::signal::ctrl_c().await.is_ok() {
-                eprintln!("\nsecond Ctrl-C: one more switch-off on fresh links, then quitting");
-                for (who, sent) in em.all_off(std::time::Duration::from_millis(1500)).await {
-                    eprintln!("  {who}: {}", if sent { "off sent" } else { "NOT REACHED: switch it off by hand" });
-                }
-                std::process::exit(EXIT_SECOND_INTERRUPT);
-            }
-        });
+        spawn_interrupts(stop.clone(), emergency.clone());
         let boards: Vec<crate::live::Board> = jobs.iter().map(|j| j.board.clone()).collect();
         let shown = tokio::task::spawn_local(crate::live::display(boards, mode));
         let mut tasks = Vec::new();
@@ -619,6 +637,127 @@ pub fn cmd_run(a: RunArgs) -> i32 {
     }
 }
 
+/// Ctrl-C: the first stops every station safely (outputs off, confirmed,
+/// runs marked interrupted, summaries written); a second one sends the
+/// safe state once more on fresh links and quits at once.
+fn spawn_interrupts(stop: StopHandle, em: run::Emergency) {
+    tokio::task::spawn_local(async move {
+        if tokio::signal::ctrl_c().await.is_err() {
+            return;
+        }
+        eprintln!("\nCtrl-C: stopping safely (outputs off, confirmed) ... press Ctrl-C again to quit at once");
+        stop.request_stop();
+        if tokio::signal::ctrl_c().await.is_ok() {
+            eprintln!("\nsecond Ctrl-C: one more switch-off on fresh links, then quitting");
+            for (who, sent) in em.all_off(std::time::Duration::from_millis(1500)).await {
+                eprintln!(
+                    "  {who}: {}",
+                    if sent {
+                        "off sent"
+                    } else {
+                        "NOT REACHED: switch it off by hand"
+                    }
+                );
+            }
+            std::process::exit(EXIT_SECOND_INTERRUPT);
+        }
+    });
+}
+
+/// `packbench resume`.
+pub fn cmd_resume(a: ResumeArgs) -> i32 {
+    let setup = (|| -> Result<_, RunError> {
+        let speed = a.speed.as_deref().map(parse_speed).transpose()?;
+        let policy = match &a.policy {
+            Some(path) => {
+                let text = std::fs::read_to_string(path).map_err(|source| RunError::Io {
+                    path: path.clone(),
+                    source,
+                })?;
+                Some(Policy::from_toml(path, &text)?)
+            }
+            None => None,
+        };
+        crate::resume::prepare(&a.run_dir, a.bench.as_deref(), speed, policy)
+    })();
+    let setup = match setup {
+        Ok(s) => s,
+        Err(e) => return report_error(&e),
+    };
+    let mode = {
+        use std::io::IsTerminal;
+        if a.quiet {
+            crate::live::DisplayMode::Quiet
+        } else if std::io::stderr().is_terminal() {
+            crate::live::DisplayMode::Terminal
+        } else {
+            match units::duration(&a.status_every) {
+                Ok(s) if s >= 0.1 => crate::live::DisplayMode::Lines(s),
+                _ => {
+                    return report_error(&RunError::Pack(format!(
+                        "--status-every '{}': expected a duration of 0.1 s or more",
+                        a.status_every
+                    )))
+                }
+            }
+        }
+    };
+    if !a.quiet {
+        match &setup.found {
+            crate::resume::Found::GoOn(p) => eprintln!(
+                "resuming {} at step {} (last sample at {:.1} s, down {:.0} s)",
+                a.run_dir.display(),
+                setup
+                    .prepared
+                    .procedure
+                    .plan
+                    .steps
+                    .get(p.position)
+                    .map(|s| s.index)
+                    .unwrap_or(0),
+                p.last_sample_t_s,
+                p.gap_s
+            ),
+            crate::resume::Found::Recorded { status, .. } => eprintln!(
+                "the run had ended ({status}) but its record was not finished: writing it"
+            ),
+        }
+    }
+    let rt = match tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+    {
+        Ok(rt) => rt,
+        Err(e) => {
+            eprintln!("error: cannot start the runtime: {e}");
+            return EXIT_FAILURE;
+        }
+    };
+    let stop = StopHandle::new();
+    let emergency = run::Emergency::default();
+    let board = crate::live::Board::new("resume", &setup.prepared.pack_id);
+    let local = tokio::task::LocalSet::new();
+    let result = local.block_on(&rt, async {
+        spawn_interrupts(stop.clone(), emergency.clone());
+        let shown = tokio::task::spawn_local(crate::live::display(vec![board.clone()], mode));
+        let r = crate::resume::execute(setup, board.clone(), stop.clone(), emergency).await;
+        board.update(|l| {
+            if !l.is_final() {
+                l.state = "failed".into();
+            }
+        });
+        let _ = shown.await;
+        r
+    });
+    match result {
+        Ok(r) => {
+            print_result(&r, a.quiet);
+            r.exit_code()
+        }
+        Err(e) => report_error(&e),
+    }
+}
+
 fn print_result(r: &run::RunReport, quiet: bool) {
     if quiet {
         println!(
@@ -676,6 +815,22 @@ pub fn cmd_check(a: CheckArgs) -> anyhow::Result<i32> {
         loaded.plan.steps.len(),
         &loaded.sha256[..16]
     );
+    if !a.no_dry_run {
+        let cfg = sim_config(a.sim_config.as_deref(), false, &[])?;
+        let f = crate::dryrun::forecast(&loaded.plan, &cfg);
+        if a.json {
+            println!("{}", serde_json::to_string_pretty(&f)?);
+        } else {
+            println!(
+                "Dry run on the simulated pack ({:.0} % of rated capacity, {:.2}x new resistance, starting at {:.0} % charge, {} degC; --sim-config to change):",
+                cfg.pack.capacity_factor * 100.0,
+                cfg.pack.resistance_factor,
+                cfg.pack.initial_soc * 100.0,
+                cfg.pack.ambient_c
+            );
+            print!("{f}");
+        }
+    }
     Ok(EXIT_OK)
 }
 
@@ -817,6 +972,7 @@ pub fn main() -> i32 {
     };
     let result = match cli.command {
         Command::Run(a) => return cmd_run(a),
+        Command::Resume(a) => return cmd_resume(a),
         Command::Check(a) => cmd_check(a).context("check failed"),
         Command::Report(a) => cmd_report(a).context("report failed"),
         Command::Fade(a) => cmd_fade(a).context("fade analysis failed"),

@@ -1054,7 +1054,7 @@ pub async fn drive(
 
 /// Write the summary, the report and the final manifest of a run whose
 /// engine has stopped (or that was found stopped).
-fn finish_record(
+pub fn finish_record(
     p: &Prepared,
     dir: &Path,
     run_id: &str,
@@ -1186,6 +1186,61 @@ pub async fn run_job(
         });
     }
     result
+}
+
+/// Go on with an interrupted run on its bench (see [`crate::resume`]):
+/// the simulated pack is put back in its kept state, left open-circuit for
+/// the gap; a real station's links are opened again.
+#[allow(clippy::too_many_arguments)]
+pub async fn run_resumed_job(
+    job: &StationJob,
+    rec: Recording,
+    sink: RunLogSink,
+    stop: StopHandle,
+    emergency: Emergency,
+    kept: Option<sim::bench::PackState>,
+    gap_s: f64,
+) -> Result<RunReport, RunError> {
+    let hooks = Hooks {
+        board: Some(job.board.clone()),
+        emergency: Some(emergency),
+        station: job
+            .station
+            .as_ref()
+            .map(|(s, f)| (s.name.clone(), f.clone())),
+        coarse_clock: false,
+    };
+    let p = &job.prepared;
+    let simulated = job.station.as_ref().is_none_or(|(s, _)| s.is_simulated());
+    if simulated {
+        let (clock, links, speed_text) = new_sim_bench(p, &job.cfg, job.speed, false);
+        if let Some(k) = &kept {
+            links.handle.restore(k, gap_s);
+        }
+        let (sp, lp) = match &job.station {
+            Some((st, _)) => {
+                let (a, b) = st.profiles();
+                (a.clone(), b.clone())
+            }
+            None => {
+                let mut sp = Profile::builtin(ProfileRole::Source);
+                let mut lp = Profile::builtin(ProfileRole::Load);
+                sp.transport.timeout_ms = SIM_TIMEOUT_MS;
+                lp.transport.timeout_ms = SIM_TIMEOUT_MS;
+                (sp, lp)
+            }
+        };
+        let (mut bl, truth, sim) = sim_bench_links(&job.cfg, links, &speed_text, sp, lp, job.speed);
+        bl.hooks = hooks;
+        return drive(p, rec, bl, clock, truth, stop, sim, sink).await;
+    }
+    let Some((st, _)) = &job.station else {
+        return Err(RunError::Pack("no bench to resume on".into()));
+    };
+    let mut links = open_station(st).await?;
+    links.hooks = hooks;
+    let clock: Arc<dyn Clock> = PacedClock::new(1.0);
+    drive(p, rec, links, clock, None, stop, None, sink).await
 }
 
 /// The raw-traffic trace of a run (`run --trace`).

@@ -1,0 +1,353 @@
+//! Dry run: the procedure played on the simulated pack at full speed, in
+//! memory (nothing written, no instrument touched), to show what to expect
+//! of each step — its duration, charge and end — and what may go wrong:
+//! a charge whose time cap comes before it is full, a capacity step that
+//! would end on its time cap instead of its cutoff, an envelope limit
+//! within 2 % of a setpoint, a simulated safety stop.
+
+use crate::analysis::integrate::Integrator;
+use crate::clock::{Clock, SimClock};
+use crate::engine::control::StopHandle;
+use crate::engine::event::{EndKind, Event, Sink};
+use crate::engine::{Engine, Station};
+use crate::instrument::profile::{Profile, ProfileRole};
+use crate::instrument::{Load, Source};
+use crate::procedure::{DischargeMode, EndCondition, Plan, ResultTag, StepKind};
+use crate::sample::Sample;
+use crate::sim::SimConfig;
+use crate::units::HumanDuration;
+use serde::Serialize;
+use std::fmt;
+use std::sync::Arc;
+
+/// An envelope limit this close to a setpoint is flagged (2 %).
+pub const NEAR_LIMIT: f64 = 0.02;
+
+/// What one step is expected to do.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct StepForecast {
+    pub step: u32,
+    pub kind: String,
+    pub duration_s: f64,
+    /// Net charge, Ah (positive into the pack).
+    pub ah: f64,
+    pub end_kind: Option<EndKind>,
+    pub end_reason: String,
+}
+
+/// The whole dry run.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Forecast {
+    pub steps: Vec<StepForecast>,
+    pub total_s: f64,
+    /// How the simulated run ended (completed, or aborted and why).
+    pub status: String,
+    pub stop_reason: Option<String>,
+    pub warnings: Vec<String>,
+}
+
+#[derive(Default)]
+struct ForecastSink {
+    steps: Vec<StepForecast>,
+    open: Option<(f64, Integrator)>,
+    last_t: f64,
+    status: String,
+    reason: Option<String>,
+}
+
+impl Sink for ForecastSink {
+    fn sample(&mut self, s: &Sample) -> std::io::Result<()> {
+        if let Some((_, g)) = self.open.as_mut() {
+            g.push(s.t_s, s.voltage_v, s.current_a);
+        }
+        self.last_t = s.t_s;
+        Ok(())
+    }
+    fn event(&mut self, e: &Event) -> std::io::Result<()> {
+        match e {
+            Event::StepStart {
+                t_s, step, kind, ..
+            } => {
+                self.open = Some((*t_s, Integrator::default()));
+                self.steps.push(StepForecast {
+                    step: *step,
+                    kind: kind.clone(),
+                    duration_s: 0.0,
+                    ah: 0.0,
+                    end_kind: None,
+                    end_reason: "not reached".into(),
+                });
+            }
+            Event::StepEnd {
+                t_s,
+                end_kind,
+                end_reason,
+                ..
+            } => {
+                if let (Some((t0, g)), Some(last)) = (self.open.take(), self.steps.last_mut()) {
+                    last.duration_s = t_s - t0;
+                    last.ah = g.ah;
+                    last.end_kind = Some(*end_kind);
+                    last.end_reason = end_reason.clone();
+                }
+            }
+            Event::RunEnd {
+                t_s,
+                status,
+                reason,
+            } => {
+                self.last_t = self.last_t.max(*t_s);
+                self.status = status.clone();
+                self.reason = reason.clone();
+            }
+            _ => {}
+        }
+        Ok(())
+    }
+}
+
+/// Envelope limits within [`NEAR_LIMIT`] of a setpoint or end threshold.
+pub fn near_limits(plan: &Plan) -> Vec<String> {
+    let env = &plan.envelope;
+    let mut out = Vec::new();
+    let near = |set: f64, limit: f64| set > 0.0 && ((limit - set) / set).abs() < NEAR_LIMIT;
+    for st in &plan.steps {
+        let mut currents = Vec::new();
+        match &st.kind {
+            StepKind::Charge {
+                current_a,
+                voltage_v,
+            } => {
+                currents.push(*current_a);
+                if near(*voltage_v, env.voltage_max_v) {
+                    out.push(format!(
+                        "step {}: charge voltage {:.3} V is within 2 % of voltage_max {:.3} V: noise or a small overshoot trips the envelope",
+                        st.index, voltage_v, env.voltage_max_v
+                    ));
+                }
+            }
+            StepKind::Discharge {
+                load: DischargeMode::Current { current_a },
+            } => currents.push(*current_a),
+            StepKind::Pulse { levels } => currents.extend(levels.iter().map(|l| l.current_a.abs())),
+            _ => {}
+        }
+        for i in currents {
+            if near(i, env.current_max_a) {
+                out.push(format!(
+                    "step {}: current {:.3} A is within 2 % of current_max {:.3} A",
+                    st.index, i, env.current_max_a
+                ));
+            }
+        }
+        for c in &st.ends {
+            match *c {
+                EndCondition::VoltageBelow { voltage_v } if near(voltage_v, env.voltage_min_v) => {
+                    out.push(format!(
+                        "step {}: cutoff {:.3} V is within 2 % of voltage_min {:.3} V: the envelope may trip before the step ends",
+                        st.index, voltage_v, env.voltage_min_v
+                    ))
+                }
+                EndCondition::VoltageAbove { voltage_v } if near(voltage_v, env.voltage_max_v) => {
+                    out.push(format!(
+                        "step {}: end voltage {:.3} V is within 2 % of voltage_max {:.3} V",
+                        st.index, voltage_v, env.voltage_max_v
+                    ))
+                }
+                EndCondition::TemperatureAbove { celsius }
+                    if near(celsius, env.temperature_max_c) =>
+                {
+                    out.push(format!(
+                        "step {}: end temperature {celsius} degC is within 2 % of temperature_max {} degC",
+                        st.index, env.temperature_max_c
+                    ))
+                }
+                EndCondition::Time { seconds } if near(seconds, env.step_time_max_s) => {
+                    out.push(format!(
+                        "step {}: time limit {} is within 2 % of step_time_max {}",
+                        st.index,
+                        HumanDuration(seconds),
+                        HumanDuration(env.step_time_max_s)
+                    ))
+                }
+                _ => {}
+            }
+        }
+    }
+    out
+}
+
+/// Play a plan on the simulated pack and forecast it.
+pub fn forecast(plan: &Plan, cfg: &SimConfig) -> Forecast {
+    let clock = SimClock::new();
+    let dyn_clock: Arc<dyn Clock> = clock.clone();
+    let links = crate::sim::build(&plan.pack, cfg, Arc::clone(&dyn_clock));
+    let mut sink = ForecastSink::default();
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build();
+    let mut warnings = Vec::new();
+    let ran = rt.map(|rt| {
+        rt.block_on(async {
+            let mut sp = Profile::builtin(ProfileRole::Source);
+            let mut lp = Profile::builtin(ProfileRole::Load);
+            sp.transport.timeout_ms = crate::run::SIM_TIMEOUT_MS;
+            lp.transport.timeout_ms = crate::run::SIM_TIMEOUT_MS;
+            let source = Source::connect(links.source, sp).await?;
+            let load = Load::connect(links.load, lp).await?;
+            let mut station = Station::new(source, load);
+            Engine::new(
+                plan,
+                &mut station,
+                dyn_clock,
+                &mut sink,
+                None,
+                StopHandle::new(),
+            )
+            .run()
+            .await;
+            Ok::<(), crate::instrument::InstrumentError>(())
+        })
+    });
+    match ran {
+        Ok(Ok(())) => {}
+        Ok(Err(e)) => warnings.push(format!("the dry run could not start: {e}")),
+        Err(e) => warnings.push(format!("the dry run could not start: {e}")),
+    }
+    if sink.status != "completed" {
+        warnings.push(format!(
+            "the simulated run does not complete: {}",
+            sink.reason.clone().unwrap_or_else(|| sink.status.clone())
+        ));
+    }
+    for s in &sink.steps {
+        let Some(st) = plan.steps.iter().find(|p| p.index == s.step) else {
+            continue;
+        };
+        let has_other_end = st
+            .ends
+            .iter()
+            .any(|c| !matches!(c, EndCondition::Time { .. }));
+        if s.end_kind == Some(EndKind::Time) && has_other_end {
+            match (&st.kind, st.result) {
+                (StepKind::Charge { .. }, _) => warnings.push(format!(
+                    "step {}: the charge is expected to stop on its time cap ({}) before it is full: the cap is shorter than the expected charge",
+                    st.index,
+                    HumanDuration(s.duration_s.round())
+                )),
+                (_, Some(ResultTag::Capacity)) => warnings.push(format!(
+                    "step {}: the capacity step is expected to end on its time cap ({}) instead of its cutoff: the capacity would be understated",
+                    st.index,
+                    HumanDuration(s.duration_s.round())
+                )),
+                _ => warnings.push(format!(
+                    "step {}: expected to end on its time cap ({}) rather than its other end condition",
+                    st.index,
+                    HumanDuration(s.duration_s.round())
+                )),
+            }
+        }
+    }
+    warnings.extend(near_limits(plan));
+    Forecast {
+        total_s: sink
+            .last_t
+            .max(sink.steps.iter().map(|s| s.duration_s).sum::<f64>()),
+        steps: sink.steps,
+        status: if sink.status.is_empty() {
+            "not run".into()
+        } else {
+            sink.status
+        },
+        stop_reason: sink.reason,
+        warnings,
+    }
+}
+
+impl fmt::Display for Forecast {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        writeln!(f, "  step  kind        expected       charge Ah  ends on")?;
+        for s in &self.steps {
+            writeln!(
+                f,
+                "  {:>4}  {:<10}  {:>12}  {:>10.3}  {}",
+                s.step,
+                s.kind,
+                HumanDuration(s.duration_s.round()).to_string(),
+                s.ah,
+                s.end_reason
+            )?;
+        }
+        writeln!(
+            f,
+            "  Total expected time: {}",
+            HumanDuration(self.total_s.round())
+        )?;
+        for w in &self.warnings {
+            writeln!(f, "  warning: {w}")?;
+        }
+        Ok(())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::pack::{Chemistry, PackSpec};
+    use crate::procedure::validate::plan_from_text;
+    use std::path::Path;
+
+    fn pack() -> PackSpec {
+        PackSpec {
+            chemistry: Chemistry::LiIon,
+            series: 10,
+            rated_capacity_ah: 14.0,
+            rated_energy_wh: None,
+            rated_rate_c: None,
+            rated_resistance_mohm: None,
+        }
+    }
+
+    #[test]
+    fn a_short_time_cap_and_a_near_limit_are_flagged() {
+        // A C/5 capacity discharge capped at 2 h cannot reach its cutoff
+        // (it needs about 5 h); the charge voltage sits 1.2 % under
+        // voltage_max.
+        let text = r#"
+title = "t"
+[envelope]
+voltage_max = "4.25V/cell"
+voltage_min = "2.8V/cell"
+current_max = "1C"
+temperature_max = "55degC"
+[[phase]]
+name = "p"
+  [[phase.step]]
+  kind = "charge"
+  current = "0.5C"
+  voltage = "4.2V/cell"
+  ends = ["current < 0.05C", "time > 30min"]
+  [[phase.step]]
+  kind = "discharge"
+  current = "0.2C"
+  ends = ["voltage < 3.0V/cell", "time > 2h"]
+  result = "capacity"
+"#;
+        let plan = plan_from_text(Path::new("t.toml"), text, &pack()).expect("plan");
+        let f = forecast(&plan, &SimConfig::default());
+        assert_eq!(f.steps.len(), 2);
+        assert_eq!(f.steps[0].end_kind, Some(EndKind::Time));
+        assert_eq!(f.steps[1].end_kind, Some(EndKind::Time));
+        let all = f.warnings.join("\n");
+        assert!(
+            all.contains("step 1: the charge is expected to stop on its time cap"),
+            "{all}"
+        );
+        assert!(
+            all.contains("step 2: the capacity step is expected to end on its time cap"),
+            "{all}"
+        );
+        assert!(all.contains("within 2 % of voltage_max"), "{all}");
+        assert!((f.total_s - 2.5 * 3600.0).abs() < 10.0, "{}", f.total_s);
+    }
+}

@@ -1,0 +1,454 @@
+//! `packbench resume RUN_DIR`: go on with a run that was interrupted
+//! (Ctrl-C, a killed process, a power cut), from its own record.
+//!
+//! The rules:
+//! - Only a run that did not end on its own is resumed: `run.json` says
+//!   `running` (the process died) or `interrupted` (Ctrl-C). A run stopped
+//!   by a safety limit or an instrument fault is never resumed: find the
+//!   cause and start a new run. A folder another live process is writing
+//!   (its `run.lock`) is refused.
+//! - Everything is checked before any instrument is spoken to: the manifest,
+//!   the procedure text it holds (validated again for the pack), the pack
+//!   spec, the log, and the bench.
+//! - Steps that ended are not run again. The step that was running goes on
+//!   by its kind ([`crate::engine::resume_rule`]): a rest restarts its
+//!   timer; a charge continues (same setpoints; constant current or taper,
+//!   wherever the pack's voltage puts the supply), a discharge continues to
+//!   its end condition, and both carry over their elapsed time and the
+//!   charge and energy counted so far in the log; a pulse or a drain step
+//!   starts again.
+//! - Before the first step the outputs are confirmed off, the pack is read
+//!   at rest and checked against the envelope, and the zero offsets are
+//!   read again.
+//! - The log goes on in the same files (a line cut by the interruption is
+//!   dropped first). Run time goes on from the last sample plus the time
+//!   the run was down (wall time × the pace of a simulated bench), so the
+//!   gap shows; nothing is integrated across it. `summary.json` lists each
+//!   resume with its gap and rule, and `run.json` keeps a record of it.
+//! - What the log does not hold is lost: charge that flowed between the
+//!   last sample on disk and the interruption is not counted (at most the
+//!   last ten run seconds when a process is killed, the last second of wall
+//!   time at a power cut). After a controller crash a real load may keep
+//!   drawing until its own protection stops it: set the instruments' own
+//!   limits (see the README).
+//! - On the simulated bench the pack lives in the process that died, so it
+//!   keeps its state in `sim-pack.json` beside the log (a real pack keeps
+//!   its charge by itself); the resumed bench starts from that state, left
+//!   open-circuit for the gap.
+
+use crate::analysis::integrate::Integrator;
+use crate::engine::event::{EndKind, Event};
+use crate::engine::state::RunState;
+use crate::engine::{resume_continues, resume_rule, Carried, ResumePoint, RunOutcome, Timing};
+use crate::procedure::{self, LoadedProcedure};
+use crate::run::{
+    self, Manifest, Prepared, ResumeRecord, RunError, RunOptions, RunReport, Speed, StationJob,
+    RUN_LOCK, SIMULATED, SIM_STATE_JSON,
+};
+use crate::runlog::import::{stream_log, LogFormat};
+use crate::runlog::read::read_events;
+use crate::runlog::{EVENTS_JSONL, PACK_TOML, RUN_JSON, SAMPLES_CSV};
+use crate::sim::SimConfig;
+use std::path::{Path, PathBuf};
+
+/// What a run folder says about where to go on.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Found {
+    /// Steps are left: go on here.
+    GoOn(ResumePoint),
+    /// The engine had finished (the process died writing the record): only
+    /// the record is left to write.
+    Recorded {
+        status: String,
+        reason: Option<String>,
+    },
+}
+
+/// A checked resume, ready to run.
+pub struct ResumeSetup {
+    pub dir: PathBuf,
+    pub manifest: Manifest,
+    pub prepared: Prepared,
+    pub found: Found,
+    /// The simulated bench's settings and pace, when the run is simulated.
+    pub sim: Option<(SimConfig, Speed)>,
+    /// The bench file and station of a real bench.
+    pub station: Option<(crate::benchfile::StationSpec, PathBuf)>,
+}
+
+fn bad(msg: String) -> RunError {
+    RunError::Pack(msg)
+}
+
+fn io_err(path: &Path) -> impl FnOnce(std::io::Error) -> RunError + '_ {
+    move |source| RunError::Io {
+        path: path.to_path_buf(),
+        source,
+    }
+}
+
+/// Whether a process with this id is alive (a lock left by a dead one is
+/// stale).
+fn process_alive(pid: i32) -> bool {
+    if pid <= 0 || pid as u32 == std::process::id() {
+        return false;
+    }
+    nix::sys::signal::kill(nix::unistd::Pid::from_raw(pid), None).is_ok()
+}
+
+/// Check a run folder and work out where it goes on. Talks to nothing.
+pub fn prepare(
+    dir: &Path,
+    bench_override: Option<&Path>,
+    speed_override: Option<Speed>,
+    policy: Option<crate::fade::grade::Policy>,
+) -> Result<ResumeSetup, RunError> {
+    let run_json = dir.join(RUN_JSON);
+    let text = std::fs::read_to_string(&run_json).map_err(io_err(&run_json))?;
+    let manifest: Manifest = serde_json::from_str(&text).map_err(|e| {
+        bad(format!(
+            "{}:{}:{}: not a packbench run record: {e}",
+            run_json.display(),
+            e.line(),
+            e.column()
+        ))
+    })?;
+    match manifest.status.as_str() {
+        "running" | "interrupted" => {}
+        "completed" => {
+            return Err(bad(format!(
+                "{}: the run completed; nothing to resume",
+                dir.display()
+            )))
+        }
+        other => {
+            return Err(bad(format!(
+                "{}: the run ended '{other}' ({}): a run stopped by a safety limit or a fault is not resumed; find the cause and start a new run",
+                dir.display(),
+                manifest.stop_reason.as_deref().unwrap_or("no reason recorded")
+            )))
+        }
+    }
+    let lock = dir.join(RUN_LOCK);
+    if let Ok(l) = std::fs::read_to_string(&lock) {
+        if let Ok(pid) = l.trim().parse::<i32>() {
+            if process_alive(pid) {
+                return Err(bad(format!(
+                    "{}: process {pid} is still running this test ({}); stop it first",
+                    dir.display(),
+                    lock.display()
+                )));
+            }
+        }
+    }
+    // The pack: its saved spec, else the one the manifest recorded.
+    let pack_dir = dir
+        .parent()
+        .ok_or_else(|| bad(format!("{}: not inside a pack folder", dir.display())))?
+        .to_path_buf();
+    let saved = pack_dir.join(PACK_TOML);
+    let pack = if saved.exists() {
+        run::read_pack_file(&saved)?
+    } else {
+        let p = &manifest.pack;
+        crate::pack::PackSpec {
+            chemistry: p.chemistry.parse().map_err(bad)?,
+            series: p.series,
+            rated_capacity_ah: p.rated_capacity_ah,
+            rated_energy_wh: p.rated_energy_wh,
+            rated_rate_c: p.rated_rate_c,
+            rated_resistance_mohm: p.rated_resistance_mohm,
+        }
+    };
+    let proc_path = PathBuf::from(&manifest.procedure.path);
+    let plan = procedure::validate::plan_from_text(&proc_path, &manifest.procedure.text, &pack)?;
+    let sha = procedure::sha256_hex(manifest.procedure.text.as_bytes());
+    if sha != manifest.procedure.sha256 {
+        return Err(bad(format!(
+            "{}: the procedure text does not match its recorded hash; the record was altered",
+            run_json.display()
+        )));
+    }
+    let test_date = chrono::NaiveDate::parse_from_str(&manifest.test_date, "%Y-%m-%d")
+        .map_err(|_| bad(format!("{}: bad test_date", run_json.display())))?;
+    let prepared = Prepared {
+        procedure: LoadedProcedure {
+            path: proc_path,
+            text: manifest.procedure.text.clone(),
+            sha256: sha,
+            plan,
+        },
+        pack_id: manifest.pack_id.clone(),
+        pack,
+        pack_dir,
+        save_pack: false,
+        pack_note: None,
+        options: RunOptions {
+            test_date,
+            cycle_count: manifest.cycle_count,
+            policy: policy.unwrap_or_else(crate::fade::grade::Policy::default_policy),
+            trace: false,
+            alarm_below_pct: manifest.alarm_below_pct,
+        },
+    };
+    let found = find_point(dir, &prepared, manifest.bench.speed_factor)?;
+    // The bench.
+    let (sim, station) = if manifest.bench.kind == SIMULATED {
+        let cfg = manifest
+            .simulation
+            .as_ref()
+            .map(|s| s.config.clone())
+            .unwrap_or_default();
+        let speed = speed_override.unwrap_or(match manifest.bench.speed_factor {
+            Some(f) => Speed::Factor(f),
+            None => Speed::Max,
+        });
+        (Some((cfg, speed)), None)
+    } else {
+        let file = match (bench_override, &manifest.bench.bench_file) {
+            (Some(f), _) => f.to_path_buf(),
+            (None, Some(f)) => PathBuf::from(f),
+            (None, None) => {
+                return Err(bad(format!(
+                    "{}: the run's bench file is not recorded; give --bench FILE",
+                    dir.display()
+                )))
+            }
+        };
+        let bench = crate::benchfile::BenchFile::load(&file)?;
+        let st = bench
+            .station(manifest.bench.station.as_deref())
+            .map_err(bad)?
+            .clone();
+        let (sp, lp) = st.profiles();
+        run::check_ranges(&prepared.procedure, sp, lp)?;
+        if st.is_simulated() {
+            let cfg = manifest
+                .simulation
+                .as_ref()
+                .map(|s| s.config.clone())
+                .unwrap_or_default();
+            let speed = speed_override.unwrap_or(match manifest.bench.speed_factor {
+                Some(f) => Speed::Factor(f),
+                None => Speed::Max,
+            });
+            (Some((cfg, speed)), Some((st, file)))
+        } else {
+            (None, Some((st, file)))
+        }
+    };
+    Ok(ResumeSetup {
+        dir: dir.to_path_buf(),
+        manifest,
+        prepared,
+        found,
+        sim,
+        station,
+    })
+}
+
+/// Where the run goes on, from its events and samples.
+pub fn find_point(dir: &Path, p: &Prepared, speed_factor: Option<f64>) -> Result<Found, RunError> {
+    let events = read_events(&dir.join(EVENTS_JSONL))?;
+    let plan = &p.procedure.plan;
+    let mut current: Option<u32> = None;
+    let mut ended_ok: Vec<u32> = Vec::new();
+    let mut last_event_t = 0.0f64;
+    let mut breaks = Vec::new();
+    let mut run_end: Option<(String, Option<String>)> = None;
+    for e in &events {
+        match e {
+            Event::StepStart { step, t_s, .. } => {
+                current = Some(*step);
+                last_event_t = last_event_t.max(*t_s);
+                run_end = None;
+            }
+            Event::Resumed { step, t_s, .. } => {
+                current = Some(*step);
+                breaks.push(*t_s);
+                last_event_t = last_event_t.max(*t_s);
+                run_end = None;
+            }
+            Event::StepEnd {
+                step, end_kind, t_s, ..
+            } => {
+                last_event_t = last_event_t.max(*t_s);
+                if !matches!(end_kind, EndKind::Aborted | EndKind::Interrupted) {
+                    ended_ok.push(*step);
+                }
+            }
+            Event::Breach { message, .. } => {
+                return Err(bad(format!(
+                    "{}: the run hit a safety limit ({message}); it is not resumed: find the cause and start a new run",
+                    dir.display()
+                )))
+            }
+            Event::RunEnd { status, reason, t_s } => {
+                last_event_t = last_event_t.max(*t_s);
+                run_end = Some((status.clone(), reason.clone()));
+            }
+            _ => {}
+        }
+    }
+    if let Some((status, reason)) = run_end {
+        if status != RunState::Interrupted.name() {
+            return Ok(Found::Recorded { status, reason });
+        }
+    }
+    // The interrupted step's samples: elapsed time and counts, nothing
+    // integrated across an earlier resume.
+    let mut last_t: Option<f64> = None;
+    let mut counters = Integrator::default();
+    let mut seg_first: Option<f64> = None;
+    let mut elapsed = 0.0;
+    let mut prev_t: Option<f64> = None;
+    stream_log(&dir.join(SAMPLES_CSV), &LogFormat::default(), |r| {
+        last_t = Some(last_t.map_or(r.t_s, |l: f64| l.max(r.t_s)));
+        if r.step != current || current.is_none() {
+            return;
+        }
+        let broke = prev_t.is_some_and(|pt| breaks.iter().any(|b| pt < *b && *b <= r.t_s));
+        if broke {
+            if let (Some(f), Some(pt)) = (seg_first, prev_t) {
+                elapsed += pt - f;
+            }
+            seg_first = None;
+            counters.break_segment();
+        }
+        if seg_first.is_none() {
+            seg_first = Some(r.t_s);
+        }
+        counters.push(r.t_s, r.voltage_v, r.current_a);
+        prev_t = Some(r.t_s);
+    })?;
+    if let (Some(f), Some(pt)) = (seg_first, prev_t) {
+        elapsed += pt - f;
+    }
+    let last_sample_t = last_t.unwrap_or(last_event_t).max(last_event_t);
+    // How long the run was down: since the log was last written.
+    let modified = [SAMPLES_CSV, EVENTS_JSONL]
+        .iter()
+        .filter_map(|n| std::fs::metadata(dir.join(n)).ok()?.modified().ok())
+        .max();
+    let wall_gap = modified
+        .and_then(|m| std::time::SystemTime::now().duration_since(m).ok())
+        .map(|d| d.as_secs_f64())
+        .unwrap_or(0.0);
+    let gap_s = wall_gap * speed_factor.unwrap_or(1.0);
+    let t_run_s = last_sample_t + gap_s.max(1e-3);
+    let (position, carried) = match current {
+        None => (0, None),
+        Some(k) if ended_ok.contains(&k) => (k as usize, None),
+        Some(k) => {
+            let pos = (k as usize).saturating_sub(1);
+            let st = plan.steps.get(pos).ok_or_else(|| {
+                bad(format!(
+                    "{}: the log names step {k}, but the procedure has {} steps",
+                    dir.display(),
+                    plan.steps.len()
+                ))
+            })?;
+            let carried = (resume_continues(&st.kind) && prev_t.is_some()).then_some(Carried {
+                elapsed_s: elapsed,
+                counters,
+            });
+            (pos, carried)
+        }
+    };
+    Ok(Found::GoOn(ResumePoint {
+        position,
+        t_run_s,
+        last_sample_t_s: last_sample_t,
+        gap_s,
+        carried,
+    }))
+}
+
+/// Resume a checked run: restore the simulated pack if any, open the bench,
+/// go on, record.
+pub async fn execute(
+    setup: ResumeSetup,
+    board: crate::live::Board,
+    stop: crate::engine::control::StopHandle,
+    emergency: run::Emergency,
+) -> Result<RunReport, RunError> {
+    let ResumeSetup {
+        dir,
+        mut manifest,
+        prepared,
+        found,
+        sim,
+        station,
+    } = setup;
+    let run_id = manifest.run_id.clone();
+    let point = match found {
+        Found::Recorded { status, reason } => {
+            // Only the record is missing.
+            let outcome = RunOutcome {
+                status: match status.as_str() {
+                    "completed" => RunState::Completed,
+                    "interrupted" => RunState::Interrupted,
+                    _ => RunState::Aborted,
+                },
+                reason,
+                source_off_confirmed: false,
+                load_off_confirmed: false,
+                truth: Vec::new(),
+                duration_s: 0.0,
+                timing: Timing::default(),
+                zero: Default::default(),
+            };
+            return run::finish_record(&prepared, &dir, &run_id, manifest, outcome, None);
+        }
+        Found::GoOn(p) => p,
+    };
+    let rule = match (
+        prepared.procedure.plan.steps.get(point.position),
+        &point.carried,
+    ) {
+        (Some(s), Some(_)) => resume_rule(&s.kind).to_string(),
+        (Some(s), None) if resume_continues(&s.kind) => {
+            "the step had not started: it starts from the beginning".into()
+        }
+        (Some(s), None) => resume_rule(&s.kind).to_string(),
+        (None, _) => "no step left to run".into(),
+    };
+    manifest.resumes.push(ResumeRecord {
+        at_utc: chrono::Utc::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
+        step: prepared
+            .procedure
+            .plan
+            .steps
+            .get(point.position)
+            .map(|s| s.index)
+            .unwrap_or(0),
+        t_s: point.t_run_s,
+        gap_s: point.gap_s,
+        rule,
+    });
+    manifest.status = "running".into();
+    manifest.finished_utc = None;
+    manifest.stop_reason = None;
+    let job = StationJob {
+        name: station
+            .as_ref()
+            .map(|(s, _)| s.name.clone())
+            .unwrap_or_else(|| "sim".into()),
+        prepared,
+        station,
+        cfg: sim.as_ref().map(|(c, _)| c.clone()).unwrap_or_default(),
+        speed: sim.as_ref().map(|(_, s)| *s).unwrap_or(Speed::Factor(1.0)),
+        board,
+    };
+    let rec = run::Recording {
+        dir: dir.clone(),
+        run_id,
+        manifest,
+        resume: Some(point.clone()),
+    };
+    let sink = crate::runlog::write::RunLogSink::append(&dir).map_err(io_err(&dir))?;
+    let kept = std::fs::read(dir.join(SIM_STATE_JSON))
+        .ok()
+        .and_then(|b| serde_json::from_slice::<crate::sim::bench::PackState>(&b).ok());
+    run::run_resumed_job(&job, rec, sink, stop, emergency, kept, point.gap_s).await
+}
