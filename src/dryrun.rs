@@ -177,42 +177,59 @@ pub fn near_limits(plan: &Plan) -> Vec<String> {
     out
 }
 
-/// Play a plan on the simulated pack and forecast it.
+/// Play a plan on the simulated pack and forecast it (outside any async
+/// runtime; see [`forecast_async`] inside one).
 pub fn forecast(plan: &Plan, cfg: &SimConfig) -> Forecast {
+    match tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+    {
+        Ok(rt) => rt.block_on(forecast_async(plan, cfg)),
+        Err(e) => Forecast {
+            steps: Vec::new(),
+            total_s: 0.0,
+            status: "not run".into(),
+            stop_reason: Some(e.to_string()),
+            warnings: vec![format!("the dry run could not start: {e}")],
+        },
+    }
+}
+
+/// [`forecast`] inside an async runtime. The simulated instruments read
+/// without error: the forecast is of the pack, not of a bench's meters.
+pub async fn forecast_async(plan: &Plan, cfg: &SimConfig) -> Forecast {
+    let cfg = &SimConfig {
+        ideal: true,
+        ..cfg.clone()
+    };
     let clock = SimClock::new();
     let dyn_clock: Arc<dyn Clock> = clock.clone();
     let links = crate::sim::build(&plan.pack, cfg, Arc::clone(&dyn_clock));
     let mut sink = ForecastSink::default();
-    let rt = tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build();
     let mut warnings = Vec::new();
-    let ran = rt.map(|rt| {
-        rt.block_on(async {
-            let mut sp = Profile::builtin(ProfileRole::Source);
-            let mut lp = Profile::builtin(ProfileRole::Load);
-            sp.transport.timeout_ms = crate::run::SIM_TIMEOUT_MS;
-            lp.transport.timeout_ms = crate::run::SIM_TIMEOUT_MS;
-            let source = Source::connect(links.source, sp).await?;
-            let load = Load::connect(links.load, lp).await?;
-            let mut station = Station::new(source, load);
-            Engine::new(
-                plan,
-                &mut station,
-                dyn_clock,
-                &mut sink,
-                None,
-                StopHandle::new(),
-            )
-            .run()
-            .await;
-            Ok::<(), crate::instrument::InstrumentError>(())
-        })
-    });
-    match ran {
-        Ok(Ok(())) => {}
-        Ok(Err(e)) => warnings.push(format!("the dry run could not start: {e}")),
-        Err(e) => warnings.push(format!("the dry run could not start: {e}")),
+    let ran = async {
+        let mut sp = Profile::builtin(ProfileRole::Source);
+        let mut lp = Profile::builtin(ProfileRole::Load);
+        sp.transport.timeout_ms = crate::run::SIM_TIMEOUT_MS;
+        lp.transport.timeout_ms = crate::run::SIM_TIMEOUT_MS;
+        let source = Source::connect(links.source, sp).await?;
+        let load = Load::connect(links.load, lp).await?;
+        let mut station = Station::new(source, load);
+        Engine::new(
+            plan,
+            &mut station,
+            dyn_clock,
+            &mut sink,
+            None,
+            StopHandle::new(),
+        )
+        .run()
+        .await;
+        Ok::<(), crate::instrument::InstrumentError>(())
+    }
+    .await;
+    if let Err(e) = ran {
+        warnings.push(format!("the dry run could not start: {e}"));
     }
     if sink.status != "completed" {
         warnings.push(format!(

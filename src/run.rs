@@ -1049,7 +1049,12 @@ pub async fn drive(
     };
     sink.flush().map_err(io_err(&dir))?;
     drop(sink);
-    finish_record(p, &dir, &run_id, manifest, outcome, sim)
+    // Reading the log back and writing the report takes a while on a long
+    // run: off the thread the other stations sample on.
+    let p = p.clone();
+    tokio::task::spawn_blocking(move || finish_record(&p, &dir, &run_id, manifest, outcome, sim))
+        .await
+        .map_err(|e| RunError::Pack(format!("writing the record failed: {e}")))?
 }
 
 /// Write the summary, the report and the final manifest of a run whose

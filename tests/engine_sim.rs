@@ -172,6 +172,22 @@ async fn every_shipped_procedure_completes_on_its_cutoff() {
             "{file}: {:?}",
             r.outcome.reason
         );
+        // The dry run's expected time is within 5 % of the run's own.
+        let f = packbench::dryrun::forecast_async(&p.procedure.plan, &SimConfig::default()).await;
+        let err = (f.total_s - r.outcome.duration_s) / r.outcome.duration_s;
+        eprintln!(
+            "{file}: dry run {:.0} s, run {:.0} s ({:+.3} %)",
+            f.total_s,
+            r.outcome.duration_s,
+            err * 100.0
+        );
+        assert!(
+            err.abs() < 0.05,
+            "{file}: dry run {} s vs run {} s",
+            f.total_s,
+            r.outcome.duration_s
+        );
+        assert_eq!(f.steps.len(), r.summary.steps.len(), "{file}");
         if RESISTANCE_ONLY.contains(&file) {
             let res = r.summary.resistance.as_ref().expect("a resistance figure");
             assert_eq!(res.readings.len(), 3, "{file}");

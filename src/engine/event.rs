@@ -90,6 +90,15 @@ pub enum Event {
         /// The zero offsets are subtracted from the current readings.
         corrected: bool,
     },
+    /// An instrument's current reading with its output off, read for one
+    /// step (a drain step reads its own zero just before it starts).
+    Zero {
+        t_s: f64,
+        step: u32,
+        instrument: String,
+        zero_a: f64,
+        readings: u32,
+    },
     /// Something the operator should know that does not stop the run.
     Warning {
         t_s: f64,

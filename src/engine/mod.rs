@@ -105,8 +105,10 @@ pub struct ZeroOffsets {
     pub load_a: Option<f64>,
 }
 
-/// Readings averaged for a zero offset.
-pub const ZERO_READINGS: usize = 5;
+/// Readings averaged for a zero offset before the run.
+pub const ZERO_READINGS: usize = 10;
+/// Readings averaged for a drain step's own zero (its figure is a few mA).
+pub const DRAIN_ZERO_READINGS: usize = 50;
 
 /// How a step that was interrupted goes on when a run resumes.
 #[derive(Debug, Clone, PartialEq)]
@@ -172,6 +174,8 @@ pub struct Engine<'a> {
     zero: ZeroOffsets,
     alarm_capacity_ah: Option<f64>,
     resume: Option<ResumePoint>,
+    /// The source's zero read just before the drain step now running.
+    drain_zero: Option<f64>,
 }
 
 impl<'a> Engine<'a> {
@@ -202,6 +206,7 @@ impl<'a> Engine<'a> {
             zero: ZeroOffsets::default(),
             alarm_capacity_ah: None,
             resume: None,
+            drain_zero: None,
         }
     }
 
@@ -322,6 +327,9 @@ impl<'a> Engine<'a> {
         let correct = self.plan.offsets.correct || matches!(step.kind, StepKind::Drain { .. });
         if !correct {
             return 0.0;
+        }
+        if let (StepKind::Drain { .. }, Some(z)) = (&step.kind, self.drain_zero) {
+            return z;
         }
         match self.active {
             Active::Source => self.zero.source_a.unwrap_or(0.0),
@@ -750,8 +758,28 @@ impl<'a> Engine<'a> {
             ),
             StepKind::Rest => (Active::None, Drive::Off),
             StepKind::Drain { current_limit_a } => {
-                // Hold the pack at its own voltage, read with outputs off.
+                // Hold the pack at its own voltage, read with outputs off,
+                // after reading the source's own zero afresh.
                 self.switch_off_active().await?;
+                let mut z = 0.0;
+                for _ in 0..DRAIN_ZERO_READINGS {
+                    z += self
+                        .station
+                        .source
+                        .measure()
+                        .await
+                        .map_err(Stop::Instrument)?
+                        .current_a;
+                }
+                let z = z / DRAIN_ZERO_READINGS as f64;
+                self.drain_zero = Some(z);
+                self.emit(Event::Zero {
+                    t_s: self.t(),
+                    step: st.index,
+                    instrument: "source".into(),
+                    zero_a: z,
+                    readings: DRAIN_ZERO_READINGS as u32,
+                })?;
                 let (r, _) = self.measure().await?;
                 (
                     Active::Source,

@@ -58,10 +58,49 @@ pub fn create_run_folder(pack_dir: &Path, base_id: &str) -> io::Result<(String, 
     Err(io::Error::other("could not find a free run id"))
 }
 
+/// Files synced to the disk about once a second by one background
+/// thread, so no running station waits on the disk.
+fn syncer() -> &'static std::sync::Mutex<Vec<std::sync::Weak<File>>> {
+    static FILES: std::sync::OnceLock<std::sync::Mutex<Vec<std::sync::Weak<File>>>> =
+        std::sync::OnceLock::new();
+    FILES.get_or_init(|| {
+        let spawned = std::thread::Builder::new()
+            .name("log-sync".into())
+            .spawn(|| loop {
+                std::thread::sleep(FLUSH_INTERVAL);
+                let live: Vec<std::sync::Arc<File>> = match syncer().lock() {
+                    Ok(mut g) => {
+                        g.retain(|w| w.strong_count() > 0);
+                        g.iter().filter_map(|w| w.upgrade()).collect()
+                    }
+                    Err(_) => Vec::new(),
+                };
+                for f in live {
+                    let _ = f.sync_data();
+                }
+            });
+        if spawned.is_err() {
+            // Without the thread, files are still synced when each run ends.
+        }
+        std::sync::Mutex::new(Vec::new())
+    })
+}
+
+/// Keep a file synced by the background thread while `keep` lives.
+fn sync_in_background(f: &File) -> Option<std::sync::Arc<File>> {
+    let dup = std::sync::Arc::new(f.try_clone().ok()?);
+    if let Ok(mut g) = syncer().lock() {
+        g.push(std::sync::Arc::downgrade(&dup));
+    }
+    Some(dup)
+}
+
 /// The engine sink that writes `samples.csv` and `events.jsonl`.
 pub struct RunLogSink {
     samples: BufWriter<File>,
     events: File,
+    /// The same files, kept for the background syncer.
+    _synced: Vec<std::sync::Arc<File>>,
     last_flush: Instant,
     last_handoff_t: f64,
     pub rows: usize,
@@ -77,9 +116,14 @@ impl RunLogSink {
             .create(true)
             .append(true)
             .open(dir.join(EVENTS_JSONL))?;
+        let _synced = [samples.get_ref(), &events]
+            .into_iter()
+            .filter_map(sync_in_background)
+            .collect();
         Ok(RunLogSink {
             samples,
             events,
+            _synced,
             last_flush: Instant::now(),
             last_handoff_t: f64::NEG_INFINITY,
             rows: 0,
@@ -103,9 +147,14 @@ impl RunLogSink {
             .create(true)
             .append(true)
             .open(dir.join(EVENTS_JSONL))?;
+        let _synced = [samples.get_ref(), &events]
+            .into_iter()
+            .filter_map(sync_in_background)
+            .collect();
         Ok(RunLogSink {
             samples,
             events,
+            _synced,
             last_flush: Instant::now(),
             last_handoff_t: f64::NEG_INFINITY,
             rows: 0,
@@ -175,7 +224,9 @@ impl Sink for RunLogSink {
         r?;
         self.rows += 1;
         if self.last_flush.elapsed() >= FLUSH_INTERVAL {
-            self.flush()?;
+            // Handed to the system now; the background thread syncs it.
+            self.samples.flush()?;
+            self.last_flush = Instant::now();
             self.last_handoff_t = s.t_s;
         } else if s.t_s - self.last_handoff_t >= HANDOFF_RUN_S {
             self.samples.flush()?;
@@ -185,12 +236,17 @@ impl Sink for RunLogSink {
     }
 
     fn event(&mut self, e: &Event) -> io::Result<()> {
-        // Samples before an event reach the disk before it does.
-        self.flush()?;
+        // Samples before an event are written before it is.
+        self.samples.flush()?;
         let mut line = serde_json::to_vec(e).map_err(io::Error::other)?;
         line.push(b'\n');
         self.events.write_all(&line)?;
-        self.events.sync_data()
+        // The end of a run is synced at once; the rest within a second.
+        if matches!(e, Event::RunEnd { .. } | Event::OutputsOff { .. }) {
+            self.samples.get_ref().sync_data()?;
+            self.events.sync_data()?;
+        }
+        Ok(())
     }
 }
 

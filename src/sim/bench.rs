@@ -90,6 +90,27 @@ pub struct SimBench {
     pub overlaps: u32,
     rng: SmallRng,
     checkpoint: Option<Checkpoint>,
+    /// Watches for the true terminal voltage falling to a level.
+    pub watch: Option<VoltageWatch>,
+}
+
+/// The first time the true terminal voltage fell to a level, and the
+/// truth counters then (interpolated between integration steps).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct VoltageWatch {
+    pub below_v: f64,
+    pub crossed: Option<(f64, TruthCounters)>,
+    last: Option<(f64, f64, TruthCounters)>,
+}
+
+impl VoltageWatch {
+    pub fn new(below_v: f64) -> VoltageWatch {
+        VoltageWatch {
+            below_v,
+            crossed: None,
+            last: None,
+        }
+    }
 }
 
 /// The simulated pack's state, kept in a file as the run goes, so a run
@@ -171,6 +192,7 @@ impl SimBench {
             overlaps: 0,
             rng: SmallRng::seed_from_u64(cfg.seed),
             checkpoint: None,
+            watch: None,
         }
     }
 
@@ -270,6 +292,9 @@ impl SimBench {
             self.truth.charge_ah += ah;
             self.truth.energy_wh += wh;
             self.last_t += dt;
+            if self.watch.is_some() {
+                self.check_watch();
+            }
         }
         if self
             .checkpoint
@@ -278,6 +303,28 @@ impl SimBench {
         {
             self.write_state();
         }
+    }
+
+    fn check_watch(&mut self) {
+        let v = self.terminal_voltage();
+        let (t, truth) = (self.last_t, self.truth);
+        let Some(w) = self.watch.as_mut() else { return };
+        if w.crossed.is_none() && v <= w.below_v {
+            w.crossed = Some(match w.last {
+                Some((t0, v0, c0)) if v0 > v => {
+                    let f = ((v0 - w.below_v) / (v0 - v)).clamp(0.0, 1.0);
+                    (
+                        t0 + f * (t - t0),
+                        TruthCounters {
+                            charge_ah: c0.charge_ah + f * (truth.charge_ah - c0.charge_ah),
+                            energy_wh: c0.energy_wh + f * (truth.energy_wh - c0.energy_wh),
+                        },
+                    )
+                }
+                _ => (t, truth),
+            });
+        }
+        w.last = Some((t, v, truth));
     }
 
     pub fn truth(&self) -> TruthCounters {

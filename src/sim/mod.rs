@@ -77,6 +77,15 @@ impl SimHandle {
     pub fn restore(&self, st: &bench::PackState, rest_s: f64) {
         self.with(|b| b.restore(st, rest_s))
     }
+    /// Watch for the true terminal voltage falling to `v` (see
+    /// [`bench::VoltageWatch`]).
+    pub fn watch_below(&self, v: f64) {
+        self.with(|b| b.watch = Some(bench::VoltageWatch::new(v)))
+    }
+    /// When the watched level was crossed, with the truth counters then.
+    pub fn crossed(&self) -> Option<(f64, TruthCounters)> {
+        self.with(|b| b.watch.and_then(|w| w.crossed))
+    }
     /// Number of messages both instruments received.
     pub fn messages_received(&self) -> usize {
         let n = |m: &Arc<Mutex<Vec<String>>>| m.lock().map(|v| v.len()).unwrap_or(0);
