@@ -110,13 +110,19 @@ name = "hold"
     let wall = t0.elapsed().as_secs_f64();
     let cpu = cpu_s() - c0;
     let samples: usize = reports.iter().map(|r| r.summary.samples).sum();
-    let scheduled: u64 = reports.iter().map(|r| r.outcome.timing.scheduled_samples).sum();
+    let scheduled: u64 = reports
+        .iter()
+        .map(|r| r.outcome.timing.scheduled_samples)
+        .sum();
     let late: u64 = reports.iter().map(|r| r.outcome.timing.late_samples).sum();
     let max_late = reports
         .iter()
         .map(|r| r.outcome.timing.max_late_s)
         .fold(0.0, f64::max);
-    let completed = reports.iter().filter(|r| r.summary.status == "completed").count();
+    let completed = reports
+        .iter()
+        .filter(|r| r.summary.status == "completed")
+        .count();
     let (ca, cb, w) = window;
     println!("{n} simulated stations in real time, 1 Hz, {seconds} s each, one thread");
     println!("  completed runs           {completed}/{n}");
@@ -132,6 +138,9 @@ name = "hold"
         wall
     );
     println!("  late samples (>100 ms)   {late}");
-    println!("  latest sample            {:.1} ms behind schedule", max_late * 1e3);
+    println!(
+        "  latest sample            {:.1} ms behind schedule",
+        max_late * 1e3
+    );
     println!("targets: under 5 % of one core; zero late samples");
 }

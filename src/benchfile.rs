@@ -332,7 +332,7 @@ impl BenchFile {
                     }
                 }
                 let file = |f: &Option<Spanned<String>>| f.as_ref().map(|t| base.join(t.get_ref()));
-                if st.sim_config.is_some() && !(sims > 0) {
+                if st.sim_config.is_some() && sims == 0 {
                     if let Some(t) = &st.sim_config {
                         errors.push(LocatedError {
                             location: at(t.span(), 1),
