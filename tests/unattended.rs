@@ -312,6 +312,40 @@ fn ctrl_c_stops_a_real_time_run_with_outputs_off_and_a_summary() {
     assert!(s && l, "both outputs confirmed off by read-back");
     assert!(reason.contains("interrupted"), "{reason}");
     assert!(!rdir.join("run.lock").exists(), "the lock is removed");
+
+    // The run was stopped in its rest: resumed, the rest starts its
+    // two minutes again and the discharge follows.
+    let out = Command::new(BIN)
+        .args(["resume", "--speed", "max", "--quiet"])
+        .arg(&rdir)
+        .output()
+        .unwrap();
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let summary = json(&rdir.join("summary.json"));
+    assert_eq!(summary["status"], "completed");
+    let r = &summary["resumed"][0];
+    assert_eq!(r["step"], 1);
+    assert_eq!(r["rule"], "a rest restarts its timer");
+    let events = read_events(&rdir.join("events.jsonl")).unwrap();
+    let resumed_at = r["t_s"].as_f64().unwrap();
+    let rest_end = events
+        .iter()
+        .rev()
+        .find_map(|e| match e {
+            Event::StepEnd { step: 1, t_s, .. } => Some(*t_s),
+            _ => None,
+        })
+        .unwrap();
+    assert!(
+        (rest_end - resumed_at - 120.0).abs() < 1.5,
+        "the rest ran its full two minutes after the resume ({resumed_at} -> {rest_end})"
+    );
+    assert!(summary["capacity"]["measured_ah"].as_f64().unwrap() > 5.0);
 }
 
 #[test]
