@@ -126,7 +126,7 @@ pub struct BenchFile {
 impl BenchFile {
     /// Read and validate a bench file.
     pub fn load(path: &Path) -> Result<BenchFile, InputErrors> {
-        let text = std::fs::read_to_string(path).map_err(|e| {
+        let text = crate::procedure::read_text(path).map_err(|e| {
             InputErrors(vec![LocatedError {
                 location: Location {
                     file: path.to_path_buf(),
@@ -197,7 +197,7 @@ impl BenchFile {
                     Some(p) => Some(p),
                     None => {
                         let file = base.join(pname);
-                        match std::fs::read_to_string(&file) {
+                        match crate::procedure::read_text(&file) {
                             Ok(ptext) => match Profile::from_toml(&file, &ptext) {
                                 Ok(p) => Some(p),
                                 Err(e) => {

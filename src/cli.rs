@@ -328,7 +328,7 @@ pub fn sim_config(
 ) -> Result<SimConfig, RunError> {
     let mut cfg = match path {
         Some(path) => {
-            let text = std::fs::read_to_string(path).map_err(|source| RunError::Io {
+            let text = crate::procedure::read_text(path).map_err(|source| RunError::Io {
                 path: path.to_path_buf(),
                 source,
             })?;
@@ -386,7 +386,7 @@ fn prepare_run(a: &RunArgs) -> Result<Vec<run::StationJob>, RunError> {
         options.cycle_count = Some(c);
     }
     if let Some(path) = &a.policy {
-        let text = std::fs::read_to_string(path).map_err(|source| RunError::Io {
+        let text = crate::procedure::read_text(path).map_err(|source| RunError::Io {
             path: path.clone(),
             source,
         })?;
@@ -670,7 +670,7 @@ pub fn cmd_resume(a: ResumeArgs) -> i32 {
         let speed = a.speed.as_deref().map(parse_speed).transpose()?;
         let policy = match &a.policy {
             Some(path) => {
-                let text = std::fs::read_to_string(path).map_err(|source| RunError::Io {
+                let text = crate::procedure::read_text(path).map_err(|source| RunError::Io {
                     path: path.clone(),
                     source,
                 })?;

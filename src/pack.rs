@@ -73,6 +73,19 @@ impl Chemistry {
             Chemistry::Nimh => 1.7,
         }
     }
+
+    /// The highest per-cell voltage an envelope may allow: above any charge
+    /// voltage the chemistry is charged to, short of a plain mistake
+    /// (common practice: li-ion is charged to 4.2–4.4 V, LFP to 3.6–3.65 V,
+    /// lead-acid equalised to about 2.5 V, NiMH peaks near 1.5–1.6 V).
+    pub fn envelope_ceiling_v_per_cell(&self) -> f64 {
+        match self {
+            Chemistry::LiIon => 4.5,
+            Chemistry::Lfp => 4.0,
+            Chemistry::LeadAcid => 2.75,
+            Chemistry::Nimh => 2.0,
+        }
+    }
 }
 
 impl fmt::Display for Chemistry {

@@ -187,7 +187,7 @@ pub struct Prepared {
 
 /// Read a pack spec file.
 pub fn read_pack_file(path: &Path) -> Result<PackSpec, RunError> {
-    let text = std::fs::read_to_string(path).map_err(io_err(path))?;
+    let text = crate::procedure::read_text(path).map_err(io_err(path))?;
     Ok(PackSpec::from_toml(path, &text)?)
 }
 

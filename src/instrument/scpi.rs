@@ -358,6 +358,9 @@ impl Session {
     }
 }
 
+/// Units a numeric reply may carry (SCPI-1999 unit mnemonics, no prefix).
+const BASE_UNITS: [&str; 6] = ["V", "A", "W", "OHM", "CEL", "S"];
+
 /// SCPI's overload marker (9.9E37) and not-a-number marker (9.91E37).
 const OVERLOAD: f64 = 9.9e37;
 
@@ -377,6 +380,14 @@ pub fn parse_number(reply: &str) -> Result<f64, String> {
     let unit = unit.trim();
     if !unit.is_empty() && !unit.chars().all(|c| c.is_ascii_alphabetic()) {
         return Err(format!("reply '{t}' has trailing data after the number"));
+    }
+    // A unit after the number is taken only when it is a base unit; a
+    // prefixed one (mV, kA) would be read a thousand times off.
+    if !unit.is_empty() && !BASE_UNITS.iter().any(|u| unit.eq_ignore_ascii_case(u)) {
+        return Err(format!(
+            "reply '{t}' carries the unit '{unit}'; only a plain number or a base unit ({}) is taken",
+            BASE_UNITS.join(", ")
+        ));
     }
     if !x.is_finite() {
         return Err(format!("reply '{t}' is not a finite number"));

@@ -26,9 +26,38 @@ pub struct LoadedProcedure {
     pub plan: Plan,
 }
 
+/// The largest procedure, bench or profile file read, bytes: far above
+/// any real one (a few kB), so a wrong file is refused before it is parsed.
+pub const MAX_INPUT_BYTES: u64 = 1 << 20;
+
+/// Read a text input file, refusing one larger than [`MAX_INPUT_BYTES`].
+pub fn read_limited(path: &Path) -> std::io::Result<Vec<u8>> {
+    use std::io::Read;
+    let f = std::fs::File::open(path)?;
+    let mut bytes = Vec::new();
+    f.take(MAX_INPUT_BYTES + 1).read_to_end(&mut bytes)?;
+    if bytes.len() as u64 > MAX_INPUT_BYTES {
+        return Err(std::io::Error::new(
+            std::io::ErrorKind::InvalidData,
+            format!("the file is larger than {} kB", MAX_INPUT_BYTES / 1024),
+        ));
+    }
+    Ok(bytes)
+}
+
+/// Read a text input file (limited as [`read_limited`]; UTF-8).
+pub fn read_text(path: &Path) -> std::io::Result<String> {
+    String::from_utf8(read_limited(path)?).map_err(|e| {
+        std::io::Error::new(
+            std::io::ErrorKind::InvalidData,
+            format!("not UTF-8 text (byte {})", e.utf8_error().valid_up_to() + 1),
+        )
+    })
+}
+
 /// Read and validate a procedure file for a pack.
 pub fn load(path: &Path, pack: &PackSpec) -> Result<LoadedProcedure, InputErrors> {
-    let bytes = std::fs::read(path).map_err(|e| {
+    let bytes = read_limited(path).map_err(|e| {
         InputErrors(vec![LocatedError {
             location: Location {
                 file: path.to_path_buf(),

@@ -148,6 +148,19 @@ fn build_envelope(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<E
             .and_then(|s| positive(cx, t, s, "step_time_max")),
         None => Some(48.0 * 3600.0),
     };
+    if let (Some(hi), Some(t)) = (vmax, &vmax_t) {
+        let ceiling = pack.chemistry.envelope_ceiling_v_per_cell() * f64::from(series);
+        if hi > ceiling {
+            cx.err(
+                &t.span(),
+                format!(
+                    "voltage_max {hi:.3} V is beyond what a {} cell takes ({:.2} V/cell, {ceiling:.2} V for {series} in series)",
+                    pack.chemistry,
+                    pack.chemistry.envelope_ceiling_v_per_cell()
+                ),
+            );
+        }
+    }
     if let (Some(hi), Some(lo), Some(t)) = (vmax, vmin, &vmin_t) {
         if lo >= hi {
             cx.err(

@@ -1,0 +1,315 @@
+//! Hostile input: every case gets a clear error or a documented, safe
+//! interpretation; none crashes, hangs, or sends a setpoint outside the
+//! envelope.
+
+use packbench::instrument::link::{InMemoryLink, LineResponder, Link, Response};
+use packbench::instrument::scpi::Session;
+use packbench::pack::{Chemistry, PackSpec};
+use packbench::procedure::validate::plan_from_text;
+use packbench::runlog::import::{stream_log, LogFormat};
+use std::path::Path;
+use std::process::Command;
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+const BIN: &str = env!("CARGO_BIN_EXE_packbench");
+
+fn pack() -> PackSpec {
+    PackSpec {
+        chemistry: Chemistry::LiIon,
+        series: 10,
+        rated_capacity_ah: 14.0,
+        rated_energy_wh: None,
+        rated_rate_c: None,
+        rated_resistance_mohm: None,
+    }
+}
+
+const HEAD: &str = r#"title = "t"
+[envelope]
+voltage_max = "4.25V/cell"
+voltage_min = "2.8V/cell"
+current_max = "1C"
+temperature_max = "55degC"
+"#;
+
+fn step(kind_and_values: &str) -> String {
+    format!("{HEAD}[[phase]]\nname = \"p\"\n  [[phase.step]]\n{kind_and_values}\n")
+}
+
+fn refused(text: &str) -> String {
+    let t = Instant::now();
+    let r = plan_from_text(Path::new("h.toml"), text, &pack());
+    assert!(
+        t.elapsed() < Duration::from_secs(10),
+        "took {:?}",
+        t.elapsed()
+    );
+    match r {
+        Ok(_) => panic!("accepted"),
+        Err(e) => e.to_string(),
+    }
+}
+
+#[test]
+fn pack_ids_that_try_to_leave_the_results_folder_are_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let results = dir.path().join("results");
+    for id in ["../escape", "..", "/etc/x", "a/b", "a\\b", "", ".", "CON:"] {
+        let out = Command::new(BIN)
+            .args([
+                "run",
+                "procedures/capacity-check.toml",
+                "--quiet",
+                "--pack",
+                id,
+            ])
+            .arg("--results")
+            .arg(&results)
+            .output()
+            .unwrap();
+        assert_eq!(out.status.code(), Some(2), "pack id {id:?}");
+        assert!(
+            String::from_utf8_lossy(&out.stderr).contains("pack id"),
+            "{id:?}: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+    }
+    // Nothing was created, inside or next to the results folder.
+    assert!(!results.exists());
+    assert_eq!(std::fs::read_dir(dir.path()).unwrap().count(), 0);
+    // A procedure file name cannot steer the run folder's name: it is
+    // reduced to letters, digits, '-' and '_'.
+    let odd = dir.path().join("..odd name;rm -rf.toml");
+    std::fs::copy("procedures/capacity-check.toml", &odd).unwrap();
+    let out = Command::new(BIN)
+        .args(["run", "--quiet", "--pack", "H1"])
+        .arg(&odd)
+        .arg("--results")
+        .arg(&results)
+        .output()
+        .unwrap();
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let runs: Vec<String> = std::fs::read_dir(results.join("H1"))
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .filter(|n| n != "pack.toml")
+        .collect();
+    assert_eq!(runs.len(), 1);
+    assert!(
+        runs[0]
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_'),
+        "{runs:?}"
+    );
+}
+
+#[test]
+fn oversized_and_deeply_nested_procedures_get_clear_errors() {
+    // A 10 MB string.
+    let big = HEAD.replacen(
+        "title = \"t\"\n",
+        &format!(
+            "title = \"t\"\ndescription = \"{}\"\n",
+            "x".repeat(10 << 20)
+        ),
+        1,
+    );
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("big.toml");
+    std::fs::write(&path, &big).unwrap();
+    let e = packbench::procedure::load(&path, &pack())
+        .unwrap_err()
+        .to_string();
+    assert!(e.contains("larger than"), "{e}");
+    // A million steps by repetition.
+    let many = format!(
+        "{HEAD}[[phase]]\nname = \"p\"\nrepeat = 10000\n{}",
+        "  [[phase.step]]\n  kind = \"rest\"\n  ends = [\"time > 1s\"]\n".repeat(100)
+    );
+    let e = refused(&many);
+    assert!(e.contains("expands to more than 100000 steps"), "{e}");
+    // Deep nesting: arrays and inline tables thousands deep.
+    for nested in [
+        format!("{HEAD}x = {}1{}\n", "[".repeat(50_000), "]".repeat(50_000)),
+        format!(
+            "{HEAD}x = {}1{}\n",
+            "{a=".repeat(50_000),
+            "}".repeat(50_000)
+        ),
+        format!("{HEAD}x = {}\n", "[".repeat(200_000)),
+    ] {
+        let e = refused(&nested);
+        assert!(e.contains("h.toml:"), "located: {e}");
+    }
+}
+
+#[test]
+fn absurd_setpoints_are_refused_with_their_location() {
+    for (values, needle) in [
+        ("  kind = \"charge\"\n  current = \"-5A\"\n  voltage = \"4.2V/cell\"\n  ends = [\"time > 1h\"]", "positive magnitude"),
+        ("  kind = \"charge\"\n  current = \"nan A\"\n  voltage = \"4.2V/cell\"\n  ends = [\"time > 1h\"]", "h.toml:"),
+        ("  kind = \"charge\"\n  current = \"infA\"\n  voltage = \"4.2V/cell\"\n  ends = [\"time > 1h\"]", "h.toml:"),
+        ("  kind = \"charge\"\n  current = \"1e400A\"\n  voltage = \"4.2V/cell\"\n  ends = [\"time > 1h\"]", "not a finite number"),
+        ("  kind = \"charge\"\n  current = \"1A\"\n  voltage = \"1000000V\"\n  ends = [\"time > 1h\"]", "outside the envelope"),
+        ("  kind = \"charge\"\n  current = \"1A\"\n  voltage = \"1MV\"\n  ends = [\"time > 1h\"]", "unknown unit"),
+        ("  kind = \"discharge\"\n  current = \"50A\"\n  ends = [\"time > 1h\"]", "outside the envelope"),
+        ("  kind = \"discharge\"\n  current = \"1A\"\n  ends = [\"time > -1h\"]", "h.toml:"),
+        ("  kind = \"pulse\"\n  levels = [{ current = \"-1e9A\", duration = \"1s\" }]", "outside the envelope"),
+        ("  kind = \"pulse\"\n  levels = [{ current = \"-1A\", duration = \"-1s\" }]", "duration must be above zero"),
+    ] {
+        let e = refused(&step(values));
+        assert!(e.contains(needle), "{values}: {e}");
+        assert!(e.contains("h.toml:"), "{e}");
+    }
+    // An envelope beyond what the chemistry's cells can take.
+    let e = refused(
+        &step("  kind = \"rest\"\n  ends = [\"time > 1s\"]")
+            .replace("voltage_max = \"4.25V/cell\"", "voltage_max = \"1000000V\""),
+    );
+    assert!(e.contains("beyond what a li-ion cell"), "{e}");
+}
+
+/// An instrument that answers every query with one fixed reply.
+struct Fixed(String);
+impl LineResponder for Fixed {
+    fn respond(&mut self, line: &str) -> Result<Response, std::io::Error> {
+        Ok(if line.contains('?') {
+            Response::Reply(self.0.clone())
+        } else {
+            Response::Nothing
+        })
+    }
+}
+
+/// A link that sends endless bytes without a terminator.
+struct Babbler;
+impl tokio::io::AsyncRead for Babbler {
+    fn poll_read(
+        self: std::pin::Pin<&mut Self>,
+        _cx: &mut std::task::Context<'_>,
+        buf: &mut tokio::io::ReadBuf<'_>,
+    ) -> std::task::Poll<std::io::Result<()>> {
+        let n = buf.remaining().min(4096);
+        buf.put_slice(&vec![b'7'; n]);
+        std::task::Poll::Ready(Ok(()))
+    }
+}
+impl tokio::io::AsyncWrite for Babbler {
+    fn poll_write(
+        self: std::pin::Pin<&mut Self>,
+        _cx: &mut std::task::Context<'_>,
+        buf: &[u8],
+    ) -> std::task::Poll<std::io::Result<usize>> {
+        std::task::Poll::Ready(Ok(buf.len()))
+    }
+    fn poll_flush(
+        self: std::pin::Pin<&mut Self>,
+        _cx: &mut std::task::Context<'_>,
+    ) -> std::task::Poll<std::io::Result<()>> {
+        std::task::Poll::Ready(Ok(()))
+    }
+    fn poll_shutdown(
+        self: std::pin::Pin<&mut Self>,
+        _cx: &mut std::task::Context<'_>,
+    ) -> std::task::Poll<std::io::Result<()>> {
+        std::task::Poll::Ready(Ok(()))
+    }
+}
+
+#[test]
+fn hostile_instrument_replies_are_errors_never_numbers() {
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .unwrap();
+    rt.block_on(async {
+        let session = |reply: &str| {
+            let r: Arc<Mutex<dyn LineResponder>> = Arc::new(Mutex::new(Fixed(reply.into())));
+            let link: Link = Box::new(InMemoryLink::new(r));
+            Session::new("load", link, "\n", Duration::from_millis(200))
+        };
+        for (reply, needle) in [
+            ("9.9E37", "overload"),
+            ("+9.91E+37", "overload"),
+            ("NaN", "not a number"),
+            ("nan", "not a number"),
+            ("inf", "not a number"),
+            ("3700mV", "unit"),
+            ("1.2kA", "unit"),
+            ("12.5 V garbage", "trailing"),
+            ("", "not a number"),
+        ] {
+            let e = session(reply).query_number("MEAS:VOLT?").await.unwrap_err();
+            assert!(e.message.contains(needle), "{reply:?}: {}", e.message);
+        }
+        // A reply in the base unit is read as written.
+        assert_eq!(
+            session("12.5V").query_number("MEAS:VOLT?").await.unwrap(),
+            12.5
+        );
+        assert_eq!(
+            session("+1.25E+01")
+                .query_number("MEAS:VOLT?")
+                .await
+                .unwrap(),
+            12.5
+        );
+        // Endless data without a terminator: an error once the reply is
+        // longer than any real reply, well before the timeout.
+        let mut s = Session::new("load", Box::new(Babbler), "\n", Duration::from_secs(5));
+        let t = Instant::now();
+        let e = s.query_number("MEAS:VOLT?").await.unwrap_err();
+        assert!(e.message.contains("without a terminator"), "{}", e.message);
+        assert!(t.elapsed() < Duration::from_secs(1));
+    });
+}
+
+fn read(bytes: &[u8]) -> Result<(usize, packbench::runlog::import::ReadReport), String> {
+    let dir = tempfile::tempdir().unwrap();
+    let p = dir.path().join("log.csv");
+    std::fs::write(&p, bytes).unwrap();
+    let mut n = 0;
+    stream_log(&p, &LogFormat::default(), |r| {
+        assert!(r.t_s.is_finite() && r.voltage_v.is_finite() && r.current_a.is_finite());
+        n += 1;
+    })
+    .map(|rep| (n, rep))
+    .map_err(|e| e.to_string())
+}
+
+#[test]
+fn hostile_csv_logs_get_located_errors_or_documented_readings() {
+    let head = b"time_s,voltage_v,current_a\n";
+    // Non-UTF-8 bytes in a number: a located error.
+    let mut bad = head.to_vec();
+    bad.extend_from_slice(b"0,12.5,-1\n1,12\xff.4,-1\n");
+    let e = read(&bad).unwrap_err();
+    assert!(e.contains(":3:"), "line 3: {e}");
+    // Non-UTF-8 bytes in a column nobody reads are left alone.
+    let ok = b"time_s,voltage_v,current_a,note\n0,12.5,-1,\xfe\xff\n1,12.4,-1,ok\n";
+    assert_eq!(read(ok).unwrap().0, 2);
+    // Extra columns are ignored; a row with fewer cells than the header is
+    // a located error.
+    let extra = b"time_s,voltage_v,current_a,a,b,c\n0,12.5,-1,1,2,3\n1,12.4,-1,1,2,3\n";
+    assert_eq!(read(extra).unwrap().0, 2);
+    let short = b"time_s,voltage_v,current_a\n0,12.5,-1\n1,12.4\n";
+    let e = read(short).unwrap_err();
+    assert!(e.contains(":3:"), "{e}");
+    // A missing column: the error names what is missing.
+    let e = read(b"time_s,voltage_v\n0,12.5\n").unwrap_err();
+    assert!(e.contains("current"), "{e}");
+    // Time going backwards: the rows are read; the analysis drops and
+    // counts them (tests/analyze.rs covers the count).
+    let back = b"time_s,voltage_v,current_a\n0,12.5,-1\n2,12.4,-1\n1,12.45,-1\n3,12.3,-1\n";
+    assert_eq!(read(back).unwrap().0, 4);
+    // Empty, header only, binary junk: errors, not panics.
+    assert!(read(b"").is_err());
+    assert!(read(head).is_ok_and(|(n, _)| n == 0));
+    assert!(read(&[0u8, 159, 146, 150, 255, 0, 10, 1, 2, 3]).is_err());
+}
