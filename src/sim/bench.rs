@@ -335,21 +335,42 @@ impl SimBench {
         self.pack.terminal_voltage(self.pack_current())
     }
 
+    /// What the reading faults in force add to a quantity.
+    fn reading_shift(&self, q: super::config::Quantity) -> f64 {
+        let now = self.clock.now();
+        self.faults
+            .reading
+            .iter()
+            .filter(|f| f.quantity == q && now >= f.after_s)
+            .map(|f| f.offset)
+            .sum()
+    }
+
     pub fn measure_supply(&mut self) -> (f64, f64) {
+        use super::config::Quantity as Q;
         let v = self.terminal_voltage();
         let i = self.supply_current();
+        let (dv, di) = (
+            self.reading_shift(Q::Voltage),
+            self.reading_shift(Q::Current),
+        );
         (
-            self.supply.volts.apply(v, &mut self.rng),
-            self.supply.amps.apply(i, &mut self.rng),
+            self.supply.volts.apply(v, &mut self.rng) + dv,
+            self.supply.amps.apply(i, &mut self.rng) + di,
         )
     }
 
     pub fn measure_load(&mut self) -> (f64, f64) {
+        use super::config::Quantity as Q;
         let v = self.terminal_voltage();
         let i = -self.load_current();
+        let (dv, di) = (
+            self.reading_shift(Q::Voltage),
+            self.reading_shift(Q::Current),
+        );
         (
-            self.load.volts.apply(v, &mut self.rng),
-            self.load.amps.apply(i, &mut self.rng),
+            self.load.volts.apply(v, &mut self.rng) + dv,
+            self.load.amps.apply(i, &mut self.rng) + di,
         )
     }
 
@@ -357,10 +378,12 @@ impl SimBench {
     pub fn measure_meter(&mut self) -> f64 {
         let v = self.terminal_voltage();
         self.voltmeter.apply(v, &mut self.rng)
+            + self.reading_shift(super::config::Quantity::Voltage)
     }
 
     pub fn measure_temperature(&mut self) -> f64 {
         let t = self.pack.temperature_c;
         self.thermometer.apply(t, &mut self.rng)
+            + self.reading_shift(super::config::Quantity::Temperature)
     }
 }

@@ -111,6 +111,31 @@ pub struct Faults {
     pub heat_after_s: Option<f64>,
     /// Link and protocol faults, each on one instrument from a time on.
     pub link: Vec<LinkFault>,
+    /// Reading faults: from a time on, every reading of a quantity (on
+    /// every instrument) is off by an amount — a failing sense lead,
+    /// shunt or sensor.
+    pub reading: Vec<ReadingFault>,
+}
+
+/// What a reading fault shifts.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Quantity {
+    Voltage,
+    Current,
+    Temperature,
+}
+
+/// One reading fault.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ReadingFault {
+    pub quantity: Quantity,
+    /// Added to the reading (V, A or degC; current as the instrument
+    /// reports it, a magnitude).
+    pub offset: f64,
+    /// Bench time the fault starts, s.
+    pub after_s: f64,
 }
 
 /// Which simulated instrument a fault hits.
