@@ -266,3 +266,39 @@ fn a_step_may_set_its_own_sampling_interval() {
     assert!(e.contains(&format!("bad.toml:{line}:")), "{e}");
     assert!(e.contains("sampling interval must be between"), "{e}");
 }
+
+#[test]
+fn a_peak_drop_end_can_end_only_a_nickel_charge() {
+    // Found by the property test: a lithium charge held at its voltage
+    // limit never drops from its peak, so a step with only that end would
+    // run into the envelope's step time cap.
+    let text = r#"title = "t"
+[envelope]
+voltage_max = "4.25V/cell"
+voltage_min = "2.5V/cell"
+current_max = "1C"
+temperature_max = "55degC"
+[[phase]]
+name = "c"
+  [[phase.step]]
+  kind = "charge"
+  current = "0.5C"
+  voltage = "4.2V/cell"
+  ends = ["peak_drop > 10mV/cell"]
+"#;
+    let e = errors(text);
+    assert!(e.contains("cannot end") && e.contains("NiMH only"), "{e}");
+    let nimh = PackSpec {
+        chemistry: Chemistry::Nimh,
+        series: 6,
+        rated_capacity_ah: 2.0,
+        rated_energy_wh: None,
+        rated_rate_c: None,
+        rated_resistance_mohm: None,
+    };
+    let t = text
+        .replace("4.25V/cell", "1.9V/cell")
+        .replace("2.5V/cell", "0.9V/cell")
+        .replace("4.2V/cell", "1.8V/cell");
+    assert!(plan_from_text(Path::new("p.toml"), &t, &nimh).is_ok());
+}

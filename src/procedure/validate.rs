@@ -310,7 +310,7 @@ fn parse_end(cx: &mut Ctx, t: &Text, pack: &PackSpec) -> Option<EndCondition> {
 }
 
 /// Can this condition end this kind of step, given its setpoints?
-fn reachable(kind: &StepKind, c: &EndCondition, env: &Envelope) -> bool {
+fn reachable(kind: &StepKind, c: &EndCondition, env: &Envelope, pack: &PackSpec) -> bool {
     use EndCondition as E;
     match (kind, c) {
         (_, E::Time { seconds }) => *seconds > 0.0,
@@ -331,7 +331,12 @@ fn reachable(kind: &StepKind, c: &EndCondition, env: &Envelope) -> bool {
         (StepKind::Charge { current_a, .. }, E::CurrentBelow { current_a: x }) => {
             *x > 0.0 && *x < *current_a
         }
-        (StepKind::Charge { .. }, E::PeakDrop { voltage_v }) => *voltage_v > 0.0,
+        // The voltage falls from its peak near full only in nickel cells;
+        // a lithium or lead-acid charge held at its voltage limit never
+        // shows a drop (common practice: −ΔV is a NiMH/NiCd end signal).
+        (StepKind::Charge { .. }, E::PeakDrop { voltage_v }) => {
+            *voltage_v > 0.0 && pack.chemistry == crate::pack::Chemistry::Nimh
+        }
         (StepKind::Charge { .. }, E::Settled { .. }) => false,
         (StepKind::Charge { .. }, E::VoltageBelow { .. }) => false,
         (StepKind::Discharge { .. }, E::VoltageBelow { voltage_v }) => {
@@ -685,11 +690,11 @@ fn build_step(
         },
     };
     if cx.errors.len() == errors_before {
-        let can_end =
-            matches!(kind, StepKind::Pulse { .. }) || ends.iter().any(|c| reachable(&kind, c, env));
+        let can_end = matches!(kind, StepKind::Pulse { .. })
+            || ends.iter().any(|c| reachable(&kind, c, env, pack));
         if !can_end {
             let hint = match kind {
-                StepKind::Charge { .. } => "a charge step can end on current < (taper below its current), voltage > (below its voltage limit), charge >, energy >, peak_drop > or time >",
+                StepKind::Charge { .. } => "a charge step can end on current < (taper below its current), voltage > (below its voltage limit), charge >, energy >, peak_drop > (NiMH only) or time >",
                 StepKind::Discharge { .. } => "a discharge step can end on voltage < (above voltage_min), charge >, energy > or time >",
                 StepKind::Rest => "a rest can end on time > or dv/dt <",
                 StepKind::Drain { .. } => "a drain step ends on time > (it measures over a set time)",
