@@ -513,20 +513,20 @@ fn prepare_run(a: &RunArgs) -> Result<Vec<run::StationJob>, RunError> {
     Ok(jobs)
 }
 
-/// How the live status is shown for this invocation.
-fn display_mode(a: &RunArgs) -> Result<crate::live::DisplayMode, RunError> {
+/// How the live status is shown: nothing when quiet, redrawn on a
+/// terminal, else a line every `status_every`.
+fn display_mode(quiet: bool, status_every: &str) -> Result<crate::live::DisplayMode, RunError> {
     use std::io::IsTerminal;
-    if a.quiet {
+    if quiet {
         return Ok(crate::live::DisplayMode::Quiet);
     }
     if std::io::stderr().is_terminal() {
         return Ok(crate::live::DisplayMode::Terminal);
     }
-    match units::duration(&a.status_every) {
+    match units::duration(status_every) {
         Ok(s) if s >= 0.1 => Ok(crate::live::DisplayMode::Lines(s)),
         _ => Err(RunError::Pack(format!(
-            "--status-every '{}': expected a duration of 0.1 s or more, e.g. 60s",
-            a.status_every
+            "--status-every '{status_every}': expected a duration of 0.1 s or more, e.g. 60s"
         ))),
     }
 }
@@ -534,10 +534,11 @@ fn display_mode(a: &RunArgs) -> Result<crate::live::DisplayMode, RunError> {
 /// `packbench run`: one station, or every station of a bench file at once
 /// (one task each, each with its own results folder and envelope).
 pub fn cmd_run(a: RunArgs) -> i32 {
-    let (jobs, mode) = match prepare_run(&a).and_then(|j| Ok((j, display_mode(&a)?))) {
-        Ok(x) => x,
-        Err(e) => return report_error(&e),
-    };
+    let (jobs, mode) =
+        match prepare_run(&a).and_then(|j| Ok((j, display_mode(a.quiet, &a.status_every)?))) {
+            Ok(x) => x,
+            Err(e) => return report_error(&e),
+        };
     for j in &jobs {
         if let (Some(n), false) = (&j.prepared.pack_note, a.quiet) {
             eprintln!("note: {}: {n}", j.name);
@@ -684,23 +685,9 @@ pub fn cmd_resume(a: ResumeArgs) -> i32 {
         Ok(s) => s,
         Err(e) => return report_error(&e),
     };
-    let mode = {
-        use std::io::IsTerminal;
-        if a.quiet {
-            crate::live::DisplayMode::Quiet
-        } else if std::io::stderr().is_terminal() {
-            crate::live::DisplayMode::Terminal
-        } else {
-            match units::duration(&a.status_every) {
-                Ok(s) if s >= 0.1 => crate::live::DisplayMode::Lines(s),
-                _ => {
-                    return report_error(&RunError::Pack(format!(
-                        "--status-every '{}': expected a duration of 0.1 s or more",
-                        a.status_every
-                    )))
-                }
-            }
-        }
+    let mode = match display_mode(a.quiet, &a.status_every) {
+        Ok(m) => m,
+        Err(e) => return report_error(&e),
     };
     if !a.quiet {
         match &setup.found {

@@ -10,7 +10,6 @@ use crate::clock::{Clock, SimClock};
 use crate::engine::control::StopHandle;
 use crate::engine::event::{EndKind, Event, Sink};
 use crate::engine::{Engine, Station};
-use crate::instrument::profile::{Profile, ProfileRole};
 use crate::instrument::{Load, Source};
 use crate::procedure::{DischargeMode, EndCondition, Plan, ResultTag, StepKind};
 use crate::sample::Sample;
@@ -208,10 +207,7 @@ pub async fn forecast_async(plan: &Plan, cfg: &SimConfig) -> Forecast {
     let mut sink = ForecastSink::default();
     let mut warnings = Vec::new();
     let ran = async {
-        let mut sp = Profile::builtin(ProfileRole::Source);
-        let mut lp = Profile::builtin(ProfileRole::Load);
-        sp.transport.timeout_ms = crate::run::SIM_TIMEOUT_MS;
-        lp.transport.timeout_ms = crate::run::SIM_TIMEOUT_MS;
+        let (sp, lp) = crate::run::sim_profiles();
         let source = Source::connect(links.source, sp).await?;
         let load = Load::connect(links.load, lp).await?;
         let mut station = Station::new(source, load);

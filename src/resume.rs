@@ -39,7 +39,7 @@
 use crate::analysis::integrate::Integrator;
 use crate::engine::event::{EndKind, Event};
 use crate::engine::state::RunState;
-use crate::engine::{resume_continues, resume_rule, Carried, ResumePoint, RunOutcome, Timing};
+use crate::engine::{resume_continues, Carried, ResumePoint, RunOutcome, Timing};
 use crate::procedure::{self, LoadedProcedure};
 use crate::run::{
     self, Manifest, Prepared, ResumeRecord, RunError, RunOptions, RunReport, Speed, StationJob,
@@ -192,8 +192,9 @@ pub fn prepare(
         },
     };
     let found = find_point(dir, &prepared, manifest.bench.speed_factor)?;
-    // The bench.
-    let (sim, station) = if manifest.bench.kind == SIMULATED {
+    // The bench: the simulated one with its recorded settings and pace,
+    // or the recorded station of a bench file.
+    let sim_bench = || {
         let cfg = manifest
             .simulation
             .as_ref()
@@ -203,7 +204,10 @@ pub fn prepare(
             Some(f) => Speed::Factor(f),
             None => Speed::Max,
         });
-        (Some((cfg, speed)), None)
+        (cfg, speed)
+    };
+    let (sim, station) = if manifest.bench.kind == SIMULATED {
+        (Some(sim_bench()), None)
     } else {
         let file = match (bench_override, &manifest.bench.bench_file) {
             (Some(f), _) => f.to_path_buf(),
@@ -223,16 +227,7 @@ pub fn prepare(
         let (sp, lp) = st.profiles();
         run::check_ranges(&prepared.procedure, sp, lp)?;
         if st.is_simulated() {
-            let cfg = manifest
-                .simulation
-                .as_ref()
-                .map(|s| s.config.clone())
-                .unwrap_or_default();
-            let speed = speed_override.unwrap_or(match manifest.bench.speed_factor {
-                Some(f) => Speed::Factor(f),
-                None => Speed::Max,
-            });
-            (Some((cfg, speed)), Some((st, file)))
+            (Some(sim_bench()), Some((st, file)))
         } else {
             (None, Some((st, file)))
         }
@@ -402,17 +397,10 @@ pub async fn execute(
         }
         Found::GoOn(p) => p,
     };
-    let rule = match (
+    let rule = crate::engine::resume_rule_at(
         prepared.procedure.plan.steps.get(point.position),
-        &point.carried,
-    ) {
-        (Some(s), Some(_)) => resume_rule(&s.kind).to_string(),
-        (Some(s), None) if resume_continues(&s.kind) => {
-            "the step had not started: it starts from the beginning".into()
-        }
-        (Some(s), None) => resume_rule(&s.kind).to_string(),
-        (None, _) => "no step left to run".into(),
-    };
+        point.carried.is_some(),
+    );
     manifest.resumes.push(ResumeRecord {
         at_utc: chrono::Utc::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
         step: prepared

@@ -508,13 +508,21 @@ pub async fn execute_sim_with(
     hooks: Hooks,
 ) -> Result<RunReport, RunError> {
     let (clock, links, speed_text) = new_sim_bench(p, cfg, speed, hooks.coarse_clock);
+    let (sp, lp) = sim_profiles();
+    let mut bl = sim_bench_links(cfg, links, &speed_text, sp, lp, speed);
+    bl.0.hooks = hooks;
+    execute(p, bl.0, clock, bl.1, stop, bl.2).await
+}
+
+/// The built-in source and load profiles for the in-memory links to the
+/// simulated bench. The in-memory link answers at once or never: a short
+/// timeout keeps fault tests quick without changing any behaviour.
+pub fn sim_profiles() -> (Profile, Profile) {
     let mut sp = Profile::builtin(ProfileRole::Source);
     let mut lp = Profile::builtin(ProfileRole::Load);
     sp.transport.timeout_ms = SIM_TIMEOUT_MS;
     lp.transport.timeout_ms = SIM_TIMEOUT_MS;
-    let mut bl = sim_bench_links(cfg, links, &speed_text, sp, lp, speed);
-    bl.0.hooks = hooks;
-    execute(p, bl.0, clock, bl.1, stop, bl.2).await
+    (sp, lp)
 }
 
 /// A new simulated bench for a prepared test: its clock, links and pace.
@@ -574,12 +582,7 @@ pub async fn execute_sim_links(
     speed_text: &str,
     stop: StopHandle,
 ) -> Result<RunReport, RunError> {
-    // The in-memory link answers at once or never: a short timeout keeps
-    // fault tests quick without changing any behaviour.
-    let mut source_profile = Profile::builtin(ProfileRole::Source);
-    let mut load_profile = Profile::builtin(ProfileRole::Load);
-    source_profile.transport.timeout_ms = SIM_TIMEOUT_MS;
-    load_profile.transport.timeout_ms = SIM_TIMEOUT_MS;
+    let (source_profile, load_profile) = sim_profiles();
     let speed = if clock.is_simulated() {
         Speed::Max
     } else {
@@ -1227,13 +1230,7 @@ pub async fn run_resumed_job(
                 let (a, b) = st.profiles();
                 (a.clone(), b.clone())
             }
-            None => {
-                let mut sp = Profile::builtin(ProfileRole::Source);
-                let mut lp = Profile::builtin(ProfileRole::Load);
-                sp.transport.timeout_ms = SIM_TIMEOUT_MS;
-                lp.transport.timeout_ms = SIM_TIMEOUT_MS;
-                (sp, lp)
-            }
+            None => sim_profiles(),
         };
         let (mut bl, truth, sim) = sim_bench_links(&job.cfg, links, &speed_text, sp, lp, job.speed);
         bl.hooks = hooks;

@@ -143,6 +143,15 @@ pub fn resume_rule(kind: &StepKind) -> &'static str {
     }
 }
 
+/// The rule a resume at plan position `step` follows, as recorded.
+pub fn resume_rule_at(step: Option<&PlanStep>, carried: bool) -> String {
+    match step {
+        Some(s) if carried || !resume_continues(&s.kind) => resume_rule(&s.kind).to_string(),
+        Some(_) => "the step had not started: it starts from the beginning".to_string(),
+        None => "no step left to run".to_string(),
+    }
+}
+
 /// Whether a step kind goes on (true) or starts again (false) on resume.
 pub fn resume_continues(kind: &StepKind) -> bool {
     matches!(kind, StepKind::Charge { .. } | StepKind::Discharge { .. })
@@ -355,14 +364,7 @@ impl<'a> Engine<'a> {
                     step: step.map(|s| s.index).unwrap_or(0),
                     last_sample_t_s: r.last_sample_t_s,
                     gap_s: r.gap_s,
-                    rule: match (step, &r.carried) {
-                        (Some(s), Some(_)) => resume_rule(&s.kind).to_string(),
-                        (Some(s), None) if resume_continues(&s.kind) => {
-                            "the step had not started: it starts from the beginning".to_string()
-                        }
-                        (Some(s), None) => resume_rule(&s.kind).to_string(),
-                        (None, _) => "no step left to run".to_string(),
-                    },
+                    rule: resume_rule_at(step, r.carried.is_some()),
                 });
             }
         }
