@@ -164,6 +164,14 @@ impl<'a> Estimator<'a> {
         }
     }
 
+    /// A plan step by its number (steps are numbered by position from 1).
+    fn step_of(&self, index: u32) -> Option<&'a crate::procedure::PlanStep> {
+        let plan: &'a Plan = self.plan;
+        plan.steps
+            .get((index as usize).checked_sub(1)?)
+            .filter(|p| p.index == index)
+    }
+
     pub fn soc(&self) -> Option<f64> {
         self.anchor.map(|a| {
             (a.soc + (self.run.ah - a.net_ah) / self.capacity_ah.max(1e-9)).clamp(0.0, 1.2)
@@ -195,12 +203,7 @@ impl<'a> Estimator<'a> {
 
     /// Time to the step's end, s (and whether a lower bound).
     pub fn eta(&self, s: &Sample, elapsed: f64) -> Option<(f64, bool)> {
-        let st = self
-            .plan
-            .steps
-            .iter()
-            .find(|p| p.index == s.step)
-            .or_else(|| self.plan.steps.get(s.step.saturating_sub(1) as usize))?;
+        let st = self.step_of(s.step)?;
         let i = s.current_a.abs();
         let p = (s.voltage_v * s.current_a).abs();
         let soc = self.soc();
@@ -270,12 +273,7 @@ impl<'a> Estimator<'a> {
                 }
             }
             Event::StepEnd { step, end_kind, .. } => {
-                let kind = self
-                    .plan
-                    .steps
-                    .iter()
-                    .find(|p| p.index == *step)
-                    .map(|p| &p.kind);
+                let kind = self.step_of(*step).map(|p| &p.kind);
                 match (kind, end_kind) {
                     (Some(StepKind::Charge { .. }), EndKind::CurrentBelow | EndKind::PeakDrop) => {
                         self.anchor = Some(Anchor {
