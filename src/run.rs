@@ -896,9 +896,11 @@ pub async fn drive(
     } = rec;
     write_lock(&dir)?;
     if let Some(s) = &sim {
-        // The simulated pack keeps its state beside the log (every 10
-        // bench seconds when paced, every minute at full speed).
-        let every = if s.speed_factor.is_some() { 10.0 } else { 60.0 };
+        // The simulated pack keeps its state beside the log: every 10
+        // bench seconds when paced; every 10 bench minutes at full speed,
+        // where a whole run takes a second and a file write costs as much
+        // as a hundred samples.
+        let every = if s.speed_factor.is_some() { 10.0 } else { 600.0 };
         s.handle.keep_state(dir.join(SIM_STATE_JSON), every);
     }
     if p.options.trace {
