@@ -900,7 +900,11 @@ pub async fn drive(
         // bench seconds when paced; every 10 bench minutes at full speed,
         // where a whole run takes a second and a file write costs as much
         // as a hundred samples.
-        let every = if s.speed_factor.is_some() { 10.0 } else { 600.0 };
+        let every = if s.speed_factor.is_some() {
+            10.0
+        } else {
+            600.0
+        };
         s.handle.keep_state(dir.join(SIM_STATE_JSON), every);
     }
     if p.options.trace {

@@ -253,6 +253,43 @@ fn check_prints_the_resolved_plan() {
     assert!(s.contains("charge 10.000 A to 14.400 V (CC-CV)"), "{s}");
     assert!(s.contains("voltage < 10.500 V"), "{s}");
     assert!(s.contains("<- capacity result"), "{s}");
+    // The dry run: each step's expected duration, charge and end, and the total.
+    assert!(s.contains("Dry run on the simulated pack"), "{s}");
+    assert!(s.contains("Total expected time: "), "{s}");
+    let dry = s.split("Dry run").nth(1).unwrap();
+    assert!(
+        dry.contains("voltage < 10.500 V"),
+        "the capacity step ends on its cutoff: {dry}"
+    );
+    // JSON for tools; --no-dry-run only validates.
+    let out = packbench(&[
+        "check",
+        "procedures/lead-acid-c20.toml",
+        "--chemistry",
+        "lead-acid",
+        "--series",
+        "6",
+        "--rated",
+        "100Ah",
+        "--json",
+    ]);
+    let s = text(&out.stdout);
+    let json = &s[s.find("{\n").unwrap()..];
+    let f: serde_json::Value = serde_json::from_str(json).unwrap();
+    assert_eq!(f["status"], "completed");
+    assert!(f["total_s"].as_f64().unwrap() > 20.0 * 3600.0);
+    let out = packbench(&[
+        "check",
+        "procedures/lead-acid-c20.toml",
+        "--chemistry",
+        "lead-acid",
+        "--series",
+        "6",
+        "--rated",
+        "100Ah",
+        "--no-dry-run",
+    ]);
+    assert!(!text(&out.stdout).contains("Dry run"));
 }
 
 #[test]

@@ -121,6 +121,37 @@ pub fn summary(s: &Summary) -> String {
             r.suggested_nominal_ah, r.conditions
         );
     }
+    if let Some(d) = &s.standby_drain {
+        let _ = writeln!(
+            o,
+            "  Standby drain:     {:.2} mA = {:.2} % of {:.3} Ah a month (mean of the last {:.0} s of step {})",
+            d.current_ma, d.pct_per_month, d.capacity_ref_ah, d.window_s, d.step
+        );
+    }
+    if let Some(p) = &s.preflight {
+        let zero = |z: Option<f64>| {
+            z.map(|z| format!("{z:+.1} mA"))
+                .unwrap_or_else(|| "-".into())
+        };
+        let _ = writeln!(
+            o,
+            "  Before the run:    pack at rest {:.3} V; zero offsets: source {}, load {}{}",
+            p.voltage_v,
+            zero(p.source_zero_ma),
+            zero(p.load_zero_ma),
+            if p.corrected { " (subtracted)" } else { "" }
+        );
+    }
+    for r in &s.resumed {
+        let _ = writeln!(
+            o,
+            "  Resumed:           at step {} after {:.0} s down ({})",
+            r.step, r.gap_s, r.rule
+        );
+    }
+    for a in &s.alarms {
+        let _ = writeln!(o, "  ALARM:             {a}");
+    }
     if !s.gaps.is_empty() {
         let _ = writeln!(
             o,
