@@ -309,6 +309,37 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
             ),
         );
     }
+    if let Some(d) = &s.standby_drain {
+        row(
+            "Standby drain",
+            format!(
+                "{:.2} mA = {:.2} % of {:.3} Ah a month (step {})",
+                d.current_ma, d.pct_per_month, d.capacity_ref_ah, d.step
+            ),
+        );
+    }
+    if let Some(p) = &s.preflight {
+        let zero = |z: Option<f64>| {
+            z.map(|z| format!("{z:+.1} mA"))
+                .unwrap_or_else(|| "-".into())
+        };
+        row(
+            "Before the run",
+            format!(
+                "pack at rest {:.3} V; zero offsets: source {}, load {}{}",
+                p.voltage_v,
+                zero(p.source_zero_ma),
+                zero(p.load_zero_ma),
+                if p.corrected { " (subtracted)" } else { "" }
+            ),
+        );
+    }
+    for r in &s.resumed {
+        row(
+            "Resumed",
+            format!("at step {} after {:.0} s down: {}", r.step, r.gap_s, r.rule),
+        );
+    }
     for c in &s.cycles {
         if let (Some(ce), Some(ee)) = (c.coulombic_efficiency_pct, c.energy_efficiency_pct) {
             row(
@@ -322,6 +353,9 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
         format!("{} over {}", s.samples, HumanDuration(s.duration_s)),
     );
     let _ = write!(b, "</table>");
+    for a in &s.alarms {
+        let _ = write!(b, "<p class=\"warn\"><b>Alarm:</b> {}</p>", escape(a));
+    }
     for w in &s.warnings {
         let _ = write!(b, "<p class=\"warn\">Warning: {}</p>", escape(w));
     }
