@@ -313,3 +313,93 @@ fn hostile_csv_logs_get_located_errors_or_documented_readings() {
     assert!(read(head).is_ok_and(|(n, _)| n == 0));
     assert!(read(&[0u8, 159, 146, 150, 255, 0, 10, 1, 2, 3]).is_err());
 }
+
+/// Every level setting sent to the simulated instruments by every shipped
+/// procedure stays inside the procedure's envelope (voltage at most
+/// voltage_max, current at most current_max).
+#[test]
+fn no_setting_sent_is_outside_the_envelope() {
+    use packbench::clock::{Clock, SimClock};
+    use packbench::engine::control::StopHandle;
+    use packbench::run::{self, PackSource, RunRequest};
+    use packbench::sim::{self, SimConfig};
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .unwrap();
+    let spec = |chemistry, series, rated_capacity_ah| PackSpec {
+        chemistry,
+        series,
+        rated_capacity_ah,
+        rated_energy_wh: None,
+        rated_rate_c: None,
+        rated_resistance_mohm: None,
+    };
+    for (file, pack) in [
+        (
+            "procedures/capacity-check.toml",
+            spec(Chemistry::LiIon, 10, 14.0),
+        ),
+        (
+            "procedures/lead-acid-c20.toml",
+            spec(Chemistry::LeadAcid, 6, 100.0),
+        ),
+        (
+            "procedures/nimh-capacity.toml",
+            spec(Chemistry::Nimh, 6, 2.0),
+        ),
+        (
+            "procedures/dcir-soc-sweep-li-ion.toml",
+            spec(Chemistry::LiIon, 10, 14.0),
+        ),
+    ] {
+        let dir = tempfile::tempdir().unwrap();
+        let p = run::prepare(&RunRequest {
+            procedure: file.into(),
+            pack_id: "E1".into(),
+            pack: PackSource::Given(pack),
+            results: dir.path().to_path_buf(),
+            options: Default::default(),
+        })
+        .unwrap();
+        let cfg = SimConfig::default();
+        let clock: Arc<dyn Clock> = SimClock::new();
+        let links = sim::build(&p.pack, &cfg, Arc::clone(&clock));
+        let h = links.handle.clone();
+        rt.block_on(run::execute_sim_links(
+            &p,
+            &cfg,
+            clock,
+            links,
+            "max",
+            StopHandle::new(),
+        ))
+        .unwrap();
+        let env = &p.procedure.plan.envelope;
+        let mut settings = 0;
+        for traffic in [&h.source_traffic, &h.load_traffic] {
+            for m in traffic.lock().unwrap().iter() {
+                for part in m.split(';') {
+                    let part = part.trim().trim_start_matches(':');
+                    let Some((head, value)) = part.split_once(' ') else {
+                        continue;
+                    };
+                    let Ok(x) = value.trim().parse::<f64>() else {
+                        continue;
+                    };
+                    let limit = match head.to_ascii_uppercase().as_str() {
+                        "VOLT" => env.voltage_max_v,
+                        "CURR" => env.current_max_a,
+                        _ => continue,
+                    };
+                    settings += 1;
+                    assert!(
+                        x.is_finite() && x >= 0.0 && x <= limit,
+                        "{file}: '{part}' beyond {limit}"
+                    );
+                }
+            }
+        }
+        assert!(settings > 2, "{file}: settings were seen ({settings})");
+    }
+}
