@@ -758,3 +758,80 @@ fn a_second_ctrl_c_switches_every_instrument_off_on_fresh_links() {
         assert!(!handle.source_output_on());
     });
 }
+
+#[test]
+fn ctrl_c_stops_every_station_of_a_bench_and_a_live_run_is_not_resumed() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    write(d, "discharge.toml", DISCHARGE);
+    let mut bench = String::new();
+    for n in 1..=3 {
+        bench.push_str(&format!(
+            "[[station]]\nname = \"bay-{n}\"\npack = \"G0{n}\"\n[station.source]\nlink = \"sim\"\nprofile = \"generic-scpi-source\"\n[station.load]\nlink = \"sim\"\nprofile = \"generic-scpi-load\"\n\n"
+        ));
+    }
+    write(d, "bench.toml", &bench);
+    let results = d.join("results");
+    let mut child = Command::new(BIN)
+        .args([
+            "run",
+            "discharge.toml",
+            "--bench",
+            "bench.toml",
+            "--speed",
+            "1",
+            "--quiet",
+        ])
+        .arg("--results")
+        .arg(&results)
+        .current_dir(d)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let dirs: Vec<PathBuf> = (1..=3)
+        .map(|n| wait_run_dir(&results.join(format!("G0{n}"))))
+        .collect();
+    for r in &dirs {
+        assert!(wait_for(
+            &r.join("events.jsonl"),
+            "step_start",
+            Duration::from_secs(10)
+        ));
+    }
+    // While it runs, the folder is locked: resume refuses it.
+    let out = Command::new(BIN)
+        .arg("resume")
+        .arg(&dirs[0])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    assert!(
+        String::from_utf8_lossy(&out.stderr).contains("is still running this test"),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    signal(&child, libc::SIGINT);
+    let status = child.wait().unwrap();
+    assert_eq!(status.code(), Some(5));
+    let mut stdout = String::new();
+    std::io::Read::read_to_string(child.stdout.as_mut().unwrap(), &mut stdout).unwrap();
+    assert_eq!(
+        stdout.lines().filter(|l| l.contains("interrupted")).count(),
+        3,
+        "{stdout}"
+    );
+    for r in &dirs {
+        assert_eq!(json(&r.join("run.json"))["status"], "interrupted");
+        assert_eq!(json(&r.join("summary.json"))["status"], "interrupted");
+        let events = read_events(&r.join("events.jsonl")).unwrap();
+        assert!(events.iter().any(|e| matches!(
+            e,
+            Event::OutputsOff {
+                source_off_confirmed: true,
+                load_off_confirmed: true,
+                ..
+            }
+        )));
+    }
+}
