@@ -1,6 +1,8 @@
 #!/usr/bin/env bash
 # Run every fuzz target for a given time each (default 600 s), one after
-# another, on the committed corpora; findings go to fuzz/artifacts/<target>/.
+# another, on the committed corpora; findings go to fuzz/artifacts/<target>/
+# and the full output to fuzz/logs/<target>.log. Afterwards, shrink a grown
+# corpus before committing it: cargo +nightly fuzz cmin -O TARGET fuzz/corpus/TARGET
 # Needs the nightly toolchain and cargo-fuzz (cargo install cargo-fuzz).
 #   bash scripts/fuzz.sh [SECONDS] [TARGET...]
 set -euo pipefail
@@ -17,5 +19,5 @@ for t in "${targets[@]}"; do
     # -timeout: any single input taking over 10 s counts as a hang.
     cargo +nightly fuzz run -O "$t" "fuzz/corpus/$t" -- \
         -max_total_time="$secs" -timeout=10 -rss_limit_mb=2048 -print_final_stats=1 \
-        2>&1 | tee "fuzz/logs/$t.log" | grep -E "^#[0-9]+.*(DONE|pulse)|Done|stat::|ERROR|panicked" || true
+        2>&1 | tee "fuzz/logs/$t.log" | grep -E "^#[0-9]+[[:space:]]+DONE|^Done|^stat::|ERROR|panicked" || true
 done
