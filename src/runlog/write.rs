@@ -109,26 +109,9 @@ pub struct RunLogSink {
 
 impl RunLogSink {
     pub fn create(dir: &Path) -> io::Result<RunLogSink> {
-        let mut samples = BufWriter::with_capacity(64 * 1024, File::create(dir.join(SAMPLES_CSV))?);
+        let mut samples = File::create(dir.join(SAMPLES_CSV))?;
         writeln!(samples, "{}", CSV_COLUMNS.join(","))?;
-        samples.flush()?;
-        let events = OpenOptions::new()
-            .create(true)
-            .append(true)
-            .open(dir.join(EVENTS_JSONL))?;
-        let _synced = [samples.get_ref(), &events]
-            .into_iter()
-            .filter_map(sync_in_background)
-            .collect();
-        Ok(RunLogSink {
-            samples,
-            events,
-            _synced,
-            last_flush: Instant::now(),
-            last_handoff_t: f64::NEG_INFINITY,
-            rows: 0,
-            line: String::with_capacity(96),
-        })
+        RunLogSink::with(samples, dir)
     }
 
     /// Open an interrupted run's log to go on writing it. A line left
@@ -137,12 +120,15 @@ impl RunLogSink {
         for name in [SAMPLES_CSV, EVENTS_JSONL] {
             cut_partial_line(&dir.join(name))?;
         }
-        let samples = BufWriter::with_capacity(
-            64 * 1024,
-            OpenOptions::new()
-                .append(true)
-                .open(dir.join(SAMPLES_CSV))?,
-        );
+        let samples = OpenOptions::new()
+            .append(true)
+            .open(dir.join(SAMPLES_CSV))?;
+        RunLogSink::with(samples, dir)
+    }
+
+    /// The sink on an open sample file; the event log is opened to append.
+    fn with(samples: File, dir: &Path) -> io::Result<RunLogSink> {
+        let samples = BufWriter::with_capacity(64 * 1024, samples);
         let events = OpenOptions::new()
             .create(true)
             .append(true)
