@@ -17,7 +17,7 @@ use crate::units;
 use anyhow::{anyhow, Context};
 use chrono::NaiveDate;
 use clap::{Args, Parser, Subcommand};
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 pub const EXIT_OK: i32 = 0;
 pub const EXIT_FAILURE: i32 = 1;
@@ -64,11 +64,17 @@ pub enum Command {
 
 #[derive(Debug, Args)]
 pub struct ResumeArgs {
-    /// The run folder (results/<pack>/<run>).
-    pub run_dir: PathBuf,
-    /// The bench file, when the run's recorded one has moved.
+    /// The run folder (results/<pack>/<run>); without it, `--bench FILE`
+    /// resumes every interrupted station of that bench.
+    #[arg(required_unless_present = "bench")]
+    pub run_dir: Option<PathBuf>,
+    /// The bench file: the run's own when its recorded one has moved, or,
+    /// without a run folder, the bench whose interrupted stations to resume.
     #[arg(long)]
     pub bench: Option<PathBuf>,
+    /// Results folder, where a bench's stations' runs are found.
+    #[arg(long, default_value = "results")]
+    pub results: PathBuf,
     /// Pace of a simulated bench (default: the run's own).
     #[arg(long)]
     pub speed: Option<String>,
@@ -108,6 +114,9 @@ pub struct FadeArgs {
     /// Where to write the HTML report (default results/<pack>/fade.html).
     #[arg(long)]
     pub html: Option<PathBuf>,
+    /// The date to judge a projected end of life against (default today, UTC).
+    #[arg(long)]
+    pub today: Option<String>,
 }
 
 #[derive(Debug, Args)]
@@ -118,7 +127,7 @@ pub struct FleetArgs {
     /// End of life, % of rated capacity.
     #[arg(long, default_value = "80%")]
     pub threshold: String,
-    /// A test is overdue after this long, e.g. 90d or 13w... in days: 90d.
+    /// A test is overdue after this long: days or weeks, e.g. 92d or 13w.
     #[arg(long, default_value = "92d")]
     pub interval: String,
     /// The date to judge overdue tests against (default: today, UTC).
@@ -328,9 +337,9 @@ pub fn sim_config(
 ) -> Result<SimConfig, RunError> {
     let mut cfg = match path {
         Some(path) => {
-            let text = crate::procedure::read_text(path).map_err(|source| RunError::Io {
+            let text = crate::procedure::read_text(path).map_err(|source| RunError::InputFile {
                 path: path.to_path_buf(),
-                source,
+                error: source,
             })?;
             SimConfig::from_toml(path, &text)?
         }
@@ -386,9 +395,9 @@ fn prepare_run(a: &RunArgs) -> Result<Vec<run::StationJob>, RunError> {
         options.cycle_count = Some(c);
     }
     if let Some(path) = &a.policy {
-        let text = crate::procedure::read_text(path).map_err(|source| RunError::Io {
+        let text = crate::procedure::read_text(path).map_err(|source| RunError::InputFile {
             path: path.clone(),
-            source,
+            error: source,
         })?;
         options.policy = Policy::from_toml(path, &text)?;
     }
@@ -607,19 +616,7 @@ pub fn cmd_run(a: RunArgs) -> i32 {
                     5 => interrupted = true,
                     _ => aborted = true,
                 }
-                println!(
-                    "{:<12} {:<10} {:<11} {} {}",
-                    j.name,
-                    j.prepared.pack_id,
-                    r.summary.status,
-                    r.summary
-                        .capacity
-                        .as_ref()
-                        .map(|c| format!("{:.3} Ah (SOH {:.1} %)", c.measured_ah, c.soh_pct))
-                        .or_else(|| r.summary.stop_reason.clone())
-                        .unwrap_or_default(),
-                    r.run_dir.display()
-                );
+                println!("{}", station_line(&j.name, &j.prepared.pack_id, r));
             }
             Err(e) => {
                 failed = true;
@@ -627,6 +624,21 @@ pub fn cmd_run(a: RunArgs) -> i32 {
             }
         }
     }
+    if interrupted {
+        if let Some(b) = &a.bench {
+            println!(
+                "To go on with these stations: packbench resume --bench {} --results {}",
+                shell_word(&b.display().to_string()),
+                shell_word(&a.results.display().to_string())
+            );
+        }
+    }
+    several_exit(failed, aborted, interrupted)
+}
+
+/// The exit code of several stations: 1 if any failed, else 3 if any
+/// aborted, else 5 if any was interrupted.
+fn several_exit(failed: bool, aborted: bool, interrupted: bool) -> i32 {
     if failed {
         EXIT_FAILURE
     } else if aborted {
@@ -636,6 +648,44 @@ pub fn cmd_run(a: RunArgs) -> i32 {
     } else {
         EXIT_OK
     }
+}
+
+/// The figures a run ends with, on one line: the capacity measured, the
+/// state of health (on the capacity at rated conditions) and the grade;
+/// else why it stopped.
+fn result_figures(s: &crate::runlog::Summary) -> String {
+    let mut parts = Vec::new();
+    match &s.capacity {
+        Some(c) => {
+            parts.push(format!("{:.3}Ah", c.measured_ah));
+            if c.from_full_charge {
+                parts.push(format!("SOH {:.1}%", c.soh_pct));
+            } else {
+                parts.push("not from a full charge".into());
+            }
+        }
+        None => {
+            if let Some(r) = &s.stop_reason {
+                parts.push(r.clone());
+            }
+        }
+    }
+    if let Some(g) = &s.grade {
+        parts.push(format!("grade {}", g.label));
+    }
+    parts.join(" ")
+}
+
+/// One station's end line.
+fn station_line(name: &str, pack_id: &str, r: &run::RunReport) -> String {
+    format!(
+        "{:<12} {:<10} {:<11} {} {}",
+        name,
+        pack_id,
+        r.summary.status,
+        result_figures(&r.summary),
+        r.run_dir.display()
+    )
 }
 
 /// Ctrl-C: the first stops every station safely (outputs off, confirmed,
@@ -667,20 +717,30 @@ fn spawn_interrupts(stop: StopHandle, em: run::Emergency) {
 
 /// `packbench resume`.
 pub fn cmd_resume(a: ResumeArgs) -> i32 {
-    let setup = (|| -> Result<_, RunError> {
-        let speed = a.speed.as_deref().map(parse_speed).transpose()?;
-        let policy = match &a.policy {
-            Some(path) => {
-                let text = crate::procedure::read_text(path).map_err(|source| RunError::Io {
-                    path: path.clone(),
-                    source,
-                })?;
-                Some(Policy::from_toml(path, &text)?)
-            }
-            None => None,
-        };
-        crate::resume::prepare(&a.run_dir, a.bench.as_deref(), speed, policy)
-    })();
+    match &a.run_dir {
+        Some(dir) => resume_one(&a, dir),
+        None => resume_bench(&a),
+    }
+}
+
+/// The pace and grading policy a resume was given.
+fn resume_options(a: &ResumeArgs) -> Result<(Option<Speed>, Option<Policy>), RunError> {
+    let speed = a.speed.as_deref().map(parse_speed).transpose()?;
+    let policy = match &a.policy {
+        Some(path) => {
+            let text = crate::procedure::read_text(path).map_err(run::input_file_err(path))?;
+            Some(Policy::from_toml(path, &text)?)
+        }
+        None => None,
+    };
+    Ok((speed, policy))
+}
+
+/// Resume one run folder.
+fn resume_one(a: &ResumeArgs, run_dir: &Path) -> i32 {
+    let setup = resume_options(a).and_then(|(speed, policy)| {
+        crate::resume::prepare(run_dir, a.bench.as_deref(), speed, policy)
+    });
     let setup = match setup {
         Ok(s) => s,
         Err(e) => return report_error(&e),
@@ -693,7 +753,7 @@ pub fn cmd_resume(a: ResumeArgs) -> i32 {
         match &setup.found {
             crate::resume::Found::GoOn(p) => eprintln!(
                 "resuming {} at step {} (last sample at {:.1} s, down {:.0} s)",
-                a.run_dir.display(),
+                run_dir.display(),
                 setup
                     .prepared
                     .procedure
@@ -745,21 +805,142 @@ pub fn cmd_resume(a: ResumeArgs) -> i32 {
     }
 }
 
+/// `resume --bench FILE`: every station of the bench whose pack's latest
+/// run was interrupted (or its process died), all checked before any is
+/// resumed, then run at once as `run` runs them.
+fn resume_bench(a: &ResumeArgs) -> i32 {
+    let setups = (|| -> Result<Vec<(String, crate::resume::ResumeSetup)>, RunError> {
+        let Some(file) = &a.bench else {
+            return Err(RunError::Pack("give a run folder or --bench FILE".into()));
+        };
+        let (speed, policy) = resume_options(a)?;
+        let bench = crate::benchfile::BenchFile::load(file)?;
+        let found = crate::resume::interrupted_runs(&bench, &a.results)?;
+        if found.is_empty() {
+            return Err(RunError::Pack(format!(
+                "no interrupted run of {}'s stations under {}: nothing to resume",
+                file.display(),
+                a.results.display()
+            )));
+        }
+        found
+            .into_iter()
+            .map(|(station, dir)| {
+                crate::resume::prepare(&dir, Some(file), speed, policy.clone())
+                    .map(|s| (station, s))
+            })
+            .collect()
+    })();
+    let setups = match setups {
+        Ok(s) => s,
+        Err(e) => return report_error(&e),
+    };
+    let mode = match display_mode(a.quiet, &a.status_every) {
+        Ok(m) => m,
+        Err(e) => return report_error(&e),
+    };
+    for (name, s) in &setups {
+        if !a.quiet {
+            eprintln!("resuming {name}: {}", s.dir.display());
+        }
+    }
+    let rt = match tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+    {
+        Ok(rt) => rt,
+        Err(e) => {
+            eprintln!("error: cannot start the runtime: {e}");
+            return EXIT_FAILURE;
+        }
+    };
+    let stop = StopHandle::new();
+    let emergency = run::Emergency::default();
+    let local = tokio::task::LocalSet::new();
+    let names: Vec<(String, String)> = setups
+        .iter()
+        .map(|(n, s)| (n.clone(), s.prepared.pack_id.clone()))
+        .collect();
+    let results = local.block_on(&rt, async {
+        spawn_interrupts(stop.clone(), emergency.clone());
+        let boards: Vec<crate::live::Board> = names
+            .iter()
+            .map(|(n, p)| crate::live::Board::new(n, p))
+            .collect();
+        let shown = tokio::task::spawn_local(crate::live::display(boards.clone(), mode));
+        let mut tasks = Vec::new();
+        for ((_, setup), board) in setups.into_iter().zip(boards) {
+            let (stop, em) = (stop.clone(), emergency.clone());
+            tasks.push(tokio::task::spawn_local(async move {
+                let r = crate::resume::execute(setup, board.clone(), stop, em).await;
+                board.update(|l| {
+                    if !l.is_final() {
+                        l.state = "failed".into();
+                    }
+                });
+                r
+            }));
+        }
+        let mut out = Vec::new();
+        for t in tasks {
+            out.push(match t.await {
+                Ok(r) => r,
+                Err(e) => Err(RunError::Pack(format!("station task failed: {e}"))),
+            });
+        }
+        let _ = shown.await;
+        out
+    });
+    let (mut failed, mut aborted, mut interrupted) = (false, false, false);
+    for ((name, pack), r) in names.iter().zip(&results) {
+        match r {
+            Ok(r) => {
+                match r.exit_code() {
+                    0 => {}
+                    5 => interrupted = true,
+                    _ => aborted = true,
+                }
+                println!("{}", station_line(name, pack, r));
+            }
+            Err(e) => {
+                failed = true;
+                println!("{name:<12} {pack:<10} failed      {e}");
+            }
+        }
+    }
+    several_exit(failed, aborted, interrupted)
+}
+
 fn print_result(r: &run::RunReport, quiet: bool) {
     if quiet {
         println!(
             "{} {} {}",
             r.summary.status,
             r.run_dir.display(),
-            r.summary
-                .capacity
-                .as_ref()
-                .map(|c| format!("{:.3}Ah", c.measured_ah))
-                .unwrap_or_default()
+            result_figures(&r.summary)
         );
     } else {
         print!("{}", report::text::summary(&r.summary));
         println!("  Results: {}", r.run_dir.display());
+    }
+    if r.exit_code() == 5 {
+        println!(
+            "To go on with this run: packbench resume {}",
+            shell_word(&r.run_dir.display().to_string())
+        );
+    }
+}
+
+/// A path as one shell word (quoted when it holds anything but plain
+/// characters), so the printed command can be pasted as it is.
+fn shell_word(s: &str) -> String {
+    if !s.is_empty()
+        && s.chars()
+            .all(|c| c.is_ascii_alphanumeric() || "-_./:+@%=,".contains(c))
+    {
+        s.to_string()
+    } else {
+        format!("'{}'", s.replace('\'', "'\\''"))
     }
 }
 
@@ -817,6 +998,10 @@ pub fn cmd_check(a: CheckArgs) -> anyhow::Result<i32> {
             );
             print!("{f}");
         }
+    } else {
+        for w in crate::dryrun::plan_warnings(&loaded.plan) {
+            println!("  warning: {w}");
+        }
     }
     Ok(EXIT_OK)
 }
@@ -858,7 +1043,11 @@ pub fn cmd_report(a: ReportArgs) -> anyhow::Result<i32> {
 pub fn cmd_fade(a: FadeArgs) -> anyhow::Result<i32> {
     let threshold = parse_threshold(&a.threshold)?;
     let h = history::load(&a.results, &a.pack, a.history.as_deref())?;
-    let fa = model::analyze(&h, threshold);
+    let mut fa = model::analyze(&h, threshold);
+    fa.flag_against(match &a.today {
+        Some(d) => parse_date(d)?,
+        None => chrono::Utc::now().date_naive(),
+    });
     let out = a
         .html
         .clone()
@@ -885,19 +1074,33 @@ pub fn cmd_fade(a: FadeArgs) -> anyhow::Result<i32> {
     Ok(EXIT_OK)
 }
 
+/// A test interval in whole days: `92d`, `13w` (weeks), or any duration of
+/// at least a day (`2160h`).
+fn interval_days(text: &str) -> Option<i64> {
+    let t = text.trim();
+    let weeks = ["weeks", "week", "wk", "w"]
+        .iter()
+        .find_map(|u| t.strip_suffix(u))
+        .and_then(|n| n.trim().parse::<f64>().ok());
+    let seconds = match weeks {
+        Some(w) => w * 7.0 * 86_400.0,
+        None => match units::parse(t) {
+            Ok(units::Quantity::Seconds(s)) => s,
+            _ => return None,
+        },
+    };
+    (seconds.is_finite() && seconds >= 86_400.0).then(|| (seconds / 86_400.0).round() as i64)
+}
+
 /// `packbench fleet`.
 pub fn cmd_fleet(a: FleetArgs) -> anyhow::Result<i32> {
     let threshold = parse_threshold(&a.threshold)?;
-    let interval = match units::parse(&a.interval) {
-        Ok(units::Quantity::Seconds(s)) if s >= 86_400.0 => (s / 86_400.0).round() as i64,
-        _ => {
-            return Err(RunError::Pack(format!(
-                "--interval '{}': expected a duration in days, e.g. 92d",
-                a.interval
-            ))
-            .into())
-        }
-    };
+    let interval = interval_days(&a.interval).ok_or_else(|| {
+        RunError::Pack(format!(
+            "--interval '{}': expected a duration of at least a day, in days or weeks, e.g. 92d or 13w",
+            a.interval
+        ))
+    })?;
     let today = match &a.today {
         Some(d) => parse_date(d)?,
         None => chrono::Utc::now().date_naive(),
@@ -974,13 +1177,11 @@ pub fn main() -> i32 {
     match result {
         Ok(code) => code,
         Err(e) => {
+            // A pack, run folder, log or history file that is missing or
+            // malformed is bad input, whatever the command.
             let input = e.downcast_ref::<RunError>().is_some_and(RunError::is_input)
-                || e.downcast_ref::<history::HistoryError>().is_some_and(|h| {
-                    matches!(
-                        h,
-                        history::HistoryError::Bad(_) | history::HistoryError::Pack(_)
-                    )
-                });
+                || e.downcast_ref::<history::HistoryError>().is_some()
+                || e.downcast_ref::<crate::runlog::read::ReadError>().is_some();
             eprintln!("error: {:#}", anyhow!(e));
             if input {
                 EXIT_BAD_INPUT
@@ -988,5 +1189,21 @@ pub fn main() -> i32 {
                 EXIT_FAILURE
             }
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn test_intervals_in_days_or_weeks() {
+        assert_eq!(interval_days("92d"), Some(92));
+        assert_eq!(interval_days("13w"), Some(91));
+        assert_eq!(interval_days("13 weeks"), Some(91));
+        assert_eq!(interval_days("2160h"), Some(90));
+        assert_eq!(interval_days("12h"), None);
+        assert_eq!(interval_days("13W"), None, "watts are no interval");
+        assert_eq!(interval_days("soon"), None);
     }
 }

@@ -221,10 +221,10 @@ pub struct DemoOutcome {
 pub enum DemoError {
     #[error("{0} exists and was not written by the demo; give another --out or empty it")]
     NotOurs(PathBuf),
-    #[error("{path}: {source}")]
+    #[error("{path}: {error}")]
     Io {
         path: PathBuf,
-        source: std::io::Error,
+        error: std::io::Error,
     },
     #[error("run: {0}")]
     Run(#[from] RunError),
@@ -237,7 +237,7 @@ pub enum DemoError {
 fn io(path: &Path) -> impl FnOnce(std::io::Error) -> DemoError + '_ {
     move |source| DemoError::Io {
         path: path.to_path_buf(),
-        source,
+        error: source,
     }
 }
 

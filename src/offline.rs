@@ -3,6 +3,7 @@
 //! so the figures are identical), or any bench's CSV (steps found from the
 //! current when the log has no step column). Streams the log once.
 
+use crate::analysis::integrate::Interruption;
 use crate::analysis::pulse::is_jump;
 use crate::analysis::{AnalysisOptions, Analyzer, CurveData};
 use crate::engine::event::Event;
@@ -80,13 +81,15 @@ pub fn build_summary(
     duration_s: f64,
     pack_dir: Option<&Path>,
 ) -> Summary {
-    let gradeable = matches!(outcome.status.as_str(), "completed" | "imported");
+    // A capacity figure that did not start from a full charge grades
+    // nothing: it is what the pack gave from where it was.
+    let gradeable = matches!(outcome.status.as_str(), "completed" | "imported")
+        && a.capacity.as_ref().is_none_or(|c| c.from_full_charge);
     let grade = gradeable.then(|| {
         let own = a.resistance.as_ref().map(|r| r.dcir_mohm);
         let reference = pack_dir
             .and_then(|d| reference_resistance(d, ctx))
-            .or(ctx.pack.rated_resistance_mohm)
-            .or(own);
+            .or(ctx.pack.rated_resistance_mohm);
         let growth = match (own, reference) {
             (Some(r), Some(r0)) if r0 > 0.0 => Some((r / r0 - 1.0) * 100.0),
             _ => None,
@@ -192,6 +195,28 @@ fn add_event_records(s: &mut Summary, events: &[Event]) {
     }
 }
 
+/// A capacity discharge that started far from the pack's temperature at
+/// rest before the run: the pack had not cooled (or warmed) to the room,
+/// and a temperature correction from that start misleads.
+fn warn_if_not_cooled(s: &mut Summary, events: &[Event]) {
+    let Some(c) = &s.capacity else { return };
+    // The run's own reading before its first step (a resume reads the
+    // pack again, warm from where it stopped).
+    let before = events.iter().find_map(|e| match e {
+        Event::Preflight { temperature_c, .. } => Some(*temperature_c),
+        _ => None,
+    });
+    let (Some(start), Some(Some(before))) = (c.initial_temperature_c, before) else {
+        return;
+    };
+    let off = start - before;
+    if off.abs() > crate::analysis::correct::COOLED_WITHIN_K {
+        s.warnings.push(format!(
+            "the capacity discharge started at {start:.1} °C, {off:+.1} K from the pack's {before:.1} °C at rest before the run (taken as the room's): it had not settled to the room's temperature after its charge, so the temperature correction from its start is unreliable; rest it until its temperature settles (dT/dt <) before the discharge"
+        ));
+    }
+}
+
 /// Feed a log's rows to the analyzer, counting samples and span.
 struct Feed {
     n: usize,
@@ -252,7 +277,14 @@ pub fn summarize_run_with_curves(
         events
             .iter()
             .filter_map(|e| match e {
-                Event::Resumed { t_s, .. } => Some(*t_s),
+                Event::Resumed {
+                    t_s,
+                    last_sample_t_s,
+                    ..
+                } => Some(Interruption {
+                    last_before_s: *last_sample_t_s,
+                    resumed_at_s: *t_s,
+                }),
                 _ => None,
             })
             .collect(),
@@ -291,6 +323,7 @@ pub fn summarize_run_with_curves(
     let curves = std::mem::take(&mut a.curve_data);
     let mut s = build_summary(a, ctx, outcome, feed.n, feed.duration(), Some(pack_dir));
     add_event_records(&mut s, &events);
+    warn_if_not_cooled(&mut s, &events);
     Ok((s, curves))
 }
 
@@ -314,7 +347,15 @@ pub fn summarize_foreign(
     let mut an = Analyzer::new(log.pack, &[], opts);
     let mut det = StepDetector::new(log.pack.rated_capacity_ah);
     let mut feed = Feed::new();
+    let mut prev: Option<Row> = None;
     let rep = stream_log(log.path, &log.format, |r: Row| {
+        // A row at the time of the row before with other values: counted
+        // and left out, before it can start a step of no duration.
+        if r.step.is_none() && prev.is_some_and(|p| p.t_s == r.t_s && p != r) {
+            an.skip_repeated_time();
+            return;
+        }
+        prev = Some(r);
         let step = match r.step {
             Some(s) => s,
             None => det.step_of(r.current_a),

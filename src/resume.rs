@@ -36,7 +36,7 @@
 //!   its charge by itself); the resumed bench starts from that state, left
 //!   open-circuit for the gap.
 
-use crate::analysis::integrate::Integrator;
+use crate::analysis::integrate::{spans_any, Integrator, Interruption};
 use crate::engine::event::{EndKind, Event};
 use crate::engine::state::RunState;
 use crate::engine::{resume_continues, Carried, ResumePoint, RunOutcome, Timing};
@@ -83,7 +83,7 @@ fn bad(msg: String) -> RunError {
 fn io_err(path: &Path) -> impl FnOnce(std::io::Error) -> RunError + '_ {
     move |source| RunError::Io {
         path: path.to_path_buf(),
-        source,
+        error: source,
     }
 }
 
@@ -96,6 +96,45 @@ fn process_alive(pid: i32) -> bool {
     nix::sys::signal::kill(nix::unistd::Pid::from_raw(pid), None).is_ok()
 }
 
+/// The run folders to resume for a bench: for each station that names its
+/// pack, that pack's latest run when it was run on this station and did
+/// not end on its own (`running` or `interrupted`). Reads records only.
+pub fn interrupted_runs(
+    bench: &crate::benchfile::BenchFile,
+    results: &Path,
+) -> Result<Vec<(String, PathBuf)>, RunError> {
+    let mut out = Vec::new();
+    for st in &bench.stations {
+        let Some(pack) = &st.pack_id else { continue };
+        let pack_dir = results.join(pack);
+        let Ok(entries) = std::fs::read_dir(&pack_dir) else {
+            continue;
+        };
+        let mut runs: Vec<PathBuf> = entries
+            .filter_map(|e| e.ok().map(|e| e.path()))
+            .filter(|p| p.join(RUN_JSON).is_file())
+            .collect();
+        // Run ids begin with their UTC start time: the last is the latest.
+        runs.sort();
+        let Some(last) = runs.pop() else { continue };
+        let path = last.join(RUN_JSON);
+        let text = std::fs::read_to_string(&path).map_err(crate::run::input_file_err(&path))?;
+        let m: Manifest = serde_json::from_str(&text).map_err(|e| {
+            bad(format!(
+                "{}:{}:{}: not a packbench run record: {e}",
+                path.display(),
+                e.line(),
+                e.column()
+            ))
+        })?;
+        let here = m.bench.station.as_deref() == Some(st.name.as_str());
+        if here && matches!(m.status.as_str(), "running" | "interrupted") {
+            out.push((st.name.clone(), last));
+        }
+    }
+    Ok(out)
+}
+
 /// Check a run folder and work out where it goes on. Talks to nothing.
 pub fn prepare(
     dir: &Path,
@@ -104,7 +143,7 @@ pub fn prepare(
     policy: Option<crate::fade::grade::Policy>,
 ) -> Result<ResumeSetup, RunError> {
     let run_json = dir.join(RUN_JSON);
-    let text = std::fs::read_to_string(&run_json).map_err(io_err(&run_json))?;
+    let text = std::fs::read_to_string(&run_json).map_err(crate::run::input_file_err(&run_json))?;
     let manifest: Manifest = serde_json::from_str(&text).map_err(|e| {
         bad(format!(
             "{}:{}:{}: not a packbench run record: {e}",
@@ -242,6 +281,10 @@ pub fn prepare(
     })
 }
 
+/// The least time between the last sample before an interruption and the
+/// run time it goes on at, s.
+const MIN_GAP_S: f64 = 0.01;
+
 /// Where the run goes on, from its events and samples.
 pub fn find_point(dir: &Path, p: &Prepared, speed_factor: Option<f64>) -> Result<Found, RunError> {
     let events = read_events(&dir.join(EVENTS_JSONL))?;
@@ -258,9 +301,17 @@ pub fn find_point(dir: &Path, p: &Prepared, speed_factor: Option<f64>) -> Result
                 last_event_t = last_event_t.max(*t_s);
                 run_end = None;
             }
-            Event::Resumed { step, t_s, .. } => {
+            Event::Resumed {
+                step,
+                t_s,
+                last_sample_t_s,
+                ..
+            } => {
                 current = Some(*step);
-                breaks.push(*t_s);
+                breaks.push(Interruption {
+                    last_before_s: *last_sample_t_s,
+                    resumed_at_s: *t_s,
+                });
                 last_event_t = last_event_t.max(*t_s);
                 run_end = None;
             }
@@ -302,7 +353,7 @@ pub fn find_point(dir: &Path, p: &Prepared, speed_factor: Option<f64>) -> Result
         if r.step != current || current.is_none() {
             return;
         }
-        let broke = prev_t.is_some_and(|pt| breaks.iter().any(|b| pt < *b && *b <= r.t_s));
+        let broke = prev_t.is_some_and(|pt| spans_any(&breaks, pt, r.t_s));
         if broke {
             if let (Some(f), Some(pt)) = (seg_first, prev_t) {
                 elapsed += pt - f;
@@ -330,7 +381,11 @@ pub fn find_point(dir: &Path, p: &Prepared, speed_factor: Option<f64>) -> Result
         .map(|d| d.as_secs_f64())
         .unwrap_or(0.0);
     let gap_s = wall_gap * speed_factor.unwrap_or(1.0);
-    let t_run_s = last_sample_t + gap_s.max(1e-3);
+    // At least 10 ms apart, so the last sample before and the first after
+    // stay on their own sides of the interruption in a log written to the
+    // millisecond (`Interruption::spans`).
+    let gap_s = gap_s.max(MIN_GAP_S);
+    let t_run_s = last_sample_t + gap_s;
     let (position, carried) = match current {
         None => (0, None),
         Some(k) if ended_ok.contains(&k) => (k as usize, None),

@@ -31,20 +31,27 @@ use std::sync::Arc;
 /// Everything that can go wrong in a run request.
 #[derive(Debug, thiserror::Error)]
 pub enum RunError {
-    #[error("{0}")]
+    #[error(transparent)]
     Input(#[from] InputErrors),
-    #[error("{0}")]
+    #[error(transparent)]
     PackId(#[from] PackIdError),
     #[error("{0}")]
     Pack(String),
-    #[error("{path}: {source}")]
+    /// A file the user named (a procedure, a pack spec, a run folder's
+    /// record) could not be read: bad input.
+    #[error("{path}: {error}")]
+    InputFile {
+        path: PathBuf,
+        error: std::io::Error,
+    },
+    #[error("{path}: {error}")]
     Io {
         path: PathBuf,
-        source: std::io::Error,
+        error: std::io::Error,
     },
     #[error("instrument: {0}")]
     Instrument(#[from] InstrumentError),
-    #[error("{0}")]
+    #[error(transparent)]
     Read(#[from] ReadError),
 }
 
@@ -53,7 +60,11 @@ impl RunError {
     pub fn is_input(&self) -> bool {
         matches!(
             self,
-            RunError::Input(_) | RunError::PackId(_) | RunError::Pack(_)
+            RunError::Input(_)
+                | RunError::PackId(_)
+                | RunError::Pack(_)
+                | RunError::InputFile { .. }
+                | RunError::Read(_)
         )
     }
 }
@@ -61,7 +72,7 @@ impl RunError {
 fn io_err(path: &Path) -> impl FnOnce(std::io::Error) -> RunError + '_ {
     move |source| RunError::Io {
         path: path.to_path_buf(),
-        source,
+        error: source,
     }
 }
 
@@ -185,9 +196,17 @@ pub struct Prepared {
     pub options: RunOptions,
 }
 
+/// A file the user named could not be read.
+pub fn input_file_err(path: &Path) -> impl FnOnce(std::io::Error) -> RunError + '_ {
+    move |error| RunError::InputFile {
+        path: path.to_path_buf(),
+        error,
+    }
+}
+
 /// Read a pack spec file.
 pub fn read_pack_file(path: &Path) -> Result<PackSpec, RunError> {
-    let text = crate::procedure::read_text(path).map_err(io_err(path))?;
+    let text = crate::procedure::read_text(path).map_err(input_file_err(path))?;
     Ok(PackSpec::from_toml(path, &text)?)
 }
 

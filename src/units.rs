@@ -37,7 +37,7 @@ pub enum UnitError {
 }
 
 const KNOWN: &str = "V mV kV V/cell mV/cell A mA C s ms min h (and 1h30m) Ah mAh Wh kWh mWh \
-W mW kW W/cell degC ohm mohm kohm % V/s mV/s mV/min mV/h mV/min/cell";
+W mW kW W/cell degC ohm mohm kohm % V/s mV/s mV/min mV/h mV/min/cell K/h K/min degC/h";
 
 /// A parsed quantity. Pack-relative kinds keep their symbolic form.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
@@ -71,6 +71,8 @@ pub enum Quantity {
     VoltsPerSecond(f64),
     /// Volts per second per series cell.
     VoltsPerSecondPerCell(f64),
+    /// Kelvin (a temperature difference) per second.
+    KelvinPerSecond(f64),
 }
 
 impl Quantity {
@@ -87,6 +89,7 @@ impl Quantity {
             Quantity::Ohms(_) => "a resistance",
             Quantity::Percent(_) => "a percentage",
             Quantity::VoltsPerSecond(_) | Quantity::VoltsPerSecondPerCell(_) => "a voltage rate",
+            Quantity::KelvinPerSecond(_) => "a temperature rate",
         }
     }
 
@@ -106,7 +109,8 @@ impl Quantity {
             | Quantity::Ohms(x)
             | Quantity::Percent(x)
             | Quantity::VoltsPerSecond(x)
-            | Quantity::VoltsPerSecondPerCell(x) => x,
+            | Quantity::VoltsPerSecondPerCell(x)
+            | Quantity::KelvinPerSecond(x) => x,
         }
     }
 }
@@ -271,6 +275,9 @@ fn unit_value(x: f64, unit: &str) -> Option<Quantity> {
         "mV/s/cell" => VoltsPerSecondPerCell(x / 1000.0),
         "mV/min/cell" => VoltsPerSecondPerCell(x / 1000.0 / 60.0),
         "mV/h/cell" => VoltsPerSecondPerCell(x / 1000.0 / 3600.0),
+        "K/s" | "degC/s" => KelvinPerSecond(x),
+        "K/min" | "degC/min" => KelvinPerSecond(x / 60.0),
+        "K/h" | "degC/h" => KelvinPerSecond(x / 3600.0),
         _ => return None,
     })
 }
@@ -421,6 +428,15 @@ pub fn voltage_rate(text: &str) -> Result<RateSpec, UnitError> {
     match parse_with_hint(text, "1mV/min")? {
         Quantity::VoltsPerSecond(r) => Ok(RateSpec::Pack(r)),
         Quantity::VoltsPerSecondPerCell(r) => Ok(RateSpec::PerCell(r)),
+        q => Err(wrong(text, &q, E)),
+    }
+}
+
+/// A rate of temperature change, K/s (`0.5K/h`, `0.5degC/h`, `0.1K/min`).
+pub fn temperature_rate(text: &str) -> Result<f64, UnitError> {
+    const E: &str = "a temperature rate (K/h, K/min, K/s or degC/h)";
+    match parse_with_hint(text, "0.5K/h")? {
+        Quantity::KelvinPerSecond(r) => Ok(r),
         q => Err(wrong(text, &q, E)),
     }
 }

@@ -232,7 +232,7 @@ fn clean_rows() -> Vec<(f64, f64, f64)> {
 }
 
 fn write_log(dir: &Path, name: &str, rows: &[(f64, f64, f64)], tail: &str) -> PathBuf {
-    let mut text = String::from("Time (s),Voltage (V),Current (A)\n");
+    let mut text = String::from("time_s,voltage_v,current_a\n");
     for (t, v, i) in rows {
         text.push_str(&format!("{t:.3},{v:.4},{i:.4}\n"));
     }
@@ -586,4 +586,88 @@ fn ports_lists_without_failing() {
     let out = Command::new(BIN).arg("ports").output().unwrap();
     assert!(out.status.success());
     assert!(!out.stdout.is_empty());
+}
+
+/// The README's example for a log from another bench runs as written on
+/// the committed example log (a layout of our own: minutes, volts, amperes
+/// out of the pack), and gives the figures of the simulated run it came
+/// from.
+#[test]
+fn the_readme_foreign_log_example_runs_as_written() {
+    let readme = std::fs::read_to_string("README.md").unwrap();
+    // The command: from `packbench analyze examples/` to the end of its
+    // continued lines.
+    let start = readme
+        .find("packbench analyze examples/")
+        .expect("the README shows the example");
+    let mut cmd = String::new();
+    for line in readme[start..].lines() {
+        let l = line.trim();
+        match l.strip_suffix('\\') {
+            Some(head) => cmd.push_str(head),
+            None => {
+                cmd.push_str(l.split("  #").next().unwrap());
+                break;
+            }
+        }
+        cmd.push(' ');
+    }
+    // Split as a shell would (the example quotes one argument).
+    let mut args: Vec<String> = Vec::new();
+    let mut cur = String::new();
+    let mut quoted = false;
+    for c in cmd.chars() {
+        match c {
+            '"' => quoted = !quoted,
+            c if c.is_whitespace() && !quoted => {
+                if !cur.is_empty() {
+                    args.push(std::mem::take(&mut cur));
+                }
+            }
+            c => cur.push(c),
+        }
+    }
+    if !cur.is_empty() {
+        args.push(cur);
+    }
+    assert_eq!(args[0], "packbench");
+    assert!(args.contains(&"--json".to_string()), "{args:?}");
+    let out = Command::new(BIN).args(&args[1..]).output().unwrap();
+    assert!(
+        out.status.success(),
+        "{args:?}: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let s: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    // The simulated 14 Ah pack holds 93 % of its rating (its default
+    // condition): the example's capacity step, from the full charge.
+    let c = &s["capacity"];
+    let ah = c["measured_ah"].as_f64().unwrap();
+    assert!((ah - 0.93 * 14.0).abs() < 0.2, "{ah}");
+    assert_eq!(c["from_full_charge"], true);
+    assert!((c["c_rate"].as_f64().unwrap() - 0.2).abs() < 0.01);
+    assert_eq!(s["steps"].as_array().unwrap().len(), 5, "{}", s["steps"]);
+}
+
+/// No test or fixture carries one existing program's export headers: the
+/// foreign logs here use generic SI names or a layout of our own.
+#[test]
+fn fixtures_use_generic_or_own_headers() {
+    for dir in ["tests/fixtures", "examples"] {
+        for e in std::fs::read_dir(dir).unwrap() {
+            let p = e.unwrap().path();
+            if p.extension().and_then(|x| x.to_str()) != Some("csv") {
+                continue;
+            }
+            let text = std::fs::read_to_string(&p).unwrap();
+            let header = text.lines().next().unwrap_or_default().to_ascii_lowercase();
+            for h in header.split(',') {
+                assert!(
+                    !h.contains('(') && !h.contains("test time") && !h.contains("_index"),
+                    "{}: header '{h}'",
+                    p.display()
+                );
+            }
+        }
+    }
 }

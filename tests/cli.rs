@@ -83,6 +83,16 @@ fn the_readme_command_runs_a_capacity_check() {
     }
     let header = std::fs::read_to_string(run.join("samples.csv")).unwrap();
     assert!(header.starts_with("t_s,step,cycle,voltage_v,current_a,temperature_c\n"));
+    // The grade card shows the capacity the state of health is taken on
+    // (at rated conditions) with its corrections.
+    let html = std::fs::read_to_string(run.join("report.html")).unwrap();
+    let corrected = s["capacity"]["corrected_ah"].as_f64().unwrap();
+    assert!(
+        html.contains(&format!(
+            "<dt>At rated conditions</dt><dd>{corrected:.3} Ah"
+        )),
+        "the card lacks the corrected capacity {corrected:.3} Ah"
+    );
 
     // A second test of the same pack reuses its saved spec ...
     let again = packbench(&[
@@ -418,4 +428,123 @@ fn demo_then_fade_fleet_and_report_on_its_results() {
     assert_eq!(o.status.code(), Some(0), "{}", text(&o.stderr));
     let page = std::fs::read_to_string(run.join("report.html")).unwrap();
     assert!(page.contains("Grade card") && page.matches("<svg").count() >= 4);
+}
+
+/// Each error once, with its location; bad input exits 2 whatever the
+/// command (issue: "X: X", and exit 1 from analyze, fade and resume).
+#[test]
+fn errors_are_said_once_and_bad_input_exits_2() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let bad = d.join("bad.toml");
+    std::fs::write(
+        &bad,
+        "title = \"x\"\n[envelope]\nvoltage_max = \"4.25V/cell\"\n",
+    )
+    .unwrap();
+    let hist = d.join("h.csv");
+    std::fs::write(&hist, "date,cycles,capacity_ah\n2024-01-01,x,3\n").unwrap();
+    let pack = d.join("results/P-1");
+    std::fs::create_dir_all(&pack).unwrap();
+    std::fs::write(
+        pack.join("pack.toml"),
+        "chemistry = \"li-ion\"\nseries = 10\nrated_capacity = \"14Ah\"\n",
+    )
+    .unwrap();
+    let results = d.join("results");
+    let r = results.to_str().unwrap();
+    let cases: Vec<(Vec<&str>, String)> = vec![
+        (
+            vec!["check", bad.to_str().unwrap()],
+            "[envelope] is missing voltage_min".into(),
+        ),
+        (
+            vec![
+                "analyze",
+                "no-such-log.csv",
+                "--chemistry",
+                "li-ion",
+                "--series",
+                "10",
+                "--rated",
+                "5Ah",
+            ],
+            "no-such-log.csv".into(),
+        ),
+        (
+            vec![
+                "fade",
+                "P-1",
+                "--results",
+                r,
+                "--history",
+                hist.to_str().unwrap(),
+            ],
+            "h.csv:2:12: 'x' is not a cycle count".into(),
+        ),
+        (vec!["fade", "NO-PACK", "--results", r], "NO-PACK".into()),
+        (vec!["resume", "/no/such/run"], "/no/such/run".into()),
+        (vec!["fleet", r, "--interval", "5"], "--interval '5'".into()),
+    ];
+    for (args, needle) in cases {
+        let out = packbench(&args);
+        let err = text(&out.stderr);
+        assert_eq!(out.status.code(), Some(2), "{args:?}: {err}");
+        let first = err
+            .lines()
+            .find(|l| l.starts_with("error: "))
+            .unwrap_or_default();
+        assert!(first.contains(&needle), "{args:?}: {err}");
+        // Said once: no message repeated after a colon.
+        let msg = first.rsplit(": ").next().unwrap();
+        assert_eq!(err.matches(msg).count(), 1, "{args:?}: said twice: {err}");
+    }
+}
+
+/// A pack under its end-of-life threshold says so in `fade` and `fleet`;
+/// a projected end of life before today is flagged; a test interval may
+/// be given in weeks.
+#[test]
+fn end_of_life_reached_or_past_is_said() {
+    let dir = tempfile::tempdir().unwrap();
+    let results = dir.path().join("results");
+    let r = results.to_str().unwrap();
+    let spec = "chemistry = \"li-ion\"\nseries = 10\nrated_capacity = \"10Ah\"\n";
+    for (id, hist) in [
+        // 86, 82, then 79 and 77: under 80 % since 2024-07-01.
+        (
+            "WORN-1",
+            "date,cycles,capacity_ah\n2023-07-01,300,8.6\n2024-01-01,450,8.2\n2024-07-01,600,7.9\n2025-01-01,750,7.7\n",
+        ),
+        // 100, 95, 90 % over a year: 80 % projected for about 2022-01.
+        (
+            "AGING-2",
+            "date,cycles,capacity_ah\n2020-01-01,0,10.0\n2020-07-01,150,9.5\n2021-01-01,300,9.0\n",
+        ),
+    ] {
+        let p = results.join(id);
+        std::fs::create_dir_all(&p).unwrap();
+        std::fs::write(p.join("pack.toml"), spec).unwrap();
+        std::fs::write(p.join("history.csv"), hist).unwrap();
+    }
+    let out = packbench(&["fade", "WORN-1", "--results", r, "--today", "2025-02-01"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let said = text(&out.stdout);
+    assert!(
+        said.contains("below end of life (80 % of rated) since 2024-07-01"),
+        "{said}"
+    );
+    let out = packbench(&["fade", "AGING-2", "--results", r, "--today", "2024-01-01"]);
+    let said = text(&out.stdout);
+    assert!(said.contains("is before today (2024-01-01)"), "{said}");
+    let out = packbench(&["fleet", r, "--today", "2024-01-01", "--interval", "13w"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let said = text(&out.stdout);
+    assert!(said.contains("a test is due every 91 days"), "{said}");
+    let line = |id: &str| said.lines().find(|l| l.contains(id)).unwrap().to_string();
+    assert!(
+        line("WORN-1").contains("BELOW-EOL-SINCE-2024-07-01"),
+        "{said}"
+    );
+    assert!(line("AGING-2").contains("EOL-DATE-PAST"), "{said}");
 }

@@ -188,6 +188,9 @@ async fn every_shipped_procedure_completes_on_its_cutoff() {
             r.outcome.duration_s
         );
         assert_eq!(f.steps.len(), r.summary.steps.len(), "{file}");
+        // A shipped procedure checks clean: no warning of its own (issue:
+        // the li-ion ones warned about their own charge voltage).
+        assert!(f.warnings.is_empty(), "{file}: {:?}", f.warnings);
         if RESISTANCE_ONLY.contains(&file) {
             let res = r.summary.resistance.as_ref().expect("a resistance figure");
             assert_eq!(res.readings.len(), 3, "{file}");
@@ -205,6 +208,7 @@ async fn every_shipped_procedure_completes_on_its_cutoff() {
         );
         let step = r.summary.steps.iter().find(|s| s.step == c.step).unwrap();
         assert_eq!(step.end_kind.as_deref(), Some("voltage_below"), "{file}");
+        assert!(c.from_full_charge, "{file}: {}", c.preceded_by);
         assert!(
             c.soh_pct > 80.0 && c.soh_pct < 100.0,
             "{file}: SOH {}",

@@ -834,4 +834,61 @@ fn ctrl_c_stops_every_station_of_a_bench_and_a_live_run_is_not_resumed() {
             }
         )));
     }
+    // The exact command to go on is printed, and it resumes every
+    // interrupted station of the bench at once.
+    let wanted = format!(
+        "packbench resume --bench bench.toml --results {}",
+        results.display()
+    );
+    let said = stdout
+        .lines()
+        .find(|l| l.contains("packbench resume"))
+        .unwrap_or_else(|| panic!("no resume command in:\n{stdout}"));
+    assert!(said.ends_with(&wanted), "{said}");
+    let out = Command::new(BIN)
+        .args([
+            "resume",
+            "--bench",
+            "bench.toml",
+            "--speed",
+            "max",
+            "--quiet",
+        ])
+        .arg("--results")
+        .arg(&results)
+        .current_dir(d)
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{text}{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert_eq!(
+        text.lines().filter(|l| l.contains("completed")).count(),
+        3,
+        "{text}"
+    );
+    for r in &dirs {
+        assert_eq!(json(&r.join("run.json"))["status"], "completed");
+        assert_eq!(
+            json(&r.join("summary.json"))["resumed"]
+                .as_array()
+                .unwrap()
+                .len(),
+            1
+        );
+    }
+    // Nothing left to resume: said, as bad input.
+    let again = Command::new(BIN)
+        .args(["resume", "--bench", "bench.toml"])
+        .arg("--results")
+        .arg(&results)
+        .current_dir(d)
+        .output()
+        .unwrap();
+    assert_eq!(again.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&again.stderr).contains("nothing to resume"));
 }

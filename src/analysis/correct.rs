@@ -14,6 +14,17 @@
 //!   k = ln(t2/t1) / ln(I1/I2) [C/D].
 //! - Other chemistries: a documented linear coefficient around 25 °C,
 //!   common practice; the values are from memory.
+//!
+//! Which temperature: the pack's temperature at the start of the discharge,
+//! read by the bench's sensor on the pack as the stand-in for the
+//! electrolyte temperature. IEEE 450 corrects for the initial electrolyte
+//! temperature (§4c); IEC 60896-11 keeps the ambient at 15–25 °C and
+//! corrects for the initial (mean) temperature of the discharge (§4a, the
+//! exact form from memory [M]). Both assume a battery that has rested to
+//! the room's temperature after its charge: the shipped lead-acid procedure
+//! rests until the temperature settles (`dT/dt <`), and the summary warns
+//! when the pack is still more than [`COOLED_WITHIN_K`] from its
+//! temperature before the run.
 
 use crate::pack::Chemistry;
 use serde::{Deserialize, Serialize};
@@ -63,6 +74,12 @@ pub fn iec60896_lambda(duration_h: f64) -> f64 {
         0.01
     }
 }
+
+/// A capacity discharge that starts more than this far from the pack's
+/// temperature at rest before the run (taken as the room's) is flagged:
+/// the pack had not cooled after its charge, and a temperature correction
+/// from it misleads (common practice: a few kelvin).
+pub const COOLED_WITHIN_K: f64 = 3.0;
 
 /// IEC 60896-11 reference temperature, °C.
 pub const IEC60896_REF_C: f64 = 20.0;
@@ -195,7 +212,7 @@ pub fn correct(test: &CapacityTest, policy: &CorrectionPolicy) -> (f64, Vec<Corr
                         "IEC 60896-11".to_string(),
                         iec60896_corrected(1.0, t, lambda),
                         format!(
-                            "C20 = C / (1 + {lambda}·(θ − 20 °C)) with θ = {t:.1} °C at the start of a {h:.2} h discharge (λ = {lambda} for a discharge {} 3 h)",
+                            "C20 = C / (1 + {lambda}·(θ − 20 °C)) with θ = {t:.1} °C, the pack's (electrolyte stand-in) temperature at the start of a {h:.2} h discharge (λ = {lambda} for a discharge {} 3 h)",
                             if h > 3.0 { "over" } else { "of at most" }
                         ),
                     )

@@ -4,6 +4,34 @@
 //! zero crossing so charge in and charge out are each exact for a linear
 //! current between samples.
 
+/// Where a resumed run's log was interrupted: the last sample written
+/// before the run went down and the run time it went on at. Nothing is
+/// integrated across it, whatever the rounding of the times in the log.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Interruption {
+    /// Run time of the last sample (or event) before the interruption, s.
+    pub last_before_s: f64,
+    /// Run time the run went on at, s.
+    pub resumed_at_s: f64,
+}
+
+impl Interruption {
+    /// Whether the interval from a sample at `t0` to the next at `t1`
+    /// spans this interruption. The dividing line is half-way between the
+    /// last time before it and the time the run went on (both at least
+    /// 10 ms apart, see `resume`), so times rounded to the millisecond in
+    /// `samples.csv` fall on their own side of it.
+    pub fn spans(&self, t0: f64, t1: f64) -> bool {
+        let mid = 0.5 * (self.last_before_s + self.resumed_at_s.max(self.last_before_s));
+        t0 < mid && mid <= t1
+    }
+}
+
+/// Whether any of `breaks` lies between two successive samples.
+pub fn spans_any(breaks: &[Interruption], t0: f64, t1: f64) -> bool {
+    breaks.iter().any(|b| b.spans(t0, t1))
+}
+
 /// Running trapezoidal integrals of current (Ah) and power (Wh).
 #[derive(Debug, Clone, Copy, Default, PartialEq)]
 pub struct Integrator {

@@ -21,6 +21,16 @@ use resistance::ResistanceReading;
 use serde::{Deserialize, Serialize};
 pub use stream::{AnalysisOptions, Analyzer};
 
+/// A capacity step counts as starting full when less than this share of
+/// the rated capacity was drawn since the end of the last full charge (a
+/// rest's self-discharge, the meters' zero, a resistance pulse; common
+/// practice).
+pub const FULL_START_TOLERANCE: f64 = 0.02;
+
+fn is_zero(x: &f64) -> bool {
+    *x == 0.0
+}
+
 /// What the analysis needs to know about a step besides its samples.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct StepInfo {
@@ -44,7 +54,13 @@ pub struct StepSummary {
     pub name: Option<String>,
     pub samples: usize,
     pub start_s: f64,
+    /// The time the step ran (current could flow): its span in run time
+    /// less any time the run was down inside it, s.
     pub duration_s: f64,
+    /// Run time inside the step while the run was down (interrupted and
+    /// resumed), s.
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub down_s: f64,
     /// Net charge, signed (positive into the pack).
     pub charge_ah: f64,
     /// Net energy, signed.
@@ -110,6 +126,18 @@ pub struct CapacityResult {
     /// current, to its cutoff).
     #[serde(default)]
     pub ieee450_percent: Option<f64>,
+    /// Did the step start from a full charge (the end of a charge on its
+    /// taper or −ΔV, with only rests between)? Only then is the figure
+    /// the pack's capacity.
+    #[serde(default = "yes")]
+    pub from_full_charge: bool,
+    /// What preceded the step, in words.
+    #[serde(default)]
+    pub preceded_by: String,
+}
+
+fn yes() -> bool {
+    true
 }
 
 /// A gap in the log: an interval much longer than the typical one.
@@ -131,9 +159,13 @@ pub struct LogQuality {
     pub rows: u64,
     pub duplicates_dropped: u64,
     pub out_of_order_dropped: u64,
-    /// Rows with the same time as the row before but other values (kept:
-    /// an instant change, such as a current edge).
+    /// Rows with the same time as the row before but other values. Kept
+    /// (an instant change, such as a current edge) where the log names its
+    /// steps; left out where steps are found from the current.
     pub repeated_timestamps: u64,
+    /// Of those, the rows left out.
+    #[serde(default)]
+    pub repeated_dropped: u64,
     pub gaps: u64,
     pub charge_in_gaps_ah: f64,
     /// A last line without its newline was left out.
@@ -420,5 +452,108 @@ mod tests {
         assert!((c.coulombic_efficiency_pct.unwrap() - 99.5).abs() < 1e-9);
         assert!((c.energy_efficiency_pct.unwrap() - 94.21).abs() < 0.01);
         assert!(a.capacity.is_none());
+    }
+
+    fn pack_2ah() -> PackSpec {
+        PackSpec {
+            chemistry: Chemistry::LiIon,
+            series: 1,
+            rated_capacity_ah: 2.0,
+            rated_energy_wh: None,
+            rated_rate_c: None,
+            rated_resistance_mohm: None,
+        }
+    }
+
+    fn info(step: u32, kind: &str, end: &str, result: Option<&str>) -> StepInfo {
+        StepInfo {
+            step,
+            phase: "p".into(),
+            cycle: 1,
+            kind: kind.into(),
+            name: None,
+            result: result.map(String::from),
+            end_kind: Some(end.into()),
+            end_reason: None,
+        }
+    }
+
+    fn flat(step: u32, from: f64, to: f64, v: f64, i: f64) -> Vec<Sample> {
+        (0..=((to - from) as usize))
+            .map(|k| Sample {
+                t_s: from + k as f64,
+                step,
+                cycle: 1,
+                voltage_v: v,
+                current_a: i,
+                temperature_c: None,
+            })
+            .collect()
+    }
+
+    #[test]
+    fn a_cycle_whose_discharge_did_not_finish_has_no_efficiency() {
+        // A full charge (2 Ah), then a discharge interrupted after 0.93 Ah:
+        // 46.6 % would be no efficiency at all (issue: an interrupted
+        // run's summary reported it).
+        let mut samples = flat(1, 0.0, 7200.0, 3.8, 1.0);
+        samples.extend(flat(2, 8000.0, 11348.0, 3.6, -1.0));
+        let infos = [
+            info(1, "charge", "current_below", None),
+            info(2, "discharge", "interrupted", Some("capacity")),
+        ];
+        let a = analyze(&samples, &infos, &pack_2ah());
+        assert_eq!(a.cycles.len(), 1);
+        assert_eq!(a.cycles[0].coulombic_efficiency_pct, None);
+        assert_eq!(a.cycles[0].energy_efficiency_pct, None);
+        // The same cycle finished: its efficiency is there.
+        let done = [
+            info(1, "charge", "current_below", None),
+            info(2, "discharge", "voltage_below", Some("capacity")),
+        ];
+        let a = analyze(&samples, &done, &pack_2ah());
+        let ce = a.cycles[0].coulombic_efficiency_pct.unwrap();
+        assert!((ce - 0.93 / 2.0 * 100.0).abs() < 0.1, "{ce}");
+    }
+
+    #[test]
+    fn nothing_is_counted_across_an_interruption_whatever_the_rounding() {
+        // A 1 A discharge, down from t = 100 s to t = 160 s. The first
+        // sample after the resume is written to the millisecond and falls
+        // 0.4 ms before the resume time kept in the events (issue: then
+        // the 60 s outage was integrated as a gap, +16.7 mAh).
+        let mut samples = flat(1, 0.0, 100.0, 3.6, -1.0);
+        let resumed_at = 160.0004;
+        samples.extend(flat(1, 160.0, 200.0, 3.6, -1.0));
+        let pack = pack_2ah();
+        let mut a = Analyzer::new(
+            &pack,
+            &[info(1, "discharge", "voltage_below", Some("capacity"))],
+            AnalysisOptions::default(),
+        );
+        a.set_breaks(vec![integrate::Interruption {
+            last_before_s: 100.0,
+            resumed_at_s: resumed_at,
+        }]);
+        for s in &samples {
+            a.push(s);
+        }
+        let r = a.finish();
+        let c = r.capacity.unwrap();
+        // 100 s + 40 s at 1 A, nothing for the 60 s down.
+        assert!(
+            (c.measured_ah - 140.0 / 3600.0).abs() < 1e-12,
+            "{}",
+            c.measured_ah
+        );
+        assert_eq!(r.quality.gaps, 0);
+        // The mean current is over the 140 s current flowed.
+        assert!(
+            (c.mean_current_a - 1.0).abs() < 1e-12,
+            "{}",
+            c.mean_current_a
+        );
+        assert!((c.duration_s - 140.0).abs() < 1e-9);
+        assert!((r.steps[0].down_s - 60.0).abs() < 1e-9);
     }
 }

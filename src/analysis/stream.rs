@@ -10,7 +10,7 @@
 
 use super::correct::{self, CapacityTest, CorrectionPolicy};
 use super::curves::{self, ChargeGrid};
-use super::integrate::Integrator;
+use super::integrate::{spans_any, Integrator, Interruption};
 use super::pulse::{self, is_jump, PulseTracker};
 use super::resistance::{two_level_ohm, ResistanceReading};
 use super::{
@@ -94,6 +94,18 @@ struct StepAcc {
     ah_since_full_at_start: Option<f64>,
     /// (t, I) of a drain step, for its second-half mean.
     drain: Option<Vec<(f64, f64)>>,
+    /// Run time inside the step while the run was down (resumed), s.
+    down_s: f64,
+}
+
+impl StepAcc {
+    /// The time the step ran: its span less the time the run was down.
+    fn active_s(&self) -> f64 {
+        match (self.first, self.last) {
+            (Some(f), Some(l)) if l.t_s > f.t_s => (l.t_s - f.t_s - self.down_s).max(0.0),
+            _ => 0.0,
+        }
+    }
 }
 
 impl StepAcc {
@@ -114,6 +126,7 @@ impl StepAcc {
             grid,
             ah_since_full_at_start: ah_since_full,
             drain: None,
+            down_s: 0.0,
         }
     }
 
@@ -149,6 +162,38 @@ impl StepAcc {
 /// Most points kept of a drain step (a week at 1 s).
 const MAX_DRAIN_POINTS: usize = 604_800;
 
+use super::FULL_START_TOLERANCE;
+
+/// What preceded a capacity step.
+struct StartState {
+    from_full_charge: bool,
+    preceded_by: String,
+}
+
+impl StartState {
+    fn of(ah_since_full: Option<f64>, full_step: Option<u32>, rated_ah: f64) -> StartState {
+        let of_step = full_step
+            .map(|k| format!(" of step {k}"))
+            .unwrap_or_default();
+        match ah_since_full {
+            None => StartState {
+                from_full_charge: false,
+                preceded_by: "no full charge before it in the log: the state of charge it started from is unknown".into(),
+            },
+            Some(q) if q.abs() <= FULL_START_TOLERANCE * rated_ah => StartState {
+                from_full_charge: true,
+                preceded_by: format!("the full charge{of_step}"),
+            },
+            Some(q) => StartState {
+                from_full_charge: false,
+                preceded_by: format!(
+                    "{q:.3} Ah had been drawn since the full charge{of_step}"
+                ),
+            },
+        }
+    }
+}
+
 /// Figures of one step, merged over its stretches.
 #[derive(Debug, Clone)]
 struct StepDone {
@@ -161,6 +206,8 @@ struct StepDone {
     tmax: Option<f64>,
     stretches: usize,
     two_level: Option<ResistanceReading>,
+    /// Run time inside the step while the run was down, s.
+    down_s: f64,
 }
 
 /// Curves kept for a candidate step.
@@ -169,6 +216,9 @@ struct Kept {
     step: u32,
     grid: ChargeGrid,
     mean_current_a: f64,
+    /// Charge drawn since the last full charge when the step began, Ah
+    /// (None: no full charge before it in the log).
+    ah_since_full_at_start: Option<f64>,
 }
 
 /// The streaming analyzer.
@@ -195,11 +245,13 @@ pub struct Analyzer<'a> {
     warnings: Vec<String>,
     cycle: u32,
     seen_discharge: bool,
+    /// The step of the last full charge.
+    full_step: Option<u32>,
     /// Charge delivered from the last full charge to a discharge cutoff.
     full_to_empty_ah: Option<f64>,
     /// Run times where the log resumes after an interruption: nothing is
     /// integrated across them (no current flowed while the run was down).
-    breaks: Vec<f64>,
+    breaks: Vec<Interruption>,
     /// Points of the drain step being read, kept across its stretches.
     drain_points: Option<(u32, Vec<(f64, f64)>)>,
 }
@@ -238,14 +290,14 @@ impl<'a> Analyzer<'a> {
             cycle: 0,
             seen_discharge: false,
             full_to_empty_ah: None,
+            full_step: None,
             breaks: Vec::new(),
             drain_points: None,
         }
     }
 
     /// Run times at which the log resumes after an interruption.
-    pub fn set_breaks(&mut self, mut breaks: Vec<f64>) {
-        breaks.sort_by(f64::total_cmp);
+    pub fn set_breaks(&mut self, breaks: Vec<Interruption>) {
         self.breaks = breaks;
     }
 
@@ -284,25 +336,38 @@ impl<'a> Analyzer<'a> {
         self.typical
     }
 
+    /// Count a row left out because it repeats the time of the row before
+    /// with other values (a foreign log whose steps are found from the
+    /// current: such a row would start a step of no duration).
+    pub fn skip_repeated_time(&mut self) {
+        self.quality.rows += 1;
+        self.quality.repeated_timestamps += 1;
+        self.quality.repeated_dropped += 1;
+    }
+
     /// Add the next sample of the log.
     pub fn push(&mut self, s: &Sample) {
         self.quality.rows += 1;
-        let mut resumed = false;
+        let mut resumed = None;
         if let Some(p) = self.prev {
             let dt = s.t_s - p.t_s;
             if dt < 0.0 {
                 self.quality.out_of_order_dropped += 1;
                 return;
             }
-            resumed = self.breaks.iter().any(|b| p.t_s < *b && *b <= s.t_s);
+            resumed = spans_any(&self.breaks, p.t_s, s.t_s).then_some(dt);
         }
-        if resumed {
-            // A resumed run: no gap, no charge across the interruption.
+        if let Some(down) = resumed {
+            // A resumed run: no gap, no charge across the interruption,
+            // and the time it was down is no time the step ran.
             self.n_intervals = 0;
             self.typical = None;
             if let Some(c) = self.cur.as_mut() {
                 c.g.break_segment();
                 c.grid.break_segment();
+                if c.step == s.step {
+                    c.down_s += down;
+                }
             }
             self.pulse.break_segment();
             self.prev = None;
@@ -376,10 +441,7 @@ impl<'a> Analyzer<'a> {
         if let Some(i) = self.infos.get(&step) {
             return i.kind.clone();
         }
-        let span = match (acc.first, acc.last) {
-            (Some(f), Some(l)) if l.t_s > f.t_s => l.t_s - f.t_s,
-            _ => 0.0,
-        };
+        let span = acc.active_s();
         let mean = if span > 0.0 {
             acc.g.ah * 3600.0 / span
         } else {
@@ -462,11 +524,14 @@ impl<'a> Analyzer<'a> {
             };
             if full {
                 self.ah_since_full = Some(0.0);
+                self.full_step = Some(step);
             }
         }
-        let mean_current = match (acc.first, acc.last) {
-            (Some(f), Some(l)) if l.t_s > f.t_s => acc.g.ah * 3600.0 / (l.t_s - f.t_s),
-            _ => 0.0,
+        let active = acc.active_s();
+        let mean_current = if active > 0.0 {
+            acc.g.ah * 3600.0 / active
+        } else {
+            0.0
         };
         if kind == "discharge"
             && info.as_ref().and_then(|i| i.end_kind.as_deref()) == Some("voltage_below")
@@ -488,6 +553,7 @@ impl<'a> Analyzer<'a> {
         let kept = Kept {
             step,
             grid,
+            ah_since_full_at_start: acc.ah_since_full_at_start,
             mean_current_a: mean_current,
         };
         if kind == "charge" && acc.g.ah_in > 0.0 {
@@ -521,6 +587,7 @@ impl<'a> Analyzer<'a> {
                     (a, b) => a.or(b),
                 };
                 d.acc_last = acc.last;
+                d.down_s += acc.down_s;
             }
             None => {
                 self.done_order.push(step);
@@ -536,6 +603,7 @@ impl<'a> Analyzer<'a> {
                         tmax: acc.tmax,
                         stretches: 1,
                         two_level,
+                        down_s: acc.down_s,
                     },
                 );
             }
@@ -594,7 +662,7 @@ impl<'a> Analyzer<'a> {
                 }
             }
         }
-        let cycles = cycles_of(&summaries, &mut warnings);
+        let cycles = cycles_of(&summaries, self.opts.imported, &mut warnings);
         // Capacity.
         let mut capacity = None;
         let mut curves_summary = None;
@@ -636,6 +704,17 @@ impl<'a> Analyzer<'a> {
                     } else {
                         0.0
                     };
+                    let start = StartState::of(
+                        kept.ah_since_full_at_start,
+                        self.full_step,
+                        pack.rated_capacity_ah,
+                    );
+                    if !start.from_full_charge {
+                        warnings.push(format!(
+                            "the capacity step {} did not start from a full charge ({}): its figure is what the pack gave from where it was, not its capacity; no state of health, grade or new nominal is taken from it",
+                            kept.step, start.preceded_by
+                        ));
+                    }
                     let rated_rate = pack
                         .rated_rate_c
                         .unwrap_or_else(|| pack.chemistry.default_rated_rate_c());
@@ -673,8 +752,10 @@ impl<'a> Analyzer<'a> {
                         initial_temperature_c: t0,
                         soh_measured_pct: soh_pct(s.charge_out_ah, pack.rated_capacity_ah),
                         ieee450_percent: ieee450,
+                        from_full_charge: start.from_full_charge,
+                        preceded_by: start.preceded_by.clone(),
                     };
-                    recalibration = Some(Recalibration {
+                    recalibration = start.from_full_charge.then(|| Recalibration {
                         full_charge_capacity_ah: corrected,
                         suggested_nominal_ah: (corrected * 1000.0).round() / 1000.0,
                         measured_ah: s.charge_out_ah,
@@ -759,6 +840,12 @@ impl<'a> Analyzer<'a> {
             warnings.push(format!(
                 "{} duplicated row(s) were left out",
                 quality.duplicates_dropped
+            ));
+        }
+        if quality.repeated_dropped > 0 {
+            warnings.push(format!(
+                "{} row(s) repeated the time of the row before with other values and were left out (the first row at each time is kept)",
+                quality.repeated_dropped
             ));
         }
         if quality.out_of_order_dropped > 0 {
@@ -900,7 +987,9 @@ fn step_summary(info: &StepInfo, d: Option<&StepDone>) -> StepSummary {
     let last = d.and_then(|d| d.acc_last);
     let start = first.map(|s| s.t_s).unwrap_or(0.0);
     let end = last.map(|s| s.t_s).unwrap_or(start);
-    let duration = end - start;
+    // The time the step ran: current flowed only while the run was up.
+    let down = d.map(|d| d.down_s).unwrap_or(0.0);
+    let duration = (end - start - down).max(0.0);
     let mean_current = (duration > 0.0).then(|| g.ah * 3600.0 / duration);
     let (vmin, vmax) = d.map(|d| (d.vmin, d.vmax)).unwrap_or((f64::NAN, f64::NAN));
     StepSummary {
@@ -912,6 +1001,7 @@ fn step_summary(info: &StepInfo, d: Option<&StepDone>) -> StepSummary {
         samples: d.map(|d| d.n).unwrap_or(0),
         start_s: start,
         duration_s: duration,
+        down_s: down,
         charge_ah: g.ah,
         energy_wh: g.wh,
         charge_in_ah: g.ah_in,
@@ -930,8 +1020,26 @@ fn step_summary(info: &StepInfo, d: Option<&StepDone>) -> StepSummary {
 }
 
 /// Cycles: charge and discharge steps; pulse steps count both ways.
-fn cycles_of(summaries: &[StepSummary], warnings: &mut Vec<String>) -> Vec<CycleSummary> {
+/// Whether a step of our own log ran to one of its ends (a foreign log's
+/// steps are taken as they are).
+fn finished(s: &StepSummary, imported: bool) -> bool {
+    imported
+        || !matches!(
+            s.end_kind.as_deref(),
+            None | Some("aborted") | Some("interrupted")
+        )
+}
+
+fn cycles_of(
+    summaries: &[StepSummary],
+    imported: bool,
+    warnings: &mut Vec<String>,
+) -> Vec<CycleSummary> {
     let mut cycles: Vec<CycleSummary> = Vec::new();
+    // Cycles with a charge or discharge step that did not finish, and
+    // cycles with a finished discharge.
+    let mut unfinished: Vec<u32> = Vec::new();
+    let mut discharged: Vec<u32> = Vec::new();
     for s in summaries {
         if !matches!(s.kind.as_str(), "charge" | "discharge") {
             continue;
@@ -952,13 +1060,20 @@ fn cycles_of(summaries: &[StepSummary], warnings: &mut Vec<String>) -> Vec<Cycle
                 &mut cycles[n]
             }
         };
+        if !finished(s, imported) {
+            unfinished.push(s.cycle);
+        } else if s.kind == "discharge" {
+            discharged.push(s.cycle);
+        }
         c.charge_ah += s.charge_in_ah;
         c.discharge_ah += s.charge_out_ah;
         c.charge_wh += s.energy_in_wh;
         c.discharge_wh += s.energy_out_wh;
     }
     for c in &mut cycles {
-        if c.charge_ah > 0.0 && c.discharge_ah > 0.0 {
+        // A cycle that never finished its discharge has no efficiency.
+        let complete = discharged.contains(&c.cycle) && !unfinished.contains(&c.cycle);
+        if complete && c.charge_ah > 0.0 && c.discharge_ah > 0.0 {
             let ce = c.discharge_ah / c.charge_ah * 100.0;
             c.coulombic_efficiency_pct = Some(ce);
             c.energy_efficiency_pct =

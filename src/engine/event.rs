@@ -17,6 +17,8 @@ pub enum EndKind {
     TemperatureAbove,
     Settled,
     PeakDrop,
+    /// The pack's temperature settled (`dT/dt <`).
+    TemperatureSettled,
     /// A pulse step's levels are done.
     LevelsDone,
     /// The run stopped on a safety limit or instrument fault in this step.

@@ -9,6 +9,12 @@ use std::collections::VecDeque;
 
 /// Window of the least-squares dV/dt fit for `dv/dt <` conditions, s.
 pub const SETTLE_WINDOW_S: f64 = 300.0;
+/// Window of the least-squares dT/dt fit for `dT/dt <` conditions, s: a
+/// pack's temperature moves slowly and its sensor reads in tenths of a
+/// kelvin, so the window is long (common practice).
+pub const THERMAL_WINDOW_S: f64 = 1800.0;
+/// Temperature points are kept at most this often for the dT/dt fit, s.
+const THERMAL_EVERY_S: f64 = 10.0;
 /// Hold-off before `peak_drop >` is armed, s (common practice for the
 /// negative-delta-V end of a NiMH charge: 1 to 15 min).
 pub const PEAK_DROP_HOLDOFF_S: f64 = 300.0;
@@ -17,6 +23,23 @@ pub const PEAK_DROP_AVERAGE: usize = 5;
 /// A charge step counts as holding its voltage (taper armed) at this
 /// fraction of the voltage limit.
 pub const TAPER_ARM_FRACTION: f64 = 0.98;
+
+/// Least-squares |slope| of (t, y) points spanning a full window.
+fn slope_over(points: &VecDeque<(f64, f64)>, window_s: f64) -> Option<f64> {
+    let (first, last) = (points.front()?, points.back()?);
+    if last.0 - first.0 < window_s * 0.999 || points.len() < 3 {
+        return None;
+    }
+    let n = points.len() as f64;
+    let mt = points.iter().map(|p| p.0).sum::<f64>() / n;
+    let mv = points.iter().map(|p| p.1).sum::<f64>() / n;
+    let (mut num, mut den) = (0.0, 0.0);
+    for (t, v) in points {
+        num += (t - mt) * (v - mv);
+        den += (t - mt) * (t - mt);
+    }
+    (den > 0.0).then(|| (num / den).abs())
+}
 
 /// State of one running step.
 #[derive(Debug, Clone)]
@@ -27,6 +50,7 @@ pub struct StepTracker {
     peak_avg: f64,
     recent: VecDeque<f64>,
     window: VecDeque<(f64, f64)>,
+    thermal: VecDeque<(f64, f64)>,
 }
 
 impl StepTracker {
@@ -38,6 +62,7 @@ impl StepTracker {
             peak_avg: f64::MIN,
             recent: VecDeque::new(),
             window: VecDeque::new(),
+            thermal: VecDeque::new(),
         }
     }
 
@@ -64,6 +89,22 @@ impl StepTracker {
         {
             self.window.pop_front();
         }
+        if let Some(temp) = s.temperature_c {
+            if self
+                .thermal
+                .back()
+                .is_none_or(|(t, _)| s.t_s - t >= THERMAL_EVERY_S)
+            {
+                self.thermal.push_back((s.t_s, temp));
+                while self
+                    .thermal
+                    .front()
+                    .is_some_and(|(t, _)| s.t_s - t > THERMAL_WINDOW_S)
+                {
+                    self.thermal.pop_front();
+                }
+            }
+        }
     }
 
     fn moving_average(&self) -> Option<f64> {
@@ -73,19 +114,12 @@ impl StepTracker {
 
     /// Least-squares |dV/dt| over the settling window, once it is full.
     pub fn settle_rate(&self) -> Option<f64> {
-        let (first, last) = (self.window.front()?, self.window.back()?);
-        if last.0 - first.0 < SETTLE_WINDOW_S * 0.999 || self.window.len() < 3 {
-            return None;
-        }
-        let n = self.window.len() as f64;
-        let mt = self.window.iter().map(|p| p.0).sum::<f64>() / n;
-        let mv = self.window.iter().map(|p| p.1).sum::<f64>() / n;
-        let (mut num, mut den) = (0.0, 0.0);
-        for (t, v) in &self.window {
-            num += (t - mt) * (v - mv);
-            den += (t - mt) * (t - mt);
-        }
-        (den > 0.0).then(|| (num / den).abs())
+        slope_over(&self.window, SETTLE_WINDOW_S)
+    }
+
+    /// Least-squares |dT/dt| over the thermal window, once it is full.
+    pub fn thermal_rate(&self) -> Option<f64> {
+        slope_over(&self.thermal, THERMAL_WINDOW_S)
     }
 
     /// The first end condition reached, if any.
@@ -114,6 +148,9 @@ impl StepTracker {
                 EndCondition::Settled { volts_per_s } => {
                     self.settle_rate().is_some_and(|r| r <= volts_per_s)
                 }
+                EndCondition::TemperatureSettled { kelvin_per_s } => {
+                    self.thermal_rate().is_some_and(|r| r <= kelvin_per_s)
+                }
                 EndCondition::PeakDrop { voltage_v } => {
                     el >= PEAK_DROP_HOLDOFF_S
                         && self
@@ -132,6 +169,7 @@ impl StepTracker {
                     EndCondition::TemperatureAbove { .. } => EndKind::TemperatureAbove,
                     EndCondition::Settled { .. } => EndKind::Settled,
                     EndCondition::PeakDrop { .. } => EndKind::PeakDrop,
+                    EndCondition::TemperatureSettled { .. } => EndKind::TemperatureSettled,
                 };
                 return Some((kind, *c));
             }

@@ -30,6 +30,10 @@ pub struct FleetRow {
     pub eol_date: Option<NaiveDate>,
     pub accelerating: bool,
     pub grade: Option<String>,
+    /// The latest tests are under the end-of-life threshold, since then.
+    pub below_eol_since: Option<NaiveDate>,
+    /// The projected end-of-life date is before today.
+    pub eol_date_past: bool,
 }
 
 /// The fleet at a date.
@@ -67,7 +71,7 @@ pub fn row(h: &PackHistory, fade: &FadeAnalysis, today: NaiveDate, interval_days
         last_test: last.map(|p| p.date),
         days_since_test: days,
         overdue: days.is_none_or(|d| d > interval_days),
-        cycles: last.map(|p| p.cycles),
+        cycles: last.map(|p| p.cycles).filter(|c| c.is_finite()),
         soh_pct: last.map(|p| p.soh_pct),
         capacity_ah: last.map(|p| p.capacity_ah),
         resistance_mohm: h.points.iter().rev().find_map(|p| p.resistance_mohm),
@@ -78,6 +82,8 @@ pub fn row(h: &PackHistory, fade: &FadeAnalysis, today: NaiveDate, interval_days
         eol_date: fade.eol_date.as_ref().map(|p| p.date),
         accelerating: fade.accelerating.is_some(),
         grade: last.and_then(|p| p.grade.clone()),
+        below_eol_since: fade.below_eol_since,
+        eol_date_past: fade.eol_date.as_ref().is_some_and(|p| p.date < today),
     }
 }
 
@@ -135,6 +141,8 @@ pub fn to_csv(f: &Fleet) -> Result<String, csv::Error> {
         "eol_date",
         "accelerating",
         "grade",
+        "below_eol_since",
+        "eol_date_past",
     ])?;
     let o = |v: Option<f64>, d: usize| v.map(|x| format!("{x:.d$}")).unwrap_or_default();
     for r in &f.rows {
@@ -159,6 +167,8 @@ pub fn to_csv(f: &Fleet) -> Result<String, csv::Error> {
             r.eol_date.map(|d| d.to_string()).unwrap_or_default(),
             r.accelerating.to_string(),
             r.grade.clone().unwrap_or_default(),
+            r.below_eol_since.map(|d| d.to_string()).unwrap_or_default(),
+            r.eol_date_past.to_string(),
         ])?;
     }
     let bytes = w.into_inner().map_err(|e| e.into_error())?;

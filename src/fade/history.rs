@@ -6,6 +6,8 @@
 //! Equivalent full cycles: the count recorded with a run (from the pack's
 //! own counter or the operator) when there is one; otherwise the last known
 //! count plus the discharge Ah packbench measured since, over the rated Ah.
+//! A history line with an empty cycle cell has no count (NaN): it is left
+//! out of the fit against cycles and kept in the fits against time.
 
 use crate::location::{LocatedError, Location};
 use crate::pack::PackSpec;
@@ -19,12 +21,12 @@ pub const HISTORY_CSV: &str = "history.csv";
 
 #[derive(Debug, thiserror::Error)]
 pub enum HistoryError {
-    #[error("{path}: {source}")]
+    #[error("{path}: {error}")]
     Io {
         path: PathBuf,
-        source: std::io::Error,
+        error: std::io::Error,
     },
-    #[error("{0}")]
+    #[error(transparent)]
     Bad(#[from] LocatedError),
     #[error("{0}")]
     Pack(String),
@@ -85,7 +87,7 @@ impl PackHistory {
 fn io(path: &Path) -> impl FnOnce(std::io::Error) -> HistoryError + '_ {
     move |source| HistoryError::Io {
         path: path.to_path_buf(),
-        source,
+        error: source,
     }
 }
 
@@ -253,15 +255,20 @@ pub fn load(
     let mut run_points = Vec::new();
     for (dir, s) in &runs {
         let date = parse_date(&s.test_date).unwrap_or_default();
-        let usable = s.status == "completed" && s.capacity.is_some();
+        let from_full = s.capacity.as_ref().is_some_and(|c| c.from_full_charge);
+        let usable = s.status == "completed" && from_full;
         if !usable {
             left_out.push(LeftOut {
                 run_id: s.run_id.clone(),
                 status: s.status.clone(),
-                reason: s
-                    .stop_reason
-                    .clone()
-                    .unwrap_or_else(|| "no capacity measured".into()),
+                reason: match (&s.stop_reason, &s.capacity) {
+                    (Some(r), _) => r.clone(),
+                    (None, Some(c)) if !c.from_full_charge => format!(
+                        "the capacity step did not start from a full charge ({})",
+                        c.preceded_by
+                    ),
+                    _ => "no capacity measured".into(),
+                },
             });
         }
         run_points.push((date, s, dir.clone(), usable));
@@ -274,13 +281,12 @@ pub fn load(
     csv_points.sort_by_key(|p| p.date);
     let mut csv_iter = csv_points.into_iter().peekable();
     for (date, s, dir, usable) in run_points {
+        // A history line's empty cycle cell stays unknown (NaN): packbench
+        // measured nothing there to count from.
         while let Some(p) = csv_iter.next_if(|p| p.date <= date) {
-            let mut p = p;
             if p.cycles_given {
                 known_cycles = Some(p.cycles);
                 counted_since = 0.0;
-            } else {
-                p.cycles = known_cycles.unwrap_or(0.0) + counted_since;
             }
             merged.push(p);
         }
@@ -318,15 +324,7 @@ pub fn load(
         }
         counted_since += discharged_ah(s) / spec.rated_capacity_ah;
     }
-    for mut p in csv_iter {
-        if !p.cycles_given {
-            p.cycles = known_cycles.unwrap_or(0.0) + counted_since;
-        } else {
-            known_cycles = Some(p.cycles);
-            counted_since = 0.0;
-        }
-        merged.push(p);
-    }
+    merged.extend(csv_iter);
     Ok(PackHistory {
         pack_id: pack_id.to_string(),
         spec,

@@ -86,7 +86,41 @@ pub struct FadeAnalysis {
     pub accelerating: Option<Acceleration>,
     /// Resistance against cycles, mΩ per 100 cycles, when there are readings.
     pub resistance_fit: Option<LinearFit>,
+    /// The pack's latest tests are under the end-of-life threshold: since
+    /// the first of them.
+    pub below_eol_since: Option<NaiveDate>,
+    /// The projected end-of-life date is already past (set by
+    /// [`FadeAnalysis::flag_against`]).
+    #[serde(default)]
+    pub eol_date_past: bool,
     pub notes: Vec<String>,
+}
+
+impl FadeAnalysis {
+    /// Flag a projected end-of-life date before `today`.
+    pub fn flag_against(&mut self, today: NaiveDate) {
+        if let Some(p) = &self.eol_date {
+            if p.date < today {
+                self.eol_date_past = true;
+                if self.below_eol_since.is_none() {
+                    self.notes.push(format!(
+                        "the projected end-of-life date {} is before today ({today}): the pack is likely under {} % now; test it",
+                        p.date, self.threshold_pct
+                    ));
+                }
+            }
+        }
+    }
+}
+
+/// The first date of the trailing run of tests under the threshold.
+fn below_since(h: &PackHistory, threshold_pct: f64) -> Option<NaiveDate> {
+    h.points
+        .iter()
+        .rev()
+        .take_while(|p| p.soh_pct < threshold_pct)
+        .last()
+        .map(|p| p.date)
 }
 
 fn days_between(a: NaiveDate, b: NaiveDate) -> f64 {
@@ -127,7 +161,10 @@ pub fn acceleration(x: &[f64], y: &[f64]) -> Option<Acceleration> {
 /// Fit the models and project end of life (SOH reaching `threshold_pct`).
 pub fn analyze(h: &PackHistory, threshold_pct: f64) -> FadeAnalysis {
     let mut notes = Vec::new();
-    let pts: Vec<_> = h.points.iter().filter(|p| p.cycles.is_finite()).collect();
+    // Every point has a date; a point whose cycle count is unknown (an
+    // empty cell of a history file) is left out of the cycle fit only.
+    let pts: Vec<_> = h.points.iter().collect();
+    let cpts: Vec<_> = h.points.iter().filter(|p| p.cycles.is_finite()).collect();
     let mut out = FadeAnalysis {
         pack_id: h.pack_id.clone(),
         threshold_pct,
@@ -137,8 +174,16 @@ pub fn analyze(h: &PackHistory, threshold_pct: f64) -> FadeAnalysis {
         eol_date: None,
         accelerating: None,
         resistance_fit: None,
+        below_eol_since: below_since(h, threshold_pct),
+        eol_date_past: false,
         notes: Vec::new(),
     };
+    if let (Some(since), Some(last)) = (out.below_eol_since, h.points.last()) {
+        notes.push(format!(
+            "below end of life ({threshold_pct} % of rated) since {since}: {:.1} % at the latest test ({})",
+            last.soh_pct, last.date
+        ));
+    }
     if pts.len() < MIN_POINTS {
         notes.push(format!(
             "{} measurement(s): at least {MIN_POINTS} are needed to fit a fade model; nothing is projected",
@@ -147,8 +192,15 @@ pub fn analyze(h: &PackHistory, threshold_pct: f64) -> FadeAnalysis {
         out.notes = notes;
         return out;
     }
+    if cpts.len() < pts.len() {
+        notes.push(format!(
+            "{} measurement(s) without a cycle count are left out of the fit against cycles (kept in the fits against time)",
+            pts.len() - cpts.len()
+        ));
+    }
     let first_date = pts[0].date;
-    let cycles: Vec<f64> = pts.iter().map(|p| p.cycles).collect();
+    let cycles: Vec<f64> = cpts.iter().map(|p| p.cycles).collect();
+    let soh_c: Vec<f64> = cpts.iter().map(|p| p.soh_pct).collect();
     let days: Vec<f64> = pts
         .iter()
         .map(|p| days_between(first_date, p.date))
@@ -157,12 +209,20 @@ pub fn analyze(h: &PackHistory, threshold_pct: f64) -> FadeAnalysis {
     let soh: Vec<f64> = pts.iter().map(|p| p.soh_pct).collect();
     let mut cycle_fit = None;
     let mut time_fit = None;
-    for (kind, x) in [
-        (ModelKind::LinearCycles, &cycles),
-        (ModelKind::LinearTime, &days),
-        (ModelKind::SqrtTime, &sqrt_days),
+    for (kind, x, y) in [
+        (ModelKind::LinearCycles, &cycles, &soh_c),
+        (ModelKind::LinearTime, &days, &soh),
+        (ModelKind::SqrtTime, &sqrt_days, &soh),
     ] {
-        match LinearFit::fit(x, &soh) {
+        if x.len() < MIN_POINTS {
+            notes.push(format!(
+                "no fit {}: {} measurement(s) with a value, at least {MIN_POINTS} needed",
+                kind.describe(),
+                x.len()
+            ));
+            continue;
+        }
+        match LinearFit::fit(x, y) {
             Some(fit) => {
                 let (per, unit) = match kind {
                     ModelKind::LinearCycles => (fit.slope * 100.0, "% of rated per 100 cycles"),
@@ -191,22 +251,25 @@ pub fn analyze(h: &PackHistory, threshold_pct: f64) -> FadeAnalysis {
             )),
         }
     }
-    out.accelerating = acceleration(&cycles, &soh);
+    out.accelerating = (cycles.len() >= MIN_POINTS)
+        .then(|| acceleration(&cycles, &soh_c))
+        .flatten();
     // Projection: on the recent half when the fade accelerates (a straight
     // line through a knee would promise too much life).
     let (basis, cfit, tfit) = if out.accelerating.is_some() {
         let mid = cycles.len() / 2;
+        let mid_d = days.len() / 2;
         notes.push(
             "fade is accelerating: the projections use the recent half of the history".into(),
         );
         (
-            format!("recent {} measurements", cycles.len() - mid),
-            LinearFit::fit(&cycles[mid..], &soh[mid..]),
-            LinearFit::fit(&days[mid..], &soh[mid..]),
+            format!("recent {} measurements", days.len() - mid_d),
+            LinearFit::fit(&cycles[mid..], &soh_c[mid..]),
+            LinearFit::fit(&days[mid_d..], &soh[mid_d..]),
         )
     } else {
         (
-            format!("all {} measurements", cycles.len()),
+            format!("all {} measurements", days.len()),
             cycle_fit,
             time_fit,
         )
@@ -241,7 +304,7 @@ pub fn analyze(h: &PackHistory, threshold_pct: f64) -> FadeAnalysis {
             }
         }
     }
-    let rpts: Vec<(f64, f64)> = pts
+    let rpts: Vec<(f64, f64)> = cpts
         .iter()
         .filter_map(|p| p.resistance_mohm.map(|r| (p.cycles, r)))
         .collect();

@@ -110,6 +110,11 @@ pub enum EndCondition {
     PeakDrop {
         voltage_v: f64,
     },
+    /// |dT/dt| over the thermal window at or below the rate: the pack has
+    /// stopped warming or cooling (it is at the room's temperature).
+    TemperatureSettled {
+        kelvin_per_s: f64,
+    },
 }
 
 impl fmt::Display for EndCondition {
@@ -129,6 +134,9 @@ impl fmt::Display for EndCondition {
             }
             EndCondition::PeakDrop { voltage_v } => {
                 write!(f, "peak_drop > {:.1} mV", voltage_v * 1000.0)
+            }
+            EndCondition::TemperatureSettled { kelvin_per_s } => {
+                write!(f, "dT/dt < {:.2} K/h", kelvin_per_s * 3600.0)
             }
         }
     }

@@ -288,6 +288,15 @@ fn parse_end(cx: &mut Ctx, t: &Text, pack: &PackSpec) -> Option<EndCondition> {
                 )?,
             }
         }
+        // `dT/dt` (lowercased here).
+        "dt/dt" => {
+            if !below {
+                return wrong_op(cx, "<");
+            }
+            EndCondition::TemperatureSettled {
+                kelvin_per_s: parsed(cx, units::temperature_rate(value).map(f64::abs))?,
+            }
+        }
         "peak_drop" => {
             if below {
                 return wrong_op(cx, ">");
@@ -300,7 +309,7 @@ fn parse_end(cx: &mut Ctx, t: &Text, pack: &PackSpec) -> Option<EndCondition> {
             cx.err(
                 &t.span(),
                 format!(
-                    "unknown end condition '{other}'; expected one of voltage, current, time, charge, energy, temperature, dv/dt, peak_drop"
+                    "unknown end condition '{other}'; expected one of voltage, current, time, charge, energy, temperature, dv/dt, dT/dt, peak_drop"
                 ),
             );
             return None;
@@ -315,6 +324,7 @@ fn reachable(kind: &StepKind, c: &EndCondition, env: &Envelope, pack: &PackSpec)
     match (kind, c) {
         (_, E::Time { seconds }) => *seconds > 0.0,
         (StepKind::Rest, E::Settled { volts_per_s }) => *volts_per_s > 0.0,
+        (StepKind::Rest, E::TemperatureSettled { kelvin_per_s }) => *kelvin_per_s > 0.0,
         (StepKind::Rest, _) => false,
         (StepKind::Drain { .. }, _) => false,
         (_, E::TemperatureAbove { .. }) => false,
@@ -337,7 +347,7 @@ fn reachable(kind: &StepKind, c: &EndCondition, env: &Envelope, pack: &PackSpec)
         (StepKind::Charge { .. }, E::PeakDrop { voltage_v }) => {
             *voltage_v > 0.0 && pack.chemistry == crate::pack::Chemistry::Nimh
         }
-        (StepKind::Charge { .. }, E::Settled { .. }) => false,
+        (StepKind::Charge { .. }, E::Settled { .. } | E::TemperatureSettled { .. }) => false,
         (StepKind::Charge { .. }, E::VoltageBelow { .. }) => false,
         (StepKind::Discharge { .. }, E::VoltageBelow { voltage_v }) => {
             *voltage_v > env.voltage_min_v
@@ -696,7 +706,7 @@ fn build_step(
             let hint = match kind {
                 StepKind::Charge { .. } => "a charge step can end on current < (taper below its current), voltage > (below its voltage limit), charge >, energy >, peak_drop > (NiMH only) or time >",
                 StepKind::Discharge { .. } => "a discharge step can end on voltage < (above voltage_min), charge >, energy > or time >",
-                StepKind::Rest => "a rest can end on time > or dv/dt <",
+                StepKind::Rest => "a rest can end on time >, dv/dt < or dT/dt <",
                 StepKind::Drain { .. } => "a drain step ends on time > (it measures over a set time)",
                 StepKind::Pulse { .. } => "",
             };

@@ -84,7 +84,34 @@ fn grade_card(s: &Summary) -> String {
     let rows = [
         (
             "State of health",
-            s.capacity.as_ref().map(|c| format!("{:.1} %", c.soh_pct)),
+            s.capacity.as_ref().map(|c| {
+                if c.from_full_charge {
+                    format!("{:.1} %", c.soh_pct)
+                } else {
+                    "not measured: the discharge did not start from a full charge".into()
+                }
+            }),
+        ),
+        (
+            // The capacity the state of health is computed from, and how it
+            // was brought to rated conditions.
+            "At rated conditions",
+            s.capacity
+                .as_ref()
+                .filter(|c| c.corrected_ah > 0.0)
+                .map(|c| {
+                    let factors: Vec<String> = c
+                        .corrections
+                        .iter()
+                        .filter(|x| x.factor != 1.0)
+                        .map(|x| format!("{} ×{:.4} ({})", x.kind, x.factor, x.method))
+                        .collect();
+                    if factors.is_empty() {
+                        format!("{:.3} Ah (no correction)", c.corrected_ah)
+                    } else {
+                        format!("{:.3} Ah: {}", c.corrected_ah, factors.join(", "))
+                    }
+                }),
         ),
         (
             "Measured capacity",
@@ -708,6 +735,7 @@ pub fn pack_report(
                     )
                 })
             })
+            .filter(|(x, _)| x.is_finite())
             .collect();
         if rp.is_empty() {
             break;
@@ -781,10 +809,16 @@ pub fn pack_report(
     for p in &h.points {
         let _ = write!(
             b,
-            "<tr><td class=\"l\">{}</td><td>{:.0}{}</td><td>{:.3}</td><td>{:.2}</td><td>{}</td><td>{}</td><td class=\"l\">{}</td><td class=\"l\">{}</td></tr>",
+            "<tr><td class=\"l\">{}</td><td>{}{}</td><td>{:.3}</td><td>{:.2}</td><td>{}</td><td>{}</td><td class=\"l\">{}</td><td class=\"l\">{}</td></tr>",
             p.date,
-            p.cycles,
-            if p.cycles_given { "" } else { " (counted)" },
+            f(p.cycles.is_finite().then_some(p.cycles), 0),
+            if p.cycles_given {
+                ""
+            } else if p.cycles.is_finite() {
+                " (counted)"
+            } else {
+                " (unknown)"
+            },
             p.capacity_ah,
             p.soh_pct,
             f(p.resistance_mohm, 1),
@@ -827,10 +861,15 @@ pub fn fleet_report(fleet: &Fleet, histories: &[PackHistory], title: &str) -> St
     for r in &fleet.rows {
         let mut flags = Vec::new();
         if r.overdue {
-            flags.push("test overdue");
+            flags.push("test overdue".to_string());
         }
         if r.accelerating {
-            flags.push("fade accelerating");
+            flags.push("fade accelerating".to_string());
+        }
+        if let Some(d) = r.below_eol_since {
+            flags.push(format!("below end of life since {d}"));
+        } else if r.eol_date_past {
+            flags.push("projected end of life already past".to_string());
         }
         let _ = write!(
             b,

@@ -51,6 +51,18 @@ pub fn summary(s: &Summary) -> String {
                     "NOT to the cutoff (lower bound)"
                 }
             );
+            if !c.preceded_by.is_empty() {
+                let _ = writeln!(
+                    o,
+                    "  Started from:      {}{}",
+                    c.preceded_by,
+                    if c.from_full_charge {
+                        ""
+                    } else {
+                        " (NOT from a full charge: not the pack's capacity; not graded)"
+                    }
+                );
+            }
             if c.corrected_ah > 0.0 {
                 let _ = writeln!(
                     o,
@@ -207,10 +219,18 @@ pub fn fade(
     for p in &h.points {
         let _ = writeln!(
             o,
-            "  {}  {:>7.0}{} {:>10.3}  {:>6.2}  {:>15}  {:>5}  {}",
+            "  {}  {:>7}{} {:>10.3}  {:>6.2}  {:>15}  {:>5}  {}",
             p.date,
-            p.cycles,
-            if p.cycles_given { " " } else { "*" },
+            if p.cycles.is_finite() {
+                format!("{:.0}", p.cycles)
+            } else {
+                "-".into()
+            },
+            if p.cycles_given || !p.cycles.is_finite() {
+                " "
+            } else {
+                "*"
+            },
             p.capacity_ah,
             p.soh_pct,
             p.resistance_mohm
@@ -220,10 +240,19 @@ pub fn fade(
             p.source
         );
     }
-    if h.points.iter().any(|p| !p.cycles_given) {
+    if h.points
+        .iter()
+        .any(|p| !p.cycles_given && p.cycles.is_finite())
+    {
         let _ = writeln!(
             o,
             "  (* cycles counted from the discharge Ah packbench measured)"
+        );
+    }
+    if h.points.iter().any(|p| !p.cycles.is_finite()) {
+        let _ = writeln!(
+            o,
+            "  (- cycle count unknown: left out of the fit against cycles, kept in the fits against time)"
         );
     }
     for m in &fa.models {
@@ -312,10 +341,15 @@ pub fn fleet(f: &crate::fade::fleet::Fleet) -> String {
     for r in &f.rows {
         let mut flags = Vec::new();
         if r.overdue {
-            flags.push("OVERDUE");
+            flags.push("OVERDUE".to_string());
         }
         if r.accelerating {
-            flags.push("ACCELERATING");
+            flags.push("ACCELERATING".to_string());
+        }
+        if let Some(d) = r.below_eol_since {
+            flags.push(format!("BELOW-EOL-SINCE-{d}"));
+        } else if r.eol_date_past {
+            flags.push("EOL-DATE-PAST".to_string());
         }
         let _ =
             writeln!(

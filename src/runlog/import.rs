@@ -26,6 +26,15 @@ pub enum TimeUnit {
 }
 
 impl TimeUnit {
+    fn symbol(self) -> &'static str {
+        match self {
+            TimeUnit::Seconds => "s",
+            TimeUnit::Milliseconds => "ms",
+            TimeUnit::Minutes => "min",
+            TimeUnit::Hours => "h",
+        }
+    }
+
     fn factor(self) -> f64 {
         match self {
             TimeUnit::Seconds => 1.0,
@@ -157,7 +166,10 @@ fn norm(h: &str) -> String {
     h.trim().to_ascii_lowercase()
 }
 
-/// Recognise a column from common header spellings.
+/// Recognise a column from its header: a quantity's name with its SI unit
+/// in one of the generic forms `name_unit`, `name [unit]` or `name/unit`
+/// (ISO 80000-1 style), or the bare name; case is ignored. Anything else is
+/// named with `--columns`.
 fn guess(headers: &[String], role: &str) -> Option<usize> {
     let names: &[&str] = match role {
         "time" => &[
@@ -165,63 +177,71 @@ fn guess(headers: &[String], role: &str) -> Option<usize> {
             "time",
             "time_s",
             "time [s]",
-            "time (s)",
             "time/s",
-            "test_time",
-            "test time",
-            "elapsed",
             "elapsed_s",
-            "seconds",
             "timestamp",
             "datetime",
-            "date_time",
-            "time [h]",
-            "time_h",
-            "time [ms]",
             "time_ms",
+            "time [ms]",
+            "time/ms",
+            "time_min",
+            "time [min]",
+            "time/min",
+            "time_h",
+            "time [h]",
+            "time/h",
         ],
         "voltage" => &[
             "voltage_v",
             "voltage",
             "voltage [v]",
-            "voltage (v)",
             "voltage/v",
-            "v",
             "u",
             "u_v",
-            "volts",
-            "terminal voltage [v]",
-            "pack voltage",
+            "u [v]",
+            "u/v",
         ],
         "current" => &[
             "current_a",
             "current",
             "current [a]",
-            "current (a)",
             "current/a",
             "i",
             "i_a",
-            "amps",
-            "pack current",
+            "i [a]",
+            "i/a",
         ],
         "temperature" => &[
             "temperature_c",
+            "temperature_degc",
             "temperature",
             "temperature [degc]",
-            "temperature [c]",
-            "temperature (c)",
-            "temp",
-            "temp_c",
+            "temperature [°c]",
+            "temperature/degc",
+            "temperature/°c",
             "t_c",
-            "cell temperature",
         ],
-        "step" => &["step", "step_index", "step index", "step number", "step_no"],
-        "cycle" => &["cycle", "cycle_index", "cycle index", "cycle number"],
+        "step" => &["step"],
+        "cycle" => &["cycle"],
         _ => &[],
     };
     headers
         .iter()
         .position(|h| names.contains(&norm(h).as_str()))
+}
+
+/// The unit a time header names after `_`, in brackets or after `/`
+/// (`elapsed_min`, `Time [h]`, `time/ms`), if any.
+fn header_time_unit(h: &str) -> Option<TimeUnit> {
+    let n = norm(h);
+    let unit = if let Some(inner) = n.strip_suffix(']') {
+        inner.rsplit_once('[')?.1.trim()
+    } else if let Some((_, u)) = n.rsplit_once('/') {
+        u.trim()
+    } else {
+        n.rsplit_once('_')?.1
+    };
+    unit.parse().ok()
 }
 
 fn find(headers: &[String], name: &str) -> Option<usize> {
@@ -396,7 +416,7 @@ pub fn stream_log(
 ) -> Result<ReadReport, ReadError> {
     let io = |source: std::io::Error| ReadError::Io {
         path: path.to_path_buf(),
-        source,
+        error: source,
     };
     let bad = move |line: u64, column: usize, message: String| ReadError::Bad {
         path: PathBuf::from(path),
@@ -481,6 +501,27 @@ pub fn stream_log(
         step: want("step", &fmt.columns.step)?,
         cycle: if ours { guess(&headers, "cycle") } else { None },
     };
+    // A time header that names its unit (`time_min`, `time [h]`) is read
+    // in it: the default `--time-unit s` gives way, another unit clashes.
+    let fmt = &match header_time_unit(&headers[cols.time]) {
+        Some(u) if u != fmt.time_unit && fmt.time_unit != TimeUnit::Seconds => {
+            return Err(bad(
+                1,
+                cols.time + 1,
+                format!(
+                    "the time column '{}' is in {}, but --time-unit says {}",
+                    headers[cols.time],
+                    u.symbol(),
+                    fmt.time_unit.symbol()
+                ),
+            ))
+        }
+        Some(u) => LogFormat {
+            time_unit: u,
+            ..fmt.clone()
+        },
+        None => fmt.clone(),
+    };
     let mut report = ReadReport {
         ours,
         ..ReadReport::default()
@@ -540,6 +581,7 @@ pub fn stream_log(
             Err(e) => Err(e),
         }
     };
+    let nheaders = headers.len();
     let outcome = std::thread::scope(|scope| {
         let cols = &cols;
         let bad = &bad;
@@ -552,6 +594,13 @@ pub fn stream_log(
                 let n = file.read(&mut buf).map_err(io)?;
                 if n == 0 {
                     eof = true;
+                    // A foreign log's last line without its newline is
+                    // taken when it is whole: every column of the header.
+                    // (packbench ends every line it writes, so in its own
+                    // log such a line was cut by a crash and is left out.)
+                    if !ours && last_line_is_whole(&carry, nheaders) {
+                        carry.push(b'\n');
+                    }
                 } else {
                     carry.extend_from_slice(&buf[..n]);
                 }
@@ -691,6 +740,23 @@ pub fn stream_log(
     }
 }
 
+/// Whether what is left after the last newline is a whole row: not blank,
+/// with as many fields as the header.
+fn last_line_is_whole(rest: &[u8], nheaders: usize) -> bool {
+    let line = rest.strip_suffix(b"\r").unwrap_or(rest);
+    if line.iter().all(|b| b.is_ascii_whitespace()) {
+        return false;
+    }
+    let mut r = csv::ReaderBuilder::new()
+        .has_headers(false)
+        .flexible(true)
+        .from_reader(line);
+    let mut rec = csv::ByteRecord::new();
+    matches!(r.read_byte_record(&mut rec), Ok(true))
+        && rec.len() == nheaders
+        && rec.iter().all(|f| !trim(f).is_empty())
+}
+
 /// Lines of one chunk, their field spans, for the analysing thread.
 struct Batch {
     data: Vec<u8>,
@@ -754,6 +820,35 @@ mod tests {
         for t in ["", "-", ".", "1.2.3", "12V", "nan", "inf", "1e400"] {
             assert_eq!(number(t.as_bytes()), None, "{t}");
         }
+    }
+
+    #[test]
+    fn a_time_header_names_its_unit() {
+        assert_eq!(header_time_unit("elapsed_min"), Some(TimeUnit::Minutes));
+        assert_eq!(header_time_unit("Time [h]"), Some(TimeUnit::Hours));
+        assert_eq!(header_time_unit("time/ms"), Some(TimeUnit::Milliseconds));
+        assert_eq!(header_time_unit("t_s"), Some(TimeUnit::Seconds));
+        assert_eq!(header_time_unit("timestamp"), None);
+        assert_eq!(header_time_unit("date_time"), None);
+    }
+
+    #[test]
+    fn generic_headers_are_recognised_and_others_are_not() {
+        let h = |v: &[&str]| v.iter().map(|s| s.to_string()).collect::<Vec<_>>();
+        let si = h(&[
+            "Time [s]",
+            "Voltage [V]",
+            "Current [A]",
+            "Temperature [degC]",
+        ]);
+        assert_eq!(guess(&si, "time"), Some(0));
+        assert_eq!(guess(&si, "voltage"), Some(1));
+        assert_eq!(guess(&si, "current"), Some(2));
+        assert_eq!(guess(&si, "temperature"), Some(3));
+        // A layout of its own is named with --columns.
+        let own = h(&["elapsed_min", "pack_volts", "amps_out"]);
+        assert_eq!(guess(&own, "voltage"), None);
+        assert_eq!(guess(&own, "current"), None);
     }
 
     #[test]

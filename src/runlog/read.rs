@@ -10,10 +10,10 @@ use std::path::{Path, PathBuf};
 
 #[derive(Debug, thiserror::Error)]
 pub enum ReadError {
-    #[error("{path}: {source}")]
+    #[error("{path}: {error}")]
     Io {
         path: PathBuf,
-        source: std::io::Error,
+        error: std::io::Error,
     },
     #[error("{path}:{line}:{column}: {message}")]
     Bad {
@@ -40,7 +40,7 @@ fn field(rec: &csv::StringRecord, i: usize) -> &str {
 pub fn read_samples(path: &Path) -> Result<SampleLog, ReadError> {
     let bytes = std::fs::read(path).map_err(|source| ReadError::Io {
         path: path.to_path_buf(),
-        source,
+        error: source,
     })?;
     let mut log = SampleLog::default();
     // A crash can leave the last row without its newline: drop it.
@@ -132,7 +132,7 @@ pub fn read_samples(path: &Path) -> Result<SampleLog, ReadError> {
 pub fn read_events(path: &Path) -> Result<Vec<Event>, ReadError> {
     let text = std::fs::read_to_string(path).map_err(|source| ReadError::Io {
         path: path.to_path_buf(),
-        source,
+        error: source,
     })?;
     let complete = match text.rfind('\n') {
         Some(p) => &text[..=p],

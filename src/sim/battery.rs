@@ -1,7 +1,10 @@
 //! Equivalent-circuit pack model for the simulated bench: open-circuit
 //! voltage against state of charge per chemistry, series resistance, two RC
 //! pairs, a lumped thermal model, charge inefficiency near full (lead-acid,
-//! NiMH), and ageing knobs that lower capacity and raise resistance. One
+//! NiMH), a lead-acid surface charge that relaxes over hours after a charge
+//! and a lead-acid capacity that grows with temperature (IEC 60896-11's
+//! law, so the capacity factor holds at 20 °C), and ageing knobs that lower
+//! capacity and raise resistance. One
 //! cell-equivalent is modelled and multiplied by the series count. Explicit
 //! time steps, no I/O, no async.
 //!
@@ -201,6 +204,14 @@ impl CellParams {
     }
 }
 
+/// Time constant of a lead-acid pack's surface charge relaxing at rest, s:
+/// its voltage settles over hours after a charge (common practice: rest a
+/// lead-acid battery several hours before reading its open-circuit voltage).
+pub const SURFACE_REST_TAU_S: f64 = 3600.0;
+/// ... and under a discharge, which draws the surface charge off in a
+/// minute or two, s.
+pub const SURFACE_DISCHARGE_TAU_S: f64 = 60.0;
+
 /// Ageing and set-up knobs for a simulated pack.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct PackCondition {
@@ -240,6 +251,11 @@ pub struct PackModel {
     pub soc: f64,
     pub v1: f64,
     pub v2: f64,
+    /// The activation polarisation a lead-acid charge leaves behind
+    /// ("surface charge"), V per cell: while charging it is the present
+    /// polarisation; afterwards it relaxes over [`SURFACE_REST_TAU_S`] at
+    /// rest, and quickly under a discharge, which draws it off.
+    pub v_surface: f64,
     pub temperature_c: f64,
     pub ambient_c: f64,
     /// Extra heat from an injected fault, W (whole pack).
@@ -260,6 +276,7 @@ impl PackModel {
             soc: cond.initial_soc,
             v1: 0.0,
             v2: 0.0,
+            v_surface: 0.0,
             temperature_c: cond.ambient_c,
             ambient_c: cond.ambient_c,
             fault_heat_w: 0.0,
@@ -271,6 +288,19 @@ impl PackModel {
     /// roughly 1.5 %/K around room temperature, bounded).
     fn temp_factor(&self) -> f64 {
         (1.0 + 0.015 * (25.0 - self.temperature_c)).clamp(0.5, 3.0)
+    }
+
+    /// Available capacity against temperature: a lead-acid pack gives more
+    /// when warm, by the law the IEC 60896-11 correction undoes (fact
+    /// sheet §4a: 1 + 0.006·(θ − 20 °C) for long discharges), so its
+    /// `capacity_factor` is the capacity at 20 °C. Other chemistries are
+    /// taken as flat around room temperature.
+    fn capacity_temp_factor(&self) -> f64 {
+        if self.params.tafel.is_some() {
+            (1.0 + 0.006 * (self.temperature_c - 20.0)).clamp(0.5, 1.2)
+        } else {
+            1.0
+        }
     }
 
     /// Series resistance of one cell, Ω.
@@ -289,7 +319,17 @@ impl PackModel {
         }
     }
 
+    /// The activation polarisation at a pack current: the charge's own
+    /// while charging, else what is left of it (surface charge).
     fn activation(&self, current: f64) -> f64 {
+        if current > 0.0 {
+            self.charge_activation(current)
+        } else {
+            self.v_surface
+        }
+    }
+
+    fn charge_activation(&self, current: f64) -> f64 {
         match self.params.tafel {
             Some((b, ln_k_half, slope, knee)) if current > 0.0 => {
                 let s = self.soc.min(1.0);
@@ -396,8 +436,20 @@ impl PackModel {
         } else {
             ah
         };
-        self.soc += stored / self.capacity_ah.max(1e-9);
+        self.soc += stored / (self.capacity_ah * self.capacity_temp_factor()).max(1e-9);
         self.soc = self.soc.clamp(-0.2, 1.05);
+        // Surface charge: follows the charge's polarisation, then relaxes.
+        self.v_surface = if current > 0.0 {
+            self.charge_activation(current)
+        } else {
+            // (A pack electronics' standby draw is no discharge.)
+            let tau = if current < -0.001 * self.size_ah {
+                SURFACE_DISCHARGE_TAU_S
+            } else {
+                SURFACE_REST_TAU_S
+            };
+            self.v_surface * (-dt / tau).exp()
+        };
         // RC pairs: exact update for a current held over dt.
         let tf = self.temp_factor();
         for (v, r_ah, tau) in [

@@ -124,6 +124,9 @@ pub struct PackState {
     pub soc: f64,
     pub v1: f64,
     pub v2: f64,
+    /// Surface-charge polarisation left by a lead-acid charge, V per cell.
+    #[serde(default)]
+    pub v_surface: f64,
     pub temperature_c: f64,
     pub truth_charge_ah: f64,
     pub truth_energy_wh: f64,
@@ -213,6 +216,7 @@ impl SimBench {
             soc: self.pack.soc,
             v1: self.pack.v1,
             v2: self.pack.v2,
+            v_surface: self.pack.v_surface,
             temperature_c: self.pack.temperature_c,
             truth_charge_ah: self.truth.charge_ah,
             truth_energy_wh: self.truth.energy_wh,
@@ -226,6 +230,7 @@ impl SimBench {
         self.pack.soc = st.soc;
         self.pack.v1 = st.v1;
         self.pack.v2 = st.v2;
+        self.pack.v_surface = st.v_surface;
         self.pack.temperature_c = st.temperature_c;
         if rest_s > 0.0 {
             let _ = self.pack.step(rest_s, 0.0);
