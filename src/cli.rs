@@ -560,42 +560,21 @@ pub fn cmd_run(a: RunArgs) -> i32 {
             }
         }
     }
-    let rt = match tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-    {
-        Ok(rt) => rt,
-        Err(e) => {
-            eprintln!("error: cannot start the runtime: {e}");
-            return EXIT_FAILURE;
-        }
-    };
-    let stop = StopHandle::new();
-    let emergency = run::Emergency::default();
     let several = jobs.len() > 1;
-    let local = tokio::task::LocalSet::new();
     let jobs = std::rc::Rc::new(jobs);
-    let results = local.block_on(&rt, async {
-        spawn_interrupts(stop.clone(), emergency.clone());
-        let boards: Vec<crate::live::Board> = jobs.iter().map(|j| j.board.clone()).collect();
-        let shown = tokio::task::spawn_local(crate::live::display(boards, mode));
-        let mut tasks = Vec::new();
-        for k in 0..jobs.len() {
-            let (jobs, stop, em) = (std::rc::Rc::clone(&jobs), stop.clone(), emergency.clone());
-            tasks.push(tokio::task::spawn_local(async move {
-                run::run_job(&jobs[k], stop, em, several).await
-            }));
-        }
-        let mut out = Vec::new();
-        for t in tasks {
-            out.push(match t.await {
-                Ok(r) => r,
-                Err(e) => Err(RunError::Pack(format!("station task failed: {e}"))),
-            });
-        }
-        let _ = shown.await;
-        out
-    });
+    let boards = jobs.iter().map(|j| j.board.clone()).collect();
+    let tasks: Vec<StationTask> = (0..jobs.len())
+        .map(|k| {
+            let jobs = std::rc::Rc::clone(&jobs);
+            Box::new(move |stop, em| {
+                Box::pin(async move { run::run_job(&jobs[k], stop, em, several).await })
+                    as StationFuture
+            }) as StationTask
+        })
+        .collect();
+    let Some(results) = run_stations(boards, mode, tasks) else {
+        return EXIT_FAILURE;
+    };
     if !several {
         return match results.into_iter().next() {
             Some(Ok(r)) => {
@@ -606,24 +585,11 @@ pub fn cmd_run(a: RunArgs) -> i32 {
             None => EXIT_FAILURE,
         };
     }
-    // One line per station.
-    let (mut failed, mut aborted, mut interrupted) = (false, false, false);
-    for (j, r) in jobs.iter().zip(&results) {
-        match r {
-            Ok(r) => {
-                match r.exit_code() {
-                    0 => {}
-                    5 => interrupted = true,
-                    _ => aborted = true,
-                }
-                println!("{}", station_line(&j.name, &j.prepared.pack_id, r));
-            }
-            Err(e) => {
-                failed = true;
-                println!("{:<12} {:<10} failed      {e}", j.name, j.prepared.pack_id);
-            }
-        }
-    }
+    let names: Vec<(String, String)> = jobs
+        .iter()
+        .map(|j| (j.name.clone(), j.prepared.pack_id.clone()))
+        .collect();
+    let (failed, aborted, interrupted) = station_end_lines(&names, &results);
     if interrupted {
         if let Some(b) = &a.bench {
             println!(
@@ -634,6 +600,83 @@ pub fn cmd_run(a: RunArgs) -> i32 {
         }
     }
     several_exit(failed, aborted, interrupted)
+}
+
+/// One station's work, started on the shared thread with the stop handle
+/// and the last-resort switch-off.
+type StationFuture =
+    std::pin::Pin<Box<dyn std::future::Future<Output = Result<run::RunReport, RunError>>>>;
+type StationTask = Box<dyn FnOnce(StopHandle, run::Emergency) -> StationFuture>;
+
+/// Run stations at once, one task each on one thread, with Ctrl-C handled
+/// and their live boards shown; one result per task, in order. None when
+/// the runtime cannot start (said).
+fn run_stations(
+    boards: Vec<crate::live::Board>,
+    mode: crate::live::DisplayMode,
+    tasks: Vec<StationTask>,
+) -> Option<Vec<Result<run::RunReport, RunError>>> {
+    let rt = match tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+    {
+        Ok(rt) => rt,
+        Err(e) => {
+            eprintln!("error: cannot start the runtime: {e}");
+            return None;
+        }
+    };
+    let stop = StopHandle::new();
+    let emergency = run::Emergency::default();
+    let local = tokio::task::LocalSet::new();
+    Some(local.block_on(&rt, async {
+        spawn_interrupts(stop.clone(), emergency.clone());
+        let shown = tokio::task::spawn_local(crate::live::display(boards.clone(), mode));
+        let running: Vec<_> = tasks
+            .into_iter()
+            .map(|t| tokio::task::spawn_local(t(stop.clone(), emergency.clone())))
+            .collect();
+        let mut out = Vec::new();
+        for (t, board) in running.into_iter().zip(&boards) {
+            out.push(match t.await {
+                Ok(r) => r,
+                Err(e) => Err(RunError::Pack(format!("station task failed: {e}"))),
+            });
+            board.update(|l| {
+                if !l.is_final() {
+                    l.state = "failed".into();
+                }
+            });
+        }
+        let _ = shown.await;
+        out
+    }))
+}
+
+/// One end line per station (name, pack); whether any failed, aborted or
+/// was interrupted.
+fn station_end_lines(
+    names: &[(String, String)],
+    results: &[Result<run::RunReport, RunError>],
+) -> (bool, bool, bool) {
+    let (mut failed, mut aborted, mut interrupted) = (false, false, false);
+    for ((name, pack), r) in names.iter().zip(results) {
+        match r {
+            Ok(r) => {
+                match r.exit_code() {
+                    0 => {}
+                    5 => interrupted = true,
+                    _ => aborted = true,
+                }
+                println!("{}", station_line(name, pack, r));
+            }
+            Err(e) => {
+                failed = true;
+                println!("{name:<12} {pack:<10} failed      {e}");
+            }
+        }
+    }
+    (failed, aborted, interrupted)
 }
 
 /// The exit code of several stations: 1 if any failed, else 3 if any
@@ -770,32 +813,16 @@ fn resume_one(a: &ResumeArgs, run_dir: &Path) -> i32 {
             ),
         }
     }
-    let rt = match tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-    {
-        Ok(rt) => rt,
-        Err(e) => {
-            eprintln!("error: cannot start the runtime: {e}");
-            return EXIT_FAILURE;
-        }
-    };
-    let stop = StopHandle::new();
-    let emergency = run::Emergency::default();
     let board = crate::live::Board::new("resume", &setup.prepared.pack_id);
-    let local = tokio::task::LocalSet::new();
-    let result = local.block_on(&rt, async {
-        spawn_interrupts(stop.clone(), emergency.clone());
-        let shown = tokio::task::spawn_local(crate::live::display(vec![board.clone()], mode));
-        let r = crate::resume::execute(setup, board.clone(), stop.clone(), emergency).await;
-        board.update(|l| {
-            if !l.is_final() {
-                l.state = "failed".into();
-            }
-        });
-        let _ = shown.await;
-        r
+    let task: StationTask = Box::new({
+        let board = board.clone();
+        move |stop, em| Box::pin(crate::resume::execute(setup, board, stop, em)) as StationFuture
     });
+    let Some(result) =
+        run_stations(vec![board], mode, vec![task]).and_then(|r| r.into_iter().next())
+    else {
+        return EXIT_FAILURE;
+    };
     match result {
         Ok(r) => {
             print_result(&r, a.quiet);
@@ -844,70 +871,27 @@ fn resume_bench(a: &ResumeArgs) -> i32 {
             eprintln!("resuming {name}: {}", s.dir.display());
         }
     }
-    let rt = match tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-    {
-        Ok(rt) => rt,
-        Err(e) => {
-            eprintln!("error: cannot start the runtime: {e}");
-            return EXIT_FAILURE;
-        }
-    };
-    let stop = StopHandle::new();
-    let emergency = run::Emergency::default();
-    let local = tokio::task::LocalSet::new();
     let names: Vec<(String, String)> = setups
         .iter()
         .map(|(n, s)| (n.clone(), s.prepared.pack_id.clone()))
         .collect();
-    let results = local.block_on(&rt, async {
-        spawn_interrupts(stop.clone(), emergency.clone());
-        let boards: Vec<crate::live::Board> = names
-            .iter()
-            .map(|(n, p)| crate::live::Board::new(n, p))
-            .collect();
-        let shown = tokio::task::spawn_local(crate::live::display(boards.clone(), mode));
-        let mut tasks = Vec::new();
-        for ((_, setup), board) in setups.into_iter().zip(boards) {
-            let (stop, em) = (stop.clone(), emergency.clone());
-            tasks.push(tokio::task::spawn_local(async move {
-                let r = crate::resume::execute(setup, board.clone(), stop, em).await;
-                board.update(|l| {
-                    if !l.is_final() {
-                        l.state = "failed".into();
-                    }
-                });
-                r
-            }));
-        }
-        let mut out = Vec::new();
-        for t in tasks {
-            out.push(match t.await {
-                Ok(r) => r,
-                Err(e) => Err(RunError::Pack(format!("station task failed: {e}"))),
-            });
-        }
-        let _ = shown.await;
-        out
-    });
-    let (mut failed, mut aborted, mut interrupted) = (false, false, false);
-    for ((name, pack), r) in names.iter().zip(&results) {
-        match r {
-            Ok(r) => {
-                match r.exit_code() {
-                    0 => {}
-                    5 => interrupted = true,
-                    _ => aborted = true,
-                }
-                println!("{}", station_line(name, pack, r));
-            }
-            Err(e) => {
-                failed = true;
-                println!("{name:<12} {pack:<10} failed      {e}");
-            }
-        }
-    }
+    let boards: Vec<crate::live::Board> = names
+        .iter()
+        .map(|(n, p)| crate::live::Board::new(n, p))
+        .collect();
+    let tasks: Vec<StationTask> = setups
+        .into_iter()
+        .zip(boards.clone())
+        .map(|((_, setup), board)| {
+            Box::new(move |stop, em| {
+                Box::pin(crate::resume::execute(setup, board, stop, em)) as StationFuture
+            }) as StationTask
+        })
+        .collect();
+    let Some(results) = run_stations(boards, mode, tasks) else {
+        return EXIT_FAILURE;
+    };
+    let (failed, aborted, interrupted) = station_end_lines(&names, &results);
     several_exit(failed, aborted, interrupted)
 }
 
