@@ -226,9 +226,9 @@ pub enum DemoError {
         path: PathBuf,
         error: std::io::Error,
     },
-    #[error("run: {0}")]
+    #[error(transparent)]
     Run(#[from] RunError),
-    #[error("history: {0}")]
+    #[error(transparent)]
     History(#[from] history::HistoryError),
     #[error("a demo station stopped unexpectedly")]
     Station,

@@ -49,10 +49,17 @@ pub enum RunError {
         path: PathBuf,
         error: std::io::Error,
     },
+    /// (Said with its cause in one line; not chained again as a source.)
     #[error("instrument: {0}")]
-    Instrument(#[from] InstrumentError),
+    Instrument(InstrumentError),
     #[error(transparent)]
     Read(#[from] ReadError),
+}
+
+impl From<InstrumentError> for RunError {
+    fn from(e: InstrumentError) -> Self {
+        RunError::Instrument(e)
+    }
 }
 
 impl RunError {
