@@ -96,6 +96,19 @@ fn process_alive(pid: i32) -> bool {
     nix::sys::signal::kill(nix::unistd::Pid::from_raw(pid), None).is_ok()
 }
 
+/// Read a run's `run.json`.
+fn read_manifest(path: &Path) -> Result<Manifest, RunError> {
+    let text = std::fs::read_to_string(path).map_err(crate::run::input_file_err(path))?;
+    serde_json::from_str(&text).map_err(|e| {
+        bad(format!(
+            "{}:{}:{}: not a packbench run record: {e}",
+            path.display(),
+            e.line(),
+            e.column()
+        ))
+    })
+}
+
 /// The run folders to resume for a bench: for each station that names its
 /// pack, that pack's latest run when it was run on this station and did
 /// not end on its own (`running` or `interrupted`). Reads records only.
@@ -117,16 +130,7 @@ pub fn interrupted_runs(
         // Run ids begin with their UTC start time: the last is the latest.
         runs.sort();
         let Some(last) = runs.pop() else { continue };
-        let path = last.join(RUN_JSON);
-        let text = std::fs::read_to_string(&path).map_err(crate::run::input_file_err(&path))?;
-        let m: Manifest = serde_json::from_str(&text).map_err(|e| {
-            bad(format!(
-                "{}:{}:{}: not a packbench run record: {e}",
-                path.display(),
-                e.line(),
-                e.column()
-            ))
-        })?;
+        let m = read_manifest(&last.join(RUN_JSON))?;
         let here = m.bench.station.as_deref() == Some(st.name.as_str());
         if here && matches!(m.status.as_str(), "running" | "interrupted") {
             out.push((st.name.clone(), last));
@@ -143,15 +147,7 @@ pub fn prepare(
     policy: Option<crate::fade::grade::Policy>,
 ) -> Result<ResumeSetup, RunError> {
     let run_json = dir.join(RUN_JSON);
-    let text = std::fs::read_to_string(&run_json).map_err(crate::run::input_file_err(&run_json))?;
-    let manifest: Manifest = serde_json::from_str(&text).map_err(|e| {
-        bad(format!(
-            "{}:{}:{}: not a packbench run record: {e}",
-            run_json.display(),
-            e.line(),
-            e.column()
-        ))
-    })?;
+    let manifest = read_manifest(&run_json)?;
     match manifest.status.as_str() {
         "running" | "interrupted" => {}
         "completed" => {

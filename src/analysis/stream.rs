@@ -13,6 +13,7 @@ use super::curves::{self, ChargeGrid};
 use super::integrate::{spans_any, Integrator, Interruption};
 use super::pulse::{self, is_jump, PulseTracker};
 use super::resistance::{two_level_ohm, ResistanceReading};
+use super::FULL_START_TOLERANCE;
 use super::{
     soh_pct, Analysis, CapacityResult, CurveData, CurvesSummary, CycleSummary, DvaSummary, Gap,
     IcaSummary, LogQuality, OcvPoint, OcvTable, PeakSummary, Recalibration, ResistanceResult,
@@ -106,9 +107,7 @@ impl StepAcc {
             _ => 0.0,
         }
     }
-}
 
-impl StepAcc {
     fn new(step: u32, grid: ChargeGrid, ah_since_full: Option<f64>) -> StepAcc {
         StepAcc {
             step,
@@ -161,8 +160,6 @@ impl StepAcc {
 
 /// Most points kept of a drain step (a week at 1 s).
 const MAX_DRAIN_POINTS: usize = 604_800;
-
-use super::FULL_START_TOLERANCE;
 
 /// What preceded a capacity step.
 struct StartState {
@@ -219,6 +216,8 @@ struct Kept {
     /// Charge drawn since the last full charge when the step began, Ah
     /// (None: no full charge before it in the log).
     ah_since_full_at_start: Option<f64>,
+    /// The step of that full charge.
+    full_step: Option<u32>,
 }
 
 /// The streaming analyzer.
@@ -554,6 +553,7 @@ impl<'a> Analyzer<'a> {
             step,
             grid,
             ah_since_full_at_start: acc.ah_since_full_at_start,
+            full_step: self.full_step,
             mean_current_a: mean_current,
         };
         if kind == "charge" && acc.g.ah_in > 0.0 {
@@ -706,7 +706,7 @@ impl<'a> Analyzer<'a> {
                     };
                     let start = StartState::of(
                         kept.ah_since_full_at_start,
-                        self.full_step,
+                        kept.full_step,
                         pack.rated_capacity_ah,
                     );
                     if !start.from_full_charge {
