@@ -12,6 +12,9 @@ use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 use tokio::io::{AsyncReadExt, AsyncWriteExt};
 
+/// How often a lost link is tried again while it is being reopened.
+pub const REOPEN_RETRY: std::time::Duration = std::time::Duration::from_millis(50);
+
 /// Opens the link again after it was lost (a new TCP connection, the
 /// serial device opened again), so a safe state can still be sent.
 pub type Reopen = Arc<dyn Fn() -> BoxFuture<'static, Result<Link, InstrumentError>> + Send + Sync>;
@@ -129,8 +132,11 @@ impl Session {
         }
     }
 
-    /// Open the link again after it was lost. Input pending on the old
-    /// link is dropped.
+    /// Open the link again after it was lost, trying again every
+    /// [`REOPEN_RETRY`] until twice the reply timeout has passed: a device
+    /// that comes back (a serial adapter enumerated again, a pseudo-terminal
+    /// replaced) takes a moment to appear. Input pending on the old link is
+    /// dropped.
     pub async fn reopen(&mut self) -> Result<(), InstrumentError> {
         let Some(r) = self.reopen.clone() else {
             return Err(self.err(
@@ -139,12 +145,26 @@ impl Session {
             ));
         };
         self.note("reopening the link");
-        let link = tokio::time::timeout(self.framing.timeout * 2, r())
-            .await
-            .map_err(|_| self.err(ErrorKind::LinkLost, "reopening the link timed out".into()))??;
-        self.link = link;
-        self.pending.clear();
-        Ok(())
+        let deadline = tokio::time::Instant::now() + self.framing.timeout * 2;
+        let mut last = None;
+        loop {
+            match tokio::time::timeout_at(deadline, r()).await {
+                Ok(Ok(link)) => {
+                    self.link = link;
+                    self.pending.clear();
+                    return Ok(());
+                }
+                Ok(Err(e)) => last = Some(e),
+                Err(_) => break,
+            }
+            if tokio::time::Instant::now() + REOPEN_RETRY >= deadline {
+                break;
+            }
+            tokio::time::sleep(REOPEN_RETRY).await;
+        }
+        Err(last.unwrap_or_else(|| {
+            self.err(ErrorKind::LinkLost, "reopening the link timed out".into())
+        }))
     }
 
     pub fn name(&self) -> &str {
