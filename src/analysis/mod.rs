@@ -405,14 +405,7 @@ mod tests {
     fn efficiencies_from_the_same_cycle() {
         // Fact sheet §8 check value [D]: 2.000 Ah in, 1.990 Ah out → CE 99.50 %;
         // 7.60 Wh in, 7.16 Wh out → EE 94.2 %.
-        let pack = PackSpec {
-            chemistry: Chemistry::LiIon,
-            series: 1,
-            rated_capacity_ah: 2.0,
-            rated_energy_wh: None,
-            rated_rate_c: None,
-            rated_resistance_mohm: None,
-        };
+        let pack = pack_2ah();
         let mut samples = Vec::new();
         // Charge: 1 A for 7200 s at 3.8 V = 2 Ah, 7.6 Wh.
         for k in 0..=7200 {
