@@ -5,9 +5,9 @@
 //!
 //! Run: cargo bench --bench capacity_check
 
-use packbench::engine::control::StopHandle;
+use engine::control::StopHandle;
 use packbench::run::{self, PackSource, RunRequest, Speed};
-use packbench::sim::SimConfig;
+use sim::SimConfig;
 use std::time::Instant;
 
 fn main() {

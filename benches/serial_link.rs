@@ -10,17 +10,17 @@
 //! Run: `cargo bench --bench serial_link` (about 75 s).
 
 use packbench::benchfile::BenchFile;
-use packbench::clock::{Clock, PacedClock};
-use packbench::engine::control::StopHandle;
-use packbench::instrument::profile::Profile;
-use packbench::instrument::scpi::Session;
-use packbench::instrument::transport::{self, LinkSpec};
-use packbench::pack::{Chemistry, PackSpec};
+use engine::clock::{Clock, PacedClock};
+use engine::control::StopHandle;
+use instrument::profile::Profile;
+use instrument::scpi::Session;
+use instrument::transport::{self, LinkSpec};
+use model::pack::{Chemistry, PackSpec};
 use packbench::run::{self, PackSource, RunRequest};
-use packbench::runlog::read::read_samples;
-use packbench::sim::serve::{self, Endpoint, ServeOptions};
-use packbench::sim::server::SimRole;
-use packbench::sim::SimConfig;
+use record::read::read_samples;
+use sim::serve::{self, Endpoint, ServeOptions};
+use sim::server::SimRole;
+use sim::SimConfig;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 

@@ -7,10 +7,10 @@
 //!
 //! Run: cargo bench --bench stations   (STATIONS=32 SECONDS=65 to change)
 
-use packbench::engine::control::StopHandle;
+use engine::control::StopHandle;
 use packbench::live::Board;
 use packbench::run::{self, Emergency, PackSource, RunRequest, Speed, StationJob};
-use packbench::sim::SimConfig;
+use sim::SimConfig;
 use std::time::Instant;
 
 /// User + system CPU time of this process so far, s.

@@ -1,17 +1,17 @@
 //! `packbench analyze`: the summary of a log after the fact — one of our
 //! run folders (identical to its `summary.json`) or any bench's CSV.
 
-use crate::analysis::correct::CorrectionPolicy;
-use crate::analysis::{AnalysisOptions, CurveData};
+use analysis::correct::CorrectionPolicy;
+use analysis::{AnalysisOptions, CurveData};
 use crate::cli::{pack_from_args, PackArgs};
-use crate::fade::grade::Policy;
+use analysis::fade::grade::Policy;
 use crate::offline::{self, ForeignLog};
-use crate::pack::{Chemistry, PackSpec};
-use crate::report;
+use model::pack::{Chemistry, PackSpec};
+use report;
 use crate::run::SummaryContext;
-use crate::runlog::import::{ColumnNames, CurrentSign, LogFormat, TimeUnit};
-use crate::runlog::{PackSummary, Summary, RUN_JSON, SAMPLES_CSV};
-use crate::units;
+use record::import::{ColumnNames, CurrentSign, LogFormat, TimeUnit};
+use record::{PackSummary, Summary, RUN_JSON, SAMPLES_CSV};
+use model::units;
 use anyhow::{anyhow, bail, Context};
 use clap::Args;
 use std::io::Write;
@@ -256,7 +256,7 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
             .as_str()
             .unwrap_or_default()
             .to_string();
-        let test_date = crate::fade::history::parse_date(&field("test_date")?)
+        let test_date = record::history::parse_date(&field("test_date")?)
             .ok_or_else(|| anyhow!("run.json: bad test_date"))?;
         let ctx = SummaryContext {
             pack: &pack,
@@ -293,7 +293,7 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
         .to_string();
     let pack_id = a.pack.clone().unwrap_or(stem);
     let test_date = match &a.test_date {
-        Some(d) => crate::fade::history::parse_date(d)
+        Some(d) => record::history::parse_date(d)
             .ok_or_else(|| anyhow!("--test-date {d}: expected YYYY-MM-DD"))?,
         None => chrono::Utc::now().date_naive(),
     };
@@ -342,7 +342,7 @@ pub fn cmd_peukert(a: PeukertArgs) -> anyhow::Result<i32> {
     }
     let mut pts = Vec::new();
     for r in &a.runs {
-        let path = r.join(crate::runlog::SUMMARY_JSON);
+        let path = r.join(record::SUMMARY_JSON);
         let text = std::fs::read_to_string(&path)
             .with_context(|| format!("cannot read {}", path.display()))?;
         let s: Summary = serde_json::from_str(&text)
@@ -365,7 +365,7 @@ pub fn cmd_peukert(a: PeukertArgs) -> anyhow::Result<i32> {
             pts[1].2
         );
     }
-    let k = crate::analysis::correct::peukert_exponent(pts[0].0, pts[0].1, pts[1].0, pts[1].1)
+    let k = analysis::correct::peukert_exponent(pts[0].0, pts[0].1, pts[1].0, pts[1].1)
         .ok_or_else(|| anyhow!("the two runs ran at the same current: no exponent"))?;
     println!(
         "pack {}: {:.3} A for {:.3} h and {:.3} A for {:.3} h -> Peukert exponent k = {k:.4}",

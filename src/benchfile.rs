@@ -17,9 +17,9 @@
 //! timeout = "500ms"                   # overrides the profile's reply timeout
 //! ```
 
-use crate::instrument::profile::{Profile, ProfileRole};
-use crate::instrument::transport::LinkSpec;
-use crate::location::{toml_error, InputErrors, LocatedError, Location};
+use instrument::profile::{Profile, ProfileRole};
+use instrument::transport::LinkSpec;
+use model::location::{toml_error, InputErrors, LocatedError, Location};
 use serde::Deserialize;
 use std::path::{Path, PathBuf};
 use toml::Spanned;
@@ -126,7 +126,7 @@ pub struct BenchFile {
 impl BenchFile {
     /// Read and validate a bench file.
     pub fn load(path: &Path) -> Result<BenchFile, InputErrors> {
-        let text = crate::procedure::read_text(path).map_err(|e| {
+        let text = model::procedure::read_text(path).map_err(|e| {
             InputErrors(vec![LocatedError {
                 location: Location {
                     file: path.to_path_buf(),
@@ -197,7 +197,7 @@ impl BenchFile {
                     Some(p) => Some(p),
                     None => {
                         let file = base.join(pname);
-                        match crate::procedure::read_text(&file) {
+                        match model::procedure::read_text(&file) {
                             Ok(ptext) => match Profile::from_toml(&file, &ptext) {
                                 Ok(p) => Some(p),
                                 Err(e) => {
@@ -206,7 +206,7 @@ impl BenchFile {
                                 }
                             },
                             Err(e) => {
-                                let names: Vec<&str> = crate::instrument::profile::BUILTIN
+                                let names: Vec<&str> = instrument::profile::BUILTIN
                                     .iter()
                                     .map(|(n, _)| *n)
                                     .collect();
@@ -238,7 +238,7 @@ impl BenchFile {
                 }
                 for (field, target) in [(&b.timeout, 0usize), (&b.delay, 1usize)] {
                     if let Some(t) = field {
-                        match crate::units::duration(t.get_ref()) {
+                        match model::units::duration(t.get_ref()) {
                             Ok(s) if s > 0.0 && s <= 600.0 || (target == 1 && s == 0.0) => {
                                 let ms = (s * 1000.0).round() as u64;
                                 if target == 0 {
@@ -324,7 +324,7 @@ impl BenchFile {
                 (drivers, meter.as_ref().map(|m| m.is_some()))
             {
                 if let Some(pk) = &st.pack {
-                    if let Err(e) = crate::pack::check_pack_id(pk.get_ref()) {
+                    if let Err(e) = model::pack::check_pack_id(pk.get_ref()) {
                         errors.push(LocatedError {
                             location: at(pk.span(), 1),
                             message: e.to_string(),

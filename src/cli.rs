@@ -5,15 +5,16 @@
 //! connection), 2 bad input (arguments, procedure, pack spec, pack id),
 //! 3 safety stop or instrument fault (run aborted), 5 interrupted (Ctrl-C).
 
-use crate::engine::control::StopHandle;
-use crate::fade::grade::Policy;
-use crate::fade::{fleet, history, model};
-use crate::pack::{parse_rate, Chemistry, PackSpec};
-use crate::procedure;
-use crate::report;
+use engine::control::StopHandle;
+use analysis::fade::grade::Policy;
+use analysis::fade::{fleet, trend};
+use record::history;
+use model::pack::{parse_rate, Chemistry, PackSpec};
+use model::procedure;
+use report;
 use crate::run::{self, PackSource, RunError, RunOptions, RunRequest, Speed};
-use crate::sim::SimConfig;
-use crate::units;
+use model::simconfig::SimConfig;
+use model::units;
 use anyhow::{anyhow, Context};
 use chrono::NaiveDate;
 use clap::{Args, Parser, Subcommand};
@@ -337,7 +338,7 @@ pub fn sim_config(
 ) -> Result<SimConfig, RunError> {
     let mut cfg = match path {
         Some(path) => {
-            let text = crate::procedure::read_text(path).map_err(|source| RunError::InputFile {
+            let text = model::procedure::read_text(path).map_err(|source| RunError::InputFile {
                 path: path.to_path_buf(),
                 error: source,
             })?;
@@ -395,7 +396,7 @@ fn prepare_run(a: &RunArgs) -> Result<Vec<run::StationJob>, RunError> {
         options.cycle_count = Some(c);
     }
     if let Some(path) = &a.policy {
-        let text = crate::procedure::read_text(path).map_err(|source| RunError::InputFile {
+        let text = model::procedure::read_text(path).map_err(|source| RunError::InputFile {
             path: path.clone(),
             error: source,
         })?;
@@ -696,7 +697,7 @@ fn several_exit(failed: bool, aborted: bool, interrupted: bool) -> i32 {
 /// The figures a run ends with, on one line: the capacity measured, the
 /// state of health (on the capacity at rated conditions) and the grade;
 /// else why it stopped.
-fn result_figures(s: &crate::runlog::Summary) -> String {
+fn result_figures(s: &record::Summary) -> String {
     let mut parts = Vec::new();
     match &s.capacity {
         Some(c) => {
@@ -771,7 +772,7 @@ fn resume_options(a: &ResumeArgs) -> Result<(Option<Speed>, Option<Policy>), Run
     let speed = a.speed.as_deref().map(parse_speed).transpose()?;
     let policy = match &a.policy {
         Some(path) => {
-            let text = crate::procedure::read_text(path).map_err(run::input_file_err(path))?;
+            let text = model::procedure::read_text(path).map_err(run::input_file_err(path))?;
             Some(Policy::from_toml(path, &text)?)
         }
         None => None,
@@ -954,11 +955,11 @@ pub fn cmd_check(a: CheckArgs) -> anyhow::Result<i32> {
     let loaded = procedure::load(&a.procedure, &pack).map_err(RunError::from)?;
     run::check_ranges(
         &loaded,
-        &crate::instrument::profile::Profile::builtin(
-            crate::instrument::profile::ProfileRole::Source,
+        &instrument::profile::Profile::builtin(
+            instrument::profile::ProfileRole::Source,
         ),
-        &crate::instrument::profile::Profile::builtin(
-            crate::instrument::profile::ProfileRole::Load,
+        &instrument::profile::Profile::builtin(
+            instrument::profile::ProfileRole::Load,
         ),
     )?;
     print!("{}", loaded.plan);
@@ -1006,14 +1007,14 @@ fn parse_threshold(s: &str) -> Result<f64, RunError> {
 
 /// `packbench report`.
 pub fn cmd_report(a: ReportArgs) -> anyhow::Result<i32> {
-    let summary_path = a.run_dir.join(crate::runlog::SUMMARY_JSON);
+    let summary_path = a.run_dir.join(record::SUMMARY_JSON);
     let text = std::fs::read_to_string(&summary_path)
         .with_context(|| format!("reading {}", summary_path.display()))?;
-    let summary: crate::runlog::Summary = serde_json::from_str(&text)
+    let summary: record::Summary = serde_json::from_str(&text)
         .with_context(|| format!("{} is not a packbench summary", summary_path.display()))?;
-    let log = crate::runlog::read::read_samples(&a.run_dir.join(crate::runlog::SAMPLES_CSV))?;
-    let out = a.run_dir.join(crate::runlog::REPORT_HTML);
-    crate::runlog::write::atomic_write(
+    let log = record::read::read_samples(&a.run_dir.join(record::SAMPLES_CSV))?;
+    let out = a.run_dir.join(record::REPORT_HTML);
+    record::write::atomic_write(
         &out,
         report::html::run_report(&summary, &log.samples).as_bytes(),
     )
@@ -1027,7 +1028,7 @@ pub fn cmd_report(a: ReportArgs) -> anyhow::Result<i32> {
 pub fn cmd_fade(a: FadeArgs) -> anyhow::Result<i32> {
     let threshold = parse_threshold(&a.threshold)?;
     let h = history::load(&a.results, &a.pack, a.history.as_deref())?;
-    let mut fa = model::analyze(&h, threshold);
+    let mut fa = trend::analyze(&h, threshold);
     fa.flag_against(match &a.today {
         Some(d) => parse_date(d)?,
         None => chrono::Utc::now().date_naive(),
@@ -1042,7 +1043,7 @@ pub fn cmd_fade(a: FadeArgs) -> anyhow::Result<i32> {
         #[derive(serde::Serialize)]
         struct FadeJson<'a> {
             history: &'a history::PackHistory,
-            fade: &'a model::FadeAnalysis,
+            fade: &'a trend::FadeAnalysis,
         }
         println!(
             "{}",
@@ -1089,7 +1090,7 @@ pub fn cmd_fleet(a: FleetArgs) -> anyhow::Result<i32> {
         Some(d) => parse_date(d)?,
         None => chrono::Utc::now().date_naive(),
     };
-    let f = fleet::build(&a.results, today, interval, threshold)?;
+    let f = history::fleet(&a.results, today, interval, threshold)?;
     if let Some(path) = &a.html {
         let mut hs = Vec::new();
         for r in &f.rows {
@@ -1165,7 +1166,7 @@ pub fn main() -> i32 {
             // malformed is bad input, whatever the command.
             let input = e.downcast_ref::<RunError>().is_some_and(RunError::is_input)
                 || e.downcast_ref::<history::HistoryError>().is_some()
-                || e.downcast_ref::<crate::runlog::read::ReadError>().is_some();
+                || e.downcast_ref::<record::read::ReadError>().is_some();
             eprintln!("error: {:#}", anyhow!(e));
             if input {
                 EXIT_BAD_INPUT

@@ -7,12 +7,13 @@
 //!
 //! Everything here is invented for the demo.
 
-use crate::engine::control::StopHandle;
-use crate::fade::{fleet, history, model};
-use crate::pack::{Chemistry, PackSpec};
-use crate::report::html;
+use engine::control::StopHandle;
+use analysis::fade::{fleet, trend};
+use record::history;
+use model::pack::{Chemistry, PackSpec};
+use report::html;
 use crate::run::{self, PackSource, RunError, RunOptions, RunRequest, Speed};
-use crate::sim::SimConfig;
+use model::simconfig::SimConfig;
 use chrono::{Days, NaiveDate};
 use std::path::{Path, PathBuf};
 
@@ -336,12 +337,12 @@ pub fn run_demo(out: &Path) -> Result<DemoOutcome, DemoError> {
     let mut histories = Vec::new();
     for p in &packs {
         let h = history::load(&results, p.id, None)?;
-        let fa = model::analyze(&h, threshold);
+        let fa = trend::analyze(&h, threshold);
         let path = write_pack_report(&results, &h, &fa)?;
         pack_reports.push(path);
         histories.push(h);
     }
-    let fleet = fleet::build(&results, today, 92, threshold)?;
+    let fleet = history::fleet(&results, today, 92, threshold)?;
     let fleet_report = results.join("fleet.html");
     let html = html::fleet_report(
         &fleet,
@@ -363,7 +364,7 @@ pub fn run_demo(out: &Path) -> Result<DemoOutcome, DemoError> {
 pub fn write_pack_report(
     results: &Path,
     h: &history::PackHistory,
-    fa: &model::FadeAnalysis,
+    fa: &trend::FadeAnalysis,
 ) -> Result<PathBuf, DemoError> {
     let path = results.join(&h.pack_id).join("fade.html");
     let html = html::pack_report(h, fa, &history::capacity_curves(h));

@@ -5,17 +5,17 @@
 //! would end on its time cap instead of its cutoff, an envelope limit
 //! within 2 % of a setpoint, a simulated safety stop.
 
-use crate::analysis::integrate::Integrator;
-use crate::analysis::FULL_START_TOLERANCE;
-use crate::clock::{Clock, SimClock};
-use crate::engine::control::StopHandle;
-use crate::engine::event::{EndKind, Event, Sink};
-use crate::engine::{Engine, Station};
-use crate::instrument::{Load, Source};
-use crate::procedure::{DischargeMode, EndCondition, Plan, ResultTag, StepKind};
-use crate::sample::Sample;
-use crate::sim::SimConfig;
-use crate::units::HumanDuration;
+use analysis::integrate::Integrator;
+use analysis::FULL_START_TOLERANCE;
+use engine::clock::{Clock, SimClock};
+use engine::control::StopHandle;
+use record::event::{EndKind, Event, Sink};
+use engine::{Engine, Station};
+use instrument::{Load, Source};
+use model::procedure::{DischargeMode, EndCondition, Plan, ResultTag, StepKind};
+use model::sample::Sample;
+use model::simconfig::SimConfig;
+use model::units::HumanDuration;
 use serde::Serialize;
 use std::fmt;
 use std::sync::Arc;
@@ -267,7 +267,7 @@ pub async fn forecast_async(plan: &Plan, cfg: &SimConfig) -> Forecast {
     };
     let clock = SimClock::new();
     let dyn_clock: Arc<dyn Clock> = clock.clone();
-    let links = crate::sim::build(&plan.pack, cfg, Arc::clone(&dyn_clock));
+    let links = sim::build(&plan.pack, cfg, Arc::clone(&dyn_clock));
     let mut sink = ForecastSink::default();
     let mut warnings = Vec::new();
     let ran = async {
@@ -285,7 +285,7 @@ pub async fn forecast_async(plan: &Plan, cfg: &SimConfig) -> Forecast {
         )
         .run()
         .await;
-        Ok::<(), crate::instrument::InstrumentError>(())
+        Ok::<(), instrument::InstrumentError>(())
     }
     .await;
     if let Err(e) = ran {
@@ -370,8 +370,8 @@ impl fmt::Display for Forecast {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::pack::{Chemistry, PackSpec};
-    use crate::procedure::validate::plan_from_text;
+    use model::pack::{Chemistry, PackSpec};
+    use model::procedure::validate::plan_from_text;
     use std::path::Path;
 
     fn pack() -> PackSpec {

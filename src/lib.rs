@@ -22,27 +22,13 @@
 //! | [`run`] | one test from request to record |
 //! | [`cli`] | the command line |
 
-pub mod analysis;
 pub mod analyze_cmd;
 pub mod benchfile;
 pub mod cli;
-pub mod clock;
 pub mod demo;
 pub mod dryrun;
-pub mod engine;
-pub mod fade;
-pub mod instrument;
 pub mod live;
-pub mod location;
 pub mod offline;
-pub mod pack;
-pub mod procedure;
-pub mod report;
 pub mod resume;
 pub mod run;
-pub mod runlog;
-pub mod sample;
 pub mod setup;
-pub mod sim;
-pub mod truth;
-pub mod units;

@@ -17,11 +17,11 @@
 //!   current (a lower bound: the taper comes after it). Nothing is shown
 //!   when no estimate applies (a taper, a rest to settle).
 
-use crate::analysis::integrate::Integrator;
-use crate::engine::event::{EndKind, Event, Sink};
-use crate::procedure::{EndCondition, Plan, StepKind};
-use crate::sample::Sample;
-use crate::units::HumanDuration;
+use analysis::integrate::Integrator;
+use record::event::{EndKind, Event, Sink};
+use model::procedure::{EndCondition, Plan, StepKind};
+use model::sample::Sample;
+use model::units::HumanDuration;
 use std::sync::{Arc, Mutex};
 
 /// What the display shows of one station.
@@ -165,7 +165,7 @@ impl<'a> Estimator<'a> {
     }
 
     /// A plan step by its number (steps are numbered by position from 1).
-    fn step_of(&self, index: u32) -> Option<&'a crate::procedure::PlanStep> {
+    fn step_of(&self, index: u32) -> Option<&'a model::procedure::PlanStep> {
         let plan: &'a Plan = self.plan;
         plan.steps
             .get((index as usize).checked_sub(1)?)
@@ -409,8 +409,8 @@ pub async fn display(boards: Vec<Board>, mode: DisplayMode) {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::pack::{Chemistry, PackSpec};
-    use crate::procedure::validate::plan_from_text;
+    use model::pack::{Chemistry, PackSpec};
+    use model::procedure::validate::plan_from_text;
     use std::path::Path;
 
     fn plan() -> Plan {

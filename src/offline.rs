@@ -3,17 +3,17 @@
 //! so the figures are identical), or any bench's CSV (steps found from the
 //! current when the log has no step column). Streams the log once.
 
-use crate::analysis::integrate::Interruption;
-use crate::analysis::pulse::is_jump;
-use crate::analysis::{AnalysisOptions, Analyzer, CurveData};
-use crate::engine::event::Event;
-use crate::fade::grade::{GradeInputs, Policy};
-use crate::pack::PackSpec;
+use analysis::integrate::Interruption;
+use analysis::pulse::is_jump;
+use analysis::{AnalysisOptions, Analyzer, CurveData};
+use record::event::Event;
+use analysis::fade::grade::{GradeInputs, Policy};
+use model::pack::PackSpec;
 use crate::run::{reference_resistance, RunError, SummaryContext};
-use crate::runlog::import::{stream_log, LogFormat, ReadReport, Row};
-use crate::runlog::read::{read_events, step_infos};
-use crate::runlog::{PackSummary, Summary, EVENTS_JSONL, SAMPLES_CSV};
-use crate::sample::Sample;
+use record::import::{stream_log, LogFormat, ReadReport, Row};
+use record::read::{read_events, step_infos};
+use record::{PackSummary, Summary, EVENTS_JSONL, SAMPLES_CSV};
+use model::sample::Sample;
 use std::path::Path;
 
 /// Finds steps in a log without a step column: a new step where the
@@ -74,7 +74,7 @@ pub struct Outcome {
 
 /// Build a summary from an analysis and its context.
 pub fn build_summary(
-    a: crate::analysis::Analysis,
+    a: analysis::Analysis,
     ctx: &SummaryContext<'_>,
     outcome: Outcome,
     samples: usize,
@@ -159,7 +159,7 @@ fn add_event_records(s: &mut Summary, events: &[Event]) {
                 ..
             } => {
                 // The first preflight is the run's; a resume's is newer.
-                s.preflight = Some(crate::runlog::Preflight {
+                s.preflight = Some(record::Preflight {
                     voltage_v: *voltage_v,
                     temperature_c: *temperature_c,
                     source_zero_ma: source_zero_a.map(|a| a * 1000.0),
@@ -173,7 +173,7 @@ fn add_event_records(s: &mut Summary, events: &[Event]) {
                 last_sample_t_s,
                 gap_s,
                 rule,
-            } => s.resumed.push(crate::runlog::ResumeNote {
+            } => s.resumed.push(record::ResumeNote {
                 t_s: *t_s,
                 step: *step,
                 last_sample_t_s: *last_sample_t_s,
@@ -210,7 +210,7 @@ fn warn_if_not_cooled(s: &mut Summary, events: &[Event]) {
         return;
     };
     let off = start - before;
-    if off.abs() > crate::analysis::correct::COOLED_WITHIN_K {
+    if off.abs() > analysis::correct::COOLED_WITHIN_K {
         s.warnings.push(format!(
             "the capacity discharge started at {start:.1} °C, {off:+.1} K from the pack's {before:.1} °C at rest before the run (taken as the room's): it had not settled to the room's temperature after its charge, so the temperature correction from its start is unreliable; rest it until its temperature settles (dT/dt <) before the discharge"
         ));
@@ -244,7 +244,7 @@ impl Feed {
     }
 }
 
-fn note_partial_line(a: &mut crate::analysis::Analysis, partial: bool, what: &str) {
+fn note_partial_line(a: &mut analysis::Analysis, partial: bool, what: &str) {
     if partial {
         a.warnings.push(format!(
             "the last line of {what} was incomplete and was left out"

@@ -11,7 +11,7 @@
 //!   the procedure text it holds (validated again for the pack), the pack
 //!   spec, the log, and the bench.
 //! - Steps that ended are not run again. The step that was running goes on
-//!   by its kind ([`crate::engine::resume_rule`]): a rest restarts its
+//!   by its kind ([`engine::resume_rule`]): a rest restarts its
 //!   timer; a charge continues (same setpoints; constant current or taper,
 //!   wherever the pack's voltage puts the supply), a discharge continues to
 //!   its end condition, and both carry over their elapsed time and the
@@ -36,19 +36,20 @@
 //!   its charge by itself); the resumed bench starts from that state, left
 //!   open-circuit for the gap.
 
-use crate::analysis::integrate::{spans_any, Integrator, Interruption};
-use crate::engine::event::{EndKind, Event};
-use crate::engine::state::RunState;
-use crate::engine::{resume_continues, Carried, ResumePoint, RunOutcome, Timing};
-use crate::procedure::{self, LoadedProcedure};
+use analysis::integrate::{spans_any, Integrator, Interruption};
+use record::event::{EndKind, Event};
+use model::status::RunState;
+use engine::{resume_continues, Carried, ResumePoint, RunOutcome, Timing};
+use model::procedure::{self, LoadedProcedure};
 use crate::run::{
-    self, Manifest, Prepared, ResumeRecord, RunError, RunOptions, RunReport, Speed, StationJob,
-    RUN_LOCK, SIMULATED, SIM_STATE_JSON,
+    self, Prepared, RunError, RunOptions, RunReport, Speed, StationJob, RUN_LOCK, SIMULATED,
+    SIM_STATE_JSON,
 };
-use crate::runlog::import::{stream_log, LogFormat};
-use crate::runlog::read::read_events;
-use crate::runlog::{EVENTS_JSONL, PACK_TOML, RUN_JSON, SAMPLES_CSV};
-use crate::sim::SimConfig;
+use record::manifest::{Manifest, ResumeRecord};
+use record::import::{stream_log, LogFormat};
+use record::read::read_events;
+use record::{EVENTS_JSONL, PACK_TOML, RUN_JSON, SAMPLES_CSV};
+use model::simconfig::SimConfig;
 use std::path::{Path, PathBuf};
 
 /// What a run folder says about where to go on.
@@ -144,7 +145,7 @@ pub fn prepare(
     dir: &Path,
     bench_override: Option<&Path>,
     speed_override: Option<Speed>,
-    policy: Option<crate::fade::grade::Policy>,
+    policy: Option<analysis::fade::grade::Policy>,
 ) -> Result<ResumeSetup, RunError> {
     let run_json = dir.join(RUN_JSON);
     let manifest = read_manifest(&run_json)?;
@@ -186,7 +187,7 @@ pub fn prepare(
         run::read_pack_file(&saved)?
     } else {
         let p = &manifest.pack;
-        crate::pack::PackSpec {
+        model::pack::PackSpec {
             chemistry: p.chemistry.parse().map_err(bad)?,
             series: p.series,
             rated_capacity_ah: p.rated_capacity_ah,
@@ -221,7 +222,7 @@ pub fn prepare(
         options: RunOptions {
             test_date,
             cycle_count: manifest.cycle_count,
-            policy: policy.unwrap_or_else(crate::fade::grade::Policy::default_policy),
+            policy: policy.unwrap_or_else(analysis::fade::grade::Policy::default_policy),
             trace: false,
             alarm_below_pct: manifest.alarm_below_pct,
         },
@@ -415,7 +416,7 @@ pub fn find_point(dir: &Path, p: &Prepared, speed_factor: Option<f64>) -> Result
 pub async fn execute(
     setup: ResumeSetup,
     board: crate::live::Board,
-    stop: crate::engine::control::StopHandle,
+    stop: engine::control::StopHandle,
     emergency: run::Emergency,
 ) -> Result<RunReport, RunError> {
     let ResumeSetup {
@@ -448,7 +449,7 @@ pub async fn execute(
         }
         Found::GoOn(p) => p,
     };
-    let rule = crate::engine::resume_rule_at(
+    let rule = engine::resume_rule_at(
         prepared.procedure.plan.steps.get(point.position),
         point.carried.is_some(),
     );
@@ -485,9 +486,9 @@ pub async fn execute(
         manifest,
         resume: Some(point.clone()),
     };
-    let sink = crate::runlog::write::RunLogSink::append(&dir).map_err(io_err(&dir))?;
+    let sink = record::write::RunLogSink::append(&dir).map_err(io_err(&dir))?;
     let kept = std::fs::read(dir.join(SIM_STATE_JSON))
         .ok()
-        .and_then(|b| serde_json::from_slice::<crate::sim::bench::PackState>(&b).ok());
+        .and_then(|b| serde_json::from_slice::<sim::bench::PackState>(&b).ok());
     run::run_resumed_job(&job, rec, sink, stop, emergency, kept, point.gap_s).await
 }

@@ -3,28 +3,30 @@
 //! created, nothing sent), then connect, run the engine, and write the run
 //! folder and its summary ([`execute`]).
 
-use crate::analysis;
+use analysis;
 use crate::benchfile::{Drivers, StationSpec};
-use crate::clock::{Clock, PacedClock, SimClock};
-use crate::engine::control::StopHandle;
-use crate::engine::state::RunState;
-use crate::engine::{Engine, RunOutcome, Station, TruthStep};
-use crate::fade::grade::Policy;
-use crate::instrument::link::{Link, SharedLink};
-use crate::instrument::profile::{Profile, ProfileRole};
-use crate::instrument::scpi::{Reopen, Trace};
-use crate::instrument::transport::{self, LinkSpec};
-use crate::instrument::{Attach, InstrumentError, Load, Meter, Source};
-use crate::location::{InputErrors, LocatedError, Location};
-use crate::pack::{check_pack_id, Chemistry, PackIdError, PackSpec};
-use crate::procedure::{self, DischargeMode, LoadedProcedure, StepKind};
-use crate::runlog::read::{self, ReadError};
-use crate::runlog::write::{create_run_folder, write_json, RunLogSink};
-use crate::runlog::{PackSummary, Summary, PACK_TOML, REPORT_HTML, RUN_JSON, SUMMARY_JSON};
-use crate::sim::{self, SimConfig};
-use crate::truth::GroundTruth;
+use engine::clock::{Clock, PacedClock, SimClock};
+use engine::control::StopHandle;
+use model::status::RunState;
+use engine::{Engine, RunOutcome, Station};
+use analysis::fade::grade::Policy;
+use instrument::link::{Link, SharedLink};
+use instrument::profile::{Profile, ProfileRole};
+use instrument::scpi::{Reopen, Trace};
+use instrument::transport::{self, LinkSpec};
+use instrument::{Attach, InstrumentError, Load, Meter, Source};
+use model::location::{InputErrors, LocatedError, Location};
+use model::pack::{check_pack_id, Chemistry, PackIdError, PackSpec};
+use model::procedure::{self, DischargeMode, LoadedProcedure, StepKind};
+use record::read::{self, ReadError};
+use record::write::{create_run_folder, write_json, RunLogSink};
+use record::{PackSummary, Summary, PACK_TOML, REPORT_HTML, RUN_JSON, SUMMARY_JSON};
+use sim::{self, SimConfig};
+use model::truth::GroundTruth;
 use chrono::NaiveDate;
-use serde::Serialize;
+use record::manifest::{
+    BenchRecord, InstrumentRecord, Manifest, ProcedureRecord, SimulationRecord, ToolInfo,
+};
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
@@ -180,7 +182,7 @@ impl Emergency {
         let tries = list.iter().map(|(name, reopen, profile)| async move {
             let r = tokio::time::timeout(
                 timeout,
-                crate::instrument::safe_state_on_new_link(name, reopen, profile),
+                instrument::safe_state_on_new_link(name, reopen, profile),
             )
             .await;
             (name.clone(), matches!(r, Ok(Ok(()))))
@@ -213,7 +215,7 @@ pub fn input_file_err(path: &Path) -> impl FnOnce(std::io::Error) -> RunError + 
 
 /// Read a pack spec file.
 pub fn read_pack_file(path: &Path) -> Result<PackSpec, RunError> {
-    let text = crate::procedure::read_text(path).map_err(input_file_err(path))?;
+    let text = model::procedure::read_text(path).map_err(input_file_err(path))?;
     Ok(PackSpec::from_toml(path, &text)?)
 }
 
@@ -389,89 +391,6 @@ pub enum Speed {
     Factor(f64),
 }
 
-/// `run.json`.
-#[derive(Debug, Clone, Serialize, serde::Deserialize)]
-pub struct Manifest {
-    pub tool: ToolInfo,
-    pub run_id: String,
-    pub pack_id: String,
-    pub started_utc: String,
-    pub finished_utc: Option<String>,
-    pub test_date: String,
-    pub cycle_count: Option<f64>,
-    pub status: String,
-    pub stop_reason: Option<String>,
-    pub procedure: ProcedureRecord,
-    pub pack: PackSummary,
-    pub bench: BenchRecord,
-    pub instruments: Vec<InstrumentRecord>,
-    pub simulation: Option<SimulationRecord>,
-    /// How well samples kept their schedule.
-    #[serde(default)]
-    pub timing: Option<crate::engine::Timing>,
-    /// Low-capacity alarm threshold, % of rated, if set.
-    #[serde(default)]
-    pub alarm_below_pct: Option<f64>,
-    /// Each resume of the run after an interruption.
-    #[serde(default)]
-    pub resumes: Vec<ResumeRecord>,
-}
-
-/// One resume, as `run.json` keeps it.
-#[derive(Debug, Clone, Serialize, serde::Deserialize)]
-pub struct ResumeRecord {
-    pub at_utc: String,
-    pub step: u32,
-    pub t_s: f64,
-    pub gap_s: f64,
-    pub rule: String,
-}
-
-#[derive(Debug, Clone, Serialize, serde::Deserialize)]
-pub struct ToolInfo {
-    pub name: String,
-    pub version: String,
-}
-
-#[derive(Debug, Clone, Serialize, serde::Deserialize)]
-pub struct ProcedureRecord {
-    pub path: String,
-    pub title: String,
-    pub sha256: String,
-    pub text: String,
-}
-
-#[derive(Debug, Clone, Serialize, serde::Deserialize)]
-pub struct BenchRecord {
-    pub kind: String,
-    pub speed: String,
-    /// Bench seconds per wall second when paced; none at full speed.
-    #[serde(default)]
-    pub speed_factor: Option<f64>,
-    /// The bench file and station, for a real bench.
-    #[serde(default)]
-    pub bench_file: Option<String>,
-    #[serde(default)]
-    pub station: Option<String>,
-}
-
-#[derive(Debug, Clone, Serialize, serde::Deserialize)]
-pub struct InstrumentRecord {
-    pub role: String,
-    pub link: String,
-    pub profile: String,
-    pub idn: String,
-}
-
-/// Simulation truth: what the model says really flowed.
-#[derive(Debug, Clone, Serialize, serde::Deserialize)]
-pub struct SimulationRecord {
-    pub label: String,
-    pub config: SimConfig,
-    pub true_capacity_ah: f64,
-    pub steps: Vec<TruthStep>,
-}
-
 /// The result of a run.
 #[derive(Debug, Clone)]
 pub struct RunReport {
@@ -590,7 +509,7 @@ pub async fn execute_sim_station(
 }
 
 /// A reopen function for an in-memory link to a simulated instrument.
-fn sim_reopen(r: &Arc<std::sync::Mutex<dyn crate::instrument::link::LineResponder>>) -> Reopen {
+fn sim_reopen(r: &Arc<std::sync::Mutex<dyn instrument::link::LineResponder>>) -> Reopen {
     let r = Arc::clone(r);
     Arc::new(move || {
         let link = sim::link_to(&r);
@@ -824,7 +743,7 @@ pub async fn execute(
     if p.save_pack {
         std::fs::create_dir_all(&p.pack_dir).map_err(io_err(&p.pack_dir))?;
         let path = p.pack_dir.join(PACK_TOML);
-        crate::runlog::write::atomic_write(&path, p.pack.to_toml().as_bytes())
+        record::write::atomic_write(&path, p.pack.to_toml().as_bytes())
             .map_err(io_err(&path))?;
     }
     let (run_id, dir) = create_run_folder(&p.pack_dir, &base_id).map_err(io_err(&p.pack_dir))?;
@@ -892,13 +811,13 @@ pub struct Recording {
     pub run_id: String,
     pub manifest: Manifest,
     /// Where an interrupted run goes on.
-    pub resume: Option<crate::engine::ResumePoint>,
+    pub resume: Option<engine::ResumePoint>,
 }
 
 /// Write the lock naming this process.
 fn write_lock(dir: &Path) -> Result<(), RunError> {
     let path = dir.join(RUN_LOCK);
-    crate::runlog::write::atomic_write(&path, format!("{}\n", std::process::id()).as_bytes())
+    record::write::atomic_write(&path, format!("{}\n", std::process::id()).as_bytes())
         .map_err(io_err(&path))
 }
 
@@ -1057,7 +976,7 @@ pub async fn drive(
         .map(|pct| pct / 100.0 * p.pack.rated_capacity_ah);
     let outcome = {
         let mut live;
-        let sink_ref: &mut dyn crate::engine::event::Sink = match &board {
+        let sink_ref: &mut dyn record::event::Sink = match &board {
             Some(b) => {
                 live = crate::live::LiveSink {
                     inner: &mut sink,
@@ -1118,8 +1037,8 @@ pub fn finish_record(
     let summary_path = dir.join(SUMMARY_JSON);
     write_json(&summary_path, &summary).map_err(io_err(&summary_path))?;
     let report_path = dir.join(REPORT_HTML);
-    let html = crate::report::html::run_report(&summary, &log.samples);
-    crate::runlog::write::atomic_write(&report_path, html.as_bytes())
+    let html = report::html::run_report(&summary, &log.samples);
+    record::write::atomic_write(&report_path, html.as_bytes())
         .map_err(io_err(&report_path))?;
     manifest.status = outcome.status.name().into();
     manifest.stop_reason = outcome.reason.clone();
@@ -1300,7 +1219,7 @@ pub fn reference_resistance(pack_dir: &Path, ctx: &SummaryContext<'_>) -> Option
         return Some(r);
     }
     let date = ctx.test_date.to_string();
-    let runs = crate::fade::history::run_summaries(pack_dir).ok()?;
+    let runs = record::history::run_summaries(pack_dir).ok()?;
     runs.iter()
         .filter(|(_, s)| {
             s.status == "completed"
@@ -1323,6 +1242,6 @@ pub fn summarize_run_dir(
     });
     let summary =
         crate::offline::summarize_run(dir, ctx, outcome, analysis::AnalysisOptions::default())?;
-    let log = read::read_samples(&dir.join(crate::runlog::SAMPLES_CSV))?;
+    let log = read::read_samples(&dir.join(record::SAMPLES_CSV))?;
     Ok((summary, log))
 }

@@ -4,13 +4,13 @@
 //! instruments on pseudo-terminals or loopback TCP ports).
 
 use crate::cli::{pack_from_args, PackArgs};
-use crate::clock::{Clock, PacedClock};
-use crate::instrument::profile::Profile;
-use crate::instrument::scpi::{self, Session};
-use crate::instrument::transport::{self, LinkSpec};
+use engine::clock::{Clock, PacedClock};
+use instrument::profile::Profile;
+use instrument::scpi::{self, Session};
+use instrument::transport::{self, LinkSpec};
 use crate::run;
-use crate::sim::serve::{self, Endpoint, ServeOptions};
-use crate::sim::server::SimRole;
+use sim::serve::{self, Endpoint, ServeOptions};
+use sim::server::SimRole;
 use anyhow::{anyhow, bail, Context};
 use clap::{Args, Subcommand};
 use std::net::SocketAddr;
@@ -118,7 +118,7 @@ pub fn cmd_probe(a: ProbeArgs) -> anyhow::Result<i32> {
         .map_err(|e: transport::LinkSpecError| anyhow!("{e}"))?;
     let mut profile = load_profile(a.profile.as_deref().unwrap_or("generic-scpi-source"))?;
     if let Some(t) = &a.timeout {
-        let s = crate::units::duration(t).map_err(|e| anyhow!("--timeout: {e}"))?;
+        let s = model::units::duration(t).map_err(|e| anyhow!("--timeout: {e}"))?;
         profile.transport.timeout_ms = ((s * 1000.0).round() as u64).max(1);
     }
     let rt = tokio::runtime::Builder::new_current_thread()
@@ -238,7 +238,7 @@ fn cmd_serve(a: ServeArgs) -> anyhow::Result<i32> {
     let pack = pack_from_args(&a.pack_args)?.unwrap_or_else(run::default_sim_pack);
     let cfg = crate::cli::sim_config(a.sim_config.as_deref(), a.sim_ideal, &a.fault)?;
     if let Some(t) = &a.bench_timeout {
-        crate::units::duration(t).map_err(|e| anyhow!("--bench-timeout: {e}"))?;
+        model::units::duration(t).map_err(|e| anyhow!("--bench-timeout: {e}"))?;
     }
     let endpoints: Vec<(SimRole, Endpoint)> = if a.pty {
         if let Some(d) = &a.link_dir {
@@ -340,7 +340,7 @@ fn cmd_serve(a: ServeArgs) -> anyhow::Result<i32> {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::instrument::profile::ProfileRole;
+    use instrument::profile::ProfileRole;
 
     #[test]
     fn roles_parse() {

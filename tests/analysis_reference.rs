@@ -1,8 +1,8 @@
 //! Outside checks of the analysis arithmetic.
 
-use packbench::analysis::{analyze, StepInfo};
-use packbench::pack::{Chemistry, PackSpec};
-use packbench::runlog::read::read_samples;
+use analysis::{analyze, StepInfo};
+use model::pack::{Chemistry, PackSpec};
+use record::read::read_samples;
 use std::path::Path;
 
 fn info(step: u32, kind: &str) -> StepInfo {
@@ -80,7 +80,7 @@ fn rated_capacity_check_value() {
         rated_resistance_mohm: None,
     };
     let samples: Vec<_> = (0..=18_360)
-        .map(|k| packbench::sample::Sample {
+        .map(|k| model::sample::Sample {
             t_s: k as f64,
             step: 1,
             cycle: 1,

@@ -5,11 +5,11 @@
 //! duplicates, a truncated last line, noise and resolution steps,
 //! out-of-order and bad rows) neither crash nor silently change a figure.
 
-use packbench::analysis::curves::{find_peaks, gaussian_smooth};
-use packbench::engine::control::StopHandle;
+use analysis::curves::{find_peaks, gaussian_smooth};
+use engine::control::StopHandle;
 use packbench::run::{self, PackSource, RunRequest, Speed};
-use packbench::runlog::Summary;
-use packbench::sim::SimConfig;
+use record::Summary;
+use sim::SimConfig;
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
@@ -465,7 +465,7 @@ fn curves_are_exported_as_csv() {
 
 fn sim_run_with(
     procedure: &Path,
-    pack: packbench::pack::PackSpec,
+    pack: model::pack::PackSpec,
     results: &Path,
     id: &str,
 ) -> PathBuf {
@@ -494,8 +494,8 @@ fn sim_run_with(
 #[test]
 fn a_lead_acid_test_at_its_rated_current_gets_the_ieee_450_figure() {
     let dir = tempfile::tempdir().unwrap();
-    let pack = packbench::pack::PackSpec {
-        chemistry: packbench::pack::Chemistry::LeadAcid,
+    let pack = model::pack::PackSpec {
+        chemistry: model::pack::Chemistry::LeadAcid,
         series: 6,
         rated_capacity_ah: 100.0,
         rated_energy_wh: None,
@@ -515,7 +515,7 @@ fn a_lead_acid_test_at_its_rated_current_gets_the_ieee_450_figure() {
     // IEEE 450 (fact sheet §4c): actual time over rated time (20 h),
     // corrected with K at the initial temperature.
     let t0 = c.initial_temperature_c.unwrap();
-    let want = c.duration_s / 3600.0 / 20.0 * packbench::analysis::correct::ieee_k(t0) * 100.0;
+    let want = c.duration_s / 3600.0 / 20.0 * analysis::correct::ieee_k(t0) * 100.0;
     assert!((c.ieee450_percent.unwrap() - want).abs() < 1e-9);
     // IEC 60896-11 to 20 °C with λ = 0.006 (a 20-h discharge).
     let t = &c.corrections[0];

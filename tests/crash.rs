@@ -7,7 +7,7 @@
 //! record is half-written (they are written aside and renamed), and
 //! `packbench analyze` and `packbench resume` accept what is left.
 
-use packbench::runlog::import::{stream_log, LogFormat};
+use record::import::{stream_log, LogFormat};
 use std::path::{Path, PathBuf};
 use std::process::{Command, Stdio};
 use std::time::{Duration, Instant};

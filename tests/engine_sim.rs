@@ -2,13 +2,13 @@
 //! the SCPI session and the simulated instruments; results are checked
 //! against the simulator's ground truth and its instruments' state.
 
-use packbench::clock::{Clock, SimClock};
-use packbench::engine::control::StopHandle;
-use packbench::engine::state::RunState;
-use packbench::pack::{Chemistry, PackSpec};
+use engine::clock::{Clock, SimClock};
+use engine::control::StopHandle;
+use engine::state::RunState;
+use model::pack::{Chemistry, PackSpec};
 use packbench::run::{self, PackSource, Prepared, RunReport, RunRequest};
-use packbench::runlog::read::{read_events, read_samples};
-use packbench::sim::{self, SimConfig, SimHandle};
+use record::read::{read_events, read_samples};
+use sim::{self, SimConfig, SimHandle};
 use std::path::Path;
 use std::sync::Arc;
 
@@ -246,7 +246,7 @@ fn assert_safe_stop(r: &RunReport, h: &SimHandle, limit: &str) {
     let breach_t = events
         .iter()
         .find_map(|e| match e {
-            packbench::engine::event::Event::Breach { limit: l, t_s, .. } if l == limit => {
+            engine::event::Event::Breach { limit: l, t_s, .. } if l == limit => {
                 Some(*t_s)
             }
             _ => None,
@@ -254,7 +254,7 @@ fn assert_safe_stop(r: &RunReport, h: &SimHandle, limit: &str) {
         .unwrap_or_else(|| panic!("no {limit} breach in events"));
     assert!(events.iter().any(|e| matches!(
         e,
-        packbench::engine::event::Event::OutputsOff {
+        engine::event::Event::OutputsOff {
             source_off_confirmed: true,
             load_off_confirmed: true,
             ..
@@ -378,7 +378,7 @@ async fn live_and_offline_summaries_agree() {
     let (again, _) = run::summarize_run_dir(&r.run_dir, &ctx, None).unwrap();
     assert_eq!(again, r.summary);
     // And both equal what is on disk.
-    let on_disk: packbench::runlog::Summary =
+    let on_disk: record::Summary =
         serde_json::from_str(&std::fs::read_to_string(r.run_dir.join("summary.json")).unwrap())
             .unwrap();
     assert_eq!(on_disk, r.summary);
@@ -446,8 +446,8 @@ struct FailingSink {
     seen: usize,
 }
 
-impl packbench::engine::event::Sink for FailingSink {
-    fn sample(&mut self, _: &packbench::sample::Sample) -> std::io::Result<()> {
+impl engine::event::Sink for FailingSink {
+    fn sample(&mut self, _: &model::sample::Sample) -> std::io::Result<()> {
         self.seen += 1;
         if self.seen > self.after {
             if self.panic {
@@ -457,16 +457,16 @@ impl packbench::engine::event::Sink for FailingSink {
         }
         Ok(())
     }
-    fn event(&mut self, _: &packbench::engine::event::Event) -> std::io::Result<()> {
+    fn event(&mut self, _: &engine::event::Event) -> std::io::Result<()> {
         Ok(())
     }
 }
 
 #[tokio::test]
 async fn a_panic_or_a_log_failure_mid_run_still_ends_with_outputs_off() {
-    use packbench::engine::{Engine, Station};
-    use packbench::instrument::profile::{Profile, ProfileRole};
-    use packbench::instrument::{Load, Source};
+    use engine::{Engine, Station};
+    use instrument::profile::{Profile, ProfileRole};
+    use instrument::{Load, Source};
     for panic in [true, false] {
         let dir = tempfile::tempdir().unwrap();
         let p = prepare("procedures/capacity-check.toml", li_ion(), dir.path());

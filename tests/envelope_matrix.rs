@@ -7,14 +7,14 @@
 //! and the run must stop on that limit with both outputs off and confirmed.
 //! Where a limit does not apply to a kind, the run must go on.
 
-use packbench::clock::{Clock, SimClock};
-use packbench::engine::control::StopHandle;
-use packbench::engine::event::Event;
-use packbench::engine::state::RunState;
+use engine::clock::{Clock, SimClock};
+use engine::control::StopHandle;
+use engine::event::Event;
+use engine::state::RunState;
 use packbench::run::{self, PackSource, RunRequest};
-use packbench::runlog::read::read_events;
-use packbench::sim::config::{Quantity, ReadingFault};
-use packbench::sim::{self, SimConfig};
+use record::read::read_events;
+use sim::config::{Quantity, ReadingFault};
+use sim::{self, SimConfig};
 use std::sync::Arc;
 
 const LIMITS: [&str; 7] = [

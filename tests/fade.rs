@@ -1,10 +1,11 @@
 //! Capacity fade, grading and the fleet view.
 
-use packbench::analysis::fit::{t_quantile, LinearFit};
+use analysis::fit::{t_quantile, LinearFit};
 use packbench::demo;
-use packbench::fade::grade::{GradeInputs, Policy};
-use packbench::fade::{fleet, history, model};
-use packbench::pack::Chemistry;
+use analysis::fade::grade::{GradeInputs, Policy};
+use analysis::fade::{fleet, trend};
+use record::history;
+use model::pack::Chemistry;
 use std::path::Path;
 
 fn sig6(a: f64, b: f64) -> bool {
@@ -205,14 +206,14 @@ fn too_few_points_project_nothing_and_earlier_history_counts() {
     .unwrap();
     let h = history::load(dir.path(), "OLD-1", None).unwrap();
     assert_eq!(h.points.len(), 2);
-    let fa = model::analyze(&h, 80.0);
+    let fa = trend::analyze(&h, 80.0);
     assert!(fa.eol_cycles.is_none() && fa.models.is_empty());
     assert!(fa.notes[0].contains("at least 3"), "{:?}", fa.notes);
     // A third point, from an extra file, makes a fit.
     let extra = dir.path().join("more.csv");
     std::fs::write(&extra, "date,cycles,capacity_ah\n2024-12-10,400,12.8\n").unwrap();
     let h = history::load(dir.path(), "OLD-1", Some(&extra)).unwrap();
-    let fa = model::analyze(&h, 80.0);
+    let fa = trend::analyze(&h, 80.0);
     let eol = fa.eol_cycles.unwrap();
     // 13.6 → 12.8 Ah over 300 cycles: about 0.19 % of rated per 100 cycles.
     assert!(eol.cycles > 1000.0 && eol.cycles < 1300.0, "{}", eol.cycles);
@@ -235,7 +236,7 @@ fn demo_fleet_projections_match_the_simulated_ageing() {
     assert_eq!(out.runs, 8 * 9 - 2);
     for p in demo::scenario() {
         let h = history::load(&out.results, p.id, None).unwrap();
-        let fa = model::analyze(&h, 80.0);
+        let fa = trend::analyze(&h, 80.0);
         let law = p.law.cycles_to(0.80);
         let got = fa
             .eol_cycles
@@ -290,7 +291,7 @@ fn demo_fleet_projections_match_the_simulated_ageing() {
     let csv = fleet::to_csv(&out.fleet).unwrap();
     assert_eq!(csv.lines().count(), 9);
     assert!(csv.lines().next().unwrap().starts_with("rank,pack_id,"));
-    let again = fleet::build(&out.results, demo::scenario_today(), 92, 80.0).unwrap();
+    let again = history::fleet(&out.results, demo::scenario_today(), 92, 80.0).unwrap();
     assert_eq!(again, out.fleet);
 }
 
@@ -298,9 +299,9 @@ fn demo_fleet_projections_match_the_simulated_ageing() {
 /// measured throughput when the operator gives none.
 #[tokio::test]
 async fn history_from_runs_counts_cycles_and_leaves_out_aborted_runs() {
-    use packbench::engine::control::StopHandle;
+    use engine::control::StopHandle;
     use packbench::run::{self, PackSource, RunOptions, RunRequest, Speed};
-    use packbench::sim::SimConfig;
+    use sim::SimConfig;
     let dir = tempfile::tempdir().unwrap();
     let mut discharged = Vec::new();
     for (day, fault) in [

@@ -2,11 +2,11 @@
 //! interpretation; none crashes, hangs, or sends a setpoint outside the
 //! envelope.
 
-use packbench::instrument::link::{InMemoryLink, LineResponder, Link, Response};
-use packbench::instrument::scpi::Session;
-use packbench::pack::{Chemistry, PackSpec};
-use packbench::procedure::validate::plan_from_text;
-use packbench::runlog::import::{stream_log, LogFormat};
+use instrument::link::{InMemoryLink, LineResponder, Link, Response};
+use instrument::scpi::Session;
+use model::pack::{Chemistry, PackSpec};
+use model::procedure::validate::plan_from_text;
+use record::import::{stream_log, LogFormat};
 use std::path::Path;
 use std::process::Command;
 use std::sync::{Arc, Mutex};
@@ -123,7 +123,7 @@ fn oversized_and_deeply_nested_procedures_get_clear_errors() {
     let dir = tempfile::tempdir().unwrap();
     let path = dir.path().join("big.toml");
     std::fs::write(&path, &big).unwrap();
-    let e = packbench::procedure::load(&path, &pack())
+    let e = model::procedure::load(&path, &pack())
         .unwrap_err()
         .to_string();
     assert!(e.contains("larger than"), "{e}");
@@ -270,7 +270,7 @@ fn hostile_instrument_replies_are_errors_never_numbers() {
     });
 }
 
-fn read(bytes: &[u8]) -> Result<(usize, packbench::runlog::import::ReadReport), String> {
+fn read(bytes: &[u8]) -> Result<(usize, record::import::ReadReport), String> {
     let dir = tempfile::tempdir().unwrap();
     let p = dir.path().join("log.csv");
     std::fs::write(&p, bytes).unwrap();
@@ -319,10 +319,10 @@ fn hostile_csv_logs_get_located_errors_or_documented_readings() {
 /// voltage_max, current at most current_max).
 #[test]
 fn no_setting_sent_is_outside_the_envelope() {
-    use packbench::clock::{Clock, SimClock};
-    use packbench::engine::control::StopHandle;
+    use engine::clock::{Clock, SimClock};
+    use engine::control::StopHandle;
     use packbench::run::{self, PackSource, RunRequest};
-    use packbench::sim::{self, SimConfig};
+    use sim::{self, SimConfig};
     let rt = tokio::runtime::Builder::new_current_thread()
         .enable_all()
         .build()

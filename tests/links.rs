@@ -4,9 +4,9 @@
 //! (outputs off in the simulator within 2 s of the fault, status aborted,
 //! samples kept); bad bench and profile files touch no instrument.
 
-use packbench::engine::state::RunState;
-use packbench::runlog::read::read_samples;
-use packbench::runlog::Summary;
+use engine::state::RunState;
+use record::read::read_samples;
+use record::Summary;
 use std::io::{BufRead, BufReader};
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
@@ -418,7 +418,7 @@ fn bad_bench_and_profile_files_touch_no_instrument() {
     let dir = tempfile::tempdir().unwrap();
     let s = serve(dir.path(), &["--tcp", "127.0.0.1:0"], &[]);
     let good = std::fs::read_to_string(&s.bench).unwrap();
-    let custom = packbench::instrument::profile::GENERIC_LOAD
+    let custom = instrument::profile::GENERIC_LOAD
         .replace("name = \"generic-scpi-load\"", "name = \"my-load\"");
     let cases: Vec<(&str, String, &str)> = vec![
         (

@@ -1,9 +1,9 @@
 //! Procedure parsing and validation: every problem is reported with its
 //! file, line and column and what was expected, before anything runs.
 
-use packbench::pack::{Chemistry, PackSpec};
-use packbench::procedure::validate::plan_from_text;
-use packbench::procedure::{EndCondition, StepKind};
+use model::pack::{Chemistry, PackSpec};
+use model::procedure::validate::plan_from_text;
+use model::procedure::{EndCondition, StepKind};
 use std::path::Path;
 
 fn pack() -> PackSpec {
@@ -241,7 +241,7 @@ fn every_shipped_procedure_validates() {
 #[test]
 fn a_step_may_set_its_own_sampling_interval() {
     let pack = packbench::run::default_sim_pack();
-    let p = packbench::procedure::load(
+    let p = model::procedure::load(
         std::path::Path::new("procedures/dcir-soc-sweep-li-ion.toml"),
         &pack,
     )
@@ -259,7 +259,7 @@ fn a_step_may_set_its_own_sampling_interval() {
         .replacen("every = \"0.1s\"", "every = \"0.001s\"", 1);
     let path = dir.path().join("bad.toml");
     std::fs::write(&path, &bad).unwrap();
-    let e = packbench::procedure::load(&path, &pack)
+    let e = model::procedure::load(&path, &pack)
         .unwrap_err()
         .to_string();
     let line = bad.lines().position(|l| l.contains("0.001s")).unwrap() + 1;

@@ -1,12 +1,12 @@
 //! Properties of the arithmetic, over generated inputs (proptest).
 
-use packbench::analysis::integrate::Integrator;
-use packbench::engine::event::EndKind;
-use packbench::pack::{Chemistry, PackSpec};
-use packbench::procedure::validate::plan_from_text;
-use packbench::procedure::StepKind;
-use packbench::sim::SimConfig;
-use packbench::units::{self, CurrentSpec, VoltageSpec};
+use analysis::integrate::Integrator;
+use engine::event::EndKind;
+use model::pack::{Chemistry, PackSpec};
+use model::procedure::validate::plan_from_text;
+use model::procedure::StepKind;
+use sim::SimConfig;
+use model::units::{self, CurrentSpec, VoltageSpec};
 use proptest::prelude::*;
 use std::path::Path;
 
@@ -270,7 +270,7 @@ fn every_step_of_a_valid_plan_reaches_an_end() {
             alone.envelope.voltage_min_v = 2.0 * 10.0;
             alone.envelope.voltage_max_v = 4.4 * 10.0;
             alone.envelope.charge_max_ah = 1e6;
-            alone.steps = vec![packbench::procedure::PlanStep { index: 1, ..st.clone() }];
+            alone.steps = vec![model::procedure::PlanStep { index: 1, ..st.clone() }];
             let mut cfg = SimConfig::default();
             cfg.pack.initial_soc = match st.kind {
                 StepKind::Charge { .. } => 0.1,

@@ -1,10 +1,10 @@
 //! The simulated instruments as SCPI endpoints, spoken to through the same
 //! session layer and in-memory link the engine uses.
 
-use packbench::clock::{Clock, SimClock};
-use packbench::instrument::scpi::{parse_error_entry, Session};
+use engine::clock::{Clock, SimClock};
+use instrument::scpi::{parse_error_entry, Session};
 use packbench::run::default_sim_pack;
-use packbench::sim::{self, SimConfig};
+use sim::{self, SimConfig};
 use std::sync::Arc;
 use std::time::Duration;
 
@@ -81,7 +81,7 @@ async fn queue_overflow_replaces_the_newest_entry() {
         }
         codes.push(c);
     }
-    assert_eq!(codes.len(), packbench::sim::server::QUEUE_DEPTH);
+    assert_eq!(codes.len(), sim::server::QUEUE_DEPTH);
     assert_eq!(*codes.last().unwrap(), -350);
     assert!(codes[..codes.len() - 1].iter().all(|&c| c == -113));
 }
@@ -134,7 +134,7 @@ async fn a_silent_instrument_times_out_instead_of_answering_zero() {
     assert!(load.query_number("MEAS:VOLT?").await.is_ok());
     clock.set(11.0);
     let e = load.query_number("MEAS:VOLT?").await.unwrap_err();
-    assert_eq!(e.kind, packbench::instrument::ErrorKind::Timeout);
+    assert_eq!(e.kind, instrument::ErrorKind::Timeout);
 }
 
 /// Answers its first query 250 ms late, every other at once.
@@ -142,12 +142,12 @@ struct LateOnce {
     n: usize,
 }
 
-impl packbench::instrument::link::LineResponder for LateOnce {
+impl instrument::link::LineResponder for LateOnce {
     fn respond(
         &mut self,
         line: &str,
-    ) -> Result<packbench::instrument::link::Response, std::io::Error> {
-        use packbench::instrument::link::Response;
+    ) -> Result<instrument::link::Response, std::io::Error> {
+        use instrument::link::Response;
         self.n += 1;
         let reply = match line {
             "*OPC?" => "1".to_string(),
@@ -164,7 +164,7 @@ impl packbench::instrument::link::LineResponder for LateOnce {
 
 #[tokio::test]
 async fn a_late_reply_is_never_taken_for_the_next_query() {
-    use packbench::instrument::link::{InMemoryLink, LineResponder};
+    use instrument::link::{InMemoryLink, LineResponder};
     use std::sync::Mutex;
     let r: Arc<Mutex<dyn LineResponder>> = Arc::new(Mutex::new(LateOnce { n: 0 }));
     let mut s = Session::new(
@@ -174,7 +174,7 @@ async fn a_late_reply_is_never_taken_for_the_next_query() {
         Duration::from_millis(200),
     );
     let e = s.query("MEAS:VOLT?").await.unwrap_err();
-    assert_eq!(e.kind, packbench::instrument::ErrorKind::Timeout);
+    assert_eq!(e.kind, instrument::ErrorKind::Timeout);
     // The late "reply to MEAS:VOLT?" arrives during resynchronisation and
     // is skipped; the next query gets its own answer.
     s.resync().await.unwrap();
@@ -189,12 +189,12 @@ async fn a_late_reply_is_never_taken_for_the_next_query() {
 /// set to end its responses with CR).
 struct CrEcho;
 
-impl packbench::instrument::link::LineResponder for CrEcho {
+impl instrument::link::LineResponder for CrEcho {
     fn respond(
         &mut self,
         line: &str,
-    ) -> Result<packbench::instrument::link::Response, std::io::Error> {
-        Ok(packbench::instrument::link::Response::Reply(format!(
+    ) -> Result<instrument::link::Response, std::io::Error> {
+        Ok(instrument::link::Response::Reply(format!(
             "{line}-ok\r"
         )))
     }
@@ -202,8 +202,8 @@ impl packbench::instrument::link::LineResponder for CrEcho {
 
 #[tokio::test]
 async fn framing_follows_the_profile_terminator_and_delay() {
-    use packbench::instrument::link::{InMemoryLink, LineResponder};
-    use packbench::instrument::scpi::Framing;
+    use instrument::link::{InMemoryLink, LineResponder};
+    use instrument::scpi::Framing;
     use std::sync::Mutex;
     let r: Arc<Mutex<dyn LineResponder>> = Arc::new(Mutex::new(CrEcho));
     // The in-memory link ends replies with LF after the instrument's CR

@@ -3,14 +3,14 @@
 //! near the cutoff against the simulation truth, zero offsets, standby
 //! drain, the low-capacity alarm and the last-ditch switch-off.
 
-use packbench::clock::{Clock, SimClock};
-use packbench::engine::control::StopHandle;
-use packbench::engine::event::Event;
-use packbench::engine::state::RunState;
-use packbench::pack::PackSpec;
+use engine::clock::{Clock, SimClock};
+use engine::control::StopHandle;
+use engine::event::Event;
+use engine::state::RunState;
+use model::pack::PackSpec;
 use packbench::run::{self, PackSource, Prepared, RunOptions, RunRequest};
-use packbench::runlog::read::read_events;
-use packbench::sim::{self, SimConfig};
+use record::read::read_events;
+use sim::{self, SimConfig};
 use std::path::{Path, PathBuf};
 use std::process::{Command, Stdio};
 use std::sync::Arc;
@@ -486,7 +486,7 @@ fn past_cutoff(text: &str) -> (f64, f64) {
         .unwrap();
     assert_eq!(r.outcome.status, RunState::Completed);
     let (t_cross, _) = handle.crossed().expect("the voltage crossed the cutoff");
-    let log = packbench::runlog::read::read_samples(&r.run_dir.join("samples.csv")).unwrap();
+    let log = record::read::read_samples(&r.run_dir.join("samples.csv")).unwrap();
     let step: Vec<_> = log.samples.iter().filter(|s| s.step == 1).collect();
     let last = step.last().unwrap();
     assert!(last.voltage_v <= cutoff, "the step ended on its cutoff");
@@ -671,7 +671,7 @@ name = "drain"
     );
     assert!((dr.current_ma - 5.0).abs() < 0.5, "{} mA", dr.current_ma);
     // 5 mA x 730.5 h = 3.65 Ah a month: 26 % of the rated 14 Ah.
-    let expected = packbench::analysis::drain_pct_per_month(dr.current_ma, 14.0);
+    let expected = analysis::drain_pct_per_month(dr.current_ma, 14.0);
     assert!((dr.pct_per_month - expected).abs() < 1e-9);
     assert!((dr.pct_per_month - 26.1).abs() < 3.0);
 }
@@ -718,29 +718,29 @@ fn a_second_ctrl_c_switches_every_instrument_off_on_fresh_links() {
         let links = sim::build(&run::default_sim_pack(), &cfg, clock);
         let handle = links.handle.clone();
         // Turn the load on through its running link.
-        let mut load = packbench::instrument::Load::connect(
+        let mut load = instrument::Load::connect(
             links.load,
-            packbench::instrument::profile::Profile::builtin(
-                packbench::instrument::profile::ProfileRole::Load,
+            instrument::profile::Profile::builtin(
+                instrument::profile::ProfileRole::Load,
             ),
         )
         .await
         .unwrap();
-        load.program(packbench::instrument::LoadSetting::Current(1.0))
+        load.program(instrument::LoadSetting::Current(1.0))
             .await
             .unwrap();
         load.0.enable().await.unwrap();
         assert!(handle.load_input_on());
         let em = run::Emergency::default();
-        let reopen = |r: &Arc<std::sync::Mutex<dyn packbench::instrument::link::LineResponder>>| {
+        let reopen = |r: &Arc<std::sync::Mutex<dyn instrument::link::LineResponder>>| {
             let r = Arc::clone(r);
-            let f: packbench::instrument::scpi::Reopen = Arc::new(move || {
+            let f: instrument::scpi::Reopen = Arc::new(move || {
                 let link = sim::link_to(&r);
                 Box::pin(async move { Ok(link) })
             });
             f
         };
-        use packbench::instrument::profile::{Profile, ProfileRole};
+        use instrument::profile::{Profile, ProfileRole};
         em.register(
             "bay-1 source".into(),
             reopen(&links.source_responder),

@@ -2,7 +2,7 @@
 //! panic or a hang; every row it gives has finite numbers.
 #![no_main]
 use libfuzzer_sys::fuzz_target;
-use packbench::runlog::import::{stream_log, LogFormat};
+use record::import::{stream_log, LogFormat};
 use std::io::Write;
 
 fuzz_target!(|data: &[u8]| {

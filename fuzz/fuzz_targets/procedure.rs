@@ -2,9 +2,9 @@
 //! accepted plan must keep every setpoint inside its envelope.
 #![no_main]
 use libfuzzer_sys::fuzz_target;
-use packbench::pack::{Chemistry, PackSpec};
-use packbench::procedure::validate::plan_from_text;
-use packbench::procedure::{DischargeMode, StepKind};
+use model::pack::{Chemistry, PackSpec};
+use model::procedure::validate::plan_from_text;
+use model::procedure::{DischargeMode, StepKind};
 use std::path::Path;
 
 fuzz_target!(|data: &[u8]| {

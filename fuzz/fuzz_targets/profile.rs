@@ -1,7 +1,7 @@
 //! Instrument profiles: any text gives a profile or located errors.
 #![no_main]
 use libfuzzer_sys::fuzz_target;
-use packbench::instrument::profile::Profile;
+use instrument::profile::Profile;
 use std::path::Path;
 
 fuzz_target!(|data: &[u8]| {

@@ -1,7 +1,7 @@
 //! Quantities as written on a bench ("4.2V/cell", "0.5C", "1h30m").
 #![no_main]
 use libfuzzer_sys::fuzz_target;
-use packbench::units;
+use model::units;
 
 fuzz_target!(|data: &[u8]| {
     let Ok(text) = std::str::from_utf8(data) else {

@@ -2,7 +2,7 @@
 //! that parses is finite and not the overload marker.
 #![no_main]
 use libfuzzer_sys::fuzz_target;
-use packbench::instrument::scpi::{parse_bool_reply, parse_error_entry, parse_number};
+use instrument::scpi::{parse_bool_reply, parse_error_entry, parse_number};
 
 fuzz_target!(|data: &[u8]| {
     let text = String::from_utf8_lossy(data);

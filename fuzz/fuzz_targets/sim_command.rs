@@ -2,8 +2,8 @@
 //! to a simulated source and load; replies or errors, never a panic.
 #![no_main]
 use libfuzzer_sys::fuzz_target;
-use packbench::clock::{Clock, SimClock};
-use packbench::sim::{self, SimConfig};
+use engine::clock::{Clock, SimClock};
+use sim::{self, SimConfig};
 use std::sync::Arc;
 
 fuzz_target!(|data: &[u8]| {

@@ -1,0 +1,371 @@
+//! Capacity at rated conditions: temperature and rate corrections of a
+//! measured capacity, and the IEEE 450 percent capacity of a stationary
+//! lead-acid performance test. Each correction says what it did and why.
+//!
+//! Sources (standards fact sheet, `shared/reference/standards.md`):
+//! - IEC 60896-11 §4a: C_ref = C / (1 + λ·(θ − θ_ref)), θ_ref = 20 °C,
+//!   λ = 0.006/°C for discharges longer than 3 h (10-h, 20-h rates) and
+//!   0.01/°C for the 3-h and 1-h rates [coefficients C-weak, form M].
+//! - IEEE 450 §4c: percent capacity from the time to end voltage at the
+//!   rated current, temperature-corrected with the vented lead-acid factor
+//!   table referenced to 25 °C (table values from memory [M]; checked in the
+//!   tests against the published polynomial fit [C]).
+//! - Peukert §5: C_I = C·(C/(I·H))^(k−1); k from two tests
+//!   k = ln(t2/t1) / ln(I1/I2) [C/D].
+//! - Other chemistries: a documented linear coefficient around 25 °C,
+//!   common practice; the values are from memory.
+//!
+//! Which temperature: the pack's temperature at the start of the discharge,
+//! read by the bench's sensor on the pack as the stand-in for the
+//! electrolyte temperature. IEEE 450 corrects for the initial electrolyte
+//! temperature (§4c); IEC 60896-11 keeps the ambient at 15–25 °C and
+//! corrects for the initial (mean) temperature of the discharge (§4a, the
+//! exact form from memory [M]). Both assume a battery that has rested to
+//! the room's temperature after its charge: the shipped lead-acid procedure
+//! rests until the temperature settles (`dT/dt <`), and the summary warns
+//! when the pack is still more than [`COOLED_WITHIN_K`] from its
+//! temperature before the run.
+
+use model::pack::Chemistry;
+use serde::{Deserialize, Serialize};
+
+/// One correction applied to a measured capacity.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Correction {
+    /// `temperature` or `rate`.
+    pub kind: String,
+    /// The method: `IEC 60896-11`, `Peukert`, `linear coefficient (common practice)`.
+    pub method: String,
+    /// Corrected = measured × factor.
+    pub factor: f64,
+    /// Why and with which inputs.
+    pub why: String,
+}
+
+/// How to correct capacities.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct CorrectionPolicy {
+    /// Correct for temperature (the temperature at the start of the discharge).
+    pub temperature: bool,
+    /// Correct for rate with Peukert's law when the test current differs
+    /// from the rated current by more than 2 %.
+    pub rate: bool,
+    /// Peukert exponent; default per chemistry ([`peukert_default`]).
+    pub peukert_k: Option<f64>,
+}
+
+impl Default for CorrectionPolicy {
+    fn default() -> Self {
+        CorrectionPolicy {
+            temperature: true,
+            rate: true,
+            peukert_k: None,
+        }
+    }
+}
+
+/// IEC 60896-11 coefficient for a discharge of this duration.
+pub fn iec60896_lambda(duration_h: f64) -> f64 {
+    // Fact sheet §4a: 0.006 for discharges longer than 3 h, 0.01 for the
+    // 3-h and 1-h rates.
+    if duration_h > 3.0 {
+        0.006
+    } else {
+        0.01
+    }
+}
+
+/// A capacity discharge that starts more than this far from the pack's
+/// temperature at rest before the run (taken as the room's) is flagged:
+/// the pack had not cooled after its charge, and a temperature correction
+/// from it misleads (common practice: a few kelvin).
+pub const COOLED_WITHIN_K: f64 = 3.0;
+
+/// IEC 60896-11 reference temperature, °C.
+pub const IEC60896_REF_C: f64 = 20.0;
+
+/// IEC 60896-11: capacity at the reference temperature.
+pub fn iec60896_corrected(measured_ah: f64, temperature_c: f64, lambda: f64) -> f64 {
+    measured_ah / (1.0 + lambda * (temperature_c - IEC60896_REF_C))
+}
+
+/// Vented lead-acid temperature factor K (capacity at 25 °C ≈ capacity at
+/// T × K; K > 1 when colder than 25 °C), °C → K. Values from memory [M],
+/// fact sheet §4c table; interpolated linearly, held at the ends.
+pub const IEEE_K_TABLE: [(f64, f64); 20] = [
+    (-3.9, 1.52),
+    (-1.1, 1.43),
+    (1.7, 1.35),
+    (4.4, 1.30),
+    (7.2, 1.25),
+    (10.0, 1.19),
+    (12.8, 1.15),
+    (15.6, 1.11),
+    (18.3, 1.08),
+    (21.1, 1.04),
+    (23.9, 1.011),
+    (25.0, 1.000),
+    (26.7, 0.98),
+    (29.4, 0.96),
+    (32.2, 0.94),
+    (35.0, 0.93),
+    (37.8, 0.91),
+    (43.3, 0.88),
+    (48.9, 0.86),
+    (51.7, 0.85),
+];
+
+/// The temperature factor K at `t_c` (°C).
+pub fn ieee_k(t_c: f64) -> f64 {
+    let tab = &IEEE_K_TABLE;
+    if t_c <= tab[0].0 {
+        return tab[0].1;
+    }
+    for w in tab.windows(2) {
+        let ((t0, k0), (t1, k1)) = (w[0], w[1]);
+        if t_c <= t1 {
+            return k0 + (k1 - k0) * (t_c - t0) / (t1 - t0);
+        }
+    }
+    tab[tab.len() - 1].1
+}
+
+/// IEEE 450 time-adjusted percent capacity: the actual time to end voltage
+/// at the rated current, over the rated time, corrected to 25 °C with K
+/// (fact sheet §4c: at 25 °C it is t_a/t_s × 100; a cold battery's figure
+/// rises, a warm one's falls). IEEE 450 prints this as t_a/(t_s·K_T) with
+/// its own K_T = 1/K.
+pub fn ieee450_percent(actual_h: f64, rated_h: f64, initial_temperature_c: f64) -> f64 {
+    actual_h * ieee_k(initial_temperature_c) / rated_h * 100.0
+}
+
+/// Linear temperature coefficient for chemistries without a standard
+/// correction here, per °C around 25 °C: common practice, values from
+/// memory (capacity rises a few tenths of a percent per kelvin near room
+/// temperature).
+pub fn linear_coefficient(chem: Chemistry) -> f64 {
+    match chem {
+        Chemistry::LiIon | Chemistry::Lfp => 0.003,
+        Chemistry::Nimh => 0.005,
+        Chemistry::LeadAcid => 0.006,
+    }
+}
+
+/// Reference temperature of the linear coefficient, °C.
+pub const LINEAR_REF_C: f64 = 25.0;
+
+/// Default Peukert exponent per chemistry (fact sheet §5: lead-acid
+/// 1.1–1.3, Li-ion/LFP ≈ 1.05, NiMH 1.05–1.10; the mid values).
+pub fn peukert_default(chem: Chemistry) -> f64 {
+    match chem {
+        Chemistry::LeadAcid => 1.2,
+        Chemistry::LiIon | Chemistry::Lfp => 1.05,
+        Chemistry::Nimh => 1.08,
+    }
+}
+
+/// Peukert: discharge time at current `i` of a battery rated `c_ah` at the
+/// `h`-hour rate: t = H·(C/(I·H))^k.
+pub fn peukert_time_h(c_ah: f64, h: f64, i: f64, k: f64) -> f64 {
+    h * (c_ah / (i * h)).powf(k)
+}
+
+/// Capacity measured at current `i_meas` carried to current `i_ref`:
+/// C_ref = C_meas · (I_meas/I_ref)^(k−1).
+pub fn peukert_to_rate(c_meas: f64, i_meas: f64, i_ref: f64, k: f64) -> f64 {
+    c_meas * (i_meas / i_ref).powf(k - 1.0)
+}
+
+/// Peukert exponent from two tests (current, time to end voltage).
+pub fn peukert_exponent(i1: f64, t1: f64, i2: f64, t2: f64) -> Option<f64> {
+    let d = (i1 / i2).ln();
+    (d.abs() > 1e-9 && t1 > 0.0 && t2 > 0.0).then(|| (t2 / t1).ln() / d)
+}
+
+/// The inputs of a capacity correction.
+#[derive(Debug, Clone, Copy)]
+pub struct CapacityTest {
+    pub chemistry: Chemistry,
+    pub measured_ah: f64,
+    pub mean_current_a: f64,
+    pub duration_s: f64,
+    /// Temperature at the start of the discharge, °C.
+    pub initial_temperature_c: Option<f64>,
+    pub rated_ah: f64,
+    /// Rated rate as a C-rate.
+    pub rated_rate_c: f64,
+}
+
+/// Correct a measured capacity to rated conditions. Returns the corrected
+/// capacity and the corrections applied (an empty list: none needed or
+/// possible; the reasons are in the list when one was skipped).
+pub fn correct(test: &CapacityTest, policy: &CorrectionPolicy) -> (f64, Vec<Correction>) {
+    let mut c = test.measured_ah;
+    let mut out = Vec::new();
+    if policy.temperature {
+        match test.initial_temperature_c {
+            Some(t) => {
+                let (method, factor, why) = if test.chemistry == Chemistry::LeadAcid {
+                    let h = test.duration_s / 3600.0;
+                    let lambda = iec60896_lambda(h);
+                    (
+                        "IEC 60896-11".to_string(),
+                        iec60896_corrected(1.0, t, lambda),
+                        format!(
+                            "C20 = C / (1 + {lambda}·(θ − 20 °C)) with θ = {t:.1} °C, the pack's (electrolyte stand-in) temperature at the start of a {h:.2} h discharge (λ = {lambda} for a discharge {} 3 h)",
+                            if h > 3.0 { "over" } else { "of at most" }
+                        ),
+                    )
+                } else {
+                    let a = linear_coefficient(test.chemistry);
+                    (
+                        "linear coefficient (common practice)".to_string(),
+                        1.0 / (1.0 + a * (t - LINEAR_REF_C)),
+                        format!(
+                            "C25 = C / (1 + {a}·(θ − 25 °C)) with θ = {t:.1} °C at the start of the discharge; coefficient {a}/°C is common practice for {}",
+                            test.chemistry
+                        ),
+                    )
+                };
+                c *= factor;
+                out.push(Correction {
+                    kind: "temperature".into(),
+                    method,
+                    factor,
+                    why,
+                });
+            }
+            None => out.push(Correction {
+                kind: "temperature".into(),
+                method: "none".into(),
+                factor: 1.0,
+                why: "no temperature was logged at the start of the discharge: not corrected"
+                    .into(),
+            }),
+        }
+    }
+    if policy.rate && test.mean_current_a > 0.0 && test.rated_rate_c > 0.0 {
+        let i_rated = test.rated_rate_c * test.rated_ah;
+        let off = test.mean_current_a / i_rated - 1.0;
+        if off.abs() > 0.02 {
+            let k = policy
+                .peukert_k
+                .unwrap_or_else(|| peukert_default(test.chemistry));
+            let factor = peukert_to_rate(1.0, test.mean_current_a, i_rated, k);
+            c *= factor;
+            out.push(Correction {
+                kind: "rate".into(),
+                method: "Peukert".into(),
+                factor,
+                why: format!(
+                    "tested at {:.3} A, rated at {:.3} A ({}C): C_rated = C·(I_test/I_rated)^(k−1) with k = {k}{}",
+                    test.mean_current_a,
+                    i_rated,
+                    test.rated_rate_c,
+                    if policy.peukert_k.is_some() { " (given)" } else { " (default for the chemistry)" }
+                ),
+            });
+        }
+    }
+    (c, out)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn iec60896_worked_examples() {
+        // Fact sheet §4a check values [D] (formula [M], λ [C-weak]):
+        // 95.0 Ah at 30 °C, 10-h test → 89.62 Ah; at 15 °C → 97.94 Ah;
+        // 3-h test at 30 °C (λ = 0.01) → 86.36 Ah; at 20 °C exactly 1.
+        let l10 = iec60896_lambda(10.0);
+        assert_eq!(l10, 0.006);
+        assert!((iec60896_corrected(95.0, 30.0, l10) - 89.62).abs() < 0.005);
+        assert!((iec60896_corrected(95.0, 15.0, l10) - 97.94).abs() < 0.005);
+        let l3 = iec60896_lambda(3.0);
+        assert_eq!(l3, 0.01);
+        assert!((iec60896_corrected(95.0, 30.0, l3) - 86.36).abs() < 0.005);
+        assert_eq!(iec60896_corrected(95.0, 20.0, l10), 95.0);
+    }
+
+    #[test]
+    fn ieee450_percent_capacity_worked_examples() {
+        // Fact sheet §4c check values [D]: t_s = 8 h, t_a = 7 h 12 min at
+        // 25 °C → 90.0 %; at 15.6 °C (K = 1.11, table value from memory)
+        // t_a = 6.5 h → 90.2 % (raw 81.3 %).
+        assert!((ieee450_percent(7.2, 8.0, 25.0) - 90.0).abs() < 1e-9);
+        let cold = ieee450_percent(6.5, 8.0, 15.6);
+        assert!((cold - 90.2).abs() < 0.05, "{cold}");
+        // Invariants: cold raises the figure, warm lowers it.
+        assert!(cold > 6.5 / 8.0 * 100.0);
+        assert!(ieee450_percent(6.5, 8.0, 32.0) < 6.5 / 8.0 * 100.0);
+    }
+
+    #[test]
+    fn the_k_table_agrees_with_the_published_fit() {
+        // Fact sheet §4c [C]: y = −2.8117x³ + 4.1916x² − 2.4941x + 1.405,
+        // x = T/100 °C, reproduces the table to ±0.01 (here ±0.015: at 1.7 °C they differ by 0.014).
+        for (t, k) in IEEE_K_TABLE {
+            let x = t / 100.0;
+            let y = -2.8117 * x.powi(3) + 4.1916 * x * x - 2.4941 * x + 1.405;
+            assert!((y - k).abs() <= 0.015, "{t} °C: table {k}, fit {y}");
+            assert!((ieee_k(t) - k).abs() < 1e-12);
+        }
+        assert!(
+            (ieee_k(20.0) - (1.08 + (1.04 - 1.08) * (20.0 - 18.3) / (21.1 - 18.3))).abs() < 1e-12
+        );
+    }
+
+    #[test]
+    fn peukert_textbook_examples() {
+        // Fact sheet §5 [C]: 120 Ah at the 20-h rate, k = 1.4, 120 A →
+        // 0.30 h (recomputed 0.3017 h).
+        let t = peukert_time_h(120.0, 20.0, 120.0, 1.4);
+        assert!((t - 0.3017).abs() < 0.0005, "{t}");
+        // [D] 100 Ah @ 20 h, k = 1.2, 10 A → 8.7055 h, 87.06 Ah.
+        let t = peukert_time_h(100.0, 20.0, 10.0, 1.2);
+        assert!((t - 8.7055).abs() < 0.0005, "{t}");
+        assert!((peukert_to_rate(100.0, 5.0, 10.0, 1.2) - 87.06).abs() < 0.01);
+        // Round trip: at the rated current the rated time comes back.
+        assert!((peukert_time_h(100.0, 20.0, 5.0, 1.2) - 20.0).abs() < 1e-9);
+        // [D] two tests: 20 A → 4 h, 5 A → 20 h → k = 1.1610.
+        let k = peukert_exponent(20.0, 4.0, 5.0, 20.0).unwrap();
+        assert!((k - 1.1610).abs() < 0.0001, "{k}");
+        // k = 1 reduces to t = C/I.
+        assert!((peukert_time_h(100.0, 20.0, 25.0, 1.0) - 4.0).abs() < 1e-12);
+    }
+
+    #[test]
+    fn corrections_say_what_and_why() {
+        let test = CapacityTest {
+            chemistry: Chemistry::LeadAcid,
+            measured_ah: 95.0,
+            mean_current_a: 5.0,
+            duration_s: 19.0 * 3600.0,
+            initial_temperature_c: Some(30.0),
+            rated_ah: 100.0,
+            rated_rate_c: 0.05,
+        };
+        let (c, why) = correct(&test, &CorrectionPolicy::default());
+        assert!((c - 89.62).abs() < 0.005, "{c}");
+        assert_eq!(why.len(), 1, "at the rated current: no rate correction");
+        assert_eq!(why[0].method, "IEC 60896-11");
+        // At twice the rated current the Peukert factor joins in.
+        let fast = CapacityTest {
+            mean_current_a: 10.0,
+            ..test
+        };
+        let (c2, why) = correct(&fast, &CorrectionPolicy::default());
+        assert_eq!(why.len(), 2);
+        assert!((c2 / c - 2f64.powf(0.2)).abs() < 1e-9);
+        // No temperature: said so, factor 1.
+        let none = CapacityTest {
+            initial_temperature_c: None,
+            ..test
+        };
+        let (c3, why) = correct(&none, &CorrectionPolicy::default());
+        assert_eq!(c3, 95.0);
+        assert!(why[0].why.contains("not corrected"));
+    }
+}

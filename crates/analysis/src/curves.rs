@@ -1,0 +1,391 @@
+//! Curves of one step for plots and for incremental capacity: voltage
+//! against the charge passed (streamed onto a fixed charge grid, so memory
+//! does not grow with the step's length), dQ/dV by voltage binning and
+//! dV/dQ by charge binning, Gaussian smoothing and peak finding, and the
+//! open-circuit-voltage table from a slow charge and discharge.
+
+use model::sample::Sample;
+use serde::{Deserialize, Serialize};
+
+/// (charge passed so far in Ah, voltage) along a step, charge as a
+/// magnitude from the step's start (trapezoid, as everywhere else).
+pub fn charge_curve(samples: &[Sample]) -> Vec<(f64, f64)> {
+    let mut out = Vec::with_capacity(samples.len());
+    let mut q = 0.0;
+    let mut last: Option<&Sample> = None;
+    for s in samples {
+        if let Some(p) = last {
+            q += ((p.current_a + s.current_a) * 0.5 * (s.t_s - p.t_s) / 3600.0).abs();
+        }
+        out.push((q, s.voltage_v));
+        last = Some(s);
+    }
+    out
+}
+
+/// Incremental capacity dQ/dV (Ah/V) by voltage binning: the charge passed
+/// while the voltage crosses each bin of width `bin_v`, over the bin
+/// width. Bins are aligned to multiples of `bin_v`; a bin the curve did not
+/// fully cross is left out. Binning rather than differentiating sample to
+/// sample keeps noise from being amplified (Dubarry & Anseán 2022; fact
+/// sheet §9). Returns (bin centre V, dQ/dV).
+pub fn incremental_capacity(curve: &[(f64, f64)], bin_v: f64) -> Vec<(f64, f64)> {
+    if curve.len() < 2 || bin_v <= 0.0 {
+        return Vec::new();
+    }
+    // Charge at which the (monotone-ised) voltage first reaches each edge.
+    let falling = curve[curve.len() - 1].1 < curve[0].1;
+    let key = |v: f64| if falling { -v } else { v };
+    let mut edges: Vec<(f64, f64)> = Vec::new(); // (edge voltage, charge)
+    let mut best = key(curve[0].1);
+    let mut next_edge = ((best / bin_v).floor() + 1.0) * bin_v;
+    for w in curve.windows(2) {
+        let (q0, v0) = (w[0].0, key(w[0].1));
+        let (q1, v1) = (w[1].0, key(w[1].1));
+        if v1 <= best {
+            continue;
+        }
+        while v1 >= next_edge - 1e-12 {
+            let f = if v1 > v0 {
+                ((next_edge - v0) / (v1 - v0)).clamp(0.0, 1.0)
+            } else {
+                1.0
+            };
+            edges.push((next_edge, q0 + f * (q1 - q0)));
+            next_edge += bin_v;
+        }
+        best = v1;
+    }
+    edges
+        .windows(2)
+        .map(|e| {
+            let centre = 0.5 * (e[0].0 + e[1].0);
+            let dq = e[1].1 - e[0].1;
+            (if falling { -centre } else { centre }, dq / bin_v)
+        })
+        .collect()
+}
+
+/// Voltage at fixed increments of the charge passed along a step, built
+/// sample by sample (trapezoid charge, linear interpolation of voltage).
+#[derive(Debug, Clone, PartialEq)]
+pub struct ChargeGrid {
+    pub step_ah: f64,
+    q: f64,
+    last: Option<(f64, f64, f64)>,
+    next: f64,
+    /// (charge passed, Ah; voltage, V), the first at 0 Ah.
+    pub points: Vec<(f64, f64)>,
+    max_points: usize,
+    /// The end of the step (charge passed, last voltage).
+    pub end: Option<(f64, f64)>,
+}
+
+impl ChargeGrid {
+    pub fn new(step_ah: f64, max_points: usize) -> ChargeGrid {
+        ChargeGrid {
+            step_ah,
+            q: 0.0,
+            last: None,
+            next: step_ah,
+            points: Vec::new(),
+            max_points,
+            end: None,
+        }
+    }
+
+    /// Start again for a new step, keeping the allocation.
+    pub fn reset(&mut self) {
+        self.q = 0.0;
+        self.last = None;
+        self.next = self.step_ah;
+        self.points.clear();
+        self.end = None;
+    }
+
+    /// Nothing is integrated from the last sample to the next (a run
+    /// resumed after an interruption): the grid goes on from its count.
+    pub fn break_segment(&mut self) {
+        self.last = None;
+    }
+
+    pub fn push(&mut self, t: f64, v: f64, i: f64) {
+        match self.last {
+            None if !self.points.is_empty() => {}
+            None => self.points.push((0.0, v)),
+            Some((t0, v0, i0)) => {
+                let dq = ((i0 + i) * 0.5 * (t - t0) / 3600.0).abs();
+                if dq > 0.0 {
+                    let q1 = self.q + dq;
+                    while self.next <= q1 && self.points.len() < self.max_points {
+                        let f = (self.next - self.q) / dq;
+                        self.points.push((self.next, v0 + f * (v - v0)));
+                        self.next += self.step_ah;
+                    }
+                    self.q = q1;
+                }
+            }
+        }
+        self.last = Some((t, v, i));
+        self.end = Some((self.q, v));
+    }
+
+    /// The curve: grid points and the end point.
+    pub fn curve(&self) -> Vec<(f64, f64)> {
+        let mut c = self.points.clone();
+        if let Some((q, v)) = self.end {
+            if c.last().is_none_or(|p| q > p.0 + 1e-12) {
+                c.push((q, v));
+            }
+        }
+        c
+    }
+
+    /// Voltage at charge `q` (linear between grid points).
+    pub fn voltage_at(&self, q: f64) -> Option<f64> {
+        let c = self.curve();
+        if c.is_empty() || q < 0.0 || q > c[c.len() - 1].0 + 1e-12 {
+            return None;
+        }
+        let k = c.partition_point(|p| p.0 < q);
+        if k == 0 {
+            return Some(c[0].1);
+        }
+        if k >= c.len() {
+            return Some(c[c.len() - 1].1);
+        }
+        let (a, b) = (c[k - 1], c[k]);
+        let f = if b.0 > a.0 {
+            (q - a.0) / (b.0 - a.0)
+        } else {
+            1.0
+        };
+        Some(a.1 + f * (b.1 - a.1))
+    }
+}
+
+/// dV/dQ (V/Ah, magnitude) by charge binning of width `bin_ah` on a
+/// voltage–charge curve: (bin centre Ah, |ΔV|/ΔQ).
+pub fn differential_voltage(grid: &ChargeGrid, bin_ah: f64) -> Vec<(f64, f64)> {
+    let c = grid.curve();
+    let Some(&(qmax, _)) = c.last() else {
+        return Vec::new();
+    };
+    let mut out = Vec::new();
+    let mut q = 0.0;
+    while q + bin_ah <= qmax + 1e-12 {
+        if let (Some(a), Some(b)) = (grid.voltage_at(q), grid.voltage_at(q + bin_ah)) {
+            out.push((q + bin_ah * 0.5, (b - a).abs() / bin_ah));
+        }
+        q += bin_ah;
+    }
+    out
+}
+
+/// Gaussian smoothing of equally spaced values, as
+/// `scipy.ndimage.gaussian_filter1d(y, sigma, mode="nearest", truncate=4.0)`.
+pub fn gaussian_smooth(y: &[f64], sigma: f64) -> Vec<f64> {
+    if sigma <= 0.0 || y.is_empty() {
+        return y.to_vec();
+    }
+    let r = (4.0 * sigma + 0.5) as i64;
+    let w: Vec<f64> = (-r..=r)
+        .map(|k| (-0.5 * (k as f64 / sigma).powi(2)).exp())
+        .collect();
+    let total: f64 = w.iter().sum();
+    let n = y.len() as i64;
+    (0..n)
+        .map(|i| {
+            let mut acc = 0.0;
+            for (j, wk) in w.iter().enumerate() {
+                let idx = (i + j as i64 - r).clamp(0, n - 1) as usize;
+                acc += wk * y[idx];
+            }
+            acc / total
+        })
+        .collect()
+}
+
+/// A peak of a curve.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct Peak {
+    pub index: usize,
+    pub height: f64,
+    /// As `scipy.signal.peak_prominences` defines it.
+    pub prominence: f64,
+}
+
+/// Local maxima (plateaus take their middle sample) with their
+/// prominence, as `scipy.signal.find_peaks` finds them; those with a
+/// prominence of at least `min_prominence` are kept.
+pub fn find_peaks(y: &[f64], min_prominence: f64) -> Vec<Peak> {
+    let n = y.len();
+    let mut out = Vec::new();
+    let mut i = 1;
+    while i + 1 < n {
+        if y[i - 1] < y[i] {
+            let mut ahead = i + 1;
+            while ahead < n - 1 && y[ahead] == y[i] {
+                ahead += 1;
+            }
+            if y[ahead] < y[i] {
+                let mid = (i + ahead - 1) / 2;
+                // Prominence: down to the higher of the two lowest points
+                // reached before a higher sample (or the end) on each side.
+                let mut left_min = y[mid];
+                let mut k = mid;
+                while k > 0 {
+                    k -= 1;
+                    if y[k] > y[mid] {
+                        break;
+                    }
+                    left_min = left_min.min(y[k]);
+                }
+                let mut right_min = y[mid];
+                let mut k = mid;
+                while k + 1 < n {
+                    k += 1;
+                    if y[k] > y[mid] {
+                        break;
+                    }
+                    right_min = right_min.min(y[k]);
+                }
+                let prominence = y[mid] - left_min.max(right_min);
+                if prominence >= min_prominence {
+                    out.push(Peak {
+                        index: mid,
+                        height: y[mid],
+                        prominence,
+                    });
+                }
+                i = ahead;
+            }
+        }
+        i += 1;
+    }
+    out
+}
+
+/// The grid a step's samples make (0.1 % of the rated capacity per
+/// point, as the streaming analysis builds it).
+pub fn grid_of(samples: &[Sample], rated_ah: f64) -> ChargeGrid {
+    let mut g = ChargeGrid::new(GRID_FRACTION * rated_ah, GRID_MAX_POINTS);
+    for s in samples {
+        g.push(s.t_s, s.voltage_v, s.current_a);
+    }
+    g
+}
+
+/// Charge grid resolution: a fraction of the rated capacity, and the most
+/// points a grid holds (three times the rated capacity).
+pub const GRID_FRACTION: f64 = 0.001;
+pub const GRID_MAX_POINTS: usize = 3001;
+
+/// A differential curve: bins (x, y), the smoothed y, and its main peaks
+/// (at most three by height, in x order, each at least 5 % of the highest
+/// smoothed value in prominence).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Differential {
+    pub points: Vec<(f64, f64)>,
+    pub smoothed: Vec<f64>,
+    pub peaks: Vec<Peak>,
+}
+
+fn differential(points: Vec<(f64, f64)>, sigma: f64) -> Differential {
+    let ys: Vec<f64> = points.iter().map(|p| p.1).collect();
+    let smoothed = gaussian_smooth(&ys, sigma);
+    let top = smoothed.iter().cloned().fold(0.0, f64::max);
+    let mut peaks = find_peaks(&smoothed, 0.05 * top);
+    peaks.sort_by(|a, b| b.height.total_cmp(&a.height));
+    peaks.truncate(3);
+    peaks.sort_by_key(|p| p.index);
+    Differential {
+        points,
+        smoothed,
+        peaks,
+    }
+}
+
+/// dQ/dV of a step's grid: voltage bins of `bin_v`, smoothed with `sigma` bins.
+pub fn ica(grid: &ChargeGrid, bin_v: f64, sigma: f64) -> Differential {
+    differential(incremental_capacity(&grid.curve(), bin_v), sigma)
+}
+
+/// dV/dQ of a step's grid: charge bins of `bin_ah`, smoothed with `sigma` bins.
+pub fn dva(grid: &ChargeGrid, bin_ah: f64, sigma: f64) -> Differential {
+    differential(differential_voltage(grid, bin_ah), sigma)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn linear_plateau_gives_a_flat_incremental_capacity() {
+        // Fact sheet §9 check value [D]: V(Q) = 3.30 V + 0.05 V·(Q/1 Ah) over
+        // 0–2 Ah has dQ/dV = 20 Ah/V; 5 mV bins must give 20 in every bin.
+        let curve: Vec<(f64, f64)> = (0..=2000)
+            .map(|k| {
+                let q = k as f64 / 1000.0;
+                (q, 3.30 + 0.05 * q)
+            })
+            .collect();
+        let ica = incremental_capacity(&curve, 0.005);
+        assert!(ica.len() >= 18, "{}", ica.len());
+        for (v, d) in &ica {
+            assert!((d - 20.0).abs() < 1e-6, "bin {v}: {d}");
+        }
+        // Falling voltage (a discharge) gives the same magnitude.
+        let down: Vec<(f64, f64)> = curve.iter().map(|(q, v)| (*q, 3.40 - (v - 3.30))).collect();
+        let ica = incremental_capacity(&down, 0.005);
+        assert!(ica.iter().all(|(_, d)| (d - 20.0).abs() < 1e-6));
+    }
+
+    #[test]
+    fn two_plateaus_give_two_levels() {
+        // Piecewise-linear: 1 Ah over 0.1 V, then 1 Ah over 0.01 V... here
+        // slope 0.1 V/Ah then 0.02 V/Ah → 10 and 50 Ah/V.
+        let mut curve = Vec::new();
+        for k in 0..=1000 {
+            let q = k as f64 / 1000.0;
+            curve.push((q, 3.0 + 0.1 * q));
+        }
+        for k in 1..=1000 {
+            let q = 1.0 + k as f64 / 1000.0;
+            curve.push((q, 3.1 + 0.02 * (q - 1.0)));
+        }
+        let ica = incremental_capacity(&curve, 0.002);
+        let low: Vec<f64> = ica
+            .iter()
+            .filter(|(v, _)| *v < 3.095)
+            .map(|p| p.1)
+            .collect();
+        let high: Vec<f64> = ica
+            .iter()
+            .filter(|(v, _)| *v > 3.102)
+            .map(|p| p.1)
+            .collect();
+        assert!(low.iter().all(|d| (d - 10.0).abs() < 1e-6));
+        assert!(high.iter().all(|d| (d - 50.0).abs() < 1e-6));
+    }
+
+    #[test]
+    fn the_charge_grid_follows_the_curve() {
+        // 1 A for 3600 s with V = 3.0 + 0.1·Q: the grid at 0.01 Ah holds
+        // V exactly (linear), and ends at 1 Ah.
+        let mut g = ChargeGrid::new(0.01, 10_000);
+        for k in 0..=3600 {
+            let q = k as f64 / 3600.0;
+            g.push(k as f64, 3.0 + 0.1 * q, -1.0);
+        }
+        let c = g.curve();
+        assert_eq!(c.len(), 101, "{}", c.len());
+        for (q, v) in &c {
+            assert!((v - (3.0 + 0.1 * q)).abs() < 1e-9);
+        }
+        assert!((g.voltage_at(0.505).unwrap() - 3.0505).abs() < 1e-9);
+        let dva = differential_voltage(&g, 0.05);
+        assert_eq!(dva.len(), 20);
+        assert!(dva.iter().all(|(_, d)| (d - 0.1).abs() < 1e-9));
+    }
+}

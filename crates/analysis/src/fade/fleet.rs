@@ -1,0 +1,174 @@
+//! The fleet view: one row per pack, ranked by latest state of health
+//! (best first), with resistance, fade rate, projected end of life, grade,
+//! last test date and whether a test is overdue.
+
+use super::history::PackHistory;
+use super::trend::{self, FadeAnalysis, ModelKind};
+use chrono::NaiveDate;
+use serde::Serialize;
+
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct FleetRow {
+    pub rank: usize,
+    pub pack_id: String,
+    pub chemistry: String,
+    pub series: u32,
+    pub rated_capacity_ah: f64,
+    pub tests: usize,
+    pub last_test: Option<NaiveDate>,
+    pub days_since_test: Option<i64>,
+    pub overdue: bool,
+    pub cycles: Option<f64>,
+    pub soh_pct: Option<f64>,
+    pub capacity_ah: Option<f64>,
+    pub resistance_mohm: Option<f64>,
+    pub resistance_growth_pct: Option<f64>,
+    pub fade_pct_per_100_cycles: Option<f64>,
+    pub fade_pct_per_year: Option<f64>,
+    pub eol_cycles: Option<f64>,
+    pub eol_date: Option<NaiveDate>,
+    pub accelerating: bool,
+    pub grade: Option<String>,
+    /// The latest tests are under the end-of-life threshold, since then.
+    pub below_eol_since: Option<NaiveDate>,
+    /// The projected end-of-life date is before today.
+    pub eol_date_past: bool,
+}
+
+/// The fleet at a date.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Fleet {
+    pub today: NaiveDate,
+    pub interval_days: i64,
+    pub threshold_pct: f64,
+    pub rows: Vec<FleetRow>,
+}
+
+/// Resistance growth of a history's latest reading against its reference, %.
+pub fn resistance_growth_pct(h: &PackHistory) -> Option<f64> {
+    let (reference, _) = h.reference_resistance()?;
+    let latest = h.points.iter().rev().find_map(|p| p.resistance_mohm)?;
+    Some((latest / reference - 1.0) * 100.0)
+}
+
+pub fn row(h: &PackHistory, fade: &FadeAnalysis, today: NaiveDate, interval_days: i64) -> FleetRow {
+    let last = h.latest();
+    let days = last.map(|p| (today - p.date).num_days());
+    let slope = |k: ModelKind| {
+        fade.models
+            .iter()
+            .find(|m| m.kind == k)
+            .map(|m| m.fade_per_unit)
+    };
+    FleetRow {
+        rank: 0,
+        pack_id: h.pack_id.clone(),
+        chemistry: h.spec.chemistry.to_string(),
+        series: h.spec.series,
+        rated_capacity_ah: h.spec.rated_capacity_ah,
+        tests: h.points.len(),
+        last_test: last.map(|p| p.date),
+        days_since_test: days,
+        overdue: days.is_none_or(|d| d > interval_days),
+        cycles: last.map(|p| p.cycles).filter(|c| c.is_finite()),
+        soh_pct: last.map(|p| p.soh_pct),
+        capacity_ah: last.map(|p| p.capacity_ah),
+        resistance_mohm: h.points.iter().rev().find_map(|p| p.resistance_mohm),
+        resistance_growth_pct: resistance_growth_pct(h),
+        fade_pct_per_100_cycles: slope(ModelKind::LinearCycles),
+        fade_pct_per_year: slope(ModelKind::LinearTime),
+        eol_cycles: fade.eol_cycles.as_ref().map(|p| p.cycles),
+        eol_date: fade.eol_date.as_ref().map(|p| p.date),
+        accelerating: fade.accelerating.is_some(),
+        grade: last.and_then(|p| p.grade.clone()),
+        below_eol_since: fade.below_eol_since,
+        eol_date_past: fade.eol_date.as_ref().is_some_and(|p| p.date < today),
+    }
+}
+
+/// Rank packs by latest state of health (best first) into the fleet view.
+pub fn rank(
+    histories: &[PackHistory],
+    today: NaiveDate,
+    interval_days: i64,
+    threshold_pct: f64,
+) -> Fleet {
+    let mut rows = Vec::new();
+    for h in histories {
+        let fade = trend::analyze(h, threshold_pct);
+        rows.push(row(h, &fade, today, interval_days));
+    }
+    rows.sort_by(|a, b| {
+        b.soh_pct
+            .unwrap_or(f64::NEG_INFINITY)
+            .total_cmp(&a.soh_pct.unwrap_or(f64::NEG_INFINITY))
+            .then_with(|| a.pack_id.cmp(&b.pack_id))
+    });
+    for (i, r) in rows.iter_mut().enumerate() {
+        r.rank = i + 1;
+    }
+    Fleet {
+        today,
+        interval_days,
+        threshold_pct,
+        rows,
+    }
+}
+
+/// CSV rendering of the fleet.
+pub fn to_csv(f: &Fleet) -> Result<String, csv::Error> {
+    let mut w = csv::Writer::from_writer(Vec::new());
+    w.write_record([
+        "rank",
+        "pack_id",
+        "chemistry",
+        "series",
+        "rated_capacity_ah",
+        "tests",
+        "last_test",
+        "days_since_test",
+        "overdue",
+        "cycles",
+        "soh_pct",
+        "capacity_ah",
+        "resistance_mohm",
+        "resistance_growth_pct",
+        "fade_pct_per_100_cycles",
+        "fade_pct_per_year",
+        "eol_cycles",
+        "eol_date",
+        "accelerating",
+        "grade",
+        "below_eol_since",
+        "eol_date_past",
+    ])?;
+    let o = |v: Option<f64>, d: usize| v.map(|x| format!("{x:.d$}")).unwrap_or_default();
+    for r in &f.rows {
+        w.write_record([
+            r.rank.to_string(),
+            r.pack_id.clone(),
+            r.chemistry.clone(),
+            r.series.to_string(),
+            format!("{}", r.rated_capacity_ah),
+            r.tests.to_string(),
+            r.last_test.map(|d| d.to_string()).unwrap_or_default(),
+            r.days_since_test.map(|d| d.to_string()).unwrap_or_default(),
+            r.overdue.to_string(),
+            o(r.cycles, 1),
+            o(r.soh_pct, 2),
+            o(r.capacity_ah, 4),
+            o(r.resistance_mohm, 2),
+            o(r.resistance_growth_pct, 1),
+            o(r.fade_pct_per_100_cycles, 4),
+            o(r.fade_pct_per_year, 3),
+            o(r.eol_cycles, 0),
+            r.eol_date.map(|d| d.to_string()).unwrap_or_default(),
+            r.accelerating.to_string(),
+            r.grade.clone().unwrap_or_default(),
+            r.below_eol_since.map(|d| d.to_string()).unwrap_or_default(),
+            r.eol_date_past.to_string(),
+        ])?;
+    }
+    let bytes = w.into_inner().map_err(|e| e.into_error())?;
+    Ok(String::from_utf8_lossy(&bytes).into_owned())
+}

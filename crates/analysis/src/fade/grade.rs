@@ -1,0 +1,308 @@
+//! Grading policy: a TOML file the shop owns that defines grades by state
+//! of health, resistance growth and coulombic efficiency. Each grade comes
+//! with the reasons for it. The default policy is
+//! `policies/default-grading.toml`.
+
+use model::location::{toml_error, InputErrors, LocatedError, Location};
+use model::pack::Chemistry;
+use model::units;
+use serde::{Deserialize, Serialize};
+use std::collections::BTreeMap;
+use std::path::Path;
+use toml::Spanned;
+
+pub const DEFAULT_POLICY: &str = include_str!("../../../../policies/default-grading.toml");
+
+/// A threshold as written: a string, or a table of strings by chemistry.
+type RawValue = Spanned<toml::Value>;
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawGrade {
+    label: String,
+    meaning: Option<String>,
+    soh_min: Option<RawValue>,
+    resistance_growth_max: Option<RawValue>,
+    coulombic_efficiency_min: Option<RawValue>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawPolicy {
+    name: String,
+    #[serde(default)]
+    grade: Vec<Spanned<RawGrade>>,
+}
+
+/// A percentage threshold, the same for all or per chemistry.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Threshold {
+    All(f64),
+    ByChemistry(BTreeMap<Chemistry, f64>),
+}
+
+impl Threshold {
+    fn for_chemistry(&self, c: Chemistry) -> Option<f64> {
+        match self {
+            Threshold::All(v) => Some(*v),
+            Threshold::ByChemistry(m) => m.get(&c).copied(),
+        }
+    }
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct GradeRule {
+    pub label: String,
+    pub meaning: String,
+    pub soh_min: Option<Threshold>,
+    pub resistance_growth_max: Option<Threshold>,
+    pub ce_min: Option<Threshold>,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct Policy {
+    pub name: String,
+    pub grades: Vec<GradeRule>,
+}
+
+/// What a pack is graded on.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct GradeInputs {
+    pub chemistry: Chemistry,
+    pub soh_pct: Option<f64>,
+    /// Resistance growth against the reference, %.
+    pub resistance_growth_pct: Option<f64>,
+    pub coulombic_efficiency_pct: Option<f64>,
+}
+
+/// A grade with its reasons.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Grade {
+    pub label: String,
+    pub meaning: String,
+    pub policy: String,
+    pub reasons: Vec<String>,
+}
+
+fn percent(
+    v: &str,
+    span: &std::ops::Range<usize>,
+    file: &Path,
+    text: &str,
+) -> Result<f64, LocatedError> {
+    match units::parse(v) {
+        Ok(units::Quantity::Percent(p)) if p.is_finite() => Ok(p),
+        _ => Err(LocatedError {
+            location: Location::of_span(file, text, span),
+            message: format!("'{v}' is not a percentage such as \"90%\""),
+        }),
+    }
+}
+
+fn threshold(
+    v: &RawValue,
+    file: &Path,
+    text: &str,
+    errors: &mut Vec<LocatedError>,
+) -> Option<Threshold> {
+    let span = v.span();
+    match v.get_ref() {
+        toml::Value::String(s) => percent(s, &span, file, text)
+            .map(Threshold::All)
+            .map_err(|e| errors.push(e))
+            .ok(),
+        toml::Value::Table(m) => {
+            let mut out = BTreeMap::new();
+            for (k, val) in m {
+                let parsed = match val {
+                    toml::Value::String(s) => percent(s, &span, file, text),
+                    other => Err(LocatedError {
+                        location: Location::of_span(file, text, &span),
+                        message: format!("'{other}' is not a percentage such as \"90%\""),
+                    }),
+                };
+                match (k.parse::<Chemistry>(), parsed) {
+                    (Ok(c), Ok(p)) => {
+                        out.insert(c, p);
+                    }
+                    (Err(msg), _) => errors.push(LocatedError {
+                        location: Location::of_span(file, text, &span),
+                        message: msg,
+                    }),
+                    (_, Err(e)) => errors.push(e),
+                }
+            }
+            Some(Threshold::ByChemistry(out))
+        }
+        other => {
+            errors.push(LocatedError {
+                location: Location::of_span(file, text, &span),
+                message: format!("'{other}' is not a percentage (\"90%\") or a table by chemistry"),
+            });
+            None
+        }
+    }
+}
+
+impl Policy {
+    pub fn from_toml(file: &Path, text: &str) -> Result<Policy, InputErrors> {
+        let raw: RawPolicy =
+            toml::from_str(text).map_err(|e| InputErrors(vec![toml_error(file, text, &e)]))?;
+        let mut errors = Vec::new();
+        let mut grades = Vec::new();
+        for g in &raw.grade {
+            let r = g.get_ref();
+            grades.push(GradeRule {
+                label: r.label.clone(),
+                meaning: r.meaning.clone().unwrap_or_default(),
+                soh_min: r
+                    .soh_min
+                    .as_ref()
+                    .and_then(|v| threshold(v, file, text, &mut errors)),
+                resistance_growth_max: r
+                    .resistance_growth_max
+                    .as_ref()
+                    .and_then(|v| threshold(v, file, text, &mut errors)),
+                ce_min: r
+                    .coulombic_efficiency_min
+                    .as_ref()
+                    .and_then(|v| threshold(v, file, text, &mut errors)),
+            });
+        }
+        if grades.is_empty() {
+            errors.push(LocatedError {
+                location: Location::at(file, text, 0),
+                message: "the policy defines no [[grade]]".into(),
+            });
+        } else if let (Some(last), Some(raw_last)) = (grades.last(), raw.grade.last()) {
+            if last.soh_min.is_some()
+                || last.resistance_growth_max.is_some()
+                || last.ce_min.is_some()
+            {
+                errors.push(LocatedError {
+                    location: Location::of_span(file, text, &raw_last.span()),
+                    message: format!(
+                        "the last grade ('{}') must have no criteria, so every pack gets a grade",
+                        last.label
+                    ),
+                });
+            }
+        }
+        if !errors.is_empty() {
+            return Err(InputErrors(errors));
+        }
+        Ok(Policy {
+            name: raw.name,
+            grades,
+        })
+    }
+
+    pub fn default_policy() -> Policy {
+        match Policy::from_toml(Path::new("<built-in>/default-grading.toml"), DEFAULT_POLICY) {
+            Ok(p) => p,
+            // Checked by a unit test; not user input.
+            Err(e) => panic!("built-in grading policy is invalid: {e}"),
+        }
+    }
+
+    /// Grade a pack: the first grade whose every measured criterion holds.
+    pub fn grade(&self, x: &GradeInputs) -> Grade {
+        let mut why_not = Vec::new();
+        for rule in &self.grades {
+            let mut reasons = Vec::new();
+            let mut fails = Vec::new();
+            let mut check = |name: &str, value: Option<f64>, limit: Option<f64>, at_least: bool| {
+                let Some(limit) = limit else { return };
+                match value {
+                    None => reasons.push(format!("{name} not measured (criterion skipped)")),
+                    Some(v) => {
+                        let ok = if at_least { v >= limit } else { v <= limit };
+                        let op = match (at_least, ok) {
+                            (true, true) => ">=",
+                            (true, false) => "<",
+                            (false, true) => "<=",
+                            (false, false) => ">",
+                        };
+                        // Efficiencies sit close to their floors: two decimals so 99.96 %
+                        // does not print as 100.0 %.
+                        let d = if name == "coulombic efficiency" { 2 } else { 1 };
+                        let line = format!("{name} {v:.d$} % {op} {limit} %");
+                        if ok {
+                            reasons.push(line)
+                        } else {
+                            fails.push(line)
+                        }
+                    }
+                }
+            };
+            let c = x.chemistry;
+            check(
+                "state of health",
+                x.soh_pct,
+                rule.soh_min.as_ref().and_then(|t| t.for_chemistry(c)),
+                true,
+            );
+            check(
+                "resistance growth",
+                x.resistance_growth_pct,
+                rule.resistance_growth_max
+                    .as_ref()
+                    .and_then(|t| t.for_chemistry(c)),
+                false,
+            );
+            check(
+                "coulombic efficiency",
+                x.coulombic_efficiency_pct,
+                rule.ce_min.as_ref().and_then(|t| t.for_chemistry(c)),
+                true,
+            );
+            if fails.is_empty() {
+                let mut all = why_not;
+                all.extend(reasons);
+                if all.is_empty() {
+                    all.push("no criteria for this grade".into());
+                }
+                return Grade {
+                    label: rule.label.clone(),
+                    meaning: rule.meaning.clone(),
+                    policy: self.name.clone(),
+                    reasons: all,
+                };
+            }
+            why_not.push(format!("not {}: {}", rule.label, fails.join("; ")));
+        }
+        // Unreachable with a validated policy (the last grade has no criteria).
+        Grade {
+            label: "?".into(),
+            meaning: String::new(),
+            policy: self.name.clone(),
+            reasons: why_not,
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn default_policy_is_valid_and_ordered() {
+        let p = Policy::default_policy();
+        let labels: Vec<&str> = p.grades.iter().map(|g| g.label.as_str()).collect();
+        assert_eq!(labels, ["A", "B", "C", "D"]);
+    }
+
+    #[test]
+    fn a_policy_must_end_in_a_catch_all() {
+        let text = "name = \"x\"\n[[grade]]\nlabel = \"A\"\nsoh_min = \"90%\"\n";
+        let e = Policy::from_toml(Path::new("g.toml"), text).unwrap_err();
+        assert!(
+            e.to_string().contains("g.toml:2:1") && e.to_string().contains("no criteria"),
+            "{e}"
+        );
+        let text =
+            "name = \"x\"\n[[grade]]\nlabel = \"A\"\nsoh_min = \"90\"\n[[grade]]\nlabel = \"B\"\n";
+        let e = Policy::from_toml(Path::new("g.toml"), text).unwrap_err();
+        assert!(e.to_string().starts_with("g.toml:4:11"), "{e}");
+    }
+}

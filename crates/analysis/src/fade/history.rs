@@ -1,0 +1,61 @@
+//! A pack's history as the fade analysis reads it: its measurements in
+//! date order and the runs left out. `record::history` gathers it from the
+//! results folder and a pack's `history.csv`.
+
+use model::pack::PackSpec;
+use chrono::NaiveDate;
+use serde::Serialize;
+use std::path::PathBuf;
+
+/// One measurement of the pack.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct HistoryPoint {
+    pub date: NaiveDate,
+    /// Equivalent full cycles at the measurement.
+    pub cycles: f64,
+    /// Whether `cycles` was given (true) or counted from throughput.
+    pub cycles_given: bool,
+    pub capacity_ah: f64,
+    pub soh_pct: f64,
+    pub resistance_mohm: Option<f64>,
+    pub coulombic_efficiency_pct: Option<f64>,
+    pub grade: Option<String>,
+    /// `run <id>` or `history.csv line N`.
+    pub source: String,
+    pub run_dir: Option<PathBuf>,
+}
+
+/// A run left out of the fits.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct LeftOut {
+    pub run_id: String,
+    pub status: String,
+    pub reason: String,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct PackHistory {
+    pub pack_id: String,
+    pub spec: PackSpec,
+    pub points: Vec<HistoryPoint>,
+    pub left_out: Vec<LeftOut>,
+}
+
+impl PackHistory {
+    pub fn latest(&self) -> Option<&HistoryPoint> {
+        self.points.last()
+    }
+
+    /// The reference resistance for growth: the rated one if the spec has
+    /// it, else the pack's first reading.
+    pub fn reference_resistance(&self) -> Option<(f64, &'static str)> {
+        if let Some(r) = self.spec.rated_resistance_mohm {
+            return Some((r, "rated"));
+        }
+        self.points
+            .iter()
+            .find_map(|p| p.resistance_mohm)
+            .map(|r| (r, "first test"))
+    }
+}
+

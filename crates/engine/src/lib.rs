@@ -1,0 +1,995 @@
+//! Executes a [`Plan`] on a source and a load: the step loop, sampling,
+//! end conditions, the safety envelope on every sample, and the safe stop
+//! that ends every run (load input off, source output off, confirmed by
+//! read-back). Speaks to instruments only through their physical-unit
+//! methods; knows nothing of SCPI text, the simulator, CSV or reports.
+
+pub mod clock;
+pub mod control;
+pub mod safety;
+pub mod step;
+
+/// The events the engine emits are the run record's events.
+pub use record::event;
+/// Run states and their transitions.
+pub use model::status as state;
+pub use model::truth::TruthStep;
+pub use record::manifest::{Timing, LATE_S};
+
+use analysis::integrate::Integrator;
+use crate::clock::Clock;
+use instrument::{ErrorKind, InstrumentError, Load, LoadSetting, Meter, Reading, Source};
+use model::procedure::{DischargeMode, EndCondition, Plan, PlanStep, StepKind};
+use model::sample::Sample;
+use model::truth::{GroundTruth, TruthCounters};
+use control::StopHandle;
+use event::{EndKind, Event, Sink};
+use futures::FutureExt;
+use serde::Serialize;
+use state::{RunState, Trigger};
+use std::panic::AssertUnwindSafe;
+use std::sync::Arc;
+use step::StepTracker;
+
+/// The instruments of one station.
+pub struct Station {
+    pub source: Source,
+    pub load: Load,
+    /// A separate voltmeter at the pack terminals: when present, the pack
+    /// voltage (and temperature, if it has an input) come from it.
+    pub meter: Option<Meter>,
+    /// Source and load are the two roles of one source-sink instrument on
+    /// one link.
+    pub shared_link: bool,
+}
+
+impl Station {
+    pub fn new(source: Source, load: Load) -> Station {
+        Station {
+            source,
+            load,
+            meter: None,
+            shared_link: false,
+        }
+    }
+}
+
+/// How often the instruments' error queues are read while a step runs,
+/// run seconds.
+pub const ERROR_POLL_S: f64 = 1.0;
+
+/// Which instrument drives the pack.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Active {
+    None,
+    Source,
+    Load,
+}
+
+/// Retries of an idempotent measurement after a timeout.
+pub const MEASURE_RETRIES: usize = 2;
+
+/// How a run ended.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct RunOutcome {
+    pub status: RunState,
+    pub reason: Option<String>,
+    pub source_off_confirmed: bool,
+    pub load_off_confirmed: bool,
+    pub truth: Vec<TruthStep>,
+    pub duration_s: f64,
+    pub timing: Timing,
+    pub zero: ZeroOffsets,
+}
+
+/// Each instrument's current reading with its output off (pack sign).
+#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize)]
+pub struct ZeroOffsets {
+    pub source_a: Option<f64>,
+    pub load_a: Option<f64>,
+}
+
+/// Readings averaged for a zero offset before the run.
+pub const ZERO_READINGS: usize = 10;
+/// Readings averaged for a drain step's own zero (its figure is a few mA).
+pub const DRAIN_ZERO_READINGS: usize = 50;
+
+/// How a step that was interrupted goes on when a run resumes.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ResumePoint {
+    /// Position in the plan's steps of the step the run continues with.
+    pub position: usize,
+    /// Run time to continue at, s (after the last logged sample and the gap).
+    pub t_run_s: f64,
+    /// Run time of the last sample before the interruption, s.
+    pub last_sample_t_s: f64,
+    pub gap_s: f64,
+    /// What the interrupted step had done, when it goes on rather than
+    /// starting again.
+    pub carried: Option<Carried>,
+}
+
+/// Elapsed time and counted charge of an interrupted step that continues.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Carried {
+    pub elapsed_s: f64,
+    pub counters: Integrator,
+}
+
+/// The rule for each step kind when a run resumes inside the step.
+pub fn resume_rule(kind: &StepKind) -> &'static str {
+    match kind {
+        StepKind::Rest => "a rest restarts its timer",
+        StepKind::Charge { .. } => "a charge continues: same setpoints, the supply takes up constant current or its taper where the pack's voltage puts it; elapsed time and charge counted so far carry over (the dv/dt and peak-drop windows start afresh)",
+        StepKind::Discharge { .. } => "a discharge continues to its end condition; elapsed time and charge and energy counted so far carry over",
+        StepKind::Pulse { .. } => "a pulse starts again from its first level (a resistance reading needs a whole pulse)",
+        StepKind::Drain { .. } => "a drain measurement starts again (its voltage is read afresh)",
+    }
+}
+
+/// The rule a resume at plan position `step` follows, as recorded.
+pub fn resume_rule_at(step: Option<&PlanStep>, carried: bool) -> String {
+    match step {
+        Some(s) if carried || !resume_continues(&s.kind) => resume_rule(&s.kind).to_string(),
+        Some(_) => "the step had not started: it starts from the beginning".to_string(),
+        None => "no step left to run".to_string(),
+    }
+}
+
+/// Whether a step kind goes on (true) or starts again (false) on resume.
+pub fn resume_continues(kind: &StepKind) -> bool {
+    matches!(kind, StepKind::Charge { .. } | StepKind::Discharge { .. })
+}
+
+enum Stop {
+    Breach(String),
+    Instrument(InstrumentError),
+    Interrupted,
+    Log(std::io::Error),
+}
+
+/// One run of a plan on a station.
+pub struct Engine<'a> {
+    plan: &'a Plan,
+    station: &'a mut Station,
+    clock: Arc<dyn Clock>,
+    sink: &'a mut dyn Sink,
+    truth: Option<Arc<dyn GroundTruth>>,
+    stop: StopHandle,
+    t_start: f64,
+    active: Active,
+    truth_steps: Vec<TruthStep>,
+    truth_open: Option<TruthCounters>,
+    current_step: u32,
+    step_open: bool,
+    next_error_poll: f64,
+    timing: Timing,
+    zero: ZeroOffsets,
+    alarm_capacity_ah: Option<f64>,
+    resume: Option<ResumePoint>,
+    /// The source's zero read just before the drain step now running.
+    drain_zero: Option<f64>,
+}
+
+impl<'a> Engine<'a> {
+    pub fn new(
+        plan: &'a Plan,
+        station: &'a mut Station,
+        clock: Arc<dyn Clock>,
+        sink: &'a mut dyn Sink,
+        truth: Option<Arc<dyn GroundTruth>>,
+        stop: StopHandle,
+    ) -> Engine<'a> {
+        let t_start = clock.now();
+        Engine {
+            plan,
+            station,
+            clock,
+            sink,
+            truth,
+            stop,
+            t_start,
+            active: Active::None,
+            truth_steps: Vec::new(),
+            truth_open: None,
+            current_step: 0,
+            step_open: false,
+            next_error_poll: ERROR_POLL_S,
+            timing: Timing::default(),
+            zero: ZeroOffsets::default(),
+            alarm_capacity_ah: None,
+            resume: None,
+            drain_zero: None,
+        }
+    }
+
+    /// Raise an alarm (an event, the run goes on) when the capacity step
+    /// reaches its cutoff having given less than this, Ah.
+    pub fn with_capacity_alarm(mut self, ah: Option<f64>) -> Self {
+        self.alarm_capacity_ah = ah;
+        self
+    }
+
+    /// Continue an interrupted run instead of starting at the first step.
+    pub fn resume_from(mut self, point: ResumePoint) -> Self {
+        self.t_start = self.clock.now() - point.t_run_s;
+        self.next_error_poll = point.t_run_s + ERROR_POLL_S;
+        self.resume = Some(point);
+        self
+    }
+
+    fn t(&self) -> f64 {
+        self.clock.now() - self.t_start
+    }
+
+    /// Wait until run time `t`, or less if a stop is asked for.
+    async fn wait_until(&mut self, t: f64) {
+        let at = self.t_start + t;
+        if self.clock.is_simulated() {
+            // Simulated time jumps: there is nothing to wait through.
+            self.clock.sleep_until(at).await;
+            return;
+        }
+        let stop = self.stop.clone();
+        tokio::select! {
+            _ = self.clock.sleep_until(at) => {}
+            _ = stop.wait() => {}
+        }
+    }
+
+    /// Before the first step, outputs off: read the pack at rest and each
+    /// instrument's zero; a pack outside the envelope is not driven.
+    async fn preflight(&mut self) -> Result<(), Stop> {
+        let (reading, temp) = self.measure().await?;
+        let st = &mut *self.station;
+        let mut zero = ZeroOffsets::default();
+        let avg = |v: &[f64]| v.iter().sum::<f64>() / v.len().max(1) as f64;
+        let mut src = Vec::new();
+        let mut ld = Vec::new();
+        for _ in 0..ZERO_READINGS {
+            src.push(
+                st.source
+                    .measure()
+                    .await
+                    .map_err(Stop::Instrument)?
+                    .current_a,
+            );
+            if !st.shared_link {
+                ld.push(st.load.measure().await.map_err(Stop::Instrument)?.current_a);
+            }
+        }
+        zero.source_a = Some(avg(&src));
+        zero.load_a = if st.shared_link {
+            zero.source_a
+        } else {
+            Some(avg(&ld))
+        };
+        self.zero = zero;
+        let policy = self.plan.offsets;
+        let t = self.t();
+        self.emit(Event::Preflight {
+            t_s: t,
+            voltage_v: reading.voltage_v,
+            temperature_c: temp,
+            source_zero_a: zero.source_a,
+            load_zero_a: zero.load_a,
+            corrected: policy.correct,
+        })?;
+        for (name, z) in [("source", zero.source_a), ("load", zero.load_a)] {
+            if let Some(z) = z {
+                if z.abs() > policy.warn_above_a {
+                    self.emit(Event::Warning {
+                        t_s: t,
+                        step: 0,
+                        message: format!(
+                            "the {name} reads {:.1} mA with its output off (above {:.1} mA){}",
+                            z * 1000.0,
+                            policy.warn_above_a * 1000.0,
+                            if policy.correct {
+                                "; subtracted from its readings"
+                            } else {
+                                "; not corrected (set [offsets] correct = true to subtract it)"
+                            }
+                        ),
+                    })?;
+                }
+            }
+        }
+        let s = Sample {
+            t_s: t,
+            step: 0,
+            cycle: 0,
+            voltage_v: reading.voltage_v,
+            current_a: 0.0,
+            temperature_c: temp,
+        };
+        if let Some(b) = safety::check(&s, &safety::StepSoFar::default(), &self.plan.envelope) {
+            self.emit(Event::Breach {
+                t_s: t,
+                step: 0,
+                limit: b.limit.into(),
+                value: b.value,
+                threshold: b.threshold,
+                message: format!("before the first step: {}", b.message),
+            })?;
+            return Err(Stop::Breach(format!(
+                "safety limit {} before the first step: {}",
+                b.limit, b.message
+            )));
+        }
+        Ok(())
+    }
+
+    /// The zero offset to subtract from a reading of the active instrument.
+    fn zero_of(&self, step: &PlanStep) -> f64 {
+        let correct = self.plan.offsets.correct || matches!(step.kind, StepKind::Drain { .. });
+        if !correct {
+            return 0.0;
+        }
+        if let (StepKind::Drain { .. }, Some(z)) = (&step.kind, self.drain_zero) {
+            return z;
+        }
+        match self.active {
+            Active::Source => self.zero.source_a.unwrap_or(0.0),
+            Active::Load => self.zero.load_a.unwrap_or(0.0),
+            Active::None => 0.0,
+        }
+    }
+
+    /// Run every step, then stop safely whatever happened.
+    pub async fn run(mut self) -> RunOutcome {
+        let mut state = RunState::Ready;
+        match &self.resume {
+            None => {
+                let _ = self.sink.event(&Event::RunStart {
+                    t_s: 0.0,
+                    steps: self.plan.steps.len() as u32,
+                });
+            }
+            Some(r) => {
+                let step = self.plan.steps.get(r.position);
+                let _ = self.sink.event(&Event::Resumed {
+                    t_s: r.t_run_s,
+                    step: step.map(|s| s.index).unwrap_or(0),
+                    last_sample_t_s: r.last_sample_t_s,
+                    gap_s: r.gap_s,
+                    rule: resume_rule_at(step, r.carried.is_some()),
+                });
+            }
+        }
+        state = state.next(Trigger::Start).unwrap_or(state);
+        let result = AssertUnwindSafe(self.run_steps()).catch_unwind().await;
+        let (trigger, reason, interrupted) = match result {
+            Ok(Ok(())) => (Trigger::LastStepDone, None, false),
+            Ok(Err(Stop::Breach(m))) => (Trigger::Breach, Some(m), false),
+            Ok(Err(Stop::Instrument(e))) => (
+                Trigger::InstrumentFault,
+                Some(format!("instrument fault: {e}")),
+                false,
+            ),
+            Ok(Err(Stop::Log(e))) => (
+                Trigger::InstrumentFault,
+                Some(format!("cannot write the log: {e}")),
+                false,
+            ),
+            Ok(Err(Stop::Interrupted)) => (
+                Trigger::StopRequested,
+                Some("interrupted by the operator".into()),
+                true,
+            ),
+            Err(panic) => {
+                let msg = panic
+                    .downcast_ref::<&str>()
+                    .map(|s| s.to_string())
+                    .or_else(|| panic.downcast_ref::<String>().cloned())
+                    .unwrap_or_else(|| "unknown".into());
+                (
+                    Trigger::InstrumentFault,
+                    Some(format!("internal error: {msg}")),
+                    false,
+                )
+            }
+        };
+        state = state.next(trigger).unwrap_or(RunState::Stopping);
+        if let (Some(r), true) = (&reason, self.step_open) {
+            let kind = if interrupted {
+                EndKind::Interrupted
+            } else {
+                EndKind::Aborted
+            };
+            self.close_truth_step(self.current_step);
+            self.step_open = false;
+            let _ = self.sink.event(&Event::StepEnd {
+                t_s: self.t(),
+                step: self.current_step,
+                end_kind: kind,
+                end_reason: r.clone(),
+            });
+        }
+        let (src_ok, load_ok) = self.outputs_off().await;
+        let _ = self.sink.event(&Event::OutputsOff {
+            t_s: self.t(),
+            reason: reason
+                .clone()
+                .unwrap_or_else(|| "procedure complete".into()),
+            source_off_confirmed: src_ok,
+            load_off_confirmed: load_ok,
+        });
+        let mut reason = reason;
+        let finished = reason.is_none() && src_ok && load_ok;
+        if reason.is_none() && !finished {
+            reason = Some("outputs could not be confirmed off at the end".into());
+        }
+        state = state
+            .next(Trigger::OutputsOff {
+                finished,
+                interrupted,
+            })
+            .unwrap_or(RunState::Aborted);
+        let _ = self.sink.event(&Event::RunEnd {
+            t_s: self.t(),
+            status: state.name().into(),
+            reason: reason.clone(),
+        });
+        RunOutcome {
+            status: state,
+            reason,
+            source_off_confirmed: src_ok,
+            load_off_confirmed: load_ok,
+            truth: std::mem::take(&mut self.truth_steps),
+            duration_s: self.t(),
+            timing: self.timing,
+            zero: self.zero,
+        }
+    }
+
+    /// Every instrument to its safe state, each confirmed by read-back
+    /// where possible. Separate links are handled at the same time, so a
+    /// silent instrument does not delay the other's switch-off; one
+    /// source-sink link is handled in turn, load role first.
+    async fn outputs_off(&mut self) -> (bool, bool) {
+        let st = &mut *self.station;
+        let (load, src) = if st.shared_link {
+            let l = st.load.0.make_safe().await;
+            let s = st.source.0.make_safe().await;
+            (l, s)
+        } else {
+            tokio::join!(st.load.0.make_safe(), st.source.0.make_safe())
+        };
+        self.active = Active::None;
+        (src.unwrap_or(false), load.unwrap_or(false))
+    }
+
+    /// Read the error queues about once a second: an error an instrument
+    /// raises by itself (protection trip, over-temperature) stops the run.
+    async fn poll_errors(&mut self, t: f64) -> Result<(), Stop> {
+        if t < self.next_error_poll {
+            return Ok(());
+        }
+        self.next_error_poll = t + ERROR_POLL_S;
+        let st = &mut *self.station;
+        let mut r = st.source.0.poll_errors().await;
+        if r.is_ok() && !st.shared_link {
+            r = st.load.0.poll_errors().await;
+        }
+        if r.is_ok() {
+            if let Some(m) = st.meter.as_mut() {
+                r = m.0.poll_errors().await;
+            }
+        }
+        match r {
+            Ok(()) => Ok(()),
+            Err(e) => {
+                self.record_instrument_error(&e, None)?;
+                Err(Stop::Instrument(e))
+            }
+        }
+    }
+
+    /// Record an instrument error in the events; `kind` defaults to the
+    /// error's own kind.
+    fn record_instrument_error(
+        &mut self,
+        e: &InstrumentError,
+        kind: Option<&str>,
+    ) -> Result<(), Stop> {
+        let step = self.current_step;
+        self.emit(Event::InstrumentError {
+            t_s: self.t(),
+            step,
+            instrument: e.instrument.clone(),
+            kind: kind
+                .map(str::to_string)
+                .unwrap_or_else(|| format!("{:?}", e.kind).to_lowercase()),
+            message: e.message.clone(),
+        })
+    }
+
+    fn emit(&mut self, e: Event) -> Result<(), Stop> {
+        self.sink.event(&e).map_err(Stop::Log)
+    }
+
+    async fn switch_off_active(&mut self) -> Result<(), Stop> {
+        match self.active {
+            Active::Source => self
+                .station
+                .source
+                .0
+                .disable()
+                .await
+                .map_err(Stop::Instrument)?,
+            Active::Load => self
+                .station
+                .load
+                .0
+                .disable()
+                .await
+                .map_err(Stop::Instrument)?,
+            Active::None => {}
+        }
+        self.active = Active::None;
+        Ok(())
+    }
+
+    /// Apply a drive: the old instrument off before the new one on. A
+    /// change of level on the instrument already driving is made in place.
+    async fn drive(&mut self, want: Active, setting: Drive) -> Result<(), Stop> {
+        if self.active != want {
+            self.switch_off_active().await?;
+        }
+        match (want, setting) {
+            (
+                Active::Source,
+                Drive::Charge {
+                    voltage_v,
+                    current_a,
+                },
+            ) => {
+                self.station
+                    .source
+                    .program(voltage_v, current_a)
+                    .await
+                    .map_err(Stop::Instrument)?;
+                if self.active != Active::Source {
+                    self.station
+                        .source
+                        .0
+                        .enable()
+                        .await
+                        .map_err(Stop::Instrument)?;
+                }
+            }
+            (Active::Load, Drive::Load(s)) => {
+                self.station
+                    .load
+                    .program(s)
+                    .await
+                    .map_err(Stop::Instrument)?;
+                if self.active != Active::Load {
+                    self.station
+                        .load
+                        .0
+                        .enable()
+                        .await
+                        .map_err(Stop::Instrument)?;
+                }
+            }
+            _ => {}
+        }
+        self.active = want;
+        Ok(())
+    }
+
+    async fn measure_once(&mut self) -> Result<(Reading, Option<f64>), InstrumentError> {
+        let mut reading = match self.active {
+            Active::Source => self.station.source.measure().await?,
+            Active::Load => self.station.load.measure().await?,
+            // Both outputs are off: the pack current is zero by
+            // construction; the voltage comes from the meter, or else the
+            // load's input.
+            Active::None if self.station.meter.is_some() => Reading {
+                voltage_v: f64::NAN,
+                current_a: 0.0,
+            },
+            Active::None => Reading {
+                voltage_v: self.station.load.0.measure_voltage().await?,
+                current_a: 0.0,
+            },
+        };
+        if let Some(m) = self.station.meter.as_mut() {
+            // Sense leads at the pack terminals: no lead drop.
+            reading.voltage_v = m.0.measure_voltage().await?;
+            if let Some(t) = m.0.measure_temperature().await? {
+                return Ok((reading, Some(t)));
+            }
+        }
+        let temp = match self.station.load.0.measure_temperature().await? {
+            Some(t) => Some(t),
+            None => self.station.source.0.measure_temperature().await?,
+        };
+        Ok((reading, temp))
+    }
+
+    async fn measure(&mut self) -> Result<(Reading, Option<f64>), Stop> {
+        let mut tries = 0;
+        loop {
+            match self.measure_once().await {
+                Ok(r) => return Ok(r),
+                Err(e)
+                    if matches!(e.kind, ErrorKind::Timeout | ErrorKind::Protocol)
+                        && tries < MEASURE_RETRIES =>
+                {
+                    tries += 1;
+                    let kind = if e.kind == ErrorKind::Timeout {
+                        "timeout_retry"
+                    } else {
+                        "protocol_retry"
+                    };
+                    self.record_instrument_error(&e, Some(kind))?;
+                    // Measurements are idempotent: retry once the session
+                    // is back in step. An instrument that cannot even
+                    // resynchronise is not retried further.
+                    let st = &mut *self.station;
+                    let inst = match e.instrument.as_str() {
+                        "source" => &mut st.source.0,
+                        "meter" if st.meter.is_some() => match st.meter.as_mut() {
+                            Some(m) => &mut m.0,
+                            None => &mut st.load.0,
+                        },
+                        _ => &mut st.load.0,
+                    };
+                    if let Err(r) = inst.resync().await {
+                        self.record_instrument_error(&r, None)?;
+                        return Err(Stop::Instrument(e));
+                    }
+                }
+                Err(e) => {
+                    self.record_instrument_error(&e, None)?;
+                    return Err(Stop::Instrument(e));
+                }
+            }
+        }
+    }
+
+    fn close_truth_step(&mut self, step: u32) {
+        if let (Some(t), Some(start)) = (&self.truth, self.truth_open.take()) {
+            let now = t.counters();
+            self.truth_steps.push(TruthStep {
+                step,
+                charge_ah: now.charge_ah - start.charge_ah,
+                energy_wh: now.energy_wh - start.energy_wh,
+            });
+        }
+    }
+
+    fn end_step(
+        &mut self,
+        t_s: f64,
+        step: u32,
+        end_kind: EndKind,
+        end_reason: String,
+    ) -> Result<(), Stop> {
+        self.close_truth_step(step);
+        self.step_open = false;
+        self.emit(Event::StepEnd {
+            t_s,
+            step,
+            end_kind,
+            end_reason,
+        })
+    }
+
+    async fn run_steps(&mut self) -> Result<(), Stop> {
+        let plan = self.plan;
+        self.preflight().await?;
+        let (from, mut carried) = match &self.resume {
+            Some(r) => (r.position, r.carried),
+            None => (0, None),
+        };
+        for st in plan.steps.iter().skip(from) {
+            self.run_step(st, carried.take()).await?;
+        }
+        self.switch_off_active().await?;
+        Ok(())
+    }
+
+    async fn run_step(&mut self, st: &PlanStep, carried: Option<Carried>) -> Result<(), Stop> {
+        self.current_step = st.index;
+        self.step_open = true;
+        let t0 = self.t();
+        if carried.is_none() {
+            self.step_start_event(st, t0)?;
+        }
+        self.run_step_body(st, carried, t0).await
+    }
+
+    fn step_start_event(&mut self, st: &PlanStep, t0: f64) -> Result<(), Stop> {
+        self.emit(Event::StepStart {
+            t_s: t0,
+            step: st.index,
+            phase: st.phase.clone(),
+            repeat: st.repeat,
+            cycle: st.cycle,
+            kind: st.kind.name().into(),
+            name: st.name.clone(),
+            description: st.kind.to_string(),
+            result: st.result.map(|r| r.name().to_string()),
+        })
+    }
+
+    async fn run_step_body(
+        &mut self,
+        st: &PlanStep,
+        carried: Option<Carried>,
+        t0: f64,
+    ) -> Result<(), Stop> {
+        let env = &self.plan.envelope;
+        // Pulse levels as (end time, drive).
+        let mut levels: Vec<(f64, Active, Drive)> = Vec::new();
+        let (want, drive) = match &st.kind {
+            StepKind::Charge {
+                current_a,
+                voltage_v,
+            } => (
+                Active::Source,
+                Drive::Charge {
+                    voltage_v: *voltage_v,
+                    current_a: *current_a,
+                },
+            ),
+            StepKind::Discharge { load } => (
+                Active::Load,
+                Drive::Load(match *load {
+                    DischargeMode::Current { current_a } => LoadSetting::Current(current_a),
+                    DischargeMode::Power { power_w } => LoadSetting::Power(power_w),
+                    DischargeMode::Resistance { resistance_ohm } => {
+                        LoadSetting::Resistance(resistance_ohm)
+                    }
+                }),
+            ),
+            StepKind::Rest => (Active::None, Drive::Off),
+            StepKind::Drain { current_limit_a } => {
+                // Hold the pack at its own voltage, read with outputs off,
+                // after reading the source's own zero afresh.
+                self.switch_off_active().await?;
+                let mut z = 0.0;
+                for _ in 0..DRAIN_ZERO_READINGS {
+                    z += self
+                        .station
+                        .source
+                        .measure()
+                        .await
+                        .map_err(Stop::Instrument)?
+                        .current_a;
+                }
+                let z = z / DRAIN_ZERO_READINGS as f64;
+                self.drain_zero = Some(z);
+                self.emit(Event::Zero {
+                    t_s: self.t(),
+                    step: st.index,
+                    instrument: "source".into(),
+                    zero_a: z,
+                    readings: DRAIN_ZERO_READINGS as u32,
+                })?;
+                let (r, _) = self.measure().await?;
+                (
+                    Active::Source,
+                    Drive::Charge {
+                        voltage_v: r.voltage_v,
+                        current_a: *current_limit_a,
+                    },
+                )
+            }
+            StepKind::Pulse { levels: ls } => {
+                let mut end = t0;
+                for l in ls {
+                    end += l.duration_s;
+                    levels.push((
+                        end,
+                        level_active(l.current_a),
+                        level_drive(l.current_a, env.voltage_max_v),
+                    ));
+                }
+                let (_, a, d) = levels[0];
+                (a, d)
+            }
+        };
+        if want == Active::None {
+            self.switch_off_active().await?;
+        } else {
+            self.drive(want, drive).await?;
+        }
+        self.truth_open = self.truth.as_ref().map(|t| t.counters());
+        let mut tracker = StepTracker::new(self.t());
+        if let Some(c) = carried {
+            // Elapsed time and counts go on from the log; nothing is
+            // integrated across the interruption.
+            tracker.t0 = self.t() - c.elapsed_s;
+            tracker.counters = c.counters;
+            tracker.counters.break_segment();
+        }
+        let mut level = 0usize;
+        let every = st.sample_every_s.unwrap_or(self.plan.sample_every_s);
+        let fine = self.plan.fine.filter(|f| f.every_s < every);
+        let time_limit = tracker.time_limit(st);
+        let cap_time = tracker.t0 + env.step_time_max_s;
+        let mut scheduled: Option<f64> = None;
+        let mut prev: Option<Sample> = None;
+        loop {
+            let t = self.t();
+            if let Some(due) = scheduled.take() {
+                let late = t - due;
+                self.timing.scheduled_samples += 1;
+                if late > LATE_S {
+                    self.timing.late_samples += 1;
+                }
+                self.timing.max_late_s = self.timing.max_late_s.max(late);
+            }
+            let (reading, temp) = self.measure().await?;
+            let s = Sample {
+                t_s: t,
+                step: st.index,
+                cycle: st.cycle,
+                voltage_v: reading.voltage_v,
+                current_a: reading.current_a - self.zero_of(st),
+                temperature_c: temp,
+            };
+            self.sink.sample(&s).map_err(Stop::Log)?;
+            tracker.push(&s);
+            self.poll_errors(t).await?;
+            let so_far = safety::StepSoFar {
+                elapsed_s: tracker.elapsed(),
+                charge_in_ah: tracker.counters.ah_in,
+            };
+            if let Some(b) = safety::check(&s, &so_far, env) {
+                self.emit(Event::Breach {
+                    t_s: t,
+                    step: st.index,
+                    limit: b.limit.into(),
+                    value: b.value,
+                    threshold: b.threshold,
+                    message: b.message.clone(),
+                })?;
+                return Err(Stop::Breach(format!(
+                    "safety limit {}: {}",
+                    b.limit, b.message
+                )));
+            }
+            if let Some((kind, cond)) = tracker.end_reached(st) {
+                self.capacity_alarm(st, kind, &tracker, t)?;
+                return self.end_step(t, st.index, kind, cond.to_string());
+            }
+            if !levels.is_empty() && t >= levels[level].0 - 1e-9 {
+                level += 1;
+                if level == levels.len() {
+                    return self.end_step(
+                        t,
+                        st.index,
+                        EndKind::LevelsDone,
+                        "pulse levels done".into(),
+                    );
+                }
+                let (_, a, d) = levels[level];
+                if a == Active::None {
+                    self.switch_off_active().await?;
+                } else {
+                    self.drive(a, d).await?;
+                }
+                // Sample again at once: the edge is what a pulse is for.
+                continue;
+            }
+            if self.stop.stop_requested() {
+                return Err(Stop::Interrupted);
+            }
+            // Samples follow a grid from the step's start, so a paced clock
+            // that wakes late does not stretch the interval (a late sample
+            // is taken at once), and extra samples at pulse edges do not
+            // shift it.
+            let k = ((t - tracker.t0) / every + 1e-9).floor() + 1.0;
+            let mut next = tracker.t0 + k * every;
+            if let Some(f) = fine {
+                if near_end(st, &s, prev.as_ref(), every, f.within_fraction) {
+                    next = next.min(t + f.every_s);
+                }
+            }
+            prev = Some(s);
+            if let Some(tl) = time_limit {
+                if tl > t + 1e-9 {
+                    next = next.min(tl);
+                }
+            }
+            if let Some((end, _, _)) = levels.get(level) {
+                next = next.min(*end);
+            }
+            if cap_time > t + 1e-9 {
+                next = next.min(cap_time + 1e-3);
+            }
+            scheduled = Some(next);
+            self.wait_until(next).await;
+            if self.stop.stop_requested() {
+                return Err(Stop::Interrupted);
+            }
+        }
+    }
+
+    /// The low-capacity alarm: the capacity step reached its cutoff with
+    /// less than the threshold. An event; the run goes on.
+    fn capacity_alarm(
+        &mut self,
+        st: &PlanStep,
+        kind: EndKind,
+        tracker: &StepTracker,
+        t: f64,
+    ) -> Result<(), Stop> {
+        let (Some(limit), Some(model::procedure::ResultTag::Capacity)) =
+            (self.alarm_capacity_ah, st.result)
+        else {
+            return Ok(());
+        };
+        let got = tracker.counters.ah_out;
+        if kind == EndKind::VoltageBelow && got < limit {
+            self.emit(Event::Alarm {
+                t_s: t,
+                step: st.index,
+                kind: "low_capacity".into(),
+                message: format!(
+                    "low capacity: {got:.3} Ah to the cutoff, under the alarm threshold {limit:.3} Ah"
+                ),
+            })?;
+        }
+        Ok(())
+    }
+}
+
+/// Whether a step is near one of its ends: a voltage end within the given
+/// fraction of its threshold or, at the present rate of change, less than
+/// three base intervals away; a charge or energy end less than three base
+/// intervals away at the present current.
+pub fn near_end(st: &PlanStep, s: &Sample, prev: Option<&Sample>, every: f64, within: f64) -> bool {
+    let horizon = 3.0 * every;
+    let rate = prev
+        .filter(|p| s.t_s > p.t_s && p.step == s.step)
+        .map(|p| (s.voltage_v - p.voltage_v) / (s.t_s - p.t_s));
+    st.ends.iter().any(|c| match *c {
+        EndCondition::VoltageBelow { voltage_v } => {
+            s.voltage_v <= voltage_v * (1.0 + within)
+                || rate.is_some_and(|r| r < 0.0 && (s.voltage_v - voltage_v) / -r < horizon)
+        }
+        EndCondition::VoltageAbove { voltage_v } => {
+            s.voltage_v >= voltage_v * (1.0 - within)
+                || rate.is_some_and(|r| r > 0.0 && (voltage_v - s.voltage_v) / r < horizon)
+        }
+        _ => false,
+    })
+}
+
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum Drive {
+    Off,
+    Charge { voltage_v: f64, current_a: f64 },
+    Load(LoadSetting),
+}
+
+fn level_active(current: f64) -> Active {
+    if current > 0.0 {
+        Active::Source
+    } else if current < 0.0 {
+        Active::Load
+    } else {
+        Active::None
+    }
+}
+
+/// A charge pulse is limited to 1 % under the envelope's maximum voltage.
+fn level_drive(current: f64, voltage_max: f64) -> Drive {
+    if current > 0.0 {
+        Drive::Charge {
+            voltage_v: voltage_max * 0.99,
+            current_a: current,
+        }
+    } else if current < 0.0 {
+        Drive::Load(LoadSetting::Current(-current))
+    } else {
+        Drive::Off
+    }
+}

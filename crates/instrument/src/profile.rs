@@ -1,0 +1,461 @@
+//! Instrument profiles: a TOML file per instrument kind that maps each
+//! logical operation to a command template and declares ranges, terminator
+//! and timeouts. Two generic SCPI-1999 profiles are built in.
+
+use model::location::{toml_error, InputErrors, LocatedError, Location};
+use model::units;
+use serde::Deserialize;
+use std::path::Path;
+
+pub const GENERIC_SOURCE: &str = include_str!("../../../profiles/generic-scpi-source.toml");
+pub const GENERIC_LOAD: &str = include_str!("../../../profiles/generic-scpi-load.toml");
+pub const GENERIC_SOURCE_SINK: &str = include_str!("../../../profiles/generic-scpi-source-sink.toml");
+pub const GENERIC_METER: &str = include_str!("../../../profiles/generic-scpi-meter.toml");
+
+/// The built-in profiles by name.
+pub const BUILTIN: &[(&str, &str)] = &[
+    ("generic-scpi-source", GENERIC_SOURCE),
+    ("generic-scpi-load", GENERIC_LOAD),
+    ("generic-scpi-source-sink", GENERIC_SOURCE_SINK),
+    ("generic-scpi-meter", GENERIC_METER),
+];
+
+/// Which role an instrument can play.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum ProfileRole {
+    Source,
+    Load,
+    /// One bidirectional instrument that both charges and discharges.
+    SourceSink,
+    /// A voltmeter at the pack terminals, with a temperature input.
+    Meter,
+}
+
+impl ProfileRole {
+    pub fn name(self) -> &'static str {
+        match self {
+            ProfileRole::Source => "source",
+            ProfileRole::Load => "load",
+            ProfileRole::SourceSink => "source-sink",
+            ProfileRole::Meter => "meter",
+        }
+    }
+}
+
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Transport {
+    #[serde(default = "default_term")]
+    pub write_termination: String,
+    /// The character that ends a reply: "\n" (LF) or "\r" (CR).
+    #[serde(default = "default_term")]
+    pub read_termination: String,
+    #[serde(default = "default_timeout")]
+    pub timeout_ms: u64,
+    /// Least pause between the end of one exchange and the next message, ms.
+    #[serde(default)]
+    pub delay_ms: u64,
+}
+
+fn default_term() -> String {
+    "\n".into()
+}
+fn default_timeout() -> u64 {
+    2000
+}
+
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SessionSetup {
+    #[serde(default)]
+    pub init: Vec<String>,
+    #[serde(default)]
+    pub safe_state: Vec<String>,
+    #[serde(default)]
+    pub check_errors_after_set: bool,
+    #[serde(default)]
+    pub read_back: bool,
+    /// Wait this long after a setting before the next exchange, ms.
+    #[serde(default)]
+    pub settle_ms: u64,
+    /// Read the error queue about once a second while a step runs.
+    #[serde(default = "default_true")]
+    pub poll_errors: bool,
+}
+
+fn default_true() -> bool {
+    true
+}
+
+/// Command templates; `{value}` and `{mode}` are filled in.
+#[derive(Debug, Clone, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Commands {
+    pub identify: String,
+    pub reset: Option<String>,
+    pub clear: Option<String>,
+    pub set_voltage: Option<String>,
+    pub get_voltage: Option<String>,
+    pub set_current: Option<String>,
+    pub get_current: Option<String>,
+    pub set_power: Option<String>,
+    pub get_power: Option<String>,
+    pub set_resistance: Option<String>,
+    pub get_resistance: Option<String>,
+    pub set_mode: Option<String>,
+    pub get_mode: Option<String>,
+    pub enable: Option<String>,
+    pub disable: Option<String>,
+    pub enabled_query: Option<String>,
+    pub measure_voltage_current: Option<String>,
+    pub measure_voltage: String,
+    pub measure_current: Option<String>,
+    pub measure_power: Option<String>,
+    pub measure_temperature: Option<String>,
+    pub error_query: Option<String>,
+}
+
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ModeWords {
+    /// The source function of a source-sink instrument (CC-CV charging).
+    pub voltage: Option<String>,
+    pub current: String,
+    pub power: String,
+    pub resistance: String,
+}
+
+#[derive(Debug, Clone, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawRanges {
+    voltage_max: Option<String>,
+    current_max: Option<String>,
+    power_max: Option<String>,
+    resistance_max: Option<String>,
+}
+
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawProfile {
+    name: String,
+    role: ProfileRole,
+    transport: Transport,
+    session: SessionSetup,
+    commands: Commands,
+    mode_words: Option<ModeWords>,
+    #[serde(default)]
+    ranges: RawRanges,
+}
+
+/// Declared ranges in SI units.
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct Ranges {
+    pub voltage_max_v: Option<f64>,
+    pub current_max_a: Option<f64>,
+    pub power_max_w: Option<f64>,
+    pub resistance_max_ohm: Option<f64>,
+}
+
+/// A validated profile.
+#[derive(Debug, Clone)]
+pub struct Profile {
+    pub name: String,
+    pub role: ProfileRole,
+    pub transport: Transport,
+    pub session: SessionSetup,
+    pub commands: Commands,
+    pub mode_words: Option<ModeWords>,
+    pub ranges: Ranges,
+}
+
+impl Profile {
+    /// Parse and validate a profile; errors carry file:line:column.
+    pub fn from_toml(file: &Path, text: &str) -> Result<Profile, InputErrors> {
+        let raw: RawProfile =
+            toml::from_str(text).map_err(|e| InputErrors(vec![toml_error(file, text, &e)]))?;
+        let mut errors = Vec::new();
+        let locate = |needle: &str| {
+            let off = text.find(needle).unwrap_or(0);
+            Location::at(file, text, off)
+        };
+        let mut range =
+            |v: &Option<String>, key: &str, f: fn(&str) -> Option<f64>| -> Option<f64> {
+                let s = v.as_ref()?;
+                match f(s) {
+                    Some(x) if x > 0.0 => Some(x),
+                    _ => {
+                        errors.push(LocatedError {
+                            location: locate(key),
+                            message: format!(
+                                "ranges.{key} = '{s}' is not a positive value of the right unit"
+                            ),
+                        });
+                        None
+                    }
+                }
+            };
+        let ranges = Ranges {
+            voltage_max_v: range(&raw.ranges.voltage_max, "voltage_max", |s| {
+                units::voltage(s).ok().and_then(|v| match v {
+                    units::VoltageSpec::Pack(v) => Some(v),
+                    units::VoltageSpec::PerCell(_) => None,
+                })
+            }),
+            current_max_a: range(&raw.ranges.current_max, "current_max", |s| {
+                units::current(s).ok().and_then(|c| match c {
+                    units::CurrentSpec::Amps(a) => Some(a),
+                    units::CurrentSpec::CRate(_) => None,
+                })
+            }),
+            power_max_w: range(&raw.ranges.power_max, "power_max", |s| {
+                units::power(s).ok().and_then(|p| match p {
+                    units::PowerSpec::Pack(w) => Some(w),
+                    units::PowerSpec::PerCell(_) => None,
+                })
+            }),
+            resistance_max_ohm: range(&raw.ranges.resistance_max, "resistance_max", |s| {
+                units::resistance_ohm(s).ok()
+            }),
+        };
+        let c = &raw.commands;
+        let role_name = raw.role.name();
+        let mut need = |ok: bool, what: &str| {
+            if !ok {
+                let at = if what.starts_with('[') {
+                    "name"
+                } else {
+                    "[commands]"
+                };
+                errors.push(LocatedError {
+                    location: locate(at),
+                    message: format!("a {role_name} profile needs the operation {what}"),
+                });
+            }
+        };
+        let drives = raw.role != ProfileRole::Meter;
+        if drives {
+            need(c.enable.is_some(), "commands.enable");
+            need(c.disable.is_some(), "commands.disable");
+            need(
+                c.measure_current.is_some() || c.measure_voltage_current.is_some(),
+                "commands.measure_current",
+            );
+        }
+        if matches!(raw.role, ProfileRole::Source | ProfileRole::SourceSink) {
+            need(c.set_voltage.is_some(), "commands.set_voltage");
+            need(c.set_current.is_some(), "commands.set_current");
+        }
+        if matches!(raw.role, ProfileRole::Load | ProfileRole::SourceSink) {
+            need(c.set_current.is_some(), "commands.set_current");
+            need(c.set_mode.is_some(), "commands.set_mode");
+            need(raw.mode_words.is_some(), "[mode_words]");
+        }
+        if raw.role == ProfileRole::SourceSink {
+            need(
+                raw.mode_words.as_ref().is_some_and(|w| w.voltage.is_some()),
+                "[mode_words] voltage (the source function)",
+            );
+        }
+        if !matches!(raw.transport.read_termination.as_str(), "\n" | "\r") {
+            errors.push(LocatedError {
+                location: locate("read_termination"),
+                message: "transport.read_termination must be \"\\n\" or \"\\r\"".into(),
+            });
+        }
+        if raw.transport.write_termination.is_empty() {
+            errors.push(LocatedError {
+                location: locate("write_termination"),
+                message: "transport.write_termination must not be empty".into(),
+            });
+        }
+        for (key, t) in [
+            ("set_voltage", &c.set_voltage),
+            ("set_current", &c.set_current),
+            ("set_power", &c.set_power),
+            ("set_resistance", &c.set_resistance),
+        ] {
+            if let Some(t) = t {
+                if !t.contains("{value}") {
+                    errors.push(LocatedError {
+                        location: locate(key),
+                        message: format!("commands.{key} must contain {{value}}"),
+                    });
+                }
+            }
+        }
+        for (key, v, max) in [
+            ("delay_ms", raw.transport.delay_ms, 10_000),
+            ("settle_ms", raw.session.settle_ms, 60_000),
+        ] {
+            if v > max {
+                errors.push(LocatedError {
+                    location: locate(key),
+                    message: format!("{key} must be at most {max}"),
+                });
+            }
+        }
+        if raw.transport.timeout_ms == 0 || raw.transport.timeout_ms > 600_000 {
+            errors.push(LocatedError {
+                location: locate("timeout_ms"),
+                message: "transport.timeout_ms must be between 1 and 600000".into(),
+            });
+        }
+        if !errors.is_empty() {
+            return Err(InputErrors(errors));
+        }
+        Ok(Profile {
+            name: raw.name,
+            role: raw.role,
+            transport: raw.transport,
+            session: raw.session,
+            commands: raw.commands,
+            mode_words: raw.mode_words,
+            ranges,
+        })
+    }
+
+    /// The framing of this profile's sessions.
+    pub fn framing(&self) -> crate::scpi::Framing {
+        crate::scpi::Framing {
+            write_term: self.transport.write_termination.clone(),
+            read_term: self
+                .transport
+                .read_termination
+                .bytes()
+                .last()
+                .unwrap_or(b'\n'),
+            timeout: std::time::Duration::from_millis(self.transport.timeout_ms),
+            delay: std::time::Duration::from_millis(self.transport.delay_ms),
+        }
+    }
+
+    /// A built-in profile by name, if there is one.
+    pub fn builtin_named(name: &str) -> Option<Profile> {
+        let text = BUILTIN.iter().find(|(n, _)| *n == name)?.1;
+        let file = format!("<built-in>/{name}.toml");
+        match Profile::from_toml(Path::new(&file), text) {
+            Ok(p) => Some(p),
+            Err(e) => panic!("built-in profile is invalid: {e}"),
+        }
+    }
+
+    /// The built-in generic SCPI profile of a role.
+    pub fn builtin(role: ProfileRole) -> Profile {
+        let (name, text) = match role {
+            ProfileRole::Source => ("<built-in>/generic-scpi-source.toml", GENERIC_SOURCE),
+            ProfileRole::Load => ("<built-in>/generic-scpi-load.toml", GENERIC_LOAD),
+            ProfileRole::SourceSink => (
+                "<built-in>/generic-scpi-source-sink.toml",
+                GENERIC_SOURCE_SINK,
+            ),
+            ProfileRole::Meter => ("<built-in>/generic-scpi-meter.toml", GENERIC_METER),
+        };
+        match Profile::from_toml(Path::new(name), text) {
+            Ok(p) => p,
+            // The built-in files are checked by a unit test; reaching this
+            // is a build defect, not user input.
+            Err(e) => panic!("built-in profile is invalid: {e}"),
+        }
+    }
+
+    /// Every command template, for checking them against the SCPI tree.
+    pub fn templates(&self) -> Vec<String> {
+        let c = &self.commands;
+        let mut v = vec![c.identify.clone(), c.measure_voltage.clone()];
+        for t in [
+            &c.enable,
+            &c.disable,
+            &c.measure_current,
+            &c.reset,
+            &c.clear,
+            &c.set_voltage,
+            &c.get_voltage,
+            &c.set_current,
+            &c.get_current,
+            &c.set_power,
+            &c.get_power,
+            &c.set_resistance,
+            &c.get_resistance,
+            &c.get_mode,
+            &c.enabled_query,
+            &c.measure_voltage_current,
+            &c.measure_power,
+            &c.measure_temperature,
+            &c.error_query,
+        ]
+        .into_iter()
+        .flatten()
+        {
+            v.push(t.clone());
+        }
+        if let (Some(m), Some(words)) = (&c.set_mode, &self.mode_words) {
+            for w in [&words.current, &words.power, &words.resistance] {
+                v.push(m.replace("{mode}", w));
+            }
+            if let Some(w) = &words.voltage {
+                v.push(m.replace("{mode}", w));
+            }
+        }
+        v.extend(self.session.init.iter().cloned());
+        v.extend(self.session.safe_state.iter().cloned());
+        v.into_iter().map(|t| t.replace("{value}", "1.5")).collect()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::command::parse_message;
+
+    #[test]
+    fn builtin_profiles_speak_only_the_scpi_tree() {
+        for role in [
+            ProfileRole::Source,
+            ProfileRole::Load,
+            ProfileRole::SourceSink,
+            ProfileRole::Meter,
+        ] {
+            let p = Profile::builtin(role);
+            assert_eq!(p.role, role);
+            for t in p.templates() {
+                for u in parse_message(&t) {
+                    assert!(u.is_ok(), "{}: '{t}' does not parse: {u:?}", p.name);
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn profile_errors_are_located() {
+        let bad = GENERIC_SOURCE.replace("timeout_ms = 2000", "timeout_ms = 2000\nbaud = 9600");
+        let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
+        assert!(
+            e.to_string()
+                .starts_with("p.toml:10:1: unknown field `baud`"),
+            "{e}"
+        );
+        let bad = GENERIC_SOURCE.replace("VOLT {value}", "VOLT 1");
+        let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
+        assert!(e.to_string().contains("{value}"), "{e}");
+        // An unknown operation.
+        let bad = GENERIC_LOAD.replace("get_mode = ", "read_mode = ");
+        let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
+        assert!(
+            e.to_string()
+                .starts_with("p.toml:25:1: unknown field `read_mode`"),
+            "{e}"
+        );
+        // A missing required operation, located at the [commands] table.
+        let bad = GENERIC_LOAD.replace("set_mode = \"FUNC {mode}\"\n", "");
+        let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
+        assert!(
+            e.to_string()
+                .starts_with("p.toml:20:1: a load profile needs the operation commands.set_mode"),
+            "{e}"
+        );
+        let bad = GENERIC_SOURCE_SINK.replace("voltage = \"VOLT\"\n", "");
+        let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
+        assert!(e.to_string().contains("the source function"), "{e}");
+    }
+}

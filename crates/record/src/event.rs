@@ -1,0 +1,131 @@
+//! Run events and the sink trait. The engine pushes samples and events to
+//! a sink; the run log, progress displays and test collectors are sinks.
+
+pub use model::end::EndKind;
+use model::sample::Sample;
+use serde::{Deserialize, Serialize};
+
+/// One line of `events.jsonl`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "event", rename_all = "snake_case")]
+pub enum Event {
+    RunStart {
+        t_s: f64,
+        steps: u32,
+    },
+    StepStart {
+        t_s: f64,
+        step: u32,
+        phase: String,
+        repeat: u32,
+        cycle: u32,
+        kind: String,
+        name: Option<String>,
+        description: String,
+        result: Option<String>,
+    },
+    StepEnd {
+        t_s: f64,
+        step: u32,
+        end_kind: EndKind,
+        end_reason: String,
+    },
+    /// An envelope limit was crossed.
+    Breach {
+        t_s: f64,
+        step: u32,
+        limit: String,
+        value: f64,
+        threshold: f64,
+        message: String,
+    },
+    InstrumentError {
+        t_s: f64,
+        step: u32,
+        instrument: String,
+        kind: String,
+        message: String,
+    },
+    /// Outputs switched off at the end of the run, with read-back results.
+    OutputsOff {
+        t_s: f64,
+        reason: String,
+        source_off_confirmed: bool,
+        load_off_confirmed: bool,
+    },
+    RunEnd {
+        t_s: f64,
+        status: String,
+        reason: Option<String>,
+    },
+    /// Read before the first step, outputs off: the pack at rest and each
+    /// instrument's current reading with nothing flowing (its zero offset,
+    /// pack sign convention).
+    Preflight {
+        t_s: f64,
+        voltage_v: f64,
+        temperature_c: Option<f64>,
+        source_zero_a: Option<f64>,
+        load_zero_a: Option<f64>,
+        /// The zero offsets are subtracted from the current readings.
+        corrected: bool,
+    },
+    /// An instrument's current reading with its output off, read for one
+    /// step (a drain step reads its own zero just before it starts).
+    Zero {
+        t_s: f64,
+        step: u32,
+        instrument: String,
+        zero_a: f64,
+        readings: u32,
+    },
+    /// Something the operator should know that does not stop the run.
+    Warning {
+        t_s: f64,
+        step: u32,
+        message: String,
+    },
+    /// An alarm the run raises and goes on (e.g. low capacity).
+    Alarm {
+        t_s: f64,
+        step: u32,
+        kind: String,
+        message: String,
+    },
+    /// The run goes on after an interruption (`packbench resume`).
+    Resumed {
+        t_s: f64,
+        /// The step the run continues with.
+        step: u32,
+        /// Run time of the last sample before the interruption, s.
+        last_sample_t_s: f64,
+        /// Time between the interruption and the resume, s.
+        gap_s: f64,
+        /// How the step continues (the documented rule for its kind).
+        rule: String,
+    },
+}
+
+/// Where samples and events go. Errors stop the run safely.
+pub trait Sink {
+    fn sample(&mut self, s: &Sample) -> std::io::Result<()>;
+    fn event(&mut self, e: &Event) -> std::io::Result<()>;
+}
+
+/// A sink that keeps everything in memory (tests, dry runs).
+#[derive(Debug, Default)]
+pub struct Collect {
+    pub samples: Vec<Sample>,
+    pub events: Vec<Event>,
+}
+
+impl Sink for Collect {
+    fn sample(&mut self, s: &Sample) -> std::io::Result<()> {
+        self.samples.push(*s);
+        Ok(())
+    }
+    fn event(&mut self, e: &Event) -> std::io::Result<()> {
+        self.events.push(e.clone());
+        Ok(())
+    }
+}

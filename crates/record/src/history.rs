@@ -1,0 +1,345 @@
+//! A pack's history: every completed run under `results/<pack>/` (aborted
+//! and interrupted runs are listed but left out of fits), plus earlier
+//! measurements from a plain CSV (`date,cycles,capacity_ah,resistance_mohm`)
+//! so history from before packbench counts.
+//!
+//! Equivalent full cycles: the count recorded with a run (from the pack's
+//! own counter or the operator) when there is one; otherwise the last known
+//! count plus the discharge Ah packbench measured since, over the rated Ah.
+//! A history line with an empty cycle cell has no count (NaN): it is left
+//! out of the fit against cycles and kept in the fits against time.
+
+pub use analysis::fade::history::{HistoryPoint, LeftOut, PackHistory};
+use model::location::{LocatedError, Location};
+use model::pack::PackSpec;
+use crate::{Summary, PACK_TOML, SUMMARY_JSON};
+use chrono::NaiveDate;
+use std::path::{Path, PathBuf};
+
+/// The file of earlier measurements a pack folder may hold.
+pub const HISTORY_CSV: &str = "history.csv";
+
+#[derive(Debug, thiserror::Error)]
+pub enum HistoryError {
+    #[error("{path}: {error}")]
+    Io {
+        path: PathBuf,
+        error: std::io::Error,
+    },
+    #[error(transparent)]
+    Bad(#[from] LocatedError),
+    #[error("{0}")]
+    Pack(String),
+}
+
+fn io(path: &Path) -> impl FnOnce(std::io::Error) -> HistoryError + '_ {
+    move |source| HistoryError::Io {
+        path: path.to_path_buf(),
+        error: source,
+    }
+}
+
+/// Parse `YYYY-MM-DD` (a longer ISO timestamp is cut to its date).
+pub fn parse_date(s: &str) -> Option<NaiveDate> {
+    let s = s.trim();
+    NaiveDate::parse_from_str(s.get(..10).unwrap_or(s), "%Y-%m-%d").ok()
+}
+
+/// Read earlier measurements: `date,cycles,capacity_ah,resistance_mohm`
+/// (cycles and resistance may be empty).
+pub fn read_history_csv(path: &Path, rated_ah: f64) -> Result<Vec<HistoryPoint>, HistoryError> {
+    let text = std::fs::read_to_string(path).map_err(io(path))?;
+    let mut out = Vec::new();
+    let bad = |line: usize, column: usize, message: String| {
+        HistoryError::Bad(LocatedError {
+            location: Location {
+                file: path.to_path_buf(),
+                line,
+                column,
+            },
+            message,
+        })
+    };
+    let mut lines = text.lines().enumerate();
+    let header: Vec<String> = match lines.next() {
+        Some((_, h)) => h.split(',').map(|c| c.trim().to_string()).collect(),
+        None => return Ok(out),
+    };
+    let want = ["date", "cycles", "capacity_ah", "resistance_mohm"];
+    for (i, w) in want.iter().enumerate().take(3) {
+        if header.get(i).map(String::as_str) != Some(*w) {
+            return Err(bad(
+                1,
+                1,
+                format!(
+                    "expected the header '{}' (resistance_mohm optional)",
+                    want.join(",")
+                ),
+            ));
+        }
+    }
+    for (n, line) in lines {
+        let line_no = n + 1;
+        if line.trim().is_empty() {
+            continue;
+        }
+        let f: Vec<&str> = line.split(',').map(str::trim).collect();
+        let col = |i: usize| f[..i].iter().map(|s| s.len() + 1).sum::<usize>() + 1;
+        let date = parse_date(f[0])
+            .ok_or_else(|| bad(line_no, 1, format!("'{}' is not a date (YYYY-MM-DD)", f[0])))?;
+        let cycles = match f.get(1).copied().unwrap_or("") {
+            "" => None,
+            s => Some(
+                s.parse::<f64>()
+                    .ok()
+                    .filter(|c| c.is_finite() && *c >= 0.0)
+                    .ok_or_else(|| bad(line_no, col(1), format!("'{s}' is not a cycle count")))?,
+            ),
+        };
+        let cap_s = f.get(2).copied().unwrap_or("");
+        let capacity_ah = cap_s
+            .parse::<f64>()
+            .ok()
+            .filter(|c| c.is_finite() && *c > 0.0)
+            .ok_or_else(|| {
+                bad(
+                    line_no,
+                    col(2),
+                    format!("'{cap_s}' is not a capacity in Ah"),
+                )
+            })?;
+        let resistance_mohm = match f.get(3).copied().unwrap_or("") {
+            "" => None,
+            s => Some(
+                s.parse::<f64>()
+                    .ok()
+                    .filter(|r| r.is_finite() && *r > 0.0)
+                    .ok_or_else(|| {
+                        bad(
+                            line_no,
+                            col(3),
+                            format!("'{s}' is not a resistance in mohm"),
+                        )
+                    })?,
+            ),
+        };
+        out.push(HistoryPoint {
+            date,
+            cycles: cycles.unwrap_or(f64::NAN),
+            cycles_given: cycles.is_some(),
+            capacity_ah,
+            soh_pct: capacity_ah / rated_ah * 100.0,
+            resistance_mohm,
+            coulombic_efficiency_pct: None,
+            grade: None,
+            source: format!("{} line {line_no}", path.display()),
+            run_dir: None,
+        });
+    }
+    Ok(out)
+}
+
+/// Discharge Ah packbench measured in a run.
+fn discharged_ah(s: &Summary) -> f64 {
+    s.steps.iter().map(|st| st.charge_out_ah).sum()
+}
+
+/// Load the summaries of every run of a pack, in date order.
+pub fn run_summaries(pack_dir: &Path) -> Result<Vec<(PathBuf, Summary)>, HistoryError> {
+    let mut out = Vec::new();
+    let entries = std::fs::read_dir(pack_dir).map_err(io(pack_dir))?;
+    for e in entries {
+        let e = e.map_err(io(pack_dir))?;
+        let path = e.path().join(SUMMARY_JSON);
+        if !path.is_file() {
+            continue;
+        }
+        let text = std::fs::read_to_string(&path).map_err(io(&path))?;
+        match serde_json::from_str::<Summary>(&text) {
+            Ok(s) => out.push((e.path(), s)),
+            Err(err) => {
+                return Err(HistoryError::Bad(LocatedError {
+                    location: Location {
+                        file: path.clone(),
+                        line: err.line(),
+                        column: err.column(),
+                    },
+                    message: err.to_string(),
+                }))
+            }
+        }
+    }
+    out.sort_by(|a, b| {
+        (a.1.test_date.as_str(), a.1.run_id.as_str())
+            .cmp(&(b.1.test_date.as_str(), b.1.run_id.as_str()))
+    });
+    Ok(out)
+}
+
+/// Gather a pack's history from its results folder and optional extra CSV.
+pub fn load(
+    results: &Path,
+    pack_id: &str,
+    extra_csv: Option<&Path>,
+) -> Result<PackHistory, HistoryError> {
+    model::pack::check_pack_id(pack_id).map_err(|e| HistoryError::Pack(e.to_string()))?;
+    let pack_dir = results.join(pack_id);
+    let spec_path = pack_dir.join(PACK_TOML);
+    let spec_text = std::fs::read_to_string(&spec_path).map_err(io(&spec_path))?;
+    let spec = PackSpec::from_toml(&spec_path, &spec_text)
+        .map_err(|e| HistoryError::Pack(e.to_string()))?;
+    let mut points = Vec::new();
+    let csv_path = pack_dir.join(HISTORY_CSV);
+    if csv_path.is_file() {
+        points.extend(read_history_csv(&csv_path, spec.rated_capacity_ah)?);
+    }
+    if let Some(p) = extra_csv {
+        points.extend(read_history_csv(p, spec.rated_capacity_ah)?);
+    }
+    let mut left_out = Vec::new();
+    // Runs in date order, with throughput counted across all of them
+    // (aborted runs moved charge too).
+    let runs = run_summaries(&pack_dir)?;
+    let mut run_points = Vec::new();
+    for (dir, s) in &runs {
+        let date = parse_date(&s.test_date).unwrap_or_default();
+        let from_full = s.capacity.as_ref().is_some_and(|c| c.from_full_charge);
+        let usable = s.status == "completed" && from_full;
+        if !usable {
+            left_out.push(LeftOut {
+                run_id: s.run_id.clone(),
+                status: s.status.clone(),
+                reason: match (&s.stop_reason, &s.capacity) {
+                    (Some(r), _) => r.clone(),
+                    (None, Some(c)) if !c.from_full_charge => format!(
+                        "the capacity step did not start from a full charge ({})",
+                        c.preceded_by
+                    ),
+                    _ => "no capacity measured".into(),
+                },
+            });
+        }
+        run_points.push((date, s, dir.clone(), usable));
+    }
+    // Count cycles: merge all dated events and walk them in order.
+    let mut known_cycles: Option<f64> = None;
+    let mut counted_since = 0.0;
+    let mut merged: Vec<HistoryPoint> = Vec::new();
+    let mut csv_points = std::mem::take(&mut points);
+    csv_points.sort_by_key(|p| p.date);
+    let mut csv_iter = csv_points.into_iter().peekable();
+    for (date, s, dir, usable) in run_points {
+        // A history line's empty cycle cell stays unknown (NaN): packbench
+        // measured nothing there to count from.
+        while let Some(p) = csv_iter.next_if(|p| p.date <= date) {
+            if p.cycles_given {
+                known_cycles = Some(p.cycles);
+                counted_since = 0.0;
+            }
+            merged.push(p);
+        }
+        let cycles = match s.cycle_count {
+            Some(c) => {
+                known_cycles = Some(c);
+                counted_since = 0.0;
+                c
+            }
+            None => known_cycles.unwrap_or(0.0) + counted_since,
+        };
+        if usable {
+            if let Some(c) = &s.capacity {
+                merged.push(HistoryPoint {
+                    date,
+                    cycles,
+                    cycles_given: s.cycle_count.is_some(),
+                    capacity_ah: if c.corrected_ah > 0.0 {
+                        c.corrected_ah
+                    } else {
+                        c.measured_ah
+                    },
+                    soh_pct: c.soh_pct,
+                    resistance_mohm: s.resistance.as_ref().map(|r| r.dcir_mohm),
+                    coulombic_efficiency_pct: s
+                        .cycles
+                        .iter()
+                        .rev()
+                        .find_map(|c| c.coulombic_efficiency_pct),
+                    grade: s.grade.as_ref().map(|g| g.label.clone()),
+                    source: format!("run {}", s.run_id),
+                    run_dir: Some(dir.clone()),
+                });
+            }
+        }
+        counted_since += discharged_ah(s) / spec.rated_capacity_ah;
+    }
+    merged.extend(csv_iter);
+    Ok(PackHistory {
+        pack_id: pack_id.to_string(),
+        spec,
+        points: merged,
+        left_out,
+    })
+}
+
+/// Pack ids with a `pack.toml` under a results folder.
+pub fn pack_ids(results: &Path) -> Result<Vec<String>, HistoryError> {
+    let mut ids = Vec::new();
+    for e in std::fs::read_dir(results).map_err(io(results))? {
+        let e = e.map_err(io(results))?;
+        if e.path().join(PACK_TOML).is_file() {
+            if let Some(n) = e.file_name().to_str() {
+                ids.push(n.to_string());
+            }
+        }
+    }
+    ids.sort();
+    Ok(ids)
+}
+
+/// Each run's capacity-step curve, for the overlay plot.
+pub fn capacity_curves(h: &PackHistory) -> Vec<(String, Vec<(f64, f64)>)> {
+    let mut out = Vec::new();
+    for p in &h.points {
+        let Some(dir) = &p.run_dir else { continue };
+        let Ok(summary) = std::fs::read_to_string(dir.join(crate::SUMMARY_JSON)) else {
+            continue;
+        };
+        let Ok(s) = serde_json::from_str::<crate::Summary>(&summary) else {
+            continue;
+        };
+        let Some(cap) = s.capacity else { continue };
+        let Ok(log) = crate::read::read_samples(&dir.join(crate::SAMPLES_CSV))
+        else {
+            continue;
+        };
+        let step: Vec<_> = log
+            .samples
+            .into_iter()
+            .filter(|x| x.step == cap.step)
+            .collect();
+        out.push((
+            format!("{} ({:.0} cyc)", p.date, p.cycles),
+            analysis::curves::charge_curve(&step),
+        ));
+    }
+    out
+}
+
+/// Build the fleet view of every pack under a results folder.
+pub fn fleet(
+    results: &Path,
+    today: NaiveDate,
+    interval_days: i64,
+    threshold_pct: f64,
+) -> Result<analysis::fade::fleet::Fleet, HistoryError> {
+    let mut histories = Vec::new();
+    for id in pack_ids(results)? {
+        histories.push(load(results, &id, None)?);
+    }
+    Ok(analysis::fade::fleet::rank(
+        &histories,
+        today,
+        interval_days,
+        threshold_pct,
+    ))
+}

@@ -1,0 +1,149 @@
+//! The run record on disk:
+//!
+//! ```text
+//! results/<pack-id>/pack.toml
+//! results/<pack-id>/<run-id>/run.json       manifest (rewritten at the end)
+//! results/<pack-id>/<run-id>/samples.csv    one row per sample, flushed every second
+//! results/<pack-id>/<run-id>/events.jsonl   step starts/ends, breaches, faults
+//! results/<pack-id>/<run-id>/summary.json   computed figures and status
+//! ```
+//!
+//! JSON records are written to a temporary name and renamed, so a crash
+//! never leaves one half-written. No statistics here.
+
+pub mod event;
+pub mod history;
+pub mod import;
+pub mod manifest;
+pub mod read;
+pub mod write;
+
+use analysis::pulse::PulseReading;
+use analysis::{
+    CapacityResult, CurvesSummary, CycleSummary, Gap, LogQuality, Recalibration, ResistanceResult,
+    StepSummary,
+};
+use model::pack::PackSpec;
+use serde::{Deserialize, Serialize};
+
+pub const SAMPLES_CSV: &str = "samples.csv";
+pub const EVENTS_JSONL: &str = "events.jsonl";
+pub const RUN_JSON: &str = "run.json";
+pub const SUMMARY_JSON: &str = "summary.json";
+pub const PACK_TOML: &str = "pack.toml";
+pub const REPORT_HTML: &str = "report.html";
+
+/// The columns of `samples.csv`, in order.
+pub const CSV_COLUMNS: [&str; 6] = [
+    "t_s",
+    "step",
+    "cycle",
+    "voltage_v",
+    "current_a",
+    "temperature_c",
+];
+
+/// `summary.json`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Summary {
+    /// `completed`, `aborted` or `interrupted`.
+    pub status: String,
+    pub stop_reason: Option<String>,
+    pub pack_id: String,
+    pub run_id: String,
+    pub procedure_title: String,
+    pub pack: PackSummary,
+    /// The day the test counts for (UTC date, `YYYY-MM-DD`).
+    pub test_date: String,
+    /// The pack's equivalent full cycles at the test, when known from
+    /// outside packbench (the pack's own counter or the operator).
+    pub cycle_count: Option<f64>,
+    pub capacity: Option<CapacityResult>,
+    pub resistance: Option<ResistanceResult>,
+    /// The grade under the shop's policy.
+    pub grade: Option<analysis::fade::grade::Grade>,
+    pub steps: Vec<StepSummary>,
+    pub cycles: Vec<CycleSummary>,
+    pub warnings: Vec<String>,
+    pub samples: usize,
+    pub duration_s: f64,
+    /// The measured capacity as a new nominal for a battery management
+    /// system, with the conditions it holds for.
+    #[serde(default)]
+    pub recalibration: Option<Recalibration>,
+    /// Incremental capacity and differential voltage peaks, and the
+    /// open-circuit-voltage table.
+    #[serde(default)]
+    pub curves: Option<CurvesSummary>,
+    /// The pulse method (ΔV/ΔI at set times after each current edge).
+    #[serde(default)]
+    pub pulse_resistance: Vec<PulseReading>,
+    /// Gaps in the log, each flagged.
+    #[serde(default)]
+    pub gaps: Vec<Gap>,
+    /// What reading the log found (duplicates, out-of-order rows, gaps).
+    #[serde(default)]
+    pub log: LogQuality,
+    /// The pack's standby drain, when the procedure measured it.
+    #[serde(default)]
+    pub standby_drain: Option<analysis::DrainResult>,
+    /// The pack at rest and the instruments' zero offsets before the first step.
+    #[serde(default)]
+    pub preflight: Option<Preflight>,
+    /// Each time the run was resumed after an interruption.
+    #[serde(default)]
+    pub resumed: Vec<ResumeNote>,
+    /// Alarms raised during the run (the run went on).
+    #[serde(default)]
+    pub alarms: Vec<String>,
+}
+
+/// What was read before the first step, outputs off.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Preflight {
+    pub voltage_v: f64,
+    pub temperature_c: Option<f64>,
+    /// Source current reading with its output off, mA (pack sign).
+    pub source_zero_ma: Option<f64>,
+    /// Load current reading with its input off, mA (pack sign).
+    pub load_zero_ma: Option<f64>,
+    /// The zero offsets were subtracted from the current readings.
+    pub corrected: bool,
+}
+
+/// A resume after an interruption.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ResumeNote {
+    /// Run time the run went on at, s.
+    pub t_s: f64,
+    pub step: u32,
+    /// Run time of the last sample before the interruption, s.
+    pub last_sample_t_s: f64,
+    /// How long the run was down, s.
+    pub gap_s: f64,
+    pub rule: String,
+}
+
+/// The pack spec as it appears in JSON records.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PackSummary {
+    pub chemistry: String,
+    pub series: u32,
+    pub rated_capacity_ah: f64,
+    pub rated_energy_wh: Option<f64>,
+    pub rated_rate_c: Option<f64>,
+    pub rated_resistance_mohm: Option<f64>,
+}
+
+impl From<&PackSpec> for PackSummary {
+    fn from(p: &PackSpec) -> Self {
+        PackSummary {
+            chemistry: p.chemistry.to_string(),
+            series: p.series,
+            rated_capacity_ah: p.rated_capacity_ah,
+            rated_energy_wh: p.rated_energy_wh,
+            rated_rate_c: p.rated_rate_c,
+            rated_resistance_mohm: p.rated_resistance_mohm,
+        }
+    }
+}

@@ -1,0 +1,204 @@
+//! Reading a run back: samples (a truncated last line, as a crash or power
+//! cut leaves it, is dropped and reported), events, and the step records
+//! the analysis needs.
+
+use super::{EVENTS_JSONL, SAMPLES_CSV};
+use analysis::StepInfo;
+use crate::event::Event;
+use model::sample::Sample;
+use std::path::{Path, PathBuf};
+
+#[derive(Debug, thiserror::Error)]
+pub enum ReadError {
+    #[error("{path}: {error}")]
+    Io {
+        path: PathBuf,
+        error: std::io::Error,
+    },
+    #[error("{path}:{line}:{column}: {message}")]
+    Bad {
+        path: PathBuf,
+        line: usize,
+        column: usize,
+        message: String,
+    },
+}
+
+/// Samples and what was noticed while reading them.
+#[derive(Debug, Default)]
+pub struct SampleLog {
+    pub samples: Vec<Sample>,
+    /// A last line without its newline was dropped.
+    pub dropped_partial_line: bool,
+}
+
+fn field(rec: &csv::StringRecord, i: usize) -> &str {
+    rec.get(i).unwrap_or("").trim()
+}
+
+/// Read `samples.csv` written by packbench.
+pub fn read_samples(path: &Path) -> Result<SampleLog, ReadError> {
+    let bytes = std::fs::read(path).map_err(|source| ReadError::Io {
+        path: path.to_path_buf(),
+        error: source,
+    })?;
+    let mut log = SampleLog::default();
+    // A crash can leave the last row without its newline: drop it.
+    let mut end = bytes.len();
+    if end > 0 && bytes[end - 1] != b'\n' {
+        end = bytes[..end]
+            .iter()
+            .rposition(|&b| b == b'\n')
+            .map(|p| p + 1)
+            .unwrap_or(0);
+        log.dropped_partial_line = true;
+    }
+    let mut rdr = csv::ReaderBuilder::new()
+        .has_headers(true)
+        .flexible(true)
+        .from_reader(&bytes[..end]);
+    let headers = rdr
+        .headers()
+        .map_err(|e| ReadError::Bad {
+            path: path.to_path_buf(),
+            line: 1,
+            column: 1,
+            message: e.to_string(),
+        })?
+        .clone();
+    let col = |name: &str| headers.iter().position(|h| h.trim() == name);
+    let need = ["t_s", "step", "cycle", "voltage_v", "current_a"];
+    let mut idx = Vec::new();
+    for n in need {
+        match col(n) {
+            Some(i) => idx.push(i),
+            None => {
+                return Err(ReadError::Bad {
+                    path: path.to_path_buf(),
+                    line: 1,
+                    column: 1,
+                    message: format!(
+                        "missing column '{n}'; expected {}",
+                        super::CSV_COLUMNS.join(",")
+                    ),
+                })
+            }
+        }
+    }
+    let temp = col("temperature_c");
+    for rec in rdr.records() {
+        let rec = rec.map_err(|e| ReadError::Bad {
+            path: path.to_path_buf(),
+            line: e.position().map(|p| p.line() as usize).unwrap_or(0),
+            column: 1,
+            message: e.to_string(),
+        })?;
+        let line = rec.position().map(|p| p.line() as usize).unwrap_or(0);
+        let bad = |i: usize, what: &str| ReadError::Bad {
+            path: path.to_path_buf(),
+            line,
+            column: i + 1,
+            message: format!("'{}' is not {what}", field(&rec, i)),
+        };
+        let num = |i: usize| -> Result<f64, ReadError> {
+            field(&rec, i)
+                .parse::<f64>()
+                .ok()
+                .filter(|x| x.is_finite())
+                .ok_or_else(|| bad(i, "a finite number"))
+        };
+        let int = |i: usize| -> Result<u32, ReadError> {
+            field(&rec, i)
+                .parse::<u32>()
+                .map_err(|_| bad(i, "a whole number"))
+        };
+        let temperature_c = match temp {
+            Some(i) if !field(&rec, i).is_empty() => Some(num(i)?),
+            _ => None,
+        };
+        log.samples.push(Sample {
+            t_s: num(idx[0])?,
+            step: int(idx[1])?,
+            cycle: int(idx[2])?,
+            voltage_v: num(idx[3])?,
+            current_a: num(idx[4])?,
+            temperature_c,
+        });
+    }
+    Ok(log)
+}
+
+/// Read `events.jsonl`; a truncated last line is dropped.
+pub fn read_events(path: &Path) -> Result<Vec<Event>, ReadError> {
+    let text = std::fs::read_to_string(path).map_err(|source| ReadError::Io {
+        path: path.to_path_buf(),
+        error: source,
+    })?;
+    let complete = match text.rfind('\n') {
+        Some(p) => &text[..=p],
+        None => "",
+    };
+    let mut out = Vec::new();
+    for (n, line) in complete.lines().enumerate() {
+        if line.trim().is_empty() {
+            continue;
+        }
+        let e: Event = serde_json::from_str(line).map_err(|e| ReadError::Bad {
+            path: path.to_path_buf(),
+            line: n + 1,
+            column: e.column(),
+            message: e.to_string(),
+        })?;
+        out.push(e);
+    }
+    Ok(out)
+}
+
+/// Step records from the events of a run.
+pub fn step_infos(events: &[Event]) -> Vec<StepInfo> {
+    let mut out: Vec<StepInfo> = Vec::new();
+    for e in events {
+        match e {
+            Event::StepStart {
+                step,
+                phase,
+                cycle,
+                kind,
+                name,
+                result,
+                ..
+            } => out.push(StepInfo {
+                step: *step,
+                phase: phase.clone(),
+                cycle: *cycle,
+                kind: kind.clone(),
+                name: name.clone(),
+                result: result.clone(),
+                end_kind: None,
+                end_reason: None,
+            }),
+            Event::StepEnd {
+                step,
+                end_kind,
+                end_reason,
+                ..
+            } => {
+                if let Some(s) = out.iter_mut().rev().find(|s| s.step == *step) {
+                    s.end_kind = serde_json::to_value(end_kind)
+                        .ok()
+                        .and_then(|v| v.as_str().map(str::to_string));
+                    s.end_reason = Some(end_reason.clone());
+                }
+            }
+            _ => {}
+        }
+    }
+    out
+}
+
+/// Samples and step records of a run folder.
+pub fn read_run(dir: &Path) -> Result<(SampleLog, Vec<Event>), ReadError> {
+    let samples = read_samples(&dir.join(SAMPLES_CSV))?;
+    let events = read_events(&dir.join(EVENTS_JSONL))?;
+    Ok((samples, events))
+}

@@ -1,0 +1,263 @@
+//! Writing a run: the folder, the sample CSV and the event log as an
+//! engine sink (flushed to disk at least every second), and atomic JSON
+//! records.
+
+use super::{CSV_COLUMNS, EVENTS_JSONL, SAMPLES_CSV};
+use crate::event::{Event, Sink};
+use model::sample::Sample;
+use serde::Serialize;
+use std::fs::{self, File, OpenOptions};
+use std::io::{self, BufWriter, Write};
+use std::path::{Path, PathBuf};
+use std::time::{Duration, Instant};
+
+/// How often buffered samples reach the disk (wall clock, with a sync).
+pub const FLUSH_INTERVAL: Duration = Duration::from_secs(1);
+/// Buffered samples are handed to the operating system at least every
+/// this many seconds of run time, so a killed process (not a power cut)
+/// loses at most this much of the log even when the bench runs sped up.
+pub const HANDOFF_RUN_S: f64 = 10.0;
+
+/// Write `bytes` to `path` through a temporary file and a rename.
+pub fn atomic_write(path: &Path, bytes: &[u8]) -> io::Result<()> {
+    let tmp = path.with_extension(format!(
+        "{}.tmp",
+        path.extension().and_then(|e| e.to_str()).unwrap_or("")
+    ));
+    {
+        let mut f = File::create(&tmp)?;
+        f.write_all(bytes)?;
+        f.sync_all()?;
+    }
+    fs::rename(&tmp, path)
+}
+
+/// Write a value as pretty JSON, atomically.
+pub fn write_json<T: Serialize>(path: &Path, value: &T) -> io::Result<()> {
+    let mut bytes = serde_json::to_vec_pretty(value).map_err(io::Error::other)?;
+    bytes.push(b'\n');
+    atomic_write(path, &bytes)
+}
+
+/// Create `results/<pack>/<run-id>` with a unique run id.
+pub fn create_run_folder(pack_dir: &Path, base_id: &str) -> io::Result<(String, PathBuf)> {
+    fs::create_dir_all(pack_dir)?;
+    for n in 1..1000 {
+        let id = if n == 1 {
+            base_id.to_string()
+        } else {
+            format!("{base_id}-{n}")
+        };
+        let dir = pack_dir.join(&id);
+        match fs::create_dir(&dir) {
+            Ok(()) => return Ok((id, dir)),
+            Err(e) if e.kind() == io::ErrorKind::AlreadyExists => continue,
+            Err(e) => return Err(e),
+        }
+    }
+    Err(io::Error::other("could not find a free run id"))
+}
+
+/// Files synced to the disk about once a second by one background
+/// thread, so no running station waits on the disk.
+fn syncer() -> &'static std::sync::Mutex<Vec<std::sync::Weak<File>>> {
+    static FILES: std::sync::OnceLock<std::sync::Mutex<Vec<std::sync::Weak<File>>>> =
+        std::sync::OnceLock::new();
+    FILES.get_or_init(|| {
+        let spawned = std::thread::Builder::new()
+            .name("log-sync".into())
+            .spawn(|| loop {
+                std::thread::sleep(FLUSH_INTERVAL);
+                let live: Vec<std::sync::Arc<File>> = match syncer().lock() {
+                    Ok(mut g) => {
+                        g.retain(|w| w.strong_count() > 0);
+                        g.iter().filter_map(|w| w.upgrade()).collect()
+                    }
+                    Err(_) => Vec::new(),
+                };
+                for f in live {
+                    let _ = f.sync_data();
+                }
+            });
+        if spawned.is_err() {
+            // Without the thread, files are still synced when each run ends.
+        }
+        std::sync::Mutex::new(Vec::new())
+    })
+}
+
+/// Keep a file synced by the background thread while `keep` lives.
+fn sync_in_background(f: &File) -> Option<std::sync::Arc<File>> {
+    let dup = std::sync::Arc::new(f.try_clone().ok()?);
+    if let Ok(mut g) = syncer().lock() {
+        g.push(std::sync::Arc::downgrade(&dup));
+    }
+    Some(dup)
+}
+
+/// The engine sink that writes `samples.csv` and `events.jsonl`.
+pub struct RunLogSink {
+    samples: BufWriter<File>,
+    events: File,
+    /// The same files, kept for the background syncer.
+    _synced: Vec<std::sync::Arc<File>>,
+    last_flush: Instant,
+    last_handoff_t: f64,
+    pub rows: usize,
+    line: String,
+}
+
+impl RunLogSink {
+    pub fn create(dir: &Path) -> io::Result<RunLogSink> {
+        let mut samples = File::create(dir.join(SAMPLES_CSV))?;
+        writeln!(samples, "{}", CSV_COLUMNS.join(","))?;
+        RunLogSink::with(samples, dir)
+    }
+
+    /// Open an interrupted run's log to go on writing it. A line left
+    /// half-written by the interruption is cut off first.
+    pub fn append(dir: &Path) -> io::Result<RunLogSink> {
+        for name in [SAMPLES_CSV, EVENTS_JSONL] {
+            cut_partial_line(&dir.join(name))?;
+        }
+        let samples = OpenOptions::new()
+            .append(true)
+            .open(dir.join(SAMPLES_CSV))?;
+        RunLogSink::with(samples, dir)
+    }
+
+    /// The sink on an open sample file; the event log is opened to append.
+    fn with(samples: File, dir: &Path) -> io::Result<RunLogSink> {
+        let samples = BufWriter::with_capacity(64 * 1024, samples);
+        let events = OpenOptions::new()
+            .create(true)
+            .append(true)
+            .open(dir.join(EVENTS_JSONL))?;
+        let _synced = [samples.get_ref(), &events]
+            .into_iter()
+            .filter_map(sync_in_background)
+            .collect();
+        Ok(RunLogSink {
+            samples,
+            events,
+            _synced,
+            last_flush: Instant::now(),
+            last_handoff_t: f64::NEG_INFINITY,
+            rows: 0,
+            line: String::with_capacity(96),
+        })
+    }
+
+    /// Push buffered rows to the disk.
+    pub fn flush(&mut self) -> io::Result<()> {
+        self.samples.flush()?;
+        self.samples.get_ref().sync_data()?;
+        self.last_flush = Instant::now();
+        Ok(())
+    }
+}
+
+/// Cut a file back to its last complete line (a line the process was
+/// killed while writing).
+pub fn cut_partial_line(path: &Path) -> io::Result<()> {
+    use std::io::{Read, Seek, SeekFrom};
+    let mut f = OpenOptions::new().read(true).write(true).open(path)?;
+    let len = f.metadata()?.len();
+    // Read back from the end in blocks until a line end is found.
+    let mut end = len;
+    let mut buf = vec![0u8; 64 * 1024];
+    let keep = loop {
+        if end == 0 {
+            break 0;
+        }
+        let start = end.saturating_sub(buf.len() as u64);
+        let n = (end - start) as usize;
+        f.seek(SeekFrom::Start(start))?;
+        f.read_exact(&mut buf[..n])?;
+        if let Some(p) = buf[..n].iter().rposition(|&b| b == b'\n') {
+            break start + p as u64 + 1;
+        }
+        end = start;
+    };
+    if keep < len {
+        f.set_len(keep)?;
+        f.sync_all()?;
+    }
+    Ok(())
+}
+
+/// Format one CSV row (no quoting needed: numbers only).
+pub fn format_row(s: &Sample, out: &mut String) {
+    use std::fmt::Write as _;
+    out.clear();
+    let _ = write!(
+        out,
+        "{:.3},{},{},{:.6},{:.6},",
+        s.t_s, s.step, s.cycle, s.voltage_v, s.current_a
+    );
+    if let Some(t) = s.temperature_c {
+        let _ = write!(out, "{t:.2}");
+    }
+    out.push('\n');
+}
+
+impl Sink for RunLogSink {
+    fn sample(&mut self, s: &Sample) -> io::Result<()> {
+        let mut line = std::mem::take(&mut self.line);
+        format_row(s, &mut line);
+        let r = self.samples.write_all(line.as_bytes());
+        self.line = line;
+        r?;
+        self.rows += 1;
+        if self.last_flush.elapsed() >= FLUSH_INTERVAL {
+            // Handed to the system now; the background thread syncs it.
+            self.samples.flush()?;
+            self.last_flush = Instant::now();
+            self.last_handoff_t = s.t_s;
+        } else if s.t_s - self.last_handoff_t >= HANDOFF_RUN_S {
+            self.samples.flush()?;
+            self.last_handoff_t = s.t_s;
+        }
+        Ok(())
+    }
+
+    fn event(&mut self, e: &Event) -> io::Result<()> {
+        // Samples before an event are written before it is.
+        self.samples.flush()?;
+        let mut line = serde_json::to_vec(e).map_err(io::Error::other)?;
+        line.push(b'\n');
+        self.events.write_all(&line)?;
+        // The end of a run is synced at once; the rest within a second.
+        if matches!(e, Event::RunEnd { .. } | Event::OutputsOff { .. }) {
+            self.samples.get_ref().sync_data()?;
+            self.events.sync_data()?;
+        }
+        Ok(())
+    }
+}
+
+impl Drop for RunLogSink {
+    fn drop(&mut self) {
+        let _ = self.samples.flush();
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_half_written_line_is_cut_off() {
+        let d = tempfile::tempdir().expect("tmp");
+        let p = d.path().join("x.csv");
+        fs::write(&p, b"a,b\n1,2\n3,").expect("write");
+        cut_partial_line(&p).expect("cut");
+        assert_eq!(fs::read(&p).expect("read"), b"a,b\n1,2\n");
+        // Complete files are left alone; a file with no line end is emptied.
+        cut_partial_line(&p).expect("cut");
+        assert_eq!(fs::read(&p).expect("read"), b"a,b\n1,2\n");
+        fs::write(&p, b"partial").expect("write");
+        cut_partial_line(&p).expect("cut");
+        assert_eq!(fs::read(&p).expect("read").len(), 0);
+    }
+}

@@ -1,0 +1,921 @@
+//! Single-file HTML reports with inline SVG plots: per run (with a grade
+//! card a shop can print and attach to the pack), per pack (fade), per
+//! fleet. No scripts, no external resources. Presentation only.
+
+use super::svg::{self, Band, Chart, HLine, Mark, Series};
+use analysis::curves;
+use analysis::fade::fleet::Fleet;
+use analysis::fade::history::PackHistory;
+use analysis::fade::trend::FadeAnalysis;
+use record::Summary;
+use model::sample::Sample;
+use model::units::HumanDuration;
+use std::fmt::Write;
+
+/// Most points per plotted series (thinned evenly).
+pub const MAX_POINTS: usize = 1500;
+
+/// Escape text for HTML.
+pub fn escape(s: &str) -> String {
+    let mut o = String::with_capacity(s.len());
+    for c in s.chars() {
+        match c {
+            '&' => o.push_str("&amp;"),
+            '<' => o.push_str("&lt;"),
+            '>' => o.push_str("&gt;"),
+            '"' => o.push_str("&quot;"),
+            '\'' => o.push_str("&#39;"),
+            c => o.push(c),
+        }
+    }
+    o
+}
+
+const STYLE: &str = r#"
+body { font-family: sans-serif; margin: 24px auto; max-width: 1000px; color: #222; }
+h1 { font-size: 22px; margin-bottom: 4px; } h2 { font-size: 17px; margin-top: 28px; border-bottom: 1px solid #ccc; }
+.sub { color: #555; margin-top: 0; }
+table { border-collapse: collapse; margin: 8px 0; font-size: 13px; }
+th, td { border: 1px solid #ccc; padding: 3px 8px; text-align: right; white-space: nowrap; }
+th { background: #f2f2f2; } td.l, th.l { text-align: left; }
+td.wrap { white-space: normal; max-width: 46em; }
+.status-completed { color: #1a7f1a; } .status-aborted, .status-interrupted { color: #b00; }
+.card { border: 2px solid #222; padding: 12px 16px; width: 420px; page-break-inside: avoid; }
+.card .grade { font-size: 56px; font-weight: bold; float: right; margin-left: 12px; line-height: 1; }
+.card dl { display: grid; grid-template-columns: auto auto; gap: 2px 12px; margin: 6px 0; font-size: 13px; }
+.card dt { color: #555; } .card dd { margin: 0; font-weight: bold; }
+.warn { color: #8a5a00; } .flag { color: #b00; font-weight: bold; }
+svg { display: block; margin: 8px 0; max-width: 100%; height: auto; }
+@media print { body { margin: 0; } h2 { page-break-after: avoid; } }
+"#;
+
+fn page(title: &str, body: &str) -> String {
+    format!(
+        "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\"><title>{}</title><style>{STYLE}</style></head><body>\n{body}\n<p class=\"sub\">Written by packbench {}.</p></body></html>\n",
+        escape(title),
+        env!("CARGO_PKG_VERSION")
+    )
+}
+
+fn f(v: Option<f64>, d: usize) -> String {
+    v.map(|x| format!("{x:.d$}")).unwrap_or_else(|| "–".into())
+}
+
+/// The printable grade card of a run.
+fn grade_card(s: &Summary) -> String {
+    let mut o = String::new();
+    let label = s.grade.as_ref().map(|g| g.label.as_str()).unwrap_or("–");
+    let _ = write!(
+        o,
+        "<div class=\"card\"><div class=\"grade\">{}</div><b>Pack {}</b><br>{} {}S, rated {} Ah<br>tested {}",
+        escape(label),
+        escape(&s.pack_id),
+        escape(&s.pack.chemistry),
+        s.pack.series,
+        s.pack.rated_capacity_ah,
+        escape(&s.test_date)
+    );
+    let _ = write!(o, "<dl>");
+    let ce = s
+        .cycles
+        .iter()
+        .rev()
+        .find_map(|c| c.coulombic_efficiency_pct);
+    let rows = [
+        (
+            "State of health",
+            s.capacity.as_ref().map(|c| {
+                if c.from_full_charge {
+                    format!("{:.1} %", c.soh_pct)
+                } else {
+                    "not measured: the discharge did not start from a full charge".into()
+                }
+            }),
+        ),
+        (
+            // The capacity the state of health is computed from, and how it
+            // was brought to rated conditions.
+            "At rated conditions",
+            s.capacity
+                .as_ref()
+                .filter(|c| c.corrected_ah > 0.0)
+                .map(|c| {
+                    let factors: Vec<String> = c
+                        .corrections
+                        .iter()
+                        .filter(|x| x.factor != 1.0)
+                        .map(|x| format!("{} ×{:.4} ({})", x.kind, x.factor, x.method))
+                        .collect();
+                    if factors.is_empty() {
+                        format!("{:.3} Ah (no correction)", c.corrected_ah)
+                    } else {
+                        format!("{:.3} Ah: {}", c.corrected_ah, factors.join(", "))
+                    }
+                }),
+        ),
+        (
+            "Measured capacity",
+            s.capacity
+                .as_ref()
+                .map(|c| format!("{:.3} Ah / {:.1} Wh", c.measured_ah, c.measured_wh)),
+        ),
+        (
+            "At",
+            s.capacity
+                .as_ref()
+                .map(|c| format!("{:.2}C to {} V", c.c_rate, f(c.end_voltage_v, 2))),
+        ),
+        (
+            "DC resistance",
+            s.resistance
+                .as_ref()
+                .map(|r| format!("{:.1} mΩ", r.dcir_mohm)),
+        ),
+        ("Coulombic efficiency", ce.map(|c| format!("{c:.2} %"))),
+        ("Cycles", s.cycle_count.map(|c| format!("{c:.0}"))),
+    ];
+    for (k, v) in rows {
+        let _ = write!(
+            o,
+            "<dt>{k}</dt><dd>{}</dd>",
+            escape(&v.unwrap_or_else(|| "–".into()))
+        );
+    }
+    let _ = write!(o, "</dl>");
+    if let Some(g) = &s.grade {
+        let _ = write!(
+            o,
+            "<div><i>{}</i></div><ul style=\"font-size:12px;margin:4px 0 0 16px;padding:0\">",
+            escape(&g.meaning)
+        );
+        for r in &g.reasons {
+            let _ = write!(o, "<li>{}</li>", escape(r));
+        }
+        let _ = write!(
+            o,
+            "</ul><div style=\"font-size:11px;color:#555\">policy: {}</div>",
+            escape(&g.policy)
+        );
+    }
+    let _ = write!(
+        o,
+        "<div style=\"font-size:11px;color:#555\">run {}</div></div>",
+        escape(&s.run_id)
+    );
+    o
+}
+
+/// A trace against time: title, y label, series name, colour, value.
+type Trace = (
+    &'static str,
+    &'static str,
+    &'static str,
+    svg::RGBColor,
+    fn(&Sample) -> Option<f64>,
+);
+
+/// A differential curve: the binned values as dots, the smoothed curve,
+/// and its main peaks.
+fn differential_chart(b: &mut String, title: &str, x: &str, y: &str, d: &curves::Differential) {
+    if d.points.len() < 3 {
+        return;
+    }
+    let mut c = Chart::new(title, x, y);
+    c.series.push(Series {
+        name: "binned".into(),
+        points: d.points.clone(),
+        color: svg::GREY_,
+        mark: Mark::Dots,
+    });
+    c.series.push(Series {
+        name: "smoothed".into(),
+        points: d
+            .points
+            .iter()
+            .zip(&d.smoothed)
+            .map(|(p, y)| (p.0, *y))
+            .collect(),
+        color: svg::PURPLE_,
+        mark: Mark::Line,
+    });
+    if !d.peaks.is_empty() {
+        c.series.push(Series {
+            name: "main peaks".into(),
+            points: d
+                .peaks
+                .iter()
+                .map(|p| (d.points[p.index].0, p.height))
+                .collect(),
+            color: svg::RED_,
+            mark: Mark::Dots,
+        });
+    }
+    b.push_str(&svg::render(&c));
+}
+
+/// The report of one run.
+pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
+    let mut b = String::new();
+    let _ = write!(
+        b,
+        "<h1>Capacity test of pack {}</h1><p class=\"sub\">{} · test date {} · run {} · <span class=\"status-{st}\">{st}</span></p>",
+        escape(&s.pack_id),
+        escape(&s.procedure_title),
+        escape(&s.test_date),
+        escape(&s.run_id),
+        st = escape(&s.status)
+    );
+    if let Some(r) = &s.stop_reason {
+        let _ = write!(b, "<p class=\"flag\">Stopped: {}</p>", escape(r));
+    }
+    let _ = write!(b, "<h2>Grade card</h2>{}", grade_card(s));
+    // Summary table.
+    let _ = write!(b, "<h2>Summary</h2><table>");
+    let mut row = |k: &str, v: String| {
+        let _ = write!(
+            b,
+            "<tr><th class=\"l\">{k}</th><td class=\"l wrap\">{}</td></tr>",
+            escape(&v)
+        );
+    };
+    if let Some(c) = &s.capacity {
+        row(
+            "Measured capacity",
+            format!("{:.4} Ah, {:.2} Wh", c.measured_ah, c.measured_wh),
+        );
+        if c.corrected_ah > 0.0 {
+            let why: Vec<String> = c
+                .corrections
+                .iter()
+                .map(|x| format!("{} ×{:.4}: {}", x.kind, x.factor, x.why))
+                .collect();
+            row(
+                "At rated conditions",
+                format!("{:.4} Ah ({})", c.corrected_ah, why.join("; ")),
+            );
+        }
+        row(
+            "State of health",
+            format!("{:.2} % of rated {} Ah", c.soh_pct, c.rated_ah),
+        );
+        if let Some(p) = c.ieee450_percent {
+            row("IEEE 450 percent capacity", format!("{p:.1} %"));
+        }
+        row(
+            "Discharge",
+            format!(
+                "{:.3} A ({:.3}C) for {}",
+                c.mean_current_a,
+                c.c_rate,
+                HumanDuration(c.duration_s)
+            ),
+        );
+        row(
+            "Ended on cutoff",
+            if c.ended_on_cutoff {
+                "yes".into()
+            } else {
+                "no (lower bound)".into()
+            },
+        );
+    } else {
+        row(
+            "Measured capacity",
+            "none (no completed capacity step)".into(),
+        );
+    }
+    if let Some(r) = &s.resistance {
+        row(
+            "DC resistance",
+            format!("{:.2} mΩ — {}", r.dcir_mohm, r.method),
+        );
+        if r.readings.len() > 1 {
+            for x in &r.readings {
+                row(
+                    &format!("  step {}", x.step),
+                    format!(
+                        "{:.2} mΩ{}",
+                        x.dcir_mohm,
+                        x.soc_pct
+                            .map(|s| format!(" at {s:.0} % state of charge"))
+                            .unwrap_or_default()
+                    ),
+                );
+            }
+        }
+    }
+    if let Some(rc) = &s.recalibration {
+        row(
+            "Recalibration",
+            format!(
+                "new nominal {:.3} Ah — {}",
+                rc.suggested_nominal_ah, rc.conditions
+            ),
+        );
+    }
+    if let Some(cv) = &s.curves {
+        for i in cv.ica.iter().filter(|i| !i.peaks.is_empty()) {
+            let peaks: Vec<String> = i
+                .peaks
+                .iter()
+                .map(|p| format!("{:.3} V/cell ({:.2} Ah/V)", p.position_per_cell, p.height))
+                .collect();
+            row(
+                &format!("dQ/dV peaks, {} step {}", i.direction, i.step),
+                peaks.join(", "),
+            );
+        }
+    }
+    if !s.gaps.is_empty() {
+        row(
+            "Gaps in the log",
+            format!(
+                "{} (longest {:.1} s); integrated across by straight lines",
+                s.gaps.len(),
+                s.gaps.iter().map(|g| g.duration_s).fold(0.0, f64::max)
+            ),
+        );
+    }
+    if let Some(d) = &s.standby_drain {
+        row(
+            "Standby drain",
+            format!(
+                "{:.2} mA = {:.2} % of {:.3} Ah a month (step {})",
+                d.current_ma, d.pct_per_month, d.capacity_ref_ah, d.step
+            ),
+        );
+    }
+    if let Some(p) = &s.preflight {
+        let zero = |z: Option<f64>| {
+            z.map(|z| format!("{z:+.1} mA"))
+                .unwrap_or_else(|| "-".into())
+        };
+        row(
+            "Before the run",
+            format!(
+                "pack at rest {:.3} V; zero offsets: source {}, load {}{}",
+                p.voltage_v,
+                zero(p.source_zero_ma),
+                zero(p.load_zero_ma),
+                if p.corrected { " (subtracted)" } else { "" }
+            ),
+        );
+    }
+    for r in &s.resumed {
+        row(
+            "Resumed",
+            format!("at step {} after {:.0} s down: {}", r.step, r.gap_s, r.rule),
+        );
+    }
+    for c in &s.cycles {
+        if let (Some(ce), Some(ee)) = (c.coulombic_efficiency_pct, c.energy_efficiency_pct) {
+            row(
+                &format!("Cycle {}", c.cycle),
+                format!("coulombic efficiency {ce:.3} %, energy efficiency {ee:.2} %"),
+            );
+        }
+    }
+    row(
+        "Samples",
+        format!("{} over {}", s.samples, HumanDuration(s.duration_s)),
+    );
+    let _ = write!(b, "</table>");
+    for a in &s.alarms {
+        let _ = write!(b, "<p class=\"warn\"><b>Alarm:</b> {}</p>", escape(a));
+    }
+    for w in &s.warnings {
+        let _ = write!(b, "<p class=\"warn\">Warning: {}</p>", escape(w));
+    }
+    // Plots.
+    let _ = write!(b, "<h2>Voltage, current and temperature</h2>");
+    // One chart per quantity against time in hours, thinned for plotting.
+    let traces: [Trace; 3] = [
+        ("Pack voltage", "voltage (V)", "voltage", svg::BLUE_, |x| {
+            Some(x.voltage_v)
+        }),
+        (
+            "Pack current (positive into the pack)",
+            "current (A)",
+            "current",
+            svg::ORANGE_,
+            |x| Some(x.current_a),
+        ),
+        (
+            "Pack temperature",
+            "temperature (°C)",
+            "temperature",
+            svg::RED_,
+            |x| x.temperature_c,
+        ),
+    ];
+    for (title, y_label, name, color, value) in traces {
+        let pts: Vec<(f64, f64)> = samples
+            .iter()
+            .filter_map(|x| value(x).map(|v| (x.t_s / 3600.0, v)))
+            .collect();
+        if pts.is_empty() {
+            continue;
+        }
+        let mut c = Chart::new(title, "time since start (h)", y_label);
+        c.series.push(Series {
+            name: name.into(),
+            points: svg::thin(&pts, MAX_POINTS),
+            color,
+            mark: Mark::Line,
+        });
+        b.push_str(&svg::render(&c));
+    }
+    if let Some(cap) = &s.capacity {
+        let step: Vec<Sample> = samples
+            .iter()
+            .filter(|x| x.step == cap.step)
+            .copied()
+            .collect();
+        let curve = curves::charge_curve(&step);
+        let _ = write!(b, "<h2>Capacity discharge</h2>");
+        let mut c = Chart::new(
+            "Voltage against discharged charge",
+            "discharged (Ah)",
+            "voltage (V)",
+        );
+        c.series.push(Series {
+            name: "capacity step".into(),
+            points: svg::thin(&curve, MAX_POINTS),
+            color: svg::BLUE_,
+            mark: Mark::Line,
+        });
+        b.push_str(&svg::render(&c));
+    }
+    // The differential curves the summary's peaks come from: the same
+    // grid, bins and smoothing as the analysis.
+    if let Some(cv) = &s.curves {
+        let series = f64::from(s.pack.series.max(1));
+        for i in &cv.ica {
+            let step: Vec<Sample> = samples
+                .iter()
+                .filter(|x| x.step == i.step)
+                .copied()
+                .collect();
+            let grid = curves::grid_of(&step, s.pack.rated_capacity_ah);
+            let d = curves::ica(&grid, i.bin_mv_per_cell / 1000.0 * series, i.smoothing_bins);
+            differential_chart(
+                &mut b,
+                &format!(
+                    "Incremental capacity, {} step {}: {} mV/cell bins, smoothed over {} bins",
+                    i.direction, i.step, i.bin_mv_per_cell, i.smoothing_bins
+                ),
+                "voltage (V)",
+                "dQ/dV (Ah/V)",
+                &d,
+            );
+        }
+        for v in &cv.dva {
+            let step: Vec<Sample> = samples
+                .iter()
+                .filter(|x| x.step == v.step)
+                .copied()
+                .collect();
+            let grid = curves::grid_of(&step, s.pack.rated_capacity_ah);
+            let d = curves::dva(&grid, v.bin_ah, v.smoothing_bins);
+            differential_chart(
+                &mut b,
+                &format!(
+                    "Differential voltage, {} step {}: {:.3} Ah bins, smoothed over {} bins",
+                    v.direction, v.step, v.bin_ah, v.smoothing_bins
+                ),
+                "charge passed (Ah)",
+                "|dV/dQ| (V/Ah)",
+                &d,
+            );
+        }
+    }
+    // Step table.
+    let _ = write!(
+        b,
+        "<h2>Steps</h2><table><tr><th>step</th><th class=\"l\">phase</th><th class=\"l\">kind</th><th>cycle</th><th>duration</th><th>charge (Ah)</th><th>energy (Wh)</th><th>start V</th><th>end V</th><th>max °C</th><th class=\"l\">end</th></tr>"
+    );
+    for st in &s.steps {
+        let _ = write!(
+            b,
+            "<tr><td>{}</td><td class=\"l\">{}</td><td class=\"l\">{}</td><td>{}</td><td>{}</td><td>{:.4}</td><td>{:.3}</td><td>{}</td><td>{}</td><td>{}</td><td class=\"l\">{}</td></tr>",
+            st.step,
+            escape(&st.phase),
+            escape(&st.kind),
+            st.cycle,
+            HumanDuration(st.duration_s),
+            st.charge_ah,
+            st.energy_wh,
+            f(st.start_voltage_v, 3),
+            f(st.end_voltage_v, 3),
+            f(st.max_temperature_c, 1),
+            escape(st.end_reason.as_deref().unwrap_or(""))
+        );
+    }
+    let _ = write!(b, "</table>");
+    page(&format!("packbench — {} — {}", s.pack_id, s.run_id), &b)
+}
+
+/// Draw a fitted line over `range` and its 95 % prediction band; the fit's
+/// x is the chart's x minus `offset`.
+fn add_fit_with_band(
+    c: &mut Chart,
+    fit: &analysis::fit::LinearFit,
+    range: (f64, f64),
+    offset: f64,
+    name: &str,
+) {
+    let xs: Vec<f64> = (0..=60)
+        .map(|k| range.0 + (range.1 - range.0) * k as f64 / 60.0)
+        .collect();
+    c.series.push(Series {
+        name: name.into(),
+        points: xs.iter().map(|x| (*x, fit.predict(x - offset))).collect(),
+        color: svg::GREY_,
+        mark: Mark::Line,
+    });
+    let (mut up, mut lo) = (Vec::new(), Vec::new());
+    for x in &xs {
+        if let Some((l, u)) = fit.prediction_interval(x - offset, analysis::fade::trend::LEVEL) {
+            up.push((*x, u));
+            lo.push((*x, l));
+        }
+    }
+    c.bands.push(Band {
+        name: "95 % prediction band".into(),
+        upper: up,
+        lower: lo,
+        color: svg::GREY_,
+    });
+}
+
+fn day_number(d: chrono::NaiveDate) -> f64 {
+    use chrono::Datelike;
+    f64::from(d.num_days_from_ce())
+}
+
+/// The fade report of one pack. `curves_by_run` holds each run's
+/// capacity-step curve (discharged Ah, V) with its label.
+pub fn pack_report(
+    h: &PackHistory,
+    fa: &FadeAnalysis,
+    curves_by_run: &[(String, Vec<(f64, f64)>)],
+) -> String {
+    let mut b = String::new();
+    let spec = &h.spec;
+    let _ = write!(
+        b,
+        "<h1>Capacity fade of pack {}</h1><p class=\"sub\">{} {}S, rated {} Ah · {} measurements · end of life at {} % of rated</p>",
+        escape(&h.pack_id),
+        spec.chemistry,
+        spec.series,
+        spec.rated_capacity_ah,
+        h.points.len(),
+        fa.threshold_pct
+    );
+    let _ = write!(b, "<h2>Projection</h2>");
+    match &fa.eol_cycles {
+        Some(p) => {
+            let _ = write!(
+                b,
+                "<p>State of health reaches {} % at about <b>{:.0} equivalent full cycles</b> (95 % prediction band: {} to {}; basis: {}).</p>",
+                fa.threshold_pct,
+                p.cycles,
+                f(p.cycles_early, 0),
+                p.cycles_late.map(|c| format!("{c:.0}")).unwrap_or_else(|| "not bounded".into()),
+                escape(&p.basis)
+            );
+        }
+        None => {
+            let _ = write!(b, "<p>No end-of-life cycle count projected.</p>");
+        }
+    }
+    if let Some(p) = &fa.eol_date {
+        let _ = write!(
+            b,
+            "<p>By date: about <b>{}</b> (band {} to {}).</p>",
+            p.date,
+            p.date_early
+                .map(|d| d.to_string())
+                .unwrap_or_else(|| "–".into()),
+            p.date_late
+                .map(|d| d.to_string())
+                .unwrap_or_else(|| "not bounded".into())
+        );
+    }
+    if let Some(a) = &fa.accelerating {
+        let _ = write!(
+            b,
+            "<p class=\"flag\">Accelerating fade: {:.3} % per 100 cycles recently against {:.3} % earlier ({:.1}×).</p>",
+            a.recent_pct_per_100_cycles, a.earlier_pct_per_100_cycles, a.ratio
+        );
+    }
+    for n in &fa.notes {
+        let _ = write!(b, "<p class=\"warn\">{}</p>", escape(n));
+    }
+    // SOH against cycles with fit, band and threshold.
+    let pts: Vec<(f64, f64)> = h
+        .points
+        .iter()
+        .filter(|p| p.cycles.is_finite())
+        .map(|p| (p.cycles, p.soh_pct))
+        .collect();
+    let mut c = Chart::new(
+        "State of health against equivalent full cycles",
+        "equivalent full cycles",
+        "state of health (% of rated)",
+    );
+    c.series.push(Series {
+        name: "measured".into(),
+        points: pts.clone(),
+        color: svg::BLUE_,
+        mark: Mark::Dots,
+    });
+    if let Some(m) = fa
+        .models
+        .iter()
+        .find(|m| m.kind == analysis::fade::trend::ModelKind::LinearCycles)
+    {
+        let x0 = pts.first().map(|p| p.0).unwrap_or(0.0);
+        let x1 = fa
+            .eol_cycles
+            .as_ref()
+            .map(|p| p.cycles.max(pts.last().map(|p| p.0).unwrap_or(0.0)))
+            .unwrap_or_else(|| pts.last().map(|p| p.0).unwrap_or(1.0))
+            .min(x0 + 10.0 * (pts.last().map(|p| p.0).unwrap_or(1.0) - x0).max(1.0));
+        add_fit_with_band(
+            &mut c,
+            &m.fit,
+            (x0, x1),
+            0.0,
+            &format!("fit, all points (R² {:.3})", m.fit.r_squared),
+        );
+        if fa.accelerating.is_some() {
+            if let Some(p) = &fa.eol_cycles {
+                // The recent-half line the projection rests on.
+                let n = pts.len();
+                let recent = &pts[n / 2..];
+                let (x, y): (Vec<f64>, Vec<f64>) = recent.iter().copied().unzip();
+                if let Some(rf) = analysis::fit::LinearFit::fit(&x, &y) {
+                    let a = recent.first().map(|p| p.0).unwrap_or(0.0);
+                    c.series.push(Series {
+                        name: "fit, recent half".into(),
+                        points: vec![(a, rf.predict(a)), (p.cycles, rf.predict(p.cycles))],
+                        color: svg::RED_,
+                        mark: Mark::Line,
+                    });
+                }
+            }
+        }
+    }
+    c.hlines.push(HLine {
+        y: fa.threshold_pct,
+        name: "end of life".into(),
+        color: svg::RED_,
+    });
+    b.push_str(&svg::render(&c));
+    // SOH against date, with the time model and its band.
+    let mut c = Chart::new(
+        "State of health against date",
+        "test date",
+        "state of health (% of rated)",
+    );
+    c.x_is_date = true;
+    let d0 = h.points.first().map(|p| day_number(p.date)).unwrap_or(0.0);
+    c.series.push(Series {
+        name: "measured".into(),
+        points: h
+            .points
+            .iter()
+            .map(|p| (day_number(p.date), p.soh_pct))
+            .collect(),
+        color: svg::BLUE_,
+        mark: Mark::Dots,
+    });
+    if let Some(m) = fa
+        .models
+        .iter()
+        .find(|m| m.kind == analysis::fade::trend::ModelKind::LinearTime)
+    {
+        let last = h.points.last().map(|p| day_number(p.date)).unwrap_or(d0);
+        let end = fa
+            .eol_date
+            .as_ref()
+            .map(|p| day_number(p.date).max(last))
+            .unwrap_or(last)
+            .min(last + 4.0 * (last - d0).max(30.0));
+        add_fit_with_band(
+            &mut c,
+            &m.fit,
+            (d0, end),
+            d0,
+            &format!("fit, linear in time (R² {:.3})", m.fit.r_squared),
+        );
+    }
+    c.hlines.push(HLine {
+        y: fa.threshold_pct,
+        name: "end of life".into(),
+        color: svg::RED_,
+    });
+    b.push_str(&svg::render(&c));
+    // Resistance against cycles and against date.
+    let reference = h.reference_resistance();
+    for by_date in [false, true] {
+        let rp: Vec<(f64, f64)> = h
+            .points
+            .iter()
+            .filter_map(|p| {
+                p.resistance_mohm.map(|r| {
+                    (
+                        if by_date {
+                            day_number(p.date)
+                        } else {
+                            p.cycles
+                        },
+                        r,
+                    )
+                })
+            })
+            .filter(|(x, _)| x.is_finite())
+            .collect();
+        if rp.is_empty() {
+            break;
+        }
+        let mut c = if by_date {
+            Chart::new("DC resistance against date", "test date", "resistance (mΩ)")
+        } else {
+            Chart::new(
+                "DC resistance against equivalent full cycles",
+                "equivalent full cycles",
+                "resistance (mΩ)",
+            )
+        };
+        c.x_is_date = by_date;
+        if let (false, Some(f)) = (by_date, &fa.resistance_fit) {
+            let (a, z) = (rp[0].0, rp[rp.len() - 1].0);
+            c.series.push(Series {
+                name: format!("fit ({:+.2} mΩ per 100 cycles)", f.slope * 100.0),
+                points: vec![(a, f.predict(a)), (z, f.predict(z))],
+                color: svg::GREY_,
+                mark: Mark::Line,
+            });
+        }
+        c.series.push(Series {
+            name: "measured".into(),
+            points: rp,
+            color: svg::ORANGE_,
+            mark: Mark::LineAndDots,
+        });
+        if let Some((r0, what)) = reference {
+            c.hlines.push(HLine {
+                y: 2.0 * r0,
+                name: format!("twice the {what} resistance"),
+                color: svg::RED_,
+            });
+        }
+        b.push_str(&svg::render(&c));
+    }
+    // Overlaid discharge curves.
+    if !curves_by_run.is_empty() {
+        let mut c = Chart::new(
+            "Capacity discharges, every test",
+            "discharged (Ah)",
+            "voltage (V)",
+        );
+        for (i, (name, pts)) in curves_by_run.iter().enumerate() {
+            c.series.push(Series {
+                name: name.clone(),
+                points: svg::thin(pts, 400),
+                color: svg::palette(i),
+                mark: Mark::Line,
+            });
+        }
+        c.height = 420;
+        b.push_str(&svg::render(&c));
+    }
+    // Tables.
+    let _ = write!(b, "<h2>Models</h2><table><tr><th class=\"l\">model</th><th>slope</th><th class=\"l\">unit</th><th>R²</th><th>points</th></tr>");
+    for m in &fa.models {
+        let _ = write!(
+            b,
+            "<tr><td class=\"l\">{}</td><td>{:.4}</td><td class=\"l\">{}</td><td>{:.4}</td><td>{}</td></tr>",
+            escape(m.description),
+            m.fade_per_unit,
+            escape(m.unit),
+            m.fit.r_squared,
+            m.fit.n
+        );
+    }
+    let _ = write!(b, "</table><h2>Measurements</h2><table><tr><th class=\"l\">date</th><th>cycles</th><th>capacity (Ah)</th><th>SOH (%)</th><th>resistance (mΩ)</th><th>CE (%)</th><th class=\"l\">grade</th><th class=\"l\">source</th></tr>");
+    for p in &h.points {
+        let _ = write!(
+            b,
+            "<tr><td class=\"l\">{}</td><td>{}{}</td><td>{:.3}</td><td>{:.2}</td><td>{}</td><td>{}</td><td class=\"l\">{}</td><td class=\"l\">{}</td></tr>",
+            p.date,
+            f(p.cycles.is_finite().then_some(p.cycles), 0),
+            if p.cycles_given {
+                ""
+            } else if p.cycles.is_finite() {
+                " (counted)"
+            } else {
+                " (unknown)"
+            },
+            p.capacity_ah,
+            p.soh_pct,
+            f(p.resistance_mohm, 1),
+            f(p.coulombic_efficiency_pct, 2),
+            escape(p.grade.as_deref().unwrap_or("")),
+            escape(&p.source)
+        );
+    }
+    let _ = write!(b, "</table>");
+    if !h.left_out.is_empty() {
+        let _ = write!(b, "<h2>Runs left out of the fits</h2><ul>");
+        for l in &h.left_out {
+            let _ = write!(
+                b,
+                "<li>{} — {}: {}</li>",
+                escape(&l.run_id),
+                escape(&l.status),
+                escape(&l.reason)
+            );
+        }
+        let _ = write!(b, "</ul>");
+    }
+    page(&format!("packbench — fade of {}", h.pack_id), &b)
+}
+
+/// The fleet report. `histories` gives each pack's points for the
+/// fleet-wide plot.
+pub fn fleet_report(fleet: &Fleet, histories: &[PackHistory], title: &str) -> String {
+    let mut b = String::new();
+    let _ = write!(
+        b,
+        "<h1>{}</h1><p class=\"sub\">{} packs · as of {} · a test is due every {} days · end of life at {} % of rated</p>",
+        escape(title),
+        fleet.rows.len(),
+        fleet.today,
+        fleet.interval_days,
+        fleet.threshold_pct
+    );
+    let _ = write!(b, "<table><tr><th>rank</th><th class=\"l\">pack</th><th class=\"l\">chemistry</th><th>tests</th><th class=\"l\">last test</th><th>cycles</th><th>SOH (%)</th><th>resistance (mΩ)</th><th>growth (%)</th><th>fade (%/100 cyc)</th><th>EOL cycles</th><th class=\"l\">EOL date</th><th class=\"l\">grade</th><th class=\"l\">flags</th></tr>");
+    for r in &fleet.rows {
+        let mut flags = Vec::new();
+        if r.overdue {
+            flags.push("test overdue".to_string());
+        }
+        if r.accelerating {
+            flags.push("fade accelerating".to_string());
+        }
+        if let Some(d) = r.below_eol_since {
+            flags.push(format!("below end of life since {d}"));
+        } else if r.eol_date_past {
+            flags.push("projected end of life already past".to_string());
+        }
+        let _ = write!(
+            b,
+            "<tr><td>{}</td><td class=\"l\">{}</td><td class=\"l\">{} {}S</td><td>{}</td><td class=\"l\">{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td class=\"l\">{}</td><td class=\"l\"><b>{}</b></td><td class=\"l flag\">{}</td></tr>",
+            r.rank,
+            escape(&r.pack_id),
+            escape(&r.chemistry),
+            r.series,
+            r.tests,
+            r.last_test.map(|d| d.to_string()).unwrap_or_default(),
+            f(r.cycles, 0),
+            f(r.soh_pct, 1),
+            f(r.resistance_mohm, 1),
+            f(r.resistance_growth_pct, 0),
+            f(r.fade_pct_per_100_cycles, 3),
+            f(r.eol_cycles, 0),
+            r.eol_date.map(|d| d.to_string()).unwrap_or_default(),
+            escape(r.grade.as_deref().unwrap_or("")),
+            flags.join(", ")
+        );
+    }
+    let _ = write!(b, "</table>");
+    let mut c = Chart::new(
+        "State of health of every pack",
+        "equivalent full cycles",
+        "state of health (% of rated)",
+    );
+    for (i, h) in histories.iter().enumerate() {
+        c.series.push(Series {
+            name: h.pack_id.clone(),
+            points: h
+                .points
+                .iter()
+                .filter(|p| p.cycles.is_finite())
+                .map(|p| (p.cycles, p.soh_pct))
+                .collect(),
+            color: svg::palette(i),
+            mark: Mark::LineAndDots,
+        });
+    }
+    c.hlines.push(HLine {
+        y: fleet.threshold_pct,
+        name: "end of life".into(),
+        color: svg::RED_,
+    });
+    c.height = 440;
+    b.push_str(&svg::render(&c));
+    page(title, &b)
+}

@@ -1,0 +1,375 @@
+//! The short human summary printed at the end of a run.
+
+use record::Summary;
+use model::units::HumanDuration;
+use std::fmt::Write;
+
+pub fn summary(s: &Summary) -> String {
+    let mut o = String::new();
+    let _ = writeln!(
+        o,
+        "Run {} of pack {} ({} {}S, rated {:.3} Ah): {}",
+        s.run_id, s.pack_id, s.pack.chemistry, s.pack.series, s.pack.rated_capacity_ah, s.status
+    );
+    if let Some(r) = &s.stop_reason {
+        let _ = writeln!(o, "  stopped: {r}");
+    }
+    let _ = writeln!(
+        o,
+        "  {} samples over {}",
+        s.samples,
+        HumanDuration(s.duration_s)
+    );
+    let _ = writeln!(
+        o,
+        "  step  kind       duration      charge Ah   energy Wh   end"
+    );
+    for st in &s.steps {
+        let _ = writeln!(
+            o,
+            "  {:>4}  {:<9} {:>10} {:>12.4} {:>11.3}   {}",
+            st.step,
+            st.kind,
+            HumanDuration(st.duration_s).to_string(),
+            st.charge_ah,
+            st.energy_wh,
+            st.end_reason.clone().unwrap_or_default()
+        );
+    }
+    match &s.capacity {
+        Some(c) => {
+            let _ = writeln!(
+                o,
+                "  Measured capacity: {:.3} Ah, {:.2} Wh at {:.3} A ({:.2}C), {}",
+                c.measured_ah,
+                c.measured_wh,
+                c.mean_current_a,
+                c.c_rate,
+                if c.ended_on_cutoff {
+                    "to the cutoff"
+                } else {
+                    "NOT to the cutoff (lower bound)"
+                }
+            );
+            if !c.preceded_by.is_empty() {
+                let _ = writeln!(
+                    o,
+                    "  Started from:      {}{}",
+                    c.preceded_by,
+                    if c.from_full_charge {
+                        ""
+                    } else {
+                        " (NOT from a full charge: not the pack's capacity; not graded)"
+                    }
+                );
+            }
+            if c.corrected_ah > 0.0 {
+                let _ = writeln!(
+                    o,
+                    "  At rated conditions: {:.3} Ah{}",
+                    c.corrected_ah,
+                    c.corrections
+                        .iter()
+                        .filter(|x| x.factor != 1.0)
+                        .map(|x| format!("; {} ×{:.4} ({})", x.kind, x.factor, x.method))
+                        .collect::<String>()
+                );
+            }
+            let _ = writeln!(
+                o,
+                "  State of health:   {:.1} % of rated {:.3} Ah",
+                c.soh_pct, c.rated_ah
+            );
+            if let Some(p) = c.ieee450_percent {
+                let _ = writeln!(o, "  IEEE 450 percent capacity: {p:.1} %");
+            }
+        }
+        None => {
+            let _ = writeln!(o, "  Measured capacity: none (no completed capacity step)");
+        }
+    }
+    if let Some(r) = &s.resistance {
+        let _ = writeln!(
+            o,
+            "  DC resistance:     {:.2} mOhm ({})",
+            r.dcir_mohm, r.method
+        );
+        if r.readings.len() > 1 {
+            for x in &r.readings {
+                let _ = writeln!(
+                    o,
+                    "    step {:>3}: {:.2} mOhm{}",
+                    x.step,
+                    x.dcir_mohm,
+                    x.soc_pct
+                        .map(|s| format!(" at {s:.0} % state of charge"))
+                        .unwrap_or_default()
+                );
+            }
+        }
+    }
+    if let Some(c) = &s.curves {
+        for i in &c.ica {
+            if !i.peaks.is_empty() {
+                let peaks: Vec<String> = i
+                    .peaks
+                    .iter()
+                    .map(|p| format!("{:.3} V/cell ({:.2} Ah/V)", p.position_per_cell, p.height))
+                    .collect();
+                let _ = writeln!(
+                    o,
+                    "  dQ/dV peaks ({} step {}): {}",
+                    i.direction,
+                    i.step,
+                    peaks.join(", ")
+                );
+            }
+        }
+    }
+    if let Some(r) = &s.recalibration {
+        let _ = writeln!(
+            o,
+            "  Recalibration:     new nominal {:.3} Ah ({})",
+            r.suggested_nominal_ah, r.conditions
+        );
+    }
+    if let Some(d) = &s.standby_drain {
+        let _ = writeln!(
+            o,
+            "  Standby drain:     {:.2} mA = {:.2} % of {:.3} Ah a month (mean of the last {:.0} s of step {})",
+            d.current_ma, d.pct_per_month, d.capacity_ref_ah, d.window_s, d.step
+        );
+    }
+    if let Some(p) = &s.preflight {
+        let zero = |z: Option<f64>| {
+            z.map(|z| format!("{z:+.1} mA"))
+                .unwrap_or_else(|| "-".into())
+        };
+        let _ = writeln!(
+            o,
+            "  Before the run:    pack at rest {:.3} V; zero offsets: source {}, load {}{}",
+            p.voltage_v,
+            zero(p.source_zero_ma),
+            zero(p.load_zero_ma),
+            if p.corrected { " (subtracted)" } else { "" }
+        );
+    }
+    for r in &s.resumed {
+        let _ = writeln!(
+            o,
+            "  Resumed:           at step {} after {:.0} s down ({})",
+            r.step, r.gap_s, r.rule
+        );
+    }
+    for a in &s.alarms {
+        let _ = writeln!(o, "  ALARM:             {a}");
+    }
+    if !s.gaps.is_empty() {
+        let _ = writeln!(
+            o,
+            "  Gaps:              {} flagged (longest {:.1} s)",
+            s.gaps.len(),
+            s.gaps.iter().map(|g| g.duration_s).fold(0.0, f64::max)
+        );
+    }
+    if let Some(g) = &s.grade {
+        let _ = writeln!(
+            o,
+            "  Grade:             {} ({}) — {}",
+            g.label,
+            g.meaning,
+            g.reasons.join("; ")
+        );
+    }
+    for c in &s.cycles {
+        if let (Some(ce), Some(ee)) = (c.coulombic_efficiency_pct, c.energy_efficiency_pct) {
+            let _ = writeln!(
+                o,
+                "  Cycle {}: charged {:.3} Ah / {:.2} Wh, discharged {:.3} Ah / {:.2} Wh; coulombic efficiency {:.3} %, energy efficiency {:.2} %",
+                c.cycle, c.charge_ah, c.charge_wh, c.discharge_ah, c.discharge_wh, ce, ee
+            );
+        }
+    }
+    for w in &s.warnings {
+        let _ = writeln!(o, "  warning: {w}");
+    }
+    o
+}
+
+/// The fade analysis of one pack for a terminal.
+pub fn fade(
+    h: &analysis::fade::history::PackHistory,
+    fa: &analysis::fade::trend::FadeAnalysis,
+) -> String {
+    let mut o = String::new();
+    let _ = writeln!(
+        o,
+        "Pack {} ({} {}S, rated {} Ah): {} measurements, end of life at {} % of rated",
+        h.pack_id,
+        h.spec.chemistry,
+        h.spec.series,
+        h.spec.rated_capacity_ah,
+        h.points.len(),
+        fa.threshold_pct
+    );
+    let _ = writeln!(
+        o,
+        "  date        cycles   capacity Ah  SOH %   resistance mOhm  grade  source"
+    );
+    for p in &h.points {
+        let _ = writeln!(
+            o,
+            "  {}  {:>7}{} {:>10.3}  {:>6.2}  {:>15}  {:>5}  {}",
+            p.date,
+            if p.cycles.is_finite() {
+                format!("{:.0}", p.cycles)
+            } else {
+                "-".into()
+            },
+            if p.cycles_given || !p.cycles.is_finite() {
+                " "
+            } else {
+                "*"
+            },
+            p.capacity_ah,
+            p.soh_pct,
+            p.resistance_mohm
+                .map(|r| format!("{r:.1}"))
+                .unwrap_or_else(|| "-".into()),
+            p.grade.as_deref().unwrap_or("-"),
+            p.source
+        );
+    }
+    if h.points
+        .iter()
+        .any(|p| !p.cycles_given && p.cycles.is_finite())
+    {
+        let _ = writeln!(
+            o,
+            "  (* cycles counted from the discharge Ah packbench measured)"
+        );
+    }
+    if h.points.iter().any(|p| !p.cycles.is_finite()) {
+        let _ = writeln!(
+            o,
+            "  (- cycle count unknown: left out of the fit against cycles, kept in the fits against time)"
+        );
+    }
+    for m in &fa.models {
+        let _ = writeln!(
+            o,
+            "  fade {}: {:.4} {} (R² {:.4}, n {})",
+            m.description, m.fade_per_unit, m.unit, m.fit.r_squared, m.fit.n
+        );
+    }
+    if let Some(p) = &fa.eol_cycles {
+        let _ = writeln!(
+            o,
+            "  End of life at about {:.0} cycles (95 % band {} to {}; {})",
+            p.cycles,
+            p.cycles_early
+                .map(|c| format!("{c:.0}"))
+                .unwrap_or_else(|| "-".into()),
+            p.cycles_late
+                .map(|c| format!("{c:.0}"))
+                .unwrap_or_else(|| "not bounded".into()),
+            p.basis
+        );
+    }
+    if let Some(p) = &fa.eol_date {
+        let _ = writeln!(
+            o,
+            "  End of life about {} (95 % band {} to {})",
+            p.date,
+            p.date_early
+                .map(|d| d.to_string())
+                .unwrap_or_else(|| "-".into()),
+            p.date_late
+                .map(|d| d.to_string())
+                .unwrap_or_else(|| "not bounded".into())
+        );
+    }
+    if let Some(a) = &fa.accelerating {
+        let _ = writeln!(
+            o,
+            "  ACCELERATING FADE: {:.3} %/100 cycles recently against {:.3} earlier ({:.1}x)",
+            a.recent_pct_per_100_cycles, a.earlier_pct_per_100_cycles, a.ratio
+        );
+    }
+    for n in &fa.notes {
+        let _ = writeln!(o, "  note: {n}");
+    }
+    for l in &h.left_out {
+        let _ = writeln!(
+            o,
+            "  left out: run {} ({}): {}",
+            l.run_id, l.status, l.reason
+        );
+    }
+    o
+}
+
+/// The fleet table for a terminal.
+pub fn fleet(f: &analysis::fade::fleet::Fleet) -> String {
+    let mut o = String::new();
+    let _ = writeln!(
+        o,
+        "Fleet as of {} ({} packs; a test is due every {} days; end of life at {} %)",
+        f.today,
+        f.rows.len(),
+        f.interval_days,
+        f.threshold_pct
+    );
+    let _ = writeln!(
+        o,
+        "{:>4}  {:<10} {:<13} {:>5} {:<10} {:>6} {:>6} {:>8} {:>7} {:>9} {:>7} {:<10} {:<5} flags",
+        "rank",
+        "pack",
+        "chemistry",
+        "tests",
+        "last test",
+        "cycles",
+        "SOH%",
+        "R mOhm",
+        "R grow%",
+        "fade%/100",
+        "EOL cyc",
+        "EOL date",
+        "grade"
+    );
+    let n = |v: Option<f64>, d: usize| v.map(|x| format!("{x:.d$}")).unwrap_or_else(|| "-".into());
+    for r in &f.rows {
+        let mut flags = Vec::new();
+        if r.overdue {
+            flags.push("OVERDUE".to_string());
+        }
+        if r.accelerating {
+            flags.push("ACCELERATING".to_string());
+        }
+        if let Some(d) = r.below_eol_since {
+            flags.push(format!("BELOW-EOL-SINCE-{d}"));
+        } else if r.eol_date_past {
+            flags.push("EOL-DATE-PAST".to_string());
+        }
+        let _ =
+            writeln!(
+            o,
+            "{:>4}  {:<10} {:<13} {:>5} {:<10} {:>6} {:>6} {:>8} {:>7} {:>9} {:>7} {:<10} {:<5} {}",
+            r.rank,
+            r.pack_id,
+            format!("{} {}S", r.chemistry, r.series),
+            r.tests,
+            r.last_test.map(|d| d.to_string()).unwrap_or_else(|| "-".into()),
+            n(r.cycles, 0),
+            n(r.soh_pct, 1),
+            n(r.resistance_mohm, 1),
+            n(r.resistance_growth_pct, 0),
+            n(r.fade_pct_per_100_cycles, 3),
+            n(r.eol_cycles, 0),
+            r.eol_date.map(|d| d.to_string()).unwrap_or_else(|| "-".into()),
+            r.grade.as_deref().unwrap_or("-"),
+            flags.join(" ")
+        );
+    }
+    o
+}

@@ -1,0 +1,394 @@
+//! The simulated bench's shared state: one pack, one simulated supply and
+//! one simulated load wired to it, measurement error, injected faults and
+//! the ground-truth counters. Time advances lazily to the clock's present
+//! whenever an instrument is spoken to.
+
+use super::battery::{LoadMode, PackCondition, PackModel};
+use super::config::{Faults, MeterConfig, SimConfig};
+use engine::clock::Clock;
+use model::pack::PackSpec;
+use model::truth::TruthCounters;
+use rand::rngs::SmallRng;
+use rand::{Rng, SeedableRng};
+use rand_distr::StandardNormal;
+use std::sync::Arc;
+
+/// Largest integration step of the model, seconds.
+pub const MAX_DT: f64 = 1.0;
+
+/// Measurement error of one measured quantity.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Meter {
+    pub gain: f64,
+    pub offset: f64,
+    pub noise_sd: f64,
+    pub resolution: f64,
+}
+
+impl Meter {
+    pub const IDEAL: Meter = Meter {
+        gain: 1.0,
+        offset: 0.0,
+        noise_sd: 0.0,
+        resolution: 0.0,
+    };
+
+    fn apply(&self, x: f64, rng: &mut SmallRng) -> f64 {
+        let noise = if self.noise_sd > 0.0 {
+            let z: f64 = rng.sample(StandardNormal);
+            z * self.noise_sd
+        } else {
+            0.0
+        };
+        let y = x * self.gain + self.offset + noise;
+        if self.resolution > 0.0 {
+            (y / self.resolution).round() * self.resolution
+        } else {
+            y
+        }
+    }
+}
+
+#[derive(Debug, Clone)]
+pub struct SupplyState {
+    pub output_on: bool,
+    pub voltage_set: f64,
+    pub current_set: f64,
+    pub voltage_max: f64,
+    pub current_max: f64,
+    pub volts: Meter,
+    pub amps: Meter,
+}
+
+#[derive(Debug, Clone)]
+pub struct LoadState {
+    pub input_on: bool,
+    pub mode: LoadMode,
+    pub current_set: f64,
+    pub power_set: f64,
+    pub resistance_set: f64,
+    pub voltage_max: f64,
+    pub current_max: f64,
+    pub power_max: f64,
+    pub resistance_max: f64,
+    pub volts: Meter,
+    pub amps: Meter,
+}
+
+/// Everything on the simulated bench.
+pub struct SimBench {
+    clock: Arc<dyn Clock>,
+    pub pack: PackModel,
+    pub supply: SupplyState,
+    pub load: LoadState,
+    pub thermometer: Meter,
+    pub voltmeter: Meter,
+    pub faults: Faults,
+    last_t: f64,
+    truth: TruthCounters,
+    /// Times the supply output and the load input were on together.
+    pub overlaps: u32,
+    rng: SmallRng,
+    checkpoint: Option<Checkpoint>,
+    /// Watches for the true terminal voltage falling to a level.
+    pub watch: Option<VoltageWatch>,
+}
+
+/// The first time the true terminal voltage fell to a level, and the
+/// truth counters then (interpolated between integration steps).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct VoltageWatch {
+    pub below_v: f64,
+    pub crossed: Option<(f64, TruthCounters)>,
+    last: Option<(f64, f64, TruthCounters)>,
+}
+
+impl VoltageWatch {
+    pub fn new(below_v: f64) -> VoltageWatch {
+        VoltageWatch {
+            below_v,
+            crossed: None,
+            last: None,
+        }
+    }
+}
+
+/// The simulated pack's state, kept in a file as the run goes, so a run
+/// whose controller died can go on with the same pack (a real pack keeps
+/// its charge when the controller stops; the simulated one lives in the
+/// controller's process).
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct PackState {
+    /// Bench time of the state, s.
+    pub t_s: f64,
+    pub soc: f64,
+    pub v1: f64,
+    pub v2: f64,
+    /// Surface-charge polarisation left by a lead-acid charge, V per cell.
+    #[serde(default)]
+    pub v_surface: f64,
+    pub temperature_c: f64,
+    pub truth_charge_ah: f64,
+    pub truth_energy_wh: f64,
+}
+
+#[derive(Debug, Clone)]
+struct Checkpoint {
+    path: std::path::PathBuf,
+    every_s: f64,
+    last_s: f64,
+}
+
+fn meter(cfg: &MeterConfig, ideal: bool) -> Meter {
+    if ideal {
+        Meter::IDEAL
+    } else {
+        Meter {
+            gain: 1.0 + cfg.gain_error_pct / 100.0,
+            offset: cfg.offset,
+            noise_sd: cfg.noise,
+            resolution: cfg.resolution,
+        }
+    }
+}
+
+impl SimBench {
+    pub fn new(spec: &PackSpec, cfg: &SimConfig, clock: Arc<dyn Clock>) -> SimBench {
+        let cond = PackCondition {
+            capacity_factor: cfg.pack.capacity_factor,
+            resistance_factor: cfg.pack.resistance_factor,
+            initial_soc: cfg.pack.initial_soc,
+            ambient_c: cfg.pack.ambient_c,
+            standby_drain_a: cfg.pack.standby_drain_a,
+        };
+        let last_t = clock.now();
+        SimBench {
+            clock,
+            pack: PackModel::new(spec, cond),
+            supply: SupplyState {
+                output_on: false,
+                voltage_set: 0.0,
+                current_set: 0.0,
+                voltage_max: 150.0,
+                current_max: 60.0,
+                volts: meter(&cfg.source.voltage, cfg.ideal),
+                amps: meter(&cfg.source.current, cfg.ideal),
+            },
+            load: LoadState {
+                input_on: false,
+                mode: LoadMode::Current,
+                current_set: 0.0,
+                power_set: 0.0,
+                resistance_set: 10_000.0,
+                voltage_max: 150.0,
+                current_max: 60.0,
+                power_max: 1500.0,
+                resistance_max: 10_000.0,
+                volts: meter(&cfg.load.voltage, cfg.ideal),
+                amps: meter(&cfg.load.current, cfg.ideal),
+            },
+            thermometer: meter(&cfg.temperature, cfg.ideal),
+            voltmeter: meter(&cfg.meter, cfg.ideal),
+            faults: cfg.faults.clone(),
+            last_t,
+            truth: TruthCounters::default(),
+            overlaps: 0,
+            rng: SmallRng::seed_from_u64(cfg.seed),
+            checkpoint: None,
+            watch: None,
+        }
+    }
+
+    /// Keep the pack's state in `path`, rewritten every `every_s` bench
+    /// seconds as time advances.
+    pub fn keep_state(&mut self, path: std::path::PathBuf, every_s: f64) {
+        self.checkpoint = Some(Checkpoint {
+            path,
+            every_s,
+            last_s: f64::NEG_INFINITY,
+        });
+        self.write_state();
+    }
+
+    pub fn state(&self) -> PackState {
+        PackState {
+            t_s: self.last_t,
+            soc: self.pack.soc,
+            v1: self.pack.v1,
+            v2: self.pack.v2,
+            v_surface: self.pack.v_surface,
+            temperature_c: self.pack.temperature_c,
+            truth_charge_ah: self.truth.charge_ah,
+            truth_energy_wh: self.truth.energy_wh,
+        }
+    }
+
+    /// Put the pack in a kept state, then let it stand open-circuit for
+    /// `rest_s` (the time the run was down): its polarisation relaxes and
+    /// it cools; its electronics, if any, go on drawing.
+    pub fn restore(&mut self, st: &PackState, rest_s: f64) {
+        self.pack.soc = st.soc;
+        self.pack.v1 = st.v1;
+        self.pack.v2 = st.v2;
+        self.pack.v_surface = st.v_surface;
+        self.pack.temperature_c = st.temperature_c;
+        if rest_s > 0.0 {
+            let _ = self.pack.step(rest_s, 0.0);
+        }
+    }
+
+    fn write_state(&mut self) {
+        let state = self.state();
+        if let Some(c) = self.checkpoint.as_mut() {
+            c.last_s = state.t_s;
+            if let Ok(bytes) = serde_json::to_vec(&state) {
+                // Written aside and renamed: never half a state.
+                let tmp = c.path.with_extension("json.tmp");
+                if std::fs::write(&tmp, bytes).is_ok() {
+                    let _ = std::fs::rename(&tmp, &c.path);
+                }
+            }
+        }
+    }
+
+    pub fn now(&self) -> f64 {
+        self.clock.now()
+    }
+
+    /// Current the supply drives (≥ 0).
+    fn supply_current(&self) -> f64 {
+        if !self.supply.output_on {
+            return 0.0;
+        }
+        let v = self.supply.voltage_set * (1.0 + self.faults.source_voltage_error_pct / 100.0);
+        self.pack.supply_current(v, self.supply.current_set)
+    }
+
+    /// Current the load sinks, as a pack current (≤ 0).
+    fn load_current(&self) -> f64 {
+        if !self.load.input_on {
+            return 0.0;
+        }
+        let value = match self.load.mode {
+            LoadMode::Current => self.load.current_set,
+            LoadMode::Power => self.load.power_set,
+            LoadMode::Resistance => self.load.resistance_set,
+        };
+        self.pack.load_current(self.load.mode, value)
+    }
+
+    /// Pack current now (positive into the pack).
+    pub fn pack_current(&self) -> f64 {
+        self.supply_current() + self.load_current()
+    }
+
+    /// Integrate the model up to the clock's present.
+    pub fn advance(&mut self) {
+        let t = self.clock.now();
+        while self.last_t < t {
+            let dt = (t - self.last_t).min(MAX_DT);
+            if let Some(after) = self.faults.heat_after_s {
+                if self.last_t >= after {
+                    self.pack.fault_heat_w = self.faults.heat_w;
+                }
+            }
+            let i = self.pack_current();
+            let (ah, wh) = self.pack.step(dt, i);
+            self.truth.charge_ah += ah;
+            self.truth.energy_wh += wh;
+            self.last_t += dt;
+            if self.watch.is_some() {
+                self.check_watch();
+            }
+        }
+        if self
+            .checkpoint
+            .as_ref()
+            .is_some_and(|c| self.last_t - c.last_s >= c.every_s)
+        {
+            self.write_state();
+        }
+    }
+
+    fn check_watch(&mut self) {
+        let v = self.terminal_voltage();
+        let (t, truth) = (self.last_t, self.truth);
+        let Some(w) = self.watch.as_mut() else { return };
+        if w.crossed.is_none() && v <= w.below_v {
+            w.crossed = Some(match w.last {
+                Some((t0, v0, c0)) if v0 > v => {
+                    let f = ((v0 - w.below_v) / (v0 - v)).clamp(0.0, 1.0);
+                    (
+                        t0 + f * (t - t0),
+                        TruthCounters {
+                            charge_ah: c0.charge_ah + f * (truth.charge_ah - c0.charge_ah),
+                            energy_wh: c0.energy_wh + f * (truth.energy_wh - c0.energy_wh),
+                        },
+                    )
+                }
+                _ => (t, truth),
+            });
+        }
+        w.last = Some((t, v, truth));
+    }
+
+    pub fn truth(&self) -> TruthCounters {
+        self.truth
+    }
+
+    pub fn terminal_voltage(&self) -> f64 {
+        self.pack.terminal_voltage(self.pack_current())
+    }
+
+    /// What the reading faults in force add to a quantity.
+    fn reading_shift(&self, q: super::config::Quantity) -> f64 {
+        let now = self.clock.now();
+        self.faults
+            .reading
+            .iter()
+            .filter(|f| f.quantity == q && now >= f.after_s)
+            .map(|f| f.offset)
+            .sum()
+    }
+
+    pub fn measure_supply(&mut self) -> (f64, f64) {
+        use super::config::Quantity as Q;
+        let v = self.terminal_voltage();
+        let i = self.supply_current();
+        let (dv, di) = (
+            self.reading_shift(Q::Voltage),
+            self.reading_shift(Q::Current),
+        );
+        (
+            self.supply.volts.apply(v, &mut self.rng) + dv,
+            self.supply.amps.apply(i, &mut self.rng) + di,
+        )
+    }
+
+    pub fn measure_load(&mut self) -> (f64, f64) {
+        use super::config::Quantity as Q;
+        let v = self.terminal_voltage();
+        let i = -self.load_current();
+        let (dv, di) = (
+            self.reading_shift(Q::Voltage),
+            self.reading_shift(Q::Current),
+        );
+        (
+            self.load.volts.apply(v, &mut self.rng) + dv,
+            self.load.amps.apply(i, &mut self.rng) + di,
+        )
+    }
+
+    /// The separate voltmeter at the pack terminals.
+    pub fn measure_meter(&mut self) -> f64 {
+        let v = self.terminal_voltage();
+        self.voltmeter.apply(v, &mut self.rng)
+            + self.reading_shift(super::config::Quantity::Voltage)
+    }
+
+    pub fn measure_temperature(&mut self) -> f64 {
+        let t = self.pack.temperature_c;
+        self.thermometer.apply(t, &mut self.rng)
+            + self.reading_shift(super::config::Quantity::Temperature)
+    }
+}

@@ -1,0 +1,143 @@
+//! The simulated bench: a pack model behind a simulated supply and load
+//! that speak SCPI text. Reachable only through a link: [`build`] returns
+//! in-memory links for the engine and a [`SimHandle`] for ground truth and
+//! for tests that inspect the instruments' state. The engine never imports
+//! this module.
+
+pub mod battery;
+pub mod bench;
+pub mod serve;
+pub mod server;
+
+pub use model::simconfig::{self as config, SimConfig};
+
+use engine::clock::Clock;
+use instrument::link::{InMemoryLink, LineResponder, Link};
+use model::pack::PackSpec;
+use model::truth::{GroundTruth, TruthCounters};
+use bench::SimBench;
+use server::{SimInstrument, SimRole};
+use std::sync::{Arc, Mutex};
+
+/// A view of the simulated bench from outside the links.
+#[derive(Clone)]
+pub struct SimHandle {
+    bench: Arc<Mutex<SimBench>>,
+    /// Messages received by the source and the load, in order.
+    pub source_traffic: Arc<Mutex<Vec<String>>>,
+    pub load_traffic: Arc<Mutex<Vec<String>>>,
+}
+
+impl SimHandle {
+    /// A handle on a bench whose instruments are served elsewhere.
+    pub fn from_bench(bench: Arc<Mutex<SimBench>>) -> SimHandle {
+        SimHandle {
+            bench,
+            source_traffic: Arc::new(Mutex::new(Vec::new())),
+            load_traffic: Arc::new(Mutex::new(Vec::new())),
+        }
+    }
+    /// Bench seconds on the simulated clock.
+    pub fn bench_time(&self) -> f64 {
+        self.with(|b| b.now())
+    }
+    fn with<T>(&self, f: impl FnOnce(&mut SimBench) -> T) -> T {
+        let mut g = match self.bench.lock() {
+            Ok(g) => g,
+            Err(p) => p.into_inner(),
+        };
+        g.advance();
+        f(&mut g)
+    }
+    pub fn source_output_on(&self) -> bool {
+        self.with(|b| b.supply.output_on)
+    }
+    pub fn load_input_on(&self) -> bool {
+        self.with(|b| b.load.input_on)
+    }
+    /// Times the supply and the load were switched on together.
+    pub fn overlaps(&self) -> u32 {
+        self.with(|b| b.overlaps)
+    }
+    pub fn pack_soc(&self) -> f64 {
+        self.with(|b| b.pack.soc)
+    }
+    pub fn pack_temperature_c(&self) -> f64 {
+        self.with(|b| b.pack.temperature_c)
+    }
+    pub fn true_capacity_ah(&self) -> f64 {
+        self.with(|b| b.pack.capacity_ah)
+    }
+    /// Keep the pack's state in a file (see [`bench::PackState`]).
+    pub fn keep_state(&self, path: std::path::PathBuf, every_s: f64) {
+        self.with(|b| b.keep_state(path, every_s))
+    }
+    /// Put the pack in a kept state after `rest_s` open-circuit.
+    pub fn restore(&self, st: &bench::PackState, rest_s: f64) {
+        self.with(|b| b.restore(st, rest_s))
+    }
+    /// Watch for the true terminal voltage falling to `v` (see
+    /// [`bench::VoltageWatch`]).
+    pub fn watch_below(&self, v: f64) {
+        self.with(|b| b.watch = Some(bench::VoltageWatch::new(v)))
+    }
+    /// When the watched level was crossed, with the truth counters then.
+    pub fn crossed(&self) -> Option<(f64, TruthCounters)> {
+        self.with(|b| b.watch.and_then(|w| w.crossed))
+    }
+    /// Number of messages both instruments received.
+    pub fn messages_received(&self) -> usize {
+        let n = |m: &Arc<Mutex<Vec<String>>>| m.lock().map(|v| v.len()).unwrap_or(0);
+        n(&self.source_traffic) + n(&self.load_traffic)
+    }
+}
+
+impl GroundTruth for SimHandle {
+    fn counters(&self) -> TruthCounters {
+        self.with(|b| b.truth())
+    }
+}
+
+/// Links to a simulated source and load on one pack.
+pub struct SimLinks {
+    pub source: Link,
+    pub load: Link,
+    /// The instruments behind the links, to open a link again after a
+    /// simulated disconnect.
+    pub source_responder: Arc<Mutex<dyn LineResponder>>,
+    pub load_responder: Arc<Mutex<dyn LineResponder>>,
+    pub handle: SimHandle,
+}
+
+/// A new in-memory link to an instrument.
+pub fn link_to(responder: &Arc<Mutex<dyn LineResponder>>) -> Link {
+    Box::new(InMemoryLink::new(Arc::clone(responder)))
+}
+
+/// Build a simulated bench for a pack.
+pub fn build(spec: &PackSpec, cfg: &SimConfig, clock: Arc<dyn Clock>) -> SimLinks {
+    let bench = Arc::new(Mutex::new(SimBench::new(spec, cfg, clock)));
+    let source_traffic = Arc::new(Mutex::new(Vec::new()));
+    let load_traffic = Arc::new(Mutex::new(Vec::new()));
+    let src: Arc<Mutex<dyn LineResponder>> = Arc::new(Mutex::new(SimInstrument::new(
+        Arc::clone(&bench),
+        SimRole::Source,
+        Arc::clone(&source_traffic),
+    )));
+    let load: Arc<Mutex<dyn LineResponder>> = Arc::new(Mutex::new(SimInstrument::new(
+        Arc::clone(&bench),
+        SimRole::Load,
+        Arc::clone(&load_traffic),
+    )));
+    SimLinks {
+        source: link_to(&src),
+        load: link_to(&load),
+        source_responder: src,
+        load_responder: load,
+        handle: SimHandle {
+            bench,
+            source_traffic,
+            load_traffic,
+        },
+    }
+}

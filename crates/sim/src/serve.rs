@@ -1,0 +1,390 @@
+//! The simulated instruments as real endpoints: each role served on a
+//! pseudo-terminal (raw mode, kept open across client reconnects, with an
+//! optional stable symlink) or on a loopback TCP port, all roles sharing
+//! one battery model. Blocking threads, one per endpoint: an instrument
+//! answers one message at a time. An optional line rate makes a
+//! pseudo-terminal behave like a serial line of that baud rate (10 bits a
+//! byte), which a pseudo-terminal by itself does not.
+
+use super::bench::SimBench;
+use super::server::{SimInstrument, SimRole};
+use super::{SimConfig, SimHandle};
+use engine::clock::Clock;
+use instrument::link::{LineResponder, Response};
+use model::pack::PackSpec;
+use serde::Serialize;
+use std::io::{self, Read, Write};
+use std::net::{SocketAddr, TcpListener};
+use std::path::{Path, PathBuf};
+use std::sync::{mpsc, Arc, Mutex};
+use std::time::{Duration, Instant};
+
+/// Where to serve one role.
+#[derive(Debug, Clone)]
+pub enum Endpoint {
+    /// A new pseudo-terminal; `symlink` is a stable name that follows it.
+    Pty { symlink: Option<PathBuf> },
+    /// A TCP port (loopback unless the caller chose otherwise).
+    Tcp(SocketAddr),
+}
+
+/// How the endpoints behave.
+#[derive(Debug, Clone, Default)]
+pub struct ServeOptions {
+    /// Emulate a serial line of this baud rate (10 bits per byte).
+    pub baud: Option<u32>,
+}
+
+/// One served role and the link address a client uses.
+#[derive(Debug, Clone)]
+pub struct Served {
+    pub role: SimRole,
+    /// For `packbench run` / bench files: `serial:...` or `tcp:...`.
+    pub link: String,
+    /// The device path now (pseudo-terminals).
+    pub device: Option<PathBuf>,
+}
+
+/// An entry of the server's state log (JSON lines).
+#[derive(Debug, Clone, Serialize)]
+pub struct StateEntry {
+    /// Wall seconds since the server started.
+    pub wall_s: f64,
+    /// Bench seconds on the simulated clock.
+    pub bench_s: f64,
+    pub what: String,
+    pub source_output_on: bool,
+    pub load_input_on: bool,
+}
+
+struct Shared {
+    handle: SimHandle,
+    start: Instant,
+    log: Option<Mutex<Box<dyn Write + Send>>>,
+    last: Mutex<(bool, bool)>,
+}
+
+impl Shared {
+    /// Log an event of the link (a client connecting).
+    fn note(&self, what: &str) {
+        let Some(log) = &self.log else { return };
+        let (src, load) = match self.last.lock() {
+            Ok(g) => *g,
+            Err(p) => *p.into_inner(),
+        };
+        let e = StateEntry {
+            wall_s: self.start.elapsed().as_secs_f64(),
+            bench_s: self.handle.bench_time(),
+            what: what.to_string(),
+            source_output_on: src,
+            load_input_on: load,
+        };
+        if let (Ok(mut w), Ok(line)) = (log.lock(), serde_json::to_string(&e)) {
+            let _ = writeln!(w, "{line}");
+            let _ = w.flush();
+        }
+    }
+
+    /// After each message: log output changes and faults that fired.
+    fn record(&self, inst: &mut SimInstrument) {
+        let Some(log) = &self.log else {
+            inst.fired_log.clear();
+            return;
+        };
+        let now = (self.handle.source_output_on(), self.handle.load_input_on());
+        let mut whats: Vec<String> = inst
+            .fired_log
+            .drain(..)
+            .map(|f| {
+                format!(
+                    "fault {}:{}",
+                    f.fault.instrument.name(),
+                    f.fault.kind.name()
+                )
+            })
+            .collect();
+        if let Ok(mut last) = self.last.lock() {
+            if *last != now {
+                whats.push("outputs".into());
+                *last = now;
+            }
+        }
+        if whats.is_empty() {
+            return;
+        }
+        let bench_s = self.handle.bench_time();
+        let wall_s = self.start.elapsed().as_secs_f64();
+        if let Ok(mut w) = log.lock() {
+            for what in whats {
+                let e = StateEntry {
+                    wall_s,
+                    bench_s,
+                    what,
+                    source_output_on: now.0,
+                    load_input_on: now.1,
+                };
+                if let Ok(line) = serde_json::to_string(&e) {
+                    let _ = writeln!(w, "{line}");
+                }
+            }
+            let _ = w.flush();
+        }
+    }
+}
+
+/// A running server.
+pub struct SimServer {
+    pub handle: SimHandle,
+    pub served: Vec<Served>,
+}
+
+fn wire_sleep(baud: Option<u32>, bytes: usize) {
+    if let Some(b) = baud {
+        let secs = bytes as f64 * 10.0 / b as f64;
+        std::thread::sleep(Duration::from_secs_f64(secs));
+    }
+}
+
+/// Handle the bytes of one connection: lines in, replies out. Returns
+/// `Err` when the instrument drops the link (a disconnect fault).
+fn serve_lines<R: Read, W: Write>(
+    reader: &mut R,
+    writer: &mut W,
+    inst: &Arc<Mutex<SimInstrument>>,
+    shared: &Shared,
+    opts: &ServeOptions,
+) -> io::Result<()> {
+    let mut pending: Vec<u8> = Vec::new();
+    let mut buf = [0u8; 4096];
+    // A client that went away cannot take replies, but the commands it
+    // sent before going (an output off) still take effect.
+    let mut can_write = true;
+    loop {
+        let n = reader.read(&mut buf)?;
+        if n == 0 {
+            return Ok(());
+        }
+        pending.extend_from_slice(&buf[..n]);
+        while let Some(pos) = pending.iter().position(|&b| b == b'\n') {
+            let line: Vec<u8> = pending.drain(..=pos).collect();
+            wire_sleep(opts.baud, line.len());
+            let text = String::from_utf8_lossy(&line[..line.len() - 1]).into_owned();
+            let answer = {
+                let mut g = match inst.lock() {
+                    Ok(g) => g,
+                    Err(p) => p.into_inner(),
+                };
+                let a = g.respond(text.trim_end_matches('\r'));
+                shared.record(&mut g);
+                a
+            };
+            let reply = match answer? {
+                Response::Nothing => continue,
+                Response::Reply(r) => r,
+                Response::Late(r, delay) => {
+                    std::thread::sleep(delay);
+                    r
+                }
+            };
+            let mut out = reply.into_bytes();
+            out.push(b'\n');
+            wire_sleep(opts.baud, out.len());
+            if can_write && writer.write_all(&out).and_then(|_| writer.flush()).is_err() {
+                can_write = false;
+            }
+        }
+    }
+}
+
+fn set_raw(fd: &std::os::fd::OwnedFd) -> io::Result<()> {
+    use nix::sys::termios::{cfmakeraw, tcgetattr, tcsetattr, SetArg};
+    let mut t = tcgetattr(fd).map_err(io::Error::from)?;
+    cfmakeraw(&mut t);
+    tcsetattr(fd, SetArg::TCSANOW, &t).map_err(io::Error::from)
+}
+
+/// A new pseudo-terminal in raw mode: (master, our own slave fd kept open
+/// so the master survives client reconnects, device path).
+fn new_pty() -> io::Result<(std::fs::File, std::fs::File, PathBuf)> {
+    let r = nix::pty::openpty(None, None).map_err(io::Error::from)?;
+    set_raw(&r.slave)?;
+    let path = nix::unistd::ttyname(&r.slave).map_err(io::Error::from)?;
+    Ok((
+        std::fs::File::from(r.master),
+        std::fs::File::from(r.slave),
+        path,
+    ))
+}
+
+fn point_symlink(link: &Path, target: &Path) -> io::Result<()> {
+    let tmp = link.with_extension("new-link");
+    let _ = std::fs::remove_file(&tmp);
+    std::os::unix::fs::symlink(target, &tmp)?;
+    std::fs::rename(&tmp, link)
+}
+
+fn serial_link(path: &Path, baud: Option<u32>) -> String {
+    format!(
+        "serial:{}?baud={}&parity=none&flow=none",
+        path.display(),
+        baud.unwrap_or(115_200)
+    )
+}
+
+/// Serve the given roles on one simulated pack. Returns once every
+/// endpoint is ready; the endpoints run on their own threads until the
+/// process ends.
+pub fn serve(
+    spec: &PackSpec,
+    cfg: &SimConfig,
+    clock: Arc<dyn Clock>,
+    roles: &[(SimRole, Endpoint)],
+    opts: &ServeOptions,
+    state_log: Option<Box<dyn Write + Send>>,
+) -> io::Result<SimServer> {
+    let bench = Arc::new(Mutex::new(SimBench::new(spec, cfg, clock)));
+    let handle = SimHandle::from_bench(Arc::clone(&bench));
+    let shared = Arc::new(Shared {
+        handle: handle.clone(),
+        start: Instant::now(),
+        log: state_log.map(Mutex::new),
+        last: Mutex::new((false, false)),
+    });
+    let mut served = Vec::new();
+    for (role, endpoint) in roles {
+        let inst = Arc::new(Mutex::new(SimInstrument::new(
+            Arc::clone(&bench),
+            *role,
+            Arc::new(Mutex::new(Vec::new())),
+        )));
+        let shared = Arc::clone(&shared);
+        let baud = opts.baud;
+        let opts = opts.clone();
+        match endpoint {
+            Endpoint::Tcp(addr) => {
+                let listener = TcpListener::bind(addr)?;
+                let local = listener.local_addr()?;
+                served.push(Served {
+                    role: *role,
+                    link: format!("tcp:{}:{}", local.ip(), local.port()),
+                    device: None,
+                });
+                std::thread::spawn(move || {
+                    for conn in listener.incoming() {
+                        let Ok(stream) = conn else { continue };
+                        shared.note(&format!("{} client connected", role_name(inst_role(&inst))));
+                        let _ = stream.set_nodelay(true);
+                        let Ok(mut reader) = stream.try_clone() else {
+                            continue;
+                        };
+                        let mut writer = stream;
+                        let _ = serve_lines(&mut reader, &mut writer, &inst, &shared, &opts);
+                        let _ = writer.shutdown(std::net::Shutdown::Both);
+                    }
+                });
+            }
+            Endpoint::Pty { symlink } => {
+                let (tx, rx) = mpsc::channel::<io::Result<PathBuf>>();
+                let symlink = symlink.clone();
+                std::thread::spawn(move || {
+                    let mut first = Some(tx);
+                    loop {
+                        let made = new_pty().and_then(|(m, s, path)| {
+                            if let Some(l) = &symlink {
+                                point_symlink(l, &path)?;
+                            }
+                            Ok((m, s, path))
+                        });
+                        let (master, slave, path) = match made {
+                            Ok(x) => x,
+                            Err(e) => {
+                                if let Some(tx) = first.take() {
+                                    let _ = tx.send(Err(e));
+                                }
+                                return;
+                            }
+                        };
+                        if let Some(tx) = first.take() {
+                            let _ = tx.send(Ok(path.clone()));
+                        } else {
+                            eprintln!(
+                                "{} moved to {}",
+                                role_name(inst_role(&inst)),
+                                path.display()
+                            );
+                        }
+                        let Ok(mut reader) = master.try_clone() else {
+                            return;
+                        };
+                        let mut writer = master;
+                        // Returns only on a simulated disconnect (or a
+                        // failed pseudo-terminal): the device then goes
+                        // away and a new one takes its place.
+                        let _ = serve_lines(&mut reader, &mut writer, &inst, &shared, &opts);
+                        drop(slave);
+                        drop(writer);
+                        drop(reader);
+                    }
+                });
+                let path = rx
+                    .recv()
+                    .map_err(|_| io::Error::other("pseudo-terminal thread ended"))??;
+                served.push(Served {
+                    role: *role,
+                    link: serial_link(&path, baud),
+                    device: Some(path),
+                });
+            }
+        }
+    }
+    Ok(SimServer { handle, served })
+}
+
+fn inst_role(inst: &Arc<Mutex<SimInstrument>>) -> SimRole {
+    match inst.lock() {
+        Ok(g) => g.role(),
+        Err(p) => p.into_inner().role(),
+    }
+}
+
+/// The name of a role on the command line and in bench files.
+pub fn role_name(role: SimRole) -> &'static str {
+    match role {
+        SimRole::Source => "source",
+        SimRole::Load => "load",
+        SimRole::SourceSink => "source-sink",
+        SimRole::Meter => "meter",
+    }
+}
+
+/// The built-in profile for a served role.
+pub fn role_profile(role: SimRole) -> &'static str {
+    match role {
+        SimRole::Source => "generic-scpi-source",
+        SimRole::Load => "generic-scpi-load",
+        SimRole::SourceSink => "generic-scpi-source-sink",
+        SimRole::Meter => "generic-scpi-meter",
+    }
+}
+
+/// A bench file for the served endpoints (one station named `sim`).
+pub fn bench_file_text(served: &[Served], timeout: Option<&str>) -> String {
+    let mut s = String::from(
+        "# Written by `packbench sim serve`: the simulated instruments as a bench.\n[[station]]\nname = \"sim\"\n",
+    );
+    for sv in served {
+        let table = match sv.role {
+            SimRole::SourceSink => "source_sink",
+            other => role_name(other),
+        };
+        s.push_str(&format!(
+            "[station.{table}]\nlink = \"{}\"\nprofile = \"{}\"\n",
+            sv.link,
+            role_profile(sv.role)
+        ));
+        if let Some(t) = timeout {
+            s.push_str(&format!("timeout = \"{t}\"\n"));
+        }
+    }
+    s
+}
