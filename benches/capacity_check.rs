@@ -6,7 +6,9 @@
 //! Run: cargo bench --bench capacity_check
 
 use engine::control::StopHandle;
-use packbench::run::{self, PackSource, RunRequest, Speed};
+use packbench::session::request::PackSource;
+use packbench::session::request::RunRequest;
+use packbench::session::request::Speed;
 use sim::SimConfig;
 use std::time::Instant;
 
@@ -28,18 +30,16 @@ fn main() {
         let req = RunRequest {
             procedure: "procedures/capacity-check.toml".into(),
             pack_id: "BENCH-1".into(),
-            pack: PackSource::Given(run::default_sim_pack()),
+            pack: PackSource::Given(packbench::session::request::default_sim_pack()),
             results: dir.path().to_path_buf(),
             options: Default::default(),
         };
         let t = Instant::now();
-        let prepared = run::prepare(&req).expect("valid procedure");
+        let prepared = packbench::session::prepare::prepare(&req).expect("valid procedure");
         let r = rt
-            .block_on(run::execute_sim(
-                &prepared,
-                &SimConfig::default(),
-                Speed::Max,
-                StopHandle::new(),
+            .block_on(packbench::session::run(
+                packbench::session::Session::sim(&prepared, &SimConfig::default(), Speed::Max)
+                    .with_stop(StopHandle::new()),
             ))
             .expect("run");
         walls.push(t.elapsed().as_secs_f64());

@@ -9,14 +9,14 @@
 //!
 //! Run: `cargo bench --bench serial_link` (about 75 s).
 
-use packbench::benchfile::BenchFile;
 use engine::clock::{Clock, PacedClock};
-use engine::control::StopHandle;
 use instrument::profile::Profile;
 use instrument::scpi::Session;
 use instrument::transport::{self, LinkSpec};
 use model::pack::{Chemistry, PackSpec};
-use packbench::run::{self, PackSource, RunRequest};
+use packbench::session::benchfile::BenchFile;
+use packbench::session::request::PackSource;
+use packbench::session::request::RunRequest;
 use record::read::read_samples;
 use sim::serve::{self, Endpoint, ServeOptions};
 use sim::server::SimRole;
@@ -133,12 +133,12 @@ fn main() {
     std::fs::write(&proc_path, PROCEDURE).expect("write procedure");
     let bench_text = serve::bench_file_text(&server.served, Some("500ms"));
     let bench = BenchFile::parse(&dir.path().join("bench.toml"), &bench_text).expect("bench");
-    let prepared = run::prepare(&RunRequest {
+    let prepared = packbench::session::prepare::prepare(&RunRequest {
         procedure: proc_path,
         pack_id: "BENCH".into(),
         pack: PackSource::Given(pack()),
         results: dir.path().join("results"),
-        options: run::RunOptions {
+        options: packbench::session::request::RunOptions {
             // The trace's microsecond timestamps time each sample's first
             // query; the log's time column has millisecond resolution.
             trace: true,
@@ -147,13 +147,16 @@ fn main() {
     })
     .expect("prepare");
     let report = rt.block_on(async {
-        let links = run::open_station(&bench.stations[0])
+        let links = packbench::session::links::open_station(&bench.stations[0])
             .await
             .expect("open links");
         let clock: Arc<dyn Clock> = PacedClock::new(1.0);
-        run::execute(&prepared, links, clock, None, StopHandle::new(), None)
-            .await
-            .expect("run")
+        packbench::session::run(packbench::session::Session::new(
+            &prepared,
+            packbench::session::Bench::Open { links, clock },
+        ))
+        .await
+        .expect("run")
     });
     let log = read_samples(&report.run_dir.join("samples.csv")).expect("samples");
     let t0 = log.samples[0].t_s;
@@ -178,7 +181,8 @@ fn main() {
         dev.last().copied().unwrap_or(0.0) * 1e3
     );
     // The same from the trace: the time each sample's first query left.
-    let trace = std::fs::read_to_string(report.run_dir.join(run::TRACE_LOG)).unwrap_or_default();
+    let trace = std::fs::read_to_string(report.run_dir.join(packbench::session::drive::TRACE_LOG))
+        .unwrap_or_default();
     let starts: Vec<f64> = trace
         .lines()
         .filter(|l| l.ends_with(&format!("load > {vi}")))

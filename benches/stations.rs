@@ -8,8 +8,12 @@
 //! Run: cargo bench --bench stations   (STATIONS=32 SECONDS=65 to change)
 
 use engine::control::StopHandle;
-use packbench::live::Board;
-use packbench::run::{self, Emergency, PackSource, RunRequest, Speed, StationJob};
+use packbench::session::emergency::Emergency;
+use packbench::session::live::Board;
+use packbench::session::request::PackSource;
+use packbench::session::request::RunRequest;
+use packbench::session::request::Speed;
+use packbench::session::request::StationJob;
 use sim::SimConfig;
 use std::time::Instant;
 
@@ -57,10 +61,10 @@ name = "hold"
     let jobs: Vec<StationJob> = (1..=n)
         .map(|k| {
             let id = format!("S{k:02}");
-            let prepared = run::prepare(&RunRequest {
+            let prepared = packbench::session::prepare::prepare(&RunRequest {
                 procedure: proc_path.clone(),
                 pack_id: id.clone(),
-                pack: PackSource::Given(run::default_sim_pack()),
+                pack: PackSource::Given(packbench::session::request::default_sim_pack()),
                 results: dir.path().join("results"),
                 options: Default::default(),
             })
@@ -98,7 +102,13 @@ name = "hold"
         for k in 0..jobs.len() {
             let jobs = std::rc::Rc::clone(&jobs);
             tasks.push(tokio::task::spawn_local(async move {
-                run::run_job(&jobs[k], StopHandle::new(), Emergency::default(), true).await
+                packbench::session::run(jobs[k].session(
+                    StopHandle::new(),
+                    Emergency::default(),
+                    true,
+                    None,
+                ))
+                .await
             }));
         }
         let mut out = Vec::new();

@@ -7,7 +7,9 @@
 
 use analysis::curves::{find_peaks, gaussian_smooth};
 use engine::control::StopHandle;
-use packbench::run::{self, PackSource, RunRequest, Speed};
+use packbench::session::request::PackSource;
+use packbench::session::request::RunRequest;
+use packbench::session::request::Speed;
 use record::Summary;
 use sim::SimConfig;
 use std::path::{Path, PathBuf};
@@ -18,7 +20,7 @@ const BIN: &str = env!("CARGO_BIN_EXE_packbench");
 fn sim_run(procedure: &str, results: &Path) -> PathBuf {
     sim_run_with(
         Path::new(procedure),
-        run::default_sim_pack(),
+        packbench::session::request::default_sim_pack(),
         results,
         "AN-1",
     )
@@ -469,7 +471,7 @@ fn sim_run_with(
     results: &Path,
     id: &str,
 ) -> PathBuf {
-    let p = run::prepare(&RunRequest {
+    let p = packbench::session::prepare::prepare(&RunRequest {
         procedure: procedure.to_path_buf(),
         pack_id: id.into(),
         pack: PackSource::Given(pack),
@@ -481,11 +483,9 @@ fn sim_run_with(
         .enable_all()
         .build()
         .unwrap();
-    rt.block_on(run::execute_sim(
-        &p,
-        &SimConfig::default(),
-        Speed::Max,
-        StopHandle::new(),
+    rt.block_on(packbench::session::run(
+        packbench::session::Session::sim(&p, &SimConfig::default(), Speed::Max)
+            .with_stop(StopHandle::new()),
     ))
     .unwrap()
     .run_dir
@@ -542,11 +542,16 @@ fn the_peukert_exponent_comes_from_two_runs_at_different_rates() {
     std::fs::write(&fast_path, fast).unwrap();
     let a = sim_run_with(
         Path::new("procedures/capacity-check.toml"),
-        run::default_sim_pack(),
+        packbench::session::request::default_sim_pack(),
         dir.path(),
         "PK-1",
     );
-    let b = sim_run_with(&fast_path, run::default_sim_pack(), dir.path(), "PK-1");
+    let b = sim_run_with(
+        &fast_path,
+        packbench::session::request::default_sim_pack(),
+        dir.path(),
+        "PK-1",
+    );
     let out = Command::new(BIN)
         .arg("peukert")
         .arg(&a)

@@ -6,14 +6,17 @@ use engine::clock::{Clock, SimClock};
 use engine::control::StopHandle;
 use engine::state::RunState;
 use model::pack::{Chemistry, PackSpec};
-use packbench::run::{self, PackSource, Prepared, RunReport, RunRequest};
+use packbench::session::request::PackSource;
+use packbench::session::request::Prepared;
+use packbench::session::request::RunReport;
+use packbench::session::request::RunRequest;
 use record::read::{read_events, read_samples};
 use sim::{self, SimConfig, SimHandle};
 use std::path::Path;
 use std::sync::Arc;
 
 fn prepare(procedure: &str, pack: PackSpec, results: &Path) -> Prepared {
-    run::prepare(&RunRequest {
+    packbench::session::prepare::prepare(&RunRequest {
         procedure: procedure.into(),
         pack_id: "TEST-1".into(),
         pack: PackSource::Given(pack),
@@ -28,14 +31,25 @@ async fn run_sim(p: &Prepared, cfg: &SimConfig, stop: StopHandle) -> (RunReport,
     let c: Arc<dyn Clock> = clock;
     let links = sim::build(&p.pack, cfg, Arc::clone(&c));
     let handle = links.handle.clone();
-    let report = run::execute_sim_links(p, cfg, c, links, "max", stop)
-        .await
-        .unwrap();
+    let report = packbench::session::run(
+        packbench::session::Session::new(
+            p,
+            packbench::session::Bench::SimLinks {
+                cfg: cfg.clone(),
+                clock: c,
+                links,
+                speed_text: "max".into(),
+            },
+        )
+        .with_stop(stop),
+    )
+    .await
+    .unwrap();
     (report, handle)
 }
 
 fn li_ion() -> PackSpec {
-    run::default_sim_pack()
+    packbench::session::request::default_sim_pack()
 }
 
 fn rel(a: f64, b: f64) -> f64 {
@@ -173,7 +187,9 @@ async fn every_shipped_procedure_completes_on_its_cutoff() {
             r.outcome.reason
         );
         // The dry run's expected time is within 5 % of the run's own.
-        let f = packbench::dryrun::forecast_async(&p.procedure.plan, &SimConfig::default()).await;
+        let f =
+            packbench::session::forecast::forecast_async(&p.procedure.plan, &SimConfig::default())
+                .await;
         let err = (f.total_s - r.outcome.duration_s) / r.outcome.duration_s;
         eprintln!(
             "{file}: dry run {:.0} s, run {:.0} s ({:+.3} %)",
@@ -246,9 +262,7 @@ fn assert_safe_stop(r: &RunReport, h: &SimHandle, limit: &str) {
     let breach_t = events
         .iter()
         .find_map(|e| match e {
-            engine::event::Event::Breach { limit: l, t_s, .. } if l == limit => {
-                Some(*t_s)
-            }
+            engine::event::Event::Breach { limit: l, t_s, .. } if l == limit => Some(*t_s),
             _ => None,
         })
         .unwrap_or_else(|| panic!("no {limit} breach in events"));
@@ -366,7 +380,7 @@ async fn live_and_offline_summaries_agree() {
         dir.path(),
     );
     let (r, _) = run_sim(&p, &SimConfig::default(), StopHandle::new()).await;
-    let ctx = run::SummaryContext {
+    let ctx = packbench::session::summary::SummaryContext {
         pack: &p.pack,
         pack_id: "TEST-1",
         run_id: &r.summary.run_id,
@@ -375,7 +389,7 @@ async fn live_and_offline_summaries_agree() {
         cycle_count: p.options.cycle_count,
         policy: &p.options.policy,
     };
-    let (again, _) = run::summarize_run_dir(&r.run_dir, &ctx, None).unwrap();
+    let (again, _) = packbench::session::finish::summarize_run_dir(&r.run_dir, &ctx, None).unwrap();
     assert_eq!(again, r.summary);
     // And both equal what is on disk.
     let on_disk: record::Summary =
@@ -393,9 +407,20 @@ async fn step_transitions_switch_the_old_instrument_off_first() {
     let cfg = SimConfig::ideal();
     let links = sim::build(&p.pack, &cfg, Arc::clone(&c));
     let h = links.handle.clone();
-    run::execute_sim_links(&p, &cfg, c, links, "max", StopHandle::new())
-        .await
-        .unwrap();
+    packbench::session::run(
+        packbench::session::Session::new(
+            &p,
+            packbench::session::Bench::SimLinks {
+                cfg: cfg.clone(),
+                clock: c,
+                links,
+                speed_text: "max".into(),
+            },
+        )
+        .with_stop(StopHandle::new()),
+    )
+    .await
+    .unwrap();
     let src = h.source_traffic.lock().unwrap().clone();
     let load = h.load_traffic.lock().unwrap().clone();
     assert!(src.iter().any(|m| m == "OUTP ON"));
@@ -423,7 +448,9 @@ async fn bad_input_sends_nothing_to_an_instrument() {
         options: Default::default(),
     };
     // Validation fails before any link is used or any folder is made ...
-    assert!(run::prepare(&req).unwrap_err().is_input());
+    assert!(packbench::session::prepare::prepare(&req)
+        .unwrap_err()
+        .is_input());
     assert_eq!(h.messages_received(), 0);
     assert!(!dir.path().join("results").exists());
     // ... while a valid request does talk to the instruments (the counter works).
@@ -431,10 +458,21 @@ async fn bad_input_sends_nothing_to_an_instrument() {
         procedure: "procedures/capacity-check.toml".into(),
         ..req
     };
-    let p = run::prepare(&good).unwrap();
-    run::execute_sim_links(&p, &cfg, c, links, "max", StopHandle::new())
-        .await
-        .unwrap();
+    let p = packbench::session::prepare::prepare(&good).unwrap();
+    packbench::session::run(
+        packbench::session::Session::new(
+            &p,
+            packbench::session::Bench::SimLinks {
+                cfg: cfg.clone(),
+                clock: c,
+                links,
+                speed_text: "max".into(),
+            },
+        )
+        .with_stop(StopHandle::new()),
+    )
+    .await
+    .unwrap();
     assert!(h.messages_received() > 1000);
 }
 

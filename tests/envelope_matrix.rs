@@ -11,7 +11,8 @@ use engine::clock::{Clock, SimClock};
 use engine::control::StopHandle;
 use engine::event::Event;
 use engine::state::RunState;
-use packbench::run::{self, PackSource, RunRequest};
+use packbench::session::request::PackSource;
+use packbench::session::request::RunRequest;
 use record::read::read_events;
 use sim::config::{Quantity, ReadingFault};
 use sim::{self, SimConfig};
@@ -204,10 +205,10 @@ fn every_limit_stops_every_step_kind_it_applies_to() {
             let dir = tempfile::tempdir().unwrap();
             let path = dir.path().join("m.toml");
             std::fs::write(&path, procedure(limit, c.value, &c.step)).unwrap();
-            let p = run::prepare(&RunRequest {
+            let p = packbench::session::prepare::prepare(&RunRequest {
                 procedure: path.clone(),
                 pack_id: "M1".into(),
-                pack: PackSource::Given(run::default_sim_pack()),
+                pack: PackSource::Given(packbench::session::request::default_sim_pack()),
                 results: dir.path().to_path_buf(),
                 options: Default::default(),
             })
@@ -217,13 +218,17 @@ fn every_limit_stops_every_step_kind_it_applies_to() {
             let links = sim::build(&p.pack, &c.cfg, Arc::clone(&clock));
             let h = links.handle.clone();
             let r = rt
-                .block_on(run::execute_sim_links(
-                    &p,
-                    &c.cfg,
-                    clock,
-                    links,
-                    "max",
-                    StopHandle::new(),
+                .block_on(packbench::session::run(
+                    packbench::session::Session::new(
+                        &p,
+                        packbench::session::Bench::SimLinks {
+                            cfg: c.cfg.clone(),
+                            clock,
+                            links,
+                            speed_text: "max".into(),
+                        },
+                    )
+                    .with_stop(StopHandle::new()),
                 ))
                 .unwrap();
             let events = read_events(&r.run_dir.join("events.jsonl")).unwrap();

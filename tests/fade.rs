@@ -1,11 +1,10 @@
 //! Capacity fade, grading and the fleet view.
 
-use analysis::fit::{t_quantile, LinearFit};
-use packbench::demo;
 use analysis::fade::grade::{GradeInputs, Policy};
 use analysis::fade::{fleet, trend};
-use record::history;
+use analysis::fit::{t_quantile, LinearFit};
 use model::pack::Chemistry;
+use record::history;
 use std::path::Path;
 
 fn sig6(a: f64, b: f64) -> bool {
@@ -232,9 +231,9 @@ fn too_few_points_project_nothing_and_earlier_history_counts() {
 #[test]
 fn demo_fleet_projections_match_the_simulated_ageing() {
     let dir = tempfile::tempdir().unwrap();
-    let out = demo::run_demo(&dir.path().join("demo")).unwrap();
+    let out = packbench::cli::demo::run_demo(&dir.path().join("demo")).unwrap();
     assert_eq!(out.runs, 8 * 9 - 2);
-    for p in demo::scenario() {
+    for p in packbench::cli::demo::scenario() {
         let h = history::load(&out.results, p.id, None).unwrap();
         let fa = trend::analyze(&h, 80.0);
         let law = p.law.cycles_to(0.80);
@@ -291,7 +290,13 @@ fn demo_fleet_projections_match_the_simulated_ageing() {
     let csv = fleet::to_csv(&out.fleet).unwrap();
     assert_eq!(csv.lines().count(), 9);
     assert!(csv.lines().next().unwrap().starts_with("rank,pack_id,"));
-    let again = history::fleet(&out.results, demo::scenario_today(), 92, 80.0).unwrap();
+    let again = history::fleet(
+        &out.results,
+        packbench::cli::demo::scenario_today(),
+        92,
+        80.0,
+    )
+    .unwrap();
     assert_eq!(again, out.fleet);
 }
 
@@ -300,7 +305,10 @@ fn demo_fleet_projections_match_the_simulated_ageing() {
 #[tokio::test]
 async fn history_from_runs_counts_cycles_and_leaves_out_aborted_runs() {
     use engine::control::StopHandle;
-    use packbench::run::{self, PackSource, RunOptions, RunRequest, Speed};
+    use packbench::session::request::PackSource;
+    use packbench::session::request::RunOptions;
+    use packbench::session::request::RunRequest;
+    use packbench::session::request::Speed;
     use sim::SimConfig;
     let dir = tempfile::tempdir().unwrap();
     let mut discharged = Vec::new();
@@ -312,21 +320,23 @@ async fn history_from_runs_counts_cycles_and_leaves_out_aborted_runs() {
         let req = RunRequest {
             procedure: "procedures/capacity-check.toml".into(),
             pack_id: "H-1".into(),
-            pack: PackSource::Given(run::default_sim_pack()),
+            pack: PackSource::Given(packbench::session::request::default_sim_pack()),
             results: dir.path().to_path_buf(),
             options: RunOptions {
                 test_date: history::parse_date(day).unwrap(),
                 ..RunOptions::default()
             },
         };
-        let p = run::prepare(&req).unwrap();
+        let p = packbench::session::prepare::prepare(&req).unwrap();
         let mut cfg = SimConfig::default();
         if fault {
             cfg.faults.source_voltage_error_pct = 3.0;
         }
-        let r = run::execute_sim(&p, &cfg, Speed::Max, StopHandle::new())
-            .await
-            .unwrap();
+        let r = packbench::session::run(
+            packbench::session::Session::sim(&p, &cfg, Speed::Max).with_stop(StopHandle::new()),
+        )
+        .await
+        .unwrap();
         discharged.push(r.summary.steps.iter().map(|s| s.charge_out_ah).sum::<f64>());
     }
     let h = history::load(dir.path(), "H-1", None).unwrap();

@@ -321,7 +321,8 @@ fn hostile_csv_logs_get_located_errors_or_documented_readings() {
 fn no_setting_sent_is_outside_the_envelope() {
     use engine::clock::{Clock, SimClock};
     use engine::control::StopHandle;
-    use packbench::run::{self, PackSource, RunRequest};
+    use packbench::session::request::PackSource;
+    use packbench::session::request::RunRequest;
     use sim::{self, SimConfig};
     let rt = tokio::runtime::Builder::new_current_thread()
         .enable_all()
@@ -354,7 +355,7 @@ fn no_setting_sent_is_outside_the_envelope() {
         ),
     ] {
         let dir = tempfile::tempdir().unwrap();
-        let p = run::prepare(&RunRequest {
+        let p = packbench::session::prepare::prepare(&RunRequest {
             procedure: file.into(),
             pack_id: "E1".into(),
             pack: PackSource::Given(pack),
@@ -366,13 +367,17 @@ fn no_setting_sent_is_outside_the_envelope() {
         let clock: Arc<dyn Clock> = SimClock::new();
         let links = sim::build(&p.pack, &cfg, Arc::clone(&clock));
         let h = links.handle.clone();
-        rt.block_on(run::execute_sim_links(
-            &p,
-            &cfg,
-            clock,
-            links,
-            "max",
-            StopHandle::new(),
+        rt.block_on(packbench::session::run(
+            packbench::session::Session::new(
+                &p,
+                packbench::session::Bench::SimLinks {
+                    cfg: cfg.clone(),
+                    clock,
+                    links,
+                    speed_text: "max".into(),
+                },
+            )
+            .with_stop(StopHandle::new()),
         ))
         .unwrap();
         let env = &p.procedure.plan.envelope;

@@ -240,7 +240,7 @@ fn every_shipped_procedure_validates() {
 
 #[test]
 fn a_step_may_set_its_own_sampling_interval() {
-    let pack = packbench::run::default_sim_pack();
+    let pack = packbench::session::request::default_sim_pack();
     let p = model::procedure::load(
         std::path::Path::new("procedures/dcir-soc-sweep-li-ion.toml"),
         &pack,

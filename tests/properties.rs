@@ -5,9 +5,9 @@ use engine::event::EndKind;
 use model::pack::{Chemistry, PackSpec};
 use model::procedure::validate::plan_from_text;
 use model::procedure::StepKind;
-use sim::SimConfig;
 use model::units::{self, CurrentSpec, VoltageSpec};
 use proptest::prelude::*;
+use sim::SimConfig;
 use std::path::Path;
 
 /// A log: strictly increasing times, voltages, signed currents.
@@ -277,7 +277,7 @@ fn every_step_of_a_valid_plan_reaches_an_end() {
                 StepKind::Discharge { .. } => 1.0,
                 _ => 0.5,
             };
-            let f = packbench::dryrun::forecast(&alone, &cfg);
+            let f = packbench::session::forecast::forecast(&alone, &cfg);
             let end = f.steps.first().and_then(|s| s.end_kind);
             prop_assert!(
                 !matches!(end, None | Some(EndKind::Aborted) | Some(EndKind::Interrupted)),

@@ -3,7 +3,7 @@
 
 use engine::clock::{Clock, SimClock};
 use instrument::scpi::{parse_error_entry, Session};
-use packbench::run::default_sim_pack;
+use packbench::session::request::default_sim_pack;
 use sim::{self, SimConfig};
 use std::sync::Arc;
 use std::time::Duration;
@@ -143,10 +143,7 @@ struct LateOnce {
 }
 
 impl instrument::link::LineResponder for LateOnce {
-    fn respond(
-        &mut self,
-        line: &str,
-    ) -> Result<instrument::link::Response, std::io::Error> {
+    fn respond(&mut self, line: &str) -> Result<instrument::link::Response, std::io::Error> {
         use instrument::link::Response;
         self.n += 1;
         let reply = match line {
@@ -190,13 +187,8 @@ async fn a_late_reply_is_never_taken_for_the_next_query() {
 struct CrEcho;
 
 impl instrument::link::LineResponder for CrEcho {
-    fn respond(
-        &mut self,
-        line: &str,
-    ) -> Result<instrument::link::Response, std::io::Error> {
-        Ok(instrument::link::Response::Reply(format!(
-            "{line}-ok\r"
-        )))
+    fn respond(&mut self, line: &str) -> Result<instrument::link::Response, std::io::Error> {
+        Ok(instrument::link::Response::Reply(format!("{line}-ok\r")))
     }
 }
 

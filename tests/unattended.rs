@@ -8,7 +8,10 @@ use engine::control::StopHandle;
 use engine::event::Event;
 use engine::state::RunState;
 use model::pack::PackSpec;
-use packbench::run::{self, PackSource, Prepared, RunOptions, RunRequest};
+use packbench::session::request::PackSource;
+use packbench::session::request::Prepared;
+use packbench::session::request::RunOptions;
+use packbench::session::request::RunRequest;
 use record::read::read_events;
 use sim::{self, SimConfig};
 use std::path::{Path, PathBuf};
@@ -60,7 +63,7 @@ fn run_dirs(results: &Path, pack: &str) -> Vec<PathBuf> {
 }
 
 fn prepare(procedure: &Path, pack: PackSpec, results: &Path, options: RunOptions) -> Prepared {
-    run::prepare(&RunRequest {
+    packbench::session::prepare::prepare(&RunRequest {
         procedure: procedure.to_path_buf(),
         pack_id: "P1".into(),
         pack: PackSource::Given(pack),
@@ -459,7 +462,7 @@ fn a_run_killed_mid_discharge_resumes_to_within_1pct_of_an_uninterrupted_run() {
 fn past_cutoff(text: &str) -> (f64, f64) {
     let dir = tempfile::tempdir().unwrap();
     let proc_path = write(dir.path(), "p.toml", text);
-    let pack = run::default_sim_pack();
+    let pack = packbench::session::request::default_sim_pack();
     let p = prepare(&proc_path, pack, dir.path(), RunOptions::default());
     let cfg = SimConfig {
         pack: sim::config::PackConfig {
@@ -475,13 +478,17 @@ fn past_cutoff(text: &str) -> (f64, f64) {
     let cutoff = 30.0;
     handle.watch_below(cutoff);
     let r = rt()
-        .block_on(run::execute_sim_links(
-            &p,
-            &cfg,
-            c,
-            links,
-            "max",
-            StopHandle::new(),
+        .block_on(packbench::session::run(
+            packbench::session::Session::new(
+                &p,
+                packbench::session::Bench::SimLinks {
+                    cfg: cfg.clone(),
+                    clock: c,
+                    links,
+                    speed_text: "max".into(),
+                },
+            )
+            .with_stop(StopHandle::new()),
         ))
         .unwrap();
     assert_eq!(r.outcome.status, RunState::Completed);
@@ -576,16 +583,14 @@ fn zero_offsets_are_found_warned_and_corrected_when_asked() {
         let results = d.join(format!("r{correct}"));
         let p = prepare(
             &path,
-            run::default_sim_pack(),
+            packbench::session::request::default_sim_pack(),
             &results,
             RunOptions::default(),
         );
         let r = rt()
-            .block_on(run::execute_sim(
-                &p,
-                &cfg,
-                run::Speed::Max,
-                StopHandle::new(),
+            .block_on(packbench::session::run(
+                packbench::session::Session::sim(&p, &cfg, packbench::session::request::Speed::Max)
+                    .with_stop(StopHandle::new()),
             ))
             .unwrap();
         let pf = r.summary.preflight.clone().expect("preflight record");
@@ -645,7 +650,7 @@ name = "drain"
     let path = write(dir.path(), "drain.toml", text);
     let p = prepare(
         &path,
-        run::default_sim_pack(),
+        packbench::session::request::default_sim_pack(),
         dir.path(),
         RunOptions::default(),
     );
@@ -656,11 +661,9 @@ name = "drain"
     cfg.pack.standby_drain_a = 0.005;
     cfg.pack.initial_soc = 0.6;
     let r = rt()
-        .block_on(run::execute_sim(
-            &p,
-            &cfg,
-            run::Speed::Max,
-            StopHandle::new(),
+        .block_on(packbench::session::run(
+            packbench::session::Session::sim(&p, &cfg, packbench::session::request::Speed::Max)
+                .with_stop(StopHandle::new()),
         ))
         .unwrap();
     assert_eq!(r.outcome.status, RunState::Completed);
@@ -688,15 +691,18 @@ fn the_low_capacity_alarm_is_raised_and_the_run_goes_on() {
             ..RunOptions::default()
         };
         let results = dir.path().join(format!("r{pct}"));
-        let p = prepare(&path, run::default_sim_pack(), &results, opts);
+        let p = prepare(
+            &path,
+            packbench::session::request::default_sim_pack(),
+            &results,
+            opts,
+        );
         let mut cfg = SimConfig::default();
         cfg.pack.initial_soc = 1.0;
         let r = rt()
-            .block_on(run::execute_sim(
-                &p,
-                &cfg,
-                run::Speed::Max,
-                StopHandle::new(),
+            .block_on(packbench::session::run(
+                packbench::session::Session::sim(&p, &cfg, packbench::session::request::Speed::Max)
+                    .with_stop(StopHandle::new()),
             ))
             .unwrap();
         assert_eq!(r.outcome.status, RunState::Completed, "the run goes on");
@@ -715,14 +721,16 @@ fn a_second_ctrl_c_switches_every_instrument_off_on_fresh_links() {
     rt().block_on(async {
         let cfg = SimConfig::ideal();
         let clock: Arc<dyn Clock> = SimClock::new();
-        let links = sim::build(&run::default_sim_pack(), &cfg, clock);
+        let links = sim::build(
+            &packbench::session::request::default_sim_pack(),
+            &cfg,
+            clock,
+        );
         let handle = links.handle.clone();
         // Turn the load on through its running link.
         let mut load = instrument::Load::connect(
             links.load,
-            instrument::profile::Profile::builtin(
-                instrument::profile::ProfileRole::Load,
-            ),
+            instrument::profile::Profile::builtin(instrument::profile::ProfileRole::Load),
         )
         .await
         .unwrap();
@@ -731,7 +739,7 @@ fn a_second_ctrl_c_switches_every_instrument_off_on_fresh_links() {
             .unwrap();
         load.0.enable().await.unwrap();
         assert!(handle.load_input_on());
-        let em = run::Emergency::default();
+        let em = packbench::session::emergency::Emergency::default();
         let reopen = |r: &Arc<std::sync::Mutex<dyn instrument::link::LineResponder>>| {
             let r = Arc::clone(r);
             let f: instrument::scpi::Reopen = Arc::new(move || {

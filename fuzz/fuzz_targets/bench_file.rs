@@ -1,7 +1,7 @@
 //! Bench files: any text gives a bench or located errors, never a panic.
 #![no_main]
 use libfuzzer_sys::fuzz_target;
-use packbench::benchfile::BenchFile;
+use packbench::session::benchfile::BenchFile;
 use std::path::Path;
 
 fuzz_target!(|data: &[u8]| {

@@ -9,7 +9,7 @@ use std::sync::Arc;
 fuzz_target!(|data: &[u8]| {
     let text = String::from_utf8_lossy(data);
     let clock: Arc<dyn Clock> = SimClock::new();
-    let links = sim::build(&packbench::run::default_sim_pack(), &SimConfig::default(), clock);
+    let links = sim::build(&packbench::session::request::default_sim_pack(), &SimConfig::default(), clock);
     for (k, line) in text.split('\n').take(200).enumerate() {
         let r = if k % 2 == 0 { &links.source_responder } else { &links.load_responder };
         let mut g = match r.lock() {

@@ -14,9 +14,9 @@ pub mod pulse;
 pub mod resistance;
 pub mod stream;
 
+use correct::Correction;
 use model::pack::PackSpec;
 use model::sample::Sample;
-use correct::Correction;
 use pulse::PulseReading;
 use resistance::ResistanceReading;
 use serde::{Deserialize, Serialize};

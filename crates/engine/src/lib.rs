@@ -9,22 +9,22 @@ pub mod control;
 pub mod safety;
 pub mod step;
 
-/// The events the engine emits are the run record's events.
-pub use record::event;
 /// Run states and their transitions.
 pub use model::status as state;
 pub use model::truth::TruthStep;
+/// The events the engine emits are the run record's events.
+pub use record::event;
 pub use record::manifest::{Timing, LATE_S};
 
-use analysis::integrate::Integrator;
 use crate::clock::Clock;
+use analysis::integrate::Integrator;
+use control::StopHandle;
+use event::{EndKind, Event, Sink};
+use futures::FutureExt;
 use instrument::{ErrorKind, InstrumentError, Load, LoadSetting, Meter, Reading, Source};
 use model::procedure::{DischargeMode, EndCondition, Plan, PlanStep, StepKind};
 use model::sample::Sample;
 use model::truth::{GroundTruth, TruthCounters};
-use control::StopHandle;
-use event::{EndKind, Event, Sink};
-use futures::FutureExt;
 use serde::Serialize;
 use state::{RunState, Trigger};
 use std::panic::AssertUnwindSafe;

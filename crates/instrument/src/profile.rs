@@ -9,7 +9,8 @@ use std::path::Path;
 
 pub const GENERIC_SOURCE: &str = include_str!("../../../profiles/generic-scpi-source.toml");
 pub const GENERIC_LOAD: &str = include_str!("../../../profiles/generic-scpi-load.toml");
-pub const GENERIC_SOURCE_SINK: &str = include_str!("../../../profiles/generic-scpi-source-sink.toml");
+pub const GENERIC_SOURCE_SINK: &str =
+    include_str!("../../../profiles/generic-scpi-source-sink.toml");
 pub const GENERIC_METER: &str = include_str!("../../../profiles/generic-scpi-meter.toml");
 
 /// The built-in profiles by name.

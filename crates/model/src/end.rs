@@ -25,4 +25,3 @@ pub enum EndKind {
     /// The run was interrupted (Ctrl-C) in this step.
     Interrupted,
 }
-

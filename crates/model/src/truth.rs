@@ -25,4 +25,3 @@ pub struct TruthStep {
     pub charge_ah: f64,
     pub energy_wh: f64,
 }
-

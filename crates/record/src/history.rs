@@ -9,11 +9,11 @@
 //! A history line with an empty cycle cell has no count (NaN): it is left
 //! out of the fit against cycles and kept in the fits against time.
 
+use crate::{Summary, PACK_TOML, SUMMARY_JSON};
 pub use analysis::fade::history::{HistoryPoint, LeftOut, PackHistory};
+use chrono::NaiveDate;
 use model::location::{LocatedError, Location};
 use model::pack::PackSpec;
-use crate::{Summary, PACK_TOML, SUMMARY_JSON};
-use chrono::NaiveDate;
 use std::path::{Path, PathBuf};
 
 /// The file of earlier measurements a pack folder may hold.
@@ -308,8 +308,7 @@ pub fn capacity_curves(h: &PackHistory) -> Vec<(String, Vec<(f64, f64)>)> {
             continue;
         };
         let Some(cap) = s.capacity else { continue };
-        let Ok(log) = crate::read::read_samples(&dir.join(crate::SAMPLES_CSV))
-        else {
+        let Ok(log) = crate::read::read_samples(&dir.join(crate::SAMPLES_CSV)) else {
             continue;
         };
         let step: Vec<_> = log

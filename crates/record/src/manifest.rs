@@ -102,4 +102,3 @@ pub struct Timing {
 
 /// A sample is late when taken this long after its time, s.
 pub const LATE_S: f64 = 0.1;
-

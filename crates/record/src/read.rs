@@ -3,8 +3,8 @@
 //! the analysis needs.
 
 use super::{EVENTS_JSONL, SAMPLES_CSV};
-use analysis::StepInfo;
 use crate::event::Event;
+use analysis::StepInfo;
 use model::sample::Sample;
 use std::path::{Path, PathBuf};
 

@@ -7,9 +7,9 @@ use analysis::curves;
 use analysis::fade::fleet::Fleet;
 use analysis::fade::history::PackHistory;
 use analysis::fade::trend::FadeAnalysis;
-use record::Summary;
 use model::sample::Sample;
 use model::units::HumanDuration;
+use record::Summary;
 use std::fmt::Write;
 
 /// Most points per plotted series (thinned evenly).

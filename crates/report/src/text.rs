@@ -1,7 +1,7 @@
 //! The short human summary printed at the end of a run.
 
-use record::Summary;
 use model::units::HumanDuration;
+use record::Summary;
 use std::fmt::Write;
 
 pub fn summary(s: &Summary) -> String {

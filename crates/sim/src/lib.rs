@@ -11,11 +11,11 @@ pub mod server;
 
 pub use model::simconfig::{self as config, SimConfig};
 
+use bench::SimBench;
 use engine::clock::Clock;
 use instrument::link::{InMemoryLink, LineResponder, Link};
 use model::pack::PackSpec;
 use model::truth::{GroundTruth, TruthCounters};
-use bench::SimBench;
 use server::{SimInstrument, SimRole};
 use std::sync::{Arc, Mutex};
 

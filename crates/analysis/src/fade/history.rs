@@ -2,8 +2,8 @@
 //! date order and the runs left out. `record::history` gathers it from the
 //! results folder and a pack's `history.csv`.
 
-use model::pack::PackSpec;
 use chrono::NaiveDate;
+use model::pack::PackSpec;
 use serde::Serialize;
 use std::path::PathBuf;
 
@@ -58,4 +58,3 @@ impl PackHistory {
             .map(|r| (r, "first test"))
     }
 }
-

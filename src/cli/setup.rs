@@ -3,16 +3,17 @@
 //! and current without changing its state) and `sim serve` (the simulated
 //! instruments on pseudo-terminals or loopback TCP ports).
 
-use crate::cli::{pack_from_args, PackArgs};
+use crate::cli::args::pack_from_args;
+use crate::cli::args::PackArgs;
 use engine::clock::{Clock, PacedClock};
 use instrument::profile::Profile;
 use instrument::scpi::{self, Session};
 use instrument::transport::{self, LinkSpec};
-use crate::run;
-use sim::serve::{self, Endpoint, ServeOptions};
-use sim::server::SimRole;
+
 use anyhow::{anyhow, bail, Context};
 use clap::{Args, Subcommand};
+use sim::serve::{self, Endpoint, ServeOptions};
+use sim::server::SimRole;
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
@@ -235,8 +236,9 @@ fn cmd_serve(a: ServeArgs) -> anyhow::Result<i32> {
             a.speed
         );
     }
-    let pack = pack_from_args(&a.pack_args)?.unwrap_or_else(run::default_sim_pack);
-    let cfg = crate::cli::sim_config(a.sim_config.as_deref(), a.sim_ideal, &a.fault)?;
+    let pack =
+        pack_from_args(&a.pack_args)?.unwrap_or_else(crate::session::request::default_sim_pack);
+    let cfg = crate::cli::args::sim_config(a.sim_config.as_deref(), a.sim_ideal, &a.fault)?;
     if let Some(t) = &a.bench_timeout {
         model::units::duration(t).map_err(|e| anyhow!("--bench-timeout: {e}"))?;
     }

@@ -9,13 +9,13 @@ use analysis::integrate::Integrator;
 use analysis::FULL_START_TOLERANCE;
 use engine::clock::{Clock, SimClock};
 use engine::control::StopHandle;
-use record::event::{EndKind, Event, Sink};
 use engine::{Engine, Station};
 use instrument::{Load, Source};
 use model::procedure::{DischargeMode, EndCondition, Plan, ResultTag, StepKind};
 use model::sample::Sample;
 use model::simconfig::SimConfig;
 use model::units::HumanDuration;
+use record::event::{EndKind, Event, Sink};
 use serde::Serialize;
 use std::fmt;
 use std::sync::Arc;
@@ -271,7 +271,7 @@ pub async fn forecast_async(plan: &Plan, cfg: &SimConfig) -> Forecast {
     let mut sink = ForecastSink::default();
     let mut warnings = Vec::new();
     let ran = async {
-        let (sp, lp) = crate::run::sim_profiles();
+        let (sp, lp) = crate::session::links::sim_profiles();
         let source = Source::connect(links.source, sp).await?;
         let load = Load::connect(links.load, lp).await?;
         let mut station = Station::new(source, load);

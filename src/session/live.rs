@@ -18,10 +18,10 @@
 //!   when no estimate applies (a taper, a rest to settle).
 
 use analysis::integrate::Integrator;
-use record::event::{EndKind, Event, Sink};
 use model::procedure::{EndCondition, Plan, StepKind};
 use model::sample::Sample;
 use model::units::HumanDuration;
+use record::event::{EndKind, Event, Sink};
 use std::sync::{Arc, Mutex};
 
 /// What the display shows of one station.

@@ -7,14 +7,19 @@
 //!
 //! Everything here is invented for the demo.
 
-use engine::control::StopHandle;
+use crate::cli::exit::EXIT_OK;
+use crate::session::error::RunError;
+use crate::session::request::PackSource;
+use crate::session::request::RunOptions;
+use crate::session::request::RunRequest;
+use crate::session::request::Speed;
+use crate::session::{self, Session};
 use analysis::fade::{fleet, trend};
-use record::history;
-use model::pack::{Chemistry, PackSpec};
-use report::html;
-use crate::run::{self, PackSource, RunError, RunOptions, RunRequest, Speed};
-use model::simconfig::SimConfig;
 use chrono::{Days, NaiveDate};
+use model::pack::{Chemistry, PackSpec};
+use model::simconfig::SimConfig;
+use record::history;
+use report::html;
 use std::path::{Path, PathBuf};
 
 /// File that marks a folder as written by the demo (so a rerun may replace it).
@@ -81,7 +86,7 @@ pub struct DemoPack {
 fn li_ion(rated_resistance: f64) -> PackSpec {
     PackSpec {
         rated_resistance_mohm: Some(rated_resistance),
-        ..run::default_sim_pack()
+        ..crate::session::request::default_sim_pack()
     }
 }
 
@@ -268,7 +273,7 @@ fn run_pack(p: &DemoPack, results: &Path, seed: u64) -> Result<usize, DemoError>
                 ..RunOptions::default()
             },
         };
-        let prepared = run::prepare(&req)?;
+        let prepared = crate::session::prepare::prepare(&req)?;
         let mut cfg = SimConfig {
             seed: seed + u64::from(q),
             ..SimConfig::default()
@@ -278,12 +283,7 @@ fn run_pack(p: &DemoPack, results: &Path, seed: u64) -> Result<usize, DemoError>
         // Packs come back from hire part-charged.
         cfg.pack.initial_soc = 0.3 + 0.05 * f64::from((seed as u32 + q * 7) % 10);
         cfg.pack.ambient_c = 23.0 + f64::from(q % 3);
-        rt.block_on(run::execute_sim(
-            &prepared,
-            &cfg,
-            Speed::Max,
-            StopHandle::new(),
-        ))?;
+        rt.block_on(session::run(Session::sim(&prepared, &cfg, Speed::Max)))?;
         runs += 1;
     }
     Ok(runs)
@@ -370,4 +370,34 @@ pub fn write_pack_report(
     let html = html::pack_report(h, fa, &history::capacity_curves(h));
     std::fs::write(&path, html).map_err(io(&path))?;
     Ok(path)
+}
+
+#[derive(Debug, clap::Args)]
+pub struct DemoArgs {
+    /// Folder for the demo's results and reports.
+    #[arg(long, default_value = "demo")]
+    pub out: PathBuf,
+}
+
+/// `packbench demo`.
+pub fn cmd_demo(a: DemoArgs) -> anyhow::Result<i32> {
+    let t = std::time::Instant::now();
+    let d = crate::cli::demo::run_demo(&a.out)?;
+    print!("{}", report::text::fleet(&d.fleet));
+    println!(
+        "\nDemo: {} tests of {} packs on the simulated bench in {:.1} s.",
+        d.runs,
+        d.pack_reports.len(),
+        t.elapsed().as_secs_f64()
+    );
+    println!("Open the fleet report:   {}", d.fleet_report.display());
+    println!(
+        "Pack fade reports:       {}",
+        d.results.join("<pack>/fade.html").display()
+    );
+    println!(
+        "Run reports and grades:  {}",
+        d.results.join("<pack>/<run>/report.html").display()
+    );
+    Ok(EXIT_OK)
 }

@@ -36,20 +36,25 @@
 //!   its charge by itself); the resumed bench starts from that state, left
 //!   open-circuit for the gap.
 
+use crate::session::drive::RUN_LOCK;
+use crate::session::drive::SIM_STATE_JSON;
+use crate::session::error::RunError;
+use crate::session::links::SIMULATED;
+use crate::session::request::Prepared;
+use crate::session::request::RunOptions;
+use crate::session::request::RunReport;
+use crate::session::request::Speed;
+use crate::session::request::StationJob;
 use analysis::integrate::{spans_any, Integrator, Interruption};
-use record::event::{EndKind, Event};
-use model::status::RunState;
 use engine::{resume_continues, Carried, ResumePoint, RunOutcome, Timing};
 use model::procedure::{self, LoadedProcedure};
-use crate::run::{
-    self, Prepared, RunError, RunOptions, RunReport, Speed, StationJob, RUN_LOCK, SIMULATED,
-    SIM_STATE_JSON,
-};
-use record::manifest::{Manifest, ResumeRecord};
+use model::simconfig::SimConfig;
+use model::status::RunState;
+use record::event::{EndKind, Event};
 use record::import::{stream_log, LogFormat};
+use record::manifest::{Manifest, ResumeRecord};
 use record::read::read_events;
 use record::{EVENTS_JSONL, PACK_TOML, RUN_JSON, SAMPLES_CSV};
-use model::simconfig::SimConfig;
 use std::path::{Path, PathBuf};
 
 /// What a run folder says about where to go on.
@@ -74,7 +79,7 @@ pub struct ResumeSetup {
     /// The simulated bench's settings and pace, when the run is simulated.
     pub sim: Option<(SimConfig, Speed)>,
     /// The bench file and station of a real bench.
-    pub station: Option<(crate::benchfile::StationSpec, PathBuf)>,
+    pub station: Option<(crate::session::benchfile::StationSpec, PathBuf)>,
 }
 
 fn bad(msg: String) -> RunError {
@@ -99,7 +104,8 @@ fn process_alive(pid: i32) -> bool {
 
 /// Read a run's `run.json`.
 fn read_manifest(path: &Path) -> Result<Manifest, RunError> {
-    let text = std::fs::read_to_string(path).map_err(crate::run::input_file_err(path))?;
+    let text =
+        std::fs::read_to_string(path).map_err(crate::session::error::input_file_err(path))?;
     serde_json::from_str(&text).map_err(|e| {
         bad(format!(
             "{}:{}:{}: not a packbench run record: {e}",
@@ -114,7 +120,7 @@ fn read_manifest(path: &Path) -> Result<Manifest, RunError> {
 /// pack, that pack's latest run when it was run on this station and did
 /// not end on its own (`running` or `interrupted`). Reads records only.
 pub fn interrupted_runs(
-    bench: &crate::benchfile::BenchFile,
+    bench: &crate::session::benchfile::BenchFile,
     results: &Path,
 ) -> Result<Vec<(String, PathBuf)>, RunError> {
     let mut out = Vec::new();
@@ -184,7 +190,7 @@ pub fn prepare(
         .to_path_buf();
     let saved = pack_dir.join(PACK_TOML);
     let pack = if saved.exists() {
-        run::read_pack_file(&saved)?
+        crate::session::prepare::read_pack_file(&saved)?
     } else {
         let p = &manifest.pack;
         model::pack::PackSpec {
@@ -255,13 +261,13 @@ pub fn prepare(
                 )))
             }
         };
-        let bench = crate::benchfile::BenchFile::load(&file)?;
+        let bench = crate::session::benchfile::BenchFile::load(&file)?;
         let st = bench
             .station(manifest.bench.station.as_deref())
             .map_err(bad)?
             .clone();
         let (sp, lp) = st.profiles();
-        run::check_ranges(&prepared.procedure, sp, lp)?;
+        crate::session::prepare::check_ranges(&prepared.procedure, sp, lp)?;
         if st.is_simulated() {
             (Some(sim_bench()), Some((st, file)))
         } else {
@@ -415,9 +421,9 @@ pub fn find_point(dir: &Path, p: &Prepared, speed_factor: Option<f64>) -> Result
 /// go on, record.
 pub async fn execute(
     setup: ResumeSetup,
-    board: crate::live::Board,
+    board: crate::session::live::Board,
     stop: engine::control::StopHandle,
-    emergency: run::Emergency,
+    emergency: crate::session::emergency::Emergency,
 ) -> Result<RunReport, RunError> {
     let ResumeSetup {
         dir,
@@ -445,7 +451,9 @@ pub async fn execute(
                 timing: Timing::default(),
                 zero: Default::default(),
             };
-            return run::finish_record(&prepared, &dir, &run_id, manifest, outcome, None);
+            return crate::session::finish::finish_record(
+                &prepared, &dir, &run_id, manifest, outcome, None,
+            );
         }
         Found::GoOn(p) => p,
     };
@@ -480,7 +488,7 @@ pub async fn execute(
         speed: sim.as_ref().map(|(_, s)| *s).unwrap_or(Speed::Factor(1.0)),
         board,
     };
-    let rec = run::Recording {
+    let rec = crate::session::drive::Recording {
         dir: dir.clone(),
         run_id,
         manifest,
@@ -490,5 +498,11 @@ pub async fn execute(
     let kept = std::fs::read(dir.join(SIM_STATE_JSON))
         .ok()
         .and_then(|b| serde_json::from_slice::<sim::bench::PackState>(&b).ok());
-    run::run_resumed_job(&job, rec, sink, stop, emergency, kept, point.gap_s).await
+    let resumed = crate::session::Resumed {
+        rec,
+        sink,
+        kept,
+        gap_s: point.gap_s,
+    };
+    crate::session::run(job.session(stop, emergency, false, Some(resumed))).await
 }

@@ -3,17 +3,19 @@
 //! so the figures are identical), or any bench's CSV (steps found from the
 //! current when the log has no step column). Streams the log once.
 
+use super::error::RunError;
+use analysis::fade::grade::{GradeInputs, Policy};
 use analysis::integrate::Interruption;
 use analysis::pulse::is_jump;
 use analysis::{AnalysisOptions, Analyzer, CurveData};
-use record::event::Event;
-use analysis::fade::grade::{GradeInputs, Policy};
 use model::pack::PackSpec;
-use crate::run::{reference_resistance, RunError, SummaryContext};
+use record::event::Event;
+
+use chrono::NaiveDate;
+use model::sample::Sample;
 use record::import::{stream_log, LogFormat, ReadReport, Row};
 use record::read::{read_events, step_infos};
 use record::{PackSummary, Summary, EVENTS_JSONL, SAMPLES_CSV};
-use model::sample::Sample;
 use std::path::Path;
 
 /// Finds steps in a log without a step column: a new step where the
@@ -147,7 +149,7 @@ pub fn build_summary(
 
 /// What the events add to a summary: the preflight readings, resumes,
 /// alarms and warnings.
-fn add_event_records(s: &mut Summary, events: &[Event]) {
+pub fn add_event_records(s: &mut Summary, events: &[Event]) {
     for e in events {
         match e {
             Event::Preflight {
@@ -198,7 +200,7 @@ fn add_event_records(s: &mut Summary, events: &[Event]) {
 /// A capacity discharge that started far from the pack's temperature at
 /// rest before the run: the pack had not cooled (or warmed) to the room,
 /// and a temperature correction from that start misleads.
-fn warn_if_not_cooled(s: &mut Summary, events: &[Event]) {
+pub fn warn_if_not_cooled(s: &mut Summary, events: &[Event]) {
     let Some(c) = &s.capacity else { return };
     // The run's own reading before its first step (a resume reads the
     // pack again, warm from where it stopped).
@@ -218,7 +220,7 @@ fn warn_if_not_cooled(s: &mut Summary, events: &[Event]) {
 }
 
 /// Feed a log's rows to the analyzer, counting samples and span.
-struct Feed {
+pub struct Feed {
     n: usize,
     first: Option<f64>,
     last: f64,
@@ -244,7 +246,7 @@ impl Feed {
     }
 }
 
-fn note_partial_line(a: &mut analysis::Analysis, partial: bool, what: &str) {
+pub fn note_partial_line(a: &mut analysis::Analysis, partial: bool, what: &str) {
     if partial {
         a.warnings.push(format!(
             "the last line of {what} was incomplete and was left out"
@@ -411,6 +413,35 @@ pub fn summarize_foreign(
         None,
     );
     Ok((s, rep, curves))
+}
+
+/// What a summary needs besides the log.
+#[derive(Debug, Clone, Copy)]
+pub struct SummaryContext<'a> {
+    pub pack: &'a PackSpec,
+    pub pack_id: &'a str,
+    pub run_id: &'a str,
+    pub title: &'a str,
+    pub test_date: NaiveDate,
+    pub cycle_count: Option<f64>,
+    pub policy: &'a Policy,
+}
+
+/// The resistance growth is measured against: the rated resistance when
+/// the spec has one, else the first reading of an earlier completed run of
+/// the pack, else (first reading ever) this run's own.
+pub fn reference_resistance(pack_dir: &Path, ctx: &SummaryContext<'_>) -> Option<f64> {
+    if let Some(r) = ctx.pack.rated_resistance_mohm {
+        return Some(r);
+    }
+    let date = ctx.test_date.to_string();
+    let runs = record::history::run_summaries(pack_dir).ok()?;
+    runs.iter()
+        .filter(|(_, s)| {
+            s.status == "completed"
+                && (s.test_date.as_str(), s.run_id.as_str()) < (date.as_str(), ctx.run_id)
+        })
+        .find_map(|(_, s)| s.resistance.as_ref().map(|r| r.dcir_mohm))
 }
 
 #[cfg(test)]

@@ -1,19 +1,19 @@
 //! `packbench analyze`: the summary of a log after the fact — one of our
 //! run folders (identical to its `summary.json`) or any bench's CSV.
 
+use crate::cli::args::pack_from_args;
+use crate::cli::args::PackArgs;
+use crate::session::summary::ForeignLog;
+use crate::session::summary::SummaryContext;
 use analysis::correct::CorrectionPolicy;
-use analysis::{AnalysisOptions, CurveData};
-use crate::cli::{pack_from_args, PackArgs};
 use analysis::fade::grade::Policy;
-use crate::offline::{self, ForeignLog};
-use model::pack::{Chemistry, PackSpec};
-use report;
-use crate::run::SummaryContext;
-use record::import::{ColumnNames, CurrentSign, LogFormat, TimeUnit};
-use record::{PackSummary, Summary, RUN_JSON, SAMPLES_CSV};
-use model::units;
+use analysis::{AnalysisOptions, CurveData};
 use anyhow::{anyhow, bail, Context};
 use clap::Args;
+use model::pack::{Chemistry, PackSpec};
+use model::units;
+use record::import::{ColumnNames, CurrentSign, LogFormat, TimeUnit};
+use record::{PackSummary, Summary, RUN_JSON, SAMPLES_CSV};
 use std::io::Write;
 use std::path::{Path, PathBuf};
 
@@ -268,7 +268,9 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
             policy: &policy,
         };
         // The same path as the summary written at the end of the run.
-        return Ok(offline::summarize_run_with_curves(&dir, &ctx, None, opts)?);
+        return Ok(crate::session::summary::summarize_run_with_curves(
+            &dir, &ctx, None, opts,
+        )?);
     }
     let pack = pack_from_args(&a.pack_args)?.ok_or_else(|| {
         anyhow!("a log from another bench needs the pack spec: --chemistry, --series and --rated, or --pack-spec FILE")
@@ -305,7 +307,7 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
         test_date,
         policy: &policy,
     };
-    let (s, _, data) = offline::summarize_foreign(&log, opts)?;
+    let (s, _, data) = crate::session::summary::summarize_foreign(&log, opts)?;
     Ok((s, data))
 }
 

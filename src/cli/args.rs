@@ -1,0 +1,210 @@
+//! Arguments shared by several commands and their parsing.
+
+use crate::session::error::RunError;
+use crate::session::request::Speed;
+use chrono::NaiveDate;
+use clap::Args;
+use model::pack::{parse_rate, Chemistry, PackSpec};
+use model::simconfig::SimConfig;
+use model::units;
+use std::path::PathBuf;
+
+/// The pack under test, given on the command line or as a file.
+#[derive(Debug, Clone, Args)]
+pub struct PackArgs {
+    /// Chemistry: li-ion, lfp, lead-acid or nimh.
+    #[arg(long)]
+    pub chemistry: Option<String>,
+    /// Cells in series.
+    #[arg(long)]
+    pub series: Option<u32>,
+    /// Rated capacity, e.g. 14Ah or 2800mAh.
+    #[arg(long)]
+    pub rated: Option<String>,
+    /// Rated energy, e.g. 504Wh.
+    #[arg(long)]
+    pub rated_energy: Option<String>,
+    /// Rated discharge rate, e.g. 0.2C or 20h.
+    #[arg(long)]
+    pub rated_rate: Option<String>,
+    /// The maker's DC resistance of the new pack, e.g. 60mohm.
+    #[arg(long)]
+    pub rated_resistance: Option<String>,
+    /// A pack spec TOML file instead of the options above.
+    #[arg(long, conflicts_with_all = ["chemistry", "series", "rated", "rated_energy", "rated_rate", "rated_resistance"])]
+    pub pack_spec: Option<PathBuf>,
+}
+
+/// Build a pack spec from the options, if any were given.
+pub fn pack_from_args(a: &PackArgs) -> Result<Option<PackSpec>, RunError> {
+    if let Some(path) = &a.pack_spec {
+        return crate::session::prepare::read_pack_file(path).map(Some);
+    }
+    if a.chemistry.is_none() && a.series.is_none() && a.rated.is_none() {
+        if a.rated_energy.is_some() || a.rated_rate.is_some() || a.rated_resistance.is_some() {
+            return Err(RunError::Pack(
+                "--rated-energy, --rated-rate and --rated-resistance need --chemistry, --series and --rated".into(),
+            ));
+        }
+        return Ok(None);
+    }
+    let missing: Vec<&str> = [
+        ("--chemistry", a.chemistry.is_none()),
+        ("--series", a.series.is_none()),
+        ("--rated", a.rated.is_none()),
+    ]
+    .iter()
+    .filter(|(_, m)| *m)
+    .map(|(n, _)| *n)
+    .collect();
+    if !missing.is_empty() {
+        return Err(RunError::Pack(format!(
+            "a pack spec needs {}",
+            missing.join(", ")
+        )));
+    }
+    let chemistry: Chemistry = a
+        .chemistry
+        .as_deref()
+        .unwrap_or_default()
+        .parse()
+        .map_err(RunError::Pack)?;
+    let rated = units::capacity_ah(a.rated.as_deref().unwrap_or_default())
+        .map_err(|e| RunError::Pack(format!("--rated: {e}")))?;
+    let energy = a
+        .rated_energy
+        .as_deref()
+        .map(units::energy_wh)
+        .transpose()
+        .map_err(|e| RunError::Pack(format!("--rated-energy: {e}")))?;
+    let rate = a
+        .rated_rate
+        .as_deref()
+        .map(parse_rate)
+        .transpose()
+        .map_err(|e| RunError::Pack(format!("--rated-rate: {e}")))?;
+    let resistance = a
+        .rated_resistance
+        .as_deref()
+        .map(units::resistance_ohm)
+        .transpose()
+        .map_err(|e| RunError::Pack(format!("--rated-resistance: {e}")))?
+        .map(|r| r * 1000.0);
+    let spec = PackSpec {
+        rated_resistance_mohm: resistance,
+        chemistry,
+        series: a.series.unwrap_or(0),
+        rated_capacity_ah: rated,
+        rated_energy_wh: energy,
+        rated_rate_c: rate,
+    };
+    spec.check().map_err(RunError::Pack)?;
+    Ok(Some(spec))
+}
+
+/// The simulated bench's settings from `--sim-config`, `--sim-ideal` and
+/// `--fault` options.
+pub fn sim_config(
+    path: Option<&std::path::Path>,
+    ideal: bool,
+    faults: &[String],
+) -> Result<SimConfig, RunError> {
+    let mut cfg = match path {
+        Some(path) => {
+            let text = model::procedure::read_text(path).map_err(|source| RunError::InputFile {
+                path: path.to_path_buf(),
+                error: source,
+            })?;
+            SimConfig::from_toml(path, &text)?
+        }
+        None => SimConfig::default(),
+    };
+    if ideal {
+        cfg.ideal = true;
+    }
+    for f in faults {
+        cfg.faults.link.push(f.parse().map_err(RunError::Pack)?);
+    }
+    Ok(cfg)
+}
+
+pub fn parse_speed(s: &str) -> Result<Speed, RunError> {
+    if s.eq_ignore_ascii_case("max") {
+        return Ok(Speed::Max);
+    }
+    match s.parse::<f64>() {
+        Ok(f) if f.is_finite() && f > 0.0 && f <= 1e6 => Ok(Speed::Factor(f)),
+        _ => Err(RunError::Pack(format!(
+            "--speed '{s}': expected max or a number of bench seconds per second (1 = real time)"
+        ))),
+    }
+}
+
+/// How the live status is shown: nothing when quiet, redrawn on a
+/// terminal, else a line every `status_every`.
+pub fn display_mode(
+    quiet: bool,
+    status_every: &str,
+) -> Result<crate::session::live::DisplayMode, RunError> {
+    use std::io::IsTerminal;
+    if quiet {
+        return Ok(crate::session::live::DisplayMode::Quiet);
+    }
+    if std::io::stderr().is_terminal() {
+        return Ok(crate::session::live::DisplayMode::Terminal);
+    }
+    match units::duration(status_every) {
+        Ok(s) if s >= 0.1 => Ok(crate::session::live::DisplayMode::Lines(s)),
+        _ => Err(RunError::Pack(format!(
+            "--status-every '{status_every}': expected a duration of 0.1 s or more, e.g. 60s"
+        ))),
+    }
+}
+
+pub fn parse_date(s: &str) -> Result<NaiveDate, RunError> {
+    NaiveDate::parse_from_str(s.trim(), "%Y-%m-%d")
+        .map_err(|_| RunError::Pack(format!("'{s}' is not a date; expected YYYY-MM-DD")))
+}
+
+pub fn parse_threshold(s: &str) -> Result<f64, RunError> {
+    match units::parse(s) {
+        Ok(units::Quantity::Percent(p)) if p > 0.0 && p < 100.0 => Ok(p),
+        _ => Err(RunError::Pack(format!(
+            "threshold '{s}': expected a percentage such as 80%"
+        ))),
+    }
+}
+
+/// A test interval in whole days: `92d`, `13w` (weeks), or any duration of
+/// at least a day (`2160h`).
+pub fn interval_days(text: &str) -> Option<i64> {
+    let t = text.trim();
+    let weeks = ["weeks", "week", "wk", "w"]
+        .iter()
+        .find_map(|u| t.strip_suffix(u))
+        .and_then(|n| n.trim().parse::<f64>().ok());
+    let seconds = match weeks {
+        Some(w) => w * 7.0 * 86_400.0,
+        None => match units::parse(t) {
+            Ok(units::Quantity::Seconds(s)) => s,
+            _ => return None,
+        },
+    };
+    (seconds.is_finite() && seconds >= 86_400.0).then(|| (seconds / 86_400.0).round() as i64)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn test_intervals_in_days_or_weeks() {
+        assert_eq!(interval_days("92d"), Some(92));
+        assert_eq!(interval_days("13w"), Some(91));
+        assert_eq!(interval_days("13 weeks"), Some(91));
+        assert_eq!(interval_days("2160h"), Some(90));
+        assert_eq!(interval_days("12h"), None);
+        assert_eq!(interval_days("13W"), None, "watts are no interval");
+        assert_eq!(interval_days("soon"), None);
+    }
+}

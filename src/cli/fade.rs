@@ -1,0 +1,153 @@
+//! `packbench report`, `fade` and `fleet`: a pack's history and the fleet.
+
+use crate::cli::args::interval_days;
+use crate::cli::args::parse_date;
+use crate::cli::args::parse_threshold;
+use crate::cli::exit::EXIT_OK;
+use crate::session::error::RunError;
+use analysis::fade::{fleet, trend};
+use anyhow::Context;
+use clap::Args;
+use record::history;
+use std::path::PathBuf;
+
+#[derive(Debug, Args)]
+pub struct ReportArgs {
+    /// A run folder (results/<pack>/<run>).
+    pub run_dir: PathBuf,
+}
+
+#[derive(Debug, Args)]
+pub struct FadeArgs {
+    /// Pack id.
+    pub pack: String,
+    /// Results folder.
+    #[arg(long, default_value = "results")]
+    pub results: PathBuf,
+    /// End of life, % of rated capacity.
+    #[arg(long, default_value = "80%")]
+    pub threshold: String,
+    /// Earlier measurements: CSV with date,cycles,capacity_ah,resistance_mohm.
+    #[arg(long)]
+    pub history: Option<PathBuf>,
+    /// Print JSON instead of text.
+    #[arg(long)]
+    pub json: bool,
+    /// Where to write the HTML report (default results/<pack>/fade.html).
+    #[arg(long)]
+    pub html: Option<PathBuf>,
+    /// The date to judge a projected end of life against (default today, UTC).
+    #[arg(long)]
+    pub today: Option<String>,
+}
+
+#[derive(Debug, Args)]
+pub struct FleetArgs {
+    /// Results folder.
+    #[arg(default_value = "results")]
+    pub results: PathBuf,
+    /// End of life, % of rated capacity.
+    #[arg(long, default_value = "80%")]
+    pub threshold: String,
+    /// A test is overdue after this long: days or weeks, e.g. 92d or 13w.
+    #[arg(long, default_value = "92d")]
+    pub interval: String,
+    /// The date to judge overdue tests against (default: today, UTC).
+    #[arg(long)]
+    pub today: Option<String>,
+    /// Print CSV instead of a table.
+    #[arg(long, conflicts_with = "json")]
+    pub csv: bool,
+    /// Print JSON instead of a table.
+    #[arg(long)]
+    pub json: bool,
+    /// Also write the HTML fleet report here.
+    #[arg(long)]
+    pub html: Option<PathBuf>,
+}
+
+/// `packbench report`.
+pub fn cmd_report(a: ReportArgs) -> anyhow::Result<i32> {
+    let summary_path = a.run_dir.join(record::SUMMARY_JSON);
+    let text = std::fs::read_to_string(&summary_path)
+        .with_context(|| format!("reading {}", summary_path.display()))?;
+    let summary: record::Summary = serde_json::from_str(&text)
+        .with_context(|| format!("{} is not a packbench summary", summary_path.display()))?;
+    let log = record::read::read_samples(&a.run_dir.join(record::SAMPLES_CSV))?;
+    let out = a.run_dir.join(record::REPORT_HTML);
+    record::write::atomic_write(
+        &out,
+        report::html::run_report(&summary, &log.samples).as_bytes(),
+    )
+    .with_context(|| format!("writing {}", out.display()))?;
+    print!("{}", report::text::summary(&summary));
+    println!("  Report: {}", out.display());
+    Ok(EXIT_OK)
+}
+
+/// `packbench fade`.
+pub fn cmd_fade(a: FadeArgs) -> anyhow::Result<i32> {
+    let threshold = parse_threshold(&a.threshold)?;
+    let h = history::load(&a.results, &a.pack, a.history.as_deref())?;
+    let mut fa = trend::analyze(&h, threshold);
+    fa.flag_against(match &a.today {
+        Some(d) => parse_date(d)?,
+        None => chrono::Utc::now().date_naive(),
+    });
+    let out = a
+        .html
+        .clone()
+        .unwrap_or_else(|| a.results.join(&a.pack).join("fade.html"));
+    let html = report::html::pack_report(&h, &fa, &history::capacity_curves(&h));
+    std::fs::write(&out, html).with_context(|| format!("writing {}", out.display()))?;
+    if a.json {
+        #[derive(serde::Serialize)]
+        struct FadeJson<'a> {
+            history: &'a history::PackHistory,
+            fade: &'a trend::FadeAnalysis,
+        }
+        println!(
+            "{}",
+            serde_json::to_string_pretty(&FadeJson {
+                history: &h,
+                fade: &fa
+            })?
+        );
+    } else {
+        print!("{}", report::text::fade(&h, &fa));
+        println!("  Report: {}", out.display());
+    }
+    Ok(EXIT_OK)
+}
+
+/// `packbench fleet`.
+pub fn cmd_fleet(a: FleetArgs) -> anyhow::Result<i32> {
+    let threshold = parse_threshold(&a.threshold)?;
+    let interval = interval_days(&a.interval).ok_or_else(|| {
+        RunError::Pack(format!(
+            "--interval '{}': expected a duration of at least a day, in days or weeks, e.g. 92d or 13w",
+            a.interval
+        ))
+    })?;
+    let today = match &a.today {
+        Some(d) => parse_date(d)?,
+        None => chrono::Utc::now().date_naive(),
+    };
+    let f = history::fleet(&a.results, today, interval, threshold)?;
+    if let Some(path) = &a.html {
+        let mut hs = Vec::new();
+        for r in &f.rows {
+            hs.push(history::load(&a.results, &r.pack_id, None)?);
+        }
+        std::fs::write(path, report::html::fleet_report(&f, &hs, "Battery fleet"))
+            .with_context(|| format!("writing {}", path.display()))?;
+    }
+    if a.json {
+        println!("{}", serde_json::to_string_pretty(&f)?);
+    } else if a.csv {
+        print!("{}", fleet::to_csv(&f)?);
+    } else {
+        print!("{}", report::text::fleet(&f));
+    }
+    Ok(EXIT_OK)
+}

@@ -1,0 +1,118 @@
+//! The command line: the argument types of each command and one file per
+//! command. Exit codes live in [`exit`]. No TOML parsing and no SCPI here.
+
+pub mod analyze;
+pub mod args;
+pub mod check;
+pub mod demo;
+pub mod exit;
+pub mod fade;
+pub mod resume;
+pub mod run;
+pub mod setup;
+
+use crate::cli::check::cmd_check;
+use crate::cli::check::CheckArgs;
+use crate::cli::demo::cmd_demo;
+use crate::cli::demo::DemoArgs;
+use crate::cli::exit::EXIT_BAD_INPUT;
+use crate::cli::exit::EXIT_FAILURE;
+use crate::cli::exit::EXIT_OK;
+use crate::cli::fade::cmd_fade;
+use crate::cli::fade::cmd_fleet;
+use crate::cli::fade::cmd_report;
+use crate::cli::fade::FadeArgs;
+use crate::cli::fade::FleetArgs;
+use crate::cli::fade::ReportArgs;
+use crate::cli::resume::cmd_resume;
+use crate::cli::resume::ResumeArgs;
+use crate::cli::run::cmd_run;
+use crate::cli::run::RunArgs;
+use crate::session::error::RunError;
+use anyhow::{anyhow, Context};
+use clap::{Parser, Subcommand};
+use record::history;
+
+#[derive(Debug, Parser)]
+#[command(
+    name = "packbench",
+    version,
+    about = "Battery capacity test bench controller"
+)]
+pub struct Cli {
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Run a procedure on a pack and record it under the results folder.
+    Run(RunArgs),
+    /// Go on with an interrupted run (Ctrl-C, killed process, power cut) from its record.
+    Resume(ResumeArgs),
+    /// Validate a procedure for a pack, print the plan, and simulate it (dry run).
+    Check(CheckArgs),
+    /// Write (again) the HTML report of a run folder.
+    Report(ReportArgs),
+    /// Capacity fade of one pack across its tests, with the end-of-life projection.
+    Fade(FadeArgs),
+    /// Rank every pack under a results folder.
+    Fleet(FleetArgs),
+    /// Run the fictional rental-fleet demo on the simulated bench.
+    Demo(DemoArgs),
+    /// Analyse a log: one of our run folders, or any bench's CSV.
+    Analyze(crate::cli::analyze::AnalyzeArgs),
+    /// Peukert exponent from two capacity runs of a pack at different rates.
+    Peukert(crate::cli::analyze::PeukertArgs),
+    /// List the serial ports of this machine.
+    Ports,
+    /// Check an instrument's link and profile: identify, error queue, voltage, current.
+    Probe(crate::cli::setup::ProbeArgs),
+    /// The simulated bench as real endpoints.
+    Sim(crate::cli::setup::SimArgs),
+}
+
+/// Parse arguments, dispatch, return the exit code.
+pub fn main() -> i32 {
+    let cli = match Cli::try_parse() {
+        Ok(c) => c,
+        Err(e) => {
+            let _ = e.print();
+            return if e.use_stderr() {
+                EXIT_BAD_INPUT
+            } else {
+                EXIT_OK
+            };
+        }
+    };
+    let result = match cli.command {
+        Command::Run(a) => return cmd_run(a),
+        Command::Resume(a) => return cmd_resume(a),
+        Command::Check(a) => cmd_check(a).context("check failed"),
+        Command::Report(a) => cmd_report(a).context("report failed"),
+        Command::Fade(a) => cmd_fade(a).context("fade analysis failed"),
+        Command::Fleet(a) => cmd_fleet(a).context("fleet view failed"),
+        Command::Demo(a) => cmd_demo(a).context("demo failed"),
+        Command::Analyze(a) => crate::cli::analyze::cmd_analyze(a).context("analysis failed"),
+        Command::Peukert(a) => crate::cli::analyze::cmd_peukert(a).context("peukert failed"),
+        Command::Ports => crate::cli::setup::cmd_ports().context("listing ports failed"),
+        Command::Probe(a) => crate::cli::setup::cmd_probe(a).context("probe failed"),
+        Command::Sim(a) => crate::cli::setup::cmd_sim(a).context("sim failed"),
+    };
+    match result {
+        Ok(code) => code,
+        Err(e) => {
+            // A pack, run folder, log or history file that is missing or
+            // malformed is bad input, whatever the command.
+            let input = e.downcast_ref::<RunError>().is_some_and(RunError::is_input)
+                || e.downcast_ref::<history::HistoryError>().is_some()
+                || e.downcast_ref::<record::read::ReadError>().is_some();
+            eprintln!("error: {:#}", anyhow!(e));
+            if input {
+                EXIT_BAD_INPUT
+            } else {
+                EXIT_FAILURE
+            }
+        }
+    }
+}

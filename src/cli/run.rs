@@ -1,0 +1,484 @@
+//! `packbench run`: one test, or every station of a bench file at once.
+
+use crate::cli::args::display_mode;
+use crate::cli::args::pack_from_args;
+use crate::cli::args::parse_date;
+use crate::cli::args::parse_speed;
+use crate::cli::args::parse_threshold;
+use crate::cli::args::sim_config;
+use crate::cli::args::PackArgs;
+use crate::cli::exit::report_error;
+use crate::cli::exit::EXIT_FAILURE;
+use crate::cli::exit::EXIT_OK;
+use crate::cli::exit::EXIT_SECOND_INTERRUPT;
+use crate::session;
+use crate::session::error::RunError;
+use crate::session::request::PackSource;
+use crate::session::request::RunOptions;
+use crate::session::request::RunRequest;
+use crate::session::request::Speed;
+use analysis::fade::grade::Policy;
+use clap::Args;
+use engine::control::StopHandle;
+use std::path::PathBuf;
+
+#[derive(Debug, Args)]
+pub struct RunArgs {
+    /// Procedure file (TOML).
+    pub procedure: PathBuf,
+    /// Use the embedded simulated bench (the default without --bench).
+    #[arg(long, conflicts_with = "bench")]
+    pub sim: bool,
+    /// Bench file (TOML) binding the station's instruments to links and profiles.
+    #[arg(long)]
+    pub bench: Option<PathBuf>,
+    /// The station of the bench file to use (needed when it has several).
+    #[arg(long, requires = "bench")]
+    pub station: Option<String>,
+    /// Write the raw instrument traffic with timestamps to trace.log in the run folder.
+    #[arg(long)]
+    pub trace: bool,
+    /// Inject a link fault into the simulated bench: INSTRUMENT:KIND@TIME[:DELAY],
+    /// KIND one of no-reply, garbage, slow, disconnect, error, wrong-read-back.
+    #[arg(long)]
+    pub fault: Vec<String>,
+    /// Pack id: letters, digits, '-', '_', '.'; becomes the results folder.
+    /// With a bench file of several stations, each station names its pack.
+    #[arg(long)]
+    pub pack: Option<String>,
+    #[command(flatten)]
+    pub pack_args: PackArgs,
+    /// Results folder.
+    #[arg(long, default_value = "results")]
+    pub results: PathBuf,
+    /// Pace of the simulated bench: max, or bench seconds per second (1 = real
+    /// time). With --bench the default is real time; a factor is only for a
+    /// sped-up simulator served with `packbench sim serve --speed`.
+    #[arg(long, default_value = "max")]
+    pub speed: String,
+    /// Simulated bench settings (pack condition, meter errors, faults), TOML.
+    #[arg(long)]
+    pub sim_config: Option<PathBuf>,
+    /// Simulated instruments without measurement error.
+    #[arg(long)]
+    pub sim_ideal: bool,
+    /// No live status; print only the final summary line (one per station).
+    #[arg(long)]
+    pub quiet: bool,
+    /// Live status lines every so often when the output is not a terminal.
+    #[arg(long, default_value = "60s")]
+    pub status_every: String,
+    /// Raise a low-capacity alarm (the run goes on) when the capacity step
+    /// reaches its cutoff under this share of the rated capacity, e.g. 80%.
+    #[arg(long)]
+    pub alarm_below: Option<String>,
+    /// The day the test counts for, YYYY-MM-DD (default: today, UTC).
+    #[arg(long)]
+    pub test_date: Option<String>,
+    /// The pack's equivalent full cycles from its own counter, if known.
+    #[arg(long)]
+    pub cycle_count: Option<f64>,
+    /// Grading policy (TOML); default: the built-in policy.
+    #[arg(long)]
+    pub policy: Option<PathBuf>,
+}
+
+/// Everything `run` checks before it touches an instrument.
+pub fn prepare_run(a: &RunArgs) -> Result<Vec<crate::session::request::StationJob>, RunError> {
+    let speed = parse_speed(&a.speed)?;
+    let given = pack_from_args(&a.pack_args)?;
+    let mut options = RunOptions::default();
+    if let Some(d) = &a.test_date {
+        options.test_date = parse_date(d)?;
+    }
+    if let Some(c) = a.cycle_count {
+        if !(c.is_finite() && c >= 0.0) {
+            return Err(RunError::Pack(format!(
+                "--cycle-count {c}: expected a count of 0 or more"
+            )));
+        }
+        options.cycle_count = Some(c);
+    }
+    if let Some(path) = &a.policy {
+        let text = model::procedure::read_text(path).map_err(|source| RunError::InputFile {
+            path: path.clone(),
+            error: source,
+        })?;
+        options.policy = Policy::from_toml(path, &text)?;
+    }
+    if let Some(t) = &a.alarm_below {
+        options.alarm_below_pct = Some(parse_threshold(t).map_err(|_| {
+            RunError::Pack(format!(
+                "--alarm-below '{t}': expected a percentage of the rated capacity, e.g. 80%"
+            ))
+        })?);
+    }
+    options.trace = a.trace;
+    let cfg = sim_config(a.sim_config.as_deref(), a.sim_ideal, &a.fault)?;
+    let Some(path) = &a.bench else {
+        let pack_id = a
+            .pack
+            .clone()
+            .ok_or_else(|| RunError::Pack("--pack is needed: the pack's id".into()))?;
+        let req = RunRequest {
+            procedure: a.procedure.clone(),
+            pack_id: pack_id.clone(),
+            pack: match given {
+                Some(p) => PackSource::Given(p),
+                None => PackSource::Saved {
+                    allow_sim_default: true,
+                },
+            },
+            results: a.results.clone(),
+            options,
+        };
+        let prepared = crate::session::prepare::prepare(&req)?;
+        return Ok(vec![crate::session::request::StationJob {
+            name: "sim".into(),
+            board: crate::session::live::Board::new("sim", &pack_id),
+            prepared,
+            station: None,
+            cfg,
+            speed,
+        }]);
+    };
+    // A bench file: one station, or all of them at once. The bench file,
+    // every station's pack, procedure and profiles are checked before any
+    // link is opened.
+    let bench = crate::session::benchfile::BenchFile::load(path)?;
+    let stations: Vec<crate::session::benchfile::StationSpec> =
+        match (&a.station, bench.stations.len()) {
+            (Some(n), _) => vec![bench.station(Some(n)).map_err(RunError::Pack)?.clone()],
+            (None, 1) => vec![bench.stations[0].clone()],
+            (None, _) => bench.stations.clone(),
+        };
+    let several = stations.len() > 1;
+    if several && (a.pack.is_some() || given.is_some()) {
+        return Err(RunError::Pack(format!(
+            "{} has {} stations: each names its pack (pack = \"...\", pack_spec = \"...\"); --pack and the pack options are for one station (--station NAME)",
+            path.display(),
+            stations.len()
+        )));
+    }
+    let mut jobs = Vec::new();
+    for st in stations {
+        let pack_id = match (&a.pack, &st.pack_id) {
+            (Some(p), _) => p.clone(),
+            (None, Some(p)) => p.clone(),
+            (None, None) => {
+                return Err(RunError::Pack(format!(
+                    "station '{}' names no pack: give --pack or pack = \"...\" in {}",
+                    st.name,
+                    path.display()
+                )))
+            }
+        };
+        let pack = match (&given, &st.pack_spec) {
+            (Some(g), _) => PackSource::Given(g.clone()),
+            (None, Some(f)) => PackSource::Given(crate::session::prepare::read_pack_file(f)?),
+            (None, None) => PackSource::Saved {
+                allow_sim_default: st.is_simulated(),
+            },
+        };
+        let mut opts = options.clone();
+        opts.test_date = options.test_date;
+        let req = RunRequest {
+            procedure: st.procedure.clone().unwrap_or_else(|| a.procedure.clone()),
+            pack_id: pack_id.clone(),
+            pack,
+            results: a.results.clone(),
+            options: opts,
+        };
+        let prepared = crate::session::prepare::prepare(&req)?;
+        let (sp, lp) = st.profiles();
+        crate::session::prepare::check_ranges(&prepared.procedure, sp, lp)?;
+        let station_cfg = match &st.sim_config {
+            Some(f) => sim_config(Some(f), a.sim_ideal, &a.fault)?,
+            None => cfg.clone(),
+        };
+        if !st.is_simulated() && (a.sim_config.is_some() || a.sim_ideal || !a.fault.is_empty()) {
+            return Err(RunError::Pack(
+                "--sim-config, --sim-ideal and --fault are for the embedded simulated bench (links \"sim\"), not for real instruments".into(),
+            ));
+        }
+        let speed = match (speed, st.is_simulated()) {
+            (Speed::Max, false) => Speed::Factor(1.0),
+            (s, _) => s,
+        };
+        jobs.push(crate::session::request::StationJob {
+            name: st.name.clone(),
+            board: crate::session::live::Board::new(&st.name, &pack_id),
+            prepared,
+            station: Some((st, path.clone())),
+            cfg: station_cfg,
+            speed,
+        });
+    }
+    if several {
+        let mut seen = std::collections::HashSet::new();
+        for j in &jobs {
+            if !seen.insert(j.prepared.pack_dir.clone()) {
+                return Err(RunError::Pack(format!(
+                    "pack '{}' is on two stations at once",
+                    j.prepared.pack_id
+                )));
+            }
+        }
+    }
+    Ok(jobs)
+}
+
+/// `packbench run`: one station, or every station of a bench file at once
+/// (one task each, each with its own results folder and envelope).
+pub fn cmd_run(a: RunArgs) -> i32 {
+    let (jobs, mode) =
+        match prepare_run(&a).and_then(|j| Ok((j, display_mode(a.quiet, &a.status_every)?))) {
+            Ok(x) => x,
+            Err(e) => return report_error(&e),
+        };
+    for j in &jobs {
+        if let (Some(n), false) = (&j.prepared.pack_note, a.quiet) {
+            eprintln!("note: {}: {n}", j.name);
+        }
+        if j.speed != Speed::Max && j.station.as_ref().is_some_and(|(s, _)| !s.is_simulated()) {
+            if let Speed::Factor(f) = j.speed {
+                if f != 1.0 {
+                    eprintln!("note: pacing the bench at {f}x real time: only meaningful against a sped-up simulator");
+                }
+            }
+        }
+    }
+    let several = jobs.len() > 1;
+    let jobs = std::rc::Rc::new(jobs);
+    let boards = jobs.iter().map(|j| j.board.clone()).collect();
+    let tasks: Vec<StationTask> = (0..jobs.len())
+        .map(|k| {
+            let jobs = std::rc::Rc::clone(&jobs);
+            Box::new(move |stop, em| {
+                Box::pin(
+                    async move { session::run(jobs[k].session(stop, em, several, None)).await },
+                ) as StationFuture
+            }) as StationTask
+        })
+        .collect();
+    let Some(results) = run_stations(boards, mode, tasks) else {
+        return EXIT_FAILURE;
+    };
+    if !several {
+        return match results.into_iter().next() {
+            Some(Ok(r)) => {
+                print_result(&r, a.quiet);
+                r.exit_code()
+            }
+            Some(Err(e)) => report_error(&e),
+            None => EXIT_FAILURE,
+        };
+    }
+    let names: Vec<(String, String)> = jobs
+        .iter()
+        .map(|j| (j.name.clone(), j.prepared.pack_id.clone()))
+        .collect();
+    let (failed, aborted, interrupted) = station_end_lines(&names, &results);
+    if interrupted {
+        if let Some(b) = &a.bench {
+            println!(
+                "To go on with these stations: packbench resume --bench {} --results {}",
+                shell_word(&b.display().to_string()),
+                shell_word(&a.results.display().to_string())
+            );
+        }
+    }
+    several_exit(failed, aborted, interrupted)
+}
+
+/// One station's work, started on the shared thread with the stop handle
+/// and the last-resort switch-off.
+pub type StationFuture = std::pin::Pin<
+    Box<dyn std::future::Future<Output = Result<crate::session::request::RunReport, RunError>>>,
+>;
+
+pub type StationTask =
+    Box<dyn FnOnce(StopHandle, crate::session::emergency::Emergency) -> StationFuture>;
+
+/// Run stations at once, one task each on one thread, with Ctrl-C handled
+/// and their live boards shown; one result per task, in order. None when
+/// the runtime cannot start (said).
+pub fn run_stations(
+    boards: Vec<crate::session::live::Board>,
+    mode: crate::session::live::DisplayMode,
+    tasks: Vec<StationTask>,
+) -> Option<Vec<Result<crate::session::request::RunReport, RunError>>> {
+    let rt = match tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+    {
+        Ok(rt) => rt,
+        Err(e) => {
+            eprintln!("error: cannot start the runtime: {e}");
+            return None;
+        }
+    };
+    let stop = StopHandle::new();
+    let emergency = crate::session::emergency::Emergency::default();
+    let local = tokio::task::LocalSet::new();
+    Some(local.block_on(&rt, async {
+        spawn_interrupts(stop.clone(), emergency.clone());
+        let shown = tokio::task::spawn_local(crate::session::live::display(boards.clone(), mode));
+        let running: Vec<_> = tasks
+            .into_iter()
+            .map(|t| tokio::task::spawn_local(t(stop.clone(), emergency.clone())))
+            .collect();
+        let mut out = Vec::new();
+        for (t, board) in running.into_iter().zip(&boards) {
+            out.push(match t.await {
+                Ok(r) => r,
+                Err(e) => Err(RunError::Pack(format!("station task failed: {e}"))),
+            });
+            board.update(|l| {
+                if !l.is_final() {
+                    l.state = "failed".into();
+                }
+            });
+        }
+        let _ = shown.await;
+        out
+    }))
+}
+
+/// One end line per station (name, pack); whether any failed, aborted or
+/// was interrupted.
+pub fn station_end_lines(
+    names: &[(String, String)],
+    results: &[Result<crate::session::request::RunReport, RunError>],
+) -> (bool, bool, bool) {
+    let (mut failed, mut aborted, mut interrupted) = (false, false, false);
+    for ((name, pack), r) in names.iter().zip(results) {
+        match r {
+            Ok(r) => {
+                match r.exit_code() {
+                    0 => {}
+                    5 => interrupted = true,
+                    _ => aborted = true,
+                }
+                println!("{}", station_line(name, pack, r));
+            }
+            Err(e) => {
+                failed = true;
+                println!("{name:<12} {pack:<10} failed      {e}");
+            }
+        }
+    }
+    (failed, aborted, interrupted)
+}
+
+/// The exit code of several stations: 1 if any failed, else 3 if any
+/// aborted, else 5 if any was interrupted.
+pub fn several_exit(failed: bool, aborted: bool, interrupted: bool) -> i32 {
+    if failed {
+        EXIT_FAILURE
+    } else if aborted {
+        3
+    } else if interrupted {
+        5
+    } else {
+        EXIT_OK
+    }
+}
+
+/// The figures a run ends with, on one line: the capacity measured, the
+/// state of health (on the capacity at rated conditions) and the grade;
+/// else why it stopped.
+pub fn result_figures(s: &record::Summary) -> String {
+    let mut parts = Vec::new();
+    match &s.capacity {
+        Some(c) => {
+            parts.push(format!("{:.3}Ah", c.measured_ah));
+            if c.from_full_charge {
+                parts.push(format!("SOH {:.1}%", c.soh_pct));
+            } else {
+                parts.push("not from a full charge".into());
+            }
+        }
+        None => {
+            if let Some(r) = &s.stop_reason {
+                parts.push(r.clone());
+            }
+        }
+    }
+    if let Some(g) = &s.grade {
+        parts.push(format!("grade {}", g.label));
+    }
+    parts.join(" ")
+}
+
+/// One station's end line.
+pub fn station_line(name: &str, pack_id: &str, r: &crate::session::request::RunReport) -> String {
+    format!(
+        "{:<12} {:<10} {:<11} {} {}",
+        name,
+        pack_id,
+        r.summary.status,
+        result_figures(&r.summary),
+        r.run_dir.display()
+    )
+}
+
+/// Ctrl-C: the first stops every station safely (outputs off, confirmed,
+/// runs marked interrupted, summaries written); a second one sends the
+/// safe state once more on fresh links and quits at once.
+pub fn spawn_interrupts(stop: StopHandle, em: crate::session::emergency::Emergency) {
+    tokio::task::spawn_local(async move {
+        if tokio::signal::ctrl_c().await.is_err() {
+            return;
+        }
+        eprintln!("\nCtrl-C: stopping safely (outputs off, confirmed) ... press Ctrl-C again to quit at once");
+        stop.request_stop();
+        if tokio::signal::ctrl_c().await.is_ok() {
+            eprintln!("\nsecond Ctrl-C: one more switch-off on fresh links, then quitting");
+            for (who, sent) in em.all_off(std::time::Duration::from_millis(1500)).await {
+                eprintln!(
+                    "  {who}: {}",
+                    if sent {
+                        "off sent"
+                    } else {
+                        "NOT REACHED: switch it off by hand"
+                    }
+                );
+            }
+            std::process::exit(EXIT_SECOND_INTERRUPT);
+        }
+    });
+}
+
+pub fn print_result(r: &crate::session::request::RunReport, quiet: bool) {
+    if quiet {
+        println!(
+            "{} {} {}",
+            r.summary.status,
+            r.run_dir.display(),
+            result_figures(&r.summary)
+        );
+    } else {
+        print!("{}", report::text::summary(&r.summary));
+        println!("  Results: {}", r.run_dir.display());
+    }
+    if r.exit_code() == 5 {
+        println!(
+            "To go on with this run: packbench resume {}",
+            shell_word(&r.run_dir.display().to_string())
+        );
+    }
+}
+
+/// A path as one shell word (quoted when it holds anything but plain
+/// characters), so the printed command can be pasted as it is.
+pub fn shell_word(s: &str) -> String {
+    if !s.is_empty()
+        && s.chars()
+            .all(|c| c.is_ascii_alphanumeric() || "-_./:+@%=,".contains(c))
+    {
+        s.to_string()
+    } else {
+        format!("'{}'", s.replace('\'', "'\\''"))
+    }
+}

@@ -1,0 +1,359 @@
+//! Drive one station: create the run folder, connect, run the engine and
+//! hand over to the record.
+
+use crate::session::error::io_err;
+use crate::session::error::RunError;
+use crate::session::finish::finish_record;
+use crate::session::links::BenchLinks;
+use crate::session::links::BoundLink;
+use crate::session::links::SimRun;
+use crate::session::request::Prepared;
+use crate::session::request::RunReport;
+use engine::clock::Clock;
+use engine::control::StopHandle;
+use engine::{Engine, Station};
+use instrument::scpi::Trace;
+use instrument::{Load, Meter, Source};
+use model::truth::GroundTruth;
+use record::manifest::{
+    BenchRecord, InstrumentRecord, Manifest, ProcedureRecord, SimulationRecord, ToolInfo,
+};
+use record::write::{create_run_folder, write_json, RunLogSink};
+use record::{PackSummary, PACK_TOML, RUN_JSON};
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+
+pub fn utc_now() -> String {
+    chrono::Utc::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, true)
+}
+
+pub fn procedure_stem(p: &Path) -> String {
+    p.file_stem()
+        .and_then(|s| s.to_str())
+        .map(|s| {
+            s.chars()
+                .map(|c| {
+                    if c.is_ascii_alphanumeric() || c == '-' || c == '_' {
+                        c
+                    } else {
+                        '_'
+                    }
+                })
+                .collect()
+        })
+        .unwrap_or_else(|| "run".into())
+}
+
+/// The simulated pack's kept state in a run folder.
+pub const SIM_STATE_JSON: &str = "sim-pack.json";
+
+/// The process running a run folder (removed when the run is recorded).
+pub const RUN_LOCK: &str = "run.lock";
+
+/// Create the run folder, then drive. The run folder is created only
+/// here, after every check has passed.
+pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunReport, RunError> {
+    let Bound {
+        links,
+        clock,
+        truth,
+        sim,
+    } = bench;
+    let started = chrono::Utc::now();
+    // Sorted by the day the test counts for, then the wall-clock start.
+    let base_id = format!(
+        "{}-{}Z-{}",
+        p.options.test_date.format("%Y%m%d"),
+        started.format("%H%M%S"),
+        procedure_stem(&p.procedure.path)
+    );
+
+    if p.save_pack {
+        std::fs::create_dir_all(&p.pack_dir).map_err(io_err(&p.pack_dir))?;
+        let path = p.pack_dir.join(PACK_TOML);
+        record::write::atomic_write(&path, p.pack.to_toml().as_bytes()).map_err(io_err(&path))?;
+    }
+    let (run_id, dir) = create_run_folder(&p.pack_dir, &base_id).map_err(io_err(&p.pack_dir))?;
+    let manifest = Manifest {
+        tool: ToolInfo {
+            name: "packbench".into(),
+            version: env!("CARGO_PKG_VERSION").into(),
+        },
+        run_id: run_id.clone(),
+        pack_id: p.pack_id.clone(),
+        started_utc: utc_now(),
+        finished_utc: None,
+        test_date: p.options.test_date.to_string(),
+        cycle_count: p.options.cycle_count,
+        status: "running".into(),
+        stop_reason: None,
+        procedure: ProcedureRecord {
+            path: p.procedure.path.display().to_string(),
+            title: p.procedure.plan.title.clone(),
+            sha256: p.procedure.sha256.clone(),
+            text: p.procedure.text.clone(),
+        },
+        pack: PackSummary::from(&p.pack),
+        bench: BenchRecord {
+            kind: links.kind.clone(),
+            speed: links.speed.clone(),
+            speed_factor: match &sim {
+                Some(s) => s.speed_factor,
+                None if clock.is_simulated() => None,
+                None => Some(1.0),
+            },
+            bench_file: links
+                .hooks
+                .station
+                .as_ref()
+                .map(|(_, f)| f.display().to_string()),
+            station: links.hooks.station.as_ref().map(|(n, _)| n.clone()),
+        },
+        instruments: Vec::new(),
+        simulation: sim.as_ref().map(|s| SimulationRecord {
+            label: SIM_TRUTH_LABEL.into(),
+            config: s.config.clone(),
+            true_capacity_ah: s.true_capacity_ah,
+            steps: Vec::new(),
+        }),
+        timing: None,
+        alarm_below_pct: p.options.alarm_below_pct,
+        resumes: Vec::new(),
+    };
+    let sink = RunLogSink::create(&dir).map_err(io_err(&dir))?;
+    let rec = Recording {
+        dir,
+        run_id,
+        manifest,
+        resume: None,
+    };
+    let bench = Bound {
+        links,
+        clock,
+        truth,
+        sim,
+    };
+    drive(p, rec, sink, bench, stop).await
+}
+
+pub const SIM_TRUTH_LABEL: &str = "simulation truth: charge and energy the model integrated at the pack terminals (not a measurement)";
+
+/// A run folder being written.
+pub struct Recording {
+    pub dir: PathBuf,
+    pub run_id: String,
+    pub manifest: Manifest,
+    /// Where an interrupted run goes on.
+    pub resume: Option<engine::ResumePoint>,
+}
+
+/// Write the lock naming this process.
+pub fn write_lock(dir: &Path) -> Result<(), RunError> {
+    let path = dir.join(RUN_LOCK);
+    record::write::atomic_write(&path, format!("{}\n", std::process::id()).as_bytes())
+        .map_err(io_err(&path))
+}
+
+/// Connect to a station, run (or go on with) the plan, record the result.
+pub async fn drive(
+    p: &Prepared,
+    rec: Recording,
+    mut sink: RunLogSink,
+    bench: Bound,
+    stop: StopHandle,
+) -> Result<RunReport, RunError> {
+    let Bound {
+        mut links,
+        clock,
+        truth,
+        sim,
+    } = bench;
+    let Recording {
+        dir,
+        run_id,
+        mut manifest,
+        resume,
+    } = rec;
+    write_lock(&dir)?;
+    if let Some(s) = &sim {
+        // The simulated pack keeps its state beside the log: every 10
+        // bench seconds when paced; every 10 bench minutes at full speed,
+        // where a whole run takes a second and a file write costs as much
+        // as a hundred samples.
+        let every = if s.speed_factor.is_some() {
+            10.0
+        } else {
+            600.0
+        };
+        s.handle.keep_state(dir.join(SIM_STATE_JSON), every);
+    }
+    if p.options.trace {
+        let path = dir.join(TRACE_LOG);
+        let trace = Trace::create(&path).map_err(io_err(&path))?;
+        links.source.attach.trace = Some(trace.clone());
+        links.load.attach.trace = Some(trace.clone());
+        if let Some(m) = links.meter.as_mut() {
+            m.attach.trace = Some(trace);
+        }
+    }
+    if let Some(em) = &links.hooks.emergency {
+        let who = links
+            .hooks
+            .station
+            .as_ref()
+            .map(|(n, _)| format!("{n} "))
+            .unwrap_or_default();
+        for (role, b) in [("source", Some(&links.source)), ("load", Some(&links.load))]
+            .into_iter()
+            .chain([("meter", links.meter.as_ref())])
+        {
+            if let (Some(b), true) = (b, role != "meter") {
+                if let Some(r) = &b.attach.reopen {
+                    em.register(format!("{who}{role}"), Arc::clone(r), b.profile.clone());
+                }
+            }
+        }
+    }
+    let run_json = dir.join(RUN_JSON);
+    write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
+    let mut records = Vec::new();
+    let record = |role: &str, b: &BoundLink, idn: &str| InstrumentRecord {
+        role: role.into(),
+        link: b.text.clone(),
+        profile: b.profile.name.clone(),
+        idn: idn.to_string(),
+    };
+    let (src_rec, load_rec) = (
+        record("source", &links.source, ""),
+        record("load", &links.load, ""),
+    );
+    let board = links.hooks.board.clone();
+    let connected = async {
+        let source =
+            Source::connect_with(links.source.link, links.source.profile, links.source.attach)
+                .await?;
+        let load = Load::connect_with(links.load.link, links.load.profile, links.load.attach).await;
+        let load = match load {
+            Ok(l) => l,
+            Err(e) => {
+                let mut source = source;
+                let _ = source.0.make_safe().await;
+                return Err(e);
+            }
+        };
+        let meter = match links.meter {
+            Some(m) => {
+                let rec = record("meter", &m, "");
+                match Meter::connect_with(m.link, m.profile, m.attach).await {
+                    Ok(x) => Some((x, rec)),
+                    Err(e) => {
+                        let (mut source, mut load) = (source, load);
+                        let _ = load.0.make_safe().await;
+                        let _ = source.0.make_safe().await;
+                        return Err(e);
+                    }
+                }
+            }
+            None => None,
+        };
+        Ok((source, load, meter))
+    }
+    .await;
+    let (source, load, meter) = match connected {
+        Ok(x) => x,
+        Err(e) => {
+            manifest.status = "aborted".into();
+            manifest.stop_reason = Some(format!("could not connect: {e}"));
+            manifest.finished_utc = Some(utc_now());
+            write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
+            let _ = std::fs::remove_file(dir.join(RUN_LOCK));
+            if let Some(b) = &board {
+                b.update(|l| {
+                    l.state = "failed".into();
+                    l.alarms.push(format!("could not connect: {e}"));
+                });
+            }
+            return Err(RunError::Instrument(e));
+        }
+    };
+    if manifest.instruments.is_empty() {
+        records.push(InstrumentRecord {
+            idn: source.0.idn().to_string(),
+            ..src_rec
+        });
+        records.push(InstrumentRecord {
+            idn: load.0.idn().to_string(),
+            ..load_rec
+        });
+    }
+    let meter = meter.map(|(m, rec)| {
+        if manifest.instruments.is_empty() {
+            records.push(InstrumentRecord {
+                idn: m.0.idn().to_string(),
+                ..rec
+            });
+        }
+        m
+    });
+    if manifest.instruments.is_empty() {
+        manifest.instruments = records;
+    }
+    write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
+    let mut station = Station {
+        source,
+        load,
+        meter,
+        shared_link: links.shared,
+    };
+    let alarm_ah = p
+        .options
+        .alarm_below_pct
+        .map(|pct| pct / 100.0 * p.pack.rated_capacity_ah);
+    let outcome = {
+        let mut live;
+        let sink_ref: &mut dyn record::event::Sink = match &board {
+            Some(b) => {
+                live = crate::session::live::LiveSink {
+                    inner: &mut sink,
+                    board: b.clone(),
+                    est: crate::session::live::Estimator::new(&p.procedure.plan),
+                };
+                &mut live
+            }
+            None => &mut sink,
+        };
+        let mut engine = Engine::new(
+            &p.procedure.plan,
+            &mut station,
+            clock,
+            sink_ref,
+            truth,
+            stop,
+        )
+        .with_capacity_alarm(alarm_ah);
+        if let Some(r) = resume {
+            engine = engine.resume_from(r);
+        }
+        engine.run().await
+    };
+    sink.flush().map_err(io_err(&dir))?;
+    drop(sink);
+    // Reading the log back and writing the report takes a while on a long
+    // run: off the thread the other stations sample on.
+    let p = p.clone();
+    tokio::task::spawn_blocking(move || finish_record(&p, &dir, &run_id, manifest, outcome, sim))
+        .await
+        .map_err(|e| RunError::Pack(format!("writing the record failed: {e}")))?
+}
+
+/// The raw-traffic trace of a run (`run --trace`).
+pub const TRACE_LOG: &str = "trace.log";
+
+/// A station's links with its clock, and on the simulated bench its truth
+/// and record: everything [`drive`] needs besides the plan.
+pub struct Bound {
+    pub links: BenchLinks,
+    pub clock: Arc<dyn Clock>,
+    pub truth: Option<Arc<dyn GroundTruth>>,
+    pub sim: Option<SimRun>,
+}

@@ -1,0 +1,143 @@
+//! A session request as the command line or a test states it, and what a
+//! session reports back.
+
+use crate::session::benchfile::StationSpec;
+use crate::session::emergency::Emergency;
+use analysis::fade::grade::Policy;
+use chrono::NaiveDate;
+use engine::RunOutcome;
+use model::pack::{Chemistry, PackSpec};
+use model::procedure::LoadedProcedure;
+use model::status::RunState;
+use record::Summary;
+use sim::{self, SimConfig};
+use std::path::PathBuf;
+
+/// The pack the simulated bench has when none is given: a 36 V e-bike
+/// pack of the demo's fictional rental fleet (10S li-ion, 14 Ah).
+pub fn default_sim_pack() -> PackSpec {
+    PackSpec {
+        chemistry: Chemistry::LiIon,
+        series: 10,
+        rated_capacity_ah: 14.0,
+        rated_energy_wh: Some(504.0),
+        rated_rate_c: Some(0.2),
+        rated_resistance_mohm: None,
+    }
+}
+
+/// Where the pack spec comes from.
+#[derive(Debug, Clone)]
+pub enum PackSource {
+    /// Given on the command line or read from a spec file.
+    Given(PackSpec),
+    /// Whatever `results/<pack>/pack.toml` holds, else (on the simulated
+    /// bench only) the simulator's default pack.
+    Saved { allow_sim_default: bool },
+}
+
+/// A run request as the CLI or a test states it.
+#[derive(Debug, Clone)]
+pub struct RunRequest {
+    pub procedure: PathBuf,
+    pub pack_id: String,
+    pub pack: PackSource,
+    pub results: PathBuf,
+    pub options: RunOptions,
+}
+
+/// What a test records besides its measurements.
+#[derive(Debug, Clone, PartialEq)]
+pub struct RunOptions {
+    /// The day the test counts for (default: today, UTC).
+    pub test_date: NaiveDate,
+    /// The pack's equivalent full cycles from its own counter, if known.
+    pub cycle_count: Option<f64>,
+    /// The shop's grading policy.
+    pub policy: Policy,
+    /// Write the raw instrument traffic to `trace.log` in the run folder.
+    pub trace: bool,
+    /// Raise a low-capacity alarm (the run goes on) when the capacity step
+    /// reaches its cutoff under this % of the rated capacity.
+    pub alarm_below_pct: Option<f64>,
+}
+
+impl Default for RunOptions {
+    fn default() -> Self {
+        RunOptions {
+            test_date: chrono::Utc::now().date_naive(),
+            cycle_count: None,
+            policy: Policy::default_policy(),
+            trace: false,
+            alarm_below_pct: None,
+        }
+    }
+}
+
+/// What a caller attaches to a run besides its instruments.
+#[derive(Clone, Default)]
+pub struct Hooks {
+    /// The live status board of the run's station.
+    pub board: Option<crate::session::live::Board>,
+    /// Where the station's instruments are registered for a last
+    /// switch-off on fresh links (a second Ctrl-C).
+    pub emergency: Option<Emergency>,
+    /// The station's name in a bench file, and the file.
+    pub station: Option<(String, PathBuf)>,
+    /// Pace with the timer only (many stations on one thread).
+    pub coarse_clock: bool,
+}
+
+/// A request that has passed every check.
+#[derive(Debug, Clone)]
+pub struct Prepared {
+    pub procedure: LoadedProcedure,
+    pub pack_id: String,
+    pub pack: PackSpec,
+    pub pack_dir: PathBuf,
+    /// Write `pack.toml` (first test of this pack).
+    pub save_pack: bool,
+    /// A note for the operator about where the spec came from.
+    pub pack_note: Option<String>,
+    pub options: RunOptions,
+}
+
+/// How fast the simulated bench runs.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Speed {
+    /// As fast as the machine goes (simulation clock).
+    Max,
+    /// Paced: this many bench seconds per wall second (1 = real time).
+    Factor(f64),
+}
+
+/// The result of a run.
+#[derive(Debug, Clone)]
+pub struct RunReport {
+    pub run_dir: PathBuf,
+    pub summary: Summary,
+    pub outcome: RunOutcome,
+}
+
+impl RunReport {
+    /// Exit code: 0 completed, 3 aborted (safety stop or fault), 5 interrupted.
+    pub fn exit_code(&self) -> i32 {
+        match self.outcome.status {
+            RunState::Completed => 0,
+            RunState::Interrupted => 5,
+            _ => 3,
+        }
+    }
+}
+
+/// One station's run in a request: what to run, where, and its board.
+pub struct StationJob {
+    /// The station's name (the bench file's, or "sim").
+    pub name: String,
+    pub prepared: Prepared,
+    /// The bench-file station; none for the default simulated bench.
+    pub station: Option<(StationSpec, PathBuf)>,
+    pub cfg: SimConfig,
+    pub speed: Speed,
+    pub board: crate::session::live::Board,
+}
