@@ -181,8 +181,7 @@ fn main() {
         dev.last().copied().unwrap_or(0.0) * 1e3
     );
     // The same from the trace: the time each sample's first query left.
-    let trace = std::fs::read_to_string(report.run_dir.join(packbench::session::drive::TRACE_LOG))
-        .unwrap_or_default();
+    let trace = std::fs::read_to_string(report.run_dir.join(record::TRACE_LOG)).unwrap_or_default();
     let starts: Vec<f64> = trace
         .lines()
         .filter(|l| l.ends_with(&format!("load > {vi}")))

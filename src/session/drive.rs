@@ -15,17 +15,15 @@ use engine::{Engine, Station};
 use instrument::scpi::Trace;
 use instrument::{Load, Meter, Source};
 use model::truth::GroundTruth;
+use record::manifest::{utc_now, SIM_TRUTH_LABEL};
 use record::manifest::{
     BenchRecord, InstrumentRecord, Manifest, ProcedureRecord, SimulationRecord, ToolInfo,
 };
 use record::write::{create_run_folder, write_json, RunLogSink};
 use record::{PackSummary, PACK_TOML, RUN_JSON};
+use record::{RUN_LOCK, SIM_STATE_JSON, TRACE_LOG};
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
-
-pub fn utc_now() -> String {
-    chrono::Utc::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, true)
-}
 
 pub fn procedure_stem(p: &Path) -> String {
     p.file_stem()
@@ -43,12 +41,6 @@ pub fn procedure_stem(p: &Path) -> String {
         })
         .unwrap_or_else(|| "run".into())
 }
-
-/// The simulated pack's kept state in a run folder.
-pub const SIM_STATE_JSON: &str = "sim-pack.json";
-
-/// The process running a run folder (removed when the run is recorded).
-pub const RUN_LOCK: &str = "run.lock";
 
 /// Create the run folder, then drive. The run folder is created only
 /// here, after every check has passed.
@@ -135,8 +127,6 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
     };
     drive(p, rec, sink, bench, stop).await
 }
-
-pub const SIM_TRUTH_LABEL: &str = "simulation truth: charge and energy the model integrated at the pack terminals (not a measurement)";
 
 /// A run folder being written.
 pub struct Recording {
@@ -345,9 +335,6 @@ pub async fn drive(
         .await
         .map_err(|e| RunError::Pack(format!("writing the record failed: {e}")))?
 }
-
-/// The raw-traffic trace of a run (`run --trace`).
-pub const TRACE_LOG: &str = "trace.log";
 
 /// A station's links with its clock, and on the simulated bench its truth
 /// and record: everything [`drive`] needs besides the plan.

@@ -1,8 +1,5 @@
 //! Recording a stopped run: summary, report and final manifest.
 
-use crate::session::drive::utc_now;
-use crate::session::drive::RUN_LOCK;
-use crate::session::drive::SIM_TRUTH_LABEL;
 use crate::session::error::io_err;
 use crate::session::error::RunError;
 use crate::session::links::SimRun;
@@ -10,9 +7,12 @@ use crate::session::request::Prepared;
 use crate::session::request::RunReport;
 use crate::session::summary::SummaryContext;
 use engine::RunOutcome;
+use record::manifest::utc_now;
+use record::manifest::SIM_TRUTH_LABEL;
 use record::manifest::{Manifest, SimulationRecord};
 use record::read::{self};
 use record::write::write_json;
+use record::RUN_LOCK;
 use record::{Summary, REPORT_HTML, RUN_JSON, SUMMARY_JSON};
 use std::path::Path;
 

@@ -36,8 +36,6 @@
 //!   its charge by itself); the resumed bench starts from that state, left
 //!   open-circuit for the gap.
 
-use crate::session::drive::RUN_LOCK;
-use crate::session::drive::SIM_STATE_JSON;
 use crate::session::error::RunError;
 use crate::session::links::SIMULATED;
 use crate::session::request::Prepared;
@@ -54,6 +52,8 @@ use record::event::{EndKind, Event};
 use record::import::{stream_log, LogFormat};
 use record::manifest::{Manifest, ResumeRecord};
 use record::read::read_events;
+use record::RUN_LOCK;
+use record::SIM_STATE_JSON;
 use record::{EVENTS_JSONL, PACK_TOML, RUN_JSON, SAMPLES_CSV};
 use std::path::{Path, PathBuf};
 

@@ -32,6 +32,12 @@ pub const RUN_JSON: &str = "run.json";
 pub const SUMMARY_JSON: &str = "summary.json";
 pub const PACK_TOML: &str = "pack.toml";
 pub const REPORT_HTML: &str = "report.html";
+/// The simulated pack's kept state in a run folder.
+pub const SIM_STATE_JSON: &str = "sim-pack.json";
+/// The process running a run folder (removed when the run is recorded).
+pub const RUN_LOCK: &str = "run.lock";
+/// The raw-traffic trace of a run (`run --trace`).
+pub const TRACE_LOG: &str = "trace.log";
 
 /// The columns of `samples.csv`, in order.
 pub const CSV_COLUMNS: [&str; 6] = [

@@ -102,3 +102,10 @@ pub struct Timing {
 
 /// A sample is late when taken this long after its time, s.
 pub const LATE_S: f64 = 0.1;
+
+pub const SIM_TRUTH_LABEL: &str = "simulation truth: charge and energy the model integrated at the pack terminals (not a measurement)";
+
+/// A time stamp as the manifest writes it: UTC, RFC 3339, milliseconds.
+pub fn utc_now() -> String {
+    chrono::Utc::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, true)
+}

@@ -15,21 +15,7 @@ use std::fmt::Write;
 /// Most points per plotted series (thinned evenly).
 pub const MAX_POINTS: usize = 1500;
 
-/// Escape text for HTML.
-pub fn escape(s: &str) -> String {
-    let mut o = String::with_capacity(s.len());
-    for c in s.chars() {
-        match c {
-            '&' => o.push_str("&amp;"),
-            '<' => o.push_str("&lt;"),
-            '>' => o.push_str("&gt;"),
-            '"' => o.push_str("&quot;"),
-            '\'' => o.push_str("&#39;"),
-            c => o.push(c),
-        }
-    }
-    o
-}
+pub use crate::markup::escape;
 
 const STYLE: &str = r#"
 body { font-family: sans-serif; margin: 24px auto; max-width: 1000px; color: #222; }

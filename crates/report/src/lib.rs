@@ -2,5 +2,6 @@
 //! figure comes from the analysis or the fade module.
 
 pub mod html;
+pub mod markup;
 pub mod svg;
 pub mod text;

@@ -136,7 +136,7 @@ fn no_data(c: &Chart) -> String {
     format!(
         "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"{w}\" height=\"60\" role=\"img\"><text x=\"10\" y=\"35\" font-family=\"sans-serif\" font-size=\"14\">{t}: no data</text></svg>",
         w = c.width,
-        t = super::html::escape(&c.title)
+        t = crate::markup::escape(&c.title)
     )
 }
 

@@ -7,12 +7,11 @@
 //! record is half-written (they are written aside and renamed), and
 //! `packbench analyze` and `packbench resume` accept what is left.
 
+use crate::util::*;
 use record::import::{stream_log, LogFormat};
 use std::path::{Path, PathBuf};
 use std::process::{Command, Stdio};
 use std::time::{Duration, Instant};
-
-const BIN: &str = env!("CARGO_BIN_EXE_packbench");
 
 const PROCEDURE: &str = r#"title = "crash test: discharge, rest, charge"
 [envelope]
@@ -79,8 +78,22 @@ enum When {
     RecordWrite(Duration),
 }
 
+/// Where a kill landed, from what the run folder shows.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Landed {
+    /// Before the run folder existed.
+    BeforeFolder,
+    /// While the engine ran: no run-end event on disk.
+    MidRun,
+    /// After the run-end event, before the record was complete.
+    MidRecord,
+    /// After the run had completed.
+    AfterCompletion,
+}
+
 /// A small deterministic generator for the kill points.
 struct Lcg(u64);
+
 impl Lcg {
     fn next(&mut self) -> f64 {
         self.0 = self
@@ -100,8 +113,26 @@ fn sigkill_at_24_points_loses_nothing_and_leaves_a_usable_record() {
     // The uninterrupted run.
     let t = Instant::now();
     let reference = d.join("reference");
-    assert!(run_cmd(d, &reference).status().unwrap().success());
+    let mut child = run_cmd(d, &reference).spawn().unwrap();
+    // How long the record takes after the run-end event: the window the
+    // record-write kills aim at.
+    let mut ended_at = None;
+    let status = loop {
+        if ended_at.is_none()
+            && the_run_dir(&reference)
+                .and_then(|r| std::fs::read_to_string(r.join("events.jsonl")).ok())
+                .is_some_and(|s| s.contains("\"event\":\"run_end\""))
+        {
+            ended_at = Some(Instant::now());
+        }
+        if let Some(s) = child.try_wait().unwrap() {
+            break s;
+        }
+        std::hint::spin_loop();
+    };
+    assert!(status.success());
     let wall = t.elapsed();
+    let record_wall = ended_at.map_or(Duration::ZERO, |e| e.elapsed());
     let ref_dir = the_run_dir(&reference).unwrap();
     let ref_rows: Vec<String> = std::fs::read_to_string(ref_dir.join("samples.csv"))
         .unwrap()
@@ -109,9 +140,10 @@ fn sigkill_at_24_points_loses_nothing_and_leaves_a_usable_record() {
         .map(str::to_string)
         .collect();
     eprintln!(
-        "uninterrupted: {} rows in {:.2} s",
+        "uninterrupted: {} rows in {:.2} s, the record in {:.1} ms of it",
         ref_rows.len() - 1,
-        wall.as_secs_f64()
+        wall.as_secs_f64(),
+        record_wall.as_secs_f64() * 1e3
     );
 
     let mut rng = Lcg(0x5eed_1234);
@@ -126,11 +158,10 @@ fn sigkill_at_24_points_loses_nothing_and_leaves_a_usable_record() {
         ));
     }
     for _ in 0..6 {
-        points.push(When::RecordWrite(Duration::from_micros(
-            (rng.next() * 40_000.0) as u64,
-        )));
+        points.push(When::RecordWrite(record_wall.mul_f64(rng.next() * 0.7)));
     }
     let mut outcomes = Vec::new();
+    let mut landed = Vec::new();
     for (n, when) in points.iter().enumerate() {
         let results = d.join(format!("killed-{n}"));
         let mut child = run_cmd(d, &results).spawn().unwrap();
@@ -141,6 +172,7 @@ fn sigkill_at_24_points_loses_nothing_and_leaves_a_usable_record() {
                     if child.try_wait().unwrap().is_some() {
                         break;
                     }
+                    // The kill time itself (random on purpose), polled.
                     std::thread::sleep(Duration::from_micros(200));
                 }
             }
@@ -177,16 +209,38 @@ fn sigkill_at_24_points_loses_nothing_and_leaves_a_usable_record() {
             outcomes.push(format!(
                 "{n:>2} {when:?}: killed before the run folder existed"
             ));
+            landed.push(Landed::BeforeFolder);
             continue;
         };
-        outcomes.push(check(n, when, &rdir, &ref_rows));
+        let (line, at) = check(n, when, &rdir, &ref_rows);
+        outcomes.push(line);
+        landed.push(at);
     }
     eprintln!("{}", outcomes.join("\n"));
-    assert_eq!(points.len(), 24);
+    // The kills must test what they are for: most land while the engine
+    // runs (12 random times, most inside the run; 6 at step starts) and
+    // enough while the record is written (6 aimed inside the first 70 %
+    // of the time the uninterrupted run's record took).
+    let count = |l: Landed| landed.iter().filter(|x| **x == l).count();
+    let (mid_run, mid_record) = (count(Landed::MidRun), count(Landed::MidRecord));
+    eprintln!(
+        "landed: {mid_run} mid-run, {mid_record} mid-record, {} before the folder, {} after completion",
+        count(Landed::BeforeFolder),
+        count(Landed::AfterCompletion)
+    );
+    assert!(mid_run >= 12, "only {mid_run} kills landed mid-run");
+    assert!(mid_record >= 4, "only {mid_record} kills landed mid-record");
+    // Every kill aimed at a step start landed while the engine ran.
+    for (w, l) in points.iter().zip(&landed) {
+        if let When::StepStart(..) = w {
+            assert_eq!(*l, Landed::MidRun, "{w:?}");
+        }
+    }
 }
 
-/// Everything a killed run's folder must satisfy; returns a line for the log.
-fn check(n: usize, when: &When, rdir: &Path, ref_rows: &[String]) -> String {
+/// Everything a killed run's folder must satisfy; returns a line for the
+/// log and where the kill landed.
+fn check(n: usize, when: &When, rdir: &Path, ref_rows: &[String]) -> (String, Landed) {
     let text = std::fs::read(rdir.join("samples.csv")).unwrap_or_default();
     let text = String::from_utf8(text).expect("the log is UTF-8");
     let complete = match text.rfind('\n') {
@@ -245,6 +299,7 @@ fn check(n: usize, when: &When, rdir: &Path, ref_rows: &[String]) -> String {
                 .unwrap_or_else(|e| panic!("kill {n}: {name} is half-written: {e}"));
         }
     }
+    let ended = events.contains("\"event\":\"run_end\"");
     let status = std::fs::read_to_string(rdir.join("run.json"))
         .ok()
         .and_then(|s| serde_json::from_str::<serde_json::Value>(&s).ok())
@@ -296,7 +351,15 @@ fn check(n: usize, when: &When, rdir: &Path, ref_rows: &[String]) -> String {
         }
         other => panic!("kill {n}: status {other}"),
     };
-    format!(
-        "{n:>2} {when:?}: {read} rows, last event at {last_event_t:.0} s, status {status}, {resumed}"
+    let at = match (ended, status.as_str()) {
+        (_, "completed") => Landed::AfterCompletion,
+        (true, _) => Landed::MidRecord,
+        (false, _) => Landed::MidRun,
+    };
+    (
+        format!(
+            "{n:>2} {when:?}: {read} rows, last event at {last_event_t:.0} s, status {status}, {resumed}, {at:?}"
+        ),
+        at,
     )
 }

@@ -6,33 +6,10 @@
 //! last line without its newline in a foreign log, unknown cycle counts in
 //! a pack's history.
 
+use crate::util::*;
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output, Stdio};
-use std::time::{Duration, Instant};
-
-const BIN: &str = env!("CARGO_BIN_EXE_packbench");
-
-fn write(dir: &Path, name: &str, text: &str) -> PathBuf {
-    let p = dir.join(name);
-    std::fs::write(&p, text).unwrap();
-    p
-}
-
-fn json(path: &Path) -> serde_json::Value {
-    serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap()
-}
-
-fn packbench(dir: &Path, args: &[&str]) -> Output {
-    Command::new(BIN)
-        .args(args)
-        .current_dir(dir)
-        .output()
-        .expect("run packbench")
-}
-
-fn text(b: &[u8]) -> String {
-    String::from_utf8_lossy(b).into_owned()
-}
+use std::process::{Command, Stdio};
+use std::time::Duration;
 
 /// The one run folder under a pack folder.
 fn run_dir(pack_dir: &Path) -> PathBuf {
@@ -43,19 +20,6 @@ fn run_dir(pack_dir: &Path) -> PathBuf {
         .collect();
     assert_eq!(d.len(), 1, "{d:?}");
     d.remove(0)
-}
-
-/// Wait until `path` holds `needle` (a state the run writes), at most
-/// `limit`.
-fn wait_for(path: &Path, needle: &str, limit: Duration) -> bool {
-    let t = Instant::now();
-    while t.elapsed() < limit {
-        if std::fs::read_to_string(path).is_ok_and(|s| s.contains(needle)) {
-            return true;
-        }
-        std::thread::sleep(Duration::from_millis(5));
-    }
-    false
 }
 
 /// A short rest, then a 2C capacity discharge to 3.0 V/cell (the simulated
@@ -92,7 +56,7 @@ fn a_resumed_run_never_counts_charge_across_the_outage() {
     write(d, "discharge.toml", FAST_DISCHARGE);
     write(d, "full.toml", "[pack]\ninitial_soc = 1.0\n");
     let whole = d.join("whole");
-    let out = packbench(
+    let out = packbench_in(
         d,
         &[
             "run",
@@ -182,34 +146,30 @@ fn interrupt_and_resume(
         ),
         "case {k}: no pack folder"
     );
-    let t = Instant::now();
-    let rdir = loop {
-        if let Some(p) = std::fs::read_dir(&pack_dir).ok().and_then(|it| {
-            it.filter_map(|e| e.ok().map(|e| e.path()))
-                .find(|p| p.is_dir())
-        }) {
-            break p;
-        }
-        assert!(
-            t.elapsed() < Duration::from_secs(20),
-            "case {k}: no run folder"
-        );
-        std::thread::sleep(Duration::from_millis(5));
-    };
+    let rdir = wait_run_dir(&pack_dir, Duration::from_secs(20))
+        .unwrap_or_else(|| panic!("case {k}: no run folder"));
+    let events = rdir.join("events.jsonl");
     assert!(
-        wait_for(
-            &rdir.join("events.jsonl"),
-            "\"kind\":\"discharge\"",
-            Duration::from_secs(20)
-        ),
+        wait_for(&events, "\"kind\":\"discharge\"", Duration::from_secs(20)),
         "case {k}: the discharge never started"
     );
-    // The timing varied on purpose: where in the discharge, how long down.
-    std::thread::sleep(Duration::from_millis(into_ms));
+    // Where in the discharge varies on purpose: `into_ms` wall ms at 1000x
+    // is as many bench seconds into the step; wait until the log has them.
+    let t0 = event_t(&events, "\"kind\":\"discharge\"").expect("the discharge's start");
+    assert!(
+        wait_for_sample(
+            &rdir.join("samples.csv"),
+            t0 + into_ms as f64,
+            Duration::from_secs(20)
+        ),
+        "case {k}: the discharge never reached {into_ms} s"
+    );
     // SAFETY: kill(2) on our own child's pid.
     assert_eq!(unsafe { libc::kill(child.id() as i32, libc::SIGINT) }, 0);
     let status = child.wait().unwrap();
     assert_eq!(status.code(), Some(5), "case {k}: interrupted");
+    // The outage itself: the pack stays down this long (not a wait for a
+    // state).
     std::thread::sleep(Duration::from_millis(down_ms));
     let out = Command::new(BIN)
         .args(["resume", "--speed", "1000", "--quiet"])
@@ -311,14 +271,14 @@ fn a_capacity_step_that_did_not_start_full_grades_nothing() {
     let dir = tempfile::tempdir().unwrap();
     let d = dir.path();
     write(d, "half.toml", NOT_FROM_FULL);
-    let check = packbench(d, &["check", "half.toml", "--no-dry-run"]);
+    let check = packbench_in(d, &["check", "half.toml", "--no-dry-run"]);
     assert_eq!(check.status.code(), Some(0));
     let said = text(&check.stdout);
     assert!(
         said.contains("step 1: the capacity step does not follow a full charge"),
         "{said}"
     );
-    let out = packbench(
+    let out = packbench_in(
         d,
         &[
             "run",
@@ -349,7 +309,7 @@ fn a_capacity_step_that_did_not_start_full_grades_nothing() {
         .to_string()
         .contains("did not start from a full charge"));
     // Its history has no point from it: the run is listed as left out.
-    let fade = packbench(d, &["fade", "HALF-1", "--results", "results", "--json"]);
+    let fade = packbench_in(d, &["fade", "HALF-1", "--results", "results", "--json"]);
     assert_eq!(fade.status.code(), Some(0), "{}", text(&fade.stderr));
     let f: serde_json::Value = serde_json::from_slice(&fade.stdout).unwrap();
     assert!(f["history"]["points"].as_array().unwrap().is_empty());
@@ -372,7 +332,7 @@ fn the_lead_acid_check_corrects_from_a_rested_pack() {
     let dir = tempfile::tempdir().unwrap();
     let d = dir.path();
     let proc_path = Path::new(env!("CARGO_MANIFEST_DIR")).join("procedures/lead-acid-c20.toml");
-    let out = packbench(
+    let out = packbench_in(
         d,
         &[
             "run",
@@ -457,7 +417,7 @@ fn a_capacity_discharge_started_warm_is_flagged() {
     let short = shipped.replace("[\"dT/dt < 0.5K/h\", \"time > 12h\"]", "[\"time > 10min\"]");
     assert_ne!(short, shipped);
     write(d, "short.toml", &short);
-    let out = packbench(
+    let out = packbench_in(
         d,
         &[
             "run",
@@ -492,7 +452,7 @@ fn a_first_resistance_reading_is_no_growth() {
     let d = dir.path();
     let proc_path =
         Path::new(env!("CARGO_MANIFEST_DIR")).join("procedures/quarterly-check-li-ion.toml");
-    let out = packbench(
+    let out = packbench_in(
         d,
         &[
             "run",
@@ -517,7 +477,7 @@ fn a_first_resistance_reading_is_no_growth() {
     );
     assert!(!reasons.contains("resistance growth 0.0"), "{reasons}");
     // The second test has the first as its baseline.
-    let out = packbench(
+    let out = packbench_in(
         d,
         &[
             "run",
@@ -547,7 +507,7 @@ fn a_first_resistance_reading_is_no_growth() {
 
 fn analyze_foreign(d: &Path, name: &str, body: &str) -> serde_json::Value {
     let p = write(d, name, body);
-    let out = packbench(
+    let out = packbench_in(
         d,
         &[
             "analyze",
@@ -625,7 +585,7 @@ fn unknown_cycle_counts_stay_unknown() {
         "earlier.csv",
         "date,cycles,capacity_ah\n2024-01-10,100,13.6\n2024-04-10,,13.45\n2024-07-10,300,13.2\n2024-10-10,,13.05\n2025-01-10,500,12.8\n",
     );
-    let out = packbench(
+    let out = packbench_in(
         d,
         &[
             "fade",
@@ -655,7 +615,7 @@ fn unknown_cycle_counts_stay_unknown() {
     assert!(f["fade"]["notes"]
         .to_string()
         .contains("2 measurement(s) without a cycle count"));
-    let txt = packbench(
+    let txt = packbench_in(
         d,
         &[
             "fade",

@@ -2,10 +2,11 @@
 //! the SCPI session and the simulated instruments; results are checked
 //! against the simulator's ground truth and its instruments' state.
 
+use crate::util::*;
 use engine::clock::{Clock, SimClock};
 use engine::control::StopHandle;
 use engine::state::RunState;
-use model::pack::{Chemistry, PackSpec};
+use model::pack::PackSpec;
 use packbench::session::request::PackSource;
 use packbench::session::request::Prepared;
 use packbench::session::request::RunReport;
@@ -48,14 +49,6 @@ async fn run_sim(p: &Prepared, cfg: &SimConfig, stop: StopHandle) -> (RunReport,
     (report, handle)
 }
 
-fn li_ion() -> PackSpec {
-    packbench::session::request::default_sim_pack()
-}
-
-fn rel(a: f64, b: f64) -> f64 {
-    (a - b).abs() / b.abs()
-}
-
 /// Measured per-step charge and energy against the simulation truth.
 fn worst_discharge_error(r: &RunReport) -> f64 {
     let mut worst: f64 = 0.0;
@@ -71,7 +64,7 @@ fn worst_discharge_error(r: &RunReport) -> f64 {
 #[tokio::test]
 async fn ideal_instruments_measure_what_really_flowed() {
     let dir = tempfile::tempdir().unwrap();
-    let p = prepare("procedures/capacity-check.toml", li_ion(), dir.path());
+    let p = prepare("procedures/capacity-check.toml", sim_pack(), dir.path());
     let (r, _) = run_sim(&p, &SimConfig::ideal(), StopHandle::new()).await;
     assert_eq!(r.outcome.status, RunState::Completed);
     let err = worst_discharge_error(&r);
@@ -94,7 +87,7 @@ async fn ideal_instruments_measure_what_really_flowed() {
 #[tokio::test]
 async fn default_measurement_error_stays_within_one_percent() {
     let dir = tempfile::tempdir().unwrap();
-    let p = prepare("procedures/capacity-check.toml", li_ion(), dir.path());
+    let p = prepare("procedures/capacity-check.toml", sim_pack(), dir.path());
     let (r, h) = run_sim(&p, &SimConfig::default(), StopHandle::new()).await;
     assert_eq!(r.outcome.status, RunState::Completed);
     let err = worst_discharge_error(&r);
@@ -114,48 +107,6 @@ async fn default_measurement_error_stays_within_one_percent() {
     let ce = cycle.coulombic_efficiency_pct.unwrap();
     assert!(ce > 99.0 && ce <= 100.1, "CE {ce}");
     assert!(cycle.energy_efficiency_pct.unwrap() < ce);
-}
-
-/// Every shipped procedure, with the pack it is written for.
-fn shipped() -> Vec<(&'static str, PackSpec)> {
-    let spec = |chemistry, series, rated_capacity_ah| PackSpec {
-        chemistry,
-        series,
-        rated_capacity_ah,
-        rated_energy_wh: None,
-        rated_rate_c: None,
-        rated_resistance_mohm: None,
-    };
-    vec![
-        (
-            "procedures/capacity-check.toml",
-            spec(Chemistry::LiIon, 10, 14.0),
-        ),
-        (
-            "procedures/lfp-capacity-check.toml",
-            spec(Chemistry::Lfp, 4, 100.0),
-        ),
-        (
-            "procedures/lead-acid-c20.toml",
-            spec(Chemistry::LeadAcid, 6, 100.0),
-        ),
-        (
-            "procedures/nimh-capacity.toml",
-            spec(Chemistry::Nimh, 6, 2.0),
-        ),
-        (
-            "procedures/quarterly-check-li-ion.toml",
-            spec(Chemistry::LiIon, 10, 14.0),
-        ),
-        (
-            "procedures/quarterly-check-lfp.toml",
-            spec(Chemistry::Lfp, 12, 15.0),
-        ),
-        (
-            "procedures/dcir-soc-sweep-li-ion.toml",
-            spec(Chemistry::LiIon, 10, 14.0),
-        ),
-    ]
 }
 
 /// Procedures that measure resistance only (no capacity step).
@@ -294,7 +245,7 @@ fn assert_safe_stop(r: &RunReport, h: &SimHandle, limit: &str) {
 #[tokio::test]
 async fn a_supply_that_overshoots_trips_voltage_max() {
     let dir = tempfile::tempdir().unwrap();
-    let p = prepare("procedures/capacity-check.toml", li_ion(), dir.path());
+    let p = prepare("procedures/capacity-check.toml", sim_pack(), dir.path());
     let mut cfg = SimConfig::default();
     // The supply regulates 3 % above its setpoint: 4.33 V/cell against a
     // 4.25 V/cell limit.
@@ -307,7 +258,7 @@ async fn a_supply_that_overshoots_trips_voltage_max() {
 #[tokio::test]
 async fn an_overheating_pack_trips_temperature_max() {
     let dir = tempfile::tempdir().unwrap();
-    let p = prepare("procedures/capacity-check.toml", li_ion(), dir.path());
+    let p = prepare("procedures/capacity-check.toml", sim_pack(), dir.path());
     let mut cfg = SimConfig::default();
     cfg.faults.heat_w = 150.0;
     cfg.faults.heat_after_s = Some(1200.0);
@@ -320,7 +271,7 @@ async fn an_overheating_pack_trips_temperature_max() {
 #[tokio::test]
 async fn a_load_that_stops_answering_ends_in_a_safe_stop() {
     let dir = tempfile::tempdir().unwrap();
-    let p = prepare("procedures/capacity-check.toml", li_ion(), dir.path());
+    let p = prepare("procedures/capacity-check.toml", sim_pack(), dir.path());
     let mut cfg = SimConfig::default();
     cfg.faults.link.push("load:no-reply@600s".parse().unwrap());
     let (r, h) = run_sim(&p, &cfg, StopHandle::new()).await;
@@ -345,7 +296,7 @@ async fn a_load_that_stops_answering_ends_in_a_safe_stop() {
 #[tokio::test]
 async fn garbage_replies_are_errors_never_zeros() {
     let dir = tempfile::tempdir().unwrap();
-    let p = prepare("procedures/capacity-check.toml", li_ion(), dir.path());
+    let p = prepare("procedures/capacity-check.toml", sim_pack(), dir.path());
     let mut cfg = SimConfig::default();
     cfg.faults.link.push("load:garbage@100s".parse().unwrap());
     let (r, h) = run_sim(&p, &cfg, StopHandle::new()).await;
@@ -361,7 +312,7 @@ async fn garbage_replies_are_errors_never_zeros() {
 #[tokio::test]
 async fn a_stop_request_interrupts_safely() {
     let dir = tempfile::tempdir().unwrap();
-    let p = prepare("procedures/capacity-check.toml", li_ion(), dir.path());
+    let p = prepare("procedures/capacity-check.toml", sim_pack(), dir.path());
     let stop = StopHandle::new();
     stop.request_stop();
     let (r, h) = run_sim(&p, &SimConfig::default(), stop).await;
@@ -401,7 +352,7 @@ async fn live_and_offline_summaries_agree() {
 #[tokio::test]
 async fn step_transitions_switch_the_old_instrument_off_first() {
     let dir = tempfile::tempdir().unwrap();
-    let p = prepare("procedures/capacity-check.toml", li_ion(), dir.path());
+    let p = prepare("procedures/capacity-check.toml", sim_pack(), dir.path());
     let clock = SimClock::new();
     let c: Arc<dyn Clock> = clock;
     let cfg = SimConfig::ideal();
@@ -435,7 +386,7 @@ async fn bad_input_sends_nothing_to_an_instrument() {
     let clock = SimClock::new();
     let c: Arc<dyn Clock> = clock;
     let cfg = SimConfig::default();
-    let links = sim::build(&li_ion(), &cfg, Arc::clone(&c));
+    let links = sim::build(&sim_pack(), &cfg, Arc::clone(&c));
     let h = links.handle.clone();
     let bad = dir.path().join("bad.toml");
     let text = std::fs::read_to_string("procedures/capacity-check.toml").unwrap();
@@ -443,7 +394,7 @@ async fn bad_input_sends_nothing_to_an_instrument() {
     let req = RunRequest {
         procedure: bad,
         pack_id: "TEST-1".into(),
-        pack: PackSource::Given(li_ion()),
+        pack: PackSource::Given(sim_pack()),
         results: dir.path().join("results"),
         options: Default::default(),
     };
@@ -507,7 +458,7 @@ async fn a_panic_or_a_log_failure_mid_run_still_ends_with_outputs_off() {
     use instrument::{Load, Source};
     for panic in [true, false] {
         let dir = tempfile::tempdir().unwrap();
-        let p = prepare("procedures/capacity-check.toml", li_ion(), dir.path());
+        let p = prepare("procedures/capacity-check.toml", sim_pack(), dir.path());
         let clock = SimClock::new();
         let c: Arc<dyn Clock> = clock;
         let links = sim::build(&p.pack, &SimConfig::default(), Arc::clone(&c));
@@ -553,7 +504,7 @@ async fn a_panic_or_a_log_failure_mid_run_still_ends_with_outputs_off() {
 #[tokio::test]
 async fn every_step_kind_and_mode_runs_on_the_simulated_bench() {
     let dir = tempfile::tempdir().unwrap();
-    let p = prepare("tests/fixtures/all-step-kinds.toml", li_ion(), dir.path());
+    let p = prepare("tests/fixtures/all-step-kinds.toml", sim_pack(), dir.path());
     let (r, h) = run_sim(&p, &SimConfig::ideal(), StopHandle::new()).await;
     assert_eq!(
         r.outcome.status,

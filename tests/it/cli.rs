@@ -1,18 +1,8 @@
 //! The `packbench` binary as a user runs it.
 
+use crate::util::*;
 use std::path::Path;
-use std::process::{Command, Output};
-
-fn packbench(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_packbench"))
-        .args(args)
-        .output()
-        .expect("run packbench")
-}
-
-fn text(b: &[u8]) -> String {
-    String::from_utf8_lossy(b).into_owned()
-}
+use std::process::Output;
 
 #[test]
 fn the_readme_command_runs_a_capacity_check() {

@@ -4,6 +4,7 @@
 //! (outputs off in the simulator within 2 s of the fault, status aborted,
 //! samples kept); bad bench and profile files touch no instrument.
 
+use crate::util::*;
 use engine::state::RunState;
 use record::read::read_samples;
 use record::Summary;
@@ -12,8 +13,8 @@ use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::Duration;
 
-const BIN: &str = env!("CARGO_BIN_EXE_packbench");
 const PACK: [&str; 6] = ["--chemistry", "li-ion", "--series", "4", "--rated", "2Ah"];
+
 /// Bench seconds per wall second on both ends of a served run.
 const SPEED: &str = "400";
 
@@ -243,18 +244,15 @@ fn assert_safe_stop_after_fault(code: i32, run: &Path, log: &Path, fault: &str) 
     let samples = read_samples(&run.join("samples.csv")).unwrap();
     assert!(samples.samples.len() > 50, "{fault}: samples kept");
     // The simulator may still be working through messages the run sent
-    // before it exited (a slow instrument): give it a moment.
+    // before it exited (a slow instrument): wait until it shows both
+    // outputs off (asserted below if it never does).
     let mut entries = state_log(log);
-    for _ in 0..40 {
-        if entries
+    wait_until(Duration::from_secs(4), || {
+        entries = state_log(log);
+        entries
             .last()
             .is_some_and(|e| !e.source_output_on && !e.load_input_on)
-        {
-            break;
-        }
-        std::thread::sleep(Duration::from_millis(100));
-        entries = state_log(log);
-    }
+    });
     let fired = entries
         .iter()
         .find(|e| e.what.starts_with("fault"))
@@ -403,12 +401,6 @@ fn the_trace_option_records_the_raw_traffic() {
     assert!(fields[0].parse::<f64>().is_ok(), "{first}");
     assert_eq!(&fields[1..], &["source", ">", "*IDN?"]);
     assert!(trace.contains("load < "), "replies are traced");
-}
-
-fn write(dir: &Path, name: &str, text: &str) -> PathBuf {
-    let p = dir.join(name);
-    std::fs::write(&p, text).unwrap();
-    p
 }
 
 /// A bad bench or profile file: exit 2, a file:line:col error, and no

@@ -2,6 +2,7 @@
 //! interpretation; none crashes, hangs, or sends a setpoint outside the
 //! envelope.
 
+use crate::util::*;
 use instrument::link::{InMemoryLink, LineResponder, Link, Response};
 use instrument::scpi::Session;
 use model::pack::{Chemistry, PackSpec};
@@ -11,19 +12,6 @@ use std::path::Path;
 use std::process::Command;
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
-
-const BIN: &str = env!("CARGO_BIN_EXE_packbench");
-
-fn pack() -> PackSpec {
-    PackSpec {
-        chemistry: Chemistry::LiIon,
-        series: 10,
-        rated_capacity_ah: 14.0,
-        rated_energy_wh: None,
-        rated_rate_c: None,
-        rated_resistance_mohm: None,
-    }
-}
 
 const HEAD: &str = r#"title = "t"
 [envelope]
@@ -39,7 +27,7 @@ fn step(kind_and_values: &str) -> String {
 
 fn refused(text: &str) -> String {
     let t = Instant::now();
-    let r = plan_from_text(Path::new("h.toml"), text, &pack());
+    let r = plan_from_text(Path::new("h.toml"), text, &li_ion_14ah());
     assert!(
         t.elapsed() < Duration::from_secs(10),
         "took {:?}",
@@ -123,7 +111,7 @@ fn oversized_and_deeply_nested_procedures_get_clear_errors() {
     let dir = tempfile::tempdir().unwrap();
     let path = dir.path().join("big.toml");
     std::fs::write(&path, &big).unwrap();
-    let e = model::procedure::load(&path, &pack())
+    let e = model::procedure::load(&path, &li_ion_14ah())
         .unwrap_err()
         .to_string();
     assert!(e.contains("larger than"), "{e}");
@@ -177,6 +165,7 @@ fn absurd_setpoints_are_refused_with_their_location() {
 
 /// An instrument that answers every query with one fixed reply.
 struct Fixed(String);
+
 impl LineResponder for Fixed {
     fn respond(&mut self, line: &str) -> Result<Response, std::io::Error> {
         Ok(if line.contains('?') {
@@ -189,6 +178,7 @@ impl LineResponder for Fixed {
 
 /// A link that sends endless bytes without a terminator.
 struct Babbler;
+
 impl tokio::io::AsyncRead for Babbler {
     fn poll_read(
         self: std::pin::Pin<&mut Self>,
@@ -200,6 +190,7 @@ impl tokio::io::AsyncRead for Babbler {
         std::task::Poll::Ready(Ok(()))
     }
 }
+
 impl tokio::io::AsyncWrite for Babbler {
     fn poll_write(
         self: std::pin::Pin<&mut Self>,
@@ -266,7 +257,8 @@ fn hostile_instrument_replies_are_errors_never_numbers() {
         let t = Instant::now();
         let e = s.query_number("MEAS:VOLT?").await.unwrap_err();
         assert!(e.message.contains("without a terminator"), "{}", e.message);
-        assert!(t.elapsed() < Duration::from_secs(1));
+        assert_ne!(e.kind, instrument::ErrorKind::Timeout);
+        assert!(t.elapsed() < Duration::from_secs(5), "before the timeout");
     });
 }
 

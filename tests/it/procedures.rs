@@ -1,21 +1,11 @@
 //! Procedure parsing and validation: every problem is reported with its
 //! file, line and column and what was expected, before anything runs.
 
+use crate::util::*;
 use model::pack::{Chemistry, PackSpec};
 use model::procedure::validate::plan_from_text;
 use model::procedure::{EndCondition, StepKind};
 use std::path::Path;
-
-fn pack() -> PackSpec {
-    PackSpec {
-        chemistry: Chemistry::LiIon,
-        series: 10,
-        rated_capacity_ah: 14.0,
-        rated_energy_wh: None,
-        rated_rate_c: None,
-        rated_resistance_mohm: None,
-    }
-}
 
 const GOOD: &str = r#"title = "t"
 
@@ -42,7 +32,7 @@ repeat = 2
 "#;
 
 fn errors(text: &str) -> String {
-    match plan_from_text(Path::new("p.toml"), text, &pack()) {
+    match plan_from_text(Path::new("p.toml"), text, &li_ion_14ah()) {
         Ok(_) => panic!("accepted:\n{text}"),
         Err(e) => e.to_string(),
     }
@@ -50,7 +40,7 @@ fn errors(text: &str) -> String {
 
 #[test]
 fn a_good_procedure_resolves_against_the_pack() {
-    let plan = plan_from_text(Path::new("p.toml"), GOOD, &pack()).unwrap();
+    let plan = plan_from_text(Path::new("p.toml"), GOOD, &li_ion_14ah()).unwrap();
     assert_eq!(plan.steps.len(), 4, "two repeats of two steps");
     assert!((plan.envelope.voltage_max_v - 42.5).abs() < 1e-9);
     assert!((plan.envelope.current_max_a - 14.0).abs() < 1e-9);
@@ -67,12 +57,13 @@ fn a_good_procedure_resolves_against_the_pack() {
         }
         k => panic!("{k:?}"),
     }
-    assert_eq!(
-        plan.steps[0].ends[0],
-        EndCondition::CurrentBelow {
-            current_a: 0.7000000000000001
+    // The taper end is written as a C-rate of the 14 Ah pack: 0.05C = 0.7 A.
+    match plan.steps[0].ends[0] {
+        EndCondition::CurrentBelow { current_a } => {
+            assert!((current_a - 0.05 * 14.0).abs() < 1e-12, "{current_a}")
         }
-    );
+        ref e => panic!("a taper end first: {e:?}"),
+    }
     // Cycles: a charge after a discharge starts a new one.
     let cycles: Vec<u32> = plan.steps.iter().map(|s| s.cycle).collect();
     assert_eq!(cycles, vec![1, 1, 2, 2]);
@@ -178,7 +169,7 @@ fn end_condition_grammar() {
         "\"time > 5h\"",
         "\"time > 5h\", \"charge > 110%\", \"energy > 600Wh\", \"peak_drop > 5mV/cell\", \"temperature > 45degC\"",
     );
-    let plan = plan_from_text(Path::new("p.toml"), &ok, &pack()).unwrap();
+    let plan = plan_from_text(Path::new("p.toml"), &ok, &li_ion_14ah()).unwrap();
     assert_eq!(plan.steps[0].ends.len(), 6);
     assert!(plan.steps[0]
         .ends
@@ -200,7 +191,7 @@ fn pulse_steps_and_discharge_modes() {
         "  [[phase.step]]\n  kind = \"discharge\"",
         "  [[phase.step]]\n  kind = \"pulse\"\n  levels = [{ current = \"-0.2C\", duration = \"10s\" }, { current = \"-1C\", duration = \"1s\" }, { current = \"0.5C\", duration = \"10s\" }]\n\n  [[phase.step]]\n  kind = \"discharge\"\n  mode = \"power\"\n  power = \"100W\"\n  ends = [\"voltage < 3.2V/cell\"]\n\n  [[phase.step]]\n  kind = \"discharge\"",
     );
-    let plan = plan_from_text(Path::new("p.toml"), &text, &pack()).unwrap();
+    let plan = plan_from_text(Path::new("p.toml"), &text, &li_ion_14ah()).unwrap();
     assert_eq!(plan.steps.len(), 8);
     assert_eq!(plan.steps[1].pulse_duration_s(), Some(21.0));
     // Constant power beyond the envelope at voltage_min is refused.
@@ -221,7 +212,7 @@ fn every_shipped_procedure_validates() {
         };
         let p = PackSpec {
             chemistry,
-            ..pack()
+            ..li_ion_14ah()
         };
         let plan = plan_from_text(&path, &text, &p).unwrap_or_else(|e| panic!("{e}"));
         // Every procedure measures something: a capacity or resistance.

@@ -27,6 +27,7 @@ const LIMITS: [&str; 7] = [
     "charge_max",
     "step_time_max",
 ];
+
 const KINDS: [&str; 5] = ["charge", "discharge", "rest", "pulse", "drain"];
 
 /// What a case expects.

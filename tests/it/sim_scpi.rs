@@ -118,9 +118,28 @@ async fn compound_messages_and_forms() {
     load.write("*RST").await.unwrap();
     assert!(!handle.load_input_on());
     assert_eq!(load.query("INP?").await.unwrap(), "0");
-    // A header path error inside a compound message (SCPI fact sheet example).
-    load.write("MEAS:VOLT?;MEAS:CURR?").await.ok();
-    let _ = load.query("*OPC?").await; // drain the partial reply, if any
+    // The header path inside a compound message (SCPI fact sheet,
+    // "Compound commands and the header path"): after `MEAS:VOLT?` the path
+    // is `MEAS:`, so `;CURR?` is `MEAS:CURR?` and both are answered ...
+    load.write("*CLS").await.unwrap();
+    let both = load.query("MEAS:VOLT?;CURR?").await.unwrap();
+    let parts: Vec<f64> = both.split(';').map(|x| x.parse().unwrap()).collect();
+    assert_eq!(parts.len(), 2, "two answers in one reply: {both}");
+    assert!(parts[0] > 1.0, "a voltage first: {both}");
+    assert_eq!(next_error(&mut load).await, 0);
+    // ... while `;MEAS:CURR?` is `MEAS:MEAS:CURR?`: the voltage is answered
+    // and the second unit is -113, undefined header.
+    let first = load.query("MEAS:VOLT?;MEAS:CURR?").await.unwrap();
+    assert!(
+        first.parse::<f64>().is_ok_and(|v| v > 1.0),
+        "only the voltage is answered: {first}"
+    );
+    assert_eq!(next_error(&mut load).await, -113);
+    assert_eq!(next_error(&mut load).await, 0);
+    // A leading colon goes back to the root.
+    let rooted = load.query("MEAS:VOLT?;:MEAS:CURR?").await.unwrap();
+    assert_eq!(rooted.split(';').count(), 2, "{rooted}");
+    assert_eq!(next_error(&mut load).await, 0);
 }
 
 #[tokio::test]

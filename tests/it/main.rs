@@ -1,0 +1,26 @@
+//! The integration tests: one binary, one shared [`util`] module.
+//!
+//! Modules that spawn `packbench` and signal it, or serve the simulated
+//! bench on a pseudo-terminal, are Unix-only.
+
+mod util;
+
+mod analysis_reference;
+mod analyze;
+mod cli;
+#[cfg(unix)]
+mod crash;
+mod engine_sim;
+mod envelope_matrix;
+mod fade;
+#[cfg(unix)]
+mod figures;
+mod hostile;
+mod layers;
+#[cfg(unix)]
+mod links;
+mod procedures;
+mod properties;
+mod sim_scpi;
+#[cfg(unix)]
+mod unattended;

@@ -1,0 +1,177 @@
+//! What the integration tests share: the binary, pack specs, the table of
+//! shipped procedures with their packs, file helpers, and waits on what a
+//! test means (a file's text, a run folder, a sample time) instead of
+//! fixed sleeps.
+
+#![allow(dead_code)] // each helper is used by some modules, not by all
+
+use model::pack::{Chemistry, PackSpec};
+use packbench::session::{PackSource, Prepared, RunRequest};
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+use std::time::{Duration, Instant};
+
+/// The `packbench` binary under test.
+pub const BIN: &str = env!("CARGO_BIN_EXE_packbench");
+
+/// Run `packbench` with these arguments in the package folder.
+pub fn packbench(args: &[&str]) -> Output {
+    Command::new(BIN)
+        .args(args)
+        .output()
+        .expect("run packbench")
+}
+
+/// Run `packbench` with these arguments in `dir`.
+pub fn packbench_in(dir: &Path, args: &[&str]) -> Output {
+    Command::new(BIN)
+        .args(args)
+        .current_dir(dir)
+        .output()
+        .expect("run packbench")
+}
+
+pub fn text(b: &[u8]) -> String {
+    String::from_utf8_lossy(b).into_owned()
+}
+
+/// Write `text` to `dir/name` and return the path.
+pub fn write(dir: &Path, name: &str, text: &str) -> PathBuf {
+    let p = dir.join(name);
+    std::fs::write(&p, text).unwrap();
+    p
+}
+
+pub fn json(path: &Path) -> serde_json::Value {
+    serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap()
+}
+
+/// A pack spec with no optional ratings.
+pub fn spec(chemistry: Chemistry, series: u32, rated_capacity_ah: f64) -> PackSpec {
+    PackSpec {
+        chemistry,
+        series,
+        rated_capacity_ah,
+        rated_energy_wh: None,
+        rated_rate_c: None,
+        rated_resistance_mohm: None,
+    }
+}
+
+/// The 10-cell 14 Ah li-ion pack most shipped procedures are written for.
+pub fn li_ion_14ah() -> PackSpec {
+    spec(Chemistry::LiIon, 10, 14.0)
+}
+
+/// The simulated bench's default pack.
+pub fn sim_pack() -> PackSpec {
+    packbench::session::request::default_sim_pack()
+}
+
+/// Every shipped procedure, with the pack it is written for.
+pub fn shipped() -> Vec<(&'static str, PackSpec)> {
+    vec![
+        ("procedures/capacity-check.toml", li_ion_14ah()),
+        (
+            "procedures/lfp-capacity-check.toml",
+            spec(Chemistry::Lfp, 4, 100.0),
+        ),
+        (
+            "procedures/lead-acid-c20.toml",
+            spec(Chemistry::LeadAcid, 6, 100.0),
+        ),
+        (
+            "procedures/nimh-capacity.toml",
+            spec(Chemistry::Nimh, 6, 2.0),
+        ),
+        ("procedures/quarterly-check-li-ion.toml", li_ion_14ah()),
+        (
+            "procedures/quarterly-check-lfp.toml",
+            spec(Chemistry::Lfp, 12, 15.0),
+        ),
+        ("procedures/dcir-soc-sweep-li-ion.toml", li_ion_14ah()),
+    ]
+}
+
+/// A prepared run of a procedure file on a given pack.
+pub fn prepare_as(procedure: &Path, pack: PackSpec, results: &Path, pack_id: &str) -> Prepared {
+    packbench::session::prepare::prepare(&RunRequest {
+        procedure: procedure.to_path_buf(),
+        pack_id: pack_id.into(),
+        pack: PackSource::Given(pack),
+        results: results.to_path_buf(),
+        options: Default::default(),
+    })
+    .unwrap()
+}
+
+/// Poll `cond` until it holds or `limit` passes; true when it held.
+pub fn wait_until(limit: Duration, mut cond: impl FnMut() -> bool) -> bool {
+    let t = Instant::now();
+    loop {
+        if cond() {
+            return true;
+        }
+        if t.elapsed() > limit {
+            return false;
+        }
+        std::thread::sleep(Duration::from_millis(5));
+    }
+}
+
+/// Wait until the file at `path` holds `needle`.
+pub fn wait_for(path: &Path, needle: &str, limit: Duration) -> bool {
+    wait_until(limit, || {
+        std::fs::read_to_string(path).is_ok_and(|s| s.contains(needle))
+    })
+}
+
+/// The run folder a child process creates under a pack folder, once it
+/// exists.
+pub fn wait_run_dir(pack_dir: &Path, limit: Duration) -> Option<PathBuf> {
+    let mut found = None;
+    wait_until(limit, || {
+        found = std::fs::read_dir(pack_dir).ok().and_then(|it| {
+            it.filter_map(|e| e.ok().map(|e| e.path()))
+                .find(|p| p.is_dir())
+        });
+        found.is_some()
+    });
+    found
+}
+
+/// The run time of the last whole row of a `samples.csv`, s.
+pub fn last_sample_t(samples_csv: &Path) -> Option<f64> {
+    let text = std::fs::read_to_string(samples_csv).ok()?;
+    let whole = &text[..text.rfind('\n')?];
+    let last = whole.lines().last()?;
+    last.split(',').next()?.parse().ok()
+}
+
+/// Wait until the run's log holds a sample at or after `t_s` run seconds.
+pub fn wait_for_sample(samples_csv: &Path, t_s: f64, limit: Duration) -> bool {
+    wait_until(limit, || {
+        last_sample_t(samples_csv).is_some_and(|t| t >= t_s)
+    })
+}
+
+/// The run time at which the first event holding `needle` happened, s.
+pub fn event_t(events_jsonl: &Path, needle: &str) -> Option<f64> {
+    let text = std::fs::read_to_string(events_jsonl).ok()?;
+    let line = text.lines().find(|l| l.contains(needle))?;
+    let v: serde_json::Value = serde_json::from_str(line).ok()?;
+    v["t_s"].as_f64()
+}
+
+/// Send a signal to a child process.
+#[cfg(unix)]
+pub fn signal(child: &std::process::Child, sig: i32) {
+    // SAFETY: kill(2) on our own child's pid.
+    let r = unsafe { libc::kill(child.id() as i32, sig) };
+    assert_eq!(r, 0);
+}
+
+/// Relative difference of `a` from `b`.
+pub fn rel(a: f64, b: f64) -> f64 {
+    (a - b).abs() / b.abs()
+}
