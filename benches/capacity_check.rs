@@ -46,7 +46,7 @@ fn main() {
         bench_s = r.outcome.duration_s;
         samples = r.summary.samples;
         lines = r.summary.steps.len();
-        assert_eq!(r.summary.status, "completed");
+        assert_eq!(r.summary.status, model::status::RunStatus::Completed);
     }
     walls.sort_by(|a, b| a.total_cmp(b));
     let median = walls[walls.len() / 2];

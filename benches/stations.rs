@@ -131,7 +131,7 @@ name = "hold"
         .fold(0.0, f64::max);
     let completed = reports
         .iter()
-        .filter(|r| r.summary.status == "completed")
+        .filter(|r| r.summary.status == model::status::RunStatus::Completed)
         .count();
     let (ca, cb, w) = window;
     println!("{n} simulated stations in real time, 1 Hz, {seconds} s each, one thread");

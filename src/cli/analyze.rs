@@ -10,7 +10,7 @@ use analysis::fade::grade::Policy;
 use analysis::{AnalysisOptions, CurveData};
 use anyhow::{anyhow, bail, Context};
 use clap::Args;
-use model::pack::{Chemistry, PackSpec};
+use model::pack::PackSpec;
 use model::units;
 use record::import::{ColumnNames, CurrentSign, LogFormat, TimeUnit};
 use record::{PackSummary, Summary, RUN_JSON, SAMPLES_CSV};
@@ -145,7 +145,7 @@ fn options(a: &AnalyzeArgs) -> anyhow::Result<AnalysisOptions> {
 }
 
 fn spec_from_summary(p: &PackSummary) -> anyhow::Result<PackSpec> {
-    let chemistry: Chemistry = p.chemistry.parse().map_err(|e: String| anyhow!(e))?;
+    let chemistry = p.chemistry;
     Ok(PackSpec {
         chemistry,
         series: p.series,

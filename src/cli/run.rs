@@ -336,7 +336,7 @@ pub fn run_stations(
             });
             board.update(|l| {
                 if !l.is_final() {
-                    l.state = "failed".into();
+                    l.state = crate::session::live::BoardState::Failed;
                 }
             });
         }

@@ -14,6 +14,7 @@ use engine::control::StopHandle;
 use engine::{Engine, Station};
 use instrument::scpi::Trace;
 use instrument::{Load, Meter, Source};
+use model::status::RunStatus;
 use model::truth::GroundTruth;
 use record::manifest::{utc_now, SIM_TRUTH_LABEL};
 use record::manifest::{
@@ -77,7 +78,7 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
         finished_utc: None,
         test_date: p.options.test_date.to_string(),
         cycle_count: p.options.cycle_count,
-        status: "running".into(),
+        status: RunStatus::Running,
         stop_reason: None,
         procedure: ProcedureRecord {
             path: p.procedure.path.display().to_string(),
@@ -252,14 +253,14 @@ pub async fn drive(
     let (source, load, meter) = match connected {
         Ok(x) => x,
         Err(e) => {
-            manifest.status = "aborted".into();
+            manifest.status = RunStatus::Aborted;
             manifest.stop_reason = Some(format!("could not connect: {e}"));
             manifest.finished_utc = Some(utc_now());
             write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
             let _ = std::fs::remove_file(dir.join(RUN_LOCK));
             if let Some(b) = &board {
                 b.update(|l| {
-                    l.state = "failed".into();
+                    l.state = crate::session::live::BoardState::Failed;
                     l.alarms.push(format!("could not connect: {e}"));
                 });
             }

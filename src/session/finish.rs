@@ -44,7 +44,7 @@ pub fn finish_record(
     let report_path = dir.join(REPORT_HTML);
     let html = report::html::run_report(&summary, &log.samples);
     record::write::atomic_write(&report_path, html.as_bytes()).map_err(io_err(&report_path))?;
-    manifest.status = outcome.status.name().into();
+    manifest.status = outcome.status.into();
     manifest.stop_reason = outcome.reason.clone();
     manifest.finished_utc = Some(utc_now());
     manifest.timing = Some(outcome.timing);
@@ -89,7 +89,7 @@ pub fn summarize_run_dir(
     outcome: Option<&RunOutcome>,
 ) -> Result<(Summary, read::SampleLog), RunError> {
     let outcome = outcome.map(|o| crate::session::summary::Outcome {
-        status: o.status.name().to_string(),
+        status: o.status.into(),
         reason: o.reason.clone(),
     });
     let summary = crate::session::summary::summarize_run(

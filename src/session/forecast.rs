@@ -11,9 +11,10 @@ use engine::clock::{Clock, SimClock};
 use engine::control::StopHandle;
 use engine::{Engine, Station};
 use instrument::{Load, Source};
-use model::procedure::{DischargeMode, EndCondition, Plan, ResultTag, StepKind};
+use model::procedure::{DischargeMode, EndCondition, Plan, ResultTag, StepKind, StepType};
 use model::sample::Sample;
 use model::simconfig::SimConfig;
+use model::status::RunStatus;
 use model::units::HumanDuration;
 use record::event::{EndKind, Event, Sink};
 use serde::Serialize;
@@ -27,7 +28,7 @@ pub const NEAR_LIMIT: f64 = 0.02;
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct StepForecast {
     pub step: u32,
-    pub kind: String,
+    pub kind: StepType,
     pub duration_s: f64,
     /// Net charge, Ah (positive into the pack).
     pub ah: f64,
@@ -40,8 +41,10 @@ pub struct StepForecast {
 pub struct Forecast {
     pub steps: Vec<StepForecast>,
     pub total_s: f64,
-    /// How the simulated run ended (completed, or aborted and why).
-    pub status: String,
+    /// How the simulated run ended (completed, or aborted and why); none
+    /// when it could not run ("not run" in JSON).
+    #[serde(serialize_with = "status_or_not_run")]
+    pub status: Option<RunStatus>,
     pub stop_reason: Option<String>,
     pub warnings: Vec<String>,
 }
@@ -51,8 +54,15 @@ struct ForecastSink {
     steps: Vec<StepForecast>,
     open: Option<(f64, Integrator)>,
     last_t: f64,
-    status: String,
+    status: Option<RunStatus>,
     reason: Option<String>,
+}
+
+fn status_or_not_run<S: serde::Serializer>(
+    s: &Option<RunStatus>,
+    ser: S,
+) -> Result<S::Ok, S::Error> {
+    ser.serialize_str(s.map_or("not run", |s| s.name()))
 }
 
 impl Sink for ForecastSink {
@@ -71,7 +81,7 @@ impl Sink for ForecastSink {
                 self.open = Some((*t_s, Integrator::default()));
                 self.steps.push(StepForecast {
                     step: *step,
-                    kind: kind.clone(),
+                    kind: *kind,
                     duration_s: 0.0,
                     ah: 0.0,
                     end_kind: None,
@@ -97,7 +107,7 @@ impl Sink for ForecastSink {
                 reason,
             } => {
                 self.last_t = self.last_t.max(*t_s);
-                self.status = status.clone();
+                self.status = Some(*status);
                 self.reason = reason.clone();
             }
             _ => {}
@@ -251,7 +261,7 @@ pub fn forecast(plan: &Plan, cfg: &SimConfig) -> Forecast {
         Err(e) => Forecast {
             steps: Vec::new(),
             total_s: 0.0,
-            status: "not run".into(),
+            status: None,
             stop_reason: Some(e.to_string()),
             warnings: vec![format!("the dry run could not start: {e}")],
         },
@@ -291,10 +301,12 @@ pub async fn forecast_async(plan: &Plan, cfg: &SimConfig) -> Forecast {
     if let Err(e) = ran {
         warnings.push(format!("the dry run could not start: {e}"));
     }
-    if sink.status != "completed" {
+    if sink.status != Some(RunStatus::Completed) {
         warnings.push(format!(
             "the simulated run does not complete: {}",
-            sink.reason.clone().unwrap_or_else(|| sink.status.clone())
+            sink.reason
+                .clone()
+                .unwrap_or_else(|| sink.status.map_or("not run", |s| s.name()).to_string())
         ));
     }
     for s in &sink.steps {
@@ -331,11 +343,7 @@ pub async fn forecast_async(plan: &Plan, cfg: &SimConfig) -> Forecast {
             .last_t
             .max(sink.steps.iter().map(|s| s.duration_s).sum::<f64>()),
         steps: sink.steps,
-        status: if sink.status.is_empty() {
-            "not run".into()
-        } else {
-            sink.status
-        },
+        status: sink.status,
         stop_reason: sink.reason,
         warnings,
     }

@@ -18,8 +18,9 @@
 //!   when no estimate applies (a taper, a rest to settle).
 
 use analysis::integrate::Integrator;
-use model::procedure::{EndCondition, Plan, StepKind};
+use model::procedure::{EndCondition, Plan, StepKind, StepType};
 use model::sample::Sample;
+use model::status::RunStatus;
 use model::units::HumanDuration;
 use record::event::{EndKind, Event, Sink};
 use std::sync::{Arc, Mutex};
@@ -29,12 +30,12 @@ use std::sync::{Arc, Mutex};
 pub struct Live {
     pub station: String,
     pub pack_id: String,
-    /// running, completed, aborted, interrupted (or starting).
-    pub state: String,
+    pub state: BoardState,
     pub step: u32,
     pub steps: u32,
     pub phase: String,
-    pub kind: String,
+    /// The step's kind, once a step has started.
+    pub kind: Option<StepType>,
     pub run_t_s: f64,
     pub step_elapsed_s: f64,
     pub voltage_v: f64,
@@ -54,10 +55,7 @@ pub struct Live {
 impl Live {
     /// Whether the station's run has ended.
     pub fn is_final(&self) -> bool {
-        matches!(
-            self.state.as_str(),
-            "completed" | "aborted" | "interrupted" | "failed"
-        )
+        self.state.is_final()
     }
 
     /// One status line.
@@ -66,10 +64,10 @@ impl Live {
             "{:<10} {:<8} {:<11} step {}/{} {:<10} {:>8.3} V {:>8.3} A {:>8.1} W  step {:>7.3} Ah {:>7.1} Wh",
             self.station,
             self.pack_id,
-            self.state,
+            self.state.name(),
             self.step,
             self.steps,
-            self.kind,
+            self.kind.map_or("", |k| k.name()),
             self.voltage_v,
             self.current_a,
             self.power_w,
@@ -101,6 +99,55 @@ impl Live {
     }
 }
 
+/// Where a station's run is, as its board shows it.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub enum BoardState {
+    /// Validated, links not yet open.
+    #[default]
+    Starting,
+    Running,
+    Completed,
+    Aborted,
+    Interrupted,
+    /// It never ran: the links could not be opened or the record failed.
+    Failed,
+}
+
+impl BoardState {
+    pub fn name(&self) -> &'static str {
+        match self {
+            BoardState::Starting => "starting",
+            BoardState::Running => "running",
+            BoardState::Completed => "completed",
+            BoardState::Aborted => "aborted",
+            BoardState::Interrupted => "interrupted",
+            BoardState::Failed => "failed",
+        }
+    }
+
+    /// The station's run has ended.
+    pub fn is_final(&self) -> bool {
+        matches!(
+            self,
+            BoardState::Completed
+                | BoardState::Aborted
+                | BoardState::Interrupted
+                | BoardState::Failed
+        )
+    }
+}
+
+impl From<RunStatus> for BoardState {
+    fn from(s: RunStatus) -> BoardState {
+        match s {
+            RunStatus::Running | RunStatus::Imported => BoardState::Running,
+            RunStatus::Completed => BoardState::Completed,
+            RunStatus::Aborted => BoardState::Aborted,
+            RunStatus::Interrupted => BoardState::Interrupted,
+        }
+    }
+}
+
 /// A station's board, shared between its run and the display.
 #[derive(Debug, Clone, Default)]
 pub struct Board(pub Arc<Mutex<Live>>);
@@ -110,7 +157,7 @@ impl Board {
         Board(Arc::new(Mutex::new(Live {
             station: station.to_string(),
             pack_id: pack_id.to_string(),
-            state: "starting".into(),
+            state: BoardState::Starting,
             ..Live::default()
         })))
     }
@@ -186,7 +233,7 @@ impl<'a> Estimator<'a> {
         }
         self.step.push(s.t_s, s.voltage_v, s.current_a);
         self.run.push(s.t_s, s.voltage_v, s.current_a);
-        live.state = "running".into();
+        live.state = BoardState::Running;
         live.step = s.step;
         live.run_t_s = s.t_s;
         live.step_elapsed_s = s.t_s - self.step_t0;
@@ -249,12 +296,12 @@ impl<'a> Estimator<'a> {
         match e {
             Event::RunStart { steps, .. } => {
                 live.steps = *steps;
-                live.state = "running".into();
+                live.state = BoardState::Running;
             }
             Event::Resumed { step, .. } => {
                 live.steps = self.plan.steps.len() as u32;
                 live.step = *step;
-                live.state = "running".into();
+                live.state = BoardState::Running;
                 // Nothing is integrated across the interruption.
                 self.run.break_segment();
                 self.step.break_segment();
@@ -264,7 +311,7 @@ impl<'a> Estimator<'a> {
             } => {
                 live.step = *step;
                 live.phase = phase.clone();
-                live.kind = kind.clone();
+                live.kind = Some(*kind);
                 live.step_ah = 0.0;
                 live.step_wh = 0.0;
                 live.eta_s = None;
@@ -305,7 +352,7 @@ impl<'a> Estimator<'a> {
                 live.alarms.push(message.clone())
             }
             Event::RunEnd { status, .. } => {
-                live.state = status.clone();
+                live.state = BoardState::from(*status);
                 live.eta_s = None;
             }
             _ => {}

@@ -123,7 +123,7 @@ pub async fn run(s: Session<'_>) -> Result<RunReport, RunError> {
     if let (Err(e), Some(b)) = (&result, &board) {
         b.update(|l| {
             if !l.is_final() {
-                l.state = "failed".into();
+                l.state = crate::session::live::BoardState::Failed;
                 l.alarms.push(e.to_string());
             }
         });

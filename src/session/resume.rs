@@ -48,6 +48,7 @@ use engine::{resume_continues, Carried, ResumePoint, RunOutcome, Timing};
 use model::procedure::{self, LoadedProcedure};
 use model::simconfig::SimConfig;
 use model::status::RunState;
+use model::status::RunStatus;
 use record::event::{EndKind, Event};
 use record::import::{stream_log, LogFormat};
 use record::manifest::{Manifest, ResumeRecord};
@@ -65,7 +66,7 @@ pub enum Found {
     /// The engine had finished (the process died writing the record): only
     /// the record is left to write.
     Recorded {
-        status: String,
+        status: RunStatus,
         reason: Option<String>,
     },
 }
@@ -139,7 +140,7 @@ pub fn interrupted_runs(
         let Some(last) = runs.pop() else { continue };
         let m = read_manifest(&last.join(RUN_JSON))?;
         let here = m.bench.station.as_deref() == Some(st.name.as_str());
-        if here && matches!(m.status.as_str(), "running" | "interrupted") {
+        if here && m.status.is_unfinished() {
             out.push((st.name.clone(), last));
         }
     }
@@ -155,9 +156,9 @@ pub fn prepare(
 ) -> Result<ResumeSetup, RunError> {
     let run_json = dir.join(RUN_JSON);
     let manifest = read_manifest(&run_json)?;
-    match manifest.status.as_str() {
-        "running" | "interrupted" => {}
-        "completed" => {
+    match manifest.status {
+        RunStatus::Running | RunStatus::Interrupted => {}
+        RunStatus::Completed => {
             return Err(bad(format!(
                 "{}: the run completed; nothing to resume",
                 dir.display()
@@ -194,7 +195,7 @@ pub fn prepare(
     } else {
         let p = &manifest.pack;
         model::pack::PackSpec {
-            chemistry: p.chemistry.parse().map_err(bad)?,
+            chemistry: p.chemistry,
             series: p.series,
             rated_capacity_ah: p.rated_capacity_ah,
             rated_energy_wh: p.rated_energy_wh,
@@ -296,7 +297,7 @@ pub fn find_point(dir: &Path, p: &Prepared, speed_factor: Option<f64>) -> Result
     let mut ended_ok: Vec<u32> = Vec::new();
     let mut last_event_t = 0.0f64;
     let mut breaks = Vec::new();
-    let mut run_end: Option<(String, Option<String>)> = None;
+    let mut run_end: Option<(RunStatus, Option<String>)> = None;
     for e in &events {
         match e {
             Event::StepStart { step, t_s, .. } => {
@@ -334,13 +335,13 @@ pub fn find_point(dir: &Path, p: &Prepared, speed_factor: Option<f64>) -> Result
             }
             Event::RunEnd { status, reason, t_s } => {
                 last_event_t = last_event_t.max(*t_s);
-                run_end = Some((status.clone(), reason.clone()));
+                run_end = Some((*status, reason.clone()));
             }
             _ => {}
         }
     }
     if let Some((status, reason)) = run_end {
-        if status != RunState::Interrupted.name() {
+        if status != RunStatus::Interrupted {
             return Ok(Found::Recorded { status, reason });
         }
     }
@@ -438,9 +439,9 @@ pub async fn execute(
         Found::Recorded { status, reason } => {
             // Only the record is missing.
             let outcome = RunOutcome {
-                status: match status.as_str() {
-                    "completed" => RunState::Completed,
-                    "interrupted" => RunState::Interrupted,
+                status: match status {
+                    RunStatus::Completed => RunState::Completed,
+                    RunStatus::Interrupted => RunState::Interrupted,
                     _ => RunState::Aborted,
                 },
                 reason,
@@ -474,7 +475,7 @@ pub async fn execute(
         gap_s: point.gap_s,
         rule,
     });
-    manifest.status = "running".into();
+    manifest.status = RunStatus::Running;
     manifest.finished_utc = None;
     manifest.stop_reason = None;
     let job = StationJob {

@@ -9,6 +9,7 @@ use analysis::integrate::Interruption;
 use analysis::pulse::is_jump;
 use analysis::{AnalysisOptions, Analyzer, CurveData};
 use model::pack::PackSpec;
+use model::status::RunStatus;
 use record::event::Event;
 
 use chrono::NaiveDate;
@@ -70,7 +71,7 @@ impl StepDetector {
 
 /// How a summary's status and stop reason were found.
 pub struct Outcome {
-    pub status: String,
+    pub status: RunStatus,
     pub reason: Option<String>,
 }
 
@@ -85,8 +86,8 @@ pub fn build_summary(
 ) -> Summary {
     // A capacity figure that did not start from a full charge grades
     // nothing: it is what the pack gave from where it was.
-    let gradeable = matches!(outcome.status.as_str(), "completed" | "imported")
-        && a.capacity.as_ref().is_none_or(|c| c.from_full_charge);
+    let gradeable =
+        outcome.status.is_complete() && a.capacity.as_ref().is_none_or(|c| c.from_full_charge);
     let grade = gradeable.then(|| {
         let own = a.resistance.as_ref().map(|r| r.dcir_mohm);
         let reference = pack_dir
@@ -311,13 +312,13 @@ pub fn summarize_run_with_curves(
             .rev()
             .find_map(|e| match e {
                 Event::RunEnd { status, reason, .. } => Some(Outcome {
-                    status: status.clone(),
+                    status: *status,
                     reason: reason.clone(),
                 }),
                 _ => None,
             })
             .unwrap_or(Outcome {
-                status: "interrupted".into(),
+                status: RunStatus::Interrupted,
                 reason: Some("the run has no end record (killed or power cut)".into()),
             })
     });
@@ -405,7 +406,7 @@ pub fn summarize_foreign(
         a,
         &ctx,
         Outcome {
-            status: "imported".into(),
+            status: RunStatus::Imported,
             reason: None,
         },
         feed.n,
@@ -438,7 +439,7 @@ pub fn reference_resistance(pack_dir: &Path, ctx: &SummaryContext<'_>) -> Option
     let runs = record::history::run_summaries(pack_dir).ok()?;
     runs.iter()
         .filter(|(_, s)| {
-            s.status == "completed"
+            s.status == RunStatus::Completed
                 && (s.test_date.as_str(), s.run_id.as_str()) < (date.as_str(), ctx.run_id)
         })
         .find_map(|(_, s)| s.resistance.as_ref().map(|r| r.dcir_mohm))

@@ -10,10 +10,10 @@ fn info(step: u32, kind: &str) -> StepInfo {
         step,
         phase: "fixture".into(),
         cycle: 1,
-        kind: kind.into(),
+        kind: kind.parse().unwrap(),
         name: None,
         result: None,
-        end_kind: Some("time".into()),
+        end_kind: Some(model::end::EndKind::Time),
         end_reason: None,
     }
 }
@@ -90,8 +90,8 @@ fn rated_capacity_check_value() {
         })
         .collect();
     let mut i = info(1, "discharge");
-    i.result = Some("capacity".into());
-    i.end_kind = Some("voltage_below".into());
+    i.result = Some(model::procedure::ResultTag::Capacity);
+    i.end_kind = Some(model::end::EndKind::VoltageBelow);
     let a = analyze(&samples, &[i], &pack);
     let c = a.capacity.unwrap();
     assert!((c.measured_ah - 2.55).abs() < 1e-9);

@@ -52,7 +52,12 @@ async fn run_sim(p: &Prepared, cfg: &SimConfig, stop: StopHandle) -> (RunReport,
 /// Measured per-step charge and energy against the simulation truth.
 fn worst_discharge_error(r: &RunReport) -> f64 {
     let mut worst: f64 = 0.0;
-    for s in r.summary.steps.iter().filter(|s| s.kind == "discharge") {
+    for s in r
+        .summary
+        .steps
+        .iter()
+        .filter(|s| s.kind == model::procedure::StepType::Discharge)
+    {
         let t = r.outcome.truth.iter().find(|t| t.step == s.step).unwrap();
         worst = worst
             .max(rel(s.charge_ah, t.charge_ah))
@@ -174,7 +179,11 @@ async fn every_shipped_procedure_completes_on_its_cutoff() {
             "{file}: capacity step did not end on its cutoff"
         );
         let step = r.summary.steps.iter().find(|s| s.step == c.step).unwrap();
-        assert_eq!(step.end_kind.as_deref(), Some("voltage_below"), "{file}");
+        assert_eq!(
+            step.end_kind,
+            Some(model::end::EndKind::VoltageBelow),
+            "{file}"
+        );
         assert!(c.from_full_charge, "{file}: {}", c.preceded_by);
         assert!(
             c.soh_pct > 80.0 && c.soh_pct < 100.0,
@@ -182,10 +191,15 @@ async fn every_shipped_procedure_completes_on_its_cutoff() {
             c.soh_pct
         );
         // Charge steps ended on their own end condition, not a cap.
-        for s in r.summary.steps.iter().filter(|s| s.kind == "charge") {
+        for s in r
+            .summary
+            .steps
+            .iter()
+            .filter(|s| s.kind == model::procedure::StepType::Charge)
+        {
             assert_ne!(
-                s.end_kind.as_deref(),
-                Some("time"),
+                s.end_kind,
+                Some(model::end::EndKind::Time),
                 "{file}: charge ran into its time cap"
             );
         }
@@ -199,7 +213,7 @@ fn assert_safe_stop(r: &RunReport, h: &SimHandle, limit: &str) {
     assert!(!h.source_output_on(), "source output still on");
     assert!(!h.load_input_on(), "load input still on");
     assert!(r.outcome.source_off_confirmed && r.outcome.load_off_confirmed);
-    assert_eq!(r.summary.status, "aborted");
+    assert_eq!(r.summary.status, model::status::RunStatus::Aborted);
     assert!(
         r.summary
             .stop_reason
@@ -318,7 +332,7 @@ async fn a_stop_request_interrupts_safely() {
     let (r, h) = run_sim(&p, &SimConfig::default(), stop).await;
     assert_eq!(r.outcome.status, RunState::Interrupted);
     assert_eq!(r.exit_code(), 5);
-    assert_eq!(r.summary.status, "interrupted");
+    assert_eq!(r.summary.status, model::status::RunStatus::Interrupted);
     assert!(!h.load_input_on() && !h.source_output_on());
 }
 
@@ -517,7 +531,7 @@ async fn every_step_kind_and_mode_runs_on_the_simulated_bench() {
         .summary
         .steps
         .iter()
-        .map(|s| s.end_kind.as_deref().unwrap())
+        .map(|s| s.end_kind.unwrap().name())
         .collect();
     assert_eq!(
         ends,
@@ -533,7 +547,12 @@ async fn every_step_kind_and_mode_runs_on_the_simulated_bench() {
     let log = read_samples(&r.run_dir.join("samples.csv")).unwrap();
     // Pulse: samples at the end of each level (before the edge) and just
     // after it (same time, new current), as a two-level resistance reading needs.
-    let pulse = r.summary.steps.iter().find(|s| s.kind == "pulse").unwrap();
+    let pulse = r
+        .summary
+        .steps
+        .iter()
+        .find(|s| s.kind == model::procedure::StepType::Pulse)
+        .unwrap();
     let at = |dt: f64| -> Vec<f64> {
         log.samples
             .iter()
@@ -551,7 +570,7 @@ async fn every_step_kind_and_mode_runs_on_the_simulated_bench() {
         .summary
         .steps
         .iter()
-        .find(|s| s.end_kind.as_deref() == Some("energy"))
+        .find(|s| s.end_kind == Some(model::end::EndKind::Energy))
         .unwrap();
     for s in log.samples.iter().filter(|s| s.step == cp.step) {
         assert!((s.voltage_v * -s.current_a - 100.0).abs() < 0.01, "{s:?}");
@@ -562,7 +581,7 @@ async fn every_step_kind_and_mode_runs_on_the_simulated_bench() {
         .summary
         .steps
         .iter()
-        .find(|s| s.end_kind.as_deref() == Some("charge"))
+        .find(|s| s.end_kind == Some(model::end::EndKind::Charge))
         .unwrap();
     for s in log.samples.iter().filter(|s| s.step == cr.step) {
         // The log keeps 6 decimals.

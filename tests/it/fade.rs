@@ -342,7 +342,7 @@ async fn history_from_runs_counts_cycles_and_leaves_out_aborted_runs() {
     let h = history::load(dir.path(), "H-1", None).unwrap();
     assert_eq!(h.points.len(), 2);
     assert_eq!(h.left_out.len(), 1);
-    assert_eq!(h.left_out[0].status, "aborted");
+    assert_eq!(h.left_out[0].status, model::status::RunStatus::Aborted);
     assert!(h.left_out[0].reason.contains("voltage_max"));
     // Counted cycles: nothing before the first run, then the discharge Ah
     // of the first two runs (the aborted one moved charge too) over 14 Ah.

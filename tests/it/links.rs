@@ -5,7 +5,6 @@
 //! samples kept); bad bench and profile files touch no instrument.
 
 use crate::util::*;
-use engine::state::RunState;
 use record::read::read_samples;
 use record::Summary;
 use std::io::{BufRead, BufReader};
@@ -236,7 +235,7 @@ fn state_log(path: &Path) -> Vec<StateEntry> {
 fn assert_safe_stop_after_fault(code: i32, run: &Path, log: &Path, fault: &str) {
     assert_eq!(code, 3, "{fault}: exit code");
     let s = summary(run);
-    assert_eq!(s.status, RunState::Aborted.name(), "{fault}");
+    assert_eq!(s.status, model::status::RunStatus::Aborted, "{fault}");
     let reason = s.stop_reason.clone().unwrap_or_default();
     assert!(reason.contains("instrument fault"), "{fault}: {reason}");
     let events = std::fs::read_to_string(run.join("events.jsonl")).unwrap();
@@ -346,7 +345,7 @@ fn in_memory_faults_end_in_the_same_safe_stop() {
             run_in_memory(dir.path(), "tests/fixtures/fault-discharge.toml", &[fault]);
         assert_eq!(code, 3, "{fault}");
         let s = summary(&run);
-        assert_eq!(s.status, "aborted", "{fault}");
+        assert_eq!(s.status, model::status::RunStatus::Aborted, "{fault}");
         assert!(
             s.stop_reason
                 .unwrap_or_default()

@@ -15,7 +15,9 @@ pub mod resistance;
 pub mod stream;
 
 use correct::Correction;
+use model::end::EndKind;
 use model::pack::PackSpec;
+use model::procedure::{ResultTag, StepType};
 use model::sample::Sample;
 use pulse::PulseReading;
 use resistance::ResistanceReading;
@@ -38,10 +40,10 @@ pub struct StepInfo {
     pub step: u32,
     pub phase: String,
     pub cycle: u32,
-    pub kind: String,
+    pub kind: StepType,
     pub name: Option<String>,
-    pub result: Option<String>,
-    pub end_kind: Option<String>,
+    pub result: Option<ResultTag>,
+    pub end_kind: Option<EndKind>,
     pub end_reason: Option<String>,
 }
 
@@ -51,7 +53,7 @@ pub struct StepSummary {
     pub step: u32,
     pub phase: String,
     pub cycle: u32,
-    pub kind: String,
+    pub kind: StepType,
     pub name: Option<String>,
     pub samples: usize,
     pub start_s: f64,
@@ -76,7 +78,7 @@ pub struct StepSummary {
     pub max_voltage_v: Option<f64>,
     pub mean_current_a: Option<f64>,
     pub max_temperature_c: Option<f64>,
-    pub end_kind: Option<String>,
+    pub end_kind: Option<EndKind>,
     pub end_reason: Option<String>,
 }
 
@@ -389,10 +391,10 @@ mod tests {
             step: 1,
             phase: "p".into(),
             cycle: 0,
-            kind: "discharge".into(),
+            kind: StepType::Discharge,
             name: None,
-            result: Some("capacity".into()),
-            end_kind: Some("voltage_below".into()),
+            result: Some(ResultTag::Capacity),
+            end_kind: Some(EndKind::VoltageBelow),
             end_reason: None,
         };
         let a = analyze(&samples, &[info], &pack);
@@ -435,10 +437,10 @@ mod tests {
             step,
             phase: "p".into(),
             cycle: 1,
-            kind: kind.into(),
+            kind: kind.parse().unwrap(),
             name: None,
             result: None,
-            end_kind: Some("time".into()),
+            end_kind: Some(EndKind::Time),
             end_reason: None,
         };
         let a = analyze(&samples, &[info(1, "charge"), info(2, "discharge")], &pack);
@@ -464,10 +466,10 @@ mod tests {
             step,
             phase: "p".into(),
             cycle: 1,
-            kind: kind.into(),
+            kind: kind.parse().unwrap(),
             name: None,
-            result: result.map(String::from),
-            end_kind: Some(end.into()),
+            result: result.map(|r| r.parse().unwrap()),
+            end_kind: Some(end.parse().unwrap()),
             end_reason: None,
         }
     }

@@ -19,7 +19,9 @@ use super::{
     IcaSummary, LogQuality, OcvPoint, OcvTable, PeakSummary, Recalibration, ResistanceResult,
     StepInfo, StepSummary,
 };
+use model::end::EndKind;
 use model::pack::PackSpec;
+use model::procedure::{ResultTag, StepType};
 use model::sample::Sample;
 use std::collections::HashMap;
 
@@ -416,7 +418,11 @@ impl<'a> Analyzer<'a> {
             self.close_step();
             let grid = self.new_grid();
             let mut acc = StepAcc::new(s.step, grid, self.ah_since_full);
-            if self.infos.get(&s.step).is_some_and(|i| i.kind == "drain") {
+            if self
+                .infos
+                .get(&s.step)
+                .is_some_and(|i| i.kind == StepType::Drain)
+            {
                 acc.drain = Some(match self.drain_points.take() {
                     Some((step, pts)) if step == s.step => pts,
                     _ => Vec::new(),
@@ -436,9 +442,9 @@ impl<'a> Analyzer<'a> {
     /// current: rest under C/100, else charge or discharge by its sign.
     /// A foreign log's steps get their record here, numbered into cycles
     /// as ours are (a cycle starts at a charge that follows a discharge).
-    fn kind_of(&mut self, step: u32, acc: &StepAcc) -> String {
+    fn kind_of(&mut self, step: u32, acc: &StepAcc) -> StepType {
         if let Some(i) = self.infos.get(&step) {
-            return i.kind.clone();
+            return i.kind;
         }
         let span = acc.active_s();
         let mean = if span > 0.0 {
@@ -447,30 +453,30 @@ impl<'a> Analyzer<'a> {
             0.0
         };
         let kind = if mean.abs() < 0.01 * self.pack.rated_capacity_ah {
-            "rest"
+            StepType::Rest
         } else if mean > 0.0 {
-            "charge"
+            StepType::Charge
         } else {
-            "discharge"
+            StepType::Discharge
         };
-        if kind == "charge" && self.seen_discharge {
+        if kind == StepType::Charge && self.seen_discharge {
             self.cycle += 1;
             self.seen_discharge = false;
         }
-        if kind == "discharge" {
+        if kind == StepType::Discharge {
             self.seen_discharge = true;
         }
         self.set_info(StepInfo {
             step,
             phase: String::new(),
             cycle: self.cycle,
-            kind: kind.into(),
+            kind,
             name: None,
             result: None,
             end_kind: None,
             end_reason: None,
         });
-        kind.into()
+        kind
     }
 
     fn close_step(&mut self) {
@@ -504,12 +510,12 @@ impl<'a> Analyzer<'a> {
             _ => None,
         };
         // Full charge: a charge that ended on its taper or its −ΔV.
-        if kind == "charge" {
+        if kind == StepType::Charge {
             let full = match &info {
                 Some(i) if !self.opts.imported => {
                     matches!(
-                        i.end_kind.as_deref(),
-                        Some("current_below") | Some("peak_drop")
+                        i.end_kind,
+                        Some(EndKind::CurrentBelow) | Some(EndKind::PeakDrop)
                     )
                 }
                 _ => {
@@ -532,15 +538,15 @@ impl<'a> Analyzer<'a> {
         } else {
             0.0
         };
-        if kind == "discharge"
-            && info.as_ref().and_then(|i| i.end_kind.as_deref()) == Some("voltage_below")
+        if kind == StepType::Discharge
+            && info.as_ref().and_then(|i| i.end_kind) == Some(EndKind::VoltageBelow)
         {
             if let Some(q) = self.ah_since_full {
                 self.full_to_empty_ah = Some(q);
             }
         }
-        let tagged = info.as_ref().and_then(|i| i.result.as_deref()) == Some("capacity");
-        let pick = kind == "discharge"
+        let tagged = info.as_ref().and_then(|i| i.result) == Some(ResultTag::Capacity);
+        let pick = kind == StepType::Discharge
             && if self.opts.detect_capacity {
                 acc.g.ah_out > self.best_discharge_ah
             } else {
@@ -556,7 +562,7 @@ impl<'a> Analyzer<'a> {
             full_step: self.full_step,
             mean_current_a: mean_current,
         };
-        if kind == "charge" && acc.g.ah_in > 0.0 {
+        if kind == StepType::Charge && acc.g.ah_in > 0.0 {
             if let Some(old) = self.last_charge.replace(kept) {
                 self.spare_grid = Some(old.grid);
             }
@@ -629,7 +635,7 @@ impl<'a> Analyzer<'a> {
                     step: *step,
                     phase: String::new(),
                     cycle: 0,
-                    kind: "unknown".into(),
+                    kind: StepType::Unknown,
                     name: None,
                     result: None,
                     end_kind: None,
@@ -648,10 +654,10 @@ impl<'a> Analyzer<'a> {
                 }
             }
             summaries.push(step_summary(&info, d));
-            if info.result.as_deref() == Some("dcir") {
+            if info.result == Some(ResultTag::Dcir) {
                 let complete = !matches!(
-                    info.end_kind.as_deref(),
-                    None | Some("aborted") | Some("interrupted")
+                    info.end_kind,
+                    None | Some(EndKind::Aborted) | Some(EndKind::Interrupted)
                 );
                 match d.and_then(|d| d.two_level.clone()) {
                     Some(r) if complete => two_levels.push(r),
@@ -674,8 +680,8 @@ impl<'a> Analyzer<'a> {
             if let Some(s) = s {
                 let complete = self.opts.imported
                     || !matches!(
-                        info.as_ref().and_then(|i| i.end_kind.as_deref()),
-                        None | Some("aborted") | Some("interrupted")
+                        info.as_ref().and_then(|i| i.end_kind),
+                        None | Some(EndKind::Aborted) | Some(EndKind::Interrupted)
                     );
                 if !complete {
                     warnings.push(format!(
@@ -690,7 +696,7 @@ impl<'a> Analyzer<'a> {
                         ));
                         false
                     } else {
-                        info.as_ref().and_then(|i| i.end_kind.as_deref()) == Some("voltage_below")
+                        info.as_ref().and_then(|i| i.end_kind) == Some(EndKind::VoltageBelow)
                     };
                     if !ended_on_cutoff && !self.opts.imported {
                         warnings.push(format!(
@@ -996,7 +1002,7 @@ fn step_summary(info: &StepInfo, d: Option<&StepDone>) -> StepSummary {
         step: info.step,
         phase: info.phase.clone(),
         cycle: info.cycle,
-        kind: info.kind.clone(),
+        kind: info.kind,
         name: info.name.clone(),
         samples: d.map(|d| d.n).unwrap_or(0),
         start_s: start,
@@ -1014,7 +1020,7 @@ fn step_summary(info: &StepInfo, d: Option<&StepDone>) -> StepSummary {
         max_voltage_v: vmax.is_finite().then_some(vmax),
         mean_current_a: mean_current,
         max_temperature_c: d.and_then(|d| d.tmax),
-        end_kind: info.end_kind.clone(),
+        end_kind: info.end_kind,
         end_reason: info.end_reason.clone(),
     }
 }
@@ -1025,8 +1031,8 @@ fn step_summary(info: &StepInfo, d: Option<&StepDone>) -> StepSummary {
 fn finished(s: &StepSummary, imported: bool) -> bool {
     imported
         || !matches!(
-            s.end_kind.as_deref(),
-            None | Some("aborted") | Some("interrupted")
+            s.end_kind,
+            None | Some(EndKind::Aborted) | Some(EndKind::Interrupted)
         )
 }
 
@@ -1041,7 +1047,7 @@ fn cycles_of(
     let mut unfinished: Vec<u32> = Vec::new();
     let mut discharged: Vec<u32> = Vec::new();
     for s in summaries {
-        if !matches!(s.kind.as_str(), "charge" | "discharge") {
+        if !matches!(s.kind, StepType::Charge | StepType::Discharge) {
             continue;
         }
         let c = match cycles.iter_mut().position(|c| c.cycle == s.cycle) {
@@ -1062,7 +1068,7 @@ fn cycles_of(
         };
         if !finished(s, imported) {
             unfinished.push(s.cycle);
-        } else if s.kind == "discharge" {
+        } else if s.kind == StepType::Discharge {
             discharged.push(s.cycle);
         }
         c.charge_ah += s.charge_in_ah;

@@ -428,7 +428,7 @@ impl<'a> Engine<'a> {
             .unwrap_or(RunState::Aborted);
         let _ = self.sink.event(&Event::RunEnd {
             t_s: self.t(),
-            status: state.name().into(),
+            status: state.into(),
             reason: reason.clone(),
         });
         RunOutcome {
@@ -710,10 +710,10 @@ impl<'a> Engine<'a> {
             phase: st.phase.clone(),
             repeat: st.repeat,
             cycle: st.cycle,
-            kind: st.kind.name().into(),
+            kind: st.kind.step_type(),
             name: st.name.clone(),
             description: st.kind.to_string(),
-            result: st.result.map(|r| r.name().to_string()),
+            result: st.result,
         })
     }
 

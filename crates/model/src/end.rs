@@ -25,3 +25,78 @@ pub enum EndKind {
     /// The run was interrupted (Ctrl-C) in this step.
     Interrupted,
 }
+
+impl EndKind {
+    pub const ALL: [EndKind; 13] = [
+        EndKind::VoltageAbove,
+        EndKind::VoltageBelow,
+        EndKind::CurrentBelow,
+        EndKind::Time,
+        EndKind::Charge,
+        EndKind::Energy,
+        EndKind::TemperatureAbove,
+        EndKind::Settled,
+        EndKind::PeakDrop,
+        EndKind::TemperatureSettled,
+        EndKind::LevelsDone,
+        EndKind::Aborted,
+        EndKind::Interrupted,
+    ];
+
+    /// The name records use (the serde spelling).
+    pub fn name(&self) -> &'static str {
+        match self {
+            EndKind::VoltageAbove => "voltage_above",
+            EndKind::VoltageBelow => "voltage_below",
+            EndKind::CurrentBelow => "current_below",
+            EndKind::Time => "time",
+            EndKind::Charge => "charge",
+            EndKind::Energy => "energy",
+            EndKind::TemperatureAbove => "temperature_above",
+            EndKind::Settled => "settled",
+            EndKind::PeakDrop => "peak_drop",
+            EndKind::TemperatureSettled => "temperature_settled",
+            EndKind::LevelsDone => "levels_done",
+            EndKind::Aborted => "aborted",
+            EndKind::Interrupted => "interrupted",
+        }
+    }
+
+    /// The run stopped in this step (a safety stop, a fault, Ctrl-C).
+    pub fn is_stop(&self) -> bool {
+        matches!(self, EndKind::Aborted | EndKind::Interrupted)
+    }
+}
+
+impl std::str::FromStr for EndKind {
+    type Err = String;
+    fn from_str(s: &str) -> Result<EndKind, String> {
+        EndKind::ALL
+            .into_iter()
+            .find(|k| k.name() == s)
+            .ok_or_else(|| format!("'{s}' is no end kind"))
+    }
+}
+
+impl std::fmt::Display for EndKind {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.name())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The names are the serde spellings on disk.
+    #[test]
+    fn names_are_the_recorded_spellings() {
+        for k in EndKind::ALL {
+            let json = serde_json::to_string(&k).unwrap();
+            assert_eq!(json, format!("\"{}\"", k.name()));
+            assert_eq!(serde_json::from_str::<EndKind>(&json).unwrap(), k);
+            assert_eq!(k.name().parse::<EndKind>(), Ok(k));
+        }
+        assert!("voltage".parse::<EndKind>().is_err());
+    }
+}

@@ -2,7 +2,9 @@
 //! a sink; the run log, progress displays and test collectors are sinks.
 
 pub use model::end::EndKind;
+use model::procedure::{ResultTag, StepType};
 use model::sample::Sample;
+use model::status::RunStatus;
 use serde::{Deserialize, Serialize};
 
 /// One line of `events.jsonl`.
@@ -19,10 +21,10 @@ pub enum Event {
         phase: String,
         repeat: u32,
         cycle: u32,
-        kind: String,
+        kind: StepType,
         name: Option<String>,
         description: String,
-        result: Option<String>,
+        result: Option<ResultTag>,
     },
     StepEnd {
         t_s: f64,
@@ -55,7 +57,7 @@ pub enum Event {
     },
     RunEnd {
         t_s: f64,
-        status: String,
+        status: RunStatus,
         reason: Option<String>,
     },
     /// Read before the first step, outputs off: the pack at rest and each

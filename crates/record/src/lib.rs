@@ -23,7 +23,8 @@ use analysis::{
     CapacityResult, CurvesSummary, CycleSummary, Gap, LogQuality, Recalibration, ResistanceResult,
     StepSummary,
 };
-use model::pack::PackSpec;
+use model::pack::{Chemistry, PackSpec};
+use model::status::RunStatus;
 use serde::{Deserialize, Serialize};
 
 pub const SAMPLES_CSV: &str = "samples.csv";
@@ -53,7 +54,7 @@ pub const CSV_COLUMNS: [&str; 6] = [
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Summary {
     /// `completed`, `aborted` or `interrupted`.
-    pub status: String,
+    pub status: RunStatus,
     pub stop_reason: Option<String>,
     pub pack_id: String,
     pub run_id: String,
@@ -133,7 +134,7 @@ pub struct ResumeNote {
 /// The pack spec as it appears in JSON records.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct PackSummary {
-    pub chemistry: String,
+    pub chemistry: Chemistry,
     pub series: u32,
     pub rated_capacity_ah: f64,
     pub rated_energy_wh: Option<f64>,
@@ -144,7 +145,7 @@ pub struct PackSummary {
 impl From<&PackSpec> for PackSummary {
     fn from(p: &PackSpec) -> Self {
         PackSummary {
-            chemistry: p.chemistry.to_string(),
+            chemistry: p.chemistry,
             series: p.series,
             rated_capacity_ah: p.rated_capacity_ah,
             rated_energy_wh: p.rated_energy_wh,

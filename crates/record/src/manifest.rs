@@ -3,6 +3,7 @@
 
 use crate::PackSummary;
 use model::simconfig::SimConfig;
+use model::status::RunStatus;
 use model::truth::TruthStep;
 use serde::{Deserialize, Serialize};
 
@@ -16,7 +17,7 @@ pub struct Manifest {
     pub finished_utc: Option<String>,
     pub test_date: String,
     pub cycle_count: Option<f64>,
-    pub status: String,
+    pub status: RunStatus,
     pub stop_reason: Option<String>,
     pub procedure: ProcedureRecord,
     pub pack: PackSummary,

@@ -171,9 +171,9 @@ pub fn step_infos(events: &[Event]) -> Vec<StepInfo> {
                 step: *step,
                 phase: phase.clone(),
                 cycle: *cycle,
-                kind: kind.clone(),
+                kind: *kind,
                 name: name.clone(),
-                result: result.clone(),
+                result: *result,
                 end_kind: None,
                 end_reason: None,
             }),
@@ -184,9 +184,7 @@ pub fn step_infos(events: &[Event]) -> Vec<StepInfo> {
                 ..
             } => {
                 if let Some(s) = out.iter_mut().rev().find(|s| s.step == *step) {
-                    s.end_kind = serde_json::to_value(end_kind)
-                        .ok()
-                        .and_then(|v| v.as_str().map(str::to_string));
+                    s.end_kind = Some(*end_kind);
                     s.end_reason = Some(end_reason.clone());
                 }
             }

@@ -56,7 +56,7 @@ fn grade_card(s: &Summary) -> String {
         "<div class=\"card\"><div class=\"grade\">{}</div><b>Pack {}</b><br>{} {}S, rated {} Ah<br>tested {}",
         escape(label),
         escape(&s.pack_id),
-        escape(&s.pack.chemistry),
+        s.pack.chemistry.name(),
         s.pack.series,
         s.pack.rated_capacity_ah,
         escape(&s.test_date)
@@ -209,7 +209,7 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
         escape(&s.procedure_title),
         escape(&s.test_date),
         escape(&s.run_id),
-        st = escape(&s.status)
+        st = s.status.name()
     );
     if let Some(r) = &s.stop_reason {
         let _ = write!(b, "<p class=\"flag\">Stopped: {}</p>", escape(r));
@@ -486,7 +486,7 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
             "<tr><td>{}</td><td class=\"l\">{}</td><td class=\"l\">{}</td><td>{}</td><td>{}</td><td>{:.4}</td><td>{:.3}</td><td>{}</td><td>{}</td><td>{}</td><td class=\"l\">{}</td></tr>",
             st.step,
             escape(&st.phase),
-            escape(&st.kind),
+            st.kind.name(),
             st.cycle,
             HumanDuration(st.duration_s),
             st.charge_ah,
@@ -821,7 +821,7 @@ pub fn pack_report(
                 b,
                 "<li>{} — {}: {}</li>",
                 escape(&l.run_id),
-                escape(&l.status),
+                l.status.name(),
                 escape(&l.reason)
             );
         }
@@ -862,7 +862,7 @@ pub fn fleet_report(fleet: &Fleet, histories: &[PackHistory], title: &str) -> St
             "<tr><td>{}</td><td class=\"l\">{}</td><td class=\"l\">{} {}S</td><td>{}</td><td class=\"l\">{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td class=\"l\">{}</td><td class=\"l\"><b>{}</b></td><td class=\"l flag\">{}</td></tr>",
             r.rank,
             escape(&r.pack_id),
-            escape(&r.chemistry),
+            r.chemistry.name(),
             r.series,
             r.tests,
             r.last_test.map(|d| d.to_string()).unwrap_or_default(),

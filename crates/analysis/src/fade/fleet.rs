@@ -5,13 +5,14 @@
 use super::history::PackHistory;
 use super::trend::{self, FadeAnalysis, ModelKind};
 use chrono::NaiveDate;
+use model::pack::Chemistry;
 use serde::Serialize;
 
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct FleetRow {
     pub rank: usize,
     pub pack_id: String,
-    pub chemistry: String,
+    pub chemistry: Chemistry,
     pub series: u32,
     pub rated_capacity_ah: f64,
     pub tests: usize,
@@ -63,7 +64,7 @@ pub fn row(h: &PackHistory, fade: &FadeAnalysis, today: NaiveDate, interval_days
     FleetRow {
         rank: 0,
         pack_id: h.pack_id.clone(),
-        chemistry: h.spec.chemistry.to_string(),
+        chemistry: h.spec.chemistry,
         series: h.spec.series,
         rated_capacity_ah: h.spec.rated_capacity_ah,
         tests: h.points.len(),
@@ -147,7 +148,7 @@ pub fn to_csv(f: &Fleet) -> Result<String, csv::Error> {
         w.write_record([
             r.rank.to_string(),
             r.pack_id.clone(),
-            r.chemistry.clone(),
+            r.chemistry.to_string(),
             r.series.to_string(),
             format!("{}", r.rated_capacity_ah),
             r.tests.to_string(),

@@ -4,6 +4,7 @@
 
 use chrono::NaiveDate;
 use model::pack::PackSpec;
+use model::status::RunStatus;
 use serde::Serialize;
 use std::path::PathBuf;
 
@@ -29,7 +30,7 @@ pub struct HistoryPoint {
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct LeftOut {
     pub run_id: String,
-    pub status: String,
+    pub status: RunStatus,
     pub reason: String,
 }
 

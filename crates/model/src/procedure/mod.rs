@@ -8,7 +8,7 @@ pub mod validate;
 
 pub use plan::{
     DischargeMode, EndCondition, Envelope, FineSampling, OffsetPolicy, Plan, PlanStep, PulseLevel,
-    ResultTag, StepKind,
+    ResultTag, StepKind, StepType,
 };
 
 use crate::location::{InputErrors, LocatedError, Location};

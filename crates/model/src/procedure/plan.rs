@@ -3,7 +3,7 @@
 
 use crate::pack::PackSpec;
 use crate::units::HumanDuration;
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 use std::fmt;
 
 /// The safety envelope, checked on every sample of every step.
@@ -62,13 +62,67 @@ pub enum StepKind {
 
 impl StepKind {
     pub fn name(&self) -> &'static str {
+        self.step_type().name()
+    }
+
+    /// The kind without its setpoints.
+    pub fn step_type(&self) -> StepType {
         match self {
-            StepKind::Charge { .. } => "charge",
-            StepKind::Discharge { .. } => "discharge",
-            StepKind::Rest => "rest",
-            StepKind::Pulse { .. } => "pulse",
-            StepKind::Drain { .. } => "drain",
+            StepKind::Charge { .. } => StepType::Charge,
+            StepKind::Discharge { .. } => StepType::Discharge,
+            StepKind::Rest => StepType::Rest,
+            StepKind::Pulse { .. } => StepType::Pulse,
+            StepKind::Drain { .. } => StepType::Drain,
         }
+    }
+}
+
+/// A step's kind without its setpoints, as records and logs name it.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum StepType {
+    Charge,
+    Discharge,
+    Rest,
+    Pulse,
+    Drain,
+    /// A step whose kind its record does not say (its start event lost).
+    Unknown,
+}
+
+impl StepType {
+    pub fn name(&self) -> &'static str {
+        match self {
+            StepType::Charge => "charge",
+            StepType::Discharge => "discharge",
+            StepType::Rest => "rest",
+            StepType::Pulse => "pulse",
+            StepType::Drain => "drain",
+            StepType::Unknown => "unknown",
+        }
+    }
+}
+
+impl std::str::FromStr for StepType {
+    type Err = String;
+    fn from_str(s: &str) -> Result<StepType, String> {
+        [
+            StepType::Charge,
+            StepType::Discharge,
+            StepType::Rest,
+            StepType::Pulse,
+            StepType::Drain,
+            StepType::Unknown,
+        ]
+        .into_iter()
+        .find(|k| k.name() == s)
+        .ok_or_else(|| format!("'{s}' is no step kind"))
+    }
+}
+
+impl fmt::Display for StepType {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.name())
     }
 }
 
@@ -143,7 +197,7 @@ impl fmt::Display for EndCondition {
 }
 
 /// What a tagged step's result stands for.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum ResultTag {
     Capacity,
@@ -157,6 +211,22 @@ impl ResultTag {
             ResultTag::Capacity => "capacity",
             ResultTag::Dcir => "dcir",
         }
+    }
+}
+
+impl std::str::FromStr for ResultTag {
+    type Err = String;
+    fn from_str(s: &str) -> Result<ResultTag, String> {
+        [ResultTag::Capacity, ResultTag::Dcir]
+            .into_iter()
+            .find(|k| k.name() == s)
+            .ok_or_else(|| format!("'{s}' is no result tag"))
+    }
+}
+
+impl fmt::Display for ResultTag {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.name())
     }
 }
 
@@ -362,5 +432,30 @@ impl fmt::Display for Plan {
             writeln!(f)?;
         }
         Ok(())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Step kinds and result tags keep their spellings on disk.
+    #[test]
+    fn step_types_and_tags_keep_their_spellings() {
+        for (k, name) in [
+            (StepType::Charge, "charge"),
+            (StepType::Discharge, "discharge"),
+            (StepType::Rest, "rest"),
+            (StepType::Pulse, "pulse"),
+            (StepType::Drain, "drain"),
+            (StepType::Unknown, "unknown"),
+        ] {
+            assert_eq!(serde_json::to_string(&k).unwrap(), format!("\"{name}\""));
+            assert_eq!(name.parse::<StepType>(), Ok(k));
+        }
+        assert_eq!(StepKind::Rest.step_type(), StepType::Rest);
+        assert_eq!(serde_json::to_string(&ResultTag::Dcir).unwrap(), "\"dcir\"");
+        assert_eq!("capacity".parse::<ResultTag>(), Ok(ResultTag::Capacity));
+        assert!("soh".parse::<ResultTag>().is_err());
     }
 }
