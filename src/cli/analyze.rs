@@ -3,6 +3,7 @@
 
 use crate::cli::args::pack_from_args;
 use crate::cli::args::PackArgs;
+use crate::cli::exit::ExitCode;
 use crate::session::summary::ForeignLog;
 use crate::session::summary::SummaryContext;
 use analysis::correct::CorrectionPolicy;
@@ -312,7 +313,7 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
 }
 
 /// `packbench analyze`.
-pub fn cmd_analyze(a: AnalyzeArgs) -> anyhow::Result<i32> {
+pub fn cmd_analyze(a: AnalyzeArgs) -> anyhow::Result<ExitCode> {
     let (s, data) = analyze(&a)?;
     if let Some(dir) = &a.curves_dir {
         write_curves(dir, &data)?;
@@ -327,7 +328,7 @@ pub fn cmd_analyze(a: AnalyzeArgs) -> anyhow::Result<i32> {
             writeln!(out, "  Curves: {}", dir.display())?;
         }
     }
-    Ok(0)
+    Ok(ExitCode::Ok)
 }
 
 #[derive(Debug, Args)]
@@ -338,7 +339,7 @@ pub struct PeukertArgs {
 
 /// `packbench peukert RUN_A RUN_B`: k = ln(t2/t1) / ln(I1/I2) from the two
 /// capacity steps (standards fact sheet §5).
-pub fn cmd_peukert(a: PeukertArgs) -> anyhow::Result<i32> {
+pub fn cmd_peukert(a: PeukertArgs) -> anyhow::Result<ExitCode> {
     if a.runs.len() != 2 {
         bail!("give exactly two run folders");
     }
@@ -374,5 +375,5 @@ pub fn cmd_peukert(a: PeukertArgs) -> anyhow::Result<i32> {
         pts[0].2, pts[0].0, pts[0].1, pts[1].0, pts[1].1
     );
     println!("use it with: packbench analyze RUN --peukert-k {k:.3}");
-    Ok(0)
+    Ok(ExitCode::Ok)
 }

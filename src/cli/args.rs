@@ -42,9 +42,7 @@ pub fn pack_from_args(a: &PackArgs) -> Result<Option<PackSpec>, RunError> {
     }
     if a.chemistry.is_none() && a.series.is_none() && a.rated.is_none() {
         if a.rated_energy.is_some() || a.rated_rate.is_some() || a.rated_resistance.is_some() {
-            return Err(RunError::Pack(
-                "--rated-energy, --rated-rate and --rated-resistance need --chemistry, --series and --rated".into(),
-            ));
+            return Err(RunError::arguments("--rated-energy, --rated-rate and --rated-resistance need --chemistry, --series and --rated"));
         }
         return Ok(None);
     }
@@ -58,7 +56,7 @@ pub fn pack_from_args(a: &PackArgs) -> Result<Option<PackSpec>, RunError> {
     .map(|(n, _)| *n)
     .collect();
     if !missing.is_empty() {
-        return Err(RunError::Pack(format!(
+        return Err(RunError::arguments(format!(
             "a pack spec needs {}",
             missing.join(", ")
         )));
@@ -68,27 +66,27 @@ pub fn pack_from_args(a: &PackArgs) -> Result<Option<PackSpec>, RunError> {
         .as_deref()
         .unwrap_or_default()
         .parse()
-        .map_err(RunError::Pack)?;
+        .map_err(RunError::arguments)?;
     let rated = units::capacity_ah(a.rated.as_deref().unwrap_or_default())
-        .map_err(|e| RunError::Pack(format!("--rated: {e}")))?;
+        .map_err(|e| RunError::arguments(format!("--rated: {e}")))?;
     let energy = a
         .rated_energy
         .as_deref()
         .map(units::energy_wh)
         .transpose()
-        .map_err(|e| RunError::Pack(format!("--rated-energy: {e}")))?;
+        .map_err(|e| RunError::arguments(format!("--rated-energy: {e}")))?;
     let rate = a
         .rated_rate
         .as_deref()
         .map(parse_rate)
         .transpose()
-        .map_err(|e| RunError::Pack(format!("--rated-rate: {e}")))?;
+        .map_err(|e| RunError::arguments(format!("--rated-rate: {e}")))?;
     let resistance = a
         .rated_resistance
         .as_deref()
         .map(units::resistance_ohm)
         .transpose()
-        .map_err(|e| RunError::Pack(format!("--rated-resistance: {e}")))?
+        .map_err(|e| RunError::arguments(format!("--rated-resistance: {e}")))?
         .map(|r| r * 1000.0);
     let spec = PackSpec {
         rated_resistance_mohm: resistance,
@@ -98,7 +96,7 @@ pub fn pack_from_args(a: &PackArgs) -> Result<Option<PackSpec>, RunError> {
         rated_energy_wh: energy,
         rated_rate_c: rate,
     };
-    spec.check().map_err(RunError::Pack)?;
+    spec.check().map_err(RunError::arguments)?;
     Ok(Some(spec))
 }
 
@@ -111,10 +109,8 @@ pub fn sim_config(
 ) -> Result<SimConfig, RunError> {
     let mut cfg = match path {
         Some(path) => {
-            let text = model::procedure::read_text(path).map_err(|source| RunError::InputFile {
-                path: path.to_path_buf(),
-                error: source,
-            })?;
+            let text = model::procedure::read_text(path)
+                .map_err(crate::session::error::input_file_err(path))?;
             SimConfig::from_toml(path, &text)?
         }
         None => SimConfig::default(),
@@ -123,7 +119,9 @@ pub fn sim_config(
         cfg.ideal = true;
     }
     for f in faults {
-        cfg.faults.link.push(f.parse().map_err(RunError::Pack)?);
+        cfg.faults
+            .link
+            .push(f.parse().map_err(RunError::arguments)?);
     }
     Ok(cfg)
 }
@@ -134,7 +132,7 @@ pub fn parse_speed(s: &str) -> Result<Speed, RunError> {
     }
     match s.parse::<f64>() {
         Ok(f) if f.is_finite() && f > 0.0 && f <= 1e6 => Ok(Speed::Factor(f)),
-        _ => Err(RunError::Pack(format!(
+        _ => Err(RunError::arguments(format!(
             "--speed '{s}': expected max or a number of bench seconds per second (1 = real time)"
         ))),
     }
@@ -155,7 +153,7 @@ pub fn display_mode(
     }
     match units::duration(status_every) {
         Ok(s) if s >= 0.1 => Ok(crate::session::live::DisplayMode::Lines(s)),
-        _ => Err(RunError::Pack(format!(
+        _ => Err(RunError::arguments(format!(
             "--status-every '{status_every}': expected a duration of 0.1 s or more, e.g. 60s"
         ))),
     }
@@ -163,13 +161,13 @@ pub fn display_mode(
 
 pub fn parse_date(s: &str) -> Result<NaiveDate, RunError> {
     NaiveDate::parse_from_str(s.trim(), "%Y-%m-%d")
-        .map_err(|_| RunError::Pack(format!("'{s}' is not a date; expected YYYY-MM-DD")))
+        .map_err(|_| RunError::arguments(format!("'{s}' is not a date; expected YYYY-MM-DD")))
 }
 
 pub fn parse_threshold(s: &str) -> Result<f64, RunError> {
     match units::parse(s) {
         Ok(units::Quantity::Percent(p)) if p > 0.0 && p < 100.0 => Ok(p),
-        _ => Err(RunError::Pack(format!(
+        _ => Err(RunError::arguments(format!(
             "threshold '{s}': expected a percentage such as 80%"
         ))),
     }

@@ -3,7 +3,7 @@
 use crate::cli::args::pack_from_args;
 use crate::cli::args::sim_config;
 use crate::cli::args::PackArgs;
-use crate::cli::exit::EXIT_OK;
+use crate::cli::exit::ExitCode;
 use crate::session::error::RunError;
 use crate::session::request::PackSource;
 use clap::Args;
@@ -34,7 +34,7 @@ pub struct CheckArgs {
 }
 
 /// `packbench check`.
-pub fn cmd_check(a: CheckArgs) -> anyhow::Result<i32> {
+pub fn cmd_check(a: CheckArgs) -> anyhow::Result<ExitCode> {
     let given = pack_from_args(&a.pack_args)?;
     let (pack, note) = match (&a.pack, given) {
         (Some(id), g) => {
@@ -88,5 +88,5 @@ pub fn cmd_check(a: CheckArgs) -> anyhow::Result<i32> {
             println!("  warning: {w}");
         }
     }
-    Ok(EXIT_OK)
+    Ok(ExitCode::Ok)
 }

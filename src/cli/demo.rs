@@ -7,7 +7,7 @@
 //!
 //! Everything here is invented for the demo.
 
-use crate::cli::exit::EXIT_OK;
+use crate::cli::exit::ExitCode;
 use crate::session::error::RunError;
 use crate::session::request::PackSource;
 use crate::session::request::RunOptions;
@@ -380,7 +380,7 @@ pub struct DemoArgs {
 }
 
 /// `packbench demo`.
-pub fn cmd_demo(a: DemoArgs) -> anyhow::Result<i32> {
+pub fn cmd_demo(a: DemoArgs) -> anyhow::Result<ExitCode> {
     let t = std::time::Instant::now();
     let d = crate::cli::demo::run_demo(&a.out)?;
     print!("{}", report::text::fleet(&d.fleet));
@@ -399,5 +399,5 @@ pub fn cmd_demo(a: DemoArgs) -> anyhow::Result<i32> {
         "Run reports and grades:  {}",
         d.results.join("<pack>/<run>/report.html").display()
     );
-    Ok(EXIT_OK)
+    Ok(ExitCode::Ok)
 }

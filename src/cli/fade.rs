@@ -3,7 +3,7 @@
 use crate::cli::args::interval_days;
 use crate::cli::args::parse_date;
 use crate::cli::args::parse_threshold;
-use crate::cli::exit::EXIT_OK;
+use crate::cli::exit::ExitCode;
 use crate::session::error::RunError;
 use analysis::fade::{fleet, trend};
 use anyhow::Context;
@@ -67,7 +67,7 @@ pub struct FleetArgs {
 }
 
 /// `packbench report`.
-pub fn cmd_report(a: ReportArgs) -> anyhow::Result<i32> {
+pub fn cmd_report(a: ReportArgs) -> anyhow::Result<ExitCode> {
     let summary_path = a.run_dir.join(record::SUMMARY_JSON);
     let text = std::fs::read_to_string(&summary_path)
         .with_context(|| format!("reading {}", summary_path.display()))?;
@@ -82,11 +82,11 @@ pub fn cmd_report(a: ReportArgs) -> anyhow::Result<i32> {
     .with_context(|| format!("writing {}", out.display()))?;
     print!("{}", report::text::summary(&summary));
     println!("  Report: {}", out.display());
-    Ok(EXIT_OK)
+    Ok(ExitCode::Ok)
 }
 
 /// `packbench fade`.
-pub fn cmd_fade(a: FadeArgs) -> anyhow::Result<i32> {
+pub fn cmd_fade(a: FadeArgs) -> anyhow::Result<ExitCode> {
     let threshold = parse_threshold(&a.threshold)?;
     let h = history::load(&a.results, &a.pack, a.history.as_deref())?;
     let mut fa = trend::analyze(&h, threshold);
@@ -117,14 +117,14 @@ pub fn cmd_fade(a: FadeArgs) -> anyhow::Result<i32> {
         print!("{}", report::text::fade(&h, &fa));
         println!("  Report: {}", out.display());
     }
-    Ok(EXIT_OK)
+    Ok(ExitCode::Ok)
 }
 
 /// `packbench fleet`.
-pub fn cmd_fleet(a: FleetArgs) -> anyhow::Result<i32> {
+pub fn cmd_fleet(a: FleetArgs) -> anyhow::Result<ExitCode> {
     let threshold = parse_threshold(&a.threshold)?;
     let interval = interval_days(&a.interval).ok_or_else(|| {
-        RunError::Pack(format!(
+        RunError::arguments(format!(
             "--interval '{}': expected a duration of at least a day, in days or weeks, e.g. 92d or 13w",
             a.interval
         ))
@@ -149,5 +149,5 @@ pub fn cmd_fleet(a: FleetArgs) -> anyhow::Result<i32> {
     } else {
         print!("{}", report::text::fleet(&f));
     }
-    Ok(EXIT_OK)
+    Ok(ExitCode::Ok)
 }

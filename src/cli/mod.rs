@@ -15,9 +15,7 @@ use crate::cli::check::cmd_check;
 use crate::cli::check::CheckArgs;
 use crate::cli::demo::cmd_demo;
 use crate::cli::demo::DemoArgs;
-use crate::cli::exit::EXIT_BAD_INPUT;
-use crate::cli::exit::EXIT_FAILURE;
-use crate::cli::exit::EXIT_OK;
+use crate::cli::exit::ExitCode;
 use crate::cli::fade::cmd_fade;
 use crate::cli::fade::cmd_fleet;
 use crate::cli::fade::cmd_report;
@@ -79,15 +77,16 @@ pub fn main() -> i32 {
         Err(e) => {
             let _ = e.print();
             return if e.use_stderr() {
-                EXIT_BAD_INPUT
+                ExitCode::BadInput
             } else {
-                EXIT_OK
-            };
+                ExitCode::Ok
+            }
+            .code();
         }
     };
     let result = match cli.command {
-        Command::Run(a) => return cmd_run(a),
-        Command::Resume(a) => return cmd_resume(a),
+        Command::Run(a) => return cmd_run(a).code(),
+        Command::Resume(a) => return cmd_resume(a).code(),
         Command::Check(a) => cmd_check(a).context("check failed"),
         Command::Report(a) => cmd_report(a).context("report failed"),
         Command::Fade(a) => cmd_fade(a).context("fade analysis failed"),
@@ -100,7 +99,7 @@ pub fn main() -> i32 {
         Command::Sim(a) => crate::cli::setup::cmd_sim(a).context("sim failed"),
     };
     match result {
-        Ok(code) => code,
+        Ok(code) => code.code(),
         Err(e) => {
             // A pack, run folder, log or history file that is missing or
             // malformed is bad input, whatever the command.
@@ -109,9 +108,9 @@ pub fn main() -> i32 {
                 || e.downcast_ref::<record::read::ReadError>().is_some();
             eprintln!("error: {:#}", anyhow!(e));
             if input {
-                EXIT_BAD_INPUT
+                ExitCode::BadInput.code()
             } else {
-                EXIT_FAILURE
+                ExitCode::Failure.code()
             }
         }
     }

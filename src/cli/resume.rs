@@ -3,10 +3,9 @@
 use crate::cli::args::display_mode;
 use crate::cli::args::parse_speed;
 use crate::cli::exit::report_error;
-use crate::cli::exit::EXIT_FAILURE;
+use crate::cli::exit::ExitCode;
 use crate::cli::run::print_result;
 use crate::cli::run::run_stations;
-use crate::cli::run::several_exit;
 use crate::cli::run::station_end_lines;
 use crate::cli::run::StationFuture;
 use crate::cli::run::StationTask;
@@ -44,7 +43,7 @@ pub struct ResumeArgs {
 }
 
 /// `packbench resume`.
-pub fn cmd_resume(a: ResumeArgs) -> i32 {
+pub fn cmd_resume(a: ResumeArgs) -> ExitCode {
     match &a.run_dir {
         Some(dir) => resume_one(&a, dir),
         None => resume_bench(&a),
@@ -66,7 +65,7 @@ fn resume_options(a: &ResumeArgs) -> Result<(Option<Speed>, Option<Policy>), Run
 }
 
 /// Resume one run folder.
-fn resume_one(a: &ResumeArgs, run_dir: &Path) -> i32 {
+fn resume_one(a: &ResumeArgs, run_dir: &Path) -> ExitCode {
     let setup = resume_options(a).and_then(|(speed, policy)| {
         crate::session::resume::prepare(run_dir, a.bench.as_deref(), speed, policy)
     });
@@ -109,12 +108,12 @@ fn resume_one(a: &ResumeArgs, run_dir: &Path) -> i32 {
     let Some(result) =
         run_stations(vec![board], mode, vec![task]).and_then(|r| r.into_iter().next())
     else {
-        return EXIT_FAILURE;
+        return ExitCode::Failure;
     };
     match result {
         Ok(r) => {
             print_result(&r, a.quiet);
-            r.exit_code()
+            ExitCode::of_report(&r)
         }
         Err(e) => report_error(&e),
     }
@@ -123,16 +122,16 @@ fn resume_one(a: &ResumeArgs, run_dir: &Path) -> i32 {
 /// `resume --bench FILE`: every station of the bench whose pack's latest
 /// run was interrupted (or its process died), all checked before any is
 /// resumed, then run at once as `run` runs them.
-fn resume_bench(a: &ResumeArgs) -> i32 {
+fn resume_bench(a: &ResumeArgs) -> ExitCode {
     let setups = (|| -> Result<Vec<(String, crate::session::resume::ResumeSetup)>, RunError> {
         let Some(file) = &a.bench else {
-            return Err(RunError::Pack("give a run folder or --bench FILE".into()));
+            return Err(RunError::arguments("give a run folder or --bench FILE"));
         };
         let (speed, policy) = resume_options(a)?;
         let bench = crate::session::benchfile::BenchFile::load(file)?;
         let found = crate::session::resume::interrupted_runs(&bench, &a.results)?;
         if found.is_empty() {
-            return Err(RunError::Pack(format!(
+            return Err(RunError::arguments(format!(
                 "no interrupted run of {}'s stations under {}: nothing to resume",
                 file.display(),
                 a.results.display()
@@ -177,8 +176,7 @@ fn resume_bench(a: &ResumeArgs) -> i32 {
         })
         .collect();
     let Some(results) = run_stations(boards, mode, tasks) else {
-        return EXIT_FAILURE;
+        return ExitCode::Failure;
     };
-    let (failed, aborted, interrupted) = station_end_lines(&names, &results);
-    several_exit(failed, aborted, interrupted)
+    ExitCode::worst(station_end_lines(&names, &results))
 }

@@ -8,10 +8,9 @@ use crate::cli::args::parse_threshold;
 use crate::cli::args::sim_config;
 use crate::cli::args::PackArgs;
 use crate::cli::exit::report_error;
-use crate::cli::exit::EXIT_FAILURE;
-use crate::cli::exit::EXIT_OK;
-use crate::cli::exit::EXIT_SECOND_INTERRUPT;
+use crate::cli::exit::ExitCode;
 use crate::session;
+use crate::session::error::Failure;
 use crate::session::error::RunError;
 use crate::session::request::PackSource;
 use crate::session::request::RunOptions;
@@ -93,22 +92,20 @@ pub fn prepare_run(a: &RunArgs) -> Result<Vec<crate::session::request::StationJo
     }
     if let Some(c) = a.cycle_count {
         if !(c.is_finite() && c >= 0.0) {
-            return Err(RunError::Pack(format!(
+            return Err(RunError::arguments(format!(
                 "--cycle-count {c}: expected a count of 0 or more"
             )));
         }
         options.cycle_count = Some(c);
     }
     if let Some(path) = &a.policy {
-        let text = model::procedure::read_text(path).map_err(|source| RunError::InputFile {
-            path: path.clone(),
-            error: source,
-        })?;
+        let text = model::procedure::read_text(path)
+            .map_err(crate::session::error::input_file_err(path))?;
         options.policy = Policy::from_toml(path, &text)?;
     }
     if let Some(t) = &a.alarm_below {
         options.alarm_below_pct = Some(parse_threshold(t).map_err(|_| {
-            RunError::Pack(format!(
+            RunError::arguments(format!(
                 "--alarm-below '{t}': expected a percentage of the rated capacity, e.g. 80%"
             ))
         })?);
@@ -119,7 +116,7 @@ pub fn prepare_run(a: &RunArgs) -> Result<Vec<crate::session::request::StationJo
         let pack_id = a
             .pack
             .clone()
-            .ok_or_else(|| RunError::Pack("--pack is needed: the pack's id".into()))?;
+            .ok_or_else(|| RunError::arguments("--pack is needed: the pack's id"))?;
         let req = RunRequest {
             procedure: a.procedure.clone(),
             pack_id: pack_id.clone(),
@@ -148,13 +145,13 @@ pub fn prepare_run(a: &RunArgs) -> Result<Vec<crate::session::request::StationJo
     let bench = crate::session::benchfile::BenchFile::load(path)?;
     let stations: Vec<crate::session::benchfile::StationSpec> =
         match (&a.station, bench.stations.len()) {
-            (Some(n), _) => vec![bench.station(Some(n)).map_err(RunError::Pack)?.clone()],
+            (Some(n), _) => vec![bench.station(Some(n)).map_err(RunError::arguments)?.clone()],
             (None, 1) => vec![bench.stations[0].clone()],
             (None, _) => bench.stations.clone(),
         };
     let several = stations.len() > 1;
     if several && (a.pack.is_some() || given.is_some()) {
-        return Err(RunError::Pack(format!(
+        return Err(RunError::arguments(format!(
             "{} has {} stations: each names its pack (pack = \"...\", pack_spec = \"...\"); --pack and the pack options are for one station (--station NAME)",
             path.display(),
             stations.len()
@@ -166,7 +163,7 @@ pub fn prepare_run(a: &RunArgs) -> Result<Vec<crate::session::request::StationJo
             (Some(p), _) => p.clone(),
             (None, Some(p)) => p.clone(),
             (None, None) => {
-                return Err(RunError::Pack(format!(
+                return Err(RunError::arguments(format!(
                     "station '{}' names no pack: give --pack or pack = \"...\" in {}",
                     st.name,
                     path.display()
@@ -197,9 +194,7 @@ pub fn prepare_run(a: &RunArgs) -> Result<Vec<crate::session::request::StationJo
             None => cfg.clone(),
         };
         if !st.is_simulated() && (a.sim_config.is_some() || a.sim_ideal || !a.fault.is_empty()) {
-            return Err(RunError::Pack(
-                "--sim-config, --sim-ideal and --fault are for the embedded simulated bench (links \"sim\"), not for real instruments".into(),
-            ));
+            return Err(RunError::arguments("--sim-config, --sim-ideal and --fault are for the embedded simulated bench (links \"sim\"), not for real instruments"));
         }
         let speed = match (speed, st.is_simulated()) {
             (Speed::Max, false) => Speed::Factor(1.0),
@@ -218,7 +213,7 @@ pub fn prepare_run(a: &RunArgs) -> Result<Vec<crate::session::request::StationJo
         let mut seen = std::collections::HashSet::new();
         for j in &jobs {
             if !seen.insert(j.prepared.pack_dir.clone()) {
-                return Err(RunError::Pack(format!(
+                return Err(RunError::arguments(format!(
                     "pack '{}' is on two stations at once",
                     j.prepared.pack_id
                 )));
@@ -230,7 +225,7 @@ pub fn prepare_run(a: &RunArgs) -> Result<Vec<crate::session::request::StationJo
 
 /// `packbench run`: one station, or every station of a bench file at once
 /// (one task each, each with its own results folder and envelope).
-pub fn cmd_run(a: RunArgs) -> i32 {
+pub fn cmd_run(a: RunArgs) -> ExitCode {
     let (jobs, mode) =
         match prepare_run(&a).and_then(|j| Ok((j, display_mode(a.quiet, &a.status_every)?))) {
             Ok(x) => x,
@@ -262,24 +257,24 @@ pub fn cmd_run(a: RunArgs) -> i32 {
         })
         .collect();
     let Some(results) = run_stations(boards, mode, tasks) else {
-        return EXIT_FAILURE;
+        return ExitCode::Failure;
     };
     if !several {
         return match results.into_iter().next() {
             Some(Ok(r)) => {
                 print_result(&r, a.quiet);
-                r.exit_code()
+                ExitCode::of_report(&r)
             }
             Some(Err(e)) => report_error(&e),
-            None => EXIT_FAILURE,
+            None => ExitCode::Failure,
         };
     }
     let names: Vec<(String, String)> = jobs
         .iter()
         .map(|j| (j.name.clone(), j.prepared.pack_id.clone()))
         .collect();
-    let (failed, aborted, interrupted) = station_end_lines(&names, &results);
-    if interrupted {
+    let codes = station_end_lines(&names, &results);
+    if codes.contains(&ExitCode::Interrupted) {
         if let Some(b) = &a.bench {
             println!(
                 "To go on with these stations: packbench resume --bench {} --results {}",
@@ -288,7 +283,7 @@ pub fn cmd_run(a: RunArgs) -> i32 {
             );
         }
     }
-    several_exit(failed, aborted, interrupted)
+    ExitCode::worst(codes)
 }
 
 /// One station's work, started on the shared thread with the stop handle
@@ -332,7 +327,7 @@ pub fn run_stations(
         for (t, board) in running.into_iter().zip(&boards) {
             out.push(match t.await {
                 Ok(r) => r,
-                Err(e) => Err(RunError::Pack(format!("station task failed: {e}"))),
+                Err(e) => Err(Failure::StationTask(e.to_string()).into()),
             });
             board.update(|l| {
                 if !l.is_final() {
@@ -345,44 +340,26 @@ pub fn run_stations(
     }))
 }
 
-/// One end line per station (name, pack); whether any failed, aborted or
-/// was interrupted.
+/// One end line per station (name, pack); each station's exit code (a
+/// station that failed to run is a failure).
 pub fn station_end_lines(
     names: &[(String, String)],
     results: &[Result<crate::session::request::RunReport, RunError>],
-) -> (bool, bool, bool) {
-    let (mut failed, mut aborted, mut interrupted) = (false, false, false);
+) -> Vec<ExitCode> {
+    let mut codes = Vec::new();
     for ((name, pack), r) in names.iter().zip(results) {
         match r {
             Ok(r) => {
-                match r.exit_code() {
-                    0 => {}
-                    5 => interrupted = true,
-                    _ => aborted = true,
-                }
+                codes.push(ExitCode::of_report(r));
                 println!("{}", station_line(name, pack, r));
             }
             Err(e) => {
-                failed = true;
+                codes.push(ExitCode::Failure);
                 println!("{name:<12} {pack:<10} failed      {e}");
             }
         }
     }
-    (failed, aborted, interrupted)
-}
-
-/// The exit code of several stations: 1 if any failed, else 3 if any
-/// aborted, else 5 if any was interrupted.
-pub fn several_exit(failed: bool, aborted: bool, interrupted: bool) -> i32 {
-    if failed {
-        EXIT_FAILURE
-    } else if aborted {
-        3
-    } else if interrupted {
-        5
-    } else {
-        EXIT_OK
-    }
+    codes
 }
 
 /// The figures a run ends with, on one line: the capacity measured, the
@@ -445,7 +422,7 @@ pub fn spawn_interrupts(stop: StopHandle, em: crate::session::emergency::Emergen
                     }
                 );
             }
-            std::process::exit(EXIT_SECOND_INTERRUPT);
+            std::process::exit(ExitCode::SecondInterrupt.code());
         }
     });
 }
@@ -462,7 +439,7 @@ pub fn print_result(r: &crate::session::request::RunReport, quiet: bool) {
         print!("{}", report::text::summary(&r.summary));
         println!("  Results: {}", r.run_dir.display());
     }
-    if r.exit_code() == 5 {
+    if ExitCode::of_report(r) == ExitCode::Interrupted {
         println!(
             "To go on with this run: packbench resume {}",
             shell_word(&r.run_dir.display().to_string())

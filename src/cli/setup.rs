@@ -5,6 +5,7 @@
 
 use crate::cli::args::pack_from_args;
 use crate::cli::args::PackArgs;
+use crate::cli::exit::ExitCode;
 use engine::clock::{Clock, PacedClock};
 use instrument::profile::Profile;
 use instrument::scpi::{self, Session};
@@ -89,7 +90,7 @@ pub struct ServeArgs {
 }
 
 /// `packbench ports`.
-pub fn cmd_ports() -> anyhow::Result<i32> {
+pub fn cmd_ports() -> anyhow::Result<ExitCode> {
     let ports = transport::list_ports().map_err(|e| anyhow!("cannot list serial ports: {e}"))?;
     if ports.is_empty() {
         println!("no serial ports found");
@@ -97,7 +98,7 @@ pub fn cmd_ports() -> anyhow::Result<i32> {
     for p in ports {
         println!("{:<24} {}", p.path, p.kind);
     }
-    Ok(0)
+    Ok(ExitCode::Ok)
 }
 
 fn load_profile(name: &str) -> anyhow::Result<Profile> {
@@ -112,7 +113,7 @@ fn load_profile(name: &str) -> anyhow::Result<Profile> {
 
 /// `packbench probe`: identify, error queue, voltage and current. Sends no
 /// setting and leaves outputs as they are.
-pub fn cmd_probe(a: ProbeArgs) -> anyhow::Result<i32> {
+pub fn cmd_probe(a: ProbeArgs) -> anyhow::Result<ExitCode> {
     let spec: LinkSpec = a
         .link
         .parse()
@@ -194,10 +195,10 @@ pub fn cmd_probe(a: ProbeArgs) -> anyhow::Result<i32> {
         }
         if failures > 0 {
             println!("{failures} check(s) failed: check wiring, link settings and profile");
-            Ok::<i32, anyhow::Error>(1)
+            Ok::<ExitCode, anyhow::Error>(ExitCode::Failure)
         } else {
             println!("OK: link and profile answer as expected");
-            Ok(0)
+            Ok(ExitCode::Ok)
         }
     })
 }
@@ -213,13 +214,13 @@ fn parse_role(s: &str) -> anyhow::Result<SimRole> {
 }
 
 /// `packbench sim ...`.
-pub fn cmd_sim(a: SimArgs) -> anyhow::Result<i32> {
+pub fn cmd_sim(a: SimArgs) -> anyhow::Result<ExitCode> {
     match a.command {
         SimCommand::Serve(s) => cmd_serve(s),
     }
 }
 
-fn cmd_serve(a: ServeArgs) -> anyhow::Result<i32> {
+fn cmd_serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
     let roles: Vec<SimRole> = a
         .role
         .iter()
@@ -336,7 +337,7 @@ fn cmd_serve(a: ServeArgs) -> anyhow::Result<i32> {
         let _ = tokio::signal::ctrl_c().await;
     });
     let _ = server;
-    Ok(0)
+    Ok(ExitCode::Ok)
 }
 
 #[cfg(test)]

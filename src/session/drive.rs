@@ -2,6 +2,7 @@
 //! hand over to the record.
 
 use crate::session::error::io_err;
+use crate::session::error::Failure;
 use crate::session::error::RunError;
 use crate::session::finish::finish_record;
 use crate::session::links::BenchLinks;
@@ -264,7 +265,7 @@ pub async fn drive(
                     l.alarms.push(format!("could not connect: {e}"));
                 });
             }
-            return Err(RunError::Instrument(e));
+            return Err(e.into());
         }
     };
     if manifest.instruments.is_empty() {
@@ -334,7 +335,7 @@ pub async fn drive(
     let p = p.clone();
     tokio::task::spawn_blocking(move || finish_record(&p, &dir, &run_id, manifest, outcome, sim))
         .await
-        .map_err(|e| RunError::Pack(format!("writing the record failed: {e}")))?
+        .map_err(|e| RunError::from(Failure::RecordTask(e.to_string())))?
 }
 
 /// A station's links with its clock, and on the simulated bench its truth

@@ -35,7 +35,7 @@ pub fn resolve_pack(
         None
     };
     match (source, saved) {
-        (PackSource::Given(g), Some(s)) if *g != s => Err(RunError::Pack(format!(
+        (PackSource::Given(g), Some(s)) if *g != s => Err(RunError::arguments(format!(
             "pack '{pack_id}' was first tested as {} {}S {} Ah ({}); give the same spec, leave it out to reuse it, or use a new pack id",
             s.chemistry,
             s.series,
@@ -55,7 +55,7 @@ pub fn resolve_pack(
                 )),
             ))
         }
-        (PackSource::Saved { allow_sim_default: false }, None) => Err(RunError::Pack(format!(
+        (PackSource::Saved { allow_sim_default: false }, None) => Err(RunError::arguments(format!(
             "no pack spec for '{pack_id}': give --chemistry, --series and --rated, or --pack-spec FILE"
         ))),
     }
@@ -159,7 +159,7 @@ pub fn check_ranges(p: &LoadedProcedure, source: &Profile, load: &Profile) -> Re
     if errors.is_empty() {
         Ok(())
     } else {
-        Err(RunError::Input(InputErrors(errors)))
+        Err(InputErrors(errors).into())
     }
 }
 

@@ -8,7 +8,6 @@ use chrono::NaiveDate;
 use engine::RunOutcome;
 use model::pack::{Chemistry, PackSpec};
 use model::procedure::LoadedProcedure;
-use model::status::RunState;
 use record::Summary;
 use sim::{self, SimConfig};
 use std::path::PathBuf;
@@ -117,17 +116,6 @@ pub struct RunReport {
     pub run_dir: PathBuf,
     pub summary: Summary,
     pub outcome: RunOutcome,
-}
-
-impl RunReport {
-    /// Exit code: 0 completed, 3 aborted (safety stop or fault), 5 interrupted.
-    pub fn exit_code(&self) -> i32 {
-        match self.outcome.status {
-            RunState::Completed => 0,
-            RunState::Interrupted => 5,
-            _ => 3,
-        }
-    }
 }
 
 /// One station's run in a request: what to run, where, and its board.

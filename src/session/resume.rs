@@ -36,6 +36,8 @@
 //!   its charge by itself); the resumed bench starts from that state, left
 //!   open-circuit for the gap.
 
+use crate::session::error::io_err;
+use crate::session::error::InputError;
 use crate::session::error::RunError;
 use crate::session::links::SIMULATED;
 use crate::session::request::Prepared;
@@ -84,14 +86,7 @@ pub struct ResumeSetup {
 }
 
 fn bad(msg: String) -> RunError {
-    RunError::Pack(msg)
-}
-
-fn io_err(path: &Path) -> impl FnOnce(std::io::Error) -> RunError + '_ {
-    move |source| RunError::Io {
-        path: path.to_path_buf(),
-        error: source,
-    }
+    RunError::Input(InputError::NotResumable(msg))
 }
 
 /// Whether a process with this id is alive (a lock left by a dead one is

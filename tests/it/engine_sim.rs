@@ -209,7 +209,7 @@ async fn every_shipped_procedure_completes_on_its_cutoff() {
 /// Checks common to every safety stop.
 fn assert_safe_stop(r: &RunReport, h: &SimHandle, limit: &str) {
     assert_eq!(r.outcome.status, RunState::Aborted);
-    assert_eq!(r.exit_code(), 3);
+    assert_eq!(packbench::cli::exit::ExitCode::of_report(r).code(), 3);
     assert!(!h.source_output_on(), "source output still on");
     assert!(!h.load_input_on(), "load input still on");
     assert!(r.outcome.source_off_confirmed && r.outcome.load_off_confirmed);
@@ -331,7 +331,7 @@ async fn a_stop_request_interrupts_safely() {
     stop.request_stop();
     let (r, h) = run_sim(&p, &SimConfig::default(), stop).await;
     assert_eq!(r.outcome.status, RunState::Interrupted);
-    assert_eq!(r.exit_code(), 5);
+    assert_eq!(packbench::cli::exit::ExitCode::of_report(&r).code(), 5);
     assert_eq!(r.summary.status, model::status::RunStatus::Interrupted);
     assert!(!h.load_input_on() && !h.source_output_on());
 }
