@@ -363,358 +363,451 @@ fn reachable(kind: &StepKind, c: &EndCondition, env: &Envelope, pack: &PackSpec)
     }
 }
 
+/// The setpoint keys each step kind takes (besides `kind`, `name`,
+/// `ends`, `result` and `every`, which every kind takes). Any other
+/// setpoint key on a step is an error, not silently ignored.
+pub const STEP_KEYS: [(StepType, &[&str]); 5] = [
+    (StepType::Charge, &["current", "voltage"]),
+    (
+        StepType::Discharge,
+        &["mode", "current", "power", "resistance"],
+    ),
+    (StepType::Rest, &[]),
+    (StepType::Pulse, &["levels"]),
+    (StepType::Drain, &["current"]),
+];
+
+/// The setpoint keys a raw step holds, with their places.
+fn setpoint_keys(st: &RawStep) -> Vec<(&'static str, std::ops::Range<usize>)> {
+    let mut out = Vec::new();
+    for (key, v) in [
+        ("mode", &st.mode),
+        ("current", &st.current),
+        ("voltage", &st.voltage),
+        ("power", &st.power),
+        ("resistance", &st.resistance),
+    ] {
+        if let Some(t) = v {
+            out.push((key, t.span()));
+        }
+    }
+    if let Some(l) = &st.levels {
+        out.push(("levels", l.span()));
+    }
+    out
+}
+
+/// Report every setpoint key the step's kind does not take.
+fn check_keys(cx: &mut Ctx, st: &RawStep, kind: StepType) {
+    let allowed = STEP_KEYS
+        .iter()
+        .find(|(k, _)| *k == kind)
+        .map_or(&[][..], |(_, keys)| *keys);
+    for (key, span) in setpoint_keys(st) {
+        if !allowed.contains(&key) {
+            cx.err(&span, format!("a {} step takes no '{key}'", kind.name()));
+        }
+    }
+}
+
+/// A current setpoint: a positive magnitude inside the envelope.
+fn current_setpoint(cx: &mut Ctx, t: &Text, env: &Envelope, rated_ah: f64) -> Option<f64> {
+    let a = cx.unit(t, units::current)?.resolve(rated_ah);
+    if !(a > 0.0 && a.is_finite()) {
+        cx.err(
+            &t.span(),
+            format!(
+                "current must be a positive magnitude (the step kind sets the direction), got '{}'",
+                t.get_ref()
+            ),
+        );
+        return None;
+    }
+    if a > env.current_max_a {
+        cx.err(
+            &t.span(),
+            format!(
+                "current {a:.3} A is outside the envelope (current_max {:.3} A)",
+                env.current_max_a
+            ),
+        );
+        return None;
+    }
+    Some(a)
+}
+
+fn build_charge(
+    cx: &mut Ctx,
+    raw: &Spanned<RawStep>,
+    env: &Envelope,
+    pack: &PackSpec,
+) -> Option<StepKind> {
+    let (span, st) = (raw.span(), raw.get_ref());
+    let current = match &st.current {
+        Some(t) => current_setpoint(cx, t, env, pack.rated_capacity_ah),
+        None => {
+            cx.err(
+                &span,
+                "a charge step needs a current, e.g. current = \"0.5C\"",
+            );
+            None
+        }
+    };
+    let voltage = match &st.voltage {
+        Some(t) => cx
+            .unit(t, units::voltage)
+            .map(|v| (t, v.resolve(pack.series))),
+        None => {
+            cx.err(
+                &span,
+                "a charge step needs a voltage limit, e.g. voltage = \"4.2V/cell\"",
+            );
+            None
+        }
+    };
+    let voltage = voltage.and_then(|(t, v)| {
+        if v >= env.voltage_max_v {
+            cx.err(
+                &t.span(),
+                format!(
+                    "charge voltage {v:.3} V is outside the envelope (must be below voltage_max {:.3} V)",
+                    env.voltage_max_v
+                ),
+            );
+            None
+        } else if v <= env.voltage_min_v {
+            cx.err(
+                &t.span(),
+                format!(
+                    "charge voltage {v:.3} V is below the envelope's voltage_min {:.3} V",
+                    env.voltage_min_v
+                ),
+            );
+            None
+        } else {
+            Some(v)
+        }
+    });
+    Some(StepKind::Charge {
+        current_a: current?,
+        voltage_v: voltage?,
+    })
+}
+
+/// The setpoint keys of each discharge mode: a mode's step takes no other
+/// mode's setpoint.
+const DISCHARGE_MODE_KEYS: [(&str, &str); 3] = [
+    ("current", "current"),
+    ("power", "power"),
+    ("resistance", "resistance"),
+];
+
+fn build_discharge(
+    cx: &mut Ctx,
+    raw: &Spanned<RawStep>,
+    env: &Envelope,
+    pack: &PackSpec,
+) -> Option<StepKind> {
+    let (span, st) = (raw.span(), raw.get_ref());
+    let mode = st
+        .mode
+        .as_ref()
+        .map(|m| m.get_ref().trim().to_ascii_lowercase())
+        .unwrap_or_else(|| "current".into());
+    if DISCHARGE_MODE_KEYS.iter().any(|(m, _)| *m == mode) {
+        for (m, key) in DISCHARGE_MODE_KEYS {
+            let v = match key {
+                "current" => &st.current,
+                "power" => &st.power,
+                _ => &st.resistance,
+            };
+            if let (Some(t), true) = (v, m != mode) {
+                cx.err(&t.span(), format!("a discharge step takes no '{key}'"));
+            }
+        }
+    }
+    let load = match mode.as_str() {
+        "current" => match &st.current {
+            Some(t) => current_setpoint(cx, t, env, pack.rated_capacity_ah)
+                .map(|a| DischargeMode::Current { current_a: a }),
+            None => {
+                cx.err(
+                    &span,
+                    "a constant-current discharge needs a current, e.g. current = \"0.2C\"",
+                );
+                None
+            }
+        },
+        "power" => match &st.power {
+            Some(t) => discharge_power(cx, t, env, pack.series),
+            None => {
+                cx.err(&span, "a constant-power discharge needs power = \"...W\"");
+                None
+            }
+        },
+        "resistance" => match &st.resistance {
+            Some(t) => discharge_resistance(cx, t, env),
+            None => {
+                cx.err(
+                    &span,
+                    "a constant-resistance discharge needs resistance = \"...ohm\"",
+                );
+                None
+            }
+        },
+        other => {
+            if let Some(m) = &st.mode {
+                cx.err(
+                    &m.span(),
+                    format!(
+                        "unknown discharge mode '{other}'; expected current, power or resistance"
+                    ),
+                );
+            }
+            None
+        }
+    };
+    Some(StepKind::Discharge { load: load? })
+}
+
+/// A constant-power load: at the lowest allowed voltage its current is
+/// highest, and that must be inside the envelope.
+fn discharge_power(cx: &mut Ctx, t: &Text, env: &Envelope, series: u32) -> Option<DischargeMode> {
+    let p = cx.unit(t, units::power).map(|p| p.resolve(series))?;
+    let p = positive(cx, t, p, "power")?;
+    let worst = p / env.voltage_min_v;
+    if worst > env.current_max_a {
+        cx.err(
+            &t.span(),
+            format!(
+                "power {p:.2} W draws {worst:.3} A at voltage_min, outside the envelope (current_max {:.3} A)",
+                env.current_max_a
+            ),
+        );
+        return None;
+    }
+    Some(DischargeMode::Power { power_w: p })
+}
+
+/// A constant-resistance load: at the highest allowed voltage its current
+/// is highest, and that must be inside the envelope.
+fn discharge_resistance(cx: &mut Ctx, t: &Text, env: &Envelope) -> Option<DischargeMode> {
+    let r = cx.unit(t, units::resistance_ohm)?;
+    let r = positive(cx, t, r, "resistance")?;
+    let worst = env.voltage_max_v / r;
+    if worst > env.current_max_a {
+        cx.err(
+            &t.span(),
+            format!(
+                "resistance {r:.4} ohm draws {worst:.3} A at voltage_max, outside the envelope (current_max {:.3} A)",
+                env.current_max_a
+            ),
+        );
+        return None;
+    }
+    Some(DischargeMode::Resistance { resistance_ohm: r })
+}
+
+/// The source's current limit while it holds the voltage: small, so a
+/// wrong voltage cannot push much charge either way.
+fn build_drain(cx: &mut Ctx, st: &RawStep, env: &Envelope, pack: &PackSpec) -> Option<StepKind> {
+    let limit = match &st.current {
+        Some(t) => current_setpoint(cx, t, env, pack.rated_capacity_ah)?,
+        None => DRAIN_LIMIT_DEFAULT_A.min(env.current_max_a),
+    };
+    Some(StepKind::Drain {
+        current_limit_a: limit,
+    })
+}
+
+fn build_pulse(
+    cx: &mut Ctx,
+    raw: &Spanned<RawStep>,
+    env: &Envelope,
+    pack: &PackSpec,
+) -> Option<StepKind> {
+    let (span, st) = (raw.span(), raw.get_ref());
+    let Some(levels) = &st.levels else {
+        cx.err(
+            &span,
+            "a pulse step needs levels, e.g. levels = [{ current = \"-0.2C\", duration = \"10s\" }]",
+        );
+        return None;
+    };
+    if levels.get_ref().is_empty() {
+        cx.err(&levels.span(), "a pulse step needs at least one level");
+    }
+    let mut out = Vec::new();
+    for l in levels.get_ref() {
+        let lv = l.get_ref();
+        let a = cx
+            .unit(&lv.current, units::current)
+            .map(|c| c.resolve(pack.rated_capacity_ah));
+        let d = cx
+            .unit(&lv.duration, units::duration)
+            .and_then(|d| positive(cx, &lv.duration, d, "duration"));
+        if let Some(a) = a {
+            if a.abs() > env.current_max_a {
+                cx.err(
+                    &lv.current.span(),
+                    format!(
+                        "pulse current {a:.3} A is outside the envelope (current_max {:.3} A)",
+                        env.current_max_a
+                    ),
+                );
+                continue;
+            }
+        }
+        if let (Some(a), Some(d)) = (a, d) {
+            out.push(PulseLevel {
+                current_a: a,
+                duration_s: d,
+            });
+        }
+    }
+    Some(StepKind::Pulse { levels: out })
+}
+
+/// A step's end conditions; thresholds beyond the envelope would never be
+/// met before a trip and are errors.
+fn step_ends(cx: &mut Ctx, st: &RawStep, env: &Envelope, pack: &PackSpec) -> Vec<EndCondition> {
+    let mut ends = Vec::new();
+    for t in &st.ends {
+        let Some(c) = parse_end(cx, t, pack) else {
+            continue;
+        };
+        match c {
+            EndCondition::VoltageBelow { voltage_v } if voltage_v <= env.voltage_min_v => cx.err(
+                &t.span(),
+                format!(
+                    "cutoff {voltage_v:.3} V is outside the envelope (must be above voltage_min {:.3} V)",
+                    env.voltage_min_v
+                ),
+            ),
+            EndCondition::VoltageAbove { voltage_v } if voltage_v >= env.voltage_max_v => cx.err(
+                &t.span(),
+                format!(
+                    "end voltage {voltage_v:.3} V is outside the envelope (must be below voltage_max {:.3} V)",
+                    env.voltage_max_v
+                ),
+            ),
+            EndCondition::TemperatureAbove { celsius } if celsius >= env.temperature_max_c => cx.err(
+                &t.span(),
+                format!(
+                    "end temperature {celsius} degC is at or above the envelope's temperature_max {} degC",
+                    env.temperature_max_c
+                ),
+            ),
+            _ => ends.push(c),
+        }
+    }
+    ends
+}
+
+/// A step's result tag, on a step that can give it.
+fn result_tag(cx: &mut Ctx, st: &RawStep, kind: &StepKind) -> Option<ResultTag> {
+    let t = st.result.as_ref()?;
+    match t.get_ref().trim() {
+        "capacity" => {
+            if !matches!(kind, StepKind::Discharge { .. }) {
+                cx.err(
+                    &t.span(),
+                    "result = \"capacity\" belongs on a discharge step",
+                );
+            }
+            Some(ResultTag::Capacity)
+        }
+        "dcir" => {
+            let ok = matches!(kind, StepKind::Pulse { levels } if levels.len() >= 2
+                && (levels[0].current_a - levels[1].current_a).abs() > 0.0);
+            if !ok {
+                cx.err(
+                    &t.span(),
+                    "result = \"dcir\" belongs on a pulse step whose first two levels differ in current",
+                );
+            }
+            Some(ResultTag::Dcir)
+        }
+        other => {
+            cx.err(
+                &t.span(),
+                format!("unknown result tag '{other}'; expected \"capacity\" or \"dcir\""),
+            );
+            None
+        }
+    }
+}
+
+/// A step none of whose end conditions its setpoints can reach would only
+/// stop on the envelope's step time cap: an error, with what it can end on.
+fn check_can_end(
+    cx: &mut Ctx,
+    span: &std::ops::Range<usize>,
+    kind: &StepKind,
+    ends: &[EndCondition],
+    env: &Envelope,
+    pack: &PackSpec,
+) {
+    let can_end = matches!(kind, StepKind::Pulse { .. })
+        || ends.iter().any(|c| reachable(kind, c, env, pack));
+    if can_end {
+        return;
+    }
+    let hint = match kind {
+        StepKind::Charge { .. } => "a charge step can end on current < (taper below its current), voltage > (below its voltage limit), charge >, energy >, peak_drop > (NiMH only) or time >",
+        StepKind::Discharge { .. } => "a discharge step can end on voltage < (above voltage_min), charge >, energy > or time >",
+        StepKind::Rest => "a rest can end on time >, dv/dt < or dT/dt <",
+        StepKind::Drain { .. } => "a drain step ends on time > (it measures over a set time)",
+        StepKind::Pulse { .. } => "",
+    };
+    cx.err(
+        span,
+        format!(
+            "this {} step cannot end: none of its end conditions can be reached with its setpoints; {hint}",
+            kind.name()
+        ),
+    );
+}
+
+/// Build one step: its kind (one builder per kind), its ends, its result
+/// tag, and whether it can end at all.
 fn build_step(
     cx: &mut Ctx,
     raw: &Spanned<RawStep>,
     env: &Envelope,
     pack: &PackSpec,
 ) -> Option<BuiltStep> {
-    let span = raw.span();
     let st = raw.get_ref();
-    let series = pack.series;
-    let rated = pack.rated_capacity_ah;
-    let kind_name = st.kind.get_ref().trim().to_ascii_lowercase();
     let errors_before = cx.errors.len();
-    // Keys that do not belong to the kind are errors, not silently ignored.
-    let forbid = |cx: &mut Ctx, v: &Option<Text>, key: &str| {
-        if let Some(t) = v {
-            cx.err(&t.span(), format!("a {kind_name} step takes no '{key}'"));
-        }
+    let kind_name = st.kind.get_ref().trim().to_ascii_lowercase();
+    let Ok(step_type) = kind_name.parse::<StepType>() else {
+        cx.err(
+            &st.kind.span(),
+            format!(
+                "unknown step kind '{kind_name}'; expected charge, discharge, rest, pulse or drain"
+            ),
+        );
+        return None;
     };
-    let current_sp = |cx: &mut Ctx, t: &Text| -> Option<f64> {
-        let a = cx.unit(t, units::current)?.resolve(rated);
-        if !(a > 0.0 && a.is_finite()) {
-            cx.err(
-                &t.span(),
-                format!(
-                    "current must be a positive magnitude (the step kind sets the direction), got '{}'",
-                    t.get_ref()
-                ),
-            );
-            return None;
-        }
-        if a > env.current_max_a {
-            cx.err(
-                &t.span(),
-                format!(
-                    "current {a:.3} A is outside the envelope (current_max {:.3} A)",
-                    env.current_max_a
-                ),
-            );
-            return None;
-        }
-        Some(a)
-    };
-    let kind = match kind_name.as_str() {
-        "charge" => {
-            forbid(cx, &st.mode, "mode");
-            forbid(cx, &st.power, "power");
-            forbid(cx, &st.resistance, "resistance");
-            let current = match &st.current {
-                Some(t) => current_sp(cx, t),
-                None => {
-                    cx.err(
-                        &span,
-                        "a charge step needs a current, e.g. current = \"0.5C\"",
-                    );
-                    None
-                }
-            };
-            let voltage = match &st.voltage {
-                Some(t) => cx.unit(t, units::voltage).map(|v| (t, v.resolve(series))),
-                None => {
-                    cx.err(
-                        &span,
-                        "a charge step needs a voltage limit, e.g. voltage = \"4.2V/cell\"",
-                    );
-                    None
-                }
-            };
-            let voltage = voltage.and_then(|(t, v)| {
-                if v >= env.voltage_max_v {
-                    cx.err(
-                        &t.span(),
-                        format!(
-                            "charge voltage {v:.3} V is outside the envelope (must be below voltage_max {:.3} V)",
-                            env.voltage_max_v
-                        ),
-                    );
-                    None
-                } else if v <= env.voltage_min_v {
-                    cx.err(
-                        &t.span(),
-                        format!(
-                            "charge voltage {v:.3} V is below the envelope's voltage_min {:.3} V",
-                            env.voltage_min_v
-                        ),
-                    );
-                    None
-                } else {
-                    Some(v)
-                }
-            });
-            StepKind::Charge {
-                current_a: current?,
-                voltage_v: voltage?,
-            }
-        }
-        "discharge" => {
-            forbid(cx, &st.voltage, "voltage");
-            let mode = st
-                .mode
-                .as_ref()
-                .map(|m| m.get_ref().trim().to_ascii_lowercase())
-                .unwrap_or_else(|| "current".into());
-            let load = match mode.as_str() {
-                "current" => {
-                    forbid(cx, &st.power, "power");
-                    forbid(cx, &st.resistance, "resistance");
-                    match &st.current {
-                        Some(t) => {
-                            current_sp(cx, t).map(|a| DischargeMode::Current { current_a: a })
-                        }
-                        None => {
-                            cx.err(&span, "a constant-current discharge needs a current, e.g. current = \"0.2C\"");
-                            None
-                        }
-                    }
-                }
-                "power" => {
-                    forbid(cx, &st.current, "current");
-                    forbid(cx, &st.resistance, "resistance");
-                    match &st.power {
-                        Some(t) => cx
-                            .unit(t, units::power)
-                            .map(|p| p.resolve(series))
-                            .and_then(|p| positive(cx, t, p, "power"))
-                            .and_then(|p| {
-                                // At the lowest allowed voltage the current is highest.
-                                let worst = p / env.voltage_min_v;
-                                if worst > env.current_max_a {
-                                    cx.err(&t.span(), format!(
-                                        "power {p:.2} W draws {worst:.3} A at voltage_min, outside the envelope (current_max {:.3} A)",
-                                        env.current_max_a));
-                                    None
-                                } else {
-                                    Some(DischargeMode::Power { power_w: p })
-                                }
-                            }),
-                        None => {
-                            cx.err(&span, "a constant-power discharge needs power = \"...W\"");
-                            None
-                        }
-                    }
-                }
-                "resistance" => {
-                    forbid(cx, &st.current, "current");
-                    forbid(cx, &st.power, "power");
-                    match &st.resistance {
-                        Some(t) => cx
-                            .unit(t, units::resistance_ohm)
-                            .and_then(|r| positive(cx, t, r, "resistance"))
-                            .and_then(|r| {
-                                let worst = env.voltage_max_v / r;
-                                if worst > env.current_max_a {
-                                    cx.err(&t.span(), format!(
-                                        "resistance {r:.4} ohm draws {worst:.3} A at voltage_max, outside the envelope (current_max {:.3} A)",
-                                        env.current_max_a));
-                                    None
-                                } else {
-                                    Some(DischargeMode::Resistance { resistance_ohm: r })
-                                }
-                            }),
-                        None => {
-                            cx.err(&span, "a constant-resistance discharge needs resistance = \"...ohm\"");
-                            None
-                        }
-                    }
-                }
-                other => {
-                    if let Some(m) = &st.mode {
-                        cx.err(
-                            &m.span(),
-                            format!("unknown discharge mode '{other}'; expected current, power or resistance"),
-                        );
-                    }
-                    None
-                }
-            };
-            StepKind::Discharge { load: load? }
-        }
-        "rest" => {
-            for (v, k) in [
-                (&st.current, "current"),
-                (&st.voltage, "voltage"),
-                (&st.power, "power"),
-                (&st.resistance, "resistance"),
-                (&st.mode, "mode"),
-            ] {
-                forbid(cx, v, k);
-            }
-            StepKind::Rest
-        }
-        "drain" => {
-            for (v, k) in [
-                (&st.voltage, "voltage"),
-                (&st.power, "power"),
-                (&st.resistance, "resistance"),
-                (&st.mode, "mode"),
-            ] {
-                forbid(cx, v, k);
-            }
-            // The source's current limit while it holds the voltage: small,
-            // so a wrong voltage cannot push much charge either way.
-            let limit = match &st.current {
-                Some(t) => current_sp(cx, t)?,
-                None => DRAIN_LIMIT_DEFAULT_A.min(env.current_max_a),
-            };
-            StepKind::Drain {
-                current_limit_a: limit,
-            }
-        }
-        "pulse" => {
-            for (v, k) in [
-                (&st.current, "current"),
-                (&st.voltage, "voltage"),
-                (&st.power, "power"),
-                (&st.resistance, "resistance"),
-                (&st.mode, "mode"),
-            ] {
-                forbid(cx, v, k);
-            }
-            let Some(levels) = &st.levels else {
-                cx.err(
-                    &span,
-                    "a pulse step needs levels, e.g. levels = [{ current = \"-0.2C\", duration = \"10s\" }]",
-                );
-                return None;
-            };
-            if levels.get_ref().is_empty() {
-                cx.err(&levels.span(), "a pulse step needs at least one level");
-            }
-            let mut out = Vec::new();
-            for l in levels.get_ref() {
-                let lv = l.get_ref();
-                let a = cx
-                    .unit(&lv.current, units::current)
-                    .map(|c| c.resolve(rated));
-                let d = cx
-                    .unit(&lv.duration, units::duration)
-                    .and_then(|d| positive(cx, &lv.duration, d, "duration"));
-                if let Some(a) = a {
-                    if a.abs() > env.current_max_a {
-                        cx.err(
-                            &lv.current.span(),
-                            format!(
-                                "pulse current {a:.3} A is outside the envelope (current_max {:.3} A)",
-                                env.current_max_a
-                            ),
-                        );
-                        continue;
-                    }
-                }
-                if let (Some(a), Some(d)) = (a, d) {
-                    out.push(PulseLevel {
-                        current_a: a,
-                        duration_s: d,
-                    });
-                }
-            }
-            StepKind::Pulse { levels: out }
-        }
-        other => {
+    check_keys(cx, st, step_type);
+    let kind = match step_type {
+        StepType::Charge => build_charge(cx, raw, env, pack),
+        StepType::Discharge => build_discharge(cx, raw, env, pack),
+        StepType::Rest => Some(StepKind::Rest),
+        StepType::Drain => build_drain(cx, st, env, pack),
+        StepType::Pulse => build_pulse(cx, raw, env, pack),
+        StepType::Unknown => {
             cx.err(
                 &st.kind.span(),
-                format!(
-                    "unknown step kind '{other}'; expected charge, discharge, rest, pulse or drain"
-                ),
+                "unknown step kind 'unknown'; expected charge, discharge, rest, pulse or drain",
             );
-            return None;
+            None
         }
-    };
-    if kind_name != "pulse" {
-        if let Some(l) = &st.levels {
-            cx.err(&l.span(), format!("a {kind_name} step takes no 'levels'"));
-        }
-    }
-    let mut ends = Vec::new();
-    for t in &st.ends {
-        if let Some(c) = parse_end(cx, t, pack) {
-            // Thresholds beyond the envelope would never be met before a trip.
-            match c {
-                EndCondition::VoltageBelow { voltage_v } if voltage_v <= env.voltage_min_v => cx.err(
-                    &t.span(),
-                    format!(
-                        "cutoff {voltage_v:.3} V is outside the envelope (must be above voltage_min {:.3} V)",
-                        env.voltage_min_v
-                    ),
-                ),
-                EndCondition::VoltageAbove { voltage_v } if voltage_v >= env.voltage_max_v => cx.err(
-                    &t.span(),
-                    format!(
-                        "end voltage {voltage_v:.3} V is outside the envelope (must be below voltage_max {:.3} V)",
-                        env.voltage_max_v
-                    ),
-                ),
-                EndCondition::TemperatureAbove { celsius } if celsius >= env.temperature_max_c => cx.err(
-                    &t.span(),
-                    format!(
-                        "end temperature {celsius} degC is at or above the envelope's temperature_max {} degC",
-                        env.temperature_max_c
-                    ),
-                ),
-                _ => ends.push(c),
-            }
-        }
-    }
-    let result = match &st.result {
-        None => None,
-        Some(t) => match t.get_ref().trim() {
-            "capacity" => {
-                if !matches!(kind, StepKind::Discharge { .. }) {
-                    cx.err(
-                        &t.span(),
-                        "result = \"capacity\" belongs on a discharge step",
-                    );
-                }
-                Some(ResultTag::Capacity)
-            }
-            "dcir" => {
-                let ok = matches!(&kind, StepKind::Pulse { levels } if levels.len() >= 2
-                    && (levels[0].current_a - levels[1].current_a).abs() > 0.0);
-                if !ok {
-                    cx.err(
-                        &t.span(),
-                        "result = \"dcir\" belongs on a pulse step whose first two levels differ in current",
-                    );
-                }
-                Some(ResultTag::Dcir)
-            }
-            other => {
-                cx.err(
-                    &t.span(),
-                    format!("unknown result tag '{other}'; expected \"capacity\" or \"dcir\""),
-                );
-                None
-            }
-        },
-    };
+    }?;
+    let ends = step_ends(cx, st, env, pack);
+    let result = result_tag(cx, st, &kind);
     if cx.errors.len() == errors_before {
-        let can_end = matches!(kind, StepKind::Pulse { .. })
-            || ends.iter().any(|c| reachable(&kind, c, env, pack));
-        if !can_end {
-            let hint = match kind {
-                StepKind::Charge { .. } => "a charge step can end on current < (taper below its current), voltage > (below its voltage limit), charge >, energy >, peak_drop > (NiMH only) or time >",
-                StepKind::Discharge { .. } => "a discharge step can end on voltage < (above voltage_min), charge >, energy > or time >",
-                StepKind::Rest => "a rest can end on time >, dv/dt < or dT/dt <",
-                StepKind::Drain { .. } => "a drain step ends on time > (it measures over a set time)",
-                StepKind::Pulse { .. } => "",
-            };
-            cx.err(
-                &span,
-                format!("this {kind_name} step cannot end: none of its end conditions can be reached with its setpoints; {hint}"),
-            );
-        }
+        check_can_end(cx, &raw.span(), &kind, &ends, env, pack);
     }
     let name = st.name.as_ref().map(|n| n.get_ref().clone());
     Some((kind, ends, result, name))
@@ -923,4 +1016,75 @@ fn build_offsets(cx: &mut Ctx, raw: &RawProcedure) -> OffsetPolicy {
         p.correct = *c.get_ref();
     }
     p
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::pack::Chemistry;
+
+    fn pack() -> PackSpec {
+        PackSpec {
+            chemistry: Chemistry::LiIon,
+            series: 4,
+            rated_capacity_ah: 2.0,
+            rated_energy_wh: None,
+            rated_rate_c: None,
+            rated_resistance_mohm: None,
+        }
+    }
+
+    fn one_step(step: &str) -> Result<Plan, InputErrors> {
+        let text = format!(
+            "title = \"t\"\n[envelope]\nvoltage_max = \"4.25V/cell\"\nvoltage_min = \"2.8V/cell\"\ncurrent_max = \"1C\"\ntemperature_max = \"55degC\"\n[[phase]]\nname = \"p\"\n  [[phase.step]]\n{step}\n"
+        );
+        plan_from_text(Path::new("t.toml"), &text, &pack())
+    }
+
+    /// Every setpoint key a kind does not take is an error at its place;
+    /// the keys it takes build the step.
+    #[test]
+    fn each_kind_takes_only_its_own_setpoints() {
+        for (kind, keys) in STEP_KEYS {
+            for key in ["mode", "current", "voltage", "power", "resistance"] {
+                if keys.contains(&key) {
+                    continue;
+                }
+                let e = one_step(&format!(
+                    "kind = \"{}\"\n{key} = \"1\"\nends = [\"time > 1min\"]",
+                    kind.name()
+                ))
+                .unwrap_err()
+                .to_string();
+                assert!(
+                    e.contains(&format!("a {} step takes no '{key}'", kind.name())),
+                    "{kind:?} {key}: {e}"
+                );
+                assert!(
+                    e.contains(&format!(
+                        "t.toml:11:{}: a {} step takes no",
+                        key.len() + 4,
+                        kind.name()
+                    )),
+                    "located on the key: {e}"
+                );
+            }
+        }
+        // A power discharge takes no current; a current one no power.
+        let e = one_step("kind = \"discharge\"\nmode = \"power\"\npower = \"5W\"\ncurrent = \"1A\"\nends = [\"voltage < 3.0V/cell\"]")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("a discharge step takes no 'current'"), "{e}");
+        let ok = one_step("kind = \"discharge\"\nmode = \"power\"\npower = \"5W\"\nends = [\"voltage < 3.0V/cell\"]").unwrap();
+        assert_eq!(
+            ok.steps[0].kind,
+            StepKind::Discharge {
+                load: DischargeMode::Power { power_w: 5.0 }
+            }
+        );
+        let e = one_step("kind = \"float\"\nends = [\"time > 1min\"]")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("unknown step kind 'float'"), "{e}");
+    }
 }
