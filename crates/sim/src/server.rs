@@ -34,6 +34,24 @@ pub enum SimRole {
     Meter,
 }
 
+/// A command that has no query form.
+fn set_only(query: bool) -> Result<(), ScpiError> {
+    if query {
+        Err(ScpiError::UndefinedHeader)
+    } else {
+        Ok(())
+    }
+}
+
+/// A query that has no command form.
+fn query_only(query: bool) -> Result<(), ScpiError> {
+    if query {
+        Ok(())
+    } else {
+        Err(ScpiError::UndefinedHeader)
+    }
+}
+
 impl SimRole {
     pub fn target(self) -> FaultTarget {
         match self {
@@ -204,6 +222,7 @@ impl SimInstrument {
         Ok(None)
     }
 
+    /// Run one parsed command: one handler per command group.
     fn execute(
         &mut self,
         b: &mut SimBench,
@@ -211,26 +230,45 @@ impl SimInstrument {
         query: bool,
         params: &[String],
     ) -> Result<Option<String>, ScpiError> {
-        let role = self.role;
-        let set_only = |q: bool| {
-            if q {
-                Err(ScpiError::UndefinedHeader)
-            } else {
-                Ok(())
+        match cmd {
+            Cmd::Idn
+            | Cmd::Rst
+            | Cmd::Cls
+            | Cmd::Opc
+            | Cmd::Wai
+            | Cmd::Esr
+            | Cmd::Ese
+            | Cmd::Sre
+            | Cmd::Stb
+            | Cmd::Tst => self.common(b, cmd, query, params),
+            Cmd::SystemError | Cmd::SystemErrorCount | Cmd::SystemVersion => {
+                self.system(cmd, query, params)
             }
-        };
-        let query_only = |q: bool| {
-            if q {
-                Ok(())
-            } else {
-                Err(ScpiError::UndefinedHeader)
+            Cmd::Voltage | Cmd::Current | Cmd::Power | Cmd::Resistance => {
+                self.level_command(b, cmd, query, params)
             }
-        };
+            Cmd::Function => self.function_command(b, query, params),
+            Cmd::Output | Cmd::Input => self.switch(b, cmd, query, params),
+            Cmd::MeasureVoltage
+            | Cmd::MeasureCurrent
+            | Cmd::MeasurePower
+            | Cmd::MeasureTemperature => self.measure(b, cmd, query, params),
+        }
+    }
+
+    /// IEEE 488.2 common commands: identity, reset, status registers.
+    fn common(
+        &mut self,
+        b: &mut SimBench,
+        cmd: Cmd,
+        query: bool,
+        params: &[String],
+    ) -> Result<Option<String>, ScpiError> {
         match cmd {
             Cmd::Idn => {
                 query_only(query)?;
                 Self::no_params(params)?;
-                let model = match role {
+                let model = match self.role {
                     SimRole::Source => "simulated-source",
                     SimRole::Load => "simulated-load",
                     SimRole::SourceSink => "simulated-source-sink",
@@ -244,31 +282,7 @@ impl SimInstrument {
             Cmd::Rst => {
                 set_only(query)?;
                 Self::no_params(params)?;
-                match role {
-                    SimRole::Source => {
-                        b.supply.output_on = false;
-                        b.supply.voltage_set = 0.0;
-                        b.supply.current_set = 0.0;
-                    }
-                    SimRole::Load => {
-                        b.load.input_on = false;
-                        b.load.mode = LoadMode::Current;
-                        b.load.current_set = 0.0;
-                        b.load.power_set = 0.0;
-                        b.load.resistance_set = b.load.resistance_max;
-                    }
-                    SimRole::SourceSink => {
-                        self.output = false;
-                        self.function = SinkFunction::Voltage;
-                        b.supply.voltage_set = 0.0;
-                        b.supply.current_set = 0.0;
-                        b.load.current_set = 0.0;
-                        b.load.power_set = 0.0;
-                        b.load.resistance_set = b.load.resistance_max;
-                        self.apply_source_sink(b);
-                    }
-                    SimRole::Meter => {}
-                }
+                self.reset(b);
                 Ok(None)
             }
             Cmd::Cls => {
@@ -325,22 +339,70 @@ impl SimInstrument {
                 query_only(query)?;
                 Ok(Some("0".into()))
             }
+            _ => Err(ScpiError::UndefinedHeader),
+        }
+    }
+
+    /// `*RST`: outputs off, setpoints to their reset values.
+    fn reset(&mut self, b: &mut SimBench) {
+        match self.role {
+            SimRole::Source => {
+                b.supply.output_on = false;
+                b.supply.voltage_set = 0.0;
+                b.supply.current_set = 0.0;
+            }
+            SimRole::Load => {
+                b.load.input_on = false;
+                b.load.mode = LoadMode::Current;
+                b.load.current_set = 0.0;
+                b.load.power_set = 0.0;
+                b.load.resistance_set = b.load.resistance_max;
+            }
+            SimRole::SourceSink => {
+                self.output = false;
+                self.function = SinkFunction::Voltage;
+                b.supply.voltage_set = 0.0;
+                b.supply.current_set = 0.0;
+                b.load.current_set = 0.0;
+                b.load.power_set = 0.0;
+                b.load.resistance_set = b.load.resistance_max;
+                self.apply_source_sink(b);
+            }
+            SimRole::Meter => {}
+        }
+    }
+
+    /// The SYSTem subsystem: the error queue and the SCPI version.
+    fn system(
+        &mut self,
+        cmd: Cmd,
+        query: bool,
+        params: &[String],
+    ) -> Result<Option<String>, ScpiError> {
+        query_only(query)?;
+        match cmd {
             Cmd::SystemError => {
-                query_only(query)?;
                 Self::no_params(params)?;
                 Ok(Some(match self.errors.pop_front() {
                     Some((code, text)) => format!("{code},\"{text}\""),
                     None => "0,\"No error\"".into(),
                 }))
             }
-            Cmd::SystemErrorCount => {
-                query_only(query)?;
-                Ok(Some(self.errors.len().to_string()))
-            }
-            Cmd::SystemVersion => {
-                query_only(query)?;
-                Ok(Some("1999.0".into()))
-            }
+            Cmd::SystemErrorCount => Ok(Some(self.errors.len().to_string())),
+            _ => Ok(Some("1999.0".into())),
+        }
+    }
+
+    /// Setpoint levels: voltage, current, power, resistance.
+    fn level_command(
+        &mut self,
+        b: &mut SimBench,
+        cmd: Cmd,
+        query: bool,
+        params: &[String],
+    ) -> Result<Option<String>, ScpiError> {
+        let role = self.role;
+        match cmd {
             Cmd::Voltage => match role {
                 SimRole::Source | SimRole::SourceSink => {
                     let max = b.supply.voltage_max;
@@ -380,52 +442,72 @@ impl SimInstrument {
                 }
                 _ => Err(ScpiError::UndefinedHeader),
             },
-            Cmd::Function => {
-                if !matches!(role, SimRole::Load | SimRole::SourceSink) {
-                    return Err(ScpiError::UndefinedHeader);
-                }
-                if query {
-                    Self::no_params(params)?;
-                    let mode = match (role, self.function) {
-                        (SimRole::SourceSink, SinkFunction::Voltage) => {
-                            return Ok(Some("VOLT".into()))
-                        }
-                        (SimRole::SourceSink, SinkFunction::Sink(m)) => m,
-                        _ => b.load.mode,
-                    };
-                    let w = match mode {
-                        LoadMode::Current => "CURR",
-                        LoadMode::Power => "POW",
-                        LoadMode::Resistance => "RES",
-                    };
-                    return Ok(Some(w.into()));
-                }
-                let p = Self::one_param(params)?.to_ascii_uppercase();
-                let word = FUNCTION_WORDS
-                    .iter()
-                    .find(|(long, short)| p == long.to_ascii_uppercase() || p == *short)
-                    .map(|(_, s)| *s)
-                    .ok_or(ScpiError::IllegalParameterValue)?;
-                if role == SimRole::SourceSink {
-                    self.function = match word {
-                        "VOLT" => SinkFunction::Voltage,
-                        "CURR" => SinkFunction::Sink(LoadMode::Current),
-                        "POW" => SinkFunction::Sink(LoadMode::Power),
-                        "RES" => SinkFunction::Sink(LoadMode::Resistance),
-                        _ => return Err(ScpiError::IllegalParameterValue),
-                    };
-                    self.apply_source_sink(b);
-                    return Ok(None);
-                }
-                let mode = match word {
-                    "CURR" => LoadMode::Current,
-                    "POW" => LoadMode::Power,
-                    "RES" => LoadMode::Resistance,
-                    _ => return Err(ScpiError::IllegalParameterValue),
-                };
-                b.load.mode = mode;
-                Ok(None)
-            }
+            _ => Err(ScpiError::UndefinedHeader),
+        }
+    }
+
+    /// A load's (or source-sink's) FUNCtion: what it holds constant.
+    fn function_command(
+        &mut self,
+        b: &mut SimBench,
+        query: bool,
+        params: &[String],
+    ) -> Result<Option<String>, ScpiError> {
+        let role = self.role;
+        if !matches!(role, SimRole::Load | SimRole::SourceSink) {
+            return Err(ScpiError::UndefinedHeader);
+        }
+        if query {
+            Self::no_params(params)?;
+            let mode = match (role, self.function) {
+                (SimRole::SourceSink, SinkFunction::Voltage) => return Ok(Some("VOLT".into())),
+                (SimRole::SourceSink, SinkFunction::Sink(m)) => m,
+                _ => b.load.mode,
+            };
+            let w = match mode {
+                LoadMode::Current => "CURR",
+                LoadMode::Power => "POW",
+                LoadMode::Resistance => "RES",
+            };
+            return Ok(Some(w.into()));
+        }
+        let p = Self::one_param(params)?.to_ascii_uppercase();
+        let word = FUNCTION_WORDS
+            .iter()
+            .find(|(long, short)| p == long.to_ascii_uppercase() || p == *short)
+            .map(|(_, s)| *s)
+            .ok_or(ScpiError::IllegalParameterValue)?;
+        if role == SimRole::SourceSink {
+            self.function = match word {
+                "VOLT" => SinkFunction::Voltage,
+                "CURR" => SinkFunction::Sink(LoadMode::Current),
+                "POW" => SinkFunction::Sink(LoadMode::Power),
+                "RES" => SinkFunction::Sink(LoadMode::Resistance),
+                _ => return Err(ScpiError::IllegalParameterValue),
+            };
+            self.apply_source_sink(b);
+            return Ok(None);
+        }
+        let mode = match word {
+            "CURR" => LoadMode::Current,
+            "POW" => LoadMode::Power,
+            "RES" => LoadMode::Resistance,
+            _ => return Err(ScpiError::IllegalParameterValue),
+        };
+        b.load.mode = mode;
+        Ok(None)
+    }
+
+    /// Output (source) and input (load) on and off.
+    fn switch(
+        &mut self,
+        b: &mut SimBench,
+        cmd: Cmd,
+        query: bool,
+        params: &[String],
+    ) -> Result<Option<String>, ScpiError> {
+        let role = self.role;
+        match cmd {
             Cmd::Output if role == SimRole::SourceSink => {
                 if query {
                     Self::no_params(params)?;
@@ -451,40 +533,48 @@ impl SimInstrument {
                 }
                 Ok(None)
             }
-            Cmd::MeasureVoltage | Cmd::MeasureCurrent | Cmd::MeasurePower => {
-                query_only(query)?;
-                Self::no_params(params)?;
-                let (v, i) = match role {
-                    SimRole::Source => b.measure_supply(),
-                    SimRole::Load => b.measure_load(),
-                    // Signed: positive while sourcing into the pack.
-                    SimRole::SourceSink => {
-                        if b.load.input_on {
-                            let (v, i) = b.measure_load();
-                            (v, -i)
-                        } else {
-                            b.measure_supply()
-                        }
-                    }
-                    SimRole::Meter => {
-                        if cmd != Cmd::MeasureVoltage {
-                            return Err(ScpiError::UndefinedHeader);
-                        }
-                        (b.measure_meter(), 0.0)
-                    }
-                };
-                Ok(Some(nr3(match cmd {
-                    Cmd::MeasureVoltage => v,
-                    Cmd::MeasureCurrent => i,
-                    _ => v * i,
-                })))
-            }
-            Cmd::MeasureTemperature => {
-                query_only(query)?;
-                Self::no_params(params)?;
-                Ok(Some(nr3(b.measure_temperature())))
-            }
+            _ => Err(ScpiError::UndefinedHeader),
         }
+    }
+
+    /// MEASure queries.
+    fn measure(
+        &mut self,
+        b: &mut SimBench,
+        cmd: Cmd,
+        query: bool,
+        params: &[String],
+    ) -> Result<Option<String>, ScpiError> {
+        let role = self.role;
+        query_only(query)?;
+        Self::no_params(params)?;
+        if cmd == Cmd::MeasureTemperature {
+            return Ok(Some(nr3(b.measure_temperature())));
+        }
+        let (v, i) = match role {
+            SimRole::Source => b.measure_supply(),
+            SimRole::Load => b.measure_load(),
+            // Signed: positive while sourcing into the pack.
+            SimRole::SourceSink => {
+                if b.load.input_on {
+                    let (v, i) = b.measure_load();
+                    (v, -i)
+                } else {
+                    b.measure_supply()
+                }
+            }
+            SimRole::Meter => {
+                if cmd != Cmd::MeasureVoltage {
+                    return Err(ScpiError::UndefinedHeader);
+                }
+                (b.measure_meter(), 0.0)
+            }
+        };
+        Ok(Some(nr3(match cmd {
+            Cmd::MeasureVoltage => v,
+            Cmd::MeasureCurrent => i,
+            _ => v * i,
+        })))
     }
 }
 
@@ -596,5 +686,69 @@ impl LineResponder for SimInstrument {
             )),
             None => Ok(Response::Reply(reply)),
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use engine::clock::SimClock;
+    use instrument::link::{LineResponder, Response};
+    use model::pack::{Chemistry, PackSpec};
+    use model::simconfig::SimConfig;
+    use std::sync::{Arc, Mutex};
+
+    fn ask(r: &Arc<Mutex<dyn LineResponder>>, line: &str) -> Option<String> {
+        match r.lock().unwrap().respond(line).unwrap() {
+            Response::Reply(s) | Response::Late(s, _) => Some(s),
+            Response::Nothing => None,
+        }
+    }
+
+    /// One message per command group, each through its own handler.
+    #[test]
+    fn each_command_group_answers() {
+        let pack = PackSpec {
+            chemistry: Chemistry::LiIon,
+            series: 4,
+            rated_capacity_ah: 2.0,
+            rated_energy_wh: None,
+            rated_rate_c: None,
+            rated_resistance_mohm: None,
+        };
+        let links = crate::build(&pack, &SimConfig::ideal(), SimClock::new());
+        let (src, load) = (&links.source_responder, &links.load_responder);
+        // Common commands.
+        assert!(ask(src, "*IDN?").unwrap().contains("simulated-source"));
+        assert_eq!(ask(src, "*OPC?").as_deref(), Some("1"));
+        // The SYSTem subsystem and the error a bad header leaves.
+        assert_eq!(ask(src, "SYST:VERS?").as_deref(), Some("1999.0"));
+        ask(src, "NOPE");
+        assert!(ask(src, "SYST:ERR?").unwrap().starts_with("-113"));
+        // Levels, read back.
+        ask(src, "VOLT 16.4");
+        assert_eq!(ask(src, "VOLT?").unwrap().parse::<f64>().unwrap(), 16.4);
+        assert!(ask(load, "VOLT 3").is_none());
+        assert!(
+            ask(load, "SYST:ERR?").unwrap().starts_with("-113"),
+            "a load holds no voltage"
+        );
+        // FUNCtion on the load only.
+        ask(load, "FUNC RES");
+        assert_eq!(ask(load, "FUNC?").as_deref(), Some("RES"));
+        ask(src, "FUNC RES");
+        assert!(ask(src, "SYST:ERR?").unwrap().starts_with("-113"));
+        // Output and input switches.
+        ask(src, "OUTP ON");
+        assert_eq!(ask(src, "OUTP?").as_deref(), Some("1"));
+        ask(src, "*RST");
+        assert_eq!(
+            ask(src, "OUTP?").as_deref(),
+            Some("0"),
+            "*RST switches it off"
+        );
+        // Measurements: the pack's voltage, a 4-cell li-ion pack's range.
+        let v: f64 = ask(load, "MEAS:VOLT?").unwrap().parse().unwrap();
+        assert!((10.0..17.0).contains(&v), "{v}");
+        assert!(ask(load, "MEAS:TEMP?").unwrap().parse::<f64>().is_ok());
     }
 }
