@@ -621,9 +621,76 @@ impl<'a> Analyzer<'a> {
         self.close_step();
         let pack = self.pack;
         let mut warnings = std::mem::take(&mut self.warnings);
+        let (summaries, mut two_levels) = self.step_summaries(&mut warnings);
+        let cycles = cycles_of(&summaries, self.opts.imported, &mut warnings);
+        let (capacity, recalibration, curves_summary, curve_data) =
+            self.capacity(&summaries, &mut warnings);
+        // Pulse readings: state of charge against the measured capacity
+        // (or the rated one when there is none).
+        let (mut pulse_readings, dropped) = self.pulse.finish();
+        if dropped > 0 {
+            warnings.push(format!(
+                "{dropped} more current edges were not listed (at most {} are kept)",
+                pulse::MAX_READINGS
+            ));
+        }
+        // The charge the pack holds: the capacity step's, else what it gave
+        // from a full charge to a cutoff, else the rated capacity.
+        let c_ref = capacity
+            .as_ref()
+            .map(|c| c.measured_ah)
+            .or(self.full_to_empty_ah.filter(|q| *q > 0.0))
+            .unwrap_or(pack.rated_capacity_ah);
+        // (The coulomb count is working state only: records read back from
+        // disk carry the state of charge, not it.)
+        let soc = |q: Option<f64>| q.map(|q| (100.0 * (1.0 - q / c_ref)).clamp(-5.0, 105.0));
+        for r in &mut pulse_readings {
+            r.soc_pct = soc(r.ah_since_full.take());
+        }
+        for r in &mut two_levels {
+            r.soc_pct = soc(r.ah_since_full.take());
+        }
+        let resistance = resistance_figure(two_levels, &pulse_readings, self.opts.imported);
+        let capacity_ah = capacity.as_ref().map(|c| c.measured_ah);
+        let standby_drain = self.drain_points.take().and_then(|(step, pts)| {
+            let (mean_a, window_s, samples) = super::second_half_mean(&pts)?;
+            let cap = capacity_ah.unwrap_or(pack.rated_capacity_ah);
+            let current_ma = mean_a * 1000.0;
+            Some(super::DrainResult {
+                step,
+                current_ma,
+                pct_per_month: super::drain_pct_per_month(current_ma, cap),
+                capacity_ref_ah: cap,
+                window_s,
+                samples,
+            })
+        });
+        let quality = self.quality.clone();
+        quality_warnings(&quality, self.opts.gap_factor, &mut warnings);
+        Analysis {
+            capacity,
+            resistance,
+            steps: summaries,
+            cycles,
+            warnings,
+            pulse: pulse_readings,
+            curves: curves_summary,
+            curve_data,
+            recalibration,
+            gaps: self.gaps,
+            quality,
+            standby_drain,
+        }
+    }
+
+    /// Each step's summary in the order of their records (a foreign log's
+    /// in the order seen), and the two-level resistance readings.
+    fn step_summaries(
+        &mut self,
+        warnings: &mut Vec<String>,
+    ) -> (Vec<StepSummary>, Vec<ResistanceReading>) {
         let mut summaries = Vec::new();
         let mut two_levels = Vec::new();
-        // Steps in the order of their records; a foreign log's in order seen.
         let order: Vec<u32> = if self.order.is_empty() {
             self.done_order.clone()
         } else {
@@ -668,8 +735,22 @@ impl<'a> Analyzer<'a> {
                 }
             }
         }
-        let cycles = cycles_of(&summaries, self.opts.imported, &mut warnings);
-        // Capacity.
+        (summaries, two_levels)
+    }
+
+    /// The capacity figure of the step picked as the capacity step, the
+    /// recalibration it allows, and its curves.
+    fn capacity(
+        &mut self,
+        summaries: &[StepSummary],
+        warnings: &mut Vec<String>,
+    ) -> (
+        Option<CapacityResult>,
+        Option<Recalibration>,
+        Option<CurvesSummary>,
+        CurveData,
+    ) {
+        let pack = self.pack;
         let mut capacity = None;
         let mut curves_summary = None;
         let mut curve_data = CurveData::default();
@@ -705,175 +786,17 @@ impl<'a> Analyzer<'a> {
                             info.as_ref().and_then(|i| i.end_reason.clone()).unwrap_or_default()
                         ));
                     }
-                    let mean = if s.duration_s > 0.0 {
-                        s.charge_out_ah * 3600.0 / s.duration_s
-                    } else {
-                        0.0
-                    };
-                    let start = StartState::of(
-                        kept.ah_since_full_at_start,
-                        kept.full_step,
-                        pack.rated_capacity_ah,
-                    );
-                    if !start.from_full_charge {
-                        warnings.push(format!(
-                            "the capacity step {} did not start from a full charge ({}): its figure is what the pack gave from where it was, not its capacity; no state of health, grade or new nominal is taken from it",
-                            kept.step, start.preceded_by
-                        ));
-                    }
-                    let rated_rate = pack
-                        .rated_rate_c
-                        .unwrap_or_else(|| pack.chemistry.default_rated_rate_c());
-                    let test = CapacityTest {
-                        chemistry: pack.chemistry,
-                        measured_ah: s.charge_out_ah,
-                        mean_current_a: mean,
-                        duration_s: s.duration_s,
-                        initial_temperature_c: t0,
-                        rated_ah: pack.rated_capacity_ah,
-                        rated_rate_c: rated_rate,
-                    };
-                    let (corrected, corrections) = correct::correct(&test, &self.opts.correction);
-                    let ieee450 = (pack.chemistry == model::pack::Chemistry::LeadAcid
-                        && ended_on_cutoff
-                        && (mean / (rated_rate * pack.rated_capacity_ah) - 1.0).abs() <= 0.02)
-                        .then_some(t0)
-                        .flatten()
-                        .map(|t| {
-                            correct::ieee450_percent(s.duration_s / 3600.0, 1.0 / rated_rate, t)
-                        });
-                    let c = CapacityResult {
-                        step: s.step,
-                        measured_ah: s.charge_out_ah,
-                        measured_wh: s.energy_out_wh,
-                        rated_ah: pack.rated_capacity_ah,
-                        soh_pct: soh_pct(corrected, pack.rated_capacity_ah),
-                        mean_current_a: mean,
-                        c_rate: mean / pack.rated_capacity_ah,
-                        duration_s: s.duration_s,
-                        end_voltage_v: s.end_voltage_v,
-                        ended_on_cutoff,
-                        corrected_ah: corrected,
-                        corrections,
-                        initial_temperature_c: t0,
-                        soh_measured_pct: soh_pct(s.charge_out_ah, pack.rated_capacity_ah),
-                        ieee450_percent: ieee450,
-                        from_full_charge: start.from_full_charge,
-                        preceded_by: start.preceded_by.clone(),
-                    };
-                    recalibration = start.from_full_charge.then(|| Recalibration {
-                        full_charge_capacity_ah: corrected,
-                        suggested_nominal_ah: (corrected * 1000.0).round() / 1000.0,
-                        measured_ah: s.charge_out_ah,
-                        energy_wh: s.energy_out_wh,
-                        rate_c: mean / pack.rated_capacity_ah,
-                        current_a: mean,
-                        end_voltage_v: s.end_voltage_v,
-                        initial_temperature_c: t0,
-                        ended_on_cutoff,
-                        conditions: format!(
-                            "discharge at {:.3} A ({:.3}C) to {} from a full charge, {}; corrected to {}C{}",
-                            mean,
-                            mean / pack.rated_capacity_ah,
-                            s.end_voltage_v.map(|v| format!("{v:.3} V")).unwrap_or_else(|| "its end".into()),
-                            t0.map(|t| format!("starting at {t:.1} °C")).unwrap_or_else(|| "temperature not logged".into()),
-                            rated_rate,
-                            if pack.chemistry == model::pack::Chemistry::LeadAcid { " and 20 °C (IEC 60896-11)" } else { " and 25 °C" }
-                        ),
-                    });
+                    let (c, r) =
+                        capacity_result(pack, &kept, &s, t0, ended_on_cutoff, &self.opts, warnings);
+                    recalibration = r;
                     capacity = Some(c);
-                    let (cs, data) = self.curves(&kept, charge.as_ref(), &mut warnings);
+                    let (cs, data) = self.curves(&kept, charge.as_ref(), warnings);
                     curves_summary = Some(cs);
                     curve_data = data;
                 }
             }
         }
-        // Pulse readings: state of charge against the measured capacity
-        // (or the rated one when there is none).
-        let (mut pulse_readings, dropped) = self.pulse.finish();
-        if dropped > 0 {
-            warnings.push(format!(
-                "{dropped} more current edges were not listed (at most {} are kept)",
-                pulse::MAX_READINGS
-            ));
-        }
-        // The charge the pack holds: the capacity step's, else what it gave
-        // from a full charge to a cutoff, else the rated capacity.
-        let c_ref = capacity
-            .as_ref()
-            .map(|c| c.measured_ah)
-            .or(self.full_to_empty_ah.filter(|q| *q > 0.0))
-            .unwrap_or(pack.rated_capacity_ah);
-        // (The coulomb count is working state only: records read back from
-        // disk carry the state of charge, not it.)
-        for r in &mut pulse_readings {
-            r.soc_pct = r
-                .ah_since_full
-                .take()
-                .map(|q| (100.0 * (1.0 - q / c_ref)).clamp(-5.0, 105.0));
-        }
-        for r in &mut two_levels {
-            r.soc_pct = r
-                .ah_since_full
-                .take()
-                .map(|q| (100.0 * (1.0 - q / c_ref)).clamp(-5.0, 105.0));
-        }
-        let resistance = resistance_figure(two_levels, &pulse_readings, self.opts.imported);
-        let standby_drain = self.drain_points.take().and_then(|(step, pts)| {
-            let (mean_a, window_s, samples) = super::second_half_mean(&pts)?;
-            let cap = capacity
-                .as_ref()
-                .map(|c: &CapacityResult| c.measured_ah)
-                .unwrap_or(pack.rated_capacity_ah);
-            let current_ma = mean_a * 1000.0;
-            Some(super::DrainResult {
-                step,
-                current_ma,
-                pct_per_month: super::drain_pct_per_month(current_ma, cap),
-                capacity_ref_ah: cap,
-                window_s,
-                samples,
-            })
-        });
-        let quality = self.quality.clone();
-        if quality.gaps > 0 {
-            warnings.push(format!(
-                "{} gap(s) in the log longer than {} typical sampling intervals; charge and energy are integrated across them by the trapezoid (current and power taken as straight lines between the samples either side); {:.4} Ah of the figures lies in gaps",
-                quality.gaps, self.opts.gap_factor, quality.charge_in_gaps_ah
-            ));
-        }
-        if quality.duplicates_dropped > 0 {
-            warnings.push(format!(
-                "{} duplicated row(s) were left out",
-                quality.duplicates_dropped
-            ));
-        }
-        if quality.repeated_dropped > 0 {
-            warnings.push(format!(
-                "{} row(s) repeated the time of the row before with other values and were left out (the first row at each time is kept)",
-                quality.repeated_dropped
-            ));
-        }
-        if quality.out_of_order_dropped > 0 {
-            warnings.push(format!(
-                "{} row(s) with a time earlier than the row before were left out",
-                quality.out_of_order_dropped
-            ));
-        }
-        Analysis {
-            capacity,
-            resistance,
-            steps: summaries,
-            cycles,
-            warnings,
-            pulse: pulse_readings,
-            curves: curves_summary,
-            curve_data,
-            recalibration,
-            gaps: self.gaps,
-            quality,
-            standby_drain,
-        }
+        (capacity, recalibration, curves_summary, curve_data)
     }
 
     fn curves(
@@ -1036,6 +959,131 @@ fn finished(s: &StepSummary, imported: bool) -> bool {
         )
 }
 
+/// The capacity figure of a finished capacity step: corrected to rated
+/// conditions, with its start state, and the recalibration it allows when
+/// it started from a full charge.
+fn capacity_result(
+    pack: &PackSpec,
+    kept: &Kept,
+    s: &StepSummary,
+    t0: Option<f64>,
+    ended_on_cutoff: bool,
+    opts: &AnalysisOptions,
+    warnings: &mut Vec<String>,
+) -> (CapacityResult, Option<Recalibration>) {
+    let mean = if s.duration_s > 0.0 {
+        s.charge_out_ah * 3600.0 / s.duration_s
+    } else {
+        0.0
+    };
+    let start = StartState::of(
+        kept.ah_since_full_at_start,
+        kept.full_step,
+        pack.rated_capacity_ah,
+    );
+    if !start.from_full_charge {
+        warnings.push(format!(
+                "the capacity step {} did not start from a full charge ({}): its figure is what the pack gave from where it was, not its capacity; no state of health, grade or new nominal is taken from it",
+                kept.step, start.preceded_by
+            ));
+    }
+    let rated_rate = pack
+        .rated_rate_c
+        .unwrap_or_else(|| pack.chemistry.default_rated_rate_c());
+    let test = CapacityTest {
+        chemistry: pack.chemistry,
+        measured_ah: s.charge_out_ah,
+        mean_current_a: mean,
+        duration_s: s.duration_s,
+        initial_temperature_c: t0,
+        rated_ah: pack.rated_capacity_ah,
+        rated_rate_c: rated_rate,
+    };
+    let (corrected, corrections) = correct::correct(&test, &opts.correction);
+    let ieee450 = (pack.chemistry == model::pack::Chemistry::LeadAcid
+        && ended_on_cutoff
+        && (mean / (rated_rate * pack.rated_capacity_ah) - 1.0).abs() <= 0.02)
+        .then_some(t0)
+        .flatten()
+        .map(|t| correct::ieee450_percent(s.duration_s / 3600.0, 1.0 / rated_rate, t));
+    let c = CapacityResult {
+        step: s.step,
+        measured_ah: s.charge_out_ah,
+        measured_wh: s.energy_out_wh,
+        rated_ah: pack.rated_capacity_ah,
+        soh_pct: soh_pct(corrected, pack.rated_capacity_ah),
+        mean_current_a: mean,
+        c_rate: mean / pack.rated_capacity_ah,
+        duration_s: s.duration_s,
+        end_voltage_v: s.end_voltage_v,
+        ended_on_cutoff,
+        corrected_ah: corrected,
+        corrections,
+        initial_temperature_c: t0,
+        soh_measured_pct: soh_pct(s.charge_out_ah, pack.rated_capacity_ah),
+        ieee450_percent: ieee450,
+        from_full_charge: start.from_full_charge,
+        preceded_by: start.preceded_by.clone(),
+    };
+    let recalibration = start.from_full_charge.then(|| Recalibration {
+        full_charge_capacity_ah: corrected,
+        suggested_nominal_ah: (corrected * 1000.0).round() / 1000.0,
+        measured_ah: s.charge_out_ah,
+        energy_wh: s.energy_out_wh,
+        rate_c: mean / pack.rated_capacity_ah,
+        current_a: mean,
+        end_voltage_v: s.end_voltage_v,
+        initial_temperature_c: t0,
+        ended_on_cutoff,
+        conditions: format!(
+            "discharge at {:.3} A ({:.3}C) to {} from a full charge, {}; corrected to {}C{}",
+            mean,
+            mean / pack.rated_capacity_ah,
+            s.end_voltage_v
+                .map(|v| format!("{v:.3} V"))
+                .unwrap_or_else(|| "its end".into()),
+            t0.map(|t| format!("starting at {t:.1} °C"))
+                .unwrap_or_else(|| "temperature not logged".into()),
+            rated_rate,
+            if pack.chemistry == model::pack::Chemistry::LeadAcid {
+                " and 20 °C (IEC 60896-11)"
+            } else {
+                " and 25 °C"
+            }
+        ),
+    });
+    (c, recalibration)
+}
+
+/// Warnings about the log itself: gaps, duplicated, repeated and
+/// out-of-order rows.
+fn quality_warnings(quality: &LogQuality, gap_factor: f64, warnings: &mut Vec<String>) {
+    if quality.gaps > 0 {
+        warnings.push(format!(
+            "{} gap(s) in the log longer than {} typical sampling intervals; charge and energy are integrated across them by the trapezoid (current and power taken as straight lines between the samples either side); {:.4} Ah of the figures lies in gaps",
+            quality.gaps, gap_factor, quality.charge_in_gaps_ah
+        ));
+    }
+    if quality.duplicates_dropped > 0 {
+        warnings.push(format!(
+            "{} duplicated row(s) were left out",
+            quality.duplicates_dropped
+        ));
+    }
+    if quality.repeated_dropped > 0 {
+        warnings.push(format!(
+            "{} row(s) repeated the time of the row before with other values and were left out (the first row at each time is kept)",
+            quality.repeated_dropped
+        ));
+    }
+    if quality.out_of_order_dropped > 0 {
+        warnings.push(format!(
+            "{} row(s) with a time earlier than the row before were left out",
+            quality.out_of_order_dropped
+        ));
+    }
+}
+
 fn cycles_of(
     summaries: &[StepSummary],
     imported: bool,
@@ -1145,4 +1193,36 @@ fn resistance_figure(
         method: format!("pulse method: ΔV/ΔI 1 s after a discharge edge{at}"),
         readings: Vec::new(),
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Each kind of log trouble gets its own warning, with its count; a
+    /// clean log gets none.
+    #[test]
+    fn quality_warnings_name_each_trouble() {
+        let mut w = Vec::new();
+        quality_warnings(&LogQuality::default(), 5.0, &mut w);
+        assert!(w.is_empty());
+        let q = LogQuality {
+            gaps: 2,
+            charge_in_gaps_ah: 0.25,
+            duplicates_dropped: 3,
+            repeated_dropped: 4,
+            out_of_order_dropped: 5,
+            ..LogQuality::default()
+        };
+        quality_warnings(&q, 5.0, &mut w);
+        assert_eq!(w.len(), 4, "{w:?}");
+        assert!(
+            w[0].starts_with("2 gap(s)")
+                && w[0].contains("5 typical")
+                && w[0].contains("0.2500 Ah")
+        );
+        assert!(w[1].starts_with("3 duplicated"));
+        assert!(w[2].starts_with("4 row(s) repeated"));
+        assert!(w[3].starts_with("5 row(s) with a time earlier"));
+    }
 }
