@@ -22,7 +22,7 @@ use control::StopHandle;
 use event::{EndKind, Event, Sink};
 use futures::FutureExt;
 use instrument::{ErrorKind, InstrumentError, Load, LoadSetting, Meter, Reading, Source};
-use model::procedure::{DischargeMode, EndCondition, Plan, PlanStep, StepKind};
+use model::procedure::{DischargeMode, EndCondition, FineSampling, Plan, PlanStep, StepKind};
 use model::sample::Sample;
 use model::truth::{GroundTruth, TruthCounters};
 use serde::Serialize;
@@ -57,6 +57,62 @@ impl Station {
 /// How often the instruments' error queues are read while a step runs,
 /// run seconds.
 pub const ERROR_POLL_S: f64 = 1.0;
+
+/// When a step samples: a grid from the step's start at its interval,
+/// finer near an end when asked, and exactly at a time limit, a pulse
+/// level's end and the envelope's step time cap.
+struct Schedule {
+    every: f64,
+    fine: Option<FineSampling>,
+    time_limit: Option<f64>,
+    cap_time: f64,
+}
+
+impl Schedule {
+    fn of(st: &PlanStep, plan: &Plan, tracker: &StepTracker) -> Schedule {
+        let every = st.sample_every_s.unwrap_or(plan.sample_every_s);
+        Schedule {
+            every,
+            fine: plan.fine.filter(|f| f.every_s < every),
+            time_limit: tracker.time_limit(st),
+            cap_time: tracker.t0 + plan.envelope.step_time_max_s,
+        }
+    }
+
+    /// The time of the next sample after `s` (taken at `s.t_s`).
+    fn next(
+        &self,
+        st: &PlanStep,
+        s: &Sample,
+        prev: Option<&Sample>,
+        t0: f64,
+        level_end: Option<f64>,
+    ) -> f64 {
+        let (t, every) = (s.t_s, self.every);
+        // Samples follow a grid from the step's start, so a paced clock
+        // that wakes late does not stretch the interval (a late sample is
+        // taken at once), and extra samples at pulse edges do not shift it.
+        let k = ((t - t0) / every + 1e-9).floor() + 1.0;
+        let mut next = t0 + k * every;
+        if let Some(f) = self.fine {
+            if near_end(st, s, prev, every, f.within_fraction) {
+                next = next.min(t + f.every_s);
+            }
+        }
+        if let Some(tl) = self.time_limit {
+            if tl > t + 1e-9 {
+                next = next.min(tl);
+            }
+        }
+        if let Some(end) = level_end {
+            next = next.min(end);
+        }
+        if self.cap_time > t + 1e-9 {
+            next = next.min(self.cap_time + 1e-3);
+        }
+        next
+    }
+}
 
 /// Which instrument drives the pack.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -717,14 +773,74 @@ impl<'a> Engine<'a> {
         })
     }
 
+    /// One step: set it up, then sample until an end condition, a limit,
+    /// a fault or a stop.
     async fn run_step_body(
         &mut self,
         st: &PlanStep,
         carried: Option<Carried>,
         t0: f64,
     ) -> Result<(), Stop> {
+        let (levels, mut tracker) = self.step_setup(st, carried, t0).await?;
+        let mut level = 0usize;
+        let schedule = Schedule::of(st, self.plan, &tracker);
+        let mut scheduled: Option<f64> = None;
+        let mut prev: Option<Sample> = None;
+        loop {
+            let t = self.t();
+            let s = self.take_sample(st, &mut tracker, scheduled.take()).await?;
+            if let Some((kind, cond)) = tracker.end_reached(st) {
+                self.capacity_alarm(st, kind, &tracker, t)?;
+                return self.end_step(t, st.index, kind, cond.to_string());
+            }
+            if !levels.is_empty() && t >= levels[level].0 - 1e-9 {
+                level += 1;
+                if level == levels.len() {
+                    return self.end_step(
+                        t,
+                        st.index,
+                        EndKind::LevelsDone,
+                        "pulse levels done".into(),
+                    );
+                }
+                let (_, a, d) = levels[level];
+                if a == Active::None {
+                    self.switch_off_active().await?;
+                } else {
+                    self.drive(a, d).await?;
+                }
+                // Sample again at once: the edge is what a pulse is for.
+                continue;
+            }
+            if self.stop.stop_requested() {
+                return Err(Stop::Interrupted);
+            }
+            let next = schedule.next(
+                st,
+                &s,
+                prev.as_ref(),
+                tracker.t0,
+                levels.get(level).map(|l| l.0),
+            );
+            prev = Some(s);
+            scheduled = Some(next);
+            self.wait_until(next).await;
+            if self.stop.stop_requested() {
+                return Err(Stop::Interrupted);
+            }
+        }
+    }
+
+    /// Drive the step's setpoints (a pulse's first level) and start its
+    /// tracker; a resumed step goes on from the log's elapsed time and
+    /// counts. Returns a pulse's levels as (end time, drive).
+    async fn step_setup(
+        &mut self,
+        st: &PlanStep,
+        carried: Option<Carried>,
+        t0: f64,
+    ) -> Result<(Vec<(f64, Active, Drive)>, StepTracker), Stop> {
         let env = &self.plan.envelope;
-        // Pulse levels as (end time, drive).
         let mut levels: Vec<(f64, Active, Drive)> = Vec::new();
         let (want, drive) = match &st.kind {
             StepKind::Charge {
@@ -748,38 +864,7 @@ impl<'a> Engine<'a> {
                 }),
             ),
             StepKind::Rest => (Active::None, Drive::Off),
-            StepKind::Drain { current_limit_a } => {
-                // Hold the pack at its own voltage, read with outputs off,
-                // after reading the source's own zero afresh.
-                self.switch_off_active().await?;
-                let mut z = 0.0;
-                for _ in 0..DRAIN_ZERO_READINGS {
-                    z += self
-                        .station
-                        .source
-                        .measure()
-                        .await
-                        .map_err(Stop::Instrument)?
-                        .current_a;
-                }
-                let z = z / DRAIN_ZERO_READINGS as f64;
-                self.drain_zero = Some(z);
-                self.emit(Event::Zero {
-                    t_s: self.t(),
-                    step: st.index,
-                    instrument: "source".into(),
-                    zero_a: z,
-                    readings: DRAIN_ZERO_READINGS as u32,
-                })?;
-                let (r, _) = self.measure().await?;
-                (
-                    Active::Source,
-                    Drive::Charge {
-                        voltage_v: r.voltage_v,
-                        current_a: *current_limit_a,
-                    },
-                )
-            }
+            StepKind::Drain { current_limit_a } => self.drain_setup(st, *current_limit_a).await?,
             StepKind::Pulse { levels: ls } => {
                 let mut end = t0;
                 for l in ls {
@@ -808,108 +893,96 @@ impl<'a> Engine<'a> {
             tracker.counters = c.counters;
             tracker.counters.break_segment();
         }
-        let mut level = 0usize;
-        let every = st.sample_every_s.unwrap_or(self.plan.sample_every_s);
-        let fine = self.plan.fine.filter(|f| f.every_s < every);
-        let time_limit = tracker.time_limit(st);
-        let cap_time = tracker.t0 + env.step_time_max_s;
-        let mut scheduled: Option<f64> = None;
-        let mut prev: Option<Sample> = None;
-        loop {
-            let t = self.t();
-            if let Some(due) = scheduled.take() {
-                let late = t - due;
-                self.timing.scheduled_samples += 1;
-                if late > LATE_S {
-                    self.timing.late_samples += 1;
-                }
-                self.timing.max_late_s = self.timing.max_late_s.max(late);
+        Ok((levels, tracker))
+    }
+
+    /// A drain step's drive: hold the pack at its own voltage, read with
+    /// outputs off, after reading the source's own zero afresh.
+    async fn drain_setup(
+        &mut self,
+        st: &PlanStep,
+        current_limit_a: f64,
+    ) -> Result<(Active, Drive), Stop> {
+        // Hold the pack at its own voltage, read with outputs off,
+        // after reading the source's own zero afresh.
+        self.switch_off_active().await?;
+        let mut z = 0.0;
+        for _ in 0..DRAIN_ZERO_READINGS {
+            z += self
+                .station
+                .source
+                .measure()
+                .await
+                .map_err(Stop::Instrument)?
+                .current_a;
+        }
+        let z = z / DRAIN_ZERO_READINGS as f64;
+        self.drain_zero = Some(z);
+        self.emit(Event::Zero {
+            t_s: self.t(),
+            step: st.index,
+            instrument: "source".into(),
+            zero_a: z,
+            readings: DRAIN_ZERO_READINGS as u32,
+        })?;
+        let (r, _) = self.measure().await?;
+        Ok((
+            Active::Source,
+            Drive::Charge {
+                voltage_v: r.voltage_v,
+                current_a: current_limit_a,
+            },
+        ))
+    }
+
+    /// Take one sample: its lateness, the reading, the log, the error
+    /// queues and the envelope.
+    async fn take_sample(
+        &mut self,
+        st: &PlanStep,
+        tracker: &mut StepTracker,
+        scheduled: Option<f64>,
+    ) -> Result<Sample, Stop> {
+        let t = self.t();
+        if let Some(due) = scheduled {
+            let late = t - due;
+            self.timing.scheduled_samples += 1;
+            if late > LATE_S {
+                self.timing.late_samples += 1;
             }
-            let (reading, temp) = self.measure().await?;
-            let s = Sample {
+            self.timing.max_late_s = self.timing.max_late_s.max(late);
+        }
+        let (reading, temp) = self.measure().await?;
+        let s = Sample {
+            t_s: t,
+            step: st.index,
+            cycle: st.cycle,
+            voltage_v: reading.voltage_v,
+            current_a: reading.current_a - self.zero_of(st),
+            temperature_c: temp,
+        };
+        self.sink.sample(&s).map_err(Stop::Log)?;
+        tracker.push(&s);
+        self.poll_errors(t).await?;
+        let so_far = safety::StepSoFar {
+            elapsed_s: tracker.elapsed(),
+            charge_in_ah: tracker.counters.ah_in,
+        };
+        if let Some(b) = safety::check(&s, &so_far, &self.plan.envelope) {
+            self.emit(Event::Breach {
                 t_s: t,
                 step: st.index,
-                cycle: st.cycle,
-                voltage_v: reading.voltage_v,
-                current_a: reading.current_a - self.zero_of(st),
-                temperature_c: temp,
-            };
-            self.sink.sample(&s).map_err(Stop::Log)?;
-            tracker.push(&s);
-            self.poll_errors(t).await?;
-            let so_far = safety::StepSoFar {
-                elapsed_s: tracker.elapsed(),
-                charge_in_ah: tracker.counters.ah_in,
-            };
-            if let Some(b) = safety::check(&s, &so_far, env) {
-                self.emit(Event::Breach {
-                    t_s: t,
-                    step: st.index,
-                    limit: b.limit.into(),
-                    value: b.value,
-                    threshold: b.threshold,
-                    message: b.message.clone(),
-                })?;
-                return Err(Stop::Breach(format!(
-                    "safety limit {}: {}",
-                    b.limit, b.message
-                )));
-            }
-            if let Some((kind, cond)) = tracker.end_reached(st) {
-                self.capacity_alarm(st, kind, &tracker, t)?;
-                return self.end_step(t, st.index, kind, cond.to_string());
-            }
-            if !levels.is_empty() && t >= levels[level].0 - 1e-9 {
-                level += 1;
-                if level == levels.len() {
-                    return self.end_step(
-                        t,
-                        st.index,
-                        EndKind::LevelsDone,
-                        "pulse levels done".into(),
-                    );
-                }
-                let (_, a, d) = levels[level];
-                if a == Active::None {
-                    self.switch_off_active().await?;
-                } else {
-                    self.drive(a, d).await?;
-                }
-                // Sample again at once: the edge is what a pulse is for.
-                continue;
-            }
-            if self.stop.stop_requested() {
-                return Err(Stop::Interrupted);
-            }
-            // Samples follow a grid from the step's start, so a paced clock
-            // that wakes late does not stretch the interval (a late sample
-            // is taken at once), and extra samples at pulse edges do not
-            // shift it.
-            let k = ((t - tracker.t0) / every + 1e-9).floor() + 1.0;
-            let mut next = tracker.t0 + k * every;
-            if let Some(f) = fine {
-                if near_end(st, &s, prev.as_ref(), every, f.within_fraction) {
-                    next = next.min(t + f.every_s);
-                }
-            }
-            prev = Some(s);
-            if let Some(tl) = time_limit {
-                if tl > t + 1e-9 {
-                    next = next.min(tl);
-                }
-            }
-            if let Some((end, _, _)) = levels.get(level) {
-                next = next.min(*end);
-            }
-            if cap_time > t + 1e-9 {
-                next = next.min(cap_time + 1e-3);
-            }
-            scheduled = Some(next);
-            self.wait_until(next).await;
-            if self.stop.stop_requested() {
-                return Err(Stop::Interrupted);
-            }
+                limit: b.limit.into(),
+                value: b.value,
+                threshold: b.threshold,
+                message: b.message.clone(),
+            })?;
+            return Err(Stop::Breach(format!(
+                "safety limit {}: {}",
+                b.limit, b.message
+            )));
         }
+        Ok(s)
     }
 
     /// The low-capacity alarm: the capacity step reached its cutoff with
@@ -991,5 +1064,64 @@ fn level_drive(current: f64, voltage_max: f64) -> Drive {
         Drive::Load(LoadSetting::Current(-current))
     } else {
         Drive::Off
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn rest_step(ends: Vec<EndCondition>) -> PlanStep {
+        PlanStep {
+            index: 1,
+            phase: "p".into(),
+            repeat: 1,
+            cycle: 0,
+            name: None,
+            kind: StepKind::Rest,
+            ends,
+            result: None,
+            sample_every_s: None,
+            line: 1,
+        }
+    }
+
+    fn at(t_s: f64) -> Sample {
+        Sample {
+            t_s,
+            step: 1,
+            cycle: 0,
+            voltage_v: 3.7,
+            current_a: 0.0,
+            temperature_c: None,
+        }
+    }
+
+    /// The next sample: on the grid from the step's start (a late one does
+    /// not shift it), and exactly at a time limit, a level's end and the
+    /// step time cap.
+    #[test]
+    fn samples_keep_their_grid_and_meet_each_limit() {
+        let st = rest_step(vec![EndCondition::Time { seconds: 25.0 }]);
+        let s = Schedule {
+            every: 10.0,
+            fine: None,
+            time_limit: Some(125.0),
+            cap_time: 1000.0,
+        };
+        assert_eq!(s.next(&st, &at(100.0), None, 100.0, None), 110.0);
+        // Taken 3 s late: the next one is still on the grid.
+        assert_eq!(s.next(&st, &at(113.0), None, 100.0, None), 120.0);
+        // The time limit comes before the grid.
+        assert_eq!(s.next(&st, &at(120.0), None, 100.0, None), 125.0);
+        // A pulse level ends before the grid.
+        assert_eq!(s.next(&st, &at(100.0), None, 100.0, Some(104.0)), 104.0);
+        // The step time cap, just past it so the cap trips.
+        let capped = Schedule {
+            cap_time: 105.0,
+            time_limit: None,
+            ..s
+        };
+        assert!((capped.next(&st, &at(100.0), None, 100.0, None) - 105.001).abs() < 1e-12);
     }
 }

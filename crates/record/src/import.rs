@@ -488,7 +488,7 @@ pub fn stream_log(
                 if let Some(end) = carry.iter().rposition(|&b| b == b'\n').map(|p| p + 1) {
                     let rest = carry.split_off(end);
                     let data = std::mem::replace(&mut carry, rest);
-                    if tx.send(splitter.split(data)).is_err() {
+                    if tx.send(splitter.split_chunk(data)).is_err() {
                         return Ok(false);
                     }
                 }
@@ -700,7 +700,7 @@ impl<'a, B: Fn(u64, usize, String) -> ReadError> LineSplitter<'a, B> {
     }
 
     /// Split a chunk that ends at a line end.
-    fn split(&mut self, data: Vec<u8>) -> Batch {
+    fn split_chunk(&mut self, data: Vec<u8>) -> Batch {
         let ncols = self.ncols;
         let mut batch = Batch {
             items: Vec::with_capacity(data.len() / 32),
@@ -888,8 +888,10 @@ mod tests {
         let mut s = LineSplitter::new(&cols, &fmt, 1.0, &bad);
         assert_eq!(s.ncols, 3);
         let data = b"1,3.7,0.5\r\n\n2,3.6,\"-1\"\n3,3.5,-1\n  \n4,3.4,-1,extra\n5,3.3\n".to_vec();
-        let rows: Vec<(u64, Result<Row, ReadError>)> =
-            s.split(data).rows(3, &cols, &fmt, 1.0, &bad).collect();
+        let rows: Vec<(u64, Result<Row, ReadError>)> = s
+            .split_chunk(data)
+            .rows(3, &cols, &fmt, 1.0, &bad)
+            .collect();
         let lines: Vec<u64> = rows.iter().map(|(l, _)| *l).collect();
         assert_eq!(lines, [2, 4, 5, 7, 8], "blank lines 3 and 6 left out");
         let ok: Vec<(f64, f64, f64)> = rows
@@ -913,7 +915,7 @@ mod tests {
         }
         // The next chunk goes on counting.
         let more: Vec<u64> = s
-            .split(b"6,3.2,-1\n".to_vec())
+            .split_chunk(b"6,3.2,-1\n".to_vec())
             .rows(3, &cols, &fmt, 1.0, &bad)
             .map(|(l, _)| l)
             .collect();
