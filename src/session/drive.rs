@@ -167,92 +167,18 @@ pub async fn drive(
         resume,
     } = rec;
     write_lock(&dir)?;
-    if let Some(s) = &sim {
-        // The simulated pack keeps its state beside the log: every 10
-        // bench seconds when paced; every 10 bench minutes at full speed,
-        // where a whole run takes a second and a file write costs as much
-        // as a hundred samples.
-        let every = if s.speed_factor.is_some() {
-            10.0
-        } else {
-            600.0
-        };
-        s.handle.keep_state(dir.join(SIM_STATE_JSON), every);
-    }
-    if p.options.trace {
-        let path = dir.join(TRACE_LOG);
-        let trace = Trace::create(&path).map_err(io_err(&path))?;
-        links.source.attach.trace = Some(trace.clone());
-        links.load.attach.trace = Some(trace.clone());
-        if let Some(m) = links.meter.as_mut() {
-            m.attach.trace = Some(trace);
-        }
-    }
-    if let Some(em) = &links.hooks.emergency {
-        let who = links
-            .hooks
-            .station
-            .as_ref()
-            .map(|(n, _)| format!("{n} "))
-            .unwrap_or_default();
-        for (role, b) in [("source", Some(&links.source)), ("load", Some(&links.load))]
-            .into_iter()
-            .chain([("meter", links.meter.as_ref())])
-        {
-            if let (Some(b), true) = (b, role != "meter") {
-                if let Some(r) = &b.attach.reopen {
-                    em.register(format!("{who}{role}"), Arc::clone(r), b.profile.clone());
-                }
-            }
-        }
-    }
+    attach(p, &dir, &mut links, sim.as_ref())?;
     let run_json = dir.join(RUN_JSON);
     write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
-    let mut records = Vec::new();
-    let record = |role: &str, b: &BoundLink, idn: &str| InstrumentRecord {
-        role: role.into(),
-        link: b.text.clone(),
-        profile: b.profile.name.clone(),
-        idn: idn.to_string(),
-    };
-    let (src_rec, load_rec) = (
-        record("source", &links.source, ""),
-        record("load", &links.load, ""),
-    );
     let board = links.hooks.board.clone();
-    let connected = async {
-        let source =
-            Source::connect_with(links.source.link, links.source.profile, links.source.attach)
-                .await?;
-        let load = Load::connect_with(links.load.link, links.load.profile, links.load.attach).await;
-        let load = match load {
-            Ok(l) => l,
-            Err(e) => {
-                let mut source = source;
-                let _ = source.0.make_safe().await;
-                return Err(e);
+    let shared_link = links.shared;
+    let mut station = match connect(links).await {
+        Ok((station, records)) => {
+            if manifest.instruments.is_empty() {
+                manifest.instruments = records;
             }
-        };
-        let meter = match links.meter {
-            Some(m) => {
-                let rec = record("meter", &m, "");
-                match Meter::connect_with(m.link, m.profile, m.attach).await {
-                    Ok(x) => Some((x, rec)),
-                    Err(e) => {
-                        let (mut source, mut load) = (source, load);
-                        let _ = load.0.make_safe().await;
-                        let _ = source.0.make_safe().await;
-                        return Err(e);
-                    }
-                }
-            }
-            None => None,
-        };
-        Ok((source, load, meter))
-    }
-    .await;
-    let (source, load, meter) = match connected {
-        Ok(x) => x,
+            station
+        }
         Err(e) => {
             manifest.status = RunStatus::Aborted;
             manifest.stop_reason = Some(format!("could not connect: {e}"));
@@ -268,35 +194,8 @@ pub async fn drive(
             return Err(e.into());
         }
     };
-    if manifest.instruments.is_empty() {
-        records.push(InstrumentRecord {
-            idn: source.0.idn().to_string(),
-            ..src_rec
-        });
-        records.push(InstrumentRecord {
-            idn: load.0.idn().to_string(),
-            ..load_rec
-        });
-    }
-    let meter = meter.map(|(m, rec)| {
-        if manifest.instruments.is_empty() {
-            records.push(InstrumentRecord {
-                idn: m.0.idn().to_string(),
-                ..rec
-            });
-        }
-        m
-    });
-    if manifest.instruments.is_empty() {
-        manifest.instruments = records;
-    }
+    station.shared_link = shared_link;
     write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
-    let mut station = Station {
-        source,
-        load,
-        meter,
-        shared_link: links.shared,
-    };
     let alarm_ah = p
         .options
         .alarm_below_pct
@@ -336,6 +235,108 @@ pub async fn drive(
     tokio::task::spawn_blocking(move || finish_record(&p, &dir, &run_id, manifest, outcome, sim))
         .await
         .map_err(|e| RunError::from(Failure::RecordTask(e.to_string())))?
+}
+
+/// Before connecting: the simulated pack's kept state, the raw-traffic
+/// trace, and the instruments registered for the last-resort switch-off.
+fn attach(
+    p: &Prepared,
+    dir: &Path,
+    links: &mut BenchLinks,
+    sim: Option<&SimRun>,
+) -> Result<(), RunError> {
+    if let Some(s) = sim {
+        // The simulated pack keeps its state beside the log: every 10
+        // bench seconds when paced; every 10 bench minutes at full speed,
+        // where a whole run takes a second and a file write costs as much
+        // as a hundred samples.
+        let every = if s.speed_factor.is_some() {
+            10.0
+        } else {
+            600.0
+        };
+        s.handle.keep_state(dir.join(SIM_STATE_JSON), every);
+    }
+    if p.options.trace {
+        let path = dir.join(TRACE_LOG);
+        let trace = Trace::create(&path).map_err(io_err(&path))?;
+        links.source.attach.trace = Some(trace.clone());
+        links.load.attach.trace = Some(trace.clone());
+        if let Some(m) = links.meter.as_mut() {
+            m.attach.trace = Some(trace);
+        }
+    }
+    if let Some(em) = &links.hooks.emergency {
+        let who = links
+            .hooks
+            .station
+            .as_ref()
+            .map(|(n, _)| format!("{n} "))
+            .unwrap_or_default();
+        // The meter drives nothing: only the source and the load.
+        for (role, b) in [("source", &links.source), ("load", &links.load)] {
+            if let Some(r) = &b.attach.reopen {
+                em.register(format!("{who}{role}"), Arc::clone(r), b.profile.clone());
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Connect every instrument of a station (identify, reset to safe); if one
+/// fails, those already connected are made safe again. Returns the station
+/// and the instruments' records for `run.json`.
+async fn connect(
+    links: BenchLinks,
+) -> Result<(Station, Vec<InstrumentRecord>), instrument::InstrumentError> {
+    let record = |role: &str, b: &BoundLink, idn: &str| InstrumentRecord {
+        role: role.into(),
+        link: b.text.clone(),
+        profile: b.profile.name.clone(),
+        idn: idn.to_string(),
+    };
+    let mut records = vec![
+        record("source", &links.source, ""),
+        record("load", &links.load, ""),
+    ];
+    let mut source =
+        Source::connect_with(links.source.link, links.source.profile, links.source.attach).await?;
+    let mut load =
+        match Load::connect_with(links.load.link, links.load.profile, links.load.attach).await {
+            Ok(l) => l,
+            Err(e) => {
+                let _ = source.0.make_safe().await;
+                return Err(e);
+            }
+        };
+    let meter = match links.meter {
+        Some(m) => {
+            records.push(record("meter", &m, ""));
+            match Meter::connect_with(m.link, m.profile, m.attach).await {
+                Ok(x) => Some(x),
+                Err(e) => {
+                    let _ = load.0.make_safe().await;
+                    let _ = source.0.make_safe().await;
+                    return Err(e);
+                }
+            }
+        }
+        None => None,
+    };
+    records[0].idn = source.0.idn().to_string();
+    records[1].idn = load.0.idn().to_string();
+    if let (Some(m), Some(r)) = (&meter, records.get_mut(2)) {
+        r.idn = m.0.idn().to_string();
+    }
+    Ok((
+        Station {
+            source,
+            load,
+            meter,
+            shared_link: false,
+        },
+        records,
+    ))
 }
 
 /// A station's links with its clock, and on the simulated bench its truth
