@@ -346,10 +346,7 @@ pub fn cmd_peukert(a: PeukertArgs) -> anyhow::Result<ExitCode> {
     let mut pts = Vec::new();
     for r in &a.runs {
         let path = r.join(record::SUMMARY_JSON);
-        let text = std::fs::read_to_string(&path)
-            .with_context(|| format!("cannot read {}", path.display()))?;
-        let s: Summary = serde_json::from_str(&text)
-            .with_context(|| format!("{} is not a run summary", path.display()))?;
+        let s: Summary = record::read::read_summary(&path)?;
         let c = s
             .capacity
             .ok_or_else(|| anyhow!("{}: no capacity step", r.display()))?;

@@ -69,10 +69,7 @@ pub struct FleetArgs {
 /// `packbench report`.
 pub fn cmd_report(a: ReportArgs) -> anyhow::Result<ExitCode> {
     let summary_path = a.run_dir.join(record::SUMMARY_JSON);
-    let text = std::fs::read_to_string(&summary_path)
-        .with_context(|| format!("reading {}", summary_path.display()))?;
-    let summary: record::Summary = serde_json::from_str(&text)
-        .with_context(|| format!("{} is not a packbench summary", summary_path.display()))?;
+    let summary = record::read::read_summary(&summary_path)?;
     let log = record::read::read_samples(&a.run_dir.join(record::SAMPLES_CSV))?;
     let out = a.run_dir.join(record::REPORT_HTML);
     record::write::atomic_write(

@@ -69,6 +69,7 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
     }
     let (run_id, dir) = create_run_folder(&p.pack_dir, &base_id).map_err(io_err(&p.pack_dir))?;
     let manifest = Manifest {
+        schema_version: record::schema::SCHEMA_VERSION,
         tool: ToolInfo {
             name: "packbench".into(),
             version: env!("CARGO_PKG_VERSION").into(),

@@ -100,15 +100,20 @@ fn process_alive(pid: i32) -> bool {
 
 /// Read a run's `run.json`.
 fn read_manifest(path: &Path) -> Result<Manifest, RunError> {
-    let text =
-        std::fs::read_to_string(path).map_err(crate::session::error::input_file_err(path))?;
-    serde_json::from_str(&text).map_err(|e| {
-        bad(format!(
-            "{}:{}:{}: not a packbench run record: {e}",
-            path.display(),
-            e.line(),
-            e.column()
-        ))
+    record::read::read_manifest(path).map_err(|e| match e {
+        record::read::ReadError::Io { path, error } => {
+            crate::session::error::input_file_err(&path)(error)
+        }
+        record::read::ReadError::Bad {
+            path,
+            line,
+            column,
+            message,
+        } => bad(format!(
+            "{}:{line}:{column}: not a packbench run record: {message}",
+            path.display()
+        )),
+        newer => newer.into(),
     })
 }
 
@@ -491,9 +496,13 @@ pub async fn execute(
         resume: Some(point.clone()),
     };
     let sink = record::write::RunLogSink::append(&dir).map_err(io_err(&dir))?;
-    let kept = std::fs::read(dir.join(SIM_STATE_JSON))
-        .ok()
-        .and_then(|b| serde_json::from_slice::<sim::bench::PackState>(&b).ok());
+    // The simulated pack's kept state: none yet is fine; one newer than
+    // this build is refused by name.
+    let kept = match record::schema::read_json::<sim::bench::PackState>(&dir.join(SIM_STATE_JSON)) {
+        Ok(k) => Some(k),
+        Err(e @ record::read::ReadError::Newer { .. }) => return Err(e.into()),
+        Err(_) => None,
+    };
     let resumed = crate::session::Resumed {
         rec,
         sink,

@@ -120,6 +120,7 @@ pub fn build_summary(
         })
     });
     Summary {
+        schema_version: record::schema::SCHEMA_VERSION,
         status: outcome.status,
         stop_reason: outcome.reason,
         pack_id: ctx.pack_id.to_string(),

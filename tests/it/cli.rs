@@ -538,3 +538,60 @@ fn end_of_life_reached_or_past_is_said() {
     );
     assert!(line("AGING-2").contains("EOL-DATE-PAST"), "{said}");
 }
+
+/// Every JSON record carries its layout's version; a record newer than
+/// this build is refused by name (exit 2), an older one without the field
+/// still reads.
+#[test]
+fn records_carry_their_version_and_newer_ones_are_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let results = dir.path().join("results");
+    let out = packbench(&[
+        "run",
+        "procedures/capacity-check.toml",
+        "--sim",
+        "--pack",
+        "VER-1",
+        "--quiet",
+        "--results",
+        results.to_str().unwrap(),
+    ]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let run = wait_run_dir(&results.join("VER-1"), std::time::Duration::ZERO).unwrap();
+    let version = record::schema::SCHEMA_VERSION;
+    for name in ["run.json", "summary.json", "sim-pack.json"] {
+        assert_eq!(json(&run.join(name))["schema_version"], version, "{name}");
+    }
+    let first = std::fs::read_to_string(run.join("events.jsonl")).unwrap();
+    let first: serde_json::Value = serde_json::from_str(first.lines().next().unwrap()).unwrap();
+    assert_eq!(first["event"], "run_start");
+    assert_eq!(first["schema_version"], version);
+    // Without the field (written before it existed): still read.
+    let summary_path = run.join("summary.json");
+    let mut s = json(&summary_path);
+    s.as_object_mut().unwrap().remove("schema_version");
+    std::fs::write(&summary_path, s.to_string()).unwrap();
+    let ok = packbench(&["report", run.to_str().unwrap()]);
+    assert_eq!(ok.status.code(), Some(0), "{}", text(&ok.stderr));
+    // Newer: refused, named as newer.
+    s["schema_version"] = serde_json::json!(version + 1);
+    std::fs::write(&summary_path, s.to_string()).unwrap();
+    let newer = packbench(&["report", run.to_str().unwrap()]);
+    let err = text(&newer.stderr);
+    assert_eq!(newer.status.code(), Some(2), "{err}");
+    assert!(
+        err.contains("summary.json") && err.contains("newer packbench"),
+        "{err}"
+    );
+    let mut m = json(&run.join("run.json"));
+    m["schema_version"] = serde_json::json!(version + 1);
+    m["status"] = serde_json::json!("interrupted");
+    std::fs::write(run.join("run.json"), m.to_string()).unwrap();
+    let resume = packbench(&["resume", run.to_str().unwrap()]);
+    let err = text(&resume.stderr);
+    assert_eq!(resume.status.code(), Some(2), "{err}");
+    assert!(
+        err.contains("run.json") && err.contains("newer packbench"),
+        "{err}"
+    );
+}

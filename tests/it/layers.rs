@@ -17,7 +17,7 @@ const ALLOWED: &[(&str, &[&str])] = &[
     ("analysis", &["model"]),
     ("record", &["model", "analysis"]),
     ("engine", &["model", "instrument", "analysis", "record"]),
-    ("sim", &["model", "instrument", "engine"]),
+    ("sim", &["model", "instrument", "engine", "record"]),
     ("report", &["model", "analysis", "record"]),
 ];
 

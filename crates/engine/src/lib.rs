@@ -398,6 +398,7 @@ impl<'a> Engine<'a> {
         match &self.resume {
             None => {
                 let _ = self.sink.event(&Event::RunStart {
+                    schema_version: record::schema::SCHEMA_VERSION,
                     t_s: 0.0,
                     steps: self.plan.steps.len() as u32,
                 });

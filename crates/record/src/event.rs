@@ -12,6 +12,9 @@ use serde::{Deserialize, Serialize};
 #[serde(tag = "event", rename_all = "snake_case")]
 pub enum Event {
     RunStart {
+        /// The record layout ([`crate::schema`]).
+        #[serde(default = "crate::schema::unversioned")]
+        schema_version: u32,
         t_s: f64,
         steps: u32,
     },

@@ -31,6 +31,9 @@ pub enum HistoryError {
     Bad(#[from] LocatedError),
     #[error("{0}")]
     Pack(String),
+    /// A run's record that does not read (or is newer than this build).
+    #[error(transparent)]
+    Record(#[from] crate::error::ReadError),
 }
 
 fn io(path: &Path) -> impl FnOnce(std::io::Error) -> HistoryError + '_ {
@@ -155,20 +158,7 @@ pub fn run_summaries(pack_dir: &Path) -> Result<Vec<(PathBuf, Summary)>, History
         if !path.is_file() {
             continue;
         }
-        let text = std::fs::read_to_string(&path).map_err(io(&path))?;
-        match serde_json::from_str::<Summary>(&text) {
-            Ok(s) => out.push((e.path(), s)),
-            Err(err) => {
-                return Err(HistoryError::Bad(LocatedError {
-                    location: Location {
-                        file: path.clone(),
-                        line: err.line(),
-                        column: err.column(),
-                    },
-                    message: err.to_string(),
-                }))
-            }
-        }
+        out.push((e.path(), crate::read::read_summary(&path)?));
     }
     out.sort_by(|a, b| {
         (a.1.test_date.as_str(), a.1.run_id.as_str())
@@ -302,10 +292,7 @@ pub fn capacity_curves(h: &PackHistory) -> Vec<(String, Vec<(f64, f64)>)> {
     let mut out = Vec::new();
     for p in &h.points {
         let Some(dir) = &p.run_dir else { continue };
-        let Ok(summary) = std::fs::read_to_string(dir.join(crate::SUMMARY_JSON)) else {
-            continue;
-        };
-        let Ok(s) = serde_json::from_str::<crate::Summary>(&summary) else {
+        let Ok(s) = crate::read::read_summary(&dir.join(crate::SUMMARY_JSON)) else {
             continue;
         };
         let Some(cap) = s.capacity else { continue };

@@ -11,11 +11,13 @@
 //! JSON records are written to a temporary name and renamed, so a crash
 //! never leaves one half-written. No statistics here.
 
+pub mod error;
 pub mod event;
 pub mod history;
 pub mod import;
 pub mod manifest;
 pub mod read;
+pub mod schema;
 pub mod write;
 
 use analysis::pulse::PulseReading;
@@ -53,6 +55,9 @@ pub const CSV_COLUMNS: [&str; 6] = [
 /// `summary.json`.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Summary {
+    /// The record layout ([`schema`]).
+    #[serde(default = "schema::unversioned")]
+    pub schema_version: u32,
     /// `completed`, `aborted` or `interrupted`.
     pub status: RunStatus,
     pub stop_reason: Option<String>,

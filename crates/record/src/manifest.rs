@@ -10,6 +10,9 @@ use serde::{Deserialize, Serialize};
 /// `run.json`.
 #[derive(Debug, Clone, Serialize, Deserialize)]
 pub struct Manifest {
+    /// The record layout ([`crate::schema`]).
+    #[serde(default = "crate::schema::unversioned")]
+    pub schema_version: u32,
     pub tool: ToolInfo,
     pub run_id: String,
     pub pack_id: String,

@@ -6,23 +6,9 @@ use super::{EVENTS_JSONL, SAMPLES_CSV};
 use crate::event::Event;
 use analysis::StepInfo;
 use model::sample::Sample;
-use std::path::{Path, PathBuf};
+use std::path::Path;
 
-#[derive(Debug, thiserror::Error)]
-pub enum ReadError {
-    #[error("{path}: {error}")]
-    Io {
-        path: PathBuf,
-        error: std::io::Error,
-    },
-    #[error("{path}:{line}:{column}: {message}")]
-    Bad {
-        path: PathBuf,
-        line: usize,
-        column: usize,
-        message: String,
-    },
-}
+pub use crate::error::ReadError;
 
 /// Samples and what was noticed while reading them.
 #[derive(Debug, Default)]
@@ -149,6 +135,9 @@ pub fn read_events(path: &Path) -> Result<Vec<Event>, ReadError> {
             column: e.column(),
             message: e.to_string(),
         })?;
+        if let Event::RunStart { schema_version, .. } = &e {
+            crate::schema::check(path, *schema_version)?;
+        }
         out.push(e);
     }
     Ok(out)
@@ -199,4 +188,14 @@ pub fn read_run(dir: &Path) -> Result<(SampleLog, Vec<Event>), ReadError> {
     let samples = read_samples(&dir.join(SAMPLES_CSV))?;
     let events = read_events(&dir.join(EVENTS_JSONL))?;
     Ok((samples, events))
+}
+
+/// `run.json`, checked for its version.
+pub fn read_manifest(path: &Path) -> Result<crate::manifest::Manifest, ReadError> {
+    crate::schema::read_json(path)
+}
+
+/// `summary.json`, checked for its version.
+pub fn read_summary(path: &Path) -> Result<crate::Summary, ReadError> {
+    crate::schema::read_json(path)
 }

@@ -119,6 +119,9 @@ impl VoltageWatch {
 /// controller's process).
 #[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct PackState {
+    /// The record layout (`record::schema`).
+    #[serde(default = "record::schema::unversioned")]
+    pub schema_version: u32,
     /// Bench time of the state, s.
     pub t_s: f64,
     pub soc: f64,
@@ -212,6 +215,7 @@ impl SimBench {
 
     pub fn state(&self) -> PackState {
         PackState {
+            schema_version: record::schema::SCHEMA_VERSION,
             t_s: self.last_t,
             soc: self.pack.soc,
             v1: self.pack.v1,
