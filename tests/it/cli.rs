@@ -595,3 +595,47 @@ fn records_carry_their_version_and_newer_ones_are_refused() {
         "{err}"
     );
 }
+
+/// The run report's pieces: the summary rows carry the figures, and text
+/// from the procedure is escaped wherever it is written.
+#[test]
+fn the_run_report_escapes_what_the_procedure_says() {
+    let dir = tempfile::tempdir().unwrap();
+    let text = std::fs::read_to_string("procedures/capacity-check.toml").unwrap();
+    let title_line = text.lines().find(|l| l.starts_with("title")).unwrap();
+    let text = text.replace(title_line, "title = \"<b>check</b> & 'more'\"");
+    let proc_path = write(dir.path(), "odd.toml", &text);
+    let p = prepare_as(
+        &proc_path,
+        li_ion_14ah(),
+        &dir.path().join("results"),
+        "ESC-1",
+    );
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .unwrap();
+    let r = rt
+        .block_on(packbench::session::run(packbench::session::Session::sim(
+            &p,
+            &model::simconfig::SimConfig::default(),
+            packbench::session::Speed::Max,
+        )))
+        .unwrap();
+    let rows = report::html::summary_rows(&r.summary);
+    let labels: Vec<&str> = rows.iter().map(|(k, _)| k.as_str()).collect();
+    for want in [
+        "Measured capacity",
+        "State of health",
+        "Discharge",
+        "Samples",
+    ] {
+        assert!(labels.contains(&want), "{want} in {labels:?}");
+    }
+    let html = std::fs::read_to_string(r.run_dir.join("report.html")).unwrap();
+    assert!(
+        html.contains("&lt;b&gt;check&lt;/b&gt; &amp; &#39;more&#39;"),
+        "the title escaped"
+    );
+    assert!(!html.contains("<b>check</b>"));
+}

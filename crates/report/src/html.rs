@@ -215,15 +215,35 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
         let _ = write!(b, "<p class=\"flag\">Stopped: {}</p>", escape(r));
     }
     let _ = write!(b, "<h2>Grade card</h2>{}", grade_card(s));
-    // Summary table.
     let _ = write!(b, "<h2>Summary</h2><table>");
-    let mut row = |k: &str, v: String| {
+    for (k, v) in summary_rows(s) {
         let _ = write!(
             b,
-            "<tr><th class=\"l\">{k}</th><td class=\"l wrap\">{}</td></tr>",
+            "<tr><th class=\"l\">{}</th><td class=\"l wrap\">{}</td></tr>",
+            escape(&k),
             escape(&v)
         );
-    };
+    }
+    let _ = write!(b, "</table>");
+    for a in &s.alarms {
+        let _ = write!(b, "<p class=\"warn\"><b>Alarm:</b> {}</p>", escape(a));
+    }
+    for w in &s.warnings {
+        let _ = write!(b, "<p class=\"warn\">Warning: {}</p>", escape(w));
+    }
+    let _ = write!(b, "<h2>Voltage, current and temperature</h2>");
+    time_charts(&mut b, samples);
+    capacity_chart(&mut b, s, samples);
+    differential_charts(&mut b, s, samples);
+    step_table(&mut b, s);
+    page(&format!("packbench — {} — {}", s.pack_id, s.run_id), &b)
+}
+
+/// The summary table of a run, as (label, text) rows: plain text, escaped
+/// where it is written.
+pub fn summary_rows(s: &Summary) -> Vec<(String, String)> {
+    let mut out: Vec<(String, String)> = Vec::new();
+    let mut row = |k: &str, v: String| out.push((k.to_string(), v));
     if let Some(c) = &s.capacity {
         row(
             "Measured capacity",
@@ -365,16 +385,11 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
         "Samples",
         format!("{} over {}", s.samples, HumanDuration(s.duration_s)),
     );
-    let _ = write!(b, "</table>");
-    for a in &s.alarms {
-        let _ = write!(b, "<p class=\"warn\"><b>Alarm:</b> {}</p>", escape(a));
-    }
-    for w in &s.warnings {
-        let _ = write!(b, "<p class=\"warn\">Warning: {}</p>", escape(w));
-    }
-    // Plots.
-    let _ = write!(b, "<h2>Voltage, current and temperature</h2>");
-    // One chart per quantity against time in hours, thinned for plotting.
+    out
+}
+
+/// One chart per quantity against time in hours, thinned for plotting.
+fn time_charts(b: &mut String, samples: &[Sample]) {
     let traces: [Trace; 3] = [
         ("Pack voltage", "voltage (V)", "voltage", svg::BLUE_, |x| {
             Some(x.voltage_v)
@@ -411,6 +426,10 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
         });
         b.push_str(&svg::render(&c));
     }
+}
+
+/// Voltage against discharged charge over the capacity step.
+fn capacity_chart(b: &mut String, s: &Summary, samples: &[Sample]) {
     if let Some(cap) = &s.capacity {
         let step: Vec<Sample> = samples
             .iter()
@@ -432,8 +451,11 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
         });
         b.push_str(&svg::render(&c));
     }
-    // The differential curves the summary's peaks come from: the same
-    // grid, bins and smoothing as the analysis.
+}
+
+/// The differential curves the summary's peaks come from: the same grid,
+/// bins and smoothing as the analysis.
+fn differential_charts(b: &mut String, s: &Summary, samples: &[Sample]) {
     if let Some(cv) = &s.curves {
         let series = f64::from(s.pack.series.max(1));
         for i in &cv.ica {
@@ -445,7 +467,7 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
             let grid = curves::grid_of(&step, s.pack.rated_capacity_ah);
             let d = curves::ica(&grid, i.bin_mv_per_cell / 1000.0 * series, i.smoothing_bins);
             differential_chart(
-                &mut b,
+                b,
                 &format!(
                     "Incremental capacity, {} step {}: {} mV/cell bins, smoothed over {} bins",
                     i.direction, i.step, i.bin_mv_per_cell, i.smoothing_bins
@@ -464,7 +486,7 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
             let grid = curves::grid_of(&step, s.pack.rated_capacity_ah);
             let d = curves::dva(&grid, v.bin_ah, v.smoothing_bins);
             differential_chart(
-                &mut b,
+                b,
                 &format!(
                     "Differential voltage, {} step {}: {:.3} Ah bins, smoothed over {} bins",
                     v.direction, v.step, v.bin_ah, v.smoothing_bins
@@ -475,7 +497,10 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
             );
         }
     }
-    // Step table.
+}
+
+/// One row per step.
+fn step_table(b: &mut String, s: &Summary) {
     let _ = write!(
         b,
         "<h2>Steps</h2><table><tr><th>step</th><th class=\"l\">phase</th><th class=\"l\">kind</th><th>cycle</th><th>duration</th><th>charge (Ah)</th><th>energy (Wh)</th><th>start V</th><th>end V</th><th>max °C</th><th class=\"l\">end</th></tr>"
@@ -498,7 +523,6 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
         );
     }
     let _ = write!(b, "</table>");
-    page(&format!("packbench — {} — {}", s.pack_id, s.run_id), &b)
 }
 
 /// Draw a fitted line over `range` and its 95 % prediction band; the fit's
@@ -598,7 +622,17 @@ pub fn pack_report(
     for n in &fa.notes {
         let _ = write!(b, "<p class=\"warn\">{}</p>", escape(n));
     }
-    // SOH against cycles with fit, band and threshold.
+    soh_by_cycles_chart(&mut b, h, fa);
+    soh_by_date_chart(&mut b, h, fa);
+    resistance_charts(&mut b, h, fa);
+    overlay_chart(&mut b, curves_by_run);
+    pack_tables(&mut b, h, fa);
+    page(&format!("packbench — fade of {}", h.pack_id), &b)
+}
+
+/// State of health against cycles with the fit, its band and the
+/// threshold (and the recent-half line when fade accelerates).
+fn soh_by_cycles_chart(b: &mut String, h: &PackHistory, fa: &FadeAnalysis) {
     let pts: Vec<(f64, f64)> = h
         .points
         .iter()
@@ -659,7 +693,10 @@ pub fn pack_report(
         color: svg::RED_,
     });
     b.push_str(&svg::render(&c));
-    // SOH against date, with the time model and its band.
+}
+
+/// State of health against date, with the time model and its band.
+fn soh_by_date_chart(b: &mut String, h: &PackHistory, fa: &FadeAnalysis) {
     let mut c = Chart::new(
         "State of health against date",
         "test date",
@@ -703,7 +740,10 @@ pub fn pack_report(
         color: svg::RED_,
     });
     b.push_str(&svg::render(&c));
-    // Resistance against cycles and against date.
+}
+
+/// Resistance against cycles and against date.
+fn resistance_charts(b: &mut String, h: &PackHistory, fa: &FadeAnalysis) {
     let reference = h.reference_resistance();
     for by_date in [false, true] {
         let rp: Vec<(f64, f64)> = h
@@ -760,7 +800,10 @@ pub fn pack_report(
         }
         b.push_str(&svg::render(&c));
     }
-    // Overlaid discharge curves.
+}
+
+/// Every test's capacity discharge, overlaid.
+fn overlay_chart(b: &mut String, curves_by_run: &[(String, Vec<(f64, f64)>)]) {
     if !curves_by_run.is_empty() {
         let mut c = Chart::new(
             "Capacity discharges, every test",
@@ -778,7 +821,10 @@ pub fn pack_report(
         c.height = 420;
         b.push_str(&svg::render(&c));
     }
-    // Tables.
+}
+
+/// The models, the measurements and the runs left out.
+fn pack_tables(b: &mut String, h: &PackHistory, fa: &FadeAnalysis) {
     let _ = write!(b, "<h2>Models</h2><table><tr><th class=\"l\">model</th><th>slope</th><th class=\"l\">unit</th><th>R²</th><th>points</th></tr>");
     for m in &fa.models {
         let _ = write!(
@@ -827,7 +873,6 @@ pub fn pack_report(
         }
         let _ = write!(b, "</ul>");
     }
-    page(&format!("packbench — fade of {}", h.pack_id), &b)
 }
 
 /// The fleet report. `histories` gives each pack's points for the

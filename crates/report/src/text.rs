@@ -4,6 +4,7 @@ use model::units::HumanDuration;
 use record::Summary;
 use std::fmt::Write;
 
+/// The short summary of a run for a terminal.
 pub fn summary(s: &Summary) -> String {
     let mut o = String::new();
     let _ = writeln!(
@@ -36,96 +37,8 @@ pub fn summary(s: &Summary) -> String {
             st.end_reason.clone().unwrap_or_default()
         );
     }
-    match &s.capacity {
-        Some(c) => {
-            let _ = writeln!(
-                o,
-                "  Measured capacity: {:.3} Ah, {:.2} Wh at {:.3} A ({:.2}C), {}",
-                c.measured_ah,
-                c.measured_wh,
-                c.mean_current_a,
-                c.c_rate,
-                if c.ended_on_cutoff {
-                    "to the cutoff"
-                } else {
-                    "NOT to the cutoff (lower bound)"
-                }
-            );
-            if !c.preceded_by.is_empty() {
-                let _ = writeln!(
-                    o,
-                    "  Started from:      {}{}",
-                    c.preceded_by,
-                    if c.from_full_charge {
-                        ""
-                    } else {
-                        " (NOT from a full charge: not the pack's capacity; not graded)"
-                    }
-                );
-            }
-            if c.corrected_ah > 0.0 {
-                let _ = writeln!(
-                    o,
-                    "  At rated conditions: {:.3} Ah{}",
-                    c.corrected_ah,
-                    c.corrections
-                        .iter()
-                        .filter(|x| x.factor != 1.0)
-                        .map(|x| format!("; {} ×{:.4} ({})", x.kind, x.factor, x.method))
-                        .collect::<String>()
-                );
-            }
-            let _ = writeln!(
-                o,
-                "  State of health:   {:.1} % of rated {:.3} Ah",
-                c.soh_pct, c.rated_ah
-            );
-            if let Some(p) = c.ieee450_percent {
-                let _ = writeln!(o, "  IEEE 450 percent capacity: {p:.1} %");
-            }
-        }
-        None => {
-            let _ = writeln!(o, "  Measured capacity: none (no completed capacity step)");
-        }
-    }
-    if let Some(r) = &s.resistance {
-        let _ = writeln!(
-            o,
-            "  DC resistance:     {:.2} mOhm ({})",
-            r.dcir_mohm, r.method
-        );
-        if r.readings.len() > 1 {
-            for x in &r.readings {
-                let _ = writeln!(
-                    o,
-                    "    step {:>3}: {:.2} mOhm{}",
-                    x.step,
-                    x.dcir_mohm,
-                    x.soc_pct
-                        .map(|s| format!(" at {s:.0} % state of charge"))
-                        .unwrap_or_default()
-                );
-            }
-        }
-    }
-    if let Some(c) = &s.curves {
-        for i in &c.ica {
-            if !i.peaks.is_empty() {
-                let peaks: Vec<String> = i
-                    .peaks
-                    .iter()
-                    .map(|p| format!("{:.3} V/cell ({:.2} Ah/V)", p.position_per_cell, p.height))
-                    .collect();
-                let _ = writeln!(
-                    o,
-                    "  dQ/dV peaks ({} step {}): {}",
-                    i.direction,
-                    i.step,
-                    peaks.join(", ")
-                );
-            }
-        }
-    }
+    capacity_lines(&mut o, s);
+    resistance_lines(&mut o, s);
     if let Some(r) = &s.recalibration {
         let _ = writeln!(
             o,
@@ -194,6 +107,105 @@ pub fn summary(s: &Summary) -> String {
         let _ = writeln!(o, "  warning: {w}");
     }
     o
+}
+
+/// The capacity figures: measured, where it started, at rated conditions,
+/// state of health.
+fn capacity_lines(o: &mut String, s: &Summary) {
+    match &s.capacity {
+        Some(c) => {
+            let _ = writeln!(
+                o,
+                "  Measured capacity: {:.3} Ah, {:.2} Wh at {:.3} A ({:.2}C), {}",
+                c.measured_ah,
+                c.measured_wh,
+                c.mean_current_a,
+                c.c_rate,
+                if c.ended_on_cutoff {
+                    "to the cutoff"
+                } else {
+                    "NOT to the cutoff (lower bound)"
+                }
+            );
+            if !c.preceded_by.is_empty() {
+                let _ = writeln!(
+                    o,
+                    "  Started from:      {}{}",
+                    c.preceded_by,
+                    if c.from_full_charge {
+                        ""
+                    } else {
+                        " (NOT from a full charge: not the pack's capacity; not graded)"
+                    }
+                );
+            }
+            if c.corrected_ah > 0.0 {
+                let _ = writeln!(
+                    o,
+                    "  At rated conditions: {:.3} Ah{}",
+                    c.corrected_ah,
+                    c.corrections
+                        .iter()
+                        .filter(|x| x.factor != 1.0)
+                        .map(|x| format!("; {} ×{:.4} ({})", x.kind, x.factor, x.method))
+                        .collect::<String>()
+                );
+            }
+            let _ = writeln!(
+                o,
+                "  State of health:   {:.1} % of rated {:.3} Ah",
+                c.soh_pct, c.rated_ah
+            );
+            if let Some(p) = c.ieee450_percent {
+                let _ = writeln!(o, "  IEEE 450 percent capacity: {p:.1} %");
+            }
+        }
+        None => {
+            let _ = writeln!(o, "  Measured capacity: none (no completed capacity step)");
+        }
+    }
+}
+
+/// The resistance figures and the dQ/dV peaks.
+fn resistance_lines(o: &mut String, s: &Summary) {
+    if let Some(r) = &s.resistance {
+        let _ = writeln!(
+            o,
+            "  DC resistance:     {:.2} mOhm ({})",
+            r.dcir_mohm, r.method
+        );
+        if r.readings.len() > 1 {
+            for x in &r.readings {
+                let _ = writeln!(
+                    o,
+                    "    step {:>3}: {:.2} mOhm{}",
+                    x.step,
+                    x.dcir_mohm,
+                    x.soc_pct
+                        .map(|s| format!(" at {s:.0} % state of charge"))
+                        .unwrap_or_default()
+                );
+            }
+        }
+    }
+    if let Some(c) = &s.curves {
+        for i in &c.ica {
+            if !i.peaks.is_empty() {
+                let peaks: Vec<String> = i
+                    .peaks
+                    .iter()
+                    .map(|p| format!("{:.3} V/cell ({:.2} Ah/V)", p.position_per_cell, p.height))
+                    .collect();
+                let _ = writeln!(
+                    o,
+                    "  dQ/dV peaks ({} step {}): {}",
+                    i.direction,
+                    i.step,
+                    peaks.join(", ")
+                );
+            }
+        }
+    }
 }
 
 /// The fade analysis of one pack for a terminal.
