@@ -123,6 +123,244 @@ pub struct BenchFile {
     pub stations: Vec<StationSpec>,
 }
 
+/// Reading a bench file: where its text is, and every error found so far
+/// (all are reported together).
+struct Reader<'a> {
+    path: &'a Path,
+    text: &'a str,
+    /// Profile, pack and procedure paths are relative to this folder.
+    base: &'a Path,
+    errors: Vec<LocatedError>,
+}
+
+impl Reader<'_> {
+    /// An error at `span` (plus `extra` bytes: 1 skips a string's quote).
+    fn err(&mut self, span: std::ops::Range<usize>, extra: usize, message: String) {
+        self.errors.push(LocatedError {
+            location: Location::at(self.path, self.text, span.start + extra),
+            message,
+        });
+    }
+
+    /// One station, validated; none when it has errors.
+    fn station(
+        &mut self,
+        st: &Spanned<RawStation>,
+        earlier: &[StationSpec],
+    ) -> Option<StationSpec> {
+        let span = st.span();
+        let st = st.get_ref();
+        let name = st.name.get_ref().clone();
+        if name.is_empty()
+            || !name
+                .chars()
+                .all(|c| c.is_ascii_alphanumeric() || "-_.".contains(c))
+        {
+            self.err(
+                st.name.span(),
+                1,
+                format!("station name '{name}': expected letters, digits, '-', '_' or '.'"),
+            );
+        }
+        if earlier.iter().any(|s| s.name == name) {
+            self.err(
+                st.name.span(),
+                1,
+                format!("station '{name}' is named twice"),
+            );
+        }
+        let drivers = self.drivers(st, &name, span.clone());
+        let meter = st.meter.as_ref().map(|m| self.bind(m, ProfileRole::Meter));
+        let sims = self.check_sim_links(st, &name, span);
+        let (Some(drivers), Some(true) | None) = (drivers, meter.as_ref().map(|m| m.is_some()))
+        else {
+            return None;
+        };
+        if let Some(pk) = &st.pack {
+            if let Err(e) = model::pack::check_pack_id(pk.get_ref()) {
+                self.err(pk.span(), 1, e.to_string());
+            }
+        }
+        if let (Some(t), 0) = (&st.sim_config, sims) {
+            self.err(
+                t.span(),
+                1,
+                "sim_config is for a simulated station (links \"sim\")".into(),
+            );
+        }
+        let file = |f: &Option<Spanned<String>>| f.as_ref().map(|t| self.base.join(t.get_ref()));
+        Some(StationSpec {
+            name,
+            drivers,
+            meter: meter.flatten(),
+            pack_id: st.pack.as_ref().map(|p| p.get_ref().clone()),
+            pack_spec: file(&st.pack_spec),
+            procedure: file(&st.procedure),
+            sim_config: file(&st.sim_config),
+        })
+    }
+
+    /// A source and a load, or one source-sink.
+    fn drivers(
+        &mut self,
+        st: &RawStation,
+        name: &str,
+        span: std::ops::Range<usize>,
+    ) -> Option<Drivers> {
+        match (&st.source, &st.load, &st.source_sink) {
+            (Some(s), Some(l), None) => {
+                let s = self.bind(s, ProfileRole::Source);
+                let l = self.bind(l, ProfileRole::Load);
+                Some(Drivers::Pair {
+                    source: Box::new(s?),
+                    load: Box::new(l?),
+                })
+            }
+            (None, None, Some(b)) => self
+                .bind(b, ProfileRole::SourceSink)
+                .map(|b| Drivers::SourceSink(Box::new(b))),
+            (_, _, Some(_)) => {
+                self.err(
+                    span,
+                    0,
+                    format!(
+                        "station '{name}': bind either source and load, or source_sink, not both"
+                    ),
+                );
+                None
+            }
+            _ => {
+                self.err(
+                    span,
+                    0,
+                    format!("station '{name}': needs a source and a load, or a source_sink"),
+                );
+                None
+            }
+        }
+    }
+
+    /// The embedded simulated bench is a supply and a load on one
+    /// simulated pack: `sim` is all of a station's links or none. Returns
+    /// how many links are `sim`.
+    fn check_sim_links(
+        &mut self,
+        st: &RawStation,
+        name: &str,
+        span: std::ops::Range<usize>,
+    ) -> usize {
+        let links: Vec<&Spanned<String>> = [&st.source, &st.load, &st.source_sink, &st.meter]
+            .into_iter()
+            .flatten()
+            .map(|b| &b.link)
+            .collect();
+        let sims = links.iter().filter(|l| l.get_ref() == "sim").count();
+        let sim_ok = st.source_sink.is_none() && st.meter.is_none();
+        if sims > 0 && (sims < links.len() || !sim_ok) {
+            let first = links
+                .iter()
+                .find(|l| l.get_ref() == "sim")
+                .map(|l| l.span())
+                .unwrap_or(span);
+            self.err(
+                first,
+                1,
+                format!(
+                    "station '{name}': link \"sim\" (the embedded simulated bench) binds a source and a load together, with no meter or source-sink, and no real link beside it"
+                ),
+            );
+        }
+        sims
+    }
+
+    /// One instrument: its link, its profile (built in or a file) in the
+    /// role it is bound to, and the link's own timeout and delay.
+    fn bind(&mut self, b: &RawBinding, role: ProfileRole) -> Option<Binding> {
+        let link_text = b.link.get_ref().clone();
+        let link = match link_text.parse::<LinkSpec>() {
+            Ok(l) => Some(l),
+            Err(e) => {
+                self.err(b.link.span(), 1 + e.offset, e.message);
+                None
+            }
+        };
+        let mut profile = self.profile(b)?;
+        if profile.role != role {
+            self.err(
+                b.profile.span(),
+                1,
+                format!(
+                    "profile '{}' is a {} profile, bound here as {}",
+                    profile.name,
+                    profile.role.name(),
+                    role.name()
+                ),
+            );
+            return None;
+        }
+        for (field, is_delay) in [(&b.timeout, false), (&b.delay, true)] {
+            let Some(t) = field else { continue };
+            match model::units::duration(t.get_ref()) {
+                Ok(s) if s > 0.0 && s <= 600.0 || (is_delay && s == 0.0) => {
+                    let ms = (s * 1000.0).round() as u64;
+                    if is_delay {
+                        profile.transport.delay_ms = ms;
+                    } else {
+                        profile.transport.timeout_ms = ms.max(1);
+                    }
+                }
+                _ => self.err(
+                    t.span(),
+                    1,
+                    format!(
+                        "'{}': expected a duration from 1 ms to 600 s, e.g. 500ms",
+                        t.get_ref()
+                    ),
+                ),
+            }
+        }
+        Some(Binding {
+            link: link?,
+            link_text,
+            profile,
+        })
+    }
+
+    /// A built-in profile by name, else a profile file.
+    fn profile(&mut self, b: &RawBinding) -> Option<Profile> {
+        let pname = b.profile.get_ref();
+        if let Some(p) = Profile::builtin_named(pname) {
+            return Some(p);
+        }
+        let file = self.base.join(pname);
+        match model::procedure::read_text(&file) {
+            Ok(ptext) => match Profile::from_toml(&file, &ptext) {
+                Ok(p) => Some(p),
+                Err(e) => {
+                    self.errors.extend(e.0);
+                    None
+                }
+            },
+            Err(e) => {
+                let names: Vec<&str> = instrument::profile::BUILTIN
+                    .iter()
+                    .map(|(n, _)| *n)
+                    .collect();
+                self.err(
+                    b.profile.span(),
+                    1,
+                    format!(
+                        "profile '{pname}' is neither a built-in ({}) nor a readable file ({}: {e})",
+                        names.join(", "),
+                        file.display()
+                    ),
+                );
+                None
+            }
+        }
+    }
+}
+
 impl BenchFile {
     /// Read and validate a bench file.
     pub fn load(path: &Path) -> Result<BenchFile, InputErrors> {
@@ -143,216 +381,27 @@ impl BenchFile {
     pub fn parse(path: &Path, text: &str) -> Result<BenchFile, InputErrors> {
         let raw: RawBench =
             toml::from_str(text).map_err(|e| InputErrors(vec![toml_error(path, text, &e)]))?;
-        let base = path.parent().unwrap_or(Path::new("."));
-        let mut errors = Vec::new();
-        let mut stations = Vec::new();
-        let at = |span: std::ops::Range<usize>, extra: usize| {
-            Location::at(path, text, span.start + extra)
+        let mut r = Reader {
+            path,
+            text,
+            base: path.parent().unwrap_or(Path::new(".")),
+            errors: Vec::new(),
         };
         if raw.station.is_empty() {
-            errors.push(LocatedError {
-                location: Location::at(path, text, 0),
-                message: "a bench file needs at least one [[station]]".into(),
-            });
+            r.err(
+                0..0,
+                0,
+                "a bench file needs at least one [[station]]".into(),
+            );
         }
+        let mut stations = Vec::new();
         for st in &raw.station {
-            let span = st.span();
-            let st = st.get_ref();
-            let name = st.name.get_ref().clone();
-            if name.is_empty()
-                || !name
-                    .chars()
-                    .all(|c| c.is_ascii_alphanumeric() || "-_.".contains(c))
-            {
-                errors.push(LocatedError {
-                    location: at(st.name.span(), 1),
-                    message: format!(
-                        "station name '{name}': expected letters, digits, '-', '_' or '.'"
-                    ),
-                });
-            }
-            if stations.iter().any(|s: &StationSpec| s.name == name) {
-                errors.push(LocatedError {
-                    location: at(st.name.span(), 1),
-                    message: format!("station '{name}' is named twice"),
-                });
-            }
-            let bind = |b: &RawBinding,
-                        role: ProfileRole,
-                        errors: &mut Vec<LocatedError>|
-             -> Option<Binding> {
-                let link_text = b.link.get_ref().clone();
-                let link = match link_text.parse::<LinkSpec>() {
-                    Ok(l) => Some(l),
-                    Err(e) => {
-                        errors.push(LocatedError {
-                            location: at(b.link.span(), 1 + e.offset),
-                            message: e.message,
-                        });
-                        None
-                    }
-                };
-                let pname = b.profile.get_ref();
-                let profile = match Profile::builtin_named(pname) {
-                    Some(p) => Some(p),
-                    None => {
-                        let file = base.join(pname);
-                        match model::procedure::read_text(&file) {
-                            Ok(ptext) => match Profile::from_toml(&file, &ptext) {
-                                Ok(p) => Some(p),
-                                Err(e) => {
-                                    errors.extend(e.0);
-                                    None
-                                }
-                            },
-                            Err(e) => {
-                                let names: Vec<&str> = instrument::profile::BUILTIN
-                                    .iter()
-                                    .map(|(n, _)| *n)
-                                    .collect();
-                                errors.push(LocatedError {
-                                    location: at(b.profile.span(), 1),
-                                    message: format!(
-                                        "profile '{pname}' is neither a built-in ({}) nor a readable file ({}: {e})",
-                                        names.join(", "),
-                                        file.display()
-                                    ),
-                                });
-                                None
-                            }
-                        }
-                    }
-                };
-                let mut profile = profile?;
-                if profile.role != role {
-                    errors.push(LocatedError {
-                        location: at(b.profile.span(), 1),
-                        message: format!(
-                            "profile '{}' is a {} profile, bound here as {}",
-                            profile.name,
-                            profile.role.name(),
-                            role.name()
-                        ),
-                    });
-                    return None;
-                }
-                for (field, target) in [(&b.timeout, 0usize), (&b.delay, 1usize)] {
-                    if let Some(t) = field {
-                        match model::units::duration(t.get_ref()) {
-                            Ok(s) if s > 0.0 && s <= 600.0 || (target == 1 && s == 0.0) => {
-                                let ms = (s * 1000.0).round() as u64;
-                                if target == 0 {
-                                    profile.transport.timeout_ms = ms.max(1);
-                                } else {
-                                    profile.transport.delay_ms = ms;
-                                }
-                            }
-                            _ => errors.push(LocatedError {
-                                location: at(t.span(), 1),
-                                message: format!(
-                                    "'{}': expected a duration from 1 ms to 600 s, e.g. 500ms",
-                                    t.get_ref()
-                                ),
-                            }),
-                        }
-                    }
-                }
-                Some(Binding {
-                    link: link?,
-                    link_text,
-                    profile,
-                })
-            };
-            let drivers = match (&st.source, &st.load, &st.source_sink) {
-                (Some(s), Some(l), None) => {
-                    let s = bind(s, ProfileRole::Source, &mut errors);
-                    let l = bind(l, ProfileRole::Load, &mut errors);
-                    match (s, l) {
-                        (Some(source), Some(load)) => Some(Drivers::Pair {
-                            source: Box::new(source),
-                            load: Box::new(load),
-                        }),
-                        _ => None,
-                    }
-                }
-                (None, None, Some(b)) => bind(b, ProfileRole::SourceSink, &mut errors)
-                    .map(|b| Drivers::SourceSink(Box::new(b))),
-                (_, _, Some(_)) => {
-                    errors.push(LocatedError {
-                        location: at(span.clone(), 0),
-                        message: format!("station '{name}': bind either source and load, or source_sink, not both"),
-                    });
-                    None
-                }
-                _ => {
-                    errors.push(LocatedError {
-                        location: at(span.clone(), 0),
-                        message: format!(
-                            "station '{name}': needs a source and a load, or a source_sink"
-                        ),
-                    });
-                    None
-                }
-            };
-            let meter = st
-                .meter
-                .as_ref()
-                .map(|m| bind(m, ProfileRole::Meter, &mut errors));
-            // The embedded simulated bench is a supply and a load on one
-            // simulated pack: `sim` is all of a station's links or none.
-            let links: Vec<&Spanned<String>> = [&st.source, &st.load, &st.source_sink, &st.meter]
-                .into_iter()
-                .flatten()
-                .map(|b| &b.link)
-                .collect();
-            let sims = links.iter().filter(|l| l.get_ref() == "sim").count();
-            let sim_ok = st.source_sink.is_none() && st.meter.is_none();
-            if sims > 0 && (sims < links.len() || !sim_ok) {
-                let first = links
-                    .iter()
-                    .find(|l| l.get_ref() == "sim")
-                    .map(|l| l.span())
-                    .unwrap_or(span.clone());
-                errors.push(LocatedError {
-                    location: at(first, 1),
-                    message: format!(
-                        "station '{name}': link \"sim\" (the embedded simulated bench) binds a source and a load together, with no meter or source-sink, and no real link beside it"
-                    ),
-                });
-            }
-            if let (Some(drivers), Some(true) | None) =
-                (drivers, meter.as_ref().map(|m| m.is_some()))
-            {
-                if let Some(pk) = &st.pack {
-                    if let Err(e) = model::pack::check_pack_id(pk.get_ref()) {
-                        errors.push(LocatedError {
-                            location: at(pk.span(), 1),
-                            message: e.to_string(),
-                        });
-                    }
-                }
-                let file = |f: &Option<Spanned<String>>| f.as_ref().map(|t| base.join(t.get_ref()));
-                if st.sim_config.is_some() && sims == 0 {
-                    if let Some(t) = &st.sim_config {
-                        errors.push(LocatedError {
-                            location: at(t.span(), 1),
-                            message: "sim_config is for a simulated station (links \"sim\")".into(),
-                        });
-                    }
-                }
-                stations.push(StationSpec {
-                    name,
-                    drivers,
-                    meter: meter.flatten(),
-                    pack_id: st.pack.as_ref().map(|p| p.get_ref().clone()),
-                    pack_spec: file(&st.pack_spec),
-                    procedure: file(&st.procedure),
-                    sim_config: file(&st.sim_config),
-                });
+            if let Some(s) = r.station(st, &stations) {
+                stations.push(s);
             }
         }
-        if !errors.is_empty() {
-            return Err(InputErrors(errors));
+        if !r.errors.is_empty() {
+            return Err(InputErrors(r.errors));
         }
         Ok(BenchFile {
             path: path.to_path_buf(),
