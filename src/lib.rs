@@ -12,4 +12,5 @@
 //! `model`, `instrument`, `analysis`, `record`, `engine`, `sim`, `report`.
 
 pub mod cli;
+pub mod fuzz_checks;
 pub mod session;

@@ -1,14 +1,6 @@
-//! Instrument profiles: any text gives a profile or located errors.
+//! Fuzz target `profile`: the property is in `packbench::fuzz_checks::profile`,
+//! which `cargo test` also runs on this target's seeds and regressions.
 #![no_main]
 use libfuzzer_sys::fuzz_target;
-use instrument::profile::Profile;
-use std::path::Path;
 
-fuzz_target!(|data: &[u8]| {
-    let Ok(text) = std::str::from_utf8(data) else {
-        return;
-    };
-    if let Err(e) = Profile::from_toml(Path::new("fuzz-profile.toml"), text) {
-        assert!(!e.0.is_empty());
-    }
-});
+fuzz_target!(|data: &[u8]| packbench::fuzz_checks::profile(data));

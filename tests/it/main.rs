@@ -15,6 +15,7 @@ mod envelope_matrix;
 mod fade;
 #[cfg(unix)]
 mod figures;
+mod fuzz_seeds;
 mod hostile;
 mod layers;
 #[cfg(unix)]
