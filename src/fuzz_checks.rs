@@ -16,8 +16,11 @@ use std::path::Path;
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::Arc;
 
+/// One target's property: panics when it fails.
+pub type Check = fn(&[u8]);
+
 /// The targets, by name, as the fuzz crate and the seed folders name them.
-pub const TARGETS: [(&str, fn(&[u8])); 7] = [
+pub const TARGETS: [(&str, Check); 7] = [
     ("procedure", procedure),
     ("bench_file", bench_file),
     ("profile", profile),
