@@ -91,11 +91,19 @@ fn bad(msg: String) -> RunError {
 
 /// Whether a process with this id is alive (a lock left by a dead one is
 /// stale).
+#[cfg(unix)]
 fn process_alive(pid: i32) -> bool {
     if pid <= 0 || pid as u32 == std::process::id() {
         return false;
     }
     nix::sys::signal::kill(nix::unistd::Pid::from_raw(pid), None).is_ok()
+}
+
+/// Elsewhere a lock's process cannot be looked up: taken as alive (the
+/// operator removes `run.lock` when no packbench runs the folder).
+#[cfg(not(unix))]
+fn process_alive(pid: i32) -> bool {
+    pid > 0 && pid as u32 != std::process::id()
 }
 
 /// Read a run's `run.json`.

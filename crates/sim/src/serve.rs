@@ -196,6 +196,7 @@ fn serve_lines<R: Read, W: Write>(
     }
 }
 
+#[cfg(unix)]
 fn set_raw(fd: &std::os::fd::OwnedFd) -> io::Result<()> {
     use nix::sys::termios::{cfmakeraw, tcgetattr, tcsetattr, SetArg};
     let mut t = tcgetattr(fd).map_err(io::Error::from)?;
@@ -205,6 +206,7 @@ fn set_raw(fd: &std::os::fd::OwnedFd) -> io::Result<()> {
 
 /// A new pseudo-terminal in raw mode: (master, our own slave fd kept open
 /// so the master survives client reconnects, device path).
+#[cfg(unix)]
 fn new_pty() -> io::Result<(std::fs::File, std::fs::File, PathBuf)> {
     let r = nix::pty::openpty(None, None).map_err(io::Error::from)?;
     set_raw(&r.slave)?;
@@ -216,6 +218,21 @@ fn new_pty() -> io::Result<(std::fs::File, std::fs::File, PathBuf)> {
     ))
 }
 
+/// Pseudo-terminals are Unix-only; elsewhere serve on TCP.
+#[cfg(not(unix))]
+fn new_pty() -> io::Result<(std::fs::File, std::fs::File, PathBuf)> {
+    Err(io::Error::new(
+        io::ErrorKind::Unsupported,
+        "pseudo-terminals are Unix-only: serve on tcp instead",
+    ))
+}
+
+#[cfg(not(unix))]
+fn point_symlink(_link: &Path, _target: &Path) -> io::Result<()> {
+    Ok(())
+}
+
+#[cfg(unix)]
 fn point_symlink(link: &Path, target: &Path) -> io::Result<()> {
     let tmp = link.with_extension("new-link");
     let _ = std::fs::remove_file(&tmp);
