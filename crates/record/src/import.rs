@@ -501,12 +501,10 @@ pub fn stream_log(
             Ok(!carry.iter().all(|b| b.is_ascii_whitespace()))
         });
         let mut result = Ok(());
-        'batches: for batch in rx {
-            for (l, r) in batch.rows(ncols, cols, fmt, sign, bad) {
-                if let Err(e) = handle(l, r) {
-                    result = Err(e);
-                    break 'batches;
-                }
+        for batch in rx {
+            if let Err(e) = batch.for_each_row(ncols, cols, fmt, sign, bad, &mut handle) {
+                result = Err(e);
+                break;
             }
         }
         (result, parser.join())
@@ -739,6 +737,7 @@ impl<'a, B: Fn(u64, usize, String) -> ReadError> LineSplitter<'a, B> {
     }
 
     /// Close the line `a..b` whose fields from `base` on are in the batch.
+    #[inline(always)]
     fn end_line(
         &mut self,
         batch: &mut Batch,
@@ -801,7 +800,40 @@ impl<'a, B: Fn(u64, usize, String) -> ReadError> LineSplitter<'a, B> {
 }
 
 impl Batch {
+    /// Hand each of the batch's rows to `f`, in order, parsed where the
+    /// splitter left them; stops at `f`'s first error.
+    fn for_each_row<B: Fn(u64, usize, String) -> ReadError>(
+        self,
+        ncols: usize,
+        cols: &Cols,
+        fmt: &LogFormat,
+        sign: f64,
+        bad: &B,
+        f: &mut impl FnMut(u64, Result<Row, ReadError>) -> Result<(), ReadError>,
+    ) -> Result<(), ReadError> {
+        let mut k = 0;
+        for item in self.items {
+            match item {
+                Item::Line(l) => {
+                    let spans = &self.spans[k..k + ncols];
+                    k += ncols;
+                    let data = &self.data;
+                    let get = |i: usize| {
+                        spans
+                            .get(i)
+                            .map_or(&b""[..], |&(a, b)| &data[a as usize..b as usize])
+                    };
+                    f(l, parse_row(&get, cols, fmt, sign, l, bad))?
+                }
+                Item::Parsed(l, row) => f(l, *row)?,
+                Item::Row(l, row) => f(l, Ok(row))?,
+            }
+        }
+        Ok(())
+    }
+
     /// The batch's rows, in order, parsed where the splitter left them.
+    #[cfg(test)]
     fn rows<'b, B: Fn(u64, usize, String) -> ReadError>(
         self,
         ncols: usize,
