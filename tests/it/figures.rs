@@ -24,25 +24,16 @@ fn run_dir(pack_dir: &Path) -> PathBuf {
 
 /// A short rest, then a 2C capacity discharge to 3.0 V/cell (the simulated
 /// bench's 14 Ah pack: 28 A for about 28 minutes of bench time).
-const FAST_DISCHARGE: &str = r#"title = "rest, then a 2C capacity discharge"
-[envelope]
-voltage_max = "4.25V/cell"
-voltage_min = "2.80V/cell"
-current_max = "2.2C"
-temperature_max = "65degC"
-[sampling]
-every = "1s"
-[[phase]]
-name = "measure"
-  [[phase.step]]
-  kind = "rest"
-  ends = ["time > 10s"]
-  [[phase.step]]
-  kind = "discharge"
-  current = "2C"
-  ends = ["voltage < 3.0V/cell", "time > 2h"]
-  result = "capacity"
-"#;
+fn fast_discharge() -> String {
+    rest_then_discharge(
+        "rest, then a 2C capacity discharge",
+        Some("10s"),
+        2.0,
+        2.2,
+        65.0,
+        "2h",
+    )
+}
 
 /// Interrupted and resumed at 20 points with varied timing: the time the
 /// run was down is never integrated (no gap in the log, the same capacity
@@ -53,7 +44,7 @@ name = "measure"
 fn a_resumed_run_never_counts_charge_across_the_outage() {
     let dir = tempfile::tempdir().unwrap();
     let d = dir.path();
-    write(d, "discharge.toml", FAST_DISCHARGE);
+    write(d, "discharge.toml", &fast_discharge());
     write(d, "full.toml", "[pack]\ninitial_soc = 1.0\n");
     let whole = d.join("whole");
     let out = packbench_in(
@@ -177,11 +168,25 @@ fn interrupt_and_resume(
         .current_dir(d)
         .output()
         .unwrap();
+    if out.status.code() != Some(0) {
+        if let Some(keep) = std::env::var_os("PACKBENCH_KEEP_FAILED") {
+            let _ = std::process::Command::new("cp")
+                .arg("-r")
+                .arg(&rdir)
+                .arg(std::path::Path::new(&keep).join(format!("case{k}")))
+                .status();
+        }
+    }
     assert_eq!(
         out.status.code(),
         Some(0),
-        "case {k}: {}",
-        text(&out.stderr)
+        "case {k}: {}; stopped: {}",
+        text(&out.stderr),
+        std::fs::read_to_string(rdir.join("run.json"))
+            .ok()
+            .and_then(|s| serde_json::from_str::<serde_json::Value>(&s).ok())
+            .map(|m| m["stop_reason"].to_string())
+            .unwrap_or_default()
     );
     let s = json(&rdir.join("summary.json"));
     assert_eq!(s["status"], "completed", "case {k}");
@@ -246,20 +251,16 @@ fn interrupt_and_resume(
 }
 
 /// A capacity discharge straight from the simulated pack's 50 % charge.
-const NOT_FROM_FULL: &str = r#"title = "a discharge with no charge before it"
-[envelope]
-voltage_max = "4.25V/cell"
-voltage_min = "2.80V/cell"
-current_max = "1.2C"
-temperature_max = "60degC"
-[[phase]]
-name = "measure"
-  [[phase.step]]
-  kind = "discharge"
-  current = "0.2C"
-  ends = ["voltage < 3.0V/cell", "time > 6h"]
-  result = "capacity"
-"#;
+fn not_from_full() -> String {
+    rest_then_discharge(
+        "a discharge with no charge before it",
+        None,
+        0.2,
+        1.2,
+        60.0,
+        "6h",
+    )
+}
 
 /// A capacity step that did not follow a full charge: said in `check` and
 /// in the summary; no state of health, grade or new nominal from it, and
@@ -270,7 +271,7 @@ name = "measure"
 fn a_capacity_step_that_did_not_start_full_grades_nothing() {
     let dir = tempfile::tempdir().unwrap();
     let d = dir.path();
-    write(d, "half.toml", NOT_FROM_FULL);
+    write(d, "half.toml", &not_from_full());
     let check = packbench_in(d, &["check", "half.toml", "--no-dry-run"]);
     assert_eq!(check.status.code(), Some(0));
     let said = text(&check.stdout);

@@ -21,25 +21,16 @@ use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 /// A rest, then a 1C capacity discharge to 3.0 V/cell.
-const DISCHARGE: &str = r#"title = "rest, then a 1C capacity discharge"
-[envelope]
-voltage_max = "4.25V/cell"
-voltage_min = "2.80V/cell"
-current_max = "1.2C"
-temperature_max = "60degC"
-[sampling]
-every = "1s"
-[[phase]]
-name = "measure"
-  [[phase.step]]
-  kind = "rest"
-  ends = ["time > 2min"]
-  [[phase.step]]
-  kind = "discharge"
-  current = "1C"
-  ends = ["voltage < 3.0V/cell", "time > 2h"]
-  result = "capacity"
-"#;
+fn discharge() -> String {
+    rest_then_discharge(
+        "rest, then a 1C capacity discharge",
+        Some("2min"),
+        1.0,
+        1.2,
+        60.0,
+        "2h",
+    )
+}
 
 fn run_dirs(results: &Path, pack: &str) -> Vec<PathBuf> {
     let mut v: Vec<PathBuf> = std::fs::read_dir(results.join(pack))
@@ -78,7 +69,7 @@ fn four_stations_run_at_once_and_a_fault_stops_only_its_own() {
     write(
         d,
         "discharge.toml",
-        &DISCHARGE.replace("2.80V/cell", "2.50V/cell"),
+        &discharge().replace("2.80V/cell", "2.50V/cell"),
     );
     write(d, "full.toml", "[pack]\ninitial_soc = 1.0\n");
     // The third station's load stops answering 10 bench minutes in.
@@ -217,7 +208,7 @@ fn four_stations_run_at_once_and_a_fault_stops_only_its_own() {
 fn ctrl_c_stops_a_real_time_run_with_outputs_off_and_a_summary() {
     let dir = tempfile::tempdir().unwrap();
     let d = dir.path();
-    write(d, "discharge.toml", DISCHARGE);
+    write(d, "discharge.toml", &discharge());
     let results = d.join("results");
     let mut child = Command::new(BIN)
         .args([
@@ -237,12 +228,7 @@ fn ctrl_c_stops_a_real_time_run_with_outputs_off_and_a_summary() {
         .spawn()
         .unwrap();
     // Wait until the run is under way (its first step has started).
-    let rdir = wait_run_dir(&results.join("C1"), Duration::from_secs(10)).expect("a run folder");
-    assert!(wait_for(
-        &rdir.join("events.jsonl"),
-        "step_start",
-        Duration::from_secs(10)
-    ));
+    let rdir = wait_under_way(&results.join("C1"), "step_start", Duration::from_secs(10));
     let sent = Instant::now();
     signal(&child, libc::SIGINT);
     let status = child.wait().unwrap();
@@ -312,7 +298,7 @@ fn ctrl_c_stops_a_real_time_run_with_outputs_off_and_a_summary() {
 fn a_run_killed_mid_discharge_resumes_to_within_1pct_of_an_uninterrupted_run() {
     let dir = tempfile::tempdir().unwrap();
     let d = dir.path();
-    write(d, "discharge.toml", DISCHARGE);
+    write(d, "discharge.toml", &discharge());
     write(d, "full.toml", "[pack]\ninitial_soc = 1.0\n");
     // The same scenario, uninterrupted.
     let whole = d.join("whole");
@@ -357,12 +343,11 @@ fn a_run_killed_mid_discharge_resumes_to_within_1pct_of_an_uninterrupted_run() {
         .stderr(Stdio::null())
         .spawn()
         .unwrap();
-    let rdir = wait_run_dir(&results.join("K1"), Duration::from_secs(10)).expect("a run folder");
-    assert!(wait_for(
-        &rdir.join("events.jsonl"),
+    let rdir = wait_under_way(
+        &results.join("K1"),
         "\"kind\":\"discharge\"",
-        Duration::from_secs(20)
-    ));
+        Duration::from_secs(20),
+    );
     // Well into the discharge: 1200 bench seconds (3 s of wall time at 400x).
     let events = rdir.join("events.jsonl");
     let t0 = event_t(&events, "\"kind\":\"discharge\"").expect("the discharge's start");
@@ -518,7 +503,7 @@ fn zero_offsets_are_found_warned_and_corrected_when_asked() {
     let dir = tempfile::tempdir().unwrap();
     let d = dir.path();
     let with = |correct: bool| {
-        DISCHARGE.replace(
+        discharge().replace(
             "[sampling]",
             &format!("[offsets]\nwarn_above = \"10mA\"\ncorrect = {correct}\n[sampling]"),
         )
@@ -646,7 +631,7 @@ name = "drain"
 #[test]
 fn the_low_capacity_alarm_is_raised_and_the_run_goes_on() {
     let dir = tempfile::tempdir().unwrap();
-    let path = write(dir.path(), "d.toml", DISCHARGE);
+    let path = write(dir.path(), "d.toml", &discharge());
     // The simulated pack holds 93 % of rated: an alarm below 95 % rings,
     // one below 90 % does not.
     for (pct, rings) in [(95.0, true), (90.0, false)] {
@@ -735,7 +720,7 @@ fn a_second_ctrl_c_switches_every_instrument_off_on_fresh_links() {
 fn ctrl_c_stops_every_station_of_a_bench_and_a_live_run_is_not_resumed() {
     let dir = tempfile::tempdir().unwrap();
     let d = dir.path();
-    write(d, "discharge.toml", DISCHARGE);
+    write(d, "discharge.toml", &discharge());
     let mut bench = String::new();
     for n in 1..=3 {
         bench.push_str(&format!(
@@ -763,17 +748,13 @@ fn ctrl_c_stops_every_station_of_a_bench_and_a_live_run_is_not_resumed() {
         .unwrap();
     let dirs: Vec<PathBuf> = (1..=3)
         .map(|n| {
-            wait_run_dir(&results.join(format!("G0{n}")), Duration::from_secs(10))
-                .expect("a run folder")
+            wait_under_way(
+                &results.join(format!("G0{n}")),
+                "step_start",
+                Duration::from_secs(10),
+            )
         })
         .collect();
-    for r in &dirs {
-        assert!(wait_for(
-            &r.join("events.jsonl"),
-            "step_start",
-            Duration::from_secs(10)
-        ));
-    }
     // While it runs, the folder is locked: resume refuses it.
     let out = Command::new(BIN)
         .arg("resume")

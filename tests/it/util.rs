@@ -93,6 +93,53 @@ pub fn shipped() -> Vec<(&'static str, PackSpec)> {
     ]
 }
 
+/// The lithium test envelope the hand-written procedures share (per cell,
+/// so it fits any li-ion pack), with a current limit in C and a
+/// temperature limit in °C.
+pub fn li_ion_envelope(current_max_c: f64, temperature_max_c: f64) -> String {
+    format!(
+        "[envelope]\nvoltage_max = \"4.25V/cell\"\nvoltage_min = \"2.80V/cell\"\ncurrent_max = \"{current_max_c}C\"\ntemperature_max = \"{temperature_max_c}degC\"\n"
+    )
+}
+
+/// A procedure: an optional rest of `rest`, then a capacity discharge at
+/// `rate_c` to 3.0 V/cell, sampled every second, inside
+/// [`li_ion_envelope`]. `rest` is a duration as a procedure writes it.
+pub fn rest_then_discharge(
+    title: &str,
+    rest: Option<&str>,
+    rate_c: f64,
+    current_max_c: f64,
+    temperature_max_c: f64,
+    time_cap: &str,
+) -> String {
+    let mut s = format!(
+        "title = \"{title}\"\n{}[sampling]\nevery = \"1s\"\n[[phase]]\nname = \"measure\"\n",
+        li_ion_envelope(current_max_c, temperature_max_c)
+    );
+    if let Some(r) = rest {
+        s += &format!("  [[phase.step]]\n  kind = \"rest\"\n  ends = [\"time > {r}\"]\n");
+    }
+    s += &format!(
+        "  [[phase.step]]\n  kind = \"discharge\"\n  current = \"{rate_c}C\"\n  ends = [\"voltage < 3.0V/cell\", \"time > {time_cap}\"]\n  result = \"capacity\"\n"
+    );
+    s
+}
+
+/// Wait until the run a child process started under `pack_dir` is under
+/// way: its folder exists and its events hold `needle`. Returns the run
+/// folder.
+pub fn wait_under_way(pack_dir: &Path, needle: &str, limit: Duration) -> PathBuf {
+    let dir = wait_run_dir(pack_dir, limit)
+        .unwrap_or_else(|| panic!("no run folder under {}", pack_dir.display()));
+    assert!(
+        wait_for(&dir.join("events.jsonl"), needle, limit),
+        "{}: no '{needle}' event",
+        dir.display()
+    );
+    dir
+}
+
 /// A prepared run of a procedure file on a given pack.
 pub fn prepare_as(procedure: &Path, pack: PackSpec, results: &Path, pack_id: &str) -> Prepared {
     packbench::session::prepare::prepare(&RunRequest {
@@ -174,4 +221,19 @@ pub fn signal(child: &std::process::Child, sig: i32) {
 /// Relative difference of `a` from `b`.
 pub fn rel(a: f64, b: f64) -> f64 {
     (a - b).abs() / b.abs()
+}
+
+#[test]
+fn the_procedure_builder_writes_what_validates() {
+    let text = rest_then_discharge("t", Some("2min"), 1.0, 1.2, 60.0, "2h");
+    let plan =
+        model::procedure::validate::plan_from_text(Path::new("t.toml"), &text, &li_ion_14ah())
+            .unwrap();
+    assert_eq!(plan.steps.len(), 2);
+    assert_eq!(plan.title, "t");
+    let one = rest_then_discharge("t", None, 0.2, 1.2, 60.0, "6h");
+    let plan =
+        model::procedure::validate::plan_from_text(Path::new("t.toml"), &one, &li_ion_14ah())
+            .unwrap();
+    assert_eq!(plan.steps.len(), 1);
 }
