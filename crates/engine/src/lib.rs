@@ -788,8 +788,10 @@ impl<'a> Engine<'a> {
         let mut scheduled: Option<f64> = None;
         let mut prev: Option<Sample> = None;
         loop {
-            let t = self.t();
             let s = self.take_sample(st, &mut tracker, scheduled.take()).await?;
+            // The sample's own time: the end, a level's edge and the
+            // schedule are judged at the moment it was taken.
+            let t = s.t_s;
             if let Some((kind, cond)) = tracker.end_reached(st) {
                 self.capacity_alarm(st, kind, &tracker, t)?;
                 return self.end_step(t, st.index, kind, cond.to_string());
