@@ -831,33 +831,6 @@ impl Batch {
         }
         Ok(())
     }
-
-    /// The batch's rows, in order, parsed where the splitter left them.
-    #[cfg(test)]
-    fn rows<'b, B: Fn(u64, usize, String) -> ReadError>(
-        self,
-        ncols: usize,
-        cols: &'b Cols,
-        fmt: &'b LogFormat,
-        sign: f64,
-        bad: &'b B,
-    ) -> impl Iterator<Item = (u64, Result<Row, ReadError>)> + 'b {
-        let Batch { data, spans, items } = self;
-        let mut k = 0;
-        items.into_iter().map(move |item| match item {
-            Item::Line(l) => {
-                let s = &spans[k..k + ncols];
-                k += ncols;
-                let get = |i: usize| {
-                    s.get(i)
-                        .map_or(&b""[..], |&(a, b)| &data[a as usize..b as usize])
-                };
-                (l, parse_row(&get, cols, fmt, sign, l, bad))
-            }
-            Item::Parsed(l, row) => (l, *row),
-            Item::Row(l, row) => (l, Ok(row)),
-        })
-    }
 }
 
 /// Whether what is left after the last newline is a whole row: not blank,
@@ -920,10 +893,17 @@ mod tests {
         let mut s = LineSplitter::new(&cols, &fmt, 1.0, &bad);
         assert_eq!(s.ncols, 3);
         let data = b"1,3.7,0.5\r\n\n2,3.6,\"-1\"\n3,3.5,-1\n  \n4,3.4,-1,extra\n5,3.3\n".to_vec();
-        let rows: Vec<(u64, Result<Row, ReadError>)> = s
-            .split_chunk(data)
-            .rows(3, &cols, &fmt, 1.0, &bad)
-            .collect();
+        let collect = |batch: Batch| {
+            let mut rows: Vec<(u64, Result<Row, ReadError>)> = Vec::new();
+            batch
+                .for_each_row(3, &cols, &fmt, 1.0, &bad, &mut |l, r| {
+                    rows.push((l, r));
+                    Ok(())
+                })
+                .unwrap();
+            rows
+        };
+        let rows = collect(s.split_chunk(data));
         let lines: Vec<u64> = rows.iter().map(|(l, _)| *l).collect();
         assert_eq!(lines, [2, 4, 5, 7, 8], "blank lines 3 and 6 left out");
         let ok: Vec<(f64, f64, f64)> = rows
@@ -946,9 +926,8 @@ mod tests {
             other => panic!("{other:?}"),
         }
         // The next chunk goes on counting.
-        let more: Vec<u64> = s
-            .split_chunk(b"6,3.2,-1\n".to_vec())
-            .rows(3, &cols, &fmt, 1.0, &bad)
+        let more: Vec<u64> = collect(s.split_chunk(b"6,3.2,-1\n".to_vec()))
+            .into_iter()
             .map(|(l, _)| l)
             .collect();
         assert_eq!(more, [9]);
