@@ -234,6 +234,8 @@ pub struct Analyzer<'a> {
     prev: Option<Sample>,
     intervals: [f64; INTERVAL_WINDOW],
     n_intervals: usize,
+    /// How many of the latest intervals are all equal (to the last one).
+    same_intervals: usize,
     typical: Option<f64>,
     quality: LogQuality,
     gaps: Vec<Gap>,
@@ -278,6 +280,7 @@ impl<'a> Analyzer<'a> {
             prev: None,
             intervals: [0.0; INTERVAL_WINDOW],
             n_intervals: 0,
+            same_intervals: 0,
             typical: None,
             quality: LogQuality::default(),
             gaps: Vec::new(),
@@ -329,10 +332,15 @@ impl<'a> Analyzer<'a> {
         }
         if self.n_intervals < 16 || self.n_intervals % 8 == 0 || self.typical.is_none() {
             let n = self.n_intervals.min(INTERVAL_WINDOW);
-            let mut w = self.intervals;
-            let w = &mut w[..n];
-            w.sort_unstable_by(f64::total_cmp);
-            self.typical = Some(w[n / 2]);
+            if self.same_intervals >= n {
+                // One value fills the window: it is the median.
+                self.typical = Some(self.intervals[(self.n_intervals - 1) % INTERVAL_WINDOW]);
+            } else {
+                let mut w = self.intervals;
+                let w = &mut w[..n];
+                w.sort_unstable_by(f64::total_cmp);
+                self.typical = Some(w[n / 2]);
+            }
         }
         self.typical
     }
@@ -404,6 +412,12 @@ impl<'a> Analyzer<'a> {
                             });
                         }
                     }
+                }
+                let last = (self.n_intervals + INTERVAL_WINDOW - 1) % INTERVAL_WINDOW;
+                if self.n_intervals > 0 && self.intervals[last] == dt {
+                    self.same_intervals += 1;
+                } else {
+                    self.same_intervals = 1;
                 }
                 self.intervals[self.n_intervals % INTERVAL_WINDOW] = dt;
                 self.n_intervals += 1;
