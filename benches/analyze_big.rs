@@ -9,6 +9,10 @@
 //!
 //! Targets: packbench at least 8x faster than pandas and 2.5x faster than
 //! polars, peak memory at most 64 MB.
+//!
+//! Then the report of a 3.6-million-row run (`packbench report`, its
+//! charts gathered as the log streams): its time and peak memory, which
+//! must not grow with the log (target: at most 64 MB).
 //! Run: `cargo bench --bench analyze_big` (needs python3 with pandas,
 //! numpy and polars for the comparison: `pip install pandas numpy
 //! polars`; the file is written under target/).
@@ -171,6 +175,48 @@ fn main() -> std::io::Result<()> {
             None => println!("{name}: the script failed (pip install pandas numpy polars)"),
         }
     }
+    report_of_a_long_run(&dir, &path, &pb_out)?;
+    Ok(())
+}
+
+/// A run folder whose log is the first 3.6 million rows of the big log
+/// (packbench's own columns), its summary from `analyze`, and the time
+/// and peak memory of `packbench report` on it.
+fn report_of_a_long_run(dir: &Path, big: &Path, _: &str) -> std::io::Result<()> {
+    use std::io::BufRead;
+    const REPORT_ROWS: usize = 3_600_000;
+    let run = dir.join("long-run");
+    std::fs::create_dir_all(&run)?;
+    let samples = run.join("samples.csv");
+    {
+        let r = std::io::BufReader::new(std::fs::File::open(big)?);
+        let mut w = std::io::BufWriter::new(std::fs::File::create(&samples)?);
+        for line in r.lines().take(REPORT_ROWS + 1) {
+            writeln!(w, "{}", line?)?;
+        }
+        w.flush()?;
+    }
+    let (_, _, summary, ok) = measure(Command::new(BIN).arg("analyze").arg(&samples).args([
+        "--chemistry",
+        "li-ion",
+        "--series",
+        "10",
+        "--rated",
+        "50Ah",
+        "--json",
+    ]))?;
+    if !ok {
+        println!("report: analyze of the long run failed");
+        return Ok(());
+    }
+    std::fs::write(run.join("summary.json"), summary)?;
+    let (s, mb, _, ok) = measure(Command::new(BIN).arg("report").arg(&run))?;
+    let html = std::fs::metadata(run.join("report.html")).map_or(0, |m| m.len());
+    println!(
+        "report of a {REPORT_ROWS}-row run: {s:.2} s, peak memory {mb:.1} MB (target <= 64 MB), {} kB of HTML{}",
+        html / 1000,
+        if ok { "" } else { " (FAILED)" }
+    );
     Ok(())
 }
 

@@ -70,12 +70,9 @@ pub struct FleetArgs {
 pub fn cmd_report(a: ReportArgs) -> anyhow::Result<ExitCode> {
     let summary_path = a.run_dir.join(record::SUMMARY_JSON);
     let summary = record::read::read_summary(&summary_path)?;
-    let log = record::read::read_samples(&a.run_dir.join(record::SAMPLES_CSV))?;
+    let charts = report::charts::from_log(&summary, &a.run_dir.join(record::SAMPLES_CSV))?;
     let out = a.run_dir.join(record::REPORT_HTML);
-    record::write::atomic_write(
-        &out,
-        report::html::run_report(&summary, &log.samples).as_bytes(),
-    )
+    record::write::atomic_write(&out, report::html::run_report(&summary, &charts).as_bytes())
     .with_context(|| format!("writing {}", out.display()))?;
     print!("{}", report::text::summary(&summary));
     println!("  Report: {}", out.display());

@@ -10,7 +10,6 @@ use engine::RunOutcome;
 use record::manifest::utc_now;
 use record::manifest::SIM_TRUTH_LABEL;
 use record::manifest::{Manifest, SimulationRecord};
-use record::read::{self};
 use record::write::write_json;
 use record::RUN_LOCK;
 use record::{Summary, REPORT_HTML, RUN_JSON, SUMMARY_JSON};
@@ -38,11 +37,12 @@ pub fn finish_record(
         cycle_count: p.options.cycle_count,
         policy: &p.options.policy,
     };
-    let (summary, log) = summarize_run_dir(dir, &ctx, Some(&outcome))?;
+    let summary = summarize_run_dir(dir, &ctx, Some(&outcome))?;
     let summary_path = dir.join(SUMMARY_JSON);
     write_json(&summary_path, &summary).map_err(io_err(&summary_path))?;
     let report_path = dir.join(REPORT_HTML);
-    let html = report::html::run_report(&summary, &log.samples);
+    let charts = report::charts::from_log(&summary, &dir.join(record::SAMPLES_CSV))?;
+    let html = report::html::run_report(&summary, &charts);
     record::write::atomic_write(&report_path, html.as_bytes()).map_err(io_err(&report_path))?;
     manifest.status = outcome.status.into();
     manifest.stop_reason = outcome.reason.clone();
@@ -81,23 +81,20 @@ pub fn finish_record(
 }
 
 /// Build a run's summary from its folder (the log streamed through the
-/// same code as `packbench analyze`); also returns the samples, read again
-/// for the report's charts.
+/// same code as `packbench analyze`).
 pub fn summarize_run_dir(
     dir: &Path,
     ctx: &SummaryContext<'_>,
     outcome: Option<&RunOutcome>,
-) -> Result<(Summary, read::SampleLog), RunError> {
+) -> Result<Summary, RunError> {
     let outcome = outcome.map(|o| crate::session::summary::Outcome {
         status: o.status.into(),
         reason: o.reason.clone(),
     });
-    let summary = crate::session::summary::summarize_run(
+    crate::session::summary::summarize_run(
         dir,
         ctx,
         outcome,
         analysis::AnalysisOptions::default(),
-    )?;
-    let log = read::read_samples(&dir.join(record::SAMPLES_CSV))?;
-    Ok((summary, log))
+    )
 }

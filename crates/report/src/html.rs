@@ -7,13 +7,12 @@ use analysis::curves;
 use analysis::fade::fleet::Fleet;
 use analysis::fade::history::PackHistory;
 use analysis::fade::trend::FadeAnalysis;
-use model::sample::Sample;
 use model::units::HumanDuration;
 use record::Summary;
 use std::fmt::Write;
 
-/// Most points per plotted series (thinned evenly).
-pub const MAX_POINTS: usize = 1500;
+pub use crate::charts::MAX_POINTS;
+use crate::charts::ChartData;
 
 pub use crate::markup::escape;
 
@@ -151,15 +150,6 @@ fn grade_card(s: &Summary) -> String {
     o
 }
 
-/// A trace against time: title, y label, series name, colour, value.
-type Trace = (
-    &'static str,
-    &'static str,
-    &'static str,
-    svg::RGBColor,
-    fn(&Sample) -> Option<f64>,
-);
-
 /// A differential curve: the binned values as dots, the smoothed curve,
 /// and its main peaks.
 fn differential_chart(b: &mut String, title: &str, x: &str, y: &str, d: &curves::Differential) {
@@ -200,7 +190,7 @@ fn differential_chart(b: &mut String, title: &str, x: &str, y: &str, d: &curves:
 }
 
 /// The report of one run.
-pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
+pub fn run_report(s: &Summary, charts: &ChartData) -> String {
     let mut b = String::new();
     let _ = write!(
         b,
@@ -232,9 +222,9 @@ pub fn run_report(s: &Summary, samples: &[Sample]) -> String {
         let _ = write!(b, "<p class=\"warn\">Warning: {}</p>", escape(w));
     }
     let _ = write!(b, "<h2>Voltage, current and temperature</h2>");
-    time_charts(&mut b, samples);
-    capacity_chart(&mut b, s, samples);
-    differential_charts(&mut b, s, samples);
+    time_charts(&mut b, charts);
+    capacity_chart(&mut b, charts);
+    differential_charts(&mut b, s, charts);
     step_table(&mut b, s);
     page(&format!("packbench — {} — {}", s.pack_id, s.run_id), &b)
 }
@@ -389,38 +379,32 @@ pub fn summary_rows(s: &Summary) -> Vec<(String, String)> {
 }
 
 /// One chart per quantity against time in hours, thinned for plotting.
-fn time_charts(b: &mut String, samples: &[Sample]) {
-    let traces: [Trace; 3] = [
-        ("Pack voltage", "voltage (V)", "voltage", svg::BLUE_, |x| {
-            Some(x.voltage_v)
-        }),
+fn time_charts(b: &mut String, charts: &ChartData) {
+    let traces = [
+        ("Pack voltage", "voltage (V)", "voltage", svg::BLUE_, &charts.voltage),
         (
             "Pack current (positive into the pack)",
             "current (A)",
             "current",
             svg::ORANGE_,
-            |x| Some(x.current_a),
+            &charts.current,
         ),
         (
             "Pack temperature",
             "temperature (°C)",
             "temperature",
             svg::RED_,
-            |x| x.temperature_c,
+            &charts.temperature,
         ),
     ];
-    for (title, y_label, name, color, value) in traces {
-        let pts: Vec<(f64, f64)> = samples
-            .iter()
-            .filter_map(|x| value(x).map(|v| (x.t_s / 3600.0, v)))
-            .collect();
-        if pts.is_empty() {
+    for (title, y_label, name, color, series) in traces {
+        if series.seen() == 0 {
             continue;
         }
         let mut c = Chart::new(title, "time since start (h)", y_label);
         c.series.push(Series {
             name: name.into(),
-            points: svg::thin(&pts, MAX_POINTS),
+            points: svg::thin(&series.points(), MAX_POINTS),
             color,
             mark: Mark::Line,
         });
@@ -429,14 +413,8 @@ fn time_charts(b: &mut String, samples: &[Sample]) {
 }
 
 /// Voltage against discharged charge over the capacity step.
-fn capacity_chart(b: &mut String, s: &Summary, samples: &[Sample]) {
-    if let Some(cap) = &s.capacity {
-        let step: Vec<Sample> = samples
-            .iter()
-            .filter(|x| x.step == cap.step)
-            .copied()
-            .collect();
-        let curve = curves::charge_curve(&step);
+fn capacity_chart(b: &mut String, charts: &ChartData) {
+    if let Some(curve) = &charts.capacity {
         let _ = write!(b, "<h2>Capacity discharge</h2>");
         let mut c = Chart::new(
             "Voltage against discharged charge",
@@ -445,7 +423,7 @@ fn capacity_chart(b: &mut String, s: &Summary, samples: &[Sample]) {
         );
         c.series.push(Series {
             name: "capacity step".into(),
-            points: svg::thin(&curve, MAX_POINTS),
+            points: svg::thin(&curve.points(), MAX_POINTS),
             color: svg::BLUE_,
             mark: Mark::Line,
         });
@@ -455,17 +433,13 @@ fn capacity_chart(b: &mut String, s: &Summary, samples: &[Sample]) {
 
 /// The differential curves the summary's peaks come from: the same grid,
 /// bins and smoothing as the analysis.
-fn differential_charts(b: &mut String, s: &Summary, samples: &[Sample]) {
+fn differential_charts(b: &mut String, s: &Summary, charts: &ChartData) {
+    let grid = |step: u32| charts.grids.iter().find(|(k, _)| *k == step).map(|(_, g)| g);
     if let Some(cv) = &s.curves {
         let series = f64::from(s.pack.series.max(1));
         for i in &cv.ica {
-            let step: Vec<Sample> = samples
-                .iter()
-                .filter(|x| x.step == i.step)
-                .copied()
-                .collect();
-            let grid = curves::grid_of(&step, s.pack.rated_capacity_ah);
-            let d = curves::ica(&grid, i.bin_mv_per_cell / 1000.0 * series, i.smoothing_bins);
+            let Some(grid) = grid(i.step) else { continue };
+            let d = curves::ica(grid, i.bin_mv_per_cell / 1000.0 * series, i.smoothing_bins);
             differential_chart(
                 b,
                 &format!(
@@ -478,13 +452,8 @@ fn differential_charts(b: &mut String, s: &Summary, samples: &[Sample]) {
             );
         }
         for v in &cv.dva {
-            let step: Vec<Sample> = samples
-                .iter()
-                .filter(|x| x.step == v.step)
-                .copied()
-                .collect();
-            let grid = curves::grid_of(&step, s.pack.rated_capacity_ah);
-            let d = curves::dva(&grid, v.bin_ah, v.smoothing_bins);
+            let Some(grid) = grid(v.step) else { continue };
+            let d = curves::dva(grid, v.bin_ah, v.smoothing_bins);
             differential_chart(
                 b,
                 &format!(

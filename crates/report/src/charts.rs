@@ -1,0 +1,199 @@
+//! What a run report draws, gathered in one pass over the run's log with
+//! bounded memory: the time series thinned as they stream (a log of
+//! millions of rows is never held whole), the capacity step's
+//! voltage–charge curve, and the charge grids of the steps whose
+//! differential curves the summary names.
+
+use analysis::curves::{ChargeGrid, GRID_FRACTION, GRID_MAX_POINTS};
+use model::sample::Sample;
+use record::import::{stream_log, LogFormat, Row};
+use record::read::ReadError;
+use record::Summary;
+use std::path::Path;
+
+/// Most points per plotted series (thinned evenly).
+pub const MAX_POINTS: usize = 1500;
+
+/// Evenly spaced points of a series of unknown length, at most
+/// `2 * max` held: every `every`-th point is kept, and when the buffer is
+/// full every other kept point is dropped and `every` doubles. The last
+/// point is always kept.
+#[derive(Debug, Clone)]
+pub struct Thinned {
+    max: usize,
+    every: usize,
+    seen: usize,
+    points: Vec<(f64, f64)>,
+    last: Option<(f64, f64)>,
+}
+
+impl Thinned {
+    pub fn new(max: usize) -> Thinned {
+        Thinned {
+            max: max.max(2),
+            every: 1,
+            seen: 0,
+            points: Vec::new(),
+            last: None,
+        }
+    }
+
+    pub fn push(&mut self, p: (f64, f64)) {
+        if self.seen % self.every == 0 {
+            self.points.push(p);
+            if self.points.len() >= 2 * self.max {
+                let mut k = 0;
+                self.points.retain(|_| {
+                    k += 1;
+                    k % 2 == 1
+                });
+                self.every *= 2;
+            }
+        }
+        self.seen += 1;
+        self.last = Some(p);
+    }
+
+    /// The points kept, the last one included.
+    pub fn points(&self) -> Vec<(f64, f64)> {
+        let mut out = self.points.clone();
+        if let Some(l) = self.last {
+            if out.last() != Some(&l) {
+                out.push(l);
+            }
+        }
+        out
+    }
+
+    /// Points seen.
+    pub fn seen(&self) -> usize {
+        self.seen
+    }
+}
+
+/// The run report's chart data.
+#[derive(Debug, Clone)]
+pub struct ChartData {
+    /// Voltage, current and temperature against time (h).
+    pub voltage: Thinned,
+    pub current: Thinned,
+    pub temperature: Thinned,
+    /// The capacity step: voltage against discharged charge (Ah).
+    pub capacity: Option<Thinned>,
+    /// Charge grids of the steps with differential curves, by step.
+    pub grids: Vec<(u32, ChargeGrid)>,
+}
+
+/// Gathers [`ChartData`] sample by sample.
+pub struct ChartBuilder {
+    data: ChartData,
+    capacity_step: Option<u32>,
+    /// Charge so far in the capacity step, and its previous sample.
+    q: f64,
+    prev: Option<Sample>,
+}
+
+impl ChartBuilder {
+    /// For the steps the summary names.
+    pub fn new(s: &Summary) -> ChartBuilder {
+        let mut steps: Vec<u32> = s
+            .curves
+            .iter()
+            .flat_map(|c| c.ica.iter().map(|i| i.step).chain(c.dva.iter().map(|v| v.step)))
+            .collect();
+        steps.sort_unstable();
+        steps.dedup();
+        let grid = || ChargeGrid::new(GRID_FRACTION * s.pack.rated_capacity_ah, GRID_MAX_POINTS);
+        ChartBuilder {
+            data: ChartData {
+                voltage: Thinned::new(MAX_POINTS),
+                current: Thinned::new(MAX_POINTS),
+                temperature: Thinned::new(MAX_POINTS),
+                capacity: s.capacity.as_ref().map(|_| Thinned::new(MAX_POINTS)),
+                grids: steps.into_iter().map(|k| (k, grid())).collect(),
+            },
+            capacity_step: s.capacity.as_ref().map(|c| c.step),
+            q: 0.0,
+            prev: None,
+        }
+    }
+
+    pub fn push(&mut self, x: &Sample) {
+        let h = x.t_s / 3600.0;
+        self.data.voltage.push((h, x.voltage_v));
+        self.data.current.push((h, x.current_a));
+        if let Some(t) = x.temperature_c {
+            self.data.temperature.push((h, t));
+        }
+        if Some(x.step) == self.capacity_step {
+            // As analysis::curves::charge_curve over the step's samples.
+            if let Some(p) = self.prev.filter(|p| p.step == x.step) {
+                self.q += ((p.current_a + x.current_a) * 0.5 * (x.t_s - p.t_s) / 3600.0).abs();
+            }
+            if let Some(c) = self.data.capacity.as_mut() {
+                c.push((self.q, x.voltage_v));
+            }
+        }
+        if let Some((_, g)) = self.data.grids.iter_mut().find(|(k, _)| *k == x.step) {
+            g.push(x.t_s, x.voltage_v, x.current_a);
+        }
+        self.prev = Some(*x);
+    }
+
+    pub fn finish(self) -> ChartData {
+        self.data
+    }
+}
+
+/// A run's chart data from its log, streamed.
+pub fn from_log(s: &Summary, samples_csv: &Path) -> Result<ChartData, ReadError> {
+    let mut b = ChartBuilder::new(s);
+    stream_log(samples_csv, &LogFormat::default(), |r: Row| {
+        b.push(&Sample {
+            t_s: r.t_s,
+            step: r.step.unwrap_or(0),
+            cycle: r.cycle.unwrap_or(0),
+            voltage_v: r.voltage_v,
+            current_a: r.current_a,
+            temperature_c: r.temperature_c,
+        })
+    })?;
+    Ok(b.finish())
+}
+
+/// Chart data from samples in memory (tests, and callers that hold them).
+pub fn from_samples(s: &Summary, samples: &[Sample]) -> ChartData {
+    let mut b = ChartBuilder::new(s);
+    for x in samples {
+        b.push(x);
+    }
+    b.finish()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Thinning as it streams holds at most twice the target, spaces the
+    /// points evenly and keeps the first and the last.
+    #[test]
+    fn thinning_while_streaming_is_bounded_and_even() {
+        for n in [1usize, 10, 2999, 3000, 3001, 1_000_000] {
+            let mut t = Thinned::new(1500);
+            for k in 0..n {
+                t.push((k as f64, 0.0));
+                assert!(t.points.len() < 3000);
+            }
+            let p = t.points();
+            assert_eq!(p.first().map(|x| x.0), Some(0.0));
+            assert_eq!(p.last().map(|x| x.0), Some((n - 1) as f64));
+            assert!(p.len() <= 3001, "{n}: {}", p.len());
+            if n >= 3000 {
+                assert!(p.len() >= 1500, "{n}: {}", p.len());
+                // Even spacing (the last point aside).
+                let gaps: Vec<f64> = p[..p.len() - 1].windows(2).map(|w| w[1].0 - w[0].0).collect();
+                assert!(gaps.iter().all(|g| *g == gaps[0]), "{n}");
+            }
+        }
+    }
+}
