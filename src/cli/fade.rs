@@ -73,7 +73,7 @@ pub fn cmd_report(a: ReportArgs) -> anyhow::Result<ExitCode> {
     let charts = report::charts::from_log(&summary, &a.run_dir.join(record::SAMPLES_CSV))?;
     let out = a.run_dir.join(record::REPORT_HTML);
     record::write::atomic_write(&out, report::html::run_report(&summary, &charts).as_bytes())
-    .with_context(|| format!("writing {}", out.display()))?;
+        .with_context(|| format!("writing {}", out.display()))?;
     print!("{}", report::text::summary(&summary));
     println!("  Report: {}", out.display());
     Ok(ExitCode::Ok)

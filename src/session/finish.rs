@@ -91,10 +91,5 @@ pub fn summarize_run_dir(
         status: o.status.into(),
         reason: o.reason.clone(),
     });
-    crate::session::summary::summarize_run(
-        dir,
-        ctx,
-        outcome,
-        analysis::AnalysisOptions::default(),
-    )
+    crate::session::summary::summarize_run(dir, ctx, outcome, analysis::AnalysisOptions::default())
 }

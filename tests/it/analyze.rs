@@ -166,12 +166,68 @@ fn a_pybamm_log_matches_the_library_within_half_a_percent() {
             "{delay} s: {got} mOhm vs PyBaMM {want}"
         );
     }
-    // The pack figure is the pulse method at 1 s, at about half charge.
+    // A single edge from rest, no two levels in one direction: the pack
+    // figure is the pulse method at 1 s, at about half charge, and the
+    // summary says why.
     assert!(s["resistance"]["method"]
         .as_str()
         .unwrap()
         .contains("pulse method"));
+    assert!(s["resistance"]["why"]
+        .as_str()
+        .unwrap()
+        .contains("no two current levels"));
     assert_eq!(s["status"], "imported");
+}
+
+/// The IEC 61960 two-level pulse (0.2 It for 10 s, then 1 It for 1 s) in
+/// a log from a published battery model (PyBaMM SPMe, Chen2020; fixture
+/// and expected value from scripts/pybamm_two_level_fixture.py), read
+/// once with a step column marking the two levels as separate steps and
+/// once with no step column at all: the figure is the two-level reading,
+/// within 1 % of the model's own (U1 − U2)/(I2 − I1) at the exact level
+/// ends, and the summary says which method gave it and why.
+#[test]
+fn two_level_resistance_is_found_in_a_foreign_log_with_or_without_steps() {
+    let expected: serde_json::Value = serde_json::from_str(
+        &std::fs::read_to_string("tests/fixtures/pybamm_two_level_expected.json").unwrap(),
+    )
+    .unwrap();
+    let want = expected["two_level_resistance_ohm"].as_f64().unwrap() * 1000.0;
+    for log in [
+        "tests/fixtures/pybamm_two_level_steps.csv",
+        "tests/fixtures/pybamm_two_level.csv",
+    ] {
+        let s = analyze_json(&[
+            log,
+            "--current-sign",
+            "discharge-positive",
+            "--chemistry",
+            "li-ion",
+            "--series",
+            "1",
+            "--rated",
+            "5Ah",
+        ]);
+        let r = &s["resistance"];
+        let got = r["dcir_mohm"].as_f64().unwrap();
+        assert!(
+            (got - want).abs() / want < 0.01,
+            "{log}: {got} mOhm vs the model's {want}"
+        );
+        assert!(
+            r["method"].as_str().unwrap().contains("two-level"),
+            "{log}: {r}"
+        );
+        assert!(r["why"]
+            .as_str()
+            .unwrap()
+            .contains("preferred over the pulse method"));
+        let readings = r["readings"].as_array().unwrap();
+        assert_eq!(readings.len(), 1, "{log}: {readings:?}");
+        assert!((readings[0]["i2_a"].as_f64().unwrap() + 5.0).abs() < 1e-6);
+        assert!((readings[0]["t2_s"].as_f64().unwrap() - 13211.0).abs() < 1e-6);
+    }
 }
 
 /// Gaussian smoothing and peaks against scipy.ndimage.gaussian_filter1d

@@ -354,7 +354,7 @@ async fn live_and_offline_summaries_agree() {
         cycle_count: p.options.cycle_count,
         policy: &p.options.policy,
     };
-    let (again, _) = packbench::session::finish::summarize_run_dir(&r.run_dir, &ctx, None).unwrap();
+    let again = packbench::session::finish::summarize_run_dir(&r.run_dir, &ctx, None).unwrap();
     assert_eq!(again, r.summary);
     // And both equal what is on disk.
     let on_disk: record::Summary =

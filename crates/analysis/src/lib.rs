@@ -262,12 +262,17 @@ pub struct Recalibration {
     pub conditions: String,
 }
 
-/// The pack's DC resistance from the steps tagged `dcir`.
+/// The pack's DC resistance: from the steps tagged `dcir`, else (a
+/// foreign log) from two-level patterns found in the log, else from the
+/// pulse method at a single edge.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct ResistanceResult {
-    /// The first reading's resistance, mΩ (the pack's figure).
+    /// The pack's figure, mΩ: the reading nearest half charge.
     pub dcir_mohm: f64,
     pub method: String,
+    /// Why this method gave the figure.
+    #[serde(default, skip_serializing_if = "String::is_empty")]
+    pub why: String,
     pub readings: Vec<ResistanceReading>,
 }
 

@@ -80,6 +80,150 @@ pub fn two_level_from_step(step: u32, samples: &[Sample]) -> Option<ResistanceRe
     })
 }
 
+/// How a two-level reading found in a log without step tags is made.
+pub const FOUND_TWO_LEVEL_METHOD: &str =
+    "two-level, IEC 61960 scheme, levels found in the log: (U1 - U2) / (I2 - I1) at the ends of the levels";
+
+/// Shortest first (lower) level, s: long enough for the voltage to settle
+/// at the low rate (IEC 61960 holds it 10 s; common practice accepts 5 s).
+pub const MIN_FIRST_LEVEL_S: f64 = 5.0;
+/// Second (higher) level: at least two samples over at least 0.5 s, and
+/// at most 10 s: IEC 61960 holds it 1 s; a longer level's end includes
+/// diffusion and is not the standard's figure (common practice takes
+/// pulses of 1–10 s).
+pub const MIN_SECOND_LEVEL_S: f64 = 0.5;
+pub const MAX_SECOND_LEVEL_S: f64 = 10.0;
+/// The higher level is at least this many times the lower one in
+/// magnitude.
+pub const MIN_LEVEL_RATIO: f64 = 1.5;
+
+/// A run of (nearly) constant current: its first and last samples.
+#[derive(Debug, Clone, Copy, PartialEq)]
+struct Level {
+    first: (f64, f64, f64),
+    last: (f64, f64, f64),
+    /// Samples in it.
+    n: usize,
+    /// Coulomb count since the last full charge at its end.
+    ah_since_full: Option<f64>,
+    step: u32,
+}
+
+impl Level {
+    fn duration(&self) -> f64 {
+        self.last.0 - self.first.0
+    }
+}
+
+/// Finds the two-level pattern of IEC 61960 in any log, step tags or not:
+/// two adjacent levels of constant current in the same direction, the
+/// second higher, each long enough and flat enough (within 2 % + 5 mA of
+/// its first current throughout, as [`current_levels`]). Sample by sample,
+/// in bounded memory.
+#[derive(Debug, Clone, Default)]
+pub struct LevelTracker {
+    /// The level before the current one, if it ended where this began.
+    before: Option<Level>,
+    open: Option<Level>,
+    readings: Vec<ResistanceReading>,
+}
+
+/// Most two-level readings kept from one log.
+pub const MAX_FOUND_READINGS: usize = 1000;
+
+impl LevelTracker {
+    /// A new sample. `ah_since_full`: the coulomb count since the last
+    /// full charge (for the state of charge of a reading).
+    pub fn push(&mut self, t: f64, v: f64, i: f64, step: u32, ah_since_full: Option<f64>) {
+        let sample = (t, v, i);
+        match self.open.as_mut() {
+            Some(o) if !level_jump(o.first.2, i) => {
+                o.last = sample;
+                o.n += 1;
+                o.ah_since_full = ah_since_full;
+                return;
+            }
+            _ => {}
+        }
+        // A new level begins here: the one that ended is judged with the
+        // one before it.
+        if let Some(ended) = self.open.take() {
+            if let Some(first) = self.before {
+                self.judge(first, ended);
+            }
+            self.before = Some(ended);
+        }
+        self.open = Some(Level {
+            first: sample,
+            last: sample,
+            n: 1,
+            ah_since_full,
+            step,
+        });
+    }
+
+    /// The log was interrupted (a resumed run): levels do not join across.
+    pub fn break_segment(&mut self) {
+        self.finish_open();
+        self.before = None;
+    }
+
+    fn finish_open(&mut self) {
+        if let (Some(first), Some(ended)) = (self.before, self.open.take()) {
+            self.judge(first, ended);
+        }
+    }
+
+    fn judge(&mut self, a: Level, b: Level) {
+        let (i1, i2) = (a.first.2, b.first.2);
+        let same_direction = i1 * i2 > 0.0;
+        let ok = same_direction
+            && i2.abs() >= MIN_LEVEL_RATIO * i1.abs()
+            && a.duration() >= MIN_FIRST_LEVEL_S
+            && a.n >= 2
+            && b.n >= 2
+            && b.duration() >= MIN_SECOND_LEVEL_S
+            && b.duration() <= MAX_SECOND_LEVEL_S;
+        if !ok || self.readings.len() >= MAX_FOUND_READINGS {
+            return;
+        }
+        let ((t1, u1, i1), (t2, u2, i2)) = (a.last, b.last);
+        if let Some(r) = two_level_ohm(u1, i1, u2, i2) {
+            self.readings.push(ResistanceReading {
+                step: b.step,
+                dcir_mohm: r * 1000.0,
+                method: format!(
+                    "{FOUND_TWO_LEVEL_METHOD}: {:.4} A for {:.1} s, then {:.4} A for {:.1} s",
+                    a.first.2,
+                    a.duration(),
+                    b.first.2,
+                    b.duration()
+                ),
+                u1_v: u1,
+                i1_a: i1,
+                u2_v: u2,
+                i2_a: i2,
+                t1_s: t1,
+                t2_s: t2,
+                soc_pct: None,
+                ah_since_full: b.ah_since_full,
+            });
+        }
+    }
+
+    /// End of the log: every reading found.
+    pub fn finish(mut self) -> Vec<ResistanceReading> {
+        self.finish_open();
+        self.readings
+    }
+}
+
+/// Whether current `i` has left the level that began at `level` (the rule
+/// of [`current_levels`]).
+fn level_jump(level: f64, i: f64) -> bool {
+    (level - i).abs() > 0.02 * level.abs().max(i.abs()) + 0.005
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -122,5 +266,50 @@ mod tests {
         let r = two_level_from_step(3, &s).unwrap();
         assert_eq!((r.t1_s, r.t2_s), (10.0, 11.0));
         assert!((r.dcir_mohm - (3.699 - 3.619) / 2.0 * 1000.0).abs() < 1e-9);
+    }
+
+    /// A tagless log: rest, 0.2 It for 10 s, 1 It for 1 s, rest (the
+    /// IEC 61960 pattern; Cn = 5 Ah, R = 30 mΩ, every 0.1 s): one reading,
+    /// from the level ends; a single edge, a long second level and a
+    /// level in the other direction give none.
+    #[test]
+    fn the_two_level_pattern_is_found_without_tags() {
+        let run = |levels: &[(f64, f64)]| {
+            let mut tr = LevelTracker::default();
+            let mut t = 0.0;
+            for &(i, secs) in levels {
+                let n = (secs * 10.0).round() as usize;
+                for k in 0..n {
+                    // Ohmic drop plus a slow sag within the level.
+                    let v = 3.7 + 0.030 * i - 0.0001 * k as f64;
+                    tr.push(t, v, i, 1, None);
+                    t += 0.1;
+                }
+            }
+            tr.finish()
+        };
+        let r = run(&[(0.0, 30.0), (-1.0, 10.0), (-5.0, 1.0), (0.0, 30.0)]);
+        assert_eq!(r.len(), 1, "{r:?}");
+        // Level ends: U1 = 3.7 − 0.030 − 0.0099, U2 = 3.7 − 0.150 − 0.0009.
+        let (u1, u2) = (3.7 - 0.030 - 0.0099, 3.7 - 0.150 - 0.0009);
+        let want = (u1 - u2) / (5.0 - 1.0) * 1000.0;
+        assert!(
+            (r[0].dcir_mohm - want).abs() < 1e-9,
+            "{} {want}",
+            r[0].dcir_mohm
+        );
+        assert!((r[0].t2_s - r[0].t1_s - 1.0).abs() < 1e-9);
+        // A single edge from rest: no two levels in one direction.
+        assert!(run(&[(0.0, 30.0), (-5.0, 1.0), (0.0, 30.0)]).is_empty());
+        // The second level too long for the standard's reading.
+        assert!(run(&[(0.0, 30.0), (-1.0, 10.0), (-5.0, 60.0)]).is_empty());
+        // The first level too short.
+        assert!(run(&[(0.0, 30.0), (-1.0, 2.0), (-5.0, 1.0), (0.0, 5.0)]).is_empty());
+        // A charge level after a discharge one.
+        assert!(run(&[(-1.0, 10.0), (5.0, 1.0), (0.0, 5.0)]).is_empty());
+        // Charge levels work the same way (R positive).
+        let c = run(&[(1.0, 10.0), (5.0, 1.0), (0.0, 5.0)]);
+        assert_eq!(c.len(), 1);
+        assert!(c[0].dcir_mohm > 0.0);
     }
 }

@@ -12,7 +12,7 @@ use super::correct::{self, CapacityTest, CorrectionPolicy};
 use super::curves::{self, ChargeGrid};
 use super::integrate::{spans_any, Integrator, Interruption};
 use super::pulse::{self, is_jump, PulseTracker};
-use super::resistance::{two_level_ohm, ResistanceReading};
+use super::resistance::{two_level_ohm, LevelTracker, ResistanceReading};
 use super::FULL_START_TOLERANCE;
 use super::{
     soh_pct, Analysis, CapacityResult, CurveData, CurvesSummary, CycleSummary, DvaSummary, Gap,
@@ -240,6 +240,7 @@ pub struct Analyzer<'a> {
     quality: LogQuality,
     gaps: Vec<Gap>,
     pulse: PulseTracker,
+    levels: LevelTracker,
     ah_since_full: Option<f64>,
     last_charge: Option<Kept>,
     capacity_pick: Option<(Kept, Option<Kept>, Option<f64>)>,
@@ -285,6 +286,7 @@ impl<'a> Analyzer<'a> {
             quality: LogQuality::default(),
             gaps: Vec::new(),
             pulse,
+            levels: LevelTracker::default(),
             ah_since_full: None,
             last_charge: None,
             capacity_pick: None,
@@ -379,6 +381,7 @@ impl<'a> Analyzer<'a> {
                 }
             }
             self.pulse.break_segment();
+            self.levels.break_segment();
             self.prev = None;
         }
         if let Some(p) = self.prev {
@@ -449,6 +452,10 @@ impl<'a> Analyzer<'a> {
         }
         self.pulse
             .push(s.t_s, s.voltage_v, s.current_a, s.step, self.ah_since_full);
+        if self.opts.imported {
+            self.levels
+                .push(s.t_s, s.voltage_v, s.current_a, s.step, self.ah_since_full);
+        }
         self.prev = Some(*s);
     }
 
@@ -664,7 +671,11 @@ impl<'a> Analyzer<'a> {
         for r in &mut two_levels {
             r.soc_pct = soc(r.ah_since_full.take());
         }
-        let resistance = resistance_figure(two_levels, &pulse_readings, self.opts.imported);
+        let mut found = std::mem::take(&mut self.levels).finish();
+        for r in &mut found {
+            r.soc_pct = soc(r.ah_since_full.take());
+        }
+        let resistance = resistance_figure(two_levels, found, &pulse_readings, self.opts.imported);
         let capacity_ah = capacity.as_ref().map(|c| c.measured_ah);
         let standby_drain = self.drain_points.take().and_then(|(step, pts)| {
             let (mean_a, window_s, samples) = super::second_half_mean(&pts)?;
@@ -1161,50 +1172,63 @@ fn cycles_of(
 
 /// The pack's resistance figure: a two-level reading (IEC 61960 scheme)
 /// from the steps that asked for one, the one nearest half charge; for a
-/// foreign log without such steps, the pulse method 1 s after the largest
+/// foreign log without such steps, a two-level pattern found in the log
+/// (nearest half charge), else the pulse method 1 s after the largest
 /// discharge edge nearest half charge.
 fn resistance_figure(
     two_levels: Vec<ResistanceReading>,
+    found: Vec<ResistanceReading>,
     pulses: &[super::pulse::PulseReading],
     imported: bool,
 ) -> Option<ResistanceResult> {
     let dist = |soc: Option<f64>| soc.map(|s| (s - 50.0).abs()).unwrap_or(f64::INFINITY);
-    if !two_levels.is_empty() {
-        let best = two_levels
-            .iter()
+    let nearest_half = |rs: &[ResistanceReading]| {
+        rs.iter()
             .enumerate()
             .min_by(|a, b| {
                 dist(a.1.soc_pct)
                     .total_cmp(&dist(b.1.soc_pct))
                     .then(a.0.cmp(&b.0))
             })
-            .map(|(_, r)| r.clone())?;
-        let at = best
-            .soc_pct
-            .map(|s| format!(" at {s:.0} % state of charge"))
-            .unwrap_or_default();
+            .map(|(_, r)| r.clone())
+    };
+    let at = |soc: Option<f64>| {
+        soc.map(|s| format!(" at {s:.0} % state of charge"))
+            .unwrap_or_default()
+    };
+    if !two_levels.is_empty() {
+        let best = nearest_half(&two_levels)?;
         return Some(ResistanceResult {
             dcir_mohm: best.dcir_mohm,
-            method: format!("{}{at}", best.method),
+            method: format!("{}{}", best.method, at(best.soc_pct)),
+            why: "the procedure's resistance steps (two current levels each)".into(),
             readings: two_levels,
         });
     }
     if !imported {
         return None;
     }
+    if !found.is_empty() {
+        let best = nearest_half(&found)?;
+        return Some(ResistanceResult {
+            dcir_mohm: best.dcir_mohm,
+            method: format!("{}{}", best.method, at(best.soc_pct)),
+            why: format!(
+                "{} two-level pattern(s) found in the log, the one nearest half charge taken; preferred over the pulse method, whose ΔV/ΔI after a single edge includes diffusion",
+                found.len()
+            ),
+            readings: found,
+        });
+    }
     let best = pulses
         .iter()
         .filter(|p| p.current_after_a < p.current_before_a)
         .filter_map(|p| p.values.iter().find(|v| v.delay_s == 1.0).map(|v| (p, v)))
         .min_by(|a, b| dist(a.0.soc_pct).total_cmp(&dist(b.0.soc_pct)))?;
-    let at = best
-        .0
-        .soc_pct
-        .map(|s| format!(" at {s:.0} % state of charge"))
-        .unwrap_or_default();
     Some(ResistanceResult {
         dcir_mohm: best.1.resistance_mohm,
-        method: format!("pulse method: ΔV/ΔI 1 s after a discharge edge{at}"),
+        method: format!("pulse method: ΔV/ΔI 1 s after a discharge edge{}", at(best.0.soc_pct)),
+        why: "no two current levels in one direction in the log (IEC 61960 pattern), so a single edge's response".into(),
         readings: Vec::new(),
     })
 }

@@ -99,7 +99,12 @@ impl ChartBuilder {
         let mut steps: Vec<u32> = s
             .curves
             .iter()
-            .flat_map(|c| c.ica.iter().map(|i| i.step).chain(c.dva.iter().map(|v| v.step)))
+            .flat_map(|c| {
+                c.ica
+                    .iter()
+                    .map(|i| i.step)
+                    .chain(c.dva.iter().map(|v| v.step))
+            })
             .collect();
         steps.sort_unstable();
         steps.dedup();
@@ -191,7 +196,10 @@ mod tests {
             if n >= 3000 {
                 assert!(p.len() >= 1500, "{n}: {}", p.len());
                 // Even spacing (the last point aside).
-                let gaps: Vec<f64> = p[..p.len() - 1].windows(2).map(|w| w[1].0 - w[0].0).collect();
+                let gaps: Vec<f64> = p[..p.len() - 1]
+                    .windows(2)
+                    .map(|w| w[1].0 - w[0].0)
+                    .collect();
                 assert!(gaps.iter().all(|g| *g == gaps[0]), "{n}");
             }
         }

@@ -11,8 +11,8 @@ use model::units::HumanDuration;
 use record::Summary;
 use std::fmt::Write;
 
-pub use crate::charts::MAX_POINTS;
 use crate::charts::ChartData;
+pub use crate::charts::MAX_POINTS;
 
 pub use crate::markup::escape;
 
@@ -285,6 +285,9 @@ pub fn summary_rows(s: &Summary) -> Vec<(String, String)> {
             "DC resistance",
             format!("{:.2} mΩ — {}", r.dcir_mohm, r.method),
         );
+        if !r.why.is_empty() {
+            row("  why this method", r.why.clone());
+        }
         if r.readings.len() > 1 {
             for x in &r.readings {
                 row(
@@ -381,7 +384,13 @@ pub fn summary_rows(s: &Summary) -> Vec<(String, String)> {
 /// One chart per quantity against time in hours, thinned for plotting.
 fn time_charts(b: &mut String, charts: &ChartData) {
     let traces = [
-        ("Pack voltage", "voltage (V)", "voltage", svg::BLUE_, &charts.voltage),
+        (
+            "Pack voltage",
+            "voltage (V)",
+            "voltage",
+            svg::BLUE_,
+            &charts.voltage,
+        ),
         (
             "Pack current (positive into the pack)",
             "current (A)",
@@ -434,7 +443,13 @@ fn capacity_chart(b: &mut String, charts: &ChartData) {
 /// The differential curves the summary's peaks come from: the same grid,
 /// bins and smoothing as the analysis.
 fn differential_charts(b: &mut String, s: &Summary, charts: &ChartData) {
-    let grid = |step: u32| charts.grids.iter().find(|(k, _)| *k == step).map(|(_, g)| g);
+    let grid = |step: u32| {
+        charts
+            .grids
+            .iter()
+            .find(|(k, _)| *k == step)
+            .map(|(_, g)| g)
+    };
     if let Some(cv) = &s.curves {
         let series = f64::from(s.pack.series.max(1));
         for i in &cv.ica {

@@ -174,6 +174,9 @@ fn resistance_lines(o: &mut String, s: &Summary) {
             "  DC resistance:     {:.2} mOhm ({})",
             r.dcir_mohm, r.method
         );
+        if !r.why.is_empty() {
+            let _ = writeln!(o, "    why this method:  {}", r.why);
+        }
         if r.readings.len() > 1 {
             for x in &r.readings {
                 let _ = writeln!(
