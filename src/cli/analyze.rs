@@ -273,9 +273,7 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
             &dir, &ctx, None, opts,
         )?);
     }
-    let pack = pack_from_args(&a.pack_args)?.ok_or_else(|| {
-        anyhow!("a log from another bench needs the pack spec: --chemistry, --series and --rated, or --pack-spec FILE")
-    })?;
+    let given = pack_from_args(&a.pack_args)?;
     let format = LogFormat {
         columns: match &a.columns {
             Some(c) => c.parse::<ColumnNames>().map_err(|e| anyhow!(e))?,
@@ -300,6 +298,18 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
             .ok_or_else(|| anyhow!("--test-date {d}: expected YYYY-MM-DD"))?,
         None => chrono::Utc::now().date_naive(),
     };
+    // Without a spec, what needs no rating is worked out and the rest is
+    // said to need one.
+    let mut opts = opts;
+    let pack = match given {
+        Some(p) => p,
+        None => {
+            opts.correction.temperature = false;
+            opts.correction.rate = false;
+            crate::session::summary::provisional_spec(&a.log, &format)?
+        }
+    };
+    let unrated = pack_from_args(&a.pack_args)?.is_none();
     let log = ForeignLog {
         path: &a.log,
         format,
@@ -308,7 +318,10 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
         test_date,
         policy: &policy,
     };
-    let (s, _, data) = crate::session::summary::summarize_foreign(&log, opts)?;
+    let (mut s, _, data) = crate::session::summary::summarize_foreign(&log, opts)?;
+    if unrated {
+        crate::session::summary::mark_unrated(&mut s);
+    }
     Ok((s, data))
 }
 

@@ -146,6 +146,7 @@ pub fn build_summary(
         preflight: None,
         resumed: Vec::new(),
         alarms: Vec::new(),
+        needs_rating: Vec::new(),
     }
 }
 
@@ -415,6 +416,72 @@ pub fn summarize_foreign(
         None,
     );
     Ok((s, rep, curves))
+}
+
+/// A stand-in pack spec for a foreign log analysed without one. Ah, Wh,
+/// efficiencies, resistance and curves need no rating, but the analysis
+/// scales its thresholds to one (rest under C/100, a new step at a jump
+/// over C/20, the charge grid's resolution): the largest charge the log
+/// moves in one direction stands in for it, read in a first pass. One
+/// cell in series, so "per cell" figures are the pack's.
+pub fn provisional_spec(path: &Path, format: &LogFormat) -> Result<PackSpec, RunError> {
+    let (mut run_ah, mut best_ah, mut sign) = (0.0f64, 0.0f64, 0.0f64);
+    let mut prev: Option<Row> = None;
+    stream_log(path, format, |r: Row| {
+        if let Some(p) = prev {
+            let dt = r.t_s - p.t_s;
+            if dt > 0.0 {
+                let q = (p.current_a + r.current_a) * 0.5 * dt / 3600.0;
+                let s = r.current_a.signum();
+                if r.current_a != 0.0 && s != sign {
+                    run_ah = 0.0;
+                    sign = s;
+                }
+                run_ah += q.abs();
+                best_ah = best_ah.max(run_ah);
+            }
+        }
+        prev = Some(r);
+    })?;
+    Ok(PackSpec {
+        chemistry: model::pack::Chemistry::LiIon,
+        series: 1,
+        rated_capacity_ah: best_ah.max(0.001),
+        rated_energy_wh: None,
+        rated_rate_c: None,
+        rated_resistance_mohm: None,
+    })
+}
+
+/// What needs a rated capacity and was left out of a summary made
+/// without a pack spec.
+pub const NEEDS_RATING: [&str; 6] = [
+    "state of health",
+    "C-rate",
+    "rate and temperature corrections",
+    "grade",
+    "new nominal capacity",
+    "the pack's chemistry and cells in series",
+];
+
+/// Clear what a stand-in spec ([`provisional_spec`]) would have made up,
+/// and say so.
+pub fn mark_unrated(s: &mut Summary) {
+    s.grade = None;
+    s.recalibration = None;
+    s.pack.rated_capacity_ah = 0.0;
+    if let Some(c) = s.capacity.as_mut() {
+        c.rated_ah = 0.0;
+        c.soh_pct = 0.0;
+        c.soh_measured_pct = 0.0;
+        c.c_rate = 0.0;
+        c.corrected_ah = 0.0;
+        c.corrections.clear();
+        c.ieee450_percent = None;
+    }
+    s.warnings
+        .retain(|w| !w.contains("no state of health, grade or new nominal"));
+    s.needs_rating = NEEDS_RATING.iter().map(|x| x.to_string()).collect();
 }
 
 /// What a summary needs besides the log.

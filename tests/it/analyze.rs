@@ -748,3 +748,75 @@ fn fixtures_use_generic_or_own_headers() {
         }
     }
 }
+
+/// `analyze` on a bare CSV with no pack spec: capacity, energy,
+/// efficiencies and resistance are worked out (the same figures as with
+/// the spec), and what needs the rating is named instead of made up.
+#[test]
+fn a_bare_log_is_analysed_without_a_pack_spec() {
+    let log = "tests/fixtures/pybamm_spme_chen2020.csv";
+    let bare = analyze_json(&[log, "--current-sign", "discharge-positive"]);
+    let rated = analyze_json(&[
+        log,
+        "--current-sign",
+        "discharge-positive",
+        "--chemistry",
+        "li-ion",
+        "--series",
+        "1",
+        "--rated",
+        "5Ah",
+    ]);
+    let f = |v: &serde_json::Value, path: &[&str]| {
+        path.iter()
+            .fold(v, |v, k| match k.parse::<usize>() {
+                Ok(i) => &v[i],
+                Err(_) => &v[*k],
+            })
+            .as_f64()
+            .unwrap_or_else(|| panic!("{path:?} in {v}"))
+    };
+    for path in [
+        &["capacity", "measured_ah"][..],
+        &["capacity", "measured_wh"],
+        &["cycles", "1", "coulombic_efficiency_pct"],
+        &["cycles", "1", "energy_efficiency_pct"],
+        &["resistance", "dcir_mohm"],
+    ] {
+        let (a, b) = (f(&bare, path), f(&rated, path));
+        assert!(
+            (a - b).abs() <= 1e-9 * b.abs(),
+            "{path:?}: {a} without a spec, {b} with"
+        );
+    }
+    // Nothing that needs the rating is made up.
+    assert_eq!(f(&bare, &["capacity", "soh_pct"]), 0.0);
+    assert!(bare["grade"].is_null());
+    assert!(bare["recalibration"].is_null());
+    let needs: Vec<&str> = bare["needs_rating"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|x| x.as_str().unwrap())
+        .collect();
+    for what in ["state of health", "C-rate", "grade"] {
+        assert!(needs.contains(&what), "{needs:?}");
+    }
+    assert!(rated.get("needs_rating").is_none());
+    // The text says so too.
+    let out = Command::new(BIN)
+        .args(["analyze", log, "--current-sign", "discharge-positive"])
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success());
+    for want in [
+        "Measured capacity: 5.11",
+        "DC resistance:",
+        "coulombic efficiency",
+        "Needs the rated capacity",
+    ] {
+        assert!(text.contains(want), "{want} in\n{text}");
+    }
+    assert!(!text.contains("State of health"), "{text}");
+}

@@ -108,6 +108,10 @@ pub struct Summary {
     /// Alarms raised during the run (the run went on).
     #[serde(default)]
     pub alarms: Vec<String>,
+    /// What was not worked out because the log came without a pack spec
+    /// (no rated capacity): empty when the spec was given.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub needs_rating: Vec<String>,
 }
 
 /// What was read before the first step, outputs off.

@@ -7,11 +7,24 @@ use std::fmt::Write;
 /// The short summary of a run for a terminal.
 pub fn summary(s: &Summary) -> String {
     let mut o = String::new();
-    let _ = writeln!(
-        o,
-        "Run {} of pack {} ({} {}S, rated {:.3} Ah): {}",
-        s.run_id, s.pack_id, s.pack.chemistry, s.pack.series, s.pack.rated_capacity_ah, s.status
-    );
+    if s.needs_rating.is_empty() {
+        let _ = writeln!(
+            o,
+            "Run {} of pack {} ({} {}S, rated {:.3} Ah): {}",
+            s.run_id,
+            s.pack_id,
+            s.pack.chemistry,
+            s.pack.series,
+            s.pack.rated_capacity_ah,
+            s.status
+        );
+    } else {
+        let _ = writeln!(
+            o,
+            "Run {} of pack {} (no pack spec given): {}",
+            s.run_id, s.pack_id, s.status
+        );
+    }
     if let Some(r) = &s.stop_reason {
         let _ = writeln!(o, "  stopped: {r}");
     }
@@ -103,6 +116,13 @@ pub fn summary(s: &Summary) -> String {
             );
         }
     }
+    if !s.needs_rating.is_empty() {
+        let _ = writeln!(
+            o,
+            "  Needs the rated capacity (--rated, with --chemistry and --series, or --pack-spec): {}",
+            s.needs_rating.join(", ")
+        );
+    }
     for w in &s.warnings {
         let _ = writeln!(o, "  warning: {w}");
     }
@@ -114,13 +134,17 @@ pub fn summary(s: &Summary) -> String {
 fn capacity_lines(o: &mut String, s: &Summary) {
     match &s.capacity {
         Some(c) => {
+            let rate = if s.needs_rating.is_empty() {
+                format!(" ({:.2}C)", c.c_rate)
+            } else {
+                String::new()
+            };
             let _ = writeln!(
                 o,
-                "  Measured capacity: {:.3} Ah, {:.2} Wh at {:.3} A ({:.2}C), {}",
+                "  Measured capacity: {:.3} Ah, {:.2} Wh at {:.3} A{rate}, {}",
                 c.measured_ah,
                 c.measured_wh,
                 c.mean_current_a,
-                c.c_rate,
                 if c.ended_on_cutoff {
                     "to the cutoff"
                 } else {
@@ -151,11 +175,13 @@ fn capacity_lines(o: &mut String, s: &Summary) {
                         .collect::<String>()
                 );
             }
-            let _ = writeln!(
-                o,
-                "  State of health:   {:.1} % of rated {:.3} Ah",
-                c.soh_pct, c.rated_ah
-            );
+            if s.needs_rating.is_empty() {
+                let _ = writeln!(
+                    o,
+                    "  State of health:   {:.1} % of rated {:.3} Ah",
+                    c.soh_pct, c.rated_ah
+                );
+            }
             if let Some(p) = c.ieee450_percent {
                 let _ = writeln!(o, "  IEEE 450 percent capacity: {p:.1} %");
             }
