@@ -3,6 +3,7 @@
 
 use crate::cli::args::pack_from_args;
 use crate::cli::args::PackArgs;
+use crate::cli::args::{bms_from_args, BmsArgs};
 use crate::cli::exit::ExitCode;
 use crate::session::summary::ForeignLog;
 use crate::session::summary::SummaryContext;
@@ -37,6 +38,8 @@ pub struct AnalyzeArgs {
     pub skip_bad_rows: bool,
     #[command(flatten)]
     pub pack_args: PackArgs,
+    #[command(flatten)]
+    pub bms_args: BmsArgs,
     /// Pack id for an imported log (default: the file's name).
     #[arg(long)]
     pub pack: Option<String>,
@@ -239,6 +242,7 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
         }
         None => Policy::default_policy(),
     };
+    let given_bms = bms_from_args(&a.bms_args)?;
     if let Some(dir) = our_run(&a.log) {
         let text = std::fs::read_to_string(dir.join(RUN_JSON))
             .with_context(|| format!("cannot read {}", dir.join(RUN_JSON).display()))?;
@@ -248,6 +252,11 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
             m[k].as_str()
                 .map(str::to_string)
                 .ok_or_else(|| anyhow!("run.json has no {k}"))
+        };
+        // Given now, or recorded with the run.
+        let bms: Option<model::bms::BmsReadings> = match given_bms {
+            Some(b) => Some(b),
+            None => serde_json::from_value(m["bms"].clone()).unwrap_or(None),
         };
         let pack_summary: PackSummary =
             serde_json::from_value(m["pack"].clone()).context("run.json has no pack spec")?;
@@ -267,6 +276,7 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
             test_date,
             cycle_count: m["cycle_count"].as_f64(),
             policy: &policy,
+            bms: bms.as_ref(),
         };
         // The same path as the summary written at the end of the run.
         return Ok(crate::session::summary::summarize_run_with_curves(
@@ -310,6 +320,7 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
         }
     };
     let unrated = pack_from_args(&a.pack_args)?.is_none();
+    let bms = given_bms;
     let log = ForeignLog {
         path: &a.log,
         format,
@@ -317,6 +328,7 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
         pack_id: &pack_id,
         test_date,
         policy: &policy,
+        bms: bms.as_ref(),
     };
     let (mut s, _, data) = crate::session::summary::summarize_foreign(&log, opts)?;
     if unrated {

@@ -159,6 +159,55 @@ pub fn display_mode(
     }
 }
 
+/// What the pack's battery management system reported, to compare with
+/// the measurement (a BMS recalibration).
+#[derive(Debug, Clone, Default, Args)]
+pub struct BmsArgs {
+    /// The BMS's learnt full-charge capacity, e.g. 10.4Ah.
+    #[arg(long)]
+    pub bms_capacity: Option<String>,
+    /// The BMS's design capacity, e.g. 11Ah.
+    #[arg(long)]
+    pub bms_design_capacity: Option<String>,
+    /// The BMS's cycle count.
+    #[arg(long)]
+    pub bms_cycles: Option<f64>,
+    /// The BMS's state of charge when the test started, e.g. 62%.
+    #[arg(long)]
+    pub bms_soc_start: Option<String>,
+    /// The BMS's state of charge when the test ended, e.g. 55%.
+    #[arg(long)]
+    pub bms_soc_end: Option<String>,
+}
+
+/// The BMS's figures from the options, checked; `None` when none given.
+pub fn bms_from_args(a: &BmsArgs) -> Result<Option<model::bms::BmsReadings>, RunError> {
+    let cap = |name: &str, v: &Option<String>| {
+        v.as_deref()
+            .map(|t| units::capacity_ah(t).map_err(|e| RunError::arguments(format!("{name}: {e}"))))
+            .transpose()
+    };
+    let soc = |name: &str, v: &Option<String>| {
+        v.as_deref()
+            .map(|t| match units::parse(t) {
+                Ok(units::Quantity::Percent(p)) => Ok(p),
+                _ => Err(RunError::arguments(format!(
+                    "{name} '{t}': expected a state of charge such as 62%"
+                ))),
+            })
+            .transpose()
+    };
+    let b = model::bms::BmsReadings {
+        full_charge_capacity_ah: cap("--bms-capacity", &a.bms_capacity)?,
+        design_capacity_ah: cap("--bms-design-capacity", &a.bms_design_capacity)?,
+        cycle_count: a.bms_cycles,
+        soc_start_pct: soc("--bms-soc-start", &a.bms_soc_start)?,
+        soc_end_pct: soc("--bms-soc-end", &a.bms_soc_end)?,
+    };
+    b.check().map_err(RunError::arguments)?;
+    Ok((!b.is_empty()).then_some(b))
+}
+
 pub fn parse_date(s: &str) -> Result<NaiveDate, RunError> {
     NaiveDate::parse_from_str(s.trim(), "%Y-%m-%d")
         .map_err(|_| RunError::arguments(format!("'{s}' is not a date; expected YYYY-MM-DD")))

@@ -7,6 +7,7 @@ use crate::cli::args::parse_speed;
 use crate::cli::args::parse_threshold;
 use crate::cli::args::sim_config;
 use crate::cli::args::PackArgs;
+use crate::cli::args::{bms_from_args, BmsArgs};
 use crate::cli::exit::report_error;
 use crate::cli::exit::ExitCode;
 use crate::session;
@@ -47,6 +48,8 @@ pub struct RunArgs {
     pub pack: Option<String>,
     #[command(flatten)]
     pub pack_args: PackArgs,
+    #[command(flatten)]
+    pub bms_args: BmsArgs,
     /// Results folder.
     #[arg(long, default_value = "results")]
     pub results: PathBuf,
@@ -98,6 +101,7 @@ pub fn prepare_run(a: &RunArgs) -> Result<Vec<crate::session::request::StationJo
         }
         options.cycle_count = Some(c);
     }
+    options.bms = bms_from_args(&a.bms_args)?;
     if let Some(path) = &a.policy {
         let text = model::procedure::read_text(path)
             .map_err(crate::session::error::input_file_err(path))?;

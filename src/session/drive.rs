@@ -80,6 +80,7 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
         finished_utc: None,
         test_date: p.options.test_date.to_string(),
         cycle_count: p.options.cycle_count,
+        bms: p.options.bms.clone(),
         status: RunStatus::Running,
         stop_reason: None,
         procedure: ProcedureRecord {

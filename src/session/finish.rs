@@ -35,6 +35,7 @@ pub fn finish_record(
         title: &p.procedure.plan.title,
         test_date: p.options.test_date,
         cycle_count: p.options.cycle_count,
+        bms: p.options.bms.as_ref(),
         policy: &p.options.policy,
     };
     let summary = summarize_run_dir(dir, &ctx, Some(&outcome))?;

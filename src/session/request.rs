@@ -59,6 +59,8 @@ pub struct RunOptions {
     /// Raise a low-capacity alarm (the run goes on) when the capacity step
     /// reaches its cutoff under this % of the rated capacity.
     pub alarm_below_pct: Option<f64>,
+    /// What the pack's BMS reported, compared with the measurement.
+    pub bms: Option<model::bms::BmsReadings>,
 }
 
 impl Default for RunOptions {
@@ -69,6 +71,7 @@ impl Default for RunOptions {
             policy: Policy::default_policy(),
             trace: false,
             alarm_below_pct: None,
+            bms: None,
         }
     }
 }

@@ -240,6 +240,7 @@ pub fn prepare(
             policy: policy.unwrap_or_else(analysis::fade::grade::Policy::default_policy),
             trace: false,
             alarm_below_pct: manifest.alarm_below_pct,
+            bms: manifest.bms.clone(),
         },
     };
     let found = find_point(dir, &prepared, manifest.bench.speed_factor)?;

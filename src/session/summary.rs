@@ -8,6 +8,7 @@ use analysis::fade::grade::{GradeInputs, Policy};
 use analysis::integrate::Interruption;
 use analysis::pulse::is_jump;
 use analysis::{AnalysisOptions, Analyzer, CurveData};
+use model::bms::BmsReadings;
 use model::pack::PackSpec;
 use model::status::RunStatus;
 use record::event::Event;
@@ -119,6 +120,9 @@ pub fn build_summary(
             },
         })
     });
+    let bms = ctx.bms.filter(|b| !b.is_empty()).map(|b| {
+        analysis::bms::compare(b, &a.steps, a.capacity.as_ref(), a.recalibration.as_ref())
+    });
     Summary {
         schema_version: record::schema::SCHEMA_VERSION,
         status: outcome.status,
@@ -146,6 +150,7 @@ pub fn build_summary(
         preflight: None,
         resumed: Vec::new(),
         alarms: Vec::new(),
+        bms,
         needs_rating: Vec::new(),
     }
 }
@@ -340,6 +345,7 @@ pub struct ForeignLog<'a> {
     pub pack_id: &'a str,
     pub test_date: chrono::NaiveDate,
     pub policy: &'a Policy,
+    pub bms: Option<&'a BmsReadings>,
 }
 
 /// Analyse any bench's CSV log.
@@ -402,6 +408,7 @@ pub fn summarize_foreign(
         test_date: log.test_date,
         cycle_count: None,
         policy: log.policy,
+        bms: log.bms,
     };
     let curves = std::mem::take(&mut a.curve_data);
     let s = build_summary(
@@ -494,6 +501,8 @@ pub struct SummaryContext<'a> {
     pub test_date: NaiveDate,
     pub cycle_count: Option<f64>,
     pub policy: &'a Policy,
+    /// What the pack's BMS reported, to compare with the measurement.
+    pub bms: Option<&'a BmsReadings>,
 }
 
 /// The resistance growth is measured against: the rated resistance when

@@ -639,3 +639,87 @@ fn the_run_report_escapes_what_the_procedure_says() {
     );
     assert!(!html.contains("<b>check</b>"));
 }
+
+/// The BMS's figures typed in with a run are compared with the
+/// measurement: its capacity error against the measured capacity, and its
+/// state of charge against the measured one at the run's start and end.
+/// The simulated pack starts at 50 % (the simulator's truth), so the
+/// measured start is checked against that, not against our own figures.
+/// The same comparison comes back from `analyze` of the run folder, and a
+/// figure out of range is refused before any instrument is touched.
+#[test]
+fn the_bms_is_compared_with_the_measurement() {
+    let dir = tempfile::tempdir().unwrap();
+    let results = dir.path().join("results");
+    let r = results.to_str().unwrap();
+    let bms = [
+        "--bms-capacity",
+        "14.6Ah",
+        "--bms-design-capacity",
+        "15Ah",
+        "--bms-cycles",
+        "312",
+        "--bms-soc-start",
+        "55%",
+        "--bms-soc-end",
+        "3%",
+    ];
+    let mut args = vec![
+        "run",
+        "procedures/capacity-check.toml",
+        "--sim",
+        "--pack",
+        "BMS-1",
+        "--results",
+        r,
+        "--quiet",
+    ];
+    args.extend(bms);
+    let out = packbench(&args);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let run = std::fs::read_dir(results.join("BMS-1"))
+        .unwrap()
+        .filter_map(|e| e.ok().map(|e| e.path()))
+        .find(|p| p.is_dir())
+        .unwrap();
+    let s = json(&run.join("summary.json"));
+    let b = &s["bms"];
+    let f = |k: &str| b[k].as_f64().unwrap_or_else(|| panic!("{k} in {b}"));
+    let measured = s["capacity"]["measured_ah"].as_f64().unwrap();
+    assert!((f("capacity_error_pct") - (14.6 - measured) / measured * 100.0).abs() < 1e-9);
+    assert!((f("bms_soh_pct") - 14.6 / 15.0 * 100.0).abs() < 1e-9);
+    // The simulator's pack started at 50 %, and ends at the cutoff.
+    assert!((f("soc_start_measured_pct") - 50.0).abs() < 1.0, "{b}");
+    assert!((f("soc_start_error_pp") - (55.0 - f("soc_start_measured_pct"))).abs() < 1e-9);
+    assert!(f("soc_end_measured_pct").abs() < 0.5, "{b}");
+    assert!((f("soc_end_error_pp") - 3.0).abs() < 0.5);
+    assert_eq!(b["reported"]["cycle_count"].as_f64(), Some(312.0));
+    assert!(b["suggested_nominal_ah"].as_f64().unwrap() > 0.0);
+    // Recorded with the run: analyze gives the same comparison.
+    let again = packbench(&["analyze", run.to_str().unwrap(), "--json"]);
+    let again: serde_json::Value = serde_json::from_slice(&again.stdout).unwrap();
+    assert_eq!(again["bms"], s["bms"]);
+    // The report and the grade card show it.
+    let html = std::fs::read_to_string(run.join("report.html")).unwrap();
+    assert!(html.contains("BMS capacity error"));
+    assert!(html.contains("BMS state of charge at the start"));
+    // Out of range: refused, exit 2, nothing run.
+    let out = packbench(&[
+        "run",
+        "procedures/capacity-check.toml",
+        "--sim",
+        "--pack",
+        "BMS-2",
+        "--results",
+        r,
+        "--bms-soc-start",
+        "120%",
+    ]);
+    assert_eq!(out.status.code(), Some(2), "{}", text(&out.stderr));
+    assert!(
+        text(&out.stderr).contains("state of charge at the start"),
+        "{}",
+        text(&out.stderr)
+    );
+    assert!(!results.join("BMS-2").exists());
+}

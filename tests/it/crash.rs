@@ -167,60 +167,72 @@ fn sigkill_at_24_points_loses_nothing_and_leaves_a_usable_record() {
     }
     let mut outcomes = Vec::new();
     let mut landed = Vec::new();
-    for (n, when) in points.iter().enumerate() {
-        let results = d.join(format!("killed-{n}"));
-        let mut child = run_cmd(d, &results).spawn().unwrap();
-        let started = Instant::now();
-        match *when {
-            When::Rows(n) => loop {
-                let rows = the_run_dir(&results)
-                    .and_then(|r| std::fs::read(r.join("samples.csv")).ok())
-                    .map_or(0, |b| b.iter().filter(|c| **c == b'\n').count());
-                if rows >= n || child.try_wait().unwrap().is_some() {
-                    break;
-                }
-                assert!(started.elapsed() < Duration::from_secs(60));
-                std::hint::spin_loop();
-            },
-            When::StepStart(_, extra) | When::RecordWrite(extra) => {
-                let needle = match *when {
-                    When::StepStart(..) => "\"event\":\"step_start\",\"t_s\"".to_string(),
-                    _ => "\"event\":\"run_end\"".to_string(),
-                };
-                let want = match *when {
-                    When::StepStart(s, _) => s as usize,
-                    _ => 1,
-                };
-                loop {
-                    let seen = the_run_dir(&results)
-                        .and_then(|r| std::fs::read_to_string(r.join("events.jsonl")).ok())
-                        .map(|s| s.matches(&needle).count())
-                        .unwrap_or(0);
-                    if seen >= want || child.try_wait().unwrap().is_some() {
+    for (n, aimed) in points.iter().enumerate() {
+        // A kill aimed into the record that came too late (the record is a
+        // few ms, and slower or faster under load) is tried again sooner.
+        let mut when = *aimed;
+        for attempt in 0.. {
+            let when = &mut when;
+            let results = d.join(format!("killed-{n}-{attempt}"));
+            let mut child = run_cmd(d, &results).spawn().unwrap();
+            let started = Instant::now();
+            match *when {
+                When::Rows(n) => loop {
+                    let rows = the_run_dir(&results)
+                        .and_then(|r| std::fs::read(r.join("samples.csv")).ok())
+                        .map_or(0, |b| b.iter().filter(|c| **c == b'\n').count());
+                    if rows >= n || child.try_wait().unwrap().is_some() {
                         break;
                     }
                     assert!(started.elapsed() < Duration::from_secs(60));
                     std::hint::spin_loop();
-                }
-                let t = Instant::now();
-                while t.elapsed() < extra {
-                    std::hint::spin_loop();
+                },
+                When::StepStart(_, extra) | When::RecordWrite(extra) => {
+                    let needle = match *when {
+                        When::StepStart(..) => "\"event\":\"step_start\",\"t_s\"".to_string(),
+                        _ => "\"event\":\"run_end\"".to_string(),
+                    };
+                    let want = match *when {
+                        When::StepStart(s, _) => s as usize,
+                        _ => 1,
+                    };
+                    loop {
+                        let seen = the_run_dir(&results)
+                            .and_then(|r| std::fs::read_to_string(r.join("events.jsonl")).ok())
+                            .map(|s| s.matches(&needle).count())
+                            .unwrap_or(0);
+                        if seen >= want || child.try_wait().unwrap().is_some() {
+                            break;
+                        }
+                        assert!(started.elapsed() < Duration::from_secs(60));
+                        std::hint::spin_loop();
+                    }
+                    let t = Instant::now();
+                    while t.elapsed() < extra {
+                        std::hint::spin_loop();
+                    }
                 }
             }
+            // SAFETY: kill(2) on our own child.
+            unsafe { libc::kill(child.id() as i32, libc::SIGKILL) };
+            child.wait().unwrap();
+            let Some(rdir) = the_run_dir(&results) else {
+                outcomes.push(format!(
+                    "{n:>2} {when:?}: killed before the run folder existed"
+                ));
+                landed.push(Landed::BeforeFolder);
+                break;
+            };
+            let (line, at) = check(n, when, &rdir, &ref_rows);
+            if let (When::RecordWrite(extra), Landed::AfterCompletion, 0..3) = (*when, at, attempt)
+            {
+                *when = When::RecordWrite(extra / 4);
+                continue;
+            }
+            outcomes.push(line);
+            landed.push(at);
+            break;
         }
-        // SAFETY: kill(2) on our own child.
-        unsafe { libc::kill(child.id() as i32, libc::SIGKILL) };
-        child.wait().unwrap();
-        let Some(rdir) = the_run_dir(&results) else {
-            outcomes.push(format!(
-                "{n:>2} {when:?}: killed before the run folder existed"
-            ));
-            landed.push(Landed::BeforeFolder);
-            continue;
-        };
-        let (line, at) = check(n, when, &rdir, &ref_rows);
-        outcomes.push(line);
-        landed.push(at);
     }
     eprintln!("{}", outcomes.join("\n"));
     // The kills must test what they are for: most land while the engine

@@ -353,6 +353,7 @@ async fn live_and_offline_summaries_agree() {
         test_date: p.options.test_date,
         cycle_count: p.options.cycle_count,
         policy: &p.options.policy,
+        bms: None,
     };
     let again = packbench::session::finish::summarize_run_dir(&r.run_dir, &ctx, None).unwrap();
     assert_eq!(again, r.summary);

@@ -5,6 +5,7 @@
 //! Conventions: current positive into the pack; step charge and energy are
 //! signed; cycle and capacity figures are magnitudes.
 
+pub mod bms;
 pub mod correct;
 pub mod curves;
 pub mod fade;

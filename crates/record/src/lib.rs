@@ -108,6 +108,10 @@ pub struct Summary {
     /// Alarms raised during the run (the run went on).
     #[serde(default)]
     pub alarms: Vec<String>,
+    /// The battery management system's figures against the measurement,
+    /// when they were given.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub bms: Option<analysis::bms::BmsCheck>,
     /// What was not worked out because the log came without a pack spec
     /// (no rated capacity): empty when the spec was given.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]

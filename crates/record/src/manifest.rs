@@ -36,6 +36,9 @@ pub struct Manifest {
     /// Each resume of the run after an interruption.
     #[serde(default)]
     pub resumes: Vec<ResumeRecord>,
+    /// What the pack's battery management system reported, when given.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub bms: Option<model::bms::BmsReadings>,
 }
 
 /// One resume, as `run.json` keeps it.

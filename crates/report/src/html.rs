@@ -118,6 +118,13 @@ fn grade_card(s: &Summary) -> String {
         ),
         ("Coulombic efficiency", ce.map(|c| format!("{c:.2} %"))),
         ("Cycles", s.cycle_count.map(|c| format!("{c:.0}"))),
+        (
+            "BMS capacity error",
+            s.bms
+                .as_ref()
+                .and_then(|b| b.capacity_error_pct)
+                .map(|e| format!("{e:+.1} %")),
+        ),
     ];
     for (k, v) in rows {
         let _ = write!(
@@ -378,6 +385,9 @@ pub fn summary_rows(s: &Summary) -> Vec<(String, String)> {
         "Samples",
         format!("{} over {}", s.samples, HumanDuration(s.duration_s)),
     );
+    if let Some(b) = &s.bms {
+        out.extend(crate::bms::rows(b));
+    }
     out
 }
 

@@ -52,6 +52,11 @@ pub fn summary(s: &Summary) -> String {
     }
     capacity_lines(&mut o, s);
     resistance_lines(&mut o, s);
+    if let Some(b) = &s.bms {
+        for (k, v) in crate::bms::rows(b) {
+            let _ = writeln!(o, "  {k}: {v}");
+        }
+    }
     if let Some(r) = &s.recalibration {
         let _ = writeln!(
             o,
