@@ -380,6 +380,13 @@ impl Source {
             };
             buf.truncate(old + n);
             if n == 0 {
+                // Whole lines still carried (a small file is read whole
+                // with its header) go first; the tail after them next.
+                if let Some(p) = memchr::memrchr(b'\n', &buf) {
+                    self.carry.extend_from_slice(&buf[p + 1..]);
+                    buf.truncate(p + 1);
+                    return Ok(Some(buf));
+                }
                 self.done = true;
                 // A foreign log's last line without its newline is taken
                 // when it is whole: every column of the header. (packbench
@@ -548,6 +555,33 @@ mod tests {
             Err(ReadError::Bad { line, column, .. }) => assert_eq!((line, column), (150_002, 3)),
             other => panic!("{other:?}"),
         }
+    }
+
+    /// A small log, read whole with its header, gives every whole line;
+    /// packbench's own log leaves its cut last line out and says so, and
+    /// a foreign log's last line is taken only when whole.
+    #[test]
+    fn a_small_log_gives_every_whole_line() {
+        let mut ours = super::super::CSV_COLUMNS.join(",") + "\n";
+        for k in 0..21 {
+            ours.push_str(&format!("{k}.000,1,1,3.7000,-1.0000,25.0\n"));
+        }
+        let (_d, p) = write("samples.csv", format!("{ours}21.000,1,1,3.69").as_bytes());
+        let (t, rep) = times(&p, &LogFormat::default()).unwrap();
+        assert_eq!(t.len(), 21);
+        assert!(rep.partial_last_line);
+        let (_d, p) = write("samples.csv", ours.as_bytes());
+        let (t, rep) = times(&p, &LogFormat::default()).unwrap();
+        assert_eq!(t.len(), 21);
+        assert!(!rep.partial_last_line);
+        let foreign = "t_s,voltage_v,current_a\n0,3.7,-1\n1,3.6,-1\n2,3.5";
+        let (_d, p) = write("other.csv", foreign.as_bytes());
+        let (t, rep) = times(&p, &LogFormat::default()).unwrap();
+        assert_eq!(t, [0.0, 1.0]);
+        assert!(rep.partial_last_line);
+        let (_d, p) = write("other.csv", format!("{foreign},-1").as_bytes());
+        let (t, _) = times(&p, &LogFormat::default()).unwrap();
+        assert_eq!(t, [0.0, 1.0, 2.0]);
     }
 
     /// A log whose lines end in CR alone (an old spreadsheet's export)
