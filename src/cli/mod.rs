@@ -7,6 +7,7 @@ pub mod check;
 pub mod demo;
 pub mod exit;
 pub mod fade;
+pub mod quick;
 pub mod resume;
 pub mod run;
 pub mod setup;
@@ -62,6 +63,8 @@ pub enum Command {
     Analyze(crate::cli::analyze::AnalyzeArgs),
     /// Peukert exponent from two capacity runs of a pack at different rates.
     Peukert(crate::cli::analyze::PeukertArgs),
+    /// Estimate a pack's capacity from a screening run and its family's calibration.
+    GradeQuick(crate::cli::quick::QuickArgs),
     /// List the serial ports of this machine.
     Ports,
     /// Check an instrument's link and profile: identify, error queue, voltage, current.
@@ -94,6 +97,7 @@ pub fn main() -> i32 {
         Command::Demo(a) => cmd_demo(a).context("demo failed"),
         Command::Analyze(a) => crate::cli::analyze::cmd_analyze(a).context("analysis failed"),
         Command::Peukert(a) => crate::cli::analyze::cmd_peukert(a).context("peukert failed"),
+        Command::GradeQuick(a) => crate::cli::quick::cmd_quick(a).context("quick grade failed"),
         Command::Ports => crate::cli::setup::cmd_ports().context("listing ports failed"),
         Command::Probe(a) => crate::cli::setup::cmd_probe(a).context("probe failed"),
         Command::Sim(a) => crate::cli::setup::cmd_sim(a).context("sim failed"),

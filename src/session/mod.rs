@@ -11,6 +11,7 @@ pub mod forecast;
 pub mod links;
 pub mod live;
 pub mod prepare;
+pub mod quick;
 pub mod request;
 pub mod resume;
 pub mod summary;

@@ -85,10 +85,13 @@ pub fn build_summary(
     duration_s: f64,
     pack_dir: Option<&Path>,
 ) -> Summary {
-    // A capacity figure that did not start from a full charge grades
-    // nothing: it is what the pack gave from where it was.
+    // A grade stands on a measured capacity: a capacity figure that did
+    // not start from a full charge grades nothing (it is what the pack
+    // gave from where it was), and neither does a run without one (a
+    // screening or resistance run: its partial cycles' efficiencies say
+    // nothing of the pack's grade).
     let gradeable =
-        outcome.status.is_complete() && a.capacity.as_ref().is_none_or(|c| c.from_full_charge);
+        outcome.status.is_complete() && a.capacity.as_ref().is_some_and(|c| c.from_full_charge);
     let grade = gradeable.then(|| {
         let own = a.resistance.as_ref().map(|r| r.dcir_mohm);
         let reference = pack_dir

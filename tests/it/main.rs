@@ -22,6 +22,7 @@ mod layers;
 mod links;
 mod procedures;
 mod properties;
+mod quick;
 mod sim_scpi;
 #[cfg(unix)]
 mod unattended;

@@ -90,6 +90,8 @@ pub fn shipped() -> Vec<(&'static str, PackSpec)> {
             spec(Chemistry::Lfp, 12, 15.0),
         ),
         ("procedures/dcir-soc-sweep-li-ion.toml", li_ion_14ah()),
+        ("procedures/screen-li-ion.toml", li_ion_14ah()),
+        ("procedures/screen-lfp.toml", spec(Chemistry::Lfp, 12, 15.0)),
     ]
 }
 

@@ -13,6 +13,7 @@ pub mod fit;
 pub mod integrate;
 pub mod pulse;
 pub mod resistance;
+pub mod screen;
 pub mod stream;
 
 use correct::Correction;

@@ -203,6 +203,9 @@ pub enum ResultTag {
     Capacity,
     /// A pulse step whose first two levels give the DC resistance.
     Dcir,
+    /// A partial discharge over a window of the curve: the screening
+    /// test's window features (`analysis::screen`).
+    Window,
 }
 
 impl ResultTag {
@@ -210,6 +213,7 @@ impl ResultTag {
         match self {
             ResultTag::Capacity => "capacity",
             ResultTag::Dcir => "dcir",
+            ResultTag::Window => "window",
         }
     }
 }
@@ -217,7 +221,7 @@ impl ResultTag {
 impl std::str::FromStr for ResultTag {
     type Err = String;
     fn from_str(s: &str) -> Result<ResultTag, String> {
-        [ResultTag::Capacity, ResultTag::Dcir]
+        [ResultTag::Capacity, ResultTag::Dcir, ResultTag::Window]
             .into_iter()
             .find(|k| k.name() == s)
             .ok_or_else(|| format!("'{s}' is no result tag"))

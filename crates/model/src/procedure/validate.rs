@@ -728,10 +728,18 @@ fn result_tag(cx: &mut Ctx, st: &RawStep, kind: &StepKind) -> Option<ResultTag> 
             }
             Some(ResultTag::Dcir)
         }
+        "window" => {
+            if !matches!(kind, StepKind::Discharge { .. }) {
+                cx.err(&t.span(), "result = \"window\" belongs on a discharge step");
+            }
+            Some(ResultTag::Window)
+        }
         other => {
             cx.err(
                 &t.span(),
-                format!("unknown result tag '{other}'; expected \"capacity\" or \"dcir\""),
+                format!(
+                    "unknown result tag '{other}'; expected \"capacity\", \"dcir\" or \"window\""
+                ),
             );
             None
         }
