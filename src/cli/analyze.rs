@@ -236,7 +236,7 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
     let opts = options(a)?;
     let policy = match &a.policy {
         Some(p) => {
-            let text = std::fs::read_to_string(p)
+            let text = model::procedure::read_text(p)
                 .with_context(|| format!("cannot read {}", p.display()))?;
             Policy::from_toml(p, &text)?
         }

@@ -106,7 +106,7 @@ fn load_profile(name: &str) -> anyhow::Result<Profile> {
         return Ok(p);
     }
     let path = Path::new(name);
-    let text = std::fs::read_to_string(path)
+    let text = model::procedure::read_text(path)
         .with_context(|| format!("profile '{name}' is neither a built-in nor a readable file"))?;
     Ok(Profile::from_toml(path, &text)?)
 }

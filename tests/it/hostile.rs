@@ -400,3 +400,76 @@ fn no_setting_sent_is_outside_the_envelope() {
         assert!(settings > 2, "{file}: settings were seen ({settings})");
     }
 }
+
+/// A file one byte over the input cap, for the tests below.
+fn oversized(dir: &std::path::Path, name: &str) -> std::path::PathBuf {
+    let mut text = String::from("# ");
+    text.push_str(&" ".repeat(model::procedure::MAX_INPUT_BYTES as usize));
+    write(dir, name, &text)
+}
+
+fn refused_as_too_large(out: &std::process::Output, what: &str) {
+    let err = text(&out.stderr);
+    assert!(!out.status.success(), "{what}: accepted");
+    assert!(err.contains("larger than 1024 kB"), "{what}: {err}");
+}
+
+/// Every file a user hands packbench is read under the same 1 MB cap as
+/// procedures: a profile for `probe`, a policy for `analyze`, a history
+/// for `fade`, and a pack's `pack.toml`. (Each read the whole file
+/// before.)
+#[test]
+fn every_input_file_is_read_under_the_size_cap() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    // probe --profile: refused before any link is opened.
+    let big = oversized(d, "big-profile.toml");
+    let out = packbench(&[
+        "probe",
+        "tcp:127.0.0.1:9",
+        "--profile",
+        big.to_str().unwrap(),
+    ]);
+    refused_as_too_large(&out, "probe --profile");
+    // analyze --policy.
+    let big = oversized(d, "big-policy.toml");
+    let out = packbench(&[
+        "analyze",
+        "tests/fixtures/pybamm_two_level.csv",
+        "--current-sign",
+        "discharge-positive",
+        "--policy",
+        big.to_str().unwrap(),
+    ]);
+    refused_as_too_large(&out, "analyze --policy");
+    // fade --history, and a pack.toml in the results.
+    let results = d.join("results");
+    let run = packbench(&[
+        "run",
+        "procedures/screen-li-ion.toml",
+        "--sim",
+        "--pack",
+        "CAP-1",
+        "--results",
+        results.to_str().unwrap(),
+        "--quiet",
+    ]);
+    assert!(run.status.success(), "{}", text(&run.stderr));
+    let big = oversized(d, "big-history.csv");
+    let out = packbench(&[
+        "fade",
+        "CAP-1",
+        "--results",
+        results.to_str().unwrap(),
+        "--history",
+        big.to_str().unwrap(),
+    ]);
+    refused_as_too_large(&out, "fade --history");
+    std::fs::copy(
+        oversized(d, "pack.toml"),
+        results.join("CAP-1").join("pack.toml"),
+    )
+    .unwrap();
+    let out = packbench(&["fade", "CAP-1", "--results", results.to_str().unwrap()]);
+    refused_as_too_large(&out, "pack.toml");
+}

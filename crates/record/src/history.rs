@@ -52,7 +52,7 @@ pub fn parse_date(s: &str) -> Option<NaiveDate> {
 /// Read earlier measurements: `date,cycles,capacity_ah,resistance_mohm`
 /// (cycles and resistance may be empty).
 pub fn read_history_csv(path: &Path, rated_ah: f64) -> Result<Vec<HistoryPoint>, HistoryError> {
-    let text = std::fs::read_to_string(path).map_err(io(path))?;
+    let text = model::procedure::read_text(path).map_err(io(path))?;
     let mut out = Vec::new();
     let bad = |line: usize, column: usize, message: String| {
         HistoryError::Bad(LocatedError {
@@ -176,7 +176,7 @@ pub fn load(
     model::pack::check_pack_id(pack_id).map_err(|e| HistoryError::Pack(e.to_string()))?;
     let pack_dir = results.join(pack_id);
     let spec_path = pack_dir.join(PACK_TOML);
-    let spec_text = std::fs::read_to_string(&spec_path).map_err(io(&spec_path))?;
+    let spec_text = model::procedure::read_text(&spec_path).map_err(io(&spec_path))?;
     let spec = PackSpec::from_toml(&spec_path, &spec_text)
         .map_err(|e| HistoryError::Pack(e.to_string()))?;
     let mut points = Vec::new();
