@@ -311,6 +311,7 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
     // Without a spec, what needs no rating is worked out and the rest is
     // said to need one.
     let mut opts = opts;
+    let unrated = given.is_none();
     let pack = match given {
         Some(p) => p,
         None => {
@@ -319,7 +320,6 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
             crate::session::summary::provisional_spec(&a.log, &format)?
         }
     };
-    let unrated = pack_from_args(&a.pack_args)?.is_none();
     let bms = given_bms;
     let log = ForeignLog {
         path: &a.log,

@@ -12,7 +12,6 @@ use analysis::screen::{
 };
 use model::pack::PackSpec;
 use model::procedure::plan::{ResultTag, StepType};
-use model::sample::Sample;
 use model::status::RunStatus;
 use record::import::{stream_log, LogFormat, Row};
 use record::read::{read_events, read_summary, step_infos};
@@ -63,14 +62,7 @@ pub fn screening_features(run: &Path, spec: &PackSpec) -> Result<Option<ScreenFe
     }
     let mut tracker = FeatureTracker::new(steps, spec.series);
     stream_log(&run.join(SAMPLES_CSV), &LogFormat::default(), |r: Row| {
-        tracker.push(&Sample {
-            t_s: r.t_s,
-            step: r.step.unwrap_or(0),
-            cycle: r.cycle.unwrap_or(0),
-            voltage_v: r.voltage_v,
-            current_a: r.current_a,
-            temperature_c: r.temperature_c,
-        })
+        tracker.push(&r.sample())
     })?;
     let readings = summary
         .resistance

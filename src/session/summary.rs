@@ -305,14 +305,7 @@ pub fn summarize_run_with_curves(
     let mut feed = Feed::new();
     let rep = stream_log(&dir.join(SAMPLES_CSV), &LogFormat::default(), |r: Row| {
         feed.note(r.t_s);
-        an.push(&Sample {
-            t_s: r.t_s,
-            step: r.step.unwrap_or(0),
-            cycle: r.cycle.unwrap_or(0),
-            voltage_v: r.voltage_v,
-            current_a: r.current_a,
-            temperature_c: r.temperature_c,
-        });
+        an.push(&r.sample());
     })?;
     let mut a = an.finish();
     note_partial_line(&mut a, rep.partial_last_line, "samples.csv");

@@ -154,14 +154,7 @@ impl ChartBuilder {
 pub fn from_log(s: &Summary, samples_csv: &Path) -> Result<ChartData, ReadError> {
     let mut b = ChartBuilder::new(s);
     stream_log(samples_csv, &LogFormat::default(), |r: Row| {
-        b.push(&Sample {
-            t_s: r.t_s,
-            step: r.step.unwrap_or(0),
-            cycle: r.cycle.unwrap_or(0),
-            voltage_v: r.voltage_v,
-            current_a: r.current_a,
-            temperature_c: r.temperature_c,
-        })
+        b.push(&r.sample())
     })?;
     Ok(b.finish())
 }

@@ -133,6 +133,21 @@ pub struct Row {
     pub cycle: Option<u32>,
 }
 
+impl Row {
+    /// The row as a sample of packbench's own log (a missing step or
+    /// cycle is 0).
+    pub fn sample(&self) -> model::sample::Sample {
+        model::sample::Sample {
+            t_s: self.t_s,
+            step: self.step.unwrap_or(0),
+            cycle: self.cycle.unwrap_or(0),
+            voltage_v: self.voltage_v,
+            current_a: self.current_a,
+            temperature_c: self.temperature_c,
+        }
+    }
+}
+
 pub(crate) struct Cols {
     pub time: usize,
     pub voltage: usize,
