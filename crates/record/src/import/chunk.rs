@@ -563,8 +563,8 @@ mod tests {
             let bad_fn: fn(u64, usize, String) -> ReadError = bad;
             let mut p = ChunkParser::new(&cols, &fmt, sign, &bad_fn);
             let line = cells.join(",");
-            // What follows the line is there to be read eight bytes at a
-            // time, and must not be taken.
+            // The next line follows (the fast path finds the line end
+            // itself) and must not be taken.
             let data = format!("{line}\n12345678,9.87654321,0\n");
             if let Some((fast, next)) = p.fast_row(data.as_bytes(), 0) {
                 proptest::prop_assert_eq!(next, line.len() + 1);
