@@ -25,6 +25,18 @@ fn sim_run(procedure: &str, results: &Path) -> PathBuf {
     )
 }
 
+/// The PyBaMM fixtures' cell (Chen2020, 5 Ah) and its current sign.
+const PYBAMM_CELL: [&str; 8] = [
+    "--current-sign",
+    "discharge-positive",
+    "--chemistry",
+    "li-ion",
+    "--series",
+    "1",
+    "--rated",
+    "5Ah",
+];
+
 fn analyze_json(args: &[&str]) -> serde_json::Value {
     let out = Command::new(BIN)
         .arg("analyze")
@@ -198,17 +210,7 @@ fn two_level_resistance_is_found_in_a_foreign_log_with_or_without_steps() {
         "tests/fixtures/pybamm_two_level_steps.csv",
         "tests/fixtures/pybamm_two_level.csv",
     ] {
-        let s = analyze_json(&[
-            log,
-            "--current-sign",
-            "discharge-positive",
-            "--chemistry",
-            "li-ion",
-            "--series",
-            "1",
-            "--rated",
-            "5Ah",
-        ]);
+        let s = analyze_json(&[&[log][..], &PYBAMM_CELL].concat());
         let r = &s["resistance"];
         let got = r["dcir_mohm"].as_f64().unwrap();
         assert!(
@@ -756,17 +758,7 @@ fn fixtures_use_generic_or_own_headers() {
 fn a_bare_log_is_analysed_without_a_pack_spec() {
     let log = "tests/fixtures/pybamm_spme_chen2020.csv";
     let bare = analyze_json(&[log, "--current-sign", "discharge-positive"]);
-    let rated = analyze_json(&[
-        log,
-        "--current-sign",
-        "discharge-positive",
-        "--chemistry",
-        "li-ion",
-        "--series",
-        "1",
-        "--rated",
-        "5Ah",
-    ]);
+    let rated = analyze_json(&[&[log][..], &PYBAMM_CELL].concat());
     let f = |v: &serde_json::Value, path: &[&str]| {
         path.iter()
             .fold(v, |v, k| match k.parse::<usize>() {
