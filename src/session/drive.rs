@@ -278,7 +278,16 @@ fn attach(
         // The meter drives nothing: only the source and the load.
         for (role, b) in [("source", &links.source), ("load", &links.load)] {
             if let Some(r) = &b.attach.reopen {
-                em.register(format!("{who}{role}"), Arc::clone(r), b.profile.clone());
+                let serial = match b.text.parse::<instrument::transport::LinkSpec>() {
+                    Ok(instrument::transport::LinkSpec::Serial(s)) => Some(s.path),
+                    _ => None,
+                };
+                em.register(
+                    format!("{who}{role}"),
+                    Arc::clone(r),
+                    b.profile.clone(),
+                    serial,
+                );
             }
         }
     }

@@ -209,6 +209,11 @@ pub async fn open_station(station: &StationSpec) -> Result<BenchLinks, RunError>
                 let inner = Arc::clone(&inner);
                 let slot = slot.clone();
                 Box::pin(async move {
+                    // The old port closed before the new one opens (an
+                    // exclusive serial port cannot be opened twice).
+                    if let Ok(mut g) = slot.0.lock() {
+                        *g = Box::new(tokio::io::empty());
+                    }
                     let link = inner().await?;
                     if let Ok(mut g) = slot.0.lock() {
                         *g = link;

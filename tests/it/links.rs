@@ -32,23 +32,31 @@ impl Drop for Served {
 }
 
 fn sim_config(dir: &Path) -> PathBuf {
+    sim_config_with(dir, "seed = 3\n[pack]\ninitial_soc = 1.0\n")
+}
+
+fn sim_config_with(dir: &Path, text: &str) -> PathBuf {
     let p = dir.join("sim.toml");
-    std::fs::write(&p, "seed = 3\n[pack]\ninitial_soc = 1.0\n").unwrap();
+    std::fs::write(&p, text).unwrap();
     p
 }
 
 /// Start `sim serve` (with `how` = ["--pty", ...] or ["--tcp", ...]) and
 /// wait until it is ready.
 fn serve(dir: &Path, how: &[&str], faults: &[&str]) -> Served {
+    let cfg = sim_config(dir);
+    serve_config(dir, how, faults, &cfg)
+}
+
+fn serve_config(dir: &Path, how: &[&str], faults: &[&str], cfg: &Path) -> Served {
     let bench = dir.join("bench.toml");
     let state_log = dir.join("state.jsonl");
-    let cfg = sim_config(dir);
     let mut cmd = Command::new(BIN);
     cmd.args(["sim", "serve", "--speed", SPEED])
         .args(how)
         .args(PACK)
         .arg("--sim-config")
-        .arg(&cfg)
+        .arg(cfg)
         .arg("--bench-out")
         .arg(&bench)
         .args(["--bench-timeout", "300ms"])
@@ -219,6 +227,8 @@ struct StateEntry {
     what: String,
     source_output_on: bool,
     load_input_on: bool,
+    #[serde(default)]
+    pack_voltage_v: Option<f64>,
 }
 
 fn state_log(path: &Path) -> Vec<StateEntry> {
@@ -583,4 +593,167 @@ fn a_bench_station_with_sim_links_runs_on_the_embedded_simulator() {
     let (_, mem) = run_in_memory(dir.path(), "tests/fixtures/short-discharge.toml", &[]);
     // The same simulator, seed and sampling: the same figure exactly.
     assert_eq!(capacity(&run), capacity(&mem));
+}
+
+/// Start `packbench run` against a served bench in the background.
+fn spawn_run(dir: &Path, bench: &Path, procedure: &str) -> Child {
+    Command::new(BIN)
+        .args([
+            "run", procedure, "--pack", "P1", "--quiet", "--speed", SPEED,
+        ])
+        .args(PACK)
+        .arg("--bench")
+        .arg(bench)
+        .arg("--results")
+        .arg(dir.join("results"))
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap()
+}
+
+/// The backstop levels the killed run programmed, from its events.
+fn backstop_levels(run: &Path) -> Vec<(String, String, f64, Option<f64>)> {
+    std::fs::read_to_string(run.join("events.jsonl"))
+        .unwrap()
+        .lines()
+        .filter_map(|l| serde_json::from_str::<serde_json::Value>(l).ok())
+        .filter(|e| e["event"] == "backstop")
+        .map(|e| {
+            (
+                e["instrument"].as_str().unwrap().to_string(),
+                e["protection"].as_str().unwrap().to_string(),
+                e["level"].as_f64().unwrap(),
+                e["read_back"].as_f64(),
+            )
+        })
+        .collect()
+}
+
+/// Kill the controller with SIGKILL once `during` holds for the served
+/// bench, then wait for the instrument's own protection to act.
+fn kill_when(s: &Served, run: &mut Child, during: impl Fn(&StateEntry) -> bool) {
+    let seen = wait_until(Duration::from_secs(30), || {
+        std::fs::read_to_string(&s.state_log).is_ok_and(|t| {
+            t.lines()
+                .filter_map(|l| serde_json::from_str::<StateEntry>(l).ok())
+                .any(|e| during(&e))
+        })
+    });
+    assert!(seen, "the run never reached the step to kill it in");
+    // A little into the step, well before any limit.
+    std::thread::sleep(Duration::from_millis(600));
+    run.kill().unwrap();
+    let status = run.wait().unwrap();
+    assert!(status.code().is_none(), "killed by a signal, not ended");
+}
+
+/// The test: SIGKILL in the middle of a discharge. The load the
+/// dead controller left sinking stops on the under-voltage switch-off the
+/// run programmed before its first step, and the pack is never taken
+/// below `voltage_min` minus the margin; the serve process's state log
+/// shows the trip with the true pack voltage. `resume` then finds the
+/// latched trip, names it and clears it.
+#[test]
+fn a_killed_controller_leaves_the_load_to_its_under_voltage_switch_off() {
+    let dir = tempfile::tempdir().unwrap();
+    let s = serve(dir.path(), &["--tcp", "127.0.0.1:0"], &[]);
+    let mut run = spawn_run(dir.path(), &s.bench, "tests/fixtures/fault-discharge.toml");
+    // Killed in the first discharge step (0.5C), about 270 s in.
+    kill_when(&s, &mut run, |e| e.load_input_on);
+    let run_dir = only_run(&dir.path().join("results/P1"));
+    let levels = backstop_levels(&run_dir);
+    let uv = levels
+        .iter()
+        .find(|l| l.0 == "load" && l.1 == "under-voltage switch-off")
+        .unwrap_or_else(|| panic!("no under-voltage level programmed: {levels:?}"));
+    // 2.80 V/cell x 4 less 1 %: 11.088 V, read back by the instrument.
+    assert!((uv.2 - 11.088).abs() < 1e-9, "{uv:?}");
+    assert_eq!(uv.3, Some(uv.2));
+    assert!(levels
+        .iter()
+        .any(|l| l.0 == "source" && l.1 == "over-voltage protection"));
+    // The load goes on sinking with nobody watching, until its own
+    // switch-off: a 0.5C discharge from full is about 2 h, 18 s wall.
+    let mut entries = Vec::new();
+    let tripped = wait_until(Duration::from_secs(40), || {
+        entries = state_log(&s.state_log);
+        entries
+            .iter()
+            .any(|e| e.what.starts_with("protection load under-voltage"))
+    });
+    assert!(tripped, "the load never switched itself off: {entries:?}");
+    let trip = entries
+        .iter()
+        .find(|e| e.what.starts_with("protection load under-voltage"))
+        .unwrap();
+    let v = trip.pack_voltage_v.unwrap();
+    eprintln!(
+        "load switched itself off at {v:.4} V (level {:.4} V): {}",
+        uv.2, trip.what
+    );
+    // One integration step (1 s of bench time at 1C) past the level at most.
+    assert!(v < uv.2 && v > uv.2 - 0.05, "pack at {v} V, level {}", uv.2);
+    assert!(!trip.load_input_on && !trip.source_output_on, "{trip:?}");
+    let last = entries.last().unwrap();
+    assert!(!last.load_input_on && !last.source_output_on, "{last:?}");
+    // Resume finds the latched trip and clears it before going on.
+    let out = Command::new(BIN)
+        .args(["resume", "--speed", SPEED, "--quiet", "--bench"])
+        .arg(&s.bench)
+        .arg(&run_dir)
+        .output()
+        .unwrap();
+    let events = std::fs::read_to_string(run_dir.join("events.jsonl")).unwrap();
+    assert!(
+        events.contains("had switched itself off on its own protection before this run")
+            && events.contains("voltage (status bit 0)): cleared"),
+        "resume exit {:?}: {}\n{events}",
+        out.status.code(),
+        String::from_utf8_lossy(&out.stderr)
+    );
+}
+
+/// SIGKILL in the middle of a charge on a supply whose output runs 5 %
+/// above its setpoint (a regulation fault): the charge goes on with
+/// nobody watching until the over-voltage protection the run programmed
+/// switches the supply off, just above `voltage_max`.
+#[test]
+fn a_killed_controller_leaves_the_supply_to_its_over_voltage_protection() {
+    let dir = tempfile::tempdir().unwrap();
+    let cfg = sim_config_with(
+        dir.path(),
+        "seed = 3\n[pack]\ninitial_soc = 0.85\n[faults]\nsource_voltage_error_pct = 5.0\n",
+    );
+    let s = serve_config(dir.path(), &["--tcp", "127.0.0.1:0"], &[], &cfg);
+    let mut run = spawn_run(dir.path(), &s.bench, "tests/fixtures/charge-only.toml");
+    kill_when(&s, &mut run, |e| e.source_output_on);
+    let run_dir = only_run(&dir.path().join("results/P1"));
+    let levels = backstop_levels(&run_dir);
+    let ov = levels
+        .iter()
+        .find(|l| l.0 == "source" && l.1 == "over-voltage protection")
+        .unwrap_or_else(|| panic!("no over-voltage level programmed: {levels:?}"))
+        .clone();
+    // 4.25 V/cell x 4 plus 1 %: 17.17 V.
+    assert!((ov.2 - 17.17).abs() < 1e-9, "{ov:?}");
+    let mut entries = Vec::new();
+    let tripped = wait_until(Duration::from_secs(60), || {
+        entries = state_log(&s.state_log);
+        entries
+            .iter()
+            .any(|e| e.what.starts_with("protection supply over-voltage"))
+    });
+    assert!(tripped, "the supply never switched itself off: {entries:?}");
+    let trip = entries
+        .iter()
+        .find(|e| e.what.starts_with("protection supply over-voltage"))
+        .unwrap();
+    let v = trip.pack_voltage_v.unwrap();
+    eprintln!(
+        "supply switched itself off at {v:.4} V (level {:.4} V)",
+        ov.2
+    );
+    assert!(v > ov.2 && v < ov.2 + 0.05, "pack at {v} V, level {}", ov.2);
+    assert!(!trip.source_output_on, "{trip:?}");
 }

@@ -23,6 +23,8 @@ mod links;
 mod procedures;
 mod properties;
 mod quick;
+#[cfg(unix)]
+mod serial_user;
 mod sim_scpi;
 #[cfg(unix)]
 mod unattended;

@@ -702,11 +702,13 @@ fn a_second_ctrl_c_switches_every_instrument_off_on_fresh_links() {
             "bay-1 source".into(),
             reopen(&links.source_responder),
             Profile::builtin(ProfileRole::Source),
+            None,
         );
         em.register(
             "bay-1 load".into(),
             reopen(&links.load_responder),
             Profile::builtin(ProfileRole::Load),
+            None,
         );
         let sent = em.all_off(Duration::from_millis(500)).await;
         assert_eq!(sent.len(), 2);

@@ -21,7 +21,10 @@ use analysis::integrate::Integrator;
 use control::StopHandle;
 use event::{EndKind, Event, Sink};
 use futures::FutureExt;
-use instrument::{ErrorKind, InstrumentError, Load, LoadSetting, Meter, Reading, Source};
+use instrument::profile::Guarded;
+use instrument::{
+    ErrorKind, Instrument, InstrumentError, Load, LoadSetting, Meter, Reading, Source,
+};
 use model::procedure::{DischargeMode, EndCondition, FineSampling, Plan, PlanStep, StepKind};
 use model::sample::Sample;
 use model::truth::{GroundTruth, TruthCounters};
@@ -296,6 +299,7 @@ impl<'a> Engine<'a> {
     /// Before the first step, outputs off: read the pack at rest and each
     /// instrument's zero; a pack outside the envelope is not driven.
     async fn preflight(&mut self) -> Result<(), Stop> {
+        self.clear_latched_trips().await?;
         let (reading, temp) = self.measure().await?;
         let st = &mut *self.station;
         let mut zero = ZeroOffsets::default();
@@ -372,6 +376,133 @@ impl<'a> Engine<'a> {
                 "safety limit {} before the first step: {}",
                 b.limit, b.message
             )));
+        }
+        self.program_backstop().await
+    }
+
+    /// The source's (`load = false`) or the load's instrument.
+    fn instrument(&mut self, load: bool) -> &mut Instrument {
+        if load {
+            &mut self.station.load.0
+        } else {
+            &mut self.station.source.0
+        }
+    }
+
+    /// The instruments to ask about trips: one for a source-sink.
+    fn guarded_roles(&self) -> &'static [bool] {
+        if self.station.shared_link {
+            &[false]
+        } else {
+            &[false, true]
+        }
+    }
+
+    /// A protection trip latched before this run (the instrument switched
+    /// itself off while the controller was gone) is reported and cleared;
+    /// one that cannot be cleared stops the run before it starts.
+    async fn clear_latched_trips(&mut self) -> Result<(), Stop> {
+        for &load in self.guarded_roles() {
+            let inst = self.instrument(load);
+            let trips = inst.trips().await.map_err(Stop::Instrument)?;
+            if trips.is_empty() {
+                continue;
+            }
+            let name = inst.name().to_string();
+            let cleared = inst.clear_protection().await;
+            let t = self.t();
+            self.emit(Event::Warning {
+                t_s: t,
+                step: 0,
+                message: format!(
+                    "the {name} had switched itself off on its own protection before this run ({}): {}",
+                    trips.join(", "),
+                    match &cleared {
+                        Ok(true) => "cleared",
+                        Ok(false) => "its profile has no command to clear it",
+                        Err(_) => "it refuses to clear",
+                    }
+                ),
+            })?;
+            match cleared {
+                Ok(true) => {}
+                Ok(false) => {
+                    return Err(Stop::Instrument(InstrumentError {
+                        instrument: name,
+                        kind: ErrorKind::Protection,
+                        message: format!(
+                            "its protection is latched ({}) and the profile cannot clear it: clear it at the instrument",
+                            trips.join(", ")
+                        ),
+                    }))
+                }
+                Err(e) => return Err(Stop::Instrument(e)),
+            }
+        }
+        Ok(())
+    }
+
+    /// Program each instrument's own protection from the envelope, read it
+    /// back and record it; warn of what a profile cannot program.
+    async fn program_backstop(&mut self) -> Result<(), Stop> {
+        let b = safety::backstop(&self.plan.envelope);
+        let shared = self.station.shared_link;
+        let source_ops = [
+            (Guarded::OverVoltage, b.over_voltage_v),
+            (Guarded::OverCurrent, b.over_current_a),
+        ];
+        let load_ops = [
+            (Guarded::UnderVoltage, b.under_voltage_v),
+            (Guarded::VoltageOn, b.voltage_on_v),
+            (Guarded::OverCurrent, b.over_current_a),
+        ];
+        for (load, ops) in [(false, &source_ops[..]), (true, &load_ops[..])] {
+            let mut missing = Vec::new();
+            for &(p, level) in ops {
+                // One over-current protection guards a source-sink's output.
+                if shared && load && p == Guarded::OverCurrent {
+                    continue;
+                }
+                let inst = self.instrument(load);
+                if !inst.has_protection(p) {
+                    missing.push(p.name());
+                    continue;
+                }
+                let name = inst.name().to_string();
+                let level = inst.within_range(p, level);
+                let back = inst.set_protection(p, level).await;
+                let back = match back {
+                    Ok(x) => x,
+                    Err(e) => {
+                        self.record_instrument_error(&e, None)?;
+                        return Err(Stop::Instrument(e));
+                    }
+                };
+                let t = self.t();
+                self.emit(Event::Backstop {
+                    t_s: t,
+                    instrument: name,
+                    protection: p.name().into(),
+                    level,
+                    unit: p.unit().into(),
+                    read_back: back,
+                })?;
+            }
+            // The voltage-on threshold is a convenience, not a backstop.
+            missing.retain(|m| *m != Guarded::VoltageOn.name());
+            if !missing.is_empty() {
+                let name = self.instrument(load).name().to_string();
+                let t = self.t();
+                self.emit(Event::Warning {
+                    t_s: t,
+                    step: 0,
+                    message: format!(
+                        "the {name}'s profile cannot program its {}: if the controller stops (a crash, a kill, a pulled cable) the {name} goes on {} until its own fixed limits stop it; set them at the instrument by hand",
+                        missing.join(" or "),
+                        if load { "sinking" } else { "sourcing" }
+                    ),
+                })?;
+            }
         }
         Ok(())
     }
@@ -533,6 +664,12 @@ impl<'a> Engine<'a> {
             if let Some(m) = st.meter.as_mut() {
                 r = m.0.poll_errors().await;
             }
+        }
+        if r.is_ok() {
+            r = st.source.0.check_trips().await;
+        }
+        if r.is_ok() && !st.shared_link {
+            r = st.load.0.check_trips().await;
         }
         match r {
             Ok(()) => Ok(()),

@@ -3,6 +3,46 @@
 use model::procedure::Envelope;
 use model::sample::Sample;
 
+/// The instruments' own protection levels, from the envelope: a little
+/// outside its limits, so the software envelope acts first and the
+/// instrument only when the controller is gone.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct BackstopLevels {
+    /// The supply's over-voltage protection, V.
+    pub over_voltage_v: f64,
+    /// The load's under-voltage switch-off, V.
+    pub under_voltage_v: f64,
+    /// Both instruments' over-current protection, A.
+    pub over_current_a: f64,
+    /// The load's voltage-on threshold: it sinks nothing from a pack
+    /// already below the switch-off, V.
+    pub voltage_on_v: f64,
+}
+
+/// Margin of the voltage protections outside the envelope: 1 % of the
+/// limit, at least 50 mV (common practice: close enough to catch a
+/// runaway charge or a deep discharge, far enough that a reading's noise
+/// and the leads' drop do not trip it in a normal run).
+pub const BACKSTOP_VOLTAGE_MARGIN: f64 = 0.01;
+pub const BACKSTOP_VOLTAGE_MARGIN_MIN_V: f64 = 0.05;
+/// Margin of the over-current protection: 5 %, at least 10 mA (common
+/// practice).
+pub const BACKSTOP_CURRENT_MARGIN: f64 = 0.05;
+pub const BACKSTOP_CURRENT_MARGIN_MIN_A: f64 = 0.01;
+
+/// The backstop levels of an envelope.
+pub fn backstop(env: &Envelope) -> BackstopLevels {
+    let dv = |v: f64| (v * BACKSTOP_VOLTAGE_MARGIN).max(BACKSTOP_VOLTAGE_MARGIN_MIN_V);
+    let under = (env.voltage_min_v - dv(env.voltage_min_v)).max(0.0);
+    BackstopLevels {
+        over_voltage_v: env.voltage_max_v + dv(env.voltage_max_v),
+        under_voltage_v: under,
+        over_current_a: env.current_max_a
+            + (env.current_max_a * BACKSTOP_CURRENT_MARGIN).max(BACKSTOP_CURRENT_MARGIN_MIN_A),
+        voltage_on_v: under,
+    }
+}
+
 /// A crossed limit.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Breach {
@@ -103,6 +143,28 @@ pub fn check(s: &Sample, so_far: &StepSoFar, env: &Envelope) -> Option<Breach> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// The backstop sits just outside the envelope on every side: the
+    /// software limit is always met first.
+    #[test]
+    fn the_backstop_sits_just_outside_the_envelope() {
+        let b = backstop(&env());
+        assert!((b.over_voltage_v - 42.925).abs() < 1e-9, "{b:?}");
+        assert!((b.under_voltage_v - 24.75).abs() < 1e-9, "{b:?}");
+        assert!((b.over_current_a - 14.7).abs() < 1e-9, "{b:?}");
+        assert_eq!(b.voltage_on_v, b.under_voltage_v);
+        // The 50 mV and 10 mA floors on a one-cell envelope.
+        let small = Envelope {
+            voltage_max_v: 3.65,
+            voltage_min_v: 2.5,
+            current_max_a: 0.1,
+            ..env()
+        };
+        let b = backstop(&small);
+        assert!((b.over_voltage_v - 3.7).abs() < 1e-9, "{b:?}");
+        assert!((b.under_voltage_v - 2.45).abs() < 1e-9, "{b:?}");
+        assert!((b.over_current_a - 0.11).abs() < 1e-9, "{b:?}");
+    }
 
     fn env() -> Envelope {
         Envelope {

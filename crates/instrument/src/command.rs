@@ -35,7 +35,60 @@ pub enum Cmd {
     MeasureCurrent,
     MeasurePower,
     MeasureTemperature,
+    /// A protection level: over-voltage, over-current, over-power, and a
+    /// load's under-voltage switch-off.
+    ProtectionLevel(Protect),
+    /// `...:PROTection:STATe`: the protection armed or not.
+    ProtectionState(Protect),
+    /// `...:PROTection:TRIPped?`
+    ProtectionTripped(Protect),
+    /// `...:PROTection:CLEar` and `OUTPut|INPut:PROTection:CLEar`: re-arm
+    /// every latched protection once its cause is gone.
+    ProtectionClear,
+    /// A load's voltage-on threshold: it sinks nothing until its input
+    /// reaches this voltage.
+    VoltageOn,
+    /// `STATus:OPERation|QUEStionable:CONDition?`
+    StatusCondition(Register),
+    /// `STATus:OPERation|QUEStionable[:EVENt]?`
+    StatusEvent(Register),
+    /// `STATus:...:ENABle`
+    StatusEnable(Register),
+    /// `STATus:...:PTRansition`
+    StatusPositive(Register),
+    /// `STATus:...:NTRansition`
+    StatusNegative(Register),
+    /// `STATus:PRESet`
+    StatusPreset,
 }
+
+/// Which protection.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum Protect {
+    OverVoltage,
+    OverCurrent,
+    OverPower,
+    UnderVoltage,
+}
+
+/// The two SCPI status registers.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum Register {
+    Operation,
+    Questionable,
+}
+
+/// QUEStionable bits of SCPI-1999 used by the protections: 0 VOLTage,
+/// 1 CURRent, 3 POWer, 4 TEMPerature.
+pub const QUES_VOLTAGE: u16 = 1 << 0;
+pub const QUES_CURRENT: u16 = 1 << 1;
+pub const QUES_POWER: u16 = 1 << 3;
+pub const QUES_TEMPERATURE: u16 = 1 << 4;
+/// OPERation bits 8-10, left to the instrument by SCPI-1999: here
+/// regulating at constant voltage, at constant current, output on.
+pub const OPER_CV: u16 = 1 << 8;
+pub const OPER_CC: u16 = 1 << 9;
+pub const OPER_OUTPUT_ON: u16 = 1 << 10;
 
 /// The command tree in SCPI notation. Measurement queries are reachable
 /// under MEASure, READ and FETCh alike (continuously measuring instruments
@@ -82,6 +135,101 @@ pub const TREE: &[(&str, Cmd)] = &[
     ("FETCh[:SCALar]:CURRent[:DC]", Cmd::MeasureCurrent),
     ("FETCh[:SCALar]:POWer[:DC]", Cmd::MeasurePower),
     ("FETCh[:SCALar]:TEMPerature", Cmd::MeasureTemperature),
+    (
+        "[SOURce:]VOLTage:PROTection:UNDer[:LEVel]",
+        Cmd::ProtectionLevel(Protect::UnderVoltage),
+    ),
+    (
+        "[SOURce:]VOLTage:PROTection:UNDer:STATe",
+        Cmd::ProtectionState(Protect::UnderVoltage),
+    ),
+    (
+        "[SOURce:]VOLTage:PROTection:UNDer:TRIPped",
+        Cmd::ProtectionTripped(Protect::UnderVoltage),
+    ),
+    (
+        "[SOURce:]VOLTage:PROTection[:LEVel]",
+        Cmd::ProtectionLevel(Protect::OverVoltage),
+    ),
+    (
+        "[SOURce:]VOLTage:PROTection:STATe",
+        Cmd::ProtectionState(Protect::OverVoltage),
+    ),
+    (
+        "[SOURce:]VOLTage:PROTection:TRIPped",
+        Cmd::ProtectionTripped(Protect::OverVoltage),
+    ),
+    ("[SOURce:]VOLTage:PROTection:CLEar", Cmd::ProtectionClear),
+    (
+        "[SOURce:]CURRent:PROTection[:LEVel]",
+        Cmd::ProtectionLevel(Protect::OverCurrent),
+    ),
+    (
+        "[SOURce:]CURRent:PROTection:STATe",
+        Cmd::ProtectionState(Protect::OverCurrent),
+    ),
+    (
+        "[SOURce:]CURRent:PROTection:TRIPped",
+        Cmd::ProtectionTripped(Protect::OverCurrent),
+    ),
+    ("[SOURce:]CURRent:PROTection:CLEar", Cmd::ProtectionClear),
+    (
+        "[SOURce:]POWer:PROTection[:LEVel]",
+        Cmd::ProtectionLevel(Protect::OverPower),
+    ),
+    (
+        "[SOURce:]POWer:PROTection:STATe",
+        Cmd::ProtectionState(Protect::OverPower),
+    ),
+    (
+        "[SOURce:]POWer:PROTection:TRIPped",
+        Cmd::ProtectionTripped(Protect::OverPower),
+    ),
+    ("[SOURce:]POWer:PROTection:CLEar", Cmd::ProtectionClear),
+    ("[SOURce:]VOLTage:ON[:LEVel]", Cmd::VoltageOn),
+    ("OUTPut:PROTection:CLEar", Cmd::ProtectionClear),
+    ("INPut:PROTection:CLEar", Cmd::ProtectionClear),
+    (
+        "STATus:OPERation:CONDition",
+        Cmd::StatusCondition(Register::Operation),
+    ),
+    (
+        "STATus:OPERation[:EVENt]",
+        Cmd::StatusEvent(Register::Operation),
+    ),
+    (
+        "STATus:OPERation:ENABle",
+        Cmd::StatusEnable(Register::Operation),
+    ),
+    (
+        "STATus:OPERation:PTRansition",
+        Cmd::StatusPositive(Register::Operation),
+    ),
+    (
+        "STATus:OPERation:NTRansition",
+        Cmd::StatusNegative(Register::Operation),
+    ),
+    (
+        "STATus:QUEStionable:CONDition",
+        Cmd::StatusCondition(Register::Questionable),
+    ),
+    (
+        "STATus:QUEStionable[:EVENt]",
+        Cmd::StatusEvent(Register::Questionable),
+    ),
+    (
+        "STATus:QUEStionable:ENABle",
+        Cmd::StatusEnable(Register::Questionable),
+    ),
+    (
+        "STATus:QUEStionable:PTRansition",
+        Cmd::StatusPositive(Register::Questionable),
+    ),
+    (
+        "STATus:QUEStionable:NTRansition",
+        Cmd::StatusNegative(Register::Questionable),
+    ),
+    ("STATus:PRESet", Cmd::StatusPreset),
 ];
 
 /// Load-mode words for `FUNCtion`, in long and short form.

@@ -14,7 +14,7 @@ pub mod scpi;
 pub mod transport;
 
 use link::Link;
-use profile::{Profile, ProfileRole};
+use profile::{Guarded, Profile, ProfileRole};
 use scpi::{Reopen, Session, Trace};
 use serde::Serialize;
 use std::time::Duration;
@@ -31,6 +31,8 @@ pub enum ErrorKind {
     Protocol,
     /// The instrument reported an error in its queue, or a read-back differs.
     Reported,
+    /// The instrument's own protection tripped (its status register says so).
+    Protection,
 }
 
 /// An instrument failure.
@@ -367,6 +369,107 @@ impl Instrument {
             let i = self.session.query_number(mc).await?;
             Ok((v, i))
         }
+    }
+
+    /// Does the profile program this protection?
+    pub fn has_protection(&self, p: Guarded) -> bool {
+        self.profile.protection.templates(p).0.is_some()
+    }
+
+    /// A protection level within the profile's declared range: past its
+    /// range the instrument cannot go anyway.
+    pub fn within_range(&self, p: Guarded, level: f64) -> f64 {
+        let r = &self.profile.ranges;
+        let max = match p {
+            Guarded::OverCurrent => r.current_max_a,
+            _ => r.voltage_max_v,
+        };
+        max.map_or(level, |m| level.min(m))
+    }
+
+    /// Program one protection level; returns the level read back, where
+    /// the profile can read it. A refusal or a read-back off by more than
+    /// the setting tolerance is an error: the backstop is not what the
+    /// envelope asks for.
+    pub async fn set_protection(
+        &mut self,
+        p: Guarded,
+        value: f64,
+    ) -> Result<Option<f64>, InstrumentError> {
+        let (set, get) = self.profile.protection.templates(p);
+        let (Some(set), get) = (set.cloned(), get.cloned()) else {
+            return Err(self.err(
+                ErrorKind::Reported,
+                format!("the profile has no command to set the {}", p.name()),
+            ));
+        };
+        self.checked_write(&render(&set, value)).await?;
+        self.settle().await;
+        let Some(get) = get else { return Ok(None) };
+        let back = self.session.query_number(&get).await?;
+        let tol = (value.abs() * 0.005).max(0.002);
+        if (back - value).abs() > tol {
+            return Err(self.err(
+                ErrorKind::Reported,
+                format!(
+                    "{} set to {value} {} but reads back {back}",
+                    p.name(),
+                    p.unit()
+                ),
+            ));
+        }
+        Ok(Some(back))
+    }
+
+    /// The protections that have tripped and are latched, by the names
+    /// the profile gives their status bits; empty when none has, or when
+    /// the profile cannot tell.
+    pub async fn trips(&mut self) -> Result<Vec<String>, InstrumentError> {
+        let Some(q) = self.profile.protection.tripped_query.clone() else {
+            return Ok(Vec::new());
+        };
+        let reg = self.session.query_number(&q).await?;
+        if !(0.0..=65535.0).contains(&reg) {
+            return Err(self.err(
+                ErrorKind::Protocol,
+                format!("'{q}' answered {reg}, not a status register"),
+            ));
+        }
+        let reg = reg.round() as u32;
+        Ok(self
+            .profile
+            .protection
+            .trip_bits
+            .iter()
+            .filter(|(_, bit)| reg & (1 << **bit) != 0)
+            .map(|(name, bit)| format!("{name} (status bit {bit})"))
+            .collect())
+    }
+
+    /// Fail when a protection has tripped: the instrument switched itself
+    /// off and the step cannot go on.
+    pub async fn check_trips(&mut self) -> Result<(), InstrumentError> {
+        let t = self.trips().await?;
+        if t.is_empty() {
+            return Ok(());
+        }
+        Err(self.err(
+            ErrorKind::Protection,
+            format!(
+                "its own protection tripped and switched it off: {}",
+                t.join(", ")
+            ),
+        ))
+    }
+
+    /// Re-arm latched protection; `Ok(false)` when the profile has no
+    /// command for it.
+    pub async fn clear_protection(&mut self) -> Result<bool, InstrumentError> {
+        let Some(c) = self.profile.protection.clear.clone() else {
+            return Ok(false);
+        };
+        self.checked_write(&c).await?;
+        Ok(true)
     }
 
     /// Voltage only.

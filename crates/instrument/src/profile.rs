@@ -117,6 +117,128 @@ pub struct Commands {
     pub error_query: Option<String>,
 }
 
+/// The instrument's own protection, programmed from the safety envelope
+/// before the first step so it still acts when the controller is gone
+/// (a crash, a kill, a pulled cable). Every entry is optional: a profile
+/// without one gets a warning in the run's events. A set template holds
+/// `{value}` and arms what it sets (e.g. `VOLT:PROT {value};PROT:STAT ON`).
+#[derive(Debug, Clone, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Protection {
+    /// Over-voltage protection level (a supply), V.
+    pub set_over_voltage: Option<String>,
+    pub get_over_voltage: Option<String>,
+    /// Over-current protection level, A.
+    pub set_over_current: Option<String>,
+    pub get_over_current: Option<String>,
+    /// Under-voltage switch-off (a load), V.
+    pub set_under_voltage: Option<String>,
+    pub get_under_voltage: Option<String>,
+    /// Voltage-on threshold (a load sinks nothing below it), V.
+    pub set_voltage_on: Option<String>,
+    pub get_voltage_on: Option<String>,
+    /// Re-arm latched protection once its cause is gone.
+    pub clear: Option<String>,
+    /// A query answering the latched protection state as a register,
+    /// e.g. `STAT:QUES:COND?`.
+    pub tripped_query: Option<String>,
+    /// Which bits of that register mean a trip, by name: e.g.
+    /// `voltage = 0`, `current = 1` (SCPI-1999 QUEStionable bits).
+    #[serde(default)]
+    pub trip_bits: std::collections::BTreeMap<String, u8>,
+}
+
+impl Protection {
+    /// What is wrong with the table, located in the profile's text.
+    fn errors(&self, locate: &dyn Fn(&str) -> Location) -> Vec<LocatedError> {
+        let mut errors = Vec::new();
+        for (key, t) in [
+            ("set_over_voltage", &self.set_over_voltage),
+            ("set_over_current", &self.set_over_current),
+            ("set_under_voltage", &self.set_under_voltage),
+            ("set_voltage_on", &self.set_voltage_on),
+        ] {
+            if t.as_ref().is_some_and(|t| !t.contains("{value}")) {
+                errors.push(LocatedError {
+                    location: locate(key),
+                    message: format!("protection.{key} must contain {{value}}"),
+                });
+            }
+        }
+        for (name, bit) in &self.trip_bits {
+            if *bit > 15 {
+                errors.push(LocatedError {
+                    location: locate("trip_bits"),
+                    message: format!(
+                        "protection.trip_bits.{name} = {bit}: a status register bit is 0 to 15"
+                    ),
+                });
+            }
+        }
+        if self.tripped_query.is_some() == self.trip_bits.is_empty() {
+            errors.push(LocatedError {
+                location: locate("[protection]"),
+                message: "protection.tripped_query and protection.trip_bits go together".into(),
+            });
+        }
+        errors
+    }
+
+    /// The set and read-back templates of one protection.
+    pub fn templates(&self, p: Guarded) -> (Option<&String>, Option<&String>) {
+        match p {
+            Guarded::OverVoltage => (
+                self.set_over_voltage.as_ref(),
+                self.get_over_voltage.as_ref(),
+            ),
+            Guarded::OverCurrent => (
+                self.set_over_current.as_ref(),
+                self.get_over_current.as_ref(),
+            ),
+            Guarded::UnderVoltage => (
+                self.set_under_voltage.as_ref(),
+                self.get_under_voltage.as_ref(),
+            ),
+            Guarded::VoltageOn => (self.set_voltage_on.as_ref(), self.get_voltage_on.as_ref()),
+        }
+    }
+}
+
+/// A protection packbench programs.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Guarded {
+    OverVoltage,
+    OverCurrent,
+    UnderVoltage,
+    VoltageOn,
+}
+
+impl Guarded {
+    pub fn name(self) -> &'static str {
+        match self {
+            Guarded::OverVoltage => "over-voltage protection",
+            Guarded::OverCurrent => "over-current protection",
+            Guarded::UnderVoltage => "under-voltage switch-off",
+            Guarded::VoltageOn => "voltage-on threshold",
+        }
+    }
+    pub fn key(self) -> &'static str {
+        match self {
+            Guarded::OverVoltage => "over_voltage",
+            Guarded::OverCurrent => "over_current",
+            Guarded::UnderVoltage => "under_voltage",
+            Guarded::VoltageOn => "voltage_on",
+        }
+    }
+    pub fn unit(self) -> &'static str {
+        match self {
+            Guarded::OverCurrent => "A",
+            _ => "V",
+        }
+    }
+}
+
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct ModeWords {
@@ -147,6 +269,8 @@ struct RawProfile {
     mode_words: Option<ModeWords>,
     #[serde(default)]
     ranges: RawRanges,
+    #[serde(default)]
+    protection: Protection,
 }
 
 /// Declared ranges in SI units.
@@ -168,6 +292,7 @@ pub struct Profile {
     pub commands: Commands,
     pub mode_words: Option<ModeWords>,
     pub ranges: Ranges,
+    pub protection: Protection,
 }
 
 impl Profile {
@@ -302,6 +427,7 @@ impl Profile {
                 message: "transport.timeout_ms must be between 1 and 600000".into(),
             });
         }
+        errors.extend(raw.protection.errors(&locate));
         if !errors.is_empty() {
             return Err(InputErrors(errors));
         }
@@ -313,6 +439,7 @@ impl Profile {
             commands: raw.commands,
             mode_words: raw.mode_words,
             ranges,
+            protection: raw.protection,
         })
     }
 
@@ -384,6 +511,16 @@ impl Profile {
             &c.measure_power,
             &c.measure_temperature,
             &c.error_query,
+            &self.protection.set_over_voltage,
+            &self.protection.get_over_voltage,
+            &self.protection.set_over_current,
+            &self.protection.get_over_current,
+            &self.protection.set_under_voltage,
+            &self.protection.get_under_voltage,
+            &self.protection.set_voltage_on,
+            &self.protection.get_voltage_on,
+            &self.protection.clear,
+            &self.protection.tripped_query,
         ]
         .into_iter()
         .flatten()
@@ -458,5 +595,19 @@ mod tests {
         let bad = GENERIC_SOURCE_SINK.replace("voltage = \"VOLT\"\n", "");
         let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
         assert!(e.to_string().contains("the source function"), "{e}");
+        // The protection table: templates, bits, and the query with its bits.
+        let bad = GENERIC_SOURCE.replace("VOLT:PROT {value};", "VOLT:PROT 17;");
+        let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
+        assert!(
+            e.to_string()
+                .contains("protection.set_over_voltage must contain {value}"),
+            "{e}"
+        );
+        let bad = GENERIC_LOAD.replace("power = 3", "power = 16");
+        let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
+        assert!(e.to_string().contains("0 to 15"), "{e}");
+        let bad = GENERIC_LOAD.replace("tripped_query = \"STAT:QUES:COND?\"\n", "");
+        let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
+        assert!(e.to_string().contains("go together"), "{e}");
     }
 }

@@ -145,6 +145,10 @@ impl Session {
             ));
         };
         self.note("reopening the link");
+        // Close the old link first: a serial port opened exclusively
+        // cannot be opened again while it is still held (as a normal user
+        // the open fails as busy).
+        self.link = Box::new(tokio::io::empty());
         let deadline = tokio::time::Instant::now() + self.framing.timeout * 2;
         let mut last = None;
         loop {

@@ -270,10 +270,32 @@ pub async fn open(name: &str, spec: &LinkSpec, timeout: Duration) -> Result<Link
                 } else {
                     tokio_serial::StopBits::One
                 });
-            let port = builder
-                .open_native_async()
-                .map_err(|e| link_err(name, format!("cannot open serial port {}: {e}", s.path)))?;
-            Ok(Box::new(port))
+            // Exclusive (the default: TIOCEXCL and an exclusive flock): a
+            // second controller on the same port is refused as busy. This
+            // process's own reopen closes the old port first, and its
+            // last-resort switch-off writes through the open port.
+            let port = builder.open_native_async().map_err(|e| {
+                link_err(
+                    name,
+                    format!(
+                        "cannot open serial port {}: {e}{}",
+                        s.path,
+                        if e.to_string().contains("lock") || e.to_string().contains("busy") {
+                            " (is another program or another packbench using it?)"
+                        } else {
+                            ""
+                        }
+                    ),
+                )
+            })?;
+            #[cfg(unix)]
+            {
+                Ok(Box::new(open_ports::SerialLink::new(port, &s.path)))
+            }
+            #[cfg(not(unix))]
+            {
+                Ok(Box::new(port))
+            }
         }
     }
 }
@@ -351,5 +373,128 @@ mod tests {
         assert!(e.message.contains("expected sim, serial:"), "{e}");
         assert!("tcp:host".parse::<LinkSpec>().is_err());
         assert!("serial:".parse::<LinkSpec>().is_err());
+    }
+}
+
+/// The serial ports this process has open, by device path. A port opened
+/// exclusively cannot be opened a second time, not even by this process
+/// (the flock) and not by a normal user (TIOCEXCL); the last-resort
+/// switch-off therefore writes through a duplicate of the open port's
+/// descriptor instead of opening it again. The entry goes when its link
+/// is dropped, so a reopen after a lost link finds the port free.
+#[cfg(unix)]
+pub mod open_ports {
+    use std::io;
+    use std::os::fd::{AsFd, AsRawFd, OwnedFd};
+    use std::pin::Pin;
+    use std::sync::{Arc, Mutex};
+    use std::task::{Context, Poll};
+    use std::time::{Duration, Instant};
+    use tokio::io::{AsyncRead, AsyncWrite, ReadBuf};
+
+    type Registry = Mutex<Vec<(String, Arc<OwnedFd>)>>;
+
+    fn registry() -> &'static Registry {
+        static PORTS: std::sync::OnceLock<Registry> = std::sync::OnceLock::new();
+        PORTS.get_or_init(|| Mutex::new(Vec::new()))
+    }
+
+    fn lock() -> std::sync::MutexGuard<'static, Vec<(String, Arc<OwnedFd>)>> {
+        match registry().lock() {
+            Ok(g) => g,
+            Err(p) => p.into_inner(),
+        }
+    }
+
+    /// An open serial port, registered while it lives.
+    pub struct SerialLink {
+        stream: tokio_serial::SerialStream,
+        entry: Option<Arc<OwnedFd>>,
+    }
+
+    impl SerialLink {
+        pub fn new(stream: tokio_serial::SerialStream, path: &str) -> SerialLink {
+            let raw = stream.as_raw_fd();
+            // SAFETY: `raw` is the descriptor of `stream`, which is alive for
+            // the whole call; it is only borrowed to duplicate it.
+            let borrowed = unsafe { std::os::fd::BorrowedFd::borrow_raw(raw) };
+            let entry = nix::unistd::dup(borrowed).ok().map(Arc::new);
+            if let Some(fd) = &entry {
+                lock().push((path.to_string(), Arc::clone(fd)));
+            }
+            SerialLink { stream, entry }
+        }
+    }
+
+    impl Drop for SerialLink {
+        fn drop(&mut self) {
+            if let Some(fd) = self.entry.take() {
+                lock().retain(|(_, f)| !Arc::ptr_eq(f, &fd));
+            }
+        }
+    }
+
+    impl AsyncRead for SerialLink {
+        fn poll_read(
+            mut self: Pin<&mut Self>,
+            cx: &mut Context<'_>,
+            buf: &mut ReadBuf<'_>,
+        ) -> Poll<io::Result<()>> {
+            Pin::new(&mut self.stream).poll_read(cx, buf)
+        }
+    }
+
+    impl AsyncWrite for SerialLink {
+        fn poll_write(
+            mut self: Pin<&mut Self>,
+            cx: &mut Context<'_>,
+            buf: &[u8],
+        ) -> Poll<io::Result<usize>> {
+            Pin::new(&mut self.stream).poll_write(cx, buf)
+        }
+        fn poll_flush(mut self: Pin<&mut Self>, cx: &mut Context<'_>) -> Poll<io::Result<()>> {
+            Pin::new(&mut self.stream).poll_flush(cx)
+        }
+        fn poll_shutdown(mut self: Pin<&mut Self>, cx: &mut Context<'_>) -> Poll<io::Result<()>> {
+            Pin::new(&mut self.stream).poll_shutdown(cx)
+        }
+    }
+
+    /// Is a port open in this process?
+    pub fn is_open(path: &str) -> bool {
+        lock().iter().any(|(p, _)| p == path)
+    }
+
+    /// Write bytes to a port this process has open, through its duplicate
+    /// descriptor, within `within`. `Ok(false)`: the port is not open here.
+    pub fn write_all(path: &str, bytes: &[u8], within: Duration) -> io::Result<bool> {
+        let Some(fd) = lock()
+            .iter()
+            .find(|(p, _)| p == path)
+            .map(|(_, f)| Arc::clone(f))
+        else {
+            return Ok(false);
+        };
+        let deadline = Instant::now() + within;
+        let mut rest = bytes;
+        while !rest.is_empty() {
+            match nix::unistd::write(fd.as_fd(), rest) {
+                Ok(n) => rest = &rest[n..],
+                Err(nix::errno::Errno::EAGAIN) | Err(nix::errno::Errno::EINTR) => {
+                    if Instant::now() >= deadline {
+                        return Err(io::Error::new(
+                            io::ErrorKind::TimedOut,
+                            format!(
+                                "port {path} (fd {}) would not take the bytes",
+                                fd.as_raw_fd()
+                            ),
+                        ));
+                    }
+                    std::thread::sleep(Duration::from_millis(2));
+                }
+                Err(e) => return Err(io::Error::from(e)),
+            }
+        }
+        Ok(true)
     }
 }

@@ -84,6 +84,19 @@ pub enum Event {
         zero_a: f64,
         readings: u32,
     },
+    /// An instrument's own protection programmed from the envelope before
+    /// the first step (the backstop that acts if the controller is gone).
+    Backstop {
+        t_s: f64,
+        instrument: String,
+        /// e.g. "over-voltage protection", "under-voltage switch-off".
+        protection: String,
+        /// The level asked for (V or A).
+        level: f64,
+        unit: String,
+        /// The level the instrument reads back, where it can.
+        read_back: Option<f64>,
+    },
     /// Something the operator should know that does not stop the run.
     Warning {
         t_s: f64,

@@ -18,7 +18,47 @@ pub const FLUSH_INTERVAL: Duration = Duration::from_secs(1);
 /// loses at most this much of the log even when the bench runs sped up.
 pub const HANDOFF_RUN_S: f64 = 10.0;
 
-/// Write `bytes` to `path` through a temporary file and a rename.
+/// Folders synced by [`sync_dir`] in this process, for tests that check a
+/// write reached its folder's entry.
+static DIR_SYNCS: std::sync::atomic::AtomicU64 = std::sync::atomic::AtomicU64::new(0);
+
+std::thread_local! {
+    static THREAD_DIR_SYNCS: std::cell::Cell<u64> = const { std::cell::Cell::new(0) };
+}
+
+/// How many folder syncs this process has made.
+pub fn dir_syncs() -> u64 {
+    DIR_SYNCS.load(std::sync::atomic::Ordering::Relaxed)
+}
+
+/// How many folder syncs this thread has made.
+pub fn dir_syncs_on_this_thread() -> u64 {
+    THREAD_DIR_SYNCS.with(|c| c.get())
+}
+
+/// Sync a folder, so a file created or renamed in it survives a power
+/// cut (POSIX: fsync on the file does not make its directory entry
+/// durable). A no-op where folders cannot be opened (Windows).
+pub fn sync_dir(dir: &Path) -> io::Result<()> {
+    #[cfg(unix)]
+    {
+        let dir = if dir.as_os_str().is_empty() {
+            Path::new(".")
+        } else {
+            dir
+        };
+        File::open(dir)?.sync_all()?;
+        DIR_SYNCS.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+        THREAD_DIR_SYNCS.with(|c| c.set(c.get() + 1));
+    }
+    #[cfg(not(unix))]
+    let _ = dir;
+    Ok(())
+}
+
+/// Write `bytes` to `path` through a temporary file, a sync and a rename,
+/// then sync the folder: after a crash or a power cut the file is either
+/// the old one or the new one, and its name is on the disk.
 pub fn atomic_write(path: &Path, bytes: &[u8]) -> io::Result<()> {
     let tmp = path.with_extension(format!(
         "{}.tmp",
@@ -29,7 +69,8 @@ pub fn atomic_write(path: &Path, bytes: &[u8]) -> io::Result<()> {
         f.write_all(bytes)?;
         f.sync_all()?;
     }
-    fs::rename(&tmp, path)
+    fs::rename(&tmp, path)?;
+    sync_dir(path.parent().unwrap_or(Path::new(".")))
 }
 
 /// Write a value as pretty JSON, atomically.
@@ -50,7 +91,12 @@ pub fn create_run_folder(pack_dir: &Path, base_id: &str) -> io::Result<(String, 
         };
         let dir = pack_dir.join(&id);
         match fs::create_dir(&dir) {
-            Ok(()) => return Ok((id, dir)),
+            Ok(()) => {
+                // The new folder's entry on the disk before anything is
+                // written into it.
+                sync_dir(pack_dir)?;
+                return Ok((id, dir));
+            }
             Err(e) if e.kind() == io::ErrorKind::AlreadyExists => continue,
             Err(e) => return Err(e),
         }
@@ -245,6 +291,21 @@ impl Drop for RunLogSink {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// POSIX fsync(2): syncing a file does not make its directory entry
+    /// durable; the folder must be synced too. Each atomic write and each
+    /// new run folder syncs its parent.
+    #[test]
+    fn atomic_writes_and_new_run_folders_sync_their_folder() {
+        let d = tempfile::tempdir().expect("tmp");
+        let before = dir_syncs_on_this_thread();
+        atomic_write(&d.path().join("run.json"), b"{}\n").expect("write");
+        assert_eq!(dir_syncs_on_this_thread(), before + 1, "atomic write");
+        let (_, run) = create_run_folder(&d.path().join("P1"), "r").expect("folder");
+        assert_eq!(dir_syncs_on_this_thread(), before + 2, "new run folder");
+        assert!(run.is_dir());
+        assert_eq!(fs::read(d.path().join("run.json")).expect("read"), b"{}\n");
+    }
 
     #[test]
     fn a_half_written_line_is_cut_off() {

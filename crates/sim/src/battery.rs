@@ -349,6 +349,11 @@ impl PackModel {
             + self.params.docv_dt_v_per_k * (self.temperature_c - 25.0)
     }
 
+    /// The pack's voltage with no current at its terminals.
+    pub fn open_voltage(&self) -> f64 {
+        self.terminal_voltage(0.0)
+    }
+
     /// Pack terminal voltage at a pack current (positive = charging). The
     /// cells carry the terminal current less the electronics' drain.
     pub fn terminal_voltage(&self, current: f64) -> f64 {
@@ -397,6 +402,7 @@ impl PackModel {
         let i = match mode {
             LoadMode::Current => value,
             LoadMode::Resistance => e / (value + r),
+            LoadMode::Voltage => ((e - value) / r.max(1e-12)).max(0.0),
             LoadMode::Power => {
                 // |I|·(E − |I|·R) = P → smaller root; beyond the pack's
                 // maximum power the load takes what it can (E/2R).
@@ -487,6 +493,9 @@ pub enum LoadMode {
     Current,
     Power,
     Resistance,
+    /// Constant voltage: the load sinks what holds its input at the
+    /// setpoint (nothing when the pack is already below it).
+    Voltage,
 }
 
 #[cfg(test)]

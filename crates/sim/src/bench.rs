@@ -49,6 +49,90 @@ impl Meter {
     }
 }
 
+/// One protection of a simulated instrument: its level and whether it
+/// is armed.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Limit {
+    pub level: f64,
+    pub armed: bool,
+}
+
+/// An instrument's own protection, acting on the bench whatever the
+/// controller does (SCPI-1999 `...:PROTection`): a trip switches the
+/// output off and latches until cleared once its cause is gone.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Guard {
+    pub over_voltage: Limit,
+    pub over_current: Limit,
+    pub over_power: Limit,
+    /// A load's under-voltage switch-off.
+    pub under_voltage: Limit,
+    /// A load's voltage-on threshold: it sinks nothing while the pack's
+    /// open voltage is below this (0 = always).
+    pub voltage_on: f64,
+    /// Latched trips as QUEStionable bits (0 voltage, 1 current, 3 power).
+    pub tripped: u16,
+}
+
+impl Guard {
+    fn new(voltage_max: f64, current_max: f64, power_max: f64) -> Guard {
+        Guard {
+            // Over-voltage protection armed at the top of the range, as
+            // instruments ship; the others off until programmed.
+            over_voltage: Limit {
+                level: voltage_max,
+                armed: true,
+            },
+            over_current: Limit {
+                level: current_max,
+                armed: false,
+            },
+            over_power: Limit {
+                level: power_max,
+                armed: false,
+            },
+            under_voltage: Limit {
+                level: 0.0,
+                armed: false,
+            },
+            voltage_on: 0.0,
+            tripped: 0,
+        }
+    }
+
+    /// The trip a reading calls for, if any: (QUES bit, what, value, level).
+    pub fn check(&self, v: f64, i: f64) -> Option<(u16, &'static str, f64, f64)> {
+        use instrument::command::{QUES_CURRENT, QUES_POWER, QUES_VOLTAGE};
+        let l = |x: &Limit| x.armed && x.level > 0.0;
+        if l(&self.over_voltage) && v > self.over_voltage.level {
+            return Some((QUES_VOLTAGE, "over-voltage", v, self.over_voltage.level));
+        }
+        if l(&self.under_voltage) && v < self.under_voltage.level {
+            return Some((QUES_VOLTAGE, "under-voltage", v, self.under_voltage.level));
+        }
+        if l(&self.over_current) && i > self.over_current.level * (1.0 + 1e-9) {
+            return Some((QUES_CURRENT, "over-current", i, self.over_current.level));
+        }
+        if l(&self.over_power) && v * i > self.over_power.level {
+            return Some((QUES_POWER, "over-power", v * i, self.over_power.level));
+        }
+        None
+    }
+}
+
+/// A protection that tripped on the bench.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Trip {
+    pub bench_s: f64,
+    /// "supply" or "load".
+    pub side: &'static str,
+    pub what: &'static str,
+    pub value: f64,
+    pub level: f64,
+    /// The true terminal voltage then.
+    pub pack_voltage_v: f64,
+}
+
 #[derive(Debug, Clone)]
 pub struct SupplyState {
     pub output_on: bool,
@@ -58,6 +142,7 @@ pub struct SupplyState {
     pub current_max: f64,
     pub volts: Meter,
     pub amps: Meter,
+    pub guard: Guard,
 }
 
 #[derive(Debug, Clone)]
@@ -71,8 +156,11 @@ pub struct LoadState {
     pub current_max: f64,
     pub power_max: f64,
     pub resistance_max: f64,
+    /// The constant-voltage setpoint (`FUNC VOLT`).
+    pub voltage_set: f64,
     pub volts: Meter,
     pub amps: Meter,
+    pub guard: Guard,
 }
 
 /// Everything on the simulated bench.
@@ -92,6 +180,10 @@ pub struct SimBench {
     checkpoint: Option<Checkpoint>,
     /// Watches for the true terminal voltage falling to a level.
     pub watch: Option<VoltageWatch>,
+    /// Protection trips not yet reported (drained by the server's log).
+    pub trips: Vec<Trip>,
+    /// The lowest and highest true terminal voltage while current flowed.
+    pub voltage_span: Option<(f64, f64)>,
 }
 
 /// The first time the true terminal voltage fell to a level, and the
@@ -135,11 +227,91 @@ pub struct PackState {
     pub truth_energy_wh: f64,
 }
 
-#[derive(Debug, Clone)]
+/// Where the pack's state is kept, and the thread that writes it.
 struct Checkpoint {
     path: std::path::PathBuf,
     every_s: f64,
     last_s: f64,
+    writer: StateWriter,
+}
+
+type StateSlot = (
+    std::sync::Mutex<(Option<PackState>, bool)>,
+    std::sync::Condvar,
+);
+
+/// Writes the kept state off the caller's thread (the one the stations
+/// share), atomically and synced with its folder; only the newest state
+/// waiting is written.
+struct StateWriter {
+    slot: Arc<StateSlot>,
+}
+
+impl StateWriter {
+    fn start(path: std::path::PathBuf) -> StateWriter {
+        let slot: Arc<StateSlot> = Arc::new((
+            std::sync::Mutex::new((None, false)),
+            std::sync::Condvar::new(),
+        ));
+        let theirs = Arc::clone(&slot);
+        let spawned = std::thread::Builder::new()
+            .name("sim-state".into())
+            .spawn(move || loop {
+                let next = {
+                    let (m, cv) = &*theirs;
+                    let mut g = match m.lock() {
+                        Ok(g) => g,
+                        Err(p) => p.into_inner(),
+                    };
+                    while g.0.is_none() && !g.1 {
+                        g = match cv.wait(g) {
+                            Ok(g) => g,
+                            Err(p) => p.into_inner(),
+                        };
+                    }
+                    match g.0.take() {
+                        Some(st) => st,
+                        None => return,
+                    }
+                };
+                write_state_file(&path, &next);
+            });
+        if spawned.is_err() {
+            // No thread: the states are simply not kept beyond the first.
+            if let Ok(mut g) = slot.0.lock() {
+                g.1 = true;
+            }
+        }
+        StateWriter { slot }
+    }
+
+    fn send(&self, state: PackState) {
+        let (m, cv) = &*self.slot;
+        if let Ok(mut g) = m.lock() {
+            if !g.1 {
+                g.0 = Some(state);
+                cv.notify_one();
+            }
+        }
+    }
+}
+
+impl Drop for StateWriter {
+    fn drop(&mut self) {
+        let (m, cv) = &*self.slot;
+        if let Ok(mut g) = m.lock() {
+            g.1 = true;
+            cv.notify_one();
+        }
+    }
+}
+
+/// Write a state aside, sync it, rename it over the old one and sync the
+/// folder: never half a state, and the name survives a power cut.
+fn write_state_file(path: &std::path::Path, state: &PackState) {
+    if let Ok(bytes) = serde_json::to_vec(state) {
+        let _ = record::write::atomic_write(path, &bytes);
+    }
 }
 
 fn meter(cfg: &MeterConfig, ideal: bool) -> Meter {
@@ -176,6 +348,7 @@ impl SimBench {
                 current_max: 60.0,
                 volts: meter(&cfg.source.voltage, cfg.ideal),
                 amps: meter(&cfg.source.current, cfg.ideal),
+                guard: Guard::new(150.0, 60.0, 3000.0),
             },
             load: LoadState {
                 input_on: false,
@@ -187,8 +360,10 @@ impl SimBench {
                 current_max: 60.0,
                 power_max: 1500.0,
                 resistance_max: 10_000.0,
+                voltage_set: 0.0,
                 volts: meter(&cfg.load.voltage, cfg.ideal),
                 amps: meter(&cfg.load.current, cfg.ideal),
+                guard: Guard::new(150.0, 60.0, 1500.0),
             },
             thermometer: meter(&cfg.temperature, cfg.ideal),
             voltmeter: meter(&cfg.meter, cfg.ideal),
@@ -199,18 +374,24 @@ impl SimBench {
             rng: SmallRng::seed_from_u64(cfg.seed),
             checkpoint: None,
             watch: None,
+            trips: Vec::new(),
+            voltage_span: None,
         }
     }
 
     /// Keep the pack's state in `path`, rewritten every `every_s` bench
     /// seconds as time advances.
     pub fn keep_state(&mut self, path: std::path::PathBuf, every_s: f64) {
+        // The first state is written here, before the run starts; later
+        // ones by the writer thread.
+        let state = self.state();
+        write_state_file(&path, &state);
         self.checkpoint = Some(Checkpoint {
+            writer: StateWriter::start(path.clone()),
             path,
             every_s,
-            last_s: f64::NEG_INFINITY,
+            last_s: state.t_s,
         });
-        self.write_state();
     }
 
     pub fn state(&self) -> PackState {
@@ -245,14 +426,13 @@ impl SimBench {
         let state = self.state();
         if let Some(c) = self.checkpoint.as_mut() {
             c.last_s = state.t_s;
-            if let Ok(bytes) = serde_json::to_vec(&state) {
-                // Written aside and renamed: never half a state.
-                let tmp = c.path.with_extension("json.tmp");
-                if std::fs::write(&tmp, bytes).is_ok() {
-                    let _ = std::fs::rename(&tmp, &c.path);
-                }
-            }
+            c.writer.send(state);
         }
+    }
+
+    /// Where the state is kept, if it is.
+    pub fn state_path(&self) -> Option<&std::path::Path> {
+        self.checkpoint.as_ref().map(|c| c.path.as_path())
     }
 
     pub fn now(&self) -> f64 {
@@ -273,12 +453,72 @@ impl SimBench {
         if !self.load.input_on {
             return 0.0;
         }
+        if self.load.guard.voltage_on > 0.0 && self.pack.open_voltage() < self.load.guard.voltage_on
+        {
+            return 0.0;
+        }
         let value = match self.load.mode {
             LoadMode::Current => self.load.current_set,
             LoadMode::Power => self.load.power_set,
             LoadMode::Resistance => self.load.resistance_set,
+            LoadMode::Voltage => self.load.voltage_set,
         };
-        self.pack.load_current(self.load.mode, value)
+        let i = self.pack.load_current(self.load.mode, value);
+        // A load sinks no more than its rating.
+        i.max(-self.load.current_max)
+    }
+
+    /// The instruments' own protection, checked after each integration
+    /// step: a trip switches the output off at once.
+    fn check_guards(&mut self) {
+        let v = self.terminal_voltage();
+        let t = self.last_t;
+        let sides = [
+            (
+                "supply",
+                self.supply.output_on,
+                self.supply_current(),
+                &self.supply.guard,
+            ),
+            (
+                "load",
+                self.load.input_on,
+                -self.load_current(),
+                &self.load.guard,
+            ),
+        ];
+        let mut hits = Vec::new();
+        for (side, on, i, guard) in sides {
+            if !on {
+                continue;
+            }
+            if let Some((bit, what, value, level)) = guard.check(v, i) {
+                hits.push((side, bit, what, value, level));
+            }
+        }
+        for (side, bit, what, value, level) in hits {
+            let guard = if side == "supply" {
+                self.supply.output_on = false;
+                &mut self.supply.guard
+            } else {
+                self.load.input_on = false;
+                &mut self.load.guard
+            };
+            guard.tripped |= bit;
+            self.trips.push(Trip {
+                bench_s: t,
+                side,
+                what,
+                value,
+                level,
+                pack_voltage_v: v,
+            });
+        }
+    }
+
+    /// The larger power rating of the two instruments, W.
+    pub fn supply_power_max(&self) -> f64 {
+        self.load.power_max.max(3000.0)
     }
 
     /// Pack current now (positive into the pack).
@@ -303,6 +543,14 @@ impl SimBench {
             self.last_t += dt;
             if self.watch.is_some() {
                 self.check_watch();
+            }
+            if self.supply.output_on || self.load.input_on {
+                let v = self.terminal_voltage();
+                self.voltage_span = Some(match self.voltage_span {
+                    Some((lo, hi)) => (lo.min(v), hi.max(v)),
+                    None => (v, v),
+                });
+                self.check_guards();
             }
         }
         if self

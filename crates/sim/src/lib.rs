@@ -49,6 +49,21 @@ impl SimHandle {
         g.advance();
         f(&mut g)
     }
+    /// Integrate the pack up to the clock's present.
+    pub fn advance(&self) {
+        self.with(|b| b.advance())
+    }
+
+    /// The protection trips since the last call.
+    pub fn take_trips(&self) -> Vec<bench::Trip> {
+        self.with(|b| std::mem::take(&mut b.trips))
+    }
+
+    /// The lowest and highest true terminal voltage while current flowed.
+    pub fn voltage_span(&self) -> Option<(f64, f64)> {
+        self.with(|b| b.voltage_span)
+    }
+
     pub fn source_output_on(&self) -> bool {
         self.with(|b| b.supply.output_on)
     }

@@ -55,7 +55,15 @@ pub struct StateEntry {
     pub what: String,
     pub source_output_on: bool,
     pub load_input_on: bool,
+    /// The true pack voltage at a protection trip.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub pack_voltage_v: Option<f64>,
 }
+
+/// How often the server advances the pack by itself, wall time: the
+/// instruments' own protection acts on the pack whether or not a
+/// controller is talking to them.
+pub const TICK: Duration = Duration::from_millis(20);
 
 struct Shared {
     handle: SimHandle,
@@ -78,6 +86,7 @@ impl Shared {
             what: what.to_string(),
             source_output_on: src,
             load_input_on: load,
+            pack_voltage_v: None,
         };
         if let (Ok(mut w), Ok(line)) = (log.lock(), serde_json::to_string(&e)) {
             let _ = writeln!(w, "{line}");
@@ -85,27 +94,51 @@ impl Shared {
         }
     }
 
+    /// Advance the pack to the present with no message (the ticker), and
+    /// log what its protection did.
+    fn tick(&self) {
+        self.handle.advance();
+        self.log_changes(Vec::new());
+    }
+
     /// After each message: log output changes and faults that fired.
     fn record(&self, inst: &mut SimInstrument) {
-        let Some(log) = &self.log else {
-            inst.fired_log.clear();
-            return;
-        };
-        let now = (self.handle.source_output_on(), self.handle.load_input_on());
-        let mut whats: Vec<String> = inst
+        let whats: Vec<(String, Option<f64>)> = inst
             .fired_log
             .drain(..)
             .map(|f| {
-                format!(
-                    "fault {}:{}",
-                    f.fault.instrument.name(),
-                    f.fault.kind.name()
+                (
+                    format!(
+                        "fault {}:{}",
+                        f.fault.instrument.name(),
+                        f.fault.kind.name()
+                    ),
+                    None,
                 )
             })
             .collect();
+        self.log_changes(whats);
+    }
+
+    /// Log protection trips, the given entries and an output change.
+    fn log_changes(&self, mut whats: Vec<(String, Option<f64>)>) {
+        let trips = self.handle.take_trips();
+        let Some(log) = &self.log else {
+            return;
+        };
+        for t in trips {
+            whats.push((
+                format!(
+                    "protection {} {} at {:.4} (level {:.4})",
+                    t.side, t.what, t.value, t.level
+                ),
+                Some(t.pack_voltage_v),
+            ));
+        }
+        let now = (self.handle.source_output_on(), self.handle.load_input_on());
         if let Ok(mut last) = self.last.lock() {
             if *last != now {
-                whats.push("outputs".into());
+                whats.push(("outputs".into(), None));
                 *last = now;
             }
         }
@@ -115,13 +148,14 @@ impl Shared {
         let bench_s = self.handle.bench_time();
         let wall_s = self.start.elapsed().as_secs_f64();
         if let Ok(mut w) = log.lock() {
-            for what in whats {
+            for (what, pack_voltage_v) in whats {
                 let e = StateEntry {
                     wall_s,
                     bench_s,
                     what,
                     source_output_on: now.0,
                     load_input_on: now.1,
+                    pack_voltage_v,
                 };
                 if let Ok(line) = serde_json::to_string(&e) {
                     let _ = writeln!(w, "{line}");
@@ -267,6 +301,15 @@ pub fn serve(
         log: state_log.map(Mutex::new),
         last: Mutex::new((false, false)),
     });
+    {
+        // The pack lives on when no controller talks: its instruments'
+        // protection with it.
+        let shared = Arc::clone(&shared);
+        std::thread::spawn(move || loop {
+            std::thread::sleep(TICK);
+            shared.tick();
+        });
+    }
     let mut served = Vec::new();
     for (role, endpoint) in roles {
         let inst = Arc::new(Mutex::new(SimInstrument::new(
