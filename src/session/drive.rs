@@ -62,12 +62,21 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
         procedure_stem(&p.procedure.path)
     );
 
-    if p.save_pack {
-        std::fs::create_dir_all(&p.pack_dir).map_err(io_err(&p.pack_dir))?;
-        let path = p.pack_dir.join(PACK_TOML);
-        record::write::atomic_write(&path, p.pack.to_toml().as_bytes()).map_err(io_err(&path))?;
-    }
-    let (run_id, dir) = create_run_folder(&p.pack_dir, &base_id).map_err(io_err(&p.pack_dir))?;
+    // The folder and the pack's spec, synced: off the thread the stations
+    // share, so one station's disk work never delays another's samples.
+    let pack_dir = p.pack_dir.clone();
+    let pack_toml = p.save_pack.then(|| p.pack.to_toml());
+    let (run_id, dir, sink) = off_thread(move || {
+        if let Some(text) = pack_toml {
+            std::fs::create_dir_all(&pack_dir).map_err(io_err(&pack_dir))?;
+            let path = pack_dir.join(PACK_TOML);
+            record::write::atomic_write(&path, text.as_bytes()).map_err(io_err(&path))?;
+        }
+        let (run_id, dir) = create_run_folder(&pack_dir, &base_id).map_err(io_err(&pack_dir))?;
+        let sink = RunLogSink::create(&dir).map_err(io_err(&dir))?;
+        Ok((run_id, dir, sink))
+    })
+    .await?;
     let manifest = Manifest {
         schema_version: record::schema::SCHEMA_VERSION,
         tool: ToolInfo {
@@ -116,7 +125,6 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
         alarm_below_pct: p.options.alarm_below_pct,
         resumes: Vec::new(),
     };
-    let sink = RunLogSink::create(&dir).map_err(io_err(&dir))?;
     let rec = Recording {
         dir,
         run_id,
@@ -139,6 +147,22 @@ pub struct Recording {
     pub manifest: Manifest,
     /// Where an interrupted run goes on.
     pub resume: Option<engine::ResumePoint>,
+}
+
+/// File work (creating, writing and syncing) on a blocking thread, not
+/// on the one the stations share.
+pub async fn off_thread<T: Send + 'static>(
+    f: impl FnOnce() -> Result<T, RunError> + Send + 'static,
+) -> Result<T, RunError> {
+    tokio::task::spawn_blocking(f)
+        .await
+        .map_err(|e| RunError::from(Failure::RecordTask(e.to_string())))?
+}
+
+/// Write the run record atomically, synced, off the stations' thread.
+async fn write_manifest(path: &Path, manifest: &Manifest) -> Result<(), RunError> {
+    let (path, manifest) = (path.to_path_buf(), manifest.clone());
+    off_thread(move || write_json(&path, &manifest).map_err(io_err(&path))).await
 }
 
 /// Write the lock naming this process.
@@ -168,10 +192,24 @@ pub async fn drive(
         mut manifest,
         resume,
     } = rec;
-    write_lock(&dir)?;
-    attach(p, &dir, &mut links, sim.as_ref())?;
+    attach(p, &dir, &mut links)?;
     let run_json = dir.join(RUN_JSON);
-    write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
+    {
+        let (dir, run_json, manifest) = (dir.clone(), run_json.clone(), manifest.clone());
+        let keep = sim.as_ref().map(|s| (s.handle.clone(), s.speed_factor));
+        off_thread(move || {
+            write_lock(&dir)?;
+            if let Some((handle, speed_factor)) = keep {
+                // The simulated pack keeps its state beside the log: every
+                // 10 bench seconds when paced; every 10 bench minutes at
+                // full speed, where a whole run takes a second.
+                let every = if speed_factor.is_some() { 10.0 } else { 600.0 };
+                handle.keep_state(dir.join(SIM_STATE_JSON), every);
+            }
+            write_json(&run_json, &manifest).map_err(io_err(&run_json))
+        })
+        .await?;
+    }
     let board = links.hooks.board.clone();
     let shared_link = links.shared;
     let mut station = match connect(links).await {
@@ -185,8 +223,13 @@ pub async fn drive(
             manifest.status = RunStatus::Aborted;
             manifest.stop_reason = Some(format!("could not connect: {e}"));
             manifest.finished_utc = Some(utc_now());
-            write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
-            let _ = std::fs::remove_file(dir.join(RUN_LOCK));
+            write_manifest(&run_json, &manifest).await?;
+            let lock = dir.join(RUN_LOCK);
+            let _ = off_thread(move || {
+                let _ = std::fs::remove_file(lock);
+                Ok(())
+            })
+            .await;
             if let Some(b) = &board {
                 b.update(|l| {
                     l.state = crate::session::live::BoardState::Failed;
@@ -197,7 +240,7 @@ pub async fn drive(
         }
     };
     station.shared_link = shared_link;
-    write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
+    write_manifest(&run_json, &manifest).await?;
     let alarm_ah = p
         .options
         .alarm_below_pct
@@ -229,36 +272,20 @@ pub async fn drive(
         }
         engine.run().await
     };
-    sink.flush().map_err(io_err(&dir))?;
-    drop(sink);
-    // Reading the log back and writing the report takes a while on a long
-    // run: off the thread the other stations sample on.
+    // The log's last sync, reading it back and writing the report take a
+    // while on a long run: off the thread the other stations sample on.
     let p = p.clone();
-    tokio::task::spawn_blocking(move || finish_record(&p, &dir, &run_id, manifest, outcome, sim))
-        .await
-        .map_err(|e| RunError::from(Failure::RecordTask(e.to_string())))?
+    off_thread(move || {
+        sink.flush().map_err(io_err(&dir))?;
+        drop(sink);
+        finish_record(&p, &dir, &run_id, manifest, outcome, sim)
+    })
+    .await
 }
 
-/// Before connecting: the simulated pack's kept state, the raw-traffic
-/// trace, and the instruments registered for the last-resort switch-off.
-fn attach(
-    p: &Prepared,
-    dir: &Path,
-    links: &mut BenchLinks,
-    sim: Option<&SimRun>,
-) -> Result<(), RunError> {
-    if let Some(s) = sim {
-        // The simulated pack keeps its state beside the log: every 10
-        // bench seconds when paced; every 10 bench minutes at full speed,
-        // where a whole run takes a second and a file write costs as much
-        // as a hundred samples.
-        let every = if s.speed_factor.is_some() {
-            10.0
-        } else {
-            600.0
-        };
-        s.handle.keep_state(dir.join(SIM_STATE_JSON), every);
-    }
+/// Before connecting: the raw-traffic trace and the instruments
+/// registered for the last-resort switch-off.
+fn attach(p: &Prepared, dir: &Path, links: &mut BenchLinks) -> Result<(), RunError> {
     if p.options.trace {
         let path = dir.join(TRACE_LOG);
         let trace = Trace::create(&path).map_err(io_err(&path))?;

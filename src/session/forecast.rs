@@ -47,10 +47,23 @@ pub struct Forecast {
     pub status: Option<RunStatus>,
     pub stop_reason: Option<String>,
     pub warnings: Vec<String>,
+    /// The instruments' own protection the run programs before its first
+    /// step (the backstop), from the envelope.
+    pub backstop: Vec<BackstopLevel>,
+}
+
+/// One protection level the run programs.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct BackstopLevel {
+    pub instrument: String,
+    pub protection: String,
+    pub level: f64,
+    pub unit: String,
 }
 
 #[derive(Default)]
 struct ForecastSink {
+    backstop: Vec<BackstopLevel>,
     steps: Vec<StepForecast>,
     open: Option<(f64, Integrator)>,
     last_t: f64,
@@ -101,6 +114,18 @@ impl Sink for ForecastSink {
                     last.end_reason = end_reason.clone();
                 }
             }
+            Event::Backstop {
+                instrument,
+                protection,
+                level,
+                unit,
+                ..
+            } => self.backstop.push(BackstopLevel {
+                instrument: instrument.clone(),
+                protection: protection.clone(),
+                level: *level,
+                unit: unit.clone(),
+            }),
             Event::RunEnd {
                 t_s,
                 status,
@@ -264,6 +289,7 @@ pub fn forecast(plan: &Plan, cfg: &SimConfig) -> Forecast {
             status: None,
             stop_reason: Some(e.to_string()),
             warnings: vec![format!("the dry run could not start: {e}")],
+            backstop: Vec::new(),
         },
     }
 }
@@ -346,6 +372,7 @@ pub async fn forecast_async(plan: &Plan, cfg: &SimConfig) -> Forecast {
         status: sink.status,
         stop_reason: sink.reason,
         warnings,
+        backstop: sink.backstop,
     }
 }
 
@@ -368,6 +395,19 @@ impl fmt::Display for Forecast {
             "  Total expected time: {}",
             HumanDuration(self.total_s.round())
         )?;
+        if !self.backstop.is_empty() {
+            writeln!(
+                f,
+                "  Instruments' own protection, set before the first step:"
+            )?;
+            for b in &self.backstop {
+                writeln!(
+                    f,
+                    "    {:<7} {:<26} {:.3} {}",
+                    b.instrument, b.protection, b.level, b.unit
+                )?;
+            }
+        }
         for w in &self.warnings {
             writeln!(f, "  warning: {w}")?;
         }

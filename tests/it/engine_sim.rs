@@ -616,3 +616,96 @@ async fn every_step_kind_and_mode_runs_on_the_simulated_bench() {
     }
     assert!(cr.charge_out_ah >= 0.5 && cr.charge_out_ah < 0.501);
 }
+
+/// A sense lead that reads the pack 1.5 V high hides the deep discharge
+/// from the controller's own envelope; the load's under-voltage switch-off,
+/// programmed from that envelope before the first step, trips at the real
+/// voltage, and the engine (reading the status register about once a
+/// second) ends the run in the safe stop with the trip named.
+#[test]
+fn a_protection_trip_ends_the_run_in_the_safe_stop_with_its_name() {
+    let dir = tempfile::tempdir().unwrap();
+    let p = prepare(
+        "tests/fixtures/fault-discharge.toml",
+        spec(model::pack::Chemistry::LiIon, 4, 2.0),
+        dir.path(),
+    );
+    let mut cfg = SimConfig::ideal();
+    cfg.pack.initial_soc = 1.0;
+    cfg.faults.reading.push(sim::config::ReadingFault {
+        quantity: sim::config::Quantity::Voltage,
+        offset: 1.5,
+        // Half way down the 1C step, where the pack reads 1.5 V under
+        // voltage_max even with the fault.
+        after_s: 1800.0,
+    });
+    let (r, h) = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .unwrap()
+        .block_on(run_sim(&p, &cfg, StopHandle::new()));
+    assert_eq!(r.outcome.status, RunState::Aborted);
+    let reason = r.summary.stop_reason.clone().unwrap_or_default();
+    assert!(
+        reason.contains("its own protection tripped") && reason.contains("voltage (status bit 0)"),
+        "{reason}"
+    );
+    assert!(reason.starts_with("instrument fault: load:"), "{reason}");
+    assert!(!h.load_input_on() && !h.source_output_on());
+    assert!(r.outcome.source_off_confirmed && r.outcome.load_off_confirmed);
+    let events = read_events(&r.run_dir.join("events.jsonl")).unwrap();
+    assert!(events.iter().any(|e| matches!(
+        e,
+        engine::event::Event::InstrumentError { kind, .. } if kind == "protection"
+    )));
+    // The real pack stopped at the switch-off: 2.80 V/cell x 4 less 1 %.
+    let (lo, _) = h.voltage_span().unwrap();
+    assert!(lo > 11.088 - 0.05 && lo < 11.088, "lowest {lo} V");
+    // Programmed and read back before the first step.
+    let programmed: Vec<_> = events
+        .iter()
+        .filter_map(|e| match e {
+            engine::event::Event::Backstop {
+                instrument,
+                protection,
+                level,
+                read_back,
+                ..
+            } => Some((instrument.clone(), protection.clone(), *level, *read_back)),
+            _ => None,
+        })
+        .collect();
+    assert_eq!(programmed.len(), 5, "{programmed:?}");
+    assert!(programmed.iter().all(|(_, _, l, b)| *b == Some(*l)));
+}
+
+/// The run's synced file work (the pack's spec, the run folder, the lock,
+/// the run record, the simulated pack's kept state, the log's last sync
+/// and the report) happens off the thread the stations share: a run on a
+/// current-thread runtime syncs no folder on that thread. Before the
+/// lock and the run record moved to blocking threads, it synced six.
+#[test]
+fn a_run_syncs_no_folder_on_the_thread_the_stations_share() {
+    let dir = tempfile::tempdir().unwrap();
+    let p = prepare(
+        "tests/fixtures/short-discharge.toml",
+        spec(model::pack::Chemistry::LiIon, 4, 2.0),
+        dir.path(),
+    );
+    let before = record::write::dir_syncs_on_this_thread();
+    let all_before = record::write::dir_syncs();
+    let (r, _) = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .unwrap()
+        .block_on(run_sim(&p, &SimConfig::ideal(), StopHandle::new()));
+    assert_eq!(r.outcome.status, RunState::Completed);
+    assert_eq!(
+        record::write::dir_syncs_on_this_thread(),
+        before,
+        "folder syncs on the stations' thread"
+    );
+    // The syncs happened, elsewhere: folder, lock, run record (twice), the
+    // sim state, summary, report, run record at the end.
+    assert!(record::write::dir_syncs() >= all_before + 6);
+}

@@ -8,7 +8,7 @@ use super::link::Link;
 use super::{ErrorKind, InstrumentError};
 use futures::future::BoxFuture;
 use std::io::Write;
-use std::sync::{Arc, Mutex};
+use std::sync::Arc;
 use std::time::{Duration, Instant};
 use tokio::io::{AsyncReadExt, AsyncWriteExt};
 
@@ -25,14 +25,30 @@ pub type Reopen = Arc<dyn Fn() -> BoxFuture<'static, Result<Link, InstrumentErro
 #[derive(Clone)]
 pub struct Trace {
     start: Instant,
-    out: Arc<Mutex<Box<dyn Write + Send>>>,
+    out: std::sync::mpsc::Sender<String>,
 }
 
 impl Trace {
-    pub fn new(out: Box<dyn Write + Send>) -> Trace {
+    /// A trace written by its own thread, a line at a time and flushed
+    /// after each: a session never waits on the disk, and a killed run's
+    /// trace ends with the last line it exchanged.
+    pub fn new(mut out: Box<dyn Write + Send>) -> Trace {
+        let (tx, rx) = std::sync::mpsc::channel::<String>();
+        let spawned = std::thread::Builder::new()
+            .name("trace".into())
+            .spawn(move || {
+                for line in rx {
+                    // Tracing is for debugging: a failed trace write never
+                    // stops a run.
+                    let _ = out.write_all(line.as_bytes());
+                    let _ = out.flush();
+                }
+            });
+        // No thread: the lines sent go nowhere; the run is unaffected.
+        drop(spawned);
         Trace {
             start: Instant::now(),
-            out: Arc::new(Mutex::new(out)),
+            out: tx,
         }
     }
 
@@ -45,11 +61,7 @@ impl Trace {
     fn line(&self, who: &str, dir: char, bytes: &[u8]) {
         let t = self.start.elapsed().as_secs_f64();
         let text: String = bytes.escape_ascii().to_string();
-        if let Ok(mut o) = self.out.lock() {
-            // Tracing is for debugging: a failed trace write never stops a run.
-            let _ = writeln!(o, "{t:.6} {who} {dir} {text}");
-            let _ = o.flush();
-        }
+        let _ = self.out.send(format!("{t:.6} {who} {dir} {text}\n"));
     }
 }
 
