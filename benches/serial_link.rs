@@ -72,7 +72,10 @@ fn main() {
             (SimRole::Source, Endpoint::Pty { symlink: None }),
             (SimRole::Load, Endpoint::Pty { symlink: None }),
         ],
-        &ServeOptions { baud: Some(BAUD) },
+        &ServeOptions {
+            baud: Some(BAUD),
+            modbus: false,
+        },
         None,
     )
     .expect("serve on pseudo-terminals");
@@ -131,7 +134,7 @@ fn main() {
     let dir = tempfile::tempdir().expect("temp dir");
     let proc_path = dir.path().join("ten-hz.toml");
     std::fs::write(&proc_path, PROCEDURE).expect("write procedure");
-    let bench_text = serve::bench_file_text(&server.served, Some("500ms"));
+    let bench_text = serve::bench_file_text(&server.served, Some("500ms"), false);
     let bench = BenchFile::parse(&dir.path().join("bench.toml"), &bench_text).expect("bench");
     let prepared = packbench::session::prepare::prepare(&RunRequest {
         procedure: proc_path,

@@ -18,7 +18,6 @@ use sim::server::SimRole;
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
-use std::time::Duration;
 
 #[derive(Debug, Args)]
 pub struct ProbeArgs {
@@ -61,6 +60,10 @@ pub struct ServeArgs {
     /// Folder for stable symlinks to the pseudo-terminals (DIR/<role>).
     #[arg(long, requires = "pty")]
     pub link_dir: Option<PathBuf>,
+    /// Speak Modbus RTU instead of SCPI (source and load), with the shipped
+    /// generic-modbus-source and generic-modbus-load register maps.
+    #[arg(long)]
+    pub modbus: bool,
     /// Emulate a serial line of this baud rate (10 bits per byte).
     #[arg(long)]
     pub baud: Option<u32>,
@@ -121,14 +124,13 @@ pub fn cmd_probe(a: ProbeArgs) -> anyhow::Result<ExitCode> {
     let mut profile = load_profile(a.profile.as_deref().unwrap_or("generic-scpi-source"))?;
     if let Some(t) = &a.timeout {
         let s = model::units::duration(t).map_err(|e| anyhow!("--timeout: {e}"))?;
-        profile.transport.timeout_ms = ((s * 1000.0).round() as u64).max(1);
+        profile.set_timeout_ms(((s * 1000.0).round() as u64).max(1));
     }
     let rt = tokio::runtime::Builder::new_current_thread()
         .enable_all()
         .build()?;
     rt.block_on(async move {
-        let timeout = Duration::from_millis(profile.transport.timeout_ms);
-        let link = transport::open("probe", &spec, timeout).await?;
+        let link = transport::open_for("probe", &spec, &profile).await?;
         let mut s = Session::with_framing("probe", link, profile.framing());
         let mut failures = 0;
         let c = profile.commands.clone();
@@ -288,7 +290,10 @@ fn cmd_serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
         &cfg,
         clock,
         &endpoints,
-        &ServeOptions { baud: a.baud },
+        &ServeOptions {
+            baud: a.baud,
+            modbus: a.modbus,
+        },
         state_log,
     )
     .context("cannot start the simulated instruments")?;
@@ -322,7 +327,7 @@ fn cmd_serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
         }
         std::fs::write(
             path,
-            serve::bench_file_text(&served, a.bench_timeout.as_deref()),
+            serve::bench_file_text(&served, a.bench_timeout.as_deref(), a.modbus),
         )
         .with_context(|| format!("cannot write {}", path.display()))?;
         println!("bench file   {}", path.display());

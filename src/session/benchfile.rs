@@ -306,7 +306,7 @@ impl Reader<'_> {
                     if is_delay {
                         profile.transport.delay_ms = ms;
                     } else {
-                        profile.transport.timeout_ms = ms.max(1);
+                        profile.set_timeout_ms(ms.max(1));
                     }
                 }
                 _ => self.err(

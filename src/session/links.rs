@@ -146,19 +146,19 @@ pub struct BenchLinks {
 
 pub fn reopen_for(role: &'static str, spec: &LinkSpec, profile: &Profile) -> Reopen {
     let spec = spec.clone();
-    let timeout = std::time::Duration::from_millis(profile.transport.timeout_ms);
+    let profile = profile.clone();
     Arc::new(move || {
         let spec = spec.clone();
-        Box::pin(async move { transport::open(role, &spec, timeout).await })
+        let profile = profile.clone();
+        Box::pin(async move { transport::open_for(role, &spec, &profile).await })
     })
 }
 
 /// Open the links of a station (no message is sent yet).
 pub async fn open_station(station: &StationSpec) -> Result<BenchLinks, RunError> {
-    let timeout = |p: &Profile| std::time::Duration::from_millis(p.transport.timeout_ms);
     let meter = match &station.meter {
         Some(m) => Some(BoundLink {
-            link: transport::open("meter", &m.link, timeout(&m.profile)).await?,
+            link: transport::open_for("meter", &m.link, &m.profile).await?,
             profile: m.profile.clone(),
             text: m.link_text.clone(),
             attach: Attach {
@@ -170,8 +170,8 @@ pub async fn open_station(station: &StationSpec) -> Result<BenchLinks, RunError>
     };
     match &station.drivers {
         Drivers::Pair { source, load } => {
-            let s = transport::open("source", &source.link, timeout(&source.profile)).await?;
-            let l = transport::open("load", &load.link, timeout(&load.profile)).await?;
+            let s = transport::open_for("source", &source.link, &source.profile).await?;
+            let l = transport::open_for("load", &load.link, &load.profile).await?;
             Ok(BenchLinks {
                 source: BoundLink {
                     link: s,
@@ -199,7 +199,7 @@ pub async fn open_station(station: &StationSpec) -> Result<BenchLinks, RunError>
             })
         }
         Drivers::SourceSink(b) => {
-            let raw = transport::open("source-sink", &b.link, timeout(&b.profile)).await?;
+            let raw = transport::open_for("source-sink", &b.link, &b.profile).await?;
             let shared = SharedLink::new(raw);
             let inner = reopen_for("source-sink", &b.link, &b.profile);
             let slot = shared.clone();

@@ -9,6 +9,7 @@
 
 pub mod command;
 pub mod link;
+pub mod modbus;
 pub mod profile;
 pub mod scpi;
 pub mod transport;

@@ -13,12 +13,21 @@ pub const GENERIC_SOURCE_SINK: &str =
     include_str!("../../../profiles/generic-scpi-source-sink.toml");
 pub const GENERIC_METER: &str = include_str!("../../../profiles/generic-scpi-meter.toml");
 
+/// The profile kind of a Modbus RTU instrument.
+pub const MODBUS_RTU: &str = "modbus-rtu";
+
+pub const GENERIC_MODBUS_SOURCE: &str =
+    include_str!("../../../profiles/generic-modbus-source.toml");
+pub const GENERIC_MODBUS_LOAD: &str = include_str!("../../../profiles/generic-modbus-load.toml");
+
 /// The built-in profiles by name.
 pub const BUILTIN: &[(&str, &str)] = &[
     ("generic-scpi-source", GENERIC_SOURCE),
     ("generic-scpi-load", GENERIC_LOAD),
     ("generic-scpi-source-sink", GENERIC_SOURCE_SINK),
     ("generic-scpi-meter", GENERIC_METER),
+    ("generic-modbus-source", GENERIC_MODBUS_SOURCE),
+    ("generic-modbus-load", GENERIC_MODBUS_LOAD),
 ];
 
 /// Which role an instrument can play.
@@ -251,7 +260,7 @@ pub struct ModeWords {
 
 #[derive(Debug, Clone, Default, Deserialize)]
 #[serde(deny_unknown_fields)]
-struct RawRanges {
+pub(crate) struct RawRanges {
     voltage_max: Option<String>,
     current_max: Option<String>,
     power_max: Option<String>,
@@ -261,6 +270,9 @@ struct RawRanges {
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]
 struct RawProfile {
+    /// "scpi" (the default) or "modbus-rtu".
+    #[serde(default)]
+    kind: Option<String>,
     name: String,
     role: ProfileRole,
     transport: Transport,
@@ -282,6 +294,52 @@ pub struct Ranges {
     pub resistance_max_ohm: Option<f64>,
 }
 
+/// Declared ranges in SI units; bad ones are errors, located.
+pub(crate) fn parse_ranges(
+    raw: &RawRanges,
+    locate: &dyn Fn(&str) -> Location,
+    errors: &mut Vec<LocatedError>,
+) -> Ranges {
+    let mut range = |v: &Option<String>, key: &str, f: fn(&str) -> Option<f64>| -> Option<f64> {
+        let s = v.as_ref()?;
+        match f(s) {
+            Some(x) if x > 0.0 => Some(x),
+            _ => {
+                errors.push(LocatedError {
+                    location: locate(key),
+                    message: format!(
+                        "ranges.{key} = '{s}' is not a positive value of the right unit"
+                    ),
+                });
+                None
+            }
+        }
+    };
+    Ranges {
+        voltage_max_v: range(&raw.voltage_max, "voltage_max", |s| {
+            units::voltage(s).ok().and_then(|v| match v {
+                units::VoltageSpec::Pack(v) => Some(v),
+                units::VoltageSpec::PerCell(_) => None,
+            })
+        }),
+        current_max_a: range(&raw.current_max, "current_max", |s| {
+            units::current(s).ok().and_then(|c| match c {
+                units::CurrentSpec::Amps(a) => Some(a),
+                units::CurrentSpec::CRate(_) => None,
+            })
+        }),
+        power_max_w: range(&raw.power_max, "power_max", |s| {
+            units::power(s).ok().and_then(|p| match p {
+                units::PowerSpec::Pack(w) => Some(w),
+                units::PowerSpec::PerCell(_) => None,
+            })
+        }),
+        resistance_max_ohm: range(&raw.resistance_max, "resistance_max", |s| {
+            units::resistance_ohm(s).ok()
+        }),
+    }
+}
+
 /// A validated profile.
 #[derive(Debug, Clone)]
 pub struct Profile {
@@ -293,57 +351,35 @@ pub struct Profile {
     pub mode_words: Option<ModeWords>,
     pub ranges: Ranges,
     pub protection: Protection,
+    /// A Modbus RTU instrument's register map: the commands above are then
+    /// the operations the Modbus bridge carries.
+    pub modbus: Option<std::sync::Arc<crate::modbus::Map>>,
 }
 
 impl Profile {
     /// Parse and validate a profile; errors carry file:line:column.
     pub fn from_toml(file: &Path, text: &str) -> Result<Profile, InputErrors> {
+        let kind = toml::from_str::<toml::Table>(text)
+            .ok()
+            .and_then(|t| t.get("kind").and_then(|k| k.as_str()).map(str::to_string));
+        if kind.as_deref() == Some(MODBUS_RTU) {
+            return Profile::from_modbus(file, text);
+        }
         let raw: RawProfile =
             toml::from_str(text).map_err(|e| InputErrors(vec![toml_error(file, text, &e)]))?;
         let mut errors = Vec::new();
+        if let Some(k) = raw.kind.as_deref().filter(|k| *k != "scpi") {
+            let off = text.find("kind").unwrap_or(0);
+            errors.push(LocatedError {
+                location: Location::at(file, text, off),
+                message: format!("kind = \"{k}\": expected \"scpi\" or \"{MODBUS_RTU}\""),
+            });
+        }
         let locate = |needle: &str| {
             let off = text.find(needle).unwrap_or(0);
             Location::at(file, text, off)
         };
-        let mut range =
-            |v: &Option<String>, key: &str, f: fn(&str) -> Option<f64>| -> Option<f64> {
-                let s = v.as_ref()?;
-                match f(s) {
-                    Some(x) if x > 0.0 => Some(x),
-                    _ => {
-                        errors.push(LocatedError {
-                            location: locate(key),
-                            message: format!(
-                                "ranges.{key} = '{s}' is not a positive value of the right unit"
-                            ),
-                        });
-                        None
-                    }
-                }
-            };
-        let ranges = Ranges {
-            voltage_max_v: range(&raw.ranges.voltage_max, "voltage_max", |s| {
-                units::voltage(s).ok().and_then(|v| match v {
-                    units::VoltageSpec::Pack(v) => Some(v),
-                    units::VoltageSpec::PerCell(_) => None,
-                })
-            }),
-            current_max_a: range(&raw.ranges.current_max, "current_max", |s| {
-                units::current(s).ok().and_then(|c| match c {
-                    units::CurrentSpec::Amps(a) => Some(a),
-                    units::CurrentSpec::CRate(_) => None,
-                })
-            }),
-            power_max_w: range(&raw.ranges.power_max, "power_max", |s| {
-                units::power(s).ok().and_then(|p| match p {
-                    units::PowerSpec::Pack(w) => Some(w),
-                    units::PowerSpec::PerCell(_) => None,
-                })
-            }),
-            resistance_max_ohm: range(&raw.ranges.resistance_max, "resistance_max", |s| {
-                units::resistance_ohm(s).ok()
-            }),
-        };
+        let ranges = parse_ranges(&raw.ranges, &locate, &mut errors);
         let c = &raw.commands;
         let role_name = raw.role.name();
         let mut need = |ok: bool, what: &str| {
@@ -440,7 +476,141 @@ impl Profile {
             mode_words: raw.mode_words,
             ranges,
             protection: raw.protection,
+            modbus: None,
         })
+    }
+
+    /// A Modbus RTU profile: the register map, and commands that name the
+    /// operations for the bridge.
+    fn from_modbus(file: &Path, text: &str) -> Result<Profile, InputErrors> {
+        let (raw, map) = crate::modbus::parse(file, text)?;
+        let locate = |needle: &str| {
+            let off = text.find(needle).unwrap_or(0);
+            Location::at(file, text, off)
+        };
+        let mut errors = Vec::new();
+        let ranges = parse_ranges(&raw.ranges, &locate, &mut errors);
+        let has = |op: &str| map.ops.contains_key(op);
+        let set = |op: &str| has(op).then(|| format!("{op} {{value}}"));
+        let get = |op: &str| has(op).then(|| format!("{op}?"));
+        let commands = Commands {
+            identify: "identify?".into(),
+            reset: None,
+            clear: Some("*CLS".into()),
+            set_voltage: set("set_voltage"),
+            get_voltage: get("get_voltage"),
+            set_current: set("set_current"),
+            get_current: get("get_current"),
+            set_power: set("set_power"),
+            get_power: get("get_power"),
+            set_resistance: set("set_resistance"),
+            get_resistance: get("get_resistance"),
+            set_mode: has("set_mode").then(|| "set_mode {mode}".to_string()),
+            get_mode: get("get_mode"),
+            enable: has("enable").then(|| "enable".to_string()),
+            disable: has("disable").then(|| "disable".to_string()),
+            enabled_query: get("enabled_query"),
+            measure_voltage_current: None,
+            measure_voltage: "measure_voltage?".into(),
+            measure_current: get("measure_current"),
+            measure_power: get("measure_power"),
+            measure_temperature: get("measure_temperature"),
+            error_query: Some("error?".into()),
+        };
+        let mode_words = raw.mode_words.as_ref().map(|w| {
+            let word = |k: &str| w.get(k).map(|v| v.to_string()).unwrap_or_default();
+            ModeWords {
+                voltage: w.get("voltage").map(|v| v.to_string()),
+                current: word("current"),
+                power: word("power"),
+                resistance: word("resistance"),
+            }
+        });
+        let protection = Protection {
+            set_over_voltage: set("set_over_voltage"),
+            get_over_voltage: get("get_over_voltage"),
+            set_over_current: set("set_over_current"),
+            get_over_current: get("get_over_current"),
+            set_under_voltage: set("set_under_voltage"),
+            get_under_voltage: get("get_under_voltage"),
+            set_voltage_on: set("set_voltage_on"),
+            get_voltage_on: get("get_voltage_on"),
+            clear: has("clear").then(|| "clear".to_string()),
+            tripped_query: get("tripped_query"),
+            trip_bits: raw.trip_bits.clone(),
+        };
+        let role_name = raw.role.name();
+        let mut need = |ok: bool, what: &str| {
+            if !ok {
+                errors.push(LocatedError {
+                    location: locate("[registers]"),
+                    message: format!("a {role_name} profile needs the register registers.{what}"),
+                });
+            }
+        };
+        need(has("measure_voltage"), "measure_voltage");
+        if raw.role != ProfileRole::Meter {
+            for op in ["enable", "disable", "measure_current"] {
+                need(has(op), op);
+            }
+        }
+        if matches!(raw.role, ProfileRole::Source | ProfileRole::SourceSink) {
+            need(has("set_voltage"), "set_voltage");
+            need(has("set_current"), "set_current");
+        }
+        if matches!(raw.role, ProfileRole::Load | ProfileRole::SourceSink) {
+            need(has("set_current"), "set_current");
+            need(has("set_mode"), "set_mode");
+            let words = raw.mode_words.as_ref();
+            for m in ["current", "power", "resistance"] {
+                if !words.is_some_and(|w| w.contains_key(m)) {
+                    errors.push(LocatedError {
+                        location: locate("name"),
+                        message: format!("a {role_name} profile needs mode_words.{m}"),
+                    });
+                }
+            }
+        }
+        if !errors.is_empty() {
+            return Err(InputErrors(errors));
+        }
+        let read_back = ["get_voltage", "get_current"].iter().any(|o| has(o));
+        Ok(Profile {
+            name: raw.name,
+            role: raw.role,
+            transport: Transport {
+                write_termination: "\n".into(),
+                read_termination: "\n".into(),
+                timeout_ms: map.session_timeout_ms(),
+                delay_ms: 0,
+            },
+            session: SessionSetup {
+                init: Vec::new(),
+                safe_state: vec!["disable".into()],
+                check_errors_after_set: true,
+                read_back,
+                settle_ms: 0,
+                poll_errors: true,
+            },
+            commands,
+            mode_words,
+            ranges,
+            protection,
+            modbus: Some(std::sync::Arc::new(map)),
+        })
+    }
+
+    /// Set the reply timeout from a bench file: for a Modbus instrument,
+    /// one transaction's, with the session waiting for every try.
+    pub fn set_timeout_ms(&mut self, ms: u64) {
+        match self.modbus.as_mut() {
+            Some(m) => {
+                let m = std::sync::Arc::make_mut(m);
+                m.line.timeout_ms = ms;
+                self.transport.timeout_ms = m.session_timeout_ms();
+            }
+            None => self.transport.timeout_ms = ms,
+        }
     }
 
     /// The framing of this profile's sessions.
@@ -609,5 +779,59 @@ mod tests {
         let bad = GENERIC_LOAD.replace("tripped_query = \"STAT:QUES:COND?\"\n", "");
         let e = Profile::from_toml(Path::new("p.toml"), &bad).unwrap_err();
         assert!(e.to_string().contains("go together"), "{e}");
+    }
+
+    /// The shipped Modbus profiles parse into operations for the bridge;
+    /// their mistakes are located and say what was expected.
+    #[test]
+    fn modbus_profiles_map_operations_to_registers() {
+        let p = Profile::builtin_named("generic-modbus-load").unwrap();
+        let map = p.modbus.as_ref().unwrap();
+        assert_eq!(map.line.slave, 2);
+        assert_eq!(map.ops["set_resistance"].words, 2);
+        assert_eq!(
+            p.commands.set_current.as_deref(),
+            Some("set_current {value}")
+        );
+        assert_eq!(p.session.safe_state, vec!["disable".to_string()]);
+        assert_eq!(p.mode_words.as_ref().unwrap().power, "2");
+        assert!(p.protection.set_under_voltage.is_some());
+        assert_eq!(p.transport.timeout_ms, map.session_timeout_ms());
+        let mut q = p.clone();
+        q.set_timeout_ms(300);
+        assert_eq!(q.modbus.as_ref().unwrap().line.timeout_ms, 300);
+        assert_eq!(q.transport.timeout_ms, (300 + 2) + 200);
+        let src = Profile::builtin_named("generic-modbus-source").unwrap();
+        assert_eq!(src.role, ProfileRole::Source);
+        let at = |bad: &str| {
+            Profile::from_toml(Path::new("m.toml"), bad)
+                .unwrap_err()
+                .to_string()
+        };
+        let e = at(&GENERIC_MODBUS_LOAD.replace(
+            "set_current = { function = 6,",
+            "set_current = { function = 4,",
+        ));
+        assert!(
+            e.starts_with("m.toml:19:1: registers.set_current: function 4 cannot write"),
+            "{e}"
+        );
+        let e =
+            at(&GENERIC_MODBUS_LOAD
+                .replace("register = 0x0005, value = 1 }", "register = 0x0005 }"));
+        assert!(
+            e.contains("registers.enable: needs the value it writes"),
+            "{e}"
+        );
+        let e = at(&GENERIC_MODBUS_LOAD.replace("get_mode =", "read_mode ="));
+        assert!(e.contains("registers.read_mode: not an operation"), "{e}");
+        let e = at(&GENERIC_MODBUS_LOAD.replace("slave = 2", "slave = 0"));
+        assert!(e.contains("1 to 247"), "{e}");
+        let e = at(&GENERIC_MODBUS_LOAD
+            .replace("words = 2 }\nget_resistance", "words = 3 }\nget_resistance"));
+        assert!(e.contains("words must be 1 or 2"), "{e}");
+        let e =
+            at(&GENERIC_SOURCE.replace("role = \"source\"", "role = \"source\"\nkind = \"can\""));
+        assert!(e.contains("expected \"scpi\" or \"modbus-rtu\""), "{e}");
     }
 }

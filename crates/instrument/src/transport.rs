@@ -228,6 +228,21 @@ fn link_err(name: &str, message: String) -> InstrumentError {
     }
 }
 
+/// Open the link of an instrument with its profile: a Modbus RTU
+/// instrument's link carries its operations through the Modbus bridge.
+pub async fn open_for(
+    name: &str,
+    spec: &LinkSpec,
+    profile: &super::profile::Profile,
+) -> Result<Link, InstrumentError> {
+    let timeout = Duration::from_millis(profile.transport.timeout_ms);
+    let link = open(name, spec, timeout).await?;
+    Ok(match &profile.modbus {
+        Some(map) => super::modbus::bridge(link, std::sync::Arc::clone(map)),
+        None => link,
+    })
+}
+
 /// Open a link. `name` is the instrument's role, for messages.
 pub async fn open(name: &str, spec: &LinkSpec, timeout: Duration) -> Result<Link, InstrumentError> {
     match spec {

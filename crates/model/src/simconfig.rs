@@ -177,16 +177,20 @@ pub enum FaultKind {
     /// From the fault on, level settings are accepted without error but
     /// do not take (the read-back shows the old value).
     WrongReadBack,
+    /// From the fault on, every Modbus reply carries a wrong CRC (on an
+    /// SCPI link, a garbled reply).
+    BadCrc,
 }
 
 impl FaultKind {
-    pub const ALL: [FaultKind; 6] = [
+    pub const ALL: [FaultKind; 7] = [
         FaultKind::NoReply,
         FaultKind::Garbage,
         FaultKind::Slow,
         FaultKind::Disconnect,
         FaultKind::Error,
         FaultKind::WrongReadBack,
+        FaultKind::BadCrc,
     ];
     pub fn name(self) -> &'static str {
         match self {
@@ -196,6 +200,7 @@ impl FaultKind {
             FaultKind::Disconnect => "disconnect",
             FaultKind::Error => "error",
             FaultKind::WrongReadBack => "wrong-read-back",
+            FaultKind::BadCrc => "bad-crc",
         }
     }
 }

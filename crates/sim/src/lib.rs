@@ -6,6 +6,7 @@
 
 pub mod battery;
 pub mod bench;
+pub mod modbus_slave;
 pub mod serve;
 pub mod server;
 

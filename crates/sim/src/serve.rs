@@ -7,6 +7,7 @@
 //! byte), which a pseudo-terminal by itself does not.
 
 use super::bench::SimBench;
+use super::modbus_slave::{take_request, Reply as ModbusReply, Slave};
 use super::server::{SimInstrument, SimRole};
 use super::{SimConfig, SimHandle};
 use engine::clock::Clock;
@@ -33,6 +34,9 @@ pub enum Endpoint {
 pub struct ServeOptions {
     /// Emulate a serial line of this baud rate (10 bits per byte).
     pub baud: Option<u32>,
+    /// Speak Modbus RTU with the shipped example register maps instead of
+    /// SCPI (source and load).
+    pub modbus: bool,
 }
 
 /// One served role and the link address a client uses.
@@ -230,6 +234,77 @@ fn serve_lines<R: Read, W: Write>(
     }
 }
 
+/// Handle the bytes of one connection as a Modbus RTU slave. Returns
+/// `Err` when the instrument drops the link (a disconnect fault).
+fn serve_modbus<R: Read, W: Write>(
+    reader: &mut R,
+    writer: &mut W,
+    inst: &Arc<Mutex<SimInstrument>>,
+    shared: &Shared,
+    opts: &ServeOptions,
+    slave: &Slave,
+) -> io::Result<()> {
+    let mut pending: Vec<u8> = Vec::new();
+    let mut buf = [0u8; 512];
+    let mut can_write = true;
+    loop {
+        let n = reader.read(&mut buf)?;
+        if n == 0 {
+            return Ok(());
+        }
+        pending.extend_from_slice(&buf[..n]);
+        // A receiver that never finds a frame does not grow without bound.
+        if pending.len() > 4096 {
+            pending.drain(..pending.len() - 512);
+        }
+        while let Some(req) = take_request(&mut pending) {
+            wire_sleep(opts.baud, req.len());
+            let reply = {
+                let mut g = match inst.lock() {
+                    Ok(g) => g,
+                    Err(p) => p.into_inner(),
+                };
+                let r = slave.handle(&mut g, &req);
+                shared.record(&mut g);
+                r
+            };
+            let out = match reply {
+                ModbusReply::Silence => continue,
+                ModbusReply::Disconnect => {
+                    return Err(io::Error::new(
+                        io::ErrorKind::ConnectionReset,
+                        "simulated disconnect",
+                    ))
+                }
+                ModbusReply::Frame(f) => f,
+                ModbusReply::Late(f, d) => {
+                    std::thread::sleep(d);
+                    f
+                }
+            };
+            wire_sleep(opts.baud, out.len());
+            if can_write && writer.write_all(&out).and_then(|_| writer.flush()).is_err() {
+                can_write = false;
+            }
+        }
+    }
+}
+
+/// One connection, in the protocol the server speaks.
+fn serve_conn<R: Read, W: Write>(
+    reader: &mut R,
+    writer: &mut W,
+    inst: &Arc<Mutex<SimInstrument>>,
+    shared: &Shared,
+    opts: &ServeOptions,
+    slave: Option<&Slave>,
+) -> io::Result<()> {
+    match slave {
+        Some(s) => serve_modbus(reader, writer, inst, shared, opts, s),
+        None => serve_lines(reader, writer, inst, shared, opts),
+    }
+}
+
 #[cfg(unix)]
 fn set_raw(fd: &std::os::fd::OwnedFd) -> io::Result<()> {
     use nix::sys::termios::{cfmakeraw, tcgetattr, tcsetattr, SetArg};
@@ -312,6 +387,26 @@ pub fn serve(
     }
     let mut served = Vec::new();
     for (role, endpoint) in roles {
+        let slave = if opts.modbus {
+            let profile_role = match role {
+                SimRole::Source => instrument::profile::ProfileRole::Source,
+                SimRole::Load => instrument::profile::ProfileRole::Load,
+                other => {
+                    return Err(io::Error::new(
+                        io::ErrorKind::Unsupported,
+                        format!(
+                        "--modbus serves a source and a load; there is no Modbus map for the {}",
+                        role_name(*other)
+                    ),
+                    ))
+                }
+            };
+            Some(Arc::new(Slave::for_role(profile_role).ok_or_else(
+                || io::Error::other("the shipped Modbus profile is missing"),
+            )?))
+        } else {
+            None
+        };
         let inst = Arc::new(Mutex::new(SimInstrument::new(
             Arc::clone(&bench),
             *role,
@@ -338,12 +433,20 @@ pub fn serve(
                             continue;
                         };
                         let mut writer = stream;
-                        let _ = serve_lines(&mut reader, &mut writer, &inst, &shared, &opts);
+                        let _ = serve_conn(
+                            &mut reader,
+                            &mut writer,
+                            &inst,
+                            &shared,
+                            &opts,
+                            slave.as_deref(),
+                        );
                         let _ = writer.shutdown(std::net::Shutdown::Both);
                     }
                 });
             }
             Endpoint::Pty { symlink } => {
+                let modbus = slave.clone();
                 let (tx, rx) = mpsc::channel::<io::Result<PathBuf>>();
                 let symlink = symlink.clone();
                 std::thread::spawn(move || {
@@ -380,7 +483,14 @@ pub fn serve(
                         // Returns only on a simulated disconnect (or a
                         // failed pseudo-terminal): the device then goes
                         // away and a new one takes its place.
-                        let _ = serve_lines(&mut reader, &mut writer, &inst, &shared, &opts);
+                        let _ = serve_conn(
+                            &mut reader,
+                            &mut writer,
+                            &inst,
+                            &shared,
+                            &opts,
+                            modbus.as_deref(),
+                        );
                         drop(slave);
                         drop(writer);
                         drop(reader);
@@ -418,8 +528,10 @@ pub fn role_name(role: SimRole) -> &'static str {
 }
 
 /// The built-in profile for a served role.
-pub fn role_profile(role: SimRole) -> &'static str {
+pub fn role_profile(role: SimRole, modbus: bool) -> &'static str {
     match role {
+        SimRole::Source if modbus => "generic-modbus-source",
+        SimRole::Load if modbus => "generic-modbus-load",
         SimRole::Source => "generic-scpi-source",
         SimRole::Load => "generic-scpi-load",
         SimRole::SourceSink => "generic-scpi-source-sink",
@@ -428,7 +540,7 @@ pub fn role_profile(role: SimRole) -> &'static str {
 }
 
 /// A bench file for the served endpoints (one station named `sim`).
-pub fn bench_file_text(served: &[Served], timeout: Option<&str>) -> String {
+pub fn bench_file_text(served: &[Served], timeout: Option<&str>, modbus: bool) -> String {
     let mut s = String::from(
         "# Written by `packbench sim serve`: the simulated instruments as a bench.\n[[station]]\nname = \"sim\"\n",
     );
@@ -440,7 +552,7 @@ pub fn bench_file_text(served: &[Served], timeout: Option<&str>) -> String {
         s.push_str(&format!(
             "[station.{table}]\nlink = \"{}\"\nprofile = \"{}\"\n",
             sv.link,
-            role_profile(sv.role)
+            role_profile(sv.role, modbus)
         ));
         if let Some(t) = timeout {
             s.push_str(&format!("timeout = \"{t}\"\n"));

@@ -918,36 +918,9 @@ fn is_level(cmd: Cmd) -> bool {
     )
 }
 
-impl LineResponder for SimInstrument {
-    fn respond(&mut self, line: &str) -> Result<Response, io::Error> {
-        if let Ok(mut r) = self.received.lock() {
-            r.push(line.to_string());
-        }
-        let bench = Arc::clone(&self.bench);
-        let mut b = match bench.lock() {
-            Ok(g) => g,
-            Err(p) => p.into_inner(),
-        };
-        b.advance();
-        self.update_status(&mut b);
-        let now = b.now();
-        let faults = self.faults_now(&b, now);
-        let has = |k: FaultKind| faults.iter().find(|f| f.kind == k);
-        if has(FaultKind::Disconnect).is_some() {
-            return Err(io::Error::new(
-                io::ErrorKind::ConnectionReset,
-                "simulated disconnect",
-            ));
-        }
-        if let Some(f) = has(FaultKind::Error) {
-            let code = f.error_code;
-            self.esr |= 1 << 3;
-            if self.errors.len() < QUEUE_DEPTH {
-                self.errors
-                    .push_back((code, "Device-specific error; injected fault"));
-            }
-        }
-        let drop_levels = has(FaultKind::WrongReadBack).is_some();
+impl SimInstrument {
+    /// Run a message's units on the bench; the replies, in order.
+    fn run_units(&mut self, b: &mut SimBench, line: &str, drop_levels: bool) -> Vec<String> {
         let mut replies = Vec::new();
         for unit in parse_message(line) {
             match unit {
@@ -956,7 +929,7 @@ impl LineResponder for SimInstrument {
                         // Accepted, silently not applied.
                         continue;
                     }
-                    match self.execute(&mut b, u.cmd, u.query, &u.params) {
+                    match self.execute(b, u.cmd, u.query, &u.params) {
                         Ok(Some(r)) => replies.push(r),
                         Ok(None) => {}
                         Err(e) => {
@@ -975,22 +948,81 @@ impl LineResponder for SimInstrument {
                 }
             }
         }
+        replies
+    }
+
+    /// One message, with the link faults in effect applied; also returns
+    /// those faults (a Modbus front end frames its reply by them).
+    pub fn respond_with(&mut self, line: &str) -> (Result<Response, io::Error>, Vec<LinkFault>) {
+        if let Ok(mut r) = self.received.lock() {
+            r.push(line.to_string());
+        }
+        let bench = Arc::clone(&self.bench);
+        let mut b = match bench.lock() {
+            Ok(g) => g,
+            Err(p) => p.into_inner(),
+        };
+        b.advance();
+        self.update_status(&mut b);
+        let now = b.now();
+        let faults = self.faults_now(&b, now);
+        let kinds = faults.clone();
+        let has = |k: FaultKind| faults.iter().find(|f| f.kind == k);
+        if has(FaultKind::Disconnect).is_some() {
+            return (
+                Err(io::Error::new(
+                    io::ErrorKind::ConnectionReset,
+                    "simulated disconnect",
+                )),
+                kinds,
+            );
+        }
+        if let Some(f) = has(FaultKind::Error) {
+            let code = f.error_code;
+            self.esr |= 1 << 3;
+            if self.errors.len() < QUEUE_DEPTH {
+                self.errors
+                    .push_back((code, "Device-specific error; injected fault"));
+            }
+        }
+        let drop_levels = has(FaultKind::WrongReadBack).is_some();
+        let replies = self.run_units(&mut b, line, drop_levels);
         self.update_status(&mut b);
         if replies.is_empty() || has(FaultKind::NoReply).is_some() {
-            return Ok(Response::Nothing);
+            return (Ok(Response::Nothing), kinds);
         }
-        let reply = if has(FaultKind::Garbage).is_some() {
+        let garbled = has(FaultKind::Garbage).is_some() || has(FaultKind::BadCrc).is_some();
+        let reply = if garbled {
             "#@!garbled".to_string()
         } else {
             replies.join(";")
         };
-        match has(FaultKind::Slow) {
-            Some(f) => Ok(Response::Late(
-                reply,
-                std::time::Duration::from_millis(f.delay_ms),
-            )),
-            None => Ok(Response::Reply(reply)),
-        }
+        let r = match has(FaultKind::Slow) {
+            Some(f) => Response::Late(reply, std::time::Duration::from_millis(f.delay_ms)),
+            None => Response::Reply(reply),
+        };
+        (Ok(r), kinds)
+    }
+
+    /// A message run with no link fault, answered in full (the Modbus front
+    /// end's own reads of the error queue and of values).
+    pub fn quiet(&mut self, line: &str) -> Vec<String> {
+        let bench = Arc::clone(&self.bench);
+        let mut b = match bench.lock() {
+            Ok(g) => g,
+            Err(p) => p.into_inner(),
+        };
+        b.advance();
+        self.update_status(&mut b);
+        let r = self.run_units(&mut b, line, false);
+        self.update_status(&mut b);
+        r
+    }
+}
+
+impl LineResponder for SimInstrument {
+    fn respond(&mut self, line: &str) -> Result<Response, io::Error> {
+        self.respond_with(line).0
     }
 }
 
