@@ -723,3 +723,40 @@ fn the_bms_is_compared_with_the_measurement() {
     );
     assert!(!results.join("BMS-2").exists());
 }
+
+/// A station task that panics is a run failure (exit 1), not bad input,
+/// and the live display does not wait for it forever: its board is marked
+/// failed once the task is gone (the display ends when every board is
+/// final). Lines mode, so the display loop really runs.
+#[test]
+fn a_panicked_station_is_a_failure_and_the_display_ends() {
+    use packbench::session::live::{Board, BoardState, DisplayMode};
+    let boards = vec![Board::new("bay-1", "FR-P1")];
+    let (tx, rx) = std::sync::mpsc::channel();
+    let b = boards.clone();
+    std::thread::spawn(move || {
+        let task: packbench::cli::run::StationTask = Box::new(|_, _| {
+            Box::pin(async {
+                if std::hint::black_box(true) {
+                    panic!("a station task panicked");
+                }
+                unreachable!()
+            })
+        });
+        let r = packbench::cli::run::run_stations(b, DisplayMode::Lines(0.05), vec![task]);
+        // What the test needs: was it bad input, and what it says.
+        let r = r.map(|v| {
+            v.into_iter()
+                .map(|x| x.map(|_| ()).map_err(|e| (e.is_input(), e.to_string())))
+                .collect::<Vec<_>>()
+        });
+        let _ = tx.send(r);
+    });
+    let results = rx
+        .recv_timeout(std::time::Duration::from_secs(20))
+        .expect("the display waited for a station that is gone")
+        .expect("the runtime starts");
+    let (input, text) = results.into_iter().next().unwrap().unwrap_err();
+    assert!(!input, "{text}");
+    assert_eq!(boards[0].get().state, BoardState::Failed);
+}

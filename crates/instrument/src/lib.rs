@@ -10,6 +10,7 @@
 pub mod command;
 pub mod link;
 pub mod modbus;
+pub mod modbus_map;
 pub mod profile;
 pub mod scpi;
 pub mod transport;

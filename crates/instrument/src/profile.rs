@@ -2,6 +2,7 @@
 //! logical operation to a command template and declares ranges, terminator
 //! and timeouts. Two generic SCPI-1999 profiles are built in.
 
+use crate::modbus_map;
 use model::location::{toml_error, InputErrors, LocatedError, Location};
 use model::units;
 use serde::Deserialize;
@@ -260,7 +261,7 @@ pub struct ModeWords {
 
 #[derive(Debug, Clone, Default, Deserialize)]
 #[serde(deny_unknown_fields)]
-pub(crate) struct RawRanges {
+struct RawRanges {
     voltage_max: Option<String>,
     current_max: Option<String>,
     power_max: Option<String>,
@@ -294,8 +295,26 @@ pub struct Ranges {
     pub resistance_max_ohm: Option<f64>,
 }
 
+/// A Modbus RTU profile as written.
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawModbusProfile {
+    name: String,
+    role: ProfileRole,
+    #[allow(dead_code)]
+    kind: String,
+    modbus: modbus_map::Line,
+    registers: std::collections::BTreeMap<String, modbus_map::Register>,
+    /// Mode → the word written to `set_mode`.
+    mode_words: Option<std::collections::BTreeMap<String, u16>>,
+    #[serde(default)]
+    ranges: RawRanges,
+    #[serde(default)]
+    trip_bits: std::collections::BTreeMap<String, u8>,
+}
+
 /// Declared ranges in SI units; bad ones are errors, located.
-pub(crate) fn parse_ranges(
+fn parse_ranges(
     raw: &RawRanges,
     locate: &dyn Fn(&str) -> Location,
     errors: &mut Vec<LocatedError>,
@@ -353,7 +372,7 @@ pub struct Profile {
     pub protection: Protection,
     /// A Modbus RTU instrument's register map: the commands above are then
     /// the operations the Modbus bridge carries.
-    pub modbus: Option<std::sync::Arc<crate::modbus::Map>>,
+    pub modbus: Option<std::sync::Arc<modbus_map::Map>>,
 }
 
 impl Profile {
@@ -483,12 +502,20 @@ impl Profile {
     /// A Modbus RTU profile: the register map, and commands that name the
     /// operations for the bridge.
     fn from_modbus(file: &Path, text: &str) -> Result<Profile, InputErrors> {
-        let (raw, map) = crate::modbus::parse(file, text)?;
+        let raw: RawModbusProfile =
+            toml::from_str(text).map_err(|e| InputErrors(vec![toml_error(file, text, &e)]))?;
         let locate = |needle: &str| {
             let off = text.find(needle).unwrap_or(0);
             Location::at(file, text, off)
         };
-        let mut errors = Vec::new();
+        let mut errors = modbus_map::check(&raw.modbus, &raw.registers, &raw.trip_bits, &locate);
+        if !errors.is_empty() {
+            return Err(InputErrors(errors));
+        }
+        let map = modbus_map::Map {
+            line: raw.modbus.clone(),
+            ops: raw.registers.clone(),
+        };
         let ranges = parse_ranges(&raw.ranges, &locate, &mut errors);
         let has = |op: &str| map.ops.contains_key(op);
         let set = |op: &str| has(op).then(|| format!("{op} {{value}}"));
@@ -800,7 +827,7 @@ mod tests {
         let mut q = p.clone();
         q.set_timeout_ms(300);
         assert_eq!(q.modbus.as_ref().unwrap().line.timeout_ms, 300);
-        assert_eq!(q.transport.timeout_ms, (300 + 2) + 200);
+        assert_eq!(q.transport.timeout_ms, (300 + 2) + 100);
         let src = Profile::builtin_named("generic-modbus-source").unwrap();
         assert_eq!(src.role, ProfileRole::Source);
         let at = |bad: &str| {

@@ -8,7 +8,7 @@
 
 use super::server::SimInstrument;
 use instrument::link::Response;
-use instrument::modbus::{Map, Register};
+use instrument::modbus_map::{Map, Register};
 use instrument::profile::{Profile, ProfileRole};
 use model::simconfig::{FaultKind, LinkFault};
 use std::sync::Arc;
