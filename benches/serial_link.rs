@@ -185,8 +185,16 @@ fn main() {
     );
     // The same from the trace: the time each sample's first query left.
     let trace = std::fs::read_to_string(report.run_dir.join(record::TRACE_LOG)).unwrap_or_default();
-    let starts: Vec<f64> = trace
-        .lines()
+    // The samples' grid starts with the first step, after the preflight
+    // has read the zeros and programmed the instruments' protection: the
+    // queries before the last protection setting are not samples.
+    let lines: Vec<&str> = trace.lines().collect();
+    let after_backstop = lines
+        .iter()
+        .rposition(|l| l.contains(":PROT"))
+        .map_or(0, |i| i + 1);
+    let starts: Vec<f64> = lines[after_backstop..]
+        .iter()
         .filter(|l| l.ends_with(&format!("load > {vi}")))
         .filter_map(|l| l.split(' ').next()?.parse().ok())
         .collect();
