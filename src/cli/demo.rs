@@ -342,7 +342,12 @@ pub fn run_demo(out: &Path) -> Result<DemoOutcome, DemoError> {
         pack_reports.push(path);
         histories.push(h);
     }
-    let fleet = history::fleet(&results, today, 92, threshold)?;
+    let fleet = history::fleet(
+        &results,
+        today,
+        &analysis::fade::schedule::Schedule::interval(92),
+        threshold,
+    )?;
     let fleet_report = results.join("fleet.html");
     let html = html::fleet_report(
         &fleet,

@@ -52,6 +52,10 @@ pub struct FleetArgs {
     /// A test is overdue after this long: days or weeks, e.g. 92d or 13w.
     #[arg(long, default_value = "92d")]
     pub interval: String,
+    /// The grading/fleet policy (TOML) whose [schedule] says when packs
+    /// are due: the shop's interval, or the IEEE 450 rules for lead-acid.
+    #[arg(long)]
+    pub policy: Option<PathBuf>,
     /// The date to judge overdue tests against (default: today, UTC).
     #[arg(long)]
     pub today: Option<String>,
@@ -127,7 +131,18 @@ pub fn cmd_fleet(a: FleetArgs) -> anyhow::Result<ExitCode> {
         Some(d) => parse_date(d)?,
         None => chrono::Utc::now().date_naive(),
     };
-    let f = history::fleet(&a.results, today, interval, threshold)?;
+    let schedule = match &a.policy {
+        Some(p) => {
+            let text =
+                model::procedure::read_text(p).map_err(crate::session::error::input_file_err(p))?;
+            analysis::fade::grade::Policy::from_toml(p, &text)
+                .map_err(RunError::from)?
+                .schedule
+        }
+        None => None,
+    }
+    .unwrap_or_else(|| analysis::fade::schedule::Schedule::interval(interval));
+    let f = history::fleet(&a.results, today, &schedule, threshold)?;
     if let Some(path) = &a.html {
         let mut hs = Vec::new();
         for r in &f.rows {

@@ -383,7 +383,11 @@ fn demo_then_fade_fleet_and_report_on_its_results() {
     let o = packbench(&["fleet", r, "--today", "2026-11-23"]);
     let s = text(&o.stdout);
     assert_eq!(o.status.code(), Some(0), "{}", text(&o.stderr));
-    assert_eq!(s.lines().count(), 10, "{s}");
+    // The table (title, header, 8 packs), then why each overdue pack is due.
+    let (why, table): (Vec<&str>, Vec<&str>) = s.lines().partition(|l| l.contains(": due "));
+    assert_eq!(table.len(), 10, "{s}");
+    let overdue = table.iter().filter(|l| l.contains("OVERDUE")).count();
+    assert_eq!(why.len(), overdue, "{s}");
     let o = packbench(&["fleet", r, "--today", "2026-11-23", "--csv"]);
     let s = text(&o.stdout);
     assert!(s.starts_with("rank,pack_id,chemistry"));
@@ -530,7 +534,7 @@ fn end_of_life_reached_or_past_is_said() {
     let out = packbench(&["fleet", r, "--today", "2024-01-01", "--interval", "13w"]);
     assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
     let said = text(&out.stdout);
-    assert!(said.contains("a test is due every 91 days"), "{said}");
+    assert!(said.contains("tests due by every 91 days"), "{said}");
     let line = |id: &str| said.lines().find(|l| l.contains(id)).unwrap().to_string();
     assert!(
         line("WORN-1").contains("BELOW-EOL-SINCE-2024-07-01"),
@@ -759,4 +763,85 @@ fn a_panicked_station_is_a_failure_and_the_display_ends() {
     let (input, text) = results.into_iter().next().unwrap().unwrap_err();
     assert!(!input, "{text}");
     assert_eq!(boards[0].get().state, BoardState::Failed);
+}
+
+/// `fleet --policy` with the shipped IEEE 450 schedule: a lead-acid string
+/// under 90 % of rating is due a year after its last test and says which
+/// rule made it so; a lithium pack beside it keeps the shop's interval; a
+/// string under 80 % is flagged for replacement.
+#[test]
+fn fleet_due_dates_follow_the_policys_ieee_450_schedule() {
+    let dir = tempfile::tempdir().unwrap();
+    let results = dir.path().join("results");
+    let r = results.to_str().unwrap();
+    let lead = "chemistry = \"lead-acid\"\nseries = 24\nrated_capacity = \"100Ah\"\n";
+    let li = "chemistry = \"li-ion\"\nseries = 10\nrated_capacity = \"10Ah\"\n";
+    for (id, spec, hist) in [
+        (
+            "FR-S01",
+            lead,
+            "date,cycles,capacity_ah\n2021-06-01,10,92\n2023-01-10,40,88\n",
+        ),
+        (
+            "FR-S02",
+            lead,
+            "date,cycles,capacity_ah\n2021-06-01,10,92\n2023-06-01,40,79\n",
+        ),
+        (
+            "FR-L01",
+            li,
+            "date,cycles,capacity_ah\n2024-01-01,100,9.5\n",
+        ),
+    ] {
+        let p = results.join(id);
+        std::fs::create_dir_all(&p).unwrap();
+        std::fs::write(p.join("pack.toml"), spec).unwrap();
+        std::fs::write(p.join("history.csv"), hist).unwrap();
+    }
+    let out = packbench(&[
+        "fleet",
+        r,
+        "--today",
+        "2024-06-01",
+        "--policy",
+        "policies/stationary-lead-acid.toml",
+    ]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let said = text(&out.stdout);
+    assert!(
+        said.contains("tests due by IEEE 450 for lead-acid"),
+        "{said}"
+    );
+    assert!(
+        said.contains("FR-S01: due since 2024-01-10: IEEE 450: every year: capacity 88.0 % of rating (under 90 %)"),
+        "{said}"
+    );
+    assert!(
+        said.contains("FR-S02: due since 2024-05-31: IEEE 450: replace: capacity 79.0 % of rating (under 80 %)"),
+        "{said}"
+    );
+    assert!(
+        said.contains(
+            "FR-L01: due since 2024-04-02: the shop's interval: 92 days after the last test"
+        ),
+        "{said}"
+    );
+    let line = |id: &str| said.lines().find(|l| l.contains(id)).unwrap().to_string();
+    assert!(line("FR-S02").contains("REPLACE"), "{said}");
+    // A schedule the policy cannot hold is refused with its place.
+    let bad = dir.path().join("bad.toml");
+    std::fs::write(
+        &bad,
+        std::fs::read_to_string("policies/stationary-lead-acid.toml")
+            .unwrap()
+            .replace("service_life = \"20y\"", "service_life = \"long\""),
+    )
+    .unwrap();
+    let out = packbench(&["fleet", r, "--policy", bad.to_str().unwrap()]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(
+        text(&out.stderr).contains("schedule.service_life = \"long\": expected a duration"),
+        "{}",
+        text(&out.stderr)
+    );
 }

@@ -293,7 +293,7 @@ fn demo_fleet_projections_match_the_simulated_ageing() {
     let again = history::fleet(
         &out.results,
         packbench::cli::demo::scenario_today(),
-        92,
+        &analysis::fade::schedule::Schedule::interval(92),
         80.0,
     )
     .unwrap();

@@ -316,7 +316,7 @@ pub fn capacity_curves(h: &PackHistory) -> Vec<(String, Vec<(f64, f64)>)> {
 pub fn fleet(
     results: &Path,
     today: NaiveDate,
-    interval_days: i64,
+    schedule: &analysis::fade::schedule::Schedule,
     threshold_pct: f64,
 ) -> Result<analysis::fade::fleet::Fleet, HistoryError> {
     let mut histories = Vec::new();
@@ -326,7 +326,7 @@ pub fn fleet(
     Ok(analysis::fade::fleet::rank(
         &histories,
         today,
-        interval_days,
+        schedule,
         threshold_pct,
     ))
 }

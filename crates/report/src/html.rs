@@ -875,18 +875,23 @@ pub fn fleet_report(fleet: &Fleet, histories: &[PackHistory], title: &str) -> St
     let mut b = String::new();
     let _ = write!(
         b,
-        "<h1>{}</h1><p class=\"sub\">{} packs · as of {} · a test is due every {} days · end of life at {} % of rated</p>",
+        "<h1>{}</h1><p class=\"sub\">{} packs · as of {} · tests due by {} · end of life at {} % of rated</p>",
         escape(title),
         fleet.rows.len(),
         fleet.today,
-        fleet.interval_days,
+        escape(&fleet.schedule),
         fleet.threshold_pct
     );
     let _ = write!(b, "<table><tr><th>rank</th><th class=\"l\">pack</th><th class=\"l\">chemistry</th><th>tests</th><th class=\"l\">last test</th><th>cycles</th><th>SOH (%)</th><th>resistance (mΩ)</th><th>growth (%)</th><th>fade (%/100 cyc)</th><th>EOL cycles</th><th class=\"l\">EOL date</th><th class=\"l\">grade</th><th class=\"l\">flags</th></tr>");
     for r in &fleet.rows {
         let mut flags = Vec::new();
-        if r.overdue {
-            flags.push("test overdue".to_string());
+        if r.overdue || r.replace {
+            // The rule that made it so (e.g. an IEEE 450 interval).
+            flags.push(if r.overdue {
+                format!("test overdue ({})", r.due_rule)
+            } else {
+                r.due_rule.clone()
+            });
         }
         if r.accelerating {
             flags.push("fade accelerating".to_string());
@@ -913,7 +918,7 @@ pub fn fleet_report(fleet: &Fleet, histories: &[PackHistory], title: &str) -> St
             f(r.eol_cycles, 0),
             r.eol_date.map(|d| d.to_string()).unwrap_or_default(),
             escape(r.grade.as_deref().unwrap_or("")),
-            flags.join(", ")
+            escape(&flags.join(", "))
         );
     }
     let _ = write!(b, "</table>");

@@ -360,10 +360,10 @@ pub fn fleet(f: &analysis::fade::fleet::Fleet) -> String {
     let mut o = String::new();
     let _ = writeln!(
         o,
-        "Fleet as of {} ({} packs; a test is due every {} days; end of life at {} %)",
+        "Fleet as of {} ({} packs; tests due by {}; end of life at {} %)",
         f.today,
         f.rows.len(),
-        f.interval_days,
+        f.schedule,
         f.threshold_pct
     );
     let _ = writeln!(
@@ -388,6 +388,9 @@ pub fn fleet(f: &analysis::fade::fleet::Fleet) -> String {
         let mut flags = Vec::new();
         if r.overdue {
             flags.push("OVERDUE".to_string());
+        }
+        if r.replace {
+            flags.push("REPLACE".to_string());
         }
         if r.accelerating {
             flags.push("ACCELERATING".to_string());
@@ -416,6 +419,15 @@ pub fn fleet(f: &analysis::fade::fleet::Fleet) -> String {
             r.grade.as_deref().unwrap_or("-"),
             flags.join(" ")
         );
+    }
+    // Why each pack that needs attention does.
+    for r in f.rows.iter().filter(|r| r.overdue || r.replace) {
+        let when = match r.due {
+            Some(d) if r.overdue => format!("due since {d}"),
+            Some(d) => format!("due {d}"),
+            None => "due now".into(),
+        };
+        let _ = writeln!(o, "  {}: {when}: {}", r.pack_id, r.due_rule);
     }
     o
 }

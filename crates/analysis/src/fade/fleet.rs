@@ -3,6 +3,7 @@
 //! last test date and whether a test is overdue.
 
 use super::history::PackHistory;
+use super::schedule::Schedule;
 use super::trend::{self, FadeAnalysis, ModelKind};
 use chrono::NaiveDate;
 use model::pack::Chemistry;
@@ -19,6 +20,12 @@ pub struct FleetRow {
     pub last_test: Option<NaiveDate>,
     pub days_since_test: Option<i64>,
     pub overdue: bool,
+    /// When the next test is due (none: now).
+    pub due: Option<NaiveDate>,
+    /// The rule that set the date.
+    pub due_rule: String,
+    /// The schedule's rule says replace the pack (IEEE 450: under 80 %).
+    pub replace: bool,
     pub cycles: Option<f64>,
     pub soh_pct: Option<f64>,
     pub capacity_ah: Option<f64>,
@@ -41,6 +48,8 @@ pub struct FleetRow {
 pub struct Fleet {
     pub today: NaiveDate,
     pub interval_days: i64,
+    /// The schedule the packs are judged by, in words.
+    pub schedule: String,
     pub threshold_pct: f64,
     pub rows: Vec<FleetRow>,
 }
@@ -52,9 +61,15 @@ pub fn resistance_growth_pct(h: &PackHistory) -> Option<f64> {
     Some((latest / reference - 1.0) * 100.0)
 }
 
-pub fn row(h: &PackHistory, fade: &FadeAnalysis, today: NaiveDate, interval_days: i64) -> FleetRow {
+pub fn row(
+    h: &PackHistory,
+    fade: &FadeAnalysis,
+    today: NaiveDate,
+    schedule: &Schedule,
+) -> FleetRow {
     let last = h.latest();
     let days = last.map(|p| (today - p.date).num_days());
+    let due = schedule.due(h, today);
     let slope = |k: ModelKind| {
         fade.models
             .iter()
@@ -70,7 +85,10 @@ pub fn row(h: &PackHistory, fade: &FadeAnalysis, today: NaiveDate, interval_days
         tests: h.points.len(),
         last_test: last.map(|p| p.date),
         days_since_test: days,
-        overdue: days.is_none_or(|d| d > interval_days),
+        overdue: due.overdue,
+        due: due.due,
+        due_rule: due.rule,
+        replace: due.replace,
         cycles: last.map(|p| p.cycles).filter(|c| c.is_finite()),
         soh_pct: last.map(|p| p.soh_pct),
         capacity_ah: last.map(|p| p.capacity_ah),
@@ -91,13 +109,13 @@ pub fn row(h: &PackHistory, fade: &FadeAnalysis, today: NaiveDate, interval_days
 pub fn rank(
     histories: &[PackHistory],
     today: NaiveDate,
-    interval_days: i64,
+    schedule: &Schedule,
     threshold_pct: f64,
 ) -> Fleet {
     let mut rows = Vec::new();
     for h in histories {
         let fade = trend::analyze(h, threshold_pct);
-        rows.push(row(h, &fade, today, interval_days));
+        rows.push(row(h, &fade, today, schedule));
     }
     rows.sort_by(|a, b| {
         b.soh_pct
@@ -110,7 +128,8 @@ pub fn rank(
     }
     Fleet {
         today,
-        interval_days,
+        interval_days: schedule.interval_days,
+        schedule: schedule.name(),
         threshold_pct,
         rows,
     }
@@ -142,6 +161,9 @@ pub fn to_csv(f: &Fleet) -> Result<String, csv::Error> {
         "grade",
         "below_eol_since",
         "eol_date_past",
+        "due",
+        "due_rule",
+        "replace",
     ])?;
     let o = |v: Option<f64>, d: usize| v.map(|x| format!("{x:.d$}")).unwrap_or_default();
     for r in &f.rows {
@@ -168,6 +190,9 @@ pub fn to_csv(f: &Fleet) -> Result<String, csv::Error> {
             r.grade.clone().unwrap_or_default(),
             r.below_eol_since.map(|d| d.to_string()).unwrap_or_default(),
             r.eol_date_past.to_string(),
+            r.due.map(|d| d.to_string()).unwrap_or_default(),
+            r.due_rule.clone(),
+            r.replace.to_string(),
         ])?;
     }
     let bytes = w.into_inner().map_err(|e| e.into_error())?;

@@ -3,6 +3,8 @@
 //! with the reasons for it. The default policy is
 //! `policies/default-grading.toml`.
 
+use super::schedule::{parse_days, Rule, Schedule};
+use chrono::NaiveDate;
 use model::location::{toml_error, InputErrors, LocatedError, Location};
 use model::pack::Chemistry;
 use model::units;
@@ -32,6 +34,102 @@ struct RawPolicy {
     name: String,
     #[serde(default)]
     grade: Vec<Spanned<RawGrade>>,
+    /// When packs are due for their next test (the fleet view).
+    schedule: Option<Spanned<RawSchedule>>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawSchedule {
+    /// "interval" or "ieee-450".
+    rule: Spanned<String>,
+    /// The shop's interval, e.g. "92d" or "13w".
+    interval: Option<Spanned<String>>,
+    /// Expected service life for IEEE 450, e.g. "20y".
+    service_life: Option<Spanned<String>>,
+    /// Pack id → the date it went into service.
+    #[serde(default)]
+    in_service: BTreeMap<String, Spanned<toml::value::Datetime>>,
+}
+
+/// The default interval of the fleet view, days.
+pub const DEFAULT_INTERVAL_DAYS: i64 = 92;
+
+fn schedule(
+    raw: &Spanned<RawSchedule>,
+    file: &Path,
+    text: &str,
+    errors: &mut Vec<LocatedError>,
+) -> Option<Schedule> {
+    let r = raw.get_ref();
+    let at = |span: &std::ops::Range<usize>| Location::of_span(file, text, span);
+    let mut bad = |span: &std::ops::Range<usize>, message: String| {
+        errors.push(LocatedError {
+            location: at(span),
+            message,
+        })
+    };
+    let rule = match r.rule.get_ref().as_str() {
+        "interval" => Rule::Interval,
+        "ieee-450" => Rule::Ieee450,
+        other => {
+            bad(
+                &r.rule.span(),
+                format!("schedule.rule = \"{other}\": expected \"interval\" or \"ieee-450\""),
+            );
+            return None;
+        }
+    };
+    let days = |v: &Spanned<String>,
+                what: &str,
+                bad: &mut dyn FnMut(&std::ops::Range<usize>, String)| {
+        let d = parse_days(v.get_ref());
+        if d.is_none() {
+            bad(
+                &v.span(),
+                format!(
+                    "schedule.{what} = \"{}\": expected a duration in days, weeks or years, e.g. 92d, 13w or 20y",
+                    v.get_ref()
+                ),
+            );
+        }
+        d
+    };
+    let interval_days = match &r.interval {
+        Some(v) => days(v, "interval", &mut bad)?,
+        None => DEFAULT_INTERVAL_DAYS,
+    };
+    let service_life_days = match &r.service_life {
+        Some(v) => Some(days(v, "service_life", &mut bad)?),
+        None if rule == Rule::Ieee450 => {
+            bad(
+                &raw.span(),
+                "schedule.rule = \"ieee-450\" needs service_life, the expected service life (e.g. 20y)".into(),
+            );
+            return None;
+        }
+        None => None,
+    };
+    let mut in_service = BTreeMap::new();
+    for (id, date) in &r.in_service {
+        match date.get_ref().date.and_then(|d| {
+            NaiveDate::from_ymd_opt(i32::from(d.year), u32::from(d.month), u32::from(d.day))
+        }) {
+            Some(d) if date.get_ref().time.is_none() => {
+                in_service.insert(id.clone(), d);
+            }
+            _ => bad(
+                &date.span(),
+                format!("schedule.in_service.{id}: expected a date such as 2021-04-01"),
+            ),
+        }
+    }
+    Some(Schedule {
+        rule,
+        interval_days,
+        service_life_days,
+        in_service,
+    })
 }
 
 /// A percentage threshold, the same for all or per chemistry.
@@ -63,6 +161,8 @@ pub struct GradeRule {
 pub struct Policy {
     pub name: String,
     pub grades: Vec<GradeRule>,
+    /// When packs are due for a test, if the policy says.
+    pub schedule: Option<Schedule>,
 }
 
 /// What a pack is graded on.
@@ -188,12 +288,17 @@ impl Policy {
                 });
             }
         }
+        let schedule = raw
+            .schedule
+            .as_ref()
+            .and_then(|s| schedule(s, file, text, &mut errors));
         if !errors.is_empty() {
             return Err(InputErrors(errors));
         }
         Ok(Policy {
             name: raw.name,
             grades,
+            schedule,
         })
     }
 

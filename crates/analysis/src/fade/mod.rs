@@ -5,4 +5,5 @@
 pub mod fleet;
 pub mod grade;
 pub mod history;
+pub mod schedule;
 pub mod trend;

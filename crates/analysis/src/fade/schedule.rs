@@ -1,0 +1,379 @@
+//! When a pack is due for its next capacity test, and which rule says so.
+//!
+//! Two rules: the shop's own interval (every pack, a fixed number of days
+//! after its last test), and the test-interval rules of IEEE 450 for
+//! stationary vented lead-acid batteries (IEEE Std 450-2002, the
+//! performance-test schedule, as paraphrased in public maintenance pages,
+//! e.g. <http://www.eps-stl.com/?page_id=39>; the standard's own text is not
+//! public):
+//!
+//! - a first performance test within two years of service;
+//! - then at intervals of at most 25 % of the expected service life;
+//! - every year once the battery shows degradation (capacity more than
+//!   10 % below the previous test's, or below 90 % of rating) or has
+//!   reached 85 % of its expected service life; at 85 % of life with at
+//!   least 100 % of rating and no degradation, every two years;
+//! - replace below 80 % of rating.
+//!
+//! Under the IEEE 450 rule, packs of other chemistries keep the shop's
+//! interval.
+
+use super::history::PackHistory;
+use chrono::NaiveDate;
+use model::pack::Chemistry;
+use serde::Serialize;
+use std::collections::BTreeMap;
+
+/// Days in a year of service life (common practice: 365).
+pub const YEAR_DAYS: i64 = 365;
+
+/// Which rule schedules the tests.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum Rule {
+    /// The shop's own interval for every pack.
+    Interval,
+    /// IEEE 450 for lead-acid packs; the shop's interval for the others.
+    Ieee450,
+}
+
+/// The schedule a fleet is judged by.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Schedule {
+    pub rule: Rule,
+    /// The shop's interval, days.
+    pub interval_days: i64,
+    /// Expected service life for the application, days (IEEE 450).
+    pub service_life_days: Option<i64>,
+    /// When each pack went into service; a pack not listed counts from its
+    /// first test.
+    pub in_service: BTreeMap<String, NaiveDate>,
+}
+
+/// When the next test is due, and why.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Due {
+    /// None: due now (no date to count from).
+    pub due: Option<NaiveDate>,
+    pub overdue: bool,
+    /// The rule says replace the pack.
+    pub replace: bool,
+    /// The rule that set the date, in words.
+    pub rule: String,
+}
+
+/// A duration such as `92d`, `13w` or `20y` in days (a year is 365 days).
+pub fn parse_days(s: &str) -> Option<i64> {
+    let s = s.trim();
+    let (num, unit) = s.split_at(s.find(|c: char| c.is_ascii_alphabetic())?);
+    let n: f64 = num.trim().parse().ok()?;
+    let per = match unit.trim() {
+        "d" | "day" | "days" => 1.0,
+        "w" | "week" | "weeks" => 7.0,
+        "y" | "year" | "years" => YEAR_DAYS as f64,
+        _ => return None,
+    };
+    let days = (n * per).round();
+    (n.is_finite() && days >= 1.0 && days <= 100.0 * YEAR_DAYS as f64).then_some(days as i64)
+}
+
+fn add_days(d: NaiveDate, days: i64) -> NaiveDate {
+    d.checked_add_signed(chrono::Duration::days(days))
+        .unwrap_or(NaiveDate::MAX)
+}
+
+impl Schedule {
+    /// The shop's interval for every pack.
+    pub fn interval(days: i64) -> Schedule {
+        Schedule {
+            rule: Rule::Interval,
+            interval_days: days,
+            service_life_days: None,
+            in_service: BTreeMap::new(),
+        }
+    }
+
+    /// The schedule's name for reports.
+    pub fn name(&self) -> String {
+        match self.rule {
+            Rule::Interval => format!("every {} days", self.interval_days),
+            Rule::Ieee450 => format!(
+                "IEEE 450 for lead-acid (service life {} years), every {} days for the others",
+                self.service_life_days.unwrap_or(0) as f64 / YEAR_DAYS as f64,
+                self.interval_days
+            ),
+        }
+    }
+
+    fn shop(&self, h: &PackHistory, today: NaiveDate) -> Due {
+        match h.latest() {
+            Some(last) => {
+                let due = add_days(last.date, self.interval_days);
+                Due {
+                    due: Some(due),
+                    overdue: today > due,
+                    replace: false,
+                    rule: format!(
+                        "the shop's interval: {} days after the last test",
+                        self.interval_days
+                    ),
+                }
+            }
+            None => Due {
+                due: None,
+                overdue: true,
+                replace: false,
+                rule: "no test on record".into(),
+            },
+        }
+    }
+
+    /// When `h`'s next test is due at `today`.
+    pub fn due(&self, h: &PackHistory, today: NaiveDate) -> Due {
+        let life = match (self.rule, self.service_life_days) {
+            (Rule::Ieee450, Some(l)) if h.spec.chemistry == Chemistry::LeadAcid => l,
+            _ => return self.shop(h, today),
+        };
+        let start = self
+            .in_service
+            .get(&h.pack_id)
+            .copied()
+            .or_else(|| h.points.first().map(|p| p.date));
+        let Some(last) = h.latest() else {
+            return match start {
+                Some(s) => {
+                    let due = add_days(s, 2 * YEAR_DAYS);
+                    Due {
+                        due: Some(due),
+                        overdue: today > due,
+                        replace: false,
+                        rule: "IEEE 450: a first performance test within two years of service"
+                            .into(),
+                    }
+                }
+                None => Due {
+                    due: None,
+                    overdue: true,
+                    replace: false,
+                    rule: "IEEE 450: no performance test and no in-service date on record".into(),
+                },
+            };
+        };
+        let replace = last.soh_pct < 80.0;
+        let previous = h.points.len().checked_sub(2).map(|i| &h.points[i]);
+        let dropped = previous
+            .filter(|p| p.capacity_ah > 0.0)
+            .map(|p| (1.0 - last.capacity_ah / p.capacity_ah) * 100.0)
+            .filter(|d| *d > 10.0);
+        let aged = start.is_some_and(|s| (today - s).num_days() as f64 >= 0.85 * life as f64);
+        let (interval, rule) = if let Some(d) = dropped {
+            (
+                YEAR_DAYS,
+                format!("IEEE 450: every year: capacity {d:.1} % below the previous test's (more than 10 %)"),
+            )
+        } else if last.soh_pct < 90.0 {
+            (
+                YEAR_DAYS,
+                format!(
+                    "IEEE 450: every year: capacity {:.1} % of rating (under 90 %)",
+                    last.soh_pct
+                ),
+            )
+        } else if aged && last.soh_pct >= 100.0 {
+            (
+                2 * YEAR_DAYS,
+                "IEEE 450: every two years: 85 % of the expected service life reached, at 100 % of rating or more and no degradation".into(),
+            )
+        } else if aged {
+            (
+                YEAR_DAYS,
+                "IEEE 450: every year: 85 % of the expected service life reached".into(),
+            )
+        } else {
+            (
+                life / 4,
+                format!(
+                    "IEEE 450: at most 25 % of the expected service life ({} days) between tests",
+                    life / 4
+                ),
+            )
+        };
+        let due = add_days(last.date, interval);
+        let rule = if replace {
+            format!(
+                "IEEE 450: replace: capacity {:.1} % of rating (under 80 %); until then {}",
+                last.soh_pct,
+                rule.trim_start_matches("IEEE 450: ")
+            )
+        } else {
+            rule
+        };
+        Due {
+            due: Some(due),
+            overdue: today > due,
+            replace,
+            rule,
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::fade::history::HistoryPoint;
+    use model::pack::PackSpec;
+
+    fn d(s: &str) -> NaiveDate {
+        NaiveDate::parse_from_str(s, "%Y-%m-%d").unwrap()
+    }
+
+    /// A lead-acid string of 100 Ah tested on the given (date, Ah) pairs.
+    fn history(chemistry: Chemistry, tests: &[(&str, f64)]) -> PackHistory {
+        PackHistory {
+            pack_id: "FR-S01".into(),
+            spec: PackSpec {
+                chemistry,
+                series: 24,
+                rated_capacity_ah: 100.0,
+                rated_energy_wh: None,
+                rated_rate_c: None,
+                rated_resistance_mohm: None,
+            },
+            points: tests
+                .iter()
+                .map(|(date, ah)| HistoryPoint {
+                    date: d(date),
+                    cycles: 0.0,
+                    cycles_given: false,
+                    capacity_ah: *ah,
+                    soh_pct: *ah,
+                    resistance_mohm: None,
+                    coulombic_efficiency_pct: None,
+                    grade: None,
+                    source: format!("test {date}"),
+                    run_dir: None,
+                })
+                .collect(),
+            left_out: Vec::new(),
+        }
+    }
+
+    /// 20 years of expected life, in service since 2010-01-01.
+    fn ieee() -> Schedule {
+        Schedule {
+            rule: Rule::Ieee450,
+            interval_days: 92,
+            service_life_days: Some(20 * YEAR_DAYS),
+            in_service: [("FR-S01".to_string(), d("2010-01-01"))].into(),
+        }
+    }
+
+    #[test]
+    fn first_test_within_two_years_of_service() {
+        let h = history(Chemistry::LeadAcid, &[]);
+        let due = ieee().due(&h, d("2011-06-01"));
+        assert_eq!(due.due, Some(d("2012-01-01")));
+        assert!(!due.overdue);
+        assert!(due.rule.contains("within two years"), "{}", due.rule);
+        assert!(ieee().due(&h, d("2012-01-02")).overdue);
+    }
+
+    #[test]
+    fn healthy_packs_wait_a_quarter_of_their_life() {
+        // 20 years: 5-year (1825-day) intervals while healthy and young.
+        let h = history(
+            Chemistry::LeadAcid,
+            &[("2011-01-01", 98.0), ("2015-01-01", 95.0)],
+        );
+        let due = ieee().due(&h, d("2019-12-01"));
+        assert_eq!(due.due, Some(d("2019-12-31")));
+        assert!(!due.overdue && !due.replace);
+        assert!(due.rule.contains("25 %"), "{}", due.rule);
+        assert!(ieee().due(&h, d("2020-01-01")).overdue);
+    }
+
+    #[test]
+    fn under_90_percent_of_rating_is_tested_every_year() {
+        let h = history(
+            Chemistry::LeadAcid,
+            &[("2011-01-01", 95.0), ("2015-01-01", 88.0)],
+        );
+        let due = ieee().due(&h, d("2015-06-01"));
+        assert_eq!(due.due, Some(d("2016-01-01")));
+        assert!(due.rule.contains("under 90 %"), "{}", due.rule);
+        assert!(!due.replace);
+    }
+
+    #[test]
+    fn a_drop_of_more_than_10_percent_is_tested_every_year() {
+        // 112 Ah to 99 Ah: 11.6 % down, still above 90 % of rating.
+        let h = history(
+            Chemistry::LeadAcid,
+            &[("2011-01-01", 112.0), ("2015-01-01", 99.0)],
+        );
+        let due = ieee().due(&h, d("2015-06-01"));
+        assert_eq!(due.due, Some(d("2016-01-01")));
+        assert!(
+            due.rule.contains("11.6 % below the previous"),
+            "{}",
+            due.rule
+        );
+        // 9 % down is no degradation: back to a quarter of the life.
+        let h = history(
+            Chemistry::LeadAcid,
+            &[("2011-01-01", 108.0), ("2015-01-01", 98.3)],
+        );
+        assert!(ieee().due(&h, d("2015-06-01")).rule.contains("25 %"));
+    }
+
+    #[test]
+    fn at_85_percent_of_life_tests_are_yearly() {
+        // 85 % of 20 years is 17 years: from 2027 on.
+        let h = history(Chemistry::LeadAcid, &[("2026-06-01", 95.0)]);
+        let due = ieee().due(&h, d("2027-03-01"));
+        assert_eq!(due.due, Some(d("2027-06-01")));
+        assert!(due.rule.contains("85 %"), "{}", due.rule);
+        // Before 85 % of life, the same pack waits a quarter of the life.
+        assert!(ieee().due(&h, d("2026-07-01")).rule.contains("25 %"));
+    }
+
+    #[test]
+    fn at_85_percent_of_life_at_full_capacity_every_two_years() {
+        let h = history(Chemistry::LeadAcid, &[("2026-06-01", 101.0)]);
+        let due = ieee().due(&h, d("2027-03-01"));
+        // 730 days: 2028 is a leap year.
+        assert_eq!(due.due, Some(d("2028-05-31")));
+        assert!(due.rule.contains("every two years"), "{}", due.rule);
+    }
+
+    #[test]
+    fn below_80_percent_of_rating_is_replaced() {
+        let h = history(
+            Chemistry::LeadAcid,
+            &[("2011-01-01", 85.0), ("2015-01-01", 79.0)],
+        );
+        let due = ieee().due(&h, d("2015-02-01"));
+        assert!(due.replace);
+        assert!(due.rule.starts_with("IEEE 450: replace"), "{}", due.rule);
+        let h = history(Chemistry::LeadAcid, &[("2015-01-01", 80.5)]);
+        assert!(!ieee().due(&h, d("2015-02-01")).replace);
+    }
+
+    #[test]
+    fn other_chemistries_keep_the_shops_interval() {
+        let h = history(Chemistry::LiIon, &[("2015-01-01", 70.0)]);
+        let due = ieee().due(&h, d("2015-02-01"));
+        assert_eq!(due.due, Some(d("2015-04-03")));
+        assert!(!due.replace, "IEEE 450 does not judge a lithium pack");
+        assert!(due.rule.contains("shop's interval"), "{}", due.rule);
+    }
+
+    #[test]
+    fn durations_in_days_weeks_and_years() {
+        assert_eq!(parse_days("92d"), Some(92));
+        assert_eq!(parse_days("13w"), Some(91));
+        assert_eq!(parse_days("20y"), Some(7300));
+        assert_eq!(parse_days("0d"), None);
+        assert_eq!(parse_days("5 fortnights"), None);
+    }
+}
