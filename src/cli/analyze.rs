@@ -44,7 +44,7 @@ pub struct AnalyzeArgs {
     #[arg(long)]
     pub pack: Option<String>,
     /// The day the test counts for, YYYY-MM-DD (imported logs; default today).
-    #[arg(long)]
+    #[arg(long, visible_alias = "date")]
     pub test_date: Option<String>,
     /// Grading policy (TOML); default: the built-in policy.
     #[arg(long)]

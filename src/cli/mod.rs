@@ -7,6 +7,7 @@ pub mod check;
 pub mod demo;
 pub mod exit;
 pub mod fade;
+pub mod import;
 pub mod quick;
 pub mod resume;
 pub mod run;
@@ -61,6 +62,9 @@ pub enum Command {
     Demo(DemoArgs),
     /// Analyse a log: one of our run folders, or any bench's CSV.
     Analyze(crate::cli::analyze::AnalyzeArgs),
+    /// Bring a test from another bench into a pack's history (analysed as
+    /// `analyze` does, kept as a run marked imported; a file once only).
+    Import(crate::cli::import::ImportArgs),
     /// Peukert exponent from two capacity runs of a pack at different rates.
     Peukert(crate::cli::analyze::PeukertArgs),
     /// Estimate a pack's capacity from a screening run and its family's calibration.
@@ -96,6 +100,7 @@ pub fn main() -> i32 {
         Command::Fleet(a) => cmd_fleet(a).context("fleet view failed"),
         Command::Demo(a) => cmd_demo(a).context("demo failed"),
         Command::Analyze(a) => crate::cli::analyze::cmd_analyze(a).context("analysis failed"),
+        Command::Import(a) => crate::cli::import::cmd_import(a).context("import failed"),
         Command::Peukert(a) => crate::cli::analyze::cmd_peukert(a).context("peukert failed"),
         Command::GradeQuick(a) => crate::cli::quick::cmd_quick(a).context("quick grade failed"),
         Command::Ports => crate::cli::setup::cmd_ports().context("listing ports failed"),

@@ -2,7 +2,7 @@
 
 use crate::util::*;
 use std::path::Path;
-use std::process::Output;
+use std::process::{Command, Output};
 
 #[test]
 fn the_readme_command_runs_a_capacity_check() {
@@ -841,6 +841,125 @@ fn fleet_due_dates_follow_the_policys_ieee_450_schedule() {
     assert_eq!(out.status.code(), Some(2));
     assert!(
         text(&out.stderr).contains("schedule.service_life = \"long\": expected a duration"),
+        "{}",
+        text(&out.stderr)
+    );
+}
+
+/// `packbench import`: a test from another bench (here a copy of a
+/// simulated run's log, outside its run folder) joins the pack's history
+/// as a run marked imported, with the source file's hash; its capacity is
+/// one of the points the fade fit uses; the same file a second time is
+/// refused (exit 2) and adds nothing.
+#[test]
+fn an_imported_log_joins_the_fade_fit_once() {
+    let dir = tempfile::tempdir().unwrap();
+    let results = dir.path().join("results");
+    let r = results.to_str().unwrap();
+    let pack = ["--chemistry", "li-ion", "--series", "10", "--rated", "14Ah"];
+    let out = Command::new(BIN)
+        .args([
+            "run",
+            "procedures/capacity-check.toml",
+            "--sim",
+            "--pack",
+            "FR-X1",
+            "--quiet",
+        ])
+        .args(pack)
+        .args(["--results", r, "--test-date", "2026-01-10"])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    // Two earlier tests from the pack's paper records.
+    std::fs::write(
+        results.join("FR-X1/history.csv"),
+        "date,cycles,capacity_ah\n2025-01-01,,13.9\n2025-07-01,,13.4\n",
+    )
+    .unwrap();
+    let run = std::fs::read_dir(results.join("FR-X1"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .find(|p| p.is_dir())
+        .unwrap();
+    let log = dir.path().join("bay-7 export.csv");
+    std::fs::copy(run.join("samples.csv"), &log).unwrap();
+    let import = |extra: &[&str]| {
+        Command::new(BIN)
+            .arg("import")
+            .arg(&log)
+            .args(["--pack", "FR-X1", "--date", "2026-06-01", "--results", r])
+            .args(extra)
+            .output()
+            .unwrap()
+    };
+    let out = import(&["--cycles", "150"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let id = "20260601-imported-bay-7-export";
+    let folder = results.join("FR-X1").join(id);
+    let rec = json(&folder.join("import.json"));
+    let (sha, _) = packbench::cli::import::file_sha256(&log).unwrap();
+    assert_eq!(rec["sha256"], sha.as_str());
+    let summary = json(&folder.join("summary.json"));
+    assert_eq!(summary["status"], "imported");
+    assert_eq!(summary["cycle_count"], 150.0);
+    assert_eq!(
+        std::fs::read(folder.join("source.csv")).unwrap(),
+        std::fs::read(&log).unwrap()
+    );
+    let imported_ah = summary["capacity"]["measured_ah"].as_f64().unwrap();
+    let ours_ah = json(&run.join("summary.json"))["capacity"]["measured_ah"]
+        .as_f64()
+        .unwrap();
+    assert!(
+        (imported_ah - ours_ah).abs() < 1e-6,
+        "{imported_ah} vs {ours_ah}"
+    );
+    // In the fade fit: four points, the imported one among them.
+    let out = packbench(&["fade", "FR-X1", "--results", r, "--json"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let j: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let points = j["history"]["points"].as_array().unwrap();
+    assert_eq!(points.len(), 4, "{points:?}");
+    let p = points
+        .iter()
+        .find(|p| p["source"] == format!("run {id}").as_str())
+        .unwrap_or_else(|| panic!("not in the history: {points:?}"));
+    assert_eq!(p["date"], "2026-06-01");
+    assert_eq!(p["cycles"], 150.0);
+    let models = j["fade"]["models"].as_array().unwrap();
+    assert!(
+        models.iter().any(|m| m["fit"]["n"].as_u64() == Some(4)),
+        "a model fitted on all four points: {models:?}"
+    );
+    // Once only: refused by its hash, whatever date it is given.
+    let before = std::fs::read_dir(results.join("FR-X1")).unwrap().count();
+    let out = Command::new(BIN)
+        .arg("import")
+        .arg(&log)
+        .args(["--pack", "FR-X1", "--date", "2026-07-01", "--results", r])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2), "{}", text(&out.stderr));
+    assert!(
+        text(&out.stderr).contains(&format!("was imported already, as FR-X1/{id}")),
+        "{}",
+        text(&out.stderr)
+    );
+    assert_eq!(
+        std::fs::read_dir(results.join("FR-X1")).unwrap().count(),
+        before
+    );
+    // The pack and the date are needed.
+    let out = Command::new(BIN)
+        .arg("import")
+        .arg(&log)
+        .args(["--pack", "FR-X2", "--results", r])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    assert!(
+        text(&out.stderr).contains("--date"),
         "{}",
         text(&out.stderr)
     );

@@ -14,7 +14,6 @@ pub use analysis::fade::history::{HistoryPoint, LeftOut, PackHistory};
 use chrono::NaiveDate;
 use model::location::{LocatedError, Location};
 use model::pack::PackSpec;
-use model::status::RunStatus;
 use std::path::{Path, PathBuf};
 
 /// The file of earlier measurements a pack folder may hold.
@@ -195,7 +194,8 @@ pub fn load(
     for (dir, s) in &runs {
         let date = parse_date(&s.test_date).unwrap_or_default();
         let from_full = s.capacity.as_ref().is_some_and(|c| c.from_full_charge);
-        let usable = s.status == RunStatus::Completed && from_full;
+        // Our completed runs and tests imported from other benches alike.
+        let usable = s.status.is_complete() && from_full;
         if !usable {
             left_out.push(LeftOut {
                 run_id: s.run_id.clone(),
