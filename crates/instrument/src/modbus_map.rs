@@ -148,6 +148,12 @@ pub fn check(
             "modbus.timeout_ms must be between 1 and 10000".into(),
         );
     }
+    if line.frame_gap_ms > 1000 {
+        bad(
+            "frame_gap_ms",
+            "modbus.frame_gap_ms must be at most 1000".into(),
+        );
+    }
     if line.retries > 5 {
         bad("retries", "modbus.retries must be at most 5".into());
     }

@@ -852,6 +852,8 @@ mod tests {
         );
         let e = at(&GENERIC_MODBUS_LOAD.replace("get_mode =", "read_mode ="));
         assert!(e.contains("registers.read_mode: not an operation"), "{e}");
+        let e = at(&GENERIC_MODBUS_LOAD.replace("frame_gap_ms = 2", "frame_gap_ms = 100000"));
+        assert!(e.contains("frame_gap_ms must be at most 1000"), "{e}");
         let e = at(&GENERIC_MODBUS_LOAD.replace("slave = 2", "slave = 0"));
         assert!(e.contains("1 to 247"), "{e}");
         let e = at(&GENERIC_MODBUS_LOAD
