@@ -406,3 +406,58 @@ pub fn cmd_demo(a: DemoArgs) -> anyhow::Result<ExitCode> {
     );
     Ok(ExitCode::Ok)
 }
+
+/// A large fleet of made-up test records for the index benchmark and its
+/// tests: `packs` packs of the fictional fleet (`FR-B00001` …), each with
+/// `runs` run folders holding only a `summary.json`, copied from
+/// `template` (a real summary) with the run id, date and capacity changed:
+/// each pack fades at its own rate, tested every 30 days from 2024-01-01.
+/// Nothing else reads these folders as runs (no log).
+pub fn synthetic_fleet(
+    results: &Path,
+    packs: usize,
+    runs: usize,
+    template: &record::Summary,
+) -> std::io::Result<()> {
+    let mut t = template.clone();
+    // Only what a history reads: the rest would only make the files big.
+    t.curves = None;
+    t.pulse_resistance.clear();
+    t.warnings.clear();
+    t.gaps.clear();
+    let rated = t.pack.rated_capacity_ah;
+    let spec = format!(
+        "chemistry = \"{}\"\nseries = {}\nrated_capacity = \"{}Ah\"\n",
+        t.pack.chemistry, t.pack.series, rated
+    );
+    let start = NaiveDate::from_ymd_opt(2024, 1, 1).unwrap_or_default();
+    for i in 0..packs {
+        let id = format!("FR-B{i:05}");
+        let dir = results.join(&id);
+        std::fs::create_dir_all(&dir)?;
+        std::fs::write(dir.join(record::PACK_TOML), &spec)?;
+        // 0.2 to 1.2 % of rated per test, by pack.
+        let fade = 0.002 + 0.01 * ((i * 7919) % 1000) as f64 / 1000.0;
+        for j in 0..runs {
+            let date = start
+                .checked_add_days(Days::new(30 * j as u64))
+                .unwrap_or(start);
+            let run_id = format!("{}-000000Z-synthetic", date.format("%Y%m%d"));
+            let mut s = t.clone();
+            s.pack_id = id.clone();
+            s.run_id = run_id.clone();
+            s.test_date = date.to_string();
+            if let Some(c) = s.capacity.as_mut() {
+                let soh = 1.0 - fade * j as f64;
+                c.measured_ah = rated * soh;
+                c.corrected_ah = rated * soh;
+                c.soh_pct = soh * 100.0;
+            }
+            let run = dir.join(&run_id);
+            std::fs::create_dir_all(&run)?;
+            let bytes = serde_json::to_vec(&s).map_err(std::io::Error::other)?;
+            std::fs::write(run.join(record::SUMMARY_JSON), bytes)?;
+        }
+    }
+    Ok(())
+}

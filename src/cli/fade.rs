@@ -68,6 +68,55 @@ pub struct FleetArgs {
     /// Also write the HTML fleet report here.
     #[arg(long)]
     pub html: Option<PathBuf>,
+    /// Read every run folder instead of the results index
+    /// (`results/index.sqlite`, brought up to the folders first).
+    #[arg(long)]
+    pub walk: bool,
+}
+
+#[derive(Debug, Args)]
+pub struct IndexArgs {
+    /// Results folder.
+    #[arg(default_value = "results")]
+    pub results: PathBuf,
+    /// Throw the index away and build it again from the folders.
+    #[arg(long)]
+    pub rebuild: bool,
+}
+
+/// `packbench index`: bring `results/index.sqlite` up to the run folders.
+pub fn cmd_index(a: IndexArgs) -> anyhow::Result<ExitCode> {
+    if !a.results.is_dir() {
+        return Err(RunError::arguments(format!(
+            "{} is not a results folder",
+            a.results.display()
+        ))
+        .into());
+    }
+    if a.rebuild {
+        for suffix in ["", "-wal", "-shm"] {
+            let p = a
+                .results
+                .join(format!("{}{suffix}", record::index::INDEX_SQLITE));
+            if p.exists() {
+                std::fs::remove_file(&p).with_context(|| format!("removing {}", p.display()))?;
+            }
+        }
+    }
+    let t0 = std::time::Instant::now();
+    let mut ix = record::index::Index::open(&a.results)?;
+    let r = ix.refresh(&a.results)?;
+    println!(
+        "index {}: {} packs ({} read), {} runs read, {} runs and {} packs dropped, in {:.2} s",
+        a.results.join(record::index::INDEX_SQLITE).display(),
+        r.packs,
+        r.packs_read,
+        r.runs_read,
+        r.runs_dropped,
+        r.packs_dropped,
+        t0.elapsed().as_secs_f64()
+    );
+    Ok(ExitCode::Ok)
 }
 
 /// `packbench report`.
@@ -142,7 +191,11 @@ pub fn cmd_fleet(a: FleetArgs) -> anyhow::Result<ExitCode> {
         None => None,
     }
     .unwrap_or_else(|| analysis::fade::schedule::Schedule::interval(interval));
-    let f = history::fleet(&a.results, today, &schedule, threshold)?;
+    let f = if a.walk {
+        history::fleet(&a.results, today, &schedule, threshold)?
+    } else {
+        record::index::fleet(&a.results, today, &schedule, threshold)?.0
+    };
     if let Some(path) = &a.html {
         let mut hs = Vec::new();
         for r in &f.rows {

@@ -175,6 +175,7 @@ pub fn cmd_import(mut a: ImportArgs) -> anyhow::Result<ExitCode> {
     let summary_path = dir.join(record::SUMMARY_JSON);
     record::write::write_json(&summary_path, &summary)
         .with_context(|| format!("writing {}", summary_path.display()))?;
+    crate::session::finish::index_pack(&pack_dir, &pack_id);
     let cap = summary
         .capacity
         .as_ref()

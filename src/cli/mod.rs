@@ -65,6 +65,8 @@ pub enum Command {
     /// Bring a test from another bench into a pack's history (analysed as
     /// `analyze` does, kept as a run marked imported; a file once only).
     Import(crate::cli::import::ImportArgs),
+    /// Bring the results index (results/index.sqlite) up to the run folders.
+    Index(crate::cli::fade::IndexArgs),
     /// Peukert exponent from two capacity runs of a pack at different rates.
     Peukert(crate::cli::analyze::PeukertArgs),
     /// Estimate a pack's capacity from a screening run and its family's calibration.
@@ -101,6 +103,7 @@ pub fn main() -> i32 {
         Command::Demo(a) => cmd_demo(a).context("demo failed"),
         Command::Analyze(a) => crate::cli::analyze::cmd_analyze(a).context("analysis failed"),
         Command::Import(a) => crate::cli::import::cmd_import(a).context("import failed"),
+        Command::Index(a) => crate::cli::fade::cmd_index(a).context("index failed"),
         Command::Peukert(a) => crate::cli::analyze::cmd_peukert(a).context("peukert failed"),
         Command::GradeQuick(a) => crate::cli::quick::cmd_quick(a).context("quick grade failed"),
         Command::Ports => crate::cli::setup::cmd_ports().context("listing ports failed"),
@@ -114,6 +117,13 @@ pub fn main() -> i32 {
             // malformed is bad input, whatever the command.
             let input = e.downcast_ref::<RunError>().is_some_and(RunError::is_input)
                 || e.downcast_ref::<history::HistoryError>().is_some()
+                || matches!(
+                    e.downcast_ref::<record::index::IndexError>(),
+                    Some(
+                        record::index::IndexError::History(_)
+                            | record::index::IndexError::Newer { .. }
+                    )
+                )
                 || e.downcast_ref::<record::read::ReadError>().is_some();
             eprintln!("error: {:#}", anyhow!(e));
             if input {

@@ -74,11 +74,24 @@ pub fn finish_record(
     }
     write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
     let _ = std::fs::remove_file(dir.join(RUN_LOCK));
+    index_pack(&p.pack_dir, &p.pack_id);
     Ok(RunReport {
         run_dir: dir.to_path_buf(),
         summary,
         outcome,
     })
+}
+
+/// Bring the results index up to this pack's folder. Best effort: the run
+/// folder is the record, and `fleet` and `index` bring the index up to the
+/// folders whenever they read it.
+pub fn index_pack(pack_dir: &Path, pack_id: &str) {
+    let Some(results) = pack_dir.parent() else {
+        return;
+    };
+    if let Ok(mut ix) = record::index::Index::open(results) {
+        let _ = ix.refresh_pack(results, pack_id);
+    }
 }
 
 /// Build a run's summary from its folder (the log streamed through the

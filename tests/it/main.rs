@@ -17,6 +17,7 @@ mod fade;
 mod figures;
 mod fuzz_seeds;
 mod hostile;
+mod index;
 mod layers;
 #[cfg(unix)]
 mod links;

@@ -77,8 +77,14 @@ impl LinearFit {
     /// Half-width of the prediction interval for a new observation at x0.
     pub fn prediction_half_width(&self, x0: f64, level: f64) -> Option<f64> {
         let t = t_quantile(level, self.n as f64 - 2.0)?;
+        Some(self.half_width_at(x0, t))
+    }
+
+    /// The half-width with the Student-t quantile already found (it is the
+    /// same everywhere along one fit's line).
+    fn half_width_at(&self, x0: f64, t: f64) -> f64 {
         let nf = self.n as f64;
-        Some(t * self.residual_sd * (1.0 + 1.0 / nf + (x0 - self.x_mean).powi(2) / self.sxx).sqrt())
+        t * self.residual_sd * (1.0 + 1.0 / nf + (x0 - self.x_mean).powi(2) / self.sxx).sqrt()
     }
 
     /// Prediction interval (low, high) at x0.
@@ -105,8 +111,13 @@ impl LinearFit {
         from: f64,
         to: f64,
     ) -> (Option<f64>, Option<f64>) {
-        let lo = |x: f64| self.prediction_interval(x, level).map(|p| p.0);
-        let hi = |x: f64| self.prediction_interval(x, level).map(|p| p.1);
+        // The quantile once: the scan below evaluates the bands thousands
+        // of times, and the inverse CDF is the costly part.
+        let Some(t) = t_quantile(level, self.n as f64 - 2.0) else {
+            return (None, None);
+        };
+        let lo = |x: f64| Some(self.predict(x) - self.half_width_at(x, t));
+        let hi = |x: f64| Some(self.predict(x) + self.half_width_at(x, t));
         let falling = self.slope < 0.0;
         // For a falling line we look for band(x) <= y; for a rising one band(x) >= y.
         let reached = |v: f64| if falling { v <= y } else { v >= y };

@@ -52,6 +52,16 @@ pub fn parse_date(s: &str) -> Option<NaiveDate> {
 /// (cycles and resistance may be empty).
 pub fn read_history_csv(path: &Path, rated_ah: f64) -> Result<Vec<HistoryPoint>, HistoryError> {
     let text = model::procedure::read_text(path).map_err(io(path))?;
+    parse_history_csv(path, &text, rated_ah)
+}
+
+/// [`read_history_csv`] of text already read (`path` names it in errors
+/// and sources).
+pub fn parse_history_csv(
+    path: &Path,
+    text: &str,
+    rated_ah: f64,
+) -> Result<Vec<HistoryPoint>, HistoryError> {
     let mut out = Vec::new();
     let bad = |line: usize, column: usize, message: String| {
         HistoryError::Bad(LocatedError {
@@ -142,9 +152,61 @@ pub fn read_history_csv(path: &Path, rated_ah: f64) -> Result<Vec<HistoryPoint>,
     Ok(out)
 }
 
-/// Discharge Ah packbench measured in a run.
-fn discharged_ah(s: &Summary) -> f64 {
-    s.steps.iter().map(|st| st.charge_out_ah).sum()
+/// What a pack's history takes from one run's summary: the figures the
+/// fade fit and the fleet read, small enough to keep in an index.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct RunFacts {
+    pub run_id: String,
+    pub test_date: String,
+    pub status: model::status::RunStatus,
+    pub stop_reason: Option<String>,
+    pub cycle_count: Option<f64>,
+    /// Of the capacity step, if there was one.
+    pub capacity: Option<CapacityFacts>,
+    pub dcir_mohm: Option<f64>,
+    /// The last finished cycle's coulombic efficiency, %.
+    pub coulombic_efficiency_pct: Option<f64>,
+    pub grade: Option<String>,
+    /// Discharge Ah packbench measured in the run (the cycle count's
+    /// throughput).
+    pub discharged_ah: f64,
+}
+
+/// The capacity step's figures a history needs.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct CapacityFacts {
+    pub measured_ah: f64,
+    pub corrected_ah: f64,
+    pub soh_pct: f64,
+    pub from_full_charge: bool,
+    pub preceded_by: String,
+}
+
+impl RunFacts {
+    pub fn of(s: &Summary) -> RunFacts {
+        RunFacts {
+            run_id: s.run_id.clone(),
+            test_date: s.test_date.clone(),
+            status: s.status,
+            stop_reason: s.stop_reason.clone(),
+            cycle_count: s.cycle_count,
+            capacity: s.capacity.as_ref().map(|c| CapacityFacts {
+                measured_ah: c.measured_ah,
+                corrected_ah: c.corrected_ah,
+                soh_pct: c.soh_pct,
+                from_full_charge: c.from_full_charge,
+                preceded_by: c.preceded_by.clone(),
+            }),
+            dcir_mohm: s.resistance.as_ref().map(|r| r.dcir_mohm),
+            coulombic_efficiency_pct: s
+                .cycles
+                .iter()
+                .rev()
+                .find_map(|c| c.coulombic_efficiency_pct),
+            grade: s.grade.as_ref().map(|g| g.label.clone()),
+            discharged_ah: s.steps.iter().map(|st| st.charge_out_ah).sum(),
+        }
+    }
 }
 
 /// Load the summaries of every run of a pack, in date order.
@@ -186,12 +248,26 @@ pub fn load(
     if let Some(p) = extra_csv {
         points.extend(read_history_csv(p, spec.rated_capacity_ah)?);
     }
+    let runs: Vec<(PathBuf, RunFacts)> = run_summaries(&pack_dir)?
+        .iter()
+        .map(|(d, s)| (d.clone(), RunFacts::of(s)))
+        .collect();
+    Ok(assemble(pack_id, spec, points, &runs))
+}
+
+/// A pack's history from its spec, its earlier measurements and its runs'
+/// facts in date order: the one place the folder walk and the index meet.
+pub fn assemble(
+    pack_id: &str,
+    spec: PackSpec,
+    points: Vec<HistoryPoint>,
+    runs: &[(PathBuf, RunFacts)],
+) -> PackHistory {
     let mut left_out = Vec::new();
     // Runs in date order, with throughput counted across all of them
     // (aborted runs moved charge too).
-    let runs = run_summaries(&pack_dir)?;
     let mut run_points = Vec::new();
-    for (dir, s) in &runs {
+    for (dir, s) in runs {
         let date = parse_date(&s.test_date).unwrap_or_default();
         let from_full = s.capacity.as_ref().is_some_and(|c| c.from_full_charge);
         // Our completed runs and tests imported from other benches alike.
@@ -216,7 +292,7 @@ pub fn load(
     let mut known_cycles: Option<f64> = None;
     let mut counted_since = 0.0;
     let mut merged: Vec<HistoryPoint> = Vec::new();
-    let mut csv_points = std::mem::take(&mut points);
+    let mut csv_points = points;
     csv_points.sort_by_key(|p| p.date);
     let mut csv_iter = csv_points.into_iter().peekable();
     for (date, s, dir, usable) in run_points {
@@ -249,27 +325,23 @@ pub fn load(
                         c.measured_ah
                     },
                     soh_pct: c.soh_pct,
-                    resistance_mohm: s.resistance.as_ref().map(|r| r.dcir_mohm),
-                    coulombic_efficiency_pct: s
-                        .cycles
-                        .iter()
-                        .rev()
-                        .find_map(|c| c.coulombic_efficiency_pct),
-                    grade: s.grade.as_ref().map(|g| g.label.clone()),
+                    resistance_mohm: s.dcir_mohm,
+                    coulombic_efficiency_pct: s.coulombic_efficiency_pct,
+                    grade: s.grade.clone(),
                     source: format!("run {}", s.run_id),
                     run_dir: Some(dir.clone()),
                 });
             }
         }
-        counted_since += discharged_ah(s) / spec.rated_capacity_ah;
+        counted_since += s.discharged_ah / spec.rated_capacity_ah;
     }
     merged.extend(csv_iter);
-    Ok(PackHistory {
+    PackHistory {
         pack_id: pack_id.to_string(),
         spec,
         points: merged,
         left_out,
-    })
+    }
 }
 
 /// Pack ids with a `pack.toml` under a results folder.

@@ -15,6 +15,7 @@ pub mod error;
 pub mod event;
 pub mod history;
 pub mod import;
+pub mod index;
 pub mod manifest;
 pub mod read;
 pub mod schema;

@@ -1,0 +1,620 @@
+//! The results index: `results/index.sqlite`, an embedded SQLite database
+//! (compiled in, nothing to install) beside the run folders, which stay the
+//! record. It holds each pack's spec and earlier measurements, and each
+//! run's figures (status, capacity, state of health, resistance, grade,
+//! cycles, its steps), so the fleet is ranked without reading every
+//! folder, and a shop can ask its history in SQL.
+//!
+//! The index can always be thrown away: `refresh` brings it up to the
+//! folders by their stamps (a file's size and modification time), reading
+//! only what changed (a folder changed behind its back is read again) and
+//! dropping what is gone. Each pack is brought up to date in one
+//! transaction, so a refresh killed anywhere leaves every pack either as
+//! it was or as it is now, and the next refresh completes it.
+
+use crate::history::{self, HistoryError, PackHistory, RunFacts, HISTORY_CSV};
+use crate::{PACK_TOML, SUMMARY_JSON};
+use model::pack::PackSpec;
+use rusqlite::{params, Connection, OptionalExtension};
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+
+/// The index file in a results folder.
+pub const INDEX_SQLITE: &str = "index.sqlite";
+/// The index layout this build writes and reads.
+pub const INDEX_SCHEMA: i64 = 1;
+
+#[derive(Debug, thiserror::Error)]
+pub enum IndexError {
+    #[error("{path}: {error}")]
+    Sql {
+        path: PathBuf,
+        error: rusqlite::Error,
+    },
+    #[error("{path}: {error}")]
+    Io {
+        path: PathBuf,
+        error: std::io::Error,
+    },
+    #[error(transparent)]
+    History(#[from] HistoryError),
+    #[error("{path}: index layout {found} is newer than this build's ({INDEX_SCHEMA}); remove the file to rebuild it")]
+    Newer { path: PathBuf, found: i64 },
+}
+
+const SCHEMA: &str = "
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS packs (
+    pack_id TEXT PRIMARY KEY,
+    stamp TEXT NOT NULL,
+    chemistry TEXT NOT NULL,
+    series INTEGER NOT NULL,
+    rated_capacity_ah REAL NOT NULL,
+    rated_energy_wh REAL,
+    rated_rate_c REAL,
+    rated_resistance_mohm REAL,
+    spec_toml TEXT NOT NULL,
+    history_csv TEXT
+);
+CREATE TABLE IF NOT EXISTS runs (
+    pack_id TEXT NOT NULL,
+    folder TEXT NOT NULL,
+    run_id TEXT NOT NULL,
+    stamp TEXT NOT NULL,
+    test_date TEXT NOT NULL,
+    status TEXT NOT NULL,
+    stop_reason TEXT,
+    cycle_count REAL,
+    capacity_ah REAL,
+    corrected_ah REAL,
+    soh_pct REAL,
+    from_full_charge INTEGER,
+    preceded_by TEXT,
+    dcir_mohm REAL,
+    coulombic_efficiency_pct REAL,
+    grade TEXT,
+    discharged_ah REAL NOT NULL,
+    PRIMARY KEY (pack_id, folder)
+);
+CREATE TABLE IF NOT EXISTS steps (
+    pack_id TEXT NOT NULL,
+    folder TEXT NOT NULL,
+    step INTEGER NOT NULL,
+    kind TEXT NOT NULL,
+    duration_s REAL NOT NULL,
+    charge_in_ah REAL NOT NULL,
+    charge_out_ah REAL NOT NULL,
+    PRIMARY KEY (pack_id, folder, step)
+);
+CREATE INDEX IF NOT EXISTS runs_by_date ON runs (test_date);
+CREATE INDEX IF NOT EXISTS runs_in_order ON runs (pack_id, test_date, run_id);
+";
+
+/// What a refresh did.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct Refreshed {
+    pub packs: usize,
+    pub packs_read: usize,
+    pub runs_read: usize,
+    pub runs_dropped: usize,
+    pub packs_dropped: usize,
+}
+
+/// An open index.
+pub struct Index {
+    conn: Connection,
+    path: PathBuf,
+}
+
+/// What the index holds of a pack: its stamp and its runs' stamps.
+#[derive(Debug, Default)]
+struct Known {
+    stamp: Option<String>,
+    runs: BTreeMap<String, String>,
+}
+
+/// The stamp of a pack's own files.
+fn pack_stamp(dir: &Path) -> String {
+    format!(
+        "{}|{}",
+        stamp(&dir.join(PACK_TOML)),
+        stamp(&dir.join(HISTORY_CSV))
+    )
+}
+
+/// The run folders of a pack that hold a summary, with its stamp.
+fn run_stamps(dir: &Path) -> std::io::Result<Vec<(String, PathBuf, String)>> {
+    let mut now = Vec::new();
+    for e in std::fs::read_dir(dir)?.flatten() {
+        let summary = e.path().join(SUMMARY_JSON);
+        let st = stamp(&summary);
+        if st == "-" {
+            continue;
+        }
+        now.push((e.file_name().to_string_lossy().into_owned(), summary, st));
+    }
+    Ok(now)
+}
+
+/// Does a pack's folder differ from what the index holds of it?
+fn pack_changed(results: &Path, id: &str, known: Option<&Known>) -> bool {
+    let Some(k) = known else { return true };
+    let dir = results.join(id);
+    if k.stamp.as_deref() != Some(pack_stamp(&dir).as_str()) {
+        return true;
+    }
+    match run_stamps(&dir) {
+        Ok(now) => {
+            now.len() != k.runs.len()
+                || now.iter().any(|(name, _, st)| k.runs.get(name) != Some(st))
+        }
+        Err(_) => true,
+    }
+}
+
+/// A pack's spec (checked), its text, and its earlier measurements' text
+/// (checked too, so a bad file is said when the pack is indexed).
+fn read_pack_files(dir: &Path) -> Result<(PackSpec, String, Option<String>), IndexError> {
+    let spec_path = dir.join(PACK_TOML);
+    let spec_text = model::procedure::read_text(&spec_path).map_err(|error| IndexError::Io {
+        path: spec_path.clone(),
+        error,
+    })?;
+    let spec = PackSpec::from_toml(&spec_path, &spec_text)
+        .map_err(|e| IndexError::History(HistoryError::Pack(e.to_string())))?;
+    let csv_path = dir.join(HISTORY_CSV);
+    let csv = if csv_path.is_file() {
+        let text = model::procedure::read_text(&csv_path).map_err(|error| IndexError::Io {
+            path: csv_path.clone(),
+            error,
+        })?;
+        history::parse_history_csv(&csv_path, &text, spec.rated_capacity_ah)?;
+        Some(text)
+    } else {
+        None
+    };
+    Ok((spec, spec_text, csv))
+}
+
+/// A file's stamp: size and modification time (ns), or "-" if absent.
+fn stamp(path: &Path) -> String {
+    match std::fs::metadata(path) {
+        Ok(m) => {
+            let t = m
+                .modified()
+                .ok()
+                .and_then(|t| t.duration_since(std::time::UNIX_EPOCH).ok())
+                .map_or(0, |d| d.as_nanos());
+            format!("{}:{t}", m.len())
+        }
+        Err(_) => "-".into(),
+    }
+}
+
+impl Index {
+    /// Open (or create) the index of a results folder.
+    pub fn open(results: &Path) -> Result<Index, IndexError> {
+        let path = results.join(INDEX_SQLITE);
+        std::fs::create_dir_all(results).map_err(|error| IndexError::Io {
+            path: results.to_path_buf(),
+            error,
+        })?;
+        let sql = |error| IndexError::Sql {
+            path: path.clone(),
+            error,
+        };
+        let conn = Connection::open(&path).map_err(sql)?;
+        conn.busy_timeout(std::time::Duration::from_secs(10))
+            .map_err(sql)?;
+        conn.execute_batch("PRAGMA journal_mode = WAL; PRAGMA synchronous = NORMAL;")
+            .map_err(sql)?;
+        conn.execute_batch(SCHEMA).map_err(sql)?;
+        let found: Option<String> = conn
+            .query_row("SELECT value FROM meta WHERE key = 'schema'", [], |r| {
+                r.get(0)
+            })
+            .optional()
+            .map_err(sql)?;
+        match found.and_then(|v| v.parse::<i64>().ok()) {
+            Some(v) if v > INDEX_SCHEMA => {
+                return Err(IndexError::Newer { path, found: v });
+            }
+            Some(_) => {}
+            None => {
+                conn.execute(
+                    "INSERT OR REPLACE INTO meta (key, value) VALUES ('schema', ?1)",
+                    params![INDEX_SCHEMA.to_string()],
+                )
+                .map_err(sql)?;
+            }
+        }
+        Ok(Index { conn, path })
+    }
+
+    fn sql(&self) -> impl Fn(rusqlite::Error) -> IndexError + '_ {
+        move |error| IndexError::Sql {
+            path: self.path.clone(),
+            error,
+        }
+    }
+
+    /// Bring the index up to the folders: every pack's files and every
+    /// run's summary are checked by their stamps (on every core), and only
+    /// the packs where something changed are read and written again.
+    pub fn refresh(&mut self, results: &Path) -> Result<Refreshed, IndexError> {
+        let ids = history::pack_ids(results)?;
+        let mut out = Refreshed {
+            packs: ids.len(),
+            ..Refreshed::default()
+        };
+        let known = self.stamps()?;
+        let threads = std::thread::available_parallelism()
+            .map_or(1, |n| n.get())
+            .max(1);
+        let chunk = ids.len().div_ceil(threads).max(1);
+        let changed: Vec<String> = std::thread::scope(|sc| {
+            let handles: Vec<_> = ids
+                .chunks(chunk)
+                .map(|part| {
+                    let known = &known;
+                    sc.spawn(move || {
+                        part.iter()
+                            .filter(|id| pack_changed(results, id, known.get(id.as_str())))
+                            .cloned()
+                            .collect::<Vec<String>>()
+                    })
+                })
+                .collect();
+            handles
+                .into_iter()
+                .flat_map(|h| h.join().unwrap_or_default())
+                .collect()
+        });
+        for id in &changed {
+            let (read, runs_read, dropped) = self.refresh_pack(results, id)?;
+            out.packs_read += usize::from(read);
+            out.runs_read += runs_read;
+            out.runs_dropped += dropped;
+        }
+        // Packs whose folder is gone.
+        for k in known.keys().filter(|k| !ids.contains(k)) {
+            let path = self.path.clone();
+            let sql = |error| IndexError::Sql {
+                path: path.clone(),
+                error,
+            };
+            let tx = self.conn.transaction().map_err(sql)?;
+            for t in ["steps", "runs", "packs"] {
+                tx.execute(&format!("DELETE FROM {t} WHERE pack_id = ?1"), params![k])
+                    .map_err(sql)?;
+            }
+            tx.commit().map_err(sql)?;
+            out.packs_dropped += 1;
+        }
+        Ok(out)
+    }
+
+    /// Every indexed pack's stamp and its runs' stamps, in one read.
+    fn stamps(&self) -> Result<BTreeMap<String, Known>, IndexError> {
+        let sql = self.sql();
+        let mut out: BTreeMap<String, Known> = BTreeMap::new();
+        let mut st = self
+            .conn
+            .prepare("SELECT pack_id, stamp FROM packs")
+            .map_err(&sql)?;
+        let rows = st
+            .query_map([], |r| Ok((r.get::<_, String>(0)?, r.get::<_, String>(1)?)))
+            .map_err(&sql)?;
+        for r in rows {
+            let (id, stamp) = r.map_err(&sql)?;
+            out.entry(id).or_default().stamp = Some(stamp);
+        }
+        let mut st = self
+            .conn
+            .prepare("SELECT pack_id, folder, stamp FROM runs")
+            .map_err(&sql)?;
+        let rows = st
+            .query_map([], |r| {
+                Ok((
+                    r.get::<_, String>(0)?,
+                    r.get::<_, String>(1)?,
+                    r.get::<_, String>(2)?,
+                ))
+            })
+            .map_err(&sql)?;
+        for r in rows {
+            let (id, folder, stamp) = r.map_err(&sql)?;
+            out.entry(id).or_default().runs.insert(folder, stamp);
+        }
+        Ok(out)
+    }
+
+    /// Bring one pack up to its folder, in one transaction: (whether the
+    /// pack's own files were read, runs read, runs dropped).
+    pub fn refresh_pack(
+        &mut self,
+        results: &Path,
+        pack_id: &str,
+    ) -> Result<(bool, usize, usize), IndexError> {
+        model::pack::check_pack_id(pack_id)
+            .map_err(|e| IndexError::History(HistoryError::Pack(e.to_string())))?;
+        let dir = results.join(pack_id);
+        let pack_stamp = pack_stamp(&dir);
+        let path = self.path.clone();
+        let sql = move |error| IndexError::Sql {
+            path: path.clone(),
+            error,
+        };
+        let known_pack: Option<String> = self
+            .conn
+            .query_row(
+                "SELECT stamp FROM packs WHERE pack_id = ?1",
+                params![pack_id],
+                |r| r.get(0),
+            )
+            .optional()
+            .map_err(&sql)?;
+        let mut known_runs: BTreeMap<String, String> = BTreeMap::new();
+        {
+            let mut st = self
+                .conn
+                .prepare_cached("SELECT folder, stamp FROM runs WHERE pack_id = ?1")
+                .map_err(&sql)?;
+            let rows = st
+                .query_map(params![pack_id], |r| {
+                    Ok((r.get::<_, String>(0)?, r.get::<_, String>(1)?))
+                })
+                .map_err(&sql)?;
+            for r in rows {
+                let (k, v) = r.map_err(&sql)?;
+                known_runs.insert(k, v);
+            }
+        }
+        // What the folder holds now.
+        let now = run_stamps(&dir).map_err(|error| IndexError::Io {
+            path: dir.clone(),
+            error,
+        })?;
+        let pack_changed = known_pack.as_deref() != Some(pack_stamp.as_str());
+        let changed: Vec<&(String, PathBuf, String)> = now
+            .iter()
+            .filter(|(name, _, st)| known_runs.get(name) != Some(st))
+            .collect();
+        let gone: Vec<&String> = known_runs
+            .keys()
+            .filter(|k| !now.iter().any(|(n, _, _)| n == *k))
+            .collect();
+        if !pack_changed && changed.is_empty() && gone.is_empty() {
+            return Ok((false, 0, 0));
+        }
+        // Read everything first, outside the transaction.
+        let pack_row = if pack_changed {
+            Some(read_pack_files(&dir)?)
+        } else {
+            None
+        };
+        let mut facts = Vec::new();
+        for (name, summary, st) in &changed {
+            let s = crate::read::read_summary(summary).map_err(HistoryError::from)?;
+            facts.push((name.clone(), st.clone(), RunFacts::of(&s), s.steps));
+        }
+        let tx = self.conn.transaction().map_err(&sql)?;
+        if let Some((spec, text, csv)) = &pack_row {
+            tx.execute(
+                "INSERT OR REPLACE INTO packs (pack_id, stamp, chemistry, series, rated_capacity_ah, rated_energy_wh, rated_rate_c, rated_resistance_mohm, spec_toml, history_csv) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10)",
+                params![
+                    pack_id,
+                    pack_stamp,
+                    spec.chemistry.to_string(),
+                    spec.series,
+                    spec.rated_capacity_ah,
+                    spec.rated_energy_wh,
+                    spec.rated_rate_c,
+                    spec.rated_resistance_mohm,
+                    text,
+                    csv
+                ],
+            )
+            .map_err(&sql)?;
+        }
+        for k in &gone {
+            tx.execute(
+                "DELETE FROM runs WHERE pack_id = ?1 AND folder = ?2",
+                params![pack_id, k],
+            )
+            .map_err(&sql)?;
+            tx.execute(
+                "DELETE FROM steps WHERE pack_id = ?1 AND folder = ?2",
+                params![pack_id, k],
+            )
+            .map_err(&sql)?;
+        }
+        for (name, st, f, steps) in &facts {
+            let c = f.capacity.as_ref();
+            tx.execute(
+                "INSERT OR REPLACE INTO runs (pack_id, folder, run_id, stamp, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17)",
+                params![
+                    pack_id,
+                    name,
+                    f.run_id,
+                    st,
+                    f.test_date,
+                    f.status.name(),
+                    f.stop_reason,
+                    f.cycle_count,
+                    c.map(|c| c.measured_ah),
+                    c.map(|c| c.corrected_ah),
+                    c.map(|c| c.soh_pct),
+                    c.map(|c| c.from_full_charge),
+                    c.map(|c| c.preceded_by.clone()),
+                    f.dcir_mohm,
+                    f.coulombic_efficiency_pct,
+                    f.grade,
+                    f.discharged_ah
+                ],
+            )
+            .map_err(&sql)?;
+            tx.execute(
+                "DELETE FROM steps WHERE pack_id = ?1 AND folder = ?2",
+                params![pack_id, name],
+            )
+            .map_err(&sql)?;
+            for s in steps {
+                tx.execute(
+                    "INSERT INTO steps (pack_id, folder, step, kind, duration_s, charge_in_ah, charge_out_ah) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+                    params![pack_id, name, s.step, s.kind.to_string(), s.duration_s, s.charge_in_ah, s.charge_out_ah],
+                )
+                .map_err(&sql)?;
+            }
+        }
+        tx.commit().map_err(&sql)?;
+        Ok((pack_changed, facts.len(), gone.len()))
+    }
+
+    /// Every indexed pack's history, as the folder walk assembles it.
+    pub fn histories(&self, results: &Path) -> Result<Vec<PackHistory>, IndexError> {
+        let sql = self.sql();
+        let mut runs: BTreeMap<String, Vec<(PathBuf, RunFacts)>> = BTreeMap::new();
+        {
+            let mut st = self
+                .conn
+                .prepare(
+                    "SELECT pack_id, run_id, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, folder FROM runs ORDER BY pack_id, test_date, run_id",
+                )
+                .map_err(&sql)?;
+            let rows = st
+                .query_map([], |r| {
+                    let pack: String = r.get(0)?;
+                    let run_id: String = r.get(1)?;
+                    let status: String = r.get(3)?;
+                    let capacity = match (
+                        r.get::<_, Option<f64>>(6)?,
+                        r.get::<_, Option<f64>>(7)?,
+                        r.get::<_, Option<f64>>(8)?,
+                        r.get::<_, Option<bool>>(9)?,
+                        r.get::<_, Option<String>>(10)?,
+                    ) {
+                        (Some(m), Some(c), Some(s), Some(f), Some(p)) => {
+                            Some(history::CapacityFacts {
+                                measured_ah: m,
+                                corrected_ah: c,
+                                soh_pct: s,
+                                from_full_charge: f,
+                                preceded_by: p,
+                            })
+                        }
+                        _ => None,
+                    };
+                    let folder: String = r.get(15)?;
+                    Ok((
+                        pack,
+                        folder,
+                        RunFacts {
+                            run_id,
+                            test_date: r.get(2)?,
+                            status: status.parse().unwrap_or(model::status::RunStatus::Aborted),
+                            stop_reason: r.get(4)?,
+                            cycle_count: r.get(5)?,
+                            capacity,
+                            dcir_mohm: r.get(11)?,
+                            coulombic_efficiency_pct: r.get(12)?,
+                            grade: r.get(13)?,
+                            discharged_ah: r.get(14)?,
+                        },
+                    ))
+                })
+                .map_err(&sql)?;
+            for r in rows {
+                let (pack, folder, f) = r.map_err(&sql)?;
+                let dir = results.join(&pack).join(folder);
+                runs.entry(pack).or_default().push((dir, f));
+            }
+        }
+        let mut st = self
+            .conn
+            .prepare("SELECT pack_id, chemistry, series, rated_capacity_ah, rated_energy_wh, rated_rate_c, rated_resistance_mohm, history_csv FROM packs ORDER BY pack_id")
+            .map_err(&sql)?;
+        let rows = st
+            .query_map([], |r| {
+                Ok((
+                    r.get::<_, String>(0)?,
+                    r.get::<_, String>(1)?,
+                    r.get::<_, u32>(2)?,
+                    r.get::<_, f64>(3)?,
+                    r.get::<_, Option<f64>>(4)?,
+                    r.get::<_, Option<f64>>(5)?,
+                    r.get::<_, Option<f64>>(6)?,
+                    r.get::<_, Option<String>>(7)?,
+                ))
+            })
+            .map_err(&sql)?;
+        let mut out = Vec::new();
+        for r in rows {
+            let (id, chemistry, series, rated, energy, rate, resistance, csv) = r.map_err(&sql)?;
+            let dir = results.join(&id);
+            // The spec as it was checked when the pack was indexed.
+            let spec = PackSpec {
+                chemistry: chemistry
+                    .parse()
+                    .map_err(|e: String| IndexError::History(HistoryError::Pack(e)))?,
+                series,
+                rated_capacity_ah: rated,
+                rated_energy_wh: energy,
+                rated_rate_c: rate,
+                rated_resistance_mohm: resistance,
+            };
+            let points = match &csv {
+                Some(text) => history::parse_history_csv(
+                    &dir.join(HISTORY_CSV),
+                    text,
+                    spec.rated_capacity_ah,
+                )?,
+                None => Vec::new(),
+            };
+            let pack_runs = runs.remove(&id).unwrap_or_default();
+            out.push(history::assemble(&id, spec, points, &pack_runs));
+        }
+        Ok(out)
+    }
+
+    /// Run a read-only SQL statement and hand back its rows as text (for
+    /// tests and the odd question asked by hand).
+    pub fn query_strings(&self, sql_text: &str) -> Result<Vec<Vec<String>>, IndexError> {
+        let sql = self.sql();
+        let mut st = self.conn.prepare(sql_text).map_err(&sql)?;
+        let n = st.column_count();
+        let rows = st
+            .query_map([], |r| {
+                (0..n)
+                    .map(|i| {
+                        let v: rusqlite::types::Value = r.get(i)?;
+                        Ok(match v {
+                            rusqlite::types::Value::Null => String::new(),
+                            rusqlite::types::Value::Integer(i) => i.to_string(),
+                            rusqlite::types::Value::Real(x) => x.to_string(),
+                            rusqlite::types::Value::Text(t) => t,
+                            rusqlite::types::Value::Blob(_) => "<blob>".into(),
+                        })
+                    })
+                    .collect::<Result<Vec<String>, _>>()
+            })
+            .map_err(&sql)?;
+        rows.collect::<Result<_, _>>().map_err(&sql)
+    }
+}
+
+/// The fleet from the index, brought up to the folders first.
+pub fn fleet(
+    results: &Path,
+    today: chrono::NaiveDate,
+    schedule: &analysis::fade::schedule::Schedule,
+    threshold_pct: f64,
+) -> Result<(analysis::fade::fleet::Fleet, Refreshed), IndexError> {
+    let mut ix = Index::open(results)?;
+    let r = ix.refresh(results)?;
+    let hs = ix.histories(results)?;
+    Ok((
+        analysis::fade::fleet::rank(&hs, today, schedule, threshold_pct),
+        r,
+    ))
+}
