@@ -388,6 +388,12 @@ fn demo_then_fade_fleet_and_report_on_its_results() {
     assert_eq!(table.len(), 10, "{s}");
     let overdue = table.iter().filter(|l| l.contains("OVERDUE")).count();
     assert_eq!(why.len(), overdue, "{s}");
+    // Ranked from the index (results/index.sqlite) as from the folders.
+    let from_index = packbench(&["fleet", r, "--today", "2026-11-23", "--json"]);
+    let walked = packbench(&["fleet", r, "--today", "2026-11-23", "--json", "--walk"]);
+    assert_eq!(from_index.status.code(), Some(0));
+    assert_eq!(text(&from_index.stdout), text(&walked.stdout));
+    assert!(results.join("index.sqlite").is_file());
     let o = packbench(&["fleet", r, "--today", "2026-11-23", "--csv"]);
     let s = text(&o.stdout);
     assert!(s.starts_with("rank,pack_id,chemistry"));
