@@ -221,7 +221,7 @@ fn a_source_sink_instrument_with_a_meter_runs_the_same_test() {
     same_capacity(capacity(&run), capacity(&mem));
 }
 
-#[derive(Debug, serde::Deserialize)]
+#[derive(Debug, Clone, serde::Deserialize)]
 struct StateEntry {
     wall_s: f64,
     what: String,
@@ -647,6 +647,24 @@ fn backstop_levels(run: &Path) -> Vec<(String, String, f64, Option<f64>)> {
         .collect()
 }
 
+/// Wait (up to `secs` of wall time) until the state log shows a
+/// protection trip whose entry starts with `what`: the whole log then, and
+/// the trip's entry.
+fn wait_for_trip(log: &Path, what: &str, secs: u64) -> (Vec<StateEntry>, StateEntry) {
+    let mut entries = Vec::new();
+    let tripped = wait_until(Duration::from_secs(secs), || {
+        entries = state_log(log);
+        entries.iter().any(|e| e.what.starts_with(what))
+    });
+    assert!(tripped, "no '{what}' in the state log: {entries:?}");
+    let trip = entries
+        .iter()
+        .find(|e| e.what.starts_with(what))
+        .cloned()
+        .unwrap();
+    (entries, trip)
+}
+
 /// Kill the controller with SIGKILL once `during` holds for the served
 /// bench, then wait for the instrument's own protection to act.
 fn kill_when(s: &Served, run: &mut Child, during: impl Fn(&StateEntry) -> bool) {
@@ -692,18 +710,7 @@ fn a_killed_controller_leaves_the_load_to_its_under_voltage_switch_off() {
         .any(|l| l.0 == "source" && l.1 == "over-voltage protection"));
     // The load goes on sinking with nobody watching, until its own
     // switch-off: a 0.5C discharge from full is about 2 h, 18 s wall.
-    let mut entries = Vec::new();
-    let tripped = wait_until(Duration::from_secs(40), || {
-        entries = state_log(&s.state_log);
-        entries
-            .iter()
-            .any(|e| e.what.starts_with("protection load under-voltage"))
-    });
-    assert!(tripped, "the load never switched itself off: {entries:?}");
-    let trip = entries
-        .iter()
-        .find(|e| e.what.starts_with("protection load under-voltage"))
-        .unwrap();
+    let (entries, trip) = wait_for_trip(&s.state_log, "protection load under-voltage", 40);
     let v = trip.pack_voltage_v.unwrap();
     eprintln!(
         "load switched itself off at {v:.4} V (level {:.4} V): {}",
@@ -754,18 +761,7 @@ fn a_killed_controller_leaves_the_supply_to_its_over_voltage_protection() {
         .clone();
     // 4.25 V/cell x 4 plus 1 %: 17.17 V.
     assert!((ov.2 - 17.17).abs() < 1e-9, "{ov:?}");
-    let mut entries = Vec::new();
-    let tripped = wait_until(Duration::from_secs(60), || {
-        entries = state_log(&s.state_log);
-        entries
-            .iter()
-            .any(|e| e.what.starts_with("protection supply over-voltage"))
-    });
-    assert!(tripped, "the supply never switched itself off: {entries:?}");
-    let trip = entries
-        .iter()
-        .find(|e| e.what.starts_with("protection supply over-voltage"))
-        .unwrap();
+    let (_, trip) = wait_for_trip(&s.state_log, "protection supply over-voltage", 60);
     let v = trip.pack_voltage_v.unwrap();
     eprintln!(
         "supply switched itself off at {v:.4} V (level {:.4} V)",

@@ -183,14 +183,24 @@ fn wire_sleep(baud: Option<u32>, bytes: usize) {
     }
 }
 
-/// Handle the bytes of one connection: lines in, replies out. Returns
-/// `Err` when the instrument drops the link (a disconnect fault).
-fn serve_lines<R: Read, W: Write>(
+/// What one request gets back.
+enum Answer {
+    /// Bytes to send, after a delay (a slow instrument).
+    Send(Vec<u8>, Option<Duration>),
+    Nothing,
+}
+
+/// Handle the bytes of one connection: requests cut off the stream by
+/// `take`, each answered by `answer`, at the emulated line rate. Returns
+/// `Err` when the instrument drops the link (a disconnect fault). Input
+/// that never makes a request is dropped past `max_pending` bytes.
+fn serve_requests<R: Read, W: Write>(
     reader: &mut R,
     writer: &mut W,
-    inst: &Arc<Mutex<SimInstrument>>,
-    shared: &Shared,
     opts: &ServeOptions,
+    max_pending: usize,
+    mut take: impl FnMut(&mut Vec<u8>) -> Option<Vec<u8>>,
+    mut answer: impl FnMut(&[u8]) -> io::Result<Answer>,
 ) -> io::Result<()> {
     let mut pending: Vec<u8> = Vec::new();
     let mut buf = [0u8; 4096];
@@ -203,29 +213,18 @@ fn serve_lines<R: Read, W: Write>(
             return Ok(());
         }
         pending.extend_from_slice(&buf[..n]);
-        while let Some(pos) = pending.iter().position(|&b| b == b'\n') {
-            let line: Vec<u8> = pending.drain(..=pos).collect();
-            wire_sleep(opts.baud, line.len());
-            let text = String::from_utf8_lossy(&line[..line.len() - 1]).into_owned();
-            let answer = {
-                let mut g = match inst.lock() {
-                    Ok(g) => g,
-                    Err(p) => p.into_inner(),
-                };
-                let a = g.respond(text.trim_end_matches('\r'));
-                shared.record(&mut g);
-                a
+        if pending.len() > max_pending {
+            pending.drain(..pending.len() - max_pending / 8);
+        }
+        while let Some(req) = take(&mut pending) {
+            wire_sleep(opts.baud, req.len());
+            let (out, delay) = match answer(&req)? {
+                Answer::Nothing => continue,
+                Answer::Send(out, delay) => (out, delay),
             };
-            let reply = match answer? {
-                Response::Nothing => continue,
-                Response::Reply(r) => r,
-                Response::Late(r, delay) => {
-                    std::thread::sleep(delay);
-                    r
-                }
-            };
-            let mut out = reply.into_bytes();
-            out.push(b'\n');
+            if let Some(d) = delay {
+                std::thread::sleep(d);
+            }
             wire_sleep(opts.baud, out.len());
             if can_write && writer.write_all(&out).and_then(|_| writer.flush()).is_err() {
                 can_write = false;
@@ -234,8 +233,40 @@ fn serve_lines<R: Read, W: Write>(
     }
 }
 
-/// Handle the bytes of one connection as a Modbus RTU slave. Returns
-/// `Err` when the instrument drops the link (a disconnect fault).
+/// SCPI: lines in, replies out.
+fn serve_lines<R: Read, W: Write>(
+    reader: &mut R,
+    writer: &mut W,
+    inst: &Arc<Mutex<SimInstrument>>,
+    shared: &Shared,
+    opts: &ServeOptions,
+) -> io::Result<()> {
+    let take = |p: &mut Vec<u8>| {
+        let pos = p.iter().position(|&b| b == b'\n')?;
+        Some(p.drain(..=pos).collect())
+    };
+    serve_requests(reader, writer, opts, 1 << 20, take, |line| {
+        let text = String::from_utf8_lossy(&line[..line.len() - 1]).into_owned();
+        let mut g = match inst.lock() {
+            Ok(g) => g,
+            Err(p) => p.into_inner(),
+        };
+        let a = g.respond(text.trim_end_matches('\r'));
+        shared.record(&mut g);
+        let with_end = |r: String| {
+            let mut out = r.into_bytes();
+            out.push(b'\n');
+            out
+        };
+        Ok(match a? {
+            Response::Nothing => Answer::Nothing,
+            Response::Reply(r) => Answer::Send(with_end(r), None),
+            Response::Late(r, delay) => Answer::Send(with_end(r), Some(delay)),
+        })
+    })
+}
+
+/// Modbus RTU: request frames in, reply frames out.
 fn serve_modbus<R: Read, W: Write>(
     reader: &mut R,
     writer: &mut W,
@@ -244,50 +275,23 @@ fn serve_modbus<R: Read, W: Write>(
     opts: &ServeOptions,
     slave: &Slave,
 ) -> io::Result<()> {
-    let mut pending: Vec<u8> = Vec::new();
-    let mut buf = [0u8; 512];
-    let mut can_write = true;
-    loop {
-        let n = reader.read(&mut buf)?;
-        if n == 0 {
-            return Ok(());
+    serve_requests(reader, writer, opts, 4096, take_request, |req| {
+        let mut g = match inst.lock() {
+            Ok(g) => g,
+            Err(p) => p.into_inner(),
+        };
+        let r = slave.handle(&mut g, req);
+        shared.record(&mut g);
+        match r {
+            ModbusReply::Silence => Ok(Answer::Nothing),
+            ModbusReply::Disconnect => Err(io::Error::new(
+                io::ErrorKind::ConnectionReset,
+                "simulated disconnect",
+            )),
+            ModbusReply::Frame(f) => Ok(Answer::Send(f, None)),
+            ModbusReply::Late(f, d) => Ok(Answer::Send(f, Some(d))),
         }
-        pending.extend_from_slice(&buf[..n]);
-        // A receiver that never finds a frame does not grow without bound.
-        if pending.len() > 4096 {
-            pending.drain(..pending.len() - 512);
-        }
-        while let Some(req) = take_request(&mut pending) {
-            wire_sleep(opts.baud, req.len());
-            let reply = {
-                let mut g = match inst.lock() {
-                    Ok(g) => g,
-                    Err(p) => p.into_inner(),
-                };
-                let r = slave.handle(&mut g, &req);
-                shared.record(&mut g);
-                r
-            };
-            let out = match reply {
-                ModbusReply::Silence => continue,
-                ModbusReply::Disconnect => {
-                    return Err(io::Error::new(
-                        io::ErrorKind::ConnectionReset,
-                        "simulated disconnect",
-                    ))
-                }
-                ModbusReply::Frame(f) => f,
-                ModbusReply::Late(f, d) => {
-                    std::thread::sleep(d);
-                    f
-                }
-            };
-            wire_sleep(opts.baud, out.len());
-            if can_write && writer.write_all(&out).and_then(|_| writer.flush()).is_err() {
-                can_write = false;
-            }
-        }
-    }
+    })
 }
 
 /// One connection, in the protocol the server speaks.
