@@ -61,6 +61,12 @@ impl Station {
 /// run seconds.
 pub const ERROR_POLL_S: f64 = 1.0;
 
+/// How often the driving instrument's protection register is read, run
+/// seconds. A trip has already switched that output off when it is read:
+/// the poll tells the run why it stops, it does not make it safe; so it
+/// need not cost a query every second.
+pub const TRIP_POLL_S: f64 = 5.0;
+
 /// When a step samples: a grid from the step's start at its interval,
 /// finer near an end when asked, and exactly at a time limit, a pulse
 /// level's end and the envelope's step time cap.
@@ -222,6 +228,7 @@ pub struct Engine<'a> {
     current_step: u32,
     step_open: bool,
     next_error_poll: f64,
+    next_trip_poll: f64,
     timing: Timing,
     zero: ZeroOffsets,
     alarm_capacity_ah: Option<f64>,
@@ -254,6 +261,7 @@ impl<'a> Engine<'a> {
             current_step: 0,
             step_open: false,
             next_error_poll: ERROR_POLL_S,
+            next_trip_poll: TRIP_POLL_S,
             timing: Timing::default(),
             zero: ZeroOffsets::default(),
             alarm_capacity_ah: None,
@@ -273,6 +281,7 @@ impl<'a> Engine<'a> {
     pub fn resume_from(mut self, point: ResumePoint) -> Self {
         self.t_start = self.clock.now() - point.t_run_s;
         self.next_error_poll = point.t_run_s + ERROR_POLL_S;
+        self.next_trip_poll = point.t_run_s + TRIP_POLL_S;
         self.resume = Some(point);
         self
     }
@@ -648,8 +657,10 @@ impl<'a> Engine<'a> {
         (src.unwrap_or(false), load.unwrap_or(false))
     }
 
-    /// Read the error queues about once a second: an error an instrument
-    /// raises by itself (protection trip, over-temperature) stops the run.
+    /// Read the error queues about once a second, and the driving
+    /// instrument's protection register every few seconds: an error an
+    /// instrument raises by itself (a protection trip, over-temperature)
+    /// stops the run.
     async fn poll_errors(&mut self, t: f64) -> Result<(), Stop> {
         if t < self.next_error_poll {
             return Ok(());
@@ -665,11 +676,16 @@ impl<'a> Engine<'a> {
                 r = m.0.poll_errors().await;
             }
         }
-        if r.is_ok() {
-            r = st.source.0.check_trips().await;
-        }
-        if r.is_ok() && !st.shared_link {
-            r = st.load.0.check_trips().await;
+        // Only a driving instrument's protection can trip (one whose output
+        // is off has nothing to protect): its register is read, not both.
+        if r.is_ok() && t >= self.next_trip_poll {
+            self.next_trip_poll = t + TRIP_POLL_S;
+            r = match self.active {
+                Active::Source => st.source.0.check_trips().await,
+                Active::Load if st.shared_link => st.source.0.check_trips().await,
+                Active::Load => st.load.0.check_trips().await,
+                Active::None => Ok(()),
+            };
         }
         match r {
             Ok(()) => Ok(()),

@@ -439,6 +439,13 @@ impl SimBench {
         self.clock.now()
     }
 
+    /// Is the supply holding its current limit (CC) rather than its
+    /// voltage (CV)? One model evaluation, no solving.
+    pub fn supply_in_cc(&self) -> bool {
+        let v = self.supply.voltage_set * (1.0 + self.faults.source_voltage_error_pct / 100.0);
+        self.supply.current_set > 0.0 && self.pack.terminal_voltage(self.supply.current_set) <= v
+    }
+
     /// Current the supply drives (≥ 0).
     fn supply_current(&self) -> f64 {
         if !self.supply.output_on {
@@ -470,22 +477,16 @@ impl SimBench {
 
     /// The instruments' own protection, checked after each integration
     /// step: a trip switches the output off at once.
-    fn check_guards(&mut self) {
-        let v = self.terminal_voltage();
+    fn check_guards(&mut self, v: f64, i_supply: f64, i_load: f64) {
         let t = self.last_t;
         let sides = [
             (
                 "supply",
                 self.supply.output_on,
-                self.supply_current(),
+                i_supply,
                 &self.supply.guard,
             ),
-            (
-                "load",
-                self.load.input_on,
-                -self.load_current(),
-                &self.load.guard,
-            ),
+            ("load", self.load.input_on, i_load, &self.load.guard),
         ];
         let mut hits = Vec::new();
         for (side, on, i, guard) in sides {
@@ -536,7 +537,8 @@ impl SimBench {
                     self.pack.fault_heat_w = self.faults.heat_w;
                 }
             }
-            let i = self.pack_current();
+            let (i_supply, i_load) = (self.supply_current(), self.load_current());
+            let i = i_supply + i_load;
             let (ah, wh) = self.pack.step(dt, i);
             self.truth.charge_ah += ah;
             self.truth.energy_wh += wh;
@@ -545,12 +547,13 @@ impl SimBench {
                 self.check_watch();
             }
             if self.supply.output_on || self.load.input_on {
-                let v = self.terminal_voltage();
+                // At the step's end, with the currents that flowed in it.
+                let v = self.pack.terminal_voltage(i);
                 self.voltage_span = Some(match self.voltage_span {
                     Some((lo, hi)) => (lo.min(v), hi.max(v)),
                     None => (v, v),
                 });
-                self.check_guards();
+                self.check_guards(v, i_supply, -i_load);
             }
         }
         if self

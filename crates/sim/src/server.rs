@@ -258,8 +258,7 @@ impl SimInstrument {
             oper |= OPER_OUTPUT_ON;
             let sourcing = b.supply.output_on && self.role != SimRole::Load;
             let cc = if sourcing {
-                let i = b.pack_current();
-                i >= b.supply.current_set * 0.999
+                b.supply_in_cc()
             } else {
                 b.load.mode == super::battery::LoadMode::Current
             };
