@@ -5,6 +5,7 @@
 
 use super::battery::{LoadMode, PackCondition, PackModel};
 use super::config::{Faults, MeterConfig, SimConfig};
+use super::lock::locked;
 use engine::clock::Clock;
 use model::pack::PackSpec;
 use model::truth::TruthCounters;
@@ -259,10 +260,7 @@ impl StateWriter {
             .spawn(move || loop {
                 let next = {
                     let (m, cv) = &*theirs;
-                    let mut g = match m.lock() {
-                        Ok(g) => g,
-                        Err(p) => p.into_inner(),
-                    };
+                    let mut g = locked(m);
                     while g.0.is_none() && !g.1 {
                         g = match cv.wait(g) {
                             Ok(g) => g,

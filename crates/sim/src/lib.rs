@@ -6,6 +6,7 @@
 
 pub mod battery;
 pub mod bench;
+pub mod lock;
 pub mod modbus_slave;
 pub mod serve;
 pub mod server;
@@ -43,10 +44,7 @@ impl SimHandle {
         self.with(|b| b.now())
     }
     fn with<T>(&self, f: impl FnOnce(&mut SimBench) -> T) -> T {
-        let mut g = match self.bench.lock() {
-            Ok(g) => g,
-            Err(p) => p.into_inner(),
-        };
+        let mut g = lock::locked(&self.bench);
         g.advance();
         f(&mut g)
     }

@@ -7,6 +7,7 @@
 //! byte), which a pseudo-terminal by itself does not.
 
 use super::bench::SimBench;
+use super::lock::locked;
 use super::modbus_slave::{take_request, Reply as ModbusReply, Slave};
 use super::server::{SimInstrument, SimRole};
 use super::{SimConfig, SimHandle};
@@ -247,10 +248,7 @@ fn serve_lines<R: Read, W: Write>(
     };
     serve_requests(reader, writer, opts, 1 << 20, take, |line| {
         let text = String::from_utf8_lossy(&line[..line.len() - 1]).into_owned();
-        let mut g = match inst.lock() {
-            Ok(g) => g,
-            Err(p) => p.into_inner(),
-        };
+        let mut g = locked(inst);
         let a = g.respond(text.trim_end_matches('\r'));
         shared.record(&mut g);
         let with_end = |r: String| {
@@ -276,10 +274,7 @@ fn serve_modbus<R: Read, W: Write>(
     slave: &Slave,
 ) -> io::Result<()> {
     serve_requests(reader, writer, opts, 4096, take_request, |req| {
-        let mut g = match inst.lock() {
-            Ok(g) => g,
-            Err(p) => p.into_inner(),
-        };
+        let mut g = locked(inst);
         let r = slave.handle(&mut g, req);
         shared.record(&mut g);
         match r {
@@ -515,10 +510,7 @@ pub fn serve(
 }
 
 fn inst_role(inst: &Arc<Mutex<SimInstrument>>) -> SimRole {
-    match inst.lock() {
-        Ok(g) => g.role(),
-        Err(p) => p.into_inner().role(),
-    }
+    locked(inst).role()
 }
 
 /// The name of a role on the command line and in bench files.

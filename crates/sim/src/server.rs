@@ -9,6 +9,7 @@ use super::battery::LoadMode;
 use super::bench::SimBench;
 use super::bench::{Guard, Limit};
 use super::config::{FaultKind, FaultTarget, LinkFault};
+use super::lock::locked;
 use instrument::command::{
     nr3, parse_bool, parse_message, parse_nrf, Cmd, NumericParam, Protect, Register, ScpiError,
     FUNCTION_WORDS, OPER_CC, OPER_CV, OPER_OUTPUT_ON,
@@ -957,10 +958,7 @@ impl SimInstrument {
             r.push(line.to_string());
         }
         let bench = Arc::clone(&self.bench);
-        let mut b = match bench.lock() {
-            Ok(g) => g,
-            Err(p) => p.into_inner(),
-        };
+        let mut b = locked(&bench);
         b.advance();
         self.update_status(&mut b);
         let now = b.now();
@@ -1007,10 +1005,7 @@ impl SimInstrument {
     /// end's own reads of the error queue and of values).
     pub fn quiet(&mut self, line: &str) -> Vec<String> {
         let bench = Arc::clone(&self.bench);
-        let mut b = match bench.lock() {
-            Ok(g) => g,
-            Err(p) => p.into_inner(),
-        };
+        let mut b = locked(&bench);
         b.advance();
         self.update_status(&mut b);
         let r = self.run_units(&mut b, line, false);
