@@ -113,4 +113,58 @@ fn main() {
         .map(|m| m.len())
         .unwrap_or(0);
     println!("  index file: {:.1} MB", size as f64 / 1e6);
+    if let Ok(url) = std::env::var("FLEET_PG") {
+        central(&url, &results, &from_index, today, &schedule);
+    }
+}
+
+/// With `FLEET_PG` (a server URL whose user may create databases): the
+/// first sync of the whole fleet into a new central store, a second sync
+/// (nothing to push), and the fleet from the store against the index's.
+fn central(
+    admin: &str,
+    results: &std::path::Path,
+    from_index: &analysis::fade::fleet::Fleet,
+    today: chrono::NaiveDate,
+    schedule: &Schedule,
+) {
+    let mut c = postgres::Client::connect(admin, postgres::NoTls).expect("the server");
+    c.batch_execute("DROP DATABASE IF EXISTS pb_fleet_bench WITH (FORCE)")
+        .expect("drop");
+    c.batch_execute("CREATE DATABASE pb_fleet_bench")
+        .expect("create");
+    let url = format!(
+        "{}/pb_fleet_bench",
+        &admin[..admin.rfind('/').expect("a URL with a database")]
+    );
+    let sync = || {
+        let t0 = Instant::now();
+        let out = Command::new(env!("CARGO_BIN_EXE_packbench"))
+            .args(["sync", "--to", &url, "--bench", "bench-a"])
+            .arg(results)
+            .output()
+            .expect("packbench sync");
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        (
+            t0.elapsed().as_secs_f64(),
+            String::from_utf8_lossy(&out.stdout).trim().to_string(),
+        )
+    };
+    let (first, said) = sync();
+    println!("  central store, first sync of every run: {first:.2} s ({said})");
+    let (second, _) = sync();
+    println!("  central store, second sync (nothing to push): {second:.2} s");
+    let t0 = Instant::now();
+    let target = exchange::central::target(Some(&url)).expect("url");
+    let mut store = exchange::central::Store::connect(&target).expect("connect");
+    let f = exchange::central::fleet(&mut store, today, schedule, 80.0).expect("fleet");
+    println!(
+        "  fleet from the central store: {:.3} s; same ranking and figures as the index: {}",
+        t0.elapsed().as_secs_f64(),
+        &f == from_index
+    );
 }

@@ -70,8 +70,13 @@ pub struct FleetArgs {
     pub html: Option<PathBuf>,
     /// Read every run folder instead of the results index
     /// (`results/index.sqlite`, brought up to the folders first).
-    #[arg(long)]
+    #[arg(long, conflicts_with = "db")]
     pub walk: bool,
+    /// Rank the packs of every bench that syncs into this central store
+    /// (a postgres:// URL; what it leaves out, or all of it with a bare
+    /// --db, comes from the PG* environment variables).
+    #[arg(long, num_args = 0..=1, default_missing_value = "")]
+    pub db: Option<String>,
 }
 
 #[derive(Debug, Args)]
@@ -191,16 +196,27 @@ pub fn cmd_fleet(a: FleetArgs) -> anyhow::Result<ExitCode> {
         None => None,
     }
     .unwrap_or_else(|| analysis::fade::schedule::Schedule::interval(interval));
-    let f = if a.walk {
+    let mut from_db = None;
+    let f = if let Some(url) = &a.db {
+        let (f, hs) = crate::cli::exchange::fleet_from_db(url, today, &schedule, threshold)?;
+        from_db = Some(hs);
+        f
+    } else if a.walk {
         history::fleet(&a.results, today, &schedule, threshold)?
     } else {
         record::index::fleet(&a.results, today, &schedule, threshold)?.0
     };
     if let Some(path) = &a.html {
-        let mut hs = Vec::new();
-        for r in &f.rows {
-            hs.push(history::load(&a.results, &r.pack_id, None)?);
-        }
+        let hs = match from_db {
+            Some(hs) => hs,
+            None => {
+                let mut hs = Vec::new();
+                for r in &f.rows {
+                    hs.push(history::load(&a.results, &r.pack_id, None)?);
+                }
+                hs
+            }
+        };
         std::fs::write(path, report::html::fleet_report(&f, &hs, "Battery fleet"))
             .with_context(|| format!("writing {}", path.display()))?;
     }

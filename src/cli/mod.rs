@@ -5,6 +5,7 @@ pub mod analyze;
 pub mod args;
 pub mod check;
 pub mod demo;
+pub mod exchange;
 pub mod exit;
 pub mod fade;
 pub mod import;
@@ -67,6 +68,10 @@ pub enum Command {
     Import(crate::cli::import::ImportArgs),
     /// Bring the results index (results/index.sqlite) up to the run folders.
     Index(crate::cli::fade::IndexArgs),
+    /// Push every run not yet there to a central PostgreSQL store (many benches, one fleet).
+    Sync(crate::cli::exchange::SyncArgs),
+    /// Write a run's or a pack's records as CSV, Parquet or the Battery Data Format.
+    Export(crate::cli::exchange::ExportArgs),
     /// Peukert exponent from two capacity runs of a pack at different rates.
     Peukert(crate::cli::analyze::PeukertArgs),
     /// Estimate a pack's capacity from a screening run and its family's calibration.
@@ -104,6 +109,8 @@ pub fn main() -> i32 {
         Command::Analyze(a) => crate::cli::analyze::cmd_analyze(a).context("analysis failed"),
         Command::Import(a) => crate::cli::import::cmd_import(a).context("import failed"),
         Command::Index(a) => crate::cli::fade::cmd_index(a).context("index failed"),
+        Command::Sync(a) => crate::cli::exchange::cmd_sync(a).context("sync failed"),
+        Command::Export(a) => crate::cli::exchange::cmd_export(a).context("export failed"),
         Command::Peukert(a) => crate::cli::analyze::cmd_peukert(a).context("peukert failed"),
         Command::GradeQuick(a) => crate::cli::quick::cmd_quick(a).context("quick grade failed"),
         Command::Ports => crate::cli::setup::cmd_ports().context("listing ports failed"),
@@ -124,7 +131,17 @@ pub fn main() -> i32 {
                             | record::index::IndexError::Newer { .. }
                     )
                 )
-                || e.downcast_ref::<record::read::ReadError>().is_some();
+                || e.downcast_ref::<record::read::ReadError>().is_some()
+                || matches!(
+                    e.downcast_ref::<::exchange::central::CentralError>(),
+                    Some(
+                        ::exchange::central::CentralError::History(_)
+                            | ::exchange::central::CentralError::Read(_)
+                            | ::exchange::central::CentralError::Config(_)
+                    )
+                )
+                || e.downcast_ref::<::exchange::export::ExportError>()
+                    .is_some();
             eprintln!("error: {:#}", anyhow!(e));
             if input {
                 ExitCode::BadInput.code()

@@ -24,7 +24,7 @@ fn run_dir(pack_dir: &Path) -> PathBuf {
 
 /// A short rest, then a 2C capacity discharge to 3.0 V/cell (the simulated
 /// bench's 14 Ah pack: 28 A for about 28 minutes of bench time).
-fn fast_discharge() -> String {
+pub(crate) fn fast_discharge() -> String {
     rest_then_discharge(
         "rest, then a 2C capacity discharge",
         Some("10s"),
@@ -99,7 +99,7 @@ fn a_resumed_run_never_counts_charge_across_the_outage() {
 }
 
 /// One case of [`a_resumed_run_never_counts_charge_across_the_outage`].
-fn interrupt_and_resume(
+pub(crate) fn interrupt_and_resume(
     d: &Path,
     k: usize,
     into_ms: u64,

@@ -19,6 +19,7 @@ const ALLOWED: &[(&str, &[&str])] = &[
     ("engine", &["model", "instrument", "analysis", "record"]),
     ("sim", &["model", "instrument", "engine", "record"]),
     ("report", &["model", "analysis", "record"]),
+    ("exchange", &["model", "analysis", "record"]),
 ];
 
 /// The `[dependencies]` keys of a manifest (normal dependencies only).

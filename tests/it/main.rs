@@ -12,6 +12,7 @@ mod cli;
 mod crash;
 mod engine_sim;
 mod envelope_matrix;
+mod exchange;
 mod fade;
 #[cfg(unix)]
 mod figures;
