@@ -12,6 +12,7 @@ pub mod import;
 pub mod quick;
 pub mod resume;
 pub mod run;
+pub mod serve;
 pub mod setup;
 
 use crate::cli::check::cmd_check;
@@ -72,6 +73,8 @@ pub enum Command {
     Sync(crate::cli::exchange::SyncArgs),
     /// Write a run's or a pack's records as CSV, Parquet or the Battery Data Format.
     Export(crate::cli::exchange::ExportArgs),
+    /// The shop's screen: run the bays and read the results in a browser.
+    Serve(crate::cli::serve::ServeArgs),
     /// Peukert exponent from two capacity runs of a pack at different rates.
     Peukert(crate::cli::analyze::PeukertArgs),
     /// Estimate a pack's capacity from a screening run and its family's calibration.
@@ -111,6 +114,7 @@ pub fn main() -> i32 {
         Command::Index(a) => crate::cli::fade::cmd_index(a).context("index failed"),
         Command::Sync(a) => crate::cli::exchange::cmd_sync(a).context("sync failed"),
         Command::Export(a) => crate::cli::exchange::cmd_export(a).context("export failed"),
+        Command::Serve(a) => crate::cli::serve::cmd_serve(a).context("console failed"),
         Command::Peukert(a) => crate::cli::analyze::cmd_peukert(a).context("peukert failed"),
         Command::GradeQuick(a) => crate::cli::quick::cmd_quick(a).context("quick grade failed"),
         Command::Ports => crate::cli::setup::cmd_ports().context("listing ports failed"),

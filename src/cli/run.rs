@@ -247,6 +247,18 @@ pub fn cmd_run(a: RunArgs) -> ExitCode {
             }
         }
     }
+    // One process per station: held until this run ends.
+    #[cfg(unix)]
+    let mut _held = Vec::new();
+    #[cfg(unix)]
+    for j in &jobs {
+        if let Some((st, file)) = &j.station {
+            match crate::session::benchfile::lock_station(&a.results, file, &st.name) {
+                Ok(l) => _held.push(l),
+                Err(e) => return report_error(&e),
+            }
+        }
+    }
     let several = jobs.len() > 1;
     let jobs = std::rc::Rc::new(jobs);
     let boards = jobs.iter().map(|j| j.board.clone()).collect();

@@ -430,6 +430,38 @@ impl BenchFile {
     }
 }
 
+/// A bench file's station, held by one process: `packbench run` for its
+/// run, `packbench serve` for its lifetime. The lock is an exclusive
+/// `flock` on `<results>/.stations/<bench file stem>-<station>.lock`,
+/// dropped with the process whatever way it ends.
+#[cfg(unix)]
+pub fn lock_station(
+    results: &Path,
+    bench_file: &Path,
+    station: &str,
+) -> Result<nix::fcntl::Flock<std::fs::File>, crate::session::error::RunError> {
+    let stem = bench_file
+        .file_stem()
+        .map(|s| s.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "bench".into());
+    let dir = results.join(".stations");
+    std::fs::create_dir_all(&dir).map_err(crate::session::error::io_err(&dir))?;
+    let path = dir.join(format!("{stem}-{station}.lock"));
+    let file = std::fs::OpenOptions::new()
+        .create(true)
+        .truncate(false)
+        .write(true)
+        .open(&path)
+        .map_err(crate::session::error::io_err(&path))?;
+    nix::fcntl::Flock::lock(file, nix::fcntl::FlockArg::LockExclusiveNonblock).map_err(|_| {
+        crate::session::error::RunError::arguments(format!(
+            "station '{station}' of {} is driven by another packbench process (run or serve) now: one process per station ({} is locked)",
+            bench_file.display(),
+            path.display()
+        ))
+    })
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -7,7 +7,10 @@ mod util;
 
 mod analysis_reference;
 mod analyze;
+#[cfg(unix)]
+mod browser;
 mod cli;
+mod console;
 #[cfg(unix)]
 mod crash;
 mod engine_sim;

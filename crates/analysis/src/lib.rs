@@ -450,11 +450,51 @@ mod tests {
             end_kind: Some(EndKind::Time),
             end_reason: None,
         };
+        // Without a discharge to the cutoff first, the charge topped up a
+        // pack of unknown state: no efficiency.
         let a = analyze(&samples, &[info(1, "charge"), info(2, "discharge")], &pack);
-        let c = &a.cycles[0];
+        assert_eq!(a.cycles[0].coulombic_efficiency_pct, None);
+        assert!(a
+            .warnings
+            .iter()
+            .any(|w| w.contains("did not start from empty")));
+        let (mut all, empty) = emptied();
+        all.extend(samples);
+        let a = analyze(
+            &all,
+            &[empty, info(1, "charge"), info(2, "discharge")],
+            &pack,
+        );
+        let c = a.cycles.iter().find(|c| c.cycle == 1).unwrap();
         assert!((c.coulombic_efficiency_pct.unwrap() - 99.5).abs() < 1e-9);
         assert!((c.energy_efficiency_pct.unwrap() - 94.21).abs() < 0.01);
         assert!(a.capacity.is_none());
+    }
+
+    /// A discharge to the cutoff before the first cycle (cycle 0, ending
+    /// at t = -1000 s): the charge after it starts from empty.
+    fn emptied() -> (Vec<Sample>, StepInfo) {
+        let samples = (0..=1000)
+            .map(|k| Sample {
+                t_s: -2000.0 + k as f64,
+                step: 0,
+                cycle: 0,
+                voltage_v: 3.0,
+                current_a: -0.1,
+                temperature_c: None,
+            })
+            .collect();
+        let info = StepInfo {
+            step: 0,
+            phase: "empty".into(),
+            cycle: 0,
+            kind: StepType::Discharge,
+            name: None,
+            result: None,
+            end_kind: Some(EndKind::VoltageBelow),
+            end_reason: None,
+        };
+        (samples, info)
     }
 
     fn pack_2ah() -> PackSpec {
@@ -499,23 +539,27 @@ mod tests {
         // A full charge (2 Ah), then a discharge interrupted after 0.93 Ah:
         // 46.6 % would be no efficiency at all (issue: an interrupted
         // run's summary reported it).
-        let mut samples = flat(1, 0.0, 7200.0, 3.8, 1.0);
+        let (mut samples, empty) = emptied();
+        samples.extend(flat(1, 0.0, 7200.0, 3.8, 1.0));
         samples.extend(flat(2, 8000.0, 11348.0, 3.6, -1.0));
         let infos = [
+            empty.clone(),
             info(1, "charge", "current_below", None),
             info(2, "discharge", "interrupted", Some("capacity")),
         ];
         let a = analyze(&samples, &infos, &pack_2ah());
-        assert_eq!(a.cycles.len(), 1);
-        assert_eq!(a.cycles[0].coulombic_efficiency_pct, None);
-        assert_eq!(a.cycles[0].energy_efficiency_pct, None);
+        let c1 = |a: &Analysis| a.cycles.iter().find(|c| c.cycle == 1).cloned().unwrap();
+        assert_eq!(a.cycles.len(), 2);
+        assert_eq!(c1(&a).coulombic_efficiency_pct, None);
+        assert_eq!(c1(&a).energy_efficiency_pct, None);
         // The same cycle finished: its efficiency is there.
         let done = [
+            empty,
             info(1, "charge", "current_below", None),
             info(2, "discharge", "voltage_below", Some("capacity")),
         ];
         let a = analyze(&samples, &done, &pack_2ah());
-        let ce = a.cycles[0].coulombic_efficiency_pct.unwrap();
+        let ce = c1(&a).coulombic_efficiency_pct.unwrap();
         assert!((ce - 0.93 / 2.0 * 100.0).abs() < 0.1, "{ce}");
     }
 

@@ -1119,10 +1119,28 @@ fn cycles_of(
     // cycles with a finished discharge.
     let mut unfinished: Vec<u32> = Vec::new();
     let mut discharged: Vec<u32> = Vec::new();
+    // Cycles whose charge started from empty: the charge or discharge step
+    // before the cycle's first charge was a finished discharge, ended on
+    // its cutoff (in a foreign log, whose ends are not known: finished).
+    let mut from_empty: Vec<u32> = Vec::new();
+    let mut charged: Vec<u32> = Vec::new();
+    let mut last: Option<&StepSummary> = None;
     for s in summaries {
         if !matches!(s.kind, StepType::Charge | StepType::Discharge) {
             continue;
         }
+        if s.kind == StepType::Charge && !charged.contains(&s.cycle) {
+            charged.push(s.cycle);
+            let emptied = last.is_some_and(|p| {
+                p.kind == StepType::Discharge
+                    && finished(p, imported)
+                    && (imported || p.end_kind == Some(EndKind::VoltageBelow))
+            });
+            if emptied {
+                from_empty.push(s.cycle);
+            }
+        }
+        last = Some(s);
         let c = match cycles.iter_mut().position(|c| c.cycle == s.cycle) {
             Some(k) => &mut cycles[k],
             None => {
@@ -1152,6 +1170,15 @@ fn cycles_of(
     for c in &mut cycles {
         // A cycle that never finished its discharge has no efficiency.
         let complete = discharged.contains(&c.cycle) && !unfinished.contains(&c.cycle);
+        if complete && c.charge_ah > 0.0 && !from_empty.contains(&c.cycle) {
+            // The charge topped up a pack that was not empty: the ratio of
+            // discharge to charge says nothing of the pack's efficiency.
+            warnings.push(format!(
+                "cycle {}: no coulombic or energy efficiency: its charge did not start from empty (no discharge to the cutoff before it)",
+                c.cycle
+            ));
+            continue;
+        }
         if complete && c.charge_ah > 0.0 && c.discharge_ah > 0.0 {
             let ce = c.discharge_ah / c.charge_ah * 100.0;
             c.coulombic_efficiency_pct = Some(ce);

@@ -1,0 +1,221 @@
+//! `packbench serve`: the web console (see [`crate::console`]).
+
+use crate::cli::args::{parse_speed, sim_config};
+use crate::cli::exit::ExitCode;
+use crate::console::bays::{Bay, BayKind};
+use crate::console::Console;
+use crate::session::error::RunError;
+use crate::session::request::Speed;
+use anyhow::Context;
+use clap::Args;
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+use std::sync::{Arc, Mutex};
+
+#[derive(Debug, Args)]
+pub struct ServeArgs {
+    /// The shop's bench file: one bay per station.
+    #[arg(long, required_unless_present = "sim", conflicts_with = "sim")]
+    pub bench: Option<PathBuf>,
+    /// This many simulated bays instead (a demo, or training).
+    #[arg(long)]
+    pub sim: Option<usize>,
+    /// Where to listen. Anything but a loopback address needs an access
+    /// token on every request (printed at start, or --token-file).
+    #[arg(long, default_value = "127.0.0.1:8080")]
+    pub listen: SocketAddr,
+    /// Read the access token from this file (at least 16 characters)
+    /// instead of generating one.
+    #[arg(long)]
+    pub token_file: Option<PathBuf>,
+    /// Results folder.
+    #[arg(long, default_value = "results")]
+    pub results: PathBuf,
+    /// The procedures a start form offers: every .toml file here.
+    #[arg(long, default_value = "procedures")]
+    pub procedures: PathBuf,
+    /// The simulated bays' pace: bench seconds per wall second (1 = real
+    /// time).
+    #[arg(long, default_value = "1")]
+    pub speed: String,
+    /// The simulated bays' pack and bench settings (TOML).
+    #[arg(long)]
+    pub sim_config: Option<PathBuf>,
+}
+
+fn procedures(dir: &Path) -> Result<Vec<(String, PathBuf)>, RunError> {
+    let entries = std::fs::read_dir(dir)
+        .map_err(|e| RunError::arguments(format!("--procedures {}: {e}", dir.display())))?;
+    let mut v: Vec<(String, PathBuf)> = entries
+        .flatten()
+        .map(|e| e.path())
+        .filter(|p| p.extension().is_some_and(|x| x == "toml"))
+        .filter_map(|p| Some((p.file_name()?.to_string_lossy().into_owned(), p)))
+        .collect();
+    v.sort();
+    if v.is_empty() {
+        return Err(RunError::arguments(format!(
+            "--procedures {}: no .toml procedure there",
+            dir.display()
+        )));
+    }
+    Ok(v)
+}
+
+fn token(a: &ServeArgs) -> Result<Option<String>, RunError> {
+    if let Some(f) = &a.token_file {
+        let t = std::fs::read_to_string(f)
+            .map_err(|e| RunError::arguments(format!("--token-file {}: {e}", f.display())))?
+            .trim()
+            .to_string();
+        if t.len() < 16 || !t.chars().all(|c| c.is_ascii_graphic()) {
+            return Err(RunError::arguments(format!(
+                "--token-file {}: a token is at least 16 printable characters without spaces",
+                f.display()
+            )));
+        }
+        return Ok(Some(t));
+    }
+    if a.listen.ip().is_loopback() {
+        return Ok(None);
+    }
+    use rand::Rng;
+    let mut rng = rand::rng();
+    Ok(Some(
+        (0..32)
+            .map(|_| format!("{:x}", rng.random_range(0..16u8)))
+            .collect(),
+    ))
+}
+
+/// Build the console: bays, procedures, token, station locks.
+pub fn console(a: &ServeArgs, bound: SocketAddr) -> Result<Console, RunError> {
+    let procedures = procedures(&a.procedures)?;
+    let token = token(a)?;
+    let mut bays = Vec::new();
+    let mut locks = Vec::new();
+    if let Some(file) = &a.bench {
+        let bench = crate::session::benchfile::BenchFile::load(file)?;
+        for st in bench.stations {
+            #[cfg(unix)]
+            locks.push(Box::new(crate::session::benchfile::lock_station(
+                &a.results, file, &st.name,
+            )?) as Box<dyn std::any::Any + Send + Sync>);
+            bays.push(Arc::new(Bay {
+                name: st.name.clone(),
+                kind: BayKind::Station {
+                    spec: Box::new(st),
+                    file: file.clone(),
+                },
+                job: Mutex::new(None),
+            }));
+        }
+    } else {
+        let n = a.sim.unwrap_or(1);
+        if !(1..=64).contains(&n) {
+            return Err(RunError::arguments("--sim: 1 to 64 simulated bays"));
+        }
+        let speed =
+            match parse_speed(&a.speed)? {
+                Speed::Factor(f) => f,
+                Speed::Max => return Err(RunError::arguments(
+                    "--speed max is for a single run; a console's bays are paced (1 = real time)",
+                )),
+            };
+        let cfg = sim_config(a.sim_config.as_deref(), false, &[])?;
+        for k in 1..=n {
+            bays.push(Arc::new(Bay {
+                name: k.to_string(),
+                kind: BayKind::Sim {
+                    cfg: Box::new(cfg.clone()),
+                    speed,
+                },
+                job: Mutex::new(None),
+            }));
+        }
+    }
+    std::fs::create_dir_all(&a.results).map_err(crate::session::error::io_err(&a.results))?;
+    Ok(Console {
+        bays,
+        results: a.results.clone(),
+        procedures,
+        token,
+        hosts: bound
+            .ip()
+            .is_loopback()
+            .then(|| crate::console::loopback_hosts(bound)),
+        emergency: crate::session::emergency::Emergency::default(),
+        locks,
+    })
+}
+
+pub fn cmd_serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
+    // Everything checked before the port is taken.
+    let _ = procedures(&a.procedures)?;
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .context("starting the runtime")?;
+    rt.block_on(async move {
+        let listener = tokio::net::TcpListener::bind(a.listen)
+            .await
+            .with_context(|| format!("listening on {}", a.listen))?;
+        let addr = listener.local_addr().context("the listening address")?;
+        let console = Arc::new(console(&a, addr)?);
+        println!(
+            "packbench console: http://{addr}/ ({} bays{})",
+            console.bays.len(),
+            if a.bench.is_some() { "" } else { ", simulated" }
+        );
+        if let Some(t) = &console.token {
+            println!("access token: {t}");
+            println!("open http://{addr}/?token={t} once in each browser (kept in a cookie), or send Authorization: Bearer {t}");
+        }
+        let app = crate::console::router(console.clone());
+        let stopping = console.clone();
+        axum::serve(listener, app)
+            .with_graceful_shutdown(async move { shutdown(stopping).await })
+            .await
+            .context("serving")?;
+        Ok::<(), anyhow::Error>(())
+    })?;
+    Ok(ExitCode::Ok)
+}
+
+/// Ctrl-C: every running bay to its safe stop (outputs off, confirmed,
+/// runs marked interrupted), then the server ends; a second Ctrl-C sends
+/// the safe state once more on fresh links and quits at once.
+async fn shutdown(c: Arc<Console>) {
+    if tokio::signal::ctrl_c().await.is_err() {
+        std::future::pending::<()>().await;
+    }
+    eprintln!("\nCtrl-C: stopping every bay safely ... press Ctrl-C again to quit at once");
+    for b in &c.bays {
+        let g = match b.job.lock() {
+            Ok(g) => g,
+            Err(p) => p.into_inner(),
+        };
+        if let Some(j) = g.as_ref() {
+            j.stop.request_stop();
+        }
+    }
+    let em = c.emergency.clone();
+    tokio::spawn(async move {
+        if tokio::signal::ctrl_c().await.is_ok() {
+            for (who, sent) in em.all_off(std::time::Duration::from_millis(1500)).await {
+                eprintln!(
+                    "  {who}: {}",
+                    if sent {
+                        "off sent"
+                    } else {
+                        "NOT REACHED: switch it off by hand"
+                    }
+                );
+            }
+            std::process::exit(ExitCode::SecondInterrupt.code());
+        }
+    });
+    while c.bays.iter().any(|b| b.busy()) {
+        tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+    }
+}

@@ -1,0 +1,368 @@
+//! The bays a console drives: each a simulated bay or a bench file's
+//! station, each with at most one run at a time on a thread of its own
+//! (its own runtime, as `packbench run` has), so nothing the web side does
+//! can make a sample late.
+
+use crate::session::benchfile::StationSpec;
+use crate::session::error::RunError;
+use crate::session::live::{Board, BoardState, Live};
+use crate::session::request::{PackSource, RunOptions, RunReport, RunRequest, Speed, StationJob};
+use engine::control::StopHandle;
+use model::pack::PackSpec;
+use serde::Serialize;
+use sim::SimConfig;
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+use std::sync::{Arc, Mutex};
+
+/// Where a bay's instruments are.
+#[derive(Clone)]
+pub enum BayKind {
+    /// The embedded simulated bench, paced.
+    Sim { cfg: Box<SimConfig>, speed: f64 },
+    /// A bench file's station (real instruments, or its `sim` links).
+    Station {
+        spec: Box<StationSpec>,
+        file: PathBuf,
+    },
+}
+
+/// Where a bay's run leaves its report (or why it never ran).
+pub type Done = Arc<Mutex<Option<Result<RunReport, String>>>>;
+
+/// A run on a bay: its board, its stop handle, and its report when done.
+pub struct Job {
+    pub board: Board,
+    pub stop: StopHandle,
+    pub done: Done,
+    pub resumed: bool,
+}
+
+/// One bay.
+pub struct Bay {
+    pub name: String,
+    pub kind: BayKind,
+    pub job: Mutex<Option<Job>>,
+}
+
+/// What a start request carries (the form's fields).
+#[derive(Debug, Clone, Default, serde::Deserialize)]
+pub struct StartForm {
+    #[serde(default)]
+    pub pack_id: String,
+    #[serde(default)]
+    pub procedure: String,
+    /// The pack's spec; empty to use the saved `pack.toml`.
+    #[serde(default)]
+    pub chemistry: String,
+    #[serde(default)]
+    pub series: String,
+    #[serde(default)]
+    pub rated: String,
+}
+
+/// Errors of a request, by form field (`""` for the request as a whole).
+#[derive(Debug, Clone, Default, Serialize, PartialEq)]
+pub struct FieldErrors(pub BTreeMap<String, String>);
+
+impl FieldErrors {
+    pub fn one(field: &str, message: impl Into<String>) -> FieldErrors {
+        let mut m = BTreeMap::new();
+        m.insert(field.to_string(), message.into());
+        FieldErrors(m)
+    }
+}
+
+/// A bay as the page and the API show it.
+#[derive(Debug, Clone, Serialize)]
+pub struct BayView {
+    pub name: String,
+    pub kind: &'static str,
+    /// idle, starting, running, completed, aborted, interrupted, failed.
+    pub state: &'static str,
+    pub live: Option<LiveView>,
+    pub result: Option<ResultView>,
+}
+
+/// The live figures of a running bay.
+#[derive(Debug, Clone, Serialize)]
+pub struct LiveView {
+    pub pack_id: String,
+    pub step: u32,
+    pub steps: u32,
+    pub kind: Option<String>,
+    pub run_t_s: f64,
+    pub voltage_v: f64,
+    pub current_a: f64,
+    pub power_w: f64,
+    pub step_ah: f64,
+    pub step_wh: f64,
+    pub soc_pct: Option<f64>,
+    pub eta_s: Option<f64>,
+    pub eta_lower_bound: bool,
+    pub temperature_c: Option<f64>,
+    pub alarms: Vec<String>,
+    pub samples: u64,
+}
+
+/// How a bay's last run ended.
+#[derive(Debug, Clone, Serialize)]
+pub struct ResultView {
+    pub pack_id: String,
+    pub run_id: String,
+    pub status: String,
+    pub stop_reason: Option<String>,
+    pub capacity_ah: Option<f64>,
+    pub soh_pct: Option<f64>,
+    pub grade: Option<String>,
+    pub resumable: bool,
+    /// The failure when the run never ran.
+    pub error: Option<String>,
+}
+
+fn live_view(l: &Live) -> LiveView {
+    LiveView {
+        pack_id: l.pack_id.clone(),
+        step: l.step,
+        steps: l.steps,
+        kind: l.kind.map(|k| k.name().to_string()),
+        run_t_s: l.run_t_s,
+        voltage_v: l.voltage_v,
+        current_a: l.current_a,
+        power_w: l.power_w,
+        step_ah: l.step_ah,
+        step_wh: l.step_wh,
+        soc_pct: l.soc.map(|s| s * 100.0),
+        eta_s: l.eta_s.map(|e| e.0),
+        eta_lower_bound: l.eta_s.is_some_and(|e| e.1),
+        temperature_c: l.temperature_c,
+        alarms: l.alarms.clone(),
+        samples: l.samples,
+    }
+}
+
+impl Bay {
+    /// The bay now.
+    pub fn view(&self) -> BayView {
+        let kind = match self.kind {
+            BayKind::Sim { .. } => "simulated",
+            BayKind::Station { .. } => "station",
+        };
+        let guard = match self.job.lock() {
+            Ok(g) => g,
+            Err(p) => p.into_inner(),
+        };
+        let Some(job) = guard.as_ref() else {
+            return BayView {
+                name: self.name.clone(),
+                kind,
+                state: "idle",
+                live: None,
+                result: None,
+            };
+        };
+        let live = job.board.get();
+        let done = match job.done.lock() {
+            Ok(g) => g.clone(),
+            Err(p) => p.into_inner().clone(),
+        };
+        let result = done.map(|r| match r {
+            Ok(r) => ResultView {
+                pack_id: r.summary.pack_id.clone(),
+                run_id: r.summary.run_id.clone(),
+                status: r.summary.status.name().to_string(),
+                stop_reason: r.summary.stop_reason.clone(),
+                capacity_ah: r.summary.capacity.as_ref().map(|c| c.measured_ah),
+                soh_pct: r
+                    .summary
+                    .capacity
+                    .as_ref()
+                    .filter(|c| c.from_full_charge)
+                    .map(|c| c.soh_pct),
+                grade: r.summary.grade.as_ref().map(|g| g.label.clone()),
+                resumable: r.summary.status == model::status::RunStatus::Interrupted,
+                error: None,
+            },
+            Err(e) => ResultView {
+                pack_id: live.pack_id.clone(),
+                run_id: String::new(),
+                status: "failed".into(),
+                stop_reason: None,
+                capacity_ah: None,
+                soh_pct: None,
+                grade: None,
+                resumable: false,
+                error: Some(e),
+            },
+        });
+        let state = match (&result, live.state) {
+            (Some(r), _) if r.status == "failed" => "failed",
+            (Some(r), _) => match r.status.as_str() {
+                "completed" => "completed",
+                "aborted" => "aborted",
+                "interrupted" => "interrupted",
+                _ => "failed",
+            },
+            (None, BoardState::Starting) => "starting",
+            (None, _) => "running",
+        };
+        BayView {
+            name: self.name.clone(),
+            kind,
+            state,
+            live: Some(live_view(&live)),
+            result,
+        }
+    }
+
+    /// Whether a run is going on (started and not ended).
+    pub fn busy(&self) -> bool {
+        let guard = match self.job.lock() {
+            Ok(g) => g,
+            Err(p) => p.into_inner(),
+        };
+        guard.as_ref().is_some_and(|j| {
+            let done = match j.done.lock() {
+                Ok(g) => g.is_some(),
+                Err(p) => p.into_inner().is_some(),
+            };
+            !done
+        })
+    }
+
+    /// The run folder of the bay's last run, if it ran.
+    pub fn last_run_dir(&self) -> Option<PathBuf> {
+        let guard = match self.job.lock() {
+            Ok(g) => g,
+            Err(p) => p.into_inner(),
+        };
+        let job = guard.as_ref()?;
+        let done = match job.done.lock() {
+            Ok(g) => g.clone(),
+            Err(p) => p.into_inner().clone(),
+        };
+        match done {
+            Some(Ok(r)) => Some(r.run_dir),
+            _ => None,
+        }
+    }
+}
+
+/// The request a start form makes, checked field by field before the
+/// checks `packbench run` makes (the same `prepare`).
+pub fn request(
+    bay: &Bay,
+    form: &StartForm,
+    procedures: &[(String, PathBuf)],
+    results: &Path,
+) -> Result<RunRequest, FieldErrors> {
+    let mut errors = FieldErrors::default();
+    let pack_id = form.pack_id.trim().to_string();
+    if let Err(e) = model::pack::check_pack_id(&pack_id) {
+        errors.0.insert("pack_id".into(), e.to_string());
+    }
+    let procedure = procedures
+        .iter()
+        .find(|(name, _)| *name == form.procedure)
+        .map(|(_, p)| p.clone());
+    if procedure.is_none() {
+        errors.0.insert(
+            "procedure".into(),
+            format!(
+                "'{}' is not one of this console's procedures",
+                form.procedure
+            ),
+        );
+    }
+    let pack = match spec_of(form) {
+        Ok(Some(spec)) => PackSource::Given(spec),
+        Ok(None) => PackSource::Saved {
+            allow_sim_default: matches!(bay.kind, BayKind::Sim { .. }),
+        },
+        Err((field, m)) => {
+            errors.0.insert(field, m);
+            PackSource::Saved {
+                allow_sim_default: false,
+            }
+        }
+    };
+    if !errors.0.is_empty() {
+        return Err(errors);
+    }
+    Ok(RunRequest {
+        procedure: procedure.unwrap_or_default(),
+        pack_id,
+        pack,
+        results: results.to_path_buf(),
+        options: RunOptions::default(),
+    })
+}
+
+/// The pack spec the form gives, none when it gives none.
+fn spec_of(form: &StartForm) -> Result<Option<PackSpec>, (String, String)> {
+    let (c, s, r) = (form.chemistry.trim(), form.series.trim(), form.rated.trim());
+    if c.is_empty() && s.is_empty() && r.is_empty() {
+        return Ok(None);
+    }
+    let chemistry = c
+        .parse()
+        .map_err(|e: String| ("chemistry".to_string(), e))?;
+    let series: u32 = s
+        .parse()
+        .ok()
+        .filter(|n| (1..=1000).contains(n))
+        .ok_or_else(|| {
+            (
+                "series".to_string(),
+                format!("'{s}' is not a number of cells in series (1 to 1000)"),
+            )
+        })?;
+    let rated =
+        model::units::capacity_ah(r).map_err(|e| ("rated".to_string(), format!("'{r}': {e}")))?;
+    let spec = PackSpec {
+        chemistry,
+        series,
+        rated_capacity_ah: rated,
+        rated_energy_wh: None,
+        rated_rate_c: None,
+        rated_resistance_mohm: None,
+    };
+    spec.check().map_err(|e| ("rated".to_string(), e))?;
+    Ok(Some(spec))
+}
+
+/// Which field a refusal of `prepare` belongs to.
+pub fn field_of(e: &RunError) -> FieldErrors {
+    use crate::session::error::InputError;
+    let text = e.to_string();
+    let field = match e {
+        RunError::Input(InputError::PackId(_)) => "pack_id",
+        RunError::Input(InputError::Located(_)) if text.contains("pack.toml") => "rated",
+        RunError::Input(InputError::Located(_)) => "procedure",
+        _ if text.contains("pack") && text.contains("spec") => "rated",
+        _ => "",
+    };
+    FieldErrors::one(field, text)
+}
+
+/// A job for a prepared request on a bay.
+pub fn job(bay: &Bay, prepared: crate::session::request::Prepared, board: Board) -> StationJob {
+    match &bay.kind {
+        BayKind::Sim { cfg, speed } => StationJob {
+            name: bay.name.clone(),
+            prepared,
+            station: None,
+            cfg: (**cfg).clone(),
+            speed: Speed::Factor(*speed),
+            board,
+        },
+        BayKind::Station { spec, file } => StationJob {
+            name: bay.name.clone(),
+            prepared,
+            station: Some(((**spec).clone(), file.clone())),
+            cfg: SimConfig::default(),
+            speed: Speed::Factor(1.0),
+            board,
+        },
+    }
+}

@@ -1,0 +1,173 @@
+//! The pages: the bays page and its script and style (embedded in the
+//! binary), the packs page, and the reports, grade card and pack label
+//! rendered from the results.
+
+use super::security::refused_names;
+use super::Console;
+use axum::extract::{Path, State};
+use axum::http::{header, HeaderMap, StatusCode};
+use axum::response::{Html, IntoResponse, Response};
+use std::sync::Arc;
+
+const BAYS_HTML: &str = include_str!("assets/bays.html");
+const PACKS_HTML: &str = include_str!("assets/packs.html");
+const STYLE_CSS: &str = include_str!("assets/style.css");
+const CONSOLE_JS: &str = include_str!("assets/console.js");
+
+pub async fn bays() -> Html<&'static str> {
+    Html(BAYS_HTML)
+}
+
+pub async fn packs() -> Html<&'static str> {
+    Html(PACKS_HTML)
+}
+
+pub async fn style() -> Response {
+    (
+        [(header::CONTENT_TYPE, "text/css; charset=utf-8")],
+        STYLE_CSS,
+    )
+        .into_response()
+}
+
+pub async fn script() -> Response {
+    (
+        [(header::CONTENT_TYPE, "text/javascript; charset=utf-8")],
+        CONSOLE_JS,
+    )
+        .into_response()
+}
+
+pub async fn not_found() -> Response {
+    (
+        StatusCode::NOT_FOUND,
+        Html("<!doctype html><title>Not found</title><p>Not found. <a href=\"/\">Bays</a>"),
+    )
+        .into_response()
+}
+
+fn page_error(status: StatusCode, what: &str) -> Response {
+    let body = format!(
+        "<!doctype html><meta charset=\"utf-8\"><title>packbench</title><link rel=\"stylesheet\" href=\"/style.css\"><main><p class=\"error\">{}</p><p><a href=\"/\">Bays</a> · <a href=\"/packs\">Packs</a></p></main>",
+        report::markup::escape(what)
+    );
+    (status, Html(body)).into_response()
+}
+
+/// A pack's history with the fade charts and projection.
+pub async fn pack(State(c): State<Arc<Console>>, Path(pack): Path<String>) -> Response {
+    if let Some(r) = refused_names(&[("pack", &pack)]) {
+        return r;
+    }
+    let h = match record::history::load(&c.results, &pack, None) {
+        Ok(h) => h,
+        Err(e) => return page_error(StatusCode::NOT_FOUND, &e.to_string()),
+    };
+    let mut fa = analysis::fade::trend::analyze(&h, 80.0);
+    fa.flag_against(chrono::Utc::now().date_naive());
+    Html(report::html::pack_report(
+        &h,
+        &fa,
+        &record::history::capacity_curves(&h),
+    ))
+    .into_response()
+}
+
+/// One run's report (written again from its record when missing).
+pub async fn run(
+    State(c): State<Arc<Console>>,
+    Path((pack, run)): Path<(String, String)>,
+) -> Response {
+    if let Some(r) = refused_names(&[("pack", &pack), ("run", &run)]) {
+        return r;
+    }
+    let dir = c.results.join(&pack).join(&run);
+    if let Ok(text) = std::fs::read_to_string(dir.join(record::REPORT_HTML)) {
+        return Html(text).into_response();
+    }
+    let summary = match record::read::read_summary(&dir.join(record::SUMMARY_JSON)) {
+        Ok(s) => s,
+        Err(e) => return page_error(StatusCode::NOT_FOUND, &e.to_string()),
+    };
+    match report::charts::from_log(&summary, &dir.join(record::SAMPLES_CSV)) {
+        Ok(charts) => Html(report::html::run_report(&summary, &charts)).into_response(),
+        Err(e) => page_error(StatusCode::NOT_FOUND, &e.to_string()),
+    }
+}
+
+/// The QR code of a text as SVG, sized in millimetres.
+pub fn qr_svg(text: &str, size_mm: f64) -> Option<String> {
+    let code = qrcode::QrCode::with_error_correction_level(text, qrcode::EcLevel::M).ok()?;
+    let svg = code
+        .render::<qrcode::render::svg::Color<'_>>()
+        .quiet_zone(true)
+        .build();
+    // Sized by the label, not in pixels.
+    Some(svg.replacen(
+        "<svg ",
+        &format!("<svg style=\"width:{size_mm}mm;height:{size_mm}mm\" "),
+        1,
+    ))
+}
+
+/// A pack label for a 62 mm roll (62 × 29 mm): pack id, grade, state of
+/// health, capacity, date, and a QR code linking to the run's page.
+pub async fn label(
+    State(c): State<Arc<Console>>,
+    headers: HeaderMap,
+    Path((pack, run)): Path<(String, String)>,
+) -> Response {
+    if let Some(r) = refused_names(&[("pack", &pack), ("run", &run)]) {
+        return r;
+    }
+    let dir = c.results.join(&pack).join(&run);
+    let s = match record::read::read_summary(&dir.join(record::SUMMARY_JSON)) {
+        Ok(s) => s,
+        Err(e) => return page_error(StatusCode::NOT_FOUND, &e.to_string()),
+    };
+    let host = headers
+        .get(header::HOST)
+        .and_then(|h| h.to_str().ok())
+        .unwrap_or("127.0.0.1");
+    let url = format!("http://{host}/packs/{pack}/runs/{run}");
+    let qr = qr_svg(&url, 25.0).unwrap_or_default();
+    let esc = report::markup::escape;
+    let grade = s
+        .grade
+        .as_ref()
+        .map(|g| g.label.clone())
+        .unwrap_or("-".into());
+    let (cap, soh) = match &s.capacity {
+        Some(c) if c.from_full_charge => (
+            format!("{:.2} Ah", c.measured_ah),
+            format!("{:.1} %", c.soh_pct),
+        ),
+        Some(c) => (format!("{:.2} Ah", c.measured_ah), "-".into()),
+        None => ("-".into(), "-".into()),
+    };
+    let body = format!(
+        r#"<!doctype html><html lang="en"><meta charset="utf-8"><title>Label {pack_e}</title>
+<style>
+@page {{ size: 62mm 29mm; margin: 0 }}
+body {{ margin: 0; font-family: sans-serif }}
+.label {{ width: 62mm; height: 29mm; box-sizing: border-box; padding: 1.5mm 2mm; display: flex; gap: 2mm; align-items: center; border: 0.2mm dashed #999 }}
+@media print {{ .label {{ border: none }} .noprint {{ display: none }} }}
+.text {{ flex: 1; line-height: 1.15 }}
+.id {{ font-size: 11pt; font-weight: bold }}
+.grade {{ font-size: 15pt; font-weight: bold }}
+.small {{ font-size: 7pt }}
+</style>
+<div class="label" id="label">
+<div class="text"><div class="id">{pack_e}</div><div class="grade">Grade {grade_e}</div>
+<div class="small">SOH {soh} · {cap}</div><div class="small">Tested {date}</div></div>
+<div class="qr">{qr}</div>
+</div>
+<p class="noprint small">62 mm roll, 62 × 29 mm label. The code opens <a href="{url_e}">{url_e}</a>. <a href="/">Bays</a></p>
+</html>"#,
+        pack_e = esc(&pack),
+        grade_e = esc(&grade),
+        date = esc(&s.test_date),
+        url_e = esc(&url),
+    );
+    Html(body).into_response()
+}

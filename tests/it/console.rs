@@ -1,0 +1,446 @@
+//! The web console (`packbench serve`) through its HTTP API: a test
+//! started on a simulated bay, its values live, stopped to outputs off and
+//! interrupted, resumed, its report and label; a bad pack id or procedure
+//! refused by field with nothing started; and the security rules.
+
+use crate::util::*;
+use std::io::{BufRead, BufReader, Read, Write};
+use std::net::TcpStream;
+use std::path::Path;
+use std::process::{Child, Command, Stdio};
+use std::time::Duration;
+
+/// A console process, killed when dropped.
+pub struct Served {
+    pub child: Child,
+    pub addr: String,
+    pub token: Option<String>,
+}
+
+impl Drop for Served {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+/// Start `packbench serve` with these arguments (add `--listen
+/// 127.0.0.1:0` for a free port) and read its address and token.
+pub fn serve(dir: &Path, args: &[&str]) -> Served {
+    let mut child = Command::new(BIN)
+        .arg("serve")
+        .args(args)
+        .current_dir(dir)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::inherit())
+        .spawn()
+        .unwrap();
+    let mut out = BufReader::new(child.stdout.take().unwrap());
+    let mut addr = String::new();
+    let mut token = None;
+    let mut line = String::new();
+    while out.read_line(&mut line).unwrap() > 0 {
+        if let Some(rest) = line.strip_prefix("packbench console: http://") {
+            addr = rest.split('/').next().unwrap().to_string();
+            if !args.iter().any(|a| a.starts_with("0.0.0.0")) {
+                break;
+            }
+        }
+        if let Some(t) = line.strip_prefix("access token: ") {
+            token = Some(t.trim().to_string());
+            break;
+        }
+        line.clear();
+    }
+    assert!(!addr.is_empty(), "the console said no address");
+    // Keep reading its output so it never blocks on a full pipe.
+    std::thread::spawn(move || {
+        let mut sink = Vec::new();
+        let _ = out.read_to_end(&mut sink);
+    });
+    Served { child, addr, token }
+}
+
+/// A plain HTTP/1.1 request: (status, headers, body).
+pub fn http(
+    addr: &str,
+    method: &str,
+    path: &str,
+    headers: &[(&str, &str)],
+    body: &[u8],
+) -> (u16, String, String) {
+    let mut s = TcpStream::connect(addr.replace("0.0.0.0", "127.0.0.1")).unwrap();
+    s.set_read_timeout(Some(Duration::from_secs(20))).unwrap();
+    let mut req = format!("{method} {path} HTTP/1.1\r\nConnection: close\r\n");
+    if !headers.iter().any(|(k, _)| k.eq_ignore_ascii_case("host")) {
+        req.push_str(&format!("Host: {addr}\r\n"));
+    }
+    for (k, v) in headers {
+        req.push_str(&format!("{k}: {v}\r\n"));
+    }
+    req.push_str(&format!("Content-Length: {}\r\n\r\n", body.len()));
+    s.write_all(req.as_bytes()).unwrap();
+    let _ = s.write_all(body);
+    let mut raw = Vec::new();
+    let _ = s.read_to_end(&mut raw);
+    let text = String::from_utf8_lossy(&raw).to_string();
+    let (head, rest) = text.split_once("\r\n\r\n").unwrap_or((&text, ""));
+    let status = head
+        .split_whitespace()
+        .nth(1)
+        .and_then(|c| c.parse().ok())
+        .unwrap_or(0);
+    // Chunked bodies: good enough to search in.
+    (status, head.to_string(), rest.to_string())
+}
+
+pub const JSON_POST: [(&str, &str); 2] = [
+    ("Content-Type", "application/json"),
+    ("X-Packbench-Request", "1"),
+];
+
+pub fn post(addr: &str, path: &str, body: &serde_json::Value) -> (u16, serde_json::Value) {
+    let (st, _, b) = http(addr, "POST", path, &JSON_POST, body.to_string().as_bytes());
+    (
+        st,
+        serde_json::from_str(&b).unwrap_or(serde_json::Value::Null),
+    )
+}
+
+pub fn get_json(addr: &str, path: &str) -> serde_json::Value {
+    let (st, _, b) = http(addr, "GET", path, &[], b"");
+    assert_eq!(st, 200, "{path}: {b}");
+    serde_json::from_str(&b).unwrap()
+}
+
+pub fn bay(addr: &str, name: &str) -> serde_json::Value {
+    get_json(addr, "/api/bays")
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|b| b["name"] == name)
+        .cloned()
+        .unwrap()
+}
+
+/// A quick procedure for the console's tests: a full charge (1C, CC-CV
+/// to a C/10 taper), a short rest, and a 1C capacity discharge to the
+/// cutoff: about two hours of bench time.
+pub fn quick_procedures(dir: &Path) -> std::path::PathBuf {
+    let p = dir.join("procedures");
+    std::fs::create_dir_all(&p).unwrap();
+    std::fs::write(
+        p.join("quick-check.toml"),
+        r#"title = "Quick check at 1C"
+
+[envelope]
+voltage_max = "4.25V/cell"
+voltage_min = "2.80V/cell"
+current_max = "1.2C"
+temperature_max = "65degC"
+temperature_min = "0degC"
+charge_max = "130%"
+step_time_max = "4h"
+
+[sampling]
+every = "1s"
+
+[[phase]]
+name = "full charge"
+  [[phase.step]]
+  kind = "charge"
+  current = "1C"
+  voltage = "4.20V/cell"
+  ends = ["current < 0.1C", "time > 3h"]
+
+  [[phase.step]]
+  kind = "rest"
+  ends = ["time > 5min"]
+
+[[phase]]
+name = "measure"
+  [[phase.step]]
+  kind = "discharge"
+  current = "1C"
+  ends = ["voltage < 3.0V/cell", "time > 2h"]
+  result = "capacity"
+"#,
+    )
+    .unwrap();
+    p
+}
+
+/// The whole round on a simulated bay, through the API the page uses.
+#[test]
+fn a_test_started_stopped_resumed_and_reported_through_the_api() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    quick_procedures(d);
+    write(d, "nearly-full.toml", "[pack]\ninitial_soc = 0.9\n");
+    let s = serve(
+        d,
+        &[
+            "--sim",
+            "2",
+            "--listen",
+            "127.0.0.1:0",
+            "--speed",
+            "400",
+            "--sim-config",
+            "nearly-full.toml",
+        ],
+    );
+    let a = &s.addr;
+    assert_eq!(
+        get_json(a, "/api/procedures"),
+        serde_json::json!(["quick-check.toml"])
+    );
+    // Refused by field, nothing started.
+    let bad = serde_json::json!({"pack_id": "../x", "procedure": "nope.toml"});
+    let (st, r) = post(a, "/api/bays/1/start", &bad);
+    assert_eq!(st, 422, "{r}");
+    assert!(
+        r["errors"]["pack_id"].as_str().unwrap().contains("'../x'"),
+        "{r}"
+    );
+    assert!(r["errors"]["procedure"].is_string(), "{r}");
+    assert_eq!(bay(a, "1")["state"], "idle");
+    assert!(!d.join("results").join("x").exists());
+    let form = serde_json::json!({
+        "pack_id": "FR-C07", "procedure": "quick-check.toml",
+        "chemistry": "li-ion", "series": "10", "rated": "14Ah"
+    });
+    // The dry run first.
+    let (st, r) = post(a, "/api/bays/1/check", &form);
+    assert_eq!(st, 200, "{r}");
+    assert!(
+        r["forecast_text"].as_str().unwrap().contains("discharge"),
+        "{r}"
+    );
+    assert_eq!(r["forecast"]["status"], "completed", "{r}");
+    assert_eq!(bay(a, "1")["state"], "idle", "a check starts nothing");
+    let (st, r) = post(a, "/api/bays/1/start", &form);
+    assert_eq!(st, 202, "{r}");
+    // Its values move.
+    let mut seen = Vec::new();
+    assert!(
+        wait_until(Duration::from_secs(20), || {
+            let b = bay(a, "1");
+            if b["state"] == "running" {
+                seen.push(b["live"]["run_t_s"].as_f64().unwrap_or(0.0));
+            }
+            seen.len() >= 2 && seen[seen.len() - 1] > seen[0] + 10.0
+        }),
+        "no live values: {seen:?}"
+    );
+    // The same pack on the other bay is refused.
+    let (st, r) = post(a, "/api/bays/2/start", &form);
+    assert_eq!(st, 422, "{r}");
+    assert!(
+        r["errors"]["pack_id"].as_str().unwrap().contains("bay 1"),
+        "{r}"
+    );
+    // Stop: interrupted, outputs off confirmed in its events.
+    let (st, _) = post(a, "/api/bays/1/stop", &serde_json::json!({}));
+    assert_eq!(st, 202);
+    assert!(wait_until(Duration::from_secs(20), || bay(a, "1")["state"]
+        == "interrupted"));
+    let b = bay(a, "1");
+    assert_eq!(b["result"]["resumable"], true);
+    let run_id = b["result"]["run_id"].as_str().unwrap().to_string();
+    let run_dir = d.join("results/FR-C07").join(&run_id);
+    let events = std::fs::read_to_string(run_dir.join("events.jsonl")).unwrap();
+    let off = events
+        .lines()
+        .rev()
+        .find(|l| l.contains("\"outputs_off\""))
+        .unwrap();
+    assert!(
+        off.contains("\"source_off_confirmed\":true")
+            && off.contains("\"load_off_confirmed\":true"),
+        "{off}"
+    );
+    // Resume: running again, then its end.
+    let (st, r) = post(a, "/api/bays/1/resume", &serde_json::json!({}));
+    assert_eq!(st, 202, "{r}");
+    assert!(wait_until(Duration::from_secs(10), || bay(a, "1")["state"]
+        == "running"));
+    assert!(
+        wait_until(Duration::from_secs(90), || bay(a, "1")["state"]
+            == "completed"),
+        "{}",
+        bay(a, "1")
+    );
+    let b = bay(a, "1");
+    assert!(b["result"]["capacity_ah"].as_f64().unwrap() > 10.0, "{b}");
+    assert!(b["result"]["soh_pct"].as_f64().unwrap() > 50.0, "{b}");
+    assert!(b["result"]["grade"].is_string(), "{b}");
+    // Its report, its label, its summary.
+    let (st, _, page) = http(a, "GET", &format!("/packs/FR-C07/runs/{run_id}"), &[], b"");
+    assert_eq!(st, 200);
+    assert!(page.contains("FR-C07"));
+    let (st, _, label) = http(
+        a,
+        "GET",
+        &format!("/packs/FR-C07/runs/{run_id}/label"),
+        &[],
+        b"",
+    );
+    assert_eq!(st, 200);
+    assert!(label.contains("<svg") && label.contains("Grade"), "{label}");
+    assert!(label.contains(&format!("/packs/FR-C07/runs/{run_id}")));
+    let summary = get_json(a, &format!("/api/packs/FR-C07/runs/{run_id}"));
+    assert_eq!(summary["status"], "completed");
+    let fleet = get_json(a, "/api/packs");
+    assert_eq!(fleet["rows"][0]["pack_id"], "FR-C07");
+}
+
+/// The rules that keep the console to its own page and its own folder.
+#[test]
+fn the_console_refuses_what_it_must() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    quick_procedures(d);
+    let s = serve(d, &["--sim", "1", "--listen", "127.0.0.1:0"]);
+    let a = &s.addr;
+    // A change from another site, or without the console's header.
+    let (st, _, _) = http(
+        a,
+        "POST",
+        "/api/bays/1/stop",
+        &[
+            ("Content-Type", "application/json"),
+            ("X-Packbench-Request", "1"),
+            ("Origin", "http://elsewhere.example"),
+        ],
+        b"{}",
+    );
+    assert_eq!(st, 403);
+    let (st, _, _) = http(
+        a,
+        "POST",
+        "/api/bays/1/stop",
+        &[("Content-Type", "application/json")],
+        b"{}",
+    );
+    assert_eq!(st, 403);
+    // A form post (no preflight needed across sites) is not JSON: refused.
+    let (st, _, _) = http(
+        a,
+        "POST",
+        "/api/bays/1/start",
+        &[
+            ("Content-Type", "application/x-www-form-urlencoded"),
+            ("X-Packbench-Request", "1"),
+        ],
+        b"pack_id=X",
+    );
+    assert_eq!(st, 415);
+    // Another Host (a rebinding name) is refused on loopback.
+    let (st, _, _) = http(a, "GET", "/api/bays", &[("Host", "attacker.example")], b"");
+    assert_eq!(st, 421);
+    // `../` in every path parameter.
+    for p in [
+        "/api/packs/..%2F..%2Fetc",
+        "/api/packs/..",
+        "/api/packs/FR-1/runs/..%2F..%2Fetc",
+        "/api/packs/..%2Fx/runs/r",
+        "/packs/..%2F..%2Fetc",
+        "/packs/FR-1/runs/..",
+        "/packs/FR-1/runs/..%2F..%2Fetc%2Fpasswd/label",
+        "/packs/..%2F..%2Fetc/runs/x/label",
+    ] {
+        let (st, _, body) = http(a, "GET", p, &[], b"");
+        assert!(st == 400 || st == 404, "{p}: {st}");
+        assert!(!body.contains("root:"), "{p}");
+    }
+    for p in ["/api/bays/..%2F1/start", "/api/bays/../start"] {
+        let (st, _) = post(a, p, &serde_json::json!({"pack_id": "A"}));
+        assert!(st == 400 || st == 404, "{p}: {st}");
+    }
+    // An oversized body.
+    let big = format!("{{\"pack_id\": \"{}\"}}", "x".repeat(100_000));
+    let (st, _, _) = http(a, "POST", "/api/bays/1/check", &JSON_POST, big.as_bytes());
+    assert_eq!(st, 413);
+    drop(s);
+    // Off loopback: a token on every request.
+    let s = serve(d, &["--sim", "1", "--listen", "0.0.0.0:0"]);
+    let t = s.token.clone().expect("a token printed");
+    let a = &s.addr;
+    let (st, _, _) = http(a, "GET", "/api/bays", &[], b"");
+    assert_eq!(st, 401);
+    let (st, _, _) = http(a, "GET", "/", &[], b"");
+    assert_eq!(st, 401);
+    let (st, _, _) = http(
+        a,
+        "GET",
+        "/api/bays",
+        &[("Authorization", "Bearer wrong-token-0000")],
+        b"",
+    );
+    assert_eq!(st, 401);
+    let bearer = format!("Bearer {t}");
+    let (st, _, _) = http(a, "GET", "/api/bays", &[("Authorization", &bearer)], b"");
+    assert_eq!(st, 200);
+    let (st, head, _) = http(a, "GET", &format!("/?token={t}"), &[], b"");
+    assert_eq!(st, 200);
+    assert!(
+        head.to_lowercase().contains("set-cookie: packbench_token="),
+        "{head}"
+    );
+    let cookie = format!("packbench_token={t}");
+    let (st, _, _) = http(a, "GET", "/api/bays", &[("Cookie", &cookie)], b"");
+    assert_eq!(st, 200);
+}
+
+/// A station is driven by one process: while `serve --bench` holds it, a
+/// second `serve` and a `run` on it are refused with the reason.
+#[cfg(unix)]
+#[test]
+fn a_station_is_driven_by_one_process_only() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    quick_procedures(d);
+    write(
+        d,
+        "shop.toml",
+        "[[station]]\nname = \"desk\"\n[station.source]\nlink = \"sim\"\nprofile = \"generic-scpi-source\"\n[station.load]\nlink = \"sim\"\nprofile = \"generic-scpi-load\"\n",
+    );
+    let s = serve(d, &["--bench", "shop.toml", "--listen", "127.0.0.1:0"]);
+    let b = get_json(&s.addr, "/api/bays");
+    assert_eq!(b[0]["name"], "desk");
+    assert_eq!(b[0]["kind"], "station");
+    let out = packbench_in(
+        d,
+        &["serve", "--bench", "shop.toml", "--listen", "127.0.0.1:0"],
+    );
+    assert_eq!(out.status.code(), Some(2), "{}", text(&out.stderr));
+    assert!(
+        text(&out.stderr).contains("driven by another packbench process"),
+        "{}",
+        text(&out.stderr)
+    );
+    let out = packbench_in(
+        d,
+        &[
+            "run",
+            "procedures/quick-check.toml",
+            "--bench",
+            "shop.toml",
+            "--pack",
+            "FR-D1",
+            "--quiet",
+        ],
+    );
+    assert_eq!(out.status.code(), Some(2), "{}", text(&out.stderr));
+    assert!(
+        text(&out.stderr).contains("station 'desk'"),
+        "{}",
+        text(&out.stderr)
+    );
+    assert!(!d.join("results/FR-D1").exists(), "nothing started");
+    drop(s);
+    // Released with the process.
+    let s = serve(d, &["--bench", "shop.toml", "--listen", "127.0.0.1:0"]);
+    assert_eq!(get_json(&s.addr, "/api/bays")[0]["state"], "idle");
+}
