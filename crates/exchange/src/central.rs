@@ -107,6 +107,7 @@ CREATE TABLE IF NOT EXISTS runs (
     bench text NOT NULL,
     summary_sha256 text NOT NULL,
     with_samples boolean NOT NULL,
+    source_stamp text,
     test_date text NOT NULL,
     status text NOT NULL,
     stop_reason text,
@@ -184,8 +185,8 @@ CREATE TABLE IF NOT EXISTS samples (
 );
 ";
 
-const INSERT_RUN: &str = "INSERT INTO runs (pack_id, run_id, folder, bench, summary_sha256, with_samples, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, summary, manifest)
-             VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15, $16, $17, $18, $19, $20::text::jsonb, $21::text::jsonb)
+const INSERT_RUN: &str = "INSERT INTO runs (pack_id, run_id, folder, bench, summary_sha256, with_samples, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, summary, manifest, source_stamp)
+             VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15, $16, $17, $18, $19, $20::text::jsonb, $21::text::jsonb, $22)
              ON CONFLICT (pack_id, run_id) DO NOTHING";
 const INSERT_STEP: &str = "INSERT INTO steps (pack_id, run_id, seq, step, cycle, phase, kind, name, samples, start_s, duration_s, charge_ah, energy_wh, charge_in_ah, charge_out_ah, energy_in_wh, energy_out_wh, end_reason)
              VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12, $13, $14, $15, $16, $17, $18)";
@@ -421,8 +422,10 @@ fn tls(t: &Target) -> Result<tokio_postgres_rustls::MakeRustlsConnect, CentralEr
     Ok(tokio_postgres_rustls::MakeRustlsConnect::new(config))
 }
 
-/// What the store holds: (pack, run) → (summary hash, with samples).
-type Known = HashMap<(String, String), (String, bool)>;
+/// What the store holds: (pack, folder) → (summary hash, with samples,
+/// the summary file's size and modification time where it was pushed
+/// from).
+type Known = HashMap<(String, String), (String, bool, Option<String>)>;
 
 /// An open central store, its schema checked.
 pub struct Store {
@@ -510,13 +513,13 @@ impl Store {
         let rows = self
             .client
             .query(
-                "SELECT pack_id, run_id, summary_sha256, with_samples FROM runs",
+                "SELECT pack_id, folder, summary_sha256, with_samples, source_stamp FROM runs",
                 &[],
             )
             .map_err(self.db())?;
         Ok(rows
             .iter()
-            .map(|r| ((r.get(0), r.get(1)), (r.get(2), r.get(3))))
+            .map(|r| ((r.get(0), r.get(1)), (r.get(2), r.get(3), r.get(4))))
             .collect())
     }
 
@@ -604,6 +607,21 @@ pub fn sync(store: &mut Store, results: &Path, opts: &SyncOptions) -> Result<Syn
         folders.sort();
         for run_dir in folders {
             let summary_path = run_dir.join(SUMMARY_JSON);
+            let folder = run_dir
+                .file_name()
+                .map(|f| f.to_string_lossy().into_owned())
+                .unwrap_or_default();
+            let want_samples = opts.samples && run_dir.join(SAMPLES_CSV).is_file();
+            let key = (pack_id.clone(), folder);
+            // The same file as when it was pushed from here (its size and
+            // modification time): there, unread.
+            let local_stamp = stamp(&summary_path);
+            if let Some((_, with, Some(st))) = known.get(&key) {
+                if *st == local_stamp && (*with || !want_samples) {
+                    done.runs_already_there += 1;
+                    continue;
+                }
+            }
             let bytes = std::fs::read(&summary_path).map_err(io(&summary_path))?;
             let sha = hex::encode(Sha256::digest(&bytes));
             let text = String::from_utf8_lossy(&bytes);
@@ -612,10 +630,8 @@ pub fn sync(store: &mut Store, results: &Path, opts: &SyncOptions) -> Result<Syn
                 done.runs_in_progress += 1;
                 continue;
             }
-            let key = (pack_id.clone(), summary.run_id.clone());
-            let want_samples = opts.samples && run_dir.join(SAMPLES_CSV).is_file();
             let replace = match known.get(&key) {
-                Some((s, with)) if *s == sha && (*with || !want_samples) => {
+                Some((s, with, _)) if *s == sha && (*with || !want_samples) => {
                     done.runs_already_there += 1;
                     continue;
                 }
@@ -626,8 +642,11 @@ pub fn sync(store: &mut Store, results: &Path, opts: &SyncOptions) -> Result<Syn
                 store,
                 &run_dir,
                 &summary,
-                &text,
-                &sha,
+                &Pushed {
+                    text: &text,
+                    sha: &sha,
+                    stamp: &local_stamp,
+                },
                 want_samples,
                 replace,
                 opts,
@@ -685,15 +704,36 @@ fn push_pack(
     Ok(())
 }
 
+/// A summary file as pushed: its text, hash and stamp.
+struct Pushed<'a> {
+    text: &'a str,
+    sha: &'a str,
+    stamp: &'a str,
+}
+
+/// A file's size and modification time (ns), as the index stamps it.
+fn stamp(path: &Path) -> String {
+    match std::fs::metadata(path) {
+        Ok(m) => {
+            let ns = m
+                .modified()
+                .ok()
+                .and_then(|t| t.duration_since(std::time::UNIX_EPOCH).ok())
+                .map(|d| d.as_nanos())
+                .unwrap_or(0);
+            format!("{}:{ns}", m.len())
+        }
+        Err(_) => "-".into(),
+    }
+}
+
 /// Push one run in one transaction: `Some(samples pushed)`, or `None`
 /// when another bench pushed the same run first.
-#[allow(clippy::too_many_arguments)]
 fn push_run(
     store: &mut Store,
     run_dir: &Path,
     summary: &record::Summary,
-    summary_text: &str,
-    sha: &str,
+    file: &Pushed<'_>,
     with_samples: bool,
     replace: bool,
     opts: &SyncOptions,
@@ -733,7 +773,7 @@ fn push_run(
                 &run_id,
                 &folder,
                 &opts.bench,
-                &sha,
+                &file.sha,
                 &with_samples,
                 &f.test_date,
                 &f.status.name(),
@@ -748,8 +788,9 @@ fn push_run(
                 &f.coulombic_efficiency_pct,
                 &f.grade,
                 &f.discharged_ah,
-                &summary_text,
+                &file.text,
                 &manifest,
+                &file.stamp,
             ],
         )
         .map_err(db)?;
