@@ -116,6 +116,48 @@ fn the_index_ranks_as_the_folders_do_and_follows_them() {
             .count()
     );
     assert!(count(&ix, "SELECT COUNT(*) FROM steps") >= (29 * 6 - 1) * 5);
+    // Cycles and resistance readings, as the summaries hold them.
+    let summaries: Vec<record::Summary> = f
+        .rows
+        .iter()
+        .flat_map(|r| record::history::run_summaries(&results.join(&r.pack_id)).unwrap())
+        .map(|(_, s)| s)
+        .collect();
+    assert_eq!(summaries.len(), 29 * 6 - 1);
+    let cycles: usize = summaries.iter().map(|s| s.cycles.len()).sum();
+    assert!(cycles > 0);
+    assert_eq!(count(&ix, "SELECT COUNT(*) FROM cycles"), cycles);
+    let readings: usize = summaries
+        .iter()
+        .map(|s| s.resistance.as_ref().map_or(0, |r| r.readings.len()))
+        .sum();
+    assert_eq!(count(&ix, "SELECT COUNT(*) FROM resistance"), readings);
+    drop(ix);
+    // An index of an older layout is thrown away and built again.
+    {
+        let c = rusqlite_free_set_schema(&results, "1");
+        assert!(c);
+    }
+    let (f2, r) = indexed(&results);
+    assert_eq!(r.runs_read, 29 * 6 - 1, "every run read again");
+    assert_eq!(f2, f);
+    let ix = Index::open(&results).unwrap();
+    assert_eq!(
+        ix.query_strings("SELECT value FROM meta WHERE key = 'schema'")
+            .unwrap()[0][0],
+        record::index::INDEX_SCHEMA.to_string()
+    );
+}
+
+/// Mark the index as written by an older layout (through the index's own
+/// connection: the test has no SQLite of its own).
+fn rusqlite_free_set_schema(results: &Path, v: &str) -> bool {
+    let ix = Index::open(results).unwrap();
+    ix.query_strings(&format!(
+        "UPDATE meta SET value = '{v}' WHERE key = 'schema' RETURNING value"
+    ))
+    .map(|rows| rows.len() == 1)
+    .unwrap_or(false)
 }
 
 /// `packbench index` killed with SIGKILL at ten points of a build: every

@@ -22,7 +22,7 @@ use std::path::{Path, PathBuf};
 /// The index file in a results folder.
 pub const INDEX_SQLITE: &str = "index.sqlite";
 /// The index layout this build writes and reads.
-pub const INDEX_SCHEMA: i64 = 1;
+pub const INDEX_SCHEMA: i64 = 2;
 
 #[derive(Debug, thiserror::Error)]
 pub enum IndexError {
@@ -85,6 +85,28 @@ CREATE TABLE IF NOT EXISTS steps (
     charge_in_ah REAL NOT NULL,
     charge_out_ah REAL NOT NULL,
     PRIMARY KEY (pack_id, folder, step)
+);
+CREATE TABLE IF NOT EXISTS cycles (
+    pack_id TEXT NOT NULL,
+    folder TEXT NOT NULL,
+    cycle INTEGER NOT NULL,
+    charge_ah REAL NOT NULL,
+    discharge_ah REAL NOT NULL,
+    charge_wh REAL NOT NULL,
+    discharge_wh REAL NOT NULL,
+    coulombic_efficiency_pct REAL,
+    energy_efficiency_pct REAL,
+    PRIMARY KEY (pack_id, folder, cycle)
+);
+CREATE TABLE IF NOT EXISTS resistance (
+    pack_id TEXT NOT NULL,
+    folder TEXT NOT NULL,
+    seq INTEGER NOT NULL,
+    step INTEGER NOT NULL,
+    dcir_mohm REAL NOT NULL,
+    method TEXT NOT NULL,
+    soc_pct REAL,
+    PRIMARY KEY (pack_id, folder, seq)
 );
 CREATE INDEX IF NOT EXISTS runs_by_date ON runs (test_date);
 CREATE INDEX IF NOT EXISTS runs_in_order ON runs (pack_id, test_date, run_id);
@@ -219,6 +241,20 @@ impl Index {
             Some(v) if v > INDEX_SCHEMA => {
                 return Err(IndexError::Newer { path, found: v });
             }
+            Some(v) if v < INDEX_SCHEMA => {
+                // An older layout: thrown away and built again from the
+                // folders (the index can always be).
+                conn.execute_batch(
+                    "DROP TABLE IF EXISTS packs; DROP TABLE IF EXISTS runs; DROP TABLE IF EXISTS steps; DROP TABLE IF EXISTS cycles; DROP TABLE IF EXISTS resistance; DROP TABLE IF EXISTS meta;",
+                )
+                .map_err(sql)?;
+                conn.execute_batch(SCHEMA).map_err(sql)?;
+                conn.execute(
+                    "INSERT OR REPLACE INTO meta (key, value) VALUES ('schema', ?1)",
+                    params![INDEX_SCHEMA.to_string()],
+                )
+                .map_err(sql)?;
+            }
             Some(_) => {}
             None => {
                 conn.execute(
@@ -284,7 +320,7 @@ impl Index {
                 error,
             };
             let tx = self.conn.transaction().map_err(sql)?;
-            for t in ["steps", "runs", "packs"] {
+            for t in ["steps", "cycles", "resistance", "runs", "packs"] {
                 tx.execute(&format!("DELETE FROM {t} WHERE pack_id = ?1"), params![k])
                     .map_err(sql)?;
             }
@@ -396,7 +432,17 @@ impl Index {
         let mut facts = Vec::new();
         for (name, summary, st) in &changed {
             let s = crate::read::read_summary(summary).map_err(HistoryError::from)?;
-            facts.push((name.clone(), st.clone(), RunFacts::of(&s), s.steps));
+            let readings = s
+                .resistance
+                .as_ref()
+                .map(|r| r.readings.clone())
+                .unwrap_or_default();
+            facts.push((
+                name.clone(),
+                st.clone(),
+                RunFacts::of(&s),
+                (s.steps, s.cycles, readings),
+            ));
         }
         let tx = self.conn.transaction().map_err(&sql)?;
         if let Some((spec, text, csv)) = &pack_row {
@@ -423,13 +469,15 @@ impl Index {
                 params![pack_id, k],
             )
             .map_err(&sql)?;
-            tx.execute(
-                "DELETE FROM steps WHERE pack_id = ?1 AND folder = ?2",
-                params![pack_id, k],
-            )
-            .map_err(&sql)?;
+            for table in ["steps", "cycles", "resistance"] {
+                tx.execute(
+                    &format!("DELETE FROM {table} WHERE pack_id = ?1 AND folder = ?2"),
+                    params![pack_id, k],
+                )
+                .map_err(&sql)?;
+            }
         }
-        for (name, st, f, steps) in &facts {
+        for (name, st, f, (steps, cycles, readings)) in &facts {
             let c = f.capacity.as_ref();
             tx.execute(
                 "INSERT OR REPLACE INTO runs (pack_id, folder, run_id, stamp, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17)",
@@ -454,18 +502,7 @@ impl Index {
                 ],
             )
             .map_err(&sql)?;
-            tx.execute(
-                "DELETE FROM steps WHERE pack_id = ?1 AND folder = ?2",
-                params![pack_id, name],
-            )
-            .map_err(&sql)?;
-            for s in steps {
-                tx.execute(
-                    "INSERT INTO steps (pack_id, folder, step, kind, duration_s, charge_in_ah, charge_out_ah) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
-                    params![pack_id, name, s.step, s.kind.to_string(), s.duration_s, s.charge_in_ah, s.charge_out_ah],
-                )
-                .map_err(&sql)?;
-            }
+            write_children(&tx, pack_id, name, steps, cycles, readings).map_err(&sql)?;
         }
         tx.commit().map_err(&sql)?;
         Ok((pack_changed, facts.len(), gone.len()))
@@ -601,6 +638,42 @@ impl Index {
             .map_err(&sql)?;
         rows.collect::<Result<_, _>>().map_err(&sql)
     }
+}
+
+/// A run's steps, cycles and resistance readings, replaced.
+fn write_children(
+    tx: &rusqlite::Transaction<'_>,
+    pack_id: &str,
+    name: &str,
+    steps: &[analysis::StepSummary],
+    cycles: &[analysis::CycleSummary],
+    readings: &[analysis::resistance::ResistanceReading],
+) -> Result<(), rusqlite::Error> {
+    for table in ["steps", "cycles", "resistance"] {
+        tx.execute(
+            &format!("DELETE FROM {table} WHERE pack_id = ?1 AND folder = ?2"),
+            params![pack_id, name],
+        )?;
+    }
+    for c in cycles {
+        tx.execute(
+            "INSERT OR REPLACE INTO cycles (pack_id, folder, cycle, charge_ah, discharge_ah, charge_wh, discharge_wh, coulombic_efficiency_pct, energy_efficiency_pct) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9)",
+            params![pack_id, name, c.cycle, c.charge_ah, c.discharge_ah, c.charge_wh, c.discharge_wh, c.coulombic_efficiency_pct, c.energy_efficiency_pct],
+        )?;
+    }
+    for (k, r) in readings.iter().enumerate() {
+        tx.execute(
+            "INSERT INTO resistance (pack_id, folder, seq, step, dcir_mohm, method, soc_pct) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+            params![pack_id, name, k as i64, r.step, r.dcir_mohm, r.method, r.soc_pct],
+        )?;
+    }
+    for s in steps {
+        tx.execute(
+            "INSERT INTO steps (pack_id, folder, step, kind, duration_s, charge_in_ah, charge_out_ah) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+            params![pack_id, name, s.step, s.kind.to_string(), s.duration_s, s.charge_in_ah, s.charge_out_ah],
+        )?;
+    }
+    Ok(())
 }
 
 /// The fleet from the index, brought up to the folders first.
