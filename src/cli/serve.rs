@@ -96,6 +96,7 @@ pub fn console(a: &ServeArgs, bound: SocketAddr) -> Result<Console, RunError> {
     let mut locks = Vec::new();
     if let Some(file) = &a.bench {
         let bench = crate::session::benchfile::BenchFile::load(file)?;
+        let mut previous = crate::console::bays::interrupted_by_station(&a.results, file);
         for st in bench.stations {
             #[cfg(unix)]
             locks.push(Box::new(crate::session::benchfile::lock_station(
@@ -103,6 +104,7 @@ pub fn console(a: &ServeArgs, bound: SocketAddr) -> Result<Console, RunError> {
             )?) as Box<dyn std::any::Any + Send + Sync>);
             bays.push(Arc::new(Bay {
                 name: st.name.clone(),
+                previous: Mutex::new(previous.remove(&st.name)),
                 kind: BayKind::Station {
                     spec: Box::new(st),
                     file: file.clone(),
@@ -131,6 +133,7 @@ pub fn console(a: &ServeArgs, bound: SocketAddr) -> Result<Console, RunError> {
                     speed,
                 },
                 job: Mutex::new(None),
+                previous: Mutex::new(None),
             }));
         }
     }

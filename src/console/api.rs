@@ -183,6 +183,10 @@ fn claim(b: &Bay, board: &Board, resumed: bool) -> Option<(StopHandle, bays::Don
     }
     let stop = StopHandle::new();
     let done = Arc::new(Mutex::new(None));
+    match b.previous.lock() {
+        Ok(mut p) => *p = None,
+        Err(p) => *p.into_inner() = None,
+    }
     *g = Some(Job {
         board: board.clone(),
         stop: stop.clone(),

@@ -43,6 +43,9 @@ pub struct Bay {
     pub name: String,
     pub kind: BayKind,
     pub job: Mutex<Option<Job>>,
+    /// An interrupted run of this bay's station from before the console
+    /// started (a restart, a power cut): shown, and offered for resume.
+    pub previous: Mutex<Option<PathBuf>>,
 }
 
 /// What a start request carries (the form's fields).
@@ -120,6 +123,24 @@ pub struct ResultView {
     pub error: Option<String>,
 }
 
+fn result_of(s: &record::Summary) -> ResultView {
+    ResultView {
+        pack_id: s.pack_id.clone(),
+        run_id: s.run_id.clone(),
+        status: s.status.name().to_string(),
+        stop_reason: s.stop_reason.clone(),
+        capacity_ah: s.capacity.as_ref().map(|c| c.measured_ah),
+        soh_pct: s
+            .capacity
+            .as_ref()
+            .filter(|c| c.from_full_charge)
+            .map(|c| c.soh_pct),
+        grade: s.grade.as_ref().map(|g| g.label.clone()),
+        resumable: s.status == model::status::RunStatus::Interrupted,
+        error: None,
+    }
+}
+
 fn live_view(l: &Live) -> LiveView {
     LiveView {
         pack_id: l.pack_id.clone(),
@@ -153,12 +174,23 @@ impl Bay {
             Err(p) => p.into_inner(),
         };
         let Some(job) = guard.as_ref() else {
+            let previous = match self.previous.lock() {
+                Ok(g) => g.clone(),
+                Err(p) => p.into_inner().clone(),
+            };
+            let result = previous
+                .and_then(|dir| record::read::read_summary(&dir.join(record::SUMMARY_JSON)).ok())
+                .map(|s| result_of(&s));
             return BayView {
                 name: self.name.clone(),
                 kind,
-                state: "idle",
+                state: if result.is_some() {
+                    "interrupted"
+                } else {
+                    "idle"
+                },
                 live: None,
-                result: None,
+                result,
             };
         };
         let live = job.board.get();
@@ -167,22 +199,7 @@ impl Bay {
             Err(p) => p.into_inner().clone(),
         };
         let result = done.map(|r| match r {
-            Ok(r) => ResultView {
-                pack_id: r.summary.pack_id.clone(),
-                run_id: r.summary.run_id.clone(),
-                status: r.summary.status.name().to_string(),
-                stop_reason: r.summary.stop_reason.clone(),
-                capacity_ah: r.summary.capacity.as_ref().map(|c| c.measured_ah),
-                soh_pct: r
-                    .summary
-                    .capacity
-                    .as_ref()
-                    .filter(|c| c.from_full_charge)
-                    .map(|c| c.soh_pct),
-                grade: r.summary.grade.as_ref().map(|g| g.label.clone()),
-                resumable: r.summary.status == model::status::RunStatus::Interrupted,
-                error: None,
-            },
+            Ok(r) => result_of(&r.summary),
             Err(e) => ResultView {
                 pack_id: live.pack_id.clone(),
                 run_id: String::new(),
@@ -236,7 +253,12 @@ impl Bay {
             Ok(g) => g,
             Err(p) => p.into_inner(),
         };
-        let job = guard.as_ref()?;
+        let Some(job) = guard.as_ref() else {
+            return match self.previous.lock() {
+                Ok(g) => g.clone(),
+                Err(p) => p.into_inner().clone(),
+            };
+        };
         let done = match job.done.lock() {
             Ok(g) => g.clone(),
             Err(p) => p.into_inner().clone(),
@@ -365,4 +387,46 @@ pub fn job(bay: &Bay, prepared: crate::session::request::Prepared, board: Board)
             board,
         },
     }
+}
+
+/// The latest interrupted run of each of a bench file's stations, from
+/// the results index (runs whose `run.json` names this bench file and the
+/// station).
+pub fn interrupted_by_station(
+    results: &Path,
+    bench_file: &Path,
+) -> std::collections::HashMap<String, PathBuf> {
+    let mut out: std::collections::HashMap<String, (String, PathBuf)> = Default::default();
+    let Ok(mut ix) = record::index::Index::open(results) else {
+        return Default::default();
+    };
+    if ix.refresh(results).is_err() {
+        return Default::default();
+    }
+    let rows = ix
+        .query_strings("SELECT pack_id, folder FROM runs WHERE status = 'interrupted'")
+        .unwrap_or_default();
+    let ours = bench_file.canonicalize().ok();
+    for row in rows {
+        let [pack, folder] = &row[..] else { continue };
+        let dir = results.join(pack).join(folder);
+        let Ok(m) = record::read::read_manifest(&dir.join(record::RUN_JSON)) else {
+            continue;
+        };
+        let (Some(file), Some(station)) = (&m.bench.bench_file, &m.bench.station) else {
+            continue;
+        };
+        let same = Path::new(file).canonicalize().ok() == ours && ours.is_some()
+            || Path::new(file) == bench_file;
+        if !same {
+            continue;
+        }
+        let newer = out
+            .get(station)
+            .is_none_or(|(started, _)| m.started_utc > *started);
+        if newer {
+            out.insert(station.clone(), (m.started_utc.clone(), dir));
+        }
+    }
+    out.into_iter().map(|(k, (_, d))| (k, d)).collect()
 }

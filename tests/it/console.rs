@@ -394,7 +394,9 @@ fn the_console_refuses_what_it_must() {
 }
 
 /// A station is driven by one process: while `serve --bench` holds it, a
-/// second `serve` and a `run` on it are refused with the reason.
+/// second `serve` and a `run` on it are refused with the reason. A console
+/// started after one that stopped finds its station's interrupted run and
+/// resumes it.
 #[cfg(unix)]
 #[test]
 fn a_station_is_driven_by_one_process_only() {
@@ -439,8 +441,47 @@ fn a_station_is_driven_by_one_process_only() {
         text(&out.stderr)
     );
     assert!(!d.join("results/FR-D1").exists(), "nothing started");
+    // A run on the station, stopped: interrupted.
+    let a = s.addr.clone();
+    let form = serde_json::json!({
+        "pack_id": "FR-D2", "procedure": "quick-check.toml",
+        "chemistry": "li-ion", "series": "10", "rated": "14Ah"
+    });
+    let (st, r) = post(&a, "/api/bays/desk/start", &form);
+    assert_eq!(st, 202, "{r}");
+    assert!(wait_until(Duration::from_secs(20), || bay(&a, "desk")
+        ["live"]["samples"]
+        .as_u64()
+        .unwrap_or(0)
+        >= 2));
+    let (st, _) = post(&a, "/api/bays/desk/stop", &serde_json::json!({}));
+    assert_eq!(st, 202);
+    assert!(wait_until(Duration::from_secs(20), || bay(&a, "desk")
+        ["state"]
+        == "interrupted"));
+    let run_id = bay(&a, "desk")["result"]["run_id"].clone();
     drop(s);
-    // Released with the process.
+    // Released with the process; a new console finds the interrupted run
+    // of its station and resumes it.
     let s = serve(d, &["--bench", "shop.toml", "--listen", "127.0.0.1:0"]);
-    assert_eq!(get_json(&s.addr, "/api/bays")[0]["state"], "idle");
+    let a = s.addr.clone();
+    let b = bay(&a, "desk");
+    assert_eq!(b["state"], "interrupted", "{b}");
+    assert_eq!(b["result"]["run_id"], run_id);
+    assert_eq!(b["result"]["resumable"], true);
+    let (st, r) = post(&a, "/api/bays/desk/resume", &serde_json::json!({}));
+    assert_eq!(st, 202, "{r}");
+    assert!(wait_until(Duration::from_secs(20), || bay(&a, "desk")
+        ["state"]
+        == "running"));
+    let (st, _) = post(&a, "/api/bays/desk/stop", &serde_json::json!({}));
+    assert_eq!(st, 202);
+    assert!(wait_until(Duration::from_secs(20), || bay(&a, "desk")
+        ["state"]
+        == "interrupted"));
+    assert_eq!(
+        bay(&a, "desk")["result"]["run_id"],
+        run_id,
+        "the same run went on"
+    );
 }
