@@ -238,21 +238,10 @@ fn count(c: &mut postgres::Client, sql: &str) -> i64 {
     c.query_one(sql, &[]).unwrap().get(0)
 }
 
+/// A made-up fleet under `results`, from a real summary (the seed run
+/// is in `results/../seed`).
 fn synthetic(results: &Path, packs: usize, runs: usize) {
-    let seed = results.with_extension("seed");
-    let out = packbench(&[
-        "run",
-        "procedures/capacity-check.toml",
-        "--sim",
-        "--pack",
-        "FR-SEED",
-        "--quiet",
-        "--results",
-        seed.to_str().unwrap(),
-    ]);
-    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
-    let run = run_dirs(&seed.join("FR-SEED")).remove(0);
-    let template = record::read::read_summary(&run.join("summary.json")).unwrap();
+    let template = crate::index::template(results.parent().unwrap());
     packbench::cli::demo::synthetic_fleet(results, packs, runs, &template).unwrap();
 }
 
@@ -369,7 +358,7 @@ fn a_sync_killed_anywhere_is_completed_by_the_next_with_nothing_twice() {
     let (packs, runs) = (40, 6);
     synthetic(&results, packs, runs);
     // Real samples in a few runs, so some transactions are long.
-    let seed = results.with_extension("seed");
+    let seed = dir.path().join("seed");
     let seed_run = run_dirs(&seed.join("FR-SEED")).remove(0);
     for p in (0..packs).step_by(8) {
         let run = run_dirs(&results.join(format!("FR-B{p:05}"))).remove(0);

@@ -934,22 +934,8 @@ pub fn histories(store: &mut Store) -> Result<Vec<PackHistory>, CentralError> {
     for r in &rows {
         let pack: String = r.get(0);
         let status: String = r.get(3);
-        let capacity = match (
-            r.get::<_, Option<f64>>(6),
-            r.get::<_, Option<f64>>(7),
-            r.get::<_, Option<f64>>(8),
-            r.get::<_, Option<bool>>(9),
-            r.get::<_, Option<String>>(10),
-        ) {
-            (Some(m), Some(c), Some(s), Some(f), Some(p)) => Some(CapacityFacts {
-                measured_ah: m,
-                corrected_ah: c,
-                soh_pct: s,
-                from_full_charge: f,
-                preceded_by: p,
-            }),
-            _ => None,
-        };
+        let capacity =
+            CapacityFacts::from_columns(r.get(6), r.get(7), r.get(8), r.get(9), r.get(10));
         let folder: String = r.get(15);
         let facts = RunFacts {
             run_id: r.get(1),
@@ -987,16 +973,14 @@ pub fn histories(store: &mut Store) -> Result<Vec<PackHistory>, CentralError> {
             rated_resistance_mohm: r.get(6),
         };
         let csv: Option<String> = r.get(7);
-        let points = match &csv {
-            Some(text) => history::parse_history_csv(
-                &PathBuf::from(&id).join(HISTORY_CSV),
-                text,
-                spec.rated_capacity_ah,
-            )?,
-            None => Vec::new(),
-        };
         let pack_runs = runs.remove(&id).unwrap_or_default();
-        out.push(history::assemble(&id, spec, points, &pack_runs));
+        out.push(history::from_index(
+            &id,
+            spec,
+            csv.as_deref(),
+            &PathBuf::from(&id).join(HISTORY_CSV),
+            &pack_runs,
+        )?);
     }
     Ok(out)
 }

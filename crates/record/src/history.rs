@@ -182,6 +182,41 @@ pub struct CapacityFacts {
     pub preceded_by: String,
 }
 
+impl CapacityFacts {
+    /// From the columns an index keeps of it: all of them, or none.
+    pub fn from_columns(
+        measured_ah: Option<f64>,
+        corrected_ah: Option<f64>,
+        soh_pct: Option<f64>,
+        from_full_charge: Option<bool>,
+        preceded_by: Option<String>,
+    ) -> Option<CapacityFacts> {
+        Some(CapacityFacts {
+            measured_ah: measured_ah?,
+            corrected_ah: corrected_ah?,
+            soh_pct: soh_pct?,
+            from_full_charge: from_full_charge?,
+            preceded_by: preceded_by?,
+        })
+    }
+}
+
+/// A pack's history from what an index keeps of it: its spec, the text of
+/// its `history.csv` (named `csv_path` in errors) and its runs' facts.
+pub fn from_index(
+    pack_id: &str,
+    spec: PackSpec,
+    history_csv: Option<&str>,
+    csv_path: &Path,
+    runs: &[(PathBuf, RunFacts)],
+) -> Result<PackHistory, HistoryError> {
+    let points = match history_csv {
+        Some(text) => parse_history_csv(csv_path, text, spec.rated_capacity_ah)?,
+        None => Vec::new(),
+    };
+    Ok(assemble(pack_id, spec, points, runs))
+}
+
 impl RunFacts {
     pub fn of(s: &Summary) -> RunFacts {
         RunFacts {

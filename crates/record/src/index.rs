@@ -524,24 +524,13 @@ impl Index {
                     let pack: String = r.get(0)?;
                     let run_id: String = r.get(1)?;
                     let status: String = r.get(3)?;
-                    let capacity = match (
-                        r.get::<_, Option<f64>>(6)?,
-                        r.get::<_, Option<f64>>(7)?,
-                        r.get::<_, Option<f64>>(8)?,
-                        r.get::<_, Option<bool>>(9)?,
-                        r.get::<_, Option<String>>(10)?,
-                    ) {
-                        (Some(m), Some(c), Some(s), Some(f), Some(p)) => {
-                            Some(history::CapacityFacts {
-                                measured_ah: m,
-                                corrected_ah: c,
-                                soh_pct: s,
-                                from_full_charge: f,
-                                preceded_by: p,
-                            })
-                        }
-                        _ => None,
-                    };
+                    let capacity = history::CapacityFacts::from_columns(
+                        r.get(6)?,
+                        r.get(7)?,
+                        r.get(8)?,
+                        r.get(9)?,
+                        r.get(10)?,
+                    );
                     let folder: String = r.get(15)?;
                     Ok((
                         pack,
@@ -600,16 +589,14 @@ impl Index {
                 rated_rate_c: rate,
                 rated_resistance_mohm: resistance,
             };
-            let points = match &csv {
-                Some(text) => history::parse_history_csv(
-                    &dir.join(HISTORY_CSV),
-                    text,
-                    spec.rated_capacity_ah,
-                )?,
-                None => Vec::new(),
-            };
             let pack_runs = runs.remove(&id).unwrap_or_default();
-            out.push(history::assemble(&id, spec, points, &pack_runs));
+            out.push(history::from_index(
+                &id,
+                spec,
+                csv.as_deref(),
+                &dir.join(HISTORY_CSV),
+                &pack_runs,
+            )?);
         }
         Ok(out)
     }
