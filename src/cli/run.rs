@@ -427,20 +427,26 @@ pub fn spawn_interrupts(stop: StopHandle, em: crate::session::emergency::Emergen
         eprintln!("\nCtrl-C: stopping safely (outputs off, confirmed) ... press Ctrl-C again to quit at once");
         stop.request_stop();
         if tokio::signal::ctrl_c().await.is_ok() {
-            eprintln!("\nsecond Ctrl-C: one more switch-off on fresh links, then quitting");
-            for (who, sent) in em.all_off(std::time::Duration::from_millis(1500)).await {
-                eprintln!(
-                    "  {who}: {}",
-                    if sent {
-                        "off sent"
-                    } else {
-                        "NOT REACHED: switch it off by hand"
-                    }
-                );
-            }
-            std::process::exit(ExitCode::SecondInterrupt.code());
+            last_switch_off(&em).await;
         }
     });
+}
+
+/// The second Ctrl-C: the safe state once more on fresh links to every
+/// registered instrument, each said, then quit at once.
+pub async fn last_switch_off(em: &crate::session::emergency::Emergency) -> ! {
+    eprintln!("\nsecond Ctrl-C: one more switch-off on fresh links, then quitting");
+    for (who, sent) in em.all_off(std::time::Duration::from_millis(1500)).await {
+        eprintln!(
+            "  {who}: {}",
+            if sent {
+                "off sent"
+            } else {
+                "NOT REACHED: switch it off by hand"
+            }
+        );
+    }
+    std::process::exit(ExitCode::SecondInterrupt.code());
 }
 
 pub fn print_result(r: &crate::session::request::RunReport, quiet: bool) {

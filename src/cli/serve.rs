@@ -205,17 +205,7 @@ async fn shutdown(c: Arc<Console>) {
     let em = c.emergency.clone();
     tokio::spawn(async move {
         if tokio::signal::ctrl_c().await.is_ok() {
-            for (who, sent) in em.all_off(std::time::Duration::from_millis(1500)).await {
-                eprintln!(
-                    "  {who}: {}",
-                    if sent {
-                        "off sent"
-                    } else {
-                        "NOT REACHED: switch it off by hand"
-                    }
-                );
-            }
-            std::process::exit(ExitCode::SecondInterrupt.code());
+            crate::cli::run::last_switch_off(&em).await;
         }
     });
     while c.bays.iter().any(|b| b.busy()) {
