@@ -106,6 +106,9 @@ pub struct LiveView {
     pub temperature_c: Option<f64>,
     pub alarms: Vec<String>,
     pub samples: u64,
+    /// The lowest and highest cell group now: [group, volts].
+    pub group_low: Option<(u32, f64)>,
+    pub group_high: Option<(u32, f64)>,
 }
 
 /// How a bay's last run ended.
@@ -159,6 +162,8 @@ fn live_view(l: &Live) -> LiveView {
         temperature_c: l.temperature_c,
         alarms: l.alarms.clone(),
         samples: l.samples,
+        group_low: l.group_low,
+        group_high: l.group_high,
     }
 }
 

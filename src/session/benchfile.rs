@@ -46,6 +46,31 @@ struct RawStation {
     procedure: Option<Spanned<String>>,
     /// Settings of a simulated station (pack condition, faults).
     sim_config: Option<Spanned<String>>,
+    /// The pack's cell groups and temperature inputs on the meter's
+    /// channels.
+    groups: Option<Spanned<RawGroups>>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawGroups {
+    /// "direct" (each channel across one group) or "taps" (each channel a
+    /// tap against the pack's negative terminal).
+    wiring: Option<Spanned<String>>,
+    /// One channel per group, group 1 first: a SCPI channel list.
+    channels: Spanned<String>,
+    #[serde(default)]
+    temperature: Vec<Spanned<RawTemperature>>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawTemperature {
+    channel: Spanned<u32>,
+    name: Spanned<String>,
+    place: Option<Spanned<String>>,
+    group: Option<Spanned<u32>>,
+    max: Option<Spanned<String>>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -86,6 +111,7 @@ pub struct StationSpec {
     pub pack_spec: Option<PathBuf>,
     pub procedure: Option<PathBuf>,
     pub sim_config: Option<PathBuf>,
+    pub groups: Option<model::groups::GroupChannels>,
 }
 
 impl StationSpec {
@@ -188,8 +214,13 @@ impl Reader<'_> {
                 "sim_config is for a simulated station (links \"sim\")".into(),
             );
         }
+        let groups = match &st.groups {
+            Some(g) => Some(self.groups(g, meter.as_ref().and_then(|m| m.as_ref()))?),
+            None => None,
+        };
         let file = |f: &Option<Spanned<String>>| f.as_ref().map(|t| self.base.join(t.get_ref()));
         Some(StationSpec {
+            groups,
             name,
             drivers,
             meter: meter.flatten(),
@@ -197,6 +228,138 @@ impl Reader<'_> {
             pack_spec: file(&st.pack_spec),
             procedure: file(&st.procedure),
             sim_config: file(&st.sim_config),
+        })
+    }
+
+    /// The cell groups' channels and the temperature inputs, checked:
+    /// a meter that can read channels, one channel per group, no channel
+    /// twice, named inputs, groups that exist.
+    fn groups(
+        &mut self,
+        g: &Spanned<RawGroups>,
+        meter: Option<&Binding>,
+    ) -> Option<model::groups::GroupChannels> {
+        use model::groups::{parse_channel_list, GroupChannels, TemperatureChannel, Wiring};
+        let before = self.errors.len();
+        let raw = g.get_ref();
+        match meter {
+            None => self.err(
+                g.span(),
+                0,
+                "[station.groups] needs a [station.meter] that reads channels (e.g. profile = \"generic-scpi-scanner\")".into(),
+            ),
+            Some(m) => {
+                let c = &m.profile.commands;
+                if c.scan_read.is_none() && c.measure_channel_voltage.is_none() {
+                    self.err(
+                        g.span(),
+                        0,
+                        format!(
+                            "[station.groups]: the meter's profile '{}' cannot read channels (it needs scan_list and scan_read, or measure_channel_voltage)",
+                            m.profile.name
+                        ),
+                    );
+                }
+            }
+        }
+        let wiring = match raw.wiring.as_ref().map(|w| (w, w.get_ref().as_str())) {
+            None | Some((_, "direct")) => Wiring::Direct,
+            Some((_, "taps")) => Wiring::Taps,
+            Some((w, other)) => {
+                self.err(
+                    w.span(),
+                    1,
+                    format!("wiring = \"{other}\": expected \"direct\" or \"taps\""),
+                );
+                Wiring::Direct
+            }
+        };
+        let voltage = match parse_channel_list(raw.channels.get_ref()) {
+            Ok(v) if v.len() <= 400 => v,
+            Ok(v) => {
+                self.err(
+                    raw.channels.span(),
+                    1,
+                    format!("{} channels: at most 400 groups", v.len()),
+                );
+                Vec::new()
+            }
+            Err(e) => {
+                self.err(
+                    raw.channels.span(),
+                    1,
+                    format!("channels: {e}; expected a SCPI channel list, e.g. \"(@101:113)\""),
+                );
+                Vec::new()
+            }
+        };
+        let mut seen: Vec<u32> = Vec::new();
+        for &c in &voltage {
+            if seen.contains(&c) {
+                self.err(
+                    raw.channels.span(),
+                    1,
+                    format!("channel {c} is listed twice"),
+                );
+            }
+            seen.push(c);
+        }
+        let n = voltage.len() as u32;
+        let mut temperatures = Vec::new();
+        for t in &raw.temperature {
+            let t = t.get_ref();
+            let ch = *t.channel.get_ref();
+            if seen.contains(&ch) {
+                self.err(t.channel.span(), 0, format!("channel {ch} is already used"));
+            }
+            seen.push(ch);
+            let name = t.name.get_ref().trim().to_string();
+            if name.is_empty()
+                || temperatures
+                    .iter()
+                    .any(|x: &TemperatureChannel| x.name == name)
+            {
+                self.err(
+                    t.name.span(),
+                    1,
+                    format!("temperature input name '{name}': expected a name of its own"),
+                );
+            }
+            if let Some(gr) = &t.group {
+                if *gr.get_ref() == 0 || *gr.get_ref() > n {
+                    self.err(
+                        gr.span(),
+                        0,
+                        format!("group {}: expected 1 to {n}", gr.get_ref()),
+                    );
+                }
+            }
+            let max_c = match &t.max {
+                Some(m) => match model::units::temperature_c(m.get_ref()) {
+                    Ok(v) => Some(v),
+                    Err(e) => {
+                        self.err(m.span(), 1, e.to_string());
+                        None
+                    }
+                },
+                None => None,
+            };
+            temperatures.push(TemperatureChannel {
+                channel: ch,
+                name,
+                place: t
+                    .place
+                    .as_ref()
+                    .map(|p| p.get_ref().clone())
+                    .unwrap_or_default(),
+                group: t.group.as_ref().map(|g| *g.get_ref()),
+                max_c,
+            });
+        }
+        (self.errors.len() == before).then_some(GroupChannels {
+            wiring,
+            voltage,
+            temperatures,
         })
     }
 

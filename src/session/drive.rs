@@ -3,6 +3,7 @@
 
 use crate::session::error::io_err;
 use crate::session::error::Failure;
+use crate::session::error::InputError;
 use crate::session::error::RunError;
 use crate::session::finish::finish_record;
 use crate::session::links::BenchLinks;
@@ -44,6 +45,35 @@ pub fn procedure_stem(p: &Path) -> String {
         .unwrap_or_else(|| "run".into())
 }
 
+/// A station that reads groups: one group per cell of the pack's series
+/// count, and a meter that can scan. Checked before anything is created
+/// or any link spoken to.
+pub fn check_groups(p: &Prepared, links: &BenchLinks) -> Result<(), RunError> {
+    let Some(g) = &links.groups else {
+        return Ok(());
+    };
+    if g.groups() != p.pack.series as usize {
+        return Err(InputError::Arguments(format!(
+            "the station reads {} cell groups, but pack {} has {} in series: one group per cell of the series count",
+            g.groups(),
+            p.pack_id,
+            p.pack.series
+        ))
+        .into());
+    }
+    let scans = links.meter.as_ref().is_some_and(|m| {
+        let c = &m.profile.commands;
+        c.scan_read.is_some() || c.measure_channel_voltage.is_some()
+    });
+    if !scans {
+        return Err(InputError::Arguments(
+            "the station reads cell groups but its meter's profile cannot read channels (it needs scan_list and scan_read, or measure_channel_voltage)".into(),
+        )
+        .into());
+    }
+    Ok(())
+}
+
 /// Create the run folder, then drive. The run folder is created only
 /// here, after every check has passed.
 pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunReport, RunError> {
@@ -53,6 +83,7 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
         truth,
         sim,
     } = bench;
+    check_groups(p, &links)?;
     let started = chrono::Utc::now();
     // Sorted by the day the test counts for, then the wall-clock start.
     let base_id = format!(
@@ -124,6 +155,7 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
         timing: None,
         alarm_below_pct: p.options.alarm_below_pct,
         resumes: Vec::new(),
+        groups: links.groups.clone(),
     };
     let rec = Recording {
         dir,
@@ -212,6 +244,10 @@ pub async fn drive(
     }
     let board = links.hooks.board.clone();
     let shared_link = links.shared;
+    let groups = links.groups.clone();
+    if manifest.groups.is_none() {
+        manifest.groups = groups.clone();
+    }
     let mut station = match connect(links).await {
         Ok((station, records)) => {
             if manifest.instruments.is_empty() {
@@ -240,6 +276,7 @@ pub async fn drive(
         }
     };
     station.shared_link = shared_link;
+    station.groups = groups;
     write_manifest(&run_json, &manifest).await?;
     let alarm_ah = p
         .options
@@ -372,6 +409,7 @@ async fn connect(
             load,
             meter,
             shared_link: false,
+            groups: None,
         },
         records,
     ))

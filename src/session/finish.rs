@@ -59,10 +59,17 @@ pub fn finish_record(
         for t in &outcome.truth {
             match steps.iter_mut().find(|x| x.step == t.step) {
                 Some(x) => {
+                    // Each group's charge to cutoff counts from the step's
+                    // start: the interrupted part's charge is added in.
+                    let before = x.charge_ah;
                     x.charge_ah += t.charge_ah;
                     x.energy_wh += t.energy_wh;
+                    if !t.groups_to_cutoff_ah.is_empty() {
+                        x.groups_to_cutoff_ah =
+                            t.groups_to_cutoff_ah.iter().map(|g| g - before).collect();
+                    }
                 }
-                None => steps.push(*t),
+                None => steps.push(t.clone()),
             }
         }
         manifest.simulation = Some(SimulationRecord {

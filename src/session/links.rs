@@ -92,7 +92,27 @@ pub fn sim_bench_links(
                     reopen: Some(sim_reopen(&links.load_responder)),
                 },
             },
-            meter: None,
+            // A simulated pack built of groups has a scanner on them.
+            meter: links.meter.as_ref().map(|r| BoundLink {
+                link: sim::link_to(r),
+                profile: Profile::from_toml(
+                    std::path::Path::new("generic-scpi-scanner.toml"),
+                    instrument::profile::GENERIC_SCANNER,
+                )
+                .unwrap_or_else(|_| Profile::builtin(instrument::profile::ProfileRole::Meter)),
+                text: "sim".into(),
+                attach: Attach {
+                    trace: None,
+                    reopen: Some(sim_reopen(r)),
+                },
+            }),
+            groups: (cfg.groups.count > 0).then(|| {
+                model::groups::GroupChannels::sim_default(
+                    cfg.groups.count,
+                    cfg.groups.wiring,
+                    &cfg.groups.sensors,
+                )
+            }),
             shared: false,
             kind: SIMULATED.into(),
             speed: speed_text.to_string(),
@@ -137,6 +157,8 @@ pub struct BenchLinks {
     pub source: BoundLink,
     pub load: BoundLink,
     pub meter: Option<BoundLink>,
+    /// The cell groups and temperature inputs on the meter's channels.
+    pub groups: Option<model::groups::GroupChannels>,
     /// Source and load are one source-sink instrument on one link.
     pub shared: bool,
     pub kind: String,
@@ -192,6 +214,7 @@ pub async fn open_station(station: &StationSpec) -> Result<BenchLinks, RunError>
                     },
                 },
                 meter,
+                groups: station.groups.clone(),
                 shared: false,
                 kind: format!("station {}", station.name),
                 speed: "real time".into(),
@@ -235,6 +258,7 @@ pub async fn open_station(station: &StationSpec) -> Result<BenchLinks, RunError>
                 source: bound(Arc::clone(&reopen)),
                 load: bound(reopen),
                 meter,
+                groups: station.groups.clone(),
                 shared: true,
                 kind: format!("station {}", station.name),
                 speed: "real time".into(),

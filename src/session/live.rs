@@ -50,6 +50,10 @@ pub struct Live {
     pub eta_s: Option<(f64, bool)>,
     pub alarms: Vec<String>,
     pub samples: u64,
+    /// A station that reads groups: the lowest and the highest group now
+    /// (group number, volts).
+    pub group_low: Option<(u32, f64)>,
+    pub group_high: Option<(u32, f64)>,
 }
 
 impl Live {
@@ -91,6 +95,11 @@ impl Live {
         ));
         if let Some(t) = self.temperature_c {
             s.push_str(&format!("  {t:.1} degC"));
+        }
+        if let (Some((gl, vl)), Some((gh, vh))) = (self.group_low, self.group_high) {
+            s.push_str(&format!(
+                "  groups: low #{gl} {vl:.3} V, high #{gh} {vh:.3} V"
+            ));
         }
         if let Some(a) = self.alarms.last() {
             s.push_str(&format!("  ALARM: {a}"));
@@ -378,6 +387,16 @@ impl Sink for LiveSink<'_> {
         self.inner.event(e)?;
         let est = &mut self.est;
         self.board.update(|l| est.event(e, l));
+        Ok(())
+    }
+    fn groups(&mut self, g: &model::groups::GroupSample) -> std::io::Result<()> {
+        self.inner.groups(g)?;
+        if let Some((lo, hi)) = g.extremes() {
+            self.board.update(|l| {
+                l.group_low = Some(lo);
+                l.group_high = Some(hi);
+            });
+        }
         Ok(())
     }
 }

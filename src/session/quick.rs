@@ -249,6 +249,9 @@ pub fn quick_grade(
                 soh_pct: Some(s),
                 resistance_growth_pct: None,
                 coulombic_efficiency_pct: None,
+                weakest_group: None,
+                weakest_group_share_pct: None,
+                group_capacity_spread_pct: None,
             })
             .label
     };

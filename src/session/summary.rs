@@ -107,6 +107,9 @@ pub fn build_summary(
             resistance_growth_pct: growth,
             // The cycle of the capacity step (a full charge and the full
             // discharge); without a capacity step, the last complete cycle.
+            weakest_group: a.groups.as_ref().and_then(|g| g.weakest),
+            weakest_group_share_pct: a.groups.as_ref().and_then(|g| g.weakest_share_pct),
+            group_capacity_spread_pct: a.groups.as_ref().and_then(|g| g.capacity_spread_pct),
             coulombic_efficiency_pct: match &a.capacity {
                 Some(c) => {
                     let cycle = a.steps.iter().find(|s| s.step == c.step).map(|s| s.cycle);
@@ -155,6 +158,7 @@ pub fn build_summary(
         alarms: Vec::new(),
         bms,
         needs_rating: Vec::new(),
+        groups: a.groups,
     }
 }
 
@@ -303,12 +307,37 @@ pub fn summarize_run_with_curves(
             .collect(),
     );
     let mut feed = Feed::new();
+    // A pack read group by group: its channels, and the pack's current
+    // for each group scan.
+    let channels = record::read::read_manifest(&dir.join(record::RUN_JSON))
+        .ok()
+        .and_then(|m| m.groups);
+    let mut pack_points: Vec<analysis::groups::PackPoint> = Vec::new();
     let rep = stream_log(&dir.join(SAMPLES_CSV), &LogFormat::default(), |r: Row| {
         feed.note(r.t_s);
-        an.push(&r.sample());
+        let s = r.sample();
+        if channels.is_some() {
+            pack_points.push(analysis::groups::PackPoint {
+                t_s: s.t_s,
+                step: s.step,
+                current_a: s.current_a,
+            });
+        }
+        an.push(&s);
     })?;
     let mut a = an.finish();
     note_partial_line(&mut a, rep.partial_last_line, "samples.csv");
+    if let Some(ch) = &channels {
+        if let Some(rows) = record::read::read_groups(dir)? {
+            a.groups = Some(analysis::groups::analyze(&analysis::groups::GroupInputs {
+                channels: ch,
+                pack: &pack_points,
+                groups: &rows,
+                steps: &a.steps,
+                capacity_step: a.capacity.as_ref().map(|c| c.step),
+            }));
+        }
+    }
     let outcome = outcome.unwrap_or_else(|| {
         events
             .iter()

@@ -86,6 +86,9 @@ fn inputs(chemistry: Chemistry, soh: f64, growth: Option<f64>, ce: Option<f64>) 
         soh_pct: Some(soh),
         resistance_growth_pct: growth,
         coulombic_efficiency_pct: ce,
+        weakest_group: None,
+        weakest_group_share_pct: None,
+        group_capacity_spread_pct: None,
     }
 }
 

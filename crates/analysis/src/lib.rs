@@ -10,6 +10,7 @@ pub mod correct;
 pub mod curves;
 pub mod fade;
 pub mod fit;
+pub mod groups;
 pub mod integrate;
 pub mod pulse;
 pub mod resistance;
@@ -294,6 +295,9 @@ pub struct Analysis {
     pub gaps: Vec<Gap>,
     pub quality: LogQuality,
     pub standby_drain: Option<DrainResult>,
+    /// A pack read group by group (filled in by the caller, which has the
+    /// group log).
+    pub groups: Option<groups::GroupsResult>,
 }
 
 /// A standby-drain measurement: what the source supplied to hold the pack

@@ -537,7 +537,10 @@ impl<'a> Analyzer<'a> {
                     matches!(
                         i.end_kind,
                         Some(EndKind::CurrentBelow) | Some(EndKind::PeakDrop)
-                    )
+                    ) || (i.end_kind == Some(EndKind::VoltageAbove)
+                        && i.end_reason
+                            .as_deref()
+                            .is_some_and(model::groups::is_group_full_reason))
                 }
                 _ => {
                     // A foreign log: a constant-voltage taper to under a
@@ -705,6 +708,7 @@ impl<'a> Analyzer<'a> {
             gaps: self.gaps,
             quality,
             standby_drain,
+            groups: None,
         }
     }
 

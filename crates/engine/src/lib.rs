@@ -6,6 +6,7 @@
 
 pub mod clock;
 pub mod control;
+pub mod groups;
 pub mod safety;
 pub mod step;
 
@@ -44,6 +45,9 @@ pub struct Station {
     /// Source and load are the two roles of one source-sink instrument on
     /// one link.
     pub shared_link: bool,
+    /// The pack's cell groups and temperature inputs on the meter's
+    /// channels (the meter must scan).
+    pub groups: Option<model::groups::GroupChannels>,
 }
 
 impl Station {
@@ -53,6 +57,7 @@ impl Station {
             load,
             meter: None,
             shared_link: false,
+            groups: None,
         }
     }
 }
@@ -235,6 +240,10 @@ pub struct Engine<'a> {
     resume: Option<ResumePoint>,
     /// The source's zero read just before the drain step now running.
     drain_zero: Option<f64>,
+    /// The cell groups' reader, where the station reads groups.
+    groups: Option<groups::GroupMonitor>,
+    /// The last group scan.
+    last_groups: Option<model::groups::GroupSample>,
 }
 
 impl<'a> Engine<'a> {
@@ -247,6 +256,7 @@ impl<'a> Engine<'a> {
         stop: StopHandle,
     ) -> Engine<'a> {
         let t_start = clock.now();
+        let group_monitor = station.groups.clone().map(groups::GroupMonitor::new);
         Engine {
             plan,
             station,
@@ -267,6 +277,8 @@ impl<'a> Engine<'a> {
             alarm_capacity_ah: None,
             resume: None,
             drain_zero: None,
+            groups: group_monitor,
+            last_groups: None,
         }
     }
 
@@ -309,6 +321,13 @@ impl<'a> Engine<'a> {
     /// instrument's zero; a pack outside the envelope is not driven.
     async fn preflight(&mut self) -> Result<(), Stop> {
         self.clear_latched_trips().await?;
+        if let (Some(chs), Some(m)) = (&self.station.groups, self.station.meter.as_mut()) {
+            let temps: Vec<u32> = chs.temperatures.iter().map(|t| t.channel).collect();
+            if let Err(e) = m.setup_scan(&chs.voltage, &temps).await {
+                self.record_instrument_error(&e, None)?;
+                return Err(Stop::Instrument(e));
+            }
+        }
         let (reading, temp) = self.measure().await?;
         let st = &mut *self.station;
         let mut zero = ZeroOffsets::default();
@@ -864,12 +883,144 @@ impl<'a> Engine<'a> {
     fn close_truth_step(&mut self, step: u32) {
         if let (Some(t), Some(start)) = (&self.truth, self.truth_open.take()) {
             let now = t.counters();
+            let charge_ah = now.charge_ah - start.charge_ah;
+            // A discharge of a pack read by groups: each group's charge to
+            // its own cutoff, while the load still draws.
+            let groups_to_cutoff_ah = match (self.group_cutoff(step), &self.groups) {
+                (Some(cut), Some(_)) => t
+                    .groups_to_cutoff(cut)
+                    .into_iter()
+                    .map(|r| -charge_ah + r)
+                    .collect(),
+                _ => Vec::new(),
+            };
             self.truth_steps.push(TruthStep {
                 step,
-                charge_ah: now.charge_ah - start.charge_ah,
+                charge_ah,
                 energy_wh: now.energy_wh - start.energy_wh,
+                groups_to_cutoff_ah,
             });
         }
+    }
+
+    /// A discharge step's per-group cutoff, V: its `voltage <` end over
+    /// the number of groups (one group is one cell of the series count).
+    fn group_cutoff(&self, step: u32) -> Option<f64> {
+        let n = self.groups.as_ref()?.channels.groups();
+        let st = self.plan.steps.iter().find(|s| s.index == step)?;
+        if !matches!(st.kind, StepKind::Discharge { .. }) {
+            return None;
+        }
+        st.ends.iter().find_map(|c| match *c {
+            EndCondition::VoltageBelow { voltage_v } => Some(voltage_v / n as f64),
+            _ => None,
+        })
+    }
+
+    /// A step's end on its groups: a discharge ends when the first group
+    /// reaches the per-cell cutoff (every group, not the average); a charge
+    /// when any group rises past the step's per-cell voltage.
+    fn group_end(&self, st: &PlanStep) -> Option<(EndKind, String)> {
+        let g = self.last_groups.as_ref()?;
+        let n = g.voltage_v.len() as f64;
+        if n == 0.0 || g.step != st.index {
+            return None;
+        }
+        let on = |k: u32| match g.inferred {
+            Some(i) if i == k => " (read from the pack voltage less the others)",
+            _ => "",
+        };
+        match &st.kind {
+            StepKind::Discharge { .. } => st.ends.iter().find_map(|c| match *c {
+                EndCondition::VoltageBelow { voltage_v } => {
+                    let cut = voltage_v / n;
+                    groups::first_below(g, cut).map(|(k, v)| {
+                        (
+                            EndKind::VoltageBelow,
+                            format!(
+                                "group {k} reached {v:.3} V{}, the cutoff of {cut:.3} V/cell",
+                                on(k)
+                            ),
+                        )
+                    })
+                }
+                _ => None,
+            }),
+            StepKind::Charge { voltage_v, .. } => {
+                let level = voltage_v / n + groups::GROUP_CHARGE_MARGIN_V;
+                groups::first_above(g, level).map(|(k, v)| {
+                    (
+                        EndKind::VoltageAbove,
+                        model::groups::group_full_reason(
+                            k,
+                            v,
+                            voltage_v / n,
+                            g.inferred == Some(k),
+                        ),
+                    )
+                })
+            }
+            _ => None,
+        }
+    }
+
+    /// Scan the groups and temperature inputs with the sample just taken:
+    /// the group log, faulty channels' events, and the per-group limits.
+    async fn scan_groups(&mut self, s: &Sample) -> Result<(), Stop> {
+        let Some(chs) = self.groups.as_ref().map(|m| m.channels.clone()) else {
+            return Ok(());
+        };
+        let temps: Vec<u32> = chs.temperatures.iter().map(|t| t.channel).collect();
+        let Some(meter) = self.station.meter.as_mut() else {
+            return Ok(());
+        };
+        let raw = match meter.scan(&chs.voltage, &temps).await {
+            Ok(r) => r,
+            Err(e) => {
+                self.record_instrument_error(&e, None)?;
+                return Err(Stop::Instrument(e));
+            }
+        };
+        let Some(mon) = self.groups.as_mut() else {
+            return Ok(());
+        };
+        let out = mon.interpret(s.t_s, s.step, s.cycle, s.voltage_v, &raw);
+        let rises = mon.rises();
+        self.sink.groups(&out.sample).map_err(Stop::Log)?;
+        for n in &out.notices {
+            self.emit(Event::GroupChannel {
+                t_s: s.t_s,
+                step: s.step,
+                channel: n.channel,
+                issue: n.issue.name().into(),
+                message: n.message.clone(),
+            })?;
+        }
+        let breach = match &out.unobservable {
+            Some(why) => Some(groups::GroupBreach {
+                limit: "group_voltages",
+                value: f64::NAN,
+                threshold: 0.0,
+                message: why.clone(),
+            }),
+            None => groups::check(&out.sample, &rises, &chs, &self.plan.envelope),
+        };
+        self.last_groups = Some(out.sample);
+        if let Some(b) = breach {
+            self.emit(Event::Breach {
+                t_s: s.t_s,
+                step: s.step,
+                limit: b.limit.into(),
+                value: b.value,
+                threshold: b.threshold,
+                message: b.message.clone(),
+            })?;
+            return Err(Stop::Breach(format!(
+                "safety limit {}: {}",
+                b.limit, b.message
+            )));
+        }
+        Ok(())
     }
 
     fn end_step(
@@ -948,6 +1099,10 @@ impl<'a> Engine<'a> {
             if let Some((kind, cond)) = tracker.end_reached(st) {
                 self.capacity_alarm(st, kind, &tracker, t)?;
                 return self.end_step(t, st.index, kind, cond.to_string());
+            }
+            if let Some((kind, why)) = self.group_end(st) {
+                self.capacity_alarm(st, kind, &tracker, t)?;
+                return self.end_step(t, st.index, kind, why);
             }
             if !levels.is_empty() && t >= levels[level].0 - 1e-9 {
                 level += 1;
@@ -1119,6 +1274,7 @@ impl<'a> Engine<'a> {
         };
         self.sink.sample(&s).map_err(Stop::Log)?;
         tracker.push(&s);
+        self.scan_groups(&s).await?;
         self.poll_errors(t).await?;
         let so_far = safety::StepSoFar {
             elapsed_s: tracker.elapsed(),

@@ -175,6 +175,9 @@ mod tests {
             temperature_min_c: Some(0.0),
             charge_max_ah: 18.2,
             step_time_max_s: 36_000.0,
+            group_voltage_max_v: None,
+            group_voltage_min_v: None,
+            temperature_rise_max_k_per_s: None,
         }
     }
 

@@ -35,6 +35,16 @@ pub enum Cmd {
     MeasureCurrent,
     MeasurePower,
     MeasureTemperature,
+    /// `ROUTe:SCAN <channel list>`: the channels a `READ?` scans.
+    RouteScan,
+    /// `CONFigure:VOLTage[:DC] <list>` / `CONFigure:TEMPerature ...,<list>`.
+    Configure,
+    /// `INITiate`: start a scan (its readings are fetched with `FETCh?`).
+    Initiate,
+    /// `READ?`: scan the scan list and return every reading.
+    ReadScan,
+    /// `FETCh?`: the readings of the last scan.
+    FetchScan,
     /// A protection level: over-voltage, over-current, over-power, and a
     /// load's under-voltage switch-off.
     ProtectionLevel(Protect),
@@ -135,6 +145,12 @@ pub const TREE: &[(&str, Cmd)] = &[
     ("FETCh[:SCALar]:CURRent[:DC]", Cmd::MeasureCurrent),
     ("FETCh[:SCALar]:POWer[:DC]", Cmd::MeasurePower),
     ("FETCh[:SCALar]:TEMPerature", Cmd::MeasureTemperature),
+    ("ROUTe:SCAN", Cmd::RouteScan),
+    ("CONFigure[:SCALar]:VOLTage[:DC]", Cmd::Configure),
+    ("CONFigure[:SCALar]:TEMPerature", Cmd::Configure),
+    ("INITiate[:IMMediate]", Cmd::Initiate),
+    ("READ", Cmd::ReadScan),
+    ("FETCh", Cmd::FetchScan),
     (
         "[SOURce:]VOLTage:PROTection:UNDer[:LEVel]",
         Cmd::ProtectionLevel(Protect::UnderVoltage),
@@ -383,13 +399,17 @@ pub struct Unit {
 fn split_outside_quotes(s: &str, sep: char) -> Vec<&str> {
     let mut out = Vec::new();
     let mut quote: Option<char> = None;
+    // Parentheses hold expression data, e.g. a channel list `(@101:104,110)`.
+    let mut depth = 0u32;
     let mut start = 0;
     for (i, c) in s.char_indices() {
         match quote {
             Some(q) if c == q => quote = None,
             Some(_) => {}
             None if c == '"' || c == '\'' => quote = Some(c),
-            None if c == sep => {
+            None if c == '(' => depth += 1,
+            None if c == ')' => depth = depth.saturating_sub(1),
+            None if c == sep && depth == 0 => {
                 out.push(&s[start..i]);
                 start = i + c.len_utf8();
             }

@@ -633,6 +633,98 @@ impl Meter {
             Instrument::connect_with("meter", link, profile, attach).await?,
         ))
     }
+
+    /// Can this meter read channels (a scan list, or one query each)?
+    pub fn can_scan(&self) -> bool {
+        let c = &self.0.profile.commands;
+        c.scan_read.is_some() || c.measure_channel_voltage.is_some()
+    }
+
+    /// Set a scanning meter up for the groups' voltage channels and the
+    /// temperature inputs: configure each kind, then the scan list
+    /// (voltages first). A meter that reads channel by channel needs
+    /// nothing.
+    pub async fn setup_scan(
+        &mut self,
+        volts: &[u32],
+        temps: &[u32],
+    ) -> Result<(), InstrumentError> {
+        let c = self.0.profile.commands.clone();
+        let fill = |t: &str, chs: &[u32]| t.replace("{channels}", &channel_list(chs));
+        if let (Some(t), false) = (&c.configure_voltage_channels, volts.is_empty()) {
+            self.0.checked_write(&fill(t, volts)).await?;
+        }
+        if let (Some(t), false) = (&c.configure_temperature_channels, temps.is_empty()) {
+            self.0.checked_write(&fill(t, temps)).await?;
+        }
+        if let Some(t) = &c.scan_list {
+            let all: Vec<u32> = volts.iter().chain(temps).copied().collect();
+            self.0.checked_write(&fill(t, &all)).await?;
+        }
+        Ok(())
+    }
+
+    /// Read every channel: the voltages, then the temperatures, in the
+    /// order given. An overloaded or open input reads as the instrument
+    /// reports it (SCPI's +9.9E37); the caller judges it.
+    pub async fn scan(
+        &mut self,
+        volts: &[u32],
+        temps: &[u32],
+    ) -> Result<Vec<f64>, InstrumentError> {
+        let c = &self.0.profile.commands;
+        let want = volts.len() + temps.len();
+        if let Some(q) = c.scan_read.clone() {
+            let reply = self.0.session.query(&q).await?;
+            let parts: Vec<&str> = reply.split(',').collect();
+            if parts.len() != want {
+                return Err(self.0.err(
+                    ErrorKind::Protocol,
+                    format!(
+                        "'{q}' -> {} readings, expected {want} (the scan list)",
+                        parts.len()
+                    ),
+                ));
+            }
+            return parts
+                .iter()
+                .map(|p| {
+                    scpi::parse_number(p)
+                        .map_err(|m| self.0.err(ErrorKind::Protocol, format!("'{q}' -> {m}")))
+                })
+                .collect();
+        }
+        let (Some(tv), tt) = (
+            c.measure_channel_voltage.clone(),
+            c.measure_channel_temperature.clone(),
+        ) else {
+            return Err(self.0.err(
+                ErrorKind::Reported,
+                "the meter's profile has no scan_read or measure_channel_voltage".into(),
+            ));
+        };
+        let mut out = Vec::with_capacity(want);
+        for &ch in volts {
+            let q = tv.replace("{channels}", &channel_list(&[ch]));
+            out.push(self.0.session.query_number(&q).await?);
+        }
+        for &ch in temps {
+            let Some(t) = &tt else {
+                return Err(self.0.err(
+                    ErrorKind::Reported,
+                    "the meter's profile has no measure_channel_temperature".into(),
+                ));
+            };
+            let q = t.replace("{channels}", &channel_list(&[ch]));
+            out.push(self.0.session.query_number(&q).await?);
+        }
+        Ok(out)
+    }
+}
+
+/// A SCPI channel list (`(@101:113,201)`).
+pub fn channel_list(chs: &[u32]) -> String {
+    model::groups::channel_list(chs)
 }
 
 #[cfg(test)]

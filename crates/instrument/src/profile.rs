@@ -13,6 +13,7 @@ pub const GENERIC_LOAD: &str = include_str!("../../../profiles/generic-scpi-load
 pub const GENERIC_SOURCE_SINK: &str =
     include_str!("../../../profiles/generic-scpi-source-sink.toml");
 pub const GENERIC_METER: &str = include_str!("../../../profiles/generic-scpi-meter.toml");
+pub const GENERIC_SCANNER: &str = include_str!("../../../profiles/generic-scpi-scanner.toml");
 
 /// The profile kind of a Modbus RTU instrument.
 pub const MODBUS_RTU: &str = "modbus-rtu";
@@ -27,6 +28,7 @@ pub const BUILTIN: &[(&str, &str)] = &[
     ("generic-scpi-load", GENERIC_LOAD),
     ("generic-scpi-source-sink", GENERIC_SOURCE_SINK),
     ("generic-scpi-meter", GENERIC_METER),
+    ("generic-scpi-scanner", GENERIC_SCANNER),
     ("generic-modbus-source", GENERIC_MODBUS_SOURCE),
     ("generic-modbus-load", GENERIC_MODBUS_LOAD),
 ];
@@ -125,6 +127,24 @@ pub struct Commands {
     pub measure_power: Option<String>,
     pub measure_temperature: Option<String>,
     pub error_query: Option<String>,
+    /// A scanning meter (a multiplexer card or a DAQ): `{channels}` is
+    /// filled with a SCPI channel list such as `(@101:113,201)`.
+    /// Set up once: the voltage channels, the temperature channels, the
+    /// scan list.
+    #[serde(default)]
+    pub configure_voltage_channels: Option<String>,
+    #[serde(default)]
+    pub configure_temperature_channels: Option<String>,
+    #[serde(default)]
+    pub scan_list: Option<String>,
+    /// Scan the list and return every reading, comma-separated.
+    #[serde(default)]
+    pub scan_read: Option<String>,
+    /// Or one query per channel, when there is no scan list.
+    #[serde(default)]
+    pub measure_channel_voltage: Option<String>,
+    #[serde(default)]
+    pub measure_channel_temperature: Option<String>,
 }
 
 /// The instrument's own protection, programmed from the safety envelope
@@ -451,6 +471,32 @@ impl Profile {
             });
         }
         for (key, t) in [
+            ("configure_voltage_channels", &c.configure_voltage_channels),
+            (
+                "configure_temperature_channels",
+                &c.configure_temperature_channels,
+            ),
+            ("scan_list", &c.scan_list),
+            ("measure_channel_voltage", &c.measure_channel_voltage),
+            (
+                "measure_channel_temperature",
+                &c.measure_channel_temperature,
+            ),
+        ] {
+            if t.as_ref().is_some_and(|t| !t.contains("{channels}")) {
+                errors.push(LocatedError {
+                    location: locate(key),
+                    message: format!("commands.{key} must contain {{channels}}"),
+                });
+            }
+        }
+        if c.scan_read.is_some() != c.scan_list.is_some() {
+            errors.push(LocatedError {
+                location: locate("[commands]"),
+                message: "commands.scan_read and commands.scan_list go together (set the list, then read it)".into(),
+            });
+        }
+        for (key, t) in [
             ("set_voltage", &c.set_voltage),
             ("set_current", &c.set_current),
             ("set_power", &c.set_power),
@@ -543,6 +589,7 @@ impl Profile {
             measure_power: get("measure_power"),
             measure_temperature: get("measure_temperature"),
             error_query: Some("error?".into()),
+            ..Commands::default()
         };
         let mode_words = raw.mode_words.as_ref().map(|w| {
             let word = |k: &str| w.get(k).map(|v| v.to_string()).unwrap_or_default();
@@ -708,6 +755,12 @@ impl Profile {
             &c.measure_power,
             &c.measure_temperature,
             &c.error_query,
+            &c.configure_voltage_channels,
+            &c.configure_temperature_channels,
+            &c.scan_list,
+            &c.scan_read,
+            &c.measure_channel_voltage,
+            &c.measure_channel_temperature,
             &self.protection.set_over_voltage,
             &self.protection.get_over_voltage,
             &self.protection.set_over_current,
@@ -757,6 +810,18 @@ mod tests {
                 for u in parse_message(&t) {
                     assert!(u.is_ok(), "{}: '{t}' does not parse: {u:?}", p.name);
                 }
+            }
+        }
+        // The scanner's templates, with a channel list filled in.
+        let p =
+            Profile::from_toml(Path::new("generic-scpi-scanner.toml"), GENERIC_SCANNER).unwrap();
+        assert_eq!(p.role, ProfileRole::Meter);
+        let t = p.templates();
+        assert!(t.len() >= 6, "{t:?}");
+        for t in t {
+            let t = t.replace("{channels}", "(@101:113,201)");
+            for u in parse_message(&t) {
+                assert!(u.is_ok(), "{}: '{t}' does not parse: {u:?}", p.name);
             }
         }
     }

@@ -8,6 +8,7 @@
 
 pub mod bms;
 pub mod end;
+pub mod groups;
 pub mod location;
 pub mod pack;
 pub mod procedure;

@@ -22,6 +22,94 @@ pub struct SimConfig {
     /// bench-grade multimeter: ±0.01 % + 0.2 mV, 0.1 mV resolution).
     pub meter: MeterConfig,
     pub faults: Faults,
+    /// The pack as groups in series, each with its own state (absent or
+    /// `count = 0`: one lumped pack).
+    pub groups: GroupsConfig,
+}
+
+/// A pack built of parallel groups in series, with a spread between them
+/// and a scanning voltmeter on their channels (see
+/// [`crate::groups::GroupChannels::sim_default`] for its channel numbers).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct GroupsConfig {
+    /// Number of groups; must equal the pack's series count. 0: lumped.
+    pub count: u32,
+    pub wiring: crate::groups::Wiring,
+    /// Standard deviation of the groups' capacity about the pack's, %.
+    pub capacity_spread_pct: f64,
+    /// Standard deviation of the groups' resistance, %.
+    pub resistance_spread_pct: f64,
+    /// Mean self-discharge, % of capacity a day, and its spread (sd).
+    pub self_discharge_pct_per_day: f64,
+    pub self_discharge_spread_pct_per_day: f64,
+    /// Groups set by hand, over the drawn spread.
+    pub set: Vec<GroupSet>,
+    /// Groups that carry a surface sensor (channel 200 + group).
+    pub sensors: Vec<u32>,
+    /// Injected channel faults.
+    pub faults: Vec<ChannelFault>,
+    /// Scanner reading error (a DAQ's DC volts: ±0.02 % + 0.5 mV).
+    pub scanner: MeterConfig,
+}
+
+impl Default for GroupsConfig {
+    /// Plausible for a used pack (common practice, rounded): capacity
+    /// within a few per cent, resistance within about ten, self-discharge
+    /// a few hundredths of a per cent a day.
+    fn default() -> Self {
+        GroupsConfig {
+            count: 0,
+            wiring: crate::groups::Wiring::Direct,
+            capacity_spread_pct: 1.5,
+            resistance_spread_pct: 8.0,
+            self_discharge_pct_per_day: 0.05,
+            self_discharge_spread_pct_per_day: 0.02,
+            set: Vec::new(),
+            sensors: Vec::new(),
+            faults: Vec::new(),
+            scanner: MeterConfig {
+                gain_error_pct: 0.02,
+                offset: 0.0005,
+                noise: 0.0003,
+                resolution: 0.0001,
+            },
+        }
+    }
+}
+
+/// One group set by hand: its capacity and resistance as factors of the
+/// pack's, its self-discharge.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct GroupSet {
+    pub group: u32,
+    pub capacity: Option<f64>,
+    pub resistance: Option<f64>,
+    pub self_discharge_pct_per_day: Option<f64>,
+}
+
+/// What goes wrong with a scanner channel.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ChannelFaultKind {
+    /// The sense lead is off: the channel reads overload (+9.9E37).
+    Open,
+    /// The channel repeats the value it read when the fault began.
+    Stuck,
+    /// A loose sense lead: every other scan the channel reads low by a
+    /// few hundred millivolts.
+    Loose,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ChannelFault {
+    pub channel: u32,
+    pub kind: ChannelFaultKind,
+    /// Bench time the fault starts, s.
+    #[serde(default)]
+    pub after_s: f64,
 }
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -305,6 +393,7 @@ impl Default for SimConfig {
                 resolution: 0.0001,
             },
             faults: Faults::default(),
+            groups: GroupsConfig::default(),
         }
     }
 }

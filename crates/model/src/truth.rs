@@ -16,12 +16,23 @@ pub struct TruthCounters {
 /// Something that knows the true counters at the present time.
 pub trait GroundTruth: Send + Sync {
     fn counters(&self) -> TruthCounters;
+    /// For a pack built of groups: the charge each group would still give
+    /// at the present current before its own voltage fell to `cutoff_v`
+    /// (empty for a lumped pack, or when nothing is being drawn).
+    fn groups_to_cutoff(&self, _cutoff_v: f64) -> Vec<f64> {
+        Vec::new()
+    }
 }
 
 /// Simulation truth for one step.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct TruthStep {
     pub step: u32,
     pub charge_ah: f64,
     pub energy_wh: f64,
+    /// A discharge of a pack built of groups: the charge each group gives
+    /// from the step's start to its own cutoff (the one that ended the
+    /// step reached it; the others are run on in the model), Ah.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub groups_to_cutoff_ah: Vec<f64>,
 }

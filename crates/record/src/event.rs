@@ -2,6 +2,7 @@
 //! a sink; the run log, progress displays and test collectors are sinks.
 
 pub use model::end::EndKind;
+use model::groups::GroupSample;
 use model::procedure::{ResultTag, StepType};
 use model::sample::Sample;
 use model::status::RunStatus;
@@ -110,6 +111,15 @@ pub enum Event {
         kind: String,
         message: String,
     },
+    /// A scanner channel judged faulty (open, stuck or loose), and how its
+    /// group is read from now on.
+    GroupChannel {
+        t_s: f64,
+        step: u32,
+        channel: u32,
+        issue: String,
+        message: String,
+    },
     /// The run goes on after an interruption (`packbench resume`).
     Resumed {
         t_s: f64,
@@ -128,6 +138,11 @@ pub enum Event {
 pub trait Sink {
     fn sample(&mut self, s: &Sample) -> std::io::Result<()>;
     fn event(&mut self, e: &Event) -> std::io::Result<()>;
+    /// A station that reads cell groups: their voltages and the extra
+    /// temperature inputs, on the samples' grid.
+    fn groups(&mut self, _g: &GroupSample) -> std::io::Result<()> {
+        Ok(())
+    }
 }
 
 /// A sink that keeps everything in memory (tests, dry runs).
@@ -135,6 +150,7 @@ pub trait Sink {
 pub struct Collect {
     pub samples: Vec<Sample>,
     pub events: Vec<Event>,
+    pub groups: Vec<GroupSample>,
 }
 
 impl Sink for Collect {
@@ -144,6 +160,10 @@ impl Sink for Collect {
     }
     fn event(&mut self, e: &Event) -> std::io::Result<()> {
         self.events.push(e.clone());
+        Ok(())
+    }
+    fn groups(&mut self, g: &GroupSample) -> std::io::Result<()> {
+        self.groups.push(g.clone());
         Ok(())
     }
 }

@@ -32,6 +32,9 @@ use serde::{Deserialize, Serialize};
 
 pub const SAMPLES_CSV: &str = "samples.csv";
 pub const EVENTS_JSONL: &str = "events.jsonl";
+/// The cell groups' voltages and the extra temperature inputs, on the
+/// samples' grid (a station that reads groups).
+pub const GROUPS_CSV: &str = "groups.csv";
 pub const RUN_JSON: &str = "run.json";
 pub const SUMMARY_JSON: &str = "summary.json";
 pub const PACK_TOML: &str = "pack.toml";
@@ -117,6 +120,9 @@ pub struct Summary {
     /// (no rated capacity): empty when the spec was given.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub needs_rating: Vec<String>,
+    /// A pack read group by group: each group's figures and the weakest.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub groups: Option<analysis::groups::GroupsResult>,
 }
 
 /// What was read before the first step, outputs off.

@@ -39,6 +39,10 @@ pub struct Manifest {
     /// What the pack's battery management system reported, when given.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub bms: Option<model::bms::BmsReadings>,
+    /// The cell groups and temperature inputs read on the meter's
+    /// channels (their names and places), where the station reads them.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub groups: Option<model::groups::GroupChannels>,
 }
 
 /// One resume, as `run.json` keeps it.

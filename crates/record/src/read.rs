@@ -199,3 +199,99 @@ pub fn read_manifest(path: &Path) -> Result<crate::manifest::Manifest, ReadError
 pub fn read_summary(path: &Path) -> Result<crate::Summary, ReadError> {
     crate::schema::read_json(path)
 }
+
+/// Read `groups.csv`, if the run has one: each scan's group voltages and
+/// temperature inputs. A truncated last line is dropped.
+pub fn read_groups(dir: &Path) -> Result<Option<Vec<model::groups::GroupSample>>, ReadError> {
+    let path = dir.join(crate::GROUPS_CSV);
+    let bytes = match std::fs::read(&path) {
+        Ok(b) => b,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(None),
+        Err(error) => return Err(ReadError::Io { path, error }),
+    };
+    let end = bytes
+        .iter()
+        .rposition(|&b| b == b'\n')
+        .map(|p| p + 1)
+        .unwrap_or(0);
+    let mut rdr = csv::ReaderBuilder::new()
+        .has_headers(true)
+        .flexible(true)
+        .from_reader(&bytes[..end]);
+    let bad = |line: usize, column: usize, message: String| ReadError::Bad {
+        path: path.clone(),
+        line,
+        column,
+        message,
+    };
+    let headers = rdr.headers().map_err(|e| bad(1, 1, e.to_string()))?.clone();
+    let groups = headers.iter().filter(|h| h.starts_with("group_")).count();
+    let temps = headers
+        .iter()
+        .filter(|h| h.starts_with("temperature_"))
+        .count();
+    if headers.len() != 4 + groups + temps {
+        return Err(bad(
+            1,
+            1,
+            "expected t_s, step, cycle, group_N_v…, temperature_N_c…, inferred_group".into(),
+        ));
+    }
+    let mut out = Vec::new();
+    for (i, rec) in rdr.records().enumerate() {
+        let line = i + 2;
+        let rec = rec.map_err(|e| bad(line, 1, e.to_string()))?;
+        if rec.len() != headers.len() {
+            return Err(bad(
+                line,
+                1,
+                format!("{} fields, expected {}", rec.len(), headers.len()),
+            ));
+        }
+        let num = |k: usize| -> Result<f64, ReadError> {
+            field(&rec, k).parse::<f64>().map_err(|_| {
+                bad(
+                    line,
+                    k + 1,
+                    format!("'{}': expected a number", field(&rec, k)),
+                )
+            })
+        };
+        let int = |k: usize| -> Result<u32, ReadError> {
+            field(&rec, k).parse::<u32>().map_err(|_| {
+                bad(
+                    line,
+                    k + 1,
+                    format!("'{}': expected a whole number", field(&rec, k)),
+                )
+            })
+        };
+        let voltage_v = (0..groups)
+            .map(|k| num(3 + k))
+            .collect::<Result<Vec<_>, _>>()?;
+        let temperature_c = (0..temps)
+            .map(|k| {
+                let c = 3 + groups + k;
+                if field(&rec, c).is_empty() {
+                    Ok(None)
+                } else {
+                    num(c).map(Some)
+                }
+            })
+            .collect::<Result<Vec<_>, _>>()?;
+        let last = headers.len() - 1;
+        out.push(model::groups::GroupSample {
+            t_s: num(0)?,
+            step: int(1)?,
+            cycle: int(2)?,
+            voltage_v,
+            temperature_c,
+            inferred: if field(&rec, last).is_empty() {
+                None
+            } else {
+                Some(int(last)?)
+            },
+        });
+    }
+    Ok(Some(out))
+}

@@ -4,6 +4,7 @@
 
 use super::{CSV_COLUMNS, EVENTS_JSONL, SAMPLES_CSV};
 use crate::event::{Event, Sink};
+use model::groups::GroupSample;
 use model::sample::Sample;
 use serde::Serialize;
 use std::fs::{self, File, OpenOptions};
@@ -151,6 +152,9 @@ pub struct RunLogSink {
     last_handoff_t: f64,
     pub rows: usize,
     line: String,
+    /// `groups.csv`, opened at the first group scan.
+    groups: Option<BufWriter<File>>,
+    dir: std::path::PathBuf,
 }
 
 impl RunLogSink {
@@ -191,6 +195,8 @@ impl RunLogSink {
             last_handoff_t: f64::NEG_INFINITY,
             rows: 0,
             line: String::with_capacity(96),
+            groups: None,
+            dir: dir.to_path_buf(),
         })
     }
 
@@ -198,6 +204,10 @@ impl RunLogSink {
     pub fn flush(&mut self) -> io::Result<()> {
         self.samples.flush()?;
         self.samples.get_ref().sync_data()?;
+        if let Some(g) = self.groups.as_mut() {
+            g.flush()?;
+            g.get_ref().sync_data()?;
+        }
         self.last_flush = Instant::now();
         Ok(())
     }
@@ -267,9 +277,48 @@ impl Sink for RunLogSink {
         Ok(())
     }
 
+    fn groups(&mut self, g: &GroupSample) -> io::Result<()> {
+        use std::fmt::Write as _;
+        if self.groups.is_none() {
+            let path = self.dir.join(crate::GROUPS_CSV);
+            let f = if path.exists() {
+                cut_partial_line(&path)?;
+                OpenOptions::new().append(true).open(&path)?
+            } else {
+                let mut f = File::create(&path)?;
+                writeln!(f, "{}", group_columns(g).join(","))?;
+                f
+            };
+            self.groups = Some(BufWriter::with_capacity(64 * 1024, f));
+        }
+        let mut line = String::with_capacity(32 + 10 * g.voltage_v.len());
+        let _ = write!(line, "{:.3},{},{}", g.t_s, g.step, g.cycle);
+        for v in &g.voltage_v {
+            let _ = write!(line, ",{v:.5}");
+        }
+        for t in &g.temperature_c {
+            line.push(',');
+            if let Some(t) = t {
+                let _ = write!(line, "{t:.2}");
+            }
+        }
+        line.push(',');
+        if let Some(k) = g.inferred {
+            let _ = write!(line, "{k}");
+        }
+        line.push('\n');
+        if let Some(w) = self.groups.as_mut() {
+            w.write_all(line.as_bytes())?;
+        }
+        Ok(())
+    }
+
     fn event(&mut self, e: &Event) -> io::Result<()> {
         // Samples before an event are written before it is.
         self.samples.flush()?;
+        if let Some(g) = self.groups.as_mut() {
+            g.flush()?;
+        }
         let mut line = serde_json::to_vec(e).map_err(io::Error::other)?;
         line.push(b'\n');
         self.events.write_all(&line)?;
@@ -282,9 +331,24 @@ impl Sink for RunLogSink {
     }
 }
 
+/// The columns of `groups.csv` for a scan of this shape: time, step,
+/// cycle, each group's volts, each temperature input by its position,
+/// and the group read from the pack voltage (if one was). The inputs'
+/// channels, names and places are in `run.json`.
+pub fn group_columns(g: &GroupSample) -> Vec<String> {
+    let mut c = vec!["t_s".to_string(), "step".into(), "cycle".into()];
+    c.extend((1..=g.voltage_v.len()).map(|k| format!("group_{k}_v")));
+    c.extend((1..=g.temperature_c.len()).map(|k| format!("temperature_{k}_c")));
+    c.push("inferred_group".into());
+    c
+}
+
 impl Drop for RunLogSink {
     fn drop(&mut self) {
         let _ = self.samples.flush();
+        if let Some(g) = self.groups.as_mut() {
+            let _ = g.flush();
+        }
     }
 }
 

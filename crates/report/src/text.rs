@@ -5,6 +5,48 @@ use record::Summary;
 use std::fmt::Write;
 
 /// The short summary of a run for a terminal.
+/// A pack read group by group: a line per group and the weakest.
+fn groups_text(o: &mut String, g: &analysis::groups::GroupsResult) {
+    let f = |x: Option<f64>, d: usize| x.map_or("-".to_string(), |v| format!("{v:.d$}"));
+    let _ = writeln!(
+        o,
+        "  Groups:            end-of-charge spread {} mV, end-of-discharge spread {} mV, capacity spread {} %",
+        f(g.end_of_charge_spread_mv, 0),
+        f(g.end_of_discharge_spread_mv, 0),
+        f(g.capacity_spread_pct, 1)
+    );
+    let _ = writeln!(
+        o,
+        "    group  to cutoff Ah  share %  capacity %  EOC V   EOD V   R mOhm  max degC  how"
+    );
+    for r in &g.groups {
+        let _ = writeln!(
+            o,
+            "    {:>5}  {:>12}  {:>7}  {:>10}  {:>6}  {:>6}  {:>6}  {:>8}  {}{}",
+            r.group,
+            f(r.charge_to_cutoff_ah, 3),
+            f(r.share_of_mean_pct, 1),
+            f(r.relative_capacity_pct, 1),
+            f(r.end_of_charge_v, 3),
+            f(r.end_of_discharge_v, 3),
+            f(r.resistance_mohm, 2),
+            f(r.max_temperature_c, 1),
+            r.how,
+            if g.weakest == Some(r.group) {
+                "  <- weakest"
+            } else {
+                ""
+            }
+        );
+    }
+    if let Some(w) = &g.weakest_reason {
+        let _ = writeln!(o, "  Weakest group:     {w}");
+    }
+    for n in &g.notes {
+        let _ = writeln!(o, "  groups: {n}");
+    }
+}
+
 pub fn summary(s: &Summary) -> String {
     let mut o = String::new();
     if s.needs_rating.is_empty() {
@@ -102,6 +144,9 @@ pub fn summary(s: &Summary) -> String {
             s.gaps.len(),
             s.gaps.iter().map(|g| g.duration_s).fold(0.0, f64::max)
         );
+    }
+    if let Some(g) = &s.groups {
+        groups_text(&mut o, g);
     }
     if let Some(g) = &s.grade {
         let _ = writeln!(

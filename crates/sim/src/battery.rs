@@ -342,7 +342,7 @@ impl PackModel {
     }
 
     /// The cell's internal EMF behind R0: OCV + RC voltages + temperature term.
-    fn emf_cell(&self) -> f64 {
+    pub(crate) fn emf_cell(&self) -> f64 {
         self.params.ocv_at(self.soc)
             + self.v1
             + self.v2

@@ -3,9 +3,10 @@
 //! the ground-truth counters. Time advances lazily to the clock's present
 //! whenever an instrument is spoken to.
 
-use super::battery::{LoadMode, PackCondition, PackModel};
+use super::battery::{LoadMode, PackCondition};
 use super::config::{Faults, MeterConfig, SimConfig};
 use super::lock::locked;
+use super::pack::{GroupState, SimPack};
 use engine::clock::Clock;
 use model::pack::PackSpec;
 use model::truth::TruthCounters;
@@ -167,7 +168,7 @@ pub struct LoadState {
 /// Everything on the simulated bench.
 pub struct SimBench {
     clock: Arc<dyn Clock>,
-    pub pack: PackModel,
+    pub pack: SimPack,
     pub supply: SupplyState,
     pub load: LoadState,
     pub thermometer: Meter,
@@ -185,6 +186,18 @@ pub struct SimBench {
     pub trips: Vec<Trip>,
     /// The lowest and highest true terminal voltage while current flowed.
     pub voltage_span: Option<(f64, f64)>,
+    /// The scanning voltmeter on the groups' channels.
+    pub scanner: Meter,
+    pub channel_faults: Vec<model::simconfig::ChannelFault>,
+    /// The values stuck channels repeat.
+    stuck: Vec<(u32, f64)>,
+    /// Scans taken (a loose lead drops out on every other one).
+    pub scans: u64,
+    /// The group a heat fault warms (the first with a sensor), if any.
+    heat_group: Option<u32>,
+    /// The pack current and group voltages at a bench time (one scan
+    /// reads many channels at one moment).
+    pub(crate) scan_cache: Option<(f64, f64, Vec<f64>)>,
 }
 
 /// The first time the true terminal voltage fell to a level, and the
@@ -210,7 +223,7 @@ impl VoltageWatch {
 /// whose controller died can go on with the same pack (a real pack keeps
 /// its charge when the controller stops; the simulated one lives in the
 /// controller's process).
-#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize, serde::Deserialize)]
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct PackState {
     /// The record layout (`record::schema`).
     #[serde(default = "record::schema::unversioned")]
@@ -226,6 +239,9 @@ pub struct PackState {
     pub temperature_c: f64,
     pub truth_charge_ah: f64,
     pub truth_energy_wh: f64,
+    /// Each group's state, when the pack is built of groups.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub groups: Vec<GroupState>,
 }
 
 /// Where the pack's state is kept, and the thread that writes it.
@@ -337,7 +353,7 @@ impl SimBench {
         let last_t = clock.now();
         SimBench {
             clock,
-            pack: PackModel::new(spec, cond),
+            pack: SimPack::new(spec, cond, &cfg.groups, cfg.seed),
             supply: SupplyState {
                 output_on: false,
                 voltage_set: 0.0,
@@ -374,6 +390,12 @@ impl SimBench {
             watch: None,
             trips: Vec::new(),
             voltage_span: None,
+            scanner: meter(&cfg.groups.scanner, cfg.ideal),
+            channel_faults: cfg.groups.faults.clone(),
+            stuck: Vec::new(),
+            scans: 0,
+            heat_group: cfg.groups.sensors.first().copied(),
+            scan_cache: None,
         }
     }
 
@@ -396,13 +418,14 @@ impl SimBench {
         PackState {
             schema_version: record::schema::SCHEMA_VERSION,
             t_s: self.last_t,
-            soc: self.pack.soc,
-            v1: self.pack.v1,
-            v2: self.pack.v2,
-            v_surface: self.pack.v_surface,
-            temperature_c: self.pack.temperature_c,
+            soc: self.pack.cells[0].soc,
+            v1: self.pack.cells[0].v1,
+            v2: self.pack.cells[0].v2,
+            v_surface: self.pack.cells[0].v_surface,
+            temperature_c: self.pack.cells[0].temperature_c,
             truth_charge_ah: self.truth.charge_ah,
             truth_energy_wh: self.truth.energy_wh,
+            groups: self.pack.group_states(),
         }
     }
 
@@ -410,11 +433,13 @@ impl SimBench {
     /// `rest_s` (the time the run was down): its polarisation relaxes and
     /// it cools; its electronics, if any, go on drawing.
     pub fn restore(&mut self, st: &PackState, rest_s: f64) {
-        self.pack.soc = st.soc;
-        self.pack.v1 = st.v1;
-        self.pack.v2 = st.v2;
-        self.pack.v_surface = st.v_surface;
-        self.pack.temperature_c = st.temperature_c;
+        let c = &mut self.pack.cells[0];
+        c.soc = st.soc;
+        c.v1 = st.v1;
+        c.v2 = st.v2;
+        c.v_surface = st.v_surface;
+        c.temperature_c = st.temperature_c;
+        self.pack.restore_groups(&st.groups);
         if rest_s > 0.0 {
             let _ = self.pack.step(rest_s, 0.0);
         }
@@ -532,7 +557,8 @@ impl SimBench {
             let dt = (t - self.last_t).min(MAX_DT);
             if let Some(after) = self.faults.heat_after_s {
                 if self.last_t >= after {
-                    self.pack.fault_heat_w = self.faults.heat_w;
+                    let on = self.heat_group;
+                    self.pack.set_fault_heat(self.faults.heat_w, on);
                 }
             }
             let (i_supply, i_load) = (self.supply_current(), self.load_current());
@@ -639,8 +665,70 @@ impl SimBench {
             + self.reading_shift(super::config::Quantity::Voltage)
     }
 
+    /// One scanner channel (see [`model::groups::GroupChannels::sim_default`]
+    /// for the wiring); `None` for a channel with nothing on it.
+    pub fn measure_channel(&mut self, ch: u32) -> Option<f64> {
+        use model::groups::{
+            Wiring, SIM_AMBIENT_CHANNEL, SIM_BUSBAR_CHANNEL, SIM_SURFACE_BASE, SIM_VOLTAGE_BASE,
+        };
+        use model::simconfig::ChannelFaultKind as K;
+        let n = self.pack.cells.len() as u32;
+        if !self.pack.grouped {
+            return None;
+        }
+        let now = self.clock.now();
+        let (i, vs) = match &self.scan_cache {
+            Some((t, i, vs)) if *t == self.last_t => (*i, vs.clone()),
+            _ => {
+                let i = self.pack_current();
+                let vs = self.pack.group_voltages(i);
+                self.scan_cache = Some((self.last_t, i, vs.clone()));
+                (i, vs)
+            }
+        };
+        let truth = if ch > SIM_VOLTAGE_BASE && ch <= SIM_VOLTAGE_BASE + n {
+            let g = (ch - SIM_VOLTAGE_BASE) as usize;
+            let v = match self.pack.wiring {
+                Wiring::Direct => vs[g - 1],
+                Wiring::Taps => vs[..g].iter().sum(),
+            };
+            self.scanner.apply(v, &mut self.rng)
+        } else if ch > SIM_SURFACE_BASE && ch <= SIM_SURFACE_BASE + n {
+            let t = self.pack.cells[(ch - SIM_SURFACE_BASE - 1) as usize].temperature_c;
+            self.thermometer.apply(t, &mut self.rng)
+        } else if ch == SIM_BUSBAR_CHANNEL {
+            // The busbar runs a little above the cells with current in it.
+            let t = self.pack.temperature_c() + 0.05 * i.abs();
+            self.thermometer.apply(t, &mut self.rng)
+        } else if ch == SIM_AMBIENT_CHANNEL {
+            let t = self.pack.ambient_c();
+            self.thermometer.apply(t, &mut self.rng)
+        } else {
+            return None;
+        };
+        let fault = self
+            .channel_faults
+            .iter()
+            .find(|f| f.channel == ch && now >= f.after_s)
+            .map(|f| f.kind);
+        Some(match fault {
+            None => truth,
+            // An open input reads overload, the SCPI +9.9E37.
+            Some(K::Open) => 9.9e37,
+            Some(K::Stuck) => match self.stuck.iter().find(|(c, _)| *c == ch) {
+                Some(&(_, v)) => v,
+                None => {
+                    self.stuck.push((ch, truth));
+                    truth
+                }
+            },
+            Some(K::Loose) if self.scans % 2 == 1 => truth - 0.35,
+            Some(K::Loose) => truth,
+        })
+    }
+
     pub fn measure_temperature(&mut self) -> f64 {
-        let t = self.pack.temperature_c;
+        let t = self.pack.temperature_c();
         self.thermometer.apply(t, &mut self.rng)
             + self.reading_shift(super::config::Quantity::Temperature)
     }

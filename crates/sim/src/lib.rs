@@ -8,6 +8,7 @@ pub mod battery;
 pub mod bench;
 pub mod lock;
 pub mod modbus_slave;
+pub mod pack;
 pub mod serve;
 pub mod server;
 
@@ -74,13 +75,13 @@ impl SimHandle {
         self.with(|b| b.overlaps)
     }
     pub fn pack_soc(&self) -> f64 {
-        self.with(|b| b.pack.soc)
+        self.with(|b| b.pack.soc())
     }
     pub fn pack_temperature_c(&self) -> f64 {
-        self.with(|b| b.pack.temperature_c)
+        self.with(|b| b.pack.temperature_c())
     }
     pub fn true_capacity_ah(&self) -> f64 {
-        self.with(|b| b.pack.capacity_ah)
+        self.with(|b| b.pack.capacity_ah())
     }
     /// Keep the pack's state in a file (see [`bench::PackState`]).
     pub fn keep_state(&self, path: std::path::PathBuf, every_s: f64) {
@@ -110,6 +111,16 @@ impl GroundTruth for SimHandle {
     fn counters(&self) -> TruthCounters {
         self.with(|b| b.truth())
     }
+    fn groups_to_cutoff(&self, cutoff_v: f64) -> Vec<f64> {
+        self.with(|b| {
+            if !b.pack.grouped {
+                return Vec::new();
+            }
+            b.advance();
+            let i = b.pack_current();
+            b.pack.to_cutoff(i, cutoff_v)
+        })
+    }
 }
 
 /// Links to a simulated source and load on one pack.
@@ -120,6 +131,8 @@ pub struct SimLinks {
     /// simulated disconnect.
     pub source_responder: Arc<Mutex<dyn LineResponder>>,
     pub load_responder: Arc<Mutex<dyn LineResponder>>,
+    /// A scanner on the groups' channels, when the pack is built of groups.
+    pub meter: Option<Arc<Mutex<dyn LineResponder>>>,
     pub handle: SimHandle,
 }
 
@@ -143,11 +156,20 @@ pub fn build(spec: &PackSpec, cfg: &SimConfig, clock: Arc<dyn Clock>) -> SimLink
         SimRole::Load,
         Arc::clone(&load_traffic),
     )));
+    let meter: Option<Arc<Mutex<dyn LineResponder>>> = (cfg.groups.count > 0).then(|| {
+        let m: Arc<Mutex<dyn LineResponder>> = Arc::new(Mutex::new(SimInstrument::new(
+            Arc::clone(&bench),
+            SimRole::Meter,
+            Arc::new(Mutex::new(Vec::new())),
+        )));
+        m
+    });
     SimLinks {
         source: link_to(&src),
         load: link_to(&load),
         source_responder: src,
         load_responder: load,
+        meter,
         handle: SimHandle {
             bench,
             source_traffic,

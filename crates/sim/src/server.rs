@@ -138,6 +138,9 @@ pub struct SimInstrument {
     pub fired_log: Vec<FaultFired>,
     /// Every message received, for tests that check what was sent.
     pub received: Arc<Mutex<Vec<String>>>,
+    /// A meter's scan list and its last scan's readings.
+    scan_list: Vec<u32>,
+    last_scan: Option<String>,
 }
 
 impl SimInstrument {
@@ -159,6 +162,8 @@ impl SimInstrument {
             fired: Vec::new(),
             fired_log: Vec::new(),
             received,
+            scan_list: Vec::new(),
+            last_scan: None,
         }
     }
 
@@ -338,6 +343,20 @@ impl SimInstrument {
         query: bool,
         params: &[String],
     ) -> Result<Option<String>, ScpiError> {
+        // Anything but a reading may change what flows: a scan's cache of
+        // the pack current and group voltages is dropped.
+        if !matches!(
+            cmd,
+            Cmd::MeasureVoltage
+                | Cmd::MeasureCurrent
+                | Cmd::MeasurePower
+                | Cmd::MeasureTemperature
+                | Cmd::ReadScan
+                | Cmd::FetchScan
+                | Cmd::SystemError
+        ) {
+            b.scan_cache = None;
+        }
         match cmd {
             Cmd::Idn
             | Cmd::Rst
@@ -361,6 +380,9 @@ impl SimInstrument {
             | Cmd::MeasureCurrent
             | Cmd::MeasurePower
             | Cmd::MeasureTemperature => self.measure(b, cmd, query, params),
+            Cmd::RouteScan | Cmd::Configure | Cmd::Initiate | Cmd::ReadScan | Cmd::FetchScan => {
+                self.scan(b, cmd, query, params)
+            }
             Cmd::ProtectionLevel(_)
             | Cmd::ProtectionState(_)
             | Cmd::ProtectionTripped(_)
@@ -840,6 +862,11 @@ impl SimInstrument {
     ) -> Result<Option<String>, ScpiError> {
         let role = self.role;
         query_only(query)?;
+        // A meter's MEASure with a channel list reads those channels.
+        if role == SimRole::Meter && !params.is_empty() {
+            let chs = channels_param(params.last().map(String::as_str).unwrap_or(""))?;
+            return Ok(Some(Self::read_channels(b, &chs)?));
+        }
         Self::no_params(params)?;
         if cmd == Cmd::MeasureTemperature {
             return Ok(Some(nr3(b.measure_temperature())));
@@ -871,7 +898,84 @@ impl SimInstrument {
     }
 }
 
+/// A channel-list parameter, `(@101:104,110)`.
+fn channels_param(p: &str) -> Result<Vec<u32>, ScpiError> {
+    if !p.trim().starts_with("(@") {
+        return Err(ScpiError::DataType);
+    }
+    model::groups::parse_channel_list(p).map_err(|_| ScpiError::IllegalParameterValue)
+}
+
 impl SimInstrument {
+    fn read_channels(b: &mut SimBench, chs: &[u32]) -> Result<String, ScpiError> {
+        let mut out = Vec::with_capacity(chs.len());
+        for &c in chs {
+            match b.measure_channel(c) {
+                Some(v) => out.push(nr3(v)),
+                None => return Err(ScpiError::IllegalParameterValue),
+            }
+        }
+        b.scans += 1;
+        Ok(out.join(","))
+    }
+
+    /// A meter's scanning: the scan list, configuration, `READ?`,
+    /// `INITiate` and `FETCh?`.
+    fn scan(
+        &mut self,
+        b: &mut SimBench,
+        cmd: Cmd,
+        query: bool,
+        params: &[String],
+    ) -> Result<Option<String>, ScpiError> {
+        if self.role != SimRole::Meter {
+            return Err(ScpiError::UndefinedHeader);
+        }
+        match cmd {
+            Cmd::RouteScan if query => Ok(Some(model::groups::channel_list(&self.scan_list))),
+            Cmd::RouteScan => {
+                let chs = channels_param(Self::one_param(params)?)?;
+                if chs.iter().any(|&c| b.measure_channel(c).is_none()) {
+                    return Err(ScpiError::IllegalParameterValue);
+                }
+                self.scan_list = chs;
+                Ok(None)
+            }
+            Cmd::Configure => {
+                set_only(query)?;
+                let chs = channels_param(params.last().map(String::as_str).unwrap_or(""))?;
+                if chs.iter().any(|&c| b.measure_channel(c).is_none()) {
+                    return Err(ScpiError::IllegalParameterValue);
+                }
+                Ok(None)
+            }
+            Cmd::Initiate => {
+                set_only(query)?;
+                if self.scan_list.is_empty() {
+                    return Err(ScpiError::SettingsConflict);
+                }
+                let list = self.scan_list.clone();
+                self.last_scan = Some(Self::read_channels(b, &list)?);
+                Ok(None)
+            }
+            Cmd::ReadScan => {
+                query_only(query)?;
+                if self.scan_list.is_empty() {
+                    return Err(ScpiError::SettingsConflict);
+                }
+                let list = self.scan_list.clone();
+                Ok(Some(Self::read_channels(b, &list)?))
+            }
+            _ => {
+                query_only(query)?;
+                self.last_scan
+                    .clone()
+                    .map(Some)
+                    .ok_or(ScpiError::SettingsConflict)
+            }
+        }
+    }
+
     /// The link faults on this instrument that are in effect at `now`,
     /// marking first firings.
     fn faults_now(&mut self, b: &SimBench, now: f64) -> Vec<LinkFault> {

@@ -82,7 +82,10 @@ function bayTile(b) {
       el("div", {}, el("span", {}, "charge (est.)"), l.soc_pct === null ? "?" : `~${fmt(l.soc_pct, 0)} %`),
       el("div", {}, el("span", {}, "step ends in"), l.eta_s === null ? "–" : `${l.eta_lower_bound ? ">" : "~"}${duration(l.eta_s)}`),
       el("div", {}, el("span", {}, "run time"), duration(l.run_t_s)),
-      el("div", {}, el("span", {}, "temperature"), l.temperature_c === null ? "–" : `${fmt(l.temperature_c, 1)} °C`)));
+      el("div", {}, el("span", {}, "temperature"), l.temperature_c === null ? "–" : `${fmt(l.temperature_c, 1)} °C`),
+      ...(l.group_low ? [
+        el("div", {}, el("span", {}, "lowest group"), el("b", { "data-role": "group-low" }, `#${l.group_low[0]} ${fmt(l.group_low[1], 3)} V`)),
+        el("div", {}, el("span", {}, "highest group"), `#${l.group_high[0]} ${fmt(l.group_high[1], 3)} V`)] : [])));
     tile.append(chart(b.name, b.state === "running" ? l : null));
     for (const a of l.alarms) tile.append(el("div", { class: "alarm" }, `Alarm: ${a}`));
   }

@@ -26,6 +26,11 @@ struct RawGrade {
     soh_min: Option<RawValue>,
     resistance_growth_max: Option<RawValue>,
     coulombic_efficiency_min: Option<RawValue>,
+    /// The weakest cell group's charge to the cutoff as a share of the
+    /// groups' mean (packs read group by group).
+    weakest_group_share_min: Option<RawValue>,
+    /// (highest − lowest) group charge to the cutoff over the mean.
+    group_capacity_spread_max: Option<RawValue>,
 }
 
 #[derive(Debug, Deserialize)]
@@ -155,6 +160,8 @@ pub struct GradeRule {
     pub soh_min: Option<Threshold>,
     pub resistance_growth_max: Option<Threshold>,
     pub ce_min: Option<Threshold>,
+    pub weakest_group_share_min: Option<Threshold>,
+    pub group_capacity_spread_max: Option<Threshold>,
 }
 
 #[derive(Debug, Clone, PartialEq)]
@@ -173,6 +180,11 @@ pub struct GradeInputs {
     /// Resistance growth against the reference, %.
     pub resistance_growth_pct: Option<f64>,
     pub coulombic_efficiency_pct: Option<f64>,
+    /// A pack read group by group: its weakest group, that group's share
+    /// of the mean and the groups' spread, %.
+    pub weakest_group: Option<u32>,
+    pub weakest_group_share_pct: Option<f64>,
+    pub group_capacity_spread_pct: Option<f64>,
 }
 
 /// A grade with its reasons.
@@ -267,6 +279,14 @@ impl Policy {
                     .coulombic_efficiency_min
                     .as_ref()
                     .and_then(|v| threshold(v, file, text, &mut errors)),
+                weakest_group_share_min: r
+                    .weakest_group_share_min
+                    .as_ref()
+                    .and_then(|v| threshold(v, file, text, &mut errors)),
+                group_capacity_spread_max: r
+                    .group_capacity_spread_max
+                    .as_ref()
+                    .and_then(|v| threshold(v, file, text, &mut errors)),
             });
         }
         if grades.is_empty() {
@@ -278,6 +298,8 @@ impl Policy {
             if last.soh_min.is_some()
                 || last.resistance_growth_max.is_some()
                 || last.ce_min.is_some()
+                || last.weakest_group_share_min.is_some()
+                || last.group_capacity_spread_max.is_some()
             {
                 errors.push(LocatedError {
                     location: Location::of_span(file, text, &raw_last.span()),
@@ -361,6 +383,39 @@ impl Policy {
                 rule.ce_min.as_ref().and_then(|t| t.for_chemistry(c)),
                 true,
             );
+            // The group criteria apply to a pack read group by group; a
+            // pack read at its terminals only is not noted for them.
+            if let Some(g) = x.weakest_group {
+                if let (Some(v), Some(lim)) = (
+                    x.weakest_group_share_pct,
+                    rule.weakest_group_share_min
+                        .as_ref()
+                        .and_then(|t| t.for_chemistry(c)),
+                ) {
+                    if v >= lim {
+                        reasons.push(format!(
+                            "weakest group (group {g}) delivers {v:.1} % of the mean >= {lim} %"
+                        ));
+                    } else {
+                        fails.push(format!(
+                            "group {g} delivers {v:.1} % of the mean < {lim} %: replace or rebalance it"
+                        ));
+                    }
+                }
+                if let (Some(v), Some(lim)) = (
+                    x.group_capacity_spread_pct,
+                    rule.group_capacity_spread_max
+                        .as_ref()
+                        .and_then(|t| t.for_chemistry(c)),
+                ) {
+                    let line = format!("group capacity spread {v:.1} %");
+                    if v <= lim {
+                        reasons.push(format!("{line} <= {lim} %"));
+                    } else {
+                        fails.push(format!("{line} > {lim} % (weakest: group {g})"));
+                    }
+                }
+            }
             if fails.is_empty() {
                 let mut all = why_not;
                 all.extend(reasons);

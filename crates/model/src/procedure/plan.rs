@@ -18,6 +18,16 @@ pub struct Envelope {
     pub charge_max_ah: f64,
     /// Longest any single step may last.
     pub step_time_max_s: f64,
+    /// Each cell group's limits, V (a group is one cell of the series
+    /// count), checked where a station reads its groups.
+    #[serde(default)]
+    pub group_voltage_max_v: Option<f64>,
+    #[serde(default)]
+    pub group_voltage_min_v: Option<f64>,
+    /// Fastest rise any temperature input may show, K/s (judged over a
+    /// minute).
+    #[serde(default)]
+    pub temperature_rise_max_k_per_s: Option<f64>,
 }
 
 /// How a discharge step loads the pack. Values are magnitudes.

@@ -28,6 +28,9 @@ pub struct RawEnvelope {
     pub temperature_min: Option<Text>,
     pub charge_max: Option<Text>,
     pub step_time_max: Option<Text>,
+    pub group_voltage_max: Option<Text>,
+    pub group_voltage_min: Option<Text>,
+    pub temperature_rise_max: Option<Text>,
 }
 
 #[derive(Debug, Deserialize)]

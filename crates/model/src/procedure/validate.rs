@@ -148,6 +148,30 @@ fn build_envelope(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<E
             .and_then(|s| positive(cx, t, s, "step_time_max")),
         None => Some(48.0 * 3600.0),
     };
+    // A group is one cell of the series count: "4.25V/cell" is 4.25 V a
+    // group, and a bare "4.25V" means the same.
+    let group_v = |cx: &mut Ctx, t: &Option<Text>, key: &str| {
+        t.as_ref()
+            .and_then(|t| cx.unit(t, units::voltage).map(|v| (t, v.resolve(1))))
+            .and_then(|(t, v)| positive(cx, t, v, key))
+    };
+    let gmax = group_v(cx, &env.group_voltage_max, "group_voltage_max");
+    let gmin = group_v(cx, &env.group_voltage_min, "group_voltage_min");
+    if let (Some(hi), Some(lo), Some(t)) = (gmax, gmin, &env.group_voltage_min) {
+        if lo >= hi {
+            cx.err(
+                &t.span(),
+                format!(
+                    "group_voltage_min ({lo:.3} V) must be below group_voltage_max ({hi:.3} V)"
+                ),
+            );
+        }
+    }
+    let rise = env
+        .temperature_rise_max
+        .as_ref()
+        .and_then(|t| cx.unit(t, units::temperature_rate).map(|r| (t, r)))
+        .and_then(|(t, r)| positive(cx, t, r, "temperature_rise_max"));
     if let (Some(hi), Some(t)) = (vmax, &vmax_t) {
         let ceiling = pack.chemistry.envelope_ceiling_v_per_cell() * f64::from(series);
         if hi > ceiling {
@@ -185,6 +209,9 @@ fn build_envelope(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<E
         temperature_min_c: tmin,
         charge_max_ah: charge_max?,
         step_time_max_s: step_time_max?,
+        group_voltage_max_v: gmax,
+        group_voltage_min_v: gmin,
+        temperature_rise_max_k_per_s: rise,
     })
 }
 
