@@ -20,6 +20,7 @@ mod fade;
 #[cfg(unix)]
 mod figures;
 mod fuzz_seeds;
+mod groups;
 mod hostile;
 mod index;
 mod layers;

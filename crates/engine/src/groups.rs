@@ -89,6 +89,8 @@ pub struct GroupMonitor {
     pack_at_same: Vec<f64>,
     reported: Vec<(u32, ChannelIssue)>,
     history: Vec<VecDeque<(f64, f64)>>,
+    /// The last scan's mismatch (pack less the groups), V.
+    last_mismatch: Option<f64>,
 }
 
 impl GroupMonitor {
@@ -102,6 +104,7 @@ impl GroupMonitor {
             pack_at_same: vec![0.0; n],
             reported: Vec::new(),
             history: vec![VecDeque::new(); k],
+            last_mismatch: None,
         }
     }
 
@@ -135,6 +138,7 @@ impl GroupMonitor {
         let n = self.channels.groups();
         let (rv, rt) = raw.split_at(n.min(raw.len()));
         let mut notices = Vec::new();
+        let prev_raw = self.last_raw.clone();
         // Open and stuck channels.
         let mut bad: Vec<Option<ChannelIssue>> = vec![None; n];
         for k in 0..n {
@@ -180,8 +184,9 @@ impl GroupMonitor {
                     inferred = Some(k);
                 } else {
                     let d = pack_v - volts.iter().sum::<f64>();
+                    let prev_d = self.last_mismatch.replace(d);
                     if d.abs() > tol {
-                        match suspect(&volts, d) {
+                        match suspect(&volts, &prev_raw, d, prev_d, tol) {
                             Some(k) => {
                                 bad[k] = Some(ChannelIssue::Loose);
                                 volts[k] += d;
@@ -299,19 +304,35 @@ impl GroupMonitor {
     }
 }
 
-/// The one channel whose reading, moved by the mismatch `d`, comes
-/// closest to the other groups' median, if it clearly stands out.
-fn suspect(volts: &[f64], d: f64) -> Option<usize> {
+/// The one channel that explains a mismatch `d` (pack less the groups):
+/// first, when the scan before added up, the channel whose own change
+/// since then accounts for the new mismatch (a lead that just came
+/// loose); else the one channel whose reading, moved by `d`, comes back
+/// to the others' median. `None` when no channel, or more than one, fits:
+/// then nothing is inferred.
+fn suspect(volts: &[f64], prev: &[f64], d: f64, prev_d: Option<f64>, tol: f64) -> Option<usize> {
+    if let Some(pd) = prev_d.filter(|pd| pd.abs() <= tol) {
+        let dd = d - pd;
+        let jumped: Vec<usize> = (0..volts.len())
+            .filter(|&k| {
+                let step = volts[k] - prev.get(k).copied().unwrap_or(f64::NAN);
+                step.is_finite() && (step + dd).abs() < 0.5 * dd.abs()
+            })
+            .collect();
+        if jumped.len() == 1 {
+            return Some(jumped[0]);
+        }
+    }
     let mut sorted: Vec<f64> = volts.to_vec();
     sorted.sort_by(f64::total_cmp);
     let median = sorted[sorted.len() / 2];
-    let (k, after) = volts
-        .iter()
-        .enumerate()
-        .map(|(k, &v)| (k, (v + d - median).abs()))
-        .min_by(|a, b| a.1.total_cmp(&b.1))?;
-    // The correction must bring it most of the way back.
-    ((volts[k] - median).abs() > 0.5 * d.abs() && after < 0.5 * d.abs()).then_some(k)
+    let fits: Vec<usize> = (0..volts.len())
+        .filter(|&k| {
+            (volts[k] - median).abs() > 0.5 * d.abs()
+                && (volts[k] + d - median).abs() < 0.5 * d.abs()
+        })
+        .collect();
+    (fits.len() == 1).then(|| fits[0])
 }
 
 /// A crossed per-group or per-sensor limit.
@@ -362,7 +383,7 @@ pub fn check(
                 value: *t,
                 threshold: hi,
                 message: format!(
-                    "temperature '{}' ({}) at {t:.1} degC, above its limit {hi:.1} degC",
+                    "temperature '{}' ({}) at {t:.2} degC, above its limit {hi:.2} degC",
                     tc.name, tc.place
                 ),
             });
@@ -468,7 +489,7 @@ mod tests {
         assert_eq!(out.notices.len(), 1);
         assert!(out.notices[0].message.contains("channel 102 (group 2)"));
         assert_eq!(
-            first_below(&out.sample, 3.0),
+            first_below(&out.sample, 3.001),
             Some((2, out.sample.voltage_v[1]))
         );
         // Reported once a run.
@@ -502,19 +523,21 @@ mod tests {
         let mut m = GroupMonitor::new(chans(4, Wiring::Direct));
         let mut last = None;
         for i in 0..=STUCK_SCANS {
+            // The sound channels follow their groups down; channel 102
+            // keeps its first reading while its group falls faster.
+            let x = 3.40 - 0.001 * f64::from(i);
             let g2 = 3.40 - 0.01 * f64::from(i);
-            let pack = 3.40 * 3.0 + g2;
-            last = Some(m.interpret(
-                f64::from(i),
-                1,
-                1,
-                pack,
-                &scan(&[3.40, 3.40, 3.40, 3.40], 25.0),
-            ));
+            let pack = 3.0 * x + g2;
+            let raw = scan(&[x, 3.40, x, x], 25.0);
+            last = Some(m.interpret(f64::from(i), 1, 1, pack, &raw));
         }
         let out = last.unwrap();
         assert_eq!(out.sample.inferred, Some(2), "{out:?}");
-        assert!((out.sample.voltage_v[1] - 3.30).abs() < 1e-9);
+        assert!((out.sample.voltage_v[1] - 3.30).abs() < 1e-9, "{out:?}");
+        assert_eq!(
+            first_below(&out.sample, 3.35),
+            Some((2, out.sample.voltage_v[1]))
+        );
         assert!(out.notices.iter().any(|n| n.issue == ChannelIssue::Stuck));
     }
 

@@ -689,7 +689,7 @@ impl Meter {
             return parts
                 .iter()
                 .map(|p| {
-                    scpi::parse_number(p)
+                    scpi::parse_channel_reading(p)
                         .map_err(|m| self.0.err(ErrorKind::Protocol, format!("'{q}' -> {m}")))
                 })
                 .collect();
@@ -706,7 +706,11 @@ impl Meter {
         let mut out = Vec::with_capacity(want);
         for &ch in volts {
             let q = tv.replace("{channels}", &channel_list(&[ch]));
-            out.push(self.0.session.query_number(&q).await?);
+            let reply = self.0.session.query(&q).await?;
+            out.push(
+                scpi::parse_channel_reading(&reply)
+                    .map_err(|m| self.0.err(ErrorKind::Protocol, format!("'{q}' -> {m}")))?,
+            );
         }
         for &ch in temps {
             let Some(t) = &tt else {
@@ -716,7 +720,11 @@ impl Meter {
                 ));
             };
             let q = t.replace("{channels}", &channel_list(&[ch]));
-            out.push(self.0.session.query_number(&q).await?);
+            let reply = self.0.session.query(&q).await?;
+            out.push(
+                scpi::parse_channel_reading(&reply)
+                    .map_err(|m| self.0.err(ErrorKind::Protocol, format!("'{q}' -> {m}")))?,
+            );
         }
         Ok(out)
     }

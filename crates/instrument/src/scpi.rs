@@ -436,6 +436,19 @@ pub fn parse_number(reply: &str) -> Result<f64, String> {
     Ok(x)
 }
 
+/// A scanned channel's reading: as [`parse_number`], but SCPI's
+/// overload / not-a-number marker (an open or overloaded input) is
+/// returned as infinity for the caller to judge, not refused.
+pub fn parse_channel_reading(reply: &str) -> Result<f64, String> {
+    match parse_number(reply) {
+        Ok(x) => Ok(x),
+        Err(e) => match reply.trim().parse::<f64>() {
+            Ok(x) if x.abs() >= OVERLOAD * 0.999 => Ok(f64::INFINITY),
+            _ => Err(e),
+        },
+    }
+}
+
 /// Parse a boolean response.
 pub fn parse_bool_reply(reply: &str) -> Result<bool, String> {
     match reply.trim().to_ascii_uppercase().as_str() {

@@ -41,6 +41,9 @@ pub enum Event {
         t_s: f64,
         step: u32,
         limit: String,
+        /// Not a number (written as null) when the limit has no reading:
+        /// a reading that was no number, groups that cannot be seen.
+        #[serde(deserialize_with = "nan_if_null")]
         value: f64,
         threshold: f64,
         message: String,
@@ -132,6 +135,11 @@ pub enum Event {
         /// How the step continues (the documented rule for its kind).
         rule: String,
     },
+}
+
+/// A number written by JSON as null (a NaN) reads back as NaN.
+fn nan_if_null<'de, D: serde::Deserializer<'de>>(d: D) -> Result<f64, D::Error> {
+    Ok(Option::<f64>::deserialize(d)?.unwrap_or(f64::NAN))
 }
 
 /// Where samples and events go. Errors stop the run safely.
