@@ -669,6 +669,75 @@ profile = "generic-scpi-meter"
             .to_string()
     }
 
+    const GROUPS: &str = r#"
+[[station]]
+name = "bay-3"
+[station.source]
+link = "tcp:127.0.0.1:5025"
+profile = "generic-scpi-source"
+[station.load]
+link = "tcp:127.0.0.1:5026"
+profile = "generic-scpi-load"
+[station.meter]
+link = "tcp:127.0.0.1:5027"
+profile = "generic-scpi-scanner"
+[station.groups]
+wiring = "taps"
+channels = "(@101:113)"
+[[station.groups.temperature]]
+channel = 207
+name = "group 7 surface"
+place = "cell side, middle"
+group = 7
+max = "50degC"
+[[station.groups.temperature]]
+channel = 250
+name = "ambient"
+place = "air beside the pack"
+"#;
+
+    #[test]
+    fn groups_map_channels_to_groups_and_sensors() {
+        let b = BenchFile::parse(Path::new("bench.toml"), GROUPS).unwrap();
+        let g = b.stations[0].groups.as_ref().unwrap();
+        assert_eq!(g.wiring, model::groups::Wiring::Taps);
+        assert_eq!(g.voltage, (101..=113).collect::<Vec<u32>>());
+        assert_eq!(g.temperatures.len(), 2);
+        assert_eq!(g.temperatures[0].max_c, Some(50.0));
+        assert_eq!(g.temperatures[0].group, Some(7));
+        assert_eq!(g.sensor_on(7), Some(0));
+    }
+
+    /// Each mistake is located (file:line:column) before any link opens.
+    #[test]
+    fn bad_groups_are_located() {
+        let e = err(&GROUPS.replace("(@101:113)", "(@113:101)"));
+        assert!(e.starts_with("bench.toml:15:13:"), "{e}");
+        assert!(e.contains("not ascending"), "{e}");
+        let e = err(&GROUPS.replace("channel = 207", "channel = 105"));
+        assert!(e.starts_with("bench.toml:17:11:"), "{e}");
+        assert!(e.contains("channel 105 is already used"), "{e}");
+        let e = err(&GROUPS.replace("group = 7", "group = 14"));
+        assert!(e.starts_with("bench.toml:20:9:"), "{e}");
+        assert!(e.contains("expected 1 to 13"), "{e}");
+        let e = err(&GROUPS.replace("wiring = \"taps\"", "wiring = \"star\""));
+        assert!(e.starts_with("bench.toml:14:11:"), "{e}");
+        let e = err(&GROUPS.replace("max = \"50degC\"", "max = \"hot\""));
+        assert!(e.starts_with("bench.toml:21:8:"), "{e}");
+        let e = err(&GROUPS.replace("name = \"ambient\"", "name = \"group 7 surface\""));
+        assert!(e.contains("a name of its own"), "{e}");
+        // A meter that cannot read channels, and none at all.
+        let e = err(&GROUPS.replace("generic-scpi-scanner", "generic-scpi-meter"));
+        assert!(e.starts_with("bench.toml:13:1:"), "{e}");
+        assert!(e.contains("cannot read channels"), "{e}");
+        let no_meter = GROUPS.replace(
+            "[station.meter]\nlink = \"tcp:127.0.0.1:5027\"\nprofile = \"generic-scpi-scanner\"\n",
+            "",
+        );
+        let e = err(&no_meter);
+        assert!(e.contains("needs a [station.meter]"), "{e}");
+    }
+
     #[test]
     fn sim_links_make_a_simulated_station() {
         let text = "[[station]]\nname = \"s\"\n[station.source]\nlink = \"sim\"\nprofile = \"generic-scpi-source\"\n[station.load]\nlink = \"sim\"\nprofile = \"generic-scpi-load\"\n";
