@@ -5,6 +5,7 @@
 //! differential curves the summary names.
 
 use analysis::curves::{ChargeGrid, GRID_FRACTION, GRID_MAX_POINTS};
+use model::groups::GroupSample;
 use model::sample::Sample;
 use record::import::{stream_log, LogFormat, Row};
 use record::read::ReadError;
@@ -82,6 +83,9 @@ pub struct ChartData {
     pub capacity: Option<Thinned>,
     /// Charge grids of the steps with differential curves, by step.
     pub grids: Vec<(u32, ChargeGrid)>,
+    /// A pack read group by group: each group's voltage against time (h)
+    /// and, in the capacity step, against discharged charge (Ah).
+    pub groups: Vec<(Thinned, Thinned)>,
 }
 
 /// Gathers [`ChartData`] sample by sample.
@@ -91,6 +95,8 @@ pub struct ChartBuilder {
     /// Charge so far in the capacity step, and its previous sample.
     q: f64,
     prev: Option<Sample>,
+    group_rows: Vec<GroupSample>,
+    next_group: usize,
 }
 
 impl ChartBuilder {
@@ -116,11 +122,40 @@ impl ChartBuilder {
                 temperature: Thinned::new(MAX_POINTS),
                 capacity: s.capacity.as_ref().map(|_| Thinned::new(MAX_POINTS)),
                 grids: steps.into_iter().map(|k| (k, grid())).collect(),
+                groups: Vec::new(),
             },
             capacity_step: s.capacity.as_ref().map(|c| c.step),
             q: 0.0,
             prev: None,
+            group_rows: Vec::new(),
+            next_group: 0,
         }
+    }
+
+    /// The run's group log, read on the samples' grid.
+    pub fn with_groups(mut self, rows: Vec<GroupSample>) -> ChartBuilder {
+        let n = rows.first().map_or(0, |g| g.voltage_v.len());
+        self.data.groups = (0..n)
+            .map(|_| (Thinned::new(MAX_POINTS / 2), Thinned::new(MAX_POINTS / 2)))
+            .collect();
+        self.group_rows = rows;
+        self
+    }
+
+    /// The group scan taken with this sample, if there is one.
+    fn group_row(&mut self, x: &Sample) -> Option<usize> {
+        while let Some(g) = self.group_rows.get(self.next_group) {
+            if g.t_s < x.t_s - 1e-9 || (g.t_s <= x.t_s + 1e-9 && g.step < x.step) {
+                self.next_group += 1;
+                continue;
+            }
+            if (g.t_s - x.t_s).abs() <= 1e-9 && g.step == x.step {
+                self.next_group += 1;
+                return Some(self.next_group - 1);
+            }
+            return None;
+        }
+        None
     }
 
     pub fn push(&mut self, x: &Sample) {
@@ -142,6 +177,20 @@ impl ChartBuilder {
         if let Some((_, g)) = self.data.grids.iter_mut().find(|(k, _)| *k == x.step) {
             g.push(x.t_s, x.voltage_v, x.current_a);
         }
+        if !self.group_rows.is_empty() {
+            if let Some(i) = self.group_row(x) {
+                let in_cap = Some(x.step) == self.capacity_step;
+                let q = self.q;
+                for (k, &v) in self.group_rows[i].voltage_v.iter().enumerate() {
+                    if let Some((t, c)) = self.data.groups.get_mut(k) {
+                        t.push((h, v));
+                        if in_cap {
+                            c.push((q, v));
+                        }
+                    }
+                }
+            }
+        }
         self.prev = Some(*x);
     }
 
@@ -153,6 +202,13 @@ impl ChartBuilder {
 /// A run's chart data from its log, streamed.
 pub fn from_log(s: &Summary, samples_csv: &Path) -> Result<ChartData, ReadError> {
     let mut b = ChartBuilder::new(s);
+    if s.groups.is_some() {
+        if let Some(dir) = samples_csv.parent() {
+            if let Some(rows) = record::read::read_groups(dir)? {
+                b = b.with_groups(rows);
+            }
+        }
+    }
     stream_log(samples_csv, &LogFormat::default(), |r: Row| {
         b.push(&r.sample())
     })?;

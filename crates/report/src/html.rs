@@ -30,6 +30,7 @@ td.wrap { white-space: normal; max-width: 46em; }
 .card dl { display: grid; grid-template-columns: auto auto; gap: 2px 12px; margin: 6px 0; font-size: 13px; }
 .card dt { color: #555; } .card dd { margin: 0; font-weight: bold; }
 .warn { color: #8a5a00; } .flag { color: #b00; font-weight: bold; }
+tr.weak td { background: #fde8e8; }
 svg { display: block; margin: 8px 0; max-width: 100%; height: auto; }
 @media print { body { margin: 0; } h2 { page-break-after: avoid; } }
 "#;
@@ -117,6 +118,13 @@ fn grade_card(s: &Summary) -> String {
                 .map(|r| format!("{:.1} mΩ", r.dcir_mohm)),
         ),
         ("Coulombic efficiency", ce.map(|c| format!("{c:.2} %"))),
+        (
+            "Weakest group",
+            s.groups.as_ref().and_then(|g| {
+                g.weakest
+                    .map(|w| format!("group {w}: {} % of the mean", f(g.weakest_share_pct, 1)))
+            }),
+        ),
         ("Cycles", s.cycle_count.map(|c| format!("{c:.0}"))),
         (
             "BMS capacity error",
@@ -231,6 +239,9 @@ pub fn run_report(s: &Summary, charts: &ChartData) -> String {
     let _ = write!(b, "<h2>Voltage, current and temperature</h2>");
     time_charts(&mut b, charts);
     capacity_chart(&mut b, charts);
+    if let Some(g) = &s.groups {
+        group_section(&mut b, g, charts);
+    }
     differential_charts(&mut b, s, charts);
     step_table(&mut b, s);
     page(&format!("packbench — {} — {}", s.pack_id, s.run_id), &b)
@@ -432,6 +443,127 @@ fn time_charts(b: &mut String, charts: &ChartData) {
 }
 
 /// Voltage against discharged charge over the capacity step.
+/// A pack read group by group: the table of groups with the weakest
+/// marked and why, their voltages against time and against discharged
+/// charge (the weakest drawn in red, the others grey), and a bar chart of
+/// each group's charge to its cutoff.
+fn group_section(b: &mut String, g: &analysis::groups::GroupsResult, charts: &ChartData) {
+    let _ = write!(b, "<h2>Cell groups</h2>");
+    if let Some(w) = &g.weakest_reason {
+        let _ = write!(
+            b,
+            "<p class=\"flag\"><b>Weakest group:</b> {}</p>",
+            escape(w)
+        );
+    }
+    let _ = write!(
+        b,
+        "<p>End-of-charge spread {} mV · end-of-discharge spread {} mV · capacity spread {} %</p>",
+        f(g.end_of_charge_spread_mv, 0),
+        f(g.end_of_discharge_spread_mv, 0),
+        f(g.capacity_spread_pct, 1)
+    );
+    let _ = write!(
+        b,
+        "<table><tr><th>group</th><th>to cutoff (Ah)</th><th>share of mean (%)</th><th>capacity vs mean (%)</th><th>end of charge (V)</th><th>end of discharge (V)</th><th>resistance (mΩ)</th><th>max temperature (°C)</th><th class=\"l\">how</th></tr>"
+    );
+    for r in &g.groups {
+        let weak = g.weakest == Some(r.group);
+        let _ = write!(
+            b,
+            "<tr{}><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td class=\"l\">{}{}</td></tr>",
+            if weak { " class=\"weak\"" } else { "" },
+            r.group,
+            f(r.charge_to_cutoff_ah, 3),
+            f(r.share_of_mean_pct, 1),
+            f(r.relative_capacity_pct, 1),
+            f(r.end_of_charge_v, 3),
+            f(r.end_of_discharge_v, 3),
+            f(r.resistance_mohm, 2),
+            f(r.max_temperature_c, 1),
+            escape(&r.how),
+            if weak { " · weakest" } else { "" }
+        );
+    }
+    let _ = write!(b, "</table>");
+    for t in &g.temperatures {
+        let _ = write!(
+            b,
+            "<p class=\"sub\">Temperature input '{}' ({}, channel {}): highest {} °C</p>",
+            escape(&t.name),
+            escape(&t.place),
+            t.channel,
+            f(t.max_c, 1)
+        );
+    }
+    let color = |k: usize| {
+        if g.weakest == Some(k as u32 + 1) {
+            svg::RED_
+        } else {
+            svg::RGBColor(170, 170, 170)
+        }
+    };
+    let name = |k: usize| {
+        if g.weakest == Some(k as u32 + 1) {
+            format!("group {} (weakest)", k + 1)
+        } else if k == 0 || (k == 1 && g.weakest == Some(1)) {
+            "the other groups".to_string()
+        } else {
+            String::new()
+        }
+    };
+    for (title, x, pick) in [
+        ("Group voltages against time", "time (h)", 0usize),
+        (
+            "Group voltages against discharged charge (capacity step)",
+            "discharged (Ah)",
+            1,
+        ),
+    ] {
+        let mut c = Chart::new(title, x, "group voltage (V)");
+        c.legend_lower_left = true;
+        // The weakest last, so it is drawn over the others.
+        let mut order: Vec<usize> = (0..charts.groups.len()).collect();
+        order.sort_by_key(|&k| g.weakest == Some(k as u32 + 1));
+        for k in order {
+            let (t, q) = &charts.groups[k];
+            let pts = if pick == 0 { t.points() } else { q.points() };
+            c.series.push(Series {
+                name: name(k),
+                points: svg::thin(&pts, MAX_POINTS / 2),
+                color: color(k),
+                mark: Mark::Line,
+            });
+        }
+        b.push_str(&svg::render(&c));
+    }
+    let bars: Vec<(f64, f64)> = g
+        .groups
+        .iter()
+        .filter_map(|r| r.charge_to_cutoff_ah.map(|c| (f64::from(r.group), c)))
+        .collect();
+    if !bars.is_empty() {
+        let mean = bars.iter().map(|p| p.1).sum::<f64>() / bars.len() as f64;
+        let mut c = Chart::new(
+            &format!("Each group's charge to its cutoff (dashed: the mean, {mean:.3} Ah)"),
+            "group",
+            "charge to cutoff (Ah)",
+        );
+        c.series.push(Series {
+            name: String::new(),
+            points: bars,
+            color: svg::BLUE_,
+            mark: Mark::Bars,
+        });
+        c.hlines.push(svg::HLine {
+            y: mean,
+            name: String::new(),
+            color: svg::GREY_,
+        });
+        b.push_str(&svg::render(&c));
+    }
+}
+
 fn capacity_chart(b: &mut String, charts: &ChartData) {
     if let Some(curve) = &charts.capacity {
         let _ = write!(b, "<h2>Capacity discharge</h2>");

@@ -11,6 +11,9 @@ pub enum Mark {
     Line,
     Dots,
     LineAndDots,
+    /// A bar from the bottom of the chart up to each point, 0.7 of a unit
+    /// of x wide (a bar chart over whole-numbered x).
+    Bars,
 }
 
 /// One data series.
@@ -52,6 +55,8 @@ pub struct Chart {
     pub x_is_date: bool,
     pub width: u32,
     pub height: u32,
+    /// The legend in the lower left corner instead of the upper right.
+    pub legend_lower_left: bool,
 }
 
 impl Chart {
@@ -66,6 +71,7 @@ impl Chart {
             x_is_date: false,
             width: 760,
             height: 340,
+            legend_lower_left: false,
         }
     }
 }
@@ -161,7 +167,14 @@ pub fn render(c: &Chart) -> String {
                 .iter()
                 .flat_map(|b| b.upper.iter().chain(&b.lower).map(|p| p.1)),
         )
-        .chain(c.hlines.iter().map(|h| h.y));
+        .chain(c.hlines.iter().map(|h| h.y))
+        // Bars stand on zero.
+        .chain(
+            c.series
+                .iter()
+                .filter(|s| s.mark == Mark::Bars)
+                .map(|_| 0.0),
+        );
     let (Some(xr), Some(yr)) = (range(xs), range(ys)) else {
         return no_data(c);
     };
@@ -246,14 +259,26 @@ fn draw(c: &Chart, xr: (f64, f64), yr: (f64, f64), out: &mut String) -> DrawResu
     for s in &c.series {
         let color = s.color;
         if matches!(s.mark, Mark::Line | Mark::LineAndDots) {
+            let drawn = chart.draw_series(LineSeries::new(
+                s.points.iter().copied(),
+                color.stroke_width(2),
+            ))?;
+            // A series with no name has no legend entry.
+            if !s.name.is_empty() {
+                drawn.label(s.name.as_str()).legend(move |(x, y)| {
+                    PathElement::new(vec![(x, y), (x + 18, y)], color.stroke_width(2))
+                });
+            }
+        }
+        if s.mark == Mark::Bars {
+            let y0 = yr.0;
             chart
-                .draw_series(LineSeries::new(
-                    s.points.iter().copied(),
-                    color.stroke_width(2),
-                ))?
+                .draw_series(s.points.iter().map(|&(x, y)| {
+                    Rectangle::new([(x - 0.35, y0), (x + 0.35, y)], color.mix(0.8).filled())
+                }))?
                 .label(s.name.as_str())
                 .legend(move |(x, y)| {
-                    PathElement::new(vec![(x, y), (x + 18, y)], color.stroke_width(2))
+                    Rectangle::new([(x, y - 5), (x + 18, y + 5)], color.mix(0.8).filled())
                 });
         }
         if matches!(s.mark, Mark::Dots | Mark::LineAndDots) {
@@ -265,11 +290,17 @@ fn draw(c: &Chart, xr: (f64, f64), yr: (f64, f64), out: &mut String) -> DrawResu
             }
         }
     }
-    let named = c.series.len() + c.bands.len() + c.hlines.len();
-    if named > 1 || c.series.iter().any(|s| !s.name.is_empty()) {
+    let named = c.series.iter().filter(|s| !s.name.is_empty()).count()
+        + c.bands.iter().filter(|b| !b.name.is_empty()).count()
+        + c.hlines.iter().filter(|h| !h.name.is_empty()).count();
+    if named > 0 {
         chart
             .configure_series_labels()
-            .position(SeriesLabelPosition::UpperRight)
+            .position(if c.legend_lower_left {
+                SeriesLabelPosition::LowerLeft
+            } else {
+                SeriesLabelPosition::UpperRight
+            })
             .background_style(WHITE.mix(0.85))
             .border_style(RGBColor(190, 190, 190))
             .label_font(("sans-serif", 12))
