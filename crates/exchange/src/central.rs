@@ -948,6 +948,7 @@ pub fn histories(store: &mut Store) -> Result<Vec<PackHistory>, CentralError> {
             coulombic_efficiency_pct: r.get(12),
             grade: r.get(13),
             discharged_ah: r.get(14),
+            groups: None,
         };
         runs.entry(pack.clone())
             .or_default()

@@ -147,6 +147,7 @@ pub fn parse_history_csv(
             grade: None,
             source: format!("{} line {line_no}", path.display()),
             run_dir: None,
+            groups: None,
         });
     }
     Ok(out)
@@ -170,6 +171,10 @@ pub struct RunFacts {
     /// Discharge Ah packbench measured in the run (the cycle count's
     /// throughput).
     pub discharged_ah: f64,
+    /// A pack read group by group: how far its groups were apart (not kept
+    /// by the results index: read from the summaries).
+    #[serde(default)]
+    pub groups: Option<analysis::fade::history::GroupSpread>,
 }
 
 /// The capacity step's figures a history needs.
@@ -240,6 +245,10 @@ impl RunFacts {
                 .find_map(|c| c.coulombic_efficiency_pct),
             grade: s.grade.as_ref().map(|g| g.label.clone()),
             discharged_ah: s.steps.iter().map(|st| st.charge_out_ah).sum(),
+            groups: s
+                .groups
+                .as_ref()
+                .map(analysis::fade::history::GroupSpread::of),
         }
     }
 }
@@ -365,6 +374,7 @@ pub fn assemble(
                     grade: s.grade.clone(),
                     source: format!("run {}", s.run_id),
                     run_dir: Some(dir.clone()),
+                    groups: s.groups.clone(),
                 });
             }
         }

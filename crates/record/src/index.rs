@@ -546,6 +546,7 @@ impl Index {
                             coulombic_efficiency_pct: r.get(12)?,
                             grade: r.get(13)?,
                             discharged_ah: r.get(14)?,
+                            groups: None,
                         },
                     ))
                 })

@@ -564,6 +564,48 @@ fn group_section(b: &mut String, g: &analysis::groups::GroupsResult, charts: &Ch
     }
 }
 
+/// A pack read group by group: its groups' spread and its weakest
+/// group's share, test by test.
+fn group_spread_chart(b: &mut String, h: &PackHistory) {
+    let pts: Vec<(f64, &analysis::fade::history::GroupSpread)> = h
+        .points
+        .iter()
+        .filter_map(|p| {
+            let days = f64::from(chrono::Datelike::num_days_from_ce(&p.date));
+            p.groups.as_ref().map(|g| (days, g))
+        })
+        .collect();
+    if pts.is_empty() {
+        return;
+    }
+    let _ = write!(b, "<h2>Cell groups over the pack's history</h2>");
+    let mut c = Chart::new(
+        "The groups' capacity spread and the weakest group's shortfall",
+        "test date",
+        "% of the mean",
+    );
+    c.x_is_date = true;
+    c.series.push(Series {
+        name: "capacity spread (highest − lowest)".into(),
+        points: pts
+            .iter()
+            .filter_map(|(d, g)| g.capacity_spread_pct.map(|v| (*d, v)))
+            .collect(),
+        color: svg::ORANGE_,
+        mark: Mark::LineAndDots,
+    });
+    c.series.push(Series {
+        name: "weakest group's shortfall (100 − share)".into(),
+        points: pts
+            .iter()
+            .filter_map(|(d, g)| g.weakest_share_pct.map(|v| (*d, 100.0 - v)))
+            .collect(),
+        color: svg::RED_,
+        mark: Mark::LineAndDots,
+    });
+    b.push_str(&svg::render(&c));
+}
+
 fn capacity_chart(b: &mut String, charts: &ChartData) {
     if let Some(curve) = &charts.capacity {
         let _ = write!(b, "<h2>Capacity discharge</h2>");
@@ -751,6 +793,7 @@ pub fn pack_report(
     soh_by_cycles_chart(&mut b, h, fa);
     soh_by_date_chart(&mut b, h, fa);
     resistance_charts(&mut b, h, fa);
+    group_spread_chart(&mut b, h);
     overlay_chart(&mut b, curves_by_run);
     pack_tables(&mut b, h, fa);
     page(&format!("packbench — fade of {}", h.pack_id), &b)

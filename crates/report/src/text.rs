@@ -288,6 +288,47 @@ fn resistance_lines(o: &mut String, s: &Summary) {
 }
 
 /// The fade analysis of one pack for a terminal.
+/// The groups' spread test by test, and how much it grew.
+fn group_spread_text(o: &mut String, h: &analysis::fade::history::PackHistory) {
+    let pts: Vec<_> = h
+        .points
+        .iter()
+        .filter_map(|p| p.groups.as_ref().map(|g| (p, g)))
+        .collect();
+    if pts.is_empty() {
+        return;
+    }
+    let f = |x: Option<f64>, d: usize| x.map_or("-".to_string(), |v| format!("{v:.d$}"));
+    let _ = writeln!(
+        o,
+        "  groups:     weakest  share %  capacity spread %  EOC spread mV  EOD spread mV"
+    );
+    for (p, g) in &pts {
+        let _ = writeln!(
+            o,
+            "  {}  {:>7}  {:>7}  {:>17}  {:>13}  {:>13}",
+            p.date,
+            g.weakest.map_or("-".into(), |w| w.to_string()),
+            f(g.weakest_share_pct, 1),
+            f(g.capacity_spread_pct, 1),
+            f(g.end_of_charge_spread_mv, 0),
+            f(g.end_of_discharge_spread_mv, 0)
+        );
+    }
+    let spreads: Vec<f64> = pts
+        .iter()
+        .filter_map(|(_, g)| g.capacity_spread_pct)
+        .collect();
+    if let (Some(a), Some(b), true) = (spreads.first(), spreads.last(), spreads.len() > 1) {
+        let _ = writeln!(
+            o,
+            "  The groups' capacity spread went from {a:.1} % to {b:.1} % over {} tests ({:+.1} points).",
+            spreads.len(),
+            b - a
+        );
+    }
+}
+
 pub fn fade(
     h: &analysis::fade::history::PackHistory,
     fa: &analysis::fade::trend::FadeAnalysis,
@@ -331,6 +372,7 @@ pub fn fade(
             p.source
         );
     }
+    group_spread_text(&mut o, h);
     if h.points
         .iter()
         .any(|p| !p.cycles_given && p.cycles.is_finite())

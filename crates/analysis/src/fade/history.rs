@@ -24,6 +24,30 @@ pub struct HistoryPoint {
     /// `run <id>` or `history.csv line N`.
     pub source: String,
     pub run_dir: Option<PathBuf>,
+    /// A pack read group by group: how far its groups were apart.
+    pub groups: Option<GroupSpread>,
+}
+
+/// How far a pack's groups were apart in one test.
+#[derive(Debug, Clone, PartialEq, Serialize, serde::Deserialize)]
+pub struct GroupSpread {
+    pub weakest: Option<u32>,
+    pub weakest_share_pct: Option<f64>,
+    pub capacity_spread_pct: Option<f64>,
+    pub end_of_charge_spread_mv: Option<f64>,
+    pub end_of_discharge_spread_mv: Option<f64>,
+}
+
+impl GroupSpread {
+    pub fn of(g: &crate::groups::GroupsResult) -> GroupSpread {
+        GroupSpread {
+            weakest: g.weakest,
+            weakest_share_pct: g.weakest_share_pct,
+            capacity_spread_pct: g.capacity_spread_pct,
+            end_of_charge_spread_mv: g.end_of_charge_spread_mv,
+            end_of_discharge_spread_mv: g.end_of_discharge_spread_mv,
+        }
+    }
 }
 
 /// A run left out of the fits.

@@ -252,6 +252,7 @@ mod tests {
                     grade: None,
                     source: format!("test {date}"),
                     run_dir: None,
+                    groups: None,
                 })
                 .collect(),
             left_out: Vec::new(),
