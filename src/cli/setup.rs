@@ -327,7 +327,20 @@ fn cmd_serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
         }
         std::fs::write(
             path,
-            serve::bench_file_text(&served, a.bench_timeout.as_deref(), a.modbus),
+            serve::bench_file_text_with_groups(
+                &served,
+                a.bench_timeout.as_deref(),
+                a.modbus,
+                (cfg.groups.count > 0)
+                    .then(|| {
+                        model::groups::GroupChannels::sim_default(
+                            cfg.groups.count,
+                            cfg.groups.wiring,
+                            &cfg.groups.sensors,
+                        )
+                    })
+                    .as_ref(),
+            ),
         )
         .with_context(|| format!("cannot write {}", path.display()))?;
         println!("bench file   {}", path.display());

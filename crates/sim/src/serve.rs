@@ -536,6 +536,39 @@ pub fn role_profile(role: SimRole, modbus: bool) -> &'static str {
 }
 
 /// A bench file for the served endpoints (one station named `sim`).
+/// [`bench_file_text`] for a simulated pack built of groups: the meter is
+/// the scanner on the groups' channels, and the station reads them.
+pub fn bench_file_text_with_groups(
+    served: &[Served],
+    timeout: Option<&str>,
+    modbus: bool,
+    groups: Option<&model::groups::GroupChannels>,
+) -> String {
+    let mut s = bench_file_text(served, timeout, modbus);
+    let Some(g) = groups.filter(|_| served.iter().any(|x| x.role == SimRole::Meter)) else {
+        return s;
+    };
+    s = s.replace(
+        "profile = \"generic-scpi-meter\"",
+        "profile = \"generic-scpi-scanner\"",
+    );
+    s.push_str(&format!(
+        "[station.groups]\nwiring = \"{}\"\nchannels = \"{}\"\n",
+        g.wiring.name(),
+        model::groups::channel_list(&g.voltage)
+    ));
+    for t in &g.temperatures {
+        s.push_str(&format!(
+            "[[station.groups.temperature]]\nchannel = {}\nname = \"{}\"\nplace = \"{}\"\n",
+            t.channel, t.name, t.place
+        ));
+        if let Some(gr) = t.group {
+            s.push_str(&format!("group = {gr}\n"));
+        }
+    }
+    s
+}
+
 pub fn bench_file_text(served: &[Served], timeout: Option<&str>, modbus: bool) -> String {
     let mut s = String::from(
         "# Written by `packbench sim serve`: the simulated instruments as a bench.\n[[station]]\nname = \"sim\"\n",
