@@ -303,8 +303,8 @@ pub fn analyze(x: &GroupInputs<'_>) -> GroupsResult {
     let charge = x
         .steps
         .iter()
-        .filter(|s| s.kind == StepType::Charge && cap.is_none_or(|c| s.step < c))
-        .last();
+        .rev()
+        .find(|s| s.kind == StepType::Charge && cap.is_none_or(|c| s.step < c));
     if let Some(last) = charge.and_then(|c| rows_of(c.step).last().copied()) {
         for (k, r) in out.groups.iter_mut().enumerate() {
             r.end_of_charge_v = Some(last.voltage_v[k]);
@@ -410,7 +410,7 @@ pub fn analyze(x: &GroupInputs<'_>) -> GroupsResult {
 fn spread_mv(v: &[f64]) -> Option<f64> {
     let hi = v.iter().copied().fold(f64::NEG_INFINITY, f64::max);
     let lo = v.iter().copied().fold(f64::INFINITY, f64::min);
-    (hi.is_finite() && lo.is_finite()).then(|| (hi - lo) * 1000.0)
+    (hi.is_finite() && lo.is_finite()).then_some((hi - lo) * 1000.0)
 }
 
 /// Shares of the mean, the spread, the weakest group and why.

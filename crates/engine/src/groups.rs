@@ -80,6 +80,14 @@ pub struct Interpreted {
     pub unobservable: Option<String>,
 }
 
+/// The group voltages of one scan after faulty channels are dealt with.
+struct Resolved {
+    volts: Vec<f64>,
+    /// The group (index) read from the pack voltage less the others.
+    inferred: Option<usize>,
+    unobservable: Option<String>,
+}
+
 /// Keeps what one scan needs from the ones before it.
 #[derive(Debug, Clone)]
 pub struct GroupMonitor {
@@ -137,18 +145,42 @@ impl GroupMonitor {
     ) -> Interpreted {
         let n = self.channels.groups();
         let (rv, rt) = raw.split_at(n.min(raw.len()));
-        let mut notices = Vec::new();
+        let mut rv = rv.to_vec();
+        rv.resize(n, f64::NAN);
         let prev_raw = self.last_raw.clone();
-        // Open and stuck channels.
-        let mut bad: Vec<Option<ChannelIssue>> = vec![None; n];
-        for k in 0..n {
-            let r = rv.get(k).copied().unwrap_or(f64::NAN);
+        let mut bad = self.open_or_stuck(&rv, pack_v);
+        let r = match self.channels.wiring {
+            Wiring::Direct => self.resolve_direct(&rv, &prev_raw, pack_v, &mut bad),
+            Wiring::Taps => self.resolve_taps(&rv, pack_v, &mut bad),
+        };
+        let mut notices = Vec::new();
+        self.channel_notices(&mut notices, &rv, &bad, &r);
+        let temps = self.temperatures(&mut notices, t_s, rt);
+        Interpreted {
+            sample: GroupSample {
+                t_s,
+                step,
+                cycle,
+                voltage_v: r.volts,
+                temperature_c: temps,
+                inferred: r.inferred.map(|k| k as u32 + 1),
+            },
+            notices,
+            unobservable: r.unobservable,
+        }
+    }
+
+    /// Open channels (overload, or a reading no group can show) and stuck
+    /// ones (the very same reading while the pack moves).
+    fn open_or_stuck(&mut self, rv: &[f64], pack_v: f64) -> Vec<Option<ChannelIssue>> {
+        let mut bad: Vec<Option<ChannelIssue>> = vec![None; rv.len()];
+        for (k, (&r, b)) in rv.iter().zip(bad.iter_mut()).enumerate() {
             let limit_hi = match self.channels.wiring {
                 Wiring::Direct => GROUP_READ_MAX_V,
                 Wiring::Taps => GROUP_READ_MAX_V * (k as f64 + 1.0),
             };
             if !r.is_finite() || r.abs() > OVERLOAD || !(GROUP_READ_MIN_V..=limit_hi).contains(&r) {
-                bad[k] = Some(ChannelIssue::Open);
+                *b = Some(ChannelIssue::Open);
             }
             if r.to_bits() == self.last_raw[k].to_bits() {
                 self.same[k] += 1;
@@ -157,109 +189,148 @@ impl GroupMonitor {
                 self.pack_at_same[k] = pack_v;
             }
             self.last_raw[k] = r;
-            if bad[k].is_none()
+            if b.is_none()
                 && self.same[k] >= STUCK_SCANS
                 && (pack_v - self.pack_at_same[k]).abs() > STUCK_PACK_MOVE_V
             {
-                bad[k] = Some(ChannelIssue::Stuck);
+                *b = Some(ChannelIssue::Stuck);
             }
         }
+        bad
+    }
+
+    /// Direct wiring: one lost channel is read from the pack less the
+    /// others; a mismatch one channel explains is that channel's.
+    fn resolve_direct(
+        &mut self,
+        rv: &[f64],
+        prev_raw: &[f64],
+        pack_v: f64,
+        bad: &mut [Option<ChannelIssue>],
+    ) -> Resolved {
+        let n = rv.len();
         let tol = SUM_TOLERANCE_V.max(SUM_TOLERANCE_FRACTION * pack_v.abs());
-        let mut unobservable = None;
-        let mut inferred = None;
-        let mut volts: Vec<f64>;
-        match self.channels.wiring {
-            Wiring::Direct => {
-                volts = rv.to_vec();
-                volts.resize(n, f64::NAN);
-                let lost: Vec<usize> = (0..n).filter(|&k| bad[k].is_some()).collect();
-                if lost.len() > 1 {
-                    unobservable = Some(format!(
-                        "channels {} cannot be read: with more than one group unseen, the groups cannot be protected",
-                        lost.iter().map(|&k| self.channels.voltage[k].to_string()).collect::<Vec<_>>().join(", ")
-                    ));
-                } else if let Some(&k) = lost.first() {
-                    let others: f64 = (0..n).filter(|&j| j != k).map(|j| volts[j]).sum();
-                    volts[k] = pack_v - others;
-                    inferred = Some(k);
-                } else {
-                    let d = pack_v - volts.iter().sum::<f64>();
-                    let prev_d = self.last_mismatch.replace(d);
-                    if d.abs() > tol {
-                        match suspect(&volts, &prev_raw, d, prev_d, tol) {
-                            Some(k) => {
-                                bad[k] = Some(ChannelIssue::Loose);
-                                volts[k] += d;
-                                inferred = Some(k);
-                            }
-                            None => {
-                                unobservable = Some(format!(
-                                    "the groups add up to {:.3} V against a pack voltage of {pack_v:.3} V and no single channel explains it: the groups cannot be protected",
-                                    pack_v - d
-                                ));
-                            }
-                        }
+        let mut out = Resolved {
+            volts: rv.to_vec(),
+            inferred: None,
+            unobservable: None,
+        };
+        let lost: Vec<usize> = (0..n).filter(|&k| bad[k].is_some()).collect();
+        if lost.len() > 1 {
+            out.unobservable = Some(format!(
+                "channels {} cannot be read: with more than one group unseen, the groups cannot be protected",
+                lost.iter()
+                    .map(|&k| self.channels.voltage[k].to_string())
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            ));
+        } else if let Some(&k) = lost.first() {
+            let others: f64 = (0..n).filter(|&j| j != k).map(|j| rv[j]).sum();
+            out.volts[k] = pack_v - others;
+            out.inferred = Some(k);
+        } else {
+            let d = pack_v - rv.iter().sum::<f64>();
+            let prev_d = self.last_mismatch.replace(d);
+            if d.abs() > tol {
+                match suspect(rv, prev_raw, d, prev_d, tol) {
+                    Some(k) => {
+                        bad[k] = Some(ChannelIssue::Loose);
+                        out.volts[k] += d;
+                        out.inferred = Some(k);
+                    }
+                    None => {
+                        out.unobservable = Some(format!(
+                            "the groups add up to {:.3} V against a pack voltage of {pack_v:.3} V and no single channel explains it: the groups cannot be protected",
+                            pack_v - d
+                        ));
                     }
                 }
             }
-            Wiring::Taps => {
-                let mut taps = rv.to_vec();
-                taps.resize(n, f64::NAN);
-                let lost: Vec<usize> = (0..n).filter(|&k| bad[k].is_some()).collect();
-                if let Some(&k) = lost.first() {
-                    unobservable = Some(format!(
-                        "tap channel {} cannot be read: it bounds two groups, which cannot be protected",
-                        self.channels.voltage[k]
-                    ));
-                } else if n > 0 && (pack_v - taps[n - 1]).abs() > tol {
-                    // The top tap disagrees with the pack terminals: the
-                    // top group is taken from the pack voltage.
-                    bad[n - 1] = Some(ChannelIssue::Loose);
-                    taps[n - 1] = pack_v;
-                    inferred = Some(n - 1);
-                }
-                volts = group_voltages_from_taps(&taps);
-            }
         }
-        for k in 0..n {
-            if let Some(issue) = bad[k] {
-                let ch = self.channels.voltage[k];
-                let g = k + 1;
-                let read = rv.get(k).copied().unwrap_or(f64::NAN);
-                let how = if inferred == Some(k) {
-                    format!(
-                        "group {g} is taken as the pack voltage less the other groups ({:.3} V)",
-                        volts[k]
-                    )
-                } else {
-                    "the groups cannot be protected".into()
-                };
-                let what = match issue {
-                    ChannelIssue::Open => format!("reads {read:.4e}, an open or overloaded input"),
-                    ChannelIssue::Stuck => format!(
-                        "has read {read:.4} V for {} scans while the pack moved",
-                        self.same[k]
-                    ),
-                    ChannelIssue::Loose => format!(
-                        "reads {read:.3} V: the groups miss the pack voltage by {:.3} V, which this channel alone explains (a loose sense lead)",
-                        volts[k] - read
-                    ),
-                };
-                self.notice(
-                    &mut notices,
-                    ch,
-                    issue,
-                    format!("channel {ch} (group {g}) {what}; {how}"),
-                );
-            }
+        out
+    }
+
+    /// Tap wiring: a lost tap bounds two groups (the run cannot go on); a
+    /// top tap that disagrees with the pack terminals gives way to them.
+    fn resolve_taps(&self, rv: &[f64], pack_v: f64, bad: &mut [Option<ChannelIssue>]) -> Resolved {
+        let n = rv.len();
+        let tol = SUM_TOLERANCE_V.max(SUM_TOLERANCE_FRACTION * pack_v.abs());
+        let mut taps = rv.to_vec();
+        let mut out = Resolved {
+            volts: Vec::new(),
+            inferred: None,
+            unobservable: None,
+        };
+        if let Some(k) = (0..n).find(|&k| bad[k].is_some()) {
+            out.unobservable = Some(format!(
+                "tap channel {} cannot be read: it bounds two groups, which cannot be protected",
+                self.channels.voltage[k]
+            ));
+        } else if n > 0 && (pack_v - taps[n - 1]).abs() > tol {
+            bad[n - 1] = Some(ChannelIssue::Loose);
+            taps[n - 1] = pack_v;
+            out.inferred = Some(n - 1);
         }
-        // Temperatures: an open input reads nothing.
+        out.volts = group_voltages_from_taps(&taps);
+        out
+    }
+
+    /// An event for each channel set aside (once a run per channel and
+    /// issue), saying how its group is read from now on.
+    fn channel_notices(
+        &mut self,
+        notices: &mut Vec<Notice>,
+        rv: &[f64],
+        bad: &[Option<ChannelIssue>],
+        r: &Resolved,
+    ) {
+        for (k, issue) in bad.iter().enumerate() {
+            let Some(issue) = *issue else { continue };
+            let ch = self.channels.voltage[k];
+            let g = k + 1;
+            let read = rv[k];
+            let how = if r.inferred == Some(k) {
+                format!(
+                    "group {g} is taken as the pack voltage less the other groups ({:.3} V)",
+                    r.volts[k]
+                )
+            } else {
+                "the groups cannot be protected".into()
+            };
+            let what = match issue {
+                ChannelIssue::Open => format!("reads {read:.4e}, an open or overloaded input"),
+                ChannelIssue::Stuck => format!(
+                    "has read {read:.4} V for {} scans while the pack moved",
+                    self.same[k]
+                ),
+                ChannelIssue::Loose => format!(
+                    "reads {read:.3} V: the groups miss the pack voltage by {:.3} V, which this channel alone explains (a loose sense lead)",
+                    r.volts[k] - read
+                ),
+            };
+            self.notice(
+                notices,
+                ch,
+                issue,
+                format!("channel {ch} (group {g}) {what}; {how}"),
+            );
+        }
+    }
+
+    /// The temperature inputs: an open one reads nothing (and says so
+    /// once); the others go into their rise windows.
+    fn temperatures(
+        &mut self,
+        notices: &mut Vec<Notice>,
+        t_s: f64,
+        rt: &[f64],
+    ) -> Vec<Option<f64>> {
         let mut temps = Vec::with_capacity(self.channels.temperatures.len());
         for (i, tc) in self.channels.temperatures.clone().iter().enumerate() {
             let r = rt.get(i).copied().unwrap_or(f64::NAN);
             if !r.is_finite() || r.abs() > OVERLOAD || !(-60.0..=400.0).contains(&r) {
                 self.notice(
-                    &mut notices,
+                    notices,
                     tc.channel,
                     ChannelIssue::Open,
                     format!(
@@ -277,18 +348,7 @@ impl GroupMonitor {
             }
             temps.push(Some(r));
         }
-        Interpreted {
-            sample: GroupSample {
-                t_s,
-                step,
-                cycle,
-                voltage_v: volts,
-                temperature_c: temps,
-                inferred: inferred.map(|k| k as u32 + 1),
-            },
-            notices,
-            unobservable,
-        }
+        temps
     }
 
     /// Each temperature input's rise over the last minute, K/s, where at
