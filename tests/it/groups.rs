@@ -193,6 +193,41 @@ fn a_weak_group_ends_the_discharge_and_is_named() {
     assert!(grade.contains("replace or rebalance"), "{grade}");
     // The group sensor on group 7 reported.
     assert!(g["groups"][6]["max_temperature_c"].as_f64().is_some());
+    scipy_agrees(&r.dir);
+}
+
+/// The same per-group figures worked out again with NumPy and SciPy
+/// (`scripts/groups_check.py`: numpy's trapezoid and interpolation,
+/// scipy.optimize's brute grid and Nelder-Mead), within 0.3 %.
+fn scipy_agrees(run: &Path) {
+    let ready = std::process::Command::new("python3")
+        .args(["-c", "import numpy, scipy"])
+        .stderr(std::process::Stdio::null())
+        .status()
+        .is_ok_and(|s| s.success());
+    if !ready {
+        assert!(
+            !std::env::var_os("PACKBENCH_REQUIRE_PY").is_some_and(|v| !v.is_empty() && v != "0"),
+            "PACKBENCH_REQUIRE_PY is set but python3 cannot import numpy and scipy"
+        );
+        eprintln!("skipped the SciPy check: python3 with numpy and scipy is not here (pip install -r scripts/requirements-readback.txt)");
+        return;
+    }
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("scripts/groups_check.py");
+    let out = std::process::Command::new("python3")
+        .arg(script)
+        .arg(run)
+        .arg("0.3")
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    eprintln!("{text}");
+    assert!(
+        out.status.success(),
+        "{text}{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert_eq!(text.lines().filter(|l| l.starts_with("group ")).count(), 13);
 }
 
 fn channel_events(r: &Ran) -> Vec<(u32, String, String)> {

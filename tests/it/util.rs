@@ -92,6 +92,12 @@ pub fn shipped() -> Vec<(&'static str, PackSpec)> {
         ("procedures/dcir-soc-sweep-li-ion.toml", li_ion_14ah()),
         ("procedures/screen-li-ion.toml", li_ion_14ah()),
         ("procedures/screen-lfp.toml", spec(Chemistry::Lfp, 12, 15.0)),
+        // Read group by group on a station that scans them; on a pack read
+        // at its terminals only, its group limits do not apply.
+        (
+            "procedures/group-check-li-ion.toml",
+            spec(Chemistry::LiIon, 13, 10.0),
+        ),
     ]
 }
 
