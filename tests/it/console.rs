@@ -485,3 +485,56 @@ fn a_station_is_driven_by_one_process_only() {
         "the same run went on"
     );
 }
+
+/// A simulated bay whose pack is read group by group: the live status
+/// names the lowest and the highest group.
+#[test]
+fn a_bay_shows_its_lowest_and_highest_group() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    quick_procedures(d);
+    write(
+        d,
+        "groups.toml",
+        "[pack]\ninitial_soc = 0.9\n[groups]\ncount = 13\nsensors = [7]\n[[groups.set]]\ngroup = 7\ncapacity = 0.88\n",
+    );
+    let s = serve(
+        d,
+        &[
+            "--sim",
+            "1",
+            "--listen",
+            "127.0.0.1:0",
+            "--speed",
+            "400",
+            "--sim-config",
+            "groups.toml",
+        ],
+    );
+    let a = &s.addr;
+    let form = serde_json::json!({
+        "pack_id": "FR-S13-0011", "procedure": "quick-check.toml",
+        "chemistry": "li-ion", "series": "13", "rated": "10Ah"
+    });
+    let (st, r) = post(a, "/api/bays/1/start", &form);
+    assert_eq!(st, 202, "{r}");
+    let mut last = serde_json::Value::Null;
+    assert!(
+        wait_until(Duration::from_secs(30), || {
+            last = bay(a, "1");
+            last["live"]["group_low"].is_array() && last["live"]["group_high"].is_array()
+        }),
+        "{last}"
+    );
+    let lo = &last["live"]["group_low"];
+    let hi = &last["live"]["group_high"];
+    let g = |x: &serde_json::Value| x[0].as_u64().unwrap();
+    assert!(
+        (1..=13).contains(&g(lo)) && (1..=13).contains(&g(hi)),
+        "{last}"
+    );
+    assert!(lo[1].as_f64().unwrap() <= hi[1].as_f64().unwrap(), "{last}");
+    let _ = post(a, "/api/bays/1/stop", &serde_json::json!({}));
+    assert!(wait_until(Duration::from_secs(20), || bay(a, "1")["state"]
+        == "interrupted"));
+}
