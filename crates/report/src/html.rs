@@ -471,16 +471,17 @@ fn group_section(b: &mut String, g: &analysis::groups::GroupsResult, charts: &Ch
         let weak = g.weakest == Some(r.group);
         let _ = write!(
             b,
-            "<tr{}><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td class=\"l\">{}{}</td></tr>",
+            "<tr{}><td>{}</td>",
             if weak { " class=\"weak\"" } else { "" },
-            r.group,
-            f(r.charge_to_cutoff_ah, 3),
-            f(r.share_of_mean_pct, 1),
-            f(r.relative_capacity_pct, 1),
-            f(r.end_of_charge_v, 3),
-            f(r.end_of_discharge_v, 3),
-            f(r.resistance_mohm, 2),
-            f(r.max_temperature_c, 1),
+            r.group
+        );
+        for c in crate::text::group_cells(r) {
+            let c = if c == "-" { "–".to_string() } else { c };
+            let _ = write!(b, "<td>{c}</td>");
+        }
+        let _ = write!(
+            b,
+            "<td class=\"l\">{}{}</td></tr>",
             escape(&r.how),
             if weak { " · weakest" } else { "" }
         );

@@ -5,6 +5,23 @@ use record::Summary;
 use std::fmt::Write;
 
 /// The short summary of a run for a terminal.
+/// One group's figures as printed, in the order of the groups' table:
+/// charge to cutoff, share of the mean, capacity against the mean,
+/// end-of-charge and end-of-discharge volts, resistance, highest
+/// temperature.
+pub(crate) fn group_cells(r: &analysis::groups::GroupResult) -> [String; 7] {
+    let f = |x: Option<f64>, d: usize| x.map_or("-".to_string(), |v| format!("{v:.d$}"));
+    [
+        f(r.charge_to_cutoff_ah, 3),
+        f(r.share_of_mean_pct, 1),
+        f(r.relative_capacity_pct, 1),
+        f(r.end_of_charge_v, 3),
+        f(r.end_of_discharge_v, 3),
+        f(r.resistance_mohm, 2),
+        f(r.max_temperature_c, 1),
+    ]
+}
+
 /// A pack read group by group: a line per group and the weakest.
 fn groups_text(o: &mut String, g: &analysis::groups::GroupsResult) {
     let f = |x: Option<f64>, d: usize| x.map_or("-".to_string(), |v| format!("{v:.d$}"));
@@ -20,17 +37,18 @@ fn groups_text(o: &mut String, g: &analysis::groups::GroupsResult) {
         "    group  to cutoff Ah  share %  capacity %  EOC V   EOD V   R mOhm  max degC  how"
     );
     for r in &g.groups {
+        let c = group_cells(r);
         let _ = writeln!(
             o,
             "    {:>5}  {:>12}  {:>7}  {:>10}  {:>6}  {:>6}  {:>6}  {:>8}  {}{}",
             r.group,
-            f(r.charge_to_cutoff_ah, 3),
-            f(r.share_of_mean_pct, 1),
-            f(r.relative_capacity_pct, 1),
-            f(r.end_of_charge_v, 3),
-            f(r.end_of_discharge_v, 3),
-            f(r.resistance_mohm, 2),
-            f(r.max_temperature_c, 1),
+            c[0],
+            c[1],
+            c[2],
+            c[3],
+            c[4],
+            c[5],
+            c[6],
             r.how,
             if g.weakest == Some(r.group) {
                 "  <- weakest"

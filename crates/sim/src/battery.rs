@@ -369,53 +369,17 @@ impl PackModel {
     /// the voltage limit is reached first. Never negative (a supply does
     /// not sink).
     pub fn supply_current(&self, v_set: f64, i_limit: f64) -> f64 {
-        if i_limit <= 0.0 {
-            return 0.0;
-        }
-        if self.terminal_voltage(i_limit) <= v_set {
-            return i_limit;
-        }
-        // Solve terminal_voltage(i) = v_set by bisection (overvoltage is
-        // constant in i for i > 0, so this is monotone).
-        let (mut lo, mut hi) = (0.0, i_limit);
-        if self.terminal_voltage(1e-9) >= v_set {
-            return 0.0;
-        }
-        for _ in 0..60 {
-            let mid = 0.5 * (lo + hi);
-            if self.terminal_voltage(mid) > v_set {
-                hi = mid;
-            } else {
-                lo = mid;
-            }
-        }
-        0.5 * (lo + hi)
+        supply_current_by(|i| self.terminal_voltage(i), v_set, i_limit)
     }
 
     /// Current a load sinks (returned as a negative pack current).
     pub fn load_current(&self, mode: LoadMode, value: f64) -> f64 {
-        let e = self.series * self.emf_cell();
-        let r = self.series * self.r0_cell();
-        if e <= 0.0 || value <= 0.0 {
-            return 0.0;
-        }
-        let i = match mode {
-            LoadMode::Current => value,
-            LoadMode::Resistance => e / (value + r),
-            LoadMode::Voltage => ((e - value) / r.max(1e-12)).max(0.0),
-            LoadMode::Power => {
-                // |I|·(E − |I|·R) = P → smaller root; beyond the pack's
-                // maximum power the load takes what it can (E/2R).
-                let disc = e * e - 4.0 * r * value;
-                if disc <= 0.0 {
-                    e / (2.0 * r)
-                } else {
-                    (e - disc.sqrt()) / (2.0 * r)
-                }
-            }
-        };
-        // A load cannot pull the terminal below zero volts.
-        -(i.min(e / r.max(1e-12)))
+        load_current_of(
+            self.series * self.emf_cell(),
+            self.series * self.r0_cell(),
+            mode,
+            value,
+        )
     }
 
     /// Advance by `dt` seconds at a pack current. Returns the charge that
@@ -485,6 +449,58 @@ impl PackModel {
         self.temperature_c = t_inf + (self.temperature_c - t_inf) * a;
         (ah_terminal, wh)
     }
+}
+
+/// Current a CV/CC supply drives into a pack whose terminal voltage at a
+/// current is `v_at`: the current limit unless the voltage limit is
+/// reached first. Never negative (a supply does not sink).
+pub fn supply_current_by(v_at: impl Fn(f64) -> f64, v_set: f64, i_limit: f64) -> f64 {
+    if i_limit <= 0.0 {
+        return 0.0;
+    }
+    if v_at(i_limit) <= v_set {
+        return i_limit;
+    }
+    // Solve v_at(i) = v_set by bisection (overvoltage is constant in i
+    // for i > 0, so this is monotone).
+    let (mut lo, mut hi) = (0.0, i_limit);
+    if v_at(1e-9) >= v_set {
+        return 0.0;
+    }
+    for _ in 0..60 {
+        let mid = 0.5 * (lo + hi);
+        if v_at(mid) > v_set {
+            hi = mid;
+        } else {
+            lo = mid;
+        }
+    }
+    0.5 * (lo + hi)
+}
+
+/// Current a load sinks from an EMF `e` behind a resistance `r` (returned
+/// as a negative pack current).
+pub fn load_current_of(e: f64, r: f64, mode: LoadMode, value: f64) -> f64 {
+    if e <= 0.0 || value <= 0.0 {
+        return 0.0;
+    }
+    let i = match mode {
+        LoadMode::Current => value,
+        LoadMode::Resistance => e / (value + r),
+        LoadMode::Voltage => ((e - value) / r.max(1e-12)).max(0.0),
+        LoadMode::Power => {
+            // |I|·(E − |I|·R) = P → smaller root; beyond the pack's
+            // maximum power the load takes what it can (E/2R).
+            let disc = e * e - 4.0 * r * value;
+            if disc <= 0.0 {
+                e / (2.0 * r)
+            } else {
+                (e - disc.sqrt()) / (2.0 * r)
+            }
+        }
+    };
+    // A load cannot pull the terminal below zero volts.
+    -(i.min(e / r.max(1e-12)))
 }
 
 /// How the simulated load regulates.

@@ -3,7 +3,7 @@
 //! own state of charge, polarisation, temperature, capacity, resistance
 //! and self-discharge. The terminal voltage is the sum of the groups'.
 
-use super::battery::{LoadMode, PackCondition, PackModel};
+use super::battery::{load_current_of, supply_current_by, LoadMode, PackCondition, PackModel};
 use model::groups::Wiring;
 use model::pack::PackSpec;
 use model::simconfig::GroupsConfig;
@@ -165,52 +165,17 @@ impl SimPack {
         if !self.grouped {
             return self.cells[0].supply_current(v_set, i_limit);
         }
-        if i_limit <= 0.0 {
-            return 0.0;
-        }
-        if self.terminal_voltage(i_limit) <= v_set {
-            return i_limit;
-        }
-        if self.terminal_voltage(1e-9) >= v_set {
-            return 0.0;
-        }
-        let (mut lo, mut hi) = (0.0, i_limit);
-        for _ in 0..60 {
-            let mid = 0.5 * (lo + hi);
-            if self.terminal_voltage(mid) > v_set {
-                hi = mid;
-            } else {
-                lo = mid;
-            }
-        }
-        0.5 * (lo + hi)
+        supply_current_by(|i| self.terminal_voltage(i), v_set, i_limit)
     }
 
     pub fn load_current(&self, mode: LoadMode, value: f64) -> f64 {
         if !self.grouped {
             return self.cells[0].load_current(mode, value);
         }
-        // The string behaves as one source of EMF Σe and resistance Σr,
-        // less the groups' drains (small): solve on the summed model.
+        // The string behaves as one source of EMF Σe behind Σr.
         let e: f64 = self.cells.iter().map(|c| c.emf_cell()).sum();
         let r: f64 = self.cells.iter().map(|c| c.r0_cell()).sum();
-        if e <= 0.0 || value <= 0.0 {
-            return 0.0;
-        }
-        let i = match mode {
-            LoadMode::Current => value,
-            LoadMode::Resistance => e / (value + r),
-            LoadMode::Voltage => ((e - value) / r.max(1e-12)).max(0.0),
-            LoadMode::Power => {
-                let disc = e * e - 4.0 * r * value;
-                if disc <= 0.0 {
-                    e / (2.0 * r)
-                } else {
-                    (e - disc.sqrt()) / (2.0 * r)
-                }
-            }
-        };
-        -(i.min(e / r.max(1e-12)))
+        load_current_of(e, r, mode, value)
     }
 
     /// Advance every group by `dt` at a pack current: the terminal charge
