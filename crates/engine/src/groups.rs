@@ -92,6 +92,9 @@ struct Resolved {
 #[derive(Debug, Clone)]
 pub struct GroupMonitor {
     pub channels: GroupChannels,
+    /// The temperature inputs' channels, in order (what a scan reads
+    /// after the voltages).
+    pub temperature_channels: Vec<u32>,
     last_raw: Vec<f64>,
     same: Vec<u32>,
     pack_at_same: Vec<f64>,
@@ -106,6 +109,7 @@ impl GroupMonitor {
         let n = channels.groups();
         let k = channels.temperatures.len();
         GroupMonitor {
+            temperature_channels: channels.temperatures.iter().map(|t| t.channel).collect(),
             channels,
             last_raw: vec![f64::NAN; n],
             same: vec![0; n],
@@ -326,18 +330,18 @@ impl GroupMonitor {
         rt: &[f64],
     ) -> Vec<Option<f64>> {
         let mut temps = Vec::with_capacity(self.channels.temperatures.len());
-        for (i, tc) in self.channels.temperatures.clone().iter().enumerate() {
+        for i in 0..self.channels.temperatures.len() {
             let r = rt.get(i).copied().unwrap_or(f64::NAN);
             if !r.is_finite() || r.abs() > OVERLOAD || !(-60.0..=400.0).contains(&r) {
-                self.notice(
-                    notices,
+                let tc = &self.channels.temperatures[i];
+                let (channel, message) = (
                     tc.channel,
-                    ChannelIssue::Open,
                     format!(
                         "temperature input '{}' (channel {}) reads {r:.4e}, an open input: its limit cannot be checked",
                         tc.name, tc.channel
                     ),
                 );
+                self.notice(notices, channel, ChannelIssue::Open, message);
                 temps.push(None);
                 continue;
             }

@@ -967,14 +967,13 @@ impl<'a> Engine<'a> {
     /// Scan the groups and temperature inputs with the sample just taken:
     /// the group log, faulty channels' events, and the per-group limits.
     async fn scan_groups(&mut self, s: &Sample) -> Result<(), Stop> {
-        let Some(chs) = self.groups.as_ref().map(|m| m.channels.clone()) else {
+        let (Some(mon), Some(meter)) = (self.groups.as_ref(), self.station.meter.as_mut()) else {
             return Ok(());
         };
-        let temps: Vec<u32> = chs.temperatures.iter().map(|t| t.channel).collect();
-        let Some(meter) = self.station.meter.as_mut() else {
-            return Ok(());
-        };
-        let raw = match meter.scan(&chs.voltage, &temps).await {
+        let raw = match meter
+            .scan(&mon.channels.voltage, &mon.temperature_channels)
+            .await
+        {
             Ok(r) => r,
             Err(e) => {
                 self.record_instrument_error(&e, None)?;
@@ -985,7 +984,20 @@ impl<'a> Engine<'a> {
             return Ok(());
         };
         let out = mon.interpret(s.t_s, s.step, s.cycle, s.voltage_v, &raw);
-        let rises = mon.rises();
+        let breach = match &out.unobservable {
+            Some(why) => Some(groups::GroupBreach {
+                limit: "group_voltages",
+                value: f64::NAN,
+                threshold: 0.0,
+                message: why.clone(),
+            }),
+            None => groups::check(
+                &out.sample,
+                &mon.rises(),
+                &mon.channels,
+                &self.plan.envelope,
+            ),
+        };
         self.sink.groups(&out.sample).map_err(Stop::Log)?;
         for n in &out.notices {
             self.emit(Event::GroupChannel {
@@ -996,15 +1008,6 @@ impl<'a> Engine<'a> {
                 message: n.message.clone(),
             })?;
         }
-        let breach = match &out.unobservable {
-            Some(why) => Some(groups::GroupBreach {
-                limit: "group_voltages",
-                value: f64::NAN,
-                threshold: 0.0,
-                message: why.clone(),
-            }),
-            None => groups::check(&out.sample, &rises, &chs, &self.plan.envelope),
-        };
         self.last_groups = Some(out.sample);
         if let Some(b) = breach {
             self.emit(Event::Breach {
