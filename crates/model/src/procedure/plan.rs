@@ -399,6 +399,24 @@ impl fmt::Display for Plan {
             e.charge_max_ah,
             HumanDuration(e.step_time_max_s)
         )?;
+        if e.group_voltage_min_v.is_some()
+            || e.group_voltage_max_v.is_some()
+            || e.temperature_rise_max_k_per_s.is_some()
+        {
+            let v = |x: Option<f64>| x.map_or("-".to_string(), |v| format!("{v:.3}"));
+            writeln!(
+                f,
+                "Cell groups (where a station reads them): each group {}..{} V{}",
+                v(e.group_voltage_min_v),
+                v(e.group_voltage_max_v),
+                e.temperature_rise_max_k_per_s
+                    .map(|r| format!(
+                        ", every temperature input rising <= {:.2} degC/min",
+                        r * 60.0
+                    ))
+                    .unwrap_or_default()
+            )?;
+        }
         write!(f, "Sampling: every {} s", self.sample_every_s)?;
         if let Some(fine) = self.fine {
             write!(

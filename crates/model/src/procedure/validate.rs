@@ -1076,6 +1076,32 @@ mod tests {
         plan_from_text(Path::new("t.toml"), &text, &pack())
     }
 
+    /// The group limits: per cell (a group is one cell of the series
+    /// count), a rise in K/min, each checked where it is written.
+    #[test]
+    fn group_limits_are_per_cell_and_located() {
+        let with = |extra: &str| {
+            let text = format!(
+                "title = \"t\"\n[envelope]\nvoltage_max = \"4.25V/cell\"\nvoltage_min = \"2.8V/cell\"\ncurrent_max = \"1C\"\ntemperature_max = \"55degC\"\n{extra}\n[[phase]]\nname = \"p\"\n  [[phase.step]]\n  kind = \"rest\"\n  ends = [\"time > 1h\"]\n"
+            );
+            plan_from_text(Path::new("t.toml"), &text, &pack())
+        };
+        let p = with("group_voltage_max = \"4.25V/cell\"\ngroup_voltage_min = \"2.7V\"\ntemperature_rise_max = \"1K/min\"")
+            .unwrap();
+        assert_eq!(p.envelope.group_voltage_max_v, Some(4.25));
+        assert_eq!(p.envelope.group_voltage_min_v, Some(2.7));
+        let r = p.envelope.temperature_rise_max_k_per_s.unwrap();
+        assert!((r - 1.0 / 60.0).abs() < 1e-12, "{r}");
+        let e = with("group_voltage_max = \"3.0V/cell\"\ngroup_voltage_min = \"3.1V/cell\"")
+            .unwrap_err()
+            .to_string();
+        assert!(e.starts_with("t.toml:8:21:"), "{e}");
+        assert!(e.contains("must be below group_voltage_max"), "{e}");
+        let e = with("temperature_rise_max = \"1V\"").unwrap_err().to_string();
+        assert!(e.starts_with("t.toml:7:24:"), "{e}");
+        assert!(p.envelope.voltage_max_v > 4.25, "pack limits are the series count's");
+    }
+
     /// Every setpoint key a kind does not take is an error at its place;
     /// the keys it takes build the step.
     #[test]
