@@ -1097,9 +1097,14 @@ mod tests {
             .to_string();
         assert!(e.starts_with("t.toml:8:21:"), "{e}");
         assert!(e.contains("must be below group_voltage_max"), "{e}");
-        let e = with("temperature_rise_max = \"1V\"").unwrap_err().to_string();
+        let e = with("temperature_rise_max = \"1V\"")
+            .unwrap_err()
+            .to_string();
         assert!(e.starts_with("t.toml:7:24:"), "{e}");
-        assert!(p.envelope.voltage_max_v > 4.25, "pack limits are the series count's");
+        assert!(
+            p.envelope.voltage_max_v > 4.25,
+            "pack limits are the series count's"
+        );
     }
 
     /// Every setpoint key a kind does not take is an error at its place;
