@@ -27,28 +27,6 @@ fn prepare(procedure: &str, pack: PackSpec, results: &Path) -> Prepared {
     .unwrap()
 }
 
-async fn run_sim(p: &Prepared, cfg: &SimConfig, stop: StopHandle) -> (RunReport, SimHandle) {
-    let clock = SimClock::new();
-    let c: Arc<dyn Clock> = clock;
-    let links = sim::build(&p.pack, cfg, Arc::clone(&c));
-    let handle = links.handle.clone();
-    let report = packbench::session::run(
-        packbench::session::Session::new(
-            p,
-            packbench::session::Bench::SimLinks {
-                cfg: cfg.clone(),
-                clock: c,
-                links,
-                speed_text: "max".into(),
-            },
-        )
-        .with_stop(stop),
-    )
-    .await
-    .unwrap();
-    (report, handle)
-}
-
 /// Measured per-step charge and energy against the simulation truth.
 fn worst_discharge_error(r: &RunReport) -> f64 {
     let mut worst: f64 = 0.0;

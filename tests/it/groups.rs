@@ -4,7 +4,6 @@
 //! new limit alone ending with both outputs off and the group or sensor
 //! named.
 
-use engine::clock::{Clock, SimClock};
 use engine::control::StopHandle;
 use engine::event::Event;
 use engine::state::RunState;
@@ -14,7 +13,6 @@ use packbench::session::request::{PackSource, RunRequest};
 use record::read::{read_events, read_groups, read_samples};
 use sim::SimConfig;
 use std::path::{Path, PathBuf};
-use std::sync::Arc;
 
 /// A scooter pack of our invented fleet: 13S, 10 Ah.
 fn pack() -> PackSpec {
@@ -71,27 +69,11 @@ fn run(procedure: &str, cfg: &SimConfig) -> (tempfile::TempDir, Ran) {
         options: Default::default(),
     })
     .unwrap();
-    let clock: Arc<dyn Clock> = SimClock::new();
-    let links = sim::build(&p.pack, cfg, Arc::clone(&clock));
-    let h = links.handle.clone();
     let rt = tokio::runtime::Builder::new_current_thread()
         .enable_all()
         .build()
         .unwrap();
-    let r = rt
-        .block_on(packbench::session::run(
-            packbench::session::Session::new(
-                &p,
-                packbench::session::Bench::SimLinks {
-                    cfg: cfg.clone(),
-                    clock,
-                    links,
-                    speed_text: "max".into(),
-                },
-            )
-            .with_stop(StopHandle::new()),
-        ))
-        .unwrap();
+    let (r, h) = rt.block_on(crate::util::run_sim(&p, cfg, StopHandle::new()));
     let events = read_events(&r.run_dir.join("events.jsonl")).unwrap();
     let ran = Ran {
         dir: r.run_dir.clone(),

@@ -245,3 +245,30 @@ fn the_procedure_builder_writes_what_validates() {
             .unwrap();
     assert_eq!(plan.steps.len(), 1);
 }
+
+/// Run a prepared plan on the embedded simulated bench at full speed;
+/// the report and the bench's handle (its truth, its outputs).
+pub async fn run_sim(
+    p: &Prepared,
+    cfg: &sim::SimConfig,
+    stop: engine::control::StopHandle,
+) -> (packbench::session::request::RunReport, sim::SimHandle) {
+    let c: std::sync::Arc<dyn engine::clock::Clock> = engine::clock::SimClock::new();
+    let links = sim::build(&p.pack, cfg, std::sync::Arc::clone(&c));
+    let handle = links.handle.clone();
+    let report = packbench::session::run(
+        packbench::session::Session::new(
+            p,
+            packbench::session::Bench::SimLinks {
+                cfg: cfg.clone(),
+                clock: c,
+                links,
+                speed_text: "max".into(),
+            },
+        )
+        .with_stop(stop),
+    )
+    .await
+    .unwrap();
+    (report, handle)
+}

@@ -44,7 +44,7 @@ fn page(title: &str, body: &str) -> String {
 }
 
 fn f(v: Option<f64>, d: usize) -> String {
-    v.map(|x| format!("{x:.d$}")).unwrap_or_else(|| "–".into())
+    crate::text::opt_or(v, d, "–")
 }
 
 /// The printable grade card of a run.
@@ -475,8 +475,7 @@ fn group_section(b: &mut String, g: &analysis::groups::GroupsResult, charts: &Ch
             if weak { " class=\"weak\"" } else { "" },
             r.group
         );
-        for c in crate::text::group_cells(r) {
-            let c = if c == "-" { "–".to_string() } else { c };
+        for c in crate::text::group_cells(r, "–") {
             let _ = write!(b, "<td>{c}</td>");
         }
         let _ = write!(

@@ -5,12 +5,22 @@ use record::Summary;
 use std::fmt::Write;
 
 /// The short summary of a run for a terminal.
+/// A figure with `d` decimals, or "-" when there is none.
+fn opt(x: Option<f64>, d: usize) -> String {
+    opt_or(x, d, "-")
+}
+
+/// A figure with `d` decimals, or `none` when there is none.
+pub(crate) fn opt_or(x: Option<f64>, d: usize, none: &str) -> String {
+    x.map_or(none.to_string(), |v| format!("{v:.d$}"))
+}
+
 /// One group's figures as printed, in the order of the groups' table:
 /// charge to cutoff, share of the mean, capacity against the mean,
 /// end-of-charge and end-of-discharge volts, resistance, highest
-/// temperature.
-pub(crate) fn group_cells(r: &analysis::groups::GroupResult) -> [String; 7] {
-    let f = |x: Option<f64>, d: usize| x.map_or("-".to_string(), |v| format!("{v:.d$}"));
+/// temperature; `none` where a figure is missing.
+pub(crate) fn group_cells(r: &analysis::groups::GroupResult, none: &str) -> [String; 7] {
+    let f = |x: Option<f64>, d: usize| opt_or(x, d, none);
     [
         f(r.charge_to_cutoff_ah, 3),
         f(r.share_of_mean_pct, 1),
@@ -24,20 +34,19 @@ pub(crate) fn group_cells(r: &analysis::groups::GroupResult) -> [String; 7] {
 
 /// A pack read group by group: a line per group and the weakest.
 fn groups_text(o: &mut String, g: &analysis::groups::GroupsResult) {
-    let f = |x: Option<f64>, d: usize| x.map_or("-".to_string(), |v| format!("{v:.d$}"));
     let _ = writeln!(
         o,
         "  Groups:            end-of-charge spread {} mV, end-of-discharge spread {} mV, capacity spread {} %",
-        f(g.end_of_charge_spread_mv, 0),
-        f(g.end_of_discharge_spread_mv, 0),
-        f(g.capacity_spread_pct, 1)
+        opt(g.end_of_charge_spread_mv, 0),
+        opt(g.end_of_discharge_spread_mv, 0),
+        opt(g.capacity_spread_pct, 1)
     );
     let _ = writeln!(
         o,
         "    group  to cutoff Ah  share %  capacity %  EOC V   EOD V   R mOhm  max degC  how"
     );
     for r in &g.groups {
-        let c = group_cells(r);
+        let c = group_cells(r, "-");
         let _ = writeln!(
             o,
             "    {:>5}  {:>12}  {:>7}  {:>10}  {:>6}  {:>6}  {:>6}  {:>8}  {}{}",
@@ -316,7 +325,6 @@ fn group_spread_text(o: &mut String, h: &analysis::fade::history::PackHistory) {
     if pts.is_empty() {
         return;
     }
-    let f = |x: Option<f64>, d: usize| x.map_or("-".to_string(), |v| format!("{v:.d$}"));
     let _ = writeln!(
         o,
         "  groups:     weakest  share %  capacity spread %  EOC spread mV  EOD spread mV"
@@ -327,10 +335,10 @@ fn group_spread_text(o: &mut String, h: &analysis::fade::history::PackHistory) {
             "  {}  {:>7}  {:>7}  {:>17}  {:>13}  {:>13}",
             p.date,
             g.weakest.map_or("-".into(), |w| w.to_string()),
-            f(g.weakest_share_pct, 1),
-            f(g.capacity_spread_pct, 1),
-            f(g.end_of_charge_spread_mv, 0),
-            f(g.end_of_discharge_spread_mv, 0)
+            opt(g.weakest_share_pct, 1),
+            opt(g.capacity_spread_pct, 1),
+            opt(g.end_of_charge_spread_mv, 0),
+            opt(g.end_of_discharge_spread_mv, 0)
         );
     }
     let spreads: Vec<f64> = pts
