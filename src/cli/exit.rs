@@ -3,7 +3,9 @@
 //! 0 completed, 1 failure while running (I/O, instrument connection, a
 //! station's task), 2 bad input (arguments, procedure, pack spec, pack id,
 //! a run folder that cannot be resumed), 3 safety stop or instrument fault
-//! (run aborted), 5 interrupted (Ctrl-C), 130 a second Ctrl-C (the shell's
+//! (run aborted, outputs off), 4 an output may still be on (the safe stop
+//! could not confirm an instrument off for its whole hold: switch it off
+//! by hand), 5 interrupted (Ctrl-C), 130 a second Ctrl-C (the shell's
 //! convention for SIGINT).
 
 use crate::session::error::RunError;
@@ -17,6 +19,8 @@ pub enum ExitCode {
     Failure,
     BadInput,
     Aborted,
+    /// An instrument's output may still be on.
+    MayBeOn,
     Interrupted,
     SecondInterrupt,
 }
@@ -28,6 +32,7 @@ impl ExitCode {
             ExitCode::Failure => 1,
             ExitCode::BadInput => 2,
             ExitCode::Aborted => 3,
+            ExitCode::MayBeOn => 4,
             ExitCode::Interrupted => 5,
             ExitCode::SecondInterrupt => 130,
         }
@@ -43,12 +48,17 @@ impl ExitCode {
     }
 
     pub fn of_report(r: &RunReport) -> ExitCode {
+        if !r.outcome.may_be_on.is_empty() {
+            return ExitCode::MayBeOn;
+        }
         ExitCode::of_run(r.outcome.status)
     }
 
     /// A session's error: bad input or a failure while running.
     pub fn of_error(e: &RunError) -> ExitCode {
-        if e.is_input() {
+        if e.outputs_may_be_on() {
+            ExitCode::MayBeOn
+        } else if e.is_input() {
             ExitCode::BadInput
         } else {
             ExitCode::Failure
@@ -64,7 +74,8 @@ impl ExitCode {
             ExitCode::Aborted => 2,
             ExitCode::BadInput => 3,
             ExitCode::Failure => 4,
-            ExitCode::SecondInterrupt => 5,
+            ExitCode::MayBeOn => 5,
+            ExitCode::SecondInterrupt => 6,
         };
         codes
             .into_iter()

@@ -83,6 +83,21 @@ pub struct RunArgs {
     /// Grading policy (TOML); default: the built-in policy.
     #[arg(long)]
     pub policy: Option<PathBuf>,
+    /// How long the safe stop keeps switching off and reading back an
+    /// output it cannot confirm off before it says the output may still
+    /// be on (exit 4).
+    #[arg(long, default_value = "60s")]
+    pub safe_stop_hold: String,
+}
+
+/// `--safe-stop-hold`: a duration of at least one second.
+pub fn parse_hold(text: &str) -> Result<f64, RunError> {
+    match model::units::duration(text) {
+        Ok(s) if s.is_finite() && (1.0..=86_400.0).contains(&s) => Ok(s),
+        _ => Err(RunError::arguments(format!(
+            "--safe-stop-hold '{text}': expected a duration from 1s to 24h, e.g. 60s"
+        ))),
+    }
 }
 
 /// Everything `run` checks before it touches an instrument.
@@ -115,6 +130,7 @@ pub fn prepare_run(a: &RunArgs) -> Result<Vec<crate::session::request::StationJo
         })?);
     }
     options.trace = a.trace;
+    options.safe_stop_hold_s = parse_hold(&a.safe_stop_hold)?;
     let cfg = sim_config(a.sim_config.as_deref(), a.sim_ideal, &a.fault)?;
     let Some(path) = &a.bench else {
         let pack_id = a
@@ -368,9 +384,10 @@ pub fn station_end_lines(
             Ok(r) => {
                 codes.push(ExitCode::of_report(r));
                 println!("{}", station_line(name, pack, r));
+                say_outputs_and_record(r);
             }
             Err(e) => {
-                codes.push(ExitCode::Failure);
+                codes.push(ExitCode::of_error(e));
                 println!("{name:<12} {pack:<10} failed      {e}");
             }
         }
@@ -461,11 +478,28 @@ pub fn print_result(r: &crate::session::request::RunReport, quiet: bool) {
         print!("{}", report::text::summary(&r.summary));
         println!("  Results: {}", r.run_dir.display());
     }
+    say_outputs_and_record(r);
     if ExitCode::of_report(r) == ExitCode::Interrupted {
         println!(
             "To go on with this run: packbench resume {}",
             shell_word(&r.run_dir.display().to_string())
         );
+    }
+}
+
+/// What the operator must act on, on the error stream whatever `--quiet`
+/// says: an output that may still be on, and a record that is not whole.
+pub fn say_outputs_and_record(r: &crate::session::request::RunReport) {
+    if !r.outcome.may_be_on.is_empty() {
+        eprintln!(
+            "DANGER: {}",
+            crate::session::finish::outputs_line(&r.outcome)
+        );
+    } else if r.outcome.status != model::status::RunState::Completed {
+        eprintln!("{}", crate::session::finish::outputs_line(&r.outcome));
+    }
+    for u in &r.unwritten {
+        eprintln!("the record is not whole: {u}");
     }
 }
 

@@ -5,7 +5,7 @@ use crate::session::error::io_err;
 use crate::session::error::Failure;
 use crate::session::error::InputError;
 use crate::session::error::RunError;
-use crate::session::finish::finish_record;
+use crate::session::finish::finish_record_after;
 use crate::session::links::BenchLinks;
 use crate::session::links::BoundLink;
 use crate::session::links::SimRun;
@@ -156,6 +156,9 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
         alarm_below_pct: p.options.alarm_below_pct,
         resumes: Vec::new(),
         groups: links.groups.clone(),
+        outputs_may_be_on: Vec::new(),
+        record_incomplete: Vec::new(),
+        failed_resumes: Vec::new(),
     };
     let rec = Recording {
         dir,
@@ -208,7 +211,7 @@ pub fn write_lock(dir: &Path) -> Result<(), RunError> {
 pub async fn drive(
     p: &Prepared,
     rec: Recording,
-    mut sink: RunLogSink,
+    sink: RunLogSink,
     bench: Bound,
     stop: StopHandle,
 ) -> Result<RunReport, RunError> {
@@ -282,18 +285,22 @@ pub async fn drive(
         .options
         .alarm_below_pct
         .map(|pct| pct / 100.0 * p.pack.rated_capacity_ah);
+    // The record's own writer: the engine never waits on the disk.
+    let paced = !clock.is_simulated();
+    let files: Box<dyn record::writer::LogFiles> = Box::new(sink);
+    let mut queued = record::writer::QueuedSink::spawn(files, paced).map_err(io_err(&dir))?;
     let outcome = {
         let mut live;
         let sink_ref: &mut dyn record::event::Sink = match &board {
             Some(b) => {
                 live = crate::session::live::LiveSink {
-                    inner: &mut sink,
+                    inner: &mut queued,
                     board: b.clone(),
                     est: crate::session::live::Estimator::new(&p.procedure.plan),
                 };
                 &mut live
             }
-            None => &mut sink,
+            None => &mut queued,
         };
         let mut engine = Engine::new(
             &p.procedure.plan,
@@ -307,18 +314,36 @@ pub async fn drive(
         if let Some(r) = resume {
             engine = engine.resume_from(r);
         }
+        engine = engine.with_off_hold(std::time::Duration::from_secs_f64(
+            p.options.safe_stop_hold_s,
+        ));
         engine.run().await
     };
-    // The log's last sync, reading it back and writing the report take a
-    // while on a long run: off the thread the other stations sample on.
+    // The writer's last rows and sync, reading the log back and writing
+    // the report take a while on a long run: off the thread the other
+    // stations sample on.
+    let writer = off_thread(move || Ok(queued.finish(WRITER_WAIT))).await?;
+    if writer.stalled {
+        // The disk does not answer: anything more written would wait on
+        // it too. The outputs' state is what the operator needs now.
+        return Err(RunError::from(Failure::RecordIncomplete {
+            message: format!(
+                "{}; {}",
+                crate::session::finish::outputs_line(&outcome),
+                writer.describe().unwrap_or_default()
+            ),
+            may_be_on: !outcome.may_be_on.is_empty(),
+        }));
+    }
     let p = p.clone();
-    off_thread(move || {
-        sink.flush().map_err(io_err(&dir))?;
-        drop(sink);
-        finish_record(&p, &dir, &run_id, manifest, outcome, sim)
-    })
-    .await
+    off_thread(move || finish_record_after(&p, &dir, &run_id, manifest, outcome, sim, &writer))
+        .await
 }
+
+/// How long the end of a run waits for the record's writer to write and
+/// sync what it holds: a healthy disk takes well under a second; past
+/// this the disk has stalled ([`record::writer::LAG_MAX`]).
+pub const WRITER_WAIT: std::time::Duration = record::writer::LAG_MAX;
 
 /// Before connecting: the raw-traffic trace and the instruments
 /// registered for the last-resort switch-off.

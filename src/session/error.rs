@@ -51,6 +51,10 @@ pub enum Failure {
     /// The worker writing the summary and report died.
     #[error("writing the record failed: {0}")]
     RecordTask(String),
+    /// The run stopped but its record could not be completed (a stalled
+    /// disk); the message says what state the outputs were left in.
+    #[error("the record could not be completed: {message}")]
+    RecordIncomplete { message: String, may_be_on: bool },
     /// A station's task panicked or was cancelled; its outputs were made
     /// safe by the engine's own guard.
     #[error("station task failed: {0}")]
@@ -97,6 +101,17 @@ impl RunError {
     /// Bad input (exit code 2) as opposed to a failure while running.
     pub fn is_input(&self) -> bool {
         matches!(self, RunError::Input(_))
+    }
+
+    /// A failure after which an instrument's output may still be on.
+    pub fn outputs_may_be_on(&self) -> bool {
+        matches!(
+            self,
+            RunError::Failed(Failure::RecordIncomplete {
+                may_be_on: true,
+                ..
+            })
+        )
     }
 
     /// Arguments or values that cannot work together.

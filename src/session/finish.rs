@@ -1,16 +1,17 @@
 //! Recording a stopped run: summary, report and final manifest.
 
-use crate::session::error::io_err;
-use crate::session::error::RunError;
+use crate::session::error::{Failure, RunError};
 use crate::session::links::SimRun;
 use crate::session::request::Prepared;
 use crate::session::request::RunReport;
 use crate::session::summary::SummaryContext;
 use engine::RunOutcome;
+use model::status::RunState;
 use record::manifest::utc_now;
 use record::manifest::SIM_TRUTH_LABEL;
 use record::manifest::{Manifest, SimulationRecord};
 use record::write::write_json;
+use record::writer::WriterEnd;
 use record::RUN_LOCK;
 use record::{Summary, REPORT_HTML, RUN_JSON, SUMMARY_JSON};
 use std::path::Path;
@@ -21,11 +22,68 @@ pub fn finish_record(
     p: &Prepared,
     dir: &Path,
     run_id: &str,
-    mut manifest: Manifest,
+    manifest: Manifest,
     outcome: RunOutcome,
     sim: Option<SimRun>,
 ) -> Result<RunReport, RunError> {
+    finish_record_after(
+        p,
+        dir,
+        run_id,
+        manifest,
+        outcome,
+        sim,
+        &WriterEnd::default(),
+    )
+}
+
+/// One line on the outputs' state at the end of a run: what the operator
+/// must know first.
+pub fn outputs_line(o: &RunOutcome) -> String {
+    if o.may_be_on.is_empty() {
+        let said = |ok: bool| {
+            if ok {
+                "confirmed"
+            } else {
+                "sent, not confirmed"
+            }
+        };
+        return format!(
+            "outputs off (source {}, load {})",
+            said(o.source_off_confirmed),
+            said(o.load_off_confirmed)
+        );
+    }
+    let who: Vec<String> = o
+        .may_be_on
+        .iter()
+        .map(|(w, e)| format!("{w} ({e})"))
+        .collect();
+    format!(
+        "OUTPUT MAY STILL BE ON: {}: switch it off by hand now",
+        who.join("; ")
+    )
+}
+
+/// As [`finish_record`], after the record's writer has ended: whatever
+/// fails (a full disk), the final status is written where space allows,
+/// the lock is released, and what could not be written is said.
+pub fn finish_record_after(
+    p: &Prepared,
+    dir: &Path,
+    run_id: &str,
+    mut manifest: Manifest,
+    mut outcome: RunOutcome,
+    sim: Option<SimRun>,
+    writer: &WriterEnd,
+) -> Result<RunReport, RunError> {
     let run_json = dir.join(RUN_JSON);
+    let mut unwritten: Vec<String> = writer.describe().into_iter().collect();
+    if !writer.complete() && outcome.status == RunState::Completed {
+        // The log is not whole: the run cannot count as completed.
+        outcome.status = RunState::Aborted;
+        outcome.reason = writer.failure.clone();
+    }
     // The summary comes from the log on disk, through the same code as
     // `analyze` uses afterwards.
     let ctx = SummaryContext {
@@ -38,55 +96,103 @@ pub fn finish_record(
         bms: p.options.bms.as_ref(),
         policy: &p.options.policy,
     };
-    let summary = summarize_run_dir(dir, &ctx, Some(&outcome))?;
-    let summary_path = dir.join(SUMMARY_JSON);
-    write_json(&summary_path, &summary).map_err(io_err(&summary_path))?;
-    let report_path = dir.join(REPORT_HTML);
-    let charts = report::charts::from_log(&summary, &dir.join(record::SAMPLES_CSV))?;
-    let html = report::html::run_report(&summary, &charts);
-    record::write::atomic_write(&report_path, html.as_bytes()).map_err(io_err(&report_path))?;
+    let summary = summarize_run_dir(dir, &ctx, Some(&outcome));
+    if let Ok(summary) = &summary {
+        let summary_path = dir.join(SUMMARY_JSON);
+        if let Err(e) = write_json(&summary_path, summary) {
+            unwritten.push(format!("{SUMMARY_JSON}: {e}"));
+        }
+        let report_path = dir.join(REPORT_HTML);
+        let html = report::charts::from_log(summary, &dir.join(record::SAMPLES_CSV))
+            .map(|charts| report::html::run_report(summary, &charts));
+        match html {
+            Ok(html) => {
+                if let Err(e) = record::write::atomic_write(&report_path, html.as_bytes()) {
+                    unwritten.push(format!("{REPORT_HTML}: {e}"));
+                }
+            }
+            Err(e) => unwritten.push(format!("{REPORT_HTML}: {e}")),
+        }
+    }
     manifest.status = outcome.status.into();
     manifest.stop_reason = outcome.reason.clone();
     manifest.finished_utc = Some(utc_now());
     manifest.timing = Some(outcome.timing);
+    manifest.outputs_may_be_on = outcome.may_be_on.iter().map(|(w, _)| w.clone()).collect();
     if let Some(s) = sim {
-        let mut steps = manifest
-            .simulation
-            .take()
-            .map(|r| r.steps)
-            .unwrap_or_default();
-        // A resumed step's truth adds to what the interrupted part counted.
-        for t in &outcome.truth {
-            match steps.iter_mut().find(|x| x.step == t.step) {
-                Some(x) => {
-                    // Each group's charge to cutoff counts from the step's
-                    // start: the interrupted part's charge is added in.
-                    let before = x.charge_ah;
-                    x.charge_ah += t.charge_ah;
-                    x.energy_wh += t.energy_wh;
-                    if !t.groups_to_cutoff_ah.is_empty() {
-                        x.groups_to_cutoff_ah =
-                            t.groups_to_cutoff_ah.iter().map(|g| g - before).collect();
-                    }
-                }
-                None => steps.push(t.clone()),
-            }
-        }
-        manifest.simulation = Some(SimulationRecord {
-            label: SIM_TRUTH_LABEL.into(),
-            config: s.config,
-            true_capacity_ah: s.true_capacity_ah,
-            steps,
-        });
+        manifest.simulation = Some(merge_truth(manifest.simulation.take(), &outcome, s));
     }
-    write_json(&run_json, &manifest).map_err(io_err(&run_json))?;
+    manifest.record_incomplete = unwritten.clone();
+    if let Err(e) = write_json(&run_json, &manifest) {
+        // A full disk: the atomic write needs room for a second copy.
+        // Written in place instead (the old record is no more use than a
+        // torn new one: its status says running).
+        let direct = serde_json::to_vec_pretty(&manifest)
+            .map_err(std::io::Error::other)
+            .and_then(|b| std::fs::write(&run_json, b));
+        if let Err(e2) = direct {
+            unwritten.push(format!("{RUN_JSON}: {e}; in place: {e2}"));
+        }
+    }
     let _ = std::fs::remove_file(dir.join(RUN_LOCK));
+    let _ = std::fs::remove_file(dir.join(record::RESERVE));
+    let summary = match summary {
+        Ok(s) => s,
+        Err(e) => {
+            return Err(RunError::from(Failure::RecordIncomplete {
+                message: format!(
+                    "{}; {}: {e}{}",
+                    outputs_line(&outcome),
+                    outcome.reason.clone().unwrap_or_default(),
+                    if unwritten.is_empty() {
+                        String::new()
+                    } else {
+                        format!("; not written: {}", unwritten.join("; "))
+                    }
+                ),
+                may_be_on: !outcome.may_be_on.is_empty(),
+            }))
+        }
+    };
     index_pack(&p.pack_dir, &p.pack_id);
     Ok(RunReport {
         run_dir: dir.to_path_buf(),
         summary,
         outcome,
+        unwritten,
     })
+}
+
+/// The simulation truth of a run: a resumed step's truth adds to what
+/// the interrupted part counted.
+fn merge_truth(
+    before: Option<SimulationRecord>,
+    outcome: &RunOutcome,
+    s: SimRun,
+) -> SimulationRecord {
+    let mut steps = before.map(|r| r.steps).unwrap_or_default();
+    for t in &outcome.truth {
+        match steps.iter_mut().find(|x| x.step == t.step) {
+            Some(x) => {
+                // Each group's charge to cutoff counts from the step's
+                // start: the interrupted part's charge is added in.
+                let before = x.charge_ah;
+                x.charge_ah += t.charge_ah;
+                x.energy_wh += t.energy_wh;
+                if !t.groups_to_cutoff_ah.is_empty() {
+                    x.groups_to_cutoff_ah =
+                        t.groups_to_cutoff_ah.iter().map(|g| g - before).collect();
+                }
+            }
+            None => steps.push(t.clone()),
+        }
+    }
+    SimulationRecord {
+        label: SIM_TRUTH_LABEL.into(),
+        config: s.config,
+        true_capacity_ah: s.true_capacity_ah,
+        steps,
+    }
 }
 
 /// Bring the results index up to this pack's folder. Best effort: the run

@@ -61,6 +61,9 @@ pub struct RunOptions {
     pub alarm_below_pct: Option<f64>,
     /// What the pack's BMS reported, compared with the measurement.
     pub bms: Option<model::bms::BmsReadings>,
+    /// How long the safe stop keeps trying an output it cannot confirm
+    /// off, s (wall clock).
+    pub safe_stop_hold_s: f64,
 }
 
 impl Default for RunOptions {
@@ -72,6 +75,7 @@ impl Default for RunOptions {
             trace: false,
             alarm_below_pct: None,
             bms: None,
+            safe_stop_hold_s: engine::OFF_HOLD.as_secs_f64(),
         }
     }
 }
@@ -119,6 +123,9 @@ pub struct RunReport {
     pub run_dir: PathBuf,
     pub summary: Summary,
     pub outcome: RunOutcome,
+    /// What of the record could not be written (a full disk), said to
+    /// the operator; empty when the record is whole.
+    pub unwritten: Vec<String>,
 }
 
 /// One station's run in a request: what to run, where, and its board.

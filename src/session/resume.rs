@@ -241,6 +241,7 @@ pub fn prepare(
             trace: false,
             alarm_below_pct: manifest.alarm_below_pct,
             bms: manifest.bms.clone(),
+            safe_stop_hold_s: engine::OFF_HOLD.as_secs_f64(),
         },
     };
     let found = find_point(dir, &prepared, manifest.bench.speed_factor)?;
@@ -456,6 +457,7 @@ pub async fn execute(
                 reason,
                 source_off_confirmed: false,
                 load_off_confirmed: false,
+                may_be_on: Vec::new(),
                 truth: Vec::new(),
                 duration_s: 0.0,
                 timing: Timing::default(),

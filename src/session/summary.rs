@@ -145,6 +145,7 @@ pub fn build_summary(
         steps: a.steps,
         cycles: a.cycles,
         warnings: a.warnings,
+        outputs_may_be_on: Vec::new(),
         samples,
         duration_s,
         recalibration: a.recalibration,
@@ -199,6 +200,15 @@ pub fn add_event_records(s: &mut Summary, events: &[Event]) {
             }),
             Event::Alarm { message, .. } => s.alarms.push(message.clone()),
             Event::Warning { message, .. } => s.warnings.push(message.clone()),
+            Event::InstrumentError {
+                instrument,
+                kind,
+                message,
+                ..
+            } if kind == "may_be_on" => {
+                s.outputs_may_be_on.push(instrument.clone());
+                s.warnings.push(format!("{instrument}: {message}"));
+            }
             _ => {}
         }
     }

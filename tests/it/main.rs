@@ -32,5 +32,6 @@ mod quick;
 #[cfg(unix)]
 mod serial_user;
 mod sim_scpi;
+mod storage;
 #[cfg(unix)]
 mod unattended;

@@ -146,6 +146,10 @@ pub struct RunOutcome {
     pub reason: Option<String>,
     pub source_off_confirmed: bool,
     pub load_off_confirmed: bool,
+    /// Instruments whose switch-off failed for the whole hold
+    /// ([`Engine::with_off_hold`]): their output may still be on and must
+    /// be switched off by hand. Each with the last error.
+    pub may_be_on: Vec<(String, String)>,
     pub truth: Vec<TruthStep>,
     pub duration_s: f64,
     pub timing: Timing,
@@ -244,7 +248,21 @@ pub struct Engine<'a> {
     groups: Option<groups::GroupMonitor>,
     /// The last group scan.
     last_groups: Option<model::groups::GroupSample>,
+    /// How long the safe stop keeps trying an output it cannot confirm off.
+    off_hold: std::time::Duration,
 }
+
+/// How long the safe stop keeps switching off, and reading back, an
+/// output it could not confirm off (wall clock), by default: a minute
+/// covers a serial adapter re-enumerating, an instrument rebooting after
+/// a brown-out, or a line that went silent and came back; past it the
+/// operator is told which instrument may still be on.
+pub const OFF_HOLD: std::time::Duration = std::time::Duration::from_secs(60);
+
+/// The first pause between two tries of an unconfirmed switch-off; it
+/// doubles up to [`OFF_RETRY_MAX`].
+pub const OFF_RETRY_FIRST: std::time::Duration = std::time::Duration::from_millis(250);
+pub const OFF_RETRY_MAX: std::time::Duration = std::time::Duration::from_secs(4);
 
 impl<'a> Engine<'a> {
     pub fn new(
@@ -279,7 +297,14 @@ impl<'a> Engine<'a> {
             drain_zero: None,
             groups: group_monitor,
             last_groups: None,
+            off_hold: OFF_HOLD,
         }
+    }
+
+    /// Keep trying an unconfirmed switch-off this long (wall clock).
+    pub fn with_off_hold(mut self, hold: std::time::Duration) -> Self {
+        self.off_hold = hold;
+        self
     }
 
     /// Raise an alarm (an event, the run goes on) when the capacity step
@@ -622,7 +647,19 @@ impl<'a> Engine<'a> {
                 end_reason: r.clone(),
             });
         }
-        let (src_ok, load_ok) = self.outputs_off().await;
+        let (src_ok, load_ok, may_be_on) = self.outputs_off().await;
+        for (who, e) in &may_be_on {
+            let _ = self.sink.event(&Event::InstrumentError {
+                t_s: self.t(),
+                step: self.current_step,
+                instrument: who.clone(),
+                kind: "may_be_on".into(),
+                message: format!(
+                    "not confirmed off after {:.0} s of tries ({e}): its output may still be on; switch it off by hand",
+                    self.off_hold.as_secs_f64()
+                ),
+            });
+        }
         let _ = self.sink.event(&Event::OutputsOff {
             t_s: self.t(),
             reason: reason
@@ -652,6 +689,7 @@ impl<'a> Engine<'a> {
             reason,
             source_off_confirmed: src_ok,
             load_off_confirmed: load_ok,
+            may_be_on,
             truth: std::mem::take(&mut self.truth_steps),
             duration_s: self.t(),
             timing: self.timing,
@@ -662,18 +700,39 @@ impl<'a> Engine<'a> {
     /// Every instrument to its safe state, each confirmed by read-back
     /// where possible. Separate links are handled at the same time, so a
     /// silent instrument does not delay the other's switch-off; one
-    /// source-sink link is handled in turn, load role first.
-    async fn outputs_off(&mut self) -> (bool, bool) {
+    /// source-sink link is handled in turn, load role first. An
+    /// instrument whose switch-off fails (no answer, a lost link, an
+    /// output that stays on) is tried again with a growing pause for the
+    /// whole hold: one that answers again mid-stop ends off, confirmed.
+    /// Returns (source confirmed, load confirmed, instruments that may
+    /// still be on).
+    async fn outputs_off(&mut self) -> (bool, bool, Vec<(String, String)>) {
+        let hold = self.off_hold;
         let st = &mut *self.station;
+        let until = tokio::time::Instant::now() + hold;
         let (load, src) = if st.shared_link {
-            let l = st.load.0.make_safe().await;
-            let s = st.source.0.make_safe().await;
+            let l = off_held(&mut st.load.0, until).await;
+            let s = off_held(&mut st.source.0, until).await;
             (l, s)
         } else {
-            tokio::join!(st.load.0.make_safe(), st.source.0.make_safe())
+            tokio::join!(
+                off_held(&mut st.load.0, until),
+                off_held(&mut st.source.0, until)
+            )
         };
         self.active = Active::None;
-        (src.unwrap_or(false), load.unwrap_or(false))
+        let mut may_be_on = Vec::new();
+        for (role, r) in [("source", &src), ("load", &load)] {
+            if let Err(e) = r {
+                let who = if e.instrument.is_empty() {
+                    role.to_string()
+                } else {
+                    e.instrument.clone()
+                };
+                may_be_on.push((who, e.message.clone()));
+            }
+        }
+        (matches!(src, Ok(true)), matches!(load, Ok(true)), may_be_on)
     }
 
     /// Read the error queues about once a second, and the driving
@@ -1333,6 +1392,24 @@ impl<'a> Engine<'a> {
 /// fraction of its threshold or, at the present rate of change, less than
 /// three base intervals away; a charge or energy end less than three base
 /// intervals away at the present current.
+/// An instrument's safe state, tried again with a growing pause until it
+/// is confirmed, the profile says it cannot confirm (`Ok(false)`), or
+/// `until` passes (the last error).
+async fn off_held(
+    inst: &mut Instrument,
+    until: tokio::time::Instant,
+) -> Result<bool, InstrumentError> {
+    let mut pause = OFF_RETRY_FIRST;
+    loop {
+        let r = inst.make_safe().await;
+        if r.is_ok() || tokio::time::Instant::now() + pause > until {
+            return r;
+        }
+        tokio::time::sleep(pause).await;
+        pause = (pause * 2).min(OFF_RETRY_MAX);
+    }
+}
+
 pub fn near_end(st: &PlanStep, s: &Sample, prev: Option<&Sample>, every: f64, within: f64) -> bool {
     let horizon = 3.0 * every;
     let rate = prev

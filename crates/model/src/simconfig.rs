@@ -268,10 +268,14 @@ pub enum FaultKind {
     /// From the fault on, every Modbus reply carries a wrong CRC (on an
     /// SCPI link, a garbled reply).
     BadCrc,
+    /// From the fault on, the line is dead both ways: messages are
+    /// neither carried out nor answered (a pulled cable, a hung
+    /// interface). With an end, the line comes back then.
+    Silent,
 }
 
 impl FaultKind {
-    pub const ALL: [FaultKind; 7] = [
+    pub const ALL: [FaultKind; 8] = [
         FaultKind::NoReply,
         FaultKind::Garbage,
         FaultKind::Slow,
@@ -279,6 +283,7 @@ impl FaultKind {
         FaultKind::Error,
         FaultKind::WrongReadBack,
         FaultKind::BadCrc,
+        FaultKind::Silent,
     ];
     pub fn name(self) -> &'static str {
         match self {
@@ -289,6 +294,7 @@ impl FaultKind {
             FaultKind::Error => "error",
             FaultKind::WrongReadBack => "wrong-read-back",
             FaultKind::BadCrc => "bad-crc",
+            FaultKind::Silent => "silent",
         }
     }
 }
@@ -301,6 +307,9 @@ pub struct LinkFault {
     pub kind: FaultKind,
     /// Bench time the fault starts, s.
     pub after_s: f64,
+    /// Bench time the fault ends, s (none: it lasts).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub until_s: Option<f64>,
     /// Reply delay of a `slow` fault, ms.
     #[serde(default = "default_delay_ms")]
     pub delay_ms: u64,
@@ -318,10 +327,10 @@ fn default_error_code() -> i32 {
 
 impl std::str::FromStr for LinkFault {
     type Err = String;
-    /// `INSTRUMENT:KIND@TIME[:DELAY]`, e.g. `load:no-reply@600s`,
-    /// `source:slow@10s:800ms`, `load:error@5s`.
+    /// `INSTRUMENT:KIND@TIME[..END][:DELAY]`, e.g. `load:no-reply@600s`,
+    /// `source:slow@10s:800ms`, `load:error@5s`, `load:silent@600s..610s`.
     fn from_str(s: &str) -> Result<LinkFault, String> {
-        let expected = "expected INSTRUMENT:KIND@TIME[:DELAY], e.g. load:no-reply@600s or source:slow@10s:800ms";
+        let expected = "expected INSTRUMENT:KIND@TIME[..END][:DELAY], e.g. load:no-reply@600s, load:silent@600s..610s or source:slow@10s:800ms";
         let (who, rest) = s
             .split_once(':')
             .ok_or_else(|| format!("fault '{s}': {expected}"))?;
@@ -353,11 +362,22 @@ impl std::str::FromStr for LinkFault {
             Some((t, d)) => (t, Some(d)),
             None => (when, None),
         };
+        let (time, until) = match time.split_once("..") {
+            Some((a, b)) => (a, Some(b)),
+            None => (time, None),
+        };
         let after_s = crate::units::duration(time).map_err(|e| format!("fault '{s}': {e}"))?;
+        let until_s = until
+            .map(|u| crate::units::duration(u).map_err(|e| format!("fault '{s}': {e}")))
+            .transpose()?;
+        if until_s.is_some_and(|u| u <= after_s) {
+            return Err(format!("fault '{s}': its end must come after its start"));
+        }
         let mut f = LinkFault {
             instrument,
             kind,
             after_s,
+            until_s,
             delay_ms: default_delay_ms(),
             error_code: default_error_code(),
         };

@@ -20,6 +20,7 @@ pub mod manifest;
 pub mod read;
 pub mod schema;
 pub mod write;
+pub mod writer;
 
 use analysis::pulse::PulseReading;
 use analysis::{
@@ -43,6 +44,9 @@ pub const REPORT_HTML: &str = "report.html";
 pub const SIM_STATE_JSON: &str = "sim-pack.json";
 /// The process running a run folder (removed when the run is recorded).
 pub const RUN_LOCK: &str = "run.lock";
+/// Space set aside while a run is live, freed for its final records when
+/// the disk fills ([`write::RESERVE_BYTES`]).
+pub const RESERVE: &str = ".reserve";
 /// The raw-traffic trace of a run (`run --trace`).
 pub const TRACE_LOG: &str = "trace.log";
 
@@ -81,6 +85,10 @@ pub struct Summary {
     pub steps: Vec<StepSummary>,
     pub cycles: Vec<CycleSummary>,
     pub warnings: Vec<String>,
+    /// Instruments the safe stop could not confirm off (from the events'
+    /// `may_be_on` instrument errors): their outputs may still be on.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub outputs_may_be_on: Vec<String>,
     pub samples: usize,
     pub duration_s: f64,
     /// The measured capacity as a new nominal for a battery management

@@ -43,6 +43,24 @@ pub struct Manifest {
     /// channels (their names and places), where the station reads them.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub groups: Option<model::groups::GroupChannels>,
+    /// Instruments the safe stop could not confirm off: their outputs may
+    /// still have been on when the run ended.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub outputs_may_be_on: Vec<String>,
+    /// What of the record could not be written (a full or failing disk).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub record_incomplete: Vec<String>,
+    /// Attempts to resume the run that failed before it went on (the run
+    /// stays resumable).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub failed_resumes: Vec<FailedResume>,
+}
+
+/// A resume that could not reach the bench.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+pub struct FailedResume {
+    pub at_utc: String,
+    pub reason: String,
 }
 
 /// One resume, as `run.json` keeps it.

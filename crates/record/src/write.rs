@@ -4,20 +4,18 @@
 
 use super::{CSV_COLUMNS, EVENTS_JSONL, SAMPLES_CSV};
 use crate::event::{Event, Sink};
+use crate::writer::LogFiles;
 use model::groups::GroupSample;
 use model::sample::Sample;
 use serde::Serialize;
 use std::fs::{self, File, OpenOptions};
 use std::io::{self, BufWriter, Write};
 use std::path::{Path, PathBuf};
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
-/// How often buffered samples reach the disk (wall clock, with a sync).
+/// How often handed-over rows are synced to the disk (wall clock). Rows
+/// reach the operating system as soon as the writer's queue is empty.
 pub const FLUSH_INTERVAL: Duration = Duration::from_secs(1);
-/// Buffered samples are handed to the operating system at least every
-/// this many seconds of run time, so a killed process (not a power cut)
-/// loses at most this much of the log even when the bench runs sped up.
-pub const HANDOFF_RUN_S: f64 = 10.0;
 
 /// Folders synced by [`sync_dir`] in this process, for tests that check a
 /// write reached its folder's entry.
@@ -105,51 +103,13 @@ pub fn create_run_folder(pack_dir: &Path, base_id: &str) -> io::Result<(String, 
     Err(io::Error::other("could not find a free run id"))
 }
 
-/// Files synced to the disk about once a second by one background
-/// thread, so no running station waits on the disk.
-fn syncer() -> &'static std::sync::Mutex<Vec<std::sync::Weak<File>>> {
-    static FILES: std::sync::OnceLock<std::sync::Mutex<Vec<std::sync::Weak<File>>>> =
-        std::sync::OnceLock::new();
-    FILES.get_or_init(|| {
-        let spawned = std::thread::Builder::new()
-            .name("log-sync".into())
-            .spawn(|| loop {
-                std::thread::sleep(FLUSH_INTERVAL);
-                let live: Vec<std::sync::Arc<File>> = match syncer().lock() {
-                    Ok(mut g) => {
-                        g.retain(|w| w.strong_count() > 0);
-                        g.iter().filter_map(|w| w.upgrade()).collect()
-                    }
-                    Err(_) => Vec::new(),
-                };
-                for f in live {
-                    let _ = f.sync_data();
-                }
-            });
-        if spawned.is_err() {
-            // Without the thread, files are still synced when each run ends.
-        }
-        std::sync::Mutex::new(Vec::new())
-    })
-}
-
-/// Keep a file synced by the background thread while `keep` lives.
-fn sync_in_background(f: &File) -> Option<std::sync::Arc<File>> {
-    let dup = std::sync::Arc::new(f.try_clone().ok()?);
-    if let Ok(mut g) = syncer().lock() {
-        g.push(std::sync::Arc::downgrade(&dup));
-    }
-    Some(dup)
-}
-
-/// The engine sink that writes `samples.csv` and `events.jsonl`.
+/// The files of a run's log: `samples.csv`, `events.jsonl` and
+/// `groups.csv`. Driven by the record's writer thread
+/// ([`crate::writer::QueuedSink`]), which hands rows to the operating
+/// system as they come and syncs them once a second.
 pub struct RunLogSink {
     samples: BufWriter<File>,
     events: File,
-    /// The same files, kept for the background syncer.
-    _synced: Vec<std::sync::Arc<File>>,
-    last_flush: Instant,
-    last_handoff_t: f64,
     pub rows: usize,
     line: String,
     /// `groups.csv`, opened at the first group scan.
@@ -183,16 +143,10 @@ impl RunLogSink {
             .create(true)
             .append(true)
             .open(dir.join(EVENTS_JSONL))?;
-        let _synced = [samples.get_ref(), &events]
-            .into_iter()
-            .filter_map(sync_in_background)
-            .collect();
+        set_aside(&dir.join(crate::RESERVE))?;
         Ok(RunLogSink {
             samples,
             events,
-            _synced,
-            last_flush: Instant::now(),
-            last_handoff_t: f64::NEG_INFINITY,
             rows: 0,
             line: String::with_capacity(96),
             groups: None,
@@ -202,14 +156,43 @@ impl RunLogSink {
 
     /// Push buffered rows to the disk.
     pub fn flush(&mut self) -> io::Result<()> {
+        self.hand_off()?;
+        self.sync()
+    }
+}
+
+/// Bytes set aside in each run folder while the run is live, freed when
+/// the disk fills so the final records (`outputs_off`, `run_end`, the
+/// final `run.json`) still find room: several times what they take.
+pub const RESERVE_BYTES: usize = 256 * 1024;
+
+/// Write the reserve file (real blocks, not a sparse file).
+fn set_aside(path: &Path) -> io::Result<()> {
+    let mut f = File::create(path)?;
+    f.write_all(&vec![0u8; RESERVE_BYTES])?;
+    f.sync_data()
+}
+
+impl LogFiles for RunLogSink {
+    fn hand_off(&mut self) -> io::Result<()> {
         self.samples.flush()?;
-        self.samples.get_ref().sync_data()?;
         if let Some(g) = self.groups.as_mut() {
             g.flush()?;
+        }
+        Ok(())
+    }
+
+    fn sync(&mut self) -> io::Result<()> {
+        self.samples.get_ref().sync_data()?;
+        self.events.sync_data()?;
+        if let Some(g) = self.groups.as_ref() {
             g.get_ref().sync_data()?;
         }
-        self.last_flush = Instant::now();
         Ok(())
+    }
+
+    fn free_reserve(&mut self) -> bool {
+        fs::remove_file(self.dir.join(crate::RESERVE)).is_ok()
     }
 }
 
@@ -265,15 +248,6 @@ impl Sink for RunLogSink {
         self.line = line;
         r?;
         self.rows += 1;
-        if self.last_flush.elapsed() >= FLUSH_INTERVAL {
-            // Handed to the system now; the background thread syncs it.
-            self.samples.flush()?;
-            self.last_flush = Instant::now();
-            self.last_handoff_t = s.t_s;
-        } else if s.t_s - self.last_handoff_t >= HANDOFF_RUN_S {
-            self.samples.flush()?;
-            self.last_handoff_t = s.t_s;
-        }
         Ok(())
     }
 

@@ -26,8 +26,12 @@ pub fn framed(body: &[u8]) -> Vec<u8> {
     f
 }
 
+/// Whether a fault of kind `k` is in effect; a silent line answers no
+/// more than one with no reply path.
 fn has(faults: &[LinkFault], k: FaultKind) -> bool {
-    faults.iter().any(|f| f.kind == k)
+    faults
+        .iter()
+        .any(|f| f.kind == k || (k == FaultKind::NoReply && f.kind == FaultKind::Silent))
 }
 
 /// What to send back for one request.

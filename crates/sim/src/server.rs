@@ -985,7 +985,7 @@ impl SimInstrument {
         }
         let mut active = Vec::new();
         for (i, f) in b.faults.link.iter().enumerate() {
-            if f.instrument != target || now < f.after_s {
+            if f.instrument != target || now < f.after_s || f.until_s.is_some_and(|u| now >= u) {
                 continue;
             }
             let once = matches!(f.kind, FaultKind::Disconnect | FaultKind::Error);
@@ -1085,6 +1085,10 @@ impl SimInstrument {
                 self.errors
                     .push_back((code, "Device-specific error; injected fault"));
             }
+        }
+        if has(FaultKind::Silent).is_some() {
+            // A dead line: the message never arrived.
+            return (Ok(Response::Nothing), kinds);
         }
         let drop_levels = has(FaultKind::WrongReadBack).is_some();
         let replies = self.run_units(&mut b, line, drop_levels);

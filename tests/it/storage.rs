@@ -1,0 +1,266 @@
+//! Safety that holds whatever the disk does: the engine hands its records
+//! to a writer of their own, so a stalled or failing disk never delays
+//! sampling, a limit check, the safe stop or another station; a writer
+//! that stalls or fails is itself a reason for the safe stop.
+
+use engine::clock::{Clock, PacedClock};
+use engine::control::StopHandle;
+use engine::state::RunState;
+use engine::{Engine, Station};
+use instrument::profile::{Profile, ProfileRole};
+use instrument::{Load, Source};
+use model::sample::Sample;
+use packbench::session::request::{PackSource, Prepared, RunRequest};
+use record::event::{Event, Sink};
+use record::writer::{LogFiles, QueuedSink};
+use sim::SimConfig;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::Duration;
+
+/// Files that take rows until run time `stall_at_s`, then block (a frozen
+/// filesystem) until `release` is set; every row taken is kept.
+#[derive(Clone)]
+struct FreezingFiles {
+    stall_at_s: f64,
+    release: Arc<AtomicBool>,
+    rows: Arc<Mutex<Vec<Sample>>>,
+}
+
+impl FreezingFiles {
+    fn new(stall_at_s: f64) -> FreezingFiles {
+        FreezingFiles {
+            stall_at_s,
+            release: Arc::new(AtomicBool::new(false)),
+            rows: Arc::default(),
+        }
+    }
+}
+
+impl Sink for FreezingFiles {
+    fn sample(&mut self, s: &Sample) -> std::io::Result<()> {
+        while s.t_s >= self.stall_at_s && !self.release.load(Ordering::Relaxed) {
+            std::thread::sleep(Duration::from_millis(5));
+        }
+        self.rows.lock().unwrap().push(*s);
+        Ok(())
+    }
+    fn event(&mut self, _: &Event) -> std::io::Result<()> {
+        Ok(())
+    }
+}
+
+impl LogFiles for FreezingFiles {
+    fn hand_off(&mut self) -> std::io::Result<()> {
+        Ok(())
+    }
+    fn sync(&mut self) -> std::io::Result<()> {
+        Ok(())
+    }
+}
+
+/// Every sample's run time, as an engine hands it over.
+#[derive(Default)]
+struct Times(Vec<f64>);
+
+impl Sink for Times {
+    fn sample(&mut self, s: &Sample) -> std::io::Result<()> {
+        self.0.push(s.t_s);
+        Ok(())
+    }
+    fn event(&mut self, _: &Event) -> std::io::Result<()> {
+        Ok(())
+    }
+}
+
+fn prepare_text(dir: &std::path::Path, name: &str, text: &str) -> Prepared {
+    let path = dir.join(name);
+    std::fs::write(&path, text).unwrap();
+    packbench::session::prepare::prepare(&RunRequest {
+        procedure: path,
+        pack_id: "STALL-1".into(),
+        pack: PackSource::Given(small_pack()),
+        results: dir.join("results"),
+        options: Default::default(),
+    })
+    .unwrap()
+}
+
+/// A 4S 2 Ah li-ion pack (the link tests' pack).
+fn small_pack() -> model::pack::PackSpec {
+    model::pack::PackSpec {
+        chemistry: model::pack::Chemistry::LiIon,
+        series: 4,
+        rated_capacity_ah: 2.0,
+        rated_energy_wh: None,
+        rated_rate_c: None,
+        rated_resistance_mohm: None,
+    }
+}
+
+const DISCHARGE: &str = r#"
+title = "1C discharge to the cutoff (storage tests)"
+[envelope]
+voltage_max = "4.25V/cell"
+voltage_min = "2.80V/cell"
+current_max = "1.2C"
+temperature_max = "55degC"
+step_time_max = "2h"
+[sampling]
+every = "1s"
+[[phase]]
+name = "measure"
+  [[phase.step]]
+  kind = "discharge"
+  current = "1C"
+  ends = ["voltage < 3.0V/cell", "time > 90min"]
+"#;
+
+const REST: &str = r#"
+title = "A rest (storage tests)"
+[envelope]
+voltage_max = "4.25V/cell"
+voltage_min = "2.80V/cell"
+current_max = "1.2C"
+temperature_max = "55degC"
+[sampling]
+every = "1s"
+[[phase]]
+name = "wait"
+  [[phase.step]]
+  kind = "rest"
+  ends = ["time > 400s"]
+"#;
+
+async fn station(
+    p: &Prepared,
+    cfg: &SimConfig,
+    clock: &Arc<dyn Clock>,
+) -> (Station, sim::SimHandle) {
+    let links = sim::build(&p.pack, cfg, Arc::clone(clock));
+    let h = links.handle.clone();
+    let st = Station::new(
+        Source::connect(links.source, Profile::builtin(ProfileRole::Source))
+            .await
+            .unwrap(),
+        Load::connect(links.load, Profile::builtin(ProfileRole::Load))
+            .await
+            .unwrap(),
+    );
+    (st, h)
+}
+
+/// Finding 1: with the results folder frozen 15 s into a 1C discharge,
+/// sampling stopped and the software cutoff was missed. Now the files
+/// freeze 15 s in (and stay frozen to the end) while the bound on the
+/// writer's lag is longer than the run: the engine goes on sampling
+/// through the freeze, and the software cutoff ends the discharge on
+/// time. The lowest true pack voltage stays above the cutoff less one
+/// sample's step (and so above `voltage_min`); another station on the
+/// same thread keeps its schedule meanwhile.
+#[tokio::test(flavor = "current_thread")]
+async fn a_frozen_disk_does_not_delay_the_cutoff_or_another_station() {
+    let dir = tempfile::tempdir().unwrap();
+    let pa = prepare_text(dir.path(), "discharge.toml", DISCHARGE);
+    let pb = prepare_text(dir.path(), "rest.toml", REST);
+    // 200 bench seconds a wall second: the partly charged pack reaches
+    // its cutoff in about 1000 bench seconds (5 s of wall time).
+    let clock: Arc<dyn Clock> = PacedClock::new(200.0);
+    let mut cfg = SimConfig::ideal();
+    cfg.pack.initial_soc = 0.3;
+    let (mut sa, ha) = station(&pa, &cfg, &clock).await;
+    let (mut sb, _hb) = station(&pb, &SimConfig::ideal(), &clock).await;
+    let files = FreezingFiles::new(15.0);
+    let mut qa =
+        QueuedSink::spawn_with(Box::new(files.clone()), true, Duration::from_secs(600)).unwrap();
+    let mut tb = Times::default();
+    let ea = Engine::new(
+        &pa.procedure.plan,
+        &mut sa,
+        Arc::clone(&clock),
+        &mut qa,
+        None,
+        StopHandle::new(),
+    );
+    let eb = Engine::new(
+        &pb.procedure.plan,
+        &mut sb,
+        Arc::clone(&clock),
+        &mut tb,
+        None,
+        StopHandle::new(),
+    );
+    let (oa, ob) = tokio::time::timeout(Duration::from_secs(60), async {
+        tokio::join!(ea.run(), eb.run())
+    })
+    .await
+    .expect("neither station waits on the frozen files");
+    assert_eq!(oa.status, RunState::Completed, "{:?}", oa.reason);
+    assert_eq!(ob.status, RunState::Completed, "{:?}", ob.reason);
+    assert!(oa.source_off_confirmed && oa.load_off_confirmed);
+    assert!(!ha.load_input_on());
+    // The files took nothing after the freeze.
+    assert!(files.rows.lock().unwrap().iter().all(|s| s.t_s < 15.0));
+    // The cutoff acted on the engine's own samples: the true terminal
+    // voltage under load never went below 3.0 V/cell less one second's
+    // fall at 1C near empty (a few mV per cell, allowed 50 mV per cell
+    // here) and never near voltage_min (2.80 V/cell).
+    let (low, _) = ha.voltage_span().unwrap();
+    assert!(low > 4.0 * (3.0 - 0.05), "lowest {low:.3} V");
+    assert!(low > 4.0 * 2.80);
+    assert!(
+        oa.duration_s > 300.0,
+        "the discharge ran on through the freeze"
+    );
+    // The other station sampled every second of run time throughout
+    // (allowed one late wake of the shared thread: 3 s).
+    let worst = tb.0.windows(2).map(|w| w[1] - w[0]).fold(0.0, f64::max);
+    assert!(worst <= 3.0, "station B's longest gap {worst:.2} s");
+    assert!(tb.0.len() >= 390, "{} samples", tb.0.len());
+    // The writer is still blocked at the end: said, not waited for.
+    let end = qa.finish(Duration::from_millis(200));
+    assert!(end.stalled && end.rows_lost > 0, "{end:?}");
+    files.release.store(true, Ordering::Relaxed);
+}
+
+/// The same freeze with the writer's usual kind of bound (here 1 s of
+/// wall time, 200 bench seconds): the station goes to the safe stop on
+/// time, naming the stalled writer, with both outputs confirmed off.
+#[tokio::test(flavor = "current_thread")]
+async fn a_writer_that_stalls_past_its_bound_stops_the_run_safely() {
+    let dir = tempfile::tempdir().unwrap();
+    let p = prepare_text(dir.path(), "discharge.toml", DISCHARGE);
+    let clock: Arc<dyn Clock> = PacedClock::new(200.0);
+    let mut cfg = SimConfig::ideal();
+    cfg.pack.initial_soc = 1.0;
+    let (mut st, h) = station(&p, &cfg, &clock).await;
+    let files = FreezingFiles::new(15.0);
+    let mut q =
+        QueuedSink::spawn_with(Box::new(files.clone()), true, Duration::from_secs(1)).unwrap();
+    let e = Engine::new(
+        &p.procedure.plan,
+        &mut st,
+        Arc::clone(&clock),
+        &mut q,
+        None,
+        StopHandle::new(),
+    );
+    let out = tokio::time::timeout(Duration::from_secs(30), e.run())
+        .await
+        .expect("the engine does not wait on the writer");
+    assert_eq!(out.status, RunState::Aborted);
+    let reason = out.reason.clone().unwrap_or_default();
+    assert!(reason.contains("written nothing"), "{reason}");
+    // Found within the bound (1 s, 200 bench s) after the freeze at 15 s,
+    // with one wall second of slack for a loaded machine.
+    assert!(
+        out.duration_s > 15.0 + 150.0 && out.duration_s < 15.0 + 200.0 * 2.0,
+        "stopped at {:.0} s",
+        out.duration_s
+    );
+    assert!(out.source_off_confirmed && out.load_off_confirmed);
+    assert!(!h.load_input_on() && !h.source_output_on());
+    files.release.store(true, Ordering::Relaxed);
+    let end = q.finish(Duration::from_secs(5));
+    assert!(end.describe().unwrap().contains("written nothing"));
+}
