@@ -73,6 +73,15 @@ fn resume_one(a: &ResumeArgs, run_dir: &Path) -> ExitCode {
         Ok(s) => s,
         Err(e) => return report_error(&e),
     };
+    // The station's instruments, held until the run ends.
+    #[cfg(unix)]
+    let _held = match &setup.station {
+        Some((st, file)) => match crate::session::benchfile::lock_station(file, st) {
+            Ok(l) => l,
+            Err(e) => return report_error(&e),
+        },
+        None => Vec::new(),
+    };
     let mode = match display_mode(a.quiet, &a.status_every) {
         Ok(m) => m,
         Err(e) => return report_error(&e),
@@ -149,6 +158,17 @@ fn resume_bench(a: &ResumeArgs) -> ExitCode {
         Ok(s) => s,
         Err(e) => return report_error(&e),
     };
+    #[cfg(unix)]
+    let mut _held = Vec::new();
+    #[cfg(unix)]
+    for (_, s) in &setups {
+        if let Some((st, file)) = &s.station {
+            match crate::session::benchfile::lock_station(file, st) {
+                Ok(l) => _held.push(l),
+                Err(e) => return report_error(&e),
+            }
+        }
+    }
     let mode = match display_mode(a.quiet, &a.status_every) {
         Ok(m) => m,
         Err(e) => return report_error(&e),

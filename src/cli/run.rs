@@ -269,7 +269,7 @@ pub fn cmd_run(a: RunArgs) -> ExitCode {
     #[cfg(unix)]
     for j in &jobs {
         if let Some((st, file)) = &j.station {
-            match crate::session::benchfile::lock_station(&a.results, file, &st.name) {
+            match crate::session::benchfile::lock_station(file, st) {
                 Ok(l) => _held.push(l),
                 Err(e) => return report_error(&e),
             }

@@ -99,9 +99,10 @@ pub fn console(a: &ServeArgs, bound: SocketAddr) -> Result<Console, RunError> {
         let mut previous = crate::console::bays::interrupted_by_station(&a.results, file);
         for st in bench.stations {
             #[cfg(unix)]
-            locks.push(Box::new(crate::session::benchfile::lock_station(
-                &a.results, file, &st.name,
-            )?) as Box<dyn std::any::Any + Send + Sync>);
+            locks.push(
+                Box::new(crate::session::benchfile::lock_station(file, &st)?)
+                    as Box<dyn std::any::Any + Send + Sync>,
+            );
             bays.push(Arc::new(Bay {
                 name: st.name.clone(),
                 previous: Mutex::new(previous.remove(&st.name)),

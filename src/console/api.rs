@@ -321,6 +321,9 @@ pub async fn run(
         return r;
     }
     let path = c.results.join(&pack).join(&run).join(record::SUMMARY_JSON);
+    if let Err(e) = record::write::refuse_links_below(&c.results, &path) {
+        return json_error(StatusCode::FORBIDDEN, e.to_string());
+    }
     match record::read::read_summary(&path) {
         Ok(s) => Json(s).into_response(),
         Err(e) => json_error(StatusCode::NOT_FOUND, e.to_string()),

@@ -82,7 +82,12 @@ pub async fn run(
         return r;
     }
     let dir = c.results.join(&pack).join(&run);
-    if let Ok(text) = std::fs::read_to_string(dir.join(record::REPORT_HTML)) {
+    // Nothing outside the results folder is served: a pack, run or report
+    // that is a symbolic link is refused.
+    if let Err(e) = record::write::refuse_links_below(&c.results, &dir.join(record::REPORT_HTML)) {
+        return page_error(StatusCode::FORBIDDEN, &e.to_string());
+    }
+    if let Ok(text) = record::write::read_inside(&c.results, &dir.join(record::REPORT_HTML)) {
         return Html(text).into_response();
     }
     let summary = match record::read::read_summary(&dir.join(record::SUMMARY_JSON)) {
@@ -121,6 +126,9 @@ pub async fn label(
         return r;
     }
     let dir = c.results.join(&pack).join(&run);
+    if let Err(e) = record::write::refuse_links_below(&c.results, &dir.join(record::SUMMARY_JSON)) {
+        return page_error(StatusCode::FORBIDDEN, &e.to_string());
+    }
     let s = match record::read::read_summary(&dir.join(record::SUMMARY_JSON)) {
         Ok(s) => s,
         Err(e) => return page_error(StatusCode::NOT_FOUND, &e.to_string()),

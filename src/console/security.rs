@@ -41,7 +41,11 @@ fn header_text(h: &HeaderMap, name: impl header::AsHeaderName) -> Option<&str> {
 /// The token a request carries: bearer header, cookie, or `?token=`.
 fn token_of(req: &Request) -> Option<String> {
     let h = req.headers();
-    if let Some(b) = header_text(h, header::AUTHORIZATION).and_then(|v| v.strip_prefix("Bearer ")) {
+    // RFC 9110 §11.1: the scheme's name is case-insensitive.
+    if let Some(b) = header_text(h, header::AUTHORIZATION).and_then(|v| {
+        let (scheme, rest) = v.trim_start().split_once(' ')?;
+        scheme.eq_ignore_ascii_case("bearer").then_some(rest)
+    }) {
         return Some(b.trim().to_string());
     }
     if let Some(c) = header_text(h, header::COOKIE) {
@@ -59,6 +63,11 @@ fn token_of(req: &Request) -> Option<String> {
 
 /// The guard on every route.
 pub async fn guard(State(c): State<Arc<Console>>, req: Request, next: Next) -> Response {
+    // RFC 9112 §3.2: a request with more than one Host field is refused
+    // (400), whatever the first one says.
+    if req.headers().get_all(header::HOST).iter().count() > 1 {
+        return refuse(StatusCode::BAD_REQUEST, "more than one Host header");
+    }
     let host = header_text(req.headers(), header::HOST)
         .unwrap_or("")
         .to_string();

@@ -335,7 +335,7 @@ impl Reader<'_> {
                 }
             }
             let max_c = match &t.max {
-                Some(m) => match model::units::temperature_c(m.get_ref()) {
+                Some(m) => match model::units::temperature_limit_c(m.get_ref()) {
                     Ok(v) => Some(v),
                     Err(e) => {
                         self.err(m.span(), 1, e.to_string());
@@ -593,36 +593,154 @@ impl BenchFile {
     }
 }
 
-/// A bench file's station, held by one process: `packbench run` for its
-/// run, `packbench serve` for its lifetime. The lock is an exclusive
-/// `flock` on `<results>/.stations/<bench file stem>-<station>.lock`,
-/// dropped with the process whatever way it ends.
+/// A station, held by one process: `packbench run` and `resume` for the
+/// run, `packbench serve` for its lifetime. A station is its instruments,
+/// not the file or the results folder that names them: each instrument's
+/// link is locked by its canonical address (a serial device with its
+/// links resolved, a TCP address with its host name resolved) with an
+/// exclusive `flock` on a file in [`instrument_lock_dir`], so another
+/// bench file, a copy of this one or another `--results` folder reaching
+/// the same instrument is refused. The locks are dropped with the process
+/// whatever way it ends. Simulated links lock nothing (each process has
+/// its own simulated bench).
 #[cfg(unix)]
 pub fn lock_station(
-    results: &Path,
     bench_file: &Path,
-    station: &str,
-) -> Result<nix::fcntl::Flock<std::fs::File>, crate::session::error::RunError> {
-    let stem = bench_file
-        .file_stem()
-        .map(|s| s.to_string_lossy().into_owned())
-        .unwrap_or_else(|| "bench".into());
-    let dir = results.join(".stations");
+    station: &StationSpec,
+) -> Result<Vec<nix::fcntl::Flock<std::fs::File>>, crate::session::error::RunError> {
+    let dir = instrument_lock_dir();
     std::fs::create_dir_all(&dir).map_err(crate::session::error::io_err(&dir))?;
-    let path = dir.join(format!("{stem}-{station}.lock"));
-    let file = std::fs::OpenOptions::new()
-        .create(true)
-        .truncate(false)
-        .write(true)
-        .open(&path)
-        .map_err(crate::session::error::io_err(&path))?;
-    nix::fcntl::Flock::lock(file, nix::fcntl::FlockArg::LockExclusiveNonblock).map_err(|_| {
-        crate::session::error::RunError::arguments(format!(
-            "station '{station}' of {} is driven by another packbench process (run or serve) now: one process per station ({} is locked)",
-            bench_file.display(),
-            path.display()
-        ))
-    })
+    let mut bindings: Vec<(&str, &Binding)> = match &station.drivers {
+        Drivers::Pair { source, load } => vec![("source", source), ("load", load)],
+        Drivers::SourceSink(b) => vec![("source-sink", b)],
+    };
+    if let Some(m) = &station.meter {
+        bindings.push(("meter", m));
+    }
+    let mut keys: Vec<(&str, String)> = bindings
+        .iter()
+        .filter_map(|(role, b)| canonical_link(&b.link).map(|k| (*role, k)))
+        .collect();
+    if keys.is_empty() {
+        // A simulated station: its bench is this process's own, so the
+        // station is the bench file's (one console or run per station).
+        let file = std::fs::canonicalize(bench_file).unwrap_or_else(|_| bench_file.to_path_buf());
+        keys.push((
+            "simulated bench",
+            format!("sim:{}#{}", file.display(), station.name),
+        ));
+    }
+    let mut held = Vec::new();
+    let mut seen = Vec::new();
+    for (role, key) in keys {
+        if seen.contains(&key) {
+            continue;
+        }
+        seen.push(key.clone());
+        let path = dir.join(format!("{}.lock", lock_file_stem(&key)));
+        let file = std::fs::OpenOptions::new()
+            .create(true)
+            .truncate(false)
+            .read(true)
+            .write(true)
+            .open(&path)
+            .map_err(crate::session::error::io_err(&path))?;
+        match nix::fcntl::Flock::lock(file, nix::fcntl::FlockArg::LockExclusiveNonblock) {
+            Ok(mut f) => {
+                // Who holds it, for the operator who finds the file.
+                use std::io::{Seek, Write};
+                let _ = f.set_len(0);
+                let _ = f.rewind();
+                let _ = writeln!(
+                    f,
+                    "{} station {} of {}",
+                    std::process::id(),
+                    station.name,
+                    bench_file.display()
+                );
+                held.push(f);
+            }
+            Err(_) => {
+                let who = std::fs::read_to_string(&path).unwrap_or_default();
+                let who = who.trim();
+                return Err(crate::session::error::RunError::arguments(format!(
+                    "station '{}' of {}: its {role} ({key}) is driven by another packbench process (run or serve) now{}: one process per instrument ({} is locked)",
+                    station.name,
+                    bench_file.display(),
+                    if who.is_empty() {
+                        String::new()
+                    } else {
+                        format!(" (process {who})")
+                    },
+                    path.display()
+                )));
+            }
+        }
+    }
+    Ok(held)
+}
+
+/// Where the instruments' locks live: one folder for the whole machine,
+/// whatever results folder a run writes to (`PACKBENCH_LOCK_DIR` moves it,
+/// e.g. for a bench whose processes run in separate containers sharing a
+/// folder).
+pub fn instrument_lock_dir() -> PathBuf {
+    if let Some(d) = std::env::var_os("PACKBENCH_LOCK_DIR") {
+        return PathBuf::from(d);
+    }
+    let run_lock = Path::new("/run/lock");
+    if run_lock.is_dir() {
+        let d = run_lock.join("packbench");
+        if std::fs::create_dir_all(&d).is_ok() {
+            return d;
+        }
+    }
+    std::env::temp_dir().join("packbench-locks")
+}
+
+/// An instrument link's canonical address: the serial device with every
+/// link resolved, a TCP host resolved to its address. `None` for the
+/// simulated bench.
+pub fn canonical_link(link: &LinkSpec) -> Option<String> {
+    match link {
+        LinkSpec::Sim => None,
+        LinkSpec::Serial(s) => {
+            let p = Path::new(&s.path);
+            let real = std::fs::canonicalize(p).unwrap_or_else(|_| p.to_path_buf());
+            Some(format!("serial:{}", real.display()))
+        }
+        LinkSpec::Tcp { host, port } => {
+            use std::net::ToSocketAddrs;
+            let addr = (host.as_str(), *port)
+                .to_socket_addrs()
+                .ok()
+                .and_then(|mut a| a.next())
+                .map(|a| a.to_string())
+                .unwrap_or_else(|| format!("{}:{port}", host.to_ascii_lowercase()));
+            Some(format!("tcp:{addr}"))
+        }
+    }
+}
+
+/// A lock file's name for a canonical address: its letters and digits,
+/// the rest as `_`.
+fn lock_file_stem(key: &str) -> String {
+    key.chars()
+        .map(|c| {
+            if c.is_ascii_alphanumeric() || c == '.' || c == '-' {
+                c
+            } else {
+                '_'
+            }
+        })
+        .collect::<String>()
+        .chars()
+        .rev()
+        .take(200)
+        .collect::<Vec<char>>()
+        .into_iter()
+        .rev()
+        .collect()
 }
 
 #[cfg(test)]

@@ -23,8 +23,9 @@ use record::manifest::{
     BenchRecord, InstrumentRecord, Manifest, ProcedureRecord, SimulationRecord, ToolInfo,
 };
 use record::write::{create_run_folder, write_json, RunLogSink};
+use record::write::{LockError, RunLock};
 use record::{PackSummary, PACK_TOML, RUN_JSON};
-use record::{RUN_LOCK, SIM_STATE_JSON, TRACE_LOG};
+use record::{SIM_STATE_JSON, TRACE_LOG};
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
@@ -97,15 +98,16 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
     // share, so one station's disk work never delays another's samples.
     let pack_dir = p.pack_dir.clone();
     let pack_toml = p.save_pack.then(|| p.pack.to_toml());
-    let (run_id, dir, sink) = off_thread(move || {
+    let (run_id, dir, sink, lock) = off_thread(move || {
         if let Some(text) = pack_toml {
             std::fs::create_dir_all(&pack_dir).map_err(io_err(&pack_dir))?;
             let path = pack_dir.join(PACK_TOML);
             record::write::atomic_write(&path, text.as_bytes()).map_err(io_err(&path))?;
         }
         let (run_id, dir) = create_run_folder(&pack_dir, &base_id).map_err(io_err(&pack_dir))?;
+        let lock = take_lock(&dir)?;
         let sink = RunLogSink::create(&dir).map_err(io_err(&dir))?;
-        Ok((run_id, dir, sink))
+        Ok((run_id, dir, sink, lock))
     })
     .await?;
     let manifest = Manifest {
@@ -165,6 +167,7 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
         run_id,
         manifest,
         resume: None,
+        lock,
     };
     let bench = Bound {
         links,
@@ -182,6 +185,8 @@ pub struct Recording {
     pub manifest: Manifest,
     /// Where an interrupted run goes on.
     pub resume: Option<engine::ResumePoint>,
+    /// The run's lock, held by this process until the record is finished.
+    pub lock: RunLock,
 }
 
 /// File work (creating, writing and syncing) on a blocking thread, not
@@ -200,11 +205,16 @@ async fn write_manifest(path: &Path, manifest: &Manifest) -> Result<(), RunError
     off_thread(move || write_json(&path, &manifest).map_err(io_err(&path))).await
 }
 
-/// Write the lock naming this process.
-pub fn write_lock(dir: &Path) -> Result<(), RunError> {
-    let path = dir.join(RUN_LOCK);
-    record::write::atomic_write(&path, format!("{}\n", std::process::id()).as_bytes())
-        .map_err(io_err(&path))
+/// Take a run folder's lock: one process drives a run.
+pub fn take_lock(dir: &Path) -> Result<RunLock, RunError> {
+    RunLock::acquire(dir).map_err(|e| match e {
+        LockError::Held { path, holder } => RunError::Input(InputError::NotResumable(format!(
+            "{}: process {holder} is driving this run now ({}); stop it first",
+            dir.display(),
+            path.display()
+        ))),
+        LockError::Io { path, error } => io_err(&path)(error),
+    })
 }
 
 /// Connect to a station, run (or go on with) the plan, record the result.
@@ -226,6 +236,7 @@ pub async fn drive(
         run_id,
         mut manifest,
         resume,
+        lock,
     } = rec;
     attach(p, &dir, &mut links)?;
     let run_json = dir.join(RUN_JSON);
@@ -233,7 +244,6 @@ pub async fn drive(
         let (dir, run_json, manifest) = (dir.clone(), run_json.clone(), manifest.clone());
         let keep = sim.as_ref().map(|s| (s.handle.clone(), s.speed_factor));
         off_thread(move || {
-            write_lock(&dir)?;
             if let Some((handle, speed_factor)) = keep {
                 // The simulated pack keeps its state beside the log: every
                 // 10 bench seconds when paced; every 10 bench minutes at
@@ -259,13 +269,37 @@ pub async fn drive(
             station
         }
         Err(e) => {
-            manifest.status = RunStatus::Aborted;
-            manifest.stop_reason = Some(format!("could not connect: {e}"));
-            manifest.finished_utc = Some(utc_now());
+            if resume.is_some() {
+                // A resume that cannot reach the bench leaves the run as
+                // it was, resumable, with the failed attempt recorded.
+                manifest.status = RunStatus::Interrupted;
+                manifest.resumes.pop();
+                manifest
+                    .failed_resumes
+                    .push(record::manifest::FailedResume {
+                        at_utc: utc_now(),
+                        reason: format!("could not connect: {e}"),
+                    });
+                let mut sink = sink;
+                let _ = record::event::Sink::event(
+                    &mut sink,
+                    &record::event::Event::Warning {
+                        t_s: resume.as_ref().map(|r| r.last_sample_t_s).unwrap_or(0.0),
+                        step: 0,
+                        message: format!(
+                            "a resume could not connect: {e}; the run stays resumable"
+                        ),
+                    },
+                );
+                let _ = off_thread(move || sink.flush().map_err(io_err(Path::new("")))).await;
+            } else {
+                manifest.status = RunStatus::Aborted;
+                manifest.stop_reason = Some(format!("could not connect: {e}"));
+                manifest.finished_utc = Some(utc_now());
+            }
             write_manifest(&run_json, &manifest).await?;
-            let lock = dir.join(RUN_LOCK);
             let _ = off_thread(move || {
-                let _ = std::fs::remove_file(lock);
+                lock.release();
                 Ok(())
             })
             .await;
@@ -336,8 +370,19 @@ pub async fn drive(
         }));
     }
     let p = p.clone();
-    off_thread(move || finish_record_after(&p, &dir, &run_id, manifest, outcome, sim, &writer))
-        .await
+    off_thread(move || {
+        finish_record_after(
+            &p,
+            &dir,
+            &run_id,
+            manifest,
+            outcome,
+            sim,
+            &writer,
+            Some(lock),
+        )
+    })
+    .await
 }
 
 /// How long the end of a run waits for the record's writer to write and

@@ -34,6 +34,7 @@ pub fn finish_record(
         outcome,
         sim,
         &WriterEnd::default(),
+        None,
     )
 }
 
@@ -76,6 +77,7 @@ pub fn finish_record_after(
     mut outcome: RunOutcome,
     sim: Option<SimRun>,
     writer: &WriterEnd,
+    lock: Option<record::write::RunLock>,
 ) -> Result<RunReport, RunError> {
     let run_json = dir.join(RUN_JSON);
     let mut unwritten: Vec<String> = writer.describe().into_iter().collect();
@@ -134,8 +136,13 @@ pub fn finish_record_after(
             unwritten.push(format!("{RUN_JSON}: {e}; in place: {e2}"));
         }
     }
-    let _ = std::fs::remove_file(dir.join(RUN_LOCK));
     let _ = std::fs::remove_file(dir.join(record::RESERVE));
+    match lock {
+        Some(l) => l.release(),
+        None => {
+            let _ = std::fs::remove_file(dir.join(RUN_LOCK));
+        }
+    }
     let summary = match summary {
         Ok(s) => s,
         Err(e) => {

@@ -55,7 +55,6 @@ use record::event::{EndKind, Event};
 use record::import::{stream_log, LogFormat};
 use record::manifest::{Manifest, ResumeRecord};
 use record::read::read_events;
-use record::RUN_LOCK;
 use record::SIM_STATE_JSON;
 use record::{EVENTS_JSONL, PACK_TOML, RUN_JSON, SAMPLES_CSV};
 use std::path::{Path, PathBuf};
@@ -83,27 +82,12 @@ pub struct ResumeSetup {
     pub sim: Option<(SimConfig, Speed)>,
     /// The bench file and station of a real bench.
     pub station: Option<(crate::session::benchfile::StationSpec, PathBuf)>,
+    /// The run's lock, taken before anything else is checked.
+    pub lock: record::write::RunLock,
 }
 
 fn bad(msg: String) -> RunError {
     RunError::Input(InputError::NotResumable(msg))
-}
-
-/// Whether a process with this id is alive (a lock left by a dead one is
-/// stale).
-#[cfg(unix)]
-fn process_alive(pid: i32) -> bool {
-    if pid <= 0 || pid as u32 == std::process::id() {
-        return false;
-    }
-    nix::sys::signal::kill(nix::unistd::Pid::from_raw(pid), None).is_ok()
-}
-
-/// Elsewhere a lock's process cannot be looked up: taken as alive (the
-/// operator removes `run.lock` when no packbench runs the folder).
-#[cfg(not(unix))]
-fn process_alive(pid: i32) -> bool {
-    pid > 0 && pid as u32 != std::process::id()
 }
 
 /// Read a run's `run.json`.
@@ -180,18 +164,9 @@ pub fn prepare(
             )))
         }
     }
-    let lock = dir.join(RUN_LOCK);
-    if let Ok(l) = std::fs::read_to_string(&lock) {
-        if let Ok(pid) = l.trim().parse::<i32>() {
-            if process_alive(pid) {
-                return Err(bad(format!(
-                    "{}: process {pid} is still running this test ({}); stop it first",
-                    dir.display(),
-                    lock.display()
-                )));
-            }
-        }
-    }
+    // One process drives a run: the lock is held from here to the end of
+    // the record (a lock file left by a dead process does not hold).
+    let lock = crate::session::drive::take_lock(dir)?;
     // The pack: its saved spec, else the one the manifest recorded.
     let pack_dir = dir
         .parent()
@@ -292,6 +267,7 @@ pub fn prepare(
         found,
         sim,
         station,
+        lock,
     })
 }
 
@@ -443,6 +419,7 @@ pub async fn execute(
         found,
         sim,
         station,
+        lock,
     } = setup;
     let run_id = manifest.run_id.clone();
     let point = match found {
@@ -463,8 +440,15 @@ pub async fn execute(
                 timing: Timing::default(),
                 zero: Default::default(),
             };
-            return crate::session::finish::finish_record(
-                &prepared, &dir, &run_id, manifest, outcome, None,
+            return crate::session::finish::finish_record_after(
+                &prepared,
+                &dir,
+                &run_id,
+                manifest,
+                outcome,
+                None,
+                &Default::default(),
+                Some(lock),
             );
         }
         Found::GoOn(p) => p,
@@ -505,6 +489,7 @@ pub async fn execute(
         run_id,
         manifest,
         resume: Some(point.clone()),
+        lock,
     };
     let sink = record::write::RunLogSink::append(&dir).map_err(io_err(&dir))?;
     // The simulated pack's kept state: none yet is fine; one newer than

@@ -358,6 +358,17 @@ fn the_console_refuses_what_it_must() {
         let (st, _) = post(a, p, &serde_json::json!({"pack_id": "A"}));
         assert!(st == 400 || st == 404, "{p}: {st}");
     }
+    // Finding 9: a run's report that is a symbolic link to a file outside
+    // the results folder is not served.
+    #[cfg(unix)]
+    {
+        let run = d.join("results/FR-LNK/r1");
+        std::fs::create_dir_all(&run).unwrap();
+        std::os::unix::fs::symlink("/etc/passwd", run.join("report.html")).unwrap();
+        let (st, _, body) = http(a, "GET", "/packs/FR-LNK/runs/r1", &[], b"");
+        assert_eq!(st, 403, "{body}");
+        assert!(!body.contains("root:"));
+    }
     // An oversized body.
     let big = format!("{{\"pack_id\": \"{}\"}}", "x".repeat(100_000));
     let (st, _, _) = http(a, "POST", "/api/bays/1/check", &JSON_POST, big.as_bytes());
@@ -382,6 +393,22 @@ fn the_console_refuses_what_it_must() {
     let bearer = format!("Bearer {t}");
     let (st, _, _) = http(a, "GET", "/api/bays", &[("Authorization", &bearer)], b"");
     assert_eq!(st, 200);
+    // Finding 15: RFC 9110 §11.1, the scheme's name is case-insensitive.
+    for scheme in ["bearer", "BEARER"] {
+        let h = format!("{scheme} {t}");
+        let (st, _, _) = http(a, "GET", "/api/bays", &[("Authorization", &h)], b"");
+        assert_eq!(st, 200, "{scheme}");
+    }
+    // Finding 15: RFC 9112 §3.2, a request with two Host fields is refused.
+    let host = a.replace("0.0.0.0", "127.0.0.1");
+    let (st, _, _) = http(
+        a,
+        "GET",
+        "/api/bays",
+        &[("Host", &host), ("Host", &host), ("Authorization", &bearer)],
+        b"",
+    );
+    assert_eq!(st, 400);
     let (st, head, _) = http(a, "GET", &format!("/?token={t}"), &[], b"");
     assert_eq!(st, 200);
     assert!(

@@ -289,7 +289,8 @@ async fn an_overheating_pack_trips_temperature_max() {
 #[tokio::test]
 async fn a_load_that_stops_answering_ends_in_a_safe_stop() {
     let dir = tempfile::tempdir().unwrap();
-    let p = prepare("procedures/capacity-check.toml", sim_pack(), dir.path());
+    let mut p = prepare("procedures/capacity-check.toml", sim_pack(), dir.path());
+    p.options.safe_stop_hold_s = 1.0;
     let mut cfg = SimConfig::default();
     cfg.faults.link.push("load:no-reply@600s".parse().unwrap());
     let (r, h) = run_sim(&p, &cfg, StopHandle::new()).await;
@@ -304,8 +305,13 @@ async fn a_load_that_stops_answering_ends_in_a_safe_stop() {
         r.outcome.reason
     );
     assert!(!h.source_output_on());
-    // The silent load could not confirm: that is recorded, not hidden.
+    // The silent load could not confirm: that is recorded, not hidden,
+    // and after the hold it is named as possibly on (exit 4).
     assert!(!r.outcome.load_off_confirmed);
+    assert_eq!(r.outcome.may_be_on.len(), 1, "{:?}", r.outcome.may_be_on);
+    assert!(r.outcome.may_be_on[0].0.contains("load"));
+    assert_eq!(r.summary.outputs_may_be_on.len(), 1);
+    assert_eq!(packbench::cli::exit::ExitCode::of_report(&r).code(), 4);
     let events = std::fs::read_to_string(r.run_dir.join("events.jsonl")).unwrap();
     assert!(events.contains("\"instrument_error\""));
     assert!(events.contains("timeout_retry"));
@@ -314,7 +320,8 @@ async fn a_load_that_stops_answering_ends_in_a_safe_stop() {
 #[tokio::test]
 async fn garbage_replies_are_errors_never_zeros() {
     let dir = tempfile::tempdir().unwrap();
-    let p = prepare("procedures/capacity-check.toml", sim_pack(), dir.path());
+    let mut p = prepare("procedures/capacity-check.toml", sim_pack(), dir.path());
+    p.options.safe_stop_hold_s = 1.0;
     let mut cfg = SimConfig::default();
     cfg.faults.link.push("load:garbage@100s".parse().unwrap());
     let (r, h) = run_sim(&p, &cfg, StopHandle::new()).await;

@@ -147,9 +147,12 @@ fn absurd_setpoints_are_refused_with_their_location() {
         ("  kind = \"charge\"\n  current = \"1A\"\n  voltage = \"1000000V\"\n  ends = [\"time > 1h\"]", "outside the envelope"),
         ("  kind = \"charge\"\n  current = \"1A\"\n  voltage = \"1MV\"\n  ends = [\"time > 1h\"]", "unknown unit"),
         ("  kind = \"discharge\"\n  current = \"50A\"\n  ends = [\"time > 1h\"]", "outside the envelope"),
-        ("  kind = \"discharge\"\n  current = \"1A\"\n  ends = [\"time > -1h\"]", "h.toml:"),
+        // Finding 15: a negative time was refused as "cannot end" alone,
+        // or taken as a 0 s step beside another end.
+        ("  kind = \"discharge\"\n  current = \"1A\"\n  ends = [\"time > -1h\"]", "negative"),
+        ("  kind = \"discharge\"\n  current = \"1A\"\n  ends = [\"time > -1h\", \"voltage < 3.0V/cell\"]", "negative"),
         ("  kind = \"pulse\"\n  levels = [{ current = \"-1e9A\", duration = \"1s\" }]", "outside the envelope"),
-        ("  kind = \"pulse\"\n  levels = [{ current = \"-1A\", duration = \"-1s\" }]", "duration must be above zero"),
+        ("  kind = \"pulse\"\n  levels = [{ current = \"-1A\", duration = \"-1s\" }]", "negative"),
     ] {
         let e = refused(&step(values));
         assert!(e.contains(needle), "{values}: {e}");
@@ -161,6 +164,23 @@ fn absurd_setpoints_are_refused_with_their_location() {
             .replace("voltage_max = \"4.25V/cell\"", "voltage_max = \"1000000V\""),
     );
     assert!(e.contains("beyond what a li-ion cell"), "{e}");
+    // Finding 15: temperature limits that switch the limit off.
+    for (from, to) in [
+        (
+            "temperature_max = \"55degC\"",
+            "temperature_max = \"1e6degC\"",
+        ),
+        (
+            "temperature_max = \"55degC\"",
+            "temperature_max = \"55degC\"\ntemperature_min = \"-500degC\"",
+        ),
+    ] {
+        let text = step("  kind = \"rest\"\n  ends = [\"time > 1s\"]");
+        assert!(text.contains(from));
+        let e = refused(&text.replace(from, to));
+        assert!(e.contains("beyond any plausible temperature limit"), "{e}");
+        assert!(e.contains("h.toml:"), "{e}");
+    }
 }
 
 /// An instrument that answers every query with one fixed reply.

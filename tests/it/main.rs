@@ -26,6 +26,8 @@ mod index;
 mod layers;
 #[cfg(unix)]
 mod links;
+#[cfg(unix)]
+mod locks;
 mod procedures;
 mod properties;
 mod quick;

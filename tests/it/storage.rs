@@ -264,3 +264,32 @@ async fn a_writer_that_stalls_past_its_bound_stops_the_run_safely() {
     let end = q.finish(Duration::from_secs(5));
     assert!(end.describe().unwrap().contains("written nothing"));
 }
+
+/// Finding 9: a pack folder that is a symbolic link wrote the run outside
+/// `results/`. Now the run is refused before anything is created, and
+/// nothing appears where the link points.
+#[cfg(unix)]
+#[test]
+fn a_pack_folder_that_is_a_link_is_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let outside = d.join("elsewhere");
+    std::fs::create_dir_all(&outside).unwrap();
+    std::fs::create_dir_all(d.join("results")).unwrap();
+    std::os::unix::fs::symlink(&outside, d.join("results/LINKED")).unwrap();
+    let proc = d.join("rest.toml");
+    std::fs::write(&proc, REST).unwrap();
+    let out = std::process::Command::new(crate::util::BIN)
+        .arg("run")
+        .arg(&proc)
+        .args(["--sim", "--pack", "LINKED", "--quiet"])
+        .args(["--chemistry", "li-ion", "--series", "4", "--rated", "2Ah"])
+        .arg("--results")
+        .arg(d.join("results"))
+        .output()
+        .unwrap();
+    let err = crate::util::text(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{err}");
+    assert!(err.contains("symbolic link"), "{err}");
+    assert_eq!(std::fs::read_dir(&outside).unwrap().count(), 0);
+}

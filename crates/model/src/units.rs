@@ -34,6 +34,35 @@ pub enum UnitError {
     },
     #[error("'{text}' is not a finite number")]
     NotFinite { text: String },
+    #[error("'{text}' is negative: {what} must be zero or more")]
+    Negative { text: String, what: &'static str },
+    #[error("'{text}' is beyond any plausible {what} ({range})")]
+    Implausible {
+        text: String,
+        what: &'static str,
+        range: &'static str,
+    },
+}
+
+/// The temperatures any cell maker's operating range falls within
+/// (common practice: datasheets span about −40 °C to 60–75 °C; nothing
+/// is charged or discharged above 80 °C). A limit outside it is a typing
+/// error that would switch the limit off.
+pub const TEMPERATURE_PLAUSIBLE_C: (f64, f64) = (-40.0, 80.0);
+
+/// A temperature limit of an envelope or a sensor: within
+/// [`TEMPERATURE_PLAUSIBLE_C`].
+pub fn temperature_limit_c(text: &str) -> Result<f64, UnitError> {
+    let c = temperature_c(text)?;
+    let (lo, hi) = TEMPERATURE_PLAUSIBLE_C;
+    if !(lo..=hi).contains(&c) {
+        return Err(UnitError::Implausible {
+            text: text.trim().to_string(),
+            what: "temperature limit",
+            range: "-40 to 80 degC",
+        });
+    }
+    Ok(c)
 }
 
 const KNOWN: &str = "V mV kV V/cell mV/cell A mA C s ms min h (and 1h30m) Ah mAh Wh kWh mWh \
@@ -368,6 +397,10 @@ pub fn current(text: &str) -> Result<CurrentSpec, UnitError> {
 pub fn duration(text: &str) -> Result<f64, UnitError> {
     const E: &str = "a duration (s, min, h, or 1h30m)";
     match parse_with_hint(text, "30min or 1h30m")? {
+        Quantity::Seconds(s) if s < 0.0 => Err(UnitError::Negative {
+            text: text.trim().to_string(),
+            what: "a duration",
+        }),
         Quantity::Seconds(s) => Ok(s),
         q => Err(wrong(text, &q, E)),
     }

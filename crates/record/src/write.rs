@@ -11,11 +11,8 @@ use serde::Serialize;
 use std::fs::{self, File, OpenOptions};
 use std::io::{self, BufWriter, Write};
 use std::path::{Path, PathBuf};
-use std::time::Duration;
 
-/// How often handed-over rows are synced to the disk (wall clock). Rows
-/// reach the operating system as soon as the writer's queue is empty.
-pub const FLUSH_INTERVAL: Duration = Duration::from_secs(1);
+pub use crate::writer::FLUSH_INTERVAL;
 
 /// Folders synced by [`sync_dir`] in this process, for tests that check a
 /// write reached its folder's entry.
@@ -58,18 +55,191 @@ pub fn sync_dir(dir: &Path) -> io::Result<()> {
 /// Write `bytes` to `path` through a temporary file, a sync and a rename,
 /// then sync the folder: after a crash or a power cut the file is either
 /// the old one or the new one, and its name is on the disk.
+///
+/// The temporary file's name is this process's and this write's own
+/// (`.run.json.<pid>.<n>.tmp`), so two processes, or two threads, writing
+/// the same file never share one; it is made new (never follows a link
+/// left at that name) and removed if the write fails.
 pub fn atomic_write(path: &Path, bytes: &[u8]) -> io::Result<()> {
-    let tmp = path.with_extension(format!(
-        "{}.tmp",
-        path.extension().and_then(|e| e.to_str()).unwrap_or("")
-    ));
-    {
-        let mut f = File::create(&tmp)?;
+    static SEQ: std::sync::atomic::AtomicU64 = std::sync::atomic::AtomicU64::new(0);
+    let n = SEQ.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+    let name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    let tmp = path.with_file_name(format!(".{name}.{}.{n}.tmp", std::process::id()));
+    let written = (|| {
+        let mut f = OpenOptions::new().write(true).create_new(true).open(&tmp)?;
         f.write_all(bytes)?;
         f.sync_all()?;
+        fs::rename(&tmp, path)
+    })();
+    if let Err(e) = written {
+        let _ = fs::remove_file(&tmp);
+        return Err(e);
     }
-    fs::rename(&tmp, path)?;
     sync_dir(path.parent().unwrap_or(Path::new(".")))
+}
+
+/// Refuse a path below `root` that passes through a symbolic link (a
+/// pack or run folder, or a file, that is a link could lead a write or a
+/// served page outside the results folder). `root` itself may be a link:
+/// the operator chose it. Parts that do not exist yet are fine.
+pub fn refuse_links_below(root: &Path, path: &Path) -> io::Result<()> {
+    let rel = path.strip_prefix(root).map_err(|_| {
+        io::Error::new(
+            io::ErrorKind::PermissionDenied,
+            format!("{} is outside {}", path.display(), root.display()),
+        )
+    })?;
+    let mut at = root.to_path_buf();
+    for part in rel.components() {
+        match part {
+            std::path::Component::Normal(p) => at.push(p),
+            _ => {
+                return Err(io::Error::new(
+                    io::ErrorKind::PermissionDenied,
+                    format!(
+                        "{}: only plain names below {}",
+                        path.display(),
+                        root.display()
+                    ),
+                ))
+            }
+        }
+        match fs::symlink_metadata(&at) {
+            Ok(m) if m.file_type().is_symlink() => return Err(io::Error::new(
+                io::ErrorKind::PermissionDenied,
+                format!(
+                    "{} is a symbolic link: packbench writes and serves only what lies inside {}",
+                    at.display(),
+                    root.display()
+                ),
+            )),
+            Ok(_) => {}
+            Err(e) if e.kind() == io::ErrorKind::NotFound => return Ok(()),
+            Err(e) => return Err(e),
+        }
+    }
+    Ok(())
+}
+
+/// Read a file below `root` as text, refusing any symbolic link on the
+/// way ([`refuse_links_below`]); on Unix the file itself is opened with
+/// `O_NOFOLLOW`, so a link swapped in after the check is refused too.
+pub fn read_inside(root: &Path, path: &Path) -> io::Result<String> {
+    use std::io::Read;
+    refuse_links_below(root, path)?;
+    let mut o = OpenOptions::new();
+    o.read(true);
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::OpenOptionsExt;
+        o.custom_flags(libc::O_NOFOLLOW);
+    }
+    let mut s = String::new();
+    o.open(path)?.read_to_string(&mut s)?;
+    Ok(s)
+}
+
+/// A run folder's lock: an exclusive OS lock (`flock` on Unix) on
+/// `run.lock`, held for as long as one process drives the run. It goes
+/// with the process whatever way that ends, so a lock file left by a
+/// killed process does not hold; the file names the holder's process id
+/// for the operator.
+#[derive(Debug)]
+pub struct RunLock {
+    file: File,
+    path: PathBuf,
+}
+
+/// Why a run's lock could not be taken.
+#[derive(Debug, thiserror::Error)]
+pub enum LockError {
+    /// Another process holds it (its id as the file says).
+    #[error("{path}: process {holder} is driving this run now")]
+    Held { path: PathBuf, holder: String },
+    #[error("{path}: {error}")]
+    Io { path: PathBuf, error: io::Error },
+}
+
+impl RunLock {
+    /// Take the lock of the run folder `dir`, or say who holds it.
+    pub fn acquire(dir: &Path) -> Result<RunLock, LockError> {
+        let path = dir.join(crate::RUN_LOCK);
+        let io = |error| LockError::Io {
+            path: path.clone(),
+            error,
+        };
+        // A lock whose file was removed (by its holder's release) while
+        // this process opened it is taken again on the new file.
+        for _ in 0..8 {
+            let mut file = OpenOptions::new()
+                .create(true)
+                .truncate(false)
+                .read(true)
+                .write(true)
+                .open(&path)
+                .map_err(io)?;
+            match file.try_lock() {
+                Ok(()) => {}
+                Err(fs::TryLockError::WouldBlock) => {
+                    let holder = fs::read_to_string(&path).unwrap_or_default();
+                    let holder = holder.trim();
+                    return Err(LockError::Held {
+                        path,
+                        holder: if holder.is_empty() {
+                            "?".into()
+                        } else {
+                            holder.to_string()
+                        },
+                    });
+                }
+                Err(fs::TryLockError::Error(e)) => return Err(io(e)),
+            }
+            if !same_file(&file, &path) {
+                continue;
+            }
+            file.set_len(0).map_err(io)?;
+            file.write_all(format!("{}\n", std::process::id()).as_bytes())
+                .map_err(io)?;
+            file.sync_all().map_err(io)?;
+            return Ok(RunLock { file, path });
+        }
+        Err(io(io::Error::other("the lock file keeps changing")))
+    }
+
+    /// Whether another process drives the run in `dir` now.
+    pub fn is_held(dir: &Path) -> bool {
+        match File::open(dir.join(crate::RUN_LOCK)) {
+            Ok(f) => matches!(f.try_lock_shared(), Err(fs::TryLockError::WouldBlock)),
+            Err(_) => false,
+        }
+    }
+
+    /// Remove the lock file, then let go of the lock.
+    pub fn release(self) {
+        let _ = fs::remove_file(&self.path);
+        drop(self.file);
+    }
+}
+
+/// Whether an open file is still the one at `path` (not removed or
+/// replaced since it was opened).
+fn same_file(f: &File, path: &Path) -> bool {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::MetadataExt;
+        match (f.metadata(), fs::metadata(path)) {
+            (Ok(a), Ok(b)) => a.dev() == b.dev() && a.ino() == b.ino(),
+            _ => false,
+        }
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = (f, path);
+        true
+    }
 }
 
 /// Write a value as pretty JSON, atomically.

@@ -8,7 +8,6 @@
 //! checking its limits until the outputs are off.
 
 use crate::event::{Event, Sink};
-use crate::write::FLUSH_INTERVAL;
 use model::groups::GroupSample;
 use model::sample::Sample;
 use std::io;
@@ -16,6 +15,10 @@ use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
 use std::sync::mpsc;
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
+
+/// How often handed-over rows are synced to the disk (wall clock). Rows
+/// reach the operating system as soon as the writer's queue is empty.
+pub const FLUSH_INTERVAL: Duration = Duration::from_secs(1);
 
 /// How long the writer may go without writing anything while rows wait
 /// for it before the run stops safely. A healthy disk syncs in well under

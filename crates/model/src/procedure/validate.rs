@@ -130,11 +130,11 @@ fn build_envelope(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<E
         .and_then(|(t, v)| positive(cx, t, v, "current_max"));
     let tmax = tmax_t
         .as_ref()
-        .and_then(|t| cx.unit(t, units::temperature_c));
+        .and_then(|t| cx.unit(t, units::temperature_limit_c));
     let tmin = env
         .temperature_min
         .as_ref()
-        .and_then(|t| cx.unit(t, units::temperature_c));
+        .and_then(|t| cx.unit(t, units::temperature_limit_c));
     let charge_max = match &env.charge_max {
         Some(t) => cx
             .unit(t, units::charge)
