@@ -342,7 +342,7 @@ pub fn run_demo(out: &Path) -> Result<DemoOutcome, DemoError> {
         pack_reports.push(path);
         histories.push(h);
     }
-    let fleet = history::fleet(
+    let (fleet, _) = history::fleet(
         &results,
         today,
         &analysis::fade::schedule::Schedule::interval(92),

@@ -111,6 +111,7 @@ pub fn cmd_index(a: IndexArgs) -> anyhow::Result<ExitCode> {
     let t0 = std::time::Instant::now();
     let mut ix = record::index::Index::open(&a.results)?;
     let r = ix.refresh(&a.results)?;
+    say_skipped(&r.skipped);
     println!(
         "index {}: {} packs ({} read), {} runs read, {} runs and {} packs dropped, in {:.2} s",
         a.results.join(record::index::INDEX_SQLITE).display(),
@@ -122,6 +123,14 @@ pub fn cmd_index(a: IndexArgs) -> anyhow::Result<ExitCode> {
         t0.elapsed().as_secs_f64()
     );
     Ok(ExitCode::Ok)
+}
+
+/// Name each pack left out of a fleet or an index (its records could not
+/// be read), on the error stream.
+fn say_skipped(skipped: &[(String, String)]) {
+    for (id, why) in skipped {
+        eprintln!("warning: pack {id} left out: {why}");
+    }
 }
 
 /// `packbench report`.
@@ -202,9 +211,13 @@ pub fn cmd_fleet(a: FleetArgs) -> anyhow::Result<ExitCode> {
         from_db = Some(hs);
         f
     } else if a.walk {
-        history::fleet(&a.results, today, &schedule, threshold)?
+        let (f, skipped) = history::fleet(&a.results, today, &schedule, threshold)?;
+        say_skipped(&skipped);
+        f
     } else {
-        record::index::fleet(&a.results, today, &schedule, threshold)?.0
+        let (f, r) = record::index::fleet(&a.results, today, &schedule, threshold)?;
+        say_skipped(&r.skipped);
+        f
     };
     if let Some(path) = &a.html {
         let hs = match from_db {

@@ -107,6 +107,7 @@ fn resume_one(a: &ResumeArgs, run_dir: &Path) -> ExitCode {
             ),
         }
     }
+    let _awake = crate::cli::run::stay_awake();
     let board = crate::session::live::Board::new("resume", &setup.prepared.pack_id);
     let task: StationTask = Box::new({
         let board = board.clone();
@@ -178,6 +179,7 @@ fn resume_bench(a: &ResumeArgs) -> ExitCode {
             eprintln!("resuming {name}: {}", s.dir.display());
         }
     }
+    let _awake = crate::cli::run::stay_awake();
     let names: Vec<(String, String)> = setups
         .iter()
         .map(|(n, s)| (n.clone(), s.prepared.pack_id.clone()))

@@ -275,6 +275,11 @@ pub fn cmd_run(a: RunArgs) -> ExitCode {
             }
         }
     }
+    // A paced run on a live bench: the computer must not sleep.
+    let paced = jobs
+        .iter()
+        .any(|j| j.speed != Speed::Max || j.station.is_some());
+    let _awake = paced.then(|| stay_awake());
     let several = jobs.len() > 1;
     let jobs = std::rc::Rc::new(jobs);
     let boards = jobs.iter().map(|j| j.board.clone()).collect();
@@ -485,6 +490,16 @@ pub fn print_result(r: &crate::session::request::RunReport, quiet: bool) {
             shell_word(&r.run_dir.display().to_string())
         );
     }
+}
+
+/// Ask the OS not to suspend while this process runs a test; say so when
+/// it cannot be asked.
+pub fn stay_awake() -> crate::session::awake::StayAwake {
+    let (g, note) = crate::session::awake::StayAwake::ask("a battery test is running");
+    if let Some(n) = note {
+        eprintln!("note: {n}");
+    }
+    g
 }
 
 /// What the operator must act on, on the error stream whatever `--quiet`

@@ -150,6 +150,7 @@ pub fn console(a: &ServeArgs, bound: SocketAddr) -> Result<Console, RunError> {
             .then(|| crate::console::loopback_hosts(bound)),
         emergency: crate::session::emergency::Emergency::default(),
         locks,
+        closing: tokio::sync::watch::channel(false).0,
     })
 }
 
@@ -175,12 +176,24 @@ pub fn cmd_serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
             println!("access token: {t}");
             println!("open http://{addr}/?token={t} once in each browser (kept in a cookie), or send Authorization: Bearer {t}");
         }
+        // Bays run tests for as long as the console lives.
+        let _awake = crate::cli::run::stay_awake();
         let app = crate::console::router(console.clone());
         let stopping = console.clone();
-        axum::serve(listener, app)
-            .with_graceful_shutdown(async move { shutdown(stopping).await })
-            .await
-            .context("serving")?;
+        let mut closed = console.closing.subscribe();
+        let listener = crate::console::timed::TimedListener::new(listener);
+        let server = axum::serve(listener, app)
+            .with_graceful_shutdown(async move { shutdown(stopping).await });
+        // Once the bays are stopped, connections that do not close by
+        // themselves (a browser holding a stream open) get a few seconds.
+        let bounded = async move {
+            let _ = closed.wait_for(|c| *c).await;
+            tokio::time::sleep(crate::console::timed::CLOSE_GRACE).await;
+        };
+        tokio::select! {
+            r = server => r.context("serving")?,
+            _ = bounded => eprintln!("closing connections that stayed open"),
+        }
         Ok::<(), anyhow::Error>(())
     })?;
     Ok(ExitCode::Ok)
@@ -212,4 +225,6 @@ async fn shutdown(c: Arc<Console>) {
     while c.bays.iter().any(|b| b.busy()) {
         tokio::time::sleep(std::time::Duration::from_millis(100)).await;
     }
+    // Every live stream ends; the server then waits for its connections.
+    let _ = c.closing.send(true);
 }

@@ -42,13 +42,24 @@ pub async fn bays(State(c): State<Arc<Console>>) -> Json<Vec<bays::BayView>> {
 pub async fn stream(
     State(c): State<Arc<Console>>,
 ) -> Sse<impl futures::Stream<Item = Result<Event, Infallible>>> {
-    let s = futures::stream::unfold((c, true), |(c, first)| async move {
+    let closing = c.closing.subscribe();
+    let s = futures::stream::unfold((c, true, closing), |(c, first, mut closing)| async move {
+        if *closing.borrow() {
+            return None;
+        }
         if !first {
-            tokio::time::sleep(STREAM_EVERY).await;
+            tokio::select! {
+                _ = tokio::time::sleep(STREAM_EVERY) => {}
+                // The console is closing: the stream ends.
+                _ = closing.wait_for(|c| *c) => return None,
+            }
         }
         let views: Vec<bays::BayView> = c.bays.iter().map(|b| b.view()).collect();
         let data = serde_json::to_string(&views).unwrap_or_else(|_| "[]".into());
-        Some((Ok(Event::default().event("bays").data(data)), (c, false)))
+        Some((
+            Ok(Event::default().event("bays").data(data)),
+            (c, false, closing),
+        ))
     });
     Sse::new(s).keep_alive(KeepAlive::default())
 }

@@ -17,6 +17,7 @@ pub mod api;
 pub mod bays;
 pub mod pages;
 pub mod security;
+pub mod timed;
 
 use crate::session::emergency::Emergency;
 use bays::Bay;
@@ -40,6 +41,8 @@ pub struct Console {
     pub emergency: Emergency,
     /// The station locks this process holds for its lifetime.
     pub locks: Vec<Box<dyn std::any::Any + Send + Sync>>,
+    /// Set when the console is closing: every live stream ends.
+    pub closing: tokio::sync::watch::Sender<bool>,
 }
 
 impl Console {

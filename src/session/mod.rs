@@ -2,6 +2,7 @@
 //! instrument is touched), open the links, drive the engine, record, resume
 //! an interrupted run, and the emergency switch-off.
 
+pub mod awake;
 pub mod benchfile;
 pub mod drive;
 pub mod emergency;

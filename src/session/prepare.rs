@@ -165,11 +165,11 @@ pub fn check_ranges(p: &LoadedProcedure, source: &Profile, load: &Profile) -> Re
 
 /// Validate a request completely. Creates nothing and talks to nothing.
 pub fn prepare(req: &RunRequest) -> Result<Prepared, RunError> {
+    let (pack, save_pack, pack_note) = resolve_pack(&req.pack_id, &req.pack, &req.results)?;
     // The run is written inside the results folder, never through a link.
     let pack_dir = req.results.join(&req.pack_id);
     record::write::refuse_links_below(&req.results, &pack_dir.join(record::PACK_TOML))
         .map_err(|e| RunError::arguments(e.to_string()))?;
-    let (pack, save_pack, pack_note) = resolve_pack(&req.pack_id, &req.pack, &req.results)?;
     let procedure = procedure::load(&req.procedure, &pack)?;
     check_ranges(
         &procedure,

@@ -565,3 +565,57 @@ fn a_bay_shows_its_lowest_and_highest_group() {
     assert!(wait_until(Duration::from_secs(20), || bay(a, "1")["state"]
         == "interrupted"));
 }
+
+/// Finding 10: the console never exited after Ctrl-C while a browser tab
+/// held the live stream, and a connection could hold a request open
+/// forever. Now Ctrl-C ends every stream (and the server waits a few
+/// seconds at most for connections that stay open), and a request not
+/// read within 10 s of its first byte is cut off.
+#[cfg(unix)]
+#[test]
+fn ctrl_c_ends_the_console_with_a_stream_open_and_slow_requests_are_cut() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    quick_procedures(d);
+    let mut s = serve(d, &["--sim", "1", "--listen", "127.0.0.1:0"]);
+    // A request that never finishes its headers.
+    let mut slow = TcpStream::connect(&s.addr).unwrap();
+    slow.write_all(b"GET /api/bays HTTP/1.1\r\nHost: ").unwrap();
+    // The live stream, open and reading.
+    let mut live = TcpStream::connect(&s.addr).unwrap();
+    live.set_read_timeout(Some(Duration::from_secs(20)))
+        .unwrap();
+    write!(
+        live,
+        "GET /stream HTTP/1.1\r\nHost: {}\r\nAccept: text/event-stream\r\n\r\n",
+        s.addr
+    )
+    .unwrap();
+    let mut first = [0u8; 64];
+    assert!(live.read(&mut first).unwrap() > 0, "the stream sends");
+    // The slow request is cut off within its 10 s (and not long after).
+    slow.set_read_timeout(Some(Duration::from_secs(20)))
+        .unwrap();
+    let t = std::time::Instant::now();
+    let mut rest = Vec::new();
+    let _ = slow.read_to_end(&mut rest);
+    let cut = t.elapsed().as_secs_f64();
+    assert!((8.0..16.0).contains(&cut), "cut after {cut:.1} s");
+    // Ctrl-C with the stream still open: the console ends.
+    signal(&s.child, libc::SIGINT);
+    let t = std::time::Instant::now();
+    let mut code = None;
+    while t.elapsed() < Duration::from_secs(15) {
+        if let Some(st) = s.child.try_wait().unwrap() {
+            code = Some(st);
+            break;
+        }
+        std::thread::sleep(Duration::from_millis(50));
+    }
+    let st = code.expect("the console ends after Ctrl-C with a stream open");
+    assert!(st.success(), "{st:?}");
+    // The stream ended too (end of file, not a timeout).
+    let mut tail = Vec::new();
+    let r = live.read_to_end(&mut tail);
+    assert!(r.is_ok(), "{r:?}");
+}

@@ -384,6 +384,7 @@ async fn step_transitions_switch_the_old_instrument_off_first() {
     let cfg = SimConfig::ideal();
     let links = sim::build(&p.pack, &cfg, Arc::clone(&c));
     let h = links.handle.clone();
+    h.keep_all_traffic();
     packbench::session::run(
         packbench::session::Session::new(
             &p,
@@ -398,8 +399,8 @@ async fn step_transitions_switch_the_old_instrument_off_first() {
     )
     .await
     .unwrap();
-    let src = h.source_traffic.lock().unwrap().clone();
-    let load = h.load_traffic.lock().unwrap().clone();
+    let src = h.source_traffic.lock().unwrap().last.clone();
+    let load = h.load_traffic.lock().unwrap().last.clone();
     assert!(src.iter().any(|m| m == "OUTP ON"));
     assert!(load.iter().any(|m| m == "INP ON"));
     // The simulated bench counts every moment both were on together.

@@ -172,7 +172,7 @@ fn procedure(limit: &str, value: &str, step: &str) -> String {
         ("voltage_max", "4.45V/cell"),
         ("voltage_min", "2.0V/cell"),
         ("current_max", "3C"),
-        ("temperature_max", "90degC"),
+        ("temperature_max", "80degC"),
     ];
     match env.iter_mut().find(|(k, _)| *k == limit) {
         Some(e) => e.1 = value,

@@ -299,7 +299,8 @@ fn demo_fleet_projections_match_the_simulated_ageing() {
         &analysis::fade::schedule::Schedule::interval(92),
         80.0,
     )
-    .unwrap();
+    .unwrap()
+    .0;
     assert_eq!(again, out.fleet);
 }
 

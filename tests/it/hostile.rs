@@ -379,6 +379,7 @@ fn no_setting_sent_is_outside_the_envelope() {
         let clock: Arc<dyn Clock> = SimClock::new();
         let links = sim::build(&p.pack, &cfg, Arc::clone(&clock));
         let h = links.handle.clone();
+        h.keep_all_traffic();
         rt.block_on(packbench::session::run(
             packbench::session::Session::new(
                 &p,
@@ -395,7 +396,7 @@ fn no_setting_sent_is_outside_the_envelope() {
         let env = &p.procedure.plan.envelope;
         let mut settings = 0;
         for traffic in [&h.source_traffic, &h.load_traffic] {
-            for m in traffic.lock().unwrap().iter() {
+            for m in traffic.lock().unwrap().last.iter() {
                 for part in m.split(';') {
                     let part = part.trim().trim_start_matches(':');
                     let Some((head, value)) = part.split_once(' ') else {
@@ -492,4 +493,134 @@ fn every_input_file_is_read_under_the_size_cap() {
     .unwrap();
     let out = packbench(&["fade", "CAP-1", "--results", results.to_str().unwrap()]);
     refused_as_too_large(&out, "pack.toml");
+}
+
+/// `packbench analyze` on a log, bounded in time by a wait that kills it:
+/// (exit code, error stream); `None` when it had to be killed.
+fn analyze_within(log: &Path, limit: Duration) -> Option<(i32, String)> {
+    let mut child = std::process::Command::new(BIN)
+        .arg("analyze")
+        .arg(log)
+        .args(["--chemistry", "li-ion", "--series", "4", "--rated", "2Ah"])
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    let t = Instant::now();
+    while t.elapsed() < limit {
+        if let Some(st) = child.try_wait().unwrap() {
+            let mut err = String::new();
+            use std::io::Read;
+            let _ = child.stderr.take().unwrap().read_to_string(&mut err);
+            return Some((st.code().unwrap_or(-1), err));
+        }
+        std::thread::sleep(Duration::from_millis(20));
+    }
+    let _ = child.kill();
+    let _ = child.wait();
+    None
+}
+
+/// Finding 8: hostile logs hung or exhausted memory: a 2-row log with
+/// t = 1e9 (a grid bin per 0.1 % of capacity up to an enormous charge),
+/// one voltage of 65535 among 100 rows (a million voltage bins), a
+/// voltage of 1e7…1e308 (gigabytes of bins), a current of −1e308 (an
+/// infinite charge written as null). Now every curve is bounded by a
+/// fixed count, and values beyond a stated plausibility bound (±2000 V,
+/// ±10 000 A, ±300 degC, ±1e10 s) are refused with file:line:column.
+#[test]
+fn hostile_logs_neither_hang_nor_exhaust_memory() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let head = "time_s,voltage_v,current_a\n";
+    // A time leap of 1e9 s at 1 A: read (it is a plausible number) and
+    // analysed in bounded time.
+    let leap = write(d, "leap.csv", &format!("{head}0,16.0,-1\n1e9,15.9,-1\n"));
+    let r = analyze_within(&leap, Duration::from_secs(30)).expect("analyze ends");
+    assert!(r.0 == 0 || r.0 == 2, "{r:?}");
+    // Values beyond the bounds: located errors, in bounded time.
+    let mut rows = String::from(head);
+    for k in 0..100 {
+        let v = if k == 50 { "65535" } else { "15.5" };
+        rows.push_str(&format!("{k},{v},-1\n"));
+    }
+    for (name, text, at) in [
+        ("volts.csv", rows, ":52:2:"),
+        ("huge.csv", format!("{head}0,16,-1\n1,1e7,-1\n"), ":3:2:"),
+        ("max.csv", format!("{head}0,16,-1\n1,1e308,-1\n"), ":3:2:"),
+        (
+            "amps.csv",
+            format!("{head}0,16,-1\n1,15.9,-1e308\n"),
+            ":3:3:",
+        ),
+        (
+            "hot.csv",
+            format!("time_s,voltage_v,current_a,temperature_c\n0,16,-1,25\n1,15.9,-1,1e6\n"),
+            ":3:4:",
+        ),
+        (
+            "time.csv",
+            format!("{head}0,16,-1\n1e300,15.9,-1\n"),
+            ":3:1:",
+        ),
+    ] {
+        let log = write(d, name, &text);
+        let (code, err) = analyze_within(&log, Duration::from_secs(30))
+            .unwrap_or_else(|| panic!("{name}: analyze did not end"));
+        assert_eq!(code, 2, "{name}: {err}");
+        assert!(err.contains(at), "{name}: {err}");
+        assert!(err.contains("beyond any plausible"), "{name}: {err}");
+    }
+}
+
+/// Finding 8: one pack whose summary cannot be read (a charge written as
+/// null) made `fleet` and `index` fail on the whole results folder. Now
+/// the pack is named and left out, and the others are listed.
+#[test]
+fn fleet_and_index_leave_out_an_unreadable_pack_and_go_on() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let results = d.join("results");
+    for id in ["GOOD-1", "BAD-1"] {
+        let out = std::process::Command::new(BIN)
+            .args([
+                "run",
+                "procedures/capacity-check.toml",
+                "--sim",
+                "--pack",
+                id,
+                "--quiet",
+            ])
+            .arg("--results")
+            .arg(&results)
+            .output()
+            .unwrap();
+        assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    }
+    let bad_run = std::fs::read_dir(results.join("BAD-1"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .find(|p| p.is_dir())
+        .unwrap();
+    let s = std::fs::read_to_string(bad_run.join("summary.json")).unwrap();
+    let broken = s.replacen("\"samples\":", "\"samples\": null, \"x\":", 1);
+    assert_ne!(s, broken);
+    std::fs::write(bad_run.join("summary.json"), broken).unwrap();
+    for args in [
+        &["fleet", "--walk"][..],
+        &["fleet"][..],
+        &["index", "--rebuild"][..],
+    ] {
+        let out = std::process::Command::new(BIN)
+            .args(args)
+            .arg(&results)
+            .output()
+            .unwrap();
+        let (o, e) = (text(&out.stdout), text(&out.stderr));
+        assert_eq!(out.status.code(), Some(0), "{args:?}: {e}");
+        assert!(e.contains("pack BAD-1 left out"), "{args:?}: {e}");
+        if args[0] == "fleet" {
+            assert!(o.contains("GOOD-1"), "{args:?}: {o}");
+        }
+    }
 }

@@ -51,7 +51,9 @@ fn today() -> chrono::NaiveDate {
 }
 
 fn walk(results: &Path) -> analysis::fade::fleet::Fleet {
-    record::history::fleet(results, today(), &Schedule::interval(92), 80.0).unwrap()
+    record::history::fleet(results, today(), &Schedule::interval(92), 80.0)
+        .unwrap()
+        .0
 }
 
 fn indexed(results: &Path) -> (analysis::fade::fleet::Fleet, record::index::Refreshed) {

@@ -777,7 +777,7 @@ fn ctrl_c_stops_every_station_of_a_bench_and_a_live_run_is_not_resumed() {
         .unwrap();
     assert_eq!(out.status.code(), Some(2));
     assert!(
-        String::from_utf8_lossy(&out.stderr).contains("is still running this test"),
+        String::from_utf8_lossy(&out.stderr).contains("is driving this run now"),
         "{}",
         String::from_utf8_lossy(&out.stderr)
     );

@@ -39,13 +39,18 @@ pub fn incremental_capacity(curve: &[(f64, f64)], bin_v: f64) -> Vec<(f64, f64)>
     let mut edges: Vec<(f64, f64)> = Vec::new(); // (edge voltage, charge)
     let mut best = key(curve[0].1);
     let mut next_edge = ((best / bin_v).floor() + 1.0) * bin_v;
-    for w in curve.windows(2) {
+    'walk: for w in curve.windows(2) {
         let (q0, v0) = (w[0].0, key(w[0].1));
         let (q1, v1) = (w[1].0, key(w[1].1));
         if v1 <= best {
             continue;
         }
         while v1 >= next_edge - 1e-12 {
+            if edges.len() >= MAX_BINS {
+                // Bounded by a fixed count, never by the values: a log
+                // whose voltage leaps by kilovolts gives no more work.
+                break 'walk;
+            }
             let f = if v1 > v0 {
                 ((next_edge - v0) / (v1 - v0)).clamp(0.0, 1.0)
             } else {
@@ -143,44 +148,64 @@ impl ChargeGrid {
 
     /// Voltage at charge `q` (linear between grid points).
     pub fn voltage_at(&self, q: f64) -> Option<f64> {
-        let c = self.curve();
-        if c.is_empty() || q < 0.0 || q > c[c.len() - 1].0 + 1e-12 {
-            return None;
-        }
-        let k = c.partition_point(|p| p.0 < q);
-        if k == 0 {
-            return Some(c[0].1);
-        }
-        if k >= c.len() {
-            return Some(c[c.len() - 1].1);
-        }
-        let (a, b) = (c[k - 1], c[k]);
-        let f = if b.0 > a.0 {
-            (q - a.0) / (b.0 - a.0)
-        } else {
-            1.0
-        };
-        Some(a.1 + f * (b.1 - a.1))
+        voltage_on(&self.curve(), q)
     }
+}
+
+/// Voltage at charge `q` on a curve of (charge, voltage) points in charge
+/// order (linear between points).
+fn voltage_on(c: &[(f64, f64)], q: f64) -> Option<f64> {
+    if c.is_empty() || q < 0.0 || q > c[c.len() - 1].0 + 1e-12 {
+        return None;
+    }
+    let k = c.partition_point(|p| p.0 < q);
+    if k == 0 {
+        return Some(c[0].1);
+    }
+    if k >= c.len() {
+        return Some(c[c.len() - 1].1);
+    }
+    let (a, b) = (c[k - 1], c[k]);
+    let f = if b.0 > a.0 {
+        (q - a.0) / (b.0 - a.0)
+    } else {
+        1.0
+    };
+    Some(a.1 + f * (b.1 - a.1))
 }
 
 /// dV/dQ (V/Ah, magnitude) by charge binning of width `bin_ah` on a
 /// voltage–charge curve: (bin centre Ah, |ΔV|/ΔQ).
+///
+/// At most [`MAX_BINS`] bins: the work is bounded by a fixed count,
+/// never by the values (a log whose time leaps by years makes one huge
+/// charge, not a billion bins).
 pub fn differential_voltage(grid: &ChargeGrid, bin_ah: f64) -> Vec<(f64, f64)> {
     let c = grid.curve();
     let Some(&(qmax, _)) = c.last() else {
         return Vec::new();
     };
+    if !(bin_ah > 0.0) || !qmax.is_finite() {
+        return Vec::new();
+    }
     let mut out = Vec::new();
-    let mut q = 0.0;
-    while q + bin_ah <= qmax + 1e-12 {
-        if let (Some(a), Some(b)) = (grid.voltage_at(q), grid.voltage_at(q + bin_ah)) {
+    let mut k = 0usize;
+    while out.len() < MAX_BINS {
+        let q = k as f64 * bin_ah;
+        if q + bin_ah > qmax + 1e-12 {
+            break;
+        }
+        if let (Some(a), Some(b)) = (voltage_on(&c, q), voltage_on(&c, q + bin_ah)) {
             out.push((q + bin_ah * 0.5, (b - a).abs() / bin_ah));
         }
-        q += bin_ah;
+        k += 1;
     }
     out
 }
+
+/// The most bins a differential curve has (a grid holds
+/// [`GRID_MAX_POINTS`] points; bins finer than its points add nothing).
+pub const MAX_BINS: usize = 10_000;
 
 /// Gaussian smoothing of equally spaced values, as
 /// `scipy.ndimage.gaussian_filter1d(y, sigma, mode="nearest", truncate=4.0)`.

@@ -15,6 +15,37 @@ pub trait Clock: Send + Sync {
     fn sleep_until(&self, t: f64) -> futures::future::BoxFuture<'_, ()>;
     /// Whether this clock is simulated (time does not pass by itself).
     fn is_simulated(&self) -> bool;
+    /// Wall seconds the computer has spent suspended (asleep, hibernated)
+    /// since the clock started: the run's time stood still while the pack
+    /// did not. Zero where it cannot be known.
+    fn slept_s(&self) -> f64 {
+        0.0
+    }
+}
+
+/// The gap between the clock that counts a suspend (boot time) and the
+/// one that does not (monotonic), s; it grows by the length of each
+/// suspend. Linux only (`CLOCK_BOOTTIME`); elsewhere `None`.
+pub fn suspend_offset_s() -> Option<f64> {
+    #[cfg(any(target_os = "linux", target_os = "android"))]
+    {
+        let read = |id| {
+            let mut ts = libc::timespec {
+                tv_sec: 0,
+                tv_nsec: 0,
+            };
+            // SAFETY: clock_gettime writes the timespec we own.
+            (unsafe { libc::clock_gettime(id, &mut ts) } == 0)
+                .then(|| ts.tv_sec as f64 + ts.tv_nsec as f64 * 1e-9)
+        };
+        let boot = read(libc::CLOCK_BOOTTIME)?;
+        let mono = read(libc::CLOCK_MONOTONIC)?;
+        Some(boot - mono)
+    }
+    #[cfg(not(any(target_os = "linux", target_os = "android")))]
+    {
+        None
+    }
 }
 
 /// Simulation clock: time advances only when someone sleeps.
@@ -56,6 +87,8 @@ pub struct PacedClock {
     start: Instant,
     speed: f64,
     fine: bool,
+    /// [`suspend_offset_s`] when the clock started.
+    offset0: Option<f64>,
 }
 
 impl PacedClock {
@@ -64,6 +97,7 @@ impl PacedClock {
             start: Instant::now(),
             speed: if speed > 0.0 { speed } else { 1.0 },
             fine: true,
+            offset0: suspend_offset_s(),
         })
     }
 
@@ -75,6 +109,7 @@ impl PacedClock {
             start: Instant::now(),
             speed: if speed > 0.0 { speed } else { 1.0 },
             fine: false,
+            offset0: suspend_offset_s(),
         })
     }
 }
@@ -107,11 +142,28 @@ impl Clock for PacedClock {
     fn is_simulated(&self) -> bool {
         false
     }
+    fn slept_s(&self) -> f64 {
+        match (self.offset0, suspend_offset_s()) {
+            (Some(a), Some(b)) => (b - a).max(0.0),
+            _ => 0.0,
+        }
+    }
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// No suspend happens while a test runs: the offset stands still (to
+    /// well under the 1 s the engine allows).
+    #[test]
+    fn an_awake_computer_has_slept_nothing() {
+        let c = PacedClock::new(1.0);
+        std::thread::sleep(Duration::from_millis(50));
+        assert!(c.slept_s() < 0.05, "{}", c.slept_s());
+        #[cfg(target_os = "linux")]
+        assert!(suspend_offset_s().is_some());
+    }
 
     #[test]
     fn sim_clock_jumps_and_never_goes_back() {

@@ -250,7 +250,16 @@ pub struct Engine<'a> {
     last_groups: Option<model::groups::GroupSample>,
     /// How long the safe stop keeps trying an output it cannot confirm off.
     off_hold: std::time::Duration,
+    /// The clock's suspended seconds when the run started.
+    slept0: f64,
 }
+
+/// A suspend of the computer longer than this (s) while a run is live is a
+/// fault: run time stood still, so no limit, time cap or sample covered
+/// the pack meanwhile, and the charge over the sleep is unknown. (The
+/// boot-time and monotonic clocks also drift apart by a few milliseconds
+/// a day with no suspend at all.)
+pub const SUSPEND_MAX_S: f64 = 1.0;
 
 /// How long the safe stop keeps switching off, and reading back, an
 /// output it could not confirm off (wall clock), by default: a minute
@@ -298,7 +307,33 @@ impl<'a> Engine<'a> {
             groups: group_monitor,
             last_groups: None,
             off_hold: OFF_HOLD,
+            slept0: 0.0,
         }
+        .with_sleep_mark()
+    }
+
+    fn with_sleep_mark(mut self) -> Self {
+        self.slept0 = self.clock.slept_s();
+        self
+    }
+
+    /// A suspend of the computer since the run started is a fault.
+    fn check_awake(&mut self) -> Result<(), Stop> {
+        let slept = self.clock.slept_s() - self.slept0;
+        if slept <= SUSPEND_MAX_S {
+            return Ok(());
+        }
+        let m = format!(
+            "the computer was suspended for {slept:.1} s while the run was live: no limit was checked and the charge over the sleep is unknown"
+        );
+        let _ = self.sink.event(&Event::InstrumentError {
+            t_s: self.t(),
+            step: self.current_step,
+            instrument: "computer".into(),
+            kind: "suspended".into(),
+            message: m.clone(),
+        });
+        Err(Stop::Breach(m))
     }
 
     /// Keep trying an unconfirmed switch-off this long (wall clock).
@@ -1316,6 +1351,7 @@ impl<'a> Engine<'a> {
         tracker: &mut StepTracker,
         scheduled: Option<f64>,
     ) -> Result<Sample, Stop> {
+        self.check_awake()?;
         let t = self.t();
         if let Some(due) = scheduled {
             let late = t - due;

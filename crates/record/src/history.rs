@@ -429,21 +429,25 @@ pub fn capacity_curves(h: &PackHistory) -> Vec<(String, Vec<(f64, f64)>)> {
     out
 }
 
-/// Build the fleet view of every pack under a results folder.
+/// Build the fleet view of every pack under a results folder. A pack
+/// whose records cannot be read is left out and named (pack id, why);
+/// the rest are read on.
 pub fn fleet(
     results: &Path,
     today: NaiveDate,
     schedule: &analysis::fade::schedule::Schedule,
     threshold_pct: f64,
-) -> Result<analysis::fade::fleet::Fleet, HistoryError> {
+) -> Result<(analysis::fade::fleet::Fleet, Vec<(String, String)>), HistoryError> {
     let mut histories = Vec::new();
+    let mut skipped = Vec::new();
     for id in pack_ids(results)? {
-        histories.push(load(results, &id, None)?);
+        match load(results, &id, None) {
+            Ok(h) => histories.push(h),
+            Err(e) => skipped.push((id, e.to_string())),
+        }
     }
-    Ok(analysis::fade::fleet::rank(
-        &histories,
-        today,
-        schedule,
-        threshold_pct,
+    Ok((
+        analysis::fade::fleet::rank(&histories, today, schedule, threshold_pct),
+        skipped,
     ))
 }

@@ -113,13 +113,16 @@ CREATE INDEX IF NOT EXISTS runs_in_order ON runs (pack_id, test_date, run_id);
 ";
 
 /// What a refresh did.
-#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
 pub struct Refreshed {
     pub packs: usize,
     pub packs_read: usize,
     pub runs_read: usize,
     pub runs_dropped: usize,
     pub packs_dropped: usize,
+    /// Packs whose records could not be read (pack id, why): left out,
+    /// and the rest read on.
+    pub skipped: Vec<(String, String)>,
 }
 
 /// An open index.
@@ -307,10 +310,18 @@ impl Index {
                 .collect()
         });
         for id in &changed {
-            let (read, runs_read, dropped) = self.refresh_pack(results, id)?;
-            out.packs_read += usize::from(read);
-            out.runs_read += runs_read;
-            out.runs_dropped += dropped;
+            match self.refresh_pack(results, id) {
+                Ok((read, runs_read, dropped)) => {
+                    out.packs_read += usize::from(read);
+                    out.runs_read += runs_read;
+                    out.runs_dropped += dropped;
+                }
+                // One pack's unreadable record does not hide the fleet.
+                Err(e @ (IndexError::History(_) | IndexError::Io { .. })) => {
+                    out.skipped.push((id.clone(), e.to_string()))
+                }
+                Err(e) => return Err(e),
+            }
         }
         // Packs whose folder is gone.
         for k in known.keys().filter(|k| !ids.contains(k)) {

@@ -108,14 +108,16 @@ pub fn refuse_links_below(root: &Path, path: &Path) -> io::Result<()> {
             }
         }
         match fs::symlink_metadata(&at) {
-            Ok(m) if m.file_type().is_symlink() => return Err(io::Error::new(
-                io::ErrorKind::PermissionDenied,
-                format!(
+            Ok(m) if m.file_type().is_symlink() => {
+                return Err(io::Error::new(
+                    io::ErrorKind::PermissionDenied,
+                    format!(
                     "{} is a symbolic link: packbench writes and serves only what lies inside {}",
                     at.display(),
                     root.display()
                 ),
-            )),
+                ))
+            }
             Ok(_) => {}
             Err(e) if e.kind() == io::ErrorKind::NotFound => return Ok(()),
             Err(e) => return Err(e),
@@ -313,7 +315,6 @@ impl RunLogSink {
             .create(true)
             .append(true)
             .open(dir.join(EVENTS_JSONL))?;
-        set_aside(&dir.join(crate::RESERVE))?;
         Ok(RunLogSink {
             samples,
             events,
@@ -336,11 +337,12 @@ impl RunLogSink {
 /// final `run.json`) still find room: several times what they take.
 pub const RESERVE_BYTES: usize = 256 * 1024;
 
-/// Write the reserve file (real blocks, not a sparse file).
+/// Write the reserve file (real blocks, not a sparse file: the file
+/// system counts them as used when they are written, so no sync is
+/// needed to hold the space).
 fn set_aside(path: &Path) -> io::Result<()> {
     let mut f = File::create(path)?;
-    f.write_all(&vec![0u8; RESERVE_BYTES])?;
-    f.sync_data()
+    f.write_all(&vec![0u8; RESERVE_BYTES])
 }
 
 impl LogFiles for RunLogSink {
@@ -359,6 +361,10 @@ impl LogFiles for RunLogSink {
             g.get_ref().sync_data()?;
         }
         Ok(())
+    }
+
+    fn set_aside(&mut self) -> io::Result<()> {
+        set_aside(&self.dir.join(crate::RESERVE))
     }
 
     fn free_reserve(&mut self) -> bool {

@@ -42,6 +42,11 @@ pub trait LogFiles: Sink + Send {
     fn hand_off(&mut self) -> io::Result<()>;
     /// Everything handed over to the disk.
     fn sync(&mut self) -> io::Result<()>;
+    /// Set space aside for the final records (done by the writer's
+    /// thread as it starts, so the run does not wait for it).
+    fn set_aside(&mut self) -> io::Result<()> {
+        Ok(())
+    }
     /// Free the space set aside for the final records (a full disk).
     /// Returns whether any was freed.
     fn free_reserve(&mut self) -> bool {
@@ -328,6 +333,8 @@ fn event_name(e: &Event) -> String {
 
 impl Writer {
     fn run(mut self, rx: mpsc::Receiver<Item>) {
+        let r = self.files.set_aside();
+        self.outcome(r);
         loop {
             let wait = if self.dirty {
                 FLUSH_INTERVAL.saturating_sub(self.last_sync.elapsed())

@@ -19,16 +19,17 @@ use engine::clock::Clock;
 use instrument::link::{InMemoryLink, LineResponder, Link};
 use model::pack::PackSpec;
 use model::truth::{GroundTruth, TruthCounters};
-use server::{SimInstrument, SimRole};
+use server::{SimInstrument, SimRole, Traffic};
 use std::sync::{Arc, Mutex};
 
 /// A view of the simulated bench from outside the links.
 #[derive(Clone)]
 pub struct SimHandle {
     bench: Arc<Mutex<SimBench>>,
-    /// Messages received by the source and the load, in order.
-    pub source_traffic: Arc<Mutex<Vec<String>>>,
-    pub load_traffic: Arc<Mutex<Vec<String>>>,
+    /// Messages received by the source and the load: how many, and the
+    /// last few.
+    pub source_traffic: Arc<Mutex<Traffic>>,
+    pub load_traffic: Arc<Mutex<Traffic>>,
 }
 
 impl SimHandle {
@@ -36,8 +37,8 @@ impl SimHandle {
     pub fn from_bench(bench: Arc<Mutex<SimBench>>) -> SimHandle {
         SimHandle {
             bench,
-            source_traffic: Arc::new(Mutex::new(Vec::new())),
-            load_traffic: Arc::new(Mutex::new(Vec::new())),
+            source_traffic: Arc::new(Mutex::new(Traffic::default())),
+            load_traffic: Arc::new(Mutex::new(Traffic::default())),
         }
     }
     /// Bench seconds on the simulated clock.
@@ -100,9 +101,19 @@ impl SimHandle {
     pub fn crossed(&self) -> Option<(f64, TruthCounters)> {
         self.with(|b| b.watch.and_then(|w| w.crossed))
     }
+    /// Keep every message the source and the load receive from now on
+    /// (tests; a run of any length otherwise keeps the last few).
+    pub fn keep_all_traffic(&self) {
+        for t in [&self.source_traffic, &self.load_traffic] {
+            if let Ok(mut g) = t.lock() {
+                g.keep_all = true;
+            }
+        }
+    }
+
     /// Number of messages both instruments received.
     pub fn messages_received(&self) -> usize {
-        let n = |m: &Arc<Mutex<Vec<String>>>| m.lock().map(|v| v.len()).unwrap_or(0);
+        let n = |m: &Arc<Mutex<Traffic>>| m.lock().map(|v| v.count).unwrap_or(0);
         n(&self.source_traffic) + n(&self.load_traffic)
     }
 }
@@ -144,8 +155,8 @@ pub fn link_to(responder: &Arc<Mutex<dyn LineResponder>>) -> Link {
 /// Build a simulated bench for a pack.
 pub fn build(spec: &PackSpec, cfg: &SimConfig, clock: Arc<dyn Clock>) -> SimLinks {
     let bench = Arc::new(Mutex::new(SimBench::new(spec, cfg, clock)));
-    let source_traffic = Arc::new(Mutex::new(Vec::new()));
-    let load_traffic = Arc::new(Mutex::new(Vec::new()));
+    let source_traffic = Arc::new(Mutex::new(Traffic::default()));
+    let load_traffic = Arc::new(Mutex::new(Traffic::default()));
     let src: Arc<Mutex<dyn LineResponder>> = Arc::new(Mutex::new(SimInstrument::new(
         Arc::clone(&bench),
         SimRole::Source,
@@ -160,7 +171,7 @@ pub fn build(spec: &PackSpec, cfg: &SimConfig, clock: Arc<dyn Clock>) -> SimLink
         let m: Arc<Mutex<dyn LineResponder>> = Arc::new(Mutex::new(SimInstrument::new(
             Arc::clone(&bench),
             SimRole::Meter,
-            Arc::new(Mutex::new(Vec::new())),
+            Arc::new(Mutex::new(Traffic::default())),
         )));
         m
     });

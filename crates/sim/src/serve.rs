@@ -409,7 +409,7 @@ pub fn serve(
         let inst = Arc::new(Mutex::new(SimInstrument::new(
             Arc::clone(&bench),
             *role,
-            Arc::new(Mutex::new(Vec::new())),
+            Arc::new(Mutex::new(super::server::Traffic::default())),
         )));
         let shared = Arc::clone(&shared);
         let baud = opts.baud;

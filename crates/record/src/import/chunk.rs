@@ -78,6 +78,30 @@ fn full_number(b: &[u8]) -> Option<f64> {
     }
 }
 
+/// The largest magnitude a log's voltage may have, V: beyond any pack a
+/// bench tests (traction packs reach about 1000 V; bench supplies stop
+/// near 1500 V). Common practice, rounded up.
+pub const PLAUSIBLE_V: (f64, &str) = (2000.0, "voltage, V");
+/// The largest time magnitude, s: 300 years, so a log timed by the
+/// calendar (seconds since 1970, about 1.7e9) reads, and differences of
+/// times stay finite.
+pub const PLAUSIBLE_S: (f64, &str) = (1e10, "time, s");
+/// The largest current magnitude, A: beyond any bench load or supply.
+pub const PLAUSIBLE_A: (f64, &str) = (10_000.0, "current, A");
+/// The largest temperature magnitude, degC: beyond any cell that is still
+/// a cell.
+pub const PLAUSIBLE_C: (f64, &str) = (300.0, "temperature, degC");
+
+/// Whether a row's values are inside the plausibility bounds (the fast
+/// path sends any other line the general way, which says what is wrong).
+#[inline]
+fn plausible(r: &Row) -> bool {
+    r.t_s.abs() <= PLAUSIBLE_S.0
+        && r.voltage_v.abs() <= PLAUSIBLE_V.0
+        && r.current_a.abs() <= PLAUSIBLE_A.0
+        && r.temperature_c.is_none_or(|t| t.abs() <= PLAUSIBLE_C.0)
+}
+
 #[inline]
 pub(crate) fn parse_row<'r, G: Fn(usize) -> &'r [u8], B: Fn(u64, usize, String) -> ReadError>(
     rec: &G,
@@ -110,11 +134,39 @@ pub(crate) fn parse_row<'r, G: Fn(usize) -> &'r [u8], B: Fn(u64, usize, String) 
             ),
         )
     })?;
-    let voltage_v = num(cols.voltage, "a voltage (a finite number)")?;
+    let within = |i: usize, x: f64, (bound, what): (f64, &str)| -> Result<f64, ReadError> {
+        if x.abs() <= bound {
+            Ok(x)
+        } else {
+            Err(bad(
+                l,
+                i + 1,
+                format!(
+                    "'{}' is beyond any plausible {what} (at most {bound} in magnitude)",
+                    cell_text(i)
+                ),
+            ))
+        }
+    };
+    let t_s = within(cols.time, t_s, PLAUSIBLE_S)?;
+    let voltage_v = within(
+        cols.voltage,
+        num(cols.voltage, "a voltage (a finite number)")?,
+        PLAUSIBLE_V,
+    )?;
     // (+ 0.0 turns a negated zero into a plain one.)
-    let current_a = sign * num(cols.current, "a current (a finite number)")? + 0.0;
+    let current_a =
+        sign * within(
+            cols.current,
+            num(cols.current, "a current (a finite number)")?,
+            PLAUSIBLE_A,
+        )? + 0.0;
     let temperature_c = match cols.temperature {
-        Some(i) if !cell_bytes(i).is_empty() => Some(num(i, "a temperature (a finite number)")?),
+        Some(i) if !cell_bytes(i).is_empty() => Some(within(
+            i,
+            num(i, "a temperature (a finite number)")?,
+            PLAUSIBLE_C,
+        )?),
         _ => None,
     };
     let int = |i: usize, what: &str| -> Result<u32, ReadError> {
@@ -318,6 +370,9 @@ impl<'a, B: Fn(u64, usize, String) -> ReadError> ChunkParser<'a, B> {
             step,
             cycle,
         };
+        if !plausible(&row) {
+            return None;
+        }
         Some((row, start + next))
     }
 
