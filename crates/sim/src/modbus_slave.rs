@@ -45,35 +45,34 @@ pub enum Reply {
     Disconnect,
 }
 
-/// One complete request taken off the front of `buf`, if there is one:
-/// `Ok(frame)` with a good CRC; bytes that start no valid frame are
-/// dropped one at a time, as a receiver resynchronises.
-pub fn take_request(buf: &mut Vec<u8>) -> Option<Vec<u8>> {
-    loop {
-        if buf.len() < 2 {
-            return None;
+/// The silent intervals of Modbus over Serial Line V1.02 §2.5.1.1 at a
+/// baud rate: (t1.5, t3.5), the gap that breaks a frame and the one that
+/// ends it. A character is 11 bits (start, 8 data, parity or a second
+/// stop bit, stop); above 19200 baud the spec fixes 750 µs and 1.75 ms.
+/// With no baud rate (a line of no fixed speed): the fixed values.
+pub fn silences(baud: Option<u32>) -> (Duration, Duration) {
+    match baud {
+        Some(b) if b > 0 && b <= 19_200 => {
+            let ch = 11.0 / f64::from(b);
+            (
+                Duration::from_secs_f64(1.5 * ch),
+                Duration::from_secs_f64(3.5 * ch),
+            )
         }
-        let len = match buf[1] {
-            3 | 4 | 6 => 8,
-            16 => {
-                if buf.len() < 7 {
-                    return None;
-                }
-                9 + usize::from(buf[6])
-            }
-            // Unknown function: a frame of the common 8-byte shape, so it
-            // gets its exception; garbage fails the CRC below.
-            _ => 8,
-        };
-        if buf.len() < len {
-            return None;
-        }
-        let (body, crc) = buf[..len].split_at(len - 2);
-        if CRC.checksum(body).to_le_bytes() == [crc[0], crc[1]] {
-            return Some(buf.drain(..len).collect());
-        }
-        buf.remove(0);
+        _ => (Duration::from_micros(750), Duration::from_micros(1750)),
     }
+}
+
+/// A frame as the line delimited it, checked as a receiver checks it
+/// (§2.5.1.1 and the CRC, §2.5.1.2): `None` for a frame to discard
+/// without a reply (too short or too long, a gap of more than 1.5
+/// characters inside it, a wrong CRC).
+pub fn checked_frame(bytes: &[u8], broken: bool) -> Option<&[u8]> {
+    if broken || !(4..=256).contains(&bytes.len()) {
+        return None;
+    }
+    let (body, crc) = bytes.split_at(bytes.len() - 2);
+    (CRC.checksum(body).to_le_bytes() == [crc[0], crc[1]]).then_some(bytes)
 }
 
 /// A simulated instrument behind its Modbus register map.
@@ -161,6 +160,20 @@ impl Slave {
         })
     }
 
+    /// Whether some operation of the map sits at this register with this
+    /// width for this kind of function (read or write), whatever its
+    /// fixed word.
+    fn register_known(&self, function: u8, register: u16, count: u16) -> bool {
+        self.map.ops.values().any(|r| {
+            r.register == register
+                && u16::from(r.words) == count
+                && match function {
+                    3 | 4 => r.function == function,
+                    _ => matches!(r.function, 6 | 16),
+                }
+        })
+    }
+
     /// The operation a request names: the one at its register whose
     /// function reads (03/04) or writes (06/16) as the request does.
     /// Several writes may share a register with fixed words (enable 1,
@@ -190,30 +203,80 @@ impl Slave {
     }
 
     /// Answer one request with a good CRC on the simulated instrument.
+    /// A checked request frame (address, function, data, CRC) carried
+    /// out. Modbus Application Protocol V1.1b3 §6 and §7: an unsupported
+    /// function gets exception 01, an address the map has not 02, a bad
+    /// quantity, byte count, length or value 03, a failure of the device
+    /// 04. A broadcast (address 0) write is carried out with no reply; a
+    /// broadcast read is not a request.
     pub fn handle(&self, inst: &mut SimInstrument, req: &[u8]) -> Reply {
-        let (addr, function) = (req[0], req[1]);
-        if addr != self.address() {
+        let addr = req[0];
+        let broadcast = addr == 0;
+        if !broadcast && addr != self.address() {
             return Reply::Silence;
         }
-        let word = |i: usize| u16::from_be_bytes([req[i], req[i + 1]]);
+        let r = self.handle_for(inst, req);
+        if broadcast {
+            // Carried out above when it is a write; never answered.
+            return Reply::Silence;
+        }
+        r
+    }
+
+    fn handle_for(&self, inst: &mut SimInstrument, req: &[u8]) -> Reply {
+        let (addr, function) = (req[0], req[1]);
+        let data = &req[2..req.len() - 2];
+        let word = |i: usize| u16::from_be_bytes([data[i], data[i + 1]]);
         let exception = |code: u8| Reply::Frame(framed(&[addr, function | 0x80, code]));
         if !matches!(function, 3 | 4 | 6 | 16) {
             return exception(1);
         }
-        let register = word(2);
-        let (count, written): (u16, Vec<u16>) = match function {
-            6 => (1, vec![word(4)]),
-            16 => {
-                let n = word(4);
-                if usize::from(req[6]) != usize::from(n) * 2 {
+        if addr == 0 && matches!(function, 3 | 4) {
+            return Reply::Silence;
+        }
+        // The request's own structure: its length and quantity (§6.3,
+        // §6.4, §6.6, §6.12).
+        let (register, count, written): (u16, u16, Vec<u16>) = match function {
+            3 | 4 => {
+                if data.len() != 4 {
                     return exception(3);
                 }
-                (n, (0..usize::from(n)).map(|k| word(7 + 2 * k)).collect())
+                let n = word(2);
+                if !(1..=125).contains(&n) {
+                    return exception(3);
+                }
+                (word(0), n, Vec::new())
             }
-            _ => (word(4), Vec::new()),
+            6 => {
+                if data.len() != 4 {
+                    return exception(3);
+                }
+                (word(0), 1, vec![word(2)])
+            }
+            _ => {
+                if data.len() < 5 {
+                    return exception(3);
+                }
+                let n = word(2);
+                let bytes = usize::from(data[4]);
+                if !(1..=123).contains(&n) || bytes != usize::from(n) * 2 || data.len() != 5 + bytes
+                {
+                    return exception(3);
+                }
+                (
+                    word(0),
+                    n,
+                    (0..usize::from(n)).map(|k| word(5 + 2 * k)).collect(),
+                )
+            }
         };
-        let Some((op, r)) = self.op_at(function, register, count, &written) else {
+        if !self.register_known(function, register, count) {
             return exception(2);
+        }
+        let Some((op, r)) = self.op_at(function, register, count, &written) else {
+            // The register is there; the word written is not one it takes
+            // (a fixed-word register given another word).
+            return exception(3);
         };
         let reads = matches!(function, 3 | 4);
         let value = if reads {
@@ -381,15 +444,28 @@ mod tests {
         let f = framed(&[0x01, 0x03, 0x00, 0x00, 0x00, 0x01]);
         let crc = CRC.checksum(&f[..6]);
         assert_eq!(&f[6..], &crc.to_le_bytes());
-        // Found in a stream after junk, and a bad CRC is skipped over.
+        // A frame as the line delimited it: whole and good, or discarded.
+        assert_eq!(checked_frame(&f, false), Some(&f[..]));
+        assert_eq!(checked_frame(&f, true), None, "a gap inside it");
         let mut bad = f.clone();
         bad[7] ^= 1;
-        let mut buf = vec![0xff, 0x00];
-        buf.extend_from_slice(&bad);
-        buf.extend_from_slice(&f);
-        assert_eq!(take_request(&mut buf), Some(f.clone()));
-        assert!(buf.is_empty());
-        let mut part = f[..5].to_vec();
-        assert_eq!(take_request(&mut part), None, "incomplete");
+        assert_eq!(checked_frame(&bad, false), None, "a wrong CRC");
+        assert_eq!(checked_frame(&f[..5], false), None, "truncated");
+        let mut junk_first = vec![0xff, 0x00];
+        junk_first.extend_from_slice(&f);
+        assert_eq!(checked_frame(&junk_first, false), None, "noise in front");
+    }
+
+    /// Modbus over Serial Line V1.02 §2.5.1.1: above 19200 baud the
+    /// silences are fixed (750 µs, 1.75 ms); at 9600 baud a character of
+    /// 11 bits lasts 1.146 ms, so 1.5 and 3.5 characters are 1.719 ms and
+    /// 4.010 ms.
+    #[test]
+    fn the_silences_follow_the_baud_rate() {
+        let (a, b) = silences(Some(115_200));
+        assert_eq!((a.as_micros(), b.as_micros()), (750, 1750));
+        let (a, b) = silences(Some(9600));
+        assert!((a.as_secs_f64() - 1.71875e-3).abs() < 1e-7, "{a:?}");
+        assert!((b.as_secs_f64() - 4.0104e-3).abs() < 1e-6, "{b:?}");
     }
 }

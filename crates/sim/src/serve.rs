@@ -8,7 +8,7 @@
 
 use super::bench::SimBench;
 use super::lock::locked;
-use super::modbus_slave::{take_request, Reply as ModbusReply, Slave};
+use super::modbus_slave::{checked_frame, silences, Reply as ModbusReply, Slave};
 use super::server::{SimInstrument, SimRole};
 use super::{SimConfig, SimHandle};
 use engine::clock::Clock;
@@ -264,8 +264,56 @@ fn serve_lines<R: Read, W: Write>(
     })
 }
 
-/// Modbus RTU: request frames in, reply frames out.
-fn serve_modbus<R: Read, W: Write>(
+/// A byte stream that can wait for its next byte a bounded time (how a
+/// receiver hears the silence that ends a Modbus RTU frame).
+pub trait WaitRead: Read {
+    /// Whether a byte is there to read within `timeout`.
+    fn wait_readable(&mut self, timeout: Duration) -> io::Result<bool>;
+}
+
+impl WaitRead for std::net::TcpStream {
+    fn wait_readable(&mut self, timeout: Duration) -> io::Result<bool> {
+        self.set_read_timeout(Some(timeout.max(Duration::from_micros(1))))?;
+        let mut b = [0u8; 1];
+        let r = self.peek(&mut b);
+        self.set_read_timeout(None)?;
+        match r {
+            Ok(_) => Ok(true),
+            Err(e)
+                if matches!(
+                    e.kind(),
+                    io::ErrorKind::WouldBlock | io::ErrorKind::TimedOut
+                ) =>
+            {
+                Ok(false)
+            }
+            Err(e) => Err(e),
+        }
+    }
+}
+
+#[cfg(unix)]
+impl WaitRead for std::fs::File {
+    fn wait_readable(&mut self, timeout: Duration) -> io::Result<bool> {
+        use nix::poll::{poll, PollFd, PollFlags, PollTimeout};
+        use std::os::fd::AsFd;
+        let mut fds = [PollFd::new(self.as_fd(), PollFlags::POLLIN)];
+        // poll(2) counts whole milliseconds: a sub-millisecond silence
+        // waits one.
+        let ms = u16::try_from(timeout.as_micros().div_ceil(1000)).unwrap_or(u16::MAX);
+        let n = poll(&mut fds, PollTimeout::from(ms)).map_err(io::Error::from)?;
+        Ok(n > 0)
+    }
+}
+
+/// Modbus RTU: request frames in, reply frames out. Frames are delimited
+/// as a receiver on the line delimits them (Modbus over Serial Line V1.02
+/// §2.5.1.1): a frame ends at a silence of 3.5 characters; a gap of more
+/// than 1.5 characters inside it, a wrong CRC, or a frame too short or
+/// too long makes it discarded whole, with no reply. So noise or a
+/// truncated request costs that frame only: no later request is read
+/// shifted, and no stale answers come in a burst.
+fn serve_modbus<R: WaitRead, W: Write>(
     reader: &mut R,
     writer: &mut W,
     inst: &Arc<Mutex<SimInstrument>>,
@@ -273,24 +321,65 @@ fn serve_modbus<R: Read, W: Write>(
     opts: &ServeOptions,
     slave: &Slave,
 ) -> io::Result<()> {
-    serve_requests(reader, writer, opts, 4096, take_request, |req| {
-        let mut g = locked(inst);
-        let r = slave.handle(&mut g, req);
-        shared.record(&mut g);
-        match r {
-            ModbusReply::Silence => Ok(Answer::Nothing),
-            ModbusReply::Disconnect => Err(io::Error::new(
-                io::ErrorKind::ConnectionReset,
-                "simulated disconnect",
-            )),
-            ModbusReply::Frame(f) => Ok(Answer::Send(f, None)),
-            ModbusReply::Late(f, d) => Ok(Answer::Send(f, Some(d))),
+    let (t15, t35) = silences(opts.baud);
+    let mut buf = [0u8; 512];
+    let mut can_write = true;
+    loop {
+        // The first byte of a frame: wait as long as it takes.
+        let n = reader.read(&mut buf)?;
+        if n == 0 {
+            return Ok(());
         }
-    })
+        let mut frame = buf[..n].to_vec();
+        let mut broken = false;
+        let mut last = std::time::Instant::now();
+        while reader.wait_readable(t35)? {
+            let gap = last.elapsed();
+            let n = reader.read(&mut buf)?;
+            if n == 0 {
+                return Ok(());
+            }
+            if gap > t15 {
+                broken = true;
+            }
+            if frame.len() < 1024 {
+                frame.extend_from_slice(&buf[..n]);
+            }
+            last = std::time::Instant::now();
+        }
+        let Some(req) = checked_frame(&frame, broken) else {
+            continue;
+        };
+        wire_sleep(opts.baud, req.len());
+        let r = {
+            let mut g = locked(inst);
+            let r = slave.handle(&mut g, req);
+            shared.record(&mut g);
+            r
+        };
+        let (out, delay) = match r {
+            ModbusReply::Silence => continue,
+            ModbusReply::Disconnect => {
+                return Err(io::Error::new(
+                    io::ErrorKind::ConnectionReset,
+                    "simulated disconnect",
+                ))
+            }
+            ModbusReply::Frame(f) => (f, None),
+            ModbusReply::Late(f, d) => (f, Some(d)),
+        };
+        if let Some(d) = delay {
+            std::thread::sleep(d);
+        }
+        wire_sleep(opts.baud, out.len());
+        if can_write && writer.write_all(&out).and_then(|_| writer.flush()).is_err() {
+            can_write = false;
+        }
+    }
 }
 
 /// One connection, in the protocol the server speaks.
-fn serve_conn<R: Read, W: Write>(
+fn serve_conn<R: WaitRead, W: Write>(
     reader: &mut R,
     writer: &mut W,
     inst: &Arc<Mutex<SimInstrument>>,
