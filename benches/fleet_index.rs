@@ -66,7 +66,7 @@ fn main() {
     let today = chrono::NaiveDate::from_ymd_opt(2026, 1, 1).expect("a date");
     let schedule = Schedule::interval(92);
     let t0 = Instant::now();
-    let walk = record::history::fleet(&results, today, &schedule, 80.0).expect("the walk");
+    let (walk, _) = record::history::fleet(&results, today, &schedule, 80.0).expect("the walk");
     let walk_s = t0.elapsed().as_secs_f64();
     let t0 = Instant::now();
     let (_, built) = record::index::fleet(&results, today, &schedule, 80.0).expect("the index");

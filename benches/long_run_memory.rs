@@ -27,6 +27,8 @@ fn main() {
         std::fs::write(&proc, procedure(n)).expect("procedure");
         let results = dir.path().join(format!("r{n}"));
         let t = std::time::Instant::now();
+        // Waited for by wait4 below, which also gives its peak memory.
+        #[allow(clippy::zombie_processes)]
         let child = std::process::Command::new(bin)
             .arg("run")
             .arg(&proc)

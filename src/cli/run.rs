@@ -279,7 +279,7 @@ pub fn cmd_run(a: RunArgs) -> ExitCode {
     let paced = jobs
         .iter()
         .any(|j| j.speed != Speed::Max || j.station.is_some());
-    let _awake = paced.then(|| stay_awake());
+    let _awake = paced.then(stay_awake);
     let several = jobs.len() > 1;
     let jobs = std::rc::Rc::new(jobs);
     let boards = jobs.iter().map(|j| j.board.clone()).collect();

@@ -269,46 +269,12 @@ pub async fn drive(
             station
         }
         Err(e) => {
-            if resume.is_some() {
-                // A resume that cannot reach the bench leaves the run as
-                // it was, resumable, with the failed attempt recorded.
-                manifest.status = RunStatus::Interrupted;
-                manifest.resumes.pop();
-                manifest
-                    .failed_resumes
-                    .push(record::manifest::FailedResume {
-                        at_utc: utc_now(),
-                        reason: format!("could not connect: {e}"),
-                    });
-                let mut sink = sink;
-                let _ = record::event::Sink::event(
-                    &mut sink,
-                    &record::event::Event::Warning {
-                        t_s: resume.as_ref().map(|r| r.last_sample_t_s).unwrap_or(0.0),
-                        step: 0,
-                        message: format!(
-                            "a resume could not connect: {e}; the run stays resumable"
-                        ),
-                    },
-                );
-                let _ = off_thread(move || sink.flush().map_err(io_err(Path::new("")))).await;
-            } else {
-                manifest.status = RunStatus::Aborted;
-                manifest.stop_reason = Some(format!("could not connect: {e}"));
-                manifest.finished_utc = Some(utc_now());
-            }
-            write_manifest(&run_json, &manifest).await?;
-            let _ = off_thread(move || {
-                lock.release();
-                Ok(())
-            })
-            .await;
-            if let Some(b) = &board {
-                b.update(|l| {
-                    l.state = crate::session::live::BoardState::Failed;
-                    l.alarms.push(format!("could not connect: {e}"));
-                });
-            }
+            let failed = NotConnected {
+                run_json: &run_json,
+                resume: resume.as_ref(),
+                board: board.as_ref(),
+            };
+            failed.record(manifest, sink, lock, &e).await?;
             return Err(e.into());
         }
     };
@@ -378,8 +344,10 @@ pub async fn drive(
             manifest,
             outcome,
             sim,
-            &writer,
-            Some(lock),
+            crate::session::finish::Ending {
+                writer,
+                lock: Some(lock),
+            },
         )
     })
     .await
@@ -389,6 +357,62 @@ pub async fn drive(
 /// sync what it holds: a healthy disk takes well under a second; past
 /// this the disk has stalled ([`record::writer::LAG_MAX`]).
 pub const WRITER_WAIT: std::time::Duration = record::writer::LAG_MAX;
+
+/// A run whose bench could not be reached.
+struct NotConnected<'a> {
+    run_json: &'a Path,
+    resume: Option<&'a engine::ResumePoint>,
+    board: Option<&'a crate::session::live::Board>,
+}
+
+impl NotConnected<'_> {
+    /// Record it: a new run is aborted; a resume leaves the run as it was,
+    /// resumable, with the failed attempt recorded. The lock is released.
+    async fn record(
+        &self,
+        mut manifest: Manifest,
+        mut sink: RunLogSink,
+        lock: RunLock,
+        e: &instrument::InstrumentError,
+    ) -> Result<(), RunError> {
+        if let Some(r) = self.resume {
+            manifest.status = RunStatus::Interrupted;
+            manifest.resumes.pop();
+            manifest
+                .failed_resumes
+                .push(record::manifest::FailedResume {
+                    at_utc: utc_now(),
+                    reason: format!("could not connect: {e}"),
+                });
+            let _ = record::event::Sink::event(
+                &mut sink,
+                &record::event::Event::Warning {
+                    t_s: r.last_sample_t_s,
+                    step: 0,
+                    message: format!("a resume could not connect: {e}; the run stays resumable"),
+                },
+            );
+            let _ = off_thread(move || sink.flush().map_err(io_err(Path::new("")))).await;
+        } else {
+            manifest.status = RunStatus::Aborted;
+            manifest.stop_reason = Some(format!("could not connect: {e}"));
+            manifest.finished_utc = Some(utc_now());
+        }
+        write_manifest(self.run_json, &manifest).await?;
+        let _ = off_thread(move || {
+            lock.release();
+            Ok(())
+        })
+        .await;
+        if let Some(b) = self.board {
+            b.update(|l| {
+                l.state = crate::session::live::BoardState::Failed;
+                l.alarms.push(format!("could not connect: {e}"));
+            });
+        }
+        Ok(())
+    }
+}
 
 /// Before connecting: the raw-traffic trace and the instruments
 /// registered for the last-resort switch-off.

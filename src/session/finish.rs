@@ -26,16 +26,14 @@ pub fn finish_record(
     outcome: RunOutcome,
     sim: Option<SimRun>,
 ) -> Result<RunReport, RunError> {
-    finish_record_after(
-        p,
-        dir,
-        run_id,
-        manifest,
-        outcome,
-        sim,
-        &WriterEnd::default(),
-        None,
-    )
+    finish_record_after(p, dir, run_id, manifest, outcome, sim, Ending::default())
+}
+
+/// How the record's writing ended, and the run's lock to release.
+#[derive(Default)]
+pub struct Ending {
+    pub writer: WriterEnd,
+    pub lock: Option<record::write::RunLock>,
 }
 
 /// One line on the outputs' state at the end of a run: what the operator
@@ -76,9 +74,9 @@ pub fn finish_record_after(
     mut manifest: Manifest,
     mut outcome: RunOutcome,
     sim: Option<SimRun>,
-    writer: &WriterEnd,
-    lock: Option<record::write::RunLock>,
+    end: Ending,
 ) -> Result<RunReport, RunError> {
+    let Ending { writer, lock } = end;
     let run_json = dir.join(RUN_JSON);
     let mut unwritten: Vec<String> = writer.describe().into_iter().collect();
     if !writer.complete() && outcome.status == RunState::Completed {

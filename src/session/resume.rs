@@ -447,8 +447,10 @@ pub async fn execute(
                 manifest,
                 outcome,
                 None,
-                &Default::default(),
-                Some(lock),
+                crate::session::finish::Ending {
+                    writer: Default::default(),
+                    lock: Some(lock),
+                },
             );
         }
         Found::GoOn(p) => p,

@@ -555,7 +555,7 @@ fn hostile_logs_neither_hang_nor_exhaust_memory() {
         ),
         (
             "hot.csv",
-            format!("time_s,voltage_v,current_a,temperature_c\n0,16,-1,25\n1,15.9,-1,1e6\n"),
+            "time_s,voltage_v,current_a,temperature_c\n0,16,-1,25\n1,15.9,-1,1e6\n".to_string(),
             ":3:4:",
         ),
         (

@@ -185,7 +185,7 @@ pub fn differential_voltage(grid: &ChargeGrid, bin_ah: f64) -> Vec<(f64, f64)> {
     let Some(&(qmax, _)) = c.last() else {
         return Vec::new();
     };
-    if !(bin_ah > 0.0) || !qmax.is_finite() {
+    if bin_ah.partial_cmp(&0.0) != Some(std::cmp::Ordering::Greater) || !qmax.is_finite() {
         return Vec::new();
     }
     let mut out = Vec::new();

@@ -332,7 +332,7 @@ impl<'a> Analyzer<'a> {
         if self.n_intervals < 4 {
             return None;
         }
-        if self.n_intervals < 16 || self.n_intervals % 8 == 0 || self.typical.is_none() {
+        if self.n_intervals < 16 || self.n_intervals.is_multiple_of(8) || self.typical.is_none() {
             let n = self.n_intervals.min(INTERVAL_WINDOW);
             if self.same_intervals >= n {
                 // One value fills the window: it is the median.

@@ -35,8 +35,8 @@ pub fn suspend_offset_s() -> Option<f64> {
                 tv_nsec: 0,
             };
             // SAFETY: clock_gettime writes the timespec we own.
-            (unsafe { libc::clock_gettime(id, &mut ts) } == 0)
-                .then(|| ts.tv_sec as f64 + ts.tv_nsec as f64 * 1e-9)
+            let ok = unsafe { libc::clock_gettime(id, &mut ts) } == 0;
+            ok.then_some(ts.tv_sec as f64 + ts.tv_nsec as f64 * 1e-9)
         };
         let boot = read(libc::CLOCK_BOOTTIME)?;
         let mono = read(libc::CLOCK_MONOTONIC)?;

@@ -40,7 +40,7 @@ impl Thinned {
     }
 
     pub fn push(&mut self, p: (f64, f64)) {
-        if self.seen % self.every == 0 {
+        if self.seen.is_multiple_of(self.every) {
             self.points.push(p);
             if self.points.len() >= 2 * self.max {
                 let mut k = 0;
