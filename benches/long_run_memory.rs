@@ -7,6 +7,7 @@
 //!
 //! Run: cargo bench --bench long_run_memory   (Unix: wait4's rusage)
 //! CYCLES="10 20" cargo bench --bench long_run_memory   for other lengths
+//! EVERY=1s cargo bench --bench long_run_memory         another sampling interval
 
 #[cfg(unix)]
 fn main() {
@@ -24,7 +25,8 @@ fn main() {
     let mut first: Option<(usize, f64)> = None;
     for n in cycles {
         let proc = dir.path().join(format!("cycles-{n}.toml"));
-        std::fs::write(&proc, procedure(n)).expect("procedure");
+        let every = std::env::var("EVERY").unwrap_or_else(|_| "10s".into());
+        std::fs::write(&proc, procedure(n, &every)).expect("procedure");
         let results = dir.path().join(format!("r{n}"));
         let t = std::time::Instant::now();
         // Waited for by wait4 below, which also gives its peak memory.
@@ -79,7 +81,7 @@ fn wait_rusage(pid: i32) -> (i32, i64) {
 }
 
 #[cfg(unix)]
-fn procedure(cycles: u32) -> String {
+fn procedure(cycles: u32, every: &str) -> String {
     format!(
         r#"title = "Memory against run length ({cycles} cycles)"
 [envelope]
@@ -88,7 +90,7 @@ voltage_min = "2.80V/cell"
 current_max = "1.2C"
 temperature_max = "55degC"
 [sampling]
-every = "10s"
+every = "{every}"
 [[phase]]
 name = "cycle"
 repeat = {cycles}
