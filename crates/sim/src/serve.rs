@@ -223,14 +223,26 @@ fn serve_requests<R: Read, W: Write>(
                 Answer::Nothing => continue,
                 Answer::Send(out, delay) => (out, delay),
             };
-            if let Some(d) = delay {
-                std::thread::sleep(d);
-            }
-            wire_sleep(opts.baud, out.len());
-            if can_write && writer.write_all(&out).and_then(|_| writer.flush()).is_err() {
-                can_write = false;
-            }
+            send_answer(writer, opts, &out, delay, &mut can_write);
         }
+    }
+}
+
+/// Send an answer after its delay (a slow instrument) at the emulated
+/// line rate; a client that went away takes no more (`can_write`).
+fn send_answer<W: Write>(
+    writer: &mut W,
+    opts: &ServeOptions,
+    out: &[u8],
+    delay: Option<Duration>,
+    can_write: &mut bool,
+) {
+    if let Some(d) = delay {
+        std::thread::sleep(d);
+    }
+    wire_sleep(opts.baud, out.len());
+    if *can_write && writer.write_all(out).and_then(|_| writer.flush()).is_err() {
+        *can_write = false;
     }
 }
 
@@ -368,13 +380,7 @@ fn serve_modbus<R: WaitRead, W: Write>(
             ModbusReply::Frame(f) => (f, None),
             ModbusReply::Late(f, d) => (f, Some(d)),
         };
-        if let Some(d) = delay {
-            std::thread::sleep(d);
-        }
-        wire_sleep(opts.baud, out.len());
-        if can_write && writer.write_all(&out).and_then(|_| writer.flush()).is_err() {
-            can_write = false;
-        }
+        send_answer(writer, opts, &out, delay, &mut can_write);
     }
 }
 
