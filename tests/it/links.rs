@@ -89,23 +89,8 @@ fn serve_config(dir: &Path, how: &[&str], faults: &[&str], cfg: &Path) -> Served
 /// A run on a served bench. An instrument a fault silences can never be
 /// confirmed off: the safe stop's hold is a second here, not a minute.
 fn run_bench(dir: &Path, bench: &Path, procedure: &str) -> (i32, PathBuf) {
-    let results = dir.join("results");
-    let out = Command::new(BIN)
-        .args([
-            "run", procedure, "--pack", "P1", "--quiet", "--speed", SPEED,
-        ])
-        .args(PACK)
-        .args(["--safe-stop-hold", "1s"])
-        .arg("--bench")
-        .arg(bench)
-        .arg("--results")
-        .arg(&results)
-        .output()
-        .unwrap();
-    (
-        out.status.code().unwrap_or(-1),
-        only_run(&results.join("P1")),
-    )
+    let (code, run, _) = run_bench_with(dir, bench, procedure, &["--safe-stop-hold", "1s"]);
+    (code, run)
 }
 
 /// As [`run_bench`], with more arguments; also the error stream.
