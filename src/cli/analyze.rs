@@ -5,8 +5,8 @@ use crate::cli::args::pack_from_args;
 use crate::cli::args::PackArgs;
 use crate::cli::args::{bms_from_args, BmsArgs};
 use crate::cli::exit::ExitCode;
-use crate::session::summary::ForeignLog;
-use crate::session::summary::SummaryContext;
+use record::summarize::ForeignLog;
+use record::summarize::SummaryContext;
 use analysis::correct::CorrectionPolicy;
 use analysis::fade::grade::Policy;
 use analysis::{AnalysisOptions, CurveData};
@@ -279,7 +279,7 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
             bms: bms.as_ref(),
         };
         // The same path as the summary written at the end of the run.
-        return Ok(crate::session::summary::summarize_run_with_curves(
+        return Ok(record::summarize::summarize_run_with_curves(
             &dir, &ctx, None, opts,
         )?);
     }
@@ -317,7 +317,7 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
         None => {
             opts.correction.temperature = false;
             opts.correction.rate = false;
-            crate::session::summary::provisional_spec(&a.log, &format)?
+            record::summarize::provisional_spec(&a.log, &format)?
         }
     };
     let bms = given_bms;
@@ -330,9 +330,9 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
         policy: &policy,
         bms: bms.as_ref(),
     };
-    let (mut s, _, data) = crate::session::summary::summarize_foreign(&log, opts)?;
+    let (mut s, _, data) = record::summarize::summarize_foreign(&log, opts)?;
     if unrated {
-        crate::session::summary::mark_unrated(&mut s);
+        record::summarize::mark_unrated(&mut s);
     }
     Ok((s, data))
 }

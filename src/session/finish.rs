@@ -4,7 +4,7 @@ use crate::session::error::{Failure, RunError};
 use crate::session::links::SimRun;
 use crate::session::request::Prepared;
 use crate::session::request::RunReport;
-use crate::session::summary::SummaryContext;
+use record::summarize::SummaryContext;
 use engine::RunOutcome;
 use model::status::RunState;
 use record::manifest::utc_now;
@@ -219,9 +219,14 @@ pub fn summarize_run_dir(
     ctx: &SummaryContext<'_>,
     outcome: Option<&RunOutcome>,
 ) -> Result<Summary, RunError> {
-    let outcome = outcome.map(|o| crate::session::summary::Outcome {
+    let outcome = outcome.map(|o| record::summarize::Outcome {
         status: o.status.into(),
         reason: o.reason.clone(),
     });
-    crate::session::summary::summarize_run(dir, ctx, outcome, analysis::AnalysisOptions::default())
+    Ok(record::summarize::summarize_run(
+        dir,
+        ctx,
+        outcome,
+        analysis::AnalysisOptions::default(),
+    )?)
 }

@@ -15,7 +15,6 @@ pub mod prepare;
 pub mod quick;
 pub mod request;
 pub mod resume;
-pub mod summary;
 
 pub use crate::session::request::{
     PackSource, Prepared, RunOptions, RunReport, RunRequest, Speed, StationJob,

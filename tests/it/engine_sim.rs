@@ -356,7 +356,7 @@ async fn live_and_offline_summaries_agree() {
         dir.path(),
     );
     let (r, _) = run_sim(&p, &SimConfig::default(), StopHandle::new()).await;
-    let ctx = packbench::session::summary::SummaryContext {
+    let ctx = record::summarize::SummaryContext {
         pack: &p.pack,
         pack_id: "TEST-1",
         run_id: &r.summary.run_id,

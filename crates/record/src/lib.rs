@@ -19,6 +19,7 @@ pub mod index;
 pub mod manifest;
 pub mod read;
 pub mod schema;
+pub mod summarize;
 pub mod write;
 pub mod writer;
 

@@ -1,9 +1,10 @@
-//! Analysing a log after the fact: one of our run folders (steps from its
+//! The summary of a run, built in one place for every caller (the end of
+//! a run, `resume`, `analyze`, `import`, the console): analysing a log after the fact: one of our run folders (steps from its
 //! events, the same code path as the summary written at the end of the run,
 //! so the figures are identical), or any bench's CSV (steps found from the
 //! current when the log has no step column). Streams the log once.
 
-use super::error::RunError;
+use crate::error::ReadError;
 use analysis::fade::grade::{GradeInputs, Policy};
 use analysis::integrate::Interruption;
 use analysis::pulse::is_jump;
@@ -11,13 +12,13 @@ use analysis::{AnalysisOptions, Analyzer, CurveData};
 use model::bms::BmsReadings;
 use model::pack::PackSpec;
 use model::status::RunStatus;
-use record::event::Event;
+use crate::event::Event;
 
 use chrono::NaiveDate;
 use model::sample::Sample;
-use record::import::{stream_log, LogFormat, ReadReport, Row};
-use record::read::{read_events, step_infos};
-use record::{PackSummary, Summary, EVENTS_JSONL, SAMPLES_CSV};
+use crate::import::{stream_log, LogFormat, ReadReport, Row};
+use crate::read::{read_events, step_infos};
+use crate::{PackSummary, Summary, EVENTS_JSONL, SAMPLES_CSV};
 use std::path::Path;
 
 /// Finds steps in a log without a step column: a new step where the
@@ -130,7 +131,7 @@ pub fn build_summary(
         analysis::bms::compare(b, &a.steps, a.capacity.as_ref(), a.recalibration.as_ref())
     });
     Summary {
-        schema_version: record::schema::SCHEMA_VERSION,
+        schema_version: crate::schema::SCHEMA_VERSION,
         status: outcome.status,
         stop_reason: outcome.reason,
         pack_id: ctx.pack_id.to_string(),
@@ -177,7 +178,7 @@ pub fn add_event_records(s: &mut Summary, events: &[Event]) {
                 ..
             } => {
                 // The first preflight is the run's; a resume's is newer.
-                s.preflight = Some(record::Preflight {
+                s.preflight = Some(crate::Preflight {
                     voltage_v: *voltage_v,
                     temperature_c: *temperature_c,
                     source_zero_ma: source_zero_a.map(|a| a * 1000.0),
@@ -191,7 +192,7 @@ pub fn add_event_records(s: &mut Summary, events: &[Event]) {
                 last_sample_t_s,
                 gap_s,
                 rule,
-            } => s.resumed.push(record::ResumeNote {
+            } => s.resumed.push(crate::ResumeNote {
                 t_s: *t_s,
                 step: *step,
                 last_sample_t_s: *last_sample_t_s,
@@ -286,7 +287,7 @@ pub fn summarize_run(
     ctx: &SummaryContext<'_>,
     outcome: Option<Outcome>,
     opts: AnalysisOptions,
-) -> Result<Summary, RunError> {
+) -> Result<Summary, ReadError> {
     summarize_run_with_curves(dir, ctx, outcome, opts).map(|x| x.0)
 }
 
@@ -296,7 +297,7 @@ pub fn summarize_run_with_curves(
     ctx: &SummaryContext<'_>,
     outcome: Option<Outcome>,
     opts: AnalysisOptions,
-) -> Result<(Summary, CurveData), RunError> {
+) -> Result<(Summary, CurveData), ReadError> {
     let events = read_events(&dir.join(EVENTS_JSONL))?;
     let infos = step_infos(&events);
     let mut an = Analyzer::new(ctx.pack, &infos, opts);
@@ -319,7 +320,7 @@ pub fn summarize_run_with_curves(
     let mut feed = Feed::new();
     // A pack read group by group: its channels, and the pack's current
     // for each group scan.
-    let channels = record::read::read_manifest(&dir.join(record::RUN_JSON))
+    let channels = crate::read::read_manifest(&dir.join(crate::RUN_JSON))
         .ok()
         .and_then(|m| m.groups);
     let mut pack_points: Vec<analysis::groups::PackPoint> = Vec::new();
@@ -338,7 +339,7 @@ pub fn summarize_run_with_curves(
     let mut a = an.finish();
     note_partial_line(&mut a, rep.partial_last_line, "samples.csv");
     if let Some(ch) = &channels {
-        if let Some(rows) = record::read::read_groups(dir)? {
+        if let Some(rows) = crate::read::read_groups(dir)? {
             a.groups = Some(analysis::groups::analyze(&analysis::groups::GroupInputs {
                 channels: ch,
                 pack: &pack_points,
@@ -387,7 +388,7 @@ pub struct ForeignLog<'a> {
 pub fn summarize_foreign(
     log: &ForeignLog<'_>,
     mut opts: AnalysisOptions,
-) -> Result<(Summary, ReadReport, CurveData), RunError> {
+) -> Result<(Summary, ReadReport, CurveData), ReadError> {
     opts.imported = true;
     opts.detect_capacity = true;
     let mut an = Analyzer::new(log.pack, &[], opts);
@@ -466,7 +467,7 @@ pub fn summarize_foreign(
 /// over C/20, the charge grid's resolution): the largest charge the log
 /// moves in one direction stands in for it, read in a first pass. One
 /// cell in series, so "per cell" figures are the pack's.
-pub fn provisional_spec(path: &Path, format: &LogFormat) -> Result<PackSpec, RunError> {
+pub fn provisional_spec(path: &Path, format: &LogFormat) -> Result<PackSpec, ReadError> {
     let (mut run_ah, mut best_ah, mut sign) = (0.0f64, 0.0f64, 0.0f64);
     let mut prev: Option<Row> = None;
     stream_log(path, format, |r: Row| {
@@ -548,7 +549,7 @@ pub fn reference_resistance(pack_dir: &Path, ctx: &SummaryContext<'_>) -> Option
         return Some(r);
     }
     let date = ctx.test_date.to_string();
-    let runs = record::history::run_summaries(pack_dir).ok()?;
+    let runs = crate::history::run_summaries(pack_dir).ok()?;
     runs.iter()
         .filter(|(_, s)| {
             s.status == RunStatus::Completed
