@@ -73,9 +73,20 @@ pub struct AnalyzeArgs {
     /// A gap is an interval longer than this many typical intervals.
     #[arg(long)]
     pub gap_factor: Option<f64>,
-    /// Peukert exponent for the rate correction (default per chemistry).
+    /// Peukert exponent for the rate correction (default: the pack's own,
+    /// saved by `packbench peukert --save`, else lead-acid's published
+    /// value; other chemistries are stated at their test rate).
     #[arg(long)]
     pub peukert_k: Option<f64>,
+    /// A foreign log's discharge cutoff, e.g. 3.0V/cell or 36V: the largest
+    /// discharge counts as ended on it when its last voltage is within 1 %.
+    /// Without it no new nominal is suggested from a foreign log.
+    #[arg(long)]
+    pub cutoff: Option<String>,
+    /// The field delimiter of a foreign log: comma, semicolon or tab
+    /// (default: found from the header line).
+    #[arg(long)]
+    pub delimiter: Option<String>,
     /// Do not correct the capacity for temperature.
     #[arg(long)]
     pub no_temperature_correction: bool,
@@ -144,6 +155,7 @@ fn options(a: &AnalyzeArgs) -> anyhow::Result<AnalysisOptions> {
         temperature: !a.no_temperature_correction,
         rate: !a.no_rate_correction,
         peukert_k: a.peukert_k,
+        peukert_source: analysis::correct::PeukertSource::Given,
     };
     Ok(o)
 }
@@ -244,37 +256,23 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
     };
     let given_bms = bms_from_args(&a.bms_args)?;
     if let Some(dir) = our_run(&a.log) {
-        let text = std::fs::read_to_string(dir.join(RUN_JSON))
-            .with_context(|| format!("cannot read {}", dir.join(RUN_JSON).display()))?;
-        let m: serde_json::Value = serde_json::from_str(&text)
-            .with_context(|| format!("{} is not a run record", dir.join(RUN_JSON).display()))?;
-        let field = |k: &str| {
-            m[k].as_str()
-                .map(str::to_string)
-                .ok_or_else(|| anyhow!("run.json has no {k}"))
-        };
+        // The typed record: a malformed field is an error with its place,
+        // not a silently dropped block.
+        let m = record::read::read_manifest(&dir.join(RUN_JSON))?;
         // Given now, or recorded with the run.
-        let bms: Option<model::bms::BmsReadings> = match given_bms {
-            Some(b) => Some(b),
-            None => serde_json::from_value(m["bms"].clone()).unwrap_or(None),
-        };
-        let pack_summary: PackSummary =
-            serde_json::from_value(m["pack"].clone()).context("run.json has no pack spec")?;
-        let pack = spec_from_summary(&pack_summary)?;
-        let (pack_id, run_id) = (field("pack_id")?, field("run_id")?);
-        let title = m["procedure"]["title"]
-            .as_str()
-            .unwrap_or_default()
-            .to_string();
-        let test_date = record::history::parse_date(&field("test_date")?)
-            .ok_or_else(|| anyhow!("run.json: bad test_date"))?;
+        let bms = given_bms.or(m.bms.clone());
+        let pack = spec_from_summary(&m.pack)?;
+        let (pack_id, run_id) = (m.pack_id.clone(), m.run_id.clone());
+        let title = m.procedure.title.clone();
+        let test_date = record::history::parse_date(&m.test_date)
+            .ok_or_else(|| anyhow!("{}: test_date '{}' is not a date", dir.join(RUN_JSON).display(), m.test_date))?;
         let ctx = SummaryContext {
             pack: &pack,
             pack_id: &pack_id,
             run_id: &run_id,
             title: &title,
             test_date,
-            cycle_count: m["cycle_count"].as_f64(),
+            cycle_count: m.cycle_count,
             policy: &policy,
             bms: bms.as_ref(),
         };
@@ -295,6 +293,10 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
             .map_err(|e| anyhow!(e))?,
         time_unit: a.time_unit.parse::<TimeUnit>().map_err(|e| anyhow!(e))?,
         skip_bad_rows: a.skip_bad_rows,
+        delimiter: match &a.delimiter {
+            Some(d) => Some(record::import::parse_delimiter(d).map_err(|e| anyhow!("--delimiter: {e}"))?),
+            None => None,
+        },
     };
     let stem = a
         .log
@@ -320,6 +322,16 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
             record::summarize::provisional_spec(&a.log, &format)?
         }
     };
+    if let Some(c) = &a.cutoff {
+        let per_cell = match units::voltage(c).map_err(|e| anyhow!("--cutoff: {e}"))? {
+            units::VoltageSpec::PerCell(v) => v,
+            units::VoltageSpec::Pack(v) => v / f64::from(pack.series.max(1)),
+        };
+        if !(per_cell > 0.5 && per_cell < 5.0) {
+            bail!("--cutoff {c}: expected a cell voltage from 0.5 V to 5 V (or the pack's)");
+        }
+        opts.cutoff_v_per_cell = Some(per_cell);
+    }
     let bms = given_bms;
     let log = ForeignLog {
         path: &a.log,
@@ -360,6 +372,10 @@ pub fn cmd_analyze(a: AnalyzeArgs) -> anyhow::Result<ExitCode> {
 pub struct PeukertArgs {
     /// Two run folders of the same pack whose capacity steps ran at different rates.
     pub runs: Vec<PathBuf>,
+    /// Keep the exponent with the pack (`peukert.toml` in its folder):
+    /// later summaries of the pack correct to the rated rate with it.
+    #[arg(long)]
+    pub save: bool,
 }
 
 /// `packbench peukert RUN_A RUN_B`: k = ln(t2/t1) / ln(I1/I2) from the two
@@ -375,7 +391,7 @@ pub fn cmd_peukert(a: PeukertArgs) -> anyhow::Result<ExitCode> {
         let c = s
             .capacity
             .ok_or_else(|| anyhow!("{}: no capacity step", r.display()))?;
-        if !c.ended_on_cutoff {
+        if c.ended_on_cutoff != Some(true) {
             bail!(
                 "{}: the capacity step did not end on its cutoff",
                 r.display()
@@ -396,6 +412,24 @@ pub fn cmd_peukert(a: PeukertArgs) -> anyhow::Result<ExitCode> {
         "pack {}: {:.3} A for {:.3} h and {:.3} A for {:.3} h -> Peukert exponent k = {k:.4}",
         pts[0].2, pts[0].0, pts[0].1, pts[1].0, pts[1].1
     );
-    println!("use it with: packbench analyze RUN --peukert-k {k:.3}");
+    if a.save {
+        let pack_dir = a.runs[0]
+            .canonicalize()
+            .ok()
+            .and_then(|d| d.parent().map(Path::to_path_buf))
+            .ok_or_else(|| anyhow!("{}: no pack folder above it", a.runs[0].display()))?;
+        let runs: Vec<String> = a
+            .runs
+            .iter()
+            .map(|r| r.file_name().and_then(|n| n.to_str()).unwrap_or("?").to_string())
+            .collect();
+        record::write::write_peukert(&pack_dir, k, &runs)?;
+        println!(
+            "saved with the pack: {} (summaries of the pack made from now on correct to the rated rate with it)",
+            pack_dir.join(record::PEUKERT_TOML).display()
+        );
+    } else {
+        println!("use it with: packbench analyze RUN --peukert-k {k:.3}, or keep it with the pack: --save");
+    }
     Ok(ExitCode::Ok)
 }

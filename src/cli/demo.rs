@@ -426,6 +426,7 @@ pub fn synthetic_fleet(
     t.warnings.clear();
     t.gaps.clear();
     let rated = t.pack.rated_capacity_ah;
+    let policy = analysis::fade::grade::Policy::default_policy();
     let spec = format!(
         "chemistry = \"{}\"\nseries = {}\nrated_capacity = \"{}Ah\"\n",
         t.pack.chemistry, t.pack.series, rated
@@ -450,9 +451,9 @@ pub fn synthetic_fleet(
             if let Some(c) = s.capacity.as_mut() {
                 let soh = 1.0 - fade * j as f64;
                 c.measured_ah = rated * soh;
-                c.corrected_ah = rated * soh;
-                c.soh_pct = soh * 100.0;
+                c.corrected_ah = Some(rated * soh);
             }
+            record::verdict::rejudge(&mut s, Some(&policy));
             let run = dir.join(&run_id);
             std::fs::create_dir_all(&run)?;
             let bytes = serde_json::to_vec(&s).map_err(std::io::Error::other)?;

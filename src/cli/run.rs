@@ -404,24 +404,30 @@ pub fn station_end_lines(
 /// state of health (on the capacity at rated conditions) and the grade;
 /// else why it stopped.
 pub fn result_figures(s: &record::Summary) -> String {
+    // Every figure from the verdict: the capacity the state of health is
+    // computed from (corrected), then SoH and grade.
+    let v = &s.verdict;
     let mut parts = Vec::new();
-    match &s.capacity {
-        Some(c) => {
-            parts.push(format!("{:.3}Ah", c.measured_ah));
-            if c.from_full_charge {
-                parts.push(format!("SOH {:.1}%", c.soh_pct));
-            } else {
-                parts.push("not from a full charge".into());
-            }
-        }
-        None => {
+    match (v.corrected_ah.get(), v.measured_ah.get()) {
+        (Some(c), _) => parts.push(format!("{c:.3}Ah")),
+        (None, Some(m)) => parts.push(format!("{m:.3}Ah measured")),
+        (None, None) => {
             if let Some(r) = &s.stop_reason {
                 parts.push(r.clone());
             }
         }
     }
-    if let Some(g) = &s.grade {
-        parts.push(format!("grade {}", g.label));
+    if s.capacity.is_some() {
+        match v.soh_pct.get() {
+            Some(p) => parts.push(format!("SOH {p:.1}%")),
+            None => parts.push(format!(
+                "no SOH ({})",
+                v.soh_pct.why().map(|w| w.words()).unwrap_or_default()
+            )),
+        }
+    }
+    if let Some(g) = v.grade_label() {
+        parts.push(format!("grade {g}"));
     }
     parts.join(" ")
 }

@@ -132,13 +132,9 @@ fn result_of(s: &record::Summary) -> ResultView {
         run_id: s.run_id.clone(),
         status: s.status.name().to_string(),
         stop_reason: s.stop_reason.clone(),
-        capacity_ah: s.capacity.as_ref().map(|c| c.measured_ah),
-        soh_pct: s
-            .capacity
-            .as_ref()
-            .filter(|c| c.from_full_charge)
-            .map(|c| c.soh_pct),
-        grade: s.grade.as_ref().map(|g| g.label.clone()),
+        capacity_ah: s.verdict.corrected_ah.get().or(s.verdict.measured_ah.get()),
+        soh_pct: s.verdict.soh_pct.get(),
+        grade: s.verdict.grade_label().map(str::to_string),
         resumable: s.status == model::status::RunStatus::Interrupted,
         error: None,
     }

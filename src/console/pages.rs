@@ -142,19 +142,21 @@ pub async fn label(
     let url = format!("http://{host}/packs/{pack}/runs/{run}");
     let qr = qr_svg(&url, 25.0).unwrap_or_default();
     let esc = report::markup::escape;
-    let grade = s
-        .grade
-        .as_ref()
-        .map(|g| g.label.clone())
+    // The verdict's figures: the capacity that counts (corrected) and its
+    // state of health, as the packs list and the report show them.
+    let v = &s.verdict;
+    let grade = v.grade_label().unwrap_or("-").to_string();
+    let cap = v
+        .corrected_ah
+        .get()
+        .or(v.measured_ah.get())
+        .map(|a| format!("{a:.2} Ah"))
         .unwrap_or("-".into());
-    let (cap, soh) = match &s.capacity {
-        Some(c) if c.from_full_charge => (
-            format!("{:.2} Ah", c.measured_ah),
-            format!("{:.1} %", c.soh_pct),
-        ),
-        Some(c) => (format!("{:.2} Ah", c.measured_ah), "-".into()),
-        None => ("-".into(), "-".into()),
-    };
+    let soh = v
+        .soh_pct
+        .get()
+        .map(|p| format!("{p:.1} %"))
+        .unwrap_or("-".into());
     let body = format!(
         r#"<!doctype html><html lang="en"><meta charset="utf-8"><title>Label {pack_e}</title>
 <style>

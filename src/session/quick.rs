@@ -115,7 +115,7 @@ fn read_spec(pack_dir: &Path) -> Result<PackSpec, RunError> {
 fn measured_capacity(runs: &[(PathBuf, Summary)]) -> Option<f64> {
     runs.iter().rev().find_map(|(_, s)| {
         let c = s.capacity.as_ref()?;
-        (s.status == RunStatus::Completed && c.from_full_charge && c.ended_on_cutoff)
+        (s.status == RunStatus::Completed && c.from_full_charge && c.ended_on_cutoff == Some(true))
             .then_some(c.measured_ah)
     })
 }

@@ -105,29 +105,26 @@ pub struct CapacityResult {
     pub step: u32,
     pub measured_ah: f64,
     pub measured_wh: f64,
-    pub rated_ah: f64,
-    /// State of health: measured / rated × 100.
-    pub soh_pct: f64,
+    /// The rating the figure was read against (absent: analysed without one).
+    pub rated_ah: Option<f64>,
     pub mean_current_a: f64,
     /// Mean discharge current as a C-rate of the rated capacity.
-    pub c_rate: f64,
+    pub c_rate: Option<f64>,
     pub duration_s: f64,
     pub end_voltage_v: Option<f64>,
     /// Did the step end on its voltage cutoff (as a capacity test must)?
-    pub ended_on_cutoff: bool,
-    /// The capacity at rated conditions (temperature, rate); `soh_pct` is
-    /// on this value.
+    /// Absent: not known (a foreign log without a stated cutoff).
+    pub ended_on_cutoff: Option<bool>,
+    /// The capacity at rated conditions as far as it was corrected (each
+    /// correction in `corrections`; absent without a rating).
     #[serde(default)]
-    pub corrected_ah: f64,
+    pub corrected_ah: Option<f64>,
     /// The corrections applied, each with its factor and why.
     #[serde(default)]
     pub corrections: Vec<Correction>,
     /// Temperature at the start of the discharge, °C.
     #[serde(default)]
     pub initial_temperature_c: Option<f64>,
-    /// State of health on the measured (uncorrected) capacity.
-    #[serde(default)]
-    pub soh_measured_pct: f64,
     /// IEEE 450 time-adjusted percent capacity (lead-acid at its rated
     /// current, to its cutoff).
     #[serde(default)]
@@ -140,6 +137,34 @@ pub struct CapacityResult {
     /// What preceded the step, in words.
     #[serde(default)]
     pub preceded_by: String,
+}
+
+impl CapacityResult {
+    /// What the corrections did, in words (only what was done).
+    pub fn conditions(&self) -> String {
+        let done: Vec<String> = self
+            .corrections
+            .iter()
+            .filter(|c| c.method != "none")
+            .map(|c| format!("{} ({}, ×{:.4})", c.kind, c.method, c.factor))
+            .collect();
+        let skipped: Vec<String> = self
+            .corrections
+            .iter()
+            .filter(|c| c.method == "none")
+            .map(|c| format!("not corrected for {}", c.kind))
+            .collect();
+        let mut out = if done.is_empty() {
+            "as measured".to_string()
+        } else {
+            format!("corrected for {}", done.join(" and "))
+        };
+        for s in skipped {
+            out.push_str("; ");
+            out.push_str(&s);
+        }
+        out
+    }
 }
 
 fn yes() -> bool {

@@ -15,7 +15,7 @@ use super::pulse::{self, is_jump, PulseTracker};
 use super::resistance::{two_level_ohm, LevelTracker, ResistanceReading};
 use super::FULL_START_TOLERANCE;
 use super::{
-    soh_pct, Analysis, CapacityResult, CurveData, CurvesSummary, CycleSummary, DvaSummary, Gap,
+    Analysis, CapacityResult, CurveData, CurvesSummary, CycleSummary, DvaSummary, Gap,
     IcaSummary, LogQuality, OcvPoint, OcvTable, PeakSummary, Recalibration, ResistanceResult,
     StepInfo, StepSummary,
 };
@@ -46,7 +46,16 @@ pub struct AnalysisOptions {
     pub detect_capacity: bool,
     /// The log came from another bench (no step records of ours).
     pub imported: bool,
+    /// A foreign log's discharge cutoff, V per cell, as the operator
+    /// states it: the capacity step counts as ended on its cutoff when its
+    /// last voltage is at most [`CUTOFF_TOLERANCE`] above it.
+    pub cutoff_v_per_cell: Option<f64>,
 }
+
+/// How far above a stated cutoff a foreign log's last discharge voltage
+/// may be and still count as ended on it: 1 % (30 mV on a 3.0 V cell),
+/// the overshoot of one sample interval at the knee (common practice).
+pub const CUTOFF_TOLERANCE: f64 = 0.01;
 
 impl Default for AnalysisOptions {
     fn default() -> Self {
@@ -62,6 +71,7 @@ impl Default for AnalysisOptions {
             correction: CorrectionPolicy::default(),
             detect_capacity: false,
             imported: false,
+            cutoff_v_per_cell: None,
         }
     }
 }
@@ -800,15 +810,30 @@ impl<'a> Analyzer<'a> {
                     ));
                 } else {
                     let ended_on_cutoff = if self.opts.imported {
-                        warnings.push(format!(
-                            "step {} (the largest discharge) is taken as the capacity step; a foreign log does not say whether it ended on its cutoff",
-                            kept.step
-                        ));
-                        false
+                        let series = f64::from(pack.series.max(1));
+                        match (self.opts.cutoff_v_per_cell, s.end_voltage_v) {
+                            (Some(cut), Some(v)) => {
+                                let on = v <= cut * series * (1.0 + CUTOFF_TOLERANCE);
+                                if !on {
+                                    warnings.push(format!(
+                                        "the capacity step {} (the largest discharge) ended at {:.3} V/cell, above the stated cutoff {cut:.3} V/cell (+{:.0} %): the capacity is a lower bound",
+                                        kept.step, v / series, CUTOFF_TOLERANCE * 100.0
+                                    ));
+                                }
+                                Some(on)
+                            }
+                            _ => {
+                                warnings.push(format!(
+                                    "step {} (the largest discharge) is taken as the capacity step; a foreign log does not say whether it ended on its cutoff (state it with --cutoff, e.g. --cutoff 3.0V/cell)",
+                                    kept.step
+                                ));
+                                None
+                            }
+                        }
                     } else {
-                        info.as_ref().and_then(|i| i.end_kind) == Some(EndKind::VoltageBelow)
+                        Some(info.as_ref().and_then(|i| i.end_kind) == Some(EndKind::VoltageBelow))
                     };
-                    if !ended_on_cutoff && !self.opts.imported {
+                    if ended_on_cutoff == Some(false) && !self.opts.imported {
                         warnings.push(format!(
                             "the capacity step {} ended on '{}', not on its cutoff voltage: the capacity is a lower bound",
                             kept.step,
@@ -996,7 +1021,7 @@ fn capacity_result(
     kept: &Kept,
     s: &StepSummary,
     t0: Option<f64>,
-    ended_on_cutoff: bool,
+    ended_on_cutoff: Option<bool>,
     opts: &AnalysisOptions,
     warnings: &mut Vec<String>,
 ) -> (CapacityResult, Option<Recalibration>) {
@@ -1030,7 +1055,7 @@ fn capacity_result(
     };
     let (corrected, corrections) = correct::correct(&test, &opts.correction);
     let ieee450 = (pack.chemistry == model::pack::Chemistry::LeadAcid
-        && ended_on_cutoff
+        && ended_on_cutoff == Some(true)
         && (mean / (rated_rate * pack.rated_capacity_ah) - 1.0).abs() <= 0.02)
         .then_some(t0)
         .flatten()
@@ -1039,22 +1064,21 @@ fn capacity_result(
         step: s.step,
         measured_ah: s.charge_out_ah,
         measured_wh: s.energy_out_wh,
-        rated_ah: pack.rated_capacity_ah,
-        soh_pct: soh_pct(corrected, pack.rated_capacity_ah),
+        rated_ah: Some(pack.rated_capacity_ah),
         mean_current_a: mean,
-        c_rate: mean / pack.rated_capacity_ah,
+        c_rate: Some(mean / pack.rated_capacity_ah),
         duration_s: s.duration_s,
         end_voltage_v: s.end_voltage_v,
         ended_on_cutoff,
-        corrected_ah: corrected,
+        corrected_ah: Some(corrected),
         corrections,
         initial_temperature_c: t0,
-        soh_measured_pct: soh_pct(s.charge_out_ah, pack.rated_capacity_ah),
         ieee450_percent: ieee450,
         from_full_charge: start.from_full_charge,
         preceded_by: start.preceded_by.clone(),
     };
-    let recalibration = start.from_full_charge.then(|| Recalibration {
+    // A new nominal only from a full charge to a known cutoff.
+    let recalibration = (start.from_full_charge && ended_on_cutoff == Some(true)).then(|| Recalibration {
         full_charge_capacity_ah: corrected,
         suggested_nominal_ah: (corrected * 1000.0).round() / 1000.0,
         measured_ah: s.charge_out_ah,
@@ -1063,9 +1087,9 @@ fn capacity_result(
         current_a: mean,
         end_voltage_v: s.end_voltage_v,
         initial_temperature_c: t0,
-        ended_on_cutoff,
+        ended_on_cutoff: true,
         conditions: format!(
-            "discharge at {:.3} A ({:.3}C) to {} from a full charge, {}; corrected to {}C{}",
+            "discharge at {:.3} A ({:.3}C) to {} from a full charge, {}; {}",
             mean,
             mean / pack.rated_capacity_ah,
             s.end_voltage_v
@@ -1073,12 +1097,7 @@ fn capacity_result(
                 .unwrap_or_else(|| "its end".into()),
             t0.map(|t| format!("starting at {t:.1} °C"))
                 .unwrap_or_else(|| "temperature not logged".into()),
-            rated_rate,
-            if pack.chemistry == model::pack::Chemistry::LeadAcid {
-                " and 20 °C (IEC 60896-11)"
-            } else {
-                " and 25 °C"
-            }
+            c.conditions()
         ),
     });
     (c, recalibration)

@@ -780,8 +780,8 @@ fn push_run(
                 &f.stop_reason,
                 &f.cycle_count,
                 &c.map(|c| c.measured_ah),
-                &c.map(|c| c.corrected_ah),
-                &c.map(|c| c.soh_pct),
+                &c.and_then(|c| c.corrected_ah),
+                &c.and_then(|c| c.soh_pct),
                 &c.map(|c| c.from_full_charge),
                 &c.map(|c| c.preceded_by.clone()),
                 &f.dcir_mohm,
@@ -925,7 +925,10 @@ pub fn histories(store: &mut Store) -> Result<Vec<PackHistory>, CentralError> {
     let rows = store
         .client
         .query(
-            "SELECT pack_id, run_id, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, folder
+            "SELECT pack_id, run_id, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, folder,
+                    (summary->'verdict'->>'counts_for_history')::boolean,
+                    summary->'verdict'->>'not_counted',
+                    (summary->'verdict'->'resistance_growth_pct'->>'value')::double precision
              FROM runs ORDER BY pack_id, test_date, run_id",
             &[],
         )
@@ -944,6 +947,16 @@ pub fn histories(store: &mut Store) -> Result<Vec<PackHistory>, CentralError> {
             stop_reason: r.get(4),
             cycle_count: r.get(5),
             capacity,
+            // The verdict's, from the stored summary; a summary older
+            // than verdicts counts as the folder walk would judge it.
+            counts_for_history: r.get::<_, Option<bool>>(16).unwrap_or_else(|| {
+                status == "completed" || status == "imported"
+            }),
+            not_counted: r
+                .get::<_, Option<String>>(17)
+                .and_then(|w| serde_json::from_value::<record::verdict::Why>(w.into()).ok())
+                .map(|w| w.words().to_string()),
+            resistance_growth_pct: r.get(18),
             dcir_mohm: r.get(11),
             coulombic_efficiency_pct: r.get(12),
             grade: r.get(13),

@@ -375,8 +375,29 @@ impl RunRecord {
         ];
         if let Some(c) = &s.capacity {
             out.push(("packbench.capacity_ah", c.measured_ah.to_string()));
-            out.push(("packbench.soh_pct", c.soh_pct.to_string()));
         }
+        // The verdict's figures; an absent one says why.
+        let v = &s.verdict;
+        for (k, f) in [
+            ("packbench.soh_pct", &v.soh_pct),
+            ("packbench.corrected_ah", &v.corrected_ah),
+            ("packbench.dcir_mohm", &v.resistance_mohm),
+            ("packbench.new_nominal_ah", &v.new_nominal_ah),
+        ] {
+            out.push((
+                k,
+                match f.get() {
+                    Some(x) => x.to_string(),
+                    None => format!("absent: {}", f.why().map(|w| w.words()).unwrap_or("")),
+                },
+            ));
+        }
+        out.push((
+            "packbench.grade",
+            v.grade_label()
+                .map(str::to_string)
+                .unwrap_or_else(|| format!("absent: {}", v.grade.why().map(|w| w.words()).unwrap_or(""))),
+        ));
         out.into_iter().map(|(k, v)| (k.to_string(), v)).collect()
     }
 

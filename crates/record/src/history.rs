@@ -143,18 +143,21 @@ pub fn parse_history_csv(
             capacity_ah,
             soh_pct: capacity_ah / rated_ah * 100.0,
             resistance_mohm,
+            resistance_growth_pct: None,
             coulombic_efficiency_pct: None,
             grade: None,
             source: format!("{} line {line_no}", path.display()),
             run_dir: None,
             groups: None,
+            flags: Vec::new(),
         });
     }
     Ok(out)
 }
 
-/// What a pack's history takes from one run's summary: the figures the
-/// fade fit and the fleet read, small enough to keep in an index.
+/// What a pack's history takes from one run's summary: its verdict's
+/// figures the fade fit and the fleet read, small enough to keep in an
+/// index.
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct RunFacts {
     pub run_id: String,
@@ -164,8 +167,14 @@ pub struct RunFacts {
     pub cycle_count: Option<f64>,
     /// Of the capacity step, if there was one.
     pub capacity: Option<CapacityFacts>,
+    /// The verdict's: does the run enter the capacity history?
+    pub counts_for_history: bool,
+    /// Why not, in words.
+    pub not_counted: Option<String>,
     pub dcir_mohm: Option<f64>,
-    /// The last finished cycle's coulombic efficiency, %.
+    /// The verdict's growth of this run's resistance, %.
+    pub resistance_growth_pct: Option<f64>,
+    /// The verdict's coulombic efficiency (the capacity step's cycle), %.
     pub coulombic_efficiency_pct: Option<f64>,
     pub grade: Option<String>,
     /// Discharge Ah packbench measured in the run (the cycle count's
@@ -177,18 +186,19 @@ pub struct RunFacts {
     pub groups: Option<analysis::fade::history::GroupSpread>,
 }
 
-/// The capacity step's figures a history needs.
+/// The capacity step's figures a history needs (the verdict's).
 #[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct CapacityFacts {
     pub measured_ah: f64,
-    pub corrected_ah: f64,
-    pub soh_pct: f64,
+    pub corrected_ah: Option<f64>,
+    pub soh_pct: Option<f64>,
     pub from_full_charge: bool,
     pub preceded_by: String,
 }
 
 impl CapacityFacts {
-    /// From the columns an index keeps of it: all of them, or none.
+    /// From the columns an index keeps of it (the measured figure, its
+    /// start and what preceded it are there whenever a step was).
     pub fn from_columns(
         measured_ah: Option<f64>,
         corrected_ah: Option<f64>,
@@ -198,8 +208,8 @@ impl CapacityFacts {
     ) -> Option<CapacityFacts> {
         Some(CapacityFacts {
             measured_ah: measured_ah?,
-            corrected_ah: corrected_ah?,
-            soh_pct: soh_pct?,
+            corrected_ah,
+            soh_pct,
             from_full_charge: from_full_charge?,
             preceded_by: preceded_by?,
         })
@@ -224,6 +234,7 @@ pub fn from_index(
 
 impl RunFacts {
     pub fn of(s: &Summary) -> RunFacts {
+        let v = &s.verdict;
         RunFacts {
             run_id: s.run_id.clone(),
             test_date: s.test_date.clone(),
@@ -232,18 +243,17 @@ impl RunFacts {
             cycle_count: s.cycle_count,
             capacity: s.capacity.as_ref().map(|c| CapacityFacts {
                 measured_ah: c.measured_ah,
-                corrected_ah: c.corrected_ah,
-                soh_pct: c.soh_pct,
+                corrected_ah: v.corrected_ah.get(),
+                soh_pct: v.soh_pct.get(),
                 from_full_charge: c.from_full_charge,
                 preceded_by: c.preceded_by.clone(),
             }),
-            dcir_mohm: s.resistance.as_ref().map(|r| r.dcir_mohm),
-            coulombic_efficiency_pct: s
-                .cycles
-                .iter()
-                .rev()
-                .find_map(|c| c.coulombic_efficiency_pct),
-            grade: s.grade.as_ref().map(|g| g.label.clone()),
+            counts_for_history: v.counts_for_history,
+            not_counted: v.not_counted.map(|w| w.words().to_string()),
+            dcir_mohm: v.resistance_mohm.get(),
+            resistance_growth_pct: v.resistance_growth_pct.get(),
+            coulombic_efficiency_pct: v.coulombic_efficiency_pct.get(),
+            grade: v.grade_label().map(str::to_string),
             discharged_ah: s.steps.iter().map(|st| st.charge_out_ah).sum(),
             groups: s
                 .groups
@@ -312,20 +322,29 @@ pub fn assemble(
     // (aborted runs moved charge too).
     let mut run_points = Vec::new();
     for (dir, s) in runs {
-        let date = parse_date(&s.test_date).unwrap_or_default();
-        let from_full = s.capacity.as_ref().is_some_and(|c| c.from_full_charge);
-        // Our completed runs and tests imported from other benches alike.
-        let usable = s.status.is_complete() && from_full;
+        let Some(date) = parse_date(&s.test_date) else {
+            // A date that does not read is not 1970: the run is left out
+            // of the fit, and named.
+            left_out.push(LeftOut {
+                run_id: s.run_id.clone(),
+                status: s.status,
+                reason: format!("its test date '{}' is not a date", s.test_date),
+            });
+            continue;
+        };
+        // The verdict says whether the run counts: our completed runs and
+        // tests imported from other benches alike.
+        let usable = s.counts_for_history && s.capacity.as_ref().is_some_and(|c| c.soh_pct.is_some());
         if !usable {
             left_out.push(LeftOut {
                 run_id: s.run_id.clone(),
                 status: s.status,
-                reason: match (&s.stop_reason, &s.capacity) {
-                    (Some(r), _) => r.clone(),
-                    (None, Some(c)) if !c.from_full_charge => format!(
-                        "the capacity step did not start from a full charge ({})",
-                        c.preceded_by
-                    ),
+                reason: match (&s.stop_reason, &s.not_counted, &s.capacity) {
+                    (Some(r), _, _) => r.clone(),
+                    (None, Some(w), Some(c)) if !c.from_full_charge => {
+                        format!("{w} ({})", c.preceded_by)
+                    }
+                    (None, Some(w), _) => w.clone(),
                     _ => "no capacity measured".into(),
                 },
             });
@@ -358,29 +377,28 @@ pub fn assemble(
             None => known_cycles.unwrap_or(0.0) + counted_since,
         };
         if usable {
-            if let Some(c) = &s.capacity {
+            if let Some((c, soh)) = s.capacity.as_ref().and_then(|c| Some((c, c.soh_pct?))) {
                 merged.push(HistoryPoint {
                     date,
                     cycles,
                     cycles_given: s.cycle_count.is_some(),
-                    capacity_ah: if c.corrected_ah > 0.0 {
-                        c.corrected_ah
-                    } else {
-                        c.measured_ah
-                    },
-                    soh_pct: c.soh_pct,
+                    capacity_ah: c.corrected_ah.unwrap_or(c.measured_ah),
+                    soh_pct: soh,
                     resistance_mohm: s.dcir_mohm,
+                    resistance_growth_pct: s.resistance_growth_pct,
                     coulombic_efficiency_pct: s.coulombic_efficiency_pct,
                     grade: s.grade.clone(),
                     source: format!("run {}", s.run_id),
                     run_dir: Some(dir.clone()),
                     groups: s.groups.clone(),
+                    flags: Vec::new(),
                 });
             }
         }
         counted_since += s.discharged_ah / spec.rated_capacity_ah;
     }
     merged.extend(csv_iter);
+    analysis::fade::history::flag_jumps(&mut merged);
     PackHistory {
         pack_id: pack_id.to_string(),
         spec,

@@ -22,7 +22,7 @@ use std::path::{Path, PathBuf};
 /// The index file in a results folder.
 pub const INDEX_SQLITE: &str = "index.sqlite";
 /// The index layout this build writes and reads.
-pub const INDEX_SCHEMA: i64 = 2;
+pub const INDEX_SCHEMA: i64 = 3;
 
 #[derive(Debug, thiserror::Error)]
 pub enum IndexError {
@@ -74,6 +74,9 @@ CREATE TABLE IF NOT EXISTS runs (
     coulombic_efficiency_pct REAL,
     grade TEXT,
     discharged_ah REAL NOT NULL,
+    counts_for_history INTEGER NOT NULL,
+    not_counted TEXT,
+    resistance_growth_pct REAL,
     PRIMARY KEY (pack_id, folder)
 );
 CREATE TABLE IF NOT EXISTS steps (
@@ -491,7 +494,7 @@ impl Index {
         for (name, st, f, (steps, cycles, readings)) in &facts {
             let c = f.capacity.as_ref();
             tx.execute(
-                "INSERT OR REPLACE INTO runs (pack_id, folder, run_id, stamp, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17)",
+                "INSERT OR REPLACE INTO runs (pack_id, folder, run_id, stamp, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, counts_for_history, not_counted, resistance_growth_pct) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20)",
                 params![
                     pack_id,
                     name,
@@ -502,14 +505,17 @@ impl Index {
                     f.stop_reason,
                     f.cycle_count,
                     c.map(|c| c.measured_ah),
-                    c.map(|c| c.corrected_ah),
-                    c.map(|c| c.soh_pct),
+                    c.and_then(|c| c.corrected_ah),
+                    c.and_then(|c| c.soh_pct),
                     c.map(|c| c.from_full_charge),
                     c.map(|c| c.preceded_by.clone()),
                     f.dcir_mohm,
                     f.coulombic_efficiency_pct,
                     f.grade,
-                    f.discharged_ah
+                    f.discharged_ah,
+                    f.counts_for_history,
+                    f.not_counted,
+                    f.resistance_growth_pct
                 ],
             )
             .map_err(&sql)?;
@@ -527,7 +533,7 @@ impl Index {
             let mut st = self
                 .conn
                 .prepare(
-                    "SELECT pack_id, run_id, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, folder FROM runs ORDER BY pack_id, test_date, run_id",
+                    "SELECT pack_id, run_id, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, folder, counts_for_history, not_counted, resistance_growth_pct FROM runs ORDER BY pack_id, test_date, run_id",
                 )
                 .map_err(&sql)?;
             let rows = st
@@ -557,6 +563,9 @@ impl Index {
                             coulombic_efficiency_pct: r.get(12)?,
                             grade: r.get(13)?,
                             discharged_ah: r.get(14)?,
+                            counts_for_history: r.get(16)?,
+                            not_counted: r.get(17)?,
+                            resistance_growth_pct: r.get(18)?,
                             groups: None,
                         },
                     ))

@@ -20,6 +20,7 @@ pub mod manifest;
 pub mod read;
 pub mod schema;
 pub mod summarize;
+pub mod verdict;
 pub mod write;
 pub mod writer;
 
@@ -48,6 +49,8 @@ pub const RUN_LOCK: &str = "run.lock";
 /// Space set aside while a run is live, freed for its final records when
 /// the disk fills ([`write::RESERVE_BYTES`]).
 pub const RESERVE: &str = ".reserve";
+/// A pack's own Peukert exponent, measured by `packbench peukert --save`.
+pub const PEUKERT_TOML: &str = "peukert.toml";
 /// The raw-traffic trace of a run (`run --trace`).
 pub const TRACE_LOG: &str = "trace.log";
 
@@ -81,8 +84,13 @@ pub struct Summary {
     pub cycle_count: Option<f64>,
     pub capacity: Option<CapacityResult>,
     pub resistance: Option<ResistanceResult>,
-    /// The grade under the shop's policy.
-    pub grade: Option<analysis::fade::grade::Grade>,
+    /// The verdict: every figure a user acts on, judged once
+    /// ([`verdict::judge`]); older records get one on reading.
+    #[serde(default)]
+    pub verdict: verdict::Verdict,
+    /// The grade of a record older than verdicts (read into its verdict).
+    #[serde(default, rename = "grade", skip_serializing)]
+    pub older_grade: Option<analysis::fade::grade::Grade>,
     pub steps: Vec<StepSummary>,
     pub cycles: Vec<CycleSummary>,
     pub warnings: Vec<String>,

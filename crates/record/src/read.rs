@@ -197,7 +197,11 @@ pub fn read_manifest(path: &Path) -> Result<crate::manifest::Manifest, ReadError
 
 /// `summary.json`, checked for its version.
 pub fn read_summary(path: &Path) -> Result<crate::Summary, ReadError> {
-    crate::schema::read_json(path)
+    let mut s: crate::Summary = crate::schema::read_json(path)?;
+    if s.schema_version < crate::schema::VERDICT_SINCE {
+        crate::verdict::judge_older(&mut s);
+    }
+    Ok(s)
 }
 
 /// Read `groups.csv`, if the run has one: each scan's group voltages and
@@ -294,4 +298,37 @@ pub fn read_groups(dir: &Path) -> Result<Option<Vec<model::groups::GroupSample>>
         });
     }
     Ok(Some(out))
+}
+
+/// A pack's own Peukert exponent (`peukert.toml`), if it has one: a file
+/// that does not read is an error with its place, not a silent default.
+pub fn read_peukert(pack_dir: &Path) -> Result<Option<f64>, ReadError> {
+    let path = pack_dir.join(crate::PEUKERT_TOML);
+    let text = match std::fs::read_to_string(&path) {
+        Ok(t) => t,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(None),
+        Err(error) => return Err(ReadError::Io { path, error }),
+    };
+    #[derive(serde::Deserialize)]
+    struct File {
+        exponent: f64,
+    }
+    let f: File = toml::from_str(&text).map_err(|e| {
+        let loc = model::location::Location::of_span(&path, &text, &e.span().unwrap_or(0..0));
+        ReadError::Bad {
+            path: path.clone(),
+            line: loc.line,
+            column: loc.column,
+            message: e.message().to_string(),
+        }
+    })?;
+    if !(f.exponent.is_finite() && (1.0..=2.0).contains(&f.exponent)) {
+        return Err(ReadError::Bad {
+            path,
+            line: 1,
+            column: 1,
+            message: format!("exponent {}: expected 1.0 to 2.0", f.exponent),
+        });
+    }
+    Ok(Some(f.exponent))
 }

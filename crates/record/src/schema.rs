@@ -10,7 +10,11 @@ use serde::Deserialize;
 use std::path::Path;
 
 /// The record layout this build writes and reads.
-pub const SCHEMA_VERSION: u32 = 1;
+pub const SCHEMA_VERSION: u32 = 2;
+
+/// The record version whose summaries carry their verdict (older ones are
+/// judged on reading from the figures they hold).
+pub const VERDICT_SINCE: u32 = 2;
 
 /// The version of a record that does not say (written before the field).
 pub fn unversioned() -> u32 {

@@ -5,7 +5,7 @@
 //! current when the log has no step column). Streams the log once.
 
 use crate::error::ReadError;
-use analysis::fade::grade::{GradeInputs, Policy};
+use analysis::fade::grade::Policy;
 use analysis::integrate::Interruption;
 use analysis::pulse::is_jump;
 use analysis::{AnalysisOptions, Analyzer, CurveData};
@@ -86,47 +86,32 @@ pub fn build_summary(
     duration_s: f64,
     pack_dir: Option<&Path>,
 ) -> Summary {
-    // A grade stands on a measured capacity: a capacity figure that did
-    // not start from a full charge grades nothing (it is what the pack
-    // gave from where it was), and neither does a run without one (a
-    // screening or resistance run: its partial cycles' efficiencies say
-    // nothing of the pack's grade).
-    let gradeable =
-        outcome.status.is_complete() && a.capacity.as_ref().is_some_and(|c| c.from_full_charge);
-    let grade = gradeable.then(|| {
-        let own = a.resistance.as_ref().map(|r| r.dcir_mohm);
-        let reference = pack_dir
-            .and_then(|d| reference_resistance(d, ctx))
-            .or(ctx.pack.rated_resistance_mohm);
-        let growth = match (own, reference) {
-            (Some(r), Some(r0)) if r0 > 0.0 => Some((r / r0 - 1.0) * 100.0),
-            _ => None,
-        };
-        ctx.policy.grade(&GradeInputs {
-            chemistry: ctx.pack.chemistry,
-            soh_pct: a.capacity.as_ref().map(|c| c.soh_pct),
-            resistance_growth_pct: growth,
-            // The cycle of the capacity step (a full charge and the full
-            // discharge); without a capacity step, the last complete cycle.
-            weakest_group: a.groups.as_ref().and_then(|g| g.weakest),
-            weakest_group_share_pct: a.groups.as_ref().and_then(|g| g.weakest_share_pct),
-            group_capacity_spread_pct: a.groups.as_ref().and_then(|g| g.capacity_spread_pct),
-            coulombic_efficiency_pct: match &a.capacity {
-                Some(c) => {
-                    let cycle = a.steps.iter().find(|s| s.step == c.step).map(|s| s.cycle);
-                    a.cycles
-                        .iter()
-                        .find(|x| Some(x.cycle) == cycle)
-                        .and_then(|x| x.coulombic_efficiency_pct)
-                }
-                None => a
-                    .cycles
-                    .iter()
-                    .rev()
-                    .find_map(|c| c.coulombic_efficiency_pct),
-            },
-        })
+    let reference = pack_dir
+        .and_then(|d| reference_resistance(d, ctx))
+        .or(ctx.pack.rated_resistance_mohm.map(|mohm| crate::verdict::Reference {
+            mohm,
+            source: "rated".into(),
+        }));
+    let (verdict, judged) = crate::verdict::judge(&crate::verdict::Inputs {
+        status: outcome.status,
+        chemistry: ctx.pack.chemistry,
+        rated_ah: Some(ctx.pack.rated_capacity_ah),
+        rated_rate_c: Some(
+            ctx.pack
+                .rated_rate_c
+                .unwrap_or_else(|| ctx.pack.chemistry.default_rated_rate_c()),
+        ),
+        capacity: a.capacity.as_ref(),
+        recalibration: a.recalibration.as_ref(),
+        resistance: a.resistance.as_ref(),
+        reference,
+        steps: &a.steps,
+        cycles: &a.cycles,
+        groups: a.groups.as_ref(),
+        policy: Some(ctx.policy),
     });
+    let mut a = a;
+    a.warnings.extend(judged);
     let bms = ctx.bms.filter(|b| !b.is_empty()).map(|b| {
         analysis::bms::compare(b, &a.steps, a.capacity.as_ref(), a.recalibration.as_ref())
     });
@@ -142,7 +127,8 @@ pub fn build_summary(
         cycle_count: ctx.cycle_count,
         capacity: a.capacity,
         resistance: a.resistance,
-        grade,
+        verdict,
+        older_grade: None,
         steps: a.steps,
         cycles: a.cycles,
         warnings: a.warnings,
@@ -300,6 +286,14 @@ pub fn summarize_run_with_curves(
 ) -> Result<(Summary, CurveData), ReadError> {
     let events = read_events(&dir.join(EVENTS_JSONL))?;
     let infos = step_infos(&events);
+    // The pack's own Peukert exponent, kept with it, unless one was given.
+    let mut opts = opts;
+    if opts.correction.peukert_k.is_none() {
+        if let Some(k) = crate::read::read_peukert(dir.parent().unwrap_or(dir))? {
+            opts.correction.peukert_k = Some(k);
+            opts.correction.peukert_source = analysis::correct::PeukertSource::MeasuredForPack;
+        }
+    }
     let mut an = Analyzer::new(ctx.pack, &infos, opts);
     an.set_breaks(
         events
@@ -510,18 +504,30 @@ pub const NEEDS_RATING: [&str; 6] = [
 /// Clear what a stand-in spec ([`provisional_spec`]) would have made up,
 /// and say so.
 pub fn mark_unrated(s: &mut Summary) {
-    s.grade = None;
     s.recalibration = None;
-    s.pack.rated_capacity_ah = 0.0;
     if let Some(c) = s.capacity.as_mut() {
-        c.rated_ah = 0.0;
-        c.soh_pct = 0.0;
-        c.soh_measured_pct = 0.0;
-        c.c_rate = 0.0;
-        c.corrected_ah = 0.0;
+        c.rated_ah = None;
+        c.c_rate = None;
+        c.corrected_ah = None;
         c.corrections.clear();
         c.ieee450_percent = None;
     }
+    let (v, _) = crate::verdict::judge(&crate::verdict::Inputs {
+        status: s.status,
+        chemistry: s.pack.chemistry,
+        rated_ah: None,
+        rated_rate_c: None,
+        capacity: s.capacity.as_ref(),
+        recalibration: None,
+        resistance: s.resistance.as_ref(),
+        reference: None,
+        steps: &s.steps,
+        cycles: &s.cycles,
+        groups: s.groups.as_ref(),
+        policy: None,
+    });
+    s.verdict = v;
+    s.pack.rated_capacity_ah = 0.0;
     s.warnings
         .retain(|w| !w.contains("no state of health, grade or new nominal"));
     s.needs_rating = NEEDS_RATING.iter().map(|x| x.to_string()).collect();
@@ -543,19 +549,30 @@ pub struct SummaryContext<'a> {
 
 /// The resistance growth is measured against: the rated resistance when
 /// the spec has one, else the first reading of an earlier completed run of
-/// the pack, else (first reading ever) this run's own.
-pub fn reference_resistance(pack_dir: &Path, ctx: &SummaryContext<'_>) -> Option<f64> {
-    if let Some(r) = ctx.pack.rated_resistance_mohm {
-        return Some(r);
+/// the pack (named), else none (this run's is the pack's first).
+pub fn reference_resistance(
+    pack_dir: &Path,
+    ctx: &SummaryContext<'_>,
+) -> Option<crate::verdict::Reference> {
+    if let Some(mohm) = ctx.pack.rated_resistance_mohm {
+        return Some(crate::verdict::Reference {
+            mohm,
+            source: "rated".into(),
+        });
     }
-    let date = ctx.test_date.to_string();
     let runs = crate::history::run_summaries(pack_dir).ok()?;
     runs.iter()
         .filter(|(_, s)| {
             s.status == RunStatus::Completed
-                && (s.test_date.as_str(), s.run_id.as_str()) < (date.as_str(), ctx.run_id)
+                && crate::history::parse_date(&s.test_date)
+                    .is_some_and(|d| (d, s.run_id.as_str()) < (ctx.test_date, ctx.run_id))
         })
-        .find_map(|(_, s)| s.resistance.as_ref().map(|r| r.dcir_mohm))
+        .find_map(|(_, s)| {
+            s.resistance.as_ref().map(|r| crate::verdict::Reference {
+                mohm: r.dcir_mohm,
+                source: format!("run {}", s.run_id),
+            })
+        })
 }
 
 #[cfg(test)]

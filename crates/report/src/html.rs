@@ -50,7 +50,8 @@ fn f(v: Option<f64>, d: usize) -> String {
 /// The printable grade card of a run.
 fn grade_card(s: &Summary) -> String {
     let mut o = String::new();
-    let label = s.grade.as_ref().map(|g| g.label.as_str()).unwrap_or("–");
+    let v = &s.verdict;
+    let label = v.grade_label().unwrap_or("–");
     let _ = write!(
         o,
         "<div class=\"card\"><div class=\"grade\">{}</div><b>Pack {}</b><br>{} {}S, rated {} Ah<br>tested {}",
@@ -62,62 +63,43 @@ fn grade_card(s: &Summary) -> String {
         escape(&s.test_date)
     );
     let _ = write!(o, "<dl>");
-    let ce = s
-        .cycles
-        .iter()
-        .rev()
-        .find_map(|c| c.coulombic_efficiency_pct);
     let rows = [
+        ("State of health", Some(v.soh_pct.show(1, " %"))),
         (
-            "State of health",
-            s.capacity.as_ref().map(|c| {
-                if c.from_full_charge {
-                    format!("{:.1} %", c.soh_pct)
-                } else {
-                    "not measured: the discharge did not start from a full charge".into()
-                }
+            // The capacity the state of health is computed from, and what
+            // was done to it.
+            "Capacity (corrected)",
+            Some(match v.corrected_ah.get() {
+                Some(c) => format!("{c:.3} Ah: {}", v.conditions),
+                None => v.corrected_ah.show(3, " Ah"),
             }),
         ),
         (
-            // The capacity the state of health is computed from, and how it
-            // was brought to rated conditions.
-            "At rated conditions",
-            s.capacity
-                .as_ref()
-                .filter(|c| c.corrected_ah > 0.0)
-                .map(|c| {
-                    let factors: Vec<String> = c
-                        .corrections
-                        .iter()
-                        .filter(|x| x.factor != 1.0)
-                        .map(|x| format!("{} ×{:.4} ({})", x.kind, x.factor, x.method))
-                        .collect();
-                    if factors.is_empty() {
-                        format!("{:.3} Ah (no correction)", c.corrected_ah)
-                    } else {
-                        format!("{:.3} Ah: {}", c.corrected_ah, factors.join(", "))
-                    }
-                }),
-        ),
-        (
             "Measured capacity",
-            s.capacity
-                .as_ref()
-                .map(|c| format!("{:.3} Ah / {:.1} Wh", c.measured_ah, c.measured_wh)),
+            v.measured_ah
+                .get()
+                .map(|a| format!("{a:.3} Ah / {} Wh", f(v.measured_wh.get(), 1))),
         ),
         (
             "At",
-            s.capacity
-                .as_ref()
-                .map(|c| format!("{:.2}C to {} V", c.c_rate, f(c.end_voltage_v, 2))),
+            s.capacity.as_ref().map(|c| {
+                format!(
+                    "{} to {} V",
+                    v.test_rate_c.show(2, "C"),
+                    f(c.end_voltage_v, 2)
+                )
+            }),
         ),
+        ("New nominal for the BMS", Some(v.new_nominal_ah.show(3, " Ah"))),
+        ("DC resistance", Some(v.resistance_mohm.show(1, " mΩ"))),
+        ("Resistance growth", Some(v.resistance_growth_pct.show(1, " %"))),
         (
-            "DC resistance",
-            s.resistance
-                .as_ref()
-                .map(|r| format!("{:.1} mΩ", r.dcir_mohm)),
+            "Coulombic efficiency",
+            Some(match v.efficiency_cycle {
+                Some(c) => format!("{} (cycle {c})", v.coulombic_efficiency_pct.show(2, " %")),
+                None => v.coulombic_efficiency_pct.show(2, " %"),
+            }),
         ),
-        ("Coulombic efficiency", ce.map(|c| format!("{c:.2} %"))),
         (
             "Weakest group",
             s.groups.as_ref().and_then(|g| {
@@ -142,7 +124,13 @@ fn grade_card(s: &Summary) -> String {
         );
     }
     let _ = write!(o, "</dl>");
-    if let Some(g) = &s.grade {
+    if let Some(w) = v.grade.why() {
+        let _ = write!(o, "<div><i>not graded: {}</i></div>", escape(w.words()));
+    }
+    for flag in &v.flags {
+        let _ = write!(o, "<div class=\"flag\">{}</div>", escape(flag));
+    }
+    if let Some(g) = v.grade.value() {
         let _ = write!(
             o,
             "<div><i>{}</i></div><ul style=\"font-size:12px;margin:4px 0 0 16px;padding:0\">",
@@ -252,44 +240,48 @@ pub fn run_report(s: &Summary, charts: &ChartData) -> String {
 pub fn summary_rows(s: &Summary) -> Vec<(String, String)> {
     let mut out: Vec<(String, String)> = Vec::new();
     let mut row = |k: &str, v: String| out.push((k.to_string(), v));
+    let v = &s.verdict;
     if let Some(c) = &s.capacity {
         row(
             "Measured capacity",
             format!("{:.4} Ah, {:.2} Wh", c.measured_ah, c.measured_wh),
         );
-        if c.corrected_ah > 0.0 {
-            let why: Vec<String> = c
-                .corrections
-                .iter()
-                .map(|x| format!("{} ×{:.4}: {}", x.kind, x.factor, x.why))
-                .collect();
-            row(
-                "At rated conditions",
-                format!("{:.4} Ah ({})", c.corrected_ah, why.join("; ")),
-            );
-        }
+        let why: Vec<String> = c
+            .corrections
+            .iter()
+            .map(|x| format!("{} ×{:.4}: {}", x.kind, x.factor, x.why))
+            .collect();
+        row(
+            "Capacity (corrected)",
+            match v.corrected_ah.get() {
+                Some(a) if why.is_empty() => format!("{a:.4} Ah ({})", v.conditions),
+                Some(a) => format!("{a:.4} Ah ({})", why.join("; ")),
+                None => v.corrected_ah.show(4, " Ah"),
+            },
+        );
         row(
             "State of health",
-            format!("{:.2} % of rated {} Ah", c.soh_pct, c.rated_ah),
+            match (v.soh_pct.get(), c.rated_ah) {
+                (Some(p), Some(r)) => format!("{p:.2} % of rated {r} Ah"),
+                _ => v.soh_pct.show(2, " %"),
+            },
         );
-        if let Some(p) = c.ieee450_percent {
-            row("IEEE 450 percent capacity", format!("{p:.1} %"));
-        }
+        row("IEEE 450 percent capacity", v.ieee450_percent.show(1, " %"));
         row(
             "Discharge",
             format!(
-                "{:.3} A ({:.3}C) for {}",
+                "{:.3} A ({}) for {}",
                 c.mean_current_a,
-                c.c_rate,
+                v.test_rate_c.show(3, "C"),
                 HumanDuration(c.duration_s)
             ),
         );
         row(
             "Ended on cutoff",
-            if c.ended_on_cutoff {
-                "yes".into()
-            } else {
-                "no (lower bound)".into()
+            match v.ended_on_cutoff {
+                Some(true) => "yes".into(),
+                Some(false) => "no (lower bound)".into(),
+                None => "not known (the log does not say; see --cutoff)".into(),
             },
         );
     } else {
@@ -297,6 +289,19 @@ pub fn summary_rows(s: &Summary) -> Vec<(String, String)> {
             "Measured capacity",
             "none (no completed capacity step)".into(),
         );
+    }
+    row(
+        "Grade",
+        match v.grade.value() {
+            Some(g) => format!("{} — {}", g.label, g.meaning),
+            None => format!(
+                "not graded ({})",
+                v.grade.why().map(|w| w.words()).unwrap_or_default()
+            ),
+        },
+    );
+    for flag in &v.flags {
+        row("Flag", flag.clone());
     }
     if let Some(r) = &s.resistance {
         row(
@@ -321,15 +326,22 @@ pub fn summary_rows(s: &Summary) -> Vec<(String, String)> {
             }
         }
     }
-    if let Some(rc) = &s.recalibration {
-        row(
-            "Recalibration",
-            format!(
-                "new nominal {:.3} Ah — {}",
-                rc.suggested_nominal_ah, rc.conditions
-            ),
-        );
-    }
+    row(
+        "Resistance growth",
+        match (&v.resistance_growth_pct, &v.resistance_reference) {
+            (f, Some(r)) if f.get().is_some() => {
+                format!("{} against {:.2} mΩ ({})", f.show(1, " %"), r.mohm, r.source)
+            }
+            (f, _) => f.show(1, " %"),
+        },
+    );
+    row(
+        "New nominal for the BMS",
+        match (v.new_nominal_ah.get(), &s.recalibration) {
+            (Some(n), Some(rc)) => format!("{n:.3} Ah — {}", rc.conditions),
+            _ => v.new_nominal_ah.show(3, " Ah"),
+        },
+    );
     if let Some(cv) = &s.curves {
         for i in cv.ica.iter().filter(|i| !i.peaks.is_empty()) {
             let peaks: Vec<String> = i

@@ -175,14 +175,26 @@ pub fn summary(s: &Summary) -> String {
     if let Some(g) = &s.groups {
         groups_text(&mut o, g);
     }
-    if let Some(g) = &s.grade {
-        let _ = writeln!(
-            o,
-            "  Grade:             {} ({}) — {}",
-            g.label,
-            g.meaning,
-            g.reasons.join("; ")
-        );
+    match s.verdict.grade.value() {
+        Some(g) => {
+            let _ = writeln!(
+                o,
+                "  Grade:             {} ({}) — {}",
+                g.label,
+                g.meaning,
+                g.reasons.join("; ")
+            );
+        }
+        None => {
+            let _ = writeln!(
+                o,
+                "  Grade:             not graded ({})",
+                s.verdict.grade.why().map(|w| w.words()).unwrap_or_default()
+            );
+        }
+    }
+    for flag in &s.verdict.flags {
+        let _ = writeln!(o, "  FLAG:              {flag}");
     }
     for c in &s.cycles {
         if let (Some(ce), Some(ee)) = (c.coulombic_efficiency_pct, c.energy_efficiency_pct) {
@@ -209,12 +221,12 @@ pub fn summary(s: &Summary) -> String {
 /// The capacity figures: measured, where it started, at rated conditions,
 /// state of health.
 fn capacity_lines(o: &mut String, s: &Summary) {
+    let v = &s.verdict;
     match &s.capacity {
         Some(c) => {
-            let rate = if s.needs_rating.is_empty() {
-                format!(" ({:.2}C)", c.c_rate)
-            } else {
-                String::new()
+            let rate = match v.test_rate_c.get() {
+                Some(r) => format!(" ({r:.2}C)"),
+                None => String::new(),
             };
             let _ = writeln!(
                 o,
@@ -222,10 +234,10 @@ fn capacity_lines(o: &mut String, s: &Summary) {
                 c.measured_ah,
                 c.measured_wh,
                 c.mean_current_a,
-                if c.ended_on_cutoff {
-                    "to the cutoff"
-                } else {
-                    "NOT to the cutoff (lower bound)"
+                match v.ended_on_cutoff {
+                    Some(true) => "to the cutoff",
+                    Some(false) => "NOT to the cutoff (lower bound)",
+                    None => "cutoff not known (state it with --cutoff)",
                 }
             );
             if !c.preceded_by.is_empty() {
@@ -240,28 +252,25 @@ fn capacity_lines(o: &mut String, s: &Summary) {
                     }
                 );
             }
-            if c.corrected_ah > 0.0 {
-                let _ = writeln!(
-                    o,
-                    "  At rated conditions: {:.3} Ah{}",
-                    c.corrected_ah,
-                    c.corrections
-                        .iter()
-                        .filter(|x| x.factor != 1.0)
-                        .map(|x| format!("; {} ×{:.4} ({})", x.kind, x.factor, x.method))
-                        .collect::<String>()
-                );
+            if let Some(a) = v.corrected_ah.get() {
+                let _ = writeln!(o, "  Capacity (corrected): {a:.3} Ah, {}", v.conditions);
             }
-            if s.needs_rating.is_empty() {
-                let _ = writeln!(
-                    o,
-                    "  State of health:   {:.1} % of rated {:.3} Ah",
-                    c.soh_pct, c.rated_ah
-                );
-            }
-            if let Some(p) = c.ieee450_percent {
+            let _ = writeln!(
+                o,
+                "  State of health:   {}",
+                match (v.soh_pct.get(), c.rated_ah) {
+                    (Some(p), Some(r)) => format!("{p:.1} % of rated {r:.3} Ah"),
+                    _ => v.soh_pct.show(1, " %"),
+                }
+            );
+            if let Some(p) = v.ieee450_percent.get() {
                 let _ = writeln!(o, "  IEEE 450 percent capacity: {p:.1} %");
             }
+            let _ = writeln!(
+                o,
+                "  New nominal (BMS): {}",
+                v.new_nominal_ah.show(3, " Ah")
+            );
         }
         None => {
             let _ = writeln!(o, "  Measured capacity: none (no completed capacity step)");
@@ -271,6 +280,38 @@ fn capacity_lines(o: &mut String, s: &Summary) {
 
 /// The resistance figures and the dQ/dV peaks.
 fn resistance_lines(o: &mut String, s: &Summary) {
+    if s.resistance.is_none() {
+        for p in s.pulse_resistance.iter().take(8) {
+            let vals: Vec<String> = p
+                .values
+                .iter()
+                .map(|x| format!("{:.2} mOhm at {} s", x.resistance_mohm, x.delay_s))
+                .collect();
+            let _ = writeln!(
+                o,
+                "  Pulse resistance:  edge at {:.0} s (step {}): {}",
+                p.t_edge_s,
+                p.step,
+                vals.join(", ")
+            );
+        }
+        if s.pulse_resistance.len() > 8 {
+            let _ = writeln!(
+                o,
+                "    … {} more edge(s) in summary.json",
+                s.pulse_resistance.len() - 8
+            );
+        }
+    }
+    if let Some(g) = s.verdict.resistance_growth_pct.get() {
+        if let Some(r) = &s.verdict.resistance_reference {
+            let _ = writeln!(
+                o,
+                "  Resistance growth: {g:+.1} % against {:.2} mOhm ({})",
+                r.mohm, r.source
+            );
+        }
+    }
     if let Some(r) = &s.resistance {
         let _ = writeln!(
             o,
@@ -297,10 +338,19 @@ fn resistance_lines(o: &mut String, s: &Summary) {
     if let Some(c) = &s.curves {
         for i in &c.ica {
             if !i.peaks.is_empty() {
+                // Without a rating the cells in series are not known: the
+                // peaks are in pack volts.
+                let rated = s.needs_rating.is_empty();
                 let peaks: Vec<String> = i
                     .peaks
                     .iter()
-                    .map(|p| format!("{:.3} V/cell ({:.2} Ah/V)", p.position_per_cell, p.height))
+                    .map(|p| {
+                        if rated {
+                            format!("{:.3} V/cell ({:.2} Ah/V)", p.position_per_cell, p.height)
+                        } else {
+                            format!("{:.3} V pack ({:.2} Ah/V)", p.position, p.height)
+                        }
+                    })
                     .collect();
                 let _ = writeln!(
                     o,
@@ -310,6 +360,34 @@ fn resistance_lines(o: &mut String, s: &Summary) {
                     peaks.join(", ")
                 );
             }
+        }
+    }
+    if let Some(t) = s.curves.as_ref().and_then(|c| c.ocv.as_ref()) {
+        let rated = s.needs_rating.is_empty();
+        let _ = writeln!(
+            o,
+            "  Open-circuit voltage (steps {} at {:.2}C and {} at {:.2}C):",
+            t.charge_step, t.charge_rate_c, t.discharge_step, t.discharge_rate_c
+        );
+        let _ = writeln!(
+            o,
+            "    SoC %   charge V  discharge V   OCV V{}",
+            if rated { "  OCV V/cell" } else { "" }
+        );
+        for p in &t.points {
+            let _ = writeln!(
+                o,
+                "    {:>5.0}  {:>9.3}  {:>11.3}  {:>6.3}{}",
+                p.soc_pct,
+                p.charge_v,
+                p.discharge_v,
+                p.ocv_v,
+                if rated {
+                    format!("  {:>10.4}", p.ocv_per_cell_v)
+                } else {
+                    String::new()
+                }
+            );
         }
     }
 }

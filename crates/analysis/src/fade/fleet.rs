@@ -37,6 +37,11 @@ pub struct FleetRow {
     pub eol_date: Option<NaiveDate>,
     pub accelerating: bool,
     pub grade: Option<String>,
+    /// The test the row's grade and figures come from (`run <id>` or a
+    /// history line): the latest one not flagged.
+    pub from_test: Option<String>,
+    /// Flagged tests of the pack, each with why.
+    pub flags: Vec<String>,
     /// The latest tests are under the end-of-life threshold, since then.
     pub below_eol_since: Option<NaiveDate>,
     /// The projected end-of-life date is before today.
@@ -54,11 +59,14 @@ pub struct Fleet {
     pub rows: Vec<FleetRow>,
 }
 
-/// Resistance growth of a history's latest reading against its reference, %.
-pub fn resistance_growth_pct(h: &PackHistory) -> Option<f64> {
+/// Resistance growth of one test: its run's own (the verdict's), else
+/// its reading against the history's reference, %.
+pub fn resistance_growth_pct(h: &PackHistory, p: &super::history::HistoryPoint) -> Option<f64> {
+    if p.resistance_growth_pct.is_some() {
+        return p.resistance_growth_pct;
+    }
     let (reference, _) = h.reference_resistance()?;
-    let latest = h.points.iter().rev().find_map(|p| p.resistance_mohm)?;
-    Some((latest / reference - 1.0) * 100.0)
+    Some((p.resistance_mohm? / reference - 1.0) * 100.0)
 }
 
 pub fn row(
@@ -67,8 +75,10 @@ pub fn row(
     today: NaiveDate,
     schedule: &Schedule,
 ) -> FleetRow {
-    let last = h.latest();
-    let days = last.map(|p| (today - p.date).num_days());
+    // The row's figures and grade come from one test: the latest not
+    // flagged (a jump the measurement cannot explain improves nothing).
+    let last = h.points.iter().rev().find(|p| p.flags.is_empty());
+    let days = h.latest().map(|p| (today - p.date).num_days());
     let due = schedule.due(h, today);
     let slope = |k: ModelKind| {
         fade.models
@@ -83,7 +93,7 @@ pub fn row(
         series: h.spec.series,
         rated_capacity_ah: h.spec.rated_capacity_ah,
         tests: h.points.len(),
-        last_test: last.map(|p| p.date),
+        last_test: h.latest().map(|p| p.date),
         days_since_test: days,
         overdue: due.overdue,
         due: due.due,
@@ -92,14 +102,20 @@ pub fn row(
         cycles: last.map(|p| p.cycles).filter(|c| c.is_finite()),
         soh_pct: last.map(|p| p.soh_pct),
         capacity_ah: last.map(|p| p.capacity_ah),
-        resistance_mohm: h.points.iter().rev().find_map(|p| p.resistance_mohm),
-        resistance_growth_pct: resistance_growth_pct(h),
+        resistance_mohm: last.and_then(|p| p.resistance_mohm),
+        resistance_growth_pct: last.and_then(|p| resistance_growth_pct(h, p)),
         fade_pct_per_100_cycles: slope(ModelKind::LinearCycles),
         fade_pct_per_year: slope(ModelKind::LinearTime),
         eol_cycles: fade.eol_cycles.as_ref().map(|p| p.cycles),
         eol_date: fade.eol_date.as_ref().map(|p| p.date),
         accelerating: fade.accelerating.is_some(),
         grade: last.and_then(|p| p.grade.clone()),
+        from_test: last.map(|p| p.source.clone()),
+        flags: h
+            .points
+            .iter()
+            .flat_map(|p| p.flags.iter().map(move |f| format!("{} ({}): {f}", p.source, p.date)))
+            .collect(),
         below_eol_since: fade.below_eol_since,
         eol_date_past: fade.eol_date.as_ref().is_some_and(|p| p.date < today),
     }

@@ -19,6 +19,8 @@ pub struct HistoryPoint {
     pub capacity_ah: f64,
     pub soh_pct: f64,
     pub resistance_mohm: Option<f64>,
+    /// The run's verdict's resistance growth (a history line: none).
+    pub resistance_growth_pct: Option<f64>,
     pub coulombic_efficiency_pct: Option<f64>,
     pub grade: Option<String>,
     /// `run <id>` or `history.csv line N`.
@@ -26,6 +28,44 @@ pub struct HistoryPoint {
     pub run_dir: Option<PathBuf>,
     /// A pack read group by group: how far its groups were apart.
     pub groups: Option<GroupSpread>,
+    /// Changes against the pack's history the measurement cannot explain
+    /// ([`flag_jumps`]): a flagged point is shown, not fitted or graded on.
+    pub flags: Vec<String>,
+}
+
+/// The least rise of state of health over the pack's previous measurement
+/// that is flagged, SoH points: a pack's capacity does not come back by
+/// itself (recovery after a long rest and the bench's uncertainty are a
+/// point or two: common practice), so a larger rise is a different pack,
+/// rating or method.
+pub const JUMP_MIN_PCT: f64 = 5.0;
+
+/// Flag each point whose state of health rose over the previous unflagged
+/// point by more than the larger of [`JUMP_MIN_PCT`] and three times the
+/// pack's own scatter (the RMS of the changes between its earlier
+/// unflagged points, with three or more of them). Points in date order.
+pub fn flag_jumps(points: &mut [HistoryPoint]) {
+    let mut kept: Vec<f64> = Vec::new();
+    for p in points.iter_mut() {
+        if let Some(&prev) = kept.last() {
+            let scatter = if kept.len() >= 3 {
+                let d: Vec<f64> = kept.windows(2).map(|w| w[1] - w[0]).collect();
+                (d.iter().map(|x| x * x).sum::<f64>() / d.len() as f64).sqrt()
+            } else {
+                0.0
+            };
+            let bound = JUMP_MIN_PCT.max(3.0 * scatter);
+            let rise = p.soh_pct - prev;
+            if rise > bound {
+                p.flags.push(format!(
+                    "state of health rose {rise:+.1} points over the previous test ({prev:.1} → {:.1} %), more than the {bound:.1} points a measurement can explain: not fitted or graded on; check the pack, its rating and the log",
+                    p.soh_pct
+                ));
+                continue;
+            }
+        }
+        kept.push(p.soh_pct);
+    }
 }
 
 /// How far a pack's groups were apart in one test.

@@ -227,6 +227,8 @@ pub(crate) struct ChunkParser<'a, B> {
     /// roles share a column (then every line goes the general way).
     roles: Vec<Role>,
     ncols: usize,
+    nfields: usize,
+    delim: u8,
     spans: Vec<(usize, usize)>,
     quoted: csv::ByteRecord,
 }
@@ -258,6 +260,8 @@ impl<'a, B: Fn(u64, usize, String) -> ReadError> ChunkParser<'a, B> {
             bad,
             roles,
             ncols,
+            nfields: cols.nfields,
+            delim: cols.delim,
             spans: Vec::with_capacity(ncols),
             quoted: csv::ByteRecord::new(),
         }
@@ -306,7 +310,7 @@ impl<'a, B: Fn(u64, usize, String) -> ReadError> ChunkParser<'a, B> {
     /// integer over the same exact power of ten.
     #[inline]
     fn fast_row(&self, data: &[u8], start: usize) -> Option<(Row, usize)> {
-        if self.roles.is_empty() {
+        if self.roles.is_empty() || self.delim != b',' {
             return None;
         }
         let b = &data[start..];
@@ -352,13 +356,25 @@ impl<'a, B: Fn(u64, usize, String) -> ReadError> ChunkParser<'a, B> {
                 p += 1;
             }
         }
-        let next = match b.get(p)? {
-            b'\n' => p + 1,
-            b'\r' if b.get(p + 1) == Some(&b'\n') => p + 2,
-            // Fields after the last one used are not read.
-            b',' => p + memchr::memchr(b'\n', &b[p..])? + 1,
+        // Fields after the last one used are not read, but counted: a
+        // line with more or fewer fields than the header goes the general
+        // way, which refuses it with its place.
+        let (next, fields) = match b.get(p)? {
+            b'\n' => (p + 1, self.roles.len()),
+            b'\r' if b.get(p + 1) == Some(&b'\n') => (p + 2, self.roles.len()),
+            b',' => {
+                let end = p + memchr::memchr(b'\n', &b[p..])?;
+                let rest = &b[p..end];
+                if memchr::memchr(b'"', rest).is_some() {
+                    return None;
+                }
+                (end + 1, self.roles.len() + memchr::memchr_iter(b',', rest).count())
+            }
             _ => return None,
         };
+        if fields != self.nfields {
+            return None;
+        }
         // (−m)/10^k is −(m/10^k) exactly: division rounds symmetrically.
         let x: [f64; 4] = std::array::from_fn(|k| num[k] / den[k]);
         let row = Row {
@@ -380,23 +396,66 @@ impl<'a, B: Fn(u64, usize, String) -> ReadError> ChunkParser<'a, B> {
     /// on commas, then each cell read by [`parse_row`].
     fn general_row(&mut self, l: &[u8], line: u64) -> Result<Row, ReadError> {
         let (cols, fmt, sign, bad) = (self.cols, self.fmt, self.sign, self.bad);
+        let (nfields, delim) = (self.nfields, self.delim);
+        let count_error = |found: usize, column: usize| {
+            bad(
+                line,
+                column,
+                format!(
+                    "expected {nfields} fields as the header has, found {found}{}",
+                    if found > nfields && delim == b',' {
+                        " (a decimal comma in a number? give the log with decimal points, or --skip-bad-rows to leave such rows out)"
+                    } else {
+                        ""
+                    }
+                ),
+            )
+        };
         if memchr::memchr(b'"', l).is_some() {
             let mut r = csv::ReaderBuilder::new()
                 .has_headers(false)
                 .flexible(true)
+                .delimiter(delim)
                 .from_reader(l);
             return match r.read_byte_record(&mut self.quoted) {
                 Ok(_) => {
                     let q = &self.quoted;
+                    if q.len() != nfields {
+                        return Err(count_error(q.len(), 1));
+                    }
                     let get = |i: usize| q.get(i).unwrap_or(b"");
                     parse_row(&get, cols, fmt, sign, line, bad)
                 }
                 Err(e) => Err(bad(line, 1, e.to_string())),
             };
         }
+        // A log split on semicolons or tabs may write its decimals with a
+        // comma: read them as points.
+        let owned;
+        let l = if delim != b',' && memchr::memchr(b',', l).is_some() {
+            owned = l
+                .iter()
+                .map(|&c| if c == b',' { b'.' } else { c })
+                .collect::<Vec<u8>>();
+            &owned[..]
+        } else {
+            l
+        };
+        let found = 1 + memchr::memchr_iter(delim, l).count();
+        if found != nfields {
+            // Where the first field too many starts, or the line's end.
+            let column = if found > nfields {
+                memchr::memchr_iter(delim, l)
+                    .nth(nfields - 1)
+                    .map_or(l.len() + 1, |p| p + 2)
+            } else {
+                l.len() + 1
+            };
+            return Err(count_error(found, column));
+        }
         self.spans.clear();
         let mut a = 0;
-        for c in memchr::memchr_iter(b',', l) {
+        for c in memchr::memchr_iter(delim, l) {
             if self.spans.len() == self.ncols {
                 break;
             }
@@ -521,6 +580,8 @@ mod tests {
             temperature: None,
             step: None,
             cycle: None,
+            nfields: 3,
+            delim: b',',
         }
     }
 

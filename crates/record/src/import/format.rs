@@ -109,6 +109,8 @@ pub struct LogFormat {
     pub sign: CurrentSign,
     pub time_unit: TimeUnit,
     pub skip_bad_rows: bool,
+    /// The field delimiter (none: found from the header line).
+    pub delimiter: Option<u8>,
 }
 
 impl Default for LogFormat {
@@ -118,6 +120,7 @@ impl Default for LogFormat {
             sign: CurrentSign::ChargePositive,
             time_unit: TimeUnit::Seconds,
             skip_bad_rows: false,
+            delimiter: None,
         }
     }
 }
@@ -155,6 +158,37 @@ pub(crate) struct Cols {
     pub temperature: Option<usize>,
     pub step: Option<usize>,
     pub cycle: Option<usize>,
+    /// Fields on every line: as many as the header has.
+    pub nfields: usize,
+    /// The field delimiter.
+    pub delim: u8,
+}
+
+/// A delimiter as given: comma, semicolon or tab (the word or the character).
+pub fn parse_delimiter(s: &str) -> Result<u8, String> {
+    if s == "\t" {
+        return Ok(b'\t');
+    }
+    match s.trim().to_ascii_lowercase().as_str() {
+        "comma" | "," => Ok(b','),
+        "semicolon" | ";" => Ok(b';'),
+        "tab" | "\\t" => Ok(b'\t'),
+        other => Err(format!("'{other}': expected comma, semicolon or tab")),
+    }
+}
+
+/// The delimiter of a header line: the one of comma, semicolon and tab
+/// that it holds most of (comma when none).
+pub fn detect_delimiter(header: &[u8]) -> u8 {
+    let count = |d: u8| header.iter().filter(|&&b| b == d).count();
+    let mut best = (count(b','), b',');
+    for d in [b';', b'\t'] {
+        let n = count(d);
+        if n > best.0 {
+            best = (n, d);
+        }
+    }
+    best.1
 }
 
 fn norm(h: &str) -> String {
@@ -309,6 +343,8 @@ pub(crate) fn resolve_columns<B: Fn(u64, usize, String) -> ReadError>(
         temperature: want("temperature", &fmt.columns.temperature)?,
         step: want("step", &fmt.columns.step)?,
         cycle: if ours { guess(headers, "cycle") } else { None },
+        nfields: headers.len(),
+        delim: b',',
     })
 }
 

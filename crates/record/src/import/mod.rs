@@ -24,7 +24,7 @@ use std::sync::mpsc::{channel, Receiver, TryRecvError};
 use std::sync::{Condvar, Mutex};
 
 pub use chunk::number;
-pub use format::{ColumnNames, CurrentSign, LogFormat, Row, TimeUnit};
+pub use format::{detect_delimiter, parse_delimiter, ColumnNames, CurrentSign, LogFormat, Row, TimeUnit};
 
 /// Bytes read at a time: one chunk of lines.
 const CHUNK: usize = 1 << 19;
@@ -67,13 +67,14 @@ pub fn stream_log(
         message,
     };
     let mut file = std::fs::File::open(path).map_err(io)?;
-    let (headers, carry, cr_only) = read_header(&mut file, &io, &bad)?;
+    let (headers, carry, cr_only, delim) = read_header(&mut file, fmt.delimiter, &io, &bad)?;
     let ours = headers.len() >= 5
         && headers
             .iter()
             .zip(super::CSV_COLUMNS.iter())
             .all(|(a, b)| a.trim() == *b);
-    let cols = resolve_columns(&headers, fmt, ours, &bad)?;
+    let mut cols = resolve_columns(&headers, fmt, ours, &bad)?;
+    cols.delim = delim;
     let fmt = &time_unit_of(&headers[cols.time], cols.time, fmt, &bad)?;
     let mut report = ReadReport {
         ours,
@@ -91,6 +92,7 @@ pub fn stream_log(
             cr_only,
             ours,
             nheaders: headers.len(),
+            delim,
             seq: 0,
             done: false,
             partial: false,
@@ -272,6 +274,7 @@ struct Source {
     cr_only: bool,
     ours: bool,
     nheaders: usize,
+    delim: u8,
     seq: u64,
     done: bool,
     /// A last line without its newline was left out.
@@ -392,7 +395,7 @@ impl Source {
                 // when it is whole: every column of the header. (packbench
                 // ends every line it writes, so in its own log such a line
                 // was cut by a crash and is left out.)
-                if !self.ours && last_line_is_whole(&buf, self.nheaders) {
+                if !self.ours && last_line_is_whole(&buf, self.nheaders, self.delim) {
                     buf.push(b'\n');
                     return Ok(Some(buf));
                 }
@@ -435,9 +438,10 @@ impl Source {
 /// after it, and whether the log ends its lines with CR alone.
 fn read_header<B: Fn(u64, usize, String) -> ReadError>(
     file: &mut std::fs::File,
+    given: Option<u8>,
     io: &impl Fn(std::io::Error) -> ReadError,
     bad: &B,
-) -> Result<(Vec<String>, Vec<u8>, bool), ReadError> {
+) -> Result<(Vec<String>, Vec<u8>, bool, u8), ReadError> {
     let mut carry: Vec<u8> = Vec::with_capacity(CHUNK + 4096);
     let mut eof = false;
     let (header_end, cr_only) = loop {
@@ -473,10 +477,12 @@ fn read_header<B: Fn(u64, usize, String) -> ReadError>(
             }
         }
     }
+    let delim = given.unwrap_or_else(|| format::detect_delimiter(&carry[..header_end]));
     let headers: Vec<String> = {
         let mut r = csv::ReaderBuilder::new()
             .has_headers(false)
             .flexible(true)
+            .delimiter(delim)
             .from_reader(&carry[..header_end]);
         let mut rec = csv::StringRecord::new();
         match r.read_record(&mut rec) {
@@ -489,12 +495,12 @@ fn read_header<B: Fn(u64, usize, String) -> ReadError>(
         }
     };
     carry.drain(..(header_end + 1).min(carry.len()));
-    Ok((headers, carry, cr_only))
+    Ok((headers, carry, cr_only, delim))
 }
 
 /// Whether what is left after the last newline is a whole row: not blank,
 /// with as many fields as the header.
-fn last_line_is_whole(rest: &[u8], nheaders: usize) -> bool {
+fn last_line_is_whole(rest: &[u8], nheaders: usize, delim: u8) -> bool {
     let line = rest.strip_suffix(b"\r").unwrap_or(rest);
     if line.iter().all(|b| b.is_ascii_whitespace()) {
         return false;
@@ -502,6 +508,7 @@ fn last_line_is_whole(rest: &[u8], nheaders: usize) -> bool {
     let mut r = csv::ReaderBuilder::new()
         .has_headers(false)
         .flexible(true)
+        .delimiter(delim)
         .from_reader(line);
     let mut rec = csv::ByteRecord::new();
     matches!(r.read_byte_record(&mut rec), Ok(true))

@@ -1,0 +1,415 @@
+//! One verdict per run: the figures a user acts on (the capacity that
+//! counts, state of health, the corrected capacity, resistance and its
+//! growth, the efficiencies of the capacity step's cycle, the grade, the
+//! new nominal, whether the run counts for the pack's history), judged
+//! once by [`judge`] when the summary is built and read by every screen
+//! (terminal, reports, label, console, index, central store, fade, fleet,
+//! exports). A figure that was not measured is [`Figure::Absent`] with its
+//! reason ([`Why`]), never a zero.
+
+use analysis::fade::grade::{Grade, GradeInputs, Policy};
+use analysis::{CapacityResult, CycleSummary, Recalibration, ResistanceResult, StepSummary};
+use model::pack::Chemistry;
+use model::status::RunStatus;
+use serde::{Deserialize, Serialize};
+
+/// A state of health above this is not a measurement of a used pack but a
+/// wrong rating or a wrong log (a new pack gives a few percent over its
+/// rating at most: common practice), %.
+pub const SOH_PLAUSIBLE_MAX_PCT: f64 = 120.0;
+
+/// Why a figure is absent.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Why {
+    /// The run has no capacity discharge (a screening, resistance or
+    /// unfinished run).
+    NoCapacityStep,
+    /// The capacity discharge did not start from a full charge.
+    NotFromFullCharge,
+    /// The log does not show that the discharge ended on its cutoff.
+    CutoffUnknown,
+    /// The discharge ended on something else than its cutoff.
+    EndedBeforeCutoff,
+    /// Analysed without a rated capacity.
+    NoRating,
+    /// The run did not complete.
+    RunNotComplete,
+    /// No resistance was measured.
+    NoResistance,
+    /// No rated resistance or earlier reading to compare with.
+    NoReference,
+    /// No cycle with both a charge and a discharge.
+    NoFullCycle,
+    /// IEEE 450 needs a lead-acid discharge at its rated current to its
+    /// cutoff with a temperature.
+    NotAnIeee450Test,
+    /// The figure is outside what a pack can give (a wrong rating or log).
+    Implausible,
+    /// A record older than verdicts that does not hold the input.
+    NotRecorded,
+}
+
+impl Why {
+    /// The reason in words, as every screen prints it.
+    pub fn words(self) -> &'static str {
+        match self {
+            Why::NoCapacityStep => "no capacity discharge in this run",
+            Why::NotFromFullCharge => "the capacity discharge did not start from a full charge",
+            Why::CutoffUnknown => "the log does not show the discharge ended on its cutoff",
+            Why::EndedBeforeCutoff => "the discharge ended before its cutoff",
+            Why::NoRating => "no rated capacity given",
+            Why::RunNotComplete => "the run did not complete",
+            Why::NoResistance => "no resistance measured",
+            Why::NoReference => "no rated or earlier resistance to compare with",
+            Why::NoFullCycle => "no cycle with both a charge and a discharge",
+            Why::NotAnIeee450Test => "not a lead-acid discharge at its rated current to its cutoff",
+            Why::Implausible => "implausible (check the rating and the log)",
+            Why::NotRecorded => "not in this older record",
+        }
+    }
+}
+
+impl std::fmt::Display for Why {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.words())
+    }
+}
+
+/// A figure, or why there is none.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Figure<T> {
+    Value(T),
+    Absent(Why),
+}
+
+impl<T> Figure<T> {
+    pub fn value(&self) -> Option<&T> {
+        match self {
+            Figure::Value(v) => Some(v),
+            Figure::Absent(_) => None,
+        }
+    }
+    pub fn why(&self) -> Option<Why> {
+        match self {
+            Figure::Value(_) => None,
+            Figure::Absent(w) => Some(*w),
+        }
+    }
+    fn from_option(v: Option<T>, why: Why) -> Figure<T> {
+        match v {
+            Some(v) => Figure::Value(v),
+            None => Figure::Absent(why),
+        }
+    }
+}
+
+impl Figure<f64> {
+    /// The number, if there is one.
+    pub fn get(&self) -> Option<f64> {
+        self.value().copied()
+    }
+    /// The number with `decimals` and `unit`, or "not measured (why)".
+    pub fn show(&self, decimals: usize, unit: &str) -> String {
+        match self {
+            Figure::Value(v) => format!("{v:.decimals$}{unit}"),
+            Figure::Absent(w) => format!("not measured ({w})"),
+        }
+    }
+}
+
+impl Default for Figure<f64> {
+    fn default() -> Self {
+        Figure::Absent(Why::NotRecorded)
+    }
+}
+
+impl Default for Figure<Grade> {
+    fn default() -> Self {
+        Figure::Absent(Why::NotRecorded)
+    }
+}
+
+/// The resistance reference growth is measured against, and where it
+/// came from.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Reference {
+    pub mohm: f64,
+    /// `rated` or `run <id>`.
+    pub source: String,
+}
+
+/// The verdict of one run.
+#[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
+pub struct Verdict {
+    /// The step whose capacity counts (the capacity discharge).
+    pub capacity_step: Option<u32>,
+    pub measured_ah: Figure<f64>,
+    pub measured_wh: Figure<f64>,
+    /// Did the capacity step start from a full charge (absent: no step)?
+    pub from_full_charge: Option<bool>,
+    /// Did it end on its cutoff (absent: not known)?
+    pub ended_on_cutoff: Option<bool>,
+    /// Mean discharge current as a C-rate of the rating.
+    pub test_rate_c: Figure<f64>,
+    /// The rated rate the corrections aim at.
+    pub rated_rate_c: Option<f64>,
+    pub initial_temperature_c: Option<f64>,
+    /// The capacity as far as it was corrected (see `conditions`).
+    pub corrected_ah: Figure<f64>,
+    /// What was done to the measured capacity, in words (only what was done).
+    #[serde(default)]
+    pub conditions: String,
+    /// State of health: corrected / rated × 100.
+    pub soh_pct: Figure<f64>,
+    /// State of health on the measured capacity.
+    pub soh_measured_pct: Figure<f64>,
+    /// IEEE 450 percent capacity (lead-acid).
+    pub ieee450_percent: Figure<f64>,
+    pub resistance_mohm: Figure<f64>,
+    pub resistance_reference: Option<Reference>,
+    /// This run's resistance against the reference, %.
+    pub resistance_growth_pct: Figure<f64>,
+    /// The cycle the efficiencies are of: the capacity step's, else the
+    /// last complete one.
+    pub efficiency_cycle: Option<u32>,
+    pub coulombic_efficiency_pct: Figure<f64>,
+    pub energy_efficiency_pct: Figure<f64>,
+    pub grade: Figure<Grade>,
+    pub new_nominal_ah: Figure<f64>,
+    /// Whether the run enters the pack's capacity history (fade, fleet).
+    pub counts_for_history: bool,
+    /// Why it does not.
+    pub not_counted: Option<Why>,
+    /// Changes the measurement cannot explain, set against the pack's
+    /// history (an import's jump).
+    #[serde(default)]
+    pub flags: Vec<String>,
+}
+
+/// What a verdict is judged from.
+pub struct Inputs<'a> {
+    pub status: RunStatus,
+    pub chemistry: Chemistry,
+    /// The rating (absent: analysed without one).
+    pub rated_ah: Option<f64>,
+    pub rated_rate_c: Option<f64>,
+    pub capacity: Option<&'a CapacityResult>,
+    pub recalibration: Option<&'a Recalibration>,
+    pub resistance: Option<&'a ResistanceResult>,
+    pub reference: Option<Reference>,
+    pub steps: &'a [StepSummary],
+    pub cycles: &'a [CycleSummary],
+    pub groups: Option<&'a analysis::groups::GroupsResult>,
+    /// The grading policy (absent: no grade, e.g. no rating).
+    pub policy: Option<&'a Policy>,
+}
+
+/// Judge a run once. Returns the verdict and the warnings it adds.
+pub fn judge(x: &Inputs<'_>) -> (Verdict, Vec<String>) {
+    let mut warnings = Vec::new();
+    let cap = x.capacity;
+    let complete = x.status.is_complete();
+    let measured_ah = Figure::from_option(cap.map(|c| c.measured_ah), Why::NoCapacityStep);
+    let measured_wh = Figure::from_option(cap.map(|c| c.measured_wh), Why::NoCapacityStep);
+    // Why the capacity is not the pack's (in order of what a user fixes first).
+    let not_capacity = match cap {
+        None => Some(Why::NoCapacityStep),
+        Some(_) if !complete => Some(Why::RunNotComplete),
+        Some(c) if !c.from_full_charge => Some(Why::NotFromFullCharge),
+        Some(_) => None,
+    };
+    let rated = x.rated_ah.filter(|r| *r > 0.0);
+    let corrected = match (cap, rated) {
+        (None, _) => Figure::Absent(Why::NoCapacityStep),
+        (Some(_), None) => Figure::Absent(Why::NoRating),
+        (Some(c), Some(_)) => Figure::from_option(c.corrected_ah, Why::NoRating),
+    };
+    let soh_of = |ah: Option<f64>| -> Figure<f64> {
+        if let Some(w) = not_capacity {
+            return Figure::Absent(w);
+        }
+        match (ah, rated) {
+            (Some(a), Some(r)) => {
+                let soh = analysis::soh_pct(a, r);
+                if soh.is_finite() && soh <= SOH_PLAUSIBLE_MAX_PCT {
+                    Figure::Value(soh)
+                } else {
+                    Figure::Absent(Why::Implausible)
+                }
+            }
+            _ => Figure::Absent(Why::NoRating),
+        }
+    };
+    let soh = soh_of(corrected.get());
+    let soh_measured = soh_of(cap.map(|c| c.measured_ah));
+    if soh.why() == Some(Why::Implausible) {
+        if let (Some(c), Some(r)) = (corrected.get(), rated) {
+            warnings.push(format!(
+                "the capacity {c:.3} Ah is {:.1} % of the rated {r:.3} Ah, more than a pack gives ({SOH_PLAUSIBLE_MAX_PCT} %): no state of health or grade is taken from it; check the rating and the log",
+                c / r * 100.0
+            ));
+        }
+    }
+    let ieee450 = match cap.and_then(|c| c.ieee450_percent) {
+        Some(p) if not_capacity.is_none() => Figure::Value(p),
+        Some(_) => Figure::Absent(not_capacity.unwrap_or(Why::NoCapacityStep)),
+        None => Figure::Absent(match cap {
+            None => Why::NoCapacityStep,
+            Some(_) => Why::NotAnIeee450Test,
+        }),
+    };
+    let resistance = Figure::from_option(x.resistance.map(|r| r.dcir_mohm), Why::NoResistance);
+    let growth = match (resistance.get(), &x.reference) {
+        (None, _) => Figure::Absent(Why::NoResistance),
+        (Some(_), None) => Figure::Absent(Why::NoReference),
+        (Some(r), Some(r0)) if r0.mohm > 0.0 => Figure::Value((r / r0.mohm - 1.0) * 100.0),
+        (Some(_), Some(_)) => Figure::Absent(Why::NoReference),
+    };
+    // The cycle of the capacity step (a full charge and the full
+    // discharge); without a capacity step, the last complete cycle.
+    let cycle = match cap {
+        Some(c) => x.steps.iter().find(|s| s.step == c.step).map(|s| s.cycle),
+        None => x
+            .cycles
+            .iter()
+            .rev()
+            .find(|c| c.coulombic_efficiency_pct.is_some())
+            .map(|c| c.cycle),
+    };
+    let cyc = x.cycles.iter().find(|c| Some(c.cycle) == cycle);
+    let ce = Figure::from_option(
+        cyc.and_then(|c| c.coulombic_efficiency_pct),
+        Why::NoFullCycle,
+    );
+    let ee = Figure::from_option(cyc.and_then(|c| c.energy_efficiency_pct), Why::NoFullCycle);
+    // A grade stands on a state of health: a capacity that did not start
+    // from a full charge grades nothing, nor does a run without one.
+    let grade = match (soh.get(), x.policy) {
+        (Some(s), Some(p)) => Figure::Value(p.grade(&GradeInputs {
+            chemistry: x.chemistry,
+            soh_pct: Some(s),
+            resistance_growth_pct: growth.get(),
+            coulombic_efficiency_pct: ce.get(),
+            weakest_group: x.groups.and_then(|g| g.weakest),
+            weakest_group_share_pct: x.groups.and_then(|g| g.weakest_share_pct),
+            group_capacity_spread_pct: x.groups.and_then(|g| g.capacity_spread_pct),
+        })),
+        (Some(_), None) => Figure::Absent(Why::NoRating),
+        (None, _) => Figure::Absent(soh.why().unwrap_or(Why::NoCapacityStep)),
+    };
+    // A new nominal only from a full charge to a known cutoff.
+    let new_nominal = if let Some(w) = soh.why() {
+        Figure::Absent(w)
+    } else {
+        match (cap.and_then(|c| c.ended_on_cutoff), x.recalibration) {
+            (Some(true), Some(r)) => Figure::Value(r.suggested_nominal_ah),
+            (Some(false), _) => Figure::Absent(Why::EndedBeforeCutoff),
+            (None, _) => Figure::Absent(Why::CutoffUnknown),
+            (Some(true), None) => Figure::Absent(Why::NotFromFullCharge),
+        }
+    };
+    let not_counted = soh.why();
+    let v = Verdict {
+        capacity_step: cap.map(|c| c.step),
+        measured_ah,
+        measured_wh,
+        from_full_charge: cap.map(|c| c.from_full_charge),
+        ended_on_cutoff: cap.and_then(|c| c.ended_on_cutoff),
+        test_rate_c: match cap {
+            None => Figure::Absent(Why::NoCapacityStep),
+            Some(c) => Figure::from_option(c.c_rate.filter(|_| rated.is_some()), Why::NoRating),
+        },
+        rated_rate_c: rated.and(x.rated_rate_c),
+        initial_temperature_c: cap.and_then(|c| c.initial_temperature_c),
+        corrected_ah: corrected,
+        conditions: cap.map(|c| c.conditions()).unwrap_or_default(),
+        soh_pct: soh,
+        soh_measured_pct: soh_measured,
+        ieee450_percent: ieee450,
+        resistance_mohm: resistance,
+        resistance_reference: x.reference.clone(),
+        resistance_growth_pct: growth,
+        efficiency_cycle: cycle.filter(|_| cyc.is_some()),
+        coulombic_efficiency_pct: ce,
+        energy_efficiency_pct: ee,
+        grade,
+        new_nominal_ah: new_nominal,
+        counts_for_history: not_counted.is_none(),
+        not_counted,
+        flags: Vec::new(),
+    };
+    (v, warnings)
+}
+
+impl Verdict {
+    /// The grade's label, if graded.
+    pub fn grade_label(&self) -> Option<&str> {
+        self.grade.value().map(|g| g.label.as_str())
+    }
+
+    /// One line for `--quiet` and logs: every figure from this verdict.
+    pub fn line(&self) -> String {
+        format!(
+            "capacity {} (measured {}), SoH {}, grade {}",
+            self.corrected_ah.show(3, " Ah"),
+            self.measured_ah.show(3, " Ah"),
+            self.soh_pct.show(1, " %"),
+            match &self.grade {
+                Figure::Value(g) => g.label.clone(),
+                Figure::Absent(w) => format!("none ({w})"),
+            }
+        )
+    }
+}
+
+/// A summary older than verdicts: judged from the figures it holds, its
+/// recorded grade kept (its policy is not known here).
+pub fn judge_older(s: &mut crate::Summary) {
+    let (mut v, _) = judge(&Inputs {
+        status: s.status,
+        chemistry: s.pack.chemistry,
+        rated_ah: Some(s.pack.rated_capacity_ah),
+        rated_rate_c: s.pack.rated_rate_c,
+        capacity: s.capacity.as_ref(),
+        recalibration: s.recalibration.as_ref(),
+        resistance: s.resistance.as_ref(),
+        reference: None,
+        steps: &s.steps,
+        cycles: &s.cycles,
+        groups: s.groups.as_ref(),
+        policy: None,
+    });
+    v.grade = match (s.older_grade.take(), v.soh_pct.why()) {
+        (Some(g), None) => Figure::Value(g),
+        (_, Some(w)) => Figure::Absent(w),
+        (None, None) => Figure::Absent(Why::NotRecorded),
+    };
+    v.resistance_growth_pct = Figure::Absent(Why::NotRecorded);
+    s.verdict = v;
+}
+
+/// Judge a summary again from the figures it holds (after they were
+/// changed: a made-up fleet, a rating given later), keeping its
+/// resistance reference and flags.
+pub fn rejudge(s: &mut crate::Summary, policy: Option<&Policy>) {
+    let reference = s.verdict.resistance_reference.clone();
+    let flags = std::mem::take(&mut s.verdict.flags);
+    let (mut v, _) = judge(&Inputs {
+        status: s.status,
+        chemistry: s.pack.chemistry,
+        rated_ah: Some(s.pack.rated_capacity_ah),
+        rated_rate_c: s.pack.rated_rate_c,
+        capacity: s.capacity.as_ref(),
+        recalibration: s.recalibration.as_ref(),
+        resistance: s.resistance.as_ref(),
+        reference,
+        steps: &s.steps,
+        cycles: &s.cycles,
+        groups: s.groups.as_ref(),
+        policy,
+    });
+    v.flags = flags;
+    s.verdict = v;
+}
