@@ -243,17 +243,22 @@ fn write_curves(dir: &Path, d: &CurveData) -> anyhow::Result<()> {
     Ok(())
 }
 
-/// Analyse a log and return its summary and curves.
-pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
-    let opts = options(a)?;
-    let policy = match &a.policy {
+/// The grading policy given, or the built-in one.
+pub fn policy_of(a: &AnalyzeArgs) -> anyhow::Result<Policy> {
+    Ok(match &a.policy {
         Some(p) => {
             let text = model::procedure::read_text(p)
                 .with_context(|| format!("cannot read {}", p.display()))?;
             Policy::from_toml(p, &text)?
         }
         None => Policy::default_policy(),
-    };
+    })
+}
+
+/// Analyse a log and return its summary and curves.
+pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
+    let opts = options(a)?;
+    let policy = policy_of(a)?;
     let given_bms = bms_from_args(&a.bms_args)?;
     if let Some(dir) = our_run(&a.log) {
         // The typed record: a malformed field is an error with its place,

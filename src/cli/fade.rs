@@ -89,15 +89,21 @@ pub struct IndexArgs {
     pub rebuild: bool,
 }
 
+/// A results folder that exists (bad input, exit 2, when it does not).
+fn results_folder(results: &std::path::Path) -> Result<(), RunError> {
+    if results.is_dir() {
+        Ok(())
+    } else {
+        Err(RunError::arguments(format!(
+            "{} is not a results folder (no such folder): nothing was created",
+            results.display()
+        )))
+    }
+}
+
 /// `packbench index`: bring `results/index.sqlite` up to the run folders.
 pub fn cmd_index(a: IndexArgs) -> anyhow::Result<ExitCode> {
-    if !a.results.is_dir() {
-        return Err(RunError::arguments(format!(
-            "{} is not a results folder",
-            a.results.display()
-        ))
-        .into());
-    }
+    results_folder(&a.results)?;
     if a.rebuild {
         for suffix in ["", "-wal", "-shm"] {
             let p = a
@@ -149,6 +155,8 @@ pub fn cmd_report(a: ReportArgs) -> anyhow::Result<ExitCode> {
 /// `packbench fade`.
 pub fn cmd_fade(a: FadeArgs) -> anyhow::Result<ExitCode> {
     let threshold = parse_threshold(&a.threshold)?;
+    // Nothing is created for a folder that is not there.
+    results_folder(&a.results)?;
     let h = history::load(&a.results, &a.pack, a.history.as_deref())?;
     let mut fa = trend::analyze(&h, threshold);
     fa.flag_against(match &a.today {
@@ -184,6 +192,10 @@ pub fn cmd_fade(a: FadeArgs) -> anyhow::Result<ExitCode> {
 /// `packbench fleet`.
 pub fn cmd_fleet(a: FleetArgs) -> anyhow::Result<ExitCode> {
     let threshold = parse_threshold(&a.threshold)?;
+    if a.db.is_none() {
+        // The index is not made in a folder that is not there.
+        results_folder(&a.results)?;
+    }
     let interval = interval_days(&a.interval).ok_or_else(|| {
         RunError::arguments(format!(
             "--interval '{}': expected a duration of at least a day, in days or weeks, e.g. 92d or 13w",

@@ -158,6 +158,18 @@ pub fn cmd_import(mut a: ImportArgs) -> anyhow::Result<ExitCode> {
         .with_context(|| format!("creating a run folder in {}", pack_dir.display()))?;
     summary.run_id = run_id.clone();
     summary.cycle_count = a.cycles;
+    // Judged as a run of this pack: its resistance against the pack's
+    // reference.
+    if let Some(d) = record::history::parse_date(&summary.test_date) {
+        summary.verdict.resistance_reference = record::summarize::reference_resistance(
+            &pack_dir,
+            pack.rated_resistance_mohm,
+            d,
+            &run_id,
+        );
+    }
+    let policy = crate::cli::analyze::policy_of(&a.log)?;
+    record::verdict::rejudge(&mut summary, Some(&policy));
     let copy = dir.join(SOURCE_CSV);
     std::fs::copy(&log_path, &copy)
         .with_context(|| format!("copying the log to {}", copy.display()))?;
@@ -175,17 +187,50 @@ pub fn cmd_import(mut a: ImportArgs) -> anyhow::Result<ExitCode> {
     let summary_path = dir.join(record::SUMMARY_JSON);
     record::write::write_json(&summary_path, &summary)
         .with_context(|| format!("writing {}", summary_path.display()))?;
+    // Set against the pack's history: a rise the measurement cannot explain
+    // is flagged here, in fade and in fleet (and kept in the verdict).
+    let history = record::history::load(&a.results, &pack_id, None).ok();
+    let source = format!("run {run_id}");
+    let mut previous = None;
+    if let Some(h) = &history {
+        if let Some(k) = h.points.iter().position(|p| p.source == source) {
+            summary.verdict.flags = h.points[k].flags.clone();
+            previous = h.points[..k].iter().rev().find(|p| p.flags.is_empty()).cloned();
+            if !summary.verdict.flags.is_empty() {
+                record::write::write_json(&summary_path, &summary)
+                    .with_context(|| format!("writing {}", summary_path.display()))?;
+            }
+        }
+    }
     crate::session::finish::index_pack(&pack_dir, &pack_id);
-    let cap = summary
-        .capacity
-        .as_ref()
-        .map(|c| format!("{:.3} Ah", c.measured_ah))
-        .unwrap_or_else(|| "no capacity".into());
     println!(
-        "imported {} as {} ({cap}; sha256 {})",
+        "imported {} as {} (sha256 {})",
         log_path.display(),
         dir.display(),
         &sha256[..16]
     );
+    println!("  {}", summary.verdict.line());
+    if !summary.verdict.counts_for_history {
+        println!(
+            "  not in the pack's capacity history: {}",
+            summary
+                .verdict
+                .not_counted
+                .map(|w| w.words())
+                .unwrap_or("no capacity")
+        );
+    }
+    if let (Some(p), Some(now)) = (previous, summary.verdict.soh_pct.get()) {
+        println!(
+            "  against the previous test ({}, {}): {:.1} % -> {now:.1} % ({:+.1} points)",
+            p.date,
+            p.source,
+            p.soh_pct,
+            now - p.soh_pct
+        );
+    }
+    for f in &summary.verdict.flags {
+        println!("  FLAG: {f}");
+    }
     Ok(ExitCode::Ok)
 }

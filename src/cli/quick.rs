@@ -5,7 +5,7 @@ use crate::cli::exit::ExitCode;
 use crate::session::quick::{quick_grade, DEFAULT_FEATURES, QUICK_GRADE_JSON};
 use analysis::fade::grade::Policy;
 use analysis::screen::FEATURE_NAMES;
-use anyhow::{bail, Context};
+use anyhow::Context;
 use clap::Args;
 use std::io::Write;
 use std::path::PathBuf;
@@ -31,8 +31,10 @@ pub struct QuickArgs {
     pub json: bool,
 }
 
-/// `packbench grade-quick`: exit 0 with an estimate, 1 without one (too
-/// few calibration pairs, or a feature missing), 2 on bad input.
+/// `packbench grade-quick`: exit 0 with an estimate; 2 without one (too
+/// few calibration pairs in the family, or a feature the run does not
+/// have: the input cannot give an estimate) and on any other bad input;
+/// 1 on a failure while running (the file system).
 pub fn cmd_quick(a: QuickArgs) -> anyhow::Result<ExitCode> {
     let features: Vec<String> = match &a.features {
         Some(f) => f.iter().map(|s| s.trim().to_string()).collect(),
@@ -40,10 +42,11 @@ pub fn cmd_quick(a: QuickArgs) -> anyhow::Result<ExitCode> {
     };
     for f in &features {
         if !FEATURE_NAMES.contains(&f.as_str()) {
-            bail!(
+            return Err(crate::session::error::RunError::arguments(format!(
                 "--features: unknown feature '{f}'; expected some of {}",
                 FEATURE_NAMES.join(", ")
-            );
+            ))
+            .into());
         }
     }
     let results = match &a.results {
@@ -101,10 +104,11 @@ pub fn cmd_quick(a: QuickArgs) -> anyhow::Result<ExitCode> {
         writeln!(out, "  {}", q.verdict)?;
         writeln!(out, "  written: {}", path.display())?;
     }
+    // No estimate: what was given cannot make one (written and said above).
     Ok(if q.prediction.is_some() {
         ExitCode::Ok
     } else {
-        ExitCode::Failure
+        ExitCode::BadInput
     })
 }
 

@@ -337,7 +337,7 @@ impl<'a> Estimator<'a> {
                             net_ah: self.run.ah,
                         })
                     }
-                    (Some(StepKind::Discharge { .. }), EndKind::VoltageBelow) => {
+                    (Some(StepKind::Discharge { .. }), k) if k.is_cutoff() => {
                         if let Some(a) = self.anchor.filter(|a| a.soc == 1.0) {
                             let q = a.net_ah - self.run.ah;
                             if q > 0.0 {

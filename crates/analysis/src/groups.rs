@@ -331,8 +331,8 @@ pub fn analyze(x: &GroupInputs<'_>) -> GroupsResult {
         .steps
         .iter()
         .find(|s| s.step == cs)
-        .and_then(|s| s.end_reason.as_deref())
-        .is_some_and(|r| r.starts_with("group ") && r.contains("cutoff"));
+        .and_then(|s| s.end_kind)
+        == Some(model::end::EndKind::GroupVoltageBelow);
     let (w, cutoff) = match last
         .voltage_v
         .iter()

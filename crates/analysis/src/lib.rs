@@ -437,7 +437,7 @@ mod tests {
         let c = a.capacity.unwrap();
         assert!((c.measured_ah - 1.0).abs() < 1e-9, "{}", c.measured_ah);
         assert!((c.duration_s - 3000.0).abs() < 1e-9);
-        assert!((c.c_rate - 1.2).abs() < 1e-9);
+        assert!((c.c_rate.unwrap() - 1.2).abs() < 1e-9);
     }
 
     #[test]

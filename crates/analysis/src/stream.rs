@@ -546,11 +546,10 @@ impl<'a> Analyzer<'a> {
                 Some(i) if !self.opts.imported => {
                     matches!(
                         i.end_kind,
-                        Some(EndKind::CurrentBelow) | Some(EndKind::PeakDrop)
-                    ) || (i.end_kind == Some(EndKind::VoltageAbove)
-                        && i.end_reason
-                            .as_deref()
-                            .is_some_and(model::groups::is_group_full_reason))
+                        Some(EndKind::CurrentBelow)
+                            | Some(EndKind::PeakDrop)
+                            | Some(EndKind::GroupVoltageAbove)
+                    )
                 }
                 _ => {
                     // A foreign log: a constant-voltage taper to under a
@@ -573,7 +572,10 @@ impl<'a> Analyzer<'a> {
             0.0
         };
         if kind == StepType::Discharge
-            && info.as_ref().and_then(|i| i.end_kind) == Some(EndKind::VoltageBelow)
+            && info
+                .as_ref()
+                .and_then(|i| i.end_kind)
+                .is_some_and(|k| k.is_cutoff())
         {
             if let Some(q) = self.ah_since_full {
                 self.full_to_empty_ah = Some(q);
@@ -831,7 +833,11 @@ impl<'a> Analyzer<'a> {
                             }
                         }
                     } else {
-                        Some(info.as_ref().and_then(|i| i.end_kind) == Some(EndKind::VoltageBelow))
+                        Some(
+                            info.as_ref()
+                                .and_then(|i| i.end_kind)
+                                .is_some_and(|k| k.is_cutoff()),
+                        )
                     };
                     if ended_on_cutoff == Some(false) && !self.opts.imported {
                         warnings.push(format!(
@@ -1157,7 +1163,7 @@ fn cycles_of(
             let emptied = last.is_some_and(|p| {
                 p.kind == StepType::Discharge
                     && finished(p, imported)
-                    && (imported || p.end_kind == Some(EndKind::VoltageBelow))
+                    && (imported || p.end_kind.is_some_and(|k| k.is_cutoff()))
             });
             if emptied {
                 from_empty.push(s.cycle);

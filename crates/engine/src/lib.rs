@@ -1030,7 +1030,7 @@ impl<'a> Engine<'a> {
                     let cut = voltage_v / n;
                     groups::first_below(g, cut).map(|(k, v)| {
                         (
-                            EndKind::VoltageBelow,
+                            EndKind::GroupVoltageBelow,
                             format!(
                                 "group {k} reached {v:.3} V{}, the cutoff of {cut:.3} V/cell",
                                 on(k)
@@ -1044,7 +1044,7 @@ impl<'a> Engine<'a> {
                 let level = voltage_v / n + groups::GROUP_CHARGE_MARGIN_V;
                 groups::first_above(g, level).map(|(k, v)| {
                     (
-                        EndKind::VoltageAbove,
+                        EndKind::GroupVoltageAbove,
                         model::groups::group_full_reason(
                             k,
                             v,
@@ -1410,7 +1410,7 @@ impl<'a> Engine<'a> {
             return Ok(());
         };
         let got = tracker.counters.ah_out;
-        if kind == EndKind::VoltageBelow && got < limit {
+        if kind.is_cutoff() && got < limit {
             self.emit(Event::Alarm {
                 t_s: t,
                 step: st.index,

@@ -928,7 +928,8 @@ pub fn histories(store: &mut Store) -> Result<Vec<PackHistory>, CentralError> {
             "SELECT pack_id, run_id, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, folder,
                     (summary->'verdict'->>'counts_for_history')::boolean,
                     summary->'verdict'->>'not_counted',
-                    (summary->'verdict'->'resistance_growth_pct'->>'value')::double precision
+                    (summary->'verdict'->'resistance_growth_pct'->>'value')::double precision,
+                    (summary->'verdict'->'ieee450_percent'->>'value')::double precision
              FROM runs ORDER BY pack_id, test_date, run_id",
             &[],
         )
@@ -957,6 +958,7 @@ pub fn histories(store: &mut Store) -> Result<Vec<PackHistory>, CentralError> {
                 .and_then(|w| serde_json::from_value::<record::verdict::Why>(w.into()).ok())
                 .map(|w| w.words().to_string()),
             resistance_growth_pct: r.get(18),
+            ieee450_percent: r.get(19),
             dcir_mohm: r.get(11),
             coulombic_efficiency_pct: r.get(12),
             grade: r.get(13),

@@ -24,10 +24,16 @@ pub enum EndKind {
     Aborted,
     /// The run was interrupted (Ctrl-C) in this step.
     Interrupted,
+    /// A discharge ended when a cell group reached the per-cell cutoff
+    /// (the pack's cutoff, read group by group).
+    GroupVoltageBelow,
+    /// A charge ended when a cell group reached the per-cell charge
+    /// voltage: the pack is full as far as its highest group allows.
+    GroupVoltageAbove,
 }
 
 impl EndKind {
-    pub const ALL: [EndKind; 13] = [
+    pub const ALL: [EndKind; 15] = [
         EndKind::VoltageAbove,
         EndKind::VoltageBelow,
         EndKind::CurrentBelow,
@@ -41,6 +47,8 @@ impl EndKind {
         EndKind::LevelsDone,
         EndKind::Aborted,
         EndKind::Interrupted,
+        EndKind::GroupVoltageBelow,
+        EndKind::GroupVoltageAbove,
     ];
 
     /// The name records use (the serde spelling).
@@ -59,7 +67,14 @@ impl EndKind {
             EndKind::LevelsDone => "levels_done",
             EndKind::Aborted => "aborted",
             EndKind::Interrupted => "interrupted",
+            EndKind::GroupVoltageBelow => "group_voltage_below",
+            EndKind::GroupVoltageAbove => "group_voltage_above",
         }
+    }
+
+    /// A discharge that ended on its cutoff: the pack's, or a group's.
+    pub fn is_cutoff(&self) -> bool {
+        matches!(self, EndKind::VoltageBelow | EndKind::GroupVoltageBelow)
     }
 
     /// The run stopped in this step (a safety stop, a fault, Ctrl-C).

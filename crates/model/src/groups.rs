@@ -116,11 +116,6 @@ pub fn group_full_reason(group: u32, volts: f64, per_cell_v: f64, inferred: bool
     )
 }
 
-/// Whether a step's end reason is a group reaching its charge voltage.
-pub fn is_group_full_reason(reason: &str) -> bool {
-    reason.starts_with("group ") && reason.contains(" full at ")
-}
-
 /// The simulated scanner's channel numbers: group g's voltage (or tap g)
 /// on 100 + g, a surface sensor on group g on 200 + g.
 pub const SIM_VOLTAGE_BASE: u32 = 100;

@@ -144,6 +144,7 @@ pub fn parse_history_csv(
             soh_pct: capacity_ah / rated_ah * 100.0,
             resistance_mohm,
             resistance_growth_pct: None,
+            ieee450_percent: None,
             coulombic_efficiency_pct: None,
             grade: None,
             source: format!("{} line {line_no}", path.display()),
@@ -174,6 +175,9 @@ pub struct RunFacts {
     pub dcir_mohm: Option<f64>,
     /// The verdict's growth of this run's resistance, %.
     pub resistance_growth_pct: Option<f64>,
+    /// The verdict's IEEE 450 percent capacity.
+    #[serde(default)]
+    pub ieee450_percent: Option<f64>,
     /// The verdict's coulombic efficiency (the capacity step's cycle), %.
     pub coulombic_efficiency_pct: Option<f64>,
     pub grade: Option<String>,
@@ -252,6 +256,7 @@ impl RunFacts {
             not_counted: v.not_counted.map(|w| w.words().to_string()),
             dcir_mohm: v.resistance_mohm.get(),
             resistance_growth_pct: v.resistance_growth_pct.get(),
+            ieee450_percent: v.ieee450_percent.get(),
             coulombic_efficiency_pct: v.coulombic_efficiency_pct.get(),
             grade: v.grade_label().map(str::to_string),
             discharged_ah: s.steps.iter().map(|st| st.charge_out_ah).sum(),
@@ -386,6 +391,7 @@ pub fn assemble(
                     soh_pct: soh,
                     resistance_mohm: s.dcir_mohm,
                     resistance_growth_pct: s.resistance_growth_pct,
+                    ieee450_percent: s.ieee450_percent,
                     coulombic_efficiency_pct: s.coulombic_efficiency_pct,
                     grade: s.grade.clone(),
                     source: format!("run {}", s.run_id),

@@ -77,6 +77,7 @@ CREATE TABLE IF NOT EXISTS runs (
     counts_for_history INTEGER NOT NULL,
     not_counted TEXT,
     resistance_growth_pct REAL,
+    ieee450_percent REAL,
     PRIMARY KEY (pack_id, folder)
 );
 CREATE TABLE IF NOT EXISTS steps (
@@ -494,7 +495,7 @@ impl Index {
         for (name, st, f, (steps, cycles, readings)) in &facts {
             let c = f.capacity.as_ref();
             tx.execute(
-                "INSERT OR REPLACE INTO runs (pack_id, folder, run_id, stamp, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, counts_for_history, not_counted, resistance_growth_pct) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20)",
+                "INSERT OR REPLACE INTO runs (pack_id, folder, run_id, stamp, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, counts_for_history, not_counted, resistance_growth_pct, ieee450_percent) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21)",
                 params![
                     pack_id,
                     name,
@@ -515,7 +516,8 @@ impl Index {
                     f.discharged_ah,
                     f.counts_for_history,
                     f.not_counted,
-                    f.resistance_growth_pct
+                    f.resistance_growth_pct,
+                    f.ieee450_percent
                 ],
             )
             .map_err(&sql)?;
@@ -533,7 +535,7 @@ impl Index {
             let mut st = self
                 .conn
                 .prepare(
-                    "SELECT pack_id, run_id, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, folder, counts_for_history, not_counted, resistance_growth_pct FROM runs ORDER BY pack_id, test_date, run_id",
+                    "SELECT pack_id, run_id, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, folder, counts_for_history, not_counted, resistance_growth_pct, ieee450_percent FROM runs ORDER BY pack_id, test_date, run_id",
                 )
                 .map_err(&sql)?;
             let rows = st
@@ -566,6 +568,7 @@ impl Index {
                             counts_for_history: r.get(16)?,
                             not_counted: r.get(17)?,
                             resistance_growth_pct: r.get(18)?,
+                            ieee450_percent: r.get(19)?,
                             groups: None,
                         },
                     ))

@@ -86,12 +86,21 @@ pub fn build_summary(
     duration_s: f64,
     pack_dir: Option<&Path>,
 ) -> Summary {
-    let reference = pack_dir
-        .and_then(|d| reference_resistance(d, ctx))
-        .or(ctx.pack.rated_resistance_mohm.map(|mohm| crate::verdict::Reference {
-            mohm,
-            source: "rated".into(),
-        }));
+    let reference = match pack_dir {
+        Some(d) => reference_resistance(
+            d,
+            ctx.pack.rated_resistance_mohm,
+            ctx.test_date,
+            ctx.run_id,
+        ),
+        None => ctx
+            .pack
+            .rated_resistance_mohm
+            .map(|mohm| crate::verdict::Reference {
+                mohm,
+                source: "rated".into(),
+            }),
+    };
     let (verdict, judged) = crate::verdict::judge(&crate::verdict::Inputs {
         status: outcome.status,
         chemistry: ctx.pack.chemistry,
@@ -552,9 +561,11 @@ pub struct SummaryContext<'a> {
 /// the pack (named), else none (this run's is the pack's first).
 pub fn reference_resistance(
     pack_dir: &Path,
-    ctx: &SummaryContext<'_>,
+    rated_mohm: Option<f64>,
+    test_date: NaiveDate,
+    run_id: &str,
 ) -> Option<crate::verdict::Reference> {
-    if let Some(mohm) = ctx.pack.rated_resistance_mohm {
+    if let Some(mohm) = rated_mohm {
         return Some(crate::verdict::Reference {
             mohm,
             source: "rated".into(),
@@ -563,9 +574,9 @@ pub fn reference_resistance(
     let runs = crate::history::run_summaries(pack_dir).ok()?;
     runs.iter()
         .filter(|(_, s)| {
-            s.status == RunStatus::Completed
+            s.status.is_complete()
                 && crate::history::parse_date(&s.test_date)
-                    .is_some_and(|d| (d, s.run_id.as_str()) < (ctx.test_date, ctx.run_id))
+                    .is_some_and(|d| (d, s.run_id.as_str()) < (test_date, run_id))
         })
         .find_map(|(_, s)| {
             s.resistance.as_ref().map(|r| crate::verdict::Reference {

@@ -1041,6 +1041,17 @@ fn pack_tables(b: &mut String, h: &PackHistory, fa: &FadeAnalysis) {
         );
     }
     let _ = write!(b, "</table>");
+    for p in &h.points {
+        for fl in &p.flags {
+            let _ = write!(
+                b,
+                "<p class=\"warn\">Flag: {} ({}): {}</p>",
+                escape(&p.source),
+                p.date,
+                escape(fl)
+            );
+        }
+    }
     if !h.left_out.is_empty() {
         let _ = write!(b, "<h2>Runs left out of the fits</h2><ul>");
         for l in &h.left_out {
@@ -1071,23 +1082,8 @@ pub fn fleet_report(fleet: &Fleet, histories: &[PackHistory], title: &str) -> St
     );
     let _ = write!(b, "<table><tr><th>rank</th><th class=\"l\">pack</th><th class=\"l\">chemistry</th><th>tests</th><th class=\"l\">last test</th><th>cycles</th><th>SOH (%)</th><th>resistance (mΩ)</th><th>growth (%)</th><th>fade (%/100 cyc)</th><th>EOL cycles</th><th class=\"l\">EOL date</th><th class=\"l\">grade</th><th class=\"l\">flags</th></tr>");
     for r in &fleet.rows {
-        let mut flags = Vec::new();
-        if r.overdue || r.replace {
-            // The rule that made it so (e.g. an IEEE 450 interval).
-            flags.push(if r.overdue {
-                format!("test overdue ({})", r.due_rule)
-            } else {
-                r.due_rule.clone()
-            });
-        }
-        if r.accelerating {
-            flags.push("fade accelerating".to_string());
-        }
-        if let Some(d) = r.below_eol_since {
-            flags.push(format!("below end of life since {d}"));
-        } else if r.eol_date_past {
-            flags.push("projected end of life already past".to_string());
-        }
+        // What needs attention, judged once in the fleet row.
+        let flags = &r.attention;
         let _ = write!(
             b,
             "<tr><td>{}</td><td class=\"l\">{}</td><td class=\"l\">{} {}S</td><td>{}</td><td class=\"l\">{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td class=\"l\">{}</td><td class=\"l\"><b>{}</b></td><td class=\"l flag\">{}</td></tr>",

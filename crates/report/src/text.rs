@@ -543,6 +543,11 @@ pub fn fade(
             l.run_id, l.status, l.reason
         );
     }
+    for p in &h.points {
+        for f in &p.flags {
+            let _ = writeln!(o, "  FLAG {} ({}): {f}", p.source, p.date);
+        }
+    }
     o
 }
 
@@ -591,6 +596,9 @@ pub fn fleet(f: &analysis::fade::fleet::Fleet) -> String {
         } else if r.eol_date_past {
             flags.push("EOL-DATE-PAST".to_string());
         }
+        if !r.flags.is_empty() {
+            flags.push("FLAGGED".to_string());
+        }
         let _ =
             writeln!(
             o,
@@ -611,14 +619,25 @@ pub fn fleet(f: &analysis::fade::fleet::Fleet) -> String {
             flags.join(" ")
         );
     }
-    // Why each pack that needs attention does.
-    for r in f.rows.iter().filter(|r| r.overdue || r.replace) {
-        let when = match r.due {
-            Some(d) if r.overdue => format!("due since {d}"),
-            Some(d) => format!("due {d}"),
-            None => "due now".into(),
-        };
-        let _ = writeln!(o, "  {}: {when}: {}", r.pack_id, r.due_rule);
+    // Why each pack that needs attention does (the fleet row's words).
+    for r in &f.rows {
+        if r.overdue || r.replace {
+            let when = match r.due {
+                Some(d) if r.overdue => format!("due since {d}"),
+                Some(d) => format!("due {d}"),
+                None => "due now".into(),
+            };
+            let _ = writeln!(o, "  {}: {when}: {}", r.pack_id, r.due_rule);
+        }
+        for a in r.attention.iter().filter(|a| a.starts_with("replace") && r.grade.is_some()) {
+            let _ = writeln!(o, "  {}: {a}", r.pack_id);
+        }
+        for fl in &r.flags {
+            let _ = writeln!(o, "  {}: FLAG {fl}", r.pack_id);
+        }
+        if let Some(src) = r.from_test.as_ref().filter(|_| !r.flags.is_empty()) {
+            let _ = writeln!(o, "  {}: its figures and grade are from {src}", r.pack_id);
+        }
     }
     o
 }

@@ -42,6 +42,11 @@ pub struct FleetRow {
     pub from_test: Option<String>,
     /// Flagged tests of the pack, each with why.
     pub flags: Vec<String>,
+    /// What needs attention, in words, judged once here and shown by every
+    /// fleet screen: overdue, replace, accelerating, below end of life,
+    /// flagged tests. A replacement by the schedule's rule overrides the
+    /// grade's duty (one row never advises both).
+    pub attention: Vec<String>,
     /// The latest tests are under the end-of-life threshold, since then.
     pub below_eol_since: Option<NaiveDate>,
     /// The projected end-of-life date is before today.
@@ -86,6 +91,38 @@ pub fn row(
             .find(|m| m.kind == k)
             .map(|m| m.fade_per_unit)
     };
+    let flags: Vec<String> = h
+        .points
+        .iter()
+        .flat_map(|p| p.flags.iter().map(move |f| format!("{} ({}): {f}", p.source, p.date)))
+        .collect();
+    let mut attention = Vec::new();
+    if due.replace {
+        attention.push(match last.and_then(|p| p.grade.as_deref()) {
+            Some(g) => format!(
+                "replace: {} (this overrides grade {g}'s duty in this service)",
+                due.rule
+            ),
+            None => format!("replace: {}", due.rule),
+        });
+    } else if due.overdue {
+        attention.push(format!("test overdue: {}", due.rule));
+    }
+    if fade.accelerating.is_some() {
+        attention.push("fade accelerating".into());
+    }
+    if let Some(d) = fade.below_eol_since {
+        attention.push(format!("below end of life since {d}"));
+    } else if fade.eol_date.as_ref().is_some_and(|p| p.date < today) {
+        attention.push("projected end of life already past".into());
+    }
+    if !flags.is_empty() {
+        attention.push(format!(
+            "{} flagged test(s): the row's figures are from {}",
+            flags.len(),
+            last.map(|p| p.source.as_str()).unwrap_or("no unflagged test")
+        ));
+    }
     FleetRow {
         rank: 0,
         pack_id: h.pack_id.clone(),
@@ -111,11 +148,8 @@ pub fn row(
         accelerating: fade.accelerating.is_some(),
         grade: last.and_then(|p| p.grade.clone()),
         from_test: last.map(|p| p.source.clone()),
-        flags: h
-            .points
-            .iter()
-            .flat_map(|p| p.flags.iter().map(move |f| format!("{} ({}): {f}", p.source, p.date)))
-            .collect(),
+        flags,
+        attention,
         below_eol_since: fade.below_eol_since,
         eol_date_past: fade.eol_date.as_ref().is_some_and(|p| p.date < today),
     }

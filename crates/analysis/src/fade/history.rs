@@ -21,6 +21,9 @@ pub struct HistoryPoint {
     pub resistance_mohm: Option<f64>,
     /// The run's verdict's resistance growth (a history line: none).
     pub resistance_growth_pct: Option<f64>,
+    /// The run's verdict's IEEE 450 percent capacity (lead-acid at its
+    /// rated current to its cutoff).
+    pub ieee450_percent: Option<f64>,
     pub coulombic_efficiency_pct: Option<f64>,
     pub grade: Option<String>,
     /// `run <id>` or `history.csv line N`.

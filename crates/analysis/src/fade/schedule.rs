@@ -159,7 +159,17 @@ impl Schedule {
                 },
             };
         };
-        let replace = last.soh_pct < 80.0;
+        // IEEE 450 judges by its own figure, the percent capacity of a
+        // discharge at the rated current (time-adjusted); a test without
+        // one (another rate) is judged on its state of health, and says so.
+        let (pct, figure) = match last.ieee450_percent {
+            Some(p) => (p, "IEEE 450 percent capacity"),
+            None => (
+                last.soh_pct,
+                "state of health (no IEEE 450 percent capacity: the test was not at the rated current to the cutoff)",
+            ),
+        };
+        let replace = pct < 80.0;
         let previous = h.points.len().checked_sub(2).map(|i| &h.points[i]);
         let dropped = previous
             .filter(|p| p.capacity_ah > 0.0)
@@ -171,15 +181,12 @@ impl Schedule {
                 YEAR_DAYS,
                 format!("IEEE 450: every year: capacity {d:.1} % below the previous test's (more than 10 %)"),
             )
-        } else if last.soh_pct < 90.0 {
+        } else if pct < 90.0 {
             (
                 YEAR_DAYS,
-                format!(
-                    "IEEE 450: every year: capacity {:.1} % of rating (under 90 %)",
-                    last.soh_pct
-                ),
+                format!("IEEE 450: every year: {figure} {pct:.1} % of rating (under 90 %)"),
             )
-        } else if aged && last.soh_pct >= 100.0 {
+        } else if aged && pct >= 100.0 {
             (
                 2 * YEAR_DAYS,
                 "IEEE 450: every two years: 85 % of the expected service life reached, at 100 % of rating or more and no degradation".into(),
@@ -201,8 +208,7 @@ impl Schedule {
         let due = add_days(last.date, interval);
         let rule = if replace {
             format!(
-                "IEEE 450: replace: capacity {:.1} % of rating (under 80 %); until then {}",
-                last.soh_pct,
+                "IEEE 450: replace: {figure} {pct:.1} % of rating (under 80 %); until then {}",
                 rule.trim_start_matches("IEEE 450: ")
             )
         } else {
@@ -248,11 +254,14 @@ mod tests {
                     capacity_ah: *ah,
                     soh_pct: *ah,
                     resistance_mohm: None,
+                    resistance_growth_pct: None,
+                    ieee450_percent: None,
                     coulombic_efficiency_pct: None,
                     grade: None,
                     source: format!("test {date}"),
                     run_dir: None,
                     groups: None,
+                    flags: Vec::new(),
                 })
                 .collect(),
             left_out: Vec::new(),

@@ -616,14 +616,23 @@ mod tests {
                 (1.0, 3.7, 0.5),
                 (2.0, 3.6, -1.0),
                 (3.0, 3.5, -1.0),
-                (4.0, 3.4, -1.0),
                 (6.0, 3.2, -1.0)
             ]
         );
-        // The short line is an error at its own line, after four rows.
-        assert_eq!(out.bad.len(), 1);
+        // A line with a field too many (a decimal comma shifts every
+        // column after it) and a short line are errors at their own lines,
+        // after three rows: the first at the field too many, the second at
+        // the line's end.
+        assert_eq!(out.bad.len(), 2);
         match &out.bad[0] {
-            (4, ReadError::Bad { line, column, .. }) => assert_eq!((*line, *column), (7, 3)),
+            (3, ReadError::Bad { line, column, message, .. }) => {
+                assert_eq!((*line, *column), (6, 10));
+                assert!(message.contains("expected 3 fields"), "{message}");
+            }
+            other => panic!("{other:?}"),
+        }
+        match &out.bad[1] {
+            (3, ReadError::Bad { line, column, .. }) => assert_eq!((*line, *column), (7, 6)),
             other => panic!("{other:?}"),
         }
     }
@@ -674,7 +683,7 @@ mod tests {
                 proptest::strategy::Just(super::super::format::TimeUnit::Milliseconds),
             ],
         ) {
-            let cols = Cols { temperature: Some(4), step: Some(3), cycle: Some(5), ..three_columns() };
+            let cols = Cols { temperature: Some(4), step: Some(3), cycle: Some(5), nfields: 6, ..three_columns() };
             let fmt = LogFormat { time_unit: unit, ..LogFormat::default() };
             let bad_fn: fn(u64, usize, String) -> ReadError = bad;
             let mut p = ChunkParser::new(&cols, &fmt, sign, &bad_fn);
