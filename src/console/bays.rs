@@ -126,7 +126,8 @@ pub struct ResultView {
     pub error: Option<String>,
 }
 
-fn result_of(s: &record::Summary) -> ResultView {
+/// A finished run's tile: every figure from the run's verdict.
+pub fn result_of(s: &record::Summary) -> ResultView {
     ResultView {
         pack_id: s.pack_id.clone(),
         run_id: s.run_id.clone(),

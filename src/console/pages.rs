@@ -117,6 +117,26 @@ pub fn qr_svg(text: &str, size_mm: f64) -> Option<String> {
     ))
 }
 
+/// The pack label's figures (capacity, state of health, grade), every one
+/// from the run's verdict: the capacity that counts (corrected) and its
+/// state of health, as the packs list and the report show them.
+pub fn label_figures(s: &record::Summary) -> (String, String, String) {
+    let v = &s.verdict;
+    let grade = v.grade_label().unwrap_or("-").to_string();
+    let cap = v
+        .corrected_ah
+        .get()
+        .or(v.measured_ah.get())
+        .map(|a| format!("{a:.2} Ah"))
+        .unwrap_or("-".into());
+    let soh = v
+        .soh_pct
+        .get()
+        .map(|p| format!("{p:.1} %"))
+        .unwrap_or("-".into());
+    (cap, soh, grade)
+}
+
 /// A pack label for a 62 mm roll (62 × 29 mm): pack id, grade, state of
 /// health, capacity, date, and a QR code linking to the run's page.
 pub async fn label(
@@ -142,21 +162,7 @@ pub async fn label(
     let url = format!("http://{host}/packs/{pack}/runs/{run}");
     let qr = qr_svg(&url, 25.0).unwrap_or_default();
     let esc = report::markup::escape;
-    // The verdict's figures: the capacity that counts (corrected) and its
-    // state of health, as the packs list and the report show them.
-    let v = &s.verdict;
-    let grade = v.grade_label().unwrap_or("-").to_string();
-    let cap = v
-        .corrected_ah
-        .get()
-        .or(v.measured_ah.get())
-        .map(|a| format!("{a:.2} Ah"))
-        .unwrap_or("-".into());
-    let soh = v
-        .soh_pct
-        .get()
-        .map(|p| format!("{p:.1} %"))
-        .unwrap_or("-".into());
+    let (cap, soh, grade) = label_figures(&s);
     let body = format!(
         r#"<!doctype html><html lang="en"><meta charset="utf-8"><title>Label {pack_e}</title>
 <style>

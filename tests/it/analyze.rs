@@ -782,9 +782,12 @@ fn a_bare_log_is_analysed_without_a_pack_spec() {
             "{path:?}: {a} without a spec, {b} with"
         );
     }
-    // Nothing that needs the rating is made up.
-    assert_eq!(f(&bare, &["capacity", "soh_pct"]), 0.0);
-    assert!(bare["grade"].is_null());
+    // Nothing that needs the rating is made up: absent, with the reason,
+    // never a zero.
+    assert_eq!(bare["verdict"]["soh_pct"]["absent"], "no_rating");
+    assert_eq!(bare["verdict"]["grade"]["absent"], "no_rating");
+    assert!(bare["capacity"]["soh_pct"].is_null());
+    assert!(bare["capacity"]["rated_ah"].is_null());
     assert!(bare["recalibration"].is_null());
     let needs: Vec<&str> = bare["needs_rating"]
         .as_array()
@@ -811,5 +814,9 @@ fn a_bare_log_is_analysed_without_a_pack_spec() {
     ] {
         assert!(text.contains(want), "{want} in\n{text}");
     }
-    assert!(!text.contains("State of health"), "{text}");
+    // Said absent with its reason, never a figure.
+    assert!(
+        text.contains("State of health:   not measured (no rated capacity given)"),
+        "{text}"
+    );
 }

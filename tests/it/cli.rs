@@ -48,9 +48,10 @@ fn the_readme_command_runs_a_capacity_check() {
     let s: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(run.join("summary.json")).unwrap()).unwrap();
     assert_eq!(s["status"], "completed");
-    for k in ["measured_ah", "measured_wh", "soh_pct"] {
+    for k in ["measured_ah", "measured_wh"] {
         assert!(s["capacity"][k].is_f64(), "capacity.{k}");
     }
+    assert!(s["verdict"]["soh_pct"]["value"].is_f64(), "verdict.soh_pct");
     for st in s["steps"].as_array().unwrap() {
         for k in ["kind", "duration_s", "charge_ah", "energy_wh", "end_reason"] {
             assert!(!st[k].is_null(), "steps[].{k}");
@@ -76,10 +77,10 @@ fn the_readme_command_runs_a_capacity_check() {
     // The grade card shows the capacity the state of health is taken on
     // (at rated conditions) with its corrections.
     let html = std::fs::read_to_string(run.join("report.html")).unwrap();
-    let corrected = s["capacity"]["corrected_ah"].as_f64().unwrap();
+    let corrected = s["verdict"]["corrected_ah"]["value"].as_f64().unwrap();
     assert!(
         html.contains(&format!(
-            "<dt>At rated conditions</dt><dd>{corrected:.3} Ah"
+            "<dt>Capacity (corrected)</dt><dd>{corrected:.3} Ah"
         )),
         "the card lacks the corrected capacity {corrected:.3} Ah"
     );

@@ -170,7 +170,7 @@ fn a_weak_group_ends_the_discharge_and_is_named() {
     assert!(reason.starts_with("group 7 gives"), "{reason}");
     let cap7 = g["groups"][6]["relative_capacity_pct"].as_f64().unwrap();
     assert!((cap7 - 88.0 / 0.991).abs() < 1.5, "{cap7}");
-    let grade = s["grade"]["reasons"].to_string();
+    let grade = s["verdict"]["grade"]["value"]["reasons"].to_string();
     assert!(grade.contains("group 7 delivers"), "{grade}");
     assert!(grade.contains("replace or rebalance"), "{grade}");
     // The group sensor on group 7 reported.

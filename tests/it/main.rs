@@ -37,3 +37,4 @@ mod sim_scpi;
 mod storage;
 #[cfg(unix)]
 mod unattended;
+mod verdict;

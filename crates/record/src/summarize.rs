@@ -424,13 +424,19 @@ pub fn summarize_foreign(
     note_partial_line(&mut a, rep.partial_last_line, "the log");
     if rep.bad_rows_skipped > 0 {
         a.warnings.push(format!(
-            "{} row(s) that did not parse were skipped (first: {})",
-            rep.bad_rows_skipped,
-            rep.bad_rows
-                .first()
-                .map(|(l, m)| format!("line {l}: {m}"))
-                .unwrap_or_default()
+            "{} row(s) that did not parse were left out (--skip-bad-rows); each is named below",
+            rep.bad_rows_skipped
         ));
+        // Each named (the message carries file:line:column).
+        for (_, m) in &rep.bad_rows {
+            a.warnings.push(format!("left out: {m}"));
+        }
+        if rep.bad_rows_skipped > rep.bad_rows.len() as u64 {
+            a.warnings.push(format!(
+                "… and {} more row(s) left out",
+                rep.bad_rows_skipped - rep.bad_rows.len() as u64
+            ));
+        }
     }
     let name = log
         .path

@@ -126,13 +126,6 @@ pub fn summary(s: &Summary) -> String {
             let _ = writeln!(o, "  {k}: {v}");
         }
     }
-    if let Some(r) = &s.recalibration {
-        let _ = writeln!(
-            o,
-            "  Recalibration:     new nominal {:.3} Ah ({})",
-            r.suggested_nominal_ah, r.conditions
-        );
-    }
     if let Some(d) = &s.standby_drain {
         let _ = writeln!(
             o,
@@ -269,7 +262,10 @@ fn capacity_lines(o: &mut String, s: &Summary) {
             let _ = writeln!(
                 o,
                 "  New nominal (BMS): {}",
-                v.new_nominal_ah.show(3, " Ah")
+                match (v.new_nominal_ah.get(), &s.recalibration) {
+                    (Some(n), Some(r)) => format!("{n:.3} Ah ({})", r.conditions),
+                    _ => v.new_nominal_ah.show(3, " Ah"),
+                }
             );
         }
         None => {

@@ -161,13 +161,11 @@ impl Schedule {
         };
         // IEEE 450 judges by its own figure, the percent capacity of a
         // discharge at the rated current (time-adjusted); a test without
-        // one (another rate) is judged on its state of health, and says so.
+        // one (another rate, a history line) is judged on its capacity
+        // as a share of the rating.
         let (pct, figure) = match last.ieee450_percent {
             Some(p) => (p, "IEEE 450 percent capacity"),
-            None => (
-                last.soh_pct,
-                "state of health (no IEEE 450 percent capacity: the test was not at the rated current to the cutoff)",
-            ),
+            None => (last.soh_pct, "capacity"),
         };
         let replace = pct < 80.0;
         let previous = h.points.len().checked_sub(2).map(|i| &h.points[i]);
