@@ -5,8 +5,6 @@ use crate::cli::args::pack_from_args;
 use crate::cli::args::PackArgs;
 use crate::cli::args::{bms_from_args, BmsArgs};
 use crate::cli::exit::ExitCode;
-use record::summarize::ForeignLog;
-use record::summarize::SummaryContext;
 use analysis::correct::CorrectionPolicy;
 use analysis::fade::grade::Policy;
 use analysis::{AnalysisOptions, CurveData};
@@ -15,6 +13,8 @@ use clap::Args;
 use model::pack::PackSpec;
 use model::units;
 use record::import::{ColumnNames, CurrentSign, LogFormat, TimeUnit};
+use record::summarize::ForeignLog;
+use record::summarize::SummaryContext;
 use record::{PackSummary, Summary, RUN_JSON, SAMPLES_CSV};
 use std::io::Write;
 use std::path::{Path, PathBuf};
@@ -269,8 +269,13 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
         let pack = spec_from_summary(&m.pack)?;
         let (pack_id, run_id) = (m.pack_id.clone(), m.run_id.clone());
         let title = m.procedure.title.clone();
-        let test_date = record::history::parse_date(&m.test_date)
-            .ok_or_else(|| anyhow!("{}: test_date '{}' is not a date", dir.join(RUN_JSON).display(), m.test_date))?;
+        let test_date = record::history::parse_date(&m.test_date).ok_or_else(|| {
+            anyhow!(
+                "{}: test_date '{}' is not a date",
+                dir.join(RUN_JSON).display(),
+                m.test_date
+            )
+        })?;
         let ctx = SummaryContext {
             pack: &pack,
             pack_id: &pack_id,
@@ -299,7 +304,9 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
         time_unit: a.time_unit.parse::<TimeUnit>().map_err(|e| anyhow!(e))?,
         skip_bad_rows: a.skip_bad_rows,
         delimiter: match &a.delimiter {
-            Some(d) => Some(record::import::parse_delimiter(d).map_err(|e| anyhow!("--delimiter: {e}"))?),
+            Some(d) => {
+                Some(record::import::parse_delimiter(d).map_err(|e| anyhow!("--delimiter: {e}"))?)
+            }
             None => None,
         },
     };
@@ -426,7 +433,12 @@ pub fn cmd_peukert(a: PeukertArgs) -> anyhow::Result<ExitCode> {
         let runs: Vec<String> = a
             .runs
             .iter()
-            .map(|r| r.file_name().and_then(|n| n.to_str()).unwrap_or("?").to_string())
+            .map(|r| {
+                r.file_name()
+                    .and_then(|n| n.to_str())
+                    .unwrap_or("?")
+                    .to_string()
+            })
             .collect();
         record::write::write_peukert(&pack_dir, k, &runs)?;
         println!(

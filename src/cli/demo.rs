@@ -447,7 +447,7 @@ pub fn synthetic_fleet(
             let mut s = t.clone();
             s.pack_id = id.clone();
             s.run_id = run_id.clone();
-            s.test_date = date.to_string();
+            s.test_date = date;
             if let Some(c) = s.capacity.as_mut() {
                 let soh = 1.0 - fade * j as f64;
                 c.measured_ah = rated * soh;

@@ -160,14 +160,12 @@ pub fn cmd_import(mut a: ImportArgs) -> anyhow::Result<ExitCode> {
     summary.cycle_count = a.cycles;
     // Judged as a run of this pack: its resistance against the pack's
     // reference.
-    if let Some(d) = record::history::parse_date(&summary.test_date) {
-        summary.verdict.resistance_reference = record::summarize::reference_resistance(
-            &pack_dir,
-            pack.rated_resistance_mohm,
-            d,
-            &run_id,
-        );
-    }
+    summary.verdict.resistance_reference = record::summarize::reference_resistance(
+        &pack_dir,
+        pack.rated_resistance_mohm,
+        summary.test_date,
+        &run_id,
+    );
     let policy = crate::cli::analyze::policy_of(&a.log)?;
     record::verdict::rejudge(&mut summary, Some(&policy));
     let copy = dir.join(SOURCE_CSV);
@@ -195,7 +193,11 @@ pub fn cmd_import(mut a: ImportArgs) -> anyhow::Result<ExitCode> {
     if let Some(h) = &history {
         if let Some(k) = h.points.iter().position(|p| p.source == source) {
             summary.verdict.flags = h.points[k].flags.clone();
-            previous = h.points[..k].iter().rev().find(|p| p.flags.is_empty()).cloned();
+            previous = h.points[..k]
+                .iter()
+                .rev()
+                .find(|p| p.flags.is_empty())
+                .cloned();
             if !summary.verdict.flags.is_empty() {
                 record::write::write_json(&summary_path, &summary)
                     .with_context(|| format!("writing {}", summary_path.display()))?;

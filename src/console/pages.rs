@@ -184,7 +184,7 @@ body {{ margin: 0; font-family: sans-serif }}
 </html>"#,
         pack_e = esc(&pack),
         grade_e = esc(&grade),
-        date = esc(&s.test_date),
+        date = esc(&s.test_date.to_string()),
         url_e = esc(&url),
     );
     Html(body).into_response()

@@ -110,13 +110,17 @@ fn read_spec(pack_dir: &Path) -> Result<PackSpec, RunError> {
     Ok(PackSpec::from_toml(&path, &text)?)
 }
 
-/// The pack's latest measured capacity: a completed run whose capacity
-/// step started from a full charge and reached its cutoff.
+/// The pack's latest measured capacity, as its run's verdict has it: a
+/// completed run that counts for the pack's history (from a full charge)
+/// and reached its cutoff.
 fn measured_capacity(runs: &[(PathBuf, Summary)]) -> Option<f64> {
     runs.iter().rev().find_map(|(_, s)| {
-        let c = s.capacity.as_ref()?;
-        (s.status == RunStatus::Completed && c.from_full_charge && c.ended_on_cutoff == Some(true))
-            .then_some(c.measured_ah)
+        let v = &s.verdict;
+        (s.status == RunStatus::Completed
+            && v.counts_for_history
+            && v.ended_on_cutoff == Some(true))
+        .then(|| v.measured_ah.get())
+        .flatten()
     })
 }
 

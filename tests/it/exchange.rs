@@ -304,7 +304,10 @@ fn sync_pushes_each_run_once_and_the_fleet_from_the_store_is_the_fleet() {
         cap.corrected_ah = Some(6.0);
     }
     let want = 6.0 / s.pack.rated_capacity_ah * 100.0;
-    record::verdict::rejudge(&mut s, Some(&analysis::fade::grade::Policy::default_policy()));
+    record::verdict::rejudge(
+        &mut s,
+        Some(&analysis::fade::grade::Policy::default_policy()),
+    );
     record::write::write_json(&run.join("summary.json"), &s).unwrap();
     let third = sync(&url, &results, &["--bench", "depot-north"]);
     assert!(third.contains("1 replaced"), "{third}");

@@ -88,7 +88,10 @@ fn the_index_ranks_as_the_folders_do_and_follows_them() {
         c.measured_ah = 7.0;
         c.corrected_ah = Some(7.0);
     }
-    record::verdict::rejudge(&mut s, Some(&analysis::fade::grade::Policy::default_policy()));
+    record::verdict::rejudge(
+        &mut s,
+        Some(&analysis::fade::grade::Policy::default_policy()),
+    );
     // A new size, so the stamp changes even within the clock's resolution.
     record::write::write_json(&run.join("summary.json"), &s).unwrap();
     let (f, r) = indexed(&results);

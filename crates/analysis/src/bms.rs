@@ -64,8 +64,8 @@ pub fn compare(
     let mut notes = Vec::new();
     // Only a discharge from a full charge to the cutoff measures the
     // capacity and anchors the state of charge at both ends.
-    let anchored =
-        capacity.filter(|c| c.from_full_charge && c.ended_on_cutoff == Some(true) && c.measured_ah > 0.0);
+    let anchored = capacity
+        .filter(|c| c.from_full_charge && c.ended_on_cutoff == Some(true) && c.measured_ah > 0.0);
     if anchored.is_none() {
         notes.push(match capacity {
             None => "no capacity step in the run: nothing measured to compare the BMS with".into(),

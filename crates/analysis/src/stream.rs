@@ -15,9 +15,9 @@ use super::pulse::{self, is_jump, PulseTracker};
 use super::resistance::{two_level_ohm, LevelTracker, ResistanceReading};
 use super::FULL_START_TOLERANCE;
 use super::{
-    Analysis, CapacityResult, CurveData, CurvesSummary, CycleSummary, DvaSummary, Gap,
-    IcaSummary, LogQuality, OcvPoint, OcvTable, PeakSummary, Recalibration, ResistanceResult,
-    StepInfo, StepSummary,
+    Analysis, CapacityResult, CurveData, CurvesSummary, CycleSummary, DvaSummary, Gap, IcaSummary,
+    LogQuality, OcvPoint, OcvTable, PeakSummary, Recalibration, ResistanceResult, StepInfo,
+    StepSummary,
 };
 use model::end::EndKind;
 use model::pack::PackSpec;
@@ -1084,28 +1084,29 @@ fn capacity_result(
         preceded_by: start.preceded_by.clone(),
     };
     // A new nominal only from a full charge to a known cutoff.
-    let recalibration = (start.from_full_charge && ended_on_cutoff == Some(true)).then(|| Recalibration {
-        full_charge_capacity_ah: corrected,
-        suggested_nominal_ah: (corrected * 1000.0).round() / 1000.0,
-        measured_ah: s.charge_out_ah,
-        energy_wh: s.energy_out_wh,
-        rate_c: mean / pack.rated_capacity_ah,
-        current_a: mean,
-        end_voltage_v: s.end_voltage_v,
-        initial_temperature_c: t0,
-        ended_on_cutoff: true,
-        conditions: format!(
-            "discharge at {:.3} A ({:.3}C) to {} from a full charge, {}; {}",
-            mean,
-            mean / pack.rated_capacity_ah,
-            s.end_voltage_v
-                .map(|v| format!("{v:.3} V"))
-                .unwrap_or_else(|| "its end".into()),
-            t0.map(|t| format!("starting at {t:.1} °C"))
-                .unwrap_or_else(|| "temperature not logged".into()),
-            c.conditions()
-        ),
-    });
+    let recalibration =
+        (start.from_full_charge && ended_on_cutoff == Some(true)).then(|| Recalibration {
+            full_charge_capacity_ah: corrected,
+            suggested_nominal_ah: (corrected * 1000.0).round() / 1000.0,
+            measured_ah: s.charge_out_ah,
+            energy_wh: s.energy_out_wh,
+            rate_c: mean / pack.rated_capacity_ah,
+            current_a: mean,
+            end_voltage_v: s.end_voltage_v,
+            initial_temperature_c: t0,
+            ended_on_cutoff: true,
+            conditions: format!(
+                "discharge at {:.3} A ({:.3}C) to {} from a full charge, {}; {}",
+                mean,
+                mean / pack.rated_capacity_ah,
+                s.end_voltage_v
+                    .map(|v| format!("{v:.3} V"))
+                    .unwrap_or_else(|| "its end".into()),
+                t0.map(|t| format!("starting at {t:.1} °C"))
+                    .unwrap_or_else(|| "temperature not logged".into()),
+                c.conditions()
+            ),
+        });
     (c, recalibration)
 }
 

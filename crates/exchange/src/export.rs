@@ -348,7 +348,7 @@ impl RunRecord {
             ("packbench.pack_id", s.pack_id.clone()),
             ("packbench.run_id", s.run_id.clone()),
             ("packbench.status", s.status.name().to_string()),
-            ("packbench.test_date", s.test_date.clone()),
+            ("packbench.test_date", s.test_date.to_string()),
             ("packbench.started_utc", m.started_utc.clone()),
             (
                 "packbench.finished_utc",
@@ -394,9 +394,9 @@ impl RunRecord {
         }
         out.push((
             "packbench.grade",
-            v.grade_label()
-                .map(str::to_string)
-                .unwrap_or_else(|| format!("absent: {}", v.grade.why().map(|w| w.words()).unwrap_or(""))),
+            v.grade_label().map(str::to_string).unwrap_or_else(|| {
+                format!("absent: {}", v.grade.why().map(|w| w.words()).unwrap_or(""))
+            }),
         ));
         out.into_iter().map(|(k, v)| (k.to_string(), v)).collect()
     }

@@ -241,7 +241,7 @@ impl RunFacts {
         let v = &s.verdict;
         RunFacts {
             run_id: s.run_id.clone(),
-            test_date: s.test_date.clone(),
+            test_date: s.test_date.to_string(),
             status: s.status,
             stop_reason: s.stop_reason.clone(),
             cycle_count: s.cycle_count,
@@ -281,8 +281,7 @@ pub fn run_summaries(pack_dir: &Path) -> Result<Vec<(PathBuf, Summary)>, History
         out.push((e.path(), crate::read::read_summary(&path)?));
     }
     out.sort_by(|a, b| {
-        (a.1.test_date.as_str(), a.1.run_id.as_str())
-            .cmp(&(b.1.test_date.as_str(), b.1.run_id.as_str()))
+        (a.1.test_date, a.1.run_id.as_str()).cmp(&(b.1.test_date, b.1.run_id.as_str()))
     });
     Ok(out)
 }
@@ -339,7 +338,8 @@ pub fn assemble(
         };
         // The verdict says whether the run counts: our completed runs and
         // tests imported from other benches alike.
-        let usable = s.counts_for_history && s.capacity.as_ref().is_some_and(|c| c.soh_pct.is_some());
+        let usable =
+            s.counts_for_history && s.capacity.as_ref().is_some_and(|c| c.soh_pct.is_some());
         if !usable {
             left_out.push(LeftOut {
                 run_id: s.run_id.clone(),

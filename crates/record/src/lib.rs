@@ -77,8 +77,8 @@ pub struct Summary {
     pub run_id: String,
     pub procedure_title: String,
     pub pack: PackSummary,
-    /// The day the test counts for (UTC date, `YYYY-MM-DD`).
-    pub test_date: String,
+    /// The day the test counts for (UTC date, `YYYY-MM-DD` on disk).
+    pub test_date: chrono::NaiveDate,
     /// The pack's equivalent full cycles at the test, when known from
     /// outside packbench (the pack's own counter or the operator).
     pub cycle_count: Option<f64>,

@@ -5,6 +5,7 @@
 //! current when the log has no step column). Streams the log once.
 
 use crate::error::ReadError;
+use crate::event::Event;
 use analysis::fade::grade::Policy;
 use analysis::integrate::Interruption;
 use analysis::pulse::is_jump;
@@ -12,13 +13,12 @@ use analysis::{AnalysisOptions, Analyzer, CurveData};
 use model::bms::BmsReadings;
 use model::pack::PackSpec;
 use model::status::RunStatus;
-use crate::event::Event;
 
-use chrono::NaiveDate;
-use model::sample::Sample;
 use crate::import::{stream_log, LogFormat, ReadReport, Row};
 use crate::read::{read_events, step_infos};
 use crate::{PackSummary, Summary, EVENTS_JSONL, SAMPLES_CSV};
+use chrono::NaiveDate;
+use model::sample::Sample;
 use std::path::Path;
 
 /// Finds steps in a log without a step column: a new step where the
@@ -87,12 +87,9 @@ pub fn build_summary(
     pack_dir: Option<&Path>,
 ) -> Summary {
     let reference = match pack_dir {
-        Some(d) => reference_resistance(
-            d,
-            ctx.pack.rated_resistance_mohm,
-            ctx.test_date,
-            ctx.run_id,
-        ),
+        Some(d) => {
+            reference_resistance(d, ctx.pack.rated_resistance_mohm, ctx.test_date, ctx.run_id)
+        }
         None => ctx
             .pack
             .rated_resistance_mohm
@@ -132,7 +129,7 @@ pub fn build_summary(
         run_id: ctx.run_id.to_string(),
         procedure_title: ctx.title.to_string(),
         pack: PackSummary::from(ctx.pack),
-        test_date: ctx.test_date.to_string(),
+        test_date: ctx.test_date,
         cycle_count: ctx.cycle_count,
         capacity: a.capacity,
         resistance: a.resistance,
@@ -580,9 +577,7 @@ pub fn reference_resistance(
     let runs = crate::history::run_summaries(pack_dir).ok()?;
     runs.iter()
         .filter(|(_, s)| {
-            s.status.is_complete()
-                && crate::history::parse_date(&s.test_date)
-                    .is_some_and(|d| (d, s.run_id.as_str()) < (test_date, run_id))
+            s.status.is_complete() && (s.test_date, s.run_id.as_str()) < (test_date, run_id)
         })
         .find_map(|(_, s)| {
             s.resistance.as_ref().map(|r| crate::verdict::Reference {

@@ -502,6 +502,22 @@ impl Drop for RunLogSink {
     }
 }
 
+/// Keep a pack's measured Peukert exponent with it (`peukert.toml`): the
+/// exponent and the two runs it came from.
+pub fn write_peukert(pack_dir: &Path, k: f64, runs: &[String]) -> io::Result<()> {
+    #[derive(Serialize)]
+    struct File<'a> {
+        exponent: f64,
+        from_runs: &'a [String],
+    }
+    let text = toml::to_string(&File {
+        exponent: k,
+        from_runs: runs,
+    })
+    .map_err(io::Error::other)?;
+    atomic_write(&pack_dir.join(crate::PEUKERT_TOML), text.as_bytes())
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -535,20 +551,4 @@ mod tests {
         cut_partial_line(&p).expect("cut");
         assert_eq!(fs::read(&p).expect("read").len(), 0);
     }
-}
-
-/// Keep a pack's measured Peukert exponent with it (`peukert.toml`): the
-/// exponent and the two runs it came from.
-pub fn write_peukert(pack_dir: &Path, k: f64, runs: &[String]) -> io::Result<()> {
-    #[derive(Serialize)]
-    struct File<'a> {
-        exponent: f64,
-        from_runs: &'a [String],
-    }
-    let text = toml::to_string(&File {
-        exponent: k,
-        from_runs: runs,
-    })
-    .map_err(io::Error::other)?;
-    atomic_write(&pack_dir.join(crate::PEUKERT_TOML), text.as_bytes())
 }

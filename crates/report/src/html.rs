@@ -60,7 +60,7 @@ fn grade_card(s: &Summary) -> String {
         s.pack.chemistry.name(),
         s.pack.series,
         s.pack.rated_capacity_ah,
-        escape(&s.test_date)
+        escape(&s.test_date.to_string())
     );
     let _ = write!(o, "<dl>");
     let rows = [
@@ -90,9 +90,15 @@ fn grade_card(s: &Summary) -> String {
                 )
             }),
         ),
-        ("New nominal for the BMS", Some(v.new_nominal_ah.show(3, " Ah"))),
+        (
+            "New nominal for the BMS",
+            Some(v.new_nominal_ah.show(3, " Ah")),
+        ),
         ("DC resistance", Some(v.resistance_mohm.show(1, " mΩ"))),
-        ("Resistance growth", Some(v.resistance_growth_pct.show(1, " %"))),
+        (
+            "Resistance growth",
+            Some(v.resistance_growth_pct.show(1, " %")),
+        ),
         (
             "Coulombic efficiency",
             Some(match v.efficiency_cycle {
@@ -200,7 +206,7 @@ pub fn run_report(s: &Summary, charts: &ChartData) -> String {
         "<h1>Capacity test of pack {}</h1><p class=\"sub\">{} · test date {} · run {} · <span class=\"status-{st}\">{st}</span></p>",
         escape(&s.pack_id),
         escape(&s.procedure_title),
-        escape(&s.test_date),
+        escape(&s.test_date.to_string()),
         escape(&s.run_id),
         st = s.status.name()
     );
@@ -231,14 +237,47 @@ pub fn run_report(s: &Summary, charts: &ChartData) -> String {
         group_section(&mut b, g, charts);
     }
     differential_charts(&mut b, s, charts);
+    ocv_table(&mut b, s);
     step_table(&mut b, s);
     page(&format!("packbench — {} — {}", s.pack_id, s.run_id), &b)
 }
 
-/// The summary table of a run, as (label, text) rows: plain text, escaped
-/// where it is written.
-pub fn summary_rows(s: &Summary) -> Vec<(String, String)> {
-    let mut out: Vec<(String, String)> = Vec::new();
+/// The open-circuit-voltage table (state of charge, the charge and
+/// discharge voltages, their mean; per cell with a rating).
+fn ocv_table(b: &mut String, s: &Summary) {
+    let Some(t) = s.curves.as_ref().and_then(|c| c.ocv.as_ref()) else {
+        return;
+    };
+    let rated = s.needs_rating.is_empty();
+    let _ = write!(
+        b,
+        "<h2>Open-circuit voltage</h2><p class=\"sub\">the mean of the charge (step {}, {:.2}C) and the discharge (step {}, {:.2}C) at each state of charge</p><table><tr><th>SoC (%)</th><th>charge (V)</th><th>discharge (V)</th><th>OCV (V)</th>{}</tr>",
+        t.charge_step,
+        t.charge_rate_c,
+        t.discharge_step,
+        t.discharge_rate_c,
+        if rated { "<th>OCV (V/cell)</th>" } else { "" }
+    );
+    for p in &t.points {
+        let _ = write!(
+            b,
+            "<tr><td>{:.0}</td><td>{:.3}</td><td>{:.3}</td><td>{:.3}</td>{}</tr>",
+            p.soc_pct,
+            p.charge_v,
+            p.discharge_v,
+            p.ocv_v,
+            if rated {
+                format!("<td>{:.4}</td>", p.ocv_per_cell_v)
+            } else {
+                String::new()
+            }
+        );
+    }
+    let _ = write!(b, "</table>");
+}
+
+/// The capacity rows of the summary table: every figure the verdict's.
+fn capacity_rows(s: &Summary, out: &mut Vec<(String, String)>) {
     let mut row = |k: &str, v: String| out.push((k.to_string(), v));
     let v = &s.verdict;
     if let Some(c) = &s.capacity {
@@ -290,6 +329,15 @@ pub fn summary_rows(s: &Summary) -> Vec<(String, String)> {
             "none (no completed capacity step)".into(),
         );
     }
+}
+
+/// The summary table of a run, as (label, text) rows: plain text, escaped
+/// where it is written.
+pub fn summary_rows(s: &Summary) -> Vec<(String, String)> {
+    let mut out: Vec<(String, String)> = Vec::new();
+    capacity_rows(s, &mut out);
+    let mut row = |k: &str, v: String| out.push((k.to_string(), v));
+    let v = &s.verdict;
     row(
         "Grade",
         match v.grade.value() {
@@ -302,6 +350,24 @@ pub fn summary_rows(s: &Summary) -> Vec<(String, String)> {
     );
     for flag in &v.flags {
         row("Flag", flag.clone());
+    }
+    if s.resistance.is_none() {
+        for p in s.pulse_resistance.iter().take(8) {
+            let vals: Vec<String> = p
+                .values
+                .iter()
+                .map(|x| format!("{:.2} mΩ at {} s", x.resistance_mohm, x.delay_s))
+                .collect();
+            row(
+                "Pulse resistance",
+                format!(
+                    "edge at {:.0} s (step {}): {}",
+                    p.t_edge_s,
+                    p.step,
+                    vals.join(", ")
+                ),
+            );
+        }
     }
     if let Some(r) = &s.resistance {
         row(
@@ -330,7 +396,12 @@ pub fn summary_rows(s: &Summary) -> Vec<(String, String)> {
         "Resistance growth",
         match (&v.resistance_growth_pct, &v.resistance_reference) {
             (f, Some(r)) if f.get().is_some() => {
-                format!("{} against {:.2} mΩ ({})", f.show(1, " %"), r.mohm, r.source)
+                format!(
+                    "{} against {:.2} mΩ ({})",
+                    f.show(1, " %"),
+                    r.mohm,
+                    r.source
+                )
             }
             (f, _) => f.show(1, " %"),
         },
@@ -347,7 +418,7 @@ pub fn summary_rows(s: &Summary) -> Vec<(String, String)> {
             let peaks: Vec<String> = i
                 .peaks
                 .iter()
-                .map(|p| format!("{:.3} V/cell ({:.2} Ah/V)", p.position_per_cell, p.height))
+                .map(|p| crate::text::peak_text(s, p))
                 .collect();
             row(
                 &format!("dQ/dV peaks, {} step {}", i.direction, i.step),

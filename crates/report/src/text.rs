@@ -274,6 +274,16 @@ fn capacity_lines(o: &mut String, s: &Summary) {
     }
 }
 
+/// A dQ/dV peak as every report writes it: per cell with a rating;
+/// without one the cells in series are not known, so in pack volts.
+pub fn peak_text(s: &Summary, p: &analysis::PeakSummary) -> String {
+    if s.needs_rating.is_empty() {
+        format!("{:.3} V/cell ({:.2} Ah/V)", p.position_per_cell, p.height)
+    } else {
+        format!("{:.3} V pack ({:.2} Ah/V)", p.position, p.height)
+    }
+}
+
 /// The resistance figures and the dQ/dV peaks.
 fn resistance_lines(o: &mut String, s: &Summary) {
     if s.resistance.is_none() {
@@ -334,20 +344,7 @@ fn resistance_lines(o: &mut String, s: &Summary) {
     if let Some(c) = &s.curves {
         for i in &c.ica {
             if !i.peaks.is_empty() {
-                // Without a rating the cells in series are not known: the
-                // peaks are in pack volts.
-                let rated = s.needs_rating.is_empty();
-                let peaks: Vec<String> = i
-                    .peaks
-                    .iter()
-                    .map(|p| {
-                        if rated {
-                            format!("{:.3} V/cell ({:.2} Ah/V)", p.position_per_cell, p.height)
-                        } else {
-                            format!("{:.3} V pack ({:.2} Ah/V)", p.position, p.height)
-                        }
-                    })
-                    .collect();
+                let peaks: Vec<String> = i.peaks.iter().map(|p| peak_text(s, p)).collect();
                 let _ = writeln!(
                     o,
                     "  dQ/dV peaks ({} step {}): {}",
@@ -625,7 +622,11 @@ pub fn fleet(f: &analysis::fade::fleet::Fleet) -> String {
             };
             let _ = writeln!(o, "  {}: {when}: {}", r.pack_id, r.due_rule);
         }
-        for a in r.attention.iter().filter(|a| a.starts_with("replace") && r.grade.is_some()) {
+        for a in r
+            .attention
+            .iter()
+            .filter(|a| a.starts_with("replace") && r.grade.is_some())
+        {
             let _ = writeln!(o, "  {}: {a}", r.pack_id);
         }
         for fl in &r.flags {

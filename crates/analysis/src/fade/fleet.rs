@@ -94,7 +94,11 @@ pub fn row(
     let flags: Vec<String> = h
         .points
         .iter()
-        .flat_map(|p| p.flags.iter().map(move |f| format!("{} ({}): {f}", p.source, p.date)))
+        .flat_map(|p| {
+            p.flags
+                .iter()
+                .map(move |f| format!("{} ({}): {f}", p.source, p.date))
+        })
         .collect();
     let mut attention = Vec::new();
     if due.replace {
@@ -120,7 +124,8 @@ pub fn row(
         attention.push(format!(
             "{} flagged test(s): the row's figures are from {}",
             flags.len(),
-            last.map(|p| p.source.as_str()).unwrap_or("no unflagged test")
+            last.map(|p| p.source.as_str())
+                .unwrap_or("no unflagged test")
         ));
     }
     FleetRow {

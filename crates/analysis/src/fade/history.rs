@@ -2,7 +2,7 @@
 //! date order and the runs left out. `record::history` gathers it from the
 //! results folder and a pack's `history.csv`.
 
-use chrono::NaiveDate;
+use chrono::{Datelike, NaiveDate};
 use model::pack::PackSpec;
 use model::status::RunStatus;
 use serde::Serialize;
@@ -43,21 +43,37 @@ pub struct HistoryPoint {
 /// rating or method.
 pub const JUMP_MIN_PCT: f64 = 5.0;
 
+/// The scatter of a pack's measurements about its own straight-line fade
+/// against time: the residual standard deviation (n − 2 degrees of
+/// freedom), with three or more points.
+fn scatter(kept: &[(f64, f64)]) -> f64 {
+    let n = kept.len();
+    if n < 3 {
+        return 0.0;
+    }
+    let nf = n as f64;
+    let mx = kept.iter().map(|p| p.0).sum::<f64>() / nf;
+    let my = kept.iter().map(|p| p.1).sum::<f64>() / nf;
+    let sxx: f64 = kept.iter().map(|p| (p.0 - mx).powi(2)).sum();
+    let sxy: f64 = kept.iter().map(|p| (p.0 - mx) * (p.1 - my)).sum();
+    let b = if sxx > 0.0 { sxy / sxx } else { 0.0 };
+    let ssr: f64 = kept
+        .iter()
+        .map(|p| (p.1 - my - b * (p.0 - mx)).powi(2))
+        .sum();
+    (ssr / (nf - 2.0)).sqrt()
+}
+
 /// Flag each point whose state of health rose over the previous unflagged
 /// point by more than the larger of [`JUMP_MIN_PCT`] and three times the
-/// pack's own scatter (the RMS of the changes between its earlier
-/// unflagged points, with three or more of them). Points in date order.
+/// pack's own scatter about its fade ([`scatter`] of the earlier unflagged
+/// points). Points in date order.
 pub fn flag_jumps(points: &mut [HistoryPoint]) {
-    let mut kept: Vec<f64> = Vec::new();
+    let mut kept: Vec<(f64, f64)> = Vec::new();
+    let day = |p: &HistoryPoint| p.date.num_days_from_ce() as f64;
     for p in points.iter_mut() {
-        if let Some(&prev) = kept.last() {
-            let scatter = if kept.len() >= 3 {
-                let d: Vec<f64> = kept.windows(2).map(|w| w[1] - w[0]).collect();
-                (d.iter().map(|x| x * x).sum::<f64>() / d.len() as f64).sqrt()
-            } else {
-                0.0
-            };
-            let bound = JUMP_MIN_PCT.max(3.0 * scatter);
+        if let Some(&(_, prev)) = kept.last() {
+            let bound = JUMP_MIN_PCT.max(3.0 * scatter(&kept));
             let rise = p.soh_pct - prev;
             if rise > bound {
                 p.flags.push(format!(
@@ -67,7 +83,7 @@ pub fn flag_jumps(points: &mut [HistoryPoint]) {
                 continue;
             }
         }
-        kept.push(p.soh_pct);
+        kept.push((day(p), p.soh_pct));
     }
 }
 
@@ -124,5 +140,62 @@ impl PackHistory {
             .iter()
             .find_map(|p| p.resistance_mohm)
             .map(|r| (r, "first test"))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn point(date: &str, soh: f64) -> HistoryPoint {
+        HistoryPoint {
+            date: date.parse().unwrap(),
+            cycles: f64::NAN,
+            cycles_given: false,
+            capacity_ah: soh / 10.0,
+            soh_pct: soh,
+            resistance_mohm: None,
+            resistance_growth_pct: None,
+            ieee450_percent: None,
+            coulombic_efficiency_pct: None,
+            grade: None,
+            source: date.into(),
+            run_dir: None,
+            groups: None,
+            flags: Vec::new(),
+        }
+    }
+
+    #[test]
+    fn a_rise_the_measurement_cannot_explain_is_flagged() {
+        // A steady fade, then a test 14.8 points above the last: flagged;
+        // the next, on the fade again, is not (it is compared with the
+        // last unflagged point).
+        let mut p = vec![
+            point("2025-01-01", 90.0),
+            point("2025-06-01", 84.3),
+            point("2026-01-01", 77.9),
+            point("2026-06-01", 92.7),
+            point("2026-09-01", 76.5),
+        ];
+        flag_jumps(&mut p);
+        let flagged: Vec<bool> = p.iter().map(|x| !x.flags.is_empty()).collect();
+        assert_eq!(flagged, [false, false, false, true, false]);
+        assert!(p[3].flags[0].contains("+14.8 points"), "{}", p[3].flags[0]);
+        // A rise within 5 points (recovery, the bench) is not.
+        let mut q = vec![point("2025-01-01", 90.0), point("2025-06-01", 94.9)];
+        flag_jumps(&mut q);
+        assert!(q[1].flags.is_empty());
+        // A pack that scatters widely about its fade gets a wider bound:
+        // residuals of ±4 points give a bound over 5.
+        let mut r = vec![
+            point("2025-01-01", 90.0),
+            point("2025-02-01", 82.0),
+            point("2025-03-01", 90.0),
+            point("2025-04-01", 82.0),
+            point("2025-05-01", 88.0),
+        ];
+        flag_jumps(&mut r);
+        assert!(r[4].flags.is_empty(), "{:?}", r[4].flags);
     }
 }

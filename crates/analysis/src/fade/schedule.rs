@@ -384,4 +384,33 @@ mod tests {
         assert_eq!(parse_days("0d"), None);
         assert_eq!(parse_days("5 fortnights"), None);
     }
+
+    #[test]
+    fn ieee_450_judges_by_its_own_percent_capacity() {
+        // Finding: the schedule judged by the state of health (corrected
+        // per IEC 60896-11) while the run's IEEE 450 percent capacity said
+        // otherwise. A test at 79.0 % SoH and 81.0 % IEEE 450: not replaced.
+        let s = Schedule {
+            rule: Rule::Ieee450,
+            interval_days: 92,
+            service_life_days: Some(20 * YEAR_DAYS),
+            in_service: [("FR-S01".to_string(), d("2020-01-01"))].into(),
+        };
+        let mut h = history(Chemistry::LeadAcid, &[("2024-01-01", 79.0)]);
+        h.points[0].ieee450_percent = Some(81.0);
+        let due = s.due(&h, d("2024-06-01"));
+        assert!(!due.replace, "{}", due.rule);
+        assert!(
+            due.rule.contains("IEEE 450 percent capacity 81.0 %"),
+            "{}",
+            due.rule
+        );
+        h.points[0].ieee450_percent = Some(78.0);
+        let due = s.due(&h, d("2024-06-01"));
+        assert!(
+            due.replace && due.rule.contains("IEEE 450 percent capacity 78.0 %"),
+            "{}",
+            due.rule
+        );
+    }
 }

@@ -161,17 +161,24 @@ pub fn acceleration(x: &[f64], y: &[f64]) -> Option<Acceleration> {
 /// Fit the models and project end of life (SOH reaching `threshold_pct`).
 pub fn analyze(h: &PackHistory, threshold_pct: f64) -> FadeAnalysis {
     let flagged = h.points.iter().filter(|p| !p.flags.is_empty()).count();
-    if flagged > 0 {
-        // Flagged points are shown, not fitted (`history::flag_jumps`).
-        let mut kept = h.clone();
-        kept.points.retain(|p| p.flags.is_empty());
-        let mut out = analyze(&kept, threshold_pct);
-        out.notes.insert(
-            0,
-            format!("{flagged} flagged test(s) left out of the fit (a rise the measurement cannot explain)"),
-        );
-        return out;
+    if flagged == 0 {
+        return analyze_points(h, threshold_pct);
     }
+    // Flagged points are shown, not fitted (`history::flag_jumps`).
+    let mut kept = h.clone();
+    kept.points.retain(|p| p.flags.is_empty());
+    let mut out = analyze_points(&kept, threshold_pct);
+    out.notes.insert(
+        0,
+        format!(
+            "{flagged} flagged test(s) left out of the fit (a rise the measurement cannot explain)"
+        ),
+    );
+    out
+}
+
+/// [`analyze`] of every point of a history.
+fn analyze_points(h: &PackHistory, threshold_pct: f64) -> FadeAnalysis {
     let mut notes = Vec::new();
     // Every point has a date; a point whose cycle count is unknown (an
     // empty cell of a history file) is left out of the cycle fit only.

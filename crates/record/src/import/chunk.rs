@@ -368,7 +368,10 @@ impl<'a, B: Fn(u64, usize, String) -> ReadError> ChunkParser<'a, B> {
                 if memchr::memchr(b'"', rest).is_some() {
                     return None;
                 }
-                (end + 1, self.roles.len() + memchr::memchr_iter(b',', rest).count())
+                (
+                    end + 1,
+                    self.roles.len() + memchr::memchr_iter(b',', rest).count(),
+                )
             }
             _ => return None,
         };
@@ -625,7 +628,15 @@ mod tests {
         // the line's end.
         assert_eq!(out.bad.len(), 2);
         match &out.bad[0] {
-            (3, ReadError::Bad { line, column, message, .. }) => {
+            (
+                3,
+                ReadError::Bad {
+                    line,
+                    column,
+                    message,
+                    ..
+                },
+            ) => {
                 assert_eq!((*line, *column), (6, 10));
                 assert!(message.contains("expected 3 fields"), "{message}");
             }

@@ -24,7 +24,9 @@ use std::sync::mpsc::{channel, Receiver, TryRecvError};
 use std::sync::{Condvar, Mutex};
 
 pub use chunk::number;
-pub use format::{detect_delimiter, parse_delimiter, ColumnNames, CurrentSign, LogFormat, Row, TimeUnit};
+pub use format::{
+    detect_delimiter, parse_delimiter, ColumnNames, CurrentSign, LogFormat, Row, TimeUnit,
+};
 
 /// Bytes read at a time: one chunk of lines.
 const CHUNK: usize = 1 << 19;
