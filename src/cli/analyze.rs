@@ -165,7 +165,9 @@ fn spec_from_summary(p: &PackSummary) -> anyhow::Result<PackSpec> {
     Ok(PackSpec {
         chemistry,
         series: p.series,
-        rated_capacity_ah: p.rated_capacity_ah,
+        rated_capacity_ah: p
+            .rated_capacity_ah
+            .ok_or_else(|| anyhow!("the run's pack has no rated capacity"))?,
         rated_energy_wh: p.rated_energy_wh,
         rated_rate_c: p.rated_rate_c,
         rated_resistance_mohm: p.rated_resistance_mohm,

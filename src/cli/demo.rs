@@ -425,7 +425,10 @@ pub fn synthetic_fleet(
     t.pulse_resistance.clear();
     t.warnings.clear();
     t.gaps.clear();
-    let rated = t.pack.rated_capacity_ah;
+    let rated = t
+        .pack
+        .rated_capacity_ah
+        .ok_or_else(|| std::io::Error::other("the template summary has no rated capacity"))?;
     let policy = analysis::fade::grade::Policy::default_policy();
     let spec = format!(
         "chemistry = \"{}\"\nseries = {}\nrated_capacity = \"{}Ah\"\n",

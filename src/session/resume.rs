@@ -177,10 +177,16 @@ pub fn prepare(
         crate::session::prepare::read_pack_file(&saved)?
     } else {
         let p = &manifest.pack;
+        let Some(rated) = p.rated_capacity_ah else {
+            return Err(RunError::arguments(format!(
+                "{}: the run's pack has no rated capacity",
+                dir.join(record::RUN_JSON).display()
+            )));
+        };
         model::pack::PackSpec {
             chemistry: p.chemistry,
             series: p.series,
-            rated_capacity_ah: p.rated_capacity_ah,
+            rated_capacity_ah: rated,
             rated_energy_wh: p.rated_energy_wh,
             rated_rate_c: p.rated_rate_c,
             rated_resistance_mohm: p.rated_resistance_mohm,

@@ -472,9 +472,16 @@ fn out_of_order_and_bad_rows_never_pass_silently() {
     );
     // ... or, asked for, a counted skip.
     let s = analyze_log(&p, &["--skip-bad-rows"]);
-    assert!(s["warnings"]
-        .to_string()
-        .contains("1 row(s) that did not parse were skipped"));
+    let w = s["warnings"].to_string();
+    assert!(
+        w.contains("1 row(s) that did not parse were left out"),
+        "{w}"
+    );
+    // ... each named with its place.
+    assert!(
+        w.contains("left out: ") && w.contains("bad.csv:2502:3"),
+        "{w}"
+    );
 }
 
 #[test]

@@ -360,6 +360,11 @@ fn check(n: usize, when: &When, rdir: &Path, ref_rows: &[String]) -> (String, La
                     .is_some_and(|c| c > 10.0),
                 "kill {n}: {s}"
             );
+            // The resumed run's verdict, on every surface (the matrix's
+            // "resumed" case).
+            let typed = record::read::read_summary(&rdir.join("summary.json")).unwrap();
+            assert!(!typed.resumed.is_empty(), "kill {n}");
+            crate::verdict::every_surface_agrees("resumed", &typed, None, Some(rdir));
             "resumed to completion"
         }
         "completed" => {

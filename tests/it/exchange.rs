@@ -303,7 +303,7 @@ fn sync_pushes_each_run_once_and_the_fleet_from_the_store_is_the_fleet() {
         cap.measured_ah = 6.0;
         cap.corrected_ah = Some(6.0);
     }
-    let want = 6.0 / s.pack.rated_capacity_ah * 100.0;
+    let want = 6.0 / s.pack.rated_capacity_ah.unwrap() * 100.0;
     record::verdict::rejudge(
         &mut s,
         Some(&analysis::fade::grade::Policy::default_policy()),

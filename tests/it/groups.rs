@@ -172,6 +172,9 @@ fn a_weak_group_ends_the_discharge_and_is_named() {
     assert!((cap7 - 88.0 / 0.991).abs() < 1.5, "{cap7}");
     let grade = s["verdict"]["grade"]["value"]["reasons"].to_string();
     assert!(grade.contains("group 7 delivers"), "{grade}");
+    // The matrix's "grouped" case: its verdict on every surface.
+    let typed = record::read::read_summary(&r.dir.join("summary.json")).unwrap();
+    crate::verdict::every_surface_agrees("grouped", &typed, None, Some(&r.dir));
     assert!(grade.contains("replace or rebalance"), "{grade}");
     // The group sensor on group 7 reported.
     assert!(g["groups"][6]["max_temperature_c"].as_f64().is_some());

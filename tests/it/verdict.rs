@@ -94,7 +94,7 @@ fn soh_text(s: &Summary, d: usize) -> String {
 
 /// Every surface against the verdict of `s` (its folder `dir`, if it is
 /// one of our run folders).
-fn every_surface_agrees(case: &str, s: &Summary, quiet: Option<&str>, dir: Option<&Path>) {
+pub fn every_surface_agrees(case: &str, s: &Summary, quiet: Option<&str>, dir: Option<&Path>) {
     let v = &s.verdict;
     let soh = v.soh_pct.get();
     let grade = v.grade_label();
@@ -290,6 +290,15 @@ fn every_surface_shows_the_verdict_of_every_kind_of_run() {
     assert_eq!(s.verdict.ended_on_cutoff, Some(true));
     assert!(s.verdict.new_nominal_ah.get().is_some());
     every_surface_agrees("foreign log with its cutoff", &s, None, None);
+    // A foreign log with a step column (our own samples.csv, on its own).
+    let steps = dir.path().join("with-steps.csv");
+    std::fs::copy(full.join("samples.csv"), &steps).unwrap();
+    let mut sargs = vec![steps.to_str().unwrap()];
+    sargs.extend_from_slice(&RATED);
+    let s = analyze_json(&sargs);
+    assert!(s.verdict.soh_pct.get().is_some());
+    assert_eq!(s.verdict.new_nominal_ah.why(), Some(Why::CutoffUnknown));
+    every_surface_agrees("foreign log with steps", &s, None, None);
     // Imported into a pack with a history.
     let mut imp = vec![
         "import",

@@ -173,7 +173,8 @@ pub struct ResumeNote {
 pub struct PackSummary {
     pub chemistry: Chemistry,
     pub series: u32,
-    pub rated_capacity_ah: f64,
+    /// Absent: a foreign log analysed without a rating (never a zero).
+    pub rated_capacity_ah: Option<f64>,
     pub rated_energy_wh: Option<f64>,
     pub rated_rate_c: Option<f64>,
     pub rated_resistance_mohm: Option<f64>,
@@ -184,7 +185,7 @@ impl From<&PackSpec> for PackSummary {
         PackSummary {
             chemistry: p.chemistry,
             series: p.series,
-            rated_capacity_ah: p.rated_capacity_ah,
+            rated_capacity_ah: Some(p.rated_capacity_ah),
             rated_energy_wh: p.rated_energy_wh,
             rated_rate_c: p.rated_rate_c,
             rated_resistance_mohm: p.rated_resistance_mohm,

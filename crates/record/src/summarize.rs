@@ -539,7 +539,7 @@ pub fn mark_unrated(s: &mut Summary) {
         policy: None,
     });
     s.verdict = v;
-    s.pack.rated_capacity_ah = 0.0;
+    s.pack.rated_capacity_ah = None;
     s.warnings
         .retain(|w| !w.contains("no state of health, grade or new nominal"));
     s.needs_rating = NEEDS_RATING.iter().map(|x| x.to_string()).collect();

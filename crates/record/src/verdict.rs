@@ -370,7 +370,7 @@ pub fn judge_older(s: &mut crate::Summary) {
     let (mut v, _) = judge(&Inputs {
         status: s.status,
         chemistry: s.pack.chemistry,
-        rated_ah: Some(s.pack.rated_capacity_ah),
+        rated_ah: s.pack.rated_capacity_ah,
         rated_rate_c: s.pack.rated_rate_c,
         capacity: s.capacity.as_ref(),
         recalibration: s.recalibration.as_ref(),
@@ -399,7 +399,7 @@ pub fn rejudge(s: &mut crate::Summary, policy: Option<&Policy>) {
     let (mut v, _) = judge(&Inputs {
         status: s.status,
         chemistry: s.pack.chemistry,
-        rated_ah: Some(s.pack.rated_capacity_ah),
+        rated_ah: s.pack.rated_capacity_ah,
         rated_rate_c: s.pack.rated_rate_c,
         capacity: s.capacity.as_ref(),
         recalibration: s.recalibration.as_ref(),

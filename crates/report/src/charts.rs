@@ -114,7 +114,14 @@ impl ChartBuilder {
             .collect();
         steps.sort_unstable();
         steps.dedup();
-        let grid = || ChargeGrid::new(GRID_FRACTION * s.pack.rated_capacity_ah, GRID_MAX_POINTS);
+        // Without a rating, the capacity measured stands in for the grid's
+        // scale (a resolution, not a figure shown).
+        let scale = s
+            .pack
+            .rated_capacity_ah
+            .or(s.capacity.as_ref().map(|c| c.measured_ah))
+            .unwrap_or(1.0);
+        let grid = || ChargeGrid::new(GRID_FRACTION * scale, GRID_MAX_POINTS);
         ChartBuilder {
             data: ChartData {
                 voltage: Thinned::new(MAX_POINTS),

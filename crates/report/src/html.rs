@@ -54,12 +54,12 @@ fn grade_card(s: &Summary) -> String {
     let label = v.grade_label().unwrap_or("–");
     let _ = write!(
         o,
-        "<div class=\"card\"><div class=\"grade\">{}</div><b>Pack {}</b><br>{} {}S, rated {} Ah<br>tested {}",
+        "<div class=\"card\"><div class=\"grade\">{}</div><b>Pack {}</b><br>{} {}S, {}<br>tested {}",
         escape(label),
         escape(&s.pack_id),
         s.pack.chemistry.name(),
         s.pack.series,
-        s.pack.rated_capacity_ah,
+        crate::text::rated_text(s),
         escape(&s.test_date.to_string())
     );
     let _ = write!(o, "<dl>");

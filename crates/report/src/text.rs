@@ -79,12 +79,12 @@ pub fn summary(s: &Summary) -> String {
     if s.needs_rating.is_empty() {
         let _ = writeln!(
             o,
-            "Run {} of pack {} ({} {}S, rated {:.3} Ah): {}",
+            "Run {} of pack {} ({} {}S, {}): {}",
             s.run_id,
             s.pack_id,
             s.pack.chemistry,
             s.pack.series,
-            s.pack.rated_capacity_ah,
+            rated_text(s),
             s.status
         );
     } else {
@@ -271,6 +271,15 @@ fn capacity_lines(o: &mut String, s: &Summary) {
         None => {
             let _ = writeln!(o, "  Measured capacity: none (no completed capacity step)");
         }
+    }
+}
+
+/// The pack's rating as every report writes it ("rated 14.000 Ah", or
+/// that none was given).
+pub fn rated_text(s: &Summary) -> String {
+    match s.pack.rated_capacity_ah {
+        Some(r) => format!("rated {r:.3} Ah"),
+        None => "no rated capacity given".into(),
     }
 }
 

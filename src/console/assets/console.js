@@ -211,7 +211,8 @@ function packsPage() {
   const body = document.querySelector("#packs tbody");
   const filter = document.getElementById("filter");
   const flags = r => [r.overdue ? "OVERDUE" : "", r.replace ? "REPLACE" : "", r.accelerating ? "ACCELERATING" : "",
-    r.below_eol_since ? `BELOW-EOL-SINCE-${r.below_eol_since}` : "", r.eol_date_past ? "EOL-DATE-PAST" : ""].filter(Boolean).join(" ");
+    r.below_eol_since ? `BELOW-EOL-SINCE-${r.below_eol_since}` : "", r.eol_date_past ? "EOL-DATE-PAST" : "",
+    (r.flags || []).length ? "FLAGGED" : ""].filter(Boolean).join(" ");
   const draw = () => {
     const q = filter.value.trim().toLowerCase();
     const shown = rows.filter(r => !q || [r.pack_id, r.chemistry, r.grade || "", flags(r)].join(" ").toLowerCase().includes(q));
@@ -229,7 +230,7 @@ function packsPage() {
       el("td", {}, r.tests), el("td", {}, r.last_test || "–"),
       el("td", {}, fmt(r.soh_pct, 1)), el("td", {}, fmt(r.capacity_ah, 2)),
       el("td", {}, fmt(r.resistance_mohm, 1)), el("td", {}, r.grade || "–"),
-      el("td", {}, r.eol_date || "–"), el("td", {}, flags(r)))));
+      el("td", {}, r.eol_date || "–"), el("td", { title: (r.attention || []).join("\n") }, flags(r)))));
     document.getElementById("count").textContent = `${shown.length} of ${rows.length} packs`;
   };
   for (const th of document.querySelectorAll("#packs th")) {
