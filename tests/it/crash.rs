@@ -362,8 +362,9 @@ fn check(n: usize, when: &When, rdir: &Path, ref_rows: &[String]) -> (String, La
             );
             // The resumed run's verdict, on every surface (the matrix's
             // "resumed" case).
+            // (A kill after the last step's end finishes the record with
+            // nothing to run again, so not every one has a resume note.)
             let typed = record::read::read_summary(&rdir.join("summary.json")).unwrap();
-            assert!(!typed.resumed.is_empty(), "kill {n}");
             crate::verdict::every_surface_agrees("resumed", &typed, None, Some(rdir));
             "resumed to completion"
         }
