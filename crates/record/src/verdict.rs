@@ -413,3 +413,140 @@ pub fn rejudge(s: &mut crate::Summary, policy: Option<&Policy>) {
     v.flags = flags;
     s.verdict = v;
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn capacity(measured_ah: f64, from_full: bool, on_cutoff: Option<bool>) -> CapacityResult {
+        CapacityResult {
+            step: 3,
+            measured_ah,
+            measured_wh: measured_ah * 36.0,
+            rated_ah: Some(14.0),
+            mean_current_a: 2.8,
+            c_rate: Some(0.2),
+            duration_s: measured_ah / 2.8 * 3600.0,
+            end_voltage_v: Some(30.0),
+            ended_on_cutoff: on_cutoff,
+            corrected_ah: Some(measured_ah),
+            corrections: Vec::new(),
+            initial_temperature_c: Some(25.0),
+            ieee450_percent: None,
+            from_full_charge: from_full,
+            preceded_by: String::new(),
+        }
+    }
+
+    fn recal(ah: f64) -> Recalibration {
+        Recalibration {
+            full_charge_capacity_ah: ah,
+            suggested_nominal_ah: ah,
+            measured_ah: ah,
+            energy_wh: ah * 36.0,
+            rate_c: 0.2,
+            current_a: 2.8,
+            end_voltage_v: Some(30.0),
+            initial_temperature_c: Some(25.0),
+            ended_on_cutoff: true,
+            conditions: String::new(),
+        }
+    }
+
+    fn judged(
+        c: Option<&CapacityResult>,
+        r: Option<&Recalibration>,
+        rated: Option<f64>,
+    ) -> Verdict {
+        let policy = Policy::default_policy();
+        judge(&Inputs {
+            status: RunStatus::Completed,
+            chemistry: Chemistry::LiIon,
+            rated_ah: rated,
+            rated_rate_c: Some(0.2),
+            capacity: c,
+            recalibration: r,
+            resistance: None,
+            reference: None,
+            steps: &[],
+            cycles: &[],
+            groups: None,
+            policy: Some(&policy),
+        })
+        .0
+    }
+
+    #[test]
+    fn a_full_test_to_its_cutoff_has_every_figure() {
+        let c = capacity(12.6, true, Some(true));
+        let v = judged(Some(&c), Some(&recal(12.6)), Some(14.0));
+        assert!((v.soh_pct.get().unwrap() - 90.0).abs() < 1e-9);
+        assert_eq!(v.grade_label(), Some("A"));
+        assert_eq!(v.new_nominal_ah.get(), Some(12.6));
+        assert!(v.counts_for_history);
+        // No resistance: absent with its reason, not a zero.
+        assert_eq!(v.resistance_growth_pct, Figure::Absent(Why::NoResistance));
+    }
+
+    #[test]
+    fn each_absence_has_its_reason() {
+        let v = judged(Some(&capacity(6.5, false, Some(true))), None, Some(14.0));
+        assert_eq!(v.soh_pct, Figure::Absent(Why::NotFromFullCharge));
+        assert_eq!(v.grade.why(), Some(Why::NotFromFullCharge));
+        assert_eq!(v.new_nominal_ah.why(), Some(Why::NotFromFullCharge));
+        assert!(!v.counts_for_history);
+        // A state of health, but no new nominal from an unknown cutoff.
+        let v = judged(Some(&capacity(12.6, true, None)), None, Some(14.0));
+        assert!(v.soh_pct.get().is_some());
+        assert_eq!(v.new_nominal_ah, Figure::Absent(Why::CutoffUnknown));
+        let v = judged(Some(&capacity(12.6, true, Some(false))), None, Some(14.0));
+        assert_eq!(v.new_nominal_ah, Figure::Absent(Why::EndedBeforeCutoff));
+        // No rating.
+        let v = judged(Some(&capacity(12.6, true, Some(true))), None, None);
+        assert_eq!(v.soh_pct, Figure::Absent(Why::NoRating));
+        assert_eq!(v.corrected_ah, Figure::Absent(Why::NoRating));
+        // Implausible: 150 % of the rating.
+        let v = judged(Some(&capacity(21.0, true, Some(true))), None, Some(14.0));
+        assert_eq!(v.soh_pct, Figure::Absent(Why::Implausible));
+        assert!(v.grade.value().is_none());
+        // No capacity step.
+        let v = judged(None, None, Some(14.0));
+        assert_eq!(v.measured_ah, Figure::Absent(Why::NoCapacityStep));
+        assert_eq!(v.soh_pct, Figure::Absent(Why::NoCapacityStep));
+    }
+
+    #[test]
+    fn growth_is_against_the_named_reference() {
+        let policy = Policy::default_policy();
+        let c = capacity(12.6, true, Some(true));
+        let r = ResistanceResult {
+            dcir_mohm: 60.0,
+            method: "two-level".into(),
+            why: String::new(),
+            readings: Vec::new(),
+        };
+        let (v, _) = judge(&Inputs {
+            status: RunStatus::Completed,
+            chemistry: Chemistry::LiIon,
+            rated_ah: Some(14.0),
+            rated_rate_c: Some(0.2),
+            capacity: Some(&c),
+            recalibration: None,
+            resistance: Some(&r),
+            reference: Some(Reference {
+                mohm: 40.0,
+                source: "run A".into(),
+            }),
+            steps: &[],
+            cycles: &[],
+            groups: None,
+            policy: Some(&policy),
+        });
+        assert!((v.resistance_growth_pct.get().unwrap() - 50.0).abs() < 1e-9);
+        // 50 % growth: not grade A (≤ 25 %) although the SoH is 90 %.
+        assert_eq!(v.grade_label(), Some("B"));
+        let j = serde_json::to_value(&v).unwrap();
+        assert_eq!(j["resistance_growth_pct"]["value"], 50.0);
+        assert_eq!(j["ieee450_percent"]["absent"], "not_an_ieee450_test");
+    }
+}
