@@ -591,6 +591,20 @@ fn a_faster_test_does_not_raise_lithium_state_of_health() {
         "{}",
         s.verdict.conditions
     );
+    // A kept exponent that does not read is said with its place and not
+    // used; the summary is still made.
+    std::fs::write(results.join("FR-V20/peukert.toml"), "exponent = 7\n").unwrap();
+    let out = packbench(&["analyze", b.to_str().unwrap(), "--json"]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let s: Summary = serde_json::from_slice(&out.stdout).unwrap();
+    assert!(
+        s.warnings
+            .iter()
+            .any(|w| w.contains("peukert.toml:1:1: exponent 7: expected 1.0 to 2.0")),
+        "{:?}",
+        s.warnings
+    );
+    assert!((s.verdict.soh_pct.get().unwrap() - pb).abs() < 1e-9);
 }
 
 /// Finding 5: importing a log far better than the pack's history is

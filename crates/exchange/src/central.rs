@@ -950,9 +950,10 @@ pub fn histories(store: &mut Store) -> Result<Vec<PackHistory>, CentralError> {
             capacity,
             // The verdict's, from the stored summary; a summary older
             // than verdicts counts as the folder walk would judge it.
-            counts_for_history: r
-                .get::<_, Option<bool>>(16)
-                .unwrap_or_else(|| status == "completed" || status == "imported"),
+            counts_for_history: r.get::<_, Option<bool>>(16).unwrap_or_else(|| {
+                (status == "completed" || status == "imported")
+                    && r.get::<_, Option<bool>>(9) == Some(true)
+            }),
             not_counted: r
                 .get::<_, Option<String>>(17)
                 .and_then(|w| serde_json::from_value::<record::verdict::Why>(w.into()).ok())

@@ -293,11 +293,20 @@ pub fn summarize_run_with_curves(
     let events = read_events(&dir.join(EVENTS_JSONL))?;
     let infos = step_infos(&events);
     // The pack's own Peukert exponent, kept with it, unless one was given.
+    // A file that does not read is said and not used: the run's record is
+    // written whatever it holds.
     let mut opts = opts;
+    let mut peukert_warning = None;
     if opts.correction.peukert_k.is_none() {
-        if let Some(k) = crate::read::read_peukert(dir.parent().unwrap_or(dir))? {
-            opts.correction.peukert_k = Some(k);
-            opts.correction.peukert_source = analysis::correct::PeukertSource::MeasuredForPack;
+        match crate::read::read_peukert(dir.parent().unwrap_or(dir)) {
+            Ok(Some(k)) => {
+                opts.correction.peukert_k = Some(k);
+                opts.correction.peukert_source = analysis::correct::PeukertSource::MeasuredForPack;
+            }
+            Ok(None) => {}
+            Err(e) => {
+                peukert_warning = Some(format!("{e}: the pack's Peukert exponent was not used"))
+            }
         }
     }
     let mut an = Analyzer::new(ctx.pack, &infos, opts);
@@ -337,6 +346,7 @@ pub fn summarize_run_with_curves(
         an.push(&s);
     })?;
     let mut a = an.finish();
+    a.warnings.extend(peukert_warning);
     note_partial_line(&mut a, rep.partial_last_line, "samples.csv");
     if let Some(ch) = &channels {
         if let Some(rows) = crate::read::read_groups(dir)? {
