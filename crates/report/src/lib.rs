@@ -7,3 +7,6 @@ pub mod html;
 pub mod markup;
 pub mod svg;
 pub mod text;
+
+#[cfg(test)]
+mod section_tests;
