@@ -9,22 +9,12 @@
 //! `PACKBENCH_REQUIRE_PG` is set (as `.ci/run` does), when they fail.
 
 use crate::util::*;
-use std::path::{Path, PathBuf};
+use std::path::Path;
 use std::process::{Command, Stdio};
 use std::time::{Duration, Instant};
 
 fn required(var: &str) -> bool {
     std::env::var_os(var).is_some_and(|v| !v.is_empty() && v != "0")
-}
-
-fn run_dirs(pack_dir: &Path) -> Vec<PathBuf> {
-    let mut v: Vec<PathBuf> = std::fs::read_dir(pack_dir)
-        .unwrap()
-        .map(|e| e.unwrap().path())
-        .filter(|p| p.join("summary.json").is_file())
-        .collect();
-    v.sort();
-    v
 }
 
 fn python_ready() -> bool {

@@ -272,3 +272,14 @@ pub async fn run_sim(
     .unwrap();
     (report, handle)
 }
+
+/// The run folders of a pack that hold a summary, in name (so date) order.
+pub fn run_dirs(pack_dir: &Path) -> Vec<PathBuf> {
+    let mut v: Vec<PathBuf> = std::fs::read_dir(pack_dir)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.join("summary.json").is_file())
+        .collect();
+    v.sort();
+    v
+}

@@ -11,20 +11,10 @@
 //! And one test per finding of the issue that asked for it, each failing
 //! on the code before the verdict.
 
-use crate::util::{json, packbench, packbench_in, text, write};
+use crate::util::{json, packbench, packbench_in, run_dirs, text, write};
 use record::verdict::{Figure, Why};
 use record::Summary;
 use std::path::{Path, PathBuf};
-
-fn run_dirs(pack_dir: &Path) -> Vec<PathBuf> {
-    let mut v: Vec<PathBuf> = std::fs::read_dir(pack_dir)
-        .unwrap()
-        .map(|e| e.unwrap().path())
-        .filter(|p| p.join("summary.json").is_file())
-        .collect();
-    v.sort();
-    v
-}
 
 /// Run a procedure on the simulated bench (`--quiet`): its folder and the
 /// quiet line.

@@ -534,22 +534,9 @@ pub fn mark_unrated(s: &mut Summary) {
         c.corrections.clear();
         c.ieee450_percent = None;
     }
-    let (v, _) = crate::verdict::judge(&crate::verdict::Inputs {
-        status: s.status,
-        chemistry: s.pack.chemistry,
-        rated_ah: None,
-        rated_rate_c: None,
-        capacity: s.capacity.as_ref(),
-        recalibration: None,
-        resistance: s.resistance.as_ref(),
-        reference: None,
-        steps: &s.steps,
-        cycles: &s.cycles,
-        groups: s.groups.as_ref(),
-        policy: None,
-    });
-    s.verdict = v;
     s.pack.rated_capacity_ah = None;
+    s.verdict.resistance_reference = None;
+    crate::verdict::rejudge(s, None);
     s.warnings
         .retain(|w| !w.contains("no state of health, grade or new nominal"));
     s.needs_rating = NEEDS_RATING.iter().map(|x| x.to_string()).collect();

@@ -364,23 +364,35 @@ impl Verdict {
     }
 }
 
+impl<'a> Inputs<'a> {
+    /// What a summary holds to judge it by: its rating, capacity,
+    /// resistance, steps, cycles and groups.
+    pub fn of_summary(
+        s: &'a crate::Summary,
+        reference: Option<Reference>,
+        policy: Option<&'a Policy>,
+    ) -> Inputs<'a> {
+        Inputs {
+            status: s.status,
+            chemistry: s.pack.chemistry,
+            rated_ah: s.pack.rated_capacity_ah,
+            rated_rate_c: s.pack.rated_rate_c,
+            capacity: s.capacity.as_ref(),
+            recalibration: s.recalibration.as_ref(),
+            resistance: s.resistance.as_ref(),
+            reference,
+            steps: &s.steps,
+            cycles: &s.cycles,
+            groups: s.groups.as_ref(),
+            policy,
+        }
+    }
+}
+
 /// A summary older than verdicts: judged from the figures it holds, its
 /// recorded grade kept (its policy is not known here).
 pub fn judge_older(s: &mut crate::Summary) {
-    let (mut v, _) = judge(&Inputs {
-        status: s.status,
-        chemistry: s.pack.chemistry,
-        rated_ah: s.pack.rated_capacity_ah,
-        rated_rate_c: s.pack.rated_rate_c,
-        capacity: s.capacity.as_ref(),
-        recalibration: s.recalibration.as_ref(),
-        resistance: s.resistance.as_ref(),
-        reference: None,
-        steps: &s.steps,
-        cycles: &s.cycles,
-        groups: s.groups.as_ref(),
-        policy: None,
-    });
+    let (mut v, _) = judge(&Inputs::of_summary(s, None, None));
     v.grade = match (s.older_grade.take(), v.soh_pct.why()) {
         (Some(g), None) => Figure::Value(g),
         (_, Some(w)) => Figure::Absent(w),
@@ -391,25 +403,12 @@ pub fn judge_older(s: &mut crate::Summary) {
 }
 
 /// Judge a summary again from the figures it holds (after they were
-/// changed: a made-up fleet, a rating given later), keeping its
-/// resistance reference and flags.
+/// changed: a made-up fleet, an import set against its pack, a rating
+/// taken away), keeping its resistance reference and flags.
 pub fn rejudge(s: &mut crate::Summary, policy: Option<&Policy>) {
     let reference = s.verdict.resistance_reference.clone();
     let flags = std::mem::take(&mut s.verdict.flags);
-    let (mut v, _) = judge(&Inputs {
-        status: s.status,
-        chemistry: s.pack.chemistry,
-        rated_ah: s.pack.rated_capacity_ah,
-        rated_rate_c: s.pack.rated_rate_c,
-        capacity: s.capacity.as_ref(),
-        recalibration: s.recalibration.as_ref(),
-        resistance: s.resistance.as_ref(),
-        reference,
-        steps: &s.steps,
-        cycles: &s.cycles,
-        groups: s.groups.as_ref(),
-        policy,
-    });
+    let (mut v, _) = judge(&Inputs::of_summary(s, reference, policy));
     v.flags = flags;
     s.verdict = v;
 }
