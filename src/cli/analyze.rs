@@ -87,6 +87,15 @@ pub struct AnalyzeArgs {
     /// (default: found from the header line).
     #[arg(long)]
     pub delimiter: Option<String>,
+    /// The pack's minimum and maximum voltage for the pulse power
+    /// capability, e.g. 3.0V/cell,4.2V/cell (default: the chemistry's
+    /// usual operating limits; give the maker's).
+    #[arg(long, value_delimiter = ',')]
+    pub voltage_limits: Option<Vec<String>>,
+    /// Power targets for the pulse-power available energy, W: discharge,
+    /// charge, e.g. 4000,2000.
+    #[arg(long, value_delimiter = ',')]
+    pub power_targets: Option<Vec<f64>>,
     /// Do not correct the capacity for temperature.
     #[arg(long)]
     pub no_temperature_correction: bool,
@@ -158,6 +167,36 @@ fn options(a: &AnalyzeArgs) -> anyhow::Result<AnalysisOptions> {
         peukert_source: analysis::correct::PeukertSource::Given,
     };
     Ok(o)
+}
+
+/// The pulse-power settings that need the pack: its voltage limits and
+/// the power targets.
+fn pulse_settings(a: &AnalyzeArgs, pack: &PackSpec, o: &mut AnalysisOptions) -> anyhow::Result<()> {
+    if let Some(l) = &a.voltage_limits {
+        let n = f64::from(pack.series.max(1));
+        let mut v = Vec::new();
+        for t in l {
+            v.push(
+                match units::voltage(t).map_err(|e| anyhow!("--voltage-limits: {e}"))? {
+                    units::VoltageSpec::PerCell(x) => x * n,
+                    units::VoltageSpec::Pack(x) => x,
+                },
+            );
+        }
+        if !(v.len() == 2 && v[0] > 0.0 && v[1] > v[0]) {
+            bail!(
+                "--voltage-limits: expected MIN,MAX with 0 < MIN < MAX, e.g. 3.0V/cell,4.2V/cell"
+            );
+        }
+        o.voltage_limits_v = Some((v[0], v[1]));
+    }
+    if let Some(t) = &a.power_targets {
+        if !(t.len() == 2 && t.iter().all(|x| x.is_finite() && *x > 0.0)) {
+            bail!("--power-targets: expected two positive powers in W, discharge,charge, e.g. 4000,2000");
+        }
+        o.power_targets_w = Some((t[0], t[1]));
+    }
+    Ok(())
 }
 
 fn spec_from_summary(p: &PackSummary) -> anyhow::Result<PackSpec> {
@@ -269,6 +308,8 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
         // Given now, or recorded with the run.
         let bms = given_bms.or(m.bms.clone());
         let pack = spec_from_summary(&m.pack)?;
+        let mut opts = opts;
+        pulse_settings(a, &pack, &mut opts)?;
         let (pack_id, run_id) = (m.pack_id.clone(), m.run_id.clone());
         let title = m.procedure.title.clone();
         let test_date = record::history::parse_date(&m.test_date).ok_or_else(|| {
@@ -336,6 +377,7 @@ pub fn analyze(a: &AnalyzeArgs) -> anyhow::Result<(Summary, CurveData)> {
             record::summarize::provisional_spec(&a.log, &format)?
         }
     };
+    pulse_settings(a, &pack, &mut opts)?;
     if let Some(c) = &a.cutoff {
         let per_cell = match units::voltage(c).map_err(|e| anyhow!("--cutoff: {e}"))? {
             units::VoltageSpec::PerCell(v) => v,

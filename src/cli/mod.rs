@@ -3,6 +3,7 @@
 
 pub mod analyze;
 pub mod args;
+pub mod characterize;
 pub mod check;
 pub mod demo;
 pub mod exchange;
@@ -75,6 +76,9 @@ pub enum Command {
     Export(crate::cli::exchange::ExportArgs),
     /// The shop's screen: run the bays and read the results in a browser.
     Serve(crate::cli::serve::ServeArgs),
+    /// Pulse-power levels of a log as OCV, equivalent-circuit and power
+    /// tables (CSV, JSON, C header).
+    Characterize(crate::cli::characterize::CharacterizeArgs),
     /// Peukert exponent from two capacity runs of a pack at different rates.
     Peukert(crate::cli::analyze::PeukertArgs),
     /// Estimate a pack's capacity from a screening run and its family's calibration.
@@ -115,6 +119,9 @@ pub fn main() -> i32 {
         Command::Sync(a) => crate::cli::exchange::cmd_sync(a).context("sync failed"),
         Command::Export(a) => crate::cli::exchange::cmd_export(a).context("export failed"),
         Command::Serve(a) => crate::cli::serve::cmd_serve(a).context("console failed"),
+        Command::Characterize(a) => {
+            crate::cli::characterize::cmd_characterize(a).context("characterization failed")
+        }
         Command::Peukert(a) => crate::cli::analyze::cmd_peukert(a).context("peukert failed"),
         Command::GradeQuick(a) => crate::cli::quick::cmd_quick(a).context("quick grade failed"),
         Command::Ports => crate::cli::setup::cmd_ports().context("listing ports failed"),

@@ -278,6 +278,11 @@ impl<'a> Estimator<'a> {
                 EndCondition::Charge { ah } if i > 1e-6 => {
                     offer((ah - self.step.ah.abs()) / i * 3600.0, false)
                 }
+                // (The measured share is near the rated share: the
+                // estimate takes the rated one.)
+                EndCondition::ChargeOfMeasured { rated_ah, .. } if i > 1e-6 => {
+                    offer((rated_ah - self.step.ah.abs()) / i * 3600.0, true)
+                }
                 EndCondition::Energy { wh } if p > 1e-6 => {
                     offer((wh - self.step.wh.abs()) / p * 3600.0, false)
                 }

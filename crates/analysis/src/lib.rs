@@ -6,8 +6,10 @@
 //! signed; cycle and capacity figures are magnitudes.
 
 pub mod bms;
+pub mod characterize;
 pub mod correct;
 pub mod curves;
+pub mod ecm;
 pub mod fade;
 pub mod fit;
 pub mod groups;
@@ -323,6 +325,9 @@ pub struct Analysis {
     /// A pack read group by group (filled in by the caller, which has the
     /// group log).
     pub groups: Option<groups::GroupsResult>,
+    /// Pulse-power levels (hybrid pulse power characterization), where
+    /// the log holds any.
+    pub characterization: Option<characterize::Characterization>,
 }
 
 /// A standby-drain measurement: what the source supplied to hold the pack

@@ -8,6 +8,7 @@
 //! The same code serves the summary at the end of a live run, `packbench
 //! analyze` on our own logs, and any other bench's log.
 
+use super::characterize::{Characterizer, Settings, SocBasis};
 use super::correct::{self, CapacityTest, CorrectionPolicy};
 use super::curves::{self, ChargeGrid};
 use super::integrate::{spans_any, Integrator, Interruption};
@@ -50,6 +51,11 @@ pub struct AnalysisOptions {
     /// states it: the capacity step counts as ended on its cutoff when its
     /// last voltage is at most [`CUTOFF_TOLERANCE`] above it.
     pub cutoff_v_per_cell: Option<f64>,
+    /// The pack's minimum and maximum voltage for the pulse power
+    /// capability, V (default: the chemistry's usual operating limits).
+    pub voltage_limits_v: Option<(f64, f64)>,
+    /// Power targets for the available energy, W (discharge, charge).
+    pub power_targets_w: Option<(f64, f64)>,
 }
 
 /// How far above a stated cutoff a foreign log's last discharge voltage
@@ -72,6 +78,8 @@ impl Default for AnalysisOptions {
             detect_capacity: false,
             imported: false,
             cutoff_v_per_cell: None,
+            voltage_limits_v: None,
+            power_targets_w: None,
         }
     }
 }
@@ -268,6 +276,8 @@ pub struct Analyzer<'a> {
     breaks: Vec<Interruption>,
     /// Points of the drain step being read, kept across its stretches.
     drain_points: Option<(u32, Vec<(f64, f64)>)>,
+    /// Pulse-power levels, read from the current alone.
+    characterizer: Characterizer,
 }
 
 impl<'a> Analyzer<'a> {
@@ -280,6 +290,18 @@ impl<'a> Analyzer<'a> {
             }
         }
         let pulse = PulseTracker::new(&opts.pulse_delays_s, pack.rated_capacity_ah);
+        let n = f64::from(pack.series);
+        let (lo, hi) = pack.chemistry.operating_limits_v_per_cell();
+        let (voltage_min_v, voltage_max_v) = opts.voltage_limits_v.unwrap_or((lo * n, hi * n));
+        let characterizer = Characterizer::new(Settings {
+            voltage_min_v,
+            voltage_max_v,
+            // At rest below 1 % of the rated capacity's current (0.01C),
+            // and at least 1 mA (common practice for a bench's zero).
+            rest_current_a: (0.01 * pack.rated_capacity_ah).max(0.001),
+            series: pack.series,
+            rated_ah: pack.rated_capacity_ah,
+        });
         Analyzer {
             pack,
             opts,
@@ -309,6 +331,7 @@ impl<'a> Analyzer<'a> {
             full_step: None,
             breaks: Vec::new(),
             drain_points: None,
+            characterizer,
         }
     }
 
@@ -378,6 +401,8 @@ impl<'a> Analyzer<'a> {
             }
             resumed = spans_any(&self.breaks, p.t_s, s.t_s).then_some(dt);
         }
+        self.characterizer
+            .push(s.t_s, s.voltage_v, s.current_a, s.temperature_c);
         if let Some(down) = resumed {
             // A resumed run: no gap, no charge across the interruption,
             // and the time it was down is no time the step ran.
@@ -707,7 +732,35 @@ impl<'a> Analyzer<'a> {
         });
         let quality = self.quality.clone();
         quality_warnings(&quality, self.opts.gap_factor, &mut warnings);
+        // The pulse levels' state of charge: against the capacity this
+        // log measured from a full charge to its cutoff, else the rated.
+        let basis = match capacity
+            .as_ref()
+            .filter(|c| c.ended_on_cutoff == Some(true) && c.from_full_charge)
+        {
+            Some(c) => SocBasis {
+                capacity_ah: c.measured_ah,
+                source: format!("measured (step {}, to its cutoff)", c.step),
+            },
+            None => SocBasis {
+                capacity_ah: pack.rated_capacity_ah,
+                source: "rated (no capacity measured to a cutoff in this log)".into(),
+            },
+        };
+        let characterizer = std::mem::replace(
+            &mut self.characterizer,
+            Characterizer::new(Settings {
+                voltage_min_v: 0.0,
+                voltage_max_v: 0.0,
+                rest_current_a: 0.0,
+                series: 1,
+                rated_ah: 0.0,
+            }),
+        );
+        let characterization = Some(characterizer.finish(basis, self.opts.power_targets_w))
+            .filter(|c| !c.levels.is_empty());
         Analysis {
+            characterization,
             capacity,
             resistance,
             steps: summaries,

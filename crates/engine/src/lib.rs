@@ -26,7 +26,9 @@ use instrument::profile::Guarded;
 use instrument::{
     ErrorKind, Instrument, InstrumentError, Load, LoadSetting, Meter, Reading, Source,
 };
-use model::procedure::{DischargeMode, EndCondition, FineSampling, Plan, PlanStep, StepKind};
+use model::procedure::{
+    DischargeMode, EndCondition, FineSampling, Plan, PlanStep, ResultTag, StepKind,
+};
 use model::sample::Sample;
 use model::truth::{GroundTruth, TruthCounters};
 use serde::Serialize;
@@ -234,6 +236,7 @@ pub struct Engine<'a> {
     active: Active,
     truth_steps: Vec<TruthStep>,
     truth_open: Option<TruthCounters>,
+    truth_model: Option<model::truth::ModelState>,
     current_step: u32,
     step_open: bool,
     next_error_poll: f64,
@@ -252,6 +255,15 @@ pub struct Engine<'a> {
     off_hold: std::time::Duration,
     /// The clock's suspended seconds when the run started.
     slept0: f64,
+    /// The capacity this run measured in its step with result =
+    /// "capacity" (to its cutoff), Ah.
+    measured_ah: Option<f64>,
+    /// The pack's resistance over the last pulse level, Ω (ΔV/ΔI from the
+    /// sample before its edge to its last sample), to hold the next
+    /// pulse inside the voltage limits.
+    pulse_r_ohm: Option<f64>,
+    /// The latest sample of the run.
+    last_sample: Option<Sample>,
 }
 
 /// A suspend of the computer longer than this (s) while a run is live is a
@@ -295,6 +307,7 @@ impl<'a> Engine<'a> {
             active: Active::None,
             truth_steps: Vec::new(),
             truth_open: None,
+            truth_model: None,
             current_step: 0,
             step_open: false,
             next_error_poll: ERROR_POLL_S,
@@ -308,6 +321,9 @@ impl<'a> Engine<'a> {
             last_groups: None,
             off_hold: OFF_HOLD,
             slept0: 0.0,
+            measured_ah: None,
+            pulse_r_ohm: None,
+            last_sample: None,
         }
         .with_sleep_mark()
     }
@@ -993,6 +1009,7 @@ impl<'a> Engine<'a> {
                 charge_ah,
                 energy_wh: now.energy_wh - start.energy_wh,
                 groups_to_cutoff_ah,
+                model_at_start: self.truth_model.take(),
             });
         }
     }
@@ -1137,6 +1154,92 @@ impl<'a> Engine<'a> {
         })
     }
 
+    /// A step with result = "capacity" that ended on its cutoff measured
+    /// the capacity later steps take their shares of.
+    fn note_measured(&mut self, st: &PlanStep, kind: EndKind, tracker: &StepTracker) {
+        if st.result == Some(ResultTag::Capacity) && kind.is_cutoff() {
+            self.measured_ah = Some(tracker.counters.ah.abs());
+        }
+    }
+
+    /// A share of the measured capacity with no measurement at hand (the
+    /// capacity step did not end on its cutoff, or the run resumed after
+    /// it) falls back on the rated capacity, and the record says so.
+    fn warn_unmeasured(&mut self, st: &PlanStep, t0: f64) -> Result<(), Stop> {
+        if self.measured_ah.is_some() {
+            return Ok(());
+        }
+        for c in &st.ends {
+            if let EndCondition::ChargeOfMeasured { fraction, rated_ah } = *c {
+                self.emit(Event::Warning {
+                    t_s: t0,
+                    step: st.index,
+                    message: format!(
+                        "no measured capacity in this run (its capacity step did not end on its cutoff, or the run resumed after it): {:.1} % of the rated capacity, {rated_ah:.3} Ah, is taken instead",
+                        fraction * 100.0
+                    ),
+                })?;
+            }
+        }
+        Ok(())
+    }
+
+    /// The pack's resistance over the pulse level that just ended: from
+    /// the sample before its edge to its last sample.
+    fn note_pulse_resistance(&mut self, before: Option<Sample>, end: &Sample) {
+        let Some(b) = before else { return };
+        let di = end.current_a - b.current_a;
+        if di.abs() < 0.01 * self.plan.envelope.current_max_a {
+            return;
+        }
+        let r = (end.voltage_v - b.voltage_v) / di;
+        if r.is_finite() && r > 0.0 {
+            self.pulse_r_ohm = Some(r);
+        }
+    }
+
+    /// A pulse level's current, reduced where the last level's resistance
+    /// says it would take the pack past its voltage limit (the pulse
+    /// method allows a reduced pulse; the record says so): a discharge
+    /// level is held above 1 % over the envelope's minimum, a charge
+    /// level under the 99 % its supply is set to, with a margin of
+    /// [`PULSE_R_MARGIN`] on the resistance.
+    fn held_level(
+        &mut self,
+        st: &PlanStep,
+        level: usize,
+        current: f64,
+        v_now: f64,
+    ) -> Result<f64, Stop> {
+        let Some(r) = self.pulse_r_ohm else {
+            return Ok(current);
+        };
+        let env = &self.plan.envelope;
+        let room = if current < 0.0 {
+            v_now - env.voltage_min_v * 1.01
+        } else if current > 0.0 {
+            env.voltage_max_v * 0.99 - v_now
+        } else {
+            return Ok(current);
+        };
+        let allowed = (room / (r * PULSE_R_MARGIN)).max(0.0);
+        if current.abs() <= allowed {
+            return Ok(current);
+        }
+        let held = allowed.copysign(current);
+        let limit = if current < 0.0 { "minimum" } else { "maximum" };
+        self.emit(Event::Warning {
+            t_s: self.t(),
+            step: st.index,
+            message: format!(
+                "pulse level {} reduced from {current:.3} A to {held:.3} A to stay inside the {limit} voltage (the last pulse's resistance {:.1} mΩ, margin {PULSE_R_MARGIN})",
+                level + 1,
+                r * 1000.0
+            ),
+        })?;
+        Ok(held)
+    }
+
     async fn run_steps(&mut self) -> Result<(), Stop> {
         let plan = self.plan;
         self.preflight().await?;
@@ -1183,8 +1286,11 @@ impl<'a> Engine<'a> {
         carried: Option<Carried>,
         t0: f64,
     ) -> Result<(), Stop> {
+        let edge_before = self.last_sample;
         let (levels, mut tracker) = self.step_setup(st, carried, t0).await?;
         let mut level = 0usize;
+        // The sample before the present pulse level's edge.
+        let mut edge = edge_before;
         let schedule = Schedule::of(st, self.plan, &tracker);
         let mut scheduled: Option<f64> = None;
         let mut prev: Option<Sample> = None;
@@ -1195,13 +1301,17 @@ impl<'a> Engine<'a> {
             let t = s.t_s;
             if let Some((kind, cond)) = tracker.end_reached(st) {
                 self.capacity_alarm(st, kind, &tracker, t)?;
+                self.note_measured(st, kind, &tracker);
                 return self.end_step(t, st.index, kind, cond.to_string());
             }
             if let Some((kind, why)) = self.group_end(st) {
                 self.capacity_alarm(st, kind, &tracker, t)?;
+                self.note_measured(st, kind, &tracker);
                 return self.end_step(t, st.index, kind, why);
             }
             if !levels.is_empty() && t >= levels[level].0 - 1e-9 {
+                self.note_pulse_resistance(edge, &s);
+                edge = Some(s);
                 level += 1;
                 if level == levels.len() {
                     return self.end_step(
@@ -1211,11 +1321,12 @@ impl<'a> Engine<'a> {
                         "pulse levels done".into(),
                     );
                 }
-                let (_, a, d) = levels[level];
-                if a == Active::None {
+                let current = self.held_level(st, level, levels[level].1, s.voltage_v)?;
+                if current == 0.0 {
                     self.switch_off_active().await?;
                 } else {
-                    self.drive(a, d).await?;
+                    let d = level_drive(current, self.plan.envelope.voltage_max_v);
+                    self.drive(level_active(current), d).await?;
                 }
                 // Sample again at once: the edge is what a pulse is for.
                 continue;
@@ -1247,9 +1358,8 @@ impl<'a> Engine<'a> {
         st: &PlanStep,
         carried: Option<Carried>,
         t0: f64,
-    ) -> Result<(Vec<(f64, Active, Drive)>, StepTracker), Stop> {
-        let env = &self.plan.envelope;
-        let mut levels: Vec<(f64, Active, Drive)> = Vec::new();
+    ) -> Result<(Vec<(f64, f64)>, StepTracker), Stop> {
+        let mut levels: Vec<(f64, f64)> = Vec::new();
         let (want, drive) = match &st.kind {
             StepKind::Charge {
                 current_a,
@@ -1277,14 +1387,15 @@ impl<'a> Engine<'a> {
                 let mut end = t0;
                 for l in ls {
                     end += l.duration_s;
-                    levels.push((
-                        end,
-                        level_active(l.current_a),
-                        level_drive(l.current_a, env.voltage_max_v),
-                    ));
+                    levels.push((end, l.current_a));
                 }
-                let (_, a, d) = levels[0];
-                (a, d)
+                let v_now = self.last_sample.map(|s| s.voltage_v);
+                let current = match v_now {
+                    Some(v) => self.held_level(st, 0, levels[0].1, v)?,
+                    None => levels[0].1,
+                };
+                let vmax = self.plan.envelope.voltage_max_v;
+                (level_active(current), level_drive(current, vmax))
             }
         };
         if want == Active::None {
@@ -1293,7 +1404,10 @@ impl<'a> Engine<'a> {
             self.drive(want, drive).await?;
         }
         self.truth_open = self.truth.as_ref().map(|t| t.counters());
+        self.truth_model = self.truth.as_ref().and_then(|t| t.model_state());
         let mut tracker = StepTracker::new(self.t());
+        tracker.measured_ah = self.measured_ah;
+        self.warn_unmeasured(st, t0)?;
         if let Some(c) = carried {
             // Elapsed time and counts go on from the log; nothing is
             // integrated across the interruption.
@@ -1372,6 +1486,7 @@ impl<'a> Engine<'a> {
         };
         self.sink.sample(&s).map_err(Stop::Log)?;
         tracker.push(&s);
+        self.last_sample = Some(s);
         self.scan_groups(&s).await?;
         self.poll_errors(t).await?;
         let so_far = safety::StepSoFar {
@@ -1480,6 +1595,11 @@ fn level_active(current: f64) -> Active {
         Active::None
     }
 }
+
+/// The margin on the last pulse's resistance when a pulse level is held
+/// inside the voltage limits (a pulse at a lower state of charge meets a
+/// higher resistance; our own choice).
+pub const PULSE_R_MARGIN: f64 = 1.25;
 
 /// A charge pulse is limited to 1 % under the envelope's maximum voltage.
 fn level_drive(current: f64, voltage_max: f64) -> Drive {

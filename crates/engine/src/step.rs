@@ -51,6 +51,9 @@ pub struct StepTracker {
     recent: VecDeque<f64>,
     window: VecDeque<(f64, f64)>,
     thermal: VecDeque<(f64, f64)>,
+    /// The capacity this run measured (its step with result =
+    /// "capacity", to its cutoff), for "charge > N% of measured".
+    pub measured_ah: Option<f64>,
 }
 
 impl StepTracker {
@@ -63,6 +66,7 @@ impl StepTracker {
             recent: VecDeque::new(),
             window: VecDeque::new(),
             thermal: VecDeque::new(),
+            measured_ah: None,
         }
     }
 
@@ -141,6 +145,9 @@ impl StepTracker {
                 }
                 EndCondition::Time { seconds } => el >= seconds - 1e-6,
                 EndCondition::Charge { ah } => self.counters.ah.abs() >= ah,
+                EndCondition::ChargeOfMeasured { fraction, rated_ah } => {
+                    self.counters.ah.abs() >= self.measured_ah.map_or(rated_ah, |m| m * fraction)
+                }
                 EndCondition::Energy { wh } => self.counters.wh.abs() >= wh,
                 EndCondition::TemperatureAbove { celsius } => {
                     s.temperature_c.is_some_and(|t| t >= celsius)
@@ -164,7 +171,9 @@ impl StepTracker {
                     EndCondition::VoltageBelow { .. } => EndKind::VoltageBelow,
                     EndCondition::CurrentBelow { .. } => EndKind::CurrentBelow,
                     EndCondition::Time { .. } => EndKind::Time,
-                    EndCondition::Charge { .. } => EndKind::Charge,
+                    EndCondition::Charge { .. } | EndCondition::ChargeOfMeasured { .. } => {
+                        EndKind::Charge
+                    }
                     EndCondition::Energy { .. } => EndKind::Energy,
                     EndCondition::TemperatureAbove { .. } => EndKind::TemperatureAbove,
                     EndCondition::Settled { .. } => EndKind::Settled,

@@ -74,6 +74,19 @@ impl Chemistry {
         }
     }
 
+    /// The usual minimum and maximum operating voltage per cell, V, for
+    /// the pulse power capability when the maker's are not given (common
+    /// practice: li-ion 3.0–4.2 V, LFP 2.5–3.65 V, lead-acid 1.75–2.45 V,
+    /// NiMH 1.0–1.5 V).
+    pub fn operating_limits_v_per_cell(&self) -> (f64, f64) {
+        match self {
+            Chemistry::LiIon => (3.0, 4.2),
+            Chemistry::Lfp => (2.5, 3.65),
+            Chemistry::LeadAcid => (1.75, 2.45),
+            Chemistry::Nimh => (1.0, 1.5),
+        }
+    }
+
     /// The highest per-cell voltage an envelope may allow: above any charge
     /// voltage the chemistry is charged to, short of a plain mistake
     /// (common practice: li-ion is charged to 4.2–4.4 V, LFP to 3.6–3.65 V,

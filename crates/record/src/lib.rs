@@ -133,6 +133,10 @@ pub struct Summary {
     /// when they were given.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub bms: Option<analysis::bms::BmsCheck>,
+    /// Pulse-power levels and their equivalent circuits, where the log
+    /// holds a pulse-power characterization.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub characterization: Option<analysis::characterize::Characterization>,
     /// What was not worked out because the log came without a pack spec
     /// (no rated capacity): empty when the spec was given.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]

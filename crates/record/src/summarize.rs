@@ -153,6 +153,7 @@ pub fn build_summary(
         bms,
         needs_rating: Vec::new(),
         groups: a.groups,
+        characterization: a.characterization,
     }
 }
 

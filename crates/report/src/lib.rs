@@ -6,6 +6,7 @@ pub mod charts;
 pub mod html;
 pub mod markup;
 pub mod svg;
+pub mod tables;
 pub mod text;
 
 #[cfg(test)]

@@ -168,6 +168,9 @@ pub fn summary(s: &Summary) -> String {
     if let Some(g) = &s.groups {
         groups_text(&mut o, g);
     }
+    if let Some(c) = &s.characterization {
+        o.push_str(&characterization_text(c));
+    }
     match s.verdict.grade.value() {
         Some(g) => {
             let _ = writeln!(
@@ -207,6 +210,64 @@ pub fn summary(s: &Summary) -> String {
     }
     for w in &s.warnings {
         let _ = writeln!(o, "  warning: {w}");
+    }
+    o
+}
+
+/// The pulse-power levels: one line each, state of charge ascending.
+pub fn characterization_text(c: &analysis::characterize::Characterization) -> String {
+    let mut o = String::new();
+    let _ = writeln!(
+        o,
+        "  Pulse-power levels (state of charge on {:.3} Ah, {}; power at {:.2}–{:.2} V):",
+        c.basis.capacity_ah, c.basis.source, c.settings.voltage_min_v, c.settings.voltage_max_v
+    );
+    let _ = writeln!(
+        o,
+        "    {:>6}  {:>8}  {:>8}  {:>8}  {:>8}  {:>8}  {:>7}  {:>7}  {:>6}  {:>7}  {:>7}  {:>6}",
+        "SoC %",
+        "OCV V",
+        "Rdis mΩ",
+        "Rchg mΩ",
+        "Pdis W",
+        "Pchg W",
+        "R0 mΩ",
+        "R1 mΩ",
+        "τ1 s",
+        "R2 mΩ",
+        "τ2 s",
+        "rms mV"
+    );
+    let mut levels: Vec<_> = c.levels.iter().collect();
+    levels.sort_by(|a, b| b.soc_pct.total_cmp(&a.soc_pct));
+    let f = |x: Option<f64>, d: usize| x.map_or_else(|| "-".to_string(), |v| format!("{v:.d$}"));
+    for l in levels {
+        let e = l.ecm2.as_ref();
+        let pair = |i: usize| e.and_then(|f| f.pairs.get(i));
+        let _ = writeln!(
+            o,
+            "    {:>6.1}  {:>8.3}  {:>8.2}  {:>8}  {:>8}  {:>8}  {:>7}  {:>7}  {:>6}  {:>7}  {:>7}  {:>6}{}",
+            l.soc_pct,
+            l.ocv_v,
+            l.discharge.resistance_mohm,
+            f(l.charge.as_ref().map(|p| p.resistance_mohm), 2),
+            f(l.power_discharge_w, 0),
+            f(l.power_charge_w, 0),
+            f(e.filter(|_| l.r0_separable).map(|f| f.r0_ohm * 1000.0), 2),
+            f(pair(0).map(|p| p.r_ohm * 1000.0), 2),
+            f(pair(0).map(|p| p.tau_s), 1),
+            f(pair(1).map(|p| p.r_ohm * 1000.0), 2),
+            f(pair(1).map(|p| p.tau_s), 0),
+            f(e.map(|f| f.rms_v * 1000.0), 2),
+            if l.flags.is_empty() { String::new() } else { format!("  ({})", l.flags.join("; ")) }
+        );
+    }
+    if let Some(a) = &c.available_energy {
+        let _ = writeln!(
+            o,
+            "    Available energy at {:.0} W discharge / {:.0} W charge: {:.1} Wh between {:.1} % and {:.1} % depth of discharge",
+            a.target_discharge_w, a.target_charge_w, a.energy_wh, a.dod_from_pct, a.dod_to_pct
+        );
     }
     o
 }

@@ -303,6 +303,26 @@ impl PackModel {
         }
     }
 
+    /// The whole pack's equivalent circuit as it stands (temperature and
+    /// ageing applied).
+    pub fn model_state(&self) -> model::truth::ModelState {
+        let k = self.resistance_factor * self.temp_factor() / self.size_ah.max(1e-9) * self.series;
+        model::truth::ModelState {
+            soc: self.soc,
+            temperature_c: self.temperature_c,
+            ocv_v: self.series
+                * (self.params.ocv_at(self.soc)
+                    + self.params.docv_dt_v_per_k * (self.temperature_c - 25.0)),
+            r0_ohm: self.r0_cell() * self.series,
+            r1_ohm: self.params.r1_ohm_ah * k,
+            tau1_s: self.params.tau1_s,
+            r2_ohm: self.params.r2_ohm_ah * k,
+            tau2_s: self.params.tau2_s,
+            v1_v: self.v1 * self.series,
+            v2_v: self.v2 * self.series,
+        }
+    }
+
     /// Series resistance of one cell, Ω.
     pub fn r0_cell(&self) -> f64 {
         self.params.r0_ohm_ah / self.size_ah.max(1e-9) * self.resistance_factor * self.temp_factor()

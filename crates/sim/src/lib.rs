@@ -122,6 +122,15 @@ impl GroundTruth for SimHandle {
     fn counters(&self) -> TruthCounters {
         self.with(|b| b.truth())
     }
+    fn model_state(&self) -> Option<model::truth::ModelState> {
+        self.with(|b| {
+            if b.pack.grouped {
+                return None;
+            }
+            b.advance();
+            b.pack.cells.first().map(|c| c.model_state())
+        })
+    }
     fn groups_to_cutoff(&self, cutoff_v: f64) -> Vec<f64> {
         self.with(|b| {
             if !b.pack.grouped {

@@ -159,6 +159,14 @@ pub enum EndCondition {
     Charge {
         ah: f64,
     },
+    /// |charge| passed in the step reaching a share of the capacity the
+    /// run measured in its step with result = "capacity" (to its cutoff);
+    /// `rated_ah` (the share of the rated capacity) stands in, and the
+    /// record says so, while no such measurement is at hand.
+    ChargeOfMeasured {
+        fraction: f64,
+        rated_ah: f64,
+    },
     /// |energy| passed in the step.
     Energy {
         wh: f64,
@@ -189,6 +197,9 @@ impl fmt::Display for EndCondition {
             EndCondition::CurrentBelow { current_a } => write!(f, "current < {current_a:.3} A"),
             EndCondition::Time { seconds } => write!(f, "time > {}", HumanDuration(seconds)),
             EndCondition::Charge { ah } => write!(f, "charge > {ah:.3} Ah"),
+            EndCondition::ChargeOfMeasured { fraction, .. } => {
+                write!(f, "charge > {:.1}% of measured", fraction * 100.0)
+            }
             EndCondition::Energy { wh } => write!(f, "energy > {wh:.2} Wh"),
             EndCondition::TemperatureAbove { celsius } => {
                 write!(f, "temperature > {celsius:.1} degC")

@@ -17,6 +17,8 @@ pub const MAX_STEPS: usize = 100_000;
 pub const MIN_SAMPLE_S: f64 = 0.01;
 /// A drain step's current limit when it gives none, A.
 pub const DRAIN_LIMIT_DEFAULT_A: f64 = 0.1;
+/// The end condition "charge > N% of measured" ends with this.
+pub const MEASURED_SUFFIX: &str = "of measured";
 
 /// A validated step before expansion: kind, ends, result tag, name.
 type BuiltStep = (
@@ -284,6 +286,29 @@ fn parse_end(cx: &mut Ctx, t: &Text, pack: &PackSpec) -> Option<EndCondition> {
             if below {
                 return wrong_op(cx, ">");
             }
+            if let Some(pct) = value.strip_suffix(MEASURED_SUFFIX) {
+                // A share of the capacity this run measures (its step with
+                // result = "capacity"), for the pulse characterization's
+                // state-of-charge levels; checked against the plan later.
+                let fraction = match units::charge(pct.trim()) {
+                    Ok(units::ChargeSpec::PercentOfRated(p))
+                        if p.is_finite() && p > 0.0 && p <= 100.0 =>
+                    {
+                        p / 100.0
+                    }
+                    _ => {
+                        cx.err(
+                            &t.span(),
+                            format!("end condition '{s}': expected a percentage from 0 to 100 before 'of measured', e.g. 'charge > 10% of measured'"),
+                        );
+                        return None;
+                    }
+                };
+                return Some(EndCondition::ChargeOfMeasured {
+                    fraction,
+                    rated_ah: rated * fraction,
+                });
+            }
             EndCondition::Charge {
                 ah: parsed(cx, units::charge(value).map(|c| c.resolve(rated).abs()))?,
             }
@@ -357,6 +382,7 @@ fn reachable(kind: &StepKind, c: &EndCondition, env: &Envelope, pack: &PackSpec)
         (_, E::TemperatureAbove { .. }) => false,
         (StepKind::Pulse { .. }, _) => true,
         (_, E::Charge { ah }) => *ah > 0.0,
+        (_, E::ChargeOfMeasured { fraction, .. }) => *fraction > 0.0,
         (_, E::Energy { wh }) => *wh > 0.0,
         (
             StepKind::Charge {
@@ -892,6 +918,7 @@ fn build(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<Plan> {
     // Validate each written step once, then expand repeats.
     let mut expanded_count: usize = 0;
     let mut written = Vec::new();
+    let mut seen_capacity = false;
     for ph in &raw.phase {
         let p = ph.get_ref();
         let repeat = match &p.repeat {
@@ -931,6 +958,16 @@ fn build(cx: &mut Ctx, raw: &RawProcedure, pack: &PackSpec) -> Option<Plan> {
                 .as_ref()
                 .and_then(|t| sample_interval(cx, t));
             if let Some(b) = build_step(cx, s, &env, pack) {
+                let of_measured =
+                    b.1.iter()
+                        .any(|c| matches!(c, EndCondition::ChargeOfMeasured { .. }));
+                if of_measured && !seen_capacity {
+                    cx.err(
+                        &s.span(),
+                        "'charge > N% of measured' needs an earlier step with result = \"capacity\" (a discharge to the cutoff that measures the capacity)",
+                    );
+                }
+                seen_capacity |= b.2 == Some(ResultTag::Capacity);
                 steps.push((b, line, own_every));
             }
         }

@@ -1,0 +1,607 @@
+//! Pulse-power characterization: the hybrid pulse power method of the US
+//! DOE/INL battery test manuals (fact sheet characterization.md §1) read
+//! from any log, ours or foreign, by its current alone.
+//!
+//! A *level* opens at a discharge edge that follows a rest of at least
+//! [`LEVEL_REST_MIN_S`] and whose discharge lasts at most
+//! [`PULSE_MAX_S`]: the rest's last voltage is the open-circuit voltage
+//! there. Its profile is that discharge pulse, the rest after it and a
+//! charge pulse if one follows; then whatever takes the pack to the next
+//! level (a partial discharge at C/3 and a rest) is its relaxation. The
+//! level's figures:
+//!
+//! - R_dis = (V_t0 − V_t1)/(I_t0 − I_t1), t0 the last sample before the
+//!   discharge pulse, t1 its end; R_chg the same over the charge pulse
+//!   (t2 the last sample before it, t3 its end); also 0.1, 1 and 2 s
+//!   after each edge where the sampling resolves them.
+//! - Pulse power capability: P_dis = V_min·(OCV_dis − V_min)/R_dis and
+//!   P_chg = V_max·(V_max − OCV_chg)/R_chg (OCV_dis = V_t0, OCV_chg =
+//!   V_t2).
+//! - First- and second-order Thevenin circuits fitted to the pulse window
+//!   and the relaxation ([`crate::ecm`]).
+//!
+//! Memory: the open level's window only, thinned so that the spacing of
+//! the kept samples grows with the time since the last current edge
+//! ([`KEEP_PER_EDGE`] per decade-ish), whatever the log's length; the
+//! levels' figures are a few numbers each.
+
+use crate::ecm::{self, EcmFit, Point, Role};
+use serde::{Deserialize, Serialize};
+
+/// The rest before a level, at least, s (the method rests 1 h; 10 min is
+/// our floor for calling a rest's last voltage an open-circuit voltage).
+pub const LEVEL_REST_MIN_S: f64 = 600.0;
+/// A discharge longer than this is no pulse, s (ISO 12405-4's discharge
+/// is 120 s, the DOE's 10 s).
+pub const PULSE_MAX_S: f64 = 180.0;
+/// A rest inside the profile longer than this ends the profile, s.
+pub const PROFILE_REST_MAX_S: f64 = 300.0;
+/// Thinning: the kept samples' spacing is at least the time since the
+/// last current edge over this.
+pub const KEEP_PER_EDGE: f64 = 100.0;
+/// The delays after an edge the method reads, s.
+pub const DELAYS_S: [f64; 3] = [0.1, 1.0, 2.0];
+/// R0 is told apart from R1 when the first sample after the discharge
+/// edge comes within this fraction of τ1 (R1 then adds under a tenth of
+/// itself to that sample): our rule.
+pub const R0_SEPARABLE_FRACTION: f64 = 0.1;
+
+/// Settings: the pack's voltage limits for the power capability, the
+/// current below which the pack is at rest, the pack's size.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct Settings {
+    pub voltage_min_v: f64,
+    pub voltage_max_v: f64,
+    pub rest_current_a: f64,
+    pub series: u32,
+    pub rated_ah: f64,
+}
+
+/// The resistance over one pulse.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PulseFigure {
+    /// Mean current over the pulse, A (signed, positive into the pack).
+    pub current_a: f64,
+    pub duration_s: f64,
+    /// The voltage before the pulse's edge, V.
+    pub voltage_before_v: f64,
+    /// ΔV/ΔI at the pulse's end, mΩ.
+    pub resistance_mohm: f64,
+    /// (delay s, mΩ) where the sampling resolves it.
+    pub at_delays: Vec<(f64, f64)>,
+    /// The first sample after the edge, s after it.
+    pub first_sample_s: f64,
+}
+
+/// One state-of-charge level.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Level {
+    /// Time of the last sample before the discharge pulse, s.
+    pub t_s: f64,
+    /// Charge taken out since the full charge, Ah (None: the log has no
+    /// full charge before it; counted from the log's start).
+    pub ah_from_full: Option<f64>,
+    /// Charge taken out since the log's start, Ah.
+    pub ah_from_start: f64,
+    /// Energy the pack delivered since the full charge (or the log's
+    /// start), Wh.
+    pub wh_from_full: f64,
+    /// State of charge, % of the capacity basis (filled in at the end).
+    pub soc_pct: f64,
+    /// The rest's last voltage before the pulse, V.
+    pub ocv_v: f64,
+    /// How long the pack rested before, s.
+    pub rest_s: f64,
+    pub temperature_c: Option<f64>,
+    pub discharge: PulseFigure,
+    pub charge: Option<PulseFigure>,
+    /// The charge pulse's current against 0.75 of the discharge's: below
+    /// 0.97 of it, the pulse was reduced (to hold the voltage limit).
+    pub charge_reduced: bool,
+    pub power_discharge_w: Option<f64>,
+    pub power_charge_w: Option<f64>,
+    pub ecm1: Option<EcmFit>,
+    pub ecm2: Option<EcmFit>,
+    /// R0 is told apart from R1 (see [`R0_SEPARABLE_FRACTION`]).
+    pub r0_separable: bool,
+    pub flags: Vec<String>,
+}
+
+/// What the state of charge is counted against.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SocBasis {
+    pub capacity_ah: f64,
+    /// "measured" (the run's capacity step, to its cutoff) or "rated".
+    pub source: String,
+}
+
+/// Available energy between the levels where the power targets are met.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct AvailableEnergy {
+    pub target_discharge_w: f64,
+    pub target_charge_w: f64,
+    /// The depth of discharge range where both are met, %.
+    pub dod_from_pct: f64,
+    pub dod_to_pct: f64,
+    pub energy_wh: f64,
+}
+
+/// The whole characterization of a log.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Characterization {
+    pub settings: Settings,
+    pub basis: SocBasis,
+    pub levels: Vec<Level>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub available_energy: Option<AvailableEnergy>,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Seg {
+    Rest,
+    Dis,
+    Chg,
+}
+
+#[derive(Debug, Clone, Copy)]
+struct S {
+    t: f64,
+    v: f64,
+    i: f64,
+    temp: Option<f64>,
+    q: f64,
+    wh: f64,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Phase {
+    /// In the discharge pulse.
+    Discharge,
+    /// The rest after it.
+    Between,
+    /// The charge pulse.
+    Charge,
+    /// After the profile.
+    After,
+}
+
+#[derive(Debug)]
+struct Open {
+    pre: S,
+    rest_s: f64,
+    q_full: Option<f64>,
+    wh_full: f64,
+    phase: Phase,
+    /// Indices into `points`.
+    dis_end: Option<usize>,
+    chg_before: Option<usize>,
+    chg_end: Option<usize>,
+    points: Vec<Point>,
+    raw: Vec<S>,
+    last_kept: f64,
+    edge_t: f64,
+}
+
+/// Streams a log into levels.
+#[derive(Debug)]
+pub struct Characterizer {
+    settings: Settings,
+    prev: Option<S>,
+    seg: Option<(Seg, f64)>,
+    q: f64,
+    wh: f64,
+    q_full: Option<f64>,
+    wh_full: f64,
+    open: Option<Open>,
+    levels: Vec<Level>,
+}
+
+impl Characterizer {
+    pub fn new(settings: Settings) -> Characterizer {
+        Characterizer {
+            settings,
+            prev: None,
+            seg: None,
+            q: 0.0,
+            wh: 0.0,
+            q_full: None,
+            wh_full: 0.0,
+            open: None,
+            levels: Vec::new(),
+        }
+    }
+
+    fn class(&self, i: f64) -> Seg {
+        if i > self.settings.rest_current_a {
+            Seg::Chg
+        } else if i < -self.settings.rest_current_a {
+            Seg::Dis
+        } else {
+            Seg::Rest
+        }
+    }
+
+    /// One sample: time s, volts, amps (positive into the pack), °C.
+    pub fn push(&mut self, t: f64, v: f64, i: f64, temp: Option<f64>) {
+        if !(t.is_finite() && v.is_finite() && i.is_finite()) {
+            return;
+        }
+        if let Some(p) = self.prev {
+            // (Two samples at one time stamp are the two sides of an
+            // edge: both count.)
+            if t < p.t {
+                return;
+            }
+            let dt = t - p.t;
+            self.q += 0.5 * (p.i + i) * dt / 3600.0;
+            self.wh += 0.5 * (p.i * p.v + i * v) * dt / 3600.0;
+        }
+        let s = S {
+            t,
+            v,
+            i,
+            temp,
+            q: self.q,
+            wh: self.wh,
+        };
+        let class = self.class(i);
+        let changed = self.seg.is_none_or(|(c, _)| c != class);
+        if changed {
+            self.on_edge(class);
+            self.seg = Some((class, self.prev.map_or(t, |p| p.t)));
+        }
+        if let Some((Seg::Dis, start)) = self.seg {
+            // A discharge this long is no pulse: the open level was a
+            // capacity or partial discharge.
+            if t - start > PULSE_MAX_S {
+                if let Some(o) = &self.open {
+                    if o.phase == Phase::Discharge {
+                        self.open = None;
+                    }
+                }
+            }
+        }
+        self.keep(&s, changed);
+        self.prev = Some(s);
+    }
+
+    /// A change of segment, seen at its first sample `s`.
+    fn on_edge(&mut self, class: Seg) {
+        let Some(prev) = self.prev else { return };
+        let (old, start) = self.seg.unwrap_or((Seg::Rest, prev.t));
+        // The sample before an edge is always kept.
+        if let Some(o) = self.open.as_mut() {
+            if o.raw.last().is_none_or(|k| k.t < prev.t) {
+                let role = match (o.phase, old) {
+                    (Phase::After, Seg::Rest) => Role::Relaxation,
+                    (ph, _) => role_of(ph),
+                };
+                push_point(o, &prev, role);
+            }
+        }
+        // A long charge is a full charge (or a recharge): the levels end,
+        // and the state of charge counts from its end.
+        if old == Seg::Chg && prev.t - start > PULSE_MAX_S {
+            self.close();
+            self.q_full = Some(prev.q);
+            self.wh_full = prev.wh;
+        }
+        if old == Seg::Rest && class == Seg::Dis && prev.t - start >= LEVEL_REST_MIN_S {
+            self.close();
+            self.open = Some(Open {
+                pre: prev,
+                rest_s: prev.t - start,
+                q_full: self.q_full,
+                wh_full: self.wh_full,
+                phase: Phase::Discharge,
+                dis_end: None,
+                chg_before: None,
+                chg_end: None,
+                points: Vec::new(),
+                raw: Vec::new(),
+                last_kept: prev.t,
+                edge_t: prev.t,
+            });
+            let o = self.open.as_mut().expect("just opened");
+            push_point(o, &prev, Role::Pulse);
+            return;
+        }
+        let Some(o) = self.open.as_mut() else { return };
+        o.edge_t = prev.t;
+        let last = o.points.len() - 1;
+        o.phase = match (o.phase, class) {
+            (Phase::Discharge, Seg::Rest) => {
+                o.dis_end = Some(last);
+                Phase::Between
+            }
+            (Phase::Discharge, Seg::Chg) => {
+                o.dis_end = Some(last);
+                o.chg_before = Some(last);
+                Phase::Charge
+            }
+            (Phase::Between, Seg::Chg) => {
+                o.chg_before = Some(last);
+                Phase::Charge
+            }
+            (Phase::Charge, _) => {
+                o.chg_end = Some(last);
+                Phase::After
+            }
+            (Phase::Between, Seg::Dis) => Phase::After,
+            (Phase::After, Seg::Dis | Seg::Chg) => {
+                // Only the last relaxation counts: earlier ones drive.
+                for p in &mut o.points {
+                    if p.role == Role::Relaxation {
+                        p.role = Role::Drive;
+                    }
+                }
+                Phase::After
+            }
+            (ph, _) => ph,
+        };
+    }
+
+    fn keep(&mut self, s: &S, edge: bool) {
+        let seg = self.seg.map(|x| x.0);
+        let Some(o) = self.open.as_mut() else { return };
+        if o.phase == Phase::Between && s.t - o.edge_t > PROFILE_REST_MAX_S {
+            o.phase = Phase::After;
+        }
+        let gap = (s.t - o.edge_t) / KEEP_PER_EDGE;
+        if !edge && s.t - o.last_kept < gap {
+            return;
+        }
+        let role = match (o.phase, seg) {
+            (Phase::After, Some(Seg::Rest)) => Role::Relaxation,
+            (ph, _) => role_of(ph),
+        };
+        push_point(o, s, role);
+    }
+
+    /// Close the open level: its figures and fits.
+    fn close(&mut self) {
+        let Some(o) = self.open.take() else { return };
+        if let Some(level) = level_of(&self.settings, o) {
+            self.levels.push(level);
+        }
+    }
+
+    /// The levels, with the state of charge counted against `capacity`
+    /// (the run's measured capacity, or the rated one), and the available
+    /// energy where power targets are given (W, discharge and charge).
+    pub fn finish(mut self, basis: SocBasis, targets: Option<(f64, f64)>) -> Characterization {
+        self.close();
+        for l in &mut self.levels {
+            let out = l.ah_from_full.unwrap_or(l.ah_from_start);
+            l.soc_pct = 100.0 * (1.0 - out / basis.capacity_ah.max(1e-12));
+            if l.ah_from_full.is_none() {
+                l.flags.push(
+                    "no full charge before this level in the log: counted from the log's start, taken as full".into(),
+                );
+            }
+        }
+        let available_energy = targets.and_then(|t| available_energy(&self.levels, t, &basis));
+        Characterization {
+            settings: self.settings,
+            basis,
+            levels: self.levels,
+            available_energy,
+        }
+    }
+}
+
+fn role_of(ph: Phase) -> Role {
+    match ph {
+        Phase::After => Role::Drive,
+        _ => Role::Pulse,
+    }
+}
+
+fn push_point(o: &mut Open, s: &S, role: Role) {
+    o.points.push(Point {
+        t_s: s.t,
+        voltage_v: s.v,
+        current_a: s.i,
+        role,
+        ocv_v: o.pre.v,
+        q_ah: s.q - o.pre.q,
+    });
+    o.raw.push(*s);
+    o.last_kept = s.t;
+}
+
+/// ΔV/ΔI from `before` to a sample, mΩ.
+fn dvdi(before: &S, s: &S) -> Option<f64> {
+    let di = s.i - before.i;
+    (di.abs() > 1e-9).then(|| 1000.0 * (s.v - before.v) / di)
+}
+
+/// The pulse from `raw[b]` (the sample before its edge) to `raw[e]`.
+fn pulse_figure(raw: &[S], b: usize, e: usize) -> Option<PulseFigure> {
+    let (before, end) = (&raw[b], &raw[e]);
+    if e <= b {
+        return None;
+    }
+    let seg = &raw[b + 1..=e];
+    let dur = end.t - before.t;
+    let mean_i = seg.iter().map(|s| s.i).sum::<f64>() / seg.len() as f64;
+    let mut at = Vec::new();
+    for d in DELAYS_S {
+        let target = before.t + d;
+        if target > end.t {
+            continue;
+        }
+        // A sample at the delay (5 % late at most), or two around it no
+        // further apart than half the delay.
+        let k = seg.partition_point(|s| s.t < target - 1e-9);
+        let v = match (k.checked_sub(1).map(|j| &seg[j]), seg.get(k)) {
+            (_, Some(s)) if s.t - target <= 0.05 * d => dvdi(before, s),
+            (Some(a), Some(c)) if c.t - a.t <= 0.5 * d && a.t > before.t => {
+                let f = (target - a.t) / (c.t - a.t);
+                let s = S {
+                    t: target,
+                    v: a.v + f * (c.v - a.v),
+                    i: a.i + f * (c.i - a.i),
+                    ..*a
+                };
+                dvdi(before, &s)
+            }
+            _ => None,
+        };
+        if let Some(r) = v {
+            at.push((d, r));
+        }
+    }
+    Some(PulseFigure {
+        current_a: mean_i,
+        duration_s: dur,
+        voltage_before_v: before.v,
+        resistance_mohm: dvdi(before, end)?,
+        at_delays: at,
+        first_sample_s: seg[0].t - before.t,
+    })
+}
+
+fn level_of(st: &Settings, o: Open) -> Option<Level> {
+    let dis_end = o.dis_end?;
+    let discharge = pulse_figure(&o.raw, 0, dis_end)?;
+    let charge = match (o.chg_before, o.chg_end) {
+        (Some(b), Some(e)) => pulse_figure(&o.raw, b, e),
+        _ => None,
+    };
+    let mut flags = Vec::new();
+    let charge_reduced = charge
+        .as_ref()
+        .is_some_and(|c| c.current_a < 0.97 * 0.75 * discharge.current_a.abs());
+    if charge_reduced {
+        flags.push(
+            "the charge pulse was under 0.75 of the discharge current (reduced to hold the maximum voltage)".into(),
+        );
+    }
+    let has_relaxation = o.points.iter().any(|p| p.role == Role::Relaxation);
+    let (ecm1, ecm2) = if has_relaxation {
+        (ecm::fit(&o.points, 1), ecm::fit(&o.points, 2))
+    } else {
+        flags.push("no rest after the level's partial discharge: no circuit fitted".into());
+        (None, None)
+    };
+    let tau1 = ecm2
+        .as_ref()
+        .or(ecm1.as_ref())
+        .and_then(|f| f.pairs.first())
+        .map(|p| p.tau_s);
+    let r0_separable = tau1.is_some_and(|t| discharge.first_sample_s <= R0_SEPARABLE_FRACTION * t);
+    if tau1.is_some() && !r0_separable {
+        flags.push(format!(
+            "R0 not told apart from R1: the first sample after the edge came {:.2} s after it, more than {R0_SEPARABLE_FRACTION} of τ1",
+            discharge.first_sample_s
+        ));
+    }
+    let r_dis = discharge.resistance_mohm / 1000.0;
+    let power_discharge_w = (r_dis > 0.0)
+        .then(|| st.voltage_min_v * (discharge.voltage_before_v - st.voltage_min_v) / r_dis);
+    let power_charge_w = charge.as_ref().and_then(|c| {
+        let r = c.resistance_mohm / 1000.0;
+        (r > 0.0).then(|| st.voltage_max_v * (st.voltage_max_v - c.voltage_before_v) / r)
+    });
+    Some(Level {
+        t_s: o.pre.t,
+        ah_from_full: o.q_full.map(|q| q - o.pre.q),
+        ah_from_start: -o.pre.q,
+        wh_from_full: o.wh_full - o.pre.wh,
+        soc_pct: f64::NAN,
+        ocv_v: o.pre.v,
+        rest_s: o.rest_s,
+        temperature_c: o.pre.temp,
+        discharge,
+        charge,
+        charge_reduced,
+        power_discharge_w,
+        power_charge_w,
+        ecm1,
+        ecm2,
+        r0_separable,
+        flags,
+    })
+}
+
+/// (depth of discharge %, discharge power W, charge power W, energy Wh).
+type PowerPoint = (f64, f64, f64, f64);
+
+/// The depth-of-discharge range where both power targets are met, by
+/// linear interpolation between levels, and the energy the pack gave
+/// over it (from the levels' energy counts): the method's available
+/// energy.
+fn available_energy(
+    levels: &[Level],
+    targets: (f64, f64),
+    basis: &SocBasis,
+) -> Option<AvailableEnergy> {
+    let mut pts: Vec<PowerPoint> = levels
+        .iter()
+        .filter_map(|l| {
+            Some((
+                100.0 - l.soc_pct,
+                l.power_discharge_w?,
+                l.power_charge_w?,
+                l.wh_from_full,
+            ))
+        })
+        .collect();
+    pts.sort_by(|a, b| a.0.total_cmp(&b.0));
+    if pts.len() < 2 {
+        return None;
+    }
+    // Discharge power falls with depth: the deepest depth where it is met.
+    // Charge power rises with depth: the shallowest where it is met.
+    let cross = |f: &dyn Fn(&PowerPoint) -> f64, target: f64| -> Vec<f64> {
+        let mut out = Vec::new();
+        for w in pts.windows(2) {
+            let (a, b) = (f(&w[0]) - target, f(&w[1]) - target);
+            if a == 0.0 {
+                out.push(w[0].0);
+            }
+            if a * b < 0.0 {
+                out.push(w[0].0 + (w[1].0 - w[0].0) * a / (a - b));
+            }
+        }
+        out
+    };
+    let dis_ok_to = if pts.last().is_some_and(|p| p.1 >= targets.0) {
+        pts.last()?.0
+    } else {
+        cross(&|p| p.1, targets.0).into_iter().reduce(f64::max)?
+    };
+    let chg_ok_from = if pts[0].2 >= targets.1 {
+        pts[0].0
+    } else {
+        cross(&|p| p.2, targets.1).into_iter().reduce(f64::min)?
+    };
+    if chg_ok_from >= dis_ok_to {
+        return Some(AvailableEnergy {
+            target_discharge_w: targets.0,
+            target_charge_w: targets.1,
+            dod_from_pct: chg_ok_from,
+            dod_to_pct: chg_ok_from,
+            energy_wh: 0.0,
+        });
+    }
+    let wh_at = |dod: f64| -> f64 {
+        let k = pts.partition_point(|p| p.0 < dod).clamp(1, pts.len() - 1);
+        let (a, b) = (&pts[k - 1], &pts[k]);
+        let f = if b.0 > a.0 {
+            (dod - a.0) / (b.0 - a.0)
+        } else {
+            0.0
+        };
+        a.3 + f * (b.3 - a.3)
+    };
+    let _ = basis;
+    Some(AvailableEnergy {
+        target_discharge_w: targets.0,
+        target_charge_w: targets.1,
+        dod_from_pct: chg_ok_from,
+        dod_to_pct: dis_ok_to,
+        energy_wh: (wh_at(dis_ok_to) - wh_at(chg_ok_from)).abs(),
+    })
+}
