@@ -9,6 +9,7 @@ mod analysis_reference;
 mod analyze;
 #[cfg(unix)]
 mod browser;
+mod characterize;
 mod cli;
 mod console;
 #[cfg(unix)]
