@@ -249,3 +249,108 @@ fn a_log_without_levels_is_refused() {
     assert_eq!(out.status.code(), Some(2), "{}", text(&out.stderr));
     assert!(text(&out.stderr).contains("no pulse-power levels"));
 }
+
+/// Outside check: a log from PyBaMM's Thevenin model (parameters of our
+/// choosing, `scripts/pybamm_hppc_fixture.py`, pybamm 26.10.1.1) read as
+/// a foreign log. The first-order circuit within 2 % of the model's R0,
+/// R1 and C1; the method's discharge and charge resistance within 1 % of
+/// the same formulas applied to the model's own output (numpy, in the
+/// generator); the OCV within 0.1 mV of PyBaMM's at the same row; and the
+/// fit cross-checked by scipy.optimize.least_squares on every row of the
+/// same windows (`scripts/ecm_fit_reference.py`: within 0.5 %). The
+/// scipy check needs python3 with numpy and scipy (CI installs them):
+/// without them this test fails, it does not pass unchecked.
+#[test]
+fn pybamm_thevenin_log_gives_the_models_own_circuit() {
+    let fixture = "tests/fixtures/pybamm_thevenin_hppc.csv";
+    let expected: serde_json::Value = serde_json::from_str(
+        &std::fs::read_to_string("tests/fixtures/pybamm_thevenin_hppc_expected.json").unwrap(),
+    )
+    .unwrap();
+    let tmp = tempfile::tempdir().unwrap();
+    let out_dir = tmp.path().join("t");
+    let out = packbench(&[
+        "characterize",
+        fixture,
+        "--current-sign",
+        "discharge-positive",
+        "--chemistry",
+        "li-ion",
+        "--series",
+        "1",
+        "--rated",
+        "5Ah",
+        "--out",
+        out_dir.to_str().unwrap(),
+    ]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let table = |name: &str| -> Vec<std::collections::HashMap<String, String>> {
+        let mut r = csv::Reader::from_path(out_dir.join(name)).unwrap();
+        let h = r.headers().unwrap().clone();
+        let mut rows: Vec<_> = r
+            .records()
+            .map(|x| {
+                let x = x.unwrap();
+                h.iter()
+                    .zip(x.iter())
+                    .map(|(a, b)| (a.to_string(), b.to_string()))
+                    .collect::<std::collections::HashMap<_, _>>()
+            })
+            .collect();
+        // From full down, as the generator lists its levels.
+        rows.reverse();
+        rows
+    };
+    let f = |m: &std::collections::HashMap<String, String>, k: &str| -> f64 {
+        m[k].parse().unwrap_or_else(|_| panic!("{k}: '{}'", m[k]))
+    };
+    let ecm = table("ecm1_soc.csv");
+    let pulse = table("pulse_soc.csv");
+    let ocv = table("ocv_soc.csv");
+    let levels = expected["levels"].as_array().unwrap();
+    assert_eq!(ecm.len(), levels.len());
+    for (k, ((e, p), (o, x))) in ecm
+        .iter()
+        .zip(&pulse)
+        .zip(ocv.iter().zip(levels))
+        .enumerate()
+    {
+        for (col, key) in [("r0_ohm", "r0_ohm"), ("r1_ohm", "r1_ohm"), ("c1_f", "c1_f")] {
+            let want = expected[key].as_f64().unwrap();
+            let got = f(e, col);
+            assert!(
+                (got / want - 1.0).abs() <= 0.02,
+                "level {}: {col} {got} against the model's {want}",
+                k + 1
+            );
+        }
+        for (col, key) in [
+            ("r_discharge_ohm", "r_discharge_ohm"),
+            ("r_charge_ohm", "r_charge_ohm"),
+        ] {
+            let want = x[key].as_f64().unwrap();
+            let got = f(p, col);
+            assert!(
+                (got / want - 1.0).abs() <= 0.01,
+                "level {}: {col} {got} against the formula on the model's output {want}",
+                k + 1
+            );
+        }
+        let dv = f(o, "ocv_v") - x["ocv_v"].as_f64().unwrap();
+        assert!(dv.abs() <= 1e-4, "level {}: OCV off by {dv} V", k + 1);
+    }
+    let py = std::process::Command::new("python3")
+        .args([
+            "scripts/ecm_fit_reference.py",
+            fixture,
+            out_dir.join("ecm1_soc.csv").to_str().unwrap(),
+        ])
+        .output()
+        .expect("python3 (with numpy and scipy) is needed for the scipy cross-check");
+    assert!(
+        py.status.success(),
+        "scipy cross-check failed (python3 with numpy 2.4.6 and scipy 1.17.1 is needed: pip install -r scripts/requirements-readback.txt)\n{}{}",
+        text(&py.stdout),
+        text(&py.stderr)
+    );
+}

@@ -46,6 +46,10 @@ pub const DELAYS_S: [f64; 3] = [0.1, 1.0, 2.0];
 /// itself to that sample): our rule.
 pub const R0_SEPARABLE_FRACTION: f64 = 0.1;
 
+/// A second-order fit whose pair carries under this fraction of the two
+/// pairs' resistance does not resolve two pairs (our rule).
+pub const UNRESOLVED_PAIR_FRACTION: f64 = 0.02;
+
 /// Settings: the pack's voltage limits for the power capability, the
 /// current below which the pack is at rest, the pack's size.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
@@ -485,6 +489,17 @@ fn level_of(st: &Settings, o: Open) -> Option<Level> {
         flags.push("no rest after the level's partial discharge: no circuit fitted".into());
         (None, None)
     };
+    if let Some(f) = &ecm2 {
+        let total: f64 = f.pairs.iter().map(|p| p.r_ohm.abs()).sum();
+        if f.pairs
+            .iter()
+            .any(|p| p.r_ohm < UNRESOLVED_PAIR_FRACTION * total || p.u_r_ohm > 0.5 * p.r_ohm.abs())
+        {
+            flags.push(
+                "the second-order fit does not resolve two RC pairs (one carries almost nothing or is not determined): use the first-order table".into(),
+            );
+        }
+    }
     let tau1 = ecm2
         .as_ref()
         .or(ecm1.as_ref())

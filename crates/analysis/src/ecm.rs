@@ -227,10 +227,13 @@ impl CostFunction for Cost<'_> {
     type Param = Vec<f64>;
     type Output = f64;
     fn cost(&self, p: &Self::Param) -> Result<f64, argmin::core::Error> {
+        // The logarithm of the residual: the search's tolerance is then
+        // relative, whatever the data's scale or noise (a noise-free model
+        // log leaves residuals of nanovolts).
         Ok(self
             .taus(p)
             .and_then(|t| solve_linear(self.points, &t))
-            .map_or(f64::MAX, |(_, ssr)| ssr))
+            .map_or(f64::MAX, |(_, ssr)| (ssr + 1e-300).ln()))
     }
 }
 
@@ -266,7 +269,7 @@ pub fn fit(points: &[Point], order: usize) -> Option<EcmFit> {
         }
         let solver = NelderMead::new(simplex).with_sd_tolerance(1e-10).ok()?;
         let res = Executor::new(Cost { points, order }, solver)
-            .configure(|st| st.max_iters(400))
+            .configure(|st| st.max_iters(1000))
             .run()
             .ok()?;
         let st = res.state();
@@ -279,9 +282,10 @@ pub fn fit(points: &[Point], order: usize) -> Option<EcmFit> {
         .filter(|(c, _)| c.is_finite() && *c < f64::MAX)
         .min_by(|a, b| a.0.total_cmp(&b.0))?
         .clone();
+    // (Costs are log residuals: within 1 % of the best residual.)
     let agreeing = results
         .iter()
-        .filter(|(c, _)| *c <= best_cost * 1.01 + 1e-18)
+        .filter(|(c, _)| *c <= best_cost + 0.01f64.ln_1p())
         .count();
     let taus = cost.taus(&best)?;
     let (beta, _) = solve_linear(points, &taus)?;

@@ -383,7 +383,13 @@ impl<'a> Analyzer<'a> {
     /// Count a row left out because it repeats the time of the row before
     /// with other values (a foreign log whose steps are found from the
     /// current: such a row would start a step of no duration).
-    pub fn skip_repeated_time(&mut self) {
+    ///
+    /// The pulse-power reading still takes it: two rows at one time are the
+    /// two sides of a current edge, and the equivalent circuit needs the
+    /// moment the current changed.
+    pub fn skip_repeated_time(&mut self, s: &Sample) {
+        self.characterizer
+            .push(s.t_s, s.voltage_v, s.current_a, s.temperature_c);
         self.quality.rows += 1;
         self.quality.repeated_timestamps += 1;
         self.quality.repeated_dropped += 1;

@@ -410,7 +410,14 @@ pub fn summarize_foreign(
         // A row at the time of the row before with other values: counted
         // and left out, before it can start a step of no duration.
         if r.step.is_none() && prev.is_some_and(|p| p.t_s == r.t_s && p != r) {
-            an.skip_repeated_time();
+            an.skip_repeated_time(&Sample {
+                t_s: r.t_s,
+                step: 0,
+                cycle: 0,
+                voltage_v: r.voltage_v,
+                current_a: r.current_a,
+                temperature_c: r.temperature_c,
+            });
             return;
         }
         prev = Some(r);
