@@ -37,8 +37,13 @@ pub const PULSE_MAX_S: f64 = 180.0;
 /// A rest inside the profile longer than this ends the profile, s.
 pub const PROFILE_REST_MAX_S: f64 = 300.0;
 /// Thinning: the kept samples' spacing is at least the time since the
-/// last current edge over this.
-pub const KEEP_PER_EDGE: f64 = 100.0;
+/// last current edge over this, and at least [`KEEP_SPACING_MIN_S`]; so a
+/// segment of length T keeps about 50·(1 + ln(T / 5 s)) samples whatever
+/// its sampling (our choice: a time constant is resolved by a few dozen
+/// samples a decade).
+pub const KEEP_PER_EDGE: f64 = 50.0;
+/// The finest spacing kept, s (the fastest sampling the method asks).
+pub const KEEP_SPACING_MIN_S: f64 = 0.1;
 /// The delays after an edge the method reads, s.
 pub const DELAYS_S: [f64; 3] = [0.1, 1.0, 2.0];
 /// R0 is told apart from R1 when the first sample after the discharge
@@ -198,6 +203,8 @@ pub struct Characterizer {
     wh_full: f64,
     open: Option<Open>,
     levels: Vec<Level>,
+    /// The most samples a level's window held.
+    peak_window: usize,
 }
 
 impl Characterizer {
@@ -212,6 +219,7 @@ impl Characterizer {
             wh_full: 0.0,
             open: None,
             levels: Vec::new(),
+            peak_window: 0,
         }
     }
 
@@ -351,7 +359,7 @@ impl Characterizer {
         if o.phase == Phase::Between && s.t - o.edge_t > PROFILE_REST_MAX_S {
             o.phase = Phase::After;
         }
-        let gap = (s.t - o.edge_t) / KEEP_PER_EDGE;
+        let gap = ((s.t - o.edge_t) / KEEP_PER_EDGE).max(KEEP_SPACING_MIN_S - 1e-9);
         if !edge && s.t - o.last_kept < gap {
             return;
         }
@@ -365,9 +373,17 @@ impl Characterizer {
     /// Close the open level: its figures and fits.
     fn close(&mut self) {
         let Some(o) = self.open.take() else { return };
+        self.peak_window = self.peak_window.max(o.points.len());
         if let Some(level) = level_of(&self.settings, o) {
             self.levels.push(level);
         }
+    }
+
+    /// The most samples one level's window has held so far (the reading's
+    /// memory: bounded by the thinning, not by the log's length).
+    pub fn peak_window(&self) -> usize {
+        self.peak_window
+            .max(self.open.as_ref().map_or(0, |o| o.points.len()))
     }
 
     /// The levels, with the state of charge counted against `capacity`
