@@ -354,3 +354,38 @@ fn pybamm_thevenin_log_gives_the_models_own_circuit() {
         text(&py.stderr)
     );
 }
+
+/// `fade` shows the discharge-pulse resistance at 50 % state of charge
+/// test by test: the level figures interpolated linearly to 50 % (worked
+/// here by hand from the two levels around it).
+#[test]
+fn fade_shows_the_pulse_resistance_at_half_charge() {
+    let (_tmp, dir) = the_run();
+    let s = summary(dir);
+    let c = characterization(&s);
+    let mut l: Vec<_> = c.levels.iter().collect();
+    l.sort_by(|a, b| a.soc_pct.total_cmp(&b.soc_pct));
+    let k = l.iter().position(|x| x.soc_pct > 50.0).unwrap();
+    let (a, b) = (l[k - 1], l[k]);
+    let want = a.discharge.resistance_mohm
+        + (b.discharge.resistance_mohm - a.discharge.resistance_mohm) * (50.0 - a.soc_pct)
+            / (b.soc_pct - a.soc_pct);
+    let results = dir.parent().unwrap().parent().unwrap();
+    let out = packbench(&[
+        "fade",
+        "PP-01",
+        "--results",
+        results.to_str().unwrap(),
+        "--html",
+        results.join("fade.html").to_str().unwrap(),
+    ]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let t = text(&out.stdout);
+    assert!(
+        t.contains("Pulse resistance at 50 % state of charge"),
+        "{t}"
+    );
+    assert!(t.contains(&format!("{want:>8.2} mΩ")), "{want:.2} in\n{t}");
+    let html = std::fs::read_to_string(results.join("fade.html")).unwrap();
+    assert!(html.contains("Pulse resistance at 50 % state of charge against date"));
+}

@@ -965,6 +965,7 @@ pub fn histories(store: &mut Store) -> Result<Vec<PackHistory>, CentralError> {
             grade: r.get(13),
             discharged_ah: r.get(14),
             groups: None,
+            pulse_r50_mohm: None,
         };
         runs.entry(pack.clone())
             .or_default()

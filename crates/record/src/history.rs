@@ -150,6 +150,7 @@ pub fn parse_history_csv(
             source: format!("{} line {line_no}", path.display()),
             run_dir: None,
             groups: None,
+            pulse_r50_mohm: None,
             flags: Vec::new(),
         });
     }
@@ -188,6 +189,11 @@ pub struct RunFacts {
     /// by the results index: read from the summaries).
     #[serde(default)]
     pub groups: Option<analysis::fade::history::GroupSpread>,
+    /// A pulse-power characterization's discharge-pulse resistance at
+    /// 50 % state of charge, mΩ (not kept by the results index: read
+    /// from the summaries).
+    #[serde(default)]
+    pub pulse_r50_mohm: Option<f64>,
 }
 
 /// The capacity step's figures a history needs (the verdict's).
@@ -264,6 +270,10 @@ impl RunFacts {
                 .groups
                 .as_ref()
                 .map(analysis::fade::history::GroupSpread::of),
+            pulse_r50_mohm: s
+                .characterization
+                .as_ref()
+                .and_then(|c| c.discharge_resistance_at(50.0)),
         }
     }
 }
@@ -397,6 +407,7 @@ pub fn assemble(
                     source: format!("run {}", s.run_id),
                     run_dir: Some(dir.clone()),
                     groups: s.groups.clone(),
+                    pulse_r50_mohm: s.pulse_r50_mohm,
                     flags: Vec::new(),
                 });
             }

@@ -570,6 +570,7 @@ impl Index {
                             resistance_growth_pct: r.get(18)?,
                             ieee450_percent: r.get(19)?,
                             groups: None,
+                            pulse_r50_mohm: None,
                         },
                     ))
                 })

@@ -238,8 +238,143 @@ pub fn run_report(s: &Summary, charts: &ChartData) -> String {
     }
     differential_charts(&mut b, s, charts);
     ocv_table(&mut b, s);
+    if let Some(c) = &s.characterization {
+        characterization_section(&mut b, c);
+    }
     step_table(&mut b, s);
     page(&format!("packbench — {} — {}", s.pack_id, s.run_id), &b)
+}
+
+/// The pulse-power levels: the curves (OCV, resistances, power
+/// capability against state of charge) and the table a BMS engineer
+/// reads them from.
+fn characterization_section(b: &mut String, c: &analysis::characterize::Characterization) {
+    let mut levels: Vec<_> = c.levels.iter().collect();
+    levels.sort_by(|a, x| a.soc_pct.total_cmp(&x.soc_pct));
+    let _ = write!(
+        b,
+        "<h2>Pulse-power characterization</h2><p class=\"sub\">hybrid pulse power method (US DOE/INL battery test manuals): state of charge on {:.3} Ah, {}; power capability at {:.2} V and {:.2} V; equivalent circuits fitted to each pulse and its relaxation. Tables: <code>packbench characterize</code>.</p>",
+        c.basis.capacity_ah,
+        escape(&c.basis.source),
+        c.settings.voltage_min_v,
+        c.settings.voltage_max_v
+    );
+    let pts = |f: &dyn Fn(&analysis::characterize::Level) -> Option<f64>| -> Vec<(f64, f64)> {
+        levels
+            .iter()
+            .filter_map(|l| f(l).map(|y| (l.soc_pct, y)))
+            .collect()
+    };
+    let mut ocv = Chart::new("Open-circuit voltage", "state of charge (%)", "voltage (V)");
+    ocv.series.push(Series {
+        name: "rest end before each pulse".into(),
+        points: pts(&|l| Some(l.ocv_v)),
+        color: svg::BLUE_,
+        mark: Mark::LineAndDots,
+    });
+    b.push_str(&svg::render(&ocv));
+    let mut r = Chart::new("Resistance", "state of charge (%)", "resistance (mΩ)");
+    for (name, color, f) in [
+        (
+            "discharge pulse (end)",
+            svg::BLUE_,
+            &(|l: &analysis::characterize::Level| Some(l.discharge.resistance_mohm))
+                as &dyn Fn(&analysis::characterize::Level) -> Option<f64>,
+        ),
+        (
+            "charge pulse (end)",
+            svg::ORANGE_,
+            &|l: &analysis::characterize::Level| l.charge.as_ref().map(|p| p.resistance_mohm),
+        ),
+        (
+            "R0 (circuit)",
+            svg::GREEN_,
+            &|l: &analysis::characterize::Level| {
+                l.ecm2
+                    .as_ref()
+                    .filter(|_| l.r0_separable)
+                    .map(|f| f.r0_ohm * 1000.0)
+            },
+        ),
+        (
+            "R1 (circuit)",
+            svg::PURPLE_,
+            &|l: &analysis::characterize::Level| {
+                l.ecm2
+                    .as_ref()
+                    .and_then(|f| f.pairs.first())
+                    .map(|p| p.r_ohm * 1000.0)
+            },
+        ),
+        (
+            "R2 (circuit)",
+            svg::GREY_,
+            &|l: &analysis::characterize::Level| {
+                l.ecm2
+                    .as_ref()
+                    .and_then(|f| f.pairs.get(1))
+                    .map(|p| p.r_ohm * 1000.0)
+            },
+        ),
+    ] {
+        let p = pts(f);
+        if !p.is_empty() {
+            r.series.push(Series {
+                name: name.into(),
+                points: p,
+                color,
+                mark: Mark::LineAndDots,
+            });
+        }
+    }
+    b.push_str(&svg::render(&r));
+    let mut pw = Chart::new("Pulse power capability", "state of charge (%)", "power (W)");
+    pw.series.push(Series {
+        name: "discharge".into(),
+        points: pts(&|l| l.power_discharge_w),
+        color: svg::BLUE_,
+        mark: Mark::LineAndDots,
+    });
+    pw.series.push(Series {
+        name: "charge".into(),
+        points: pts(&|l| l.power_charge_w),
+        color: svg::ORANGE_,
+        mark: Mark::LineAndDots,
+    });
+    b.push_str(&svg::render(&pw));
+    let _ = write!(
+        b,
+        "<table><tr><th>SoC (%)</th><th>OCV (V)</th><th>R dis (mΩ)</th><th>R chg (mΩ)</th><th>P dis (W)</th><th>P chg (W)</th><th>R0 (mΩ)</th><th>R1 (mΩ)</th><th>τ1 (s)</th><th>R2 (mΩ)</th><th>τ2 (s)</th><th>fit rms (mV)</th><th class=\"l\">notes</th></tr>"
+    );
+    for l in levels.iter().rev() {
+        let e = l.ecm2.as_ref();
+        let pair = |i: usize| e.and_then(|x| x.pairs.get(i));
+        let _ = write!(
+            b,
+            "<tr><td>{:.1}</td><td>{:.3}</td><td>{:.2}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td class=\"l wrap\">{}</td></tr>",
+            l.soc_pct,
+            l.ocv_v,
+            l.discharge.resistance_mohm,
+            f(l.charge.as_ref().map(|p| p.resistance_mohm), 2),
+            f(l.power_discharge_w, 0),
+            f(l.power_charge_w, 0),
+            f(e.filter(|_| l.r0_separable).map(|x| x.r0_ohm * 1000.0), 2),
+            f(pair(0).map(|p| p.r_ohm * 1000.0), 2),
+            f(pair(0).map(|p| p.tau_s), 1),
+            f(pair(1).map(|p| p.r_ohm * 1000.0), 2),
+            f(pair(1).map(|p| p.tau_s), 0),
+            f(e.map(|x| x.rms_v * 1000.0), 2),
+            escape(&l.flags.join("; "))
+        );
+    }
+    let _ = write!(b, "</table>");
+    if let Some(a) = &c.available_energy {
+        let _ = write!(
+            b,
+            "<p>Available energy at {:.0} W discharge and {:.0} W charge: <b>{:.1} Wh</b>, between {:.1} % and {:.1} % depth of discharge.</p>",
+            a.target_discharge_w, a.target_charge_w, a.energy_wh, a.dod_from_pct, a.dod_to_pct
+        );
+    }
 }
 
 /// The open-circuit-voltage table (state of charge, the charge and
@@ -876,6 +1011,7 @@ pub fn pack_report(
     soh_by_cycles_chart(&mut b, h, fa);
     soh_by_date_chart(&mut b, h, fa);
     resistance_charts(&mut b, h, fa);
+    pulse_r50_chart(&mut b, h);
     group_spread_chart(&mut b, h);
     overlay_chart(&mut b, curves_by_run);
     pack_tables(&mut b, h, fa);
@@ -995,6 +1131,32 @@ fn soh_by_date_chart(b: &mut String, h: &PackHistory, fa: &FadeAnalysis) {
 }
 
 /// Resistance against cycles and against date.
+/// The pulse-power characterizations' discharge resistance at 50 %
+/// state of charge against the test date.
+fn pulse_r50_chart(b: &mut String, h: &PackHistory) {
+    let pts: Vec<(f64, f64)> = h
+        .points
+        .iter()
+        .filter_map(|p| p.pulse_r50_mohm.map(|r| (day_number(p.date), r)))
+        .collect();
+    if pts.is_empty() {
+        return;
+    }
+    let mut c = Chart::new(
+        "Pulse resistance at 50 % state of charge against date",
+        "test date",
+        "resistance (mΩ)",
+    );
+    c.x_is_date = true;
+    c.series.push(Series {
+        name: "discharge pulse (end), pulse-power characterization".into(),
+        points: pts,
+        color: svg::PURPLE_,
+        mark: Mark::LineAndDots,
+    });
+    b.push_str(&svg::render(&c));
+}
+
 fn resistance_charts(b: &mut String, h: &PackHistory, fa: &FadeAnalysis) {
     let reference = h.reference_resistance();
     for by_date in [false, true] {

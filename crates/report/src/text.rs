@@ -455,6 +455,33 @@ fn resistance_lines(o: &mut String, s: &Summary) {
     }
 }
 
+/// The pulse-power characterizations' discharge resistance at 50 %
+/// state of charge, test by test, and its change over the first.
+fn pulse_r50_text(o: &mut String, h: &analysis::fade::history::PackHistory) {
+    let pts: Vec<_> = h
+        .points
+        .iter()
+        .filter_map(|p| p.pulse_r50_mohm.map(|r| (p, r)))
+        .collect();
+    let Some(&(_, first)) = pts.first() else {
+        return;
+    };
+    let _ = writeln!(
+        o,
+        "  Pulse resistance at 50 % state of charge (discharge pulse, end):"
+    );
+    for (p, r) in &pts {
+        let _ = writeln!(
+            o,
+            "    {}  {:>8.2} mΩ  {:>+6.1} %  ({})",
+            p.date,
+            r,
+            (r / first - 1.0) * 100.0,
+            p.source
+        );
+    }
+}
+
 /// The fade analysis of one pack for a terminal.
 /// The groups' spread test by test, and how much it grew.
 fn group_spread_text(o: &mut String, h: &analysis::fade::history::PackHistory) {
@@ -540,6 +567,7 @@ pub fn fade(
         );
     }
     group_spread_text(&mut o, h);
+    pulse_r50_text(&mut o, h);
     if h.points
         .iter()
         .any(|p| !p.cycles_given && p.cycles.is_finite())

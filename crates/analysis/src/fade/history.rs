@@ -31,6 +31,10 @@ pub struct HistoryPoint {
     pub run_dir: Option<PathBuf>,
     /// A pack read group by group: how far its groups were apart.
     pub groups: Option<GroupSpread>,
+    /// A pulse-power characterization's discharge-pulse resistance at
+    /// 50 % state of charge, mΩ.
+    #[serde(default)]
+    pub pulse_r50_mohm: Option<f64>,
     /// Changes against the pack's history the measurement cannot explain
     /// ([`flag_jumps`]): a flagged point is shown, not fitted or graded on.
     pub flags: Vec<String>,
@@ -149,6 +153,7 @@ mod tests {
 
     fn point(date: &str, soh: f64) -> HistoryPoint {
         HistoryPoint {
+            pulse_r50_mohm: None,
             date: date.parse().unwrap(),
             cycles: f64::NAN,
             cycles_given: false,

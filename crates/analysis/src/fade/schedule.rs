@@ -246,6 +246,7 @@ mod tests {
             points: tests
                 .iter()
                 .map(|(date, ah)| HistoryPoint {
+                    pulse_r50_mohm: None,
                     date: d(date),
                     cycles: 0.0,
                     cycles_given: false,

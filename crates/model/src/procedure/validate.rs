@@ -1190,4 +1190,47 @@ mod tests {
             .to_string();
         assert!(e.contains("unknown step kind 'float'"), "{e}");
     }
+
+    /// "charge > N% of measured": a share of the run's measured capacity,
+    /// only after a step that measures it, and only a percentage of 0–100.
+    #[test]
+    fn a_share_of_the_measured_capacity_needs_a_capacity_step_before_it() {
+        let head = "title = \"t\"\n[envelope]\nvoltage_max = \"4.25V/cell\"\nvoltage_min = \"2.8V/cell\"\ncurrent_max = \"1C\"\ntemperature_max = \"55degC\"\n";
+        let capacity = "[[phase]]\nname = \"c\"\n  [[phase.step]]\n  kind = \"discharge\"\n  current = \"0.2C\"\n  ends = [\"voltage < 3.0V/cell\"]\n  result = \"capacity\"\n";
+        let share = |end: &str| {
+            format!("[[phase]]\nname = \"s\"\n  [[phase.step]]\n  kind = \"discharge\"\n  current = \"0.2C\"\n  ends = [\"{end}\", \"voltage < 3.0V/cell\"]\n")
+        };
+        // After a capacity step: resolved, with the rated share standing in.
+        let text = format!("{head}{capacity}{}", share("charge > 10% of measured"));
+        let plan = plan_from_text(Path::new("t.toml"), &text, &pack()).unwrap();
+        let want = pack().rated_capacity_ah * 0.1;
+        assert!(plan.steps[1].ends.iter().any(|c| matches!(*c,
+            EndCondition::ChargeOfMeasured { fraction, rated_ah }
+                if (fraction - 0.1).abs() < 1e-12 && (rated_ah - want).abs() < 1e-9)));
+        assert_eq!(
+            plan.steps[1].ends[0].to_string(),
+            "charge > 10.0% of measured"
+        );
+        // Before one: refused at the step's line.
+        let text = format!("{head}{}{capacity}", share("charge > 10% of measured"));
+        let e = plan_from_text(Path::new("t.toml"), &text, &pack())
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("t.toml:9:3:"), "{e}");
+        assert!(
+            e.contains("needs an earlier step with result = \"capacity\""),
+            "{e}"
+        );
+        // Not a percentage, or over 100 %.
+        for bad in ["charge > 2Ah of measured", "charge > 150% of measured"] {
+            let text = format!("{head}{capacity}{}", share(bad));
+            let e = plan_from_text(Path::new("t.toml"), &text, &pack())
+                .unwrap_err()
+                .to_string();
+            assert!(
+                e.contains("expected a percentage from 0 to 100"),
+                "{bad}: {e}"
+            );
+        }
+    }
 }
