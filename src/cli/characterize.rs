@@ -4,7 +4,7 @@
 
 use crate::cli::analyze::{analyze, AnalyzeArgs};
 use crate::cli::exit::ExitCode;
-use analysis::characterize::{Characterization, LEVEL_REST_MIN_S, PULSE_MAX_S};
+use analysis::characterize::{LEVEL_REST_MIN_S, PULSE_MAX_S};
 use anyhow::{bail, Context};
 use clap::Args;
 use report::tables;
@@ -78,9 +78,4 @@ pub fn cmd_characterize(a: CharacterizeArgs) -> anyhow::Result<ExitCode> {
     print!("{}", report::text::characterization_text(c));
     println!("tables written to {}", out.display());
     Ok(ExitCode::Ok)
-}
-
-/// (For tests: the characterization a summary holds.)
-pub fn of_summary(s: &record::Summary) -> Option<&Characterization> {
-    s.characterization.as_ref()
 }

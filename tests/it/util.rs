@@ -91,6 +91,7 @@ pub fn shipped() -> Vec<(&'static str, PackSpec)> {
         ),
         ("procedures/dcir-soc-sweep-li-ion.toml", li_ion_14ah()),
         ("procedures/pulse-power-li-ion.toml", li_ion_14ah()),
+        ("procedures/pulse-power-iso-li-ion.toml", li_ion_14ah()),
         ("procedures/screen-li-ion.toml", li_ion_14ah()),
         ("procedures/screen-lfp.toml", spec(Chemistry::Lfp, 12, 15.0)),
         // Read group by group on a station that scans them; on a pack read

@@ -44,8 +44,10 @@ pub const PROFILE_REST_MAX_S: f64 = 300.0;
 pub const KEEP_PER_EDGE: f64 = 50.0;
 /// The finest spacing kept, s (the fastest sampling the method asks).
 pub const KEEP_SPACING_MIN_S: f64 = 0.1;
-/// The delays after an edge the method reads, s.
-pub const DELAYS_S: [f64; 3] = [0.1, 1.0, 2.0];
+/// The delays after an edge the method reads, s (the DOE/INL method
+/// at 0.1, 1, 2 and 10 s; ISO 12405-4 also at 18 s), where the pulse
+/// lasts that long.
+pub const DELAYS_S: [f64; 5] = [0.1, 1.0, 2.0, 10.0, 18.0];
 /// R0 is told apart from R1 when the first sample after the discharge
 /// edge comes within this fraction of τ1 (R1 then adds under a tenth of
 /// itself to that sample): our rule.
@@ -533,6 +535,19 @@ fn level_of(st: &Settings, o: Open) -> Option<Level> {
                 "the second-order fit does not resolve two RC pairs (one carries almost nothing or is not determined): use the first-order table".into(),
             );
         }
+    }
+    // The fit takes the pack as relaxed when the level begins: a rest
+    // shorter than five of the slowest time constants leaves more than
+    // 0.7 % of that pair's voltage, and biases its figures (our rule).
+    let slowest = ecm2
+        .as_ref()
+        .or(ecm1.as_ref())
+        .and_then(|f| f.pairs.iter().map(|p| p.tau_s).reduce(f64::max));
+    if let Some(tau) = slowest.filter(|t| o.rest_s < 5.0 * t) {
+        flags.push(format!(
+            "the rest before the level ({:.0} min) is under five of the slowest time constant ({tau:.0} s): the pack was not relaxed, the circuit's figures are biased",
+            o.rest_s / 60.0
+        ));
     }
     let tau1 = ecm2
         .as_ref()
