@@ -193,6 +193,15 @@ struct Open {
     edge_t: f64,
 }
 
+impl Level {
+    /// The circuit's R0 of the fit of `order`, Ω: only where the sampling
+    /// tells it apart from R1 ([`R0_SEPARABLE_FRACTION`]).
+    pub fn circuit_r0_ohm(&self, order: usize) -> Option<f64> {
+        let f = if order == 1 { &self.ecm1 } else { &self.ecm2 };
+        f.as_ref().filter(|_| self.r0_separable).map(|f| f.r0_ohm)
+    }
+}
+
 impl Characterization {
     /// The method's discharge-pulse resistance at a state of charge, mΩ:
     /// linear between the two levels around it (none outside them).

@@ -289,12 +289,7 @@ fn characterization_section(b: &mut String, c: &analysis::characterize::Characte
         (
             "R0 (circuit)",
             svg::GREEN_,
-            &|l: &analysis::characterize::Level| {
-                l.ecm2
-                    .as_ref()
-                    .filter(|_| l.r0_separable)
-                    .map(|f| f.r0_ohm * 1000.0)
-            },
+            &|l: &analysis::characterize::Level| l.circuit_r0_ohm(2).map(|r| r * 1000.0),
         ),
         (
             "R1 (circuit)",
@@ -342,28 +337,19 @@ fn characterization_section(b: &mut String, c: &analysis::characterize::Characte
         mark: Mark::LineAndDots,
     });
     b.push_str(&svg::render(&pw));
-    let _ = write!(
-        b,
-        "<table><tr><th>SoC (%)</th><th>OCV (V)</th><th>R dis (mΩ)</th><th>R chg (mΩ)</th><th>P dis (W)</th><th>P chg (W)</th><th>R0 (mΩ)</th><th>R1 (mΩ)</th><th>τ1 (s)</th><th>R2 (mΩ)</th><th>τ2 (s)</th><th>fit rms (mV)</th><th class=\"l\">notes</th></tr>"
-    );
-    for l in levels.iter().rev() {
-        let e = l.ecm2.as_ref();
-        let pair = |i: usize| e.and_then(|x| x.pairs.get(i));
+    let _ = write!(b, "<table><tr>");
+    for col in &crate::tables::LEVEL_COLUMNS {
+        let _ = write!(b, "<th>{}</th>", escape(col.heading));
+    }
+    let _ = write!(b, "<th class=\"l\">notes</th></tr>");
+    for (l, cells) in crate::tables::level_rows(c, "–") {
+        let _ = write!(b, "<tr>");
+        for cell in cells {
+            let _ = write!(b, "<td>{}</td>", escape(&cell));
+        }
         let _ = write!(
             b,
-            "<tr><td>{:.1}</td><td>{:.3}</td><td>{:.2}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td class=\"l wrap\">{}</td></tr>",
-            l.soc_pct,
-            l.ocv_v,
-            l.discharge.resistance_mohm,
-            f(l.charge.as_ref().map(|p| p.resistance_mohm), 2),
-            f(l.power_discharge_w, 0),
-            f(l.power_charge_w, 0),
-            f(e.filter(|_| l.r0_separable).map(|x| x.r0_ohm * 1000.0), 2),
-            f(pair(0).map(|p| p.r_ohm * 1000.0), 2),
-            f(pair(0).map(|p| p.tau_s), 1),
-            f(pair(1).map(|p| p.r_ohm * 1000.0), 2),
-            f(pair(1).map(|p| p.tau_s), 0),
-            f(e.map(|x| x.rms_v * 1000.0), 2),
+            "<td class=\"l wrap\">{}</td></tr>",
             escape(&l.flags.join("; "))
         );
     }

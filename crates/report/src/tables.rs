@@ -22,6 +22,104 @@ pub const PULSE_CSV: &str = "pulse_soc.csv";
 pub const CONDITIONS_JSON: &str = "characterization.json";
 pub const C_HEADER: &str = "characterization.h";
 
+/// One column of the levels' summary, as the terminal and the run report
+/// show it: its heading, the decimals and the figure (absent: not
+/// measured).
+pub struct LevelColumn {
+    pub heading: &'static str,
+    pub decimals: usize,
+    pub value: fn(&Level) -> Option<f64>,
+}
+
+fn pair_of(l: &Level, i: usize) -> Option<&analysis::ecm::RcPair> {
+    l.ecm2.as_ref().and_then(|f| f.pairs.get(i))
+}
+
+/// The levels' summary: the method's figures and the second-order
+/// circuit.
+pub const LEVEL_COLUMNS: [LevelColumn; 12] = [
+    LevelColumn {
+        heading: "SoC %",
+        decimals: 1,
+        value: |l| Some(l.soc_pct),
+    },
+    LevelColumn {
+        heading: "OCV V",
+        decimals: 3,
+        value: |l| Some(l.ocv_v),
+    },
+    LevelColumn {
+        heading: "Rdis mΩ",
+        decimals: 2,
+        value: |l| Some(l.discharge.resistance_mohm),
+    },
+    LevelColumn {
+        heading: "Rchg mΩ",
+        decimals: 2,
+        value: |l| l.charge.as_ref().map(|p| p.resistance_mohm),
+    },
+    LevelColumn {
+        heading: "Pdis W",
+        decimals: 0,
+        value: |l| l.power_discharge_w,
+    },
+    LevelColumn {
+        heading: "Pchg W",
+        decimals: 0,
+        value: |l| l.power_charge_w,
+    },
+    LevelColumn {
+        heading: "R0 mΩ",
+        decimals: 2,
+        value: |l| l.circuit_r0_ohm(2).map(|r| r * 1000.0),
+    },
+    LevelColumn {
+        heading: "R1 mΩ",
+        decimals: 2,
+        value: |l| pair_of(l, 0).map(|p| p.r_ohm * 1000.0),
+    },
+    LevelColumn {
+        heading: "τ1 s",
+        decimals: 1,
+        value: |l| pair_of(l, 0).map(|p| p.tau_s),
+    },
+    LevelColumn {
+        heading: "R2 mΩ",
+        decimals: 2,
+        value: |l| pair_of(l, 1).map(|p| p.r_ohm * 1000.0),
+    },
+    LevelColumn {
+        heading: "τ2 s",
+        decimals: 0,
+        value: |l| pair_of(l, 1).map(|p| p.tau_s),
+    },
+    LevelColumn {
+        heading: "rms mV",
+        decimals: 2,
+        value: |l| l.ecm2.as_ref().map(|f| f.rms_v * 1000.0),
+    },
+];
+
+/// The levels from full down, each as its columns' text (`absent` where
+/// a figure was not measured).
+pub fn level_rows<'a>(c: &'a Characterization, absent: &str) -> Vec<(&'a Level, Vec<String>)> {
+    let mut levels = ascending(c);
+    levels.reverse();
+    levels
+        .into_iter()
+        .map(|l| {
+            let cells = LEVEL_COLUMNS
+                .iter()
+                .map(|col| {
+                    (col.value)(l)
+                        .map_or_else(|| absent.to_string(), |v| format!("{v:.*}", col.decimals))
+                })
+                .collect();
+            (l, cells)
+        })
+        .collect()
+}
+
 /// The levels in ascending state of charge.
 fn ascending(c: &Characterization) -> Vec<&Level> {
     let mut v: Vec<&Level> = c.levels.iter().collect();
@@ -78,7 +176,7 @@ pub fn ecm_csv(c: &Characterization, order: usize) -> String {
         match f {
             Some(f) => {
                 // R0 only where the sampling separates it from R1.
-                let r0 = l.r0_separable.then_some(f.r0_ohm);
+                let r0 = l.circuit_r0_ohm(order);
                 let u0 = l.r0_separable.then_some(f.u_r0_ohm);
                 let _ = write!(s, ",{},{}", num(r0), num(u0));
                 for p in &f.pairs {
@@ -289,7 +387,7 @@ pub fn c_header(c: &Characterization, k: &Conditions) -> String {
         &mut s,
         "float",
         &format!("{p}_r0_ohm"),
-        &col(&|l| l.ecm2.as_ref().filter(|_| l.r0_separable).map(|f| f.r0_ohm)),
+        &col(&|l| l.circuit_r0_ohm(2)),
     );
     for i in 0..2 {
         let n = i + 1;

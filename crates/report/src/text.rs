@@ -222,44 +222,26 @@ pub fn characterization_text(c: &analysis::characterize::Characterization) -> St
         "  Pulse-power levels (state of charge on {:.3} Ah, {}; power at {:.2}–{:.2} V):",
         c.basis.capacity_ah, c.basis.source, c.settings.voltage_min_v, c.settings.voltage_max_v
     );
-    let _ = writeln!(
-        o,
-        "    {:>6}  {:>8}  {:>8}  {:>8}  {:>8}  {:>8}  {:>7}  {:>7}  {:>6}  {:>7}  {:>7}  {:>6}",
-        "SoC %",
-        "OCV V",
-        "Rdis mΩ",
-        "Rchg mΩ",
-        "Pdis W",
-        "Pchg W",
-        "R0 mΩ",
-        "R1 mΩ",
-        "τ1 s",
-        "R2 mΩ",
-        "τ2 s",
-        "rms mV"
-    );
-    let mut levels: Vec<_> = c.levels.iter().collect();
-    levels.sort_by(|a, b| b.soc_pct.total_cmp(&a.soc_pct));
-    let f = |x: Option<f64>, d: usize| x.map_or_else(|| "-".to_string(), |v| format!("{v:.d$}"));
-    for l in levels {
-        let e = l.ecm2.as_ref();
-        let pair = |i: usize| e.and_then(|f| f.pairs.get(i));
+    let widths = [6, 8, 8, 8, 8, 8, 7, 7, 6, 7, 7, 6];
+    let line = |cells: &mut dyn Iterator<Item = &str>| -> String {
+        cells
+            .zip(widths)
+            .map(|(c, w)| format!("{c:>w$}"))
+            .collect::<Vec<_>>()
+            .join("  ")
+    };
+    let headings = crate::tables::LEVEL_COLUMNS.iter().map(|c| c.heading);
+    let _ = writeln!(o, "    {}", line(&mut headings.into_iter()));
+    for (l, cells) in crate::tables::level_rows(c, "-") {
         let _ = writeln!(
             o,
-            "    {:>6.1}  {:>8.3}  {:>8.2}  {:>8}  {:>8}  {:>8}  {:>7}  {:>7}  {:>6}  {:>7}  {:>7}  {:>6}{}",
-            l.soc_pct,
-            l.ocv_v,
-            l.discharge.resistance_mohm,
-            f(l.charge.as_ref().map(|p| p.resistance_mohm), 2),
-            f(l.power_discharge_w, 0),
-            f(l.power_charge_w, 0),
-            f(e.filter(|_| l.r0_separable).map(|f| f.r0_ohm * 1000.0), 2),
-            f(pair(0).map(|p| p.r_ohm * 1000.0), 2),
-            f(pair(0).map(|p| p.tau_s), 1),
-            f(pair(1).map(|p| p.r_ohm * 1000.0), 2),
-            f(pair(1).map(|p| p.tau_s), 0),
-            f(e.map(|f| f.rms_v * 1000.0), 2),
-            if l.flags.is_empty() { String::new() } else { format!("  ({})", l.flags.join("; ")) }
+            "    {}{}",
+            line(&mut cells.iter().map(String::as_str)),
+            if l.flags.is_empty() {
+                String::new()
+            } else {
+                format!("  ({})", l.flags.join("; "))
+            }
         );
     }
     if let Some(a) = &c.available_energy {
