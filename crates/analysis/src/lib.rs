@@ -9,6 +9,7 @@ pub mod bms;
 pub mod characterize;
 pub mod correct;
 pub mod curves;
+pub mod decision;
 pub mod ecm;
 pub mod fade;
 pub mod fit;
@@ -18,6 +19,7 @@ pub mod pulse;
 pub mod resistance;
 pub mod screen;
 pub mod stream;
+pub mod uncertainty;
 
 use correct::Correction;
 use model::end::EndKind;

@@ -6,6 +6,7 @@
 //! Pure data and parsing: no async runtime, no instruments, no files
 //! beyond reading an input the caller names.
 
+pub mod accuracy;
 pub mod bms;
 pub mod end;
 pub mod groups;
