@@ -15,6 +15,8 @@
 //! link = "tcp:192.168.1.40:5025"
 //! profile = "generic-scpi-load"
 //! timeout = "500ms"                   # overrides the profile's reply timeout
+//! # the load's own stated accuracy, over the profile's example figures
+//! accuracy = { current = { reading_pct = 0.05, offset = 0.002, resolution = 0.0001 } }
 //! ```
 
 use instrument::profile::{Profile, ProfileRole};
@@ -80,6 +82,9 @@ struct RawBinding {
     profile: Spanned<String>,
     timeout: Option<Spanned<String>>,
     delay: Option<Spanned<String>>,
+    /// The instrument's own stated accuracy, over its profile's example
+    /// figures (`accuracy = { current = { reading_pct = 0.05, … } }`).
+    accuracy: Option<Spanned<model::accuracy::Declared>>,
 }
 
 /// One instrument of a station, validated.
@@ -480,6 +485,12 @@ impl Reader<'_> {
                         t.get_ref()
                     ),
                 ),
+            }
+        }
+        if let Some(a) = &b.accuracy {
+            match a.get_ref().check("accuracy") {
+                Ok(()) => profile.accuracy = profile.accuracy.overridden_by(a.get_ref()),
+                Err(message) => self.err(a.span(), 1, message),
             }
         }
         Some(Binding {

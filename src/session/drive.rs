@@ -161,6 +161,7 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
         outputs_may_be_on: Vec::new(),
         record_incomplete: Vec::new(),
         failed_resumes: Vec::new(),
+        accuracy: Some(station_accuracy(&links)),
     };
     let rec = Recording {
         dir,
@@ -176,6 +177,34 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
         sim,
     };
     drive(p, rec, sink, bench, stop).await
+}
+
+/// What the station's instruments state of their readings' accuracy.
+pub fn station_accuracy(links: &BenchLinks) -> model::accuracy::BenchAccuracy {
+    let of = |role: &str, b: &BoundLink| {
+        (
+            format!("{role}: {}", b.profile.name),
+            b.profile.accuracy.clone(),
+            b.profile.ranges.voltage_max_v,
+            b.profile.ranges.current_max_a,
+        )
+    };
+    let (sn, sd, sv, si) = of("source", &links.source);
+    let (ln, ld, lv, li) = of("load", &links.load);
+    let meter = links.meter.as_ref().map(|m| of("meter", m));
+    let mut a = model::accuracy::BenchAccuracy::of_station(
+        (&sn, &sd, sv, si),
+        (&ln, &ld, lv, li),
+        meter.as_ref().map(|(n, d, v, _)| (n.as_str(), d, *v)),
+        links.shared,
+    );
+    if links.kind == crate::session::links::SIMULATED {
+        a.stated_by = vec![
+            "the simulated bench (the accuracy within which the simulator applies its meters' errors)"
+                .into(),
+        ];
+    }
+    a
 }
 
 /// A run folder being written.

@@ -69,6 +69,12 @@ pub fn sim_bench_links(
     load_profile: Profile,
     speed: Speed,
 ) -> (BenchLinks, Option<Arc<dyn GroundTruth>>, Option<SimRun>) {
+    // The simulated instruments declare the accuracy within which the
+    // simulator applies their errors.
+    let [src_acc, load_acc, _] = cfg.declared();
+    let (mut source_profile, mut load_profile) = (source_profile, load_profile);
+    source_profile.accuracy = src_acc;
+    load_profile.accuracy = load_acc;
     let handle = links.handle.clone();
     let truth: Arc<dyn GroundTruth> = Arc::new(handle.clone());
     let cap = handle.true_capacity_ah();
@@ -99,6 +105,14 @@ pub fn sim_bench_links(
                     std::path::Path::new("generic-scpi-scanner.toml"),
                     instrument::profile::GENERIC_SCANNER,
                 )
+                .map(|mut p| {
+                    p.accuracy = model::accuracy::Declared {
+                        voltage: Some(cfg.groups.scanner.stated_spec()),
+                        temperature_c: Some(cfg.temperature.stated_spec().offset),
+                        ..Default::default()
+                    };
+                    p
+                })
                 .unwrap_or_else(|_| Profile::builtin(instrument::profile::ProfileRole::Meter)),
                 text: "sim".into(),
                 attach: Attach {

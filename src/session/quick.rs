@@ -248,30 +248,44 @@ pub fn quick_grade(
     out.soh_upper_pct = Some(soh(p.upper_ah));
     let grade_at = |s: f64| {
         policy
-            .grade(&GradeInputs {
-                chemistry: spec.chemistry,
-                soh_pct: Some(s),
-                resistance_growth_pct: None,
-                coulombic_efficiency_pct: None,
-                weakest_group: None,
-                weakest_group_share_pct: None,
-                group_capacity_spread_pct: None,
-            })
+            .grade(&GradeInputs::of_soh(spec.chemistry, s, None))
             .label
     };
+    // The prediction through the policy's decision rule: the estimate with
+    // u = half the 95 % interval's half-width over 2 (k = 2).
+    let u = (soh(p.upper_ah) - soh(p.lower_ah)) / 4.0;
+    let ruled = policy.grade(&GradeInputs::of_soh(
+        spec.chemistry,
+        soh(p.capacity_ah),
+        Some(u),
+    ));
+    let rule_line = ruled
+        .decision
+        .as_ref()
+        .map(|d| {
+            format!(
+                " Under the policy's rule ({}): grade {}{}. {}",
+                d.rule,
+                ruled.label,
+                if d.conditional { ", conditional" } else { "" },
+                d.line()
+            )
+        })
+        .unwrap_or_default();
     let (lo, hi) = (grade_at(soh(p.lower_ah)), grade_at(soh(p.upper_ah)));
-    out.verdict = if lo == hi {
+    out.verdict = if lo == hi && policy.refuses(spec.chemistry, Some(u)).is_none() {
         out.grade = Some(lo.clone());
         format!(
-            "estimated grade {lo}: the whole 95 % interval ({:.1}–{:.1} % of rated) lies in it",
+            "estimated grade {lo}: the whole 95 % interval ({:.1}–{:.1} % of rated) lies in it.{rule_line}",
             soh(p.lower_ah),
             soh(p.upper_ah)
         )
     } else {
         format!(
-            "a full capacity test is needed: the 95 % interval ({:.1}–{:.1} % of rated) spans grades {hi} to {lo}",
+            "a full capacity test is needed: the 95 % interval ({:.1}–{:.1} % of rated) spans grades {hi} to {lo}{}.{rule_line}",
             soh(p.lower_ah),
-            soh(p.upper_ah)
+            soh(p.upper_ah),
+            if lo == hi { " or is too wide for the policy's bins" } else { "" }
         )
     };
     out.prediction = Some(p);

@@ -89,6 +89,9 @@ fn inputs(chemistry: Chemistry, soh: f64, growth: Option<f64>, ce: Option<f64>) 
         weakest_group: None,
         weakest_group_share_pct: None,
         group_capacity_spread_pct: None,
+        soh_u: None,
+        resistance_growth_u: None,
+        ce_u: None,
     }
 }
 

@@ -144,6 +144,7 @@ mod tests {
             max_temperature_c: None,
             end_kind: None,
             end_reason: None,
+            measure: None,
         }
     }
 

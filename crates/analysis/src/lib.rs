@@ -87,6 +87,11 @@ pub struct StepSummary {
     pub max_temperature_c: Option<f64>,
     pub end_kind: Option<EndKind>,
     pub end_reason: Option<String>,
+    /// What the samples tell of the measurement: sampling, noise, the
+    /// integration rule's error, the slope at the end (the uncertainty
+    /// budget's data terms; absent in older records).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub measure: Option<uncertainty::StepMeasure>,
 }
 
 /// Figures of one charge/discharge cycle.

@@ -117,6 +117,9 @@ struct StepAcc {
     drain: Option<Vec<(f64, f64)>>,
     /// Run time inside the step while the run was down (resumed), s.
     down_s: f64,
+    /// What the samples tell of the measurement (the uncertainty budget's
+    /// data terms).
+    measure: crate::uncertainty::MeasureAcc,
 }
 
 impl StepAcc {
@@ -146,11 +149,13 @@ impl StepAcc {
             ah_since_full_at_start: ah_since_full,
             drain: None,
             down_s: 0.0,
+            measure: crate::uncertainty::MeasureAcc::default(),
         }
     }
 
     fn push(&mut self, s: &Sample) {
         self.g.push(s.t_s, s.voltage_v, s.current_a);
+        self.measure.push(s.t_s, s.voltage_v, s.current_a);
         self.grid.push(s.t_s, s.voltage_v, s.current_a);
         self.vmin = self.vmin.min(s.voltage_v);
         self.vmax = self.vmax.max(s.voltage_v);
@@ -225,6 +230,7 @@ struct StepDone {
     two_level: Option<ResistanceReading>,
     /// Run time inside the step while the run was down, s.
     down_s: f64,
+    measure: crate::uncertainty::MeasureAcc,
 }
 
 /// Curves kept for a candidate step.
@@ -417,6 +423,7 @@ impl<'a> Analyzer<'a> {
             if let Some(c) = self.cur.as_mut() {
                 c.g.break_segment();
                 c.grid.break_segment();
+                c.measure.break_segment();
                 if c.step == s.step {
                     c.down_s += down;
                 }
@@ -661,6 +668,7 @@ impl<'a> Analyzer<'a> {
                 };
                 d.acc_last = acc.last;
                 d.down_s += acc.down_s;
+                d.measure.merge(&acc.measure);
             }
             None => {
                 self.done_order.push(step);
@@ -677,6 +685,7 @@ impl<'a> Analyzer<'a> {
                         stretches: 1,
                         two_level,
                         down_s: acc.down_s,
+                        measure: acc.measure.clone(),
                     },
                 );
             }
@@ -1064,6 +1073,7 @@ fn step_summary(info: &StepInfo, d: Option<&StepDone>) -> StepSummary {
         max_temperature_c: d.and_then(|d| d.tmax),
         end_kind: info.end_kind,
         end_reason: info.end_reason.clone(),
+        measure: d.map(|d| d.measure.finish()),
     }
 }
 

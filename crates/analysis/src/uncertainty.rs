@@ -159,6 +159,18 @@ impl Budget {
         )
     }
 
+    /// "± 0.030 Ah (k = 2, 95 %)": what follows a figure already printed.
+    pub fn pm(&self) -> String {
+        let hw = self.half_width();
+        let dec = decimals_for(hw);
+        let sp = if self.unit.is_empty() { "" } else { " " };
+        let how = match self.mc_half_width {
+            Some(_) => "95 %, Monte Carlo".to_string(),
+            None => format!("k = {}, {} %", self.k, COVERAGE_PCT),
+        };
+        format!("± {hw:.dec$}{sp}{} ({how})", self.unit)
+    }
+
     /// The short form for tiles and labels: "12.99 ± 0.03 Ah".
     pub fn short(&self) -> String {
         let hw = self.half_width();
@@ -357,6 +369,29 @@ impl MeasureAcc {
         self.even = None;
     }
 
+    /// Add a later stretch of the same step (a step split by a resume).
+    pub fn merge(&mut self, o: &MeasureAcc) {
+        self.m.sum_dt2_s2 += o.m.sum_dt2_s2;
+        self.m.v_dt_vs += o.m.v_dt_vs;
+        if o.n > 1 {
+            self.m.last_dt_s = o.m.last_dt_s;
+        }
+        self.q_at_even = self.q + o.q_at_even;
+        self.e_at_even = self.e + o.e_at_even;
+        self.q += o.q;
+        self.e += o.e;
+        self.q2 += o.q2;
+        self.e2 += o.e2;
+        self.di2 += o.di2;
+        self.dv2 += o.dv2;
+        self.dn += o.dn;
+        if !o.ring.is_empty() {
+            self.ring.clone_from(&o.ring);
+        }
+        self.last = o.last.or(self.last);
+        self.n += o.n;
+    }
+
     pub fn finish(&self) -> StepMeasure {
         let mut m = self.m;
         if self.dn >= 10 {
@@ -465,7 +500,10 @@ pub fn charge_terms(x: &StepInputs<'_>) -> Vec<Term> {
         "current gain",
         x.q_ah * ag,
         true,
-        format!("±{} % of reading, the same on every sample", x.current.reading_pct),
+        format!(
+            "±{} % of reading, the same on every sample",
+            x.current.reading_pct
+        ),
     )];
     let (uo, shape, basis) = offset_u(x);
     out.push(Term {
@@ -505,7 +543,10 @@ pub fn charge_terms(x: &StepInputs<'_>) -> Vec<Term> {
             "noise (Type A)",
             s * m.sum_dt2_s2.sqrt() / 3600.0,
             false,
-            format!("s = {:.3} mA from successive differences on the plateau", s * 1e3),
+            format!(
+                "s = {:.3} mA from successive differences on the plateau",
+                s * 1e3
+            ),
         ));
     }
     if let Some(ppm) = x.timebase_ppm {
@@ -601,7 +642,12 @@ pub fn energy_terms(x: &StepInputs<'_>) -> Vec<Term> {
         ));
     }
     if let Some(ppm) = x.timebase_ppm {
-        out.push(rect("time base", x.e_wh * ppm * 1e-6, true, format!("±{ppm} ppm")));
+        out.push(rect(
+            "time base",
+            x.e_wh * ppm * 1e-6,
+            true,
+            format!("±{ppm} ppm"),
+        ));
     }
     out.push(rect(
         "integration rule",
@@ -753,7 +799,10 @@ pub fn corrected_budget(measured: &Budget, corrected: f64, c: &CorrectionInputs)
             "Peukert exponent",
             corrected * ln_ratio.abs() * k_half,
             false,
-            format!("k = {k} ± {k_half}, test current {:.1} % off the rated", (ln_ratio.exp() - 1.0) * 100.0),
+            format!(
+                "k = {k} ± {k_half}, test current {:.1} % off the rated",
+                (ln_ratio.exp() - 1.0) * 100.0
+            ),
         ));
     }
     Budget::of(corrected, &measured.unit, terms)
@@ -794,7 +843,10 @@ pub fn resistance_budget(
             "voltage difference",
             r_mohm * sv / dv,
             false,
-            format!("resolution and noise of two readings over ΔV = {:.1} mV", dv * 1e3),
+            format!(
+                "resolution and noise of two readings over ΔV = {:.1} mV",
+                dv * 1e3
+            ),
         ));
         terms.push(normal(
             "current difference",

@@ -304,6 +304,10 @@ struct RawProfile {
     ranges: RawRanges,
     #[serde(default)]
     protection: Protection,
+    /// The maker's stated accuracy of each reading (see
+    /// [`model::accuracy`]).
+    #[serde(default)]
+    accuracy: Option<model::accuracy::Declared>,
 }
 
 /// Declared ranges in SI units.
@@ -331,6 +335,8 @@ struct RawModbusProfile {
     ranges: RawRanges,
     #[serde(default)]
     trip_bits: std::collections::BTreeMap<String, u8>,
+    #[serde(default)]
+    accuracy: Option<model::accuracy::Declared>,
 }
 
 /// Declared ranges in SI units; bad ones are errors, located.
@@ -390,6 +396,9 @@ pub struct Profile {
     pub mode_words: Option<ModeWords>,
     pub ranges: Ranges,
     pub protection: Protection,
+    /// The maker's stated accuracy of the instrument's readings (the
+    /// shipped generic profiles carry example figures).
+    pub accuracy: model::accuracy::Declared,
     /// A Modbus RTU instrument's register map: the commands above are then
     /// the operations the Modbus bridge carries.
     pub modbus: Option<std::sync::Arc<modbus_map::Map>>,
@@ -419,6 +428,14 @@ impl Profile {
             Location::at(file, text, off)
         };
         let ranges = parse_ranges(&raw.ranges, &locate, &mut errors);
+        if let Some(a) = &raw.accuracy {
+            if let Err(message) = a.check("accuracy") {
+                errors.push(LocatedError {
+                    location: locate("[accuracy"),
+                    message,
+                });
+            }
+        }
         let c = &raw.commands;
         let role_name = raw.role.name();
         let mut need = |ok: bool, what: &str| {
@@ -541,6 +558,7 @@ impl Profile {
             mode_words: raw.mode_words,
             ranges,
             protection: raw.protection,
+            accuracy: raw.accuracy.unwrap_or_default(),
             modbus: None,
         })
     }
@@ -670,6 +688,7 @@ impl Profile {
             mode_words,
             ranges,
             protection,
+            accuracy: raw.accuracy.clone().unwrap_or_default(),
             modbus: Some(std::sync::Arc::new(map)),
         })
     }

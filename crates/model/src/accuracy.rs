@@ -254,7 +254,10 @@ mod tests {
             reading_pct: -0.1,
             ..s
         };
-        assert!(bad.check("current").unwrap_err().contains("current.reading_pct"));
+        assert!(bad
+            .check("current")
+            .unwrap_err()
+            .contains("current.reading_pct"));
     }
 
     #[test]

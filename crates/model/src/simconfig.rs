@@ -73,6 +73,7 @@ impl Default for GroupsConfig {
                 offset: 0.0005,
                 noise: 0.0003,
                 resolution: 0.0001,
+                stated: stated(0.05, 0.002, 0.0001),
             },
         }
     }
@@ -147,6 +148,47 @@ pub struct MeterConfig {
     pub offset: f64,
     pub noise: f64,
     pub resolution: f64,
+    /// The accuracy this simulated meter states (what its profile declares
+    /// and the uncertainty budget reads). The applied gain and offset must
+    /// lie within it; absent: the applied errors' own size.
+    pub stated: Option<crate::accuracy::Spec>,
+}
+
+impl MeterConfig {
+    /// The accuracy this meter states: its `stated` figures, else the
+    /// applied errors' size (and its resolution).
+    pub fn stated_spec(&self) -> crate::accuracy::Spec {
+        self.stated.unwrap_or(crate::accuracy::Spec {
+            reading_pct: self.gain_error_pct.abs(),
+            range_pct: 0.0,
+            offset: self.offset.abs(),
+            resolution: self.resolution,
+        })
+    }
+
+    /// The applied errors lie within the stated accuracy.
+    fn check(&self, what: &str) -> Result<(), String> {
+        let s = self.stated_spec();
+        s.check(&format!("{what}.stated"))?;
+        let eps = 1e-12;
+        if self.gain_error_pct.abs() > s.reading_pct + eps || self.offset.abs() > s.offset + eps {
+            return Err(format!(
+                "{what}: the applied error ({} % of reading, offset {}) is outside the accuracy it states (±{} %, ±{}): a simulated meter applies errors within what it declares",
+                self.gain_error_pct, self.offset, s.reading_pct, s.offset
+            ));
+        }
+        Ok(())
+    }
+}
+
+/// Stated accuracy of a simulated meter (the figures its budget reads).
+fn stated(reading_pct: f64, offset: f64, resolution: f64) -> Option<crate::accuracy::Spec> {
+    Some(crate::accuracy::Spec {
+        reading_pct,
+        range_pct: 0.0,
+        offset,
+        resolution,
+    })
 }
 
 impl Default for MeterConfig {
@@ -156,6 +198,7 @@ impl Default for MeterConfig {
             offset: 0.0,
             noise: 0.0,
             resolution: 0.0,
+            stated: None,
         }
     }
 }
@@ -178,12 +221,14 @@ impl Default for InstrumentMeters {
                 offset: 0.002,
                 noise: 0.001,
                 resolution: 0.001,
+                stated: stated(0.1, 0.005, 0.001),
             },
             current: MeterConfig {
                 gain_error_pct: -0.1,
                 offset: 0.002,
                 noise: 0.002,
                 resolution: 0.001,
+                stated: stated(0.2, 0.005, 0.001),
             },
         }
     }
@@ -405,12 +450,14 @@ impl Default for SimConfig {
                 offset: 0.2,
                 noise: 0.05,
                 resolution: 0.1,
+                stated: stated(0.0, 1.0, 0.1),
             },
             meter: MeterConfig {
                 gain_error_pct: 0.01,
                 offset: 0.0002,
                 noise: 0.0002,
                 resolution: 0.0001,
+                stated: stated(0.02, 0.0005, 0.0001),
             },
             faults: Faults::default(),
             groups: GroupsConfig::default(),
@@ -422,7 +469,52 @@ impl SimConfig {
     pub fn from_toml(file: &Path, text: &str) -> Result<SimConfig, InputErrors> {
         let cfg: SimConfig =
             toml::from_str(text).map_err(|e| InputErrors(vec![toml_error(file, text, &e)]))?;
+        if let Err(message) = cfg.check_meters() {
+            return Err(InputErrors(vec![crate::location::LocatedError {
+                location: crate::location::Location::at(file, text, 0),
+                message,
+            }]));
+        }
         Ok(cfg)
+    }
+
+    /// Every simulated meter applies errors within the accuracy it states.
+    pub fn check_meters(&self) -> Result<(), String> {
+        for (what, m) in [
+            ("source.voltage", &self.source.voltage),
+            ("source.current", &self.source.current),
+            ("load.voltage", &self.load.voltage),
+            ("load.current", &self.load.current),
+            ("meter", &self.meter),
+            ("groups.scanner", &self.groups.scanner),
+        ] {
+            m.check(what)?;
+        }
+        Ok(())
+    }
+
+    /// The accuracy each simulated instrument declares (its profile's
+    /// `[accuracy]` on the simulated bench): source, load, and the
+    /// separate voltmeter with the temperature input.
+    pub fn declared(&self) -> [crate::accuracy::Declared; 3] {
+        let inst = |m: &InstrumentMeters| crate::accuracy::Declared {
+            voltage: Some(m.voltage.stated_spec()),
+            current: Some(m.current.stated_spec()),
+            timebase_ppm: None,
+            temperature_c: Some(self.temperature.stated_spec().offset),
+            example: false,
+        };
+        [
+            inst(&self.source),
+            inst(&self.load),
+            crate::accuracy::Declared {
+                voltage: Some(self.meter.stated_spec()),
+                current: None,
+                timebase_ppm: None,
+                temperature_c: Some(self.temperature.stated_spec().offset),
+                example: false,
+            },
+        ]
     }
 
     /// An ideal bench: no measurement error.

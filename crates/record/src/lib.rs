@@ -11,6 +11,7 @@
 //! JSON records are written to a temporary name and renamed, so a crash
 //! never leaves one half-written. No statistics here.
 
+pub mod budget;
 pub mod error;
 pub mod event;
 pub mod history;
@@ -137,6 +138,10 @@ pub struct Summary {
     /// holds a pulse-power characterization.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub characterization: Option<analysis::characterize::Characterization>,
+    /// The stated accuracy the run's readings were taken with (from
+    /// `run.json`; absent for a foreign log and older records).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub accuracy: Option<model::accuracy::BenchAccuracy>,
     /// What was not worked out because the log came without a pack spec
     /// (no rated capacity): empty when the spec was given.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]

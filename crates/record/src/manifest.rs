@@ -54,6 +54,11 @@ pub struct Manifest {
     /// stays resumable).
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub failed_resumes: Vec<FailedResume>,
+    /// The stated accuracy the run's readings were taken with (absent in
+    /// older records and where no instrument states one): the uncertainty
+    /// budgets are computed from it.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub accuracy: Option<model::accuracy::BenchAccuracy>,
 }
 
 /// A resume that could not reach the bench.

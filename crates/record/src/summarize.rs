@@ -115,6 +115,8 @@ pub fn build_summary(
         cycles: &a.cycles,
         groups: a.groups.as_ref(),
         policy: Some(ctx.policy),
+        accuracy: None,
+        tare: None,
     });
     let mut a = a;
     a.warnings.extend(judged);
@@ -154,6 +156,7 @@ pub fn build_summary(
         needs_rating: Vec::new(),
         groups: a.groups,
         characterization: a.characterization,
+        accuracy: None,
     }
 }
 
@@ -330,9 +333,9 @@ pub fn summarize_run_with_curves(
     let mut feed = Feed::new();
     // A pack read group by group: its channels, and the pack's current
     // for each group scan.
-    let channels = crate::read::read_manifest(&dir.join(crate::RUN_JSON))
-        .ok()
-        .and_then(|m| m.groups);
+    let manifest = crate::read::read_manifest(&dir.join(crate::RUN_JSON)).ok();
+    let accuracy = manifest.as_ref().and_then(|m| m.accuracy.clone());
+    let channels = manifest.and_then(|m| m.groups);
     let mut pack_points: Vec<analysis::groups::PackPoint> = Vec::new();
     let rep = stream_log(&dir.join(SAMPLES_CSV), &LogFormat::default(), |r: Row| {
         feed.note(r.t_s);
@@ -380,6 +383,16 @@ pub fn summarize_run_with_curves(
     let curves = std::mem::take(&mut a.curve_data);
     let mut s = build_summary(a, ctx, outcome, feed.n, feed.duration(), Some(pack_dir));
     add_event_records(&mut s, &events);
+    // Judged again with the readings' stated accuracy and the preflight's
+    // tare: every figure gets its budget and the grade its decision rule.
+    if accuracy.is_some() {
+        s.accuracy = accuracy;
+        let added: Vec<String> = crate::verdict::rejudge(&mut s, Some(ctx.policy))
+            .into_iter()
+            .filter(|w| !s.warnings.contains(w))
+            .collect();
+        s.warnings.extend(added);
+    }
     warn_if_not_cooled(&mut s, &events);
     Ok((s, curves))
 }

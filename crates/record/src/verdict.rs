@@ -48,6 +48,8 @@ pub enum Why {
     Implausible,
     /// A record older than verdicts that does not hold the input.
     NotRecorded,
+    /// The figure's uncertainty is too large for the policy's grade bins.
+    TooUncertain,
 }
 
 impl Why {
@@ -66,6 +68,7 @@ impl Why {
             Why::NotAnIeee450Test => "not a lead-acid discharge at its rated current to its cutoff",
             Why::Implausible => "implausible (check the rating and the log)",
             Why::NotRecorded => "not in this older record",
+            Why::TooUncertain => "the uncertainty is too large for the policy's grade bins",
         }
     }
 }
@@ -186,6 +189,9 @@ pub struct Verdict {
     /// history (an import's jump).
     #[serde(default)]
     pub flags: Vec<String>,
+    /// Each figure's uncertainty budget (GUM), or why there are none.
+    #[serde(default)]
+    pub uncertainty: crate::budget::Uncertainty,
 }
 
 /// What a verdict is judged from.
@@ -204,6 +210,10 @@ pub struct Inputs<'a> {
     pub groups: Option<&'a analysis::groups::GroupsResult>,
     /// The grading policy (absent: no grade, e.g. no rating).
     pub policy: Option<&'a Policy>,
+    /// The stated accuracy of the readings (absent: no budgets).
+    pub accuracy: Option<&'a model::accuracy::BenchAccuracy>,
+    /// The zero offsets were read before the run and subtracted.
+    pub tare: Option<analysis::uncertainty::Tare>,
 }
 
 /// Judge a run once. Returns the verdict and the warnings it adds.
@@ -284,9 +294,23 @@ pub fn judge(x: &Inputs<'_>) -> (Verdict, Vec<String>) {
         Why::NoFullCycle,
     );
     let ee = Figure::from_option(cyc.and_then(|c| c.energy_efficiency_pct), Why::NoFullCycle);
+    let uncertainty = uncertainty_of(x, cyc, rated);
+    let u_of = |b: &Option<analysis::uncertainty::Budget>| b.as_ref().map(|b| b.u);
+    // Growth against a reference known exactly: u(R)/R0.
+    let growth_u = match (&uncertainty.resistance_mohm, &x.reference) {
+        (Some(b), Some(r0)) if r0.mohm > 0.0 => Some(b.u / r0.mohm * 100.0),
+        _ => None,
+    };
+    let soh_u = soh.get().and(u_of(&uncertainty.soh_pct));
     // A grade stands on a state of health: a capacity that did not start
     // from a full charge grades nothing, nor does a run without one.
     let grade = match (soh.get(), x.policy) {
+        (Some(_), Some(p)) if p.refuses(x.chemistry, soh_u).is_some() => {
+            if let Some(w) = p.refuses(x.chemistry, soh_u) {
+                warnings.push(w);
+            }
+            Figure::Absent(Why::TooUncertain)
+        }
         (Some(s), Some(p)) => Figure::Value(p.grade(&GradeInputs {
             chemistry: x.chemistry,
             soh_pct: Some(s),
@@ -295,6 +319,9 @@ pub fn judge(x: &Inputs<'_>) -> (Verdict, Vec<String>) {
             weakest_group: x.groups.and_then(|g| g.weakest),
             weakest_group_share_pct: x.groups.and_then(|g| g.weakest_share_pct),
             group_capacity_spread_pct: x.groups.and_then(|g| g.capacity_spread_pct),
+            soh_u,
+            resistance_growth_u: growth.get().and(growth_u),
+            ce_u: ce.get().and(u_of(&uncertainty.coulombic_efficiency_pct)),
         })),
         (Some(_), None) => Figure::Absent(Why::NoRating),
         (None, _) => Figure::Absent(soh.why().unwrap_or(Why::NoCapacityStep)),
@@ -339,8 +366,36 @@ pub fn judge(x: &Inputs<'_>) -> (Verdict, Vec<String>) {
         counts_for_history: not_counted.is_none(),
         not_counted,
         flags: Vec::new(),
+        uncertainty,
     };
     (v, warnings)
+}
+
+/// Each figure's budget from the record's stated accuracy; a figure that
+/// is absent has no budget.
+fn uncertainty_of(
+    x: &Inputs<'_>,
+    cycle: Option<&analysis::CycleSummary>,
+    rated: Option<f64>,
+) -> crate::budget::Uncertainty {
+    let mut u = crate::budget::budgets(&crate::budget::BudgetInputs {
+        accuracy: x.accuracy,
+        tare: x.tare,
+        chemistry: x.chemistry,
+        rated_ah: rated,
+        rated_rate_c: x.rated_rate_c,
+        capacity: x.capacity,
+        steps: x.steps,
+    });
+    if let Some(acc) = x.accuracy {
+        if let Some(c) = cycle.filter(|c| c.coulombic_efficiency_pct.is_some()) {
+            crate::budget::efficiency_budgets(&mut u, acc, x.tare, c, x.steps);
+        }
+        if let Some(r) = x.resistance {
+            crate::budget::resistance(&mut u, acc, r, x.steps);
+        }
+    }
+    u
 }
 
 impl Verdict {
@@ -351,13 +406,25 @@ impl Verdict {
 
     /// One line for `--quiet` and logs: every figure from this verdict.
     pub fn line(&self) -> String {
+        let u = &self.uncertainty;
+        let with =
+            |f: &Figure<f64>, b: &Option<analysis::uncertainty::Budget>, d: usize, unit: &str| {
+                match (f.get(), b) {
+                    (Some(_), Some(b)) => b.short(),
+                    _ => f.show(d, unit),
+                }
+            };
         format!(
             "capacity {} (measured {}), SoH {}, grade {}",
-            self.corrected_ah.show(3, " Ah"),
-            self.measured_ah.show(3, " Ah"),
-            self.soh_pct.show(1, " %"),
+            with(&self.corrected_ah, &u.corrected_ah, 3, " Ah"),
+            with(&self.measured_ah, &u.measured_ah, 3, " Ah"),
+            with(&self.soh_pct, &u.soh_pct, 1, " %"),
             match &self.grade {
-                Figure::Value(g) => g.label.clone(),
+                Figure::Value(g) => match &g.decision {
+                    Some(d) if d.retest => format!("{} (retest)", g.label),
+                    Some(d) if d.conditional => format!("{} (conditional)", g.label),
+                    _ => g.label.clone(),
+                },
                 Figure::Absent(w) => format!("none ({w})"),
             }
         )
@@ -385,6 +452,12 @@ impl<'a> Inputs<'a> {
             cycles: &s.cycles,
             groups: s.groups.as_ref(),
             policy,
+            accuracy: s.accuracy.as_ref(),
+            tare: s.preflight.as_ref().filter(|p| p.corrected).map(|_| {
+                analysis::uncertainty::Tare {
+                    readings: crate::budget::TARE_READINGS,
+                }
+            }),
         }
     }
 }
@@ -405,12 +478,14 @@ pub fn judge_older(s: &mut crate::Summary) {
 /// Judge a summary again from the figures it holds (after they were
 /// changed: a made-up fleet, an import set against its pack, a rating
 /// taken away), keeping its resistance reference and flags.
-pub fn rejudge(s: &mut crate::Summary, policy: Option<&Policy>) {
+/// Returns the warnings the new judgement adds.
+pub fn rejudge(s: &mut crate::Summary, policy: Option<&Policy>) -> Vec<String> {
     let reference = s.verdict.resistance_reference.clone();
     let flags = std::mem::take(&mut s.verdict.flags);
-    let (mut v, _) = judge(&Inputs::of_summary(s, reference, policy));
+    let (mut v, warnings) = judge(&Inputs::of_summary(s, reference, policy));
     v.flags = flags;
     s.verdict = v;
+    warnings
 }
 
 #[cfg(test)]
@@ -471,6 +546,8 @@ mod tests {
             cycles: &[],
             groups: None,
             policy: Some(&policy),
+            accuracy: None,
+            tare: None,
         })
         .0
     }
@@ -540,6 +617,8 @@ mod tests {
             cycles: &[],
             groups: None,
             policy: Some(&policy),
+            accuracy: None,
+            tare: None,
         });
         assert!((v.resistance_growth_pct.get().unwrap() - 50.0).abs() < 1e-9);
         // 50 % growth: not grade A (≤ 25 %) although the SoH is 90 %.

@@ -11,3 +11,7 @@ pub mod text;
 
 #[cfg(test)]
 mod section_tests;
+
+/// " ± 0.030 Ah (k = 2, 95 %)" after a figure, or nothing without a budget
+/// (every screen prints the verdict's own budget).
+pub use record::budget::pm;

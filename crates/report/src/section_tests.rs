@@ -84,6 +84,8 @@ fn case(
         cycles: &[],
         groups: None,
         policy: Some(&policy),
+        accuracy: None,
+        tare: None,
     })
     .0;
     s

@@ -119,6 +119,7 @@ pub fn summary(s: &Summary) -> String {
             st.end_reason.clone().unwrap_or_default()
         );
     }
+    decision_lines(&mut o, s);
     capacity_lines(&mut o, s);
     resistance_lines(&mut o, s);
     if let Some(b) = &s.bms {
@@ -175,11 +176,21 @@ pub fn summary(s: &Summary) -> String {
         Some(g) => {
             let _ = writeln!(
                 o,
-                "  Grade:             {} ({}) — {}",
+                "  Grade:             {}{} ({}) — {}",
                 g.label,
+                match &g.decision {
+                    Some(d) if d.retest => " RETEST",
+                    Some(d) if d.conditional => " (conditional)",
+                    _ => "",
+                },
                 g.meaning,
                 g.reasons.join("; ")
             );
+            if let Some(d) = g.decision.as_ref().map(|d| d.line()) {
+                if !d.is_empty() {
+                    let _ = writeln!(o, "                     {d}");
+                }
+            }
         }
         None => {
             let _ = writeln!(
@@ -194,9 +205,17 @@ pub fn summary(s: &Summary) -> String {
     }
     for c in &s.cycles {
         if let (Some(ce), Some(ee)) = (c.coulombic_efficiency_pct, c.energy_efficiency_pct) {
+            let (uce, uee) = if s.verdict.efficiency_cycle == Some(c.cycle) {
+                (
+                    crate::pm(&s.verdict.uncertainty.coulombic_efficiency_pct),
+                    crate::pm(&s.verdict.uncertainty.energy_efficiency_pct),
+                )
+            } else {
+                (String::new(), String::new())
+            };
             let _ = writeln!(
                 o,
-                "  Cycle {}: charged {:.3} Ah / {:.2} Wh, discharged {:.3} Ah / {:.2} Wh; coulombic efficiency {:.3} %, energy efficiency {:.2} %",
+                "  Cycle {}: charged {:.3} Ah / {:.2} Wh, discharged {:.3} Ah / {:.2} Wh; coulombic efficiency {:.3} %{uce}, energy efficiency {:.2} %{uee}",
                 c.cycle, c.charge_ah, c.charge_wh, c.discharge_ah, c.discharge_wh, ce, ee
             );
         }
@@ -254,6 +273,19 @@ pub fn characterization_text(c: &analysis::characterize::Characterization) -> St
     o
 }
 
+/// The rule the grade is judged under and where the figures' uncertainty
+/// comes from: stated before the figures.
+fn decision_lines(o: &mut String, s: &Summary) {
+    if let Some(d) = s.verdict.grade.value().and_then(|g| g.decision.as_ref()) {
+        let _ = writeln!(o, "  Decision rule:     {}", d.rule);
+    }
+    let _ = writeln!(
+        o,
+        "  Uncertainty:       {}",
+        s.verdict.uncertainty.basis_line()
+    );
+}
+
 /// The capacity figures: measured, where it started, at rated conditions,
 /// state of health.
 fn capacity_lines(o: &mut String, s: &Summary) {
@@ -264,11 +296,14 @@ fn capacity_lines(o: &mut String, s: &Summary) {
                 Some(r) => format!(" ({r:.2}C)"),
                 None => String::new(),
             };
+            let u = &v.uncertainty;
             let _ = writeln!(
                 o,
-                "  Measured capacity: {:.3} Ah, {:.2} Wh at {:.3} A{rate}, {}",
+                "  Measured capacity: {:.3} Ah{}, {:.2} Wh{} at {:.3} A{rate}, {}",
                 c.measured_ah,
+                crate::pm(&u.measured_ah),
                 c.measured_wh,
+                crate::pm(&u.measured_wh),
                 c.mean_current_a,
                 match v.ended_on_cutoff {
                     Some(true) => "to the cutoff",
@@ -289,13 +324,22 @@ fn capacity_lines(o: &mut String, s: &Summary) {
                 );
             }
             if let Some(a) = v.corrected_ah.get() {
-                let _ = writeln!(o, "  Capacity (corrected): {a:.3} Ah, {}", v.conditions);
+                let _ = writeln!(
+                    o,
+                    "  Capacity (corrected): {a:.3} Ah{}, {}",
+                    crate::pm(&u.corrected_ah),
+                    v.conditions
+                );
+                if let Some(b) = &u.corrected_ah {
+                    let _ = writeln!(o, "    uncertainty: {}", b.note());
+                }
             }
             let _ = writeln!(
                 o,
                 "  State of health:   {}",
                 match (v.soh_pct.get(), c.rated_ah) {
-                    (Some(p), Some(r)) => format!("{p:.1} % of rated {r:.3} Ah"),
+                    (Some(p), Some(r)) =>
+                        format!("{p:.1} %{} of rated {r:.3} Ah", crate::pm(&u.soh_pct)),
                     _ => v.soh_pct.show(1, " %"),
                 }
             );
@@ -373,8 +417,10 @@ fn resistance_lines(o: &mut String, s: &Summary) {
     if let Some(r) = &s.resistance {
         let _ = writeln!(
             o,
-            "  DC resistance:     {:.2} mOhm ({})",
-            r.dcir_mohm, r.method
+            "  DC resistance:     {:.2} mOhm{} ({})",
+            r.dcir_mohm,
+            crate::pm(&s.verdict.uncertainty.resistance_mohm).replace("mΩ", "mOhm"),
+            r.method
         );
         if !r.why.is_empty() {
             let _ = writeln!(o, "    why this method:  {}", r.why);

@@ -3,7 +3,8 @@
 //! with the reasons for it. The default policy is
 //! `policies/default-grading.toml`.
 
-use super::schedule::{parse_days, Rule, Schedule};
+use super::schedule::{parse_days, Rule as ScheduleRule, Schedule};
+use crate::decision::{self, DecisionRule, InBand, Judged, Outcome, Rule};
 use chrono::NaiveDate;
 use model::location::{toml_error, InputErrors, LocatedError, Location};
 use model::pack::Chemistry;
@@ -41,6 +42,131 @@ struct RawPolicy {
     grade: Vec<Spanned<RawGrade>>,
     /// When packs are due for their next test (the fleet view).
     schedule: Option<Spanned<RawSchedule>>,
+    /// How a figure with an uncertainty is judged against a limit.
+    decision: Option<Spanned<RawDecision>>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawDecision {
+    /// "simple", "guard-band" or "specific-risk".
+    rule: Spanned<String>,
+    /// The guard band as a multiple of U (guard-band).
+    guard_band: Option<Spanned<f64>>,
+    /// The largest accepted probability that a pack is below a limit
+    /// (specific-risk), e.g. "2.5%".
+    max_false_accept: Option<Spanned<String>>,
+    /// "conditional" or "retest".
+    in_guard_band: Option<Spanned<String>>,
+    /// Refuse to grade where U exceeds this share of the narrowest grade
+    /// bin's half-width.
+    max_u_to_bin: Option<Spanned<f64>>,
+}
+
+fn decision(
+    raw: &RawDecision,
+    file: &Path,
+    text: &str,
+    errors: &mut Vec<LocatedError>,
+) -> DecisionRule {
+    let mut bad = |span: std::ops::Range<usize>, message: String| {
+        errors.push(LocatedError {
+            location: Location::of_span(file, text, &span),
+            message,
+        })
+    };
+    let rule = match raw.rule.get_ref().as_str() {
+        "simple" => Rule::Simple,
+        "guard-band" => match &raw.guard_band {
+            Some(m) if m.get_ref().is_finite() && *m.get_ref() > 0.0 && *m.get_ref() <= 5.0 => {
+                Rule::GuardBand {
+                    multiple_of_u: *m.get_ref(),
+                }
+            }
+            Some(m) => {
+                bad(
+                    m.span(),
+                    format!("decision.guard_band = {}: expected a multiple of U above 0 and at most 5 (1 keeps the false-accept risk under 2.5 %)", m.get_ref()),
+                );
+                Rule::Simple
+            }
+            None => {
+                bad(
+                    raw.rule.span(),
+                    "decision.rule = \"guard-band\" needs guard_band, the band as a multiple of U (e.g. 1.0)".into(),
+                );
+                Rule::Simple
+            }
+        },
+        "specific-risk" => match raw
+            .max_false_accept
+            .as_ref()
+            .map(|v| (v, units::parse(v.get_ref())))
+        {
+            Some((_, Ok(units::Quantity::Percent(p)))) if p > 0.0 && p < 50.0 => {
+                Rule::SpecificRisk {
+                    max_false_accept: p / 100.0,
+                }
+            }
+            Some((v, _)) => {
+                bad(
+                    v.span(),
+                    format!("decision.max_false_accept = \"{}\": expected a percentage above 0 and under 50, e.g. \"2.5%\"", v.get_ref()),
+                );
+                Rule::Simple
+            }
+            None => {
+                bad(
+                    raw.rule.span(),
+                    "decision.rule = \"specific-risk\" needs max_false_accept, e.g. \"2.5%\""
+                        .into(),
+                );
+                Rule::Simple
+            }
+        },
+        other => {
+            bad(
+                raw.rule.span(),
+                format!("decision.rule = \"{other}\": expected \"simple\", \"guard-band\" or \"specific-risk\""),
+            );
+            Rule::Simple
+        }
+    };
+    let in_band = match raw
+        .in_guard_band
+        .as_ref()
+        .map(|v| (v, v.get_ref().as_str()))
+    {
+        None | Some((_, "conditional")) => InBand::Conditional,
+        Some((_, "retest")) => InBand::Retest,
+        Some((v, other)) => {
+            bad(
+                v.span(),
+                format!(
+                    "decision.in_guard_band = \"{other}\": expected \"conditional\" or \"retest\""
+                ),
+            );
+            InBand::Conditional
+        }
+    };
+    let max_u_to_bin = match &raw.max_u_to_bin {
+        Some(r) if r.get_ref().is_finite() && *r.get_ref() > 0.0 && *r.get_ref() <= 1.0 => {
+            Some(*r.get_ref())
+        }
+        Some(r) => {
+            bad(
+                r.span(),
+                format!("decision.max_u_to_bin = {}: expected a ratio above 0 and at most 1 (0.25: U at most a quarter of the bin's half-width)", r.get_ref()),
+            );
+            None
+        }
+        None => None,
+    };
+    DecisionRule {
+        rule,
+        in_band,
+        max_u_to_bin,
+    }
 }
 
 #[derive(Debug, Deserialize)]
@@ -75,8 +201,8 @@ fn schedule(
         })
     };
     let rule = match r.rule.get_ref().as_str() {
-        "interval" => Rule::Interval,
-        "ieee-450" => Rule::Ieee450,
+        "interval" => ScheduleRule::Interval,
+        "ieee-450" => ScheduleRule::Ieee450,
         other => {
             bad(
                 &r.rule.span(),
@@ -106,7 +232,7 @@ fn schedule(
     };
     let service_life_days = match &r.service_life {
         Some(v) => Some(days(v, "service_life", &mut bad)?),
-        None if rule == Rule::Ieee450 => {
+        None if rule == ScheduleRule::Ieee450 => {
             bad(
                 &raw.span(),
                 "schedule.rule = \"ieee-450\" needs service_life, the expected service life (e.g. 20y)".into(),
@@ -170,6 +296,9 @@ pub struct Policy {
     pub grades: Vec<GradeRule>,
     /// When packs are due for a test, if the policy says.
     pub schedule: Option<Schedule>,
+    /// How figures with an uncertainty are judged against the grades'
+    /// limits (simple acceptance when the policy does not say).
+    pub decision: DecisionRule,
 }
 
 /// What a pack is graded on.
@@ -185,6 +314,29 @@ pub struct GradeInputs {
     pub weakest_group: Option<u32>,
     pub weakest_group_share_pct: Option<f64>,
     pub group_capacity_spread_pct: Option<f64>,
+    /// Standard uncertainties of the state of health, the resistance
+    /// growth and the coulombic efficiency (absent: judged as measured).
+    pub soh_u: Option<f64>,
+    pub resistance_growth_u: Option<f64>,
+    pub ce_u: Option<f64>,
+}
+
+impl GradeInputs {
+    /// A state of health alone (every other figure absent).
+    pub fn of_soh(chemistry: Chemistry, soh_pct: f64, soh_u: Option<f64>) -> GradeInputs {
+        GradeInputs {
+            chemistry,
+            soh_pct: Some(soh_pct),
+            resistance_growth_pct: None,
+            coulombic_efficiency_pct: None,
+            weakest_group: None,
+            weakest_group_share_pct: None,
+            group_capacity_spread_pct: None,
+            soh_u,
+            resistance_growth_u: None,
+            ce_u: None,
+        }
+    }
 }
 
 /// A grade with its reasons.
@@ -194,6 +346,66 @@ pub struct Grade {
     pub meaning: String,
     pub policy: String,
     pub reasons: Vec<String>,
+    /// The decision rule the grade was given under and what it found
+    /// (absent in older records).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub decision: Option<GradeDecision>,
+}
+
+/// How a grade was decided: the rule, whether the grade is conditional
+/// (a figure inside a guard band took the lower grade), and the state of
+/// health at its nearest boundary.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct GradeDecision {
+    /// The rule in words.
+    pub rule: String,
+    pub conditional: bool,
+    /// The policy asks for a retest where a figure is in a guard band.
+    pub retest: bool,
+    /// The figures inside a guard band, and at which grade's limit.
+    pub in_band: Vec<String>,
+    /// The state of health at the nearest grade boundary, with the
+    /// probability that the pack is below it.
+    pub nearest: Option<Judged>,
+}
+
+impl GradeDecision {
+    /// One line for the card and the terminal.
+    pub fn line(&self) -> String {
+        let mut s = String::new();
+        if self.conditional {
+            s.push_str(if self.retest {
+                "RETEST: "
+            } else {
+                "conditional: "
+            });
+            s.push_str(&self.in_band.join("; "));
+            s.push_str(". ");
+        }
+        if let Some(n) = &self.nearest {
+            if let Some(p) = n.p_wrong_side_pct {
+                s.push_str(&format!(
+                    "probability that the state of health is below the {} % boundary: {}",
+                    n.limit,
+                    show_probability(p)
+                ));
+            }
+        }
+        s
+    }
+}
+
+/// A probability in percent as a reader wants it: "< 0.01 %" when tiny.
+pub fn show_probability(p_pct: f64) -> String {
+    if p_pct < 0.01 {
+        "< 0.01 %".into()
+    } else if p_pct > 99.99 {
+        "> 99.99 %".into()
+    } else if !(1.0..=99.0).contains(&p_pct) {
+        format!("{p_pct:.2} %")
+    } else {
+        format!("{p_pct:.1} %")
+    }
 }
 
 fn percent(
@@ -314,6 +526,11 @@ impl Policy {
             .schedule
             .as_ref()
             .and_then(|s| schedule(s, file, text, &mut errors));
+        let decision = raw
+            .decision
+            .as_ref()
+            .map(|d| decision(d.get_ref(), file, text, &mut errors))
+            .unwrap_or_default();
         if !errors.is_empty() {
             return Err(InputErrors(errors));
         }
@@ -321,6 +538,7 @@ impl Policy {
             name: raw.name,
             grades,
             schedule,
+            decision,
         })
     }
 
@@ -335,25 +553,42 @@ impl Policy {
     /// Grade a pack: the first grade whose every measured criterion holds.
     pub fn grade(&self, x: &GradeInputs) -> Grade {
         let mut why_not = Vec::new();
+        // Figures a higher grade missed only inside a guard band.
+        let mut in_band: Vec<String> = Vec::new();
+        let rule_of = self.decision.rule;
         for rule in &self.grades {
             let mut reasons = Vec::new();
             let mut fails = Vec::new();
-            let mut check = |name: &str, value: Option<f64>, limit: Option<f64>, at_least: bool| {
+            let mut band = Vec::new();
+            let mut check = |name: &str,
+                             value: Option<f64>,
+                             u: Option<f64>,
+                             limit: Option<f64>,
+                             at_least: bool| {
                 let Some(limit) = limit else { return };
                 match value {
                     None => reasons.push(format!("{name} not measured (criterion skipped)")),
                     Some(v) => {
-                        let ok = if at_least { v >= limit } else { v <= limit };
-                        let op = match (at_least, ok) {
-                            (true, true) => ">=",
-                            (true, false) => "<",
-                            (false, true) => "<=",
-                            (false, false) => ">",
+                        let j = decision::judge(&rule_of, name, v, u, 2.0, limit, at_least);
+                        let ok = j.outcome == Outcome::Pass;
+                        let op = match (at_least, v >= limit, v <= limit) {
+                            (true, true, _) => ">=",
+                            (true, false, _) => "<",
+                            (false, _, true) => "<=",
+                            (false, _, false) => ">",
                         };
                         // Efficiencies sit close to their floors: two decimals so 99.96 %
                         // does not print as 100.0 %.
                         let d = if name == "coulombic efficiency" { 2 } else { 1 };
-                        let line = format!("{name} {v:.d$} % {op} {limit} %");
+                        let mut line = format!("{name} {v:.d$} % {op} {limit} %");
+                        if j.outcome.in_band() {
+                            line.push_str(&format!(
+                                " ({}: within the guard band of {:.d$} points)",
+                                j.outcome.words(),
+                                j.guard_band
+                            ));
+                            band.push(line.clone());
+                        }
                         if ok {
                             reasons.push(line)
                         } else {
@@ -366,12 +601,14 @@ impl Policy {
             check(
                 "state of health",
                 x.soh_pct,
+                x.soh_u,
                 rule.soh_min.as_ref().and_then(|t| t.for_chemistry(c)),
                 true,
             );
             check(
                 "resistance growth",
                 x.resistance_growth_pct,
+                x.resistance_growth_u,
                 rule.resistance_growth_max
                     .as_ref()
                     .and_then(|t| t.for_chemistry(c)),
@@ -380,6 +617,7 @@ impl Policy {
             check(
                 "coulombic efficiency",
                 x.coulombic_efficiency_pct,
+                x.ce_u,
                 rule.ce_min.as_ref().and_then(|t| t.for_chemistry(c)),
                 true,
             );
@@ -427,7 +665,14 @@ impl Policy {
                     meaning: rule.meaning.clone(),
                     policy: self.name.clone(),
                     reasons: all,
+                    decision: Some(self.decided(x, in_band)),
                 };
+            }
+            // A grade missed only inside guard bands: the grade given is
+            // conditional (ILAC-G8 4.2.3; the policy says conditional or
+            // retest).
+            if band.len() == fails.len() {
+                in_band.extend(band.into_iter().map(|b| format!("not {}: {b}", rule.label)));
             }
             why_not.push(format!("not {}: {}", rule.label, fails.join("; ")));
         }
@@ -437,7 +682,65 @@ impl Policy {
             meaning: String::new(),
             policy: self.name.clone(),
             reasons: why_not,
+            decision: None,
         }
+    }
+
+    /// The rule, whether the grade is conditional, and the state of
+    /// health at its nearest boundary.
+    fn decided(&self, x: &GradeInputs, in_band: Vec<String>) -> GradeDecision {
+        let nearest = x.soh_pct.and_then(|v| {
+            self.soh_limits(x.chemistry)
+                .into_iter()
+                .min_by(|a, b| (a - v).abs().total_cmp(&(b - v).abs()))
+                .map(|l| {
+                    decision::judge(
+                        &self.decision.rule,
+                        "state of health",
+                        v,
+                        x.soh_u,
+                        2.0,
+                        l,
+                        true,
+                    )
+                })
+        });
+        GradeDecision {
+            rule: self.decision.rule.words(),
+            conditional: !in_band.is_empty(),
+            retest: !in_band.is_empty() && self.decision.in_band == InBand::Retest,
+            in_band,
+            nearest,
+        }
+    }
+
+    /// The state-of-health floors of the grades for a chemistry.
+    pub fn soh_limits(&self, c: Chemistry) -> Vec<f64> {
+        self.grades
+            .iter()
+            .filter_map(|g| g.soh_min.as_ref().and_then(|t| t.for_chemistry(c)))
+            .collect()
+    }
+
+    /// Refuse to grade where the state of health's expanded uncertainty
+    /// (k = 2) exceeds the policy's share of the narrowest state-of-health
+    /// bin's half-width (metrology.md §2 rule 5). Returns why.
+    pub fn refuses(&self, c: Chemistry, soh_u: Option<f64>) -> Option<String> {
+        let ratio = self.decision.max_u_to_bin?;
+        let u = soh_u?;
+        let mut limits = self.soh_limits(c);
+        limits.sort_by(f64::total_cmp);
+        let half = limits
+            .windows(2)
+            .map(|w| 0.5 * (w[1] - w[0]))
+            .filter(|h| *h > 0.0)
+            .min_by(f64::total_cmp)?;
+        let big = 2.0 * u;
+        (big > ratio * half).then(|| {
+            format!(
+                "the state of health's uncertainty U = {big:.2} points is more than {ratio} of the narrowest grade bin's half-width ({half:.1} points): not graded; improve the bench's accuracy (tare, calibrate) or test again"
+            )
+        })
     }
 }
 
