@@ -96,6 +96,11 @@ pub struct AnalyzeArgs {
     /// charge, e.g. 4000,2000.
     #[arg(long, value_delimiter = ',')]
     pub power_targets: Option<Vec<f64>>,
+    /// Validate each figure's uncertainty budget by a Monte Carlo of N
+    /// trials (JCGM 101:2008): its standard deviation and 95 % interval
+    /// against the GUM's.
+    #[arg(long, value_name = "N")]
+    pub monte_carlo: Option<usize>,
     /// Do not correct the capacity for temperature.
     #[arg(long)]
     pub no_temperature_correction: bool,
@@ -421,7 +426,60 @@ pub fn cmd_analyze(a: AnalyzeArgs) -> anyhow::Result<ExitCode> {
             writeln!(out, "  Curves: {}", dir.display())?;
         }
     }
+    if let Some(n) = a.monte_carlo {
+        write!(out, "{}", monte_carlo_text(&s.verdict.uncertainty, n))?;
+    }
     Ok(ExitCode::Ok)
+}
+
+/// Each budget validated by a Monte Carlo of its terms (JCGM 101:2008 8):
+/// the GUM interval y ± U (or the budget's own Monte Carlo interval where
+/// a rectangular term dominates) against N fresh trials; validated where
+/// both ends agree within half a unit of U's last digit.
+pub fn monte_carlo_text(u: &record::budget::Uncertainty, n: usize) -> String {
+    use analysis::uncertainty::{decimals_for, monte_carlo};
+    let mut o = String::new();
+    if let Some(w) = &u.absent {
+        o.push_str(&format!("  Monte Carlo: no budgets ({w})\n"));
+        return o;
+    }
+    o.push_str(&format!(
+        "  Monte Carlo validation of the budgets (JCGM 101:2008, {n} trials):\n"
+    ));
+    for (name, b) in [
+        ("measured capacity", &u.measured_ah),
+        ("measured energy", &u.measured_wh),
+        ("corrected capacity", &u.corrected_ah),
+        ("state of health", &u.soh_pct),
+        ("coulombic efficiency", &u.coulombic_efficiency_pct),
+        ("energy efficiency", &u.energy_efficiency_pct),
+        ("DC resistance", &u.resistance_mohm),
+    ] {
+        let Some(b) = b else { continue };
+        let mc = monte_carlo(b, n, 0x6a63_6d31);
+        let hw = b.half_width();
+        let dec = decimals_for(hw);
+        let tol = 0.5 * 10f64.powi(-(dec as i32));
+        let (lo, hi) = (b.value - hw, b.value + hw);
+        let ok = (mc.lo - lo).abs() <= tol && (mc.hi - hi).abs() <= tol;
+        let gum_k2 = (b.value - b.expanded, b.value + b.expanded);
+        let d = dec + 1;
+        o.push_str(&format!(
+            "    {name}: reported [{lo:.d$}, {hi:.d$}] {unit}; Monte Carlo sd {:.d$}, 95 % [{:.d$}, {:.d$}]; k = 2 gives [{:.d$}, {:.d$}]: {}\n",
+            mc.sd,
+            mc.lo,
+            mc.hi,
+            gum_k2.0,
+            gum_k2.1,
+            if ok {
+                format!("validated (ends within {tol})")
+            } else {
+                format!("NOT validated at {tol}: use the Monte Carlo interval")
+            },
+            unit = b.unit
+        ));
+    }
+    o
 }
 
 #[derive(Debug, Args)]

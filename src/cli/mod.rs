@@ -3,6 +3,7 @@
 
 pub mod analyze;
 pub mod args;
+pub mod calibrate;
 pub mod characterize;
 pub mod check;
 pub mod demo;
@@ -79,6 +80,9 @@ pub enum Command {
     /// Pulse-power levels of a log as OCV, equivalent-circuit and power
     /// tables (CSV, JSON, C header).
     Characterize(crate::cli::characterize::CharacterizeArgs),
+    /// Check the bench's current and voltage readings against a reference
+    /// meter and keep the calibration record runs apply.
+    Calibrate(crate::cli::calibrate::CalibrateArgs),
     /// Peukert exponent from two capacity runs of a pack at different rates.
     Peukert(crate::cli::analyze::PeukertArgs),
     /// Estimate a pack's capacity from a screening run and its family's calibration.
@@ -121,6 +125,9 @@ pub fn main() -> i32 {
         Command::Serve(a) => crate::cli::serve::cmd_serve(a).context("console failed"),
         Command::Characterize(a) => {
             crate::cli::characterize::cmd_characterize(a).context("characterization failed")
+        }
+        Command::Calibrate(a) => {
+            crate::cli::calibrate::cmd_calibrate(a).context("calibration failed")
         }
         Command::Peukert(a) => crate::cli::analyze::cmd_peukert(a).context("peukert failed"),
         Command::GradeQuick(a) => crate::cli::quick::cmd_quick(a).context("quick grade failed"),

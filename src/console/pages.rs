@@ -122,18 +122,31 @@ pub fn qr_svg(text: &str, size_mm: f64) -> Option<String> {
 /// state of health, as the packs list and the report show them.
 pub fn label_figures(s: &record::Summary) -> (String, String, String) {
     let v = &s.verdict;
-    let grade = v.grade_label().unwrap_or("-").to_string();
-    let cap = v
-        .corrected_ah
-        .get()
-        .or(v.measured_ah.get())
-        .map(|a| format!("{a:.2} Ah"))
-        .unwrap_or("-".into());
-    let soh = v
-        .soh_pct
-        .get()
-        .map(|p| format!("{p:.1} %"))
-        .unwrap_or("-".into());
+    let u = &v.uncertainty;
+    let grade = match v.grade.value() {
+        Some(g) => match &g.decision {
+            Some(d) if d.retest => format!("{} retest", g.label),
+            Some(d) if d.conditional => format!("{} cond.", g.label),
+            _ => g.label.clone(),
+        },
+        None => "-".to_string(),
+    };
+    // The capacity with its uncertainty, where the budget exists.
+    let cap = match (
+        v.corrected_ah.get(),
+        &u.corrected_ah,
+        v.measured_ah.get(),
+        &u.measured_ah,
+    ) {
+        (Some(_), Some(b), _, _) | (None, _, Some(_), Some(b)) => b.short(),
+        (Some(a), None, _, _) | (None, _, Some(a), None) => format!("{a:.2} Ah"),
+        _ => "-".into(),
+    };
+    let soh = match (v.soh_pct.get(), &u.soh_pct) {
+        (Some(_), Some(b)) => b.short(),
+        (Some(p), None) => format!("{p:.1} %"),
+        _ => "-".into(),
+    };
     (cap, soh, grade)
 }
 

@@ -162,7 +162,10 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
         record_incomplete: Vec::new(),
         failed_resumes: Vec::new(),
         accuracy: Some(station_accuracy(&links)),
+        calibration: None,
     };
+    let mut manifest = manifest;
+    apply_calibration(p, &links, &mut manifest)?;
     let rec = Recording {
         dir,
         run_id,
@@ -177,6 +180,39 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
         sim,
     };
     drive(p, rec, sink, bench, stop).await
+}
+
+/// The station's current calibration (`<results>/_calibration/<station>/`,
+/// the simulated bench's station being `sim`): recorded in `run.json`,
+/// applied to the readings by the engine, and its uncertainty used in the
+/// budgets where it is better than the stated accuracy. An overdue one is
+/// still applied, and said.
+fn apply_calibration(
+    p: &Prepared,
+    links: &BenchLinks,
+    manifest: &mut Manifest,
+) -> Result<(), RunError> {
+    let station = match &links.hooks.station {
+        Some((name, _)) => name.clone(),
+        None if links.kind == crate::session::links::SIMULATED => "sim".to_string(),
+        None => return Ok(()),
+    };
+    let results = p.pack_dir.parent().unwrap_or(&p.pack_dir);
+    let Some((path, rec)) = record::calibration::current(results, &station)? else {
+        return Ok(());
+    };
+    let used = record::calibration::CalibrationUse::of(&path, &rec, p.options.test_date);
+    if used.overdue {
+        eprintln!(
+            "warning: the calibration of station {station} was due on {} (it is applied; calibrate the station again: packbench calibrate)",
+            rec.next_due
+        );
+    }
+    if let Some(acc) = manifest.accuracy.as_mut() {
+        record::calibration::apply_to_accuracy(acc, &rec);
+    }
+    manifest.calibration = Some(used);
+    Ok(())
 }
 
 /// What the station's instruments state of their readings' accuracy.
@@ -339,7 +375,8 @@ pub async fn drive(
             truth,
             stop,
         )
-        .with_capacity_alarm(alarm_ah);
+        .with_capacity_alarm(alarm_ah)
+        .with_calibration(manifest.calibration.as_ref().map(|c| c.corrections));
         if let Some(r) = resume {
             engine = engine.resume_from(r);
         }

@@ -62,6 +62,9 @@ pub enum Failure {
     /// The async runtime could not start.
     #[error("cannot start the runtime: {0}")]
     Runtime(std::io::Error),
+    /// A calibration could not be completed (the outputs were switched off).
+    #[error("calibration: {0}")]
+    Calibration(String),
 }
 
 /// Everything that can go wrong in a session.

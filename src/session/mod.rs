@@ -4,6 +4,7 @@
 
 pub mod awake;
 pub mod benchfile;
+pub mod calibrate;
 pub mod drive;
 pub mod emergency;
 pub mod error;

@@ -26,7 +26,10 @@ fn the_readme_command_runs_a_capacity_check() {
     );
     for needle in [
         "Measured capacity:",
-        "Ah,",
+        // Every figure with its uncertainty, and the rule before them.
+        "Ah ± ",
+        "(k = 2, 95 %)",
+        "Decision rule:",
         "Wh",
         "State of health:",
         "coulombic efficiency",

@@ -38,4 +38,5 @@ mod sim_scpi;
 mod storage;
 #[cfg(unix)]
 mod unattended;
+mod uncertainty;
 mod verdict;

@@ -6,6 +6,7 @@
 //! signed; cycle and capacity figures are magnitudes.
 
 pub mod bms;
+pub mod calibration;
 pub mod characterize;
 pub mod correct;
 pub mod curves;

@@ -460,8 +460,40 @@ pub struct StepInputs<'a> {
     pub cutoff_v: Option<f64>,
 }
 
+/// A gain term: a stated limit (rectangular) or a calibration's u (normal).
+fn gain_term(name: &str, value: f64, spec: &Spec, common: &str) -> Term {
+    if spec.calibrated {
+        normal(
+            name,
+            value * spec.gain_u(),
+            true,
+            format!(
+                "u = {:.4} % of reading from the station's calibration, {common}",
+                spec.reading_pct
+            ),
+        )
+    } else {
+        rect(
+            name,
+            value * spec.gain_limit(),
+            true,
+            format!("±{} % of reading, {common}", spec.reading_pct),
+        )
+    }
+}
+
 /// The current-offset term's standard uncertainty, A, and how it was found.
 fn offset_u(x: &StepInputs<'_>) -> (f64, Shape, String) {
+    if x.current.calibrated {
+        return (
+            x.current.offset_u(),
+            Shape::Normal,
+            format!(
+                "the station's calibration (its offset and linearity): u = {:.3} mA",
+                x.current.offset_u() * 1e3
+            ),
+        );
+    }
     match x.tare {
         Some(t) => {
             let s = x.measure.noise_a.unwrap_or(0.0);
@@ -481,7 +513,7 @@ fn offset_u(x: &StepInputs<'_>) -> (f64, Shape, String) {
             )
         }
         None => (
-            x.current.offset_limit() / 3f64.sqrt(),
+            x.current.offset_u(),
             Shape::Rectangular,
             format!(
                 "no zero tare: the stated offset ±{:.2} mA, rectangular",
@@ -495,15 +527,11 @@ fn offset_u(x: &StepInputs<'_>) -> (f64, Shape, String) {
 pub fn charge_terms(x: &StepInputs<'_>) -> Vec<Term> {
     let m = x.measure;
     let t = x.duration_s;
-    let ag = x.current.gain_limit();
-    let mut out = vec![rect(
+    let mut out = vec![gain_term(
         "current gain",
-        x.q_ah * ag,
-        true,
-        format!(
-            "±{} % of reading, the same on every sample",
-            x.current.reading_pct
-        ),
+        x.q_ah,
+        x.current,
+        "the same on every sample",
     )];
     let (uo, shape, basis) = offset_u(x);
     out.push(Term {
@@ -605,11 +633,11 @@ pub fn energy_terms(x: &StepInputs<'_>) -> Vec<Term> {
         0.0
     };
     let mut out = Vec::new();
-    out.push(rect(
+    out.push(gain_term(
         "current gain",
-        x.e_wh * x.current.gain_limit(),
-        true,
-        format!("±{} % of reading", x.current.reading_pct),
+        x.e_wh,
+        x.current,
+        "on every sample",
     ));
     if let Some(v) = x.voltage {
         out.push(rect(
@@ -911,6 +939,7 @@ mod tests {
             range_pct: 0.02,
             offset: 0.0,
             resolution: 0.0001,
+            calibrated: false,
         }
         .resolved(Some(5.0));
         let v = Spec {
@@ -918,6 +947,7 @@ mod tests {
             range_pct: 0.0,
             offset: 0.0005,
             resolution: 0.0,
+            calibrated: false,
         };
         (m, i, v)
     }

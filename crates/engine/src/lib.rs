@@ -165,8 +165,9 @@ pub struct ZeroOffsets {
     pub load_a: Option<f64>,
 }
 
-/// Readings averaged for a zero offset before the run.
-pub const ZERO_READINGS: usize = 10;
+/// Readings averaged for a zero offset before the run (the uncertainty
+/// budget's tare term reads the same number: a test keeps them equal).
+pub const ZERO_READINGS: usize = record::budget::TARE_READINGS;
 /// Readings averaged for a drain step's own zero (its figure is a few mA).
 pub const DRAIN_ZERO_READINGS: usize = 50;
 
@@ -243,6 +244,9 @@ pub struct Engine<'a> {
     next_trip_poll: f64,
     timing: Timing,
     zero: ZeroOffsets,
+    /// The station's calibration, applied to every reading (absent: the
+    /// readings as the instruments give them, less their zero offsets).
+    calibration: Option<analysis::calibration::Corrections>,
     alarm_capacity_ah: Option<f64>,
     resume: Option<ResumePoint>,
     /// The source's zero read just before the drain step now running.
@@ -314,6 +318,7 @@ impl<'a> Engine<'a> {
             next_trip_poll: TRIP_POLL_S,
             timing: Timing::default(),
             zero: ZeroOffsets::default(),
+            calibration: None,
             alarm_capacity_ah: None,
             resume: None,
             drain_zero: None,
@@ -350,6 +355,32 @@ impl<'a> Engine<'a> {
             message: m.clone(),
         });
         Err(Stop::Breach(m))
+    }
+
+    /// Apply a calibration's corrections to every reading: each current by
+    /// the line of its direction (in place of the zero offset, which the
+    /// line's own offset holds), the voltage by its line.
+    pub fn with_calibration(mut self, c: Option<analysis::calibration::Corrections>) -> Self {
+        self.calibration = c;
+        self
+    }
+
+    /// A reading as logged: calibrated where the station has a
+    /// calibration, else less the instrument's zero offset.
+    fn logged(&self, r: &Reading, step: &PlanStep) -> (f64, f64) {
+        let tared = r.current_a - self.zero_of(step);
+        match &self.calibration {
+            Some(c) => {
+                let i =
+                    if self.active == Active::None || matches!(step.kind, StepKind::Drain { .. }) {
+                        tared
+                    } else {
+                        c.current(r.current_a).unwrap_or(tared)
+                    };
+                (c.voltage(r.voltage_v), i)
+            }
+            None => (r.voltage_v, tared),
+        }
     }
 
     /// Keep trying an unconfirmed switch-off this long (wall clock).
@@ -1476,12 +1507,13 @@ impl<'a> Engine<'a> {
             self.timing.max_late_s = self.timing.max_late_s.max(late);
         }
         let (reading, temp) = self.measure().await?;
+        let (voltage_v, current_a) = self.logged(&reading, st);
         let s = Sample {
             t_s: t,
             step: st.index,
             cycle: st.cycle,
-            voltage_v: reading.voltage_v,
-            current_a: reading.current_a - self.zero_of(st),
+            voltage_v,
+            current_a,
             temperature_c: temp,
         };
         self.sink.sample(&s).map_err(Stop::Log)?;

@@ -392,6 +392,39 @@ impl RunRecord {
                 },
             ));
         }
+        // Each figure's expanded uncertainty (the reported 95 % interval's
+        // half-width), or why there is none.
+        let u = &v.uncertainty;
+        for (k, b) in [
+            ("packbench.capacity_ah_u95", &u.measured_ah),
+            ("packbench.corrected_ah_u95", &u.corrected_ah),
+            ("packbench.soh_pct_u95", &u.soh_pct),
+            ("packbench.dcir_mohm_u95", &u.resistance_mohm),
+            (
+                "packbench.coulombic_efficiency_pct_u95",
+                &u.coulombic_efficiency_pct,
+            ),
+        ] {
+            out.push((
+                k,
+                match (b, &u.absent) {
+                    (Some(b), _) => b.half_width().to_string(),
+                    (None, Some(w)) => format!("absent: {w}"),
+                    (None, None) => "absent: no figure".to_string(),
+                },
+            ));
+        }
+        out.push((
+            "packbench.uncertainty",
+            format!(
+                "95 % intervals (GUM, JCGM 100:2008; Monte Carlo per JCGM 101:2008 where a rectangular term dominates); {}",
+                u.basis_line()
+            ),
+        ));
+        if let Some(d) = v.grade.value().and_then(|g| g.decision.as_ref()) {
+            out.push(("packbench.decision_rule", d.rule.clone()));
+            out.push(("packbench.grade_conditional", d.conditional.to_string()));
+        }
         out.push((
             "packbench.grade",
             v.grade_label().map(str::to_string).unwrap_or_else(|| {

@@ -481,6 +481,18 @@ impl Instrument {
             .await
     }
 
+    /// Current only (a reference meter's current input or shunt), in the
+    /// sign the instrument reports.
+    pub async fn measure_current(&mut self) -> Result<f64, InstrumentError> {
+        let Some(c) = self.profile.commands.measure_current.clone() else {
+            return Err(self.err(
+                ErrorKind::Reported,
+                "the profile has no command to measure current (commands.measure_current)".into(),
+            ));
+        };
+        self.session.query_number(&c).await
+    }
+
     /// Temperature from the instrument's sensor input, if it has one.
     pub async fn measure_temperature(&mut self) -> Result<Option<f64>, InstrumentError> {
         match &self.profile.commands.measure_temperature {

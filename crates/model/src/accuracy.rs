@@ -24,6 +24,10 @@ pub struct Spec {
     pub offset: f64,
     /// The smallest step of a reading, V or A (0: not stated).
     pub resolution: f64,
+    /// From a calibration: `reading_pct` and `offset` are then standard
+    /// uncertainties of a normal distribution, not stated limits.
+    #[serde(skip_serializing_if = "std::ops::Not::not")]
+    pub calibrated: bool,
 }
 
 impl Spec {
@@ -35,6 +39,7 @@ impl Spec {
             range_pct: 0.0,
             offset: self.offset + self.range_pct / 100.0 * range.unwrap_or(0.0),
             resolution: self.resolution,
+            calibrated: self.calibrated,
         }
     }
     /// The gain limit as a fraction (± a_g).
@@ -48,6 +53,23 @@ impl Spec {
     /// The whole limit at a reading `x`: a_g·|x| + a_o.
     pub fn limit_at(&self, x: f64) -> f64 {
         self.gain_limit() * x.abs() + self.offset_limit()
+    }
+    /// The gain's standard uncertainty (fraction): a stated limit over √3
+    /// (rectangular), or a calibration's own u.
+    pub fn gain_u(&self) -> f64 {
+        if self.calibrated {
+            self.gain_limit()
+        } else {
+            self.gain_limit() / 3f64.sqrt()
+        }
+    }
+    /// The offset's standard uncertainty, likewise.
+    pub fn offset_u(&self) -> f64 {
+        if self.calibrated {
+            self.offset_limit()
+        } else {
+            self.offset_limit() / 3f64.sqrt()
+        }
     }
     /// Figures a reader can check: finite and not negative.
     pub fn check(&self, what: &str) -> Result<(), String> {
@@ -203,6 +225,7 @@ impl BenchAccuracy {
                 range_pct: 0.0,
                 offset: a.offset.max(b.offset),
                 resolution: a.resolution.max(b.resolution),
+                calibrated: false,
             }),
             (a, b) => a.or(b),
         };
@@ -244,6 +267,7 @@ mod tests {
             range_pct: 0.05,
             offset: 0.002,
             resolution: 0.001,
+            calibrated: false,
         };
         let r = s.resolved(Some(60.0));
         // 0.05 % of 60 A = 30 mA, plus 2 mA.

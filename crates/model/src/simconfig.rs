@@ -163,6 +163,7 @@ impl MeterConfig {
             range_pct: 0.0,
             offset: self.offset.abs(),
             resolution: self.resolution,
+            calibrated: false,
         })
     }
 
@@ -188,6 +189,7 @@ fn stated(reading_pct: f64, offset: f64, resolution: f64) -> Option<crate::accur
         range_pct: 0.0,
         offset,
         resolution,
+        calibrated: false,
     })
 }
 

@@ -12,6 +12,7 @@
 //! never leaves one half-written. No statistics here.
 
 pub mod budget;
+pub mod calibration;
 pub mod error;
 pub mod event;
 pub mod history;
@@ -142,6 +143,9 @@ pub struct Summary {
     /// `run.json`; absent for a foreign log and older records).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub accuracy: Option<model::accuracy::BenchAccuracy>,
+    /// The station's calibration the run applied (from `run.json`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub calibration: Option<calibration::CalibrationUse>,
     /// What was not worked out because the log came without a pack spec
     /// (no rated capacity): empty when the spec was given.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]

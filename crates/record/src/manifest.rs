@@ -59,6 +59,9 @@ pub struct Manifest {
     /// budgets are computed from it.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub accuracy: Option<model::accuracy::BenchAccuracy>,
+    /// The station's calibration the run applied to its readings.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub calibration: Option<crate::calibration::CalibrationUse>,
 }
 
 /// A resume that could not reach the bench.

@@ -157,6 +157,7 @@ pub fn build_summary(
         groups: a.groups,
         characterization: a.characterization,
         accuracy: None,
+        calibration: None,
     }
 }
 
@@ -335,6 +336,7 @@ pub fn summarize_run_with_curves(
     // for each group scan.
     let manifest = crate::read::read_manifest(&dir.join(crate::RUN_JSON)).ok();
     let accuracy = manifest.as_ref().and_then(|m| m.accuracy.clone());
+    let calibration = manifest.as_ref().and_then(|m| m.calibration.clone());
     let channels = manifest.and_then(|m| m.groups);
     let mut pack_points: Vec<analysis::groups::PackPoint> = Vec::new();
     let rep = stream_log(&dir.join(SAMPLES_CSV), &LogFormat::default(), |r: Row| {
@@ -385,6 +387,15 @@ pub fn summarize_run_with_curves(
     add_event_records(&mut s, &events);
     // Judged again with the readings' stated accuracy and the preflight's
     // tare: every figure gets its budget and the grade its decision rule.
+    if let Some(c) = &calibration {
+        if c.overdue {
+            s.warnings.push(format!(
+                "the station's calibration {} was due on {}: it was applied, but the bench is out of its calibration interval",
+                c.id, c.next_due
+            ));
+        }
+    }
+    s.calibration = calibration;
     if accuracy.is_some() {
         s.accuracy = accuracy;
         let added: Vec<String> = crate::verdict::rejudge(&mut s, Some(ctx.policy))

@@ -51,6 +51,7 @@ fn f(v: Option<f64>, d: usize) -> String {
 fn grade_card(s: &Summary) -> String {
     let mut o = String::new();
     let v = &s.verdict;
+    let u = &v.uncertainty;
     let label = v.grade_label().unwrap_or("–");
     let _ = write!(
         o,
@@ -64,21 +65,32 @@ fn grade_card(s: &Summary) -> String {
     );
     let _ = write!(o, "<dl>");
     let rows = [
-        ("State of health", Some(v.soh_pct.show(1, " %"))),
+        (
+            "State of health",
+            Some(match (v.soh_pct.get(), &u.soh_pct) {
+                (Some(_), Some(b)) => b.show(),
+                _ => v.soh_pct.show(1, " %"),
+            }),
+        ),
         (
             // The capacity the state of health is computed from, and what
             // was done to it.
             "Capacity (corrected)",
             Some(match v.corrected_ah.get() {
-                Some(c) => format!("{c:.3} Ah: {}", v.conditions),
+                Some(c) => format!("{c:.3} Ah{}: {}", crate::pm(&u.corrected_ah), v.conditions),
                 None => v.corrected_ah.show(3, " Ah"),
             }),
         ),
         (
             "Measured capacity",
-            v.measured_ah
-                .get()
-                .map(|a| format!("{a:.3} Ah / {} Wh", f(v.measured_wh.get(), 1))),
+            v.measured_ah.get().map(|a| {
+                format!(
+                    "{a:.3} Ah{} / {} Wh{}",
+                    crate::pm(&u.measured_ah),
+                    f(v.measured_wh.get(), 1),
+                    crate::pm(&u.measured_wh)
+                )
+            }),
         ),
         (
             "At",
@@ -94,7 +106,18 @@ fn grade_card(s: &Summary) -> String {
             "New nominal for the BMS",
             Some(v.new_nominal_ah.show(3, " Ah")),
         ),
-        ("DC resistance", Some(v.resistance_mohm.show(1, " mΩ"))),
+        (
+            "DC resistance",
+            Some(format!(
+                "{}{}",
+                v.resistance_mohm.show(1, " mΩ"),
+                if v.resistance_mohm.get().is_some() {
+                    crate::pm(&u.resistance_mohm)
+                } else {
+                    String::new()
+                }
+            )),
+        ),
         (
             "Resistance growth",
             Some(v.resistance_growth_pct.show(1, " %")),
@@ -102,7 +125,11 @@ fn grade_card(s: &Summary) -> String {
         (
             "Coulombic efficiency",
             Some(match v.efficiency_cycle {
-                Some(c) => format!("{} (cycle {c})", v.coulombic_efficiency_pct.show(2, " %")),
+                Some(c) => format!(
+                    "{}{} (cycle {c})",
+                    v.coulombic_efficiency_pct.show(2, " %"),
+                    crate::pm(&u.coulombic_efficiency_pct)
+                ),
                 None => v.coulombic_efficiency_pct.show(2, " %"),
             }),
         ),
@@ -150,6 +177,21 @@ fn grade_card(s: &Summary) -> String {
             "</ul><div style=\"font-size:11px;color:#555\">policy: {}</div>",
             escape(&g.policy)
         );
+        if let Some(d) = &g.decision {
+            if d.conditional {
+                let _ = write!(
+                    o,
+                    "<div class=\"flag\">{}</div>",
+                    if d.retest { "RETEST" } else { "CONDITIONAL" }
+                );
+            }
+            let _ = write!(
+                o,
+                "<div style=\"font-size:11px;color:#555\">decision rule: {}<br>{}</div>",
+                escape(&d.rule),
+                escape(&d.line())
+            );
+        }
     }
     let _ = write!(
         o,
@@ -213,6 +255,7 @@ pub fn run_report(s: &Summary, charts: &ChartData) -> String {
     if let Some(r) = &s.stop_reason {
         let _ = write!(b, "<p class=\"flag\">Stopped: {}</p>", escape(r));
     }
+    decision_section(&mut b, s);
     let _ = write!(b, "<h2>Grade card</h2>{}", grade_card(s));
     let _ = write!(b, "<h2>Summary</h2><table>");
     for (k, v) in summary_rows(s) {
@@ -241,8 +284,100 @@ pub fn run_report(s: &Summary, charts: &ChartData) -> String {
     if let Some(c) = &s.characterization {
         characterization_section(&mut b, c);
     }
+    budget_section(&mut b, s);
     step_table(&mut b, s);
     page(&format!("packbench — {} — {}", s.pack_id, s.run_id), &b)
+}
+
+/// How the figures are judged and what their uncertainty rests on:
+/// stated before any figure (ISO/IEC 17025:2017 7.1.3: the decision rule
+/// agreed before the test).
+fn decision_section(b: &mut String, s: &Summary) {
+    let _ = write!(b, "<h2>Decision rule and accuracy</h2><table>");
+    let rule = s
+        .verdict
+        .grade
+        .value()
+        .and_then(|g| g.decision.as_ref())
+        .map(|d| d.rule.clone())
+        .unwrap_or_else(|| "not graded: no rule applied".into());
+    for (k, v) in [
+        ("Decision rule", rule),
+        ("Accuracy", s.verdict.uncertainty.basis_line()),
+        (
+            "Calibration",
+            match &s.calibration {
+                Some(c) => format!(
+                    "{} of {} (due {}{}), applied to every reading",
+                    c.id,
+                    c.date,
+                    c.next_due,
+                    if c.overdue { ", OVERDUE" } else { "" }
+                ),
+                None => "none recorded for this station: the instruments' stated accuracy is used"
+                    .into(),
+            },
+        ),
+    ] {
+        let _ = write!(
+            b,
+            "<tr><th class=\"l\">{k}</th><td class=\"l wrap\">{}</td></tr>",
+            escape(&v)
+        );
+    }
+    let _ = write!(b, "</table>");
+}
+
+/// Each figure's uncertainty budget (JCGM 100:2008): its terms, the
+/// combined standard uncertainty, the expanded one, the dominant term.
+fn budget_section(b: &mut String, s: &Summary) {
+    let u = &s.verdict.uncertainty;
+    let budgets = [
+        ("Measured capacity", &u.measured_ah),
+        ("Measured energy", &u.measured_wh),
+        ("Capacity (corrected)", &u.corrected_ah),
+        ("State of health", &u.soh_pct),
+        ("Coulombic efficiency", &u.coulombic_efficiency_pct),
+        ("Energy efficiency", &u.energy_efficiency_pct),
+        ("DC resistance", &u.resistance_mohm),
+    ];
+    if budgets.iter().all(|(_, x)| x.is_none()) {
+        return;
+    }
+    let _ = write!(b, "<h2>Uncertainty budgets</h2>");
+    for (name, x) in budgets {
+        let Some(x) = x else { continue };
+        let _ = write!(
+            b,
+            "<h3>{name}: {}</h3><table><tr><th class=\"l\">term</th><th>u ({})</th><th>share</th><th class=\"l\">distribution</th><th class=\"l\">basis</th></tr>",
+            escape(&x.show()),
+            escape(&x.unit)
+        );
+        let var = x.u * x.u;
+        for t in &x.terms {
+            let _ = write!(
+                b,
+                "<tr><td class=\"l\">{}</td><td>{:.3e}</td><td>{:.1} %</td><td class=\"l\">{}{}</td><td class=\"l wrap\">{}</td></tr>",
+                escape(&t.name),
+                t.u,
+                if var > 0.0 { t.u * t.u / var * 100.0 } else { 0.0 },
+                match t.shape {
+                    analysis::uncertainty::Shape::Rectangular => "rectangular",
+                    analysis::uncertainty::Shape::Normal => "normal",
+                },
+                if t.correlated { ", common to every sample" } else { "" },
+                escape(&t.basis)
+            );
+        }
+        let _ = write!(
+            b,
+            "<tr><th class=\"l\">combined u</th><th>{:.3e}</th><th></th><th class=\"l\" colspan=\"2\">U = {:.3e} (k = {}); {}</th></tr></table>",
+            x.u,
+            x.expanded,
+            x.k,
+            escape(&x.note())
+        );
+    }
 }
 
 /// The pulse-power levels: the curves (OCV, resistances, power
@@ -402,9 +537,16 @@ fn capacity_rows(s: &Summary, out: &mut Vec<(String, String)>) {
     let mut row = |k: &str, v: String| out.push((k.to_string(), v));
     let v = &s.verdict;
     if let Some(c) = &s.capacity {
+        let u = &v.uncertainty;
         row(
             "Measured capacity",
-            format!("{:.4} Ah, {:.2} Wh", c.measured_ah, c.measured_wh),
+            format!(
+                "{:.4} Ah{}, {:.2} Wh{}",
+                c.measured_ah,
+                crate::pm(&u.measured_ah),
+                c.measured_wh,
+                crate::pm(&u.measured_wh)
+            ),
         );
         let why: Vec<String> = c
             .corrections
@@ -414,15 +556,23 @@ fn capacity_rows(s: &Summary, out: &mut Vec<(String, String)>) {
         row(
             "Capacity (corrected)",
             match v.corrected_ah.get() {
-                Some(a) if why.is_empty() => format!("{a:.4} Ah ({})", v.conditions),
-                Some(a) => format!("{a:.4} Ah ({})", why.join("; ")),
+                Some(a) if why.is_empty() => {
+                    format!("{a:.4} Ah{} ({})", crate::pm(&u.corrected_ah), v.conditions)
+                }
+                Some(a) => format!(
+                    "{a:.4} Ah{} ({})",
+                    crate::pm(&u.corrected_ah),
+                    why.join("; ")
+                ),
                 None => v.corrected_ah.show(4, " Ah"),
             },
         );
         row(
             "State of health",
             match (v.soh_pct.get(), c.rated_ah) {
-                (Some(p), Some(r)) => format!("{p:.2} % of rated {r} Ah"),
+                (Some(p), Some(r)) => {
+                    format!("{p:.2} %{} of rated {r} Ah", crate::pm(&u.soh_pct))
+                }
                 _ => v.soh_pct.show(2, " %"),
             },
         );

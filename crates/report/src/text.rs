@@ -284,6 +284,16 @@ fn decision_lines(o: &mut String, s: &Summary) {
         "  Uncertainty:       {}",
         s.verdict.uncertainty.basis_line()
     );
+    if let Some(c) = &s.calibration {
+        let _ = writeln!(
+            o,
+            "  Calibration:       {} of {} applied to every reading (due {}{})",
+            c.id,
+            c.date,
+            c.next_due,
+            if c.overdue { ", OVERDUE" } else { "" }
+        );
+    }
 }
 
 /// The capacity figures: measured, where it started, at rated conditions,

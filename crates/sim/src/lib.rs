@@ -161,6 +161,20 @@ pub fn link_to(responder: &Arc<Mutex<dyn LineResponder>>) -> Link {
     Box::new(InMemoryLink::new(Arc::clone(responder)))
 }
 
+/// A reference meter on a simulated bench (for `packbench calibrate`): it
+/// answers `MEAS:VOLT[:DC]?` and `MEAS:CURR[:DC]?` with the truth, so a
+/// calibration recovers the bench meters' configured gain and offset.
+pub fn reference_link(handle: &SimHandle) -> Link {
+    let mut m = SimInstrument::new(
+        Arc::clone(&handle.bench),
+        SimRole::Meter,
+        Arc::new(Mutex::new(Traffic::default())),
+    );
+    m.reference = true;
+    let r: Arc<Mutex<dyn LineResponder>> = Arc::new(Mutex::new(m));
+    link_to(&r)
+}
+
 /// Build a simulated bench for a pack.
 pub fn build(spec: &PackSpec, cfg: &SimConfig, clock: Arc<dyn Clock>) -> SimLinks {
     let bench = Arc::new(Mutex::new(SimBench::new(spec, cfg, clock)));

@@ -136,6 +136,9 @@ pub struct SimInstrument {
     fired: Vec<bool>,
     /// Faults that took effect, in order (drained by the server's state log).
     pub fired_log: Vec<FaultFired>,
+    /// A reference meter (the calibration's): it reads the truth, the
+    /// pack's terminal voltage and current, with no error.
+    pub reference: bool,
     /// The messages received, for tests that check what was sent.
     pub received: Arc<Mutex<Traffic>>,
     /// A meter's scan list and its last scan's readings.
@@ -164,6 +167,7 @@ impl SimInstrument {
             received,
             scan_list: Vec::new(),
             last_scan: None,
+            reference: false,
         }
     }
 
@@ -568,6 +572,7 @@ impl SimInstrument {
                     SimRole::Source => "simulated-source",
                     SimRole::Load => "simulated-load",
                     SimRole::SourceSink => "simulated-source-sink",
+                    SimRole::Meter if self.reference => "simulated-reference-meter",
                     SimRole::Meter => "simulated-meter",
                 };
                 Ok(Some(format!(
@@ -883,6 +888,9 @@ impl SimInstrument {
                     b.measure_supply()
                 }
             }
+            // The calibration's reference: the truth, signed as the pack
+            // sees it (positive into the pack).
+            SimRole::Meter if self.reference => (b.terminal_voltage(), b.pack_current()),
             SimRole::Meter => {
                 if cmd != Cmd::MeasureVoltage {
                     return Err(ScpiError::UndefinedHeader);

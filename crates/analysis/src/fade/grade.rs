@@ -768,4 +768,49 @@ mod tests {
         let e = Policy::from_toml(Path::new("g.toml"), text).unwrap_err();
         assert!(e.to_string().starts_with("g.toml:4:11"), "{e}");
     }
+
+    /// The default policy's rule is a guard band w = U: a state of health
+    /// just above a floor takes the lower grade, conditional, with the
+    /// probability that the pack is below the floor (ILAC-G8:09/2019 4.2.3;
+    /// Φ from statrs).
+    #[test]
+    fn a_figure_inside_the_guard_band_takes_the_lower_grade_conditionally() {
+        let p = Policy::default_policy();
+        assert!(matches!(
+            p.decision.rule,
+            crate::decision::Rule::GuardBand { multiple_of_u } if multiple_of_u == 1.0
+        ));
+        // 90.2 % with u = 0.25 (U = 0.5): inside A's band.
+        let g = p.grade(&GradeInputs::of_soh(Chemistry::LiIon, 90.2, Some(0.25)));
+        assert_eq!(g.label, "B");
+        let d = g.decision.unwrap();
+        assert!(d.conditional && !d.retest, "{d:?}");
+        let n = d.nearest.unwrap();
+        assert_eq!(n.limit, 90.0);
+        // Φ((90 − 90.2)/0.25) = Φ(−0.8) = 21.19 %.
+        assert!((n.p_wrong_side_pct.unwrap() - 21.19).abs() < 0.01);
+        // Clear of the band: A, not conditional.
+        let g = p.grade(&GradeInputs::of_soh(Chemistry::LiIon, 90.6, Some(0.25)));
+        assert_eq!(g.label, "A");
+        assert!(!g.decision.unwrap().conditional);
+        // As measured (no uncertainty): A at 90.2.
+        let g = p.grade(&GradeInputs::of_soh(Chemistry::LiIon, 90.2, None));
+        assert_eq!(g.label, "A");
+        // Refused where U = 2 points > 0.25 × the 5-point half-bin.
+        assert!(p.refuses(Chemistry::LiIon, Some(1.0)).is_some());
+        assert!(p.refuses(Chemistry::LiIon, Some(0.5)).is_none());
+    }
+
+    #[test]
+    fn a_decision_table_is_checked_with_its_place() {
+        let text = "name = \"x\"\n[decision]\nrule = \"guard-band\"\nguard_band = 9.0\n[[grade]]\nlabel = \"A\"\n";
+        let e = Policy::from_toml(Path::new("g.toml"), text).unwrap_err();
+        assert!(e.to_string().starts_with("g.toml:4:"), "{e}");
+        let text = "name = \"x\"\n[decision]\nrule = \"specific-risk\"\nmax_false_accept = \"5%\"\nin_guard_band = \"retest\"\n[[grade]]\nlabel = \"A\"\nsoh_min = \"80%\"\n[[grade]]\nlabel = \"B\"\n";
+        let p = Policy::from_toml(Path::new("g.toml"), text).unwrap();
+        let g = p.grade(&GradeInputs::of_soh(Chemistry::LiIon, 80.3, Some(0.25)));
+        // w = 1.645·0.25 = 0.41 > 0.3: B, retest.
+        assert_eq!(g.label, "B");
+        assert!(g.decision.unwrap().retest);
+    }
 }
