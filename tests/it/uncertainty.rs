@@ -7,7 +7,6 @@ use crate::util::*;
 use analysis::uncertainty::{charge_terms, Budget, StepInputs, StepMeasure, Tare};
 use engine::control::StopHandle;
 use model::accuracy::Spec;
-use packbench::session::request::{PackSource, RunRequest};
 use rand::{Rng, SeedableRng};
 use sim::SimConfig;
 
@@ -43,22 +42,23 @@ fn drawn_config(seed: u64) -> SimConfig {
 /// inside the reported 95 % interval in 90–99 % of runs. Fewer would mean
 /// the budget misses a term; more, that it is inflated. Also printed: the
 /// RMS of (measured − true)/u, which is 1 for a budget that is right.
-#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+#[tokio::test]
 async fn the_truth_lies_inside_the_reported_interval_in_about_95_percent_of_runs() {
     let dir = tempfile::tempdir().unwrap();
     let mut inside = 0;
     let mut z2 = 0.0;
     let mut dominant = std::collections::BTreeMap::<String, usize>::new();
+    // A C/5 discharge to the cutoff from the simulated pack's half charge:
+    // the capacity check's measuring step, a quarter of its run time.
+    let proc = dir.path().join("coverage.toml");
+    std::fs::write(
+        &proc,
+        rest_then_discharge("coverage", None, 0.2, 1.2, 60.0, "6h"),
+    )
+    .unwrap();
     for seed in 0..COVERAGE_RUNS {
         let results = dir.path().join(format!("r{seed}"));
-        let p = packbench::session::prepare::prepare(&RunRequest {
-            procedure: "procedures/capacity-check.toml".into(),
-            pack_id: "COVER-1".into(),
-            pack: PackSource::Given(sim_pack()),
-            results,
-            options: Default::default(),
-        })
-        .unwrap();
+        let p = prepare_as(&proc, sim_pack(), &results, "COVER-1");
         let (r, _) = run_sim(&p, &drawn_config(seed), StopHandle::new()).await;
         let v = &r.summary.verdict;
         let b = v
@@ -194,4 +194,125 @@ fn the_budget_agrees_with_the_uncertainties_package_and_a_numpy_monte_carlo() {
         py.status.success(),
         "the budget disagrees with the outside check (python3 with numpy 2.4.6 and uncertainties 3.2.3: pip install -r scripts/requirements-readback.txt)\n{out}"
     );
+}
+
+fn capacity_error(
+    results: &std::path::Path,
+    sim_config: &std::path::Path,
+) -> (f64, f64, serde_json::Value) {
+    let out = packbench(&[
+        "run",
+        "procedures/capacity-check.toml",
+        "--sim",
+        "--sim-config",
+        sim_config.to_str().unwrap(),
+        "--pack",
+        "CAL-1",
+        "--results",
+        results.to_str().unwrap(),
+        "--quiet",
+    ]);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let run = std::fs::read_dir(results.join("CAL-1"))
+        .unwrap()
+        .filter_map(|e| e.ok().map(|e| e.path()))
+        .find(|p| p.is_dir())
+        .unwrap();
+    let s: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(run.join("summary.json")).unwrap()).unwrap();
+    let m: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(run.join("run.json")).unwrap()).unwrap();
+    let step = s["verdict"]["capacity_step"].as_u64().unwrap();
+    let truth = m["simulation"]["steps"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|t| t["step"].as_u64() == Some(step))
+        .unwrap()["charge_ah"]
+        .as_f64()
+        .unwrap()
+        .abs();
+    let measured = s["capacity"]["measured_ah"].as_f64().unwrap();
+    let u = s["verdict"]["uncertainty"]["measured_ah"]["u"]
+        .as_f64()
+        .unwrap();
+    (measured - truth, u, m)
+}
+
+/// `calibrate` on the simulated bench recovers a load current error of
+/// +0.5 % of reading and +20 mA (the load reports a magnitude, so in the
+/// pack's sign the line is reading = 1.005·I − 0.020) within its stated
+/// uncertainty (k = 2), and a run after the calibration is closer to the
+/// truth than one before it, with a smaller interval that still holds it.
+#[test]
+fn calibrate_recovers_an_injected_gain_and_offset_and_runs_apply_it() {
+    let dir = tempfile::tempdir().unwrap();
+    let cfg = dir.path().join("bench-errors.toml");
+    std::fs::write(
+        &cfg,
+        "[load.current]\ngain_error_pct = 0.5\noffset = 0.020\nnoise = 0.002\nresolution = 0.001\nstated = { reading_pct = 0.6, offset = 0.025, resolution = 0.001 }\n",
+    )
+    .unwrap();
+    let before = dir.path().join("before");
+    let (err0, u0, m0) = capacity_error(&before, &cfg);
+    assert!(m0.get("calibration").is_none());
+    let after = dir.path().join("after");
+    let out = packbench(&[
+        "calibrate",
+        "--sim",
+        "--sim-config",
+        cfg.to_str().unwrap(),
+        "--results",
+        after.to_str().unwrap(),
+        "--certificate",
+        "REF-0001 (fictional lab)",
+    ]);
+    let said = text(&out.stdout);
+    println!("{said}");
+    assert_eq!(out.status.code(), Some(0), "{said}{}", text(&out.stderr));
+    let file = std::fs::read_dir(after.join("_calibration/sim"))
+        .unwrap()
+        .next()
+        .unwrap()
+        .unwrap()
+        .path();
+    let rec: record::calibration::CalibrationRecord =
+        serde_json::from_str(&std::fs::read_to_string(&file).unwrap()).unwrap();
+    let ch = rec.channel(record::calibration::DISCHARGE).unwrap();
+    let l = ch.line;
+    println!(
+        "recovered a = {:.6} ± {:.6} (injected 1.005), b = {:+.5} ± {:.5} A (injected −0.020)",
+        l.a,
+        2.0 * l.u_a,
+        l.b,
+        2.0 * l.u_b
+    );
+    assert!(
+        (l.a - 1.005).abs() <= 2.0 * l.u_a,
+        "a = {} ± {}",
+        l.a,
+        l.u_a
+    );
+    assert!(
+        (l.b + 0.020).abs() <= 2.0 * l.u_b,
+        "b = {} ± {}",
+        l.b,
+        l.u_b
+    );
+    assert!(ch.as_found.worst_share > 0.5 && ch.as_left.within);
+    assert_eq!(
+        rec.reference.certificate.as_deref(),
+        Some("REF-0001 (fictional lab)")
+    );
+    let (err1, u1, m1) = capacity_error(&after, &cfg);
+    assert_eq!(m1["calibration"]["id"], rec.id.as_str());
+    println!(
+        "capacity error against the truth: {:+.1} mAh (u {:.1}) before, {:+.1} mAh (u {:.1}) after the calibration",
+        err0 * 1e3,
+        u0 * 1e3,
+        err1 * 1e3,
+        u1 * 1e3
+    );
+    assert!(err1.abs() < err0.abs() / 10.0, "{err1} against {err0}");
+    assert!(u1 < u0 && err1.abs() <= 2.0 * u1);
 }

@@ -345,7 +345,7 @@ impl MeasureAcc {
                 }
             }
         }
-        if self.n % 2 == 0 {
+        if self.n.is_multiple_of(2) {
             if let Some((t0, v0, i0)) = self.even {
                 let dt = t - t0;
                 self.q2 += 0.5 * (i0 + i) * dt / 3600.0;

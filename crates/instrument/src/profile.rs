@@ -339,6 +339,20 @@ struct RawModbusProfile {
     accuracy: Option<model::accuracy::Declared>,
 }
 
+/// A profile's `[accuracy]`: figures a reader can check, located.
+fn check_accuracy(
+    a: Option<&model::accuracy::Declared>,
+    locate: &dyn Fn(&str) -> Location,
+    errors: &mut Vec<LocatedError>,
+) {
+    if let Some(Err(message)) = a.map(|a| a.check("accuracy")) {
+        errors.push(LocatedError {
+            location: locate("[accuracy"),
+            message,
+        });
+    }
+}
+
 /// Declared ranges in SI units; bad ones are errors, located.
 fn parse_ranges(
     raw: &RawRanges,
@@ -428,14 +442,7 @@ impl Profile {
             Location::at(file, text, off)
         };
         let ranges = parse_ranges(&raw.ranges, &locate, &mut errors);
-        if let Some(a) = &raw.accuracy {
-            if let Err(message) = a.check("accuracy") {
-                errors.push(LocatedError {
-                    location: locate("[accuracy"),
-                    message,
-                });
-            }
-        }
+        check_accuracy(raw.accuracy.as_ref(), &locate, &mut errors);
         let c = &raw.commands;
         let role_name = raw.role.name();
         let mut need = |ok: bool, what: &str| {

@@ -172,34 +172,7 @@ pub fn summary(s: &Summary) -> String {
     if let Some(c) = &s.characterization {
         o.push_str(&characterization_text(c));
     }
-    match s.verdict.grade.value() {
-        Some(g) => {
-            let _ = writeln!(
-                o,
-                "  Grade:             {}{} ({}) — {}",
-                g.label,
-                match &g.decision {
-                    Some(d) if d.retest => " RETEST",
-                    Some(d) if d.conditional => " (conditional)",
-                    _ => "",
-                },
-                g.meaning,
-                g.reasons.join("; ")
-            );
-            if let Some(d) = g.decision.as_ref().map(|d| d.line()) {
-                if !d.is_empty() {
-                    let _ = writeln!(o, "                     {d}");
-                }
-            }
-        }
-        None => {
-            let _ = writeln!(
-                o,
-                "  Grade:             not graded ({})",
-                s.verdict.grade.why().map(|w| w.words()).unwrap_or_default()
-            );
-        }
-    }
+    grade_lines(&mut o, s);
     for flag in &s.verdict.flags {
         let _ = writeln!(o, "  FLAG:              {flag}");
     }
@@ -231,6 +204,38 @@ pub fn summary(s: &Summary) -> String {
         let _ = writeln!(o, "  warning: {w}");
     }
     o
+}
+
+/// The grade with its reasons, and how the decision rule judged it.
+fn grade_lines(o: &mut String, s: &Summary) {
+    match s.verdict.grade.value() {
+        Some(g) => {
+            let _ = writeln!(
+                o,
+                "  Grade:             {}{} ({}) — {}",
+                g.label,
+                match &g.decision {
+                    Some(d) if d.retest => " RETEST",
+                    Some(d) if d.conditional => " (conditional)",
+                    _ => "",
+                },
+                g.meaning,
+                g.reasons.join("; ")
+            );
+            if let Some(d) = g.decision.as_ref().map(|d| d.line()) {
+                if !d.is_empty() {
+                    let _ = writeln!(o, "                     {d}");
+                }
+            }
+        }
+        None => {
+            let _ = writeln!(
+                o,
+                "  Grade:             not graded ({})",
+                s.verdict.grade.why().map(|w| w.words()).unwrap_or_default()
+            );
+        }
+    }
 }
 
 /// The pulse-power levels: one line each, state of charge ascending.
