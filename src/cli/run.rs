@@ -409,8 +409,14 @@ pub fn result_figures(s: &record::Summary) -> String {
     let v = &s.verdict;
     let mut parts = Vec::new();
     match (v.corrected_ah.get(), v.measured_ah.get()) {
-        (Some(c), _) => parts.push(format!("{c:.3}Ah")),
-        (None, Some(m)) => parts.push(format!("{m:.3}Ah measured")),
+        (Some(c), _) => parts.push(format!(
+            "{c:.3}{}Ah",
+            record::budget::pm_short(&v.uncertainty.corrected_ah)
+        )),
+        (None, Some(m)) => parts.push(format!(
+            "{m:.3}{}Ah measured",
+            record::budget::pm_short(&v.uncertainty.measured_ah)
+        )),
         (None, None) => {
             if let Some(r) = &s.stop_reason {
                 parts.push(r.clone());
@@ -419,15 +425,23 @@ pub fn result_figures(s: &record::Summary) -> String {
     }
     if s.capacity.is_some() {
         match v.soh_pct.get() {
-            Some(p) => parts.push(format!("SOH {p:.1}%")),
+            Some(p) => parts.push(format!(
+                "SOH {p:.1}%{}",
+                record::budget::pm_short(&v.uncertainty.soh_pct)
+            )),
             None => parts.push(format!(
                 "no SOH ({})",
                 v.soh_pct.why().map(|w| w.words()).unwrap_or_default()
             )),
         }
     }
-    if let Some(g) = v.grade_label() {
-        parts.push(format!("grade {g}"));
+    if let Some(g) = v.grade.value() {
+        let how = match &g.decision {
+            Some(d) if d.retest => " (retest)",
+            Some(d) if d.conditional => " (conditional)",
+            _ => "",
+        };
+        parts.push(format!("grade {}{how}", g.label));
     }
     parts.join(" ")
 }

@@ -120,7 +120,13 @@ pub struct ResultView {
     pub stop_reason: Option<String>,
     pub capacity_ah: Option<f64>,
     pub soh_pct: Option<f64>,
+    /// The expanded uncertainties of the capacity and the state of health
+    /// (the reported 95 % intervals' half-widths), from the verdict.
+    pub capacity_u95_ah: Option<f64>,
+    pub soh_u95_pct: Option<f64>,
     pub grade: Option<String>,
+    /// The grade was given inside a guard band.
+    pub grade_conditional: bool,
     pub resumable: bool,
     /// The failure when the run never ran.
     pub error: Option<String>,
@@ -135,7 +141,23 @@ pub fn result_of(s: &record::Summary) -> ResultView {
         stop_reason: s.stop_reason.clone(),
         capacity_ah: s.verdict.corrected_ah.get().or(s.verdict.measured_ah.get()),
         soh_pct: s.verdict.soh_pct.get(),
+        capacity_u95_ah: match (s.verdict.corrected_ah.get(), &s.verdict.uncertainty) {
+            (Some(_), u) => u.corrected_ah.as_ref().map(|b| b.half_width()),
+            (None, u) => u.measured_ah.as_ref().map(|b| b.half_width()),
+        },
+        soh_u95_pct: s
+            .verdict
+            .soh_pct
+            .get()
+            .and(s.verdict.uncertainty.soh_pct.as_ref())
+            .map(|b| b.half_width()),
         grade: s.verdict.grade_label().map(str::to_string),
+        grade_conditional: s
+            .verdict
+            .grade
+            .value()
+            .and_then(|g| g.decision.as_ref())
+            .is_some_and(|d| d.conditional),
         resumable: s.status == model::status::RunStatus::Interrupted,
         error: None,
     }
@@ -209,7 +231,10 @@ impl Bay {
                 stop_reason: None,
                 capacity_ah: None,
                 soh_pct: None,
+                capacity_u95_ah: None,
+                soh_u95_pct: None,
                 grade: None,
+                grade_conditional: false,
                 resumable: false,
                 error: Some(e),
             },

@@ -131,21 +131,16 @@ pub fn label_figures(s: &record::Summary) -> (String, String, String) {
         },
         None => "-".to_string(),
     };
-    // The capacity with its uncertainty, where the budget exists.
-    let cap = match (
-        v.corrected_ah.get(),
-        &u.corrected_ah,
-        v.measured_ah.get(),
-        &u.measured_ah,
-    ) {
-        (Some(_), Some(b), _, _) | (None, _, Some(_), Some(b)) => b.short(),
-        (Some(a), None, _, _) | (None, _, Some(a), None) => format!("{a:.2} Ah"),
+    // Each figure as everywhere else, with its uncertainty where the
+    // budget exists.
+    let cap = match (v.corrected_ah.get(), v.measured_ah.get()) {
+        (Some(a), _) => format!("{a:.2}{} Ah", record::budget::pm_short(&u.corrected_ah)),
+        (None, Some(a)) => format!("{a:.2}{} Ah", record::budget::pm_short(&u.measured_ah)),
         _ => "-".into(),
     };
-    let soh = match (v.soh_pct.get(), &u.soh_pct) {
-        (Some(_), Some(b)) => b.short(),
-        (Some(p), None) => format!("{p:.1} %"),
-        _ => "-".into(),
+    let soh = match v.soh_pct.get() {
+        Some(p) => format!("{p:.1} %{}", record::budget::pm_short(&u.soh_pct)),
+        None => "-".into(),
     };
     (cap, soh, grade)
 }

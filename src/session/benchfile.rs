@@ -798,6 +798,33 @@ profile = "generic-scpi-meter"
             .to_string()
     }
 
+    /// A bench file states an instrument's own accuracy over its profile's
+    /// example figures; a figure that is not one is refused with its place.
+    #[test]
+    fn an_instrument_states_its_own_accuracy() {
+        let text = GOOD.replace(
+            "timeout = \"300ms\"",
+            "timeout = \"300ms\"\naccuracy = { current = { reading_pct = 0.05, offset = 0.002, resolution = 0.0001 } }",
+        );
+        let b = BenchFile::parse(Path::new("bench.toml"), &text).unwrap();
+        let load = b.station(Some("bay-1")).unwrap().profiles().1;
+        let c = load.accuracy.current.unwrap();
+        assert_eq!((c.reading_pct, c.offset), (0.05, 0.002));
+        // Its own figures: no longer the profile's examples; the voltage
+        // stays the profile's.
+        assert!(!load.accuracy.example);
+        assert!(load.accuracy.voltage.is_some());
+        let bad = GOOD.replace(
+            "timeout = \"300ms\"",
+            "timeout = \"300ms\"\naccuracy = { current = { reading_pct = -1.0 } }",
+        );
+        let e = err(&bad);
+        assert!(
+            e.contains("bench.toml:11:") && e.contains("reading_pct"),
+            "{e}"
+        );
+    }
+
     const GROUPS: &str = r#"
 [[station]]
 name = "bay-3"

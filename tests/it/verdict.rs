@@ -82,6 +82,40 @@ fn soh_text(s: &Summary, d: usize) -> String {
     }
 }
 
+/// The console's tile and the pack label against the verdict of `s`.
+fn console_surfaces_agree(case: &str, s: &Summary) {
+    let v = &s.verdict;
+    let u = &v.uncertainty;
+    let soh = v.soh_pct.get();
+    let grade = v.grade_label();
+    // The console's tile and the pack label.
+    let tile = packbench::console::bays::result_of(s);
+    assert_eq!(tile.soh_pct, soh, "{case}: tile");
+    assert_eq!(tile.grade.as_deref(), grade, "{case}: tile grade");
+    let (_, label_soh, label_grade) = packbench::console::pages::label_figures(s);
+    assert_eq!(
+        label_soh,
+        soh.map(|p| format!("{p:.1} %{}", record::budget::pm_short(&u.soh_pct)))
+            .unwrap_or("-".into()),
+        "{case}: label"
+    );
+    let conditional = v
+        .grade
+        .value()
+        .and_then(|g| g.decision.as_ref())
+        .is_some_and(|d| d.conditional);
+    assert_eq!(tile.grade_conditional, conditional, "{case}: tile");
+    assert!(
+        label_grade.starts_with(grade.unwrap_or("-")),
+        "{case}: label grade {label_grade}"
+    );
+    assert_eq!(
+        label_grade.ends_with("cond.") || label_grade.ends_with("retest"),
+        conditional,
+        "{case}"
+    );
+}
+
 /// Every surface against the verdict of `s` (its folder `dir`, if it is
 /// one of our run folders).
 pub fn every_surface_agrees(case: &str, s: &Summary, quiet: Option<&str>, dir: Option<&Path>) {
@@ -121,10 +155,18 @@ pub fn every_surface_agrees(case: &str, s: &Summary, quiet: Option<&str>, dir: O
     let html = report::html::run_report(s, &report::charts::ChartBuilder::new(s).finish());
     let card = &html[html.find("class=\"card\"").unwrap()..];
     let card = &card[..card.find("</dl>").unwrap()];
+    // Every figure with the verdict's own uncertainty, where it has one.
+    let u = &v.uncertainty;
+    let with_u = if soh.is_some() {
+        record::budget::pm(&u.soh_pct)
+    } else {
+        String::new()
+    };
     assert!(
         card.contains(&format!(
-            "<dt>State of health</dt><dd>{}</dd>",
-            report::markup::escape(&soh_text(s, 1))
+            "<dt>State of health</dt><dd>{}{}</dd>",
+            report::markup::escape(&soh_text(s, 1)),
+            report::markup::escape(&with_u)
         )),
         "{case}: card {card}"
     );
@@ -139,7 +181,13 @@ pub fn every_surface_agrees(case: &str, s: &Summary, quiet: Option<&str>, dir: O
     // line the run printed).
     let q = packbench::cli::run::result_figures(s);
     match (soh, v.soh_pct.why()) {
-        (Some(p), _) => assert!(q.contains(&format!("SOH {p:.1}%")), "{case}: quiet '{q}'"),
+        (Some(p), _) => assert!(
+            q.contains(&format!(
+                "SOH {p:.1}%{}",
+                record::budget::pm_short(&v.uncertainty.soh_pct)
+            )),
+            "{case}: quiet '{q}'"
+        ),
         (None, Some(w)) if s.capacity.is_some() => {
             assert!(q.contains(&format!("no SOH ({w})")), "{case}: quiet '{q}'")
         }
@@ -149,17 +197,7 @@ pub fn every_surface_agrees(case: &str, s: &Summary, quiet: Option<&str>, dir: O
     if let Some(printed) = quiet {
         assert!(printed.contains(&q), "{case}: printed '{printed}' vs '{q}'");
     }
-    // The console's tile and the pack label.
-    let tile = packbench::console::bays::result_of(s);
-    assert_eq!(tile.soh_pct, soh, "{case}: tile");
-    assert_eq!(tile.grade.as_deref(), grade, "{case}: tile grade");
-    let (_, label_soh, label_grade) = packbench::console::pages::label_figures(s);
-    assert_eq!(
-        label_soh,
-        soh.map(|p| format!("{p:.1} %")).unwrap_or("-".into()),
-        "{case}: label"
-    );
-    assert_eq!(label_grade, grade.unwrap_or("-"), "{case}: label grade");
+    console_surfaces_agree(case, s);
     // What the index, the central store, fade and fleet read.
     let f = record::history::RunFacts::of(s);
     assert_eq!(
@@ -180,6 +218,11 @@ pub fn every_surface_agrees(case: &str, s: &Summary, quiet: Option<&str>, dir: O
         v.coulombic_efficiency_pct.get(),
         "{case}"
     );
+    assert_eq!(
+        f.soh_u95_pct,
+        soh.and(u.soh_pct.as_ref()).map(|b| b.half_width()),
+        "{case}: facts' uncertainty"
+    );
     // The exports' metadata.
     if let Some(dir) = dir {
         let rec = exchange::export::RunRecord::read(dir).unwrap();
@@ -191,7 +234,17 @@ pub fn every_surface_agrees(case: &str, s: &Summary, quiet: Option<&str>, dir: O
                 .unwrap()
         };
         match soh {
-            Some(p) => assert_eq!(m("packbench.soh_pct"), p.to_string(), "{case}"),
+            Some(p) => {
+                assert_eq!(m("packbench.soh_pct"), p.to_string(), "{case}");
+                match &u.soh_pct {
+                    Some(b) => assert_eq!(
+                        m("packbench.soh_pct_u95"),
+                        b.half_width().to_string(),
+                        "{case}"
+                    ),
+                    None => assert!(m("packbench.soh_pct_u95").starts_with("absent: "), "{case}"),
+                }
+            }
             None => assert!(m("packbench.soh_pct").starts_with("absent: "), "{case}"),
         }
     }

@@ -929,7 +929,10 @@ pub fn histories(store: &mut Store) -> Result<Vec<PackHistory>, CentralError> {
                     (summary->'verdict'->>'counts_for_history')::boolean,
                     summary->'verdict'->>'not_counted',
                     (summary->'verdict'->'resistance_growth_pct'->>'value')::double precision,
-                    (summary->'verdict'->'ieee450_percent'->>'value')::double precision
+                    (summary->'verdict'->'ieee450_percent'->>'value')::double precision,
+                    COALESCE((summary->'verdict'->'uncertainty'->'soh_pct'->>'mc_half_width')::double precision,
+                             (summary->'verdict'->'uncertainty'->'soh_pct'->>'expanded')::double precision),
+                    COALESCE((summary->'verdict'->'grade'->'value'->'decision'->>'conditional')::boolean, false)
              FROM runs ORDER BY pack_id, test_date, run_id",
             &[],
         )
@@ -966,6 +969,9 @@ pub fn histories(store: &mut Store) -> Result<Vec<PackHistory>, CentralError> {
             discharged_ah: r.get(14),
             groups: None,
             pulse_r50_mohm: None,
+            // The verdict's budget and decision, from the stored summary.
+            soh_u95_pct: r.get(20),
+            grade_conditional: r.get(21),
         };
         runs.entry(pack.clone())
             .or_default()

@@ -321,4 +321,17 @@ mod tests {
         assert_eq!(a.voltage.map(|c| c.reading_pct), Some(0.08));
         assert!(!a.same_current_meter && !a.same_voltage_meter && a.examples);
     }
+
+    /// A simulated meter applies errors within what it states; one
+    /// outside is refused.
+    #[test]
+    fn a_simulated_meter_applies_errors_within_its_stated_accuracy() {
+        let mut cfg = crate::simconfig::SimConfig::default();
+        assert!(cfg.check_meters().is_ok());
+        let [_, load, _] = cfg.declared();
+        assert_eq!(load.current.map(|c| c.reading_pct), Some(0.2));
+        cfg.load.current.gain_error_pct = 0.3;
+        let e = cfg.check_meters().unwrap_err();
+        assert!(e.contains("load.current") && e.contains("outside"), "{e}");
+    }
 }

@@ -35,6 +35,19 @@ pub struct Uncertainty {
     pub examples: bool,
 }
 
+/// " ± 0.030" after a figure where space is short (a label, a tile, the
+/// `--quiet` line): the reported 95 % interval's half-width to two
+/// significant digits, or nothing without a budget.
+pub fn pm_short(b: &Option<Budget>) -> String {
+    b.as_ref()
+        .map(|b| {
+            let hw = b.half_width();
+            let dec = analysis::uncertainty::decimals_for(hw);
+            format!(" ± {hw:.dec$}")
+        })
+        .unwrap_or_default()
+}
+
 /// " ± 0.030 Ah (k = 2, 95 %)" after a figure, or nothing without a budget.
 pub fn pm(b: &Option<Budget>) -> String {
     b.as_ref()

@@ -194,6 +194,13 @@ pub struct RunFacts {
     /// from the summaries).
     #[serde(default)]
     pub pulse_r50_mohm: Option<f64>,
+    /// The verdict's state of health's expanded uncertainty (the reported
+    /// 95 % interval's half-width), points.
+    #[serde(default)]
+    pub soh_u95_pct: Option<f64>,
+    /// The grade was given inside a guard band (conditional or retest).
+    #[serde(default)]
+    pub grade_conditional: bool,
 }
 
 /// The capacity step's figures a history needs (the verdict's).
@@ -274,6 +281,16 @@ impl RunFacts {
                 .characterization
                 .as_ref()
                 .and_then(|c| c.discharge_resistance_at(50.0)),
+            soh_u95_pct: v
+                .soh_pct
+                .get()
+                .and(v.uncertainty.soh_pct.as_ref())
+                .map(|b| b.half_width()),
+            grade_conditional: v
+                .grade
+                .value()
+                .and_then(|g| g.decision.as_ref())
+                .is_some_and(|d| d.conditional),
         }
     }
 }

@@ -22,7 +22,7 @@ use std::path::{Path, PathBuf};
 /// The index file in a results folder.
 pub const INDEX_SQLITE: &str = "index.sqlite";
 /// The index layout this build writes and reads.
-pub const INDEX_SCHEMA: i64 = 3;
+pub const INDEX_SCHEMA: i64 = 4;
 
 #[derive(Debug, thiserror::Error)]
 pub enum IndexError {
@@ -78,6 +78,8 @@ CREATE TABLE IF NOT EXISTS runs (
     not_counted TEXT,
     resistance_growth_pct REAL,
     ieee450_percent REAL,
+    soh_u95_pct REAL,
+    grade_conditional INTEGER NOT NULL DEFAULT 0,
     PRIMARY KEY (pack_id, folder)
 );
 CREATE TABLE IF NOT EXISTS steps (
@@ -495,7 +497,7 @@ impl Index {
         for (name, st, f, (steps, cycles, readings)) in &facts {
             let c = f.capacity.as_ref();
             tx.execute(
-                "INSERT OR REPLACE INTO runs (pack_id, folder, run_id, stamp, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, counts_for_history, not_counted, resistance_growth_pct, ieee450_percent) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21)",
+                "INSERT OR REPLACE INTO runs (pack_id, folder, run_id, stamp, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, counts_for_history, not_counted, resistance_growth_pct, ieee450_percent, soh_u95_pct, grade_conditional) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21, ?22, ?23)",
                 params![
                     pack_id,
                     name,
@@ -517,7 +519,9 @@ impl Index {
                     f.counts_for_history,
                     f.not_counted,
                     f.resistance_growth_pct,
-                    f.ieee450_percent
+                    f.ieee450_percent,
+                    f.soh_u95_pct,
+                    f.grade_conditional
                 ],
             )
             .map_err(&sql)?;
@@ -535,7 +539,7 @@ impl Index {
             let mut st = self
                 .conn
                 .prepare(
-                    "SELECT pack_id, run_id, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, folder, counts_for_history, not_counted, resistance_growth_pct, ieee450_percent FROM runs ORDER BY pack_id, test_date, run_id",
+                    "SELECT pack_id, run_id, test_date, status, stop_reason, cycle_count, capacity_ah, corrected_ah, soh_pct, from_full_charge, preceded_by, dcir_mohm, coulombic_efficiency_pct, grade, discharged_ah, folder, counts_for_history, not_counted, resistance_growth_pct, ieee450_percent, soh_u95_pct, grade_conditional FROM runs ORDER BY pack_id, test_date, run_id",
                 )
                 .map_err(&sql)?;
             let rows = st
@@ -571,6 +575,8 @@ impl Index {
                             ieee450_percent: r.get(19)?,
                             groups: None,
                             pulse_r50_mohm: None,
+                            soh_u95_pct: r.get(20)?,
+                            grade_conditional: r.get(21)?,
                         },
                     ))
                 })

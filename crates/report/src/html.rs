@@ -67,10 +67,15 @@ fn grade_card(s: &Summary) -> String {
     let rows = [
         (
             "State of health",
-            Some(match (v.soh_pct.get(), &u.soh_pct) {
-                (Some(_), Some(b)) => b.show(),
-                _ => v.soh_pct.show(1, " %"),
-            }),
+            Some(format!(
+                "{}{}",
+                v.soh_pct.show(1, " %"),
+                if v.soh_pct.get().is_some() {
+                    crate::pm(&u.soh_pct)
+                } else {
+                    String::new()
+                }
+            )),
         ),
         (
             // The capacity the state of health is computed from, and what
@@ -177,21 +182,7 @@ fn grade_card(s: &Summary) -> String {
             "</ul><div style=\"font-size:11px;color:#555\">policy: {}</div>",
             escape(&g.policy)
         );
-        if let Some(d) = &g.decision {
-            if d.conditional {
-                let _ = write!(
-                    o,
-                    "<div class=\"flag\">{}</div>",
-                    if d.retest { "RETEST" } else { "CONDITIONAL" }
-                );
-            }
-            let _ = write!(
-                o,
-                "<div style=\"font-size:11px;color:#555\">decision rule: {}<br>{}</div>",
-                escape(&d.rule),
-                escape(&d.line())
-            );
-        }
+        decision_note(&mut o, g);
     }
     let _ = write!(
         o,
@@ -199,6 +190,26 @@ fn grade_card(s: &Summary) -> String {
         escape(&s.run_id)
     );
     o
+}
+
+/// The grade's decision rule on the card: conditional or retest, the rule,
+/// the probability at the nearest boundary.
+fn decision_note(o: &mut String, g: &analysis::fade::grade::Grade) {
+    if let Some(d) = &g.decision {
+        if d.conditional {
+            let _ = write!(
+                o,
+                "<div class=\"flag\">{}</div>",
+                if d.retest { "RETEST" } else { "CONDITIONAL" }
+            );
+        }
+        let _ = write!(
+            o,
+            "<div style=\"font-size:11px;color:#555\">decision rule: {}<br>{}</div>",
+            escape(&d.rule),
+            escape(&d.line())
+        );
+    }
 }
 
 /// A differential curve: the binned values as dots, the smoothed curve,

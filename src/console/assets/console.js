@@ -94,9 +94,10 @@ function bayTile(b) {
     if (r.error) res.append(el("span", { class: "error" }, r.error));
     else {
       res.append(`${r.status}`);
-      if (r.capacity_ah !== null) res.append(` · ${fmt(r.capacity_ah, 3)} Ah`);
-      if (r.soh_pct !== null) res.append(` · SOH ${fmt(r.soh_pct, 1)} %`);
-      if (r.grade) res.append(` · grade ${r.grade}`);
+      const pm = (u, d) => (u === null || u === undefined) ? "" : ` ± ${fmt(u, d)}`;
+      if (r.capacity_ah !== null) res.append(` · ${fmt(r.capacity_ah, 3)}${pm(r.capacity_u95_ah, 3)} Ah`);
+      if (r.soh_pct !== null) res.append(` · SOH ${fmt(r.soh_pct, 1)}${pm(r.soh_u95_pct, 1)} %`);
+      if (r.grade) res.append(` · grade ${r.grade}${r.grade_conditional ? " (conditional)" : ""}`);
       if (r.stop_reason) res.append(el("div", { class: "muted" }, r.stop_reason));
     }
     tile.append(res);
