@@ -315,4 +315,45 @@ fn calibrate_recovers_an_injected_gain_and_offset_and_runs_apply_it() {
     );
     assert!(err1.abs() < err0.abs() / 10.0, "{err1} against {err0}");
     assert!(u1 < u0 && err1.abs() <= 2.0 * u1);
+    // Each budget of the run validated by a fresh Monte Carlo (JCGM 101 §8).
+    let run = std::fs::read_dir(after.join("CAL-1"))
+        .unwrap()
+        .filter_map(|e| e.ok().map(|e| e.path()))
+        .find(|p| p.is_dir())
+        .unwrap();
+    let out = packbench(&["analyze", run.to_str().unwrap(), "--monte-carlo", "50000"]);
+    let said = text(&out.stdout);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let mc: Vec<&str> = said
+        .lines()
+        .filter(|l| l.trim_start().starts_with("measured capacity:"))
+        .collect();
+    assert!(mc.len() == 1 && mc[0].contains("validated"), "{said}");
+    // fade prints each test's state of health with its U.
+    let out = packbench(&["fade", "CAL-1", "--results", after.to_str().unwrap()]);
+    assert!(
+        text(&out.stdout).contains("± U (95 %)"),
+        "{}",
+        text(&out.stdout)
+    );
+    // An overdue calibration is still applied, and said.
+    let mut old = rec.clone();
+    old.next_due = "2020-01-01".parse().unwrap();
+    std::fs::write(&file, serde_json::to_string_pretty(&old).unwrap()).unwrap();
+    for e in std::fs::read_dir(after.join("CAL-1")).unwrap() {
+        let p = e.unwrap().path();
+        if p.is_dir() {
+            std::fs::remove_dir_all(p).unwrap();
+        }
+    }
+    let (err2, _, m2) = capacity_error(&after, &cfg);
+    assert_eq!(m2["calibration"]["overdue"], true);
+    assert!(err2.abs() < err0.abs() / 10.0);
+    let run = std::fs::read_dir(after.join("CAL-1"))
+        .unwrap()
+        .filter_map(|e| e.ok().map(|e| e.path()))
+        .find(|p| p.is_dir())
+        .unwrap();
+    let s = std::fs::read_to_string(run.join("summary.json")).unwrap();
+    assert!(s.contains("was due on 2020-01-01"), "no overdue warning");
 }

@@ -151,6 +151,8 @@ pub fn parse_history_csv(
             run_dir: None,
             groups: None,
             pulse_r50_mohm: None,
+
+            soh_u95_pct: None,
             flags: Vec::new(),
         });
     }
@@ -425,6 +427,8 @@ pub fn assemble(
                     run_dir: Some(dir.clone()),
                     groups: s.groups.clone(),
                     pulse_r50_mohm: s.pulse_r50_mohm,
+
+                    soh_u95_pct: s.soh_u95_pct,
                     flags: Vec::new(),
                 });
             }

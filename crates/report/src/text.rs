@@ -583,12 +583,12 @@ pub fn fade(
     );
     let _ = writeln!(
         o,
-        "  date        cycles   capacity Ah  SOH %   resistance mOhm  grade  source"
+        "  date        cycles   capacity Ah  SOH %  ± U (95 %)  resistance mOhm  grade  source"
     );
     for p in &h.points {
         let _ = writeln!(
             o,
-            "  {}  {:>7}{} {:>10.3}  {:>6.2}  {:>15}  {:>5}  {}",
+            "  {}  {:>7}{} {:>10.3}  {:>6.2}  {:>10}  {:>15}  {:>5}  {}",
             p.date,
             if p.cycles.is_finite() {
                 format!("{:.0}", p.cycles)
@@ -602,6 +602,9 @@ pub fn fade(
             },
             p.capacity_ah,
             p.soh_pct,
+            p.soh_u95_pct
+                .map(|u| format!("± {u:.2}"))
+                .unwrap_or_else(|| "-".into()),
             p.resistance_mohm
                 .map(|r| format!("{r:.1}"))
                 .unwrap_or_else(|| "-".into()),

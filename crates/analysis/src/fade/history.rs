@@ -35,6 +35,9 @@ pub struct HistoryPoint {
     /// 50 % state of charge, mΩ.
     #[serde(default)]
     pub pulse_r50_mohm: Option<f64>,
+    /// The state of health's expanded uncertainty (the run's reported
+    /// 95 % half-width), points; none for a history line.
+    pub soh_u95_pct: Option<f64>,
     /// Changes against the pack's history the measurement cannot explain
     /// ([`flag_jumps`]): a flagged point is shown, not fitted or graded on.
     pub flags: Vec<String>,
@@ -154,6 +157,7 @@ mod tests {
     fn point(date: &str, soh: f64) -> HistoryPoint {
         HistoryPoint {
             pulse_r50_mohm: None,
+            soh_u95_pct: None,
             date: date.parse().unwrap(),
             cycles: f64::NAN,
             cycles_given: false,

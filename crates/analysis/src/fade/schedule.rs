@@ -247,6 +247,7 @@ mod tests {
                 .iter()
                 .map(|(date, ah)| HistoryPoint {
                     pulse_r50_mohm: None,
+                    soh_u95_pct: None,
                     date: d(date),
                     cycles: 0.0,
                     cycles_given: false,
