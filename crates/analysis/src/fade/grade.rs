@@ -753,6 +753,41 @@ mod tests {
         let p = Policy::default_policy();
         let labels: Vec<&str> = p.grades.iter().map(|g| g.label.as_str()).collect();
         assert_eq!(labels, ["A", "B", "C", "D"]);
+        // Ordered: each grade asks at least as much as the next, for every
+        // chemistry (a higher floor of state of health and efficiency, a
+        // lower ceiling of resistance growth), and the state of health's
+        // floors strictly fall so no grade is unreachable.
+        for c in [
+            Chemistry::LiIon,
+            Chemistry::Lfp,
+            Chemistry::LeadAcid,
+            Chemistry::Nimh,
+        ] {
+            let soh = p.soh_limits(c);
+            assert_eq!(soh, [90.0, 80.0, 70.0], "{c}");
+            let at = |f: &dyn Fn(&GradeRule) -> Option<&Threshold>| -> Vec<Option<f64>> {
+                p.grades
+                    .iter()
+                    .map(|g| f(g).and_then(|t| t.for_chemistry(c)))
+                    .collect()
+            };
+            let growth = at(&|g| g.resistance_growth_max.as_ref());
+            let ce = at(&|g| g.ce_min.as_ref());
+            for w in growth.windows(2) {
+                if let (Some(a), Some(b)) = (w[0], w[1]) {
+                    assert!(a < b, "{c}: growth ceilings {growth:?}");
+                }
+            }
+            for w in ce.windows(2) {
+                if let (Some(a), Some(b)) = (w[0], w[1]) {
+                    assert!(a > b, "{c}: efficiency floors {ce:?}");
+                }
+            }
+        }
+        // The last grade takes every pack; the rule is stated.
+        let last = p.grades.last().unwrap();
+        assert!(last.soh_min.is_none() && last.resistance_growth_max.is_none());
+        assert_ne!(p.decision.rule, Rule::Simple);
     }
 
     #[test]
