@@ -151,6 +151,16 @@ pub fn cmd_calibrate(a: CalibrateArgs) -> anyhow::Result<ExitCode> {
     })
 }
 
+/// What an instrument states of its accuracy, with the ranges its
+/// range terms are of.
+fn stated(p: &Profile) -> (model::accuracy::Declared, Option<f64>, Option<f64>) {
+    (
+        p.accuracy.clone(),
+        p.ranges.voltage_max_v,
+        p.ranges.current_max_a,
+    )
+}
+
 /// The simulated bench with a reference meter that reads the truth.
 async fn sim_bench(pack: &model::pack::PackSpec, cfg: &sim::SimConfig) -> anyhow::Result<CalBench> {
     cfg.check_meters().map_err(|e| anyhow!("{e}"))?;
@@ -163,16 +173,7 @@ async fn sim_bench(pack: &model::pack::PackSpec, cfg: &sim::SimConfig) -> anyhow
     lp.accuracy = ld;
     let mut mp = Profile::builtin(ProfileRole::Meter);
     mp.transport.timeout_ms = SIM_TIMEOUT_MS;
-    let source_accuracy = (
-        sp.accuracy.clone(),
-        sp.ranges.voltage_max_v,
-        sp.ranges.current_max_a,
-    );
-    let load_accuracy = (
-        lp.accuracy.clone(),
-        lp.ranges.voltage_max_v,
-        lp.ranges.current_max_a,
-    );
+    let (source_accuracy, load_accuracy) = (stated(&sp), stated(&lp));
     let reference_accuracy = mp.accuracy.clone();
     let source = Source::connect_with(links.source, sp, Attach::default()).await?;
     let load = Load::connect_with(links.load, lp, Attach::default()).await?;
@@ -203,14 +204,8 @@ async fn real_bench(st: &crate::session::benchfile::StationSpec) -> anyhow::Resu
             m.profile.name
         );
     }
-    let acc = |b: &crate::session::links::BoundLink| {
-        (
-            b.profile.accuracy.clone(),
-            b.profile.ranges.voltage_max_v,
-            b.profile.ranges.current_max_a,
-        )
-    };
-    let (source_accuracy, load_accuracy) = (acc(&links.source), acc(&links.load));
+    let (source_accuracy, load_accuracy) =
+        (stated(&links.source.profile), stated(&links.load.profile));
     let reference_accuracy = m.profile.accuracy.clone();
     let clock: Arc<dyn Clock> = engine::clock::PacedClock::new(1.0);
     let source =

@@ -98,7 +98,9 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
     // share, so one station's disk work never delays another's samples.
     let pack_dir = p.pack_dir.clone();
     let pack_toml = p.save_pack.then(|| p.pack.to_toml());
-    let (run_id, dir, sink, lock) = off_thread(move || {
+    // The station's current calibration, read with the folder's work.
+    let station = calibration_station(&links);
+    let (run_id, dir, sink, lock, calibration) = off_thread(move || {
         if let Some(text) = pack_toml {
             std::fs::create_dir_all(&pack_dir).map_err(io_err(&pack_dir))?;
             let path = pack_dir.join(PACK_TOML);
@@ -107,7 +109,12 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
         let (run_id, dir) = create_run_folder(&pack_dir, &base_id).map_err(io_err(&pack_dir))?;
         let lock = take_lock(&dir)?;
         let sink = RunLogSink::create(&dir).map_err(io_err(&dir))?;
-        Ok((run_id, dir, sink, lock))
+        let results = pack_dir.parent().unwrap_or(&pack_dir);
+        let calibration = match station {
+            Some(st) => record::calibration::current(results, &st)?,
+            None => None,
+        };
+        Ok((run_id, dir, sink, lock, calibration))
     })
     .await?;
     let manifest = Manifest {
@@ -165,7 +172,9 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
         calibration: None,
     };
     let mut manifest = manifest;
-    apply_calibration(p, &links, &mut manifest)?;
+    if let Some((path, rec)) = calibration {
+        apply_calibration(p, &path, &rec, &mut manifest);
+    }
     let rec = Recording {
         dir,
         run_id,
@@ -189,30 +198,31 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
 /// still applied, and said.
 fn apply_calibration(
     p: &Prepared,
-    links: &BenchLinks,
+    path: &std::path::Path,
+    rec: &record::calibration::CalibrationRecord,
     manifest: &mut Manifest,
-) -> Result<(), RunError> {
-    let station = match &links.hooks.station {
-        Some((name, _)) => name.clone(),
-        None if links.kind == crate::session::links::SIMULATED => "sim".to_string(),
-        None => return Ok(()),
-    };
-    let results = p.pack_dir.parent().unwrap_or(&p.pack_dir);
-    let Some((path, rec)) = record::calibration::current(results, &station)? else {
-        return Ok(());
-    };
-    let used = record::calibration::CalibrationUse::of(&path, &rec, p.options.test_date);
+) {
+    let used = record::calibration::CalibrationUse::of(path, rec, p.options.test_date);
     if used.overdue {
         eprintln!(
-            "warning: the calibration of station {station} was due on {} (it is applied; calibrate the station again: packbench calibrate)",
-            rec.next_due
+            "warning: the calibration of station {} was due on {} (it is applied; calibrate the station again: packbench calibrate)",
+            rec.station, rec.next_due
         );
     }
     if let Some(acc) = manifest.accuracy.as_mut() {
-        record::calibration::apply_to_accuracy(acc, &rec);
+        record::calibration::apply_to_accuracy(acc, rec);
     }
     manifest.calibration = Some(used);
-    Ok(())
+}
+
+/// The name a station's calibrations are kept under: the bench file's
+/// station, or `sim` for the simulated bench.
+fn calibration_station(links: &BenchLinks) -> Option<String> {
+    match &links.hooks.station {
+        Some((name, _)) => Some(name.clone()),
+        None if links.kind == crate::session::links::SIMULATED => Some("sim".to_string()),
+        None => None,
+    }
 }
 
 /// What the station's instruments state of their readings' accuracy.

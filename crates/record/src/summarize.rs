@@ -85,6 +85,10 @@ pub fn build_summary(
     samples: usize,
     duration_s: f64,
     pack_dir: Option<&Path>,
+    measured_with: Option<(
+        model::accuracy::BenchAccuracy,
+        Option<analysis::uncertainty::Tare>,
+    )>,
 ) -> Summary {
     let reference = match pack_dir {
         Some(d) => {
@@ -115,8 +119,8 @@ pub fn build_summary(
         cycles: &a.cycles,
         groups: a.groups.as_ref(),
         policy: Some(ctx.policy),
-        accuracy: None,
-        tare: None,
+        accuracy: measured_with.as_ref().map(|m| &m.0),
+        tare: measured_with.as_ref().and_then(|m| m.1),
     });
     let mut a = a;
     a.warnings.extend(judged);
@@ -156,7 +160,7 @@ pub fn build_summary(
         needs_rating: Vec::new(),
         groups: a.groups,
         characterization: a.characterization,
-        accuracy: None,
+        accuracy: measured_with.map(|m| m.0),
         calibration: None,
     }
 }
@@ -383,10 +387,30 @@ pub fn summarize_run_with_curves(
     });
     let pack_dir = dir.parent().unwrap_or(dir);
     let curves = std::mem::take(&mut a.curve_data);
-    let mut s = build_summary(a, ctx, outcome, feed.n, feed.duration(), Some(pack_dir));
-    add_event_records(&mut s, &events);
-    // Judged again with the readings' stated accuracy and the preflight's
+    // Judged once, with the readings' stated accuracy and the preflight's
     // tare: every figure gets its budget and the grade its decision rule.
+    let tare = events.iter().find_map(|e| match e {
+        Event::Preflight { corrected, .. } => Some(*corrected),
+        _ => None,
+    });
+    let measured_with = accuracy.map(|a| {
+        (
+            a,
+            tare.filter(|c| *c).map(|_| analysis::uncertainty::Tare {
+                readings: crate::budget::TARE_READINGS,
+            }),
+        )
+    });
+    let mut s = build_summary(
+        a,
+        ctx,
+        outcome,
+        feed.n,
+        feed.duration(),
+        Some(pack_dir),
+        measured_with,
+    );
+    add_event_records(&mut s, &events);
     if let Some(c) = &calibration {
         if c.overdue {
             s.warnings.push(format!(
@@ -396,14 +420,6 @@ pub fn summarize_run_with_curves(
         }
     }
     s.calibration = calibration;
-    if accuracy.is_some() {
-        s.accuracy = accuracy;
-        let added: Vec<String> = crate::verdict::rejudge(&mut s, Some(ctx.policy))
-            .into_iter()
-            .filter(|w| !s.warnings.contains(w))
-            .collect();
-        s.warnings.extend(added);
-    }
     warn_if_not_cooled(&mut s, &events);
     Ok((s, curves))
 }
@@ -504,6 +520,7 @@ pub fn summarize_foreign(
         },
         feed.n,
         feed.duration(),
+        None,
         None,
     );
     Ok((s, rep, curves))

@@ -478,14 +478,12 @@ pub fn judge_older(s: &mut crate::Summary) {
 /// Judge a summary again from the figures it holds (after they were
 /// changed: a made-up fleet, an import set against its pack, a rating
 /// taken away), keeping its resistance reference and flags.
-/// Returns the warnings the new judgement adds.
-pub fn rejudge(s: &mut crate::Summary, policy: Option<&Policy>) -> Vec<String> {
+pub fn rejudge(s: &mut crate::Summary, policy: Option<&Policy>) {
     let reference = s.verdict.resistance_reference.clone();
     let flags = std::mem::take(&mut s.verdict.flags);
-    let (mut v, warnings) = judge(&Inputs::of_summary(s, reference, policy));
+    let (mut v, _) = judge(&Inputs::of_summary(s, reference, policy));
     v.flags = flags;
     s.verdict = v;
-    warnings
 }
 
 #[cfg(test)]
