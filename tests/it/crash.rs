@@ -67,15 +67,19 @@ fn the_run_dir(results: &Path) -> Option<PathBuf> {
         .find(|p| p.is_dir())
 }
 
-/// How to pick the moment of the kill.
+/// How to pick the moment of the kill: always by a state of the run (rows
+/// in its log, a record file half-way through its write), never by a time.
 #[derive(Debug, Clone, Copy)]
 enum When {
     /// Once the log holds this many rows (a random point of the run).
     Rows(usize),
-    /// Just after step `n` has started (its start event is on disk).
-    StepStart(u32, Duration),
-    /// Just after the run's end event: during the summary and report.
-    RecordWrite(Duration),
+    /// Once the log holds this many rows of step `n` (just after it
+    /// started).
+    StepStart(u32, usize),
+    /// Stopped by the record's crash-test hook (`record::write::HALT_VAR`)
+    /// at this write of a record file (`name#n`), its temporary file whole
+    /// and not yet renamed: while the summary and report are written.
+    RecordWrite(&'static str),
 }
 
 /// Where a kill landed, from what the run folder shows.
@@ -113,26 +117,9 @@ fn sigkill_at_24_points_loses_nothing_and_leaves_a_usable_record() {
     // The uninterrupted run.
     let t = Instant::now();
     let reference = d.join("reference");
-    let mut child = run_cmd(d, &reference).spawn().unwrap();
-    // How long the record takes after the run-end event: the window the
-    // record-write kills aim at.
-    let mut ended_at = None;
-    let status = loop {
-        if ended_at.is_none()
-            && the_run_dir(&reference)
-                .and_then(|r| std::fs::read_to_string(r.join("events.jsonl")).ok())
-                .is_some_and(|s| s.contains("\"event\":\"run_end\""))
-        {
-            ended_at = Some(Instant::now());
-        }
-        if let Some(s) = child.try_wait().unwrap() {
-            break s;
-        }
-        std::hint::spin_loop();
-    };
+    let status = run_cmd(d, &reference).status().unwrap();
     assert!(status.success());
     let wall = t.elapsed();
-    let record_wall = ended_at.map_or(Duration::ZERO, |e| e.elapsed());
     let ref_dir = the_run_dir(&reference).unwrap();
     let ref_rows: Vec<String> = std::fs::read_to_string(ref_dir.join("samples.csv"))
         .unwrap()
@@ -140,120 +127,107 @@ fn sigkill_at_24_points_loses_nothing_and_leaves_a_usable_record() {
         .map(str::to_string)
         .collect();
     eprintln!(
-        "uninterrupted: {} rows in {:.2} s, the record in {:.1} ms of it",
+        "uninterrupted: {} rows in {:.2} s",
         ref_rows.len() - 1,
         wall.as_secs_f64(),
-        record_wall.as_secs_f64() * 1e3
     );
+    // The log's line (header = 0) of each step's first row.
+    let first_row = |step: u32| {
+        ref_rows
+            .iter()
+            .position(|r| r.split(',').nth(1) == Some(step.to_string().as_str()))
+            .unwrap_or_else(|| panic!("no row of step {step}"))
+    };
 
     let mut rng = Lcg(0x5eed_1234);
     let mut points = Vec::new();
-    for _ in 0..12 {
+    for _ in 0..15 {
         points.push(When::Rows(
             (rng.next() * 0.95 * ref_rows.len() as f64) as usize,
         ));
     }
-    // Steps 1 to 3: the last step (a 5-minute rest, 2 ms of wall time
-    // at this speed) ends the run, so a kill a few ms after its start
-    // may land after the run's end and test the record instead.
+    // Steps 1 to 3, one to five rows in (the last step, a 5-minute rest,
+    // takes about 2 ms at this speed: a kill aimed there would race the
+    // run's end).
     for k in 0..6 {
-        points.push(When::StepStart(
-            1 + k % 3,
-            Duration::from_micros((rng.next() * 3000.0) as u64),
-        ));
+        points.push(When::StepStart(1 + k % 3, 1 + (rng.next() * 5.0) as usize));
     }
-    for _ in 0..6 {
-        points.push(When::RecordWrite(record_wall.mul_f64(rng.next() * 0.6)));
+    // The record after the run's end: summary.json, then report.html, then
+    // run.json's third write (the first two are at the run's start), each
+    // stopped before its rename.
+    for f in ["summary.json#1", "report.html#1", "run.json#3"] {
+        points.push(When::RecordWrite(f));
     }
     let mut outcomes = Vec::new();
     let mut landed = Vec::new();
-    for (n, aimed) in points.iter().enumerate() {
-        // A kill aimed into the record that came too late (the record is a
-        // few ms, and slower or faster under load) is tried again sooner.
-        let mut when = *aimed;
-        for attempt in 0.. {
-            let when = &mut when;
-            let results = d.join(format!("killed-{n}-{attempt}"));
-            let mut child = run_cmd(d, &results).spawn().unwrap();
-            let started = Instant::now();
-            match *when {
-                When::Rows(n) => loop {
-                    let rows = the_run_dir(&results)
-                        .and_then(|r| std::fs::read(r.join("samples.csv")).ok())
-                        .map_or(0, |b| b.iter().filter(|c| **c == b'\n').count());
-                    if rows >= n || child.try_wait().unwrap().is_some() {
-                        break;
-                    }
-                    assert!(started.elapsed() < Duration::from_secs(60));
-                    std::hint::spin_loop();
-                },
-                When::StepStart(_, extra) | When::RecordWrite(extra) => {
-                    let needle = match *when {
-                        When::StepStart(..) => "\"event\":\"step_start\",\"t_s\"".to_string(),
-                        _ => "\"event\":\"run_end\"".to_string(),
-                    };
-                    let want = match *when {
-                        When::StepStart(s, _) => s as usize,
-                        _ => 1,
-                    };
-                    loop {
-                        let seen = the_run_dir(&results)
-                            .and_then(|r| std::fs::read_to_string(r.join("events.jsonl")).ok())
-                            .map(|s| s.matches(&needle).count())
-                            .unwrap_or(0);
-                        if seen >= want || child.try_wait().unwrap().is_some() {
-                            break;
-                        }
-                        assert!(started.elapsed() < Duration::from_secs(60));
-                        std::hint::spin_loop();
-                    }
-                    let t = Instant::now();
-                    while t.elapsed() < extra {
-                        std::hint::spin_loop();
-                    }
-                }
-            }
-            // SAFETY: kill(2) on our own child.
-            unsafe { libc::kill(child.id() as i32, libc::SIGKILL) };
-            child.wait().unwrap();
-            let Some(rdir) = the_run_dir(&results) else {
-                outcomes.push(format!(
-                    "{n:>2} {when:?}: killed before the run folder existed"
-                ));
-                landed.push(Landed::BeforeFolder);
-                break;
-            };
-            let (line, at) = check(n, when, &rdir, &ref_rows);
-            if let (When::RecordWrite(extra), Landed::AfterCompletion, 0..3) = (*when, at, attempt)
-            {
-                *when = When::RecordWrite(extra / 4);
-                continue;
-            }
-            outcomes.push(line);
-            landed.push(at);
-            break;
+    for (n, when) in points.iter().enumerate() {
+        let results = d.join(format!("killed-{n}"));
+        let mut cmd = run_cmd(d, &results);
+        if let When::RecordWrite(f) = when {
+            cmd.env(record::write::HALT_VAR, f);
         }
+        let mut child = cmd.spawn().unwrap();
+        let rows_at_least = |n: usize| {
+            the_run_dir(&results)
+                .and_then(|r| std::fs::read(r.join("samples.csv")).ok())
+                .map_or(0, |b| b.iter().filter(|c| **c == b'\n').count())
+                >= n
+        };
+        // Polled every millisecond for the state (the run writes a few
+        // rows a millisecond at this speed).
+        let started = Instant::now();
+        let mut ended = false;
+        while !(match *when {
+            When::Rows(n) => rows_at_least(n),
+            When::StepStart(s, k) => rows_at_least(first_row(s) + k),
+            When::RecordWrite(_) => stopped(child.id()),
+        }) {
+            ended = child.try_wait().unwrap().is_some();
+            if ended {
+                break;
+            }
+            assert!(
+                started.elapsed() < Duration::from_secs(60),
+                "kill {n} ({when:?}): the run never got there"
+            );
+            std::thread::sleep(Duration::from_millis(1));
+        }
+        assert!(!ended, "kill {n} ({when:?}): the run ended before the kill");
+        // SAFETY: kill(2) on our own child.
+        unsafe { libc::kill(child.id() as i32, libc::SIGKILL) };
+        child.wait().unwrap();
+        let Some(rdir) = the_run_dir(&results) else {
+            outcomes.push(format!(
+                "{n:>2} {when:?}: killed before the run folder existed"
+            ));
+            landed.push(Landed::BeforeFolder);
+            continue;
+        };
+        let (line, at) = check(n, when, &rdir, &ref_rows);
+        outcomes.push(line);
+        landed.push(at);
     }
     eprintln!("{}", outcomes.join("\n"));
-    // The kills must test what they are for: most land while the engine
-    // runs (12 at random points of the log, 6 at step starts) and
-    // enough while the record is written (6 aimed inside the first 60 %
-    // of the time the uninterrupted run's record took).
-    let count = |l: Landed| landed.iter().filter(|x| **x == l).count();
-    let (mid_run, mid_record) = (count(Landed::MidRun), count(Landed::MidRecord));
-    eprintln!(
-        "landed: {mid_run} mid-run, {mid_record} mid-record, {} before the folder, {} after completion",
-        count(Landed::BeforeFolder),
-        count(Landed::AfterCompletion)
-    );
-    assert!(mid_run >= 14, "only {mid_run} kills landed mid-run");
-    assert!(mid_record >= 3, "only {mid_record} kills landed mid-record");
-    // Every kill aimed at a step start landed while the engine ran.
-    for (w, l) in points.iter().zip(&landed) {
-        if let When::StepStart(..) = w {
-            assert_eq!(*l, Landed::MidRun, "{w:?}");
-        }
+    // The kills test what they are for: every one aimed into the run
+    // (15 at random rows, 6 just after a step's start) landed while the
+    // engine ran, every one stopped in a record write landed there.
+    for (n, (w, l)) in points.iter().zip(&landed).enumerate() {
+        let want = match w {
+            When::Rows(_) | When::StepStart(..) => Landed::MidRun,
+            When::RecordWrite(_) => Landed::MidRecord,
+        };
+        assert_eq!(*l, want, "kill {n} ({w:?})");
     }
+}
+
+/// Whether a process is stopped (SIGSTOP): the state field of
+/// `/proc/<pid>/stat` is `T`.
+fn stopped(pid: u32) -> bool {
+    std::fs::read_to_string(format!("/proc/{pid}/stat")).is_ok_and(|s| {
+        s.rsplit_once(')')
+            .and_then(|(_, rest)| rest.split_whitespace().next())
+            == Some("T")
+    })
 }
 
 /// Everything a killed run's folder must satisfy; returns a line for the

@@ -713,7 +713,12 @@ fn wait_for_trip(log: &Path, what: &str, secs: u64) -> (Vec<StateEntry>, StateEn
 
 /// Kill the controller with SIGKILL once `during` holds for the served
 /// bench, then wait for the instrument's own protection to act.
-fn kill_when(s: &Served, run: &mut Child, during: impl Fn(&StateEntry) -> bool) {
+fn kill_when(
+    s: &Served,
+    run: &mut Child,
+    pack_dir: &Path,
+    during: impl Fn(&StateEntry) -> bool,
+) {
     let seen = wait_until(Duration::from_secs(30), || {
         std::fs::read_to_string(&s.state_log).is_ok_and(|t| {
             t.lines()
@@ -722,8 +727,19 @@ fn kill_when(s: &Served, run: &mut Child, during: impl Fn(&StateEntry) -> bool) 
         })
     });
     assert!(seen, "the run never reached the step to kill it in");
-    // A little into the step, well before any limit.
-    std::thread::sleep(Duration::from_millis(600));
+    // A little into the step, well before any limit: three more samples in
+    // the run's log than when the output was seen on (a state, not a
+    // time).
+    let run_dir = wait_run_dir(pack_dir, Duration::from_secs(10)).expect("a run folder");
+    let rows = || {
+        std::fs::read(run_dir.join("samples.csv"))
+            .map_or(0, |b| b.iter().filter(|c| **c == b'\n').count())
+    };
+    let at_state = rows();
+    assert!(
+        wait_until(Duration::from_secs(30), || rows() >= at_state + 3),
+        "the run logged no samples in the step"
+    );
     run.kill().unwrap();
     let status = run.wait().unwrap();
     assert!(status.code().is_none(), "killed by a signal, not ended");
@@ -741,7 +757,9 @@ fn a_killed_controller_leaves_the_load_to_its_under_voltage_switch_off() {
     let s = serve(dir.path(), &["--tcp", "127.0.0.1:0"], &[]);
     let mut run = spawn_run(dir.path(), &s.bench, "tests/fixtures/fault-discharge.toml");
     // Killed in the first discharge step (0.5C), about 270 s in.
-    kill_when(&s, &mut run, |e| e.load_input_on);
+    kill_when(&s, &mut run, &dir.path().join("results/P1"), |e| {
+        e.load_input_on
+    });
     let run_dir = only_run(&dir.path().join("results/P1"));
     let levels = backstop_levels(&run_dir);
     let uv = levels
@@ -797,7 +815,9 @@ fn a_killed_controller_leaves_the_supply_to_its_over_voltage_protection() {
     );
     let s = serve_config(dir.path(), &["--tcp", "127.0.0.1:0"], &[], &cfg);
     let mut run = spawn_run(dir.path(), &s.bench, "tests/fixtures/charge-only.toml");
-    kill_when(&s, &mut run, |e| e.source_output_on);
+    kill_when(&s, &mut run, &dir.path().join("results/P1"), |e| {
+        e.source_output_on
+    });
     let run_dir = only_run(&dir.path().join("results/P1"));
     let levels = backstop_levels(&run_dir);
     let ov = levels

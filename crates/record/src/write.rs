@@ -72,6 +72,7 @@ pub fn atomic_write(path: &Path, bytes: &[u8]) -> io::Result<()> {
         let mut f = OpenOptions::new().write(true).create_new(true).open(&tmp)?;
         f.write_all(bytes)?;
         f.sync_all()?;
+        halt_for_a_crash_test(&name);
         fs::rename(&tmp, path)
     })();
     if let Err(e) = written {
@@ -79,6 +80,52 @@ pub fn atomic_write(path: &Path, bytes: &[u8]) -> io::Result<()> {
         return Err(e);
     }
     sync_dir(path.parent().unwrap_or(Path::new(".")))
+}
+
+/// The variable naming the write a crash test stops the process at.
+pub const HALT_VAR: &str = "PACKBENCH_TEST_HALT_BEFORE_RENAME";
+
+/// A crash-test hook (`tests/it/crash.rs`): with
+/// `PACKBENCH_TEST_HALT_BEFORE_RENAME=<file name>#<n>` set, the process
+/// stops itself (SIGSTOP) at the n-th `atomic_write` of that file, its
+/// temporary file whole and synced and not yet renamed, so the test kills
+/// it in exactly that state instead of aiming at a window of
+/// milliseconds. Unset in use, it costs one lookup per record file.
+fn halt_for_a_crash_test(name: &str) {
+    #[cfg(unix)]
+    {
+        static WRITES: std::sync::Mutex<Vec<(String, u32)>> = std::sync::Mutex::new(Vec::new());
+        let Some(want) = std::env::var_os(HALT_VAR) else {
+            return;
+        };
+        let want = want.to_string_lossy();
+        let Some((file, nth)) = want.rsplit_once('#') else {
+            return;
+        };
+        if file != name {
+            return;
+        }
+        let Ok(mut seen) = WRITES.lock() else { return };
+        let n = match seen.iter_mut().find(|(f, _)| f == name) {
+            Some((_, n)) => {
+                *n += 1;
+                *n
+            }
+            None => {
+                seen.push((name.to_string(), 1));
+                1
+            }
+        };
+        if nth.parse::<u32>().is_ok_and(|k| k == n) {
+            // SAFETY: raise(3) with a valid signal number has no
+            // preconditions; SIGSTOP stops this process until killed.
+            unsafe {
+                libc::raise(libc::SIGSTOP);
+            }
+        }
+    }
+    #[cfg(not(unix))]
+    let _ = name;
 }
 
 /// Refuse a path below `root` that passes through a symbolic link (a

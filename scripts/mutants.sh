@@ -1,0 +1,82 @@
+#!/usr/bin/env bash
+# Mutation testing of the code that computes the figures a user acts on
+# (issue 33): cargo-mutants changes one operator, constant or return value
+# at a time and runs the crate's own tests; a mutant no test notices is a
+# piece of arithmetic nothing checks.
+#
+#   scripts/mutants.sh                 every target below, in turn
+#   scripts/mutants.sh import units    only these targets
+#   OUT=dir JOBS=1 scripts/mutants.sh  where the results go, how many at once
+#   SHARD=1/4 scripts/mutants.sh analysis   a quarter of a target's mutants
+#
+# Targets: import (record::import), units (model::units), verdict
+# (record::verdict), analysis (the whole analysis crate), and the parts of
+# analysis that carry the figures: integrate, correct, resistance, grade,
+# fade (fits, history, schedule, fleet), steps (step detection, the
+# streaming analyzer), uncertainty, decision, and rest (analysis less all
+# of those: the pulse-power fits, curves, cell groups, screening,
+# calibration, BMS).
+#
+# Each target's outcome is in $OUT/<target>/mutants.out (caught.txt,
+# missed.txt, unviable.txt, timeout.txt); the score line printed at the end
+# is caught / (caught + missed + timeout), unviable mutants (those that do
+# not build) left out. Not part of CI: on two cores the whole analysis
+# crate (about 3,800 mutants) takes several hours; a file takes minutes.
+#
+# Needs cargo-mutants (`cargo install cargo-mutants --locked`).
+set -euo pipefail
+cd "$(dirname "$0")/.."
+OUT=${OUT:-target/mutants-out}
+JOBS=${JOBS:-2}
+command -v cargo-mutants >/dev/null || {
+    echo "cargo-mutants is not installed: cargo install cargo-mutants --locked" >&2
+    exit 2
+}
+
+# target → package and files (globs relative to the workspace)
+files_of() {
+    case "$1" in
+        import) echo "-p packbench-record -f crates/record/src/import/*.rs" ;;
+        units) echo "-p packbench-model -f crates/model/src/units.rs" ;;
+        verdict) echo "-p packbench-record -f crates/record/src/verdict.rs" ;;
+        analysis) echo "-p packbench-analysis" ;;
+        rest) echo "-p packbench-analysis -e crates/analysis/src/integrate.rs -e crates/analysis/src/correct.rs -e crates/analysis/src/resistance.rs -e crates/analysis/src/pulse.rs -e crates/analysis/src/fade/* -e crates/analysis/src/fit.rs -e crates/analysis/src/stream.rs -e crates/analysis/src/lib.rs -e crates/analysis/src/uncertainty.rs -e crates/analysis/src/decision.rs" ;;
+        integrate) echo "-p packbench-analysis -f crates/analysis/src/integrate.rs" ;;
+        correct) echo "-p packbench-analysis -f crates/analysis/src/correct.rs" ;;
+        resistance) echo "-p packbench-analysis -f crates/analysis/src/resistance.rs -f crates/analysis/src/pulse.rs" ;;
+        grade) echo "-p packbench-analysis -f crates/analysis/src/fade/grade.rs" ;;
+        fade) echo "-p packbench-analysis -f crates/analysis/src/fade/trend.rs -f crates/analysis/src/fade/history.rs -f crates/analysis/src/fade/schedule.rs -f crates/analysis/src/fade/fleet.rs -f crates/analysis/src/fit.rs" ;;
+        steps) echo "-p packbench-analysis -f crates/analysis/src/stream.rs -f crates/analysis/src/lib.rs" ;;
+        uncertainty) echo "-p packbench-analysis -f crates/analysis/src/uncertainty.rs" ;;
+        decision) echo "-p packbench-analysis -f crates/analysis/src/decision.rs" ;;
+        *) echo "unknown target '$1'" >&2; return 2 ;;
+    esac
+}
+
+targets=("$@")
+[ "${#targets[@]}" -gt 0 ] || targets=(import units verdict analysis)
+
+for t in "${targets[@]}"; do
+    args=$(files_of "$t")
+    dir="$OUT/$t${SHARD:+-shard-${SHARD//\//of}}"
+    mkdir -p "$dir"
+    echo "== $t ($args${SHARD:+, shard $SHARD}) → $dir"
+    # The globs are cargo-mutants' own: not expanded by the shell.
+    set -f
+    # shellcheck disable=SC2086
+    cargo mutants $args --profile mutants --cargo-test-arg=--lib -j "$JOBS" \
+        --minimum-test-timeout 30 ${SHARD:+--shard "$SHARD"} -o "$dir" || true
+    set +f
+done
+
+echo
+echo "target        caught  missed  timeout  unviable  score"
+for t in "${targets[@]}"; do
+    d="$OUT/$t${SHARD:+-shard-${SHARD//\//of}}/mutants.out"
+    [ -d "$d" ] || continue
+    n() { [ -f "$d/$1.txt" ] && grep -c . "$d/$1.txt" || echo 0; }
+    c=$(n caught); m=$(n missed); to=$(n timeout); u=$(n unviable)
+    v=$((c + m + to))
+    score=$(awk -v c="$c" -v v="$v" 'BEGIN { if (v > 0) printf "%.1f %%", 100 * c / v; else print "-" }')
+    printf "%-12s %7d %7d %8d %9d  %s\n" "$t" "$c" "$m" "$to" "$u" "$score"
+done
