@@ -156,22 +156,40 @@ async fn every_shipped_procedure_completes_on_its_cutoff() {
             "{file}: {:?}",
             r.outcome.reason
         );
-        // The dry run's expected time is within 5 % of the run's own.
+        // A consistency check, not a correctness one (the dry run is the
+        // same engine on the same simulated pack, with ideal meters): each
+        // step's forecast time against the run's, which differs only by
+        // what the default meters' errors move an end by.
         let f = packbench::session::forecast::forecast_async(&p.procedure.plan, &cfg).await;
-        let err = (f.total_s - r.outcome.duration_s) / r.outcome.duration_s;
-        eprintln!(
-            "{file}: dry run {:.0} s, run {:.0} s ({:+.3} %)",
-            f.total_s,
-            r.outcome.duration_s,
-            err * 100.0
-        );
-        assert!(
-            err.abs() < 0.05,
-            "{file}: dry run {} s vs run {} s",
-            f.total_s,
-            r.outcome.duration_s
-        );
         assert_eq!(f.steps.len(), r.summary.steps.len(), "{file}");
+        // The bound: 0.5 % of the step or 20 s (two samples at the slowest
+        // shipped rate), whichever is more. A voltage end moves by the
+        // voltmeter's error over dV/dt (about 0.1 %), a taper end by the
+        // ammeter's offset over the taper (0.4 % seen on lead-acid's
+        // 0.01C end), a timed end by one sample. Steps that end on the
+        // temperature settling (dT/dt) are left out: the sensor's noise
+        // against a 0.5 K/h slope moves that end by hours (8.9 % seen).
+        for (fs, rs) in f.steps.iter().zip(&r.summary.steps) {
+            let dt = fs.duration_s - rs.duration_s;
+            eprintln!(
+                "{file} step {}: dry run {:.0} s, run {:.0} s ({:+.3} %)",
+                fs.step,
+                fs.duration_s,
+                rs.duration_s,
+                100.0 * dt / rs.duration_s
+            );
+            if rs.end_kind == Some(model::end::EndKind::TemperatureSettled) {
+                continue;
+            }
+            assert_eq!(fs.end_kind, rs.end_kind, "{file} step {}", fs.step);
+            assert!(
+                dt.abs() <= (0.005 * rs.duration_s).max(20.0),
+                "{file} step {}: dry run {} s against the run's {} s",
+                fs.step,
+                fs.duration_s,
+                rs.duration_s
+            );
+        }
         // A shipped procedure checks clean: no warning of its own (issue:
         // the li-ion ones warned about their own charge voltage).
         assert!(f.warnings.is_empty(), "{file}: {:?}", f.warnings);
@@ -369,7 +387,7 @@ async fn a_stop_request_interrupts_safely() {
 }
 
 #[tokio::test]
-async fn live_and_offline_summaries_agree() {
+async fn the_runs_capacity_is_the_integral_of_its_own_log() {
     let dir = tempfile::tempdir().unwrap();
     let p = prepare(
         "procedures/nimh-capacity.toml",
@@ -377,19 +395,25 @@ async fn live_and_offline_summaries_agree() {
         dir.path(),
     );
     let (r, _) = run_sim(&p, &SimConfig::default(), StopHandle::new()).await;
-    let ctx = record::summarize::SummaryContext {
-        pack: &p.pack,
-        pack_id: "TEST-1",
-        run_id: &r.summary.run_id,
-        title: &r.summary.procedure_title,
-        test_date: p.options.test_date,
-        cycle_count: p.options.cycle_count,
-        policy: &p.options.policy,
-        bms: None,
-    };
-    let again = packbench::session::finish::summarize_run_dir(&r.run_dir, &ctx, None).unwrap();
-    assert_eq!(again, r.summary);
-    // And both equal what is on disk.
+    // The capacity and energy are the trapezoid rule on the log's own rows
+    // of the capacity step, worked out in the test from the CSV text: the
+    // same numbers to the log's rounding of time (1 ms), current (1 mA)
+    // and voltage (1 mV), far below 1e-6 of the figure.
+    let c = r.summary.capacity.as_ref().expect("a capacity figure");
+    let (ah, wh) = hand_integral(&r.run_dir.join("samples.csv"), c.step);
+    assert!(
+        (c.measured_ah - ah.abs()).abs() < 1e-6 * c.measured_ah,
+        "{} Ah against {} Ah by hand",
+        c.measured_ah,
+        ah.abs()
+    );
+    assert!(
+        (c.measured_wh - wh.abs()).abs() < 1e-6 * c.measured_wh,
+        "{} Wh against {} Wh by hand",
+        c.measured_wh,
+        wh.abs()
+    );
+    // Deterministic writing: what the run returned is what is on disk.
     let on_disk: record::Summary =
         serde_json::from_str(&std::fs::read_to_string(r.run_dir.join("summary.json")).unwrap())
             .unwrap();

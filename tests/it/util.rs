@@ -285,3 +285,40 @@ pub fn run_dirs(pack_dir: &Path) -> Vec<PathBuf> {
     v.sort();
     v
 }
+
+/// A step's charge and energy worked out in the test, not by the code
+/// under test: `samples.csv` read as plain text (its columns by their
+/// header names) and the trapezoid rule applied to the rows of `step`,
+/// (Ah, Wh), signed as the log is (discharge negative). The textbook rule:
+/// ∫ i dt ≈ Σ (i₀ + i₁)/2 · (t₁ − t₀).
+pub fn hand_integral(samples_csv: &Path, step: u32) -> (f64, f64) {
+    let text = std::fs::read_to_string(samples_csv).unwrap();
+    let mut lines = text.lines();
+    let head: Vec<&str> = lines.next().unwrap().split(',').collect();
+    let col = |name: &str| {
+        head.iter()
+            .position(|h| *h == name)
+            .unwrap_or_else(|| panic!("no column {name} in {head:?}"))
+    };
+    let (ct, cs, cv, ci) = (col("t_s"), col("step"), col("voltage_v"), col("current_a"));
+    let rows: Vec<(f64, f64, f64)> = lines
+        .map(|l| l.split(',').collect::<Vec<_>>())
+        .filter(|f| f[cs] == step.to_string())
+        .map(|f| {
+            (
+                f[ct].parse().unwrap(),
+                f[cv].parse().unwrap(),
+                f[ci].parse().unwrap(),
+            )
+        })
+        .collect();
+    assert!(rows.len() > 1, "step {step} has {} rows", rows.len());
+    let (mut ah, mut wh) = (0.0, 0.0);
+    for w in rows.windows(2) {
+        let ((t0, v0, i0), (t1, v1, i1)) = (w[0], w[1]);
+        let dt_h = (t1 - t0) / 3600.0;
+        ah += 0.5 * (i0 + i1) * dt_h;
+        wh += 0.5 * (v0 * i0 + v1 * i1) * dt_h;
+    }
+    (ah, wh)
+}
