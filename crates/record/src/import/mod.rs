@@ -13,6 +13,8 @@
 
 mod chunk;
 mod format;
+#[cfg(test)]
+mod reference;
 
 use crate::error::ReadError;
 use chunk::{trim, ChunkParser, Parsed};
