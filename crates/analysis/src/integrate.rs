@@ -137,4 +137,55 @@ mod tests {
         }
         assert!((g.wh_out - 9.0).abs() < 1e-9, "{}", g.wh_out);
     }
+
+    #[test]
+    fn an_uneven_sign_change_splits_at_its_zero_crossing() {
+        // Worked by hand: a linear current from +3 A to −1 A over 1 h
+        // crosses zero at 3/4 h; the triangles are 3 × 0.75 / 2 = 1.125 Ah
+        // in and 1 × 0.25 / 2 = 0.125 Ah out. The other way round
+        // (−1 → +3 A) swaps them. Power at 2 V: twice each.
+        for (i0, i1, q_in, q_out) in [(3.0, -1.0, 1.125, 0.125), (-1.0, 3.0, 1.125, 0.125)] {
+            let mut g = Integrator::default();
+            g.push(0.0, 2.0, i0);
+            g.push(3600.0, 2.0, i1);
+            assert!((g.ah_in - q_in).abs() < 1e-12, "{g:?}");
+            assert!((g.ah_out - q_out).abs() < 1e-12, "{g:?}");
+            assert!((g.ah - (q_in - q_out)).abs() < 1e-12, "{g:?}");
+            assert!((g.wh_in - 2.0 * q_in).abs() < 1e-12, "{g:?}");
+            assert!((g.wh_out - 2.0 * q_out).abs() < 1e-12, "{g:?}");
+        }
+    }
+
+    #[test]
+    fn an_interruption_divides_half_way_and_a_break_integrates_nothing() {
+        // Last sample before at 10 s, resumed at 20 s: the line is at 15 s.
+        let b = Interruption {
+            last_before_s: 10.0,
+            resumed_at_s: 20.0,
+        };
+        assert!(b.spans(10.0, 20.0));
+        assert!(b.spans(14.999, 15.0), "an interval ending on the line spans it");
+        assert!(!b.spans(15.0, 16.0), "one starting on it does not");
+        assert!(!b.spans(9.0, 10.0));
+        assert!(!b.spans(20.0, 21.0));
+        assert!(spans_any(&[b], 12.0, 18.0));
+        assert!(!spans_any(&[b], 16.0, 18.0));
+        // A resumption time before the last sample (a clock step back)
+        // puts the line at the last sample.
+        let back = Interruption {
+            last_before_s: 10.0,
+            resumed_at_s: 5.0,
+        };
+        assert!(back.spans(9.0, 10.0) && !back.spans(10.0, 11.0));
+        // Across a break nothing is integrated; the sums are kept.
+        let mut g = Integrator::default();
+        g.push(0.0, 3.0, -2.0);
+        g.push(3600.0, 3.0, -2.0);
+        g.break_segment();
+        g.push(7200.0, 3.0, -2.0);
+        assert!((g.ah + 2.0).abs() < 1e-12, "{g:?}");
+        g.push(10_800.0, 3.0, -2.0);
+        assert!((g.ah + 4.0).abs() < 1e-12, "{g:?}");
+        assert!((g.wh_out - 12.0).abs() < 1e-12, "{g:?}");
+    }
 }
