@@ -560,4 +560,166 @@ mod tests {
         assert_eq!(HumanDuration(61.0).to_string(), "1min01s");
         assert_eq!(HumanDuration(9.4).to_string(), "9s");
     }
+
+    /// Every unit the parser knows, 2.5 of it, against its SI value worked
+    /// here from the SI prefixes (milli = 1e-3, kilo = 1e3) and the
+    /// minute and hour (60 s, 3600 s): the kind and the number.
+    #[test]
+    fn every_known_unit_converts_by_its_prefix() {
+        use Quantity::*;
+        let x = 2.5;
+        let table: &[(&str, Quantity)] = &[
+            ("V", Volts(x)),
+            ("mV", Volts(x * 1e-3)),
+            ("kV", Volts(x * 1e3)),
+            ("V/cell", VoltsPerCell(x)),
+            ("mV/cell", VoltsPerCell(x * 1e-3)),
+            ("A", Amps(x)),
+            ("mA", Amps(x * 1e-3)),
+            ("C", CRate(x)),
+            ("s", Seconds(x)),
+            ("sec", Seconds(x)),
+            ("ms", Seconds(x * 1e-3)),
+            ("min", Seconds(x * 60.0)),
+            ("m", Seconds(x * 60.0)),
+            ("h", Seconds(x * 3600.0)),
+            ("hr", Seconds(x * 3600.0)),
+            ("d", Seconds(x * 86_400.0)),
+            ("days", Seconds(x * 86_400.0)),
+            ("Ah", AmpHours(x)),
+            ("mAh", AmpHours(x * 1e-3)),
+            ("Wh", WattHours(x)),
+            ("mWh", WattHours(x * 1e-3)),
+            ("kWh", WattHours(x * 1e3)),
+            ("W", Watts(x)),
+            ("mW", Watts(x * 1e-3)),
+            ("kW", Watts(x * 1e3)),
+            ("W/cell", WattsPerCell(x)),
+            ("degC", Celsius(x)),
+            ("°C", Celsius(x)),
+            ("ohm", Ohms(x)),
+            ("Ω", Ohms(x)),
+            ("mohm", Ohms(x * 1e-3)),
+            ("mΩ", Ohms(x * 1e-3)),
+            ("kohm", Ohms(x * 1e3)),
+            ("%", Percent(x)),
+            ("V/s", VoltsPerSecond(x)),
+            ("mV/s", VoltsPerSecond(x * 1e-3)),
+            ("mV/min", VoltsPerSecond(x * 1e-3 / 60.0)),
+            ("mV/h", VoltsPerSecond(x * 1e-3 / 3600.0)),
+            ("mV/s/cell", VoltsPerSecondPerCell(x * 1e-3)),
+            ("mV/min/cell", VoltsPerSecondPerCell(x * 1e-3 / 60.0)),
+            ("mV/h/cell", VoltsPerSecondPerCell(x * 1e-3 / 3600.0)),
+            ("K/s", KelvinPerSecond(x)),
+            ("K/min", KelvinPerSecond(x / 60.0)),
+            ("degC/h", KelvinPerSecond(x / 3600.0)),
+            ("K/h", KelvinPerSecond(x / 3600.0)),
+        ];
+        for (unit, want) in table {
+            let got = parse(&format!("{x}{unit}")).unwrap();
+            assert_eq!(
+                std::mem::discriminant(&got),
+                std::mem::discriminant(want),
+                "{unit}: {got:?}"
+            );
+            assert!(close(got.number(), want.number()), "{unit}: {got:?} against {want:?}");
+        }
+    }
+
+    /// Numbers with exponents and signs end where the unit starts; an
+    /// exponent needs a digit after it, so an `e` of a unit is not eaten.
+    #[test]
+    fn numbers_end_where_the_unit_starts() {
+        assert_eq!(parse("2.5e3mA").unwrap(), Quantity::Amps(2.5));
+        assert_eq!(parse("-1E+2V").unwrap(), Quantity::Volts(-100.0));
+        assert_eq!(parse("+4V").unwrap(), Quantity::Volts(4.0));
+        assert_eq!(parse("1e-1s").unwrap(), Quantity::Seconds(0.1));
+        assert!(matches!(parse("3e"), Err(UnitError::UnknownUnit { unit, .. }) if unit == "e"));
+        assert!(matches!(parse("3e+"), Err(UnitError::UnknownUnit { unit, .. }) if unit == "e+"));
+        // A sign inside the number is not part of it.
+        assert!(matches!(parse("3-4V"), Err(UnitError::UnknownUnit { unit, .. }) if unit == "-4V"));
+        assert!(matches!(parse("."), Err(UnitError::NoNumber { .. })));
+        assert!(matches!(parse("1e999V"), Err(UnitError::NotFinite { .. })));
+        // Compound durations need two parts or more, all durations.
+        assert_eq!(parse("1h 1m 1s").unwrap(), Quantity::Seconds(3661.0));
+        assert_eq!(parse("1d2h").unwrap(), Quantity::Seconds(93_600.0));
+        assert!(parse("1h2V").is_err());
+        assert!(parse("1h2").is_err());
+    }
+
+    /// Every typed parser takes its own kinds, resolves them against the
+    /// pack, and refuses another kind naming both.
+    #[test]
+    fn typed_parsers_take_their_kinds_and_name_the_others() {
+        assert_eq!(voltage("42V").unwrap().resolve(3), 42.0);
+        assert_eq!(voltage("3.5V/cell").unwrap().resolve(4), 14.0);
+        assert_eq!(current("3A").unwrap().resolve(10.0), 3.0);
+        assert_eq!(current("0.5C").unwrap().resolve(10.0), 5.0);
+        assert_eq!(charge("2Ah").unwrap().resolve(10.0), 2.0);
+        assert_eq!(charge("25%").unwrap().resolve(8.0), 2.0);
+        assert_eq!(power("30W").unwrap().resolve(7), 30.0);
+        assert_eq!(voltage_rate("2V/s").unwrap().resolve(5), 2.0);
+        assert_eq!(voltage_rate("2mV/s/cell").unwrap().resolve(5), 0.01);
+        assert_eq!(capacity_ah("1500mAh").unwrap(), 1.5);
+        assert_eq!(energy_wh("2kWh").unwrap(), 2000.0);
+        assert_eq!(temperature_c("45degC").unwrap(), 45.0);
+        assert_eq!(resistance_ohm("25mohm").unwrap(), 0.025);
+        assert_eq!(temperature_rate("36K/h").unwrap(), 0.01);
+        assert_eq!(duration("90s").unwrap(), 90.0);
+        assert!(matches!(duration("-5s"), Err(UnitError::Negative { .. })));
+        assert_eq!(temperature_limit_c("80degC").unwrap(), 80.0);
+        assert_eq!(temperature_limit_c("-40degC").unwrap(), -40.0);
+        assert!(matches!(temperature_limit_c("81degC"), Err(UnitError::Implausible { .. })));
+        assert!(matches!(temperature_limit_c("-41degC"), Err(UnitError::Implausible { .. })));
+        let kinds: &[(&str, &str)] = &[
+            ("1V", "a voltage"),
+            ("1A", "a current"),
+            ("1s", "a duration"),
+            ("1Ah", "a charge"),
+            ("1Wh", "an energy"),
+            ("1W", "a power"),
+            ("1degC", "a temperature"),
+            ("1ohm", "a resistance"),
+            ("1%", "a percentage"),
+            ("1V/s", "a voltage rate"),
+            ("1K/h", "a temperature rate"),
+        ];
+        type Check = fn(&str) -> Option<String>;
+        let parsers: &[(&str, Check)] = &[
+            ("a voltage", |t| voltage(t).err().map(|e| e.to_string())),
+            ("a current", |t| current(t).err().map(|e| e.to_string())),
+            ("a duration", |t| duration(t).err().map(|e| e.to_string())),
+            ("a charge", |t| charge(t).err().map(|e| e.to_string())),
+            ("an energy", |t| energy_wh(t).err().map(|e| e.to_string())),
+            ("a power", |t| power(t).err().map(|e| e.to_string())),
+            ("a temperature", |t| temperature_c(t).err().map(|e| e.to_string())),
+            ("a resistance", |t| resistance_ohm(t).err().map(|e| e.to_string())),
+            ("a voltage rate", |t| voltage_rate(t).err().map(|e| e.to_string())),
+            ("a temperature rate", |t| temperature_rate(t).err().map(|e| e.to_string())),
+        ];
+        for (text, kind) in kinds {
+            for (expects, check) in parsers {
+                // A percentage is a charge (of rated capacity).
+                let takes = kind == expects || (*kind == "a percentage" && *expects == "a charge");
+                match check(text) {
+                    None => assert!(takes, "{expects} took {text}"),
+                    Some(msg) => {
+                        assert!(!takes, "{expects} refused {text}: {msg}");
+                        assert!(msg.contains(kind), "{msg}");
+                        assert!(msg.contains(expects), "{msg}");
+                    }
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn durations_print_in_hours_minutes_and_seconds() {
+        assert_eq!(HumanDuration(3600.0).to_string(), "1h00m00s");
+        assert_eq!(HumanDuration(3599.6).to_string(), "1h00m00s");
+        assert_eq!(HumanDuration(7322.0).to_string(), "2h02m02s");
+        assert_eq!(HumanDuration(60.0).to_string(), "1min00s");
+        assert_eq!(HumanDuration(59.0).to_string(), "59s");
+        assert_eq!(HumanDuration(-5.0).to_string(), "0s");
+    }
 }
