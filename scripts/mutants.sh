@@ -7,7 +7,7 @@
 #   scripts/mutants.sh                 every target below, in turn
 #   scripts/mutants.sh import units    only these targets
 #   OUT=dir JOBS=1 scripts/mutants.sh  where the results go, how many at once
-#   SHARD=1/4 scripts/mutants.sh analysis   a quarter of a target's mutants
+#   SHARD=0/4 scripts/mutants.sh analysis   every fourth mutant (round robin)
 #   ITERATE=1 scripts/mutants.sh grade      only what the last run in $OUT
 #                                           did not catch (after new tests)
 #
@@ -80,7 +80,7 @@ for t in "${targets[@]}"; do
     set -f
     # shellcheck disable=SC2086
     cargo mutants $args --profile mutants --cargo-test-arg=--lib "${skip[@]}" -j "$JOBS" \
-        --minimum-test-timeout 30 ${SHARD:+--shard "$SHARD"} ${ITERATE:+--iterate} \
+        --minimum-test-timeout 30 ${SHARD:+--shard "$SHARD" --sharding round-robin} ${ITERATE:+--iterate} \
         -o "$dir" || true
     set +f
 done

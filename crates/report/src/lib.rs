@@ -15,3 +15,6 @@ mod section_tests;
 /// " ± 0.030 Ah (k = 2, 95 %)" after a figure, or nothing without a budget
 /// (every screen prints the verdict's own budget).
 pub use record::budget::pm;
+
+#[cfg(test)]
+mod render_tests;
