@@ -1,13 +1,13 @@
 //! Capacity fade, grading and the fleet view.
 
+use crate::util::run_dirs;
 use analysis::fade::grade::{GradeInputs, Policy};
 use analysis::fade::{fleet, trend};
 use analysis::fit::{t_quantile, LinearFit};
 use model::pack::Chemistry;
+use model::status::RunStatus;
 use record::history;
 use std::path::Path;
-use model::status::RunStatus;
-use crate::util::run_dirs;
 
 fn sig6(a: f64, b: f64) -> bool {
     // Agreement to 6 significant figures.

@@ -713,12 +713,7 @@ fn wait_for_trip(log: &Path, what: &str, secs: u64) -> (Vec<StateEntry>, StateEn
 
 /// Kill the controller with SIGKILL once `during` holds for the served
 /// bench, then wait for the instrument's own protection to act.
-fn kill_when(
-    s: &Served,
-    run: &mut Child,
-    pack_dir: &Path,
-    during: impl Fn(&StateEntry) -> bool,
-) {
+fn kill_when(s: &Served, run: &mut Child, pack_dir: &Path, during: impl Fn(&StateEntry) -> bool) {
     let seen = wait_until(Duration::from_secs(30), || {
         std::fs::read_to_string(&s.state_log).is_ok_and(|t| {
             t.lines()

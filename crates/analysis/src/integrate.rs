@@ -164,7 +164,10 @@ mod tests {
             resumed_at_s: 20.0,
         };
         assert!(b.spans(10.0, 20.0));
-        assert!(b.spans(14.999, 15.0), "an interval ending on the line spans it");
+        assert!(
+            b.spans(14.999, 15.0),
+            "an interval ending on the line spans it"
+        );
         assert!(!b.spans(15.0, 16.0), "one starting on it does not");
         assert!(!b.spans(9.0, 10.0));
         assert!(!b.spans(20.0, 21.0));

@@ -622,7 +622,10 @@ mod tests {
                 std::mem::discriminant(want),
                 "{unit}: {got:?}"
             );
-            assert!(close(got.number(), want.number()), "{unit}: {got:?} against {want:?}");
+            assert!(
+                close(got.number(), want.number()),
+                "{unit}: {got:?} against {want:?}"
+            );
         }
     }
 
@@ -669,8 +672,14 @@ mod tests {
         assert!(matches!(duration("-5s"), Err(UnitError::Negative { .. })));
         assert_eq!(temperature_limit_c("80degC").unwrap(), 80.0);
         assert_eq!(temperature_limit_c("-40degC").unwrap(), -40.0);
-        assert!(matches!(temperature_limit_c("81degC"), Err(UnitError::Implausible { .. })));
-        assert!(matches!(temperature_limit_c("-41degC"), Err(UnitError::Implausible { .. })));
+        assert!(matches!(
+            temperature_limit_c("81degC"),
+            Err(UnitError::Implausible { .. })
+        ));
+        assert!(matches!(
+            temperature_limit_c("-41degC"),
+            Err(UnitError::Implausible { .. })
+        ));
         let kinds: &[(&str, &str)] = &[
             ("1V", "a voltage"),
             ("1A", "a current"),
@@ -692,10 +701,18 @@ mod tests {
             ("a charge", |t| charge(t).err().map(|e| e.to_string())),
             ("an energy", |t| energy_wh(t).err().map(|e| e.to_string())),
             ("a power", |t| power(t).err().map(|e| e.to_string())),
-            ("a temperature", |t| temperature_c(t).err().map(|e| e.to_string())),
-            ("a resistance", |t| resistance_ohm(t).err().map(|e| e.to_string())),
-            ("a voltage rate", |t| voltage_rate(t).err().map(|e| e.to_string())),
-            ("a temperature rate", |t| temperature_rate(t).err().map(|e| e.to_string())),
+            ("a temperature", |t| {
+                temperature_c(t).err().map(|e| e.to_string())
+            }),
+            ("a resistance", |t| {
+                resistance_ohm(t).err().map(|e| e.to_string())
+            }),
+            ("a voltage rate", |t| {
+                voltage_rate(t).err().map(|e| e.to_string())
+            }),
+            ("a temperature rate", |t| {
+                temperature_rate(t).err().map(|e| e.to_string())
+            }),
         ];
         for (text, kind) in kinds {
             for (expects, check) in parsers {

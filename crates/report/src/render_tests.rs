@@ -25,7 +25,10 @@ fn thin_keeps_at_most_max_points_evenly_with_the_first_and_last() {
     assert_eq!(*t.last().unwrap(), pts[999]);
     // Evenly spaced: every 1000 / 9 = 111.1 points.
     let xs: Vec<f64> = t.iter().map(|p| p.0).collect();
-    assert_eq!(&xs[..9], &[0.0, 111.0, 222.0, 333.0, 444.0, 555.0, 666.0, 777.0, 888.0]);
+    assert_eq!(
+        &xs[..9],
+        &[0.0, 111.0, 222.0, 333.0, 444.0, 555.0, 666.0, 777.0, 888.0]
+    );
     // Short enough already, or a max too small to thin to: unchanged.
     assert_eq!(thin(&pts[..10], 10), pts[..10].to_vec());
     assert_eq!(thin(&pts[..50], 1), pts[..50].to_vec());
@@ -49,7 +52,10 @@ fn a_thinned_stream_stays_bounded_in_order_and_keeps_its_last_point() {
     assert_eq!(p.last().unwrap().0, (n - 1) as f64);
     // Evenly spread: the kept points are every `every`-th seen, so the
     // gaps (but the last) are all equal.
-    let gaps: Vec<f64> = p[..p.len() - 1].windows(2).map(|w| w[1].0 - w[0].0).collect();
+    let gaps: Vec<f64> = p[..p.len() - 1]
+        .windows(2)
+        .map(|w| w[1].0 - w[0].0)
+        .collect();
     assert!(gaps.iter().all(|g| *g == gaps[0]), "{gaps:?}");
     // Worked by hand: the spacing doubles each time 2 × max = 200 points
     // are held, i.e. when 100 · 2^j points have been seen; 100 · 2^9 =

@@ -335,10 +335,7 @@ fn a_row_with_the_wrong_count_of_fields_is_named() {
     .unwrap();
     assert_eq!(rows.len(), 1);
     assert_eq!(rep.bad_rows_skipped, 2);
-    assert_eq!(
-        rep.bad_rows.iter().map(|b| b.0).collect::<Vec<_>>(),
-        [3, 4]
-    );
+    assert_eq!(rep.bad_rows.iter().map(|b| b.0).collect::<Vec<_>>(), [3, 4]);
     // Too few: the column after the last one found.
     assert!(rep.bad_rows[1].1.contains("found 2"), "{:?}", rep.bad_rows);
     // A semicolon log with decimal commas reads them as decimal points.
@@ -402,7 +399,10 @@ fn dates_read_as_seconds_and_a_clashing_time_unit_is_refused() {
             ..
         }) => {
             assert_eq!((line, column), (1, 1));
-            assert!(message.contains("in ms") && message.contains("says min"), "{message}");
+            assert!(
+                message.contains("in ms") && message.contains("says min"),
+                "{message}"
+            );
         }
         other => panic!("{other:?}"),
     }
@@ -432,7 +432,12 @@ fn named_columns_are_found_and_missing_ones_named() {
     };
     let (rows, rep) = read(text, &fmt).unwrap();
     assert_eq!(
-        (rows[0].t_s, rows[0].voltage_v, rows[0].current_a, rows[0].temperature_c),
+        (
+            rows[0].t_s,
+            rows[0].voltage_v,
+            rows[0].current_a,
+            rows[0].temperature_c
+        ),
         (1.0, 3.7, -2.0, Some(25.0))
     );
     assert_eq!(
@@ -457,13 +462,14 @@ fn named_columns_are_found_and_missing_ones_named() {
     assert!(err.contains("Zeit, U, Strom, Temp"), "{err}");
     let err = read(text, &LogFormat::default()).unwrap_err().to_string();
     assert!(err.contains("which column is the time"), "{err}");
-    assert!(
-        "time=a,watts=b"
-            .parse::<ColumnNames>()
-            .unwrap_err()
-            .contains("unknown role 'watts'")
-    );
-    assert!("time".parse::<ColumnNames>().unwrap_err().contains("ROLE=NAME"));
+    assert!("time=a,watts=b"
+        .parse::<ColumnNames>()
+        .unwrap_err()
+        .contains("unknown role 'watts'"));
+    assert!("time"
+        .parse::<ColumnNames>()
+        .unwrap_err()
+        .contains("ROLE=NAME"));
 }
 
 /// The names of the units, signs and delimiters the command line takes.
@@ -510,8 +516,11 @@ fn an_empty_log_is_refused_and_a_header_alone_has_no_rows() {
     assert_eq!(rep.rows, 0);
     assert!(!rep.partial_last_line);
     // A byte-order mark before the header is not part of its first name.
-    let (rows, rep) = read("\u{feff}t_s,voltage_v,current_a\n5,3.7,-1\n", &LogFormat::default())
-        .unwrap();
+    let (rows, rep) = read(
+        "\u{feff}t_s,voltage_v,current_a\n5,3.7,-1\n",
+        &LogFormat::default(),
+    )
+    .unwrap();
     assert_eq!(rows[0].t_s, 5.0);
     assert_eq!(rep.columns_used[0].1, "t_s");
 }
@@ -559,12 +568,22 @@ fn implausible_values_are_refused_with_the_bound() {
 #[test]
 fn step_numbers_are_whole() {
     let fmt = LogFormat::default();
-    let (rows, _) = read("t_s,step,voltage_v,current_a\n0,3,3.7,-1\n1,4.0,3.7,-1\n", &fmt).unwrap();
-    assert_eq!(rows.iter().map(|r| r.step).collect::<Vec<_>>(), [Some(3), Some(4)]);
+    let (rows, _) = read(
+        "t_s,step,voltage_v,current_a\n0,3,3.7,-1\n1,4.0,3.7,-1\n",
+        &fmt,
+    )
+    .unwrap();
+    assert_eq!(
+        rows.iter().map(|r| r.step).collect::<Vec<_>>(),
+        [Some(3), Some(4)]
+    );
     for bad in ["2.5", "-1", "x", "5000000000"] {
-        let err = read(&format!("t_s,step,voltage_v,current_a\n0,{bad},3.7,-1\n"), &fmt)
-            .unwrap_err()
-            .to_string();
+        let err = read(
+            &format!("t_s,step,voltage_v,current_a\n0,{bad},3.7,-1\n"),
+            &fmt,
+        )
+        .unwrap_err()
+        .to_string();
         assert!(err.contains("not a step number"), "{bad}: {err}");
     }
 }
