@@ -443,4 +443,113 @@ mod tests {
         assert!((c2 - 12.954 * f).abs() < 1e-9, "{c2}");
         assert!(why[1].why.contains("measured for this pack"));
     }
+
+    /// Between two table rows the factor is the straight line between
+    /// them, worked here: half-way from 23.9 °C (1.011) to 25.0 °C (1.000)
+    /// is 1.0055; a quarter of the way from 10.0 (1.19) to 12.8 °C (1.15)
+    /// is 1.18. Beyond the table the end values hold.
+    #[test]
+    fn the_k_factor_interpolates_between_its_rows_and_holds_at_the_ends() {
+        assert!((ieee_k(24.45) - 1.0055).abs() < 1e-12, "{}", ieee_k(24.45));
+        assert!((ieee_k(10.7) - 1.18).abs() < 1e-12, "{}", ieee_k(10.7));
+        assert_eq!(ieee_k(-20.0), 1.52);
+        assert_eq!(ieee_k(60.0), 0.85);
+    }
+
+    /// The linear coefficients of the chemistries, and their use: a li-ion
+    /// capacity at 35 °C is carried to 25 °C by 1 / (1 + 0.003 × 10), a
+    /// NiMH one at 15 °C by 1 / (1 − 0.005 × 10).
+    #[test]
+    fn the_linear_coefficient_carries_a_capacity_to_25_degrees() {
+        assert_eq!(linear_coefficient(Chemistry::LiIon), 0.003);
+        assert_eq!(linear_coefficient(Chemistry::Lfp), 0.003);
+        assert_eq!(linear_coefficient(Chemistry::Nimh), 0.005);
+        assert_eq!(linear_coefficient(Chemistry::LeadAcid), 0.006);
+        let test = |chemistry, t| CapacityTest {
+            chemistry,
+            measured_ah: 10.0,
+            mean_current_a: 2.0,
+            duration_s: 18_000.0,
+            initial_temperature_c: Some(t),
+            rated_ah: 10.0,
+            rated_rate_c: 0.2,
+        };
+        let (c, why) = correct(&test(Chemistry::LiIon, 35.0), &CorrectionPolicy::default());
+        assert!((c - 10.0 / 1.03).abs() < 1e-12, "{c}");
+        assert!((why[0].factor - 1.0 / 1.03).abs() < 1e-12);
+        assert!(why[0].why.contains("0.003"), "{}", why[0].why);
+        let (c, _) = correct(&test(Chemistry::Nimh, 15.0), &CorrectionPolicy::default());
+        assert!((c - 10.0 / 0.95).abs() < 1e-12, "{c}");
+        // A lead-acid discharge of 3 h or less takes λ = 0.01, said so.
+        let short = CapacityTest {
+            duration_s: 3.0 * 3600.0,
+            ..test(Chemistry::LeadAcid, 30.0)
+        };
+        let (c, why) = correct(&short, &CorrectionPolicy::default());
+        assert!((c - 10.0 / 1.1).abs() < 1e-12, "{c}");
+        assert!(why[0].why.contains("of at most 3 h"), "{}", why[0].why);
+    }
+
+    /// Switched off by the policy, a correction is not made (nor listed);
+    /// a rate within 2 % of the rated one is not corrected; no current, no
+    /// rating: no rate correction.
+    #[test]
+    fn the_policy_and_the_two_percent_band_decide_what_is_corrected() {
+        let test = CapacityTest {
+            chemistry: Chemistry::LeadAcid,
+            measured_ah: 95.0,
+            mean_current_a: 10.0,
+            duration_s: 9.5 * 3600.0,
+            initial_temperature_c: Some(30.0),
+            rated_ah: 100.0,
+            rated_rate_c: 0.05,
+        };
+        let off = CorrectionPolicy {
+            temperature: false,
+            rate: false,
+            ..CorrectionPolicy::default()
+        };
+        assert_eq!(correct(&test, &off), (95.0, Vec::new()));
+        let rate_only = CorrectionPolicy {
+            temperature: false,
+            ..CorrectionPolicy::default()
+        };
+        let (c, why) = correct(&test, &rate_only);
+        assert_eq!(why.len(), 1);
+        assert!((c - 95.0 * 2f64.powf(0.2)).abs() < 1e-9, "{c}");
+        // 1.9 % off the rated current: inside the band; 2.1 %: outside.
+        for (i, corrected) in [(5.095, false), (5.105, true)] {
+            let t = CapacityTest {
+                mean_current_a: i,
+                ..test
+            };
+            let (_, why) = correct(&t, &rate_only);
+            assert_eq!(!why.is_empty(), corrected, "{i} A: {why:?}");
+        }
+        for t in [
+            CapacityTest {
+                mean_current_a: 0.0,
+                ..test
+            },
+            CapacityTest {
+                rated_rate_c: 0.0,
+                ..test
+            },
+        ] {
+            assert!(correct(&t, &rate_only).1.is_empty());
+        }
+    }
+
+    /// Two tests at one current, or without a time, give no exponent.
+    #[test]
+    fn an_exponent_needs_two_currents_and_two_times() {
+        assert_eq!(peukert_exponent(5.0, 20.0, 5.0, 18.0), None);
+        assert_eq!(peukert_exponent(20.0, 0.0, 5.0, 20.0), None);
+        assert_eq!(peukert_exponent(20.0, 4.0, 5.0, 0.0), None);
+        assert_eq!(peukert_exponent(20.0, -4.0, 5.0, 20.0), None);
+        // The order of the two tests does not matter.
+        let a = peukert_exponent(20.0, 4.0, 5.0, 20.0).unwrap();
+        let b = peukert_exponent(5.0, 20.0, 20.0, 4.0).unwrap();
+        assert!((a - b).abs() < 1e-12);
+    }
 }

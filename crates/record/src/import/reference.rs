@@ -285,6 +285,15 @@ proptest! {
         fields[column] = junk.to_string();
         lines[bad_row + 1] = fields.join(&d.to_string());
         let text = lines.join(nl);
+        // The rows before the bad one are handed over before the error
+        // (nothing read is lost).
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("log.csv");
+        std::fs::write(&path, &text).unwrap();
+        let mut before = 0usize;
+        let err = stream_log(&path, &format_of(&l, false), |_| before += 1);
+        prop_assert!(err.is_err());
+        prop_assert_eq!(before, bad_row);
         match read(&text, &format_of(&l, false)) {
             Err(ReadError::Bad { line, column: c, message, .. }) => {
                 prop_assert_eq!(line, bad_row + 2, "{}", message);
