@@ -312,4 +312,86 @@ mod tests {
         assert_eq!(c.len(), 1);
         assert!(c[0].dcir_mohm > 0.0);
     }
+
+    /// Each rule of the found pattern at its boundary, sampled every
+    /// 1/8 s (exact in binary, so a level's span is exact): a level of n
+    /// samples spans (n − 1)/8 s. The first level's 5 s, the second's
+    /// 0.5 s and 10 s, the ratio 1.5, and the level rule's 2 % + 5 mA.
+    #[test]
+    fn each_rule_of_the_found_pattern_holds_at_its_boundary() {
+        let run = |levels: &[(f64, usize)]| {
+            let mut tr = LevelTracker::default();
+            let mut k = 0u32;
+            for &(i, n) in levels {
+                for _ in 0..n {
+                    tr.push(f64::from(k) / 8.0, 3.7 + 0.03 * i, i, 1, Some(0.5));
+                    k += 1;
+                }
+            }
+            tr.finish()
+        };
+        let rest = (0.0, 40);
+        let found = |first: (f64, usize), second: (f64, usize)| {
+            !run(&[rest, first, second, rest]).is_empty()
+        };
+        // First level: 41 samples = 5.0 s (enough), 40 = 4.875 s (not).
+        assert!(found((-1.0, 41), (-2.0, 9)));
+        assert!(!found((-1.0, 40), (-2.0, 9)));
+        // Second level: 5 samples = 0.5 s (enough), 4 = 0.375 s (not);
+        // 81 = 10.0 s (at most), 82 = 10.125 s (too long).
+        assert!(found((-1.0, 41), (-2.0, 5)));
+        assert!(!found((-1.0, 41), (-2.0, 4)));
+        assert!(found((-1.0, 41), (-2.0, 81)));
+        assert!(!found((-1.0, 41), (-2.0, 82)));
+        // Ratio: 1.5 times (enough), 1.45 (not).
+        assert!(found((-1.0, 41), (-1.5, 9)));
+        assert!(!found((-1.0, 41), (-1.45, 9)));
+        // The reading, its times and its charge count.
+        let r = run(&[rest, (-1.0, 41), (-2.0, 9), rest]);
+        assert_eq!(r.len(), 1);
+        assert!((r[0].dcir_mohm - 30.0).abs() < 1e-9, "{}", r[0].dcir_mohm);
+        // The first level ends at sample 80 (10 s), the second at 89.
+        assert_eq!((r[0].t1_s, r[0].t2_s), (10.0, 11.125), "{r:?}");
+        assert_eq!((r[0].i1_a, r[0].i2_a), (-1.0, -2.0));
+        assert_eq!(r[0].ah_since_full, Some(0.5));
+        assert!(
+            r[0].method
+                .contains("-1.0000 A for 5.0 s, then -2.0000 A for 1.0 s"),
+            "{}",
+            r[0].method
+        );
+        // A break ends the levels: nothing joins across it.
+        let mut tr = LevelTracker::default();
+        for k in 0..51 {
+            tr.push(k as f64 * 0.1, 3.67, -1.0, 1, None);
+        }
+        tr.break_segment();
+        for k in 0..11 {
+            tr.push(100.0 + k as f64 * 0.1, 3.64, -2.0, 1, None);
+        }
+        assert!(tr.finish().is_empty());
+        // The level rule: 2 % of the larger plus 5 mA.
+        assert!(!level_jump(1.0, 1.024));
+        assert!(level_jump(1.0, 1.027));
+        assert!(!level_jump(-1.0, -0.976));
+        assert!(!level_jump(0.0, 0.005));
+        assert!(level_jump(0.0, 0.0052)); // 0.0052 > 0.02 × 0.0052 + 0.005
+        let mk = |i: f64| Sample {
+            t_s: 0.0,
+            step: 1,
+            cycle: 0,
+            voltage_v: 3.7,
+            current_a: i,
+            temperature_c: None,
+        };
+        let s = [mk(1.0), mk(1.024), mk(1.06), mk(1.06)];
+        assert_eq!(
+            current_levels(&s)
+                .iter()
+                .map(|l| l.len())
+                .collect::<Vec<_>>(),
+            [2, 2]
+        );
+        assert!(two_level_from_step(1, &s[..2]).is_none(), "one level");
+    }
 }
