@@ -251,4 +251,79 @@ mod tests {
             .iter()
             .all(|v| (v.resistance_mohm - 20.0).abs() < 1e-9));
     }
+
+    /// Irregular samples after an edge at t = 10 s (3.7 V, at rest), the
+    /// voltage and current straight lines after it (V = 3.6 − 0.01·(t −
+    /// 10), I = −2 − 0.001·(t − 10)), so an interpolated value is the
+    /// line's own: 0.1 s is not resolved (the next sample is 0.2 s late
+    /// and 0.25 s from the one before); 1 s is bracketed by 10.9 and
+    /// 11.2 s (interpolated); 10 s is hit 0.4 s late (within 5 %, the
+    /// sample's own values); 18 s is bracketed by 27 and 29.5 s.
+    #[test]
+    fn irregular_samples_are_taken_or_interpolated_as_worked_here() {
+        let v = |t: f64| 3.6 - 0.01 * (t - 10.0);
+        let i = |t: f64| -2.0 - 0.001 * (t - 10.0);
+        let mut p = PulseTracker::new(&DEFAULT_DELAYS_S, 10.0);
+        for k in 0..=10 {
+            p.push(f64::from(k), 3.7, 0.0, 1, Some(1.5));
+        }
+        for t in [10.05, 10.3, 10.9, 11.2, 20.4, 27.0, 29.5, 31.0] {
+            p.push(t, v(t), i(t), 2, Some(1.6));
+        }
+        let (r, dropped) = p.finish();
+        assert_eq!((r.len(), dropped), (1, 0));
+        let e = &r[0];
+        assert_eq!(
+            (e.t_edge_s, e.voltage_before_v, e.current_before_a),
+            (10.0, 3.7, 0.0)
+        );
+        // The charge count is the one given with the first sample after it.
+        assert_eq!(
+            (e.current_after_a, e.step, e.ah_since_full),
+            (i(10.05), 2, Some(1.6))
+        );
+        let got: Vec<(f64, f64)> = e
+            .values
+            .iter()
+            .map(|x| (x.delay_s, x.resistance_mohm))
+            .collect();
+        let want = |t: f64| (v(t) - 3.7) / i(t) * 1000.0;
+        let expect = [(1.0, want(11.0)), (10.0, want(20.4)), (18.0, want(28.0))];
+        assert_eq!(got.len(), 3, "{got:?}");
+        for ((d, g), (wd, w)) in got.iter().zip(expect) {
+            assert_eq!(*d, wd);
+            assert!((g - w).abs() < 1e-9, "{d} s: {g} against {w}");
+        }
+        // The 10 s value is the sample's own, not the line at 20 s.
+        assert_eq!(e.values[1].voltage_v, v(20.4));
+        assert_eq!(e.values[1].current_a, i(20.4));
+    }
+
+    /// An edge is a jump over C/100 (at least 5 mA); a reading is kept
+    /// for a jump of at least C/10: on a 10 Ah pack, 0.9 A is no reading,
+    /// 1.0 A is one; a second edge within the level's 2 % is no edge.
+    #[test]
+    fn edges_and_readings_need_their_sizes() {
+        let run = |to: f64| {
+            let mut p = PulseTracker::new(&[1.0], 10.0);
+            for k in 0..5 {
+                p.push(f64::from(k), 3.7, 0.0, 1, None);
+            }
+            for k in 5..10 {
+                p.push(f64::from(k), 3.6, to, 1, None);
+            }
+            p.finish().0
+        };
+        assert!(run(-0.9).is_empty());
+        assert_eq!(run(-1.0).len(), 1);
+        assert!(is_jump(1.0, 1.03, 0.005) && !is_jump(1.0, 1.02, 0.005));
+        assert!(!is_jump(0.0, 0.005, 0.005) && is_jump(0.0, 0.0052, 0.005));
+        // A break closes the edge: no reading across it.
+        let mut p = PulseTracker::new(&[1.0], 10.0);
+        p.push(0.0, 3.7, 0.0, 1, None);
+        p.break_segment();
+        p.push(1.0, 3.6, -2.0, 1, None);
+        p.push(2.0, 3.6, -2.0, 1, None);
+        assert!(p.finish().0.is_empty());
+    }
 }
