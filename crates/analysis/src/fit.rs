@@ -188,4 +188,76 @@ mod tests {
         let f = LinearFit::fit(&n, &soh).unwrap();
         assert!((f.solve_x(80.0).unwrap() - 1000.0).abs() < 1e-6);
     }
+
+    /// A noisy fade against SciPy 1.17.1 (`scipy.stats.linregress`, the
+    /// residual SD and the prediction band from `scipy.stats.t.ppf`, the
+    /// band's crossings of 80 % by `scipy.optimize.brentq`), run on these
+    /// seven points: slope −0.01825 %/cycle, intercept 99.975 %, r² =
+    /// 0.998474304, s = 0.168819430, se(slope) = 3.19038735e-4; at 1000
+    /// cycles 81.725 ± 0.738103659 (95 %); the line reaches 80 % at
+    /// 1094.52 cycles, its lower band at 1052.2254, its upper at 1140.0311.
+    #[test]
+    fn a_noisy_fade_agrees_with_scipy() {
+        let x = [0.0, 100.0, 200.0, 300.0, 400.0, 500.0, 600.0];
+        let y = [100.0, 98.1, 96.5, 94.2, 92.8, 90.9, 89.0];
+        let f = LinearFit::fit(&x, &y).unwrap();
+        let near = |a: f64, b: f64, tol: f64| (a - b).abs() <= tol * b.abs().max(1e-12);
+        assert_eq!(f.n, 7);
+        assert!(near(f.slope, -0.01825, 1e-12), "{}", f.slope);
+        assert!(near(f.intercept, 99.975, 1e-12), "{}", f.intercept);
+        assert!(
+            near(f.r_squared, 0.998_474_304_068_522_4, 1e-10),
+            "{}",
+            f.r_squared
+        );
+        assert!(
+            near(f.residual_sd, 0.168_819_430_161_343_5, 1e-10),
+            "{}",
+            f.residual_sd
+        );
+        assert!(
+            near(f.slope_se, 3.190_387_347_732_510_4e-4, 1e-10),
+            "{}",
+            f.slope_se
+        );
+        assert!(near(f.x_mean, 300.0, 1e-15) && near(f.sxx, 280_000.0, 1e-12));
+        assert!(near(f.predict(1000.0), 81.725, 1e-12));
+        let hw = f.prediction_half_width(1000.0, 0.95).unwrap();
+        assert!(near(hw, 0.738_103_658_825_260_2, 1e-8), "{hw}");
+        let (lo, hi) = f.prediction_interval(1000.0, 0.95).unwrap();
+        assert!(near(lo, 81.725 - hw, 1e-12) && near(hi, 81.725 + hw, 1e-12));
+        assert!(near(
+            f.solve_x(80.0).unwrap(),
+            1094.520_547_945_205_6,
+            1e-12
+        ));
+        let (early, late) = f.band_crossings(80.0, 0.95, 600.0, 5000.0);
+        assert!(
+            near(early.unwrap(), 1052.225_416_622_141, 1e-8),
+            "{early:?}"
+        );
+        assert!(near(late.unwrap(), 1140.031_093_970_452, 1e-8), "{late:?}");
+        // Searched where the band never gets there: no bound.
+        assert_eq!(f.band_crossings(80.0, 0.95, 600.0, 1000.0), (None, None));
+        // Already there at the start: the start.
+        assert_eq!(f.band_crossings(99.0, 0.95, 600.0, 5000.0).0, Some(600.0));
+        // A rising line (resistance growth) crosses upward, the upper band
+        // first.
+        let g = LinearFit::fit(&x, &y.map(|v| 200.0 - v)).unwrap();
+        let (early, late) = g.band_crossings(120.0, 0.95, 600.0, 5000.0);
+        assert!(
+            near(early.unwrap(), 1052.225_416_622_141, 1e-8),
+            "{early:?}"
+        );
+        assert!(near(late.unwrap(), 1140.031_093_970_452, 1e-8), "{late:?}");
+        // A flat line never reaches another level; with no residual it
+        // fits exactly (r² = 1 where y does not vary).
+        let flat = LinearFit::fit(&[0.0, 1.0, 2.0], &[5.0, 5.0, 5.0]).unwrap();
+        assert_eq!(flat.solve_x(4.0), None);
+        assert_eq!(flat.r_squared, 1.0);
+        // Lengths that differ, or a number that is not finite: no fit.
+        assert!(LinearFit::fit(&[0.0, 1.0, 2.0], &[1.0, 2.0]).is_none());
+        assert!(LinearFit::fit(&[0.0, 1.0, f64::NAN], &[1.0, 2.0, 3.0]).is_none());
+        assert!(LinearFit::fit(&[0.0, 1.0, 2.0], &[1.0, f64::INFINITY, 3.0]).is_none());
+    }
 }

@@ -334,3 +334,221 @@ fn analyze_points(h: &PackHistory, threshold_pct: f64) -> FadeAnalysis {
     out.notes = notes;
     out
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::fade::history::HistoryPoint;
+    use model::pack::{Chemistry, PackSpec};
+
+    fn history(points: &[(i64, f64, f64)]) -> PackHistory {
+        let first: NaiveDate = "2025-01-01".parse().unwrap();
+        PackHistory {
+            pack_id: "FR-T09".into(),
+            spec: PackSpec {
+                chemistry: Chemistry::LiIon,
+                series: 10,
+                rated_capacity_ah: 14.0,
+                rated_energy_wh: None,
+                rated_rate_c: None,
+                rated_resistance_mohm: None,
+            },
+            points: points
+                .iter()
+                .map(|&(day, cycles, soh)| HistoryPoint {
+                    date: first + chrono::Duration::days(day),
+                    cycles,
+                    cycles_given: true,
+                    capacity_ah: soh * 0.14,
+                    soh_pct: soh,
+                    resistance_mohm: cycles.is_finite().then(|| 20.0 + 0.01 * cycles),
+                    resistance_growth_pct: None,
+                    ieee450_percent: None,
+                    coulombic_efficiency_pct: None,
+                    grade: None,
+                    source: format!("day {day}"),
+                    run_dir: None,
+                    groups: None,
+                    pulse_r50_mohm: None,
+                    soh_u95_pct: None,
+                    flags: Vec::new(),
+                })
+                .collect(),
+            left_out: Vec::new(),
+        }
+    }
+
+    /// Seven tests 91 days and 100 cycles apart, the fade of
+    /// `fit::tests::a_noisy_fade_agrees_with_scipy`: its numbers from SciPy
+    /// 1.17.1 (linregress, t.ppf, brentq). The end of life at 80 %:
+    /// 1094.52 cycles (band 1052.23 to 1140.03); in days the same × 0.91:
+    /// 996.0 (957.5 to 1037.4) after 2025-01-01, so 2027-09-24
+    /// (2027-08-17 to 2027-11-04). Fades per unit: −1.825 % per 100 cycles,
+    /// −7.3251 % per year (scipy: slope per day × 365.25), −8.9864 % per
+    /// √year. The earlier half's slope −0.0190, the recent −0.0175: not
+    /// accelerating. The resistance 20 + 0.01·n mΩ: 0.01 mΩ per cycle.
+    #[test]
+    fn projections_agree_with_scipy() {
+        let y = [100.0, 98.1, 96.5, 94.2, 92.8, 90.9, 89.0];
+        let pts: Vec<(i64, f64, f64)> = (0..7)
+            .map(|k| (91 * k as i64, 100.0 * k as f64, y[k]))
+            .collect();
+        let a = analyze(&history(&pts), 80.0);
+        assert_eq!(a.points, 7);
+        assert!(a.notes.is_empty(), "{:?}", a.notes);
+        let per: Vec<(ModelKind, f64)> =
+            a.models.iter().map(|m| (m.kind, m.fade_per_unit)).collect();
+        assert_eq!(per.len(), 3);
+        assert_eq!(per[0].0, ModelKind::LinearCycles);
+        assert!((per[0].1 + 1.825).abs() < 1e-10, "{per:?}");
+        assert!((per[1].1 + 7.325_068_681_318_678).abs() < 1e-9, "{per:?}");
+        assert!((per[2].1 + 8.986_423_228_433_964).abs() < 1e-9, "{per:?}");
+        assert!((a.models[2].fit.r_squared - 0.913_106_419_754_687_5).abs() < 1e-9);
+        let c = a.eol_cycles.as_ref().unwrap();
+        assert!((c.cycles - 1094.520_547_945_205_6).abs() < 1e-9, "{c:?}");
+        assert!(
+            (c.cycles_early.unwrap() - 1052.225_416_622_141).abs() < 1e-6,
+            "{c:?}"
+        );
+        assert!(
+            (c.cycles_late.unwrap() - 1140.031_093_970_452).abs() < 1e-6,
+            "{c:?}"
+        );
+        assert_eq!(c.basis, "all 7 measurements");
+        let d = a.eol_date.as_ref().unwrap();
+        let day = |s: &str| s.parse::<NaiveDate>().unwrap();
+        assert_eq!(d.date, day("2027-09-24"));
+        assert_eq!(d.date_early, Some(day("2027-08-17")));
+        assert_eq!(d.date_late, Some(day("2027-11-04")));
+        assert!(a.accelerating.is_none());
+        let r = a.resistance_fit.as_ref().unwrap();
+        assert!((r.slope - 0.01).abs() < 1e-12 && (r.intercept - 20.0).abs() < 1e-9);
+        assert_eq!(a.below_eol_since, None);
+        // Judged on a day after the projected date: flagged, with a note.
+        let mut late = a.clone();
+        late.flag_against(day("2027-10-01"));
+        assert!(late.eol_date_past);
+        assert!(
+            late.notes.iter().any(|n| n.contains("before today")),
+            "{:?}",
+            late.notes
+        );
+        let mut early = a.clone();
+        early.flag_against(day("2027-09-24"));
+        assert!(!early.eol_date_past, "on the day itself: not past");
+    }
+
+    /// A knee: −0.01 %/cycle to 500 cycles, then −0.04 %/cycle (exact
+    /// lines). The recent half (500 to 900 cycles) is four times steeper:
+    /// accelerating, and projected on it: 95 − 0.04·(n − 500) = 80 at
+    /// n = 875 cycles (the line through the knee would say 1611).
+    #[test]
+    fn a_knee_is_found_and_projected_on_the_recent_half() {
+        let pts: Vec<(i64, f64, f64)> = (0..10)
+            .map(|k| {
+                let n = 100.0 * k as f64;
+                let soh = if n <= 500.0 {
+                    100.0 - 0.01 * n
+                } else {
+                    95.0 - 0.04 * (n - 500.0)
+                };
+                (30 * k as i64, n, soh)
+            })
+            .collect();
+        let a = analyze(&history(&pts), 80.0);
+        let acc = a.accelerating.as_ref().unwrap();
+        assert!(
+            (acc.earlier_pct_per_100_cycles + 1.0).abs() < 1e-9,
+            "{acc:?}"
+        );
+        assert!(
+            (acc.recent_pct_per_100_cycles + 4.0).abs() < 1e-9,
+            "{acc:?}"
+        );
+        assert!((acc.ratio - 4.0).abs() < 1e-9);
+        let c = a.eol_cycles.as_ref().unwrap();
+        assert!((c.cycles - 875.0).abs() < 1e-9, "{c:?}");
+        assert_eq!(c.basis, "recent 5 measurements");
+        assert!(a.notes.iter().any(|n| n.contains("accelerating")));
+        // A steady fade of the same start is not accelerating.
+        let steady: Vec<(i64, f64, f64)> = (0..10)
+            .map(|k| {
+                (
+                    30 * k as i64,
+                    100.0 * k as f64,
+                    100.0 - 0.001 * k as f64 * 100.0 + if k % 2 == 0 { 0.1 } else { -0.1 },
+                )
+            })
+            .collect();
+        assert!(analyze(&history(&steady), 80.0).accelerating.is_none());
+        assert!(
+            acceleration(&[0.0, 1.0, 2.0, 3.0, 4.0], &[5.0, 4.0, 3.0, 1.0, -1.0]).is_none(),
+            "under six points"
+        );
+    }
+
+    /// Too few tests project nothing; tests under the threshold at the end
+    /// are "below since" the first of them; an unknown cycle count leaves
+    /// a point out of the cycle fit only; a rising history projects no end.
+    #[test]
+    fn what_is_not_projected_says_why() {
+        let a = analyze(&history(&[(0, 0.0, 95.0), (90, 100.0, 93.0)]), 80.0);
+        assert!(a.models.is_empty() && a.eol_cycles.is_none());
+        assert!(a.notes[0].contains("2 measurement(s)"), "{:?}", a.notes);
+        let a = analyze(
+            &history(&[
+                (0, 0.0, 85.0),
+                (90, 100.0, 82.0),
+                (180, 200.0, 79.0),
+                (270, 300.0, 77.0),
+            ]),
+            80.0,
+        );
+        assert_eq!(a.below_eol_since, Some("2025-06-30".parse().unwrap()));
+        assert!(
+            a.notes[0].contains("below end of life (80 % of rated) since 2025-06-30: 77.0 %"),
+            "{:?}",
+            a.notes
+        );
+        let a = analyze(
+            &history(&[
+                (0, 0.0, 95.0),
+                (90, f64::NAN, 94.0),
+                (180, 200.0, 93.0),
+                (270, 300.0, 92.0),
+            ]),
+            80.0,
+        );
+        assert!(
+            a.notes
+                .iter()
+                .any(|n| n.contains("1 measurement(s) without a cycle count")),
+            "{:?}",
+            a.notes
+        );
+        assert_eq!(a.models.len(), 3);
+        assert_eq!(a.models[0].fit.n, 3);
+        assert_eq!(a.models[1].fit.n, 4);
+        let a = analyze(
+            &history(&[(0, 0.0, 90.0), (90, 100.0, 91.0), (180, 200.0, 92.0)]),
+            80.0,
+        );
+        assert!(a.eol_cycles.is_none() && a.eol_date.is_none());
+        assert!(a.notes.iter().any(|n| n.contains("no falling trend")));
+        // A flagged point is left out of the fit and said to be.
+        let mut h = history(&[
+            (0, 0.0, 95.0),
+            (90, 100.0, 93.0),
+            (180, 200.0, 99.0),
+            (270, 300.0, 89.0),
+        ]);
+        h.points[2].flags.push("rose".into());
+        let a = analyze(&h, 80.0);
+        assert_eq!(a.points, 3);
+        assert!(
+            a.notes[0].starts_with("1 flagged test(s) left out"),
+            "{:?}",
+            a.notes
+        );
+    }
+}
