@@ -848,4 +848,160 @@ mod tests {
         assert_eq!(g.label, "B");
         assert!(g.decision.unwrap().retest);
     }
+
+    /// A policy with every criterion, each judged at its limit (simple
+    /// acceptance: a figure at a floor or ceiling passes), a chemistry's
+    /// own value taking precedence, a figure not measured skipped with a
+    /// note, and the reasons of the grades above written out.
+    #[test]
+    fn every_criterion_at_its_limit_and_the_reasons_given() {
+        let text = r#"name = "shop"
+[[grade]]
+label = "A"
+meaning = "resell"
+soh_min = { li-ion = "90%", lfp = "90%", lead-acid = "85%" }
+resistance_growth_max = "25%"
+coulombic_efficiency_min = "99.5%"
+weakest_group_share_min = "95%"
+group_capacity_spread_max = "5%"
+[[grade]]
+label = "B"
+soh_min = "80%"
+[[grade]]
+label = "C"
+"#;
+        let p = Policy::from_toml(Path::new("shop.toml"), text).unwrap();
+        assert_eq!(p.decision.rule, Rule::Simple);
+        let full = |soh, growth, ce, share, spread| GradeInputs {
+            chemistry: Chemistry::LiIon,
+            soh_pct: Some(soh),
+            resistance_growth_pct: Some(growth),
+            coulombic_efficiency_pct: Some(ce),
+            weakest_group: Some(3),
+            weakest_group_share_pct: Some(share),
+            group_capacity_spread_pct: Some(spread),
+            soh_u: None,
+            resistance_growth_u: None,
+            ce_u: None,
+        };
+        // Every figure exactly at its limit: A, each reason with its sign.
+        let g = p.grade(&full(90.0, 25.0, 99.5, 95.0, 5.0));
+        assert_eq!(
+            (g.label.as_str(), g.meaning.as_str(), g.policy.as_str()),
+            ("A", "resell", "shop")
+        );
+        assert_eq!(
+            g.reasons,
+            [
+                "state of health 90.0 % >= 90 %",
+                "resistance growth 25.0 % <= 25 %",
+                "coulombic efficiency 99.50 % >= 99.5 %",
+                "weakest group (group 3) delivers 95.0 % of the mean >= 95 %",
+                "group capacity spread 5.0 % <= 5 %",
+            ]
+        );
+        // Each one just past its limit: B, with why not A.
+        for (x, why) in [
+            (
+                full(89.9, 25.0, 99.5, 95.0, 5.0),
+                "state of health 89.9 % < 90 %",
+            ),
+            (
+                full(90.0, 25.1, 99.5, 95.0, 5.0),
+                "resistance growth 25.1 % > 25 %",
+            ),
+            (
+                full(90.0, 25.0, 99.49, 95.0, 5.0),
+                "coulombic efficiency 99.49 % < 99.5 %",
+            ),
+            (
+                full(90.0, 25.0, 99.5, 94.9, 5.0),
+                "group 3 delivers 94.9 % of the mean < 95 %: replace or rebalance it",
+            ),
+            (
+                full(90.0, 25.0, 99.5, 95.0, 5.1),
+                "group capacity spread 5.1 % > 5 % (weakest: group 3)",
+            ),
+        ] {
+            let g = p.grade(&x);
+            assert_eq!(g.label, "B", "{why}");
+            assert_eq!(g.reasons[0], format!("not A: {why}"));
+        }
+        // Below every floor: the catch-all, with both reasons above it.
+        let g = p.grade(&full(70.0, 30.0, 99.0, 90.0, 9.0));
+        assert_eq!(g.label, "C");
+        assert!(
+            g.reasons[1].starts_with("not B: state of health 70.0 % < 80 %"),
+            "{:?}",
+            g.reasons
+        );
+        assert_eq!(g.reasons.len(), 2);
+        // The chemistry's own floor: lead-acid at 86 % is A; a chemistry
+        // the table does not name is not judged on it.
+        let mut la = full(86.0, 0.0, 99.9, 99.0, 1.0);
+        la.chemistry = Chemistry::LeadAcid;
+        assert_eq!(p.grade(&la).label, "A");
+        la.chemistry = Chemistry::Nimh;
+        let g = p.grade(&la);
+        assert_eq!(g.label, "A");
+        assert!(
+            !g.reasons.iter().any(|r| r.contains("state of health")),
+            "{:?}",
+            g.reasons
+        );
+        // Not measured: skipped and said; a pack read at its terminals is
+        // not judged on groups.
+        let g = p.grade(&GradeInputs::of_soh(Chemistry::LiIon, 95.0, None));
+        assert_eq!(g.label, "A");
+        assert!(
+            g.reasons
+                .contains(&"resistance growth not measured (criterion skipped)".to_string()),
+            "{:?}",
+            g.reasons
+        );
+        assert!(
+            !g.reasons.iter().any(|r| r.contains("group")),
+            "{:?}",
+            g.reasons
+        );
+        let g = p.grade(&GradeInputs::of_soh(Chemistry::LiIon, 70.0, None));
+        assert_eq!(
+            g.reasons.last().unwrap(),
+            "not B: state of health 70.0 % < 80 %"
+        );
+    }
+
+    /// The refusal's arithmetic: floors 90/80/70 give half-bins of 5
+    /// points; with max_u_to_bin 0.25 a state of health is graded while
+    /// U = 2u ≤ 1.25 points.
+    #[test]
+    fn the_refusal_compares_u_with_the_narrowest_half_bin() {
+        let p = Policy::default_policy();
+        assert_eq!(p.decision.max_u_to_bin, Some(0.25));
+        assert!(
+            p.refuses(Chemistry::LiIon, Some(0.625)).is_none(),
+            "U = 1.25: at the limit"
+        );
+        let why = p.refuses(Chemistry::LiIon, Some(0.63)).unwrap();
+        assert!(
+            why.contains("U = 1.26 points") && why.contains("(5.0 points)"),
+            "{why}"
+        );
+        assert!(p.refuses(Chemistry::LiIon, None).is_none());
+        // Floors 90 / 86 / 70: the narrowest half-bin is 2 points.
+        let text = "name = \"x\"\n[decision]\nrule = \"simple\"\nmax_u_to_bin = 0.5\n[[grade]]\nlabel = \"A\"\nsoh_min = \"90%\"\n[[grade]]\nlabel = \"B\"\nsoh_min = \"86%\"\n[[grade]]\nlabel = \"C\"\nsoh_min = \"70%\"\n[[grade]]\nlabel = \"D\"\n";
+        let q = Policy::from_toml(Path::new("x.toml"), text).unwrap();
+        assert!(
+            q.refuses(Chemistry::LiIon, Some(0.5)).is_none(),
+            "U = 1 = 0.5 × 2"
+        );
+        assert!(q.refuses(Chemistry::LiIon, Some(0.51)).is_some());
+        // Probabilities as a reader wants them.
+        assert_eq!(show_probability(0.005), "< 0.01 %");
+        assert_eq!(show_probability(99.995), "> 99.99 %");
+        assert_eq!(show_probability(0.5), "0.50 %");
+        assert_eq!(show_probability(99.5), "99.50 %");
+        assert_eq!(show_probability(21.19), "21.2 %");
+        assert_eq!(show_probability(1.0), "1.0 %");
+    }
 }
