@@ -266,4 +266,96 @@ mod tests {
         assert!((r.guard_band(1.0, 2.0) - 1.6449).abs() < 1e-3);
         assert!((phi(1.5) - 0.93319).abs() < 1e-5);
     }
+
+    /// The outcomes at the edges of a guard band w = U = 0.5 about a
+    /// floor of 80 (ILAC-G8 4.2.3 as written in the module's head): 80.5
+    /// passes, 80.49 and 80 are conditional passes, 79.99 and 79.5
+    /// conditional fails, 79.49 fails; a ceiling mirrors them. Without a
+    /// band (no uncertainty, or simple acceptance) the limit itself
+    /// passes and just under it fails.
+    #[test]
+    fn outcomes_at_the_edges_of_the_band() {
+        let r = Rule::GuardBand { multiple_of_u: 1.0 };
+        for (y, want) in [
+            (80.5, Outcome::Pass),
+            (80.49, Outcome::ConditionalPass),
+            (80.0, Outcome::ConditionalPass),
+            (79.99, Outcome::ConditionalFail),
+            (79.5, Outcome::ConditionalFail),
+            (79.49, Outcome::Fail),
+        ] {
+            let j = judge(&r, "soh", y, Some(0.25), 2.0, 80.0, true);
+            assert_eq!(j.outcome, want, "floor, {y}");
+            assert!((j.guard_band - 0.5).abs() < 1e-12);
+            // The ceiling at 80 sees 160 − y the same way.
+            let c = judge(&r, "growth", 160.0 - y, Some(0.25), 2.0, 80.0, false);
+            assert_eq!(c.outcome, want, "ceiling, {}", 160.0 - y);
+        }
+        for u in [None, Some(0.25)] {
+            let rule = if u.is_none() { r } else { Rule::Simple };
+            let at = judge(&rule, "soh", 80.0, u, 2.0, 80.0, true);
+            assert_eq!((at.outcome, at.guard_band), (Outcome::Pass, 0.0));
+            assert_eq!(
+                judge(&rule, "soh", 79.999, u, 2.0, 80.0, true).outcome,
+                Outcome::Fail
+            );
+        }
+        assert_eq!(
+            judge(&r, "soh", 80.0, None, 2.0, 80.0, true).p_wrong_side_pct,
+            None
+        );
+        assert_eq!(
+            judge(&r, "soh", 80.0, Some(0.0), 2.0, 80.0, true).p_wrong_side_pct,
+            None
+        );
+        let j = judge(&r, "state of health", 81.0, Some(0.25), 2.0, 80.0, true);
+        assert_eq!(
+            (j.criterion.as_str(), j.value, j.limit, j.at_least, j.u),
+            ("state of health", 81.0, 80.0, true, Some(0.25))
+        );
+        assert!(Outcome::ConditionalPass.in_band() && Outcome::ConditionalFail.in_band());
+        assert!(!Outcome::Pass.in_band() && !Outcome::Fail.in_band());
+        assert_eq!(
+            [
+                Outcome::Pass,
+                Outcome::ConditionalPass,
+                Outcome::ConditionalFail,
+                Outcome::Fail
+            ]
+            .map(Outcome::words),
+            ["pass", "conditional pass", "conditional fail", "fail"]
+        );
+    }
+
+    /// The guard band of each rule, worked: m·k·u; z(1 − α)·u with
+    /// z(0.975) = 1.95996 (any normal table); none for simple acceptance.
+    /// The conformance probability with one limit, or none.
+    #[test]
+    fn guard_bands_and_one_sided_conformance() {
+        assert_eq!(Rule::Simple.guard_band(0.3, 2.0), 0.0);
+        assert!((Rule::GuardBand { multiple_of_u: 1.5 }.guard_band(0.3, 2.0) - 0.9).abs() < 1e-12);
+        let sr = Rule::SpecificRisk {
+            max_false_accept: 0.025,
+        };
+        assert!((sr.guard_band(0.5, 2.0) - 0.979_982).abs() < 1e-5);
+        assert!((phi_inv(0.975) - 1.959_964).abs() < 1e-6);
+        // Floor only: Φ((y − L)/u); ceiling only: Φ((H − y)/u).
+        assert!((conformance_probability(81.0, 0.5, Some(80.0), None) - phi(2.0)).abs() < 1e-12);
+        assert!((conformance_probability(81.0, 0.5, None, Some(82.0)) - phi(2.0)).abs() < 1e-12);
+        assert_eq!(conformance_probability(81.0, 0.5, None, None), 1.0);
+        // Far outside both sides: clamped at 0.
+        assert_eq!(
+            conformance_probability(0.0, 0.1, Some(80.0), Some(1.0)),
+            0.0
+        );
+        // The words state the rule's own numbers.
+        assert!(Rule::GuardBand { multiple_of_u: 1.0 }
+            .words()
+            .contains("under 2.28 %"));
+        assert!(sr.words().contains("at most 2.5 %") && sr.words().contains("w = 1.96·u"));
+        assert!(Rule::Simple.words().contains("up to 50 %"));
+        assert_eq!(DecisionRule::default().rule, Rule::Simple);
+        assert_eq!(DecisionRule::default().in_band, InBand::Conditional);
+        assert_eq!(DecisionRule::default().max_u_to_bin, None);
+    }
 }
