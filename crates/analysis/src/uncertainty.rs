@@ -1109,4 +1109,241 @@ mod tests {
         let s = b.scaled(100.0 / 14.0, "%");
         assert_eq!(s.short(), "92.77 ± 0.22 %");
     }
+
+    /// A step's data terms worked by hand: eleven samples a second apart,
+    /// V = 3.0 + 0.1·t, I = −2 + 0.001·(−1)^k. Σ Δt² = 10 s²; ∫V dt = 35
+    /// V·s; the successive differences ±2 mA give s = √(10·(2 mA)²/(2·10))
+    /// = 1.414 mA; the trapezoid at every sample gives −20/3600 Ah, at
+    /// every other −19.99/3600 Ah, so the rule's error is 0.01/3600/3 Ah;
+    /// the end current 1.999 A; the last five samples fall 0.1 V per
+    /// 2/3600 Ah: |dV/dQ| = 180 V/Ah.
+    #[test]
+    fn a_steps_data_terms_are_worked_by_hand() {
+        let mut acc = MeasureAcc::default();
+        for k in 0..=10 {
+            let t = f64::from(k);
+            let i = -2.0 + 0.001 * if k % 2 == 0 { 1.0 } else { -1.0 };
+            acc.push(t, 3.0 + 0.1 * t, i);
+        }
+        let m = acc.finish();
+        let near = |a: f64, b: f64| (a - b).abs() <= 1e-9 * b.abs().max(1e-12);
+        assert!(near(m.sum_dt2_s2, 10.0), "{m:?}");
+        assert!(near(m.last_dt_s, 1.0));
+        assert!(near(m.v_dt_vs, 35.0));
+        assert!(near(m.noise_a.unwrap(), 2e-6f64.sqrt()), "{:?}", m.noise_a);
+        assert!(near(m.noise_v.unwrap(), (0.1f64 / 20.0).sqrt()));
+        assert!(
+            near(m.integration_ah, 0.01 / 3600.0 / 3.0),
+            "{}",
+            m.integration_ah
+        );
+        assert!(near(m.end_current_a, 1.999));
+        assert!(
+            near(m.dv_dq_v_per_ah.unwrap(), 180.0),
+            "{:?}",
+            m.dv_dq_v_per_ah
+        );
+        // Fewer than ten plateau differences: no noise figure.
+        let mut few = MeasureAcc::default();
+        for k in 0..10 {
+            few.push(f64::from(k), 3.0, -2.0);
+        }
+        assert_eq!(few.finish().noise_a, None);
+        // A jump (over 1 % of the current, or 20 mA) is not noise.
+        let mut jump = MeasureAcc::default();
+        for k in 0..=20 {
+            jump.push(f64::from(k), 3.0, if k < 10 { -2.0 } else { -3.0 });
+        }
+        assert_eq!(jump.finish().noise_a, Some(0.0));
+        // A step split by a resume: the stretches merged are the whole.
+        let (mut a, mut b) = (MeasureAcc::default(), MeasureAcc::default());
+        for k in 0..=10 {
+            let t = f64::from(k);
+            let x = (
+                t,
+                3.0 + 0.1 * t,
+                -2.0 + 0.001 * if k % 2 == 0 { 1.0 } else { -1.0 },
+            );
+            if k <= 4 {
+                a.push(x.0, x.1, x.2)
+            } else {
+                b.push(x.0, x.1, x.2)
+            }
+        }
+        a.merge(&b);
+        let mm = a.finish();
+        // The interval across the split (t = 4 → 5) is in neither.
+        assert!(near(mm.sum_dt2_s2, 9.0), "{mm:?}");
+        assert!(near(mm.v_dt_vs, 35.0 - (3.4 + 3.5) / 2.0));
+        assert!(near(mm.end_current_a, 1.999));
+        assert!(near(mm.last_dt_s, 1.0));
+    }
+
+    /// The charge terms of a 2 A, 5 h step with a stated accuracy of
+    /// ±0.1 % of reading, ±5 mA offset and 1 mA resolution, worked from
+    /// metrology.md §1.2's forms: gain 10 Ah × 0.001/√3; offset (no tare)
+    /// 5 mA/√3 × 5 h; resolution with noise below one step: rectangular
+    /// 0.5 mA × 5 h; with the tare, the offset is the mean of 10 zero
+    /// readings: √(s²/10 + δ²/12) × 5 h.
+    #[test]
+    fn the_charge_terms_are_their_forms() {
+        let m = StepMeasure {
+            sum_dt2_s2: 18_000.0,
+            last_dt_s: 1.0,
+            v_dt_vs: 3.6 * 18_000.0,
+            noise_a: Some(0.0004),
+            noise_v: None,
+            integration_ah: 1e-6,
+            integration_wh: 0.0,
+            end_current_a: 2.0,
+            dv_dq_v_per_ah: Some(4.0),
+        };
+        let spec = Spec {
+            reading_pct: 0.1,
+            range_pct: 0.0,
+            offset: 0.005,
+            resolution: 0.001,
+            calibrated: false,
+        };
+        let x = StepInputs {
+            q_ah: 10.0,
+            e_wh: 36.0,
+            duration_s: 18_000.0,
+            measure: &m,
+            current: &spec,
+            voltage: Some(&spec),
+            timebase_ppm: Some(100.0),
+            tare: None,
+            cutoff_v: Some(3.0),
+        };
+        let terms = charge_terms(&x);
+        let u = |name: &str| {
+            terms
+                .iter()
+                .find(|t| t.name == name)
+                .map(|t| (t.u, t.shape, t.correlated))
+        };
+        let r3 = 3f64.sqrt();
+        let near = |a: f64, b: f64| (a - b).abs() <= 1e-12 * b.abs().max(1e-15);
+        let g = u("current gain").unwrap();
+        assert!(near(g.0, 10.0 * 0.001 / r3) && g.1 == Shape::Rectangular && g.2);
+        let o = u("current offset").unwrap();
+        assert!(
+            near(o.0, 0.005 / r3 * 5.0) && o.1 == Shape::Rectangular,
+            "{o:?}"
+        );
+        let r = u("resolution").unwrap();
+        assert!(near(r.0, 0.5 * 0.001 * 5.0 / r3) && r.2, "{r:?}");
+        let n = u("noise (Type A)").unwrap();
+        assert!(
+            near(n.0, 0.0004 * 18_000f64.sqrt() / 3600.0) && !n.2,
+            "{n:?}"
+        );
+        assert!(near(u("time base").unwrap().0, 10.0 * 100e-6 / r3));
+        assert!(near(u("integration rule").unwrap().0, 1e-6 / r3));
+        assert!(near(
+            u("end detection").unwrap().0,
+            0.5 * 2.0 * 1.0 / 3600.0 / r3
+        ));
+        // The cutoff: the voltmeter's limit at 3.0 V (0.1 % + 5 mV = 8 mV)
+        // through 4 V/Ah.
+        assert!(near(u("cutoff voltage").unwrap().0, 0.008 / 4.0 / r3));
+        // With the zero tared: the tare's own u, normal.
+        let tared = StepInputs {
+            tare: Some(Tare { readings: 10 }),
+            ..x
+        };
+        let t = charge_terms(&tared);
+        let o = t.iter().find(|t| t.name == "current offset").unwrap();
+        let want = (0.0004f64.powi(2) / 10.0 + 0.001f64.powi(2) / 12.0).sqrt() * 5.0;
+        assert!(near(o.u, want) && o.shape == Shape::Normal, "{o:?}");
+        // Noise above one step: the resolution dithers (independent).
+        let coarse = Spec {
+            resolution: 0.0002,
+            ..spec
+        };
+        let d = charge_terms(&StepInputs {
+            current: &coarse,
+            ..x
+        });
+        let r = d.iter().find(|t| t.name == "resolution").unwrap();
+        assert!(
+            near(r.u, 0.0002 / 12f64.sqrt() * 18_000f64.sqrt() / 3600.0) && !r.correlated,
+            "{r:?}"
+        );
+        // No cutoff: no end terms; no time base: none.
+        let plain = charge_terms(&StepInputs {
+            cutoff_v: None,
+            timebase_ppm: None,
+            ..x
+        });
+        assert!(plain
+            .iter()
+            .all(|t| !["end detection", "cutoff voltage", "time base"].contains(&t.name.as_str())));
+    }
+
+    /// A budget's sums and its printing: u = √Σu², U = 2u, the dominant
+    /// term's share; scaled by a factor; two significant digits.
+    #[test]
+    fn a_budget_combines_scales_and_prints() {
+        let t = |name: &str, u: f64| normal(name, u, false, String::new());
+        let b = Budget::of(
+            12.3456,
+            "Ah",
+            vec![
+                t("a", 0.03),
+                t("b", 0.04),
+                t("zero", 0.0),
+                t("nan", f64::NAN),
+            ],
+        );
+        assert_eq!(b.terms.len(), 2);
+        assert!((b.u - 0.05).abs() < 1e-15 && (b.expanded - 0.1).abs() < 1e-15);
+        assert_eq!(b.dominant, "b");
+        assert!((b.dominant_share - 0.64).abs() < 1e-12);
+        assert_eq!(b.mc_half_width, None);
+        assert_eq!(b.half_width(), b.expanded);
+        assert_eq!(b.show(), "12.35 Ah ± 0.10 Ah (k = 2, 95 %)");
+        assert_eq!(b.pm(), "± 0.10 Ah (k = 2, 95 %)");
+        assert_eq!(b.short(), "12.35 ± 0.10 Ah");
+        assert_eq!(b.note(), "dominant term: b (64 % of the variance)");
+        let s = b.scaled(100.0 / 14.0, "%");
+        assert!((s.value - 12.3456 * 100.0 / 14.0).abs() < 1e-12);
+        assert!((s.u - 0.05 * 100.0 / 14.0).abs() < 1e-12);
+        assert_eq!(s.unit, "%");
+        assert_eq!(
+            Budget::of(1.0, "", vec![t("a", 0.01)]).short(),
+            "1.000 ± 0.020"
+        );
+        for (x, d) in [
+            (0.12, 2),
+            (0.012, 3),
+            (1.2, 1),
+            (12.0, 0),
+            (1234.0, 0),
+            (1e-9, 6),
+            (0.0, 3),
+            (f64::NAN, 3),
+        ] {
+            assert_eq!(decimals_for(x), d, "{x}");
+        }
+        // A rectangular term that dominates: the Monte Carlo's interval,
+        // √3·u·0.95 for a lone rectangle (its 95 % points).
+        let r = Budget::of(10.0, "Ah", vec![rect("offset", 0.1, true, String::new())]);
+        let hw = r.mc_half_width.unwrap();
+        assert!((hw - 0.095).abs() < 0.001, "{hw}");
+        assert!(r.show().contains("(95 %, Monte Carlo)"), "{}", r.show());
+        // One more decimal in the note than in the figure.
+        assert!(
+            r.note().contains("k = 2 (± 0.1155) overstates")
+                && r.note().contains("± 0.0950 is given"),
+            "{}",
+            r.note()
+        );
+        let mc = monte_carlo(&r, 100_000, 7);
+        assert!(
+            (mc.mean - 10.0).abs() < 0.001 && (mc.sd - 0.1 / 3f64.sqrt()).abs() < 0.001,
+            "{mc:?}"
+        );
+    }
 }
