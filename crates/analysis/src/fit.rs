@@ -228,15 +228,15 @@ mod tests {
         assert!(near(lo, 81.725 - hw, 1e-12) && near(hi, 81.725 + hw, 1e-12));
         assert!(near(
             f.solve_x(80.0).unwrap(),
-            1094.520_547_945_205_6,
+            1_094.520_547_945_205_6,
             1e-12
         ));
         let (early, late) = f.band_crossings(80.0, 0.95, 600.0, 5000.0);
         assert!(
-            near(early.unwrap(), 1052.225_416_622_141, 1e-8),
+            near(early.unwrap(), 1_052.225_416_622_141, 1e-8),
             "{early:?}"
         );
-        assert!(near(late.unwrap(), 1140.031_093_970_452, 1e-8), "{late:?}");
+        assert!(near(late.unwrap(), 1_140.031_093_970_452, 1e-8), "{late:?}");
         // Searched where the band never gets there: no bound.
         assert_eq!(f.band_crossings(80.0, 0.95, 600.0, 1000.0), (None, None));
         // Already there at the start: the start.
@@ -246,10 +246,10 @@ mod tests {
         let g = LinearFit::fit(&x, &y.map(|v| 200.0 - v)).unwrap();
         let (early, late) = g.band_crossings(120.0, 0.95, 600.0, 5000.0);
         assert!(
-            near(early.unwrap(), 1052.225_416_622_141, 1e-8),
+            near(early.unwrap(), 1_052.225_416_622_141, 1e-8),
             "{early:?}"
         );
-        assert!(near(late.unwrap(), 1140.031_093_970_452, 1e-8), "{late:?}");
+        assert!(near(late.unwrap(), 1_140.031_093_970_452, 1e-8), "{late:?}");
         // A flat line never reaches another level; with no residual it
         // fits exactly (r² = 1 where y does not vary).
         let flat = LinearFit::fit(&[0.0, 1.0, 2.0], &[5.0, 5.0, 5.0]).unwrap();

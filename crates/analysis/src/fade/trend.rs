@@ -361,7 +361,7 @@ mod tests {
                     cycles_given: true,
                     capacity_ah: soh * 0.14,
                     soh_pct: soh,
-                    resistance_mohm: cycles.is_finite().then(|| 20.0 + 0.01 * cycles),
+                    resistance_mohm: cycles.is_finite().then_some(20.0 + 0.01 * cycles),
                     resistance_growth_pct: None,
                     ieee450_percent: None,
                     coulombic_efficiency_pct: None,
@@ -405,13 +405,13 @@ mod tests {
         assert!((per[2].1 + 8.986_423_228_433_964).abs() < 1e-9, "{per:?}");
         assert!((a.models[2].fit.r_squared - 0.913_106_419_754_687_5).abs() < 1e-9);
         let c = a.eol_cycles.as_ref().unwrap();
-        assert!((c.cycles - 1094.520_547_945_205_6).abs() < 1e-9, "{c:?}");
+        assert!((c.cycles - 1_094.520_547_945_205_6).abs() < 1e-9, "{c:?}");
         assert!(
-            (c.cycles_early.unwrap() - 1052.225_416_622_141).abs() < 1e-6,
+            (c.cycles_early.unwrap() - 1_052.225_416_622_141).abs() < 1e-6,
             "{c:?}"
         );
         assert!(
-            (c.cycles_late.unwrap() - 1140.031_093_970_452).abs() < 1e-6,
+            (c.cycles_late.unwrap() - 1_140.031_093_970_452).abs() < 1e-6,
             "{c:?}"
         );
         assert_eq!(c.basis, "all 7 measurements");
