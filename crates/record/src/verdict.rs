@@ -625,4 +625,171 @@ mod tests {
         assert_eq!(j["resistance_growth_pct"]["value"], 50.0);
         assert_eq!(j["ieee450_percent"]["absent"], "not_an_ieee450_test");
     }
+
+    fn inputs<'a>(
+        c: Option<&'a CapacityResult>,
+        cycles: &'a [CycleSummary],
+        steps: &'a [StepSummary],
+        policy: &'a Policy,
+    ) -> Inputs<'a> {
+        Inputs {
+            status: RunStatus::Completed,
+            chemistry: Chemistry::LiIon,
+            rated_ah: Some(14.0),
+            rated_rate_c: Some(0.2),
+            capacity: c,
+            recalibration: None,
+            resistance: None,
+            reference: None,
+            steps,
+            cycles,
+            groups: None,
+            policy: Some(policy),
+            accuracy: None,
+            tare: None,
+        }
+    }
+
+    fn cycle(n: u32, ce: Option<f64>) -> CycleSummary {
+        CycleSummary {
+            cycle: n,
+            charge_ah: 13.0,
+            discharge_ah: 12.6,
+            charge_wh: 480.0,
+            discharge_wh: 450.0,
+            coulombic_efficiency_pct: ce,
+            energy_efficiency_pct: ce.map(|c| c - 5.0),
+        }
+    }
+
+    fn step(n: u32, cycle: u32) -> StepSummary {
+        serde_json::from_value(serde_json::json!({
+            "step": n, "phase": "p", "cycle": cycle, "kind": "discharge", "name": null,
+            "samples": 10, "start_s": 0.0, "duration_s": 10.0, "charge_ah": -1.0,
+            "energy_wh": -3.6, "charge_in_ah": 0.0, "charge_out_ah": 1.0,
+            "energy_in_wh": 0.0, "energy_out_wh": 3.6, "start_voltage_v": 4.0,
+            "end_voltage_v": 3.0, "min_voltage_v": 3.0, "max_voltage_v": 4.0,
+            "mean_current_a": -1.0, "max_temperature_c": null, "end_kind": "voltage_below",
+            "end_reason": null
+        }))
+        .unwrap()
+    }
+
+    /// The efficiencies are the capacity step's own cycle's; without a
+    /// capacity step, the last cycle that has them; none: why.
+    #[test]
+    fn efficiencies_come_from_the_capacity_steps_cycle() {
+        let policy = Policy::default_policy();
+        let c = capacity(12.6, true, Some(true));
+        let cycles = [cycle(1, Some(97.0)), cycle(2, Some(96.0)), cycle(3, None)];
+        let steps = [step(3, 1)];
+        let (v, _) = judge(&inputs(Some(&c), &cycles, &steps, &policy));
+        assert_eq!(v.efficiency_cycle, Some(1));
+        assert_eq!(v.coulombic_efficiency_pct.get(), Some(97.0));
+        assert_eq!(v.energy_efficiency_pct.get(), Some(92.0));
+        let (v, _) = judge(&inputs(None, &cycles, &steps, &policy));
+        assert_eq!(v.efficiency_cycle, Some(2));
+        assert_eq!(v.coulombic_efficiency_pct.get(), Some(96.0));
+        let (v, _) = judge(&inputs(None, &cycles[2..], &steps, &policy));
+        assert_eq!(v.efficiency_cycle, None);
+        assert_eq!(v.coulombic_efficiency_pct, Figure::Absent(Why::NoFullCycle));
+        assert_eq!(v.energy_efficiency_pct, Figure::Absent(Why::NoFullCycle));
+    }
+
+    /// A run that did not complete, a rating of zero, a growth reference
+    /// of zero and an implausible capacity's warning; the test rate needs
+    /// the rating; the line for --quiet.
+    #[test]
+    fn the_rest_of_the_verdicts_rules() {
+        let policy = Policy::default_policy();
+        let c = capacity(12.6, true, Some(true));
+        let mut x = inputs(Some(&c), &[], &[], &policy);
+        x.status = RunStatus::Interrupted;
+        let (v, _) = judge(&x);
+        assert_eq!(v.soh_pct, Figure::Absent(Why::RunNotComplete));
+        assert_eq!(v.measured_ah.get(), Some(12.6), "the figure is kept");
+        x.status = RunStatus::Completed;
+        x.rated_ah = Some(0.0);
+        let (v, _) = judge(&x);
+        assert_eq!(v.soh_pct, Figure::Absent(Why::NoRating));
+        assert_eq!(v.test_rate_c, Figure::Absent(Why::NoRating));
+        assert_eq!(v.rated_rate_c, None);
+        x.rated_ah = Some(14.0);
+        let (v, w) = judge(&x);
+        assert_eq!(v.test_rate_c.get(), Some(0.2));
+        assert_eq!(v.rated_rate_c, Some(0.2));
+        assert!(w.is_empty());
+        assert_eq!(v.capacity_step, Some(3));
+        assert_eq!(v.from_full_charge, Some(true));
+        assert_eq!(v.initial_temperature_c, Some(25.0));
+        assert_eq!(
+            v.line(),
+            "capacity 12.600 Ah (measured 12.600 Ah), SoH 90.0 %, grade A"
+        );
+        // 120 % of the rating is the most a pack gives; over it, said.
+        let at = capacity(16.8, true, Some(true));
+        let (v, w) = judge(&inputs(Some(&at), &[], &[], &policy));
+        assert!(
+            (v.soh_pct.get().unwrap() - 120.0).abs() < 1e-9,
+            "{:?}",
+            v.soh_pct
+        );
+        assert!(w.is_empty());
+        let over = capacity(16.9, true, Some(true));
+        let (v, w) = judge(&inputs(Some(&over), &[], &[], &policy));
+        assert_eq!(v.soh_pct, Figure::Absent(Why::Implausible));
+        assert!(
+            w[0].contains("16.900 Ah is 120.7 % of the rated 14.000 Ah"),
+            "{w:?}"
+        );
+        assert_eq!(v.line(), "capacity 16.900 Ah (measured 16.900 Ah), SoH not measured (implausible (check the rating and the log)), grade none (implausible (check the rating and the log))");
+        // A reference of zero gives no growth.
+        let r = ResistanceResult {
+            dcir_mohm: 60.0,
+            method: String::new(),
+            why: String::new(),
+            readings: Vec::new(),
+        };
+        let mut x = inputs(Some(&c), &[], &[], &policy);
+        x.resistance = Some(&r);
+        x.reference = Some(Reference {
+            mohm: 0.0,
+            source: "rated".into(),
+        });
+        assert_eq!(
+            judge(&x).0.resistance_growth_pct,
+            Figure::Absent(Why::NoReference)
+        );
+        x.reference = None;
+        assert_eq!(
+            judge(&x).0.resistance_growth_pct,
+            Figure::Absent(Why::NoReference)
+        );
+        assert_eq!(judge(&x).0.resistance_mohm.get(), Some(60.0));
+        // An IEEE 450 figure from a full test; from one that did not start
+        // full, absent with that reason.
+        let mut la = capacity(12.6, true, Some(true));
+        la.ieee450_percent = Some(93.0);
+        assert_eq!(
+            judge(&inputs(Some(&la), &[], &[], &policy))
+                .0
+                .ieee450_percent
+                .get(),
+            Some(93.0)
+        );
+        la.from_full_charge = false;
+        assert_eq!(
+            judge(&inputs(Some(&la), &[], &[], &policy))
+                .0
+                .ieee450_percent,
+            Figure::Absent(Why::NotFromFullCharge)
+        );
+        // Figures printed, or why not.
+        assert_eq!(Figure::Value(12.3456).show(2, " Ah"), "12.35 Ah");
+        assert_eq!(
+            Figure::<f64>::Absent(Why::NoRating).show(2, " Ah"),
+            "not measured (no rated capacity given)"
+        );
+        assert_eq!(Figure::<f64>::default(), Figure::Absent(Why::NotRecorded));
+    }
 }
