@@ -596,3 +596,55 @@ fn step_numbers_are_whole() {
         assert!(err.contains("not a step number"), "{bad}: {err}");
     }
 }
+
+/// Line ends at the edges of what is read at a time: a CR-only log longer
+/// than a chunk; a CR LF header whose CR is the last byte of the first
+/// 4096 read (the LF comes with the next read); a header with no line
+/// end at all; a blank line straight after the header.
+#[test]
+fn line_ends_at_the_edges_of_a_read() {
+    let mut cr = String::from("t_s,voltage_v,current_a\r");
+    for k in 0..60_000 {
+        cr.push_str(&format!("{k},3.{},-1.5\r", k % 10));
+    }
+    assert!(cr.len() > CHUNK, "longer than a chunk");
+    let (rows, rep) = read(&cr, &LogFormat::default()).unwrap();
+    assert_eq!(rows.len(), 60_000);
+    assert_eq!(rows[59_999].t_s, 59_999.0);
+    assert!(!rep.partial_last_line);
+    // A header of 4095 bytes, then CR LF.
+    let name = format!(
+        "note{}",
+        "x".repeat(4095 - "t_s,voltage_v,current_a,note".len())
+    );
+    let head = format!("t_s,voltage_v,current_a,{name}");
+    assert_eq!(head.len(), 4095);
+    let text = format!("{head}\r\n0,3.7,-1,a\r\n1,3.6,-1,b\r\n");
+    let (rows, _) = read(&text, &LogFormat::default()).unwrap();
+    assert_eq!(rows.iter().map(|r| r.t_s).collect::<Vec<_>>(), [0.0, 1.0]);
+    // A header alone without its line end.
+    let (rows, _) = read("t_s,voltage_v,current_a", &LogFormat::default()).unwrap();
+    assert!(rows.is_empty());
+    // A blank line after the header, and cells with a space after them
+    // only.
+    let (rows, _) = read(
+        "t_s,voltage_v,current_a\n\n0,3.7 ,-1\n1 ,3.6,-1 \n",
+        &LogFormat::default(),
+    )
+    .unwrap();
+    assert_eq!(
+        rows.iter()
+            .map(|r| (r.t_s, r.voltage_v, r.current_a))
+            .collect::<Vec<_>>(),
+        [(0.0, 3.7, -1.0), (1.0, 3.6, -1.0)]
+    );
+    // A number of more digits than the fast path takes: read as Rust reads
+    // it.
+    let long = "3.1234567890123456789012345";
+    let (rows, _) = read(
+        &format!("t_s,voltage_v,current_a\n0,{long},-1\n"),
+        &LogFormat::default(),
+    )
+    .unwrap();
+    assert_eq!(rows[0].voltage_v, long.parse::<f64>().unwrap());
+}
