@@ -1004,4 +1004,117 @@ label = "C"
         assert_eq!(show_probability(21.19), "21.2 %");
         assert_eq!(show_probability(1.0), "1.0 %");
     }
+
+    /// Each mistake a shop can make in its policy, named at its place with
+    /// what was expected; the good forms of the same tables accepted.
+    #[test]
+    fn each_policy_mistake_is_named_at_its_place() {
+        let tail = "[[grade]]\nlabel = \"A\"\nsoh_min = \"90%\"\n[[grade]]\nlabel = \"B\"\n";
+        let cases: &[(&str, &str, &str)] = &[
+            ("soh_min = \"ninety\"\n", "g.toml:3:11", "not a percentage"),
+            ("soh_min = \"inf%\"\n", "g.toml:3:11", "percentage"),
+            ("soh_min = 90\n", "g.toml:3:11", "or a table by chemistry"),
+            (
+                "soh_min = { li-ion = 90 }\n",
+                "g.toml:3:11",
+                "is not a percentage",
+            ),
+            (
+                "soh_min = { sodium = \"90%\" }\n",
+                "g.toml:3:11",
+                "unknown chemistry 'sodium'",
+            ),
+            (
+                "resistance_growth_max = \"25\"\n",
+                "g.toml:3:25",
+                "percentage",
+            ),
+            (
+                "coulombic_efficiency_min = \"x\"\n",
+                "g.toml:3:28",
+                "percentage",
+            ),
+            (
+                "weakest_group_share_min = \"x\"\n",
+                "g.toml:3:27",
+                "percentage",
+            ),
+            (
+                "group_capacity_spread_max = \"x\"\n",
+                "g.toml:3:29",
+                "percentage",
+            ),
+        ];
+        for (line, at, what) in cases {
+            let text = format!("name = \"x\"\n[[grade]]\n{line}label = \"Z\"\n{tail}");
+            let e = Policy::from_toml(Path::new("g.toml"), &text)
+                .unwrap_err()
+                .to_string();
+            let at = at.replace("g.toml:3:", "g.toml:3:");
+            assert!(e.starts_with(at) && e.contains(what), "{line}: {e}");
+        }
+        // The last grade must take every pack, whatever its criterion.
+        for c in [
+            "resistance_growth_max",
+            "coulombic_efficiency_min",
+            "weakest_group_share_min",
+            "group_capacity_spread_max",
+        ] {
+            let text = format!(
+                "name = \"x\"\n[[grade]]\nlabel = \"A\"\n[[grade]]\nlabel = \"B\"\n{c} = \"5%\"\n"
+            );
+            let e = Policy::from_toml(Path::new("g.toml"), &text)
+                .unwrap_err()
+                .to_string();
+            assert!(
+                e.contains("the last grade ('B') must have no criteria"),
+                "{c}: {e}"
+            );
+        }
+        let e = Policy::from_toml(Path::new("g.toml"), "name = \"x\"\n")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("no [[grade]]"), "{e}");
+        // The decision and schedule tables.
+        let with = |table: &str| format!("name = \"x\"\n{table}{tail}");
+        for (table, what) in [
+            ("[decision]\nrule = \"vote\"\n", "expected \"simple\""),
+            ("[decision]\nrule = \"guard-band\"\n", "needs guard_band"),
+            ("[decision]\nrule = \"guard-band\"\nguard_band = 0.0\n", "above 0 and at most 5"),
+            ("[decision]\nrule = \"specific-risk\"\n", "max_false_accept"),
+            ("[decision]\nrule = \"specific-risk\"\nmax_false_accept = \"60%\"\n", "under 50"),
+            ("[decision]\nrule = \"specific-risk\"\nmax_false_accept = \"0%\"\n", "above 0"),
+            ("[decision]\nrule = \"simple\"\nin_guard_band = \"maybe\"\n", "\"conditional\" or \"retest\""),
+            ("[decision]\nrule = \"simple\"\nmax_u_to_bin = 1.5\n", "at most 1"),
+            ("[decision]\nrule = \"simple\"\nmax_u_to_bin = 0.0\n", "above 0"),
+            ("[schedule]\nrule = \"monthly\"\n", "\"interval\" or \"ieee-450\""),
+            ("[schedule]\nrule = \"interval\"\ninterval = \"soon\"\n", "schedule.interval = \"soon\""),
+            ("[schedule]\nrule = \"ieee-450\"\n", "needs service_life"),
+            ("[schedule]\nrule = \"ieee-450\"\nservice_life = \"long\"\n", "schedule.service_life"),
+            ("[schedule]\nrule = \"interval\"\n[schedule.in_service]\nP1 = 2021-04-01T10:00:00\n", "schedule.in_service.P1"),
+        ] {
+            let e = Policy::from_toml(Path::new("g.toml"), &with(table)).unwrap_err().to_string();
+            assert!(e.contains(what), "{table}: {e}");
+        }
+        // The good forms.
+        let p = Policy::from_toml(Path::new("g.toml"), &with("[decision]\nrule = \"guard-band\"\nguard_band = 5.0\nin_guard_band = \"retest\"\nmax_u_to_bin = 1.0\n[schedule]\nrule = \"ieee-450\"\nservice_life = \"20y\"\n[schedule.in_service]\nP1 = 2021-04-01\n")).unwrap();
+        assert_eq!(p.decision.rule, Rule::GuardBand { multiple_of_u: 5.0 });
+        assert_eq!(p.decision.in_band, InBand::Retest);
+        assert_eq!(p.decision.max_u_to_bin, Some(1.0));
+        let s = p.schedule.unwrap();
+        assert_eq!(s.interval_days, DEFAULT_INTERVAL_DAYS);
+        assert!(s.service_life_days.is_some());
+        assert_eq!(s.in_service.get("P1"), Some(&"2021-04-01".parse().unwrap()));
+        let p = Policy::from_toml(
+            Path::new("g.toml"),
+            &with("[decision]\nrule = \"specific-risk\"\nmax_false_accept = \"2.5%\"\n"),
+        )
+        .unwrap();
+        assert_eq!(
+            p.decision.rule,
+            Rule::SpecificRisk {
+                max_false_accept: 0.025
+            }
+        );
+    }
 }
