@@ -490,4 +490,143 @@ mod tests {
         same(p.lower_ah, want["obs_ci_lower"].as_f64().unwrap(), "lower");
         same(p.upper_ah, want["obs_ci_upper"].as_f64().unwrap(), "upper");
     }
+
+    /// The features of a screening run worked by hand (two cells): a
+    /// charge at 2 A for 10 s, then a taper falling 0.2 A a second to
+    /// 0.2 A — the taper begins below 1.9 A (95 %), and from the last
+    /// sample above it the trapezoid holds (2.0 + 0.2)/2 × 9 s = 9.9 A·s;
+    /// a rest relaxing as 8.2 + 0.2·e^(−t/30) V (a fall of 0.2·(1 −
+    /// e^(−10)) V, 100 mV per cell; 63.2 % of it first reached at 30 s);
+    /// a window at 1 A for 360 s from 8.0 to 7.6 V: 0.1 Ah over 0.2 V per
+    /// cell = 0.5 Ah/V; temperatures from 25 to 31 °C.
+    #[test]
+    fn a_screening_runs_features_are_worked_by_hand() {
+        let steps = vec![
+            (1, ScreenStep::Charge),
+            (2, ScreenStep::Relaxation),
+            (3, ScreenStep::Window),
+            (4, ScreenStep::Other),
+        ];
+        let mut f = FeatureTracker::new(steps, 2);
+        let mut push = |t: f64, step: u32, v: f64, i: f64, c: f64| {
+            f.push(&Sample {
+                t_s: t,
+                step,
+                cycle: 0,
+                voltage_v: v,
+                current_a: i,
+                temperature_c: Some(c),
+            })
+        };
+        for k in 0..=19 {
+            let i = if k <= 10 {
+                2.0
+            } else {
+                2.0 - 0.2 * f64::from(k - 10)
+            };
+            push(f64::from(k), 1, 8.4, i, 25.0 + 0.1 * f64::from(k));
+        }
+        for k in 0..=300 {
+            let t = f64::from(k);
+            push(100.0 + t, 2, 8.2 + 0.2 * (-t / 30.0).exp(), 0.0, 31.0);
+        }
+        for k in 0..=360 {
+            let t = f64::from(k);
+            push(500.0 + t, 3, 8.0 - 0.4 * t / 360.0, -1.0, 28.0);
+        }
+        push(900.0, 4, 7.0, -5.0, 40.0 - 15.0);
+        let x = f.finish(Some(40.0), Some(44.0));
+        let near = |a: Option<f64>, b: f64| a.is_some_and(|a| (a - b).abs() <= 1e-9 * b.abs());
+        assert!(near(x.taper_ah, 9.9 / 3600.0), "{:?}", x.taper_ah);
+        assert!(
+            near(x.relax_mv, 0.2 * (1.0 - (-10.0f64).exp()) / 2.0 * 1000.0),
+            "{:?}",
+            x.relax_mv
+        );
+        assert_eq!(x.relax_tau_s, Some(30.0));
+        assert!(near(x.window_ah_per_v, 0.5), "{:?}", x.window_ah_per_v);
+        assert!(
+            near(x.temperature_rise_c, 6.0),
+            "{:?}",
+            x.temperature_rise_c
+        );
+        assert_eq!((x.r_full_mohm, x.r_window_mohm), (Some(40.0), Some(44.0)));
+        // By name, and as a vector in a calibration's order.
+        assert_eq!(x.get("r_window_mohm"), Some(44.0));
+        assert_eq!(x.get("volume"), None);
+        let names: Vec<String> = FEATURE_NAMES.iter().map(|s| s.to_string()).collect();
+        let v = x.vector(&names).unwrap();
+        assert_eq!(v.len(), 7);
+        assert_eq!(v[3], 40.0);
+        assert_eq!(x.vector(&["taper_ah".into(), "none".into()]), None);
+        // No taper, a rising window, no temperature: those features absent.
+        let mut g = FeatureTracker::new(vec![(1, ScreenStep::Charge), (3, ScreenStep::Window)], 1);
+        for k in 0..5 {
+            g.push(&Sample {
+                t_s: f64::from(k),
+                step: 1,
+                cycle: 0,
+                voltage_v: 4.1,
+                current_a: 2.0,
+                temperature_c: None,
+            });
+        }
+        for k in 5..9 {
+            g.push(&Sample {
+                t_s: f64::from(k),
+                step: 3,
+                cycle: 0,
+                voltage_v: 3.9 + 0.01 * f64::from(k),
+                current_a: -1.0,
+                temperature_c: None,
+            });
+        }
+        let y = g.finish(None, None);
+        assert_eq!(
+            (
+                y.taper_ah,
+                y.window_ah_per_v,
+                y.temperature_rise_c,
+                y.relax_mv
+            ),
+            (None, None, None, None)
+        );
+        // A flat rest: a fall of 0 and no time constant.
+        assert_eq!(
+            relaxation(&[(0.0, 4.0), (1.0, 4.0), (2.0, 4.0)], 1.0),
+            (Some(0.0), None)
+        );
+    }
+
+    /// Leave-one-out on an exact line: every pack predicted exactly (RMSE
+    /// 0 up to rounding) and inside its interval; one pack far off the
+    /// line is the one the cross-validation misses.
+    #[test]
+    fn leave_one_out_finds_the_pack_off_the_line() {
+        let mut pts: Vec<(f64, f64)> = (0..12)
+            .map(|k| {
+                (
+                    f64::from(k),
+                    2.0 + 0.5 * f64::from(k) + if k % 3 == 0 { 0.02 } else { -0.01 },
+                )
+            })
+            .collect();
+        let c = calibrate(&["x".into()], &pairs(&pts)).unwrap();
+        assert_eq!(c.pairs, 12);
+        assert_eq!(c.features, ["x"]);
+        assert!(c.loo_rmse_ah < 0.03, "{c:?}");
+        assert_eq!(c.loo_coverage, 1.0);
+        pts[6].1 += 2.0;
+        let c = calibrate(&["x".into()], &pairs(&pts)).unwrap();
+        assert!(
+            c.loo_coverage < 1.0 && c.loo_coverage >= 10.0 / 12.0,
+            "{c:?}"
+        );
+        assert!(c.loo_rmse_ah > 0.5, "{c:?}");
+        // The interval widens away from the family's middle.
+        let mid = c.predict(&[5.5]);
+        let far = c.predict(&[30.0]);
+        assert!(far.upper_ah - far.lower_ah > mid.upper_ah - mid.lower_ah);
+        assert!(((mid.upper_ah + mid.lower_ah) / 2.0 - mid.capacity_ah).abs() < 1e-12);
+    }
 }
