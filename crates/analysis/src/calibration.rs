@@ -230,4 +230,142 @@ mod tests {
         assert!((l.cov_ab + 0.00225).abs() < 1e-12);
         assert_eq!(fit(&pts[..1], &|_| 0.0), Err(FitError::TooFewPoints(1)));
     }
+
+    /// Two points, the residual variance unknown: the points' own scatter
+    /// stands in (s = 1 mA of 10 readings each: σ² = 1e-7 A²); the
+    /// reference's u (1 mA + 0.01 % of the value) adds 1 mA to b and
+    /// √(2² − 1²) mA / 10 A to a, relatively. Worked by hand from the
+    /// textbook forms: var(a) = σ²/Sxx, var(b) = σ²·Σx²/(n·Sxx),
+    /// cov = −x̄·σ²/Sxx; and a corrected value's u by the chain rule.
+    #[test]
+    fn two_points_and_the_references_own_uncertainty() {
+        let pts = [
+            Point {
+                reference: 0.0,
+                reading: 0.02,
+                s: 0.001,
+                n: 10,
+            },
+            Point {
+                reference: 10.0,
+                reading: 10.07,
+                s: 0.001,
+                n: 10,
+            },
+        ];
+        let u_ref = |x: f64| 0.001 + 0.0001 * x.abs();
+        let l = fit(&pts, &u_ref).unwrap();
+        let near = |a: f64, b: f64| (a - b).abs() <= 1e-9 * b.abs().max(1e-15);
+        assert!(near(l.a, 1.005) && near(l.b, 0.02), "{l:?}");
+        let ug = 3e-6f64.sqrt() / 10.0;
+        assert!(
+            near(l.u_a, (1e-7 / 50.0 + (1.005 * ug).powi(2)).sqrt()),
+            "{l:?}"
+        );
+        assert!(
+            near(l.u_b, (1e-7f64 * 100.0 / 100.0 + 1e-6).sqrt()),
+            "{l:?}"
+        );
+        assert!(near(l.cov_ab, -5.0 * 1e-7 / 50.0), "{l:?}");
+        assert!(l.residual_max < 1e-12);
+        let x = 5.0;
+        let (ca, cb) = (-x / l.a, -1.0 / l.a);
+        let want =
+            (ca * ca * l.u_a * l.u_a + cb * cb * l.u_b * l.u_b + 2.0 * ca * cb * l.cov_ab).sqrt();
+        assert!(near(l.u_at(x), want), "{} against {want}", l.u_at(x));
+        // A linearity residual adds as a rectangle of its half-width.
+        let bent = Line {
+            residual_max: 0.003,
+            ..l
+        };
+        let want = (want * want + (0.003 / l.a).powi(2) / 3.0).sqrt();
+        assert!(near(bent.u_at(x), want));
+        // Three points whose residuals are smaller than their scatter: the
+        // scatter is the floor of σ².
+        let three = [
+            Point {
+                reference: 0.0,
+                reading: 0.0,
+                s: 0.01,
+                n: 1,
+            },
+            Point {
+                reference: 1.0,
+                reading: 1.0,
+                s: 0.01,
+                n: 1,
+            },
+            Point {
+                reference: 2.0,
+                reading: 2.0,
+                s: 0.01,
+                n: 1,
+            },
+        ];
+        let l3 = fit(&three, &|_| 0.0).unwrap();
+        assert!(near(l3.u_a, (1e-4f64 / 2.0).sqrt()), "{l3:?}");
+        assert_eq!(fit(&[three[0], three[0]], &|_| 0.0), Err(FitError::NoSpan));
+    }
+
+    /// Each direction of the current takes its own line (a current of
+    /// zero reads as a discharge's); the voltage is as read without a
+    /// line. A point exactly at its limit is within.
+    #[test]
+    fn corrections_by_direction_and_the_limit_itself() {
+        let up = Line {
+            a: 1.01,
+            b: 0.01,
+            u_a: 0.0,
+            u_b: 0.0,
+            cov_ab: 0.0,
+            residual_max: 0.0,
+        };
+        let down = Line {
+            a: 0.99,
+            b: -0.02,
+            ..up
+        };
+        let c = Corrections {
+            charge: Some(up),
+            discharge: Some(down),
+            voltage: None,
+        };
+        assert!((c.current(2.03).unwrap() - 2.0).abs() < 1e-12);
+        assert!((c.current(-1.0).unwrap() - (-0.98 / 0.99)).abs() < 1e-12);
+        assert!((c.current(0.0).unwrap() - 0.02 / 0.99).abs() < 1e-12);
+        assert_eq!(c.voltage(3.7), 3.7);
+        assert_eq!(Corrections::default().current(1.0), None);
+        let v = Corrections {
+            voltage: Some(Line {
+                a: 1.0,
+                b: 0.005,
+                ..up
+            }),
+            ..c
+        };
+        assert!((v.voltage(3.705) - 3.7).abs() < 1e-12);
+        let spec = Spec {
+            reading_pct: 0.1,
+            range_pct: 0.0,
+            offset: 0.005,
+            resolution: 0.001,
+            calibrated: false,
+        };
+        // At 10 A the limit is 15 mA; an error of exactly that is within.
+        let p = [Point {
+            reference: 10.0,
+            reading: 10.015,
+            s: 0.0,
+            n: 1,
+        }];
+        let k = conformity(&p, &spec, None);
+        assert!((k.max_error - 0.015).abs() < 1e-12 && (k.worst_share - 1.0).abs() < 1e-9);
+        let over = [Point {
+            reference: 10.0,
+            reading: 10.016,
+            s: 0.0,
+            n: 1,
+        }];
+        assert!(!conformity(&over, &spec, None).within);
+    }
 }
