@@ -413,4 +413,129 @@ mod tests {
         assert_eq!(dva.len(), 20);
         assert!(dva.iter().all(|(_, d)| (d - 0.1).abs() < 1e-9));
     }
+
+    /// Against SciPy 1.17.1 on one vector with a plateau, a shoulder and
+    /// a peak at the end's edge: `gaussian_filter1d(y, 1.5,
+    /// mode="nearest", truncate=4.0)` to 1e-12, and `find_peaks(y)` with
+    /// `peak_prominences`: peaks at 2, 6 (a plateau's middle), 10, 12, 15
+    /// with prominences 1, 5, 0.5, 6, 0.5.
+    #[test]
+    fn smoothing_and_peaks_agree_with_scipy() {
+        let y = [
+            0.0, 1.0, 3.0, 2.0, 2.0, 5.0, 5.0, 5.0, 1.0, 0.0, 4.0, 3.5, 6.0, 2.0, 0.5, 1.0, 0.0,
+        ];
+        let want = [
+            0.633_761_642_185_928_5,
+            1.239_111_988_077_967_7,
+            1.878_666_662_346_694_3,
+            2.471_800_154_718_262_6,
+            3.121_350_988_706_755,
+            3.741_982_064_866_258_3,
+            3.917_852_818_684_52,
+            3.421_605_564_797_823,
+            2.686_028_710_743_195_3,
+            2.446_195_428_691_008_4,
+            2.874_725_373_446_835_4,
+            3.384_395_558_975_365_6,
+            3.308_321_075_779_186_8,
+            2.553_704_431_394_731_2,
+            1.584_390_812_064_284_4,
+            0.837_800_153_786_956_8,
+            0.389_166_797_650_146_3,
+        ];
+        let got = gaussian_smooth(&y, 1.5);
+        for (k, (g, w)) in got.iter().zip(want).enumerate() {
+            assert!((g - w).abs() < 1e-12, "{k}: {g} against {w}");
+        }
+        assert_eq!(gaussian_smooth(&y, 0.0), y.to_vec());
+        let p = find_peaks(&y, 0.0);
+        assert_eq!(
+            p.iter().map(|p| p.index).collect::<Vec<_>>(),
+            [2, 6, 10, 12, 15]
+        );
+        assert_eq!(
+            p.iter().map(|p| p.prominence).collect::<Vec<_>>(),
+            [1.0, 5.0, 0.5, 6.0, 0.5]
+        );
+        assert_eq!(p[3].height, 6.0);
+        // A prominence floor keeps the big ones.
+        assert_eq!(
+            find_peaks(&y, 1.0)
+                .iter()
+                .map(|p| p.index)
+                .collect::<Vec<_>>(),
+            [2, 6, 12]
+        );
+    }
+
+    /// A grid by hand: 1 A for 36 s (10 mAh) at a voltage rising 0.1 V a
+    /// second, on a 2.5 mAh grid: points every 9 s (3.0, 3.9, 4.8, 5.7,
+    /// 6.6 V at 0 … 10 mAh), then dV/dQ is 0.1 V per 1/3600 Ah = 360 V/Ah
+    /// in every bin, and dQ/dV over 0.5 V bins is 1/360 Ah/V.
+    #[test]
+    fn a_grid_and_its_differentials_by_hand() {
+        let mut g = ChargeGrid::new(0.0025, 100);
+        for k in 0..=36 {
+            g.push(f64::from(k), 3.0 + 0.1 * f64::from(k), 1.0);
+        }
+        let c = g.curve();
+        let qs: Vec<f64> = c.iter().map(|p| (p.0 * 1e6).round() / 1e6).collect();
+        assert_eq!(qs, [0.0, 0.0025, 0.005, 0.0075, 0.01]);
+        for (p, v) in c.iter().zip([3.0, 3.9, 4.8, 5.7, 6.6]) {
+            assert!((p.1 - v).abs() < 1e-9, "{c:?}");
+        }
+        assert!((g.voltage_at(0.00125).unwrap() - 3.45).abs() < 1e-9);
+        assert_eq!(g.voltage_at(0.02), None);
+        assert_eq!(g.voltage_at(-0.001), None);
+        let d = differential_voltage(&g, 0.0025);
+        assert_eq!(d.len(), 4);
+        for (x, y) in &d {
+            assert!((y - 360.0).abs() < 1e-6, "{d:?}");
+            assert!(x > &0.0);
+        }
+        assert!((d[0].0 - 0.00125).abs() < 1e-12);
+        // Edges at whole half volts the curve crosses after its start: 3.5
+        // … 6.5 V, six bins.
+        let ic = incremental_capacity(&c, 0.5);
+        assert_eq!(ic.len(), 6, "{ic:?}");
+        for (v, dq) in &ic {
+            assert!((dq - 1.0 / 360.0).abs() < 1e-9, "{ic:?}");
+            assert!(
+                (v * 4.0).fract().abs() < 1e-9,
+                "bin centres at quarter volts: {v}"
+            );
+        }
+        // A falling curve gives its bins in falling voltage, positive dQ/dV.
+        let fall: Vec<(f64, f64)> = c.iter().map(|&(q, v)| (q, 9.6 - v)).collect();
+        // (From 6.6 down: edges 6.5 … 3.0 V, the last reached at the end.)
+        let id = incremental_capacity(&fall, 0.5);
+        assert_eq!(id.len(), 7, "{id:?}");
+        assert!(
+            id.windows(2).all(|w| w[1].0 < w[0].0) && id.iter().all(|p| p.1 > 0.0),
+            "{id:?}"
+        );
+        // The grid stops at its most points; a reset starts again.
+        let mut small = ChargeGrid::new(0.0025, 3);
+        for k in 0..=36 {
+            small.push(f64::from(k), 3.0, 1.0);
+        }
+        assert_eq!(small.points.len(), 3);
+        assert_eq!(
+            small.curve().last().map(|p| (p.0 * 1e6).round()),
+            Some(10_000.0)
+        );
+        small.reset();
+        assert!(small.points.is_empty() && small.end.is_none());
+        // A break: nothing counted across it.
+        let mut b = ChargeGrid::new(0.0025, 100);
+        b.push(0.0, 3.0, 1.0);
+        b.push(9.0, 3.0, 1.0);
+        b.break_segment();
+        b.push(100.0, 3.0, 1.0);
+        b.push(109.0, 3.0, 1.0);
+        assert!((b.end.unwrap().0 - 0.005).abs() < 1e-12);
+        assert!(charge_curve(&[]).is_empty());
+        assert!(incremental_capacity(&c, 0.0).is_empty());
+        assert!(differential_voltage(&g, 0.0).is_empty());
+    }
 }
