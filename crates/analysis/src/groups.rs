@@ -637,4 +637,209 @@ mod tests {
         // Past the end along the last slope.
         assert!((c.charge_at_level(2.9).unwrap() - 2.2).abs() < 1e-9);
     }
+
+    fn summary(step: u32, kind: &str, end: &str) -> StepSummary {
+        serde_json::from_value(serde_json::json!({
+            "step": step, "phase": "p", "cycle": 1, "kind": kind, "name": null,
+            "samples": 10, "start_s": 0.0, "duration_s": 10.0, "charge_ah": 0.0,
+            "energy_wh": 0.0, "charge_in_ah": 0.0, "charge_out_ah": 0.0,
+            "energy_in_wh": 0.0, "energy_out_wh": 0.0, "start_voltage_v": null,
+            "end_voltage_v": null, "min_voltage_v": null, "max_voltage_v": null,
+            "mean_current_a": null, "max_temperature_c": null, "end_kind": end,
+            "end_reason": null
+        }))
+        .unwrap()
+    }
+
+    /// A whole run of three groups worked from the closed form: each group
+    /// k follows V_k(Q) = U(s_k − Q/C_k) − I·R_k on a 2 A discharge
+    /// sampled every 18 s (0.01 Ah). Group 1 (8.8 Ah, full, 12 mΩ) ends
+    /// it at 3.0 V; groups 2 (10 Ah from 95 %, 10 mΩ) and 3 (10 Ah, full,
+    /// 10 mΩ) reach their cutoff where U(s) = 3.02 V, found by bisection
+    /// here. A pulse of 1 A then 3 A gives each group's R; a sensor on
+    /// group 2 reads 40 °C in the charge and 31 °C at most in the
+    /// discharge; the charge ends at 4.200, 4.190 and 4.205 V (15 mV).
+    #[test]
+    fn three_groups_worked_from_the_closed_form() {
+        let i = 2.0;
+        let groups = [(8.8, 1.0, 0.012), (10.0, 0.95, 0.010), (10.0, 1.0, 0.010)];
+        let solve = |level: f64| {
+            let (mut lo, mut hi) = (0.0, 1.0);
+            for _ in 0..80 {
+                let m = 0.5 * (lo + hi);
+                if u(m) > level {
+                    hi = m
+                } else {
+                    lo = m
+                }
+            }
+            0.5 * (lo + hi)
+        };
+        let channels = GroupChannels {
+            wiring: model::groups::Wiring::Direct,
+            voltage: vec![101, 102, 103],
+            temperatures: vec![model::groups::TemperatureChannel {
+                channel: 201,
+                name: "surface".into(),
+                place: "group 2".into(),
+                group: Some(2),
+                max_c: None,
+            }],
+        };
+        let mut pack = Vec::new();
+        let mut rows = Vec::new();
+        let mut row = |t: f64, step: u32, i_a: f64, v: Vec<f64>, temp: f64| {
+            pack.push(PackPoint {
+                t_s: t,
+                step,
+                current_a: i_a,
+            });
+            rows.push(GroupSample {
+                t_s: t,
+                step,
+                cycle: 1,
+                voltage_v: v,
+                temperature_c: vec![Some(temp)],
+                inferred: None,
+            });
+        };
+        // Step 1: the end of the charge.
+        row(0.0, 1, 0.5, vec![4.19, 4.18, 4.2], 35.0);
+        row(1.0, 1, 0.3, vec![4.2, 4.19, 4.205], 40.0);
+        // Step 2: two levels.
+        for k in 0..20 {
+            let ia = if k < 10 { -1.0 } else { -3.0 };
+            let v = groups.iter().map(|g| 3.8 + ia * g.2).collect();
+            row(100.0 + f64::from(k), 2, ia, v, 30.0);
+        }
+        // Step 3: the discharge until group 1 reaches 3.0 V.
+        let mut k = 0;
+        loop {
+            let q = 0.01 * f64::from(k);
+            let v: Vec<f64> = groups
+                .iter()
+                .map(|&(c, s0, r)| u(s0 - q / c) - i * r)
+                .collect();
+            let t = 1000.0 + 18.0 * f64::from(k);
+            row(t, 3, -i, v.clone(), 25.0 + 6.0 * q / 9.0);
+            if v[0] <= 3.0 {
+                break;
+            }
+            k += 1;
+        }
+        let steps = [
+            summary(1, "charge", "current_below"),
+            summary(2, "pulse", "levels_done"),
+            summary(3, "discharge", "group_voltage_below"),
+        ];
+        let g = analyze(&GroupInputs {
+            channels: &channels,
+            pack: &pack,
+            groups: &rows,
+            steps: &steps,
+            capacity_step: Some(3),
+        });
+        let q_end = 0.01 * f64::from(k);
+        let want = [
+            q_end,
+            10.0 * (0.95 - solve(3.0 + i * 0.010)),
+            10.0 * (1.0 - solve(3.0 + i * 0.010)),
+        ];
+        for (r, w) in g.groups.iter().zip(want) {
+            let got = r.charge_to_cutoff_ah.unwrap();
+            assert!(
+                (got / w - 1.0).abs() < 0.003,
+                "group {}: {got} against {w}",
+                r.group
+            );
+        }
+        assert_eq!(g.groups[0].how, "measured");
+        assert_eq!(g.groups[1].how, "estimated");
+        assert!(g.groups[1].fit_rms_mv.unwrap() < 2.0);
+        // Shares and spread from the figures found.
+        let caps: Vec<f64> = g
+            .groups
+            .iter()
+            .map(|r| r.charge_to_cutoff_ah.unwrap())
+            .collect();
+        let mean = caps.iter().sum::<f64>() / 3.0;
+        for (r, c) in g.groups.iter().zip(&caps) {
+            assert!((r.share_of_mean_pct.unwrap() - c / mean * 100.0).abs() < 1e-9);
+        }
+        let (hi, lo) = (
+            caps.iter().copied().fold(0.0, f64::max),
+            caps.iter().copied().fold(f64::INFINITY, f64::min),
+        );
+        assert!((g.capacity_spread_pct.unwrap() - (hi - lo) / mean * 100.0).abs() < 1e-9);
+        assert_eq!(g.weakest, Some(1));
+        let why = g.weakest_reason.as_deref().unwrap();
+        assert!(why.starts_with("group 1 gives"), "{why}");
+        assert!(why.contains("it ended the discharge at"), "{why}");
+        assert!(
+            why.contains("its resistance is 12.00 mOhm against 10.00 mOhm"),
+            "{why}"
+        );
+        // Relative capacities: 1, 10/8.8, 10/8.8 against their mean.
+        let rel = [1.0, 10.0 / 8.8, 10.0 / 8.8];
+        let rm = rel.iter().sum::<f64>() / 3.0;
+        for (r, c) in g.groups.iter().zip(rel) {
+            assert!(
+                (r.relative_capacity_pct.unwrap() - c / rm * 100.0).abs() < 0.3,
+                "{r:?}"
+            );
+        }
+        // Each group's resistance from the pulse: R_k exactly.
+        for (r, (_, _, rk)) in g.groups.iter().zip(groups) {
+            assert!(
+                (r.resistance_mohm.unwrap() - rk * 1000.0).abs() < 1e-9,
+                "{r:?}"
+            );
+        }
+        // End of charge and discharge, spreads, sensors.
+        assert_eq!(g.groups[2].end_of_charge_v, Some(4.205));
+        assert!((g.end_of_charge_spread_mv.unwrap() - 15.0).abs() < 1e-9);
+        let last = rows.last().unwrap();
+        let eod = (last.voltage_v.iter().copied().fold(0.0, f64::max)
+            - last.voltage_v.iter().copied().fold(f64::INFINITY, f64::min))
+            * 1000.0;
+        assert!((g.end_of_discharge_spread_mv.unwrap() - eod).abs() < 1e-9);
+        assert_eq!(g.groups[0].end_of_discharge_v, Some(last.voltage_v[0]));
+        assert_eq!(g.temperatures[0].max_c, Some(40.0));
+        assert_eq!(
+            (g.temperatures[0].channel, g.temperatures[0].name.as_str()),
+            (201, "surface")
+        );
+        let t2 = g.groups[1].max_temperature_c.unwrap();
+        assert!((t2 - (25.0 + 6.0 * q_end / 9.0)).abs() < 1e-9, "{t2}");
+        assert_eq!(g.groups[0].max_temperature_c, None);
+        // Without a capacity step, or one that did not end on a group:
+        // the charges are not taken, and said.
+        let none = analyze(&GroupInputs {
+            channels: &channels,
+            pack: &pack,
+            groups: &rows,
+            steps: &steps,
+            capacity_step: None,
+        });
+        assert!(none.groups.iter().all(|r| r.charge_to_cutoff_ah.is_none()));
+        assert!(none.notes[0].contains("no capacity discharge"));
+        let steps2 = [
+            steps[0].clone(),
+            steps[1].clone(),
+            summary(3, "discharge", "voltage_below"),
+        ];
+        let off = analyze(&GroupInputs {
+            channels: &channels,
+            pack: &pack,
+            groups: &rows,
+            steps: &steps2,
+            capacity_step: Some(3),
+        });
+        assert!(
+            off.notes[0].contains("did not end on a group"),
+            "{:?}",
+            off.notes
+        );
+        assert!(off.groups.iter().all(|r| r.charge_to_cutoff_ah.is_none()));
+    }
 }
