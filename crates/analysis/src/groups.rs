@@ -651,30 +651,17 @@ mod tests {
         .unwrap()
     }
 
-    /// A whole run of three groups worked from the closed form: each group
-    /// k follows V_k(Q) = U(s_k − Q/C_k) − I·R_k on a 2 A discharge
-    /// sampled every 18 s (0.01 Ah). Group 1 (8.8 Ah, full, 12 mΩ) ends
-    /// it at 3.0 V; groups 2 (10 Ah from 95 %, 10 mΩ) and 3 (10 Ah, full,
-    /// 10 mΩ) reach their cutoff where U(s) = 3.02 V, found by bisection
-    /// here. A pulse of 1 A then 3 A gives each group's R; a sensor on
-    /// group 2 reads 40 °C in the charge and 31 °C at most in the
-    /// discharge; the charge ends at 4.200, 4.190 and 4.205 V (15 mV).
-    #[test]
-    fn three_groups_worked_from_the_closed_form() {
-        let i = 2.0;
-        let groups = [(8.8, 1.0, 0.012), (10.0, 0.95, 0.010), (10.0, 1.0, 0.010)];
-        let solve = |level: f64| {
-            let (mut lo, mut hi) = (0.0, 1.0);
-            for _ in 0..80 {
-                let m = 0.5 * (lo + hi);
-                if u(m) > level {
-                    hi = m
-                } else {
-                    lo = m
-                }
-            }
-            0.5 * (lo + hi)
-        };
+    /// The three groups' run: channels, pack points, group rows, step
+    /// summaries, and the charge when group 1 reached 3.0 V.
+    type Run = (
+        GroupChannels,
+        Vec<PackPoint>,
+        Vec<GroupSample>,
+        Vec<StepSummary>,
+        f64,
+    );
+
+    fn three_group_run(groups: &[(f64, f64, f64); 3], i: f64) -> Run {
         let channels = GroupChannels {
             wiring: model::groups::Wiring::Direct,
             voltage: vec![101, 102, 103],
@@ -727,11 +714,39 @@ mod tests {
             }
             k += 1;
         }
-        let steps = [
+        let steps = vec![
             summary(1, "charge", "current_below"),
             summary(2, "pulse", "levels_done"),
             summary(3, "discharge", "group_voltage_below"),
         ];
+        (channels, pack, rows, steps, 0.01 * f64::from(k))
+    }
+
+    /// A whole run of three groups worked from the closed form: each group
+    /// k follows V_k(Q) = U(s_k − Q/C_k) − I·R_k on a 2 A discharge
+    /// sampled every 18 s (0.01 Ah). Group 1 (8.8 Ah, full, 12 mΩ) ends
+    /// it at 3.0 V; groups 2 (10 Ah from 95 %, 10 mΩ) and 3 (10 Ah, full,
+    /// 10 mΩ) reach their cutoff where U(s) = 3.02 V, found by bisection
+    /// here. A pulse of 1 A then 3 A gives each group's R; a sensor on
+    /// group 2 reads 40 °C in the charge and 31 °C at most in the
+    /// discharge; the charge ends at 4.200, 4.190 and 4.205 V (15 mV).
+    #[test]
+    fn three_groups_worked_from_the_closed_form() {
+        let i = 2.0;
+        let groups = [(8.8, 1.0, 0.012), (10.0, 0.95, 0.010), (10.0, 1.0, 0.010)];
+        let solve = |level: f64| {
+            let (mut lo, mut hi) = (0.0, 1.0);
+            for _ in 0..80 {
+                let m = 0.5 * (lo + hi);
+                if u(m) > level {
+                    hi = m
+                } else {
+                    lo = m
+                }
+            }
+            0.5 * (lo + hi)
+        };
+        let (channels, pack, rows, steps, q_end) = three_group_run(&groups, i);
         let g = analyze(&GroupInputs {
             channels: &channels,
             pack: &pack,
@@ -739,7 +754,6 @@ mod tests {
             steps: &steps,
             capacity_step: Some(3),
         });
-        let q_end = 0.01 * f64::from(k);
         let want = [
             q_end,
             10.0 * (0.95 - solve(3.0 + i * 0.010)),
@@ -812,6 +826,12 @@ mod tests {
         let t2 = g.groups[1].max_temperature_c.unwrap();
         assert!((t2 - (25.0 + 6.0 * q_end / 9.0)).abs() < 1e-9, "{t2}");
         assert_eq!(g.groups[0].max_temperature_c, None);
+    }
+
+    #[test]
+    fn without_a_capacity_step_ended_by_a_group_no_charges_are_taken() {
+        let groups = [(8.8, 1.0, 0.012), (10.0, 0.95, 0.010), (10.0, 1.0, 0.010)];
+        let (channels, pack, rows, steps, _) = three_group_run(&groups, 2.0);
         // Without a capacity step, or one that did not end on a group:
         // the charges are not taken, and said.
         let none = analyze(&GroupInputs {
