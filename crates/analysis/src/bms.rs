@@ -212,4 +212,66 @@ mod tests {
         assert!(c.notes[0].contains("full charge"));
         assert!(close(c.bms_soh_pct, 94.545_454_545_454_5));
     }
+
+    /// Without an anchored capacity nothing is compared, and why is said;
+    /// a design capacity of zero gives no BMS state of health; a
+    /// recalibration's nominal and conditions are passed on.
+    #[test]
+    fn what_is_not_compared_says_why() {
+        let steps = [
+            step(1, StepType::Charge, 3.8),
+            step(3, StepType::Discharge, -9.5),
+        ];
+        let bms = BmsReadings {
+            full_charge_capacity_ah: Some(10.4),
+            design_capacity_ah: Some(0.0),
+            cycle_count: None,
+            soc_start_pct: Some(62.0),
+            soc_end_pct: None,
+        };
+        let none = compare(&bms, &steps, None, None);
+        assert_eq!(
+            none.notes,
+            ["no capacity step in the run: nothing measured to compare the BMS with"]
+        );
+        assert_eq!(
+            (
+                none.capacity_error_pct,
+                none.bms_soh_pct,
+                none.soc_start_error_pp
+            ),
+            (None, None, None)
+        );
+        let mut half = capacity(3, 9.5);
+        half.from_full_charge = false;
+        assert!(compare(&bms, &steps, Some(&half), None).notes[0]
+            .contains("did not start from a full charge"));
+        let mut short = capacity(3, 9.5);
+        short.ended_on_cutoff = Some(false);
+        let c = compare(&bms, &steps, Some(&short), None);
+        assert!(c.notes[0].contains("did not reach its cutoff"));
+        assert_eq!(c.measured_capacity_ah, None);
+        let r = Recalibration {
+            full_charge_capacity_ah: 9.5,
+            suggested_nominal_ah: 9.5,
+            measured_ah: 9.5,
+            energy_wh: 34.0,
+            rate_c: 0.2,
+            current_a: 2.0,
+            end_voltage_v: Some(3.0),
+            initial_temperature_c: None,
+            ended_on_cutoff: true,
+            conditions: "at 2 A".into(),
+        };
+        let c = compare(&bms, &steps, Some(&capacity(3, 9.5)), Some(&r));
+        assert!(c.notes.is_empty());
+        assert_eq!(c.bms_soh_pct, None);
+        assert_eq!(c.soc_end_error_pp, None);
+        assert_eq!(c.soc_end_measured_pct, Some(0.0));
+        assert!((c.soc_start_error_pp.unwrap() - 2.0).abs() < 1e-9);
+        assert_eq!(
+            (c.suggested_nominal_ah, c.conditions.as_deref()),
+            (Some(9.5), Some("at 2 A"))
+        );
+    }
 }
