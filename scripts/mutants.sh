@@ -10,6 +10,10 @@
 #   SHARD=0/4 scripts/mutants.sh analysis   every fourth mutant (round robin)
 #   ITERATE=1 scripts/mutants.sh grade      only what the last run in $OUT
 #                                           did not catch (after new tests)
+#   RETEST=names.txt scripts/mutants.sh grade   only the mutants named in the
+#                                           file (one per line, as missed.txt
+#                                           lists them): a sample's missed
+#                                           ones again, after new tests
 #
 # Targets: import (record::import), units (model::units), verdict
 # (record::verdict), analysis (the whole analysis crate), and the parts of
@@ -76,10 +80,19 @@ for t in "${targets[@]}"; do
         *) skip=(--cargo-test-arg=-- --cargo-test-arg=--skip --cargo-test-arg=ecm:: \
             --cargo-test-arg=--skip --cargo-test-arg=characterize::) ;;
     esac
+    # Only the named mutants (their full names, matched exactly).
+    only=()
+    if [ -n "${RETEST:-}" ]; then
+        while IFS= read -r name; do
+            [ -n "$name" ] || continue
+            only+=(-F "^$(printf '%s' "$name" | sed 's/[][\\.^$*+?(){}|]/\\&/g')\$")
+        done < "$RETEST"
+        [ "${#only[@]}" -gt 0 ] || { echo "$RETEST names no mutant" >&2; continue; }
+    fi
     # The globs are cargo-mutants' own: not expanded by the shell.
     set -f
     # shellcheck disable=SC2086
-    cargo mutants $args --profile mutants --cargo-test-arg=--lib "${skip[@]}" -j "$JOBS" \
+    cargo mutants $args --profile mutants --cargo-test-arg=--lib "${skip[@]}" "${only[@]}" -j "$JOBS" \
         --minimum-test-timeout 30 ${SHARD:+--shard "$SHARD" --sharding round-robin} ${ITERATE:+--iterate} \
         -o "$dir" || true
     set +f
