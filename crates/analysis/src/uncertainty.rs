@@ -1346,4 +1346,204 @@ mod tests {
             "{mc:?}"
         );
     }
+
+    /// The energy, ratio, corrected-capacity and resistance budgets worked
+    /// from their forms (metrology.md §1.2): each term's u against the
+    /// textbook expression with the same inputs.
+    #[test]
+    fn the_other_budgets_are_their_forms() {
+        let r3 = 3f64.sqrt();
+        let near = |a: f64, b: f64| (a - b).abs() <= 1e-12 * b.abs().max(1e-15);
+        let m = StepMeasure {
+            sum_dt2_s2: 18_000.0,
+            last_dt_s: 2.0,
+            v_dt_vs: 3.5 * 18_000.0,
+            noise_a: Some(0.0004),
+            noise_v: None,
+            integration_ah: 0.0,
+            integration_wh: 2e-6,
+            end_current_a: 2.0,
+            dv_dq_v_per_ah: Some(4.0),
+        };
+        let i = Spec {
+            reading_pct: 0.1,
+            range_pct: 0.0,
+            offset: 0.005,
+            resolution: 0.001,
+            calibrated: false,
+        };
+        let v = Spec {
+            reading_pct: 0.05,
+            range_pct: 0.0,
+            offset: 0.002,
+            resolution: 0.0,
+            calibrated: false,
+        };
+        let x = StepInputs {
+            q_ah: 10.0,
+            e_wh: 35.0,
+            duration_s: 18_000.0,
+            measure: &m,
+            current: &i,
+            voltage: Some(&v),
+            timebase_ppm: Some(100.0),
+            tare: None,
+            cutoff_v: Some(3.0),
+        };
+        let t = energy_terms(&x);
+        let u = |name: &str| t.iter().find(|t| t.name == name).map(|t| t.u).unwrap();
+        assert!(near(u("current gain"), 35.0 * 0.001 / r3));
+        assert!(near(u("voltage gain"), 35.0 * 0.0005 / r3));
+        assert!(near(u("voltage offset"), 10.0 * 0.002 / r3));
+        assert!(near(
+            u("current offset"),
+            0.005 / r3 * 3.5 * 18_000.0 / 3600.0
+        ));
+        assert!(near(
+            u("noise (Type A)"),
+            0.0004 * 3.5 * 18_000f64.sqrt() / 3600.0
+        ));
+        assert!(near(u("time base"), 35.0 * 100e-6 / r3));
+        assert!(near(u("integration rule"), 2e-6 / r3));
+        assert!(near(
+            u("end detection"),
+            0.5 * 2.0 * 2.0 / 3600.0 * 3.0 / r3
+        ));
+        assert!(near(
+            u("cutoff voltage"),
+            (0.0005 * 3.0 + 0.002) / 4.0 * 3.0 / r3
+        ));
+        // Without a duration the mean voltage is E/Q.
+        let m0 = StepMeasure { v_dt_vs: 0.0, ..m };
+        let t0 = energy_terms(&StepInputs {
+            duration_s: 0.0,
+            measure: &m0,
+            ..x
+        });
+        let n0 = t0.iter().find(|t| t.name == "noise (Type A)").unwrap();
+        assert!(near(n0.u, 0.0004 * 3.5 * 18_000f64.sqrt() / 3600.0));
+
+        // A ratio: 9 over 10 → 90 %. A gain common to both (0.1 % each)
+        // cancels; an offset common to both adds; the rest add in
+        // quadrature, each relative to its own figure.
+        let term = |name: &str, u: f64| normal(name, u, true, String::new());
+        let num = [
+            term("gain", 0.009),
+            term("offset", 0.002),
+            term("noise", 0.003),
+        ];
+        let den = [
+            term("gain", 0.010),
+            term("offset", 0.002),
+            term("noise", 0.004),
+        ];
+        let b = ratio_budget(
+            9.0,
+            &num,
+            10.0,
+            &den,
+            &[("gain", CommonSign::Same), ("offset", CommonSign::Opposite)],
+        );
+        assert!(near(b.value, 90.0));
+        let get = |name: &str| b.terms.iter().find(|t| t.name == name).map(|t| t.u);
+        assert_eq!(get("gain"), None, "cancelled exactly (0.1 % on both)");
+        assert!(near(
+            get("offset").unwrap(),
+            (0.002 / 9.0 + 0.002 / 10.0) * 90.0
+        ));
+        assert!(near(get("noise (discharge)").unwrap(), 0.003 / 9.0 * 90.0));
+        assert!(near(get("noise (charge)").unwrap(), 0.004 / 10.0 * 90.0));
+        assert!(b
+            .terms
+            .iter()
+            .find(|t| t.name == "offset")
+            .unwrap()
+            .basis
+            .contains("adds linearly"));
+
+        // The corrected capacity: C = Cm/(1 + αΔ) with α = 0.003/K, θ =
+        // 35 °C, θ_ref = 25 °C; the reading ±1 °C, α known to ±50 % (u =
+        // 0.5/√3 relative); a rate correction ln(2), k ± 0.1.
+        let measured = Budget::of(10.0, "Ah", vec![term("gain", 0.01)]);
+        let c = 10.0 / 1.03;
+        let cb = corrected_budget(
+            &measured,
+            c,
+            &CorrectionInputs {
+                factor: 1.0 / 1.03,
+                temperature: Some((0.003, 35.0, 25.0)),
+                alpha_rel_u: 0.5 / r3,
+                temperature_tolerance_c: Some(1.0),
+                rate: Some((2f64.ln(), 1.2, 0.1)),
+            },
+        );
+        let get = |name: &str| {
+            cb.terms
+                .iter()
+                .find(|t| t.name == name)
+                .map(|t| t.u)
+                .unwrap()
+        };
+        assert!(near(get("gain"), 0.01 / 1.03));
+        assert!(near(
+            get("temperature reading"),
+            c * 0.003 / 1.03 * 1.0 / r3
+        ));
+        assert!(near(
+            get("temperature coefficient"),
+            c * 10.0 / 1.03 * 0.003 * 0.5 / r3
+        ));
+        assert!(near(get("Peukert exponent"), c * 2f64.ln() * 0.1 / r3));
+        assert!(near(cb.value, c));
+
+        // A resistance of 40 mΩ from ΔV = 80 mV over ΔI = 2 A: the gains,
+        // each difference's resolution and noise, three repeated readings.
+        let rv = Spec {
+            reading_pct: 0.05,
+            range_pct: 0.0,
+            offset: 0.001,
+            resolution: 0.0001,
+            calibrated: false,
+        };
+        let ri = Spec {
+            reading_pct: 0.1,
+            range_pct: 0.0,
+            offset: 0.005,
+            resolution: 0.001,
+            calibrated: false,
+        };
+        let rb = resistance_budget(
+            40.0,
+            -0.08,
+            -2.0,
+            &rv,
+            &ri,
+            (Some(0.0002), Some(0.001)),
+            &[39.0, 40.0, 41.0],
+        );
+        let get = |name: &str| {
+            rb.terms
+                .iter()
+                .find(|t| t.name == name)
+                .map(|t| t.u)
+                .unwrap()
+        };
+        assert!(near(get("voltage gain"), 40.0 * 0.0005 / r3));
+        assert!(near(get("current gain"), 40.0 * 0.001 / r3));
+        assert!(near(
+            get("voltage difference"),
+            40.0 * (1e-8f64 / 6.0 + 2.0 * 4e-8).sqrt() / 0.08
+        ));
+        assert!(near(
+            get("current difference"),
+            40.0 * (1e-6f64 / 6.0 + 2.0 * 1e-6).sqrt() / 2.0
+        ));
+        assert!(near(get("repeatability (Type A)"), 1.0 / 3f64.sqrt()));
+        assert_eq!(
+            resistance_budget(40.0, 0.0, 2.0, &rv, &ri, (None, None), &[])
+                .terms
+                .len(),
+            2
+        );
+    }
 }
