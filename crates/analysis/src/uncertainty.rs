@@ -1422,11 +1422,15 @@ mod tests {
         });
         let n0 = t0.iter().find(|t| t.name == "noise (Type A)").unwrap();
         assert!(near(n0.u, 0.0004 * 3.5 * 18_000f64.sqrt() / 3600.0));
+    }
 
+    #[test]
+    fn a_ratios_budget_cancels_and_adds_what_is_common() {
+        let near = |a: f64, b: f64| (a - b).abs() <= 1e-12 * b.abs().max(1e-15);
+        let term = |name: &str, u: f64| normal(name, u, true, String::new());
         // A ratio: 9 over 10 → 90 %. A gain common to both (0.1 % each)
         // cancels; an offset common to both adds; the rest add in
         // quadrature, each relative to its own figure.
-        let term = |name: &str, u: f64| normal(name, u, true, String::new());
         let num = [
             term("gain", 0.009),
             term("offset", 0.002),
@@ -1460,7 +1464,13 @@ mod tests {
             .unwrap()
             .basis
             .contains("adds linearly"));
+    }
 
+    #[test]
+    fn the_corrected_capacitys_budget_adds_the_corrections_terms() {
+        let r3 = 3f64.sqrt();
+        let near = |a: f64, b: f64| (a - b).abs() <= 1e-12 * b.abs().max(1e-15);
+        let term = |name: &str, u: f64| normal(name, u, true, String::new());
         // The corrected capacity: C = Cm/(1 + αΔ) with α = 0.003/K, θ =
         // 35 °C, θ_ref = 25 °C; the reading ±1 °C, α known to ±50 % (u =
         // 0.5/√3 relative); a rate correction ln(2), k ± 0.1.
@@ -1495,7 +1505,12 @@ mod tests {
         ));
         assert!(near(get("Peukert exponent"), c * 2f64.ln() * 0.1 / r3));
         assert!(near(cb.value, c));
+    }
 
+    #[test]
+    fn a_resistances_budget_is_its_form() {
+        let r3 = 3f64.sqrt();
+        let near = |a: f64, b: f64| (a - b).abs() <= 1e-12 * b.abs().max(1e-15);
         // A resistance of 40 mΩ from ΔV = 80 mV over ΔI = 2 A: the gains,
         // each difference's resolution and noise, three repeated readings.
         let rv = Spec {
