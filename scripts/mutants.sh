@@ -76,7 +76,7 @@ for t in "${targets[@]}"; do
     # elsewhere is tested without them, which can only lower its score.
     skip=()
     case "$t" in
-        analysis | rest | characterize) ;;
+        analysis | characterize) ;;
         *) skip=(--cargo-test-arg=-- --cargo-test-arg=--skip --cargo-test-arg=ecm:: \
             --cargo-test-arg=--skip --cargo-test-arg=characterize::) ;;
     esac
