@@ -326,4 +326,37 @@ mod tests {
         p.push(2.0, 3.6, -2.0, 1, None);
         assert!(p.finish().0.is_empty());
     }
+
+    /// An edge from one current to another (not from rest): ΔV/ΔI against
+    /// the current before it; and past the readings kept, the rest are
+    /// counted, not listed.
+    #[test]
+    fn an_edge_between_two_currents_and_the_readings_cap() {
+        let mut p = PulseTracker::new(&[1.0], 10.0);
+        for k in 0..5 {
+            p.push(f64::from(k), 3.6, -1.0, 1, None);
+        }
+        for k in 5..10 {
+            p.push(f64::from(k), 3.56, -3.0, 1, None);
+        }
+        let (r, _) = p.finish();
+        // (3.56 − 3.6) / (−3 − (−1)) = 20 mΩ.
+        assert!(
+            (r[0].values[0].resistance_mohm - 20.0).abs() < 1e-9,
+            "{r:?}"
+        );
+        let mut p = PulseTracker::new(&[1.0], 10.0);
+        let n = MAX_READINGS + 7;
+        for k in 0..(4 * n) {
+            let i = if (k / 2) % 2 == 0 { 0.0 } else { -2.0 };
+            p.push(k as f64, 3.6 + 0.01 * i, i, 1, None);
+        }
+        let (r, dropped) = p.finish();
+        assert_eq!(r.len(), MAX_READINGS);
+        assert_eq!(
+            r.len() + dropped,
+            2 * n - 1,
+            "every edge but the first from nothing"
+        );
+    }
 }

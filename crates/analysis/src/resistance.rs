@@ -343,9 +343,11 @@ mod tests {
         assert!(!found((-1.0, 41), (-2.0, 4)));
         assert!(found((-1.0, 41), (-2.0, 81)));
         assert!(!found((-1.0, 41), (-2.0, 82)));
-        // Ratio: 1.5 times (enough), 1.45 (not).
-        assert!(found((-1.0, 41), (-1.5, 9)));
-        assert!(!found((-1.0, 41), (-1.45, 9)));
+        // Ratio: 1.5 times (enough), 1.45 (not), from 2 A.
+        assert!(found((-2.0, 41), (-3.0, 9)));
+        assert!(!found((-2.0, 41), (-2.9, 9)));
+        // A log that ends on the second level: judged at its end.
+        assert_eq!(run(&[rest, (-1.0, 41), (-2.0, 9)]).len(), 1);
         // The reading, its times and its charge count.
         let r = run(&[rest, (-1.0, 41), (-2.0, 9), rest]);
         assert_eq!(r.len(), 1);

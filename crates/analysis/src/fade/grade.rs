@@ -831,6 +831,11 @@ mod tests {
         // As measured (no uncertainty): A at 90.2.
         let g = p.grade(&GradeInputs::of_soh(Chemistry::LiIon, 90.2, None));
         assert_eq!(g.label, "A");
+        // The nearest boundary is the nearest floor, wherever the SoH is.
+        for (soh, limit) in [(70.3, 70.0), (79.0, 80.0), (84.0, 80.0), (99.0, 90.0)] {
+            let g = p.grade(&GradeInputs::of_soh(Chemistry::LiIon, soh, Some(0.25)));
+            assert_eq!(g.decision.unwrap().nearest.unwrap().limit, limit, "{soh}");
+        }
         // Refused where U = 2 points > 0.25 × the 5-point half-bin.
         assert!(p.refuses(Chemistry::LiIon, Some(1.0)).is_some());
         assert!(p.refuses(Chemistry::LiIon, Some(0.5)).is_none());
