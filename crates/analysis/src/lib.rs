@@ -645,4 +645,78 @@ mod tests {
         assert!((c.duration_s - 140.0).abs() < 1e-9);
         assert!((r.steps[0].down_s - 60.0).abs() < 1e-9);
     }
+
+    /// A standby drain worked by hand: 2 mA for a 730.5 h month is 1.461
+    /// Ah, 14.61 % of 10 Ah. The second half's mean: points 0 … 10 s, the
+    /// current 1 mA then 3 mA from 5 s (the half-way line): the trapezoid
+    /// over 5 … 10 s with 3 mA throughout gives 3 mA; a ramp from 6 s
+    /// gives its own mean.
+    #[test]
+    fn a_drain_and_its_second_half_by_hand() {
+        assert!((drain_pct_per_month(2.0, 10.0) - 14.61).abs() < 1e-12);
+        let step: Vec<(f64, f64)> = (0..=10)
+            .map(|k| (f64::from(k), if k < 5 { 0.001 } else { 0.003 }))
+            .collect();
+        let (mean, span, n) = second_half_mean(&step).unwrap();
+        assert!(
+            (mean - 0.003).abs() < 1e-15 && span == 5.0 && n == 6,
+            "{mean} {span} {n}"
+        );
+        // A ramp 0 … 10 mA over 0 … 10 s: over 5 … 10 s the mean is 7.5 mA.
+        let ramp: Vec<(f64, f64)> = (0..=10)
+            .map(|k| (f64::from(k), 0.001 * f64::from(k)))
+            .collect();
+        assert!((second_half_mean(&ramp).unwrap().0 - 0.0075).abs() < 1e-15);
+        assert_eq!(second_half_mean(&[(0.0, 1.0)]), None);
+        assert_eq!(second_half_mean(&[]), None);
+        assert_eq!(second_half_mean(&[(0.0, 1.0), (0.0, 2.0)]), None, "no span");
+    }
+
+    /// The conditions in words: what was corrected (with its factor) and
+    /// what was not.
+    #[test]
+    fn a_capacitys_conditions_say_what_was_done() {
+        let corr = |kind: &str, method: &str, factor: f64| Correction {
+            kind: kind.into(),
+            method: method.into(),
+            factor,
+            why: String::new(),
+        };
+        let mut c = CapacityResult {
+            step: 1,
+            measured_ah: 1.0,
+            measured_wh: 3.6,
+            rated_ah: None,
+            mean_current_a: 1.0,
+            c_rate: None,
+            duration_s: 3600.0,
+            end_voltage_v: None,
+            ended_on_cutoff: None,
+            corrected_ah: None,
+            corrections: Vec::new(),
+            initial_temperature_c: None,
+            ieee450_percent: None,
+            from_full_charge: true,
+            preceded_by: String::new(),
+        };
+        assert_eq!(c.conditions(), "as measured");
+        c.corrections = vec![
+            corr(
+                "temperature",
+                "linear coefficient (common practice)",
+                0.97087,
+            ),
+            corr("rate", "none", 1.0),
+        ];
+        assert_eq!(
+            c.conditions(),
+            "corrected for temperature (linear coefficient (common practice), ×0.9709); not corrected for rate"
+        );
+        c.corrections.push(corr("rate", "Peukert", 1.02));
+        assert!(
+            c.conditions().contains(" and rate (Peukert, ×1.0200)"),
+            "{}",
+            c.conditions()
+        );
+    }
 }

@@ -10,7 +10,7 @@
 //! gaps and the log's quality are checked against those values.
 
 use super::*;
-use crate::{analyze, analyze_with, StepInfo};
+use crate::{analyze, analyze_with, drain_pct_per_month, StepInfo};
 use model::pack::Chemistry;
 
 fn pack() -> PackSpec {
@@ -525,4 +525,81 @@ fn a_foreign_log_finds_its_steps_and_its_capacity() {
     let a = analyze_with(&samples, &[], &pack(), opts(None));
     assert_eq!(a.capacity.as_ref().unwrap().ended_on_cutoff, None);
     assert!(a.warnings.iter().any(|w| w.contains("--cutoff")));
+}
+
+/// A slow log (every 10 s) with one 100 s hole: one gap, judged against
+/// the step's own 10 s; a row repeating a time, skipped by the caller,
+/// counted; a step's record given after the analyzer was made; a drain
+/// step's second-half mean and its monthly share; a step split by an
+/// interruption runs for its span less the time down.
+#[test]
+fn slow_logs_late_records_drains_and_time_down() {
+    let pack = pack();
+    let mut a = Analyzer::new(&pack, &[], AnalysisOptions::default());
+    a.set_info(info(1, 0, StepType::Rest, EndKind::Time, None));
+    a.set_info(info(2, 0, StepType::Drain, EndKind::Time, None));
+    let s = |t: f64, step: u32, i: f64| Sample {
+        t_s: t,
+        step,
+        cycle: 0,
+        voltage_v: 4.0,
+        current_a: i,
+        temperature_c: None,
+    };
+    for k in 0..30 {
+        let t = 10.0 * f64::from(k) + if k >= 20 { 90.0 } else { 0.0 };
+        a.push(&s(t, 1, 0.0));
+    }
+    a.skip_repeated_time(&s(380.0, 1, 0.1));
+    // The drain: 2 mA for 1000 s, then 4 mA in the second half.
+    for k in 0..=1000 {
+        let i = if k < 500 { -0.002 } else { -0.004 };
+        a.push(&s(1000.0 + f64::from(k), 2, i));
+    }
+    let r = a.finish();
+    assert_eq!(r.quality.gaps, 1, "{:?}", r.gaps);
+    assert_eq!((r.gaps[0].from_s, r.gaps[0].to_s), (190.0, 290.0));
+    assert!((r.gaps[0].typical_interval_s - 10.0).abs() < 1e-12);
+    assert_eq!(
+        (r.quality.repeated_timestamps, r.quality.repeated_dropped),
+        (1, 1)
+    );
+    assert_eq!(r.quality.rows, 30 + 1 + 1001);
+    assert_eq!(r.steps[0].kind, StepType::Rest);
+    assert!(
+        r.warnings
+            .iter()
+            .any(|w| w.contains("1 row(s) repeated the time")),
+        "{:?}",
+        r.warnings
+    );
+    let d = r.standby_drain.unwrap();
+    assert_eq!(d.step, 2);
+    // Second half 1500 … 2000 s: 4 mA throughout (the step to 4 mA is at
+    // 1500 s itself).
+    assert!((d.current_ma + 4.0).abs() < 1e-9, "{d:?}");
+    assert!(
+        (d.window_s - 500.0).abs() < 1e-9 && d.samples == 501,
+        "{d:?}"
+    );
+    assert!((d.pct_per_month - drain_pct_per_month(d.current_ma, 2.0)).abs() < 1e-12);
+    assert_eq!(d.capacity_ref_ah, 2.0, "no capacity measured: the rated");
+    // Time down inside a step: 100 s up, 60 s down, 40 s up.
+    let mut b = Analyzer::new(
+        &pack,
+        &[info(1, 0, StepType::Discharge, EndKind::Time, None)],
+        AnalysisOptions::default(),
+    );
+    b.set_breaks(vec![crate::integrate::Interruption {
+        last_before_s: 100.0,
+        resumed_at_s: 160.0,
+    }]);
+    for t in (0..=100).chain(160..=200) {
+        b.push(&s(f64::from(t), 1, -1.0));
+    }
+    let r = b.finish();
+    assert!((r.steps[0].duration_s - 140.0).abs() < 1e-9);
+    assert!((r.steps[0].down_s - 60.0).abs() < 1e-9);
+    assert!((r.steps[0].mean_current_a.unwrap() + 1.0).abs() < 1e-12);
+    assert!((r.steps[0].charge_ah + 140.0 / 3600.0).abs() < 1e-12);
 }
