@@ -253,3 +253,135 @@ pub fn to_csv(f: &Fleet) -> Result<String, csv::Error> {
     let bytes = w.into_inner().map_err(|e| e.into_error())?;
     Ok(String::from_utf8_lossy(&bytes).into_owned())
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::fade::history::HistoryPoint;
+    use model::pack::{Chemistry, PackSpec};
+
+    fn point(day: i64, soh: f64, r: Option<f64>) -> HistoryPoint {
+        HistoryPoint {
+            date: NaiveDate::from_ymd_opt(2025, 1, 1).unwrap() + chrono::Duration::days(day),
+            cycles: day as f64,
+            cycles_given: true,
+            capacity_ah: soh * 0.14,
+            soh_pct: soh,
+            resistance_mohm: r,
+            resistance_growth_pct: None,
+            ieee450_percent: None,
+            coulombic_efficiency_pct: None,
+            grade: Some("A".into()),
+            source: format!("day {day}"),
+            run_dir: None,
+            groups: None,
+            pulse_r50_mohm: None,
+            soh_u95_pct: None,
+            flags: Vec::new(),
+        }
+    }
+
+    fn history(id: &str, points: Vec<HistoryPoint>, rated_r: Option<f64>) -> PackHistory {
+        PackHistory {
+            pack_id: id.into(),
+            spec: PackSpec {
+                chemistry: Chemistry::LiIon,
+                series: 10,
+                rated_capacity_ah: 14.0,
+                rated_energy_wh: None,
+                rated_rate_c: None,
+                rated_resistance_mohm: rated_r,
+            },
+            points,
+            left_out: Vec::new(),
+        }
+    }
+
+    /// Two packs ranked by their latest state of health; growth against
+    /// the rated resistance, else the first reading (50 → 60 mΩ: +20 %);
+    /// overdue by the interval; a projected end of life already past; the
+    /// CSV has a row per pack under its header.
+    #[test]
+    fn rows_ranked_with_growth_due_dates_and_attention() {
+        let a = history(
+            "FR-A",
+            vec![
+                point(0, 95.0, Some(50.0)),
+                point(100, 93.0, Some(55.0)),
+                point(200, 91.0, Some(60.0)),
+            ],
+            None,
+        );
+        let b = history(
+            "FR-B",
+            vec![
+                point(0, 90.0, Some(40.0)),
+                point(300, 85.0, Some(44.0)),
+                point(600, 80.5, Some(48.0)),
+            ],
+            Some(40.0),
+        );
+        let today = NaiveDate::from_ymd_opt(2026, 10, 1).unwrap();
+        let f = rank(
+            &[b.clone(), a.clone()],
+            today,
+            &Schedule::interval(92),
+            80.0,
+        );
+        assert_eq!(f.schedule, "every 92 days");
+        assert_eq!((f.interval_days, f.threshold_pct), (92, 80.0));
+        let ids: Vec<&str> = f.rows.iter().map(|r| r.pack_id.as_str()).collect();
+        assert_eq!(ids, ["FR-A", "FR-B"]);
+        assert_eq!(f.rows.iter().map(|r| r.rank).collect::<Vec<_>>(), [1, 2]);
+        let ra = &f.rows[0];
+        assert!(
+            (ra.resistance_growth_pct.unwrap() - 20.0).abs() < 1e-9,
+            "{ra:?}"
+        );
+        assert!((f.rows[1].resistance_growth_pct.unwrap() - 20.0).abs() < 1e-9);
+        // Last tests on day 200 (2025-07-20) and 600 (2026-08-24).
+        assert_eq!(
+            ra.days_since_test,
+            Some((today - ra.last_test.unwrap()).num_days())
+        );
+        assert!(ra.overdue && !f.rows[1].overdue);
+        assert!(
+            ra.attention.iter().any(|x| x.starts_with("test overdue")),
+            "{:?}",
+            ra.attention
+        );
+        // FR-B falls 1.5 % per 100 days: 80 % is reached soon after
+        // day 600; today is past the projected date.
+        let rb = &f.rows[1];
+        assert!(rb.eol_date.is_some_and(|d| d < today), "{rb:?}");
+        assert!(rb.eol_date_past);
+        assert!(
+            rb.attention
+                .iter()
+                .any(|x| x == "projected end of life already past"),
+            "{:?}",
+            rb.attention
+        );
+        let csv = to_csv(&f).unwrap();
+        let lines: Vec<&str> = csv.lines().collect();
+        assert_eq!(lines.len(), 3);
+        assert!(lines[0].starts_with("rank,pack_id,chemistry,series"));
+        assert!(
+            lines[1].starts_with("1,FR-A,li-ion,10,14,3,2025-07-20,"),
+            "{}",
+            lines[1]
+        );
+        // A test's own growth (its verdict's) wins over the reference.
+        let mut own = point(300, 90.0, Some(70.0));
+        own.resistance_growth_pct = Some(33.0);
+        assert_eq!(resistance_growth_pct(&a, &own), Some(33.0));
+        assert_eq!(resistance_growth_pct(&a, &point(300, 90.0, None)), None);
+        // The reference: rated first, else the first reading.
+        assert_eq!(b.reference_resistance(), Some((40.0, "rated")));
+        assert_eq!(a.reference_resistance(), Some((50.0, "first test")));
+        assert_eq!(
+            history("C", vec![point(0, 90.0, None)], None).reference_resistance(),
+            None
+        );
+    }
+}

@@ -207,4 +207,17 @@ mod tests {
         flag_jumps(&mut r);
         assert!(r[4].flags.is_empty(), "{:?}", r[4].flags);
     }
+
+    /// The scatter (the residual SD about the straight-line fade) worked
+    /// by hand; under three points, or on a straight line, none.
+    #[test]
+    fn the_scatter_and_the_jump_bound_by_hand() {
+        let s = scatter(&[(0.0, 91.0), (1.0, 89.0), (2.0, 91.0), (3.0, 89.0)]);
+        // The fit of those points has slope −0.4 (not flat): worked out,
+        // x̄ = 1.5, ȳ = 90, Sxx = 5, Sxy = −2, b = −0.4; residuals 0.4,
+        // −1.2, 1.2, −0.4: Σ = 3.2; s = √(3.2/2).
+        assert!((s - 1.6f64.sqrt()).abs() < 1e-12, "{s}");
+        assert_eq!(scatter(&[(0.0, 90.0), (1.0, 80.0)]), 0.0);
+        assert_eq!(scatter(&[(0.0, 90.0), (1.0, 89.0), (2.0, 88.0)]), 0.0);
+    }
 }

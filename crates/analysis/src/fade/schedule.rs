@@ -415,4 +415,26 @@ mod tests {
             due.rule
         );
     }
+
+    /// The schedule's names, and the shop's interval to the day: due on
+    /// the interval's last day, overdue the day after.
+    #[test]
+    fn names_and_the_interval_to_the_day() {
+        assert_eq!(Schedule::interval(92).name(), "every 92 days");
+        assert_eq!(
+            ieee().name(),
+            "IEEE 450 for lead-acid (service life 20 years), every 92 days for the others"
+        );
+        let h = history(Chemistry::LiIon, &[("2026-01-01", 95.0)]);
+        let s = Schedule::interval(10);
+        let on = s.due(&h, "2026-01-11".parse().unwrap());
+        assert_eq!(on.due, Some("2026-01-11".parse().unwrap()));
+        assert!(!on.overdue && !on.replace);
+        assert!(s.due(&h, "2026-01-12".parse().unwrap()).overdue);
+        assert!(
+            on.rule.contains("10 days after the last test"),
+            "{}",
+            on.rule
+        );
+    }
 }

@@ -648,3 +648,20 @@ fn line_ends_at_the_edges_of_a_read() {
     .unwrap();
     assert_eq!(rows[0].voltage_v, long.parse::<f64>().unwrap());
 }
+
+/// The line numbers of a CR LF log whose header's CR is the last byte of
+/// the first read: a bad row is named at its own line (were the log taken
+/// for a CR-only one, each LF would count as a blank line too).
+#[test]
+fn a_crlf_header_at_the_edge_of_a_read_keeps_the_line_numbers() {
+    let name = format!(
+        "note{}",
+        "x".repeat(4095 - "t_s,voltage_v,current_a,note".len())
+    );
+    let text =
+        format!("t_s,voltage_v,current_a,{name}\r\n0,3.7,-1,a\r\n1,3.6,-1,b\r\n2,x,-1,c\r\n");
+    match read(&text, &LogFormat::default()) {
+        Err(ReadError::Bad { line, column, .. }) => assert_eq!((line, column), (4, 2)),
+        other => panic!("{other:?}"),
+    }
+}
