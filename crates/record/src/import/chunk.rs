@@ -709,4 +709,52 @@ mod tests {
             }
         }
     }
+
+    /// The fast path takes the plain lines it is for (its reason to be:
+    /// speed), with their values and where the next line starts, and sends
+    /// the others the general way: a quoted cell, a field too many or too
+    /// few, an implausible value, a line with no end yet.
+    #[test]
+    fn the_fast_path_takes_plain_lines() {
+        let cols = Cols {
+            temperature: Some(4),
+            step: Some(3),
+            cycle: Some(5),
+            nfields: 7,
+            ..three_columns()
+        };
+        let fmt = LogFormat::default();
+        let bad_fn: fn(u64, usize, String) -> ReadError = bad;
+        let p = ChunkParser::new(&cols, &fmt, -1.0, &bad_fn);
+        let take = |line: &str| p.fast_row(line.as_bytes(), 0);
+        let (r, next) = take("12.5,3.700,-1.25,7,25.5,2,bay 3\nrest").unwrap();
+        assert_eq!(next, "12.5,3.700,-1.25,7,25.5,2,bay 3\n".len());
+        assert_eq!((r.t_s, r.voltage_v, r.current_a), (12.5, 3.7, 1.25));
+        assert_eq!(
+            (r.temperature_c, r.step, r.cycle),
+            (Some(25.5), Some(7), Some(2))
+        );
+        // CR LF, an empty temperature, a last field skipped.
+        let (r, next) = take("1,3.6,0,12,,3,x\r\n").unwrap();
+        assert_eq!(
+            (next, r.temperature_c, r.step, r.current_a.to_bits()),
+            (17, None, Some(12), 0f64.to_bits())
+        );
+        // Taken at an offset in a chunk.
+        let data = b"junk\n2,3.5,1,1,20,1,y\n";
+        let (r, next) = p.fast_row(data, 5).unwrap();
+        assert_eq!((r.t_s, next), (2.0, data.len()));
+        for line in [
+            "1,3.6,0,1,20,1,\"q\"\n",
+            "1,3.6,0,1,20,1\n",
+            "1,3.6,0,1,20,1,x,y\n",
+            "1,3000,0,1,20,1,x\n",
+            "1,3.6,0,1,20,1,x",
+            "1,3.6,0,1,20,1,x\r",
+            "1;3.6;0;1;20;1;x\n",
+            "1,3.6,0,1234567890,20,1,x\n",
+        ] {
+            assert!(take(line).is_none(), "{line:?}");
+        }
+    }
 }

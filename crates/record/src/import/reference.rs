@@ -594,6 +594,7 @@ fn step_numbers_are_whole() {
         .unwrap_err()
         .to_string();
         assert!(err.contains("not a step number"), "{bad}: {err}");
+        assert!(err.contains("log.csv:2:2:"), "{bad}: {err}");
     }
 }
 
