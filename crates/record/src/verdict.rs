@@ -792,4 +792,100 @@ mod tests {
         );
         assert_eq!(Figure::<f64>::default(), Figure::Absent(Why::NotRecorded));
     }
+
+    /// With the bench's accuracy stated, the resistance has a budget and
+    /// its growth's u is u(R)/R0 × 100 (the reference taken as exact): for
+    /// a reading of 60 mΩ against 40 mΩ, the growth is 50 % ± that.
+    #[test]
+    fn growths_uncertainty_is_the_resistances_over_the_reference() {
+        let policy = Policy::default_policy();
+        let spec = |pct: f64| model::accuracy::Spec {
+            reading_pct: pct,
+            range_pct: 0.0,
+            offset: 0.001,
+            resolution: 0.0001,
+            calibrated: false,
+        };
+        let acc = model::accuracy::BenchAccuracy {
+            voltage: Some(spec(0.05)),
+            charge_current: Some(spec(0.1)),
+            discharge_current: Some(spec(0.1)),
+            same_current_meter: false,
+            same_voltage_meter: false,
+            timebase_ppm: None,
+            temperature_c: None,
+            stated_by: Vec::new(),
+            examples: false,
+        };
+        let reading = analysis::resistance::ResistanceReading {
+            step: 4,
+            dcir_mohm: 60.0,
+            method: "two-level".into(),
+            u1_v: 3.70,
+            i1_a: -1.0,
+            u2_v: 3.58,
+            i2_a: -3.0,
+            t1_s: 10.0,
+            t2_s: 11.0,
+            soc_pct: Some(50.0),
+            ah_since_full: None,
+        };
+        let r = ResistanceResult {
+            dcir_mohm: 60.0,
+            method: "two-level".into(),
+            why: String::new(),
+            readings: vec![reading],
+        };
+        let c = capacity(12.6, true, Some(true));
+        let mut x = inputs(Some(&c), &[], &[], &policy);
+        x.accuracy = Some(&acc);
+        x.resistance = Some(&r);
+        x.reference = Some(Reference {
+            mohm: 40.0,
+            source: "run A".into(),
+        });
+        let (v, _) = judge(&x);
+        let ur = v
+            .uncertainty
+            .resistance_mohm
+            .as_ref()
+            .expect("a resistance budget")
+            .u;
+        assert!(ur > 0.0);
+        assert!((v.resistance_growth_pct.get().unwrap() - 50.0).abs() < 1e-9);
+        // The growth's u reaches the grade: 50 % sits on grade B's 50 %
+        // ceiling, inside its guard band w = U = 2·u(R)/R0·100 points: B
+        // is missed there, and the grade given is conditional.
+        let d = v.grade.value().unwrap().decision.clone().unwrap();
+        let w = 2.0 * ur / 40.0 * 100.0;
+        assert!(d.conditional, "{d:?}");
+        assert!(
+            d.in_band[0].contains(&format!("resistance growth 50.0 % <= 50 % (conditional pass: within the guard band of {w:.1} points)")),
+            "{d:?}"
+        );
+        let g = GradeInputs {
+            chemistry: Chemistry::LiIon,
+            soh_pct: v.soh_pct.get(),
+            resistance_growth_pct: Some(25.2),
+            coulombic_efficiency_pct: None,
+            weakest_group: None,
+            weakest_group_share_pct: None,
+            group_capacity_spread_pct: None,
+            soh_u: None,
+            resistance_growth_u: Some(ur / 40.0 * 100.0),
+            ce_u: None,
+        };
+        // 25.2 % against the 25 % ceiling with U = 2·u(R)/R0·100 over 0.2:
+        // inside the band, the lower grade, conditional.
+        assert!(2.0 * ur / 40.0 * 100.0 > 0.2, "{ur}");
+        let graded = policy.grade(&g);
+        assert!(graded.decision.unwrap().conditional);
+        // A reference of zero: no growth and no u for it.
+        x.reference = Some(Reference {
+            mohm: 0.0,
+            source: "rated".into(),
+        });
+        let (v, _) = judge(&x);
+        assert_eq!(v.resistance_growth_pct, Figure::Absent(Why::NoReference));
+    }
 }
