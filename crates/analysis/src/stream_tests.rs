@@ -603,3 +603,90 @@ fn slow_logs_late_records_drains_and_time_down() {
     assert!((r.steps[0].mean_current_a.unwrap() + 1.0).abs() < 1e-12);
     assert!((r.steps[0].charge_ah + 140.0 / 3600.0).abs() < 1e-12);
 }
+
+/// A step that comes back after another (a log whose step numbers
+/// repeat): its stretches are summed, said so; and a foreign log's charge
+/// counts as full only when its current fell under a fifth of its highest
+/// at (nearly) its top voltage.
+#[test]
+fn stretches_sum_and_a_foreign_full_charge_is_a_taper_at_the_top() {
+    let pack = pack();
+    let s = |t: f64, step: u32, v: f64, i: f64| Sample {
+        t_s: t,
+        step,
+        cycle: 0,
+        voltage_v: v,
+        current_a: i,
+        temperature_c: None,
+    };
+    let mut x = Vec::new();
+    for k in 0..=10 {
+        x.push(s(f64::from(k), 1, 3.7, -1.0));
+    }
+    for k in 20..=30 {
+        x.push(s(f64::from(k), 2, 3.8, 0.0));
+    }
+    for k in 40..=60 {
+        x.push(s(f64::from(k), 1, 3.6, -2.0));
+    }
+    let a = analyze(
+        &x,
+        &[
+            info(1, 0, StepType::Discharge, EndKind::Time, None),
+            info(2, 0, StepType::Rest, EndKind::Time, None),
+        ],
+        &pack,
+    );
+    let one = &a.steps[0];
+    assert_eq!(one.samples, 32);
+    assert!(
+        (one.charge_ah + (10.0 + 40.0) / 3600.0).abs() < 1e-12,
+        "{one:?}"
+    );
+    assert!((one.charge_out_ah - 50.0 / 3600.0).abs() < 1e-12);
+    assert!(
+        (one.energy_out_wh - (37.0 + 144.0) / 3600.0).abs() < 1e-12,
+        "{one:?}"
+    );
+    assert_eq!(
+        (one.min_voltage_v, one.max_voltage_v),
+        (Some(3.6), Some(3.7))
+    );
+    assert_eq!(one.end_voltage_v, Some(3.6));
+    assert!(
+        a.warnings
+            .iter()
+            .any(|w| w.contains("step 1 appears in 2 separate stretches")),
+        "{:?}",
+        a.warnings
+    );
+    // Foreign: a charge to 4.2 V ending at 0.19 A of a 1 A start is full
+    // (then the discharge after it starts full); ending at 0.21 A, or at
+    // 4.17 V (more than 0.5 % under its top), it is not.
+    for (end_i, end_v, full) in [(0.19, 4.2, true), (0.21, 4.2, false), (0.19, 4.17, false)] {
+        let mut y = Vec::new();
+        for k in 0..=100 {
+            let last = k == 100;
+            y.push(s(
+                f64::from(k),
+                1,
+                if last { end_v } else { 4.2 },
+                if last { end_i } else { 1.0 },
+            ));
+        }
+        for k in 101..=3000 {
+            y.push(s(f64::from(k), 2, 4.0 - 1e-4 * f64::from(k), -1.0));
+        }
+        let opts = AnalysisOptions {
+            detect_capacity: true,
+            imported: true,
+            ..AnalysisOptions::default()
+        };
+        let a = analyze_with(&y, &[], &pack, opts);
+        assert_eq!(
+            a.capacity.unwrap().from_full_charge,
+            full,
+            "{end_i} A at {end_v} V"
+        );
+    }
+}
