@@ -538,4 +538,25 @@ mod tests {
         assert!(incremental_capacity(&c, 0.0).is_empty());
         assert!(differential_voltage(&g, 0.0).is_empty());
     }
+
+    /// The charge curve by hand: 2 A then 4 A a second apart, as
+    /// magnitudes from the step's start (trapezoid): 0, 3/3600, 7/3600 Ah.
+    #[test]
+    fn a_charge_curve_by_hand() {
+        let s = |t: f64, v: f64, i: f64| Sample {
+            t_s: t,
+            step: 1,
+            cycle: 0,
+            voltage_v: v,
+            current_a: i,
+            temperature_c: None,
+        };
+        let c = charge_curve(&[s(0.0, 4.0, -2.0), s(1.0, 3.9, -4.0), s(2.0, 3.8, -4.0)]);
+        assert_eq!(c.len(), 3);
+        assert!(
+            (c[1].0 - 3.0 / 3600.0).abs() < 1e-15 && (c[2].0 - 7.0 / 3600.0).abs() < 1e-15,
+            "{c:?}"
+        );
+        assert_eq!(c[2].1, 3.8);
+    }
 }

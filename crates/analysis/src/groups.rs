@@ -632,6 +632,14 @@ mod tests {
             v: vec![4.0, 3.5, 3.0],
         };
         assert_eq!(c.at(0.5), Some(3.75));
+        // Five points: past the end along the last two (3.0 → 2.0 V per
+        // Ah from 3 to 4 Ah): 1.5 V at 4.5 Ah.
+        let five = Curve {
+            q: vec![0.0, 1.0, 2.0, 3.0, 4.0],
+            v: vec![4.0, 3.8, 3.5, 3.0, 2.0],
+        };
+        assert_eq!(five.at(4.5), Some(1.5));
+        assert_eq!(five.at(2.5), Some(3.25));
         assert_eq!(c.at(-0.1), None);
         assert!((c.charge_at_level(3.25).unwrap() - 1.5).abs() < 1e-12);
         // Past the end along the last slope.
