@@ -311,15 +311,7 @@ fn a_capacity_step_that_did_not_start_full_grades_nothing() {
     // stated accuracy; about ±0.4 % here, against the 4–9 Ah once asked).
     let ah = c["measured_ah"].as_f64().unwrap();
     let m = json(&run_dir(&d.join("results/HALF-1")).join("run.json"));
-    let truth = m["simulation"]["steps"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .find(|t| t["step"] == c["step"])
-        .unwrap()["charge_ah"]
-        .as_f64()
-        .unwrap()
-        .abs();
+    let truth = step_truth_ah(&m, &c["step"]);
     let whole = m["simulation"]["true_capacity_ah"].as_f64().unwrap();
     assert!((0.4..0.6).contains(&(truth / whole)), "{truth} of {whole}");
     let b = &s["verdict"]["uncertainty"]["measured_ah"];
@@ -408,15 +400,7 @@ fn the_lead_acid_check_corrects_from_a_rested_pack() {
     // correction's coefficient and the temperature reading; about ±1.2
     // points here, against the ±3 once asked).
     let m = json(&rdir.join("run.json"));
-    let truth = m["simulation"]["steps"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .find(|t| t["step"] == c["step"])
-        .unwrap()["charge_ah"]
-        .as_f64()
-        .unwrap()
-        .abs();
+    let truth = step_truth_ah(&m, &c["step"]);
     let k = c["corrected_ah"].as_f64().unwrap() / c["measured_ah"].as_f64().unwrap();
     let rated_ah = 100.0; // --rated above
     let want = 100.0 * truth * k / rated_ah;

@@ -322,3 +322,17 @@ pub fn hand_integral(samples_csv: &Path, step: u32) -> (f64, f64) {
     }
     (ah, wh)
 }
+
+/// The charge that really flowed in a step of a simulated run, |Ah|, from
+/// its `run.json` (the simulator's truth, not the bench's measurement).
+pub fn step_truth_ah(run_json: &serde_json::Value, step: &serde_json::Value) -> f64 {
+    run_json["simulation"]["steps"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|t| &t["step"] == step)
+        .unwrap()["charge_ah"]
+        .as_f64()
+        .unwrap()
+        .abs()
+}

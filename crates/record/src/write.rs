@@ -94,7 +94,8 @@ pub const HALT_VAR: &str = "PACKBENCH_TEST_HALT_BEFORE_RENAME";
 fn halt_for_a_crash_test(name: &str) {
     #[cfg(unix)]
     {
-        static WRITES: std::sync::Mutex<Vec<(String, u32)>> = std::sync::Mutex::new(Vec::new());
+        // Writes of the one file named, counted.
+        static WRITES: std::sync::atomic::AtomicU32 = std::sync::atomic::AtomicU32::new(0);
         let Some(want) = std::env::var_os(HALT_VAR) else {
             return;
         };
@@ -105,17 +106,7 @@ fn halt_for_a_crash_test(name: &str) {
         if file != name {
             return;
         }
-        let Ok(mut seen) = WRITES.lock() else { return };
-        let n = match seen.iter_mut().find(|(f, _)| f == name) {
-            Some((_, n)) => {
-                *n += 1;
-                *n
-            }
-            None => {
-                seen.push((name.to_string(), 1));
-                1
-            }
-        };
+        let n = WRITES.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1;
         if nth.parse::<u32>().is_ok_and(|k| k == n) {
             // SAFETY: raise(3) with a valid signal number has no
             // preconditions; SIGSTOP stops this process until killed.
