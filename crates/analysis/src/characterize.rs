@@ -828,32 +828,7 @@ mod tests {
     /// the levels' counts.
     #[test]
     fn available_energy_between_the_depths_where_both_targets_are_met() {
-        let mk = |dod: f64, pd: f64, pc: f64, wh: f64| Level {
-            t_s: 0.0,
-            ah_from_full: Some(dod / 100.0 * Q),
-            ah_from_start: 0.0,
-            wh_from_full: wh,
-            soc_pct: 100.0 - dod,
-            ocv_v: 0.0,
-            rest_s: 3600.0,
-            temperature_c: None,
-            discharge: PulseFigure {
-                current_a: -Q,
-                duration_s: 10.0,
-                voltage_before_v: 0.0,
-                resistance_mohm: 50.0,
-                at_delays: Vec::new(),
-                first_sample_s: 0.0,
-            },
-            charge: None,
-            charge_reduced: false,
-            power_discharge_w: Some(pd),
-            power_charge_w: Some(pc),
-            ecm1: None,
-            ecm2: None,
-            r0_separable: true,
-            flags: Vec::new(),
-        };
+        let mk = |dod, pd, pc, wh| table_level(dod, 50.0, pd, pc, wh);
         let levels = vec![
             mk(0.0, 6000.0, 0.0, 0.0),
             mk(40.0, 5000.0, 4000.0, 200.0),
@@ -870,5 +845,235 @@ mod tests {
         assert!((a.dod_from_pct - 20.0).abs() < 1e-9);
         // Energy: 300 Wh at 60 %, 100 Wh at 20 %.
         assert!((a.energy_wh - 200.0).abs() < 1e-9);
+    }
+
+    /// A level for the table's arithmetic: depth of discharge %, discharge
+    /// resistance mΩ, powers W, energy out since full Wh.
+    fn table_level(dod: f64, r_mohm: f64, pd: f64, pc: f64, wh: f64) -> Level {
+        Level {
+            t_s: 0.0,
+            ah_from_full: Some(dod / 100.0 * Q),
+            ah_from_start: 0.0,
+            wh_from_full: wh,
+            soc_pct: 100.0 - dod,
+            ocv_v: 0.0,
+            rest_s: 3600.0,
+            temperature_c: None,
+            discharge: PulseFigure {
+                current_a: -Q,
+                duration_s: 10.0,
+                voltage_before_v: 0.0,
+                resistance_mohm: r_mohm,
+                at_delays: Vec::new(),
+                first_sample_s: 0.0,
+            },
+            charge: None,
+            charge_reduced: false,
+            power_discharge_w: Some(pd),
+            power_charge_w: Some(pc),
+            ecm1: None,
+            ecm2: None,
+            r0_separable: true,
+            flags: Vec::new(),
+        }
+    }
+
+    fn basis() -> SocBasis {
+        SocBasis {
+            capacity_ah: Q,
+            source: "rated".into(),
+        }
+    }
+
+    /// Energy by the trapezoid on the rows between two indices, Wh.
+    fn wh_between(rows: &[(f64, f64, f64)], from: usize, to: usize) -> f64 {
+        rows[from..=to]
+            .windows(2)
+            .map(|w| 0.5 * (w[0].1 * w[0].2 + w[1].1 * w[1].2) * (w[1].0 - w[0].0) / 3600.0)
+            .sum()
+    }
+
+    /// The row index of the last sample at `t` with current `i`.
+    fn row_at(rows: &[(f64, f64, f64)], t: f64, i: f64) -> usize {
+        rows.iter()
+            .rposition(|r| r.0 == t && r.2 == i)
+            .expect("a row at that time and current")
+    }
+
+    /// A charge longer than the longest pulse is a full charge: the
+    /// levels' charge and energy count from its last sample (worked here
+    /// from the rows: the current is held between samples, so the
+    /// charge is exact and the energy is the trapezoid of V·I).
+    #[test]
+    fn levels_count_charge_and_energy_from_the_end_of_a_full_charge() {
+        let mut p = Pack::new();
+        p.soc = 0.9;
+        p.seg(1800.0, Q / 3.0, 1.0);
+        let full_end = p.t;
+        p.level(3600.0);
+        p.level(3600.0);
+        p.seg(3600.0, 0.0, 1.0);
+        let c = read(&p.rows, None);
+        assert_eq!(c.levels.len(), 2);
+        let full = row_at(&p.rows, full_end, Q / 3.0);
+        // Level 1 starts after the rest: nothing out since full.
+        let l1 = &c.levels[0];
+        assert_eq!(l1.ah_from_full, Some(0.0));
+        assert!((l1.soc_pct - 100.0).abs() < 1e-12);
+        assert!(l1.flags.iter().all(|f| !f.starts_with("no full charge")));
+        // Level 2: the pulses and 18 min at C/3 out.
+        let l2 = &c.levels[1];
+        let out = Q * 10.0 / 3600.0 - 0.75 * Q * 10.0 / 3600.0 + Q / 3.0 * 1080.0 / 3600.0;
+        let got = l2.ah_from_full.expect("counted from full");
+        assert!((got - out).abs() < 1e-12, "{got} against {out}");
+        assert!((l2.soc_pct - 100.0 * (1.0 - out / Q)).abs() < 1e-9);
+        for l in &c.levels {
+            let pre = row_at(&p.rows, l.t_s, 0.0);
+            let wh = -wh_between(&p.rows, full, pre);
+            assert!(
+                (l.wh_from_full - wh).abs() < 1e-9,
+                "{} against {wh}",
+                l.wh_from_full
+            );
+        }
+        assert!(l2.wh_from_full > 1.0);
+    }
+
+    /// A charge of exactly the longest pulse (180 s) is a pulse, not a
+    /// full charge; a discharge of exactly 180 s is still a level's
+    /// pulse, one second more is not.
+    #[test]
+    fn the_longest_pulse_is_a_pulse() {
+        let mut p = Pack::new();
+        p.soc = 0.9;
+        p.seg(PULSE_MAX_S, Q / 3.0, 1.0);
+        p.level(3600.0);
+        p.seg(3600.0, 0.0, 1.0);
+        let c = read(&p.rows, None);
+        assert_eq!(c.levels.len(), 1);
+        assert_eq!(c.levels[0].ah_from_full, None);
+        for (dur, levels) in [(PULSE_MAX_S, 1), (PULSE_MAX_S + 1.0, 0)] {
+            let mut p = Pack::new();
+            p.seg(3600.0, 0.0, 1.0);
+            p.seg(dur, -Q, 1.0);
+            p.seg(600.0, 0.0, 1.0);
+            let c = read(&p.rows, None);
+            assert_eq!(c.levels.len(), levels, "a {dur} s discharge");
+            if let Some(l) = c.levels.first() {
+                assert_eq!(l.discharge.duration_s, dur);
+            }
+        }
+    }
+
+    /// The pulse's figures where the sampling misses a delay: two samples
+    /// around it, no further apart than half the delay, interpolated
+    /// (voltage and current linear in time here, so the interpolation is
+    /// exact and the figure is the closed form at the delay).
+    #[test]
+    fn a_pulse_read_between_its_samples() {
+        let v = |t: f64| 39.5 - 0.01 * t;
+        let i = |t: f64| -10.0 - 0.1 * t;
+        let s = |t: f64, v: f64, i: f64| S {
+            t,
+            v,
+            i,
+            temp: None,
+            q: 0.0,
+            wh: 0.0,
+        };
+        let mut raw = vec![s(0.0, 40.0, 0.0)];
+        for k in 1..=25 {
+            let t = f64::from(k) * 0.4;
+            raw.push(s(t, v(t), i(t)));
+        }
+        let f = pulse_figure(&raw, 0, 25).expect("a pulse");
+        assert!((f.duration_s - 10.0).abs() < 1e-12);
+        assert!((f.first_sample_s - 0.4).abs() < 1e-12);
+        // The mean of the 25 samples' currents: −10 − 0.1 × 5.2 s.
+        assert!((f.current_a - (-10.52)).abs() < 1e-9, "{}", f.current_a);
+        let r = |t: f64| 1000.0 * (v(t) - 40.0) / i(t);
+        assert!((f.resistance_mohm - r(10.0)).abs() < 1e-9);
+        // 0.1 s: no sample within 5 % and none before it; 1 s between
+        // 0.8 and 1.2 s; 2 and 10 s on samples; 18 s past the end.
+        let delays: Vec<f64> = f.at_delays.iter().map(|d| d.0).collect();
+        assert_eq!(delays, [1.0, 2.0, 10.0]);
+        for &(d, got) in &f.at_delays {
+            assert!((got - r(d)).abs() < 1e-9, "{d} s: {got} against {}", r(d));
+        }
+        // Samples 1 s apart around the 1 s delay are too far apart (more
+        // than half of it).
+        let sparse = vec![
+            s(0.0, 40.0, 0.0),
+            s(0.5, v(0.5), i(0.5)),
+            s(1.5, v(1.5), i(1.5)),
+            s(2.0, v(2.0), i(2.0)),
+        ];
+        let f = pulse_figure(&sparse, 0, 3).expect("a pulse");
+        let delays: Vec<f64> = f.at_delays.iter().map(|d| d.0).collect();
+        assert_eq!(delays, [2.0]);
+    }
+
+    /// The discharge resistance at a state of charge, linear between the
+    /// levels around it, none outside them.
+    #[test]
+    fn the_discharge_resistance_between_levels() {
+        let c = Characterization {
+            settings: settings(),
+            basis: basis(),
+            levels: vec![
+                table_level(60.0, 70.0, 1.0, 1.0, 0.0),
+                table_level(20.0, 50.0, 1.0, 1.0, 0.0),
+                table_level(40.0, 56.0, 1.0, 1.0, 0.0),
+            ],
+            available_energy: None,
+        };
+        // SoC 40, 60, 80 % → 70, 56, 50 mΩ.
+        let at = |soc: f64| c.discharge_resistance_at(soc);
+        assert_eq!(at(40.0), Some(70.0));
+        assert_eq!(at(80.0), Some(50.0));
+        assert!((at(50.0).unwrap() - 63.0).abs() < 1e-12);
+        assert!((at(75.0).unwrap() - 51.5).abs() < 1e-12);
+        assert_eq!(at(39.9), None);
+        assert_eq!(at(80.1), None);
+    }
+
+    /// The circuit's R0 only where the sampling separates it from R1.
+    #[test]
+    fn the_circuits_r0_only_where_the_sampling_separates_it() {
+        let mut p = Pack::new();
+        p.level(3600.0);
+        p.seg(3600.0, 0.0, 1.0);
+        let c = read(&p.rows, None);
+        let l = &c.levels[0];
+        assert!(l.r0_separable);
+        assert_eq!(l.circuit_r0_ohm(1), l.ecm1.as_ref().map(|f| f.r0_ohm));
+        assert_eq!(l.circuit_r0_ohm(2), l.ecm2.as_ref().map(|f| f.r0_ohm));
+        assert!(l.circuit_r0_ohm(1) != l.circuit_r0_ohm(2));
+        let late = Level {
+            r0_separable: false,
+            ..l.clone()
+        };
+        assert_eq!(late.circuit_r0_ohm(2), None);
+    }
+
+    /// The energy between the two depths where the energy count is not
+    /// linear in depth: each end interpolated within its own interval.
+    #[test]
+    fn available_energy_interpolates_the_energy_within_each_interval() {
+        let levels = vec![
+            table_level(0.0, 50.0, 6000.0, 2000.0, 0.0),
+            table_level(40.0, 50.0, 5000.0, 4000.0, 150.0),
+            table_level(80.0, 50.0, 3000.0, 6000.0, 400.0),
+        ];
+        let a = available_energy(&levels, (4000.0, 2000.0), &basis()).unwrap();
+        // Charge power met from 0 % (the first level meets it exactly).
+        assert_eq!(a.dod_from_pct, 0.0);
+        assert!((a.dod_to_pct - 60.0).abs() < 1e-9);
+        // 150 + (400 − 150)/2 at 60 %, 0 at 0 %.
+        assert!((a.energy_wh - 275.0).abs() < 1e-9, "{}", a.energy_wh);
+        let a = available_energy(&levels, (4000.0, 3000.0), &basis()).unwrap();
+        // Charge: 2000 at 0 %, 4000 at 40 %: 3000 from 20 %; 75 Wh there.
+        assert!((a.dod_from_pct - 20.0).abs() < 1e-9);
+        assert!((a.energy_wh - 200.0).abs() < 1e-9, "{}", a.energy_wh);
     }
 }

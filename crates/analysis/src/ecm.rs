@@ -453,4 +453,35 @@ mod tests {
             .collect();
         assert!(fit(&pts, 1).is_none());
     }
+
+    /// With ±1 mV alternating on every counted point (noise no smooth
+    /// response can follow), the residual's RMS is that 1 mV: the sum
+    /// of squares over the points counted, not the sum itself.
+    #[test]
+    fn the_residual_rms_is_per_point() {
+        let mut k = 0;
+        let pts: Vec<Point> = window(0.020, &[(0.008, 30.0), (0.006, 600.0)], 14.8)
+            .into_iter()
+            .map(|p| {
+                if p.role == Role::Drive {
+                    return p;
+                }
+                k += 1;
+                let e = if k % 2 == 0 { 1e-3 } else { -1e-3 };
+                Point {
+                    voltage_v: p.voltage_v + e,
+                    ..p
+                }
+            })
+            .collect();
+        let f = fit(&pts, 2).expect("fit");
+        assert_eq!(f.points, k);
+        assert!((f.rms_v / 1e-3 - 1.0).abs() < 0.01, "{}", f.rms_v);
+        // The figures barely move and now carry an uncertainty.
+        assert!((f.r0_ohm / 0.020 - 1.0).abs() < 0.01, "{f:?}");
+        assert!(
+            f.u_r0_ohm > 0.0 && f.pairs.iter().all(|p| p.u_c_f > 0.0),
+            "{f:?}"
+        );
+    }
 }

@@ -1505,6 +1505,135 @@ mod tests {
         ));
         assert!(near(get("Peukert exponent"), c * 2f64.ln() * 0.1 / r3));
         assert!(near(cb.value, c));
+        // A reading known to ±2 °C: twice the term.
+        let cb2 = corrected_budget(
+            &measured,
+            c,
+            &CorrectionInputs {
+                factor: 1.0 / 1.03,
+                temperature: Some((0.003, 35.0, 25.0)),
+                alpha_rel_u: 0.5 / r3,
+                temperature_tolerance_c: Some(2.0),
+                rate: None,
+            },
+        );
+        let reading = cb2.terms.iter().find(|t| t.name == "temperature reading");
+        assert!(near(reading.unwrap().u, c * 0.003 / 1.03 * 2.0 / r3));
+    }
+
+    /// Trapezoid sums over every `step`-th sample, from the samples
+    /// themselves: (Ah, Wh).
+    fn trapezoid(x: &[(f64, f64, f64)], step: usize) -> (f64, f64) {
+        let pts: Vec<_> = x.iter().step_by(step).collect();
+        pts.windows(2).fold((0.0, 0.0), |(q, e), w| {
+            let dt = (w[1].0 - w[0].0) / 3600.0;
+            (
+                q + 0.5 * (w[0].2 + w[1].2) * dt,
+                e + 0.5 * (w[0].1 * w[0].2 + w[1].1 * w[1].2) * dt,
+            )
+        })
+    }
+
+    /// The integration rule's check in charge and energy (Richardson:
+    /// |Q_h − Q_2h|/3 with Q_2h over every other sample), nothing across a
+    /// break, and two stretches merged: each stretch counts its own
+    /// samples, and the whole is their sum. Expectations from the samples
+    /// with plain loops.
+    #[test]
+    fn the_rule_check_breaks_and_merges_are_the_samples() {
+        let sample = |k: u32, t: f64| {
+            let sign = if k % 2 == 0 { 1.0 } else { -1.0 };
+            (t, 3.0 + 0.001 * t * t, -2.0 + 0.001 * sign + 0.002 * t)
+        };
+        // Stretch A: 11 samples 2 s apart; B: 10 samples 3 s apart.
+        let a: Vec<_> = (0..=10).map(|k| sample(k, 2.0 * f64::from(k))).collect();
+        let b: Vec<_> = (0..10)
+            .map(|j| sample(11 + j, 23.0 + 3.0 * f64::from(j)))
+            .collect();
+        let near = |x: f64, y: f64| (x - y).abs() <= 1e-12 * y.abs().max(1e-12);
+        // One stretch.
+        let mut one = MeasureAcc::default();
+        a.iter().for_each(|&(t, v, i)| one.push(t, v, i));
+        let m = one.finish();
+        let ((qh, eh), (q2h, e2h)) = (trapezoid(&a, 1), trapezoid(&a, 2));
+        assert!(near(m.integration_ah, (qh - q2h).abs() / 3.0), "{m:?}");
+        assert!(near(m.integration_wh, (eh - e2h).abs() / 3.0), "{m:?}");
+        assert!(m.integration_wh > 0.0);
+        // A break between A and B: the 20 → 23 s interval is in nothing.
+        let mut broken = MeasureAcc::default();
+        a.iter().for_each(|&(t, v, i)| broken.push(t, v, i));
+        broken.break_segment();
+        b.iter().for_each(|&(t, v, i)| broken.push(t, v, i));
+        let mb = broken.finish();
+        assert!(near(mb.sum_dt2_s2, 10.0 * 4.0 + 9.0 * 9.0), "{mb:?}");
+        // Merged: B's own every-other samples are its first, third, …
+        // ninth; its fine sum is taken at its ninth (its last even one).
+        let (mut ma, mut mbb) = (MeasureAcc::default(), MeasureAcc::default());
+        a.iter().for_each(|&(t, v, i)| ma.push(t, v, i));
+        b.iter().for_each(|&(t, v, i)| mbb.push(t, v, i));
+        ma.merge(&mbb);
+        let mm = ma.finish();
+        let (qb, eb) = trapezoid(&b[..9], 1);
+        let (qb2, eb2) = trapezoid(&b[..9], 2);
+        assert!(
+            near(mm.integration_ah, ((qh + qb) - (q2h + qb2)).abs() / 3.0),
+            "{mm:?}"
+        );
+        assert!(
+            near(mm.integration_wh, ((eh + eb) - (e2h + eb2)).abs() / 3.0),
+            "{mm:?}"
+        );
+        assert_eq!(mm.last_dt_s, 3.0);
+        assert!(near(mm.sum_dt2_s2, mb.sum_dt2_s2));
+        // The noise: every difference is a plateau (≤ 1 % of 2 A): the
+        // voltage's successive differences within each stretch.
+        let dv2: f64 = [&a, &b]
+            .iter()
+            .flat_map(|x| x.windows(2).map(|w| (w[1].1 - w[0].1).powi(2)))
+            .sum();
+        assert!(
+            near(mm.noise_v.unwrap(), (dv2 / (2.0 * 19.0)).sqrt()),
+            "{mm:?}"
+        );
+    }
+
+    /// |dV/dQ| at a step's end: the least-squares slope over the samples
+    /// in its last 2 % of charge. On V = 3 + q + 5q² (q the charge, Ah,
+    /// negative out) sampled evenly, a line fitted to a window has the
+    /// curve's slope at the window's middle: 1 + 10·q_mid. With 1010
+    /// intervals, 2 % is 20.2 intervals: the last 21 samples, middle 10
+    /// intervals from the end. Two samples give no slope.
+    #[test]
+    fn the_end_slope_is_fitted_over_the_last_two_percent() {
+        let dq = -2.0 / 3600.0;
+        let mut acc = MeasureAcc::default();
+        for k in 0..=1010 {
+            let q = dq * f64::from(k);
+            acc.push(f64::from(k), 3.0 + q + 5.0 * q * q, -2.0);
+        }
+        let got = acc.finish().dv_dq_v_per_ah.unwrap();
+        let want = (1.0 + 10.0 * dq * 1000.0).abs();
+        assert!((got - want).abs() < 1e-9, "{got} against {want}");
+        let mut two = MeasureAcc::default();
+        two.push(0.0, 3.0, -2.0);
+        two.push(1.0, 2.9, -2.0);
+        assert_eq!(two.finish().dv_dq_v_per_ah, None);
+    }
+
+    /// A meter's simulated error within ±limit: uniform, every draw inside
+    /// the limit, spread over it (standard deviation limit/√3), not all at
+    /// one value.
+    #[test]
+    fn errors_are_drawn_uniformly_within_the_limit() {
+        let mut rng = SmallRng::seed_from_u64(7);
+        let xs: Vec<f64> = (0..20_000).map(|_| draw_within(&mut rng, 0.5)).collect();
+        assert!(xs.iter().all(|x| x.abs() <= 0.5));
+        let n = xs.len() as f64;
+        let mean = xs.iter().sum::<f64>() / n;
+        let sd = (xs.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / (n - 1.0)).sqrt();
+        // Sampling error of the mean: (0.5/√3)/√20000 = 0.002.
+        assert!(mean.abs() < 0.01, "{mean}");
+        assert!((sd / (0.5 / 3f64.sqrt()) - 1.0).abs() < 0.02, "{sd}");
     }
 
     #[test]

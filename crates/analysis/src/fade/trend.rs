@@ -551,4 +551,72 @@ mod tests {
             a.notes
         );
     }
+
+    /// A test at exactly the end of life is not below it; a flat history
+    /// (slope exactly 0) projects nothing and says so.
+    #[test]
+    fn at_the_threshold_is_not_below_and_flat_is_no_trend() {
+        let a = analyze(
+            &history(&[(0, 0.0, 85.0), (90, 100.0, 82.0), (180, 200.0, 80.0)]),
+            80.0,
+        );
+        assert_eq!(a.below_eol_since, None);
+        let a = analyze(
+            &history(&[(0, 0.0, 90.0), (90, 100.0, 90.0), (180, 200.0, 90.0)]),
+            80.0,
+        );
+        assert_eq!(a.models[0].fit.slope, 0.0);
+        assert!(a.eol_cycles.is_none());
+        assert!(
+            a.notes
+                .iter()
+                .any(|n| n.contains("no falling trend against cycles")),
+            "{:?}",
+            a.notes
+        );
+    }
+
+    /// Each model says what it is, in the words the report prints.
+    #[test]
+    fn each_model_describes_itself() {
+        assert_eq!(
+            ModelKind::LinearCycles.describe(),
+            "linear in equivalent full cycles"
+        );
+        assert_eq!(ModelKind::LinearTime.describe(), "linear in time");
+        assert!(ModelKind::SqrtTime
+            .describe()
+            .contains("square root of time"));
+    }
+
+    /// Acceleration needs six tests; the recent half 1.5 times steeper is
+    /// not enough when the difference is within twice its standard error
+    /// (both halves' errors added in quadrature). Worked with the fits the
+    /// rule takes (`LinearFit`, checked against SciPy in `fit`).
+    #[test]
+    fn acceleration_is_a_clear_change_of_slope() {
+        // Six points: −1 per 100 then −3 per 100 (mid = 3, shared).
+        let x = [0.0, 100.0, 200.0, 300.0, 400.0, 500.0];
+        let y = [100.0, 99.0, 98.0, 97.0, 94.0, 91.0];
+        let a = acceleration(&x, &y).expect("clean: clear");
+        assert!((a.ratio - 3.0).abs() < 1e-9, "{a:?}");
+        assert!((a.earlier_pct_per_100_cycles + 1.0).abs() < 1e-9);
+        assert!((a.recent_pct_per_100_cycles + 3.0).abs() < 1e-9);
+        assert!(acceleration(&x[..5], &y[..5]).is_none());
+        // Noisy: the recent half is 1.82 × steeper (−0.0066 and −0.0120
+        // per cycle), but the difference 0.0054 is within 2 × √(se₁² +
+        // se₂²) = 0.0064 (scipy.stats.linregress 1.17.1 on both halves).
+        let y = [100.0, 98.6, 99.2, 97.6, 96.2, 95.2];
+        let (e, r) = (
+            LinearFit::fit(&x[..=3], &y[..=3]).unwrap(),
+            LinearFit::fit(&x[3..], &y[3..]).unwrap(),
+        );
+        assert!((e.slope + 0.0066).abs() < 1e-12 && (r.slope + 0.012).abs() < 1e-12);
+        let two_se = 2.0 * (e.slope_se.powi(2) + r.slope_se.powi(2)).sqrt();
+        assert!(
+            (two_se - 0.006_404_165_311_212_19).abs() < 1e-12,
+            "{two_se}"
+        );
+        assert!(acceleration(&x, &y).is_none());
+    }
 }
