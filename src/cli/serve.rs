@@ -126,6 +126,7 @@ pub fn console(a: &ServeArgs, bound: SocketAddr) -> Result<Console, RunError> {
                 )),
             };
         let cfg = sim_config(a.sim_config.as_deref(), false, &[])?;
+        let mut previous = crate::console::bays::interrupted_simulated(&a.results, n).into_iter();
         for k in 1..=n {
             bays.push(Arc::new(Bay {
                 name: k.to_string(),
@@ -134,7 +135,7 @@ pub fn console(a: &ServeArgs, bound: SocketAddr) -> Result<Console, RunError> {
                     speed,
                 },
                 job: Mutex::new(None),
-                previous: Mutex::new(None),
+                previous: Mutex::new(previous.next()),
             }));
         }
     }

@@ -416,6 +416,37 @@ pub fn job(bay: &Bay, prepared: crate::session::request::Prepared, board: Board)
     }
 }
 
+/// The interrupted runs of paced simulated benches in the results folder
+/// (a simulated console stopped by Ctrl-C or a restart), newest first, at
+/// most `bays` of them: each simulated bay offers one for resume.
+pub fn interrupted_simulated(results: &Path, bays: usize) -> Vec<PathBuf> {
+    let Ok(mut ix) = record::index::Index::open(results) else {
+        return Vec::new();
+    };
+    if ix.refresh(results).is_err() {
+        return Vec::new();
+    }
+    let rows = ix
+        .query_strings("SELECT pack_id, folder FROM runs WHERE status = 'interrupted'")
+        .unwrap_or_default();
+    let mut found: Vec<(String, PathBuf)> = rows
+        .iter()
+        .filter_map(|row| {
+            let [pack, folder] = &row[..] else {
+                return None;
+            };
+            let dir = results.join(pack).join(folder);
+            let m = record::read::read_manifest(&dir.join(record::RUN_JSON)).ok()?;
+            let simulated_bay = m.simulation.is_some()
+                && m.bench.bench_file.is_none()
+                && m.bench.speed_factor.is_some();
+            simulated_bay.then_some((m.started_utc, dir))
+        })
+        .collect();
+    found.sort_by(|a, b| b.0.cmp(&a.0));
+    found.into_iter().take(bays).map(|(_, d)| d).collect()
+}
+
 /// The latest interrupted run of each of a bench file's stations, from
 /// the results index (runs whose `run.json` names this bench file and the
 /// station).

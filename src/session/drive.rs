@@ -331,6 +331,16 @@ pub async fn drive(
         .await?;
     }
     let board = links.hooks.board.clone();
+    // The dry run behind the tile's time to end: only for a run someone
+    // watches at its pace (a real bench, or a paced simulator).
+    let paced_run = match &sim {
+        Some(s) => s.speed_factor.is_some(),
+        None => !clock.is_simulated(),
+    };
+    let forecast = (board.is_some() && paced_run).then(|| {
+        let cfg = sim.as_ref().map(|s| s.config.clone()).unwrap_or_default();
+        crate::session::live::ForecastCell::spawn(p.procedure.plan.clone(), cfg)
+    });
     let shared_link = links.shared;
     let groups = links.groups.clone();
     if manifest.groups.is_none() {
@@ -371,7 +381,9 @@ pub async fn drive(
                 live = crate::session::live::LiveSink {
                     inner: &mut queued,
                     board: b.clone(),
-                    est: crate::session::live::Estimator::new(&p.procedure.plan),
+                    est: crate::session::live::Estimator::new(&p.procedure.plan)
+                        .with_forecast(forecast)
+                        .resuming(resume.as_ref()),
                 };
                 &mut live
             }

@@ -14,16 +14,25 @@
 //!   charge or energy limit at the present current or power; a discharge
 //!   to a cutoff: the state of charge left at the present current; a charge
 //!   still at constant current: the charge missing to full at the present
-//!   current (a lower bound: the taper comes after it). Nothing is shown
-//!   when no estimate applies (a taper, a rest to settle).
+//!   current (a lower bound: the taper comes after it). Where the state of
+//!   charge is not known yet (a discharge to empty at the run's start, a
+//!   run resumed), the dry run's charge for the step (the same plan played
+//!   on the simulated pack, computed off the control path once the run is
+//!   paced) less the charge the step has counted, at the present current.
+//!   Nothing is shown when no estimate applies (a taper, a rest to
+//!   settle).
+//! - **After the outputs are confirmed off** the tile reads zero current
+//!   and power; **after a resume** inside a step that goes on, the step's
+//!   kind, elapsed time and counted charge continue from the log.
 
+use crate::session::forecast::StepForecast;
 use analysis::integrate::Integrator;
 use model::procedure::{EndCondition, Plan, StepKind, StepType};
 use model::sample::Sample;
 use model::status::RunStatus;
 use model::units::HumanDuration;
 use record::event::{EndKind, Event, Sink};
-use std::sync::{Arc, Mutex};
+use std::sync::{Arc, Mutex, OnceLock};
 
 /// What the display shows of one station.
 #[derive(Debug, Clone, Default, PartialEq)]
@@ -195,6 +204,39 @@ struct Anchor {
     net_ah: f64,
 }
 
+/// The dry run's steps, filled in by a thread of its own once ready and
+/// read without waiting (the estimator is on the control path).
+#[derive(Debug, Clone, Default)]
+pub struct ForecastCell(Arc<OnceLock<Vec<StepForecast>>>);
+
+impl ForecastCell {
+    /// Play the plan on the simulated pack on a thread of its own.
+    pub fn spawn(plan: Plan, cfg: sim::SimConfig) -> ForecastCell {
+        let cell = ForecastCell::default();
+        let fill = cell.clone();
+        // (Without a thread the cell stays empty: the tile shows the
+        // estimates the end conditions give without it.)
+        let _ = std::thread::Builder::new()
+            .name("forecast".into())
+            .spawn(move || {
+                let f = crate::session::forecast::forecast(&plan, &cfg);
+                let _ = fill.0.set(f.steps);
+            });
+        cell
+    }
+
+    /// A forecast already made (tests, a console that has one).
+    pub fn ready(steps: Vec<StepForecast>) -> ForecastCell {
+        let cell = ForecastCell::default();
+        let _ = cell.0.set(steps);
+        cell
+    }
+
+    fn step(&self, step: u32) -> Option<&StepForecast> {
+        self.0.get()?.iter().find(|s| s.step == step)
+    }
+}
+
 /// The live estimator, fed the same samples and events as the log.
 #[derive(Debug, Clone)]
 pub struct Estimator<'a> {
@@ -205,6 +247,7 @@ pub struct Estimator<'a> {
     step_index: u32,
     anchor: Option<Anchor>,
     capacity_ah: f64,
+    forecast: Option<ForecastCell>,
 }
 
 impl<'a> Estimator<'a> {
@@ -217,7 +260,36 @@ impl<'a> Estimator<'a> {
             step_index: 0,
             anchor: None,
             capacity_ah: plan.pack.rated_capacity_ah,
+            forecast: None,
         }
+    }
+
+    /// Estimate with the dry run's steps where the state of charge is not
+    /// known.
+    pub fn with_forecast(mut self, f: Option<ForecastCell>) -> Estimator<'a> {
+        self.forecast = f;
+        self
+    }
+
+    /// A resumed run: a step that goes on keeps its elapsed time and
+    /// counts from the log (nothing integrated across the break).
+    pub fn resuming(mut self, r: Option<&engine::ResumePoint>) -> Estimator<'a> {
+        let Some(r) = r else { return self };
+        let (Some(st), Some(c)) = (self.plan.steps.get(r.position), r.carried) else {
+            return self;
+        };
+        self.step_index = st.index;
+        self.step = c.counters;
+        self.step.break_segment();
+        self.step_t0 = r.t_run_s - c.elapsed_s;
+        self
+    }
+
+    /// Time to the end of a step from the dry run's charge for it, at the
+    /// present current, s.
+    fn forecast_left(&self, step: u32, i: f64) -> Option<f64> {
+        let f = self.forecast.as_ref()?.step(step)?;
+        (f.ah.abs() > 0.0 && i > 1e-6).then(|| (f.ah.abs() - self.step.ah.abs()) / i * 3600.0)
     }
 
     /// A plan step by its number (steps are numbered by position from 1).
@@ -286,17 +358,29 @@ impl<'a> Estimator<'a> {
                 EndCondition::Energy { wh } if p > 1e-6 => {
                     offer((wh - self.step.wh.abs()) / p * 3600.0, false)
                 }
-                EndCondition::VoltageBelow { .. } if s.current_a < -1e-6 => {
-                    if let Some(x) = soc {
-                        offer(x * self.capacity_ah / i * 3600.0, false);
+                EndCondition::VoltageBelow { .. } if s.current_a < -1e-6 => match soc {
+                    Some(x) => offer(x * self.capacity_ah / i * 3600.0, false),
+                    None => {
+                        if let Some(x) = self.forecast_left(s.step, i) {
+                            offer(x, false);
+                        }
                     }
-                }
+                },
                 EndCondition::CurrentBelow { .. } | EndCondition::PeakDrop { .. } => {
-                    if let (StepKind::Charge { voltage_v, .. }, Some(x)) = (&st.kind, soc) {
+                    if let StepKind::Charge { voltage_v, .. } = &st.kind {
                         // Constant current still: the missing charge at
                         // this current; the taper comes after.
                         if s.current_a > 1e-6 && s.voltage_v < 0.98 * voltage_v {
-                            offer((1.0 - x).max(0.0) * self.capacity_ah / i * 3600.0, true);
+                            match soc {
+                                Some(x) => {
+                                    offer((1.0 - x).max(0.0) * self.capacity_ah / i * 3600.0, true)
+                                }
+                                None => {
+                                    if let Some(x) = self.forecast_left(s.step, i) {
+                                        offer(x, true);
+                                    }
+                                }
+                            }
                         }
                     }
                 }
@@ -316,9 +400,27 @@ impl<'a> Estimator<'a> {
                 live.steps = self.plan.steps.len() as u32;
                 live.step = *step;
                 live.state = BoardState::Running;
+                // The step's kind is the plan's (a step that goes on has no
+                // start event of its own); its counts go on from the log.
+                live.kind = self.step_of(*step).map(|p| p.kind.step_type());
+                if self.step_index == *step {
+                    live.step_ah = self.step.ah;
+                    live.step_wh = self.step.wh;
+                }
                 // Nothing is integrated across the interruption.
                 self.run.break_segment();
                 self.step.break_segment();
+            }
+            Event::OutputsOff {
+                source_off_confirmed: true,
+                load_off_confirmed: true,
+                ..
+            } => {
+                // Confirmed off: nothing flows, whatever the last sample
+                // read.
+                live.current_a = 0.0;
+                live.power_w = 0.0;
+                live.eta_s = None;
             }
             Event::StepStart {
                 step, phase, kind, ..
@@ -555,5 +657,98 @@ name = "p"
         assert!(!lower);
         assert!((eta - 4.0 * 3600.0).abs() < 10.0, "{eta}");
         assert!(l.line().contains("SOC ~80%"), "{}", l.line());
+    }
+
+    /// A discharge to the cutoff with no state of charge known yet (the
+    /// run's first step): the dry run's charge for the step less what the
+    /// step has counted, at the present current, not the time cap.
+    #[test]
+    fn a_discharge_from_an_unknown_state_takes_the_dry_runs_charge() {
+        let p = plan();
+        let forecast = vec![StepForecast {
+            step: 2,
+            kind: StepType::Discharge,
+            duration_s: 5.0 * 3600.0,
+            ah: -10.0,
+            end_kind: Some(EndKind::VoltageBelow),
+            end_reason: String::new(),
+        }];
+        let mut e = Estimator::new(&p).with_forecast(Some(ForecastCell::ready(forecast)));
+        let mut l = Live::default();
+        e.sample(&s(0.0, 2, 39.0, -2.0), &mut l);
+        assert_eq!(l.soc, None);
+        assert_eq!(l.eta_s, Some((5.0 * 3600.0, false)));
+        // 1 h at 2 A: 2 Ah counted, 8 Ah left at 2 A: 4 h (the cap: 6 h).
+        e.sample(&s(3600.0, 2, 37.0, -2.0), &mut l);
+        let (eta, lower) = l.eta_s.expect("eta");
+        assert!((eta - 4.0 * 3600.0).abs() < 1e-6, "{eta}");
+        assert!(!lower);
+        // Without the dry run: only the time cap.
+        let mut e = Estimator::new(&p);
+        e.sample(&s(0.0, 2, 39.0, -2.0), &mut l);
+        e.sample(&s(3600.0, 2, 37.0, -2.0), &mut l);
+        assert_eq!(l.eta_s, Some((6.0 * 3600.0, false)));
+    }
+
+    /// Outputs confirmed off: the tile reads zero, whatever the last
+    /// sample read; not when one could not be confirmed.
+    #[test]
+    fn outputs_confirmed_off_read_zero() {
+        let p = plan();
+        let mut e = Estimator::new(&p);
+        let mut l = Live::default();
+        e.sample(&s(10.0, 2, 38.0, -1.998), &mut l);
+        let off = |source: bool, load: bool| Event::OutputsOff {
+            t_s: 11.0,
+            reason: "stop".into(),
+            source_off_confirmed: source,
+            load_off_confirmed: load,
+        };
+        e.event(&off(true, false), &mut l);
+        assert_eq!(l.current_a, -1.998);
+        e.event(&off(true, true), &mut l);
+        assert_eq!((l.current_a, l.power_w, l.eta_s), (0.0, 0.0, None));
+        assert_eq!(l.voltage_v, 38.0, "the pack's voltage is still read");
+    }
+
+    /// A resumed discharge goes on: its kind, its counted charge and its
+    /// elapsed time continue (nothing integrated across the break).
+    #[test]
+    fn a_resumed_step_continues_its_counts_and_kind() {
+        let p = plan();
+        let mut counters = Integrator::default();
+        counters.push(0.0, 38.0, -2.0);
+        counters.push(2349.0, 38.0, -2.0);
+        let point = engine::ResumePoint {
+            position: 1,
+            t_run_s: 6000.0,
+            last_sample_t_s: 5990.0,
+            gap_s: 10.0,
+            carried: Some(engine::Carried {
+                elapsed_s: 2349.0,
+                counters,
+            }),
+        };
+        let mut e = Estimator::new(&p).resuming(Some(&point));
+        let mut l = Live::default();
+        e.event(
+            &Event::Resumed {
+                t_s: 6000.0,
+                step: 2,
+                last_sample_t_s: 5990.0,
+                gap_s: 10.0,
+                rule: String::new(),
+            },
+            &mut l,
+        );
+        assert_eq!(l.kind, Some(StepType::Discharge));
+        assert!((l.step_ah + 1.305).abs() < 1e-12, "{}", l.step_ah);
+        e.sample(&s(6000.0, 2, 37.9, -2.0), &mut l);
+        assert!((l.step_ah + 1.305).abs() < 1e-12, "{}", l.step_ah);
+        e.sample(&s(6036.0, 2, 37.9, -2.0), &mut l);
+        assert!((l.step_ah + 1.325).abs() < 1e-12, "{}", l.step_ah);
+        assert_eq!(l.step_elapsed_s, 2385.0);
+        // The 7 h cap less the 2385 s the step has run.
+        assert_eq!(l.eta_s, Some((7.0 * 3600.0 - 2385.0, false)));
     }
 }

@@ -402,8 +402,10 @@ fn gaps_and_bad_rows_are_found_and_counted() {
     let k = samples.iter().position(|s| s.t_s == 14_000.0).unwrap();
     let dup = samples[k];
     samples.insert(k + 1, dup);
+    // (The repeated time's row reads 0.5 V higher: the highest voltage
+    // of the step shows that this row is the one kept.)
     let mut rep = dup;
-    rep.voltage_v += 0.01;
+    rep.voltage_v += 0.5;
     samples.insert(k + 2, rep);
     let mut back = dup;
     back.t_s -= 5.0;
@@ -424,6 +426,7 @@ fn gaps_and_bad_rows_are_found_and_counted() {
     assert!(close(a.capacity.as_ref().unwrap().measured_ah, 1.9, 1e-9));
     assert_eq!(a.quality.duplicates_dropped, 1);
     assert_eq!(a.quality.repeated_timestamps, 1);
+    assert_eq!(a.steps[3].max_voltage_v, Some(dup.voltage_v + 0.5));
     assert_eq!(a.quality.out_of_order_dropped, 1);
     assert_eq!(
         a.steps[3].samples,
@@ -1009,4 +1012,76 @@ fn time_down_is_written_only_where_there_was_some() {
     step.down_s = 30.0;
     let json = serde_json::to_string(&step).unwrap();
     assert!(json.contains("\"down_s\":30.0"), "{json}");
+}
+
+/// Gaps are judged against the median of the step's intervals so far,
+/// recomputed at every interval while the step is young: after intervals
+/// of 1, 1, 2, 2, 1, 1 s the median is 1 s, so 7 s is a gap (over 5 × 1
+/// s); after 2, 1, 2, 1, 2, 1 s it is 2 s, so 7 s is none. After four
+/// intervals of 1 s, a 10 s interval is one.
+#[test]
+fn gaps_are_judged_against_the_median_interval_so_far() {
+    let run = |intervals: &[f64]| {
+        let mut t = 0.0;
+        let mut x = vec![0.0];
+        for d in intervals {
+            t += d;
+            x.push(t);
+        }
+        let samples: Vec<Sample> = x
+            .iter()
+            .map(|&t| Sample {
+                t_s: t,
+                step: 1,
+                cycle: 0,
+                voltage_v: 3.7,
+                current_a: -1.0,
+                temperature_c: None,
+            })
+            .collect();
+        let infos = [info(1, 0, StepType::Discharge, EndKind::Time, None)];
+        analyze(&samples, &infos, &pack())
+    };
+    let a = run(&[1.0, 1.0, 2.0, 2.0, 1.0, 1.0, 7.0]);
+    assert_eq!(a.quality.gaps, 1);
+    assert_eq!(a.gaps[0].typical_interval_s, 1.0);
+    assert_eq!(a.gaps[0].from_s, 8.0);
+    assert_eq!(run(&[2.0, 1.0, 2.0, 1.0, 2.0, 1.0, 7.0]).quality.gaps, 0);
+    let a = run(&[1.0, 1.0, 1.0, 1.0, 10.0]);
+    assert_eq!(a.quality.gaps, 1);
+    assert_eq!((a.gaps[0].from_s, a.gaps[0].to_s), (4.0, 14.0));
+}
+
+/// A foreign log's capacity is its largest discharge; a later one must
+/// give more to take its place (of two equal, the first stands).
+#[test]
+fn a_foreign_logs_capacity_is_its_largest_discharge_the_first_of_equals() {
+    let s = |t: f64, step: u32, i: f64| Sample {
+        t_s: t,
+        step,
+        cycle: 0,
+        voltage_v: 3.7,
+        current_a: i,
+        temperature_c: None,
+    };
+    let mut x = Vec::new();
+    let mut t = 0.0;
+    for (step, i, secs) in [(1, 1.0, 100), (2, -1.0, 100), (3, 1.0, 100), (4, -1.0, 100)] {
+        for _ in 0..=secs {
+            x.push(s(t, step, i));
+            t += 1.0;
+        }
+    }
+    let opts = AnalysisOptions {
+        detect_capacity: true,
+        imported: true,
+        ..AnalysisOptions::default()
+    };
+    let a = analyze_with(&x, &[], &pack(), opts.clone());
+    assert_eq!(a.capacity.unwrap().step, 2);
+    for p in x.iter_mut().filter(|p| p.step == 4) {
+        p.current_a = -1.01;
+    }
+    let a = analyze_with(&x, &[], &pack(), opts);
+    assert_eq!(a.capacity.unwrap().step, 4);
 }

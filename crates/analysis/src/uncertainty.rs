@@ -1542,7 +1542,7 @@ mod tests {
     #[test]
     fn the_rule_check_breaks_and_merges_are_the_samples() {
         let sample = |k: u32, t: f64| {
-            let sign = if k % 2 == 0 { 1.0 } else { -1.0 };
+            let sign = if k.is_multiple_of(2) { 1.0 } else { -1.0 };
             (t, 3.0 + 0.001 * t * t, -2.0 + 0.001 * sign + 0.002 * t)
         };
         // Stretch A: 11 samples 2 s apart; B: 10 samples 3 s apart.

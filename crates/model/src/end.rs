@@ -95,7 +95,7 @@ impl std::str::FromStr for EndKind {
 
 impl std::fmt::Display for EndKind {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.write_str(self.name())
+        f.pad(self.name())
     }
 }
 

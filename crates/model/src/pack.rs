@@ -103,7 +103,7 @@ impl Chemistry {
 
 impl fmt::Display for Chemistry {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        f.write_str(self.name())
+        f.pad(self.name())
     }
 }
 

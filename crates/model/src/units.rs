@@ -481,19 +481,29 @@ impl fmt::Display for HumanDuration {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         let total = self.0.max(0.0).round() as u64;
         let (h, m, s) = (total / 3600, (total % 3600) / 60, total % 60);
-        if h > 0 {
-            write!(f, "{h}h{m:02}m{s:02}s")
+        // (Padded as a string is: a table's column width applies.)
+        let text = if h > 0 {
+            format!("{h}h{m:02}m{s:02}s")
         } else if m > 0 {
-            write!(f, "{m}min{s:02}s")
+            format!("{m}min{s:02}s")
         } else {
-            write!(f, "{s}s")
-        }
+            format!("{s}s")
+        };
+        f.pad(&text)
     }
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// A duration takes a table's column width like any string.
+    #[test]
+    fn durations_pad_to_a_column() {
+        assert_eq!(format!("[{:>10}]", HumanDuration(8347.0)), "[  2h19m07s]");
+        assert_eq!(format!("[{:<9}]", HumanDuration(1800.0)), "[30min00s ]");
+        assert_eq!(format!("[{:>4}]", HumanDuration(5.0)), "[  5s]");
+    }
 
     fn close(a: f64, b: f64) -> bool {
         (a - b).abs() < 1e-9 * (1.0 + b.abs())

@@ -132,7 +132,7 @@ impl std::str::FromStr for StepType {
 
 impl fmt::Display for StepType {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        f.write_str(self.name())
+        f.pad(self.name())
     }
 }
 
@@ -251,7 +251,7 @@ impl std::str::FromStr for ResultTag {
 
 impl fmt::Display for ResultTag {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        f.write_str(self.name())
+        f.pad(self.name())
     }
 }
 
@@ -481,6 +481,24 @@ impl fmt::Display for Plan {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Step kinds, end kinds and statuses take a table's column width
+    /// (the terminal's step tables line up).
+    #[test]
+    fn names_pad_to_a_column() {
+        assert_eq!(format!("[{:<10}]", StepType::Rest), "[rest      ]");
+        assert_eq!(format!("[{:<10}]", StepType::Discharge), "[discharge ]");
+        assert_eq!(format!("[{:>6}]", ResultTag::Capacity), "[capacity]");
+        assert_eq!(
+            format!("[{:<14}]", crate::end::EndKind::Time),
+            format!("[{:<14}]", crate::end::EndKind::Time.name())
+        );
+        assert_eq!(
+            format!("[{:<12}]", crate::status::RunStatus::Completed),
+            "[completed   ]"
+        );
+        assert_eq!(format!("[{:<8}]", crate::pack::Chemistry::Lfp).len(), 10);
+    }
 
     /// Step kinds and result tags keep their spellings on disk.
     #[test]
