@@ -103,7 +103,8 @@ echo "target        caught  missed  timeout  unviable  score"
 for t in "${targets[@]}"; do
     d="$OUT/$t${SHARD:+-shard-${SHARD//\//of}}/mutants.out"
     [ -d "$d" ] || continue
-    n() { [ -f "$d/$1.txt" ] && grep -c . "$d/$1.txt" || echo 0; }
+    # (grep -c prints 0 and fails when nothing matches.)
+    n() { if [ -f "$d/$1.txt" ]; then grep -c . "$d/$1.txt" || true; else echo 0; fi; }
     c=$(n caught); m=$(n missed); to=$(n timeout); u=$(n unviable)
     v=$((c + m + to))
     score=$(awk -v c="$c" -v v="$v" 'BEGIN { if (v > 0) printf "%.1f %%", 100 * c / v; else print "-" }')

@@ -738,6 +738,14 @@ fn the_open_circuit_table_and_the_curves_of_a_bent_discharge() {
         assert!(close(pt.ocv_per_cell_v, 0.25 * (c + d), 1e-9), "{pt:?}");
     }
     assert_eq!(a.curve_data.ocv, ocv.points);
+    // dQ/dV of the charge: bins of 5 mV per cell (10 mV for the two
+    // cells) from 3.7 to 4.2 V, each 2 Ah / 0.5 V = 4 Ah/V.
+    let ica: Vec<_> = a.curve_data.ica.iter().filter(|d| d.0 == 2).collect();
+    assert!((49..=50).contains(&ica.len()), "{}", ica.len());
+    for w in ica.windows(2) {
+        assert!(close(w[1].2 - w[0].2, 0.01, 1e-9), "{w:?}");
+    }
+    assert!(ica.iter().all(|d| close(d.3, 4.0, 1e-6)), "{ica:?}");
     // dV/dQ of the charge: 100 bins of 0.02 Ah, each 0.25 V/Ah.
     let dva: Vec<_> = a.curve_data.dva.iter().filter(|d| d.0 == 2).collect();
     assert_eq!(dva.len(), 100);
@@ -940,6 +948,11 @@ fn a_foreign_step_under_a_hundredth_of_c_is_a_rest() {
             x.push(s(f64::from(k * 101 + j), k + 1, 3.8, i));
         }
     }
+    // A step of one sample (no time: no mean current) is a rest too.
+    x.push(s(303.0, 4, 3.8, 0.0));
+    for j in 0..=10 {
+        x.push(s(304.0 + f64::from(j), 5, 3.8, -1.0));
+    }
     let opts = AnalysisOptions {
         detect_capacity: true,
         imported: true,
@@ -949,7 +962,13 @@ fn a_foreign_step_under_a_hundredth_of_c_is_a_rest() {
     let kinds: Vec<StepType> = a.steps.iter().map(|s| s.kind).collect();
     assert_eq!(
         kinds,
-        [StepType::Charge, StepType::Rest, StepType::Discharge]
+        [
+            StepType::Charge,
+            StepType::Rest,
+            StepType::Discharge,
+            StepType::Rest,
+            StepType::Discharge
+        ]
     );
 }
 
@@ -1084,4 +1103,57 @@ fn a_foreign_logs_capacity_is_its_largest_discharge_the_first_of_equals() {
     }
     let a = analyze_with(&x, &[], &pack(), opts);
     assert_eq!(a.capacity.unwrap().step, 4);
+}
+
+/// The resistance figure: of several readings the one nearest half
+/// charge; from a foreign log's single edges, a discharge edge's (a charge
+/// edge's is not taken), again the one nearest half charge.
+#[test]
+fn the_resistance_figure_is_the_reading_nearest_half_charge() {
+    let reading = |step: u32, r: f64, soc: f64| crate::resistance::ResistanceReading {
+        step,
+        dcir_mohm: r,
+        method: "two levels".into(),
+        u1_v: 0.0,
+        i1_a: 0.0,
+        u2_v: 0.0,
+        i2_a: 0.0,
+        t1_s: 0.0,
+        t2_s: 0.0,
+        soc_pct: Some(soc),
+        ah_since_full: None,
+    };
+    // 30 % is 20 points from half, 60 % only 10.
+    let two = vec![reading(1, 41.0, 30.0), reading(2, 44.0, 60.0)];
+    let r = resistance_figure(two, Vec::new(), &[], false).unwrap();
+    assert_eq!(r.dcir_mohm, 44.0);
+    assert!(
+        r.method.ends_with(" at 60 % state of charge"),
+        "{}",
+        r.method
+    );
+    let edge = |before: f64, after: f64, soc: f64, r: f64| crate::pulse::PulseReading {
+        step: 1,
+        t_edge_s: 0.0,
+        voltage_before_v: 3.7,
+        current_before_a: before,
+        current_after_a: after,
+        soc_pct: Some(soc),
+        ah_since_full: None,
+        values: vec![crate::pulse::PulseValue {
+            delay_s: 1.0,
+            voltage_v: 3.6,
+            current_a: after,
+            resistance_mohm: r,
+        }],
+    };
+    // A charge edge at half charge, discharge edges at 20 % and 70 %.
+    let pulses = [
+        edge(0.0, 2.0, 50.0, 30.0),
+        edge(0.0, -2.0, 20.0, 52.0),
+        edge(0.0, -2.0, 70.0, 48.0),
+    ];
+    let r = resistance_figure(Vec::new(), Vec::new(), &pulses, true).unwrap();
+    assert_eq!(r.dcir_mohm, 48.0);
+    assert!(r.method.starts_with("pulse method"), "{}", r.method);
 }

@@ -355,6 +355,15 @@ mod tests {
         let rb = &f.rows[1];
         assert!(rb.eol_date.is_some_and(|d| d < today), "{rb:?}");
         assert!(rb.eol_date_past);
+        // On the projected day itself it is not yet past.
+        let fade_b = crate::fade::trend::analyze(&b, 80.0);
+        let on_the_day = fade_b.eol_date.as_ref().unwrap().date;
+        let r = row(&b, &fade_b, on_the_day, &Schedule::interval(92));
+        assert!(
+            !r.attention.iter().any(|x| x.contains("already past")),
+            "{:?}",
+            r.attention
+        );
         assert!(
             rb.attention
                 .iter()
