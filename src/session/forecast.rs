@@ -339,28 +339,8 @@ pub async fn forecast_async(plan: &Plan, cfg: &SimConfig) -> Forecast {
         let Some(st) = plan.steps.iter().find(|p| p.index == s.step) else {
             continue;
         };
-        let has_other_end = st
-            .ends
-            .iter()
-            .any(|c| !matches!(c, EndCondition::Time { .. }));
-        if s.end_kind == Some(EndKind::Time) && has_other_end {
-            match (&st.kind, st.result) {
-                (StepKind::Charge { .. }, _) => warnings.push(format!(
-                    "step {}: the charge is expected to stop on its time cap ({}) before it is full: the cap is shorter than the expected charge",
-                    st.index,
-                    HumanDuration(s.duration_s.round())
-                )),
-                (_, Some(ResultTag::Capacity)) => warnings.push(format!(
-                    "step {}: the capacity step is expected to end on its time cap ({}) instead of its cutoff: the capacity would be understated",
-                    st.index,
-                    HumanDuration(s.duration_s.round())
-                )),
-                _ => warnings.push(format!(
-                    "step {}: expected to end on its time cap ({}) rather than its other end condition",
-                    st.index,
-                    HumanDuration(s.duration_s.round())
-                )),
-            }
+        if s.end_kind == Some(EndKind::Time) {
+            warnings.extend(st.time_cap_warning(s.duration_s, true));
         }
     }
     warnings.extend(plan_warnings(plan));
@@ -378,7 +358,12 @@ pub async fn forecast_async(plan: &Plan, cfg: &SimConfig) -> Forecast {
 
 impl fmt::Display for Forecast {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        writeln!(f, "  step  kind        expected       charge Ah  ends on")?;
+        // (The header in the rows' own widths: the columns line up.)
+        writeln!(
+            f,
+            "  {:>4}  {:<10}  {:>12}  {:>10}  ends on",
+            "step", "kind", "expected", "charge Ah"
+        )?;
         for s in &self.steps {
             writeln!(
                 f,

@@ -119,15 +119,18 @@ pub fn check_ranges(p: &LoadedProcedure, source: &Profile, load: &Profile) -> Re
             },
             StepKind::Pulse { levels } => {
                 for l in levels {
-                    let r = if l.current_a > 0.0 {
-                        sr.current_max_a
+                    // A charge level is the source's, a discharge level
+                    // the load's.
+                    let (name, r) = if l.current_a > 0.0 {
+                        ("source", sr.current_max_a)
                     } else {
-                        lr.current_max_a
+                        ("load", lr.current_max_a)
                     };
                     if over(l.current_a.abs(), r) {
                         out(format!(
-                            "pulse current {:.3} A is beyond the instrument's range",
-                            l.current_a
+                            "pulse current {:.3} A is beyond the {name}'s range ({} A)",
+                            l.current_a,
+                            r.unwrap_or(0.0)
                         ));
                     }
                 }
@@ -135,7 +138,8 @@ pub fn check_ranges(p: &LoadedProcedure, source: &Profile, load: &Profile) -> Re
             StepKind::Drain { current_limit_a } => {
                 if over(*current_limit_a, sr.current_max_a) {
                     out(format!(
-                        "drain current limit {current_limit_a:.3} A is beyond the source's range"
+                        "drain current limit {current_limit_a:.3} A is beyond the source's range ({} A)",
+                        sr.current_max_a.unwrap_or(0.0)
                     ));
                 }
             }
@@ -185,4 +189,66 @@ pub fn prepare(req: &RunRequest) -> Result<Prepared, RunError> {
         pack_note,
         options: req.options.clone(),
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use model::pack::Chemistry;
+
+    /// A setpoint beyond an instrument's range is refused at its step's
+    /// line, naming the instrument and its range.
+    #[test]
+    fn range_errors_name_the_instrument_and_its_range() {
+        let pack = PackSpec {
+            chemistry: Chemistry::LiIon,
+            series: 10,
+            rated_capacity_ah: 100.0,
+            rated_energy_wh: None,
+            rated_rate_c: None,
+            rated_resistance_mohm: None,
+        };
+        let text = r#"title = "t"
+[envelope]
+voltage_max = "4.25V/cell"
+voltage_min = "2.8V/cell"
+current_max = "1.2C"
+temperature_max = "55degC"
+[[phase]]
+name = "p"
+  [[phase.step]]
+  kind = "pulse"
+  levels = [{ current = "-1C", duration = "10s" }, { current = "0.8C", duration = "10s" }]
+  [[phase.step]]
+  kind = "drain"
+  current = "0.9C"
+  ends = ["time > 1h"]
+"#;
+        let plan = procedure::validate::plan_from_text(Path::new("p.toml"), text, &pack).unwrap();
+        let p = LoadedProcedure {
+            path: "p.toml".into(),
+            text: text.into(),
+            sha256: String::new(),
+            plan,
+        };
+        let (mut source, mut load) = crate::session::links::sim_profiles();
+        source.ranges.current_max_a = Some(60.0);
+        load.ranges.current_max_a = Some(60.0);
+        let e = check_ranges(&p, &source, &load).unwrap_err().to_string();
+        assert!(
+            e.contains("p.toml:9:1: pulse current -100.000 A is beyond the load's range (60 A)"),
+            "{e}"
+        );
+        assert!(
+            e.contains("pulse current 80.000 A is beyond the source's range (60 A)"),
+            "{e}"
+        );
+        assert!(
+            e.contains("p.toml:12:1: drain current limit 90.000 A is beyond the source's range (60 A)"),
+            "{e}"
+        );
+        load.ranges.current_max_a = Some(100.0);
+        source.ranges.current_max_a = Some(100.0);
+        assert!(check_ranges(&p, &source, &load).is_ok());
+    }
 }

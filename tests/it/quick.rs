@@ -99,6 +99,15 @@ fn a_family_of_40_is_graded_from_screening_runs_within_its_intervals() {
         // The screening run stays under an hour of bench time.
         let sum = json(&s.join("summary.json"));
         assert!(sum["duration_s"].as_f64().unwrap() < 3600.0, "{id}");
+        // A charge stopped by its 30 min cap is warned of in the run's own
+        // summary (as `check` warns of it), and only then.
+        let capped = sum["steps"][0]["end_kind"] == "time";
+        let warned = sum["warnings"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|w| w.as_str().unwrap().starts_with("step 1: the charge stopped on its time cap"));
+        assert_eq!(capped, warned, "{id}: {}", sum["warnings"]);
         // The first 30 calibrate; the other 10 get their full test in a
         // folder the quick grade does not read.
         let full_in = if k < 30 { &shop } else { &checks };

@@ -341,6 +341,16 @@ pub fn summarize_run_with_curves(
     let manifest = crate::read::read_manifest(&dir.join(crate::RUN_JSON)).ok();
     let accuracy = manifest.as_ref().and_then(|m| m.accuracy.clone());
     let calibration = manifest.as_ref().and_then(|m| m.calibration.clone());
+    // The plan the run followed (its text is in the manifest): which of
+    // its steps that ended on their time cap had another way to end.
+    let plan = manifest.as_ref().and_then(|m| {
+        model::procedure::validate::plan_from_text(
+            std::path::Path::new(&m.procedure.path),
+            &m.procedure.text,
+            ctx.pack,
+        )
+        .ok()
+    });
     let channels = manifest.and_then(|m| m.groups);
     let mut pack_points: Vec<analysis::groups::PackPoint> = Vec::new();
     let rep = stream_log(&dir.join(SAMPLES_CSV), &LogFormat::default(), |r: Row| {
@@ -411,6 +421,13 @@ pub fn summarize_run_with_curves(
         measured_with,
     );
     add_event_records(&mut s, &events);
+    if let Some(plan) = &plan {
+        for st in s.steps.iter().filter(|st| st.end_kind == Some(model::end::EndKind::Time)) {
+            if let Some(p) = plan.steps.iter().find(|p| p.index == st.step) {
+                s.warnings.extend(p.time_cap_warning(st.duration_s, false));
+            }
+        }
+    }
     if let Some(c) = &calibration {
         if c.overdue {
             s.warnings.push(format!(

@@ -205,3 +205,38 @@ fn an_implausible_capacity_is_not_a_state_of_health() {
     assert!(!t.contains("150.0 %"), "{t}");
     assert_eq!(s.verdict.grade_label(), None);
 }
+
+/// The terminal's step table lines up: every column of a row under its
+/// header, whatever the kind's length.
+#[test]
+fn the_step_table_lines_up_under_its_header() {
+    let mut s = case(Some(13.0), true, Some(true), true);
+    let step = |n: u32, kind: &str, secs: f64| -> analysis::StepSummary {
+        serde_json::from_value(serde_json::json!({
+            "step": n, "phase": "p", "cycle": 1, "kind": kind, "name": null,
+            "samples": 10, "start_s": 0.0, "duration_s": secs,
+            "charge_ah": -1.5, "energy_wh": -55.0, "charge_in_ah": 0.0,
+            "charge_out_ah": 1.5, "energy_in_wh": 0.0, "energy_out_wh": 55.0,
+            "start_voltage_v": null, "end_voltage_v": null, "min_voltage_v": null,
+            "max_voltage_v": null, "mean_current_a": null, "max_temperature_c": null,
+            "end_kind": "time", "end_reason": "time > 30min00s", "measure": null
+        }))
+        .unwrap()
+    };
+    s.steps = vec![step(1, "discharge", 8347.0), step(2, "rest", 1800.0)];
+    let text = crate::text::summary(&s);
+    let header = line(&text, "duration");
+    let rows: Vec<&str> = text
+        .lines()
+        .filter(|l| l.contains("time > 30min00s"))
+        .collect();
+    assert_eq!(rows.len(), 2, "{text}");
+    let end_of = |l: &str, word: &str| l.find(word).map(|k| k + word.len());
+    for (r, d) in rows.iter().zip(["2h19m07s", "30min00s"]) {
+        assert_eq!(end_of(r, d), end_of(header, "duration"), "{header}\n{r}");
+        assert_eq!(end_of(r, "-1.5000"), end_of(header, "charge Ah"), "{header}\n{r}");
+        assert_eq!(r.find("time >"), header.find("end"), "{header}\n{r}");
+    }
+    assert_eq!(rows[0].find("discharge"), header.find("kind"));
+    assert_eq!(rows[1].find("rest"), header.find("kind"));
+}

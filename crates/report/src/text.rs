@@ -103,9 +103,11 @@ pub fn summary(s: &Summary) -> String {
         s.samples,
         HumanDuration(s.duration_s)
     );
+    // (The header in the rows' own widths: the columns line up.)
     let _ = writeln!(
         o,
-        "  step  kind       duration      charge Ah   energy Wh   end"
+        "  {:>4}  {:<9} {:>10} {:>12} {:>11}   end",
+        "step", "kind", "duration", "charge Ah", "energy Wh"
     );
     for st in &s.steps {
         let _ = writeln!(

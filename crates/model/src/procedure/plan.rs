@@ -279,6 +279,40 @@ pub struct PlanStep {
 }
 
 impl PlanStep {
+    /// A step that ended on its time cap while it had another end
+    /// condition: what that means for what follows, as a warning. Said of
+    /// a forecast (`expected`) or of a run. (Of a run's capacity step the
+    /// analysis says it with the capacity: none here.)
+    pub fn time_cap_warning(&self, duration_s: f64, expected: bool) -> Option<String> {
+        let has_other_end = self
+            .ends
+            .iter()
+            .any(|c| !matches!(c, EndCondition::Time { .. }));
+        if !has_other_end {
+            return None;
+        }
+        let (n, d) = (self.index, crate::units::HumanDuration(duration_s.round()));
+        let capacity = self.result == Some(ResultTag::Capacity);
+        Some(match (&self.kind, expected) {
+            (StepKind::Charge { .. }, true) => format!(
+                "step {n}: the charge is expected to stop on its time cap ({d}) before it is full: the cap is shorter than the expected charge"
+            ),
+            (StepKind::Charge { .. }, false) => format!(
+                "step {n}: the charge stopped on its time cap ({d}) before it was full: what follows did not start from a full pack (a longer cap, or a pack charged before the test)"
+            ),
+            (_, true) if capacity => format!(
+                "step {n}: the capacity step is expected to end on its time cap ({d}) instead of its cutoff: the capacity would be understated"
+            ),
+            (_, false) if capacity => return None,
+            (_, true) => format!(
+                "step {n}: expected to end on its time cap ({d}) rather than its other end condition"
+            ),
+            (_, false) => format!(
+                "step {n}: ended on its time cap ({d}) rather than its other end condition"
+            ),
+        })
+    }
+
     /// The duration a pulse step's levels add up to.
     pub fn pulse_duration_s(&self) -> Option<f64> {
         match &self.kind {
