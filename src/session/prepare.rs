@@ -244,7 +244,9 @@ name = "p"
             "{e}"
         );
         assert!(
-            e.contains("p.toml:12:1: drain current limit 90.000 A is beyond the source's range (60 A)"),
+            e.contains(
+                "p.toml:12:1: drain current limit 90.000 A is beyond the source's range (60 A)"
+            ),
             "{e}"
         );
         load.ranges.current_max_a = Some(100.0);

@@ -102,11 +102,11 @@ fn a_family_of_40_is_graded_from_screening_runs_within_its_intervals() {
         // A charge stopped by its 30 min cap is warned of in the run's own
         // summary (as `check` warns of it), and only then.
         let capped = sum["steps"][0]["end_kind"] == "time";
-        let warned = sum["warnings"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .any(|w| w.as_str().unwrap().starts_with("step 1: the charge stopped on its time cap"));
+        let warned = sum["warnings"].as_array().unwrap().iter().any(|w| {
+            w.as_str()
+                .unwrap()
+                .starts_with("step 1: the charge stopped on its time cap")
+        });
         assert_eq!(capped, warned, "{id}: {}", sum["warnings"]);
         // The first 30 calibrate; the other 10 get their full test in a
         // folder the quick grade does not read.

@@ -1006,8 +1006,19 @@ impl<'a> Analyzer<'a> {
                 let rc = c.mean_current_a.abs() / pack.rated_capacity_ah;
                 let rd = dis.mean_current_a.abs() / pack.rated_capacity_ah;
                 if rc.max(rd) > 0.1 {
+                    // What the charge's own end does to the table's top,
+                    // by how it ended.
+                    let top = match self.infos.get(&c.step).and_then(|i| i.end_kind) {
+                        Some(EndKind::CurrentBelow) => {
+                            " (and its constant-voltage end of charge flattens its top)"
+                        }
+                        Some(EndKind::PeakDrop) => {
+                            " (and its −ΔV end of charge, past the voltage peak, bends its top)"
+                        }
+                        _ => "",
+                    };
                     warnings.push(format!(
-                        "the open-circuit-voltage table comes from steps at {rc:.2}C and {rd:.2}C: above C/10 the average still holds some polarisation (and a constant-voltage end of charge flattens its top)"
+                        "the open-circuit-voltage table comes from steps at {rc:.2}C and {rd:.2}C: above C/10 the average still holds some polarisation{top}"
                     ));
                 }
                 data.ocv = points.clone();

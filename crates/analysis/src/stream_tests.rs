@@ -314,6 +314,21 @@ fn the_cycle_and_the_capacity_are_their_closed_forms() {
         "{:?}",
         a.warnings
     );
+    assert!(a.warnings[0].ends_with("(and its constant-voltage end of charge flattens its top)"));
+    // A charge ended on its −ΔV (a NiMH charge) has no constant-voltage
+    // end to speak of.
+    let mut nimh = infos.clone();
+    nimh[1].end_kind = Some(EndKind::PeakDrop);
+    let a = analyze(&samples, &nimh, &pack());
+    let w = a
+        .warnings
+        .iter()
+        .find(|w| w.contains("open-circuit"))
+        .unwrap();
+    assert!(
+        !w.contains("constant-voltage") && w.contains("−ΔV end of charge"),
+        "{w}"
+    );
 }
 
 /// At 35 °C the capacity is corrected down by the linear coefficient

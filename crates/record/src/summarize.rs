@@ -422,7 +422,11 @@ pub fn summarize_run_with_curves(
     );
     add_event_records(&mut s, &events);
     if let Some(plan) = &plan {
-        for st in s.steps.iter().filter(|st| st.end_kind == Some(model::end::EndKind::Time)) {
+        for st in s
+            .steps
+            .iter()
+            .filter(|st| st.end_kind == Some(model::end::EndKind::Time))
+        {
             if let Some(p) = plan.steps.iter().find(|p| p.index == st.step) {
                 s.warnings.extend(p.time_cap_warning(st.duration_s, false));
             }

@@ -234,7 +234,11 @@ fn the_step_table_lines_up_under_its_header() {
     let end_of = |l: &str, word: &str| l.find(word).map(|k| k + word.len());
     for (r, d) in rows.iter().zip(["2h19m07s", "30min00s"]) {
         assert_eq!(end_of(r, d), end_of(header, "duration"), "{header}\n{r}");
-        assert_eq!(end_of(r, "-1.5000"), end_of(header, "charge Ah"), "{header}\n{r}");
+        assert_eq!(
+            end_of(r, "-1.5000"),
+            end_of(header, "charge Ah"),
+            "{header}\n{r}"
+        );
         assert_eq!(r.find("time >"), header.find("end"), "{header}\n{r}");
     }
     assert_eq!(rows[0].find("discharge"), header.find("kind"));

@@ -279,6 +279,29 @@ pub struct PlanStep {
 }
 
 impl PlanStep {
+    /// The step's kind and setpoints in words, the charge's by how it
+    /// ends: a charge that ends on its −ΔV (and not on a taper current)
+    /// is held at constant current, its voltage only a ceiling.
+    pub fn kind_text(&self) -> String {
+        let taper = self
+            .ends
+            .iter()
+            .any(|c| matches!(c, EndCondition::CurrentBelow { .. }));
+        let peak = self
+            .ends
+            .iter()
+            .any(|c| matches!(c, EndCondition::PeakDrop { .. }));
+        match self.kind {
+            StepKind::Charge {
+                current_a,
+                voltage_v,
+            } if peak && !taper => format!(
+                "charge {current_a:.3} A, {voltage_v:.3} V ceiling (constant current to its −ΔV)"
+            ),
+            _ => self.kind.to_string(),
+        }
+    }
+
     /// A step that ended on its time cap while it had another end
     /// condition: what that means for what follows, as a warning. Said of
     /// a forecast (`expected`) or of a run. (Of a run's capacity step the
@@ -494,7 +517,7 @@ impl fmt::Display for Plan {
                     String::new()
                 },
                 s.cycle,
-                s.kind
+                s.kind_text()
             )?;
             if !s.ends.is_empty() {
                 let ends: Vec<String> = s.ends.iter().map(|c| c.to_string()).collect();
@@ -515,6 +538,43 @@ impl fmt::Display for Plan {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// A −ΔV charge is said as one (constant current, the voltage a
+    /// ceiling); a charge to a taper is CC-CV.
+    #[test]
+    fn a_charge_is_described_by_how_it_ends() {
+        use crate::pack::{Chemistry, PackSpec};
+        let pack = PackSpec {
+            chemistry: Chemistry::Nimh,
+            series: 10,
+            rated_capacity_ah: 4.5,
+            rated_energy_wh: None,
+            rated_rate_c: None,
+            rated_resistance_mohm: None,
+        };
+        let text = |ends: &str| {
+            format!(
+                "title = \"t\"\n[envelope]\nvoltage_max = \"1.65V/cell\"\nvoltage_min = \"0.9V/cell\"\ncurrent_max = \"1C\"\ntemperature_max = \"50degC\"\n[[phase]]\nname = \"p\"\n  [[phase.step]]\n  kind = \"charge\"\n  current = \"0.5C\"\n  voltage = \"1.6V/cell\"\n  ends = [{ends}]\n"
+            )
+        };
+        let plan = |ends: &str| {
+            crate::procedure::validate::plan_from_text(
+                std::path::Path::new("t.toml"),
+                &text(ends),
+                &pack,
+            )
+            .unwrap()
+        };
+        let p = plan("\"peak_drop > 10mV/cell\", \"time > 3h\"");
+        assert_eq!(
+            p.steps[0].kind_text(),
+            "charge 2.250 A, 16.000 V ceiling (constant current to its −ΔV)"
+        );
+        assert!(p.to_string().contains("(constant current to its −ΔV)"));
+        assert!(!p.to_string().contains("CC-CV"));
+        let p = plan("\"current < 0.05C\", \"time > 3h\"");
+        assert_eq!(p.steps[0].kind_text(), "charge 2.250 A to 16.000 V (CC-CV)");
+    }
 
     /// Step kinds, end kinds and statuses take a table's column width
     /// (the terminal's step tables line up).
