@@ -247,8 +247,13 @@ fn io(path: &Path) -> impl FnOnce(std::io::Error) -> DemoError + '_ {
     }
 }
 
-/// Run every test of one pack, in order.
-fn run_pack(p: &DemoPack, results: &Path, seed: u64) -> Result<usize, DemoError> {
+/// Run every test of one pack, in order (`done` is told after each).
+fn run_pack(
+    p: &DemoPack,
+    results: &Path,
+    seed: u64,
+    done: &(dyn Fn() + Sync),
+) -> Result<usize, DemoError> {
     let rt = tokio::runtime::Builder::new_current_thread()
         .enable_all()
         .build()
@@ -270,6 +275,12 @@ fn run_pack(p: &DemoPack, results: &Path, seed: u64) -> Result<usize, DemoError>
             options: RunOptions {
                 test_date: date,
                 cycle_count: Some(n),
+                // The record's start on the scenario's day (packs a few
+                // minutes apart), so that the exports' times agree with
+                // the test dates.
+                started_at: date
+                    .and_hms_opt(8, 0, 0)
+                    .map(|t| t.and_utc() + chrono::Duration::minutes((seed / 1000) as i64 * 7)),
                 ..RunOptions::default()
             },
         };
@@ -285,6 +296,7 @@ fn run_pack(p: &DemoPack, results: &Path, seed: u64) -> Result<usize, DemoError>
         cfg.pack.ambient_c = 23.0 + f64::from(q % 3);
         rt.block_on(session::run(Session::sim(&prepared, &cfg, Speed::Max)))?;
         runs += 1;
+        done();
     }
     Ok(runs)
 }
@@ -292,6 +304,19 @@ fn run_pack(p: &DemoPack, results: &Path, seed: u64) -> Result<usize, DemoError>
 /// Set up the scenario under `out`, run every test (packs concurrently,
 /// one station each), grade, and write the run, pack and fleet reports.
 pub fn run_demo(out: &Path) -> Result<DemoOutcome, DemoError> {
+    run_demo_with(out, &|| {})
+}
+
+/// How many tests the scenario runs.
+pub fn scenario_runs() -> usize {
+    scenario()
+        .iter()
+        .map(|p| (0..QUARTERS).filter(|q| !p.missed.contains(q)).count())
+        .sum()
+}
+
+/// [`run_demo`], telling `done` after each test.
+pub fn run_demo_with(out: &Path, done: &(dyn Fn() + Sync)) -> Result<DemoOutcome, DemoError> {
     if out.exists() {
         let empty = std::fs::read_dir(out).map_err(io(out))?.next().is_none();
         if !empty && !out.join(MARKER).exists() {
@@ -320,7 +345,7 @@ pub fn run_demo(out: &Path) -> Result<DemoOutcome, DemoError> {
                 scope.spawn(move || -> Result<usize, DemoError> {
                     let mut n = 0;
                     for (i, p) in packs.iter().enumerate().filter(|(i, _)| i % threads == t) {
-                        n += run_pack(p, results, 1000 * (i as u64 + 1))?;
+                        n += run_pack(p, results, 1000 * (i as u64 + 1), done)?;
                     }
                     Ok(n)
                 })
@@ -387,7 +412,19 @@ pub struct DemoArgs {
 /// `packbench demo`.
 pub fn cmd_demo(a: DemoArgs) -> anyhow::Result<ExitCode> {
     let t = std::time::Instant::now();
-    let d = crate::cli::demo::run_demo(&a.out)?;
+    // Progress on the error stream (drawn on a terminal only).
+    let bar = indicatif::ProgressBar::with_draw_target(
+        Some(scenario_runs() as u64),
+        indicatif::ProgressDrawTarget::stderr_with_hz(8),
+    );
+    bar.set_style(
+        indicatif::ProgressStyle::with_template("{msg} {bar:30} {pos}/{len} tests ({elapsed})")
+            .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
+    );
+    bar.set_message("Running the demo fleet's tests on the simulated bench");
+    let d = crate::cli::demo::run_demo_with(&a.out, &|| bar.inc(1));
+    bar.finish_and_clear();
+    let d = d?;
     print!("{}", report::text::fleet(&d.fleet));
     println!(
         "\nDemo: {} tests of {} packs on the simulated bench in {:.1} s.",

@@ -85,7 +85,7 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
         sim,
     } = bench;
     check_groups(p, &links)?;
-    let started = chrono::Utc::now();
+    let started = p.options.started_at.unwrap_or_else(chrono::Utc::now);
     // Sorted by the day the test counts for, then the wall-clock start.
     let base_id = format!(
         "{}-{}Z-{}",
@@ -125,7 +125,7 @@ pub async fn start(p: &Prepared, bench: Bound, stop: StopHandle) -> Result<RunRe
         },
         run_id: run_id.clone(),
         pack_id: p.pack_id.clone(),
-        started_utc: utc_now(),
+        started_utc: started.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
         finished_utc: None,
         test_date: p.options.test_date.to_string(),
         cycle_count: p.options.cycle_count,

@@ -116,7 +116,11 @@ pub fn finish_record_after(
     }
     manifest.status = outcome.status.into();
     manifest.stop_reason = outcome.reason.clone();
-    manifest.finished_utc = Some(utc_now());
+    manifest.finished_utc = Some(match (p.options.started_at, &summary) {
+        (Some(t0), Ok(s)) => (t0 + chrono::Duration::milliseconds((s.duration_s * 1000.0) as i64))
+            .to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
+        _ => utc_now(),
+    });
     manifest.timing = Some(outcome.timing);
     manifest.outputs_may_be_on = outcome.may_be_on.iter().map(|(w, _)| w.clone()).collect();
     if let Some(s) = sim {

@@ -64,6 +64,10 @@ pub struct RunOptions {
     /// How long the safe stop keeps trying an output it cannot confirm
     /// off, s (wall clock).
     pub safe_stop_hold_s: f64,
+    /// The start to record in place of the wall clock's (a scenario's
+    /// simulated runs: their records carry the scenario's dates); the
+    /// finish is then that start plus the run's own time.
+    pub started_at: Option<chrono::DateTime<chrono::Utc>>,
 }
 
 impl Default for RunOptions {
@@ -76,6 +80,7 @@ impl Default for RunOptions {
             alarm_below_pct: None,
             bms: None,
             safe_stop_hold_s: engine::OFF_HOLD.as_secs_f64(),
+            started_at: None,
         }
     }
 }

@@ -223,6 +223,7 @@ pub fn prepare(
             alarm_below_pct: manifest.alarm_below_pct,
             bms: manifest.bms.clone(),
             safe_stop_hold_s: engine::OFF_HOLD.as_secs_f64(),
+            started_at: None,
         },
     };
     let found = find_point(dir, &prepared, manifest.bench.speed_factor)?;

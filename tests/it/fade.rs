@@ -264,6 +264,25 @@ fn demo_fleet_projections_match_the_simulated_ageing() {
         );
         // Every test graded and recorded.
         assert!(h.points.iter().all(|pt| pt.grade.is_some()));
+        // Every record's start and finish are on its scenario day (the
+        // exports read them), not on the day the demo ran.
+        for pt in &h.points {
+            let m = record::read::read_manifest(&pt.run_dir.as_ref().unwrap().join("run.json"))
+                .unwrap();
+            let day = pt.date.to_string();
+            assert!(
+                m.started_utc.starts_with(&day),
+                "{}: {}",
+                p.id,
+                m.started_utc
+            );
+            let finished = m.finished_utc.unwrap();
+            assert!(
+                finished.starts_with(&day) && finished > m.started_utc,
+                "{finished}"
+            );
+            assert!(m.run_id.starts_with(&day.replace('-', "")), "{}", m.run_id);
+        }
     }
     let row = |id: &str| {
         out.fleet
