@@ -357,7 +357,7 @@ pub fn run_demo_with(out: &Path, done: &(dyn Fn() + Sync)) -> Result<DemoOutcome
         Ok(())
     })?;
     let today = scenario_today();
-    let threshold = 80.0;
+    let threshold = analysis::fade::END_OF_LIFE_PCT;
     let mut pack_reports = Vec::new();
     let mut histories = Vec::new();
     for p in &packs {
@@ -370,7 +370,7 @@ pub fn run_demo_with(out: &Path, done: &(dyn Fn() + Sync)) -> Result<DemoOutcome
     let (fleet, _) = history::fleet(
         &results,
         today,
-        &analysis::fade::schedule::Schedule::interval(92),
+        &analysis::fade::default_schedule(),
         threshold,
     )?;
     let fleet_report = results.join("fleet.html");

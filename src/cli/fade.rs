@@ -17,6 +17,12 @@ pub struct ReportArgs {
     pub run_dir: PathBuf,
 }
 
+/// The command line's defaults, as its options spell them: the library's
+/// [`analysis::fade::END_OF_LIFE_PCT`] and [`analysis::fade::INTERVAL_DAYS`]
+/// (a test holds them equal).
+pub const END_OF_LIFE: &str = "80%";
+pub const INTERVAL: &str = "92d";
+
 #[derive(Debug, Args)]
 pub struct FadeArgs {
     /// Pack id.
@@ -25,7 +31,7 @@ pub struct FadeArgs {
     #[arg(long, default_value = "results")]
     pub results: PathBuf,
     /// End of life, % of rated capacity.
-    #[arg(long, default_value = "80%")]
+    #[arg(long, default_value = END_OF_LIFE)]
     pub threshold: String,
     /// Earlier measurements: CSV with date,cycles,capacity_ah,resistance_mohm.
     #[arg(long)]
@@ -47,10 +53,10 @@ pub struct FleetArgs {
     #[arg(default_value = "results")]
     pub results: PathBuf,
     /// End of life, % of rated capacity.
-    #[arg(long, default_value = "80%")]
+    #[arg(long, default_value = END_OF_LIFE)]
     pub threshold: String,
     /// A test is overdue after this long: days or weeks, e.g. 92d or 13w.
-    #[arg(long, default_value = "92d")]
+    #[arg(long, default_value = INTERVAL)]
     pub interval: String,
     /// The grading/fleet policy (TOML) whose [schedule] says when packs
     /// are due: the shop's interval, or the IEEE 450 rules for lead-acid.
@@ -253,4 +259,21 @@ pub fn cmd_fleet(a: FleetArgs) -> anyhow::Result<ExitCode> {
         print!("{}", report::text::fleet(&f));
     }
     Ok(ExitCode::Ok)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The options' defaults are the library's, the one place they are
+    /// set.
+    #[test]
+    fn the_defaults_are_the_librarys() {
+        let eol = crate::cli::args::parse_threshold(END_OF_LIFE).unwrap();
+        assert_eq!(eol, analysis::fade::END_OF_LIFE_PCT);
+        assert_eq!(
+            crate::cli::args::interval_days(INTERVAL),
+            Some(analysis::fade::INTERVAL_DAYS)
+        );
+    }
 }

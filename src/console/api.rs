@@ -297,13 +297,30 @@ pub async fn packs(State(c): State<Arc<Console>>) -> Response {
         record::index::fleet(
             &results,
             today,
-            &analysis::fade::schedule::Schedule::interval(92),
-            80.0,
+            &analysis::fade::default_schedule(),
+            analysis::fade::END_OF_LIFE_PCT,
         )
     })
     .await;
+    // A pack on a bay now is being tested, not overdue.
+    let testing: Vec<(String, String)> = c
+        .bays
+        .iter()
+        .filter(|b| b.busy())
+        .filter_map(|b| Some((b.view().live?.pack_id, b.name.clone())))
+        .collect();
     match r {
-        Ok(Ok((f, _))) => Json(f).into_response(),
+        Ok(Ok((mut f, _))) => {
+            for row in &mut f.rows {
+                if let Some((_, bay)) = testing.iter().find(|(p, _)| *p == row.pack_id) {
+                    row.overdue = false;
+                    row.attention.retain(|a| !a.starts_with("test overdue"));
+                    row.attention
+                        .insert(0, format!("being tested now on bay {bay}"));
+                }
+            }
+            Json(f).into_response()
+        }
         Ok(Err(e)) => json_error(StatusCode::INTERNAL_SERVER_ERROR, e.to_string()),
         Err(e) => json_error(StatusCode::INTERNAL_SERVER_ERROR, e.to_string()),
     }
@@ -316,7 +333,7 @@ pub async fn pack(State(c): State<Arc<Console>>, Path(pack): Path<String>) -> Re
     }
     match record::history::load(&c.results, &pack, None) {
         Ok(h) => {
-            let fa = analysis::fade::trend::analyze(&h, 80.0);
+            let fa = analysis::fade::trend::analyze(&h, analysis::fade::END_OF_LIFE_PCT);
             Json(serde_json::json!({ "history": h, "fade": fa })).into_response()
         }
         Err(e) => json_error(StatusCode::NOT_FOUND, e.to_string()),

@@ -63,7 +63,7 @@ pub async fn pack(State(c): State<Arc<Console>>, Path(pack): Path<String>) -> Re
         Ok(h) => h,
         Err(e) => return page_error(StatusCode::NOT_FOUND, &e.to_string()),
     };
-    let mut fa = analysis::fade::trend::analyze(&h, 80.0);
+    let mut fa = analysis::fade::trend::analyze(&h, analysis::fade::END_OF_LIFE_PCT);
     fa.flag_against(chrono::Utc::now().date_naive());
     Html(report::html::pack_report(
         &h,

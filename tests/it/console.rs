@@ -656,8 +656,44 @@ name = "measure"
 "#,
     )
     .unwrap();
+    // FR-E01 has an earlier run (no capacity step, so no state of health:
+    // due, and said why).
+    let out = packbench(&[
+        "run",
+        p.join("to-empty.toml").to_str().unwrap(),
+        "--pack",
+        "FR-E01",
+        "--chemistry",
+        "li-ion",
+        "--series",
+        "10",
+        "--rated",
+        "14Ah",
+        "--results",
+        d.join("results").to_str().unwrap(),
+        "--quiet",
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
     let args = ["--sim", "2", "--listen", "127.0.0.1:0", "--speed", "400"];
     let s = serve(d, &args);
+    let row = |a: &str| {
+        get_json(a, "/api/packs")["rows"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|r| r["pack_id"] == "FR-E01")
+            .cloned()
+            .unwrap()
+    };
+    let r = row(&s.addr);
+    assert_eq!(r["overdue"], true, "{r}");
+    assert!(
+        r["due_rule"]
+            .as_str()
+            .unwrap()
+            .starts_with("no test with a state of health on record"),
+        "{r}"
+    );
     let a = s.addr.clone();
     let form = |pack: &str| {
         serde_json::json!({
@@ -679,6 +715,10 @@ name = "measure"
         at.is_some()
     }));
     let (t_at, eta) = at.unwrap();
+    // Being tested now: not overdue.
+    let r = row(&a);
+    assert_eq!(r["overdue"], false, "{r}");
+    assert_eq!(r["attention"][0], "being tested now on bay 1", "{r}");
     // Bay 2: stopped half an hour in.
     let mut before = 0.0;
     assert!(wait_until(Duration::from_secs(30), || {

@@ -123,12 +123,16 @@ impl Schedule {
                 due: None,
                 overdue: true,
                 replace: false,
-                rule: "no test on record".into(),
+                rule: no_test_rule(h),
             },
         }
     }
 
     /// When `h`'s next test is due at `today`.
+    ///
+    /// (A pack with runs but none that gave a state of health, e.g. tests
+    /// that did not start from a full charge, is told apart from a pack
+    /// never tested.)
     pub fn due(&self, h: &PackHistory, today: NaiveDate) -> Due {
         let life = match (self.rule, self.service_life_days) {
             (Rule::Ieee450, Some(l)) if h.spec.chemistry == Chemistry::LeadAcid => l,
@@ -221,6 +225,20 @@ impl Schedule {
     }
 }
 
+/// Why a pack has no test to count from: none at all, or runs that gave
+/// no state of health (the first one's reason).
+fn no_test_rule(h: &PackHistory) -> String {
+    match h.left_out.first() {
+        None => "no test on record".into(),
+        Some(l) => format!(
+            "no test with a state of health on record: {} run(s) left out ({}: {})",
+            h.left_out.len(),
+            l.run_id,
+            l.reason
+        ),
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -276,6 +294,26 @@ mod tests {
             service_life_days: Some(20 * YEAR_DAYS),
             in_service: [("FR-S01".to_string(), d("2010-01-01"))].into(),
         }
+    }
+
+    /// A pack never tested and a pack whose runs gave no state of health
+    /// are told apart.
+    #[test]
+    fn no_graded_test_says_why() {
+        let mut h = history(Chemistry::LiIon, &[]);
+        let due = Schedule::interval(92).due(&h, d("2026-06-01"));
+        assert_eq!(due.rule, "no test on record");
+        assert!(due.overdue);
+        h.left_out.push(crate::fade::history::LeftOut {
+            run_id: "20260501-080000Z-capacity-check".into(),
+            status: model::status::RunStatus::Completed,
+            reason: "it did not start from a full charge".into(),
+        });
+        let due = Schedule::interval(92).due(&h, d("2026-06-01"));
+        assert_eq!(
+            due.rule,
+            "no test with a state of health on record: 1 run(s) left out (20260501-080000Z-capacity-check: it did not start from a full charge)"
+        );
     }
 
     #[test]
