@@ -41,6 +41,34 @@ pub struct ServeArgs {
     /// The simulated bays' pack and bench settings (TOML).
     #[arg(long)]
     pub sim_config: Option<PathBuf>,
+    /// The address others open this console at (a phone scanning a
+    /// label, a customer), e.g. https://bench.example.org: the labels'
+    /// QR codes link there. Without it a label carries the pack and run
+    /// ids in text instead.
+    #[arg(long)]
+    pub public_url: Option<String>,
+}
+
+/// `--public-url`: an http(s) address with a host, no spaces; kept
+/// without its trailing slash.
+pub fn public_url(text: &str) -> Result<String, RunError> {
+    let t = text.trim().trim_end_matches('/');
+    let rest = t
+        .strip_prefix("https://")
+        .or_else(|| t.strip_prefix("http://"));
+    match rest {
+        Some(r)
+            if !r.is_empty()
+                && !r.starts_with('/')
+                && !r.starts_with(':')
+                && r.chars().all(|c| c.is_ascii_graphic()) =>
+        {
+            Ok(t.to_string())
+        }
+        _ => Err(RunError::arguments(format!(
+            "--public-url '{text}': expected the address others open the console at, such as https://bench.example.org or http://192.168.1.20:8080"
+        ))),
+    }
 }
 
 fn procedures(dir: &Path) -> Result<Vec<(String, PathBuf)>, RunError> {
@@ -150,6 +178,7 @@ pub fn console(a: &ServeArgs, bound: SocketAddr) -> Result<Console, RunError> {
             .is_loopback()
             .then(|| crate::console::loopback_hosts(bound)),
         emergency: crate::session::emergency::Emergency::default(),
+        public_url: a.public_url.as_deref().map(public_url).transpose()?,
         locks,
         closing: tokio::sync::watch::channel(false).0,
     })
@@ -158,6 +187,9 @@ pub fn console(a: &ServeArgs, bound: SocketAddr) -> Result<Console, RunError> {
 pub fn cmd_serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
     // Everything checked before the port is taken.
     let _ = procedures(&a.procedures)?;
+    if let Some(u) = &a.public_url {
+        public_url(u)?;
+    }
     let rt = tokio::runtime::Builder::new_current_thread()
         .enable_all()
         .build()
@@ -173,6 +205,9 @@ pub fn cmd_serve(a: ServeArgs) -> anyhow::Result<ExitCode> {
             console.bays.len(),
             if a.bench.is_some() { "" } else { ", simulated" }
         );
+        if console.public_url.is_none() {
+            println!("note: no --public-url: labels carry the pack and run ids in text, not a QR code (this console's own address cannot be opened from a phone)");
+        }
         if let Some(t) = &console.token {
             println!("access token: {t}");
             println!("open http://{addr}/?token={t} once in each browser (kept in a cookie), or send Authorization: Bearer {t}");
@@ -228,4 +263,34 @@ async fn shutdown(c: Arc<Console>) {
     }
     // Every live stream ends; the server then waits for its connections.
     let _ = c.closing.send(true);
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The public address: http(s) with a host, kept without its trailing
+    /// slash; anything else refused with the option's name.
+    #[test]
+    fn a_public_url_is_an_http_address_with_a_host() {
+        assert_eq!(
+            public_url("https://bench.fernhollow.example/").unwrap(),
+            "https://bench.fernhollow.example"
+        );
+        assert_eq!(
+            public_url("http://192.168.1.20:8080").unwrap(),
+            "http://192.168.1.20:8080"
+        );
+        for bad in [
+            "bench.example",
+            "ftp://x",
+            "https://",
+            "https:///x",
+            "http://a b",
+            "https://:80",
+        ] {
+            let e = public_url(bad).unwrap_err().to_string();
+            assert!(e.contains(&format!("--public-url '{bad}'")), "{bad}: {e}");
+        }
+    }
 }

@@ -39,6 +39,9 @@ pub struct Console {
     /// The Host header values a request may carry (loopback binding).
     pub hosts: Option<Vec<String>>,
     pub emergency: Emergency,
+    /// The address others open the console at (`--public-url`): the
+    /// labels' QR codes link there; none, no QR code.
+    pub public_url: Option<String>,
     /// The station locks this process holds for its lifetime.
     pub locks: Vec<Box<dyn std::any::Any + Send + Sync>>,
     /// Set when the console is closing: every live stream ends.

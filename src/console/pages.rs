@@ -5,7 +5,7 @@
 use super::security::refused_names;
 use super::Console;
 use axum::extract::{Path, State};
-use axum::http::{header, HeaderMap, StatusCode};
+use axum::http::{header, StatusCode};
 use axum::response::{Html, IntoResponse, Response};
 use std::sync::Arc;
 
@@ -149,7 +149,6 @@ pub fn label_figures(s: &record::Summary) -> (String, String, String) {
 /// health, capacity, date, and a QR code linking to the run's page.
 pub async fn label(
     State(c): State<Arc<Console>>,
-    headers: HeaderMap,
     Path((pack, run)): Path<(String, String)>,
 ) -> Response {
     if let Some(r) = refused_names(&[("pack", &pack), ("run", &run)]) {
@@ -163,13 +162,25 @@ pub async fn label(
         Ok(s) => s,
         Err(e) => return page_error(StatusCode::NOT_FOUND, &e.to_string()),
     };
-    let host = headers
-        .get(header::HOST)
-        .and_then(|h| h.to_str().ok())
-        .unwrap_or("127.0.0.1");
-    let url = format!("http://{host}/packs/{pack}/runs/{run}");
-    let qr = qr_svg(&url, 25.0).unwrap_or_default();
     let esc = report::markup::escape;
+    // The code links to the public address; without one, the ids in text
+    // large enough to type (the console's own address is no use off the
+    // bench PC).
+    let page = format!("/packs/{pack}/runs/{run}");
+    let (code, note) = match &c.public_url {
+        Some(base) => {
+            let url = format!("{base}{page}");
+            (
+                format!("<div class=\"qr\">{}</div>", qr_svg(&url, 25.0).unwrap_or_default()),
+                format!("The code opens <a href=\"{u}\">{u}</a>.", u = esc(&url)),
+            )
+        }
+        None => (
+            format!("<div class=\"ids\">run<br><b>{}</b></div>", esc(&run)),
+            "No QR code: the console was started without --public-url (the address a phone can open)."
+                .to_string(),
+        ),
+    };
     let (cap, soh, grade) = label_figures(&s);
     let body = format!(
         r#"<!doctype html><html lang="en"><meta charset="utf-8"><title>Label {pack_e}</title>
@@ -182,18 +193,19 @@ body {{ margin: 0; font-family: sans-serif }}
 .id {{ font-size: 11pt; font-weight: bold }}
 .grade {{ font-size: 15pt; font-weight: bold }}
 .small {{ font-size: 7pt }}
+.ids {{ font-size: 8pt; font-family: monospace; text-align: right; word-break: break-all; max-width: 24mm }}
 </style>
 <div class="label" id="label">
 <div class="text"><div class="id">{pack_e}</div><div class="grade">Grade {grade_e}</div>
 <div class="small">SOH {soh} · {cap}</div><div class="small">Tested {date}</div></div>
-<div class="qr">{qr}</div>
+{code}
 </div>
-<p class="noprint small">62 mm roll, 62 × 29 mm label. The code opens <a href="{url_e}">{url_e}</a>. <a href="/">Bays</a></p>
+<p class="noprint small">62 mm roll, 62 × 29 mm label. {note} <a href="{page}">Its report</a> · <a href="/">Bays</a></p>
 </html>"#,
         pack_e = esc(&pack),
         grade_e = esc(&grade),
         date = esc(&s.test_date.to_string()),
-        url_e = esc(&url),
+        page = esc(&page),
     );
     Html(body).into_response()
 }

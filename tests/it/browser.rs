@@ -144,6 +144,8 @@ fn the_console_in_a_real_browser() {
             "400",
             "--sim-config",
             "nearly-full.toml",
+            "--public-url",
+            "https://bench.fernhollow.example",
         ],
     );
     let port = free_port();

@@ -113,6 +113,40 @@ pub fn get_json(addr: &str, path: &str) -> serde_json::Value {
     serde_json::from_str(&b).unwrap()
 }
 
+/// What a page's QR code reads (the qrcode crate's SVG: a square path
+/// "M x y h w v h …" per dark module), rasterised here and read back with
+/// rqrr, a QR decoder independent of the encoder.
+pub fn read_qr(page: &str) -> Option<String> {
+    let svg = &page[page.find("<svg")?..];
+    let vb = svg.split("viewBox=\"").nth(1)?.split('"').next()?;
+    let dims: Vec<usize> = vb.split(' ').filter_map(|x| x.parse().ok()).collect();
+    let (w, h) = (*dims.get(2)?, *dims.get(3)?);
+    let mut img = vec![255u8; w * h];
+    let d = svg.split(" d=\"").nth(1)?.split('"').next()?;
+    for m in d.split('M').filter(|m| !m.is_empty()) {
+        let num = |s: &str| -> Option<usize> {
+            s.chars()
+                .take_while(|c| c.is_ascii_digit())
+                .collect::<String>()
+                .parse()
+                .ok()
+        };
+        let x = num(m)?;
+        let y = num(m.split(' ').nth(1)?)?;
+        let dw = num(m.split('h').nth(1)?)?;
+        let dh = num(m.split('v').nth(1)?)?;
+        for yy in y..(y + dh).min(h) {
+            for xx in x..(x + dw).min(w) {
+                img[yy * w + xx] = 0;
+            }
+        }
+    }
+    let mut prepared = rqrr::PreparedImage::prepare_from_greyscale(w, h, |x, y| img[y * w + x]);
+    let grids = prepared.detect_grids();
+    let (_, content) = grids.first()?.decode().ok()?;
+    Some(content)
+}
+
 pub fn bay(addr: &str, name: &str) -> serde_json::Value {
     get_json(addr, "/api/bays")
         .as_array()
@@ -188,6 +222,8 @@ fn a_test_started_stopped_resumed_and_reported_through_the_api() {
             "400",
             "--sim-config",
             "nearly-full.toml",
+            "--public-url",
+            "https://bench.fernhollow.example:8443/",
         ],
     );
     let a = &s.addr;
@@ -288,7 +324,12 @@ fn a_test_started_stopped_resumed_and_reported_through_the_api() {
     );
     assert_eq!(st, 200);
     assert!(label.contains("<svg") && label.contains("Grade"), "{label}");
-    assert!(label.contains(&format!("/packs/FR-C07/runs/{run_id}")));
+    // Its code reads as the public address of the run's page.
+    assert_eq!(
+        read_qr(&label).as_deref(),
+        Some(format!("https://bench.fernhollow.example:8443/packs/FR-C07/runs/{run_id}").as_str()),
+        "{label}"
+    );
     let summary = get_json(a, &format!("/api/packs/FR-C07/runs/{run_id}"));
     assert_eq!(summary["status"], "completed");
     let fleet = get_json(a, "/api/packs");
@@ -755,6 +796,24 @@ name = "measure"
         .find(|e| e["event"] == "step_end" && e["step"] == 1)
         .expect("the step's end");
     assert_eq!(end["end_kind"], "voltage_below", "{end}");
+    // Without --public-url, its label has no code but its ids in text.
+    let (st, _, label) = http(
+        &a,
+        "GET",
+        &format!("/packs/FR-E01/runs/{run_id}/label"),
+        &[],
+        b"",
+    );
+    assert_eq!(st, 200);
+    assert!(
+        !label.contains("<svg") && read_qr(&label).is_none(),
+        "{label}"
+    );
+    assert!(
+        label.contains(&format!("<b>{run_id}</b>")) && label.contains("FR-E01"),
+        "{label}"
+    );
+    assert!(label.contains("without --public-url"), "{label}");
     let left = end["t_s"].as_f64().unwrap() - t_at;
     eprintln!("tile: {eta:.0} s to the end at {t_at:.0} s; it ended {left:.0} s later");
     assert!(
