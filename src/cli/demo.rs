@@ -378,6 +378,7 @@ pub fn run_demo_with(out: &Path, done: &(dyn Fn() + Sync)) -> Result<DemoOutcome
         &fleet,
         &histories,
         "Fernhollow Rides — e-bike battery fleet (fictional demo)",
+        &html::Links::Files(String::new()),
     );
     std::fs::write(&fleet_report, html).map_err(io(&fleet_report))?;
     Ok(DemoOutcome {
@@ -397,7 +398,13 @@ pub fn write_pack_report(
     fa: &trend::FadeAnalysis,
 ) -> Result<PathBuf, DemoError> {
     let path = results.join(&h.pack_id).join("fade.html");
-    let html = html::pack_report(h, fa, &history::capacity_curves(h));
+    // (In the pack's folder: its runs' reports beside it.)
+    let html = html::pack_report(
+        h,
+        fa,
+        &history::capacity_curves(h),
+        &html::Links::Files(String::new()),
+    );
     std::fs::write(&path, html).map_err(io(&path))?;
     Ok(path)
 }

@@ -9,7 +9,7 @@ use analysis::fade::{fleet, trend};
 use anyhow::Context;
 use clap::Args;
 use record::history;
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 #[derive(Debug, Args)]
 pub struct ReportArgs {
@@ -173,7 +173,10 @@ pub fn cmd_fade(a: FadeArgs) -> anyhow::Result<ExitCode> {
         .html
         .clone()
         .unwrap_or_else(|| a.results.join(&a.pack).join("fade.html"));
-    let html = report::html::pack_report(&h, &fa, &history::capacity_curves(&h));
+    // Links to the runs' reports: beside it in the pack's folder, else by
+    // the folder's full path.
+    let links = report::html::Links::Files(folder_from(&out, &a.results.join(&a.pack)));
+    let html = report::html::pack_report(&h, &fa, &history::capacity_curves(&h), &links);
     std::fs::write(&out, html).with_context(|| format!("writing {}", out.display()))?;
     if a.json {
         #[derive(serde::Serialize)]
@@ -248,8 +251,12 @@ pub fn cmd_fleet(a: FleetArgs) -> anyhow::Result<ExitCode> {
                 hs
             }
         };
-        std::fs::write(path, report::html::fleet_report(&f, &hs, "Battery fleet"))
-            .with_context(|| format!("writing {}", path.display()))?;
+        let links = report::html::Links::Files(folder_from(path, &a.results));
+        std::fs::write(
+            path,
+            report::html::fleet_report(&f, &hs, "Battery fleet", &links),
+        )
+        .with_context(|| format!("writing {}", path.display()))?;
     }
     if a.json {
         println!("{}", serde_json::to_string_pretty(&f)?);
@@ -259,6 +266,18 @@ pub fn cmd_fleet(a: FleetArgs) -> anyhow::Result<ExitCode> {
         print!("{}", report::text::fleet(&f));
     }
     Ok(ExitCode::Ok)
+}
+
+/// The path a report written at `page` takes to `folder` in its links:
+/// "" when it is in that folder, else the folder's full path (with a
+/// trailing '/').
+fn folder_from(page: &Path, folder: &Path) -> String {
+    let canon = |p: &Path| p.canonicalize().unwrap_or_else(|_| p.to_path_buf());
+    let folder = canon(folder);
+    match page.parent().map(canon) {
+        Some(dir) if dir == folder => String::new(),
+        _ => format!("{}/", folder.display()),
+    }
 }
 
 #[cfg(test)]

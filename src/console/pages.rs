@@ -46,6 +46,49 @@ pub async fn not_found() -> Response {
         .into_response()
 }
 
+/// Every page's header: the console's name, its two lists, and where the
+/// page is below them (`crumbs`: link and text, the last the page
+/// itself). Reports written for the disk get it when the console serves
+/// them.
+pub fn nav(crumbs: &[(String, String)]) -> String {
+    let esc = report::markup::escape;
+    let mut trail = String::new();
+    for (k, (href, text)) in crumbs.iter().enumerate() {
+        if k + 1 == crumbs.len() {
+            trail.push_str(&format!(
+                " › <span aria-current=\"page\">{}</span>",
+                esc(text)
+            ));
+        } else {
+            trail.push_str(&format!(" › <a href=\"{}\">{}</a>", esc(href), esc(text)));
+        }
+    }
+    format!(
+        "<header class=\"pb-nav\" style=\"font-family:sans-serif;padding:6px 10px;border-bottom:1px solid #ccc;margin-bottom:8px\"><strong>packbench</strong> <nav style=\"display:inline\"><a href=\"/\">Bays</a> · <a href=\"/packs\">Packs</a>{trail}</nav></header>"
+    )
+}
+
+/// A page with the console's header put first in its body.
+pub fn with_nav(html: &str, crumbs: &[(String, String)]) -> String {
+    let header = nav(crumbs);
+    match html
+        .find("<body")
+        .and_then(|k| html[k..].find('>').map(|e| k + e + 1))
+    {
+        Some(at) => format!("{}{header}{}", &html[..at], &html[at..]),
+        None => format!("{header}{html}"),
+    }
+}
+
+/// The crumbs of a run's pages: its pack, then the run.
+fn run_crumbs(pack: &str, run: &str, last: &str) -> Vec<(String, String)> {
+    vec![
+        (format!("/packs/{pack}"), pack.to_string()),
+        (format!("/packs/{pack}/runs/{run}"), format!("run {run}")),
+        (String::new(), last.to_string()),
+    ]
+}
+
 fn page_error(status: StatusCode, what: &str) -> Response {
     let body = format!(
         "<!doctype html><meta charset=\"utf-8\"><title>packbench</title><link rel=\"stylesheet\" href=\"/style.css\"><main><p class=\"error\">{}</p><p><a href=\"/\">Bays</a> · <a href=\"/packs\">Packs</a></p></main>",
@@ -65,12 +108,13 @@ pub async fn pack(State(c): State<Arc<Console>>, Path(pack): Path<String>) -> Re
     };
     let mut fa = analysis::fade::trend::analyze(&h, analysis::fade::END_OF_LIFE_PCT);
     fa.flag_against(chrono::Utc::now().date_naive());
-    Html(report::html::pack_report(
+    let html = report::html::pack_report(
         &h,
         &fa,
         &record::history::capacity_curves(&h),
-    ))
-    .into_response()
+        &report::html::Links::Console,
+    );
+    Html(with_nav(&html, &[(format!("/packs/{pack}"), pack.clone())])).into_response()
 }
 
 /// One run's report (written again from its record when missing).
@@ -84,8 +128,23 @@ pub async fn run(
     let dir = c.results.join(&pack).join(&run);
     // Nothing outside the results folder is served: a pack, run or report
     // that is a symbolic link is refused.
+    let crumbs = [
+        (format!("/packs/{pack}"), pack.clone()),
+        (String::new(), format!("run {run}")),
+    ];
+    let label_link = format!(
+        "<p class=\"sub\"><a data-role=\"label\" href=\"/packs/{p}/runs/{r}/label\">Its label</a></p>",
+        p = report::markup::escape(&pack),
+        r = report::markup::escape(&run)
+    );
+    let served = |html: &str| {
+        let page = with_nav(html, &crumbs);
+        // The label's link under the header.
+        let at = page.find("</header>").map_or(0, |k| k + "</header>".len());
+        Html(format!("{}{label_link}{}", &page[..at], &page[at..])).into_response()
+    };
     match record::write::read_inside(&c.results, &dir.join(record::REPORT_HTML)) {
-        Ok(text) => return Html(text).into_response(),
+        Ok(text) => return served(&text),
         Err(e) if e.kind() == std::io::ErrorKind::PermissionDenied => {
             return page_error(StatusCode::FORBIDDEN, &e.to_string())
         }
@@ -97,7 +156,7 @@ pub async fn run(
         Err(e) => return page_error(StatusCode::NOT_FOUND, &e.to_string()),
     };
     match report::charts::from_log(&summary, &dir.join(record::SAMPLES_CSV)) {
-        Ok(charts) => Html(report::html::run_report(&summary, &charts)).into_response(),
+        Ok(charts) => served(&report::html::run_report(&summary, &charts)),
         Err(e) => page_error(StatusCode::NOT_FOUND, &e.to_string()),
     }
 }
@@ -195,6 +254,7 @@ body {{ margin: 0; font-family: sans-serif }}
 .small {{ font-size: 7pt }}
 .ids {{ font-size: 8pt; font-family: monospace; text-align: right; word-break: break-all; max-width: 24mm }}
 </style>
+{nav}
 <div class="label" id="label">
 <div class="text"><div class="id">{pack_e}</div><div class="grade">Grade {grade_e}</div>
 <div class="small">SOH {soh} · {cap}</div><div class="small">Tested {date}</div></div>
@@ -206,6 +266,10 @@ body {{ margin: 0; font-family: sans-serif }}
         grade_e = esc(&grade),
         date = esc(&s.test_date.to_string()),
         page = esc(&page),
+        nav = format!(
+            "<div class=\"noprint\">{}</div>",
+            nav(&run_crumbs(&pack, &run, "label"))
+        ),
     );
     Html(body).into_response()
 }

@@ -18,9 +18,10 @@
 //!   charge is not known yet (a discharge to empty at the run's start, a
 //!   run resumed), the dry run's charge for the step (the same plan played
 //!   on the simulated pack, computed off the control path once the run is
-//!   paced) less the charge the step has counted, at the present current.
-//!   Nothing is shown when no estimate applies (a taper, a rest to
-//!   settle).
+//!   paced) less the charge the step has counted, at the present current;
+//!   a charge in its taper: the dry run's time for the step less the time
+//!   it has run. Nothing is shown when no estimate applies (a rest to
+//!   settle, no dry run).
 //! - **After the outputs are confirmed off** the tile reads zero current
 //!   and power; **after a resume** inside a step that goes on, the step's
 //!   kind, elapsed time and counted charge continue from the log.
@@ -370,7 +371,14 @@ impl<'a> Estimator<'a> {
                     if let StepKind::Charge { voltage_v, .. } = &st.kind {
                         // Constant current still: the missing charge at
                         // this current; the taper comes after.
-                        if s.current_a > 1e-6 && s.voltage_v < 0.98 * voltage_v {
+                        let taper = s.voltage_v >= 0.98 * voltage_v;
+                        if taper {
+                            // In its taper: what the dry run's step took,
+                            // less what this one has run.
+                            if let Some(f) = self.forecast.as_ref().and_then(|f| f.step(s.step)) {
+                                offer(f.duration_s - elapsed, false);
+                            }
+                        } else if s.current_a > 1e-6 {
                             match soc {
                                 Some(x) => {
                                     offer((1.0 - x).max(0.0) * self.capacity_ah / i * 3600.0, true)
@@ -750,5 +758,25 @@ name = "p"
         assert_eq!(l.step_elapsed_s, 2385.0);
         // The 7 h cap less the 2385 s the step has run.
         assert_eq!(l.eta_s, Some((7.0 * 3600.0 - 2385.0, false)));
+    }
+
+    /// A charge in its taper: the dry run's time for the step less the
+    /// time it has run (not the 5 h cap).
+    #[test]
+    fn a_taper_takes_the_dry_runs_time() {
+        let p = plan();
+        let forecast = vec![StepForecast {
+            step: 1,
+            kind: StepType::Charge,
+            duration_s: 3.0 * 3600.0,
+            ah: 8.0,
+            end_kind: Some(EndKind::CurrentBelow),
+            end_reason: String::new(),
+        }];
+        let mut e = Estimator::new(&p).with_forecast(Some(ForecastCell::ready(forecast)));
+        let mut l = Live::default();
+        e.sample(&s(0.0, 1, 40.0, 5.0), &mut l);
+        e.sample(&s(7200.0, 1, 42.0, 1.0), &mut l);
+        assert_eq!(l.eta_s, Some((3600.0, false)));
     }
 }

@@ -240,9 +240,49 @@ fn the_console_in_a_real_browser() {
         assert!(label.contains("FR-C21") && label.contains("Grade"), "{label}");
         assert!(c.find(Locator::Css("#label svg")).await.is_ok(), "a QR code");
         shot(&c, "console-label.png").await;
-        // The packs page lists it.
+        // From the packs page, every run's report and label by clicks
+        // only: pack → its runs → report, back to the pack by the header,
+        // → label, back; then the next pack by the header's "Packs".
+        for b in ["2", "3"] {
+            assert!(wait_until(Duration::from_secs(120), || bay(&addr, b)["state"] == "completed"));
+        }
         c.goto(&format!("{base}/packs")).await.unwrap();
         wait_text(&c, "#packs tbody", Duration::from_secs(10), |t| t.contains("FR-C21")).await;
+        shot(&c, "console-packs.png").await;
+        let packs: Vec<String> = {
+            let mut v = Vec::new();
+            for a in c.find_all(Locator::Css("#packs tbody td a")).await.unwrap() {
+                v.push(a.text().await.unwrap());
+            }
+            v
+        };
+        assert_eq!(packs.len(), 3, "{packs:?}");
+        let mut seen = 0;
+        for pack in &packs {
+            click(&c, &format!("#packs tbody a[href='/packs/{pack}']")).await;
+            let runs = c.find_all(Locator::Css("#runs a[data-role=run-report]")).await.unwrap().len();
+            assert!(runs >= 1, "{pack}: no run listed");
+            for k in 0..runs {
+                let nth = |role: &str| format!("#runs tr:nth-child({}) a[data-role={role}]", k + 2);
+                let run = c.find(Locator::Css(&nth("run-report"))).await.unwrap().text().await.unwrap();
+                click(&c, &nth("run-report")).await;
+                let h1 = wait_text(&c, "h1", Duration::from_secs(10), |t| !t.is_empty()).await;
+                assert!(h1.contains(pack.as_str()), "{h1}");
+                let id = run.trim_start_matches("run ");
+                let body = c.find(Locator::Css("body")).await.unwrap().text().await.unwrap();
+                assert!(body.contains(&format!("run {id}")), "{run}");
+                click(&c, &format!("header.pb-nav a[href='/packs/{pack}']")).await;
+                click(&c, &nth("run-label")).await;
+                let label = wait_text(&c, "#label", Duration::from_secs(10), |t| !t.is_empty()).await;
+                assert!(label.contains(pack.as_str()) && label.contains("Grade"), "{label}");
+                assert!(c.find(Locator::Css("#label svg")).await.is_ok(), "a QR code");
+                click(&c, &format!("header.pb-nav a[href='/packs/{pack}']")).await;
+                seen += 1;
+            }
+            click(&c, "header a[href='/packs']").await;
+            wait_text(&c, "#packs tbody", Duration::from_secs(10), |t| t.contains(pack.as_str())).await;
+        }
+        assert!(seen >= 3, "{seen} runs reached");
         c.close().await.unwrap();
     });
 }

@@ -43,6 +43,44 @@ fn page(title: &str, body: &str) -> String {
     )
 }
 
+/// How a report links to the others: as the files of a results folder
+/// (a report opened from the disk), or as the console's pages.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Links {
+    /// The path from the page to the folder its links start from (the
+    /// pack's folder for a pack's report, the results folder for the
+    /// fleet's), "" when the page is in it, else ending in '/'.
+    Files(String),
+    /// The console's pages (`/packs/…`).
+    Console,
+}
+
+impl Links {
+    /// A pack's page: its fade report.
+    pub fn pack(&self, pack: &str) -> String {
+        match self {
+            Links::Files(base) => format!("{base}{pack}/fade.html"),
+            Links::Console => format!("/packs/{pack}"),
+        }
+    }
+
+    /// A run's report, from its pack's page.
+    pub fn run(&self, pack: &str, run: &str) -> String {
+        match self {
+            Links::Files(base) => format!("{base}{run}/report.html"),
+            Links::Console => format!("/packs/{pack}/runs/{run}"),
+        }
+    }
+
+    /// A run's label (the console prints them).
+    pub fn label(&self, pack: &str, run: &str) -> Option<String> {
+        match self {
+            Links::Files(_) => None,
+            Links::Console => Some(format!("/packs/{pack}/runs/{run}/label")),
+        }
+    }
+}
+
 fn f(v: Option<f64>, d: usize) -> String {
     crate::text::opt_or(v, d, "–")
 }
@@ -1102,6 +1140,7 @@ pub fn pack_report(
     h: &PackHistory,
     fa: &FadeAnalysis,
     curves_by_run: &[(String, Vec<(f64, f64)>)],
+    links: &Links,
 ) -> String {
     let mut b = String::new();
     let spec = &h.spec;
@@ -1161,7 +1200,7 @@ pub fn pack_report(
     pulse_r50_chart(&mut b, h);
     group_spread_chart(&mut b, h);
     overlay_chart(&mut b, curves_by_run);
-    pack_tables(&mut b, h, fa);
+    pack_tables(&mut b, h, fa, links);
     page(&format!("packbench — fade of {}", h.pack_id), &b)
 }
 
@@ -1385,7 +1424,7 @@ fn overlay_chart(b: &mut String, curves_by_run: &[(String, Vec<(f64, f64)>)]) {
 }
 
 /// The models, the measurements and the runs left out.
-fn pack_tables(b: &mut String, h: &PackHistory, fa: &FadeAnalysis) {
+fn pack_tables(b: &mut String, h: &PackHistory, fa: &FadeAnalysis, links: &Links) {
     let _ = write!(b, "<h2>Models</h2><table><tr><th class=\"l\">model</th><th>slope</th><th class=\"l\">unit</th><th>R²</th><th>points</th></tr>");
     for m in &fa.models {
         let _ = write!(
@@ -1398,8 +1437,34 @@ fn pack_tables(b: &mut String, h: &PackHistory, fa: &FadeAnalysis) {
             m.fit.n
         );
     }
-    let _ = write!(b, "</table><h2>Measurements</h2><table><tr><th class=\"l\">date</th><th>cycles</th><th>capacity (Ah)</th><th>SOH (%)</th><th>resistance (mΩ)</th><th>CE (%)</th><th class=\"l\">grade</th><th class=\"l\">source</th></tr>");
+    let _ = write!(b, "</table><h2>Runs and their verdicts</h2><table id=\"runs\"><tr><th class=\"l\">date</th><th>cycles</th><th>capacity (Ah)</th><th>SOH (%)</th><th>resistance (mΩ)</th><th>CE (%)</th><th class=\"l\">grade</th><th class=\"l\">source</th></tr>");
+    // A run's own pages, where the point is a run of ours.
+    let run_cell = |run: &str, text: &str| {
+        let mut cell = format!(
+            "<a data-role=\"run-report\" href=\"{}\">{}</a>",
+            escape(&links.run(&h.pack_id, run)),
+            escape(text)
+        );
+        if let Some(l) = links.label(&h.pack_id, run) {
+            let _ = write!(
+                cell,
+                " · <a data-role=\"run-label\" href=\"{}\">label</a>",
+                escape(&l)
+            );
+        }
+        cell
+    };
+    let run_of = |p: &analysis::fade::history::HistoryPoint| {
+        p.run_dir
+            .as_ref()
+            .and_then(|d| d.file_name())
+            .map(|n| n.to_string_lossy().into_owned())
+    };
     for p in &h.points {
+        let source = match run_of(p) {
+            Some(run) => run_cell(&run, &p.source),
+            None => escape(&p.source),
+        };
         let _ = write!(
             b,
             "<tr><td class=\"l\">{}</td><td>{}{}</td><td>{:.3}</td><td>{:.2}</td><td>{}</td><td>{}</td><td class=\"l\">{}</td><td class=\"l\">{}</td></tr>",
@@ -1417,7 +1482,7 @@ fn pack_tables(b: &mut String, h: &PackHistory, fa: &FadeAnalysis) {
             f(p.resistance_mohm, 1),
             f(p.coulombic_efficiency_pct, 2),
             escape(p.grade.as_deref().unwrap_or("")),
-            escape(&p.source)
+            source
         );
     }
     let _ = write!(b, "</table>");
@@ -1438,7 +1503,7 @@ fn pack_tables(b: &mut String, h: &PackHistory, fa: &FadeAnalysis) {
             let _ = write!(
                 b,
                 "<li>{} — {}: {}</li>",
-                escape(&l.run_id),
+                run_cell(&l.run_id, &l.run_id),
                 l.status.name(),
                 escape(&l.reason)
             );
@@ -1449,7 +1514,12 @@ fn pack_tables(b: &mut String, h: &PackHistory, fa: &FadeAnalysis) {
 
 /// The fleet report. `histories` gives each pack's points for the
 /// fleet-wide plot.
-pub fn fleet_report(fleet: &Fleet, histories: &[PackHistory], title: &str) -> String {
+pub fn fleet_report(
+    fleet: &Fleet,
+    histories: &[PackHistory],
+    title: &str,
+    links: &Links,
+) -> String {
     let mut b = String::new();
     let _ = write!(
         b,
@@ -1468,7 +1538,11 @@ pub fn fleet_report(fleet: &Fleet, histories: &[PackHistory], title: &str) -> St
             b,
             "<tr><td>{}</td><td class=\"l\">{}</td><td class=\"l\">{} {}S</td><td>{}</td><td class=\"l\">{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td class=\"l\">{}</td><td class=\"l\"><b>{}</b></td><td class=\"l flag\">{}</td></tr>",
             r.rank,
-            escape(&r.pack_id),
+            format!(
+                "<a href=\"{}\">{}</a>",
+                escape(&links.pack(&r.pack_id)),
+                escape(&r.pack_id)
+            ),
             r.chemistry.name(),
             r.series,
             r.tests,
