@@ -1538,7 +1538,7 @@ pub fn fleet_report(
             b,
             "<tr><td>{}</td><td class=\"l\">{}</td><td class=\"l\">{} {}S</td><td>{}</td><td class=\"l\">{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td class=\"l\">{}</td><td class=\"l\"><b>{}</b></td><td class=\"l flag\">{}</td></tr>",
             r.rank,
-            format!(
+            format_args!(
                 "<a href=\"{}\">{}</a>",
                 escape(&links.pack(&r.pack_id)),
                 escape(&r.pack_id)
