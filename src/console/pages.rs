@@ -266,7 +266,7 @@ body {{ margin: 0; font-family: sans-serif }}
         grade_e = esc(&grade),
         date = esc(&s.test_date.to_string()),
         page = esc(&page),
-        nav = format!(
+        nav = format_args!(
             "<div class=\"noprint\">{}</div>",
             nav(&run_crumbs(&pack, &run, "label"))
         ),
