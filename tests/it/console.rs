@@ -661,16 +661,10 @@ fn ctrl_c_ends_the_console_with_a_stream_open_and_slow_requests_are_cut() {
     assert!(r.is_ok(), "{r:?}");
 }
 
-/// The tiles tell the truth (issue 32): a discharge to empty from a state
-/// the run does not know shows a time to its end within 10 % of the time
-/// it took (the dry run's charge at the measured current, not the 7 h
-/// cap); after Stop the tile reads zero current and power; a console
-/// restarted after it offers the interrupted run, and resumed, the step
-/// keeps its kind and its charge goes on from where it was.
-#[test]
-fn tiles_tell_the_time_to_end_zeros_after_stop_and_totals_across_a_resume() {
-    let dir = tempfile::tempdir().unwrap();
-    let d = dir.path();
+/// A procedure that discharges to empty at 0.5C (7 h cap), and an
+/// earlier run of it for FR-E01 (no capacity step, so no state of
+/// health: due, and said why).
+fn to_empty_with_an_earlier_run(d: &Path) {
     let p = d.join("procedures");
     std::fs::create_dir_all(&p).unwrap();
     std::fs::write(
@@ -715,6 +709,19 @@ name = "measure"
         "--quiet",
     ]);
     assert!(out.status.success(), "{}", text(&out.stderr));
+}
+
+/// The tiles tell the truth (issue 32): a discharge to empty from a state
+/// the run does not know shows a time to its end within 10 % of the time
+/// it took (the dry run's charge at the measured current, not the 7 h
+/// cap); after Stop the tile reads zero current and power; a console
+/// restarted after it offers the interrupted run, and resumed, the step
+/// keeps its kind and its charge goes on from where it was.
+#[test]
+fn tiles_tell_the_time_to_end_zeros_after_stop_and_totals_across_a_resume() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    to_empty_with_an_earlier_run(d);
     let args = ["--sim", "2", "--listen", "127.0.0.1:0", "--speed", "400"];
     let s = serve(d, &args);
     let row = |a: &str| {
