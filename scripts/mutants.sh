@@ -75,6 +75,10 @@ for t in "${targets[@]}"; do
     # crate's test time) call only ecm.rs and characterize.rs: a mutant
     # elsewhere is tested without them, which can only lower its score.
     skip=()
+    profile=mutants
+    case "$t" in
+        characterize) profile=mutants-fits ;;
+    esac
     case "$t" in
         analysis | characterize) ;;
         *) skip=(--cargo-test-arg=-- --cargo-test-arg=--skip --cargo-test-arg=ecm:: \
@@ -92,7 +96,7 @@ for t in "${targets[@]}"; do
     # The globs are cargo-mutants' own: not expanded by the shell.
     set -f
     # shellcheck disable=SC2086
-    cargo mutants $args --profile mutants --cargo-test-arg=--lib "${skip[@]}" "${only[@]}" -j "$JOBS" \
+    cargo mutants $args --profile "$profile" --cargo-test-arg=--lib "${skip[@]}" "${only[@]}" -j "$JOBS" \
         --minimum-test-timeout 30 ${SHARD:+--shard "$SHARD" --sharding round-robin} ${ITERATE:+--iterate} \
         -o "$dir" || true
     set +f
