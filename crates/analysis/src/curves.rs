@@ -559,4 +559,24 @@ mod tests {
         );
         assert_eq!(c[2].1, 3.8);
     }
+
+    /// Nothing to bin: one point, or a bin of no width.
+    #[test]
+    fn no_incremental_capacity_from_one_point_or_no_bin() {
+        assert!(incremental_capacity(&[(0.0, 3.7)], 0.01).is_empty());
+        let line = [(0.0, 3.6), (1.0, 3.8), (2.0, 4.0)];
+        assert!(incremental_capacity(&line, 0.0).is_empty());
+        assert!(!incremental_capacity(&line, 0.01).is_empty());
+    }
+
+    /// A rise to a plateau at the end is no peak (as
+    /// `scipy.signal.find_peaks([0, 1, 2, 2, 2])` finds none); a plateau
+    /// inside is one, at its middle sample.
+    #[test]
+    fn a_plateau_at_the_end_is_no_peak() {
+        assert!(find_peaks(&[0.0, 1.0, 2.0, 2.0, 2.0], 0.0).is_empty());
+        let p = find_peaks(&[0.0, 1.0, 2.0, 2.0, 2.0, 1.0], 0.0);
+        assert_eq!(p.len(), 1);
+        assert_eq!(p[0].index, 3);
+    }
 }
