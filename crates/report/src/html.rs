@@ -24,6 +24,7 @@ table { border-collapse: collapse; margin: 8px 0; font-size: 13px; }
 th, td { border: 1px solid #ccc; padding: 3px 8px; text-align: right; white-space: nowrap; }
 th { background: #f2f2f2; } td.l, th.l { text-align: left; }
 td.wrap { white-space: normal; max-width: 46em; }
+td.flag { white-space: normal; min-width: 14em; }
 .status-completed { color: #1a7f1a; } .status-aborted, .status-interrupted { color: #b00; }
 .card { border: 2px solid #222; padding: 12px 16px; width: 420px; page-break-inside: avoid; }
 .card .grade { font-size: 56px; font-weight: bold; float: right; margin-left: 12px; line-height: 1; }
@@ -1108,9 +1109,14 @@ fn add_fit_with_band(
     let xs: Vec<f64> = (0..=60)
         .map(|k| range.0 + (range.1 - range.0) * k as f64 / 60.0)
         .collect();
+    // The line by its two ends: straight, not a polyline of rounded
+    // pixels.
     c.series.push(Series {
         name: name.into(),
-        points: xs.iter().map(|x| (*x, fit.predict(x - offset))).collect(),
+        points: [range.0, range.1]
+            .iter()
+            .map(|x| (*x, fit.predict(x - offset)))
+            .collect(),
         color: svg::GREY_,
         mark: Mark::Line,
     });
@@ -1520,7 +1526,9 @@ pub fn fleet_report(
     title: &str,
     links: &Links,
 ) -> String {
-    let mut b = String::new();
+    // (The fleet's table is wide: the page takes up to 1360 px, its flags
+    // wrap, so that it fits a 1400 px window without a scroll bar.)
+    let mut b = String::from("<style>body { max-width: 1360px; }</style>");
     let _ = write!(
         b,
         "<h1>{}</h1><p class=\"sub\">{} packs · as of {} · tests due by {} · end of life at {} % of rated</p>",

@@ -94,3 +94,46 @@ fn a_chart_draws_its_series_and_escapes_its_text() {
     let svg = render(&empty);
     assert!(svg.contains("Resistance: no data"), "{svg}");
 }
+
+/// One point on a date axis: an axis of weeks around its day, not a
+/// century (1972 to 2081 before); one at cycle 0: an axis a cycle wide.
+#[test]
+fn one_point_gets_an_axis_around_it() {
+    use crate::svg::{render, Chart, Mark, Series};
+    let day = |y: i32, m: u32, d: u32| {
+        use chrono::Datelike;
+        f64::from(
+            chrono::NaiveDate::from_ymd_opt(y, m, d)
+                .unwrap()
+                .num_days_from_ce(),
+        )
+    };
+    let mut c = Chart::new("SOH", "date", "%");
+    c.x_is_date = true;
+    c.series.push(Series {
+        name: "tests".into(),
+        points: vec![(day(2026, 6, 1), 95.0)],
+        color: crate::svg::palette(0),
+        mark: Mark::Dots,
+    });
+    let svg = render(&c);
+    assert!(svg.contains("2026-0"), "{svg}");
+    for far in ["1972", "2081", "2025-", "2027-"] {
+        assert!(!svg.contains(far), "{far} on a one-point axis");
+    }
+    let mut c = Chart::new("SOH", "cycles", "%");
+    c.series.push(Series {
+        name: "tests".into(),
+        points: vec![(0.0, 95.0)],
+        color: crate::svg::palette(0),
+        mark: Mark::Dots,
+    });
+    let svg = render(&c);
+    // Ticks at ±0.2 and ±0.4 (the axis −0.55 to 0.55), none at a
+    // hundredth of a cycle.
+    assert!(
+        svg.contains("\n0.40\n") && svg.contains("\n-0.40\n"),
+        "{svg}"
+    );
+    assert!(!svg.contains("0.04"), "{svg}");
+}

@@ -115,7 +115,11 @@ pub fn thin(points: &[(f64, f64)], max: usize) -> Vec<(f64, f64)> {
     out
 }
 
-fn range(values: impl Iterator<Item = f64>) -> Option<(f64, f64)> {
+/// The axis range of some values, 5 % padded, at least `min_span` wide
+/// (centred on them): one point, or two close together, get an axis of
+/// that width around them, not one scaled from their size (a date's day
+/// number would give a century).
+fn range(values: impl Iterator<Item = f64>, min_span: f64) -> Option<(f64, f64)> {
     let (mut lo, mut hi) = (f64::INFINITY, f64::NEG_INFINITY);
     for v in values.filter(|v| v.is_finite()) {
         lo = lo.min(v);
@@ -124,12 +128,27 @@ fn range(values: impl Iterator<Item = f64>) -> Option<(f64, f64)> {
     if !lo.is_finite() {
         return None;
     }
-    if hi - lo < 1e-9 {
-        let pad = lo.abs().max(1.0) * 0.05;
-        return Some((lo - pad, hi + pad));
+    // (For y, where no width is given: a tenth of the value, or 1.)
+    let span = if min_span > 0.0 {
+        min_span
+    } else {
+        (0.5 * (lo + hi)).abs().max(10.0) * 0.1
+    };
+    if hi - lo < span {
+        let mid = 0.5 * (lo + hi);
+        (lo, hi) = (mid - 0.5 * span, mid + 0.5 * span);
     }
     let pad = (hi - lo) * 0.05;
     Some((lo - pad, hi + pad))
+}
+
+/// The least width of a chart's x axis: two months of dates, else 1.
+fn x_min_span(c: &Chart) -> f64 {
+    if c.x_is_date {
+        60.0
+    } else {
+        1.0
+    }
 }
 
 fn date_label(v: f64) -> String {
@@ -175,7 +194,7 @@ pub fn render(c: &Chart) -> String {
                 .filter(|s| s.mark == Mark::Bars)
                 .map(|_| 0.0),
         );
-    let (Some(xr), Some(yr)) = (range(xs), range(ys)) else {
+    let (Some(xr), Some(yr)) = (range(xs, x_min_span(c)), range(ys, 0.0)) else {
         return no_data(c);
     };
     let mut out = String::new();
