@@ -4,7 +4,7 @@ use crate::session::error::RunError;
 use crate::session::request::Speed;
 use chrono::NaiveDate;
 use clap::Args;
-use model::pack::{parse_rate, Chemistry, PackSpec};
+use model::pack::{parse_rate, PackSpec};
 use model::simconfig::SimConfig;
 use model::units;
 use std::path::PathBuf;
@@ -17,7 +17,7 @@ pub struct PackArgs {
     pub chemistry: Option<String>,
     /// Cells in series.
     #[arg(long)]
-    pub series: Option<u32>,
+    pub series: Option<String>,
     /// Rated capacity, e.g. 14Ah or 2800mAh.
     #[arg(long)]
     pub rated: Option<String>,
@@ -46,29 +46,17 @@ pub fn pack_from_args(a: &PackArgs) -> Result<Option<PackSpec>, RunError> {
         }
         return Ok(None);
     }
-    let missing: Vec<&str> = [
-        ("--chemistry", a.chemistry.is_none()),
-        ("--series", a.series.is_none()),
-        ("--rated", a.rated.is_none()),
-    ]
-    .iter()
-    .filter(|(_, m)| *m)
-    .map(|(n, _)| *n)
-    .collect();
-    if !missing.is_empty() {
-        return Err(RunError::arguments(format!(
-            "a pack spec needs {}",
-            missing.join(", ")
-        )));
-    }
-    let chemistry: Chemistry = a
-        .chemistry
-        .as_deref()
-        .unwrap_or_default()
-        .parse()
-        .map_err(RunError::arguments)?;
-    let rated = units::capacity_ah(a.rated.as_deref().unwrap_or_default())
-        .map_err(|e| RunError::arguments(format!("--rated: {e}")))?;
+    // The three words as the console's form reads them: the same
+    // refusals, named by the option.
+    let base = crate::session::stations::pack_spec(
+        a.chemistry.as_deref(),
+        a.series.as_deref(),
+        a.rated.as_deref(),
+    )
+    .map_err(|e| RunError::arguments(format!("{}: {}", e.field.option(), e.message)))?;
+    let Some(base) = base else {
+        return Ok(None);
+    };
     let energy = a
         .rated_energy
         .as_deref()
@@ -90,11 +78,9 @@ pub fn pack_from_args(a: &PackArgs) -> Result<Option<PackSpec>, RunError> {
         .map(|r| r * 1000.0);
     let spec = PackSpec {
         rated_resistance_mohm: resistance,
-        chemistry,
-        series: a.series.unwrap_or(0),
-        rated_capacity_ah: rated,
         rated_energy_wh: energy,
         rated_rate_c: rate,
+        ..base
     };
     spec.check().map_err(RunError::arguments)?;
     Ok(Some(spec))

@@ -8,7 +8,6 @@ use crate::session::error::RunError;
 use crate::session::live::{Board, BoardState, Live};
 use crate::session::request::{PackSource, RunOptions, RunReport, RunRequest, Speed, StationJob};
 use engine::control::StopHandle;
-use model::pack::PackSpec;
 use serde::Serialize;
 use sim::SimConfig;
 use std::collections::BTreeMap;
@@ -323,13 +322,17 @@ pub fn request(
             ),
         );
     }
-    let pack = match spec_of(form) {
+    let pack = match crate::session::stations::pack_spec(
+        Some(&form.chemistry),
+        Some(&form.series),
+        Some(&form.rated),
+    ) {
         Ok(Some(spec)) => PackSource::Given(spec),
         Ok(None) => PackSource::Saved {
             allow_sim_default: matches!(bay.kind, BayKind::Sim { .. }),
         },
-        Err((field, m)) => {
-            errors.0.insert(field, m);
+        Err(e) => {
+            errors.0.insert(e.field.form_name().into(), e.message);
             PackSource::Saved {
                 allow_sim_default: false,
             }
@@ -347,51 +350,26 @@ pub fn request(
     })
 }
 
-/// The pack spec the form gives, none when it gives none.
-fn spec_of(form: &StartForm) -> Result<Option<PackSpec>, (String, String)> {
-    let (c, s, r) = (form.chemistry.trim(), form.series.trim(), form.rated.trim());
-    if c.is_empty() && s.is_empty() && r.is_empty() {
-        return Ok(None);
-    }
-    let chemistry = c
-        .parse()
-        .map_err(|e: String| ("chemistry".to_string(), e))?;
-    let series: u32 = s
-        .parse()
-        .ok()
-        .filter(|n| (1..=1000).contains(n))
-        .ok_or_else(|| {
-            (
-                "series".to_string(),
-                format!("'{s}' is not a number of cells in series (1 to 1000)"),
-            )
-        })?;
-    let rated =
-        model::units::capacity_ah(r).map_err(|e| ("rated".to_string(), format!("'{r}': {e}")))?;
-    let spec = PackSpec {
-        chemistry,
-        series,
-        rated_capacity_ah: rated,
-        rated_energy_wh: None,
-        rated_rate_c: None,
-        rated_resistance_mohm: None,
-    };
-    spec.check().map_err(|e| ("rated".to_string(), e))?;
-    Ok(Some(spec))
-}
-
-/// Which field a refusal of `prepare` belongs to.
+/// Which field a refusal of `prepare` belongs to: by its kind, never by
+/// its words.
 pub fn field_of(e: &RunError) -> FieldErrors {
     use crate::session::error::InputError;
-    let text = e.to_string();
     let field = match e {
         RunError::Input(InputError::PackId(_)) => "pack_id",
-        RunError::Input(InputError::Located(_)) if text.contains("pack.toml") => "rated",
+        RunError::Input(InputError::Field(f)) => f.field.form_name(),
+        // A saved pack spec that does not read is the spec's; any other
+        // located error is the procedure's.
+        RunError::Input(InputError::Located(l))
+            if l.0
+                .iter()
+                .any(|x| x.location.file.ends_with(record::PACK_TOML)) =>
+        {
+            "rated"
+        }
         RunError::Input(InputError::Located(_)) => "procedure",
-        _ if text.contains("pack") && text.contains("spec") => "rated",
         _ => "",
     };
-    FieldErrors::one(field, text)
+    FieldErrors::one(field, e.to_string())
 }
 
 /// A job for a prepared request on a bay.

@@ -35,6 +35,10 @@ pub enum InputError {
     /// A run folder's record that does not read.
     #[error(transparent)]
     Record(#[from] ReadError),
+    /// A refusal of one field of what starts a run (the form's field, the
+    /// command line's option).
+    #[error(transparent)]
+    Field(#[from] crate::session::stations::FieldError),
 }
 
 /// Something failed while the session ran.
@@ -84,6 +88,12 @@ impl From<InputErrors> for RunError {
 
 impl From<PackIdError> for RunError {
     fn from(e: PackIdError) -> Self {
+        RunError::Input(e.into())
+    }
+}
+
+impl From<crate::session::stations::FieldError> for RunError {
+    fn from(e: crate::session::stations::FieldError) -> Self {
         RunError::Input(e.into())
     }
 }

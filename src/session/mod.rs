@@ -16,6 +16,7 @@ pub mod prepare;
 pub mod quick;
 pub mod request;
 pub mod resume;
+pub mod stations;
 
 pub use crate::session::request::{
     PackSource, Prepared, RunOptions, RunReport, RunRequest, Speed, StationJob,

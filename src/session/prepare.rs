@@ -7,6 +7,7 @@ use crate::session::request::default_sim_pack;
 use crate::session::request::PackSource;
 use crate::session::request::Prepared;
 use crate::session::request::RunRequest;
+use crate::session::stations::{Field, FieldError};
 use instrument::profile::{Profile, ProfileRole};
 use model::location::{InputErrors, LocatedError, Location};
 use model::pack::{check_pack_id, PackSpec};
@@ -35,12 +36,15 @@ pub fn resolve_pack(
         None
     };
     match (source, saved) {
-        (PackSource::Given(g), Some(s)) if *g != s => Err(RunError::arguments(format!(
-            "pack '{pack_id}' was first tested as {} {}S {} Ah ({}); give the same spec, leave it out to reuse it, or use a new pack id",
-            s.chemistry,
-            s.series,
-            s.rated_capacity_ah,
-            saved_path.display()
+        (PackSource::Given(g), Some(s)) if *g != s => Err(RunError::from(FieldError::new(
+            Field::Rated,
+            format!(
+                "pack '{pack_id}' was first tested as {} {}S {} Ah ({}); give the same spec, leave it out to reuse it, or use a new pack id",
+                s.chemistry,
+                s.series,
+                s.rated_capacity_ah,
+                saved_path.display()
+            ),
         ))),
         (PackSource::Given(g), saved) => Ok((g.clone(), saved.is_none(), None)),
         (PackSource::Saved { .. }, Some(s)) => Ok((s, false, Some(format!("pack spec from {}", saved_path.display())))),
@@ -55,8 +59,9 @@ pub fn resolve_pack(
                 )),
             ))
         }
-        (PackSource::Saved { allow_sim_default: false }, None) => Err(RunError::arguments(format!(
-            "no pack spec for '{pack_id}': give --chemistry, --series and --rated, or --pack-spec FILE"
+        (PackSource::Saved { allow_sim_default: false }, None) => Err(RunError::from(FieldError::new(
+            Field::Rated,
+            format!("no pack spec for '{pack_id}': give its chemistry, series and rated capacity (--chemistry, --series and --rated, or --pack-spec FILE)"),
         ))),
     }
 }

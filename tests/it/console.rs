@@ -852,3 +852,68 @@ fn tiles_tell_the_time_to_end_zeros_after_stop_and_totals_across_a_resume() {
     // 0.06 Ah: more than that, and a restart from zero, would show).
     assert!(now < before && now > before - 1.0, "{now} after {before}");
 }
+
+/// The command line and the console refuse the same bad inputs in the
+/// same words (issue 32): each row through `packbench run` and through the
+/// start form's check. The console places the refusal by its field; the
+/// command line names the option; nothing starts either way.
+#[test]
+fn the_command_line_and_the_console_refuse_alike() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let procedures = quick_procedures(d);
+    let s = serve(d, &["--sim", "1", "--listen", "127.0.0.1:0"]);
+    // (pack id, chemistry, series, rated: blank is not given; the field)
+    let rows = [
+        ("../x", "li-ion", "10", "14Ah", "pack_id"),
+        ("FR-T1", "nicd", "10", "14Ah", "chemistry"),
+        ("FR-T1", "li-ion", "0", "14Ah", "series"),
+        ("FR-T1", "li-ion", "ten", "14Ah", "series"),
+        ("FR-T1", "li-ion", "10", "14V", "rated"),
+        ("FR-T1", "li-ion", "10", "-3Ah", "rated"),
+        ("FR-T1", "li-ion", "10", "", "rated"),
+        ("FR-T1", "li-ion", "", "", "series"),
+    ];
+    for (pack, chemistry, series, rated, field) in rows {
+        let form = serde_json::json!({
+            "pack_id": pack, "procedure": "quick-check.toml",
+            "chemistry": chemistry, "series": series, "rated": rated
+        });
+        let (st, r) = post(&s.addr, "/api/bays/1/check", &form);
+        assert_eq!(st, 422, "{form}: {r}");
+        let errors = r["errors"].as_object().unwrap();
+        assert_eq!(errors.len(), 1, "{form}: {r}");
+        let said = errors[field]
+            .as_str()
+            .unwrap_or_else(|| panic!("{field}: {r}"));
+        let mut args = vec![
+            "run".to_string(),
+            procedures.join("quick-check.toml").display().to_string(),
+            "--pack".into(),
+            pack.into(),
+            "--results".into(),
+            d.join("results").display().to_string(),
+            "--quiet".into(),
+        ];
+        for (opt, v) in [
+            ("--chemistry", chemistry),
+            ("--series", series),
+            ("--rated", rated),
+        ] {
+            if !v.is_empty() {
+                // (As one word: a value may start with '-'.)
+                args.push(format!("{opt}={v}"));
+            }
+        }
+        let args: Vec<&str> = args.iter().map(String::as_str).collect();
+        let out = packbench(&args);
+        assert_eq!(out.status.code(), Some(2), "{args:?}");
+        let err = text(&out.stderr);
+        assert!(
+            err.contains(said),
+            "{field}: the console said\n  {said}\nthe command line said\n  {err}"
+        );
+    }
+    assert!(!d.join("results").join("FR-T1").exists());
+    assert_eq!(bay(&s.addr, "1")["state"], "idle");
+}
