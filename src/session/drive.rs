@@ -339,7 +339,27 @@ pub async fn drive(
     };
     let forecast = (board.is_some() && paced_run).then(|| {
         let cfg = sim.as_ref().map(|s| s.config.clone()).unwrap_or_default();
-        crate::session::live::ForecastCell::spawn(p.procedure.plan.clone(), cfg)
+        let cell = crate::session::live::ForecastCell::default();
+        let fill = cell.clone();
+        let plan = p.procedure.plan.clone();
+        // A thread of its own: the dry run never delays a sample. (Without
+        // the thread the cell stays empty.)
+        let _ = std::thread::Builder::new()
+            .name("forecast".into())
+            .spawn(move || {
+                let f = crate::session::forecast::forecast(&plan, &cfg);
+                fill.set(
+                    f.steps
+                        .iter()
+                        .map(|s| crate::session::live::Expected {
+                            step: s.step,
+                            duration_s: s.duration_s,
+                            ah: s.ah,
+                        })
+                        .collect(),
+                );
+            });
+        cell
     });
     let shared_link = links.shared;
     let groups = links.groups.clone();

@@ -26,7 +26,6 @@
 //!   and power; **after a resume** inside a step that goes on, the step's
 //!   kind, elapsed time and counted charge continue from the log.
 
-use crate::session::forecast::StepForecast;
 use analysis::integrate::Integrator;
 use model::procedure::{EndCondition, Plan, StepKind, StepType};
 use model::sample::Sample;
@@ -205,35 +204,36 @@ struct Anchor {
     net_ah: f64,
 }
 
-/// The dry run's steps, filled in by a thread of its own once ready and
-/// read without waiting (the estimator is on the control path).
+/// What the dry run expects of one step.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Expected {
+    pub step: u32,
+    pub duration_s: f64,
+    /// Net charge, Ah (positive into the pack).
+    pub ah: f64,
+}
+
+/// The dry run's steps, filled in by a thread of its own once ready (see
+/// `drive`) and read without waiting (the estimator is on the control
+/// path). Empty until then, or if it never comes: the tile shows the
+/// estimates the end conditions give without it.
 #[derive(Debug, Clone, Default)]
-pub struct ForecastCell(Arc<OnceLock<Vec<StepForecast>>>);
+pub struct ForecastCell(Arc<OnceLock<Vec<Expected>>>);
 
 impl ForecastCell {
-    /// Play the plan on the simulated pack on a thread of its own.
-    pub fn spawn(plan: Plan, cfg: sim::SimConfig) -> ForecastCell {
+    /// Fill it (once; later calls change nothing).
+    pub fn set(&self, steps: Vec<Expected>) {
+        let _ = self.0.set(steps);
+    }
+
+    /// A forecast already made.
+    pub fn ready(steps: Vec<Expected>) -> ForecastCell {
         let cell = ForecastCell::default();
-        let fill = cell.clone();
-        // (Without a thread the cell stays empty: the tile shows the
-        // estimates the end conditions give without it.)
-        let _ = std::thread::Builder::new()
-            .name("forecast".into())
-            .spawn(move || {
-                let f = crate::session::forecast::forecast(&plan, &cfg);
-                let _ = fill.0.set(f.steps);
-            });
+        cell.set(steps);
         cell
     }
 
-    /// A forecast already made (tests, a console that has one).
-    pub fn ready(steps: Vec<StepForecast>) -> ForecastCell {
-        let cell = ForecastCell::default();
-        let _ = cell.0.set(steps);
-        cell
-    }
-
-    fn step(&self, step: u32) -> Option<&StepForecast> {
+    fn step(&self, step: u32) -> Option<&Expected> {
         self.0.get()?.iter().find(|s| s.step == step)
     }
 }
@@ -673,13 +673,10 @@ name = "p"
     #[test]
     fn a_discharge_from_an_unknown_state_takes_the_dry_runs_charge() {
         let p = plan();
-        let forecast = vec![StepForecast {
+        let forecast = vec![Expected {
             step: 2,
-            kind: StepType::Discharge,
             duration_s: 5.0 * 3600.0,
             ah: -10.0,
-            end_kind: Some(EndKind::VoltageBelow),
-            end_reason: String::new(),
         }];
         let mut e = Estimator::new(&p).with_forecast(Some(ForecastCell::ready(forecast)));
         let mut l = Live::default();
@@ -765,13 +762,10 @@ name = "p"
     #[test]
     fn a_taper_takes_the_dry_runs_time() {
         let p = plan();
-        let forecast = vec![StepForecast {
+        let forecast = vec![Expected {
             step: 1,
-            kind: StepType::Charge,
             duration_s: 3.0 * 3600.0,
             ah: 8.0,
-            end_kind: Some(EndKind::CurrentBelow),
-            end_reason: String::new(),
         }];
         let mut e = Estimator::new(&p).with_forecast(Some(ForecastCell::ready(forecast)));
         let mut l = Live::default();
