@@ -10,6 +10,7 @@
 use engine::control::StopHandle;
 use packbench::session::emergency::Emergency;
 use packbench::session::live::Board;
+use packbench::session::request::JobBench;
 use packbench::session::request::PackSource;
 use packbench::session::request::RunRequest;
 use packbench::session::request::Speed;
@@ -73,12 +74,14 @@ name = "hold"
                 name: format!("bay-{k}"),
                 board: Board::new(&format!("bay-{k}"), &id),
                 prepared,
-                station: None,
-                cfg: SimConfig {
-                    seed: k as u64,
-                    ..SimConfig::default()
+                bench: JobBench::Sim {
+                    cfg: SimConfig {
+                        seed: k as u64,
+                        ..SimConfig::default()
+                    },
+                    speed: Speed::Factor(1.0),
+                    station: None,
                 },
-                speed: Speed::Factor(1.0),
             }
         })
         .collect();

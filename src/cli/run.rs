@@ -16,7 +16,6 @@ use crate::session::error::RunError;
 use crate::session::request::PackSource;
 use crate::session::request::RunOptions;
 use crate::session::request::RunRequest;
-use crate::session::request::Speed;
 use analysis::fade::grade::Policy;
 use clap::Args;
 use engine::control::StopHandle;
@@ -154,9 +153,11 @@ pub fn prepare_run(a: &RunArgs) -> Result<Vec<crate::session::request::StationJo
             name: "sim".into(),
             board: crate::session::live::Board::new("sim", &pack_id),
             prepared,
-            station: None,
-            cfg,
-            speed,
+            bench: crate::session::request::JobBench::Sim {
+                cfg,
+                speed,
+                station: None,
+            },
         }]);
     };
     // A bench file: one station, or all of them at once. The bench file,
@@ -216,17 +217,16 @@ pub fn prepare_run(a: &RunArgs) -> Result<Vec<crate::session::request::StationJo
         if !st.is_simulated() && (a.sim_config.is_some() || a.sim_ideal || !a.fault.is_empty()) {
             return Err(RunError::arguments("--sim-config, --sim-ideal and --fault are for the embedded simulated bench (links \"sim\"), not for real instruments"));
         }
-        let speed = match (speed, st.is_simulated()) {
-            (Speed::Max, false) => Speed::Factor(1.0),
-            (s, _) => s,
-        };
         jobs.push(crate::session::request::StationJob {
             name: st.name.clone(),
             board: crate::session::live::Board::new(&st.name, &pack_id),
             prepared,
-            station: Some((st, path.clone())),
-            cfg: station_cfg,
-            speed,
+            bench: crate::session::request::JobBench::of_station(
+                st,
+                path.clone(),
+                station_cfg,
+                speed,
+            ),
         });
     }
     if several {
@@ -255,11 +255,9 @@ pub fn cmd_run(a: RunArgs) -> ExitCode {
         if let (Some(n), false) = (&j.prepared.pack_note, a.quiet) {
             eprintln!("note: {}: {n}", j.name);
         }
-        if j.speed != Speed::Max && j.station.as_ref().is_some_and(|(s, _)| !s.is_simulated()) {
-            if let Speed::Factor(f) = j.speed {
-                if f != 1.0 {
-                    eprintln!("note: pacing the bench at {f}x real time: only meaningful against a sped-up simulator");
-                }
+        if let crate::session::request::JobBench::Station { pace, .. } = j.bench {
+            if pace != 1.0 {
+                eprintln!("note: pacing the bench at {pace}x real time: only meaningful against a sped-up simulator");
             }
         }
     }
@@ -268,7 +266,7 @@ pub fn cmd_run(a: RunArgs) -> ExitCode {
     let mut _held = Vec::new();
     #[cfg(unix)]
     for j in &jobs {
-        if let Some((st, file)) = &j.station {
+        if let Some((st, file)) = j.bench.station() {
             match crate::session::benchfile::lock_station(file, st) {
                 Ok(l) => _held.push(l),
                 Err(e) => return report_error(&e),
@@ -278,7 +276,7 @@ pub fn cmd_run(a: RunArgs) -> ExitCode {
     // A paced run on a live bench: the computer must not sleep.
     let paced = jobs
         .iter()
-        .any(|j| j.speed != Speed::Max || j.station.is_some());
+        .any(|j| j.bench.paced() || j.bench.station().is_some());
     let _awake = paced.then(stay_awake);
     let several = jobs.len() > 1;
     let jobs = std::rc::Rc::new(jobs);

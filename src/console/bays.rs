@@ -6,7 +6,9 @@
 use crate::session::benchfile::StationSpec;
 use crate::session::error::RunError;
 use crate::session::live::{Board, BoardState, Live};
-use crate::session::request::{PackSource, RunOptions, RunReport, RunRequest, Speed, StationJob};
+use crate::session::request::{
+    JobBench, PackSource, RunOptions, RunReport, RunRequest, Speed, StationJob,
+};
 use engine::control::StopHandle;
 use serde::Serialize;
 use sim::SimConfig;
@@ -378,17 +380,22 @@ pub fn job(bay: &Bay, prepared: crate::session::request::Prepared, board: Board)
         BayKind::Sim { cfg, speed } => StationJob {
             name: bay.name.clone(),
             prepared,
-            station: None,
-            cfg: (**cfg).clone(),
-            speed: Speed::Factor(*speed),
+            bench: JobBench::Sim {
+                cfg: (**cfg).clone(),
+                speed: Speed::Factor(*speed),
+                station: None,
+            },
             board,
         },
         BayKind::Station { spec, file } => StationJob {
             name: bay.name.clone(),
             prepared,
-            station: Some(((**spec).clone(), file.clone())),
-            cfg: SimConfig::default(),
-            speed: Speed::Factor(1.0),
+            bench: JobBench::of_station(
+                (**spec).clone(),
+                file.clone(),
+                SimConfig::default(),
+                Speed::Factor(1.0),
+            ),
             board,
         },
     }

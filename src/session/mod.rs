@@ -19,7 +19,7 @@ pub mod resume;
 pub mod stations;
 
 pub use crate::session::request::{
-    PackSource, Prepared, RunOptions, RunReport, RunRequest, Speed, StationJob,
+    JobBench, PackSource, Prepared, RunOptions, RunReport, RunRequest, Speed, StationJob,
 };
 
 use crate::session::benchfile::StationSpec;
@@ -236,8 +236,8 @@ impl StationJob {
             board: Some(self.board.clone()),
             emergency: Some(emergency),
             station: self
-                .station
-                .as_ref()
+                .bench
+                .station()
                 .map(|(s, f)| (s.name.clone(), f.clone())),
             coarse_clock: coarse_clock && resume.is_none(),
         };
@@ -246,17 +246,18 @@ impl StationJob {
             None => (None, None),
         };
         let resuming = resume.is_some();
-        let bench = match &self.station {
-            Some((st, _)) if !st.is_simulated() => Bench::Station {
-                spec: st.clone(),
-                speed_factor: match self.speed {
-                    Speed::Factor(f) if !resuming => f,
-                    _ => 1.0,
-                },
+        let bench = match &self.bench {
+            JobBench::Station { spec, pace, .. } => Bench::Station {
+                spec: spec.clone(),
+                speed_factor: if resuming { 1.0 } else { *pace },
             },
-            station => Bench::Sim {
-                cfg: self.cfg.clone(),
-                speed: self.speed,
+            JobBench::Sim {
+                cfg,
+                speed,
+                station,
+            } => Bench::Sim {
+                cfg: cfg.clone(),
+                speed: *speed,
                 profiles: station.as_ref().map(|(st, _)| {
                     let (a, b) = st.profiles();
                     (a.clone(), b.clone())

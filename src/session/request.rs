@@ -138,9 +138,68 @@ pub struct StationJob {
     /// The station's name (the bench file's, or "sim").
     pub name: String,
     pub prepared: Prepared,
-    /// The bench-file station; none for the default simulated bench.
-    pub station: Option<(StationSpec, PathBuf)>,
-    pub cfg: SimConfig,
-    pub speed: Speed,
+    pub bench: JobBench,
     pub board: crate::session::live::Board,
+}
+
+/// Where a job runs. A real station carries no simulator settings and is
+/// paced by the wall clock (the type allows nothing else). (Made once per
+/// run: the variants' sizes do not matter.)
+#[derive(Debug, Clone)]
+#[allow(clippy::large_enum_variant)]
+pub enum JobBench {
+    /// The embedded simulated bench: its settings and pace, and the bench
+    /// file's station when its links are `sim`.
+    Sim {
+        cfg: SimConfig,
+        speed: Speed,
+        station: Option<(StationSpec, PathBuf)>,
+    },
+    /// A bench file's station of real instruments; `pace` is bench seconds
+    /// per wall second (1, or a sped-up simulator served elsewhere).
+    Station {
+        spec: StationSpec,
+        file: PathBuf,
+        pace: f64,
+    },
+}
+
+impl JobBench {
+    /// The bench file's station, simulated or not.
+    pub fn station(&self) -> Option<(&StationSpec, &PathBuf)> {
+        match self {
+            JobBench::Sim { station, .. } => station.as_ref().map(|(s, f)| (s, f)),
+            JobBench::Station { spec, file, .. } => Some((spec, file)),
+        }
+    }
+
+    /// Paced (not the simulation clock at full speed).
+    pub fn paced(&self) -> bool {
+        match self {
+            JobBench::Sim { speed, .. } => *speed != Speed::Max,
+            JobBench::Station { .. } => true,
+        }
+    }
+
+    /// A bench file's station: real instruments get the wall clock's
+    /// pace (`speed`'s factor, real time by default); `sim` links get the
+    /// embedded simulator with `cfg` at `speed`.
+    pub fn of_station(spec: StationSpec, file: PathBuf, cfg: SimConfig, speed: Speed) -> JobBench {
+        if spec.is_simulated() {
+            JobBench::Sim {
+                cfg,
+                speed,
+                station: Some((spec, file)),
+            }
+        } else {
+            JobBench::Station {
+                spec,
+                file,
+                pace: match speed {
+                    Speed::Factor(f) => f,
+                    Speed::Max => 1.0,
+                },
+            }
+        }
+    }
 }

@@ -40,6 +40,7 @@ use crate::session::error::io_err;
 use crate::session::error::InputError;
 use crate::session::error::RunError;
 use crate::session::links::SIMULATED;
+use crate::session::request::JobBench;
 use crate::session::request::Prepared;
 use crate::session::request::RunOptions;
 use crate::session::request::RunReport;
@@ -488,9 +489,19 @@ pub async fn execute(
             .map(|(s, _)| s.name.clone())
             .unwrap_or_else(|| "sim".into()),
         prepared,
-        station,
-        cfg: sim.as_ref().map(|(c, _)| c.clone()).unwrap_or_default(),
-        speed: sim.as_ref().map(|(_, s)| *s).unwrap_or(Speed::Factor(1.0)),
+        bench: match (station, sim) {
+            (Some((spec, file)), sim) => JobBench::of_station(
+                spec,
+                file,
+                sim.as_ref().map(|(c, _)| c.clone()).unwrap_or_default(),
+                sim.as_ref().map(|(_, s)| *s).unwrap_or(Speed::Factor(1.0)),
+            ),
+            (None, sim) => JobBench::Sim {
+                cfg: sim.as_ref().map(|(c, _)| c.clone()).unwrap_or_default(),
+                speed: sim.as_ref().map(|(_, s)| *s).unwrap_or(Speed::Factor(1.0)),
+                station: None,
+            },
+        },
         board,
     };
     let rec = crate::session::drive::Recording {
