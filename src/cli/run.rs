@@ -207,9 +207,7 @@ pub fn prepare_run(a: &RunArgs) -> Result<Vec<crate::session::request::StationJo
             results: a.results.clone(),
             options: opts,
         };
-        let prepared = crate::session::prepare::prepare(&req)?;
-        let (sp, lp) = st.profiles();
-        crate::session::prepare::check_ranges(&prepared.procedure, sp, lp)?;
+        let prepared = crate::session::stations::prepare_for(&req, Some(&st))?;
         let station_cfg = match &st.sim_config {
             Some(f) => sim_config(Some(f), a.sim_ideal, &a.fault)?,
             None => cfg.clone(),

@@ -121,12 +121,12 @@ fn prepare(
     form: &StartForm,
 ) -> Result<crate::session::request::Prepared, FieldErrors> {
     let req = bays::request(b, form, &c.procedures, &c.results)?;
-    let prepared = crate::session::prepare::prepare(&req).map_err(|e| bays::field_of(&e))?;
-    if let BayKind::Station { spec, .. } = &b.kind {
-        let (sp, lp) = spec.profiles();
-        crate::session::prepare::check_ranges(&prepared.procedure, sp, lp)
-            .map_err(|e| bays::field_of(&e))?;
-    }
+    let station = match &b.kind {
+        BayKind::Station { spec, .. } => Some(&**spec),
+        BayKind::Sim { .. } => None,
+    };
+    let prepared =
+        crate::session::stations::prepare_for(&req, station).map_err(|e| bays::field_of(&e))?;
     if let Some(other) = pack_elsewhere(c, b, &prepared.pack_id) {
         return Err(FieldErrors::one(
             "pack_id",

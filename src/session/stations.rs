@@ -63,6 +63,22 @@ impl FieldError {
     }
 }
 
+/// Everything a station's run is checked against before anything is
+/// touched, for `run` and the console alike: the request (`prepare`: pack
+/// id, procedure, spec), then a bench file's station's instruments'
+/// ranges against the procedure's setpoints.
+pub fn prepare_for(
+    req: &crate::session::request::RunRequest,
+    station: Option<&crate::session::benchfile::StationSpec>,
+) -> Result<crate::session::request::Prepared, crate::session::error::RunError> {
+    let prepared = crate::session::prepare::prepare(req)?;
+    if let Some(st) = station {
+        let (sp, lp) = st.profiles();
+        crate::session::prepare::check_ranges(&prepared.procedure, sp, lp)?;
+    }
+    Ok(prepared)
+}
+
 /// The most cells in series a spec may give.
 pub const MAX_SERIES: u32 = 1000;
 
