@@ -148,17 +148,12 @@ pub fn prepare_run(a: &RunArgs) -> Result<Vec<crate::session::request::StationJo
             results: a.results.clone(),
             options,
         };
-        let prepared = crate::session::prepare::prepare(&req)?;
-        return Ok(vec![crate::session::request::StationJob {
-            name: "sim".into(),
-            board: crate::session::live::Board::new("sim", &pack_id),
-            prepared,
-            bench: crate::session::request::JobBench::Sim {
-                cfg,
-                speed,
-                station: None,
-            },
-        }]);
+        let bench = crate::session::request::JobBench::Sim {
+            cfg,
+            speed,
+            station: None,
+        };
+        return Ok(vec![crate::session::stations::job("sim", &req, bench)?]);
     };
     // A bench file: one station, or all of them at once. The bench file,
     // every station's pack, procedure and profiles are checked before any
@@ -207,7 +202,6 @@ pub fn prepare_run(a: &RunArgs) -> Result<Vec<crate::session::request::StationJo
             results: a.results.clone(),
             options: opts,
         };
-        let prepared = crate::session::stations::prepare_for(&req, Some(&st))?;
         let station_cfg = match &st.sim_config {
             Some(f) => sim_config(Some(f), a.sim_ideal, &a.fault)?,
             None => cfg.clone(),
@@ -215,17 +209,10 @@ pub fn prepare_run(a: &RunArgs) -> Result<Vec<crate::session::request::StationJo
         if !st.is_simulated() && (a.sim_config.is_some() || a.sim_ideal || !a.fault.is_empty()) {
             return Err(RunError::arguments("--sim-config, --sim-ideal and --fault are for the embedded simulated bench (links \"sim\"), not for real instruments"));
         }
-        jobs.push(crate::session::request::StationJob {
-            name: st.name.clone(),
-            board: crate::session::live::Board::new(&st.name, &pack_id),
-            prepared,
-            bench: crate::session::request::JobBench::of_station(
-                st,
-                path.clone(),
-                station_cfg,
-                speed,
-            ),
-        });
+        let name = st.name.clone();
+        let bench =
+            crate::session::request::JobBench::of_station(st, path.clone(), station_cfg, speed);
+        jobs.push(crate::session::stations::job(&name, &req, bench)?);
     }
     if several {
         let mut seen = std::collections::HashSet::new();

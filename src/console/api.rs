@@ -88,7 +88,7 @@ pub async fn check(
         return unknown_bay(&bay);
     };
     let prepared = match prepare(&c, &b, &form) {
-        Ok(p) => p,
+        Ok(j) => j.prepared,
         Err(e) => return field_errors(e),
     };
     let cfg = match &b.kind {
@@ -119,21 +119,18 @@ fn prepare(
     c: &Console,
     b: &Bay,
     form: &StartForm,
-) -> Result<crate::session::request::Prepared, FieldErrors> {
+) -> Result<crate::session::request::StationJob, FieldErrors> {
     let req = bays::request(b, form, &c.procedures, &c.results)?;
-    let station = match &b.kind {
-        BayKind::Station { spec, .. } => Some(&**spec),
-        BayKind::Sim { .. } => None,
-    };
-    let prepared =
-        crate::session::stations::prepare_for(&req, station).map_err(|e| bays::field_of(&e))?;
-    if let Some(other) = pack_elsewhere(c, b, &prepared.pack_id) {
+    // The same job `run` makes (the request and the station's ranges).
+    let job = crate::session::stations::job(&b.name, &req, bays::bench_of(b))
+        .map_err(|e| bays::field_of(&e))?;
+    if let Some(other) = pack_elsewhere(c, b, &job.prepared.pack_id) {
         return Err(FieldErrors::one(
             "pack_id",
-            format!("pack '{}' is on bay {other} now", prepared.pack_id),
+            format!("pack '{}' is on bay {other} now", job.prepared.pack_id),
         ));
     }
-    Ok(prepared)
+    Ok(job)
 }
 
 /// A run on its own thread and runtime; its report is kept in `done`.
@@ -218,15 +215,13 @@ pub async fn start(
     if b.busy() {
         return json_error(StatusCode::CONFLICT, format!("bay {bay} is running a test"));
     }
-    let prepared = match prepare(&c, &b, &form) {
-        Ok(p) => p,
+    let job = match prepare(&c, &b, &form) {
+        Ok(j) => j,
         Err(e) => return field_errors(e),
     };
-    let board = Board::new(&b.name, &prepared.pack_id);
-    let Some((stop, done)) = claim(&b, &board, false) else {
+    let Some((stop, done)) = claim(&b, &job.board, false) else {
         return json_error(StatusCode::CONFLICT, format!("bay {bay} is running a test"));
     };
-    let job = bays::job(&b, prepared, board);
     let em = c.emergency.clone();
     spawn_run(&b.name, done, move || async move {
         crate::session::run(job.session(stop, em, false, None)).await

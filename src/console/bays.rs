@@ -6,9 +6,7 @@
 use crate::session::benchfile::StationSpec;
 use crate::session::error::RunError;
 use crate::session::live::{Board, BoardState, Live};
-use crate::session::request::{
-    JobBench, PackSource, RunOptions, RunReport, RunRequest, Speed, StationJob,
-};
+use crate::session::request::{JobBench, PackSource, RunOptions, RunReport, RunRequest, Speed};
 use engine::control::StopHandle;
 use serde::Serialize;
 use sim::SimConfig;
@@ -374,30 +372,20 @@ pub fn field_of(e: &RunError) -> FieldErrors {
     FieldErrors::one(field, e.to_string())
 }
 
-/// A job for a prepared request on a bay.
-pub fn job(bay: &Bay, prepared: crate::session::request::Prepared, board: Board) -> StationJob {
+/// Where a bay's job runs.
+pub fn bench_of(bay: &Bay) -> JobBench {
     match &bay.kind {
-        BayKind::Sim { cfg, speed } => StationJob {
-            name: bay.name.clone(),
-            prepared,
-            bench: JobBench::Sim {
-                cfg: (**cfg).clone(),
-                speed: Speed::Factor(*speed),
-                station: None,
-            },
-            board,
+        BayKind::Sim { cfg, speed } => JobBench::Sim {
+            cfg: (**cfg).clone(),
+            speed: Speed::Factor(*speed),
+            station: None,
         },
-        BayKind::Station { spec, file } => StationJob {
-            name: bay.name.clone(),
-            prepared,
-            bench: JobBench::of_station(
-                (**spec).clone(),
-                file.clone(),
-                SimConfig::default(),
-                Speed::Factor(1.0),
-            ),
-            board,
-        },
+        BayKind::Station { spec, file } => JobBench::of_station(
+            (**spec).clone(),
+            file.clone(),
+            SimConfig::default(),
+            Speed::Factor(1.0),
+        ),
     }
 }
 

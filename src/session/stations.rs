@@ -79,6 +79,23 @@ pub fn prepare_for(
     Ok(prepared)
 }
 
+/// A checked job for one station: the request prepared and checked
+/// against the bench's station (if any), with its board. The one way
+/// `run` and the console make a station's job.
+pub fn job(
+    name: &str,
+    req: &crate::session::request::RunRequest,
+    bench: crate::session::request::JobBench,
+) -> Result<crate::session::request::StationJob, crate::session::error::RunError> {
+    let prepared = prepare_for(req, bench.station().map(|(s, _)| s))?;
+    Ok(crate::session::request::StationJob {
+        name: name.to_string(),
+        board: crate::session::live::Board::new(name, &prepared.pack_id),
+        prepared,
+        bench,
+    })
+}
+
 /// The most cells in series a spec may give.
 pub const MAX_SERIES: u32 = 1000;
 
