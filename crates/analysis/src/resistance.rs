@@ -266,6 +266,18 @@ mod tests {
         let r = two_level_from_step(3, &s).unwrap();
         assert_eq!((r.t1_s, r.t2_s), (10.0, 11.0));
         assert!((r.dcir_mohm - (3.699 - 3.619) / 2.0 * 1000.0).abs() < 1e-9);
+        // A level is a move of more than 2 % of the larger current plus
+        // 5 mA: at 10 A, 0.25 A is one (0.205 A the bound), 0.2 A none.
+        let at = |i: &[f64]| -> usize {
+            let s: Vec<Sample> = i
+                .iter()
+                .enumerate()
+                .map(|(k, &i)| mk(k as f64, 3.7, i))
+                .collect();
+            current_levels(&s).len()
+        };
+        assert_eq!(at(&[-10.0, -10.0, -10.25, -10.25]), 2);
+        assert_eq!(at(&[-10.0, -10.0, -10.2, -10.2]), 1);
     }
 
     /// A tagless log: rest, 0.2 It for 10 s, 1 It for 1 s, rest (the

@@ -1081,6 +1081,8 @@ fn gaps_are_judged_against_the_median_interval_so_far() {
     assert_eq!(a.gaps[0].typical_interval_s, 1.0);
     assert_eq!(a.gaps[0].from_s, 8.0);
     assert_eq!(run(&[2.0, 1.0, 2.0, 1.0, 2.0, 1.0, 7.0]).quality.gaps, 0);
+    // Exactly five times the typical interval is not over it.
+    assert_eq!(run(&[1.0, 1.0, 1.0, 1.0, 5.0]).quality.gaps, 0);
     let a = run(&[1.0, 1.0, 1.0, 1.0, 10.0]);
     assert_eq!(a.quality.gaps, 1);
     assert_eq!((a.gaps[0].from_s, a.gaps[0].to_s), (4.0, 14.0));
@@ -1171,4 +1173,46 @@ fn the_resistance_figure_is_the_reading_nearest_half_charge() {
     let r = resistance_figure(Vec::new(), Vec::new(), &pulses, true).unwrap();
     assert_eq!(r.dcir_mohm, 48.0);
     assert!(r.method.starts_with("pulse method"), "{}", r.method);
+}
+
+/// Only a charge step is the charge the open-circuit table averages: a
+/// rest that draws a trickle into the pack is not; and a step faster than
+/// C/2 gives no dQ/dV or dV/dQ, said so.
+#[test]
+fn the_tables_charge_is_a_charge_step_and_fast_steps_give_no_curves() {
+    let (mut samples, infos) = worked(25.0);
+    for s in samples.iter_mut().filter(|s| s.step == 3) {
+        s.current_a = 0.0005;
+    }
+    let a = analyze(&samples, &infos, &pack());
+    let ocv = a.curves.as_ref().and_then(|c| c.ocv.as_ref()).unwrap();
+    assert_eq!(ocv.charge_step, 2);
+    // Rated 1 Ah: the 0.8 A charge is 0.8C, over C/2; the 0.4 A capacity
+    // step 0.4C is under it.
+    let mut p = pack();
+    p.rated_capacity_ah = 1.0;
+    let a = analyze(&samples, &infos, &p);
+    assert!(
+        a.warnings
+            .iter()
+            .any(|w| w.starts_with("no dQ/dV or dV/dQ for the charge step 2: at 0.80C")),
+        "{:?}",
+        a.warnings
+    );
+    assert!(!a
+        .warnings
+        .iter()
+        .any(|w| w.contains("discharge step 4: at")));
+}
+
+/// A capacity written before the start state was recorded reads as from
+/// a full charge (the records of the first layout).
+#[test]
+fn an_older_capacity_record_reads_as_from_full() {
+    let (samples, infos) = worked(25.0);
+    let cap = analyze(&samples, &infos, &pack()).capacity.unwrap();
+    let mut v = serde_json::to_value(&cap).unwrap();
+    v.as_object_mut().unwrap().remove("from_full_charge");
+    let back: crate::CapacityResult = serde_json::from_value(v).unwrap();
+    assert!(back.from_full_charge);
 }

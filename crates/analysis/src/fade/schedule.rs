@@ -348,6 +348,9 @@ mod tests {
         );
         let due = ieee().due(&h, d("2015-06-01"));
         assert_eq!(due.due, Some(d("2016-01-01")));
+        // Due on that day is not yet overdue; the day after is.
+        assert!(!ieee().due(&h, d("2016-01-01")).overdue);
+        assert!(ieee().due(&h, d("2016-01-02")).overdue);
         assert!(due.rule.contains("under 90 %"), "{}", due.rule);
         assert!(!due.replace);
     }

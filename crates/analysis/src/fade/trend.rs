@@ -618,5 +618,20 @@ mod tests {
             "{two_se}"
         );
         assert!(acceleration(&x, &y).is_none());
+        // Both halves scattered: 1.56 × steeper (−0.0080 and −0.0125), the
+        // difference 0.0045 within 2 × √(se₁² + se₂²) = 0.00572 though
+        // over 2 × √(se₁² − se₂²) = 0.00026 (scipy.stats.linregress 1.17.1).
+        let y = [99.7, 99.3, 98.8, 97.2, 95.6, 94.7];
+        let (e, r) = (
+            LinearFit::fit(&x[..=3], &y[..=3]).unwrap(),
+            LinearFit::fit(&x[3..], &y[3..]).unwrap(),
+        );
+        assert!((e.slope + 0.008).abs() < 1e-12 && (r.slope + 0.0125).abs() < 1e-12);
+        let two_se = 2.0 * (e.slope_se.powi(2) + r.slope_se.powi(2)).sqrt();
+        assert!(
+            (two_se - 0.005_721_305_212_391_128).abs() < 1e-12,
+            "{two_se}"
+        );
+        assert!(acceleration(&x, &y).is_none());
     }
 }
