@@ -323,20 +323,9 @@ pub fn run_stations(
     mode: crate::session::live::DisplayMode,
     tasks: Vec<StationTask>,
 ) -> Option<Vec<Result<crate::session::request::RunReport, RunError>>> {
-    let rt = match tokio::runtime::Builder::new_current_thread()
-        .enable_all()
-        .build()
-    {
-        Ok(rt) => rt,
-        Err(e) => {
-            eprintln!("error: cannot start the runtime: {e}");
-            return None;
-        }
-    };
     let stop = StopHandle::new();
     let emergency = crate::session::emergency::Emergency::default();
-    let local = tokio::task::LocalSet::new();
-    Some(local.block_on(&rt, async {
+    let ran = crate::session::stations::block_on_local(async {
         spawn_interrupts(stop.clone(), emergency.clone());
         let shown = tokio::task::spawn_local(crate::session::live::display(boards.clone(), mode));
         let running: Vec<_> = tasks
@@ -357,7 +346,14 @@ pub fn run_stations(
         }
         let _ = shown.await;
         out
-    }))
+    });
+    match ran {
+        Ok(out) => Some(out),
+        Err(e) => {
+            eprintln!("error: {e}");
+            None
+        }
+    }
 }
 
 /// One end line per station (name, pack); each station's exit code (a

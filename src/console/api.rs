@@ -143,24 +143,17 @@ where
     let spawned = std::thread::Builder::new()
         .name(format!("bay {name}"))
         .spawn(move || {
-            let r = match tokio::runtime::Builder::new_current_thread()
-                .enable_all()
-                .build()
-            {
-                Ok(rt) => {
-                    let local = tokio::task::LocalSet::new();
-                    local.block_on(&rt, async move {
-                        // A panic in the run ends its task here (the session
-                        // has switched the outputs off on its way down).
-                        match tokio::task::spawn_local(make()).await {
-                            Ok(Ok(r)) => Ok(r),
-                            Ok(Err(e)) => Err(e.to_string()),
-                            Err(e) => Err(format!("the run's task failed: {e}")),
-                        }
-                    })
+            // The runtime `run` drives its stations on.
+            let r = crate::session::stations::block_on_local(async move {
+                // A panic in the run ends its task here (the session has
+                // switched the outputs off on its way down).
+                match tokio::task::spawn_local(make()).await {
+                    Ok(Ok(r)) => Ok(r),
+                    Ok(Err(e)) => Err(e.to_string()),
+                    Err(e) => Err(format!("the run's task failed: {e}")),
                 }
-                Err(e) => Err(format!("cannot start the runtime: {e}")),
-            };
+            })
+            .and_then(|r| r);
             let mut g = match keep.lock() {
                 Ok(g) => g,
                 Err(p) => p.into_inner(),

@@ -96,6 +96,21 @@ pub fn job(
     })
 }
 
+/// The runtime a station's run is driven on, for `run` and the console
+/// alike: a current-thread runtime and a local task set (the engine's
+/// futures stay on their thread); `body` runs on it, and spawns the runs
+/// as local tasks (a panic in one ends that task, whose session has
+/// switched the outputs off on its way down). Err when the runtime cannot
+/// start.
+pub fn block_on_local<Fut: std::future::Future>(body: Fut) -> Result<Fut::Output, String> {
+    let rt = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .map_err(|e| format!("cannot start the runtime: {e}"))?;
+    let local = tokio::task::LocalSet::new();
+    Ok(local.block_on(&rt, body))
+}
+
 /// The most cells in series a spec may give.
 pub const MAX_SERIES: u32 = 1000;
 
