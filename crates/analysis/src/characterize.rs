@@ -783,6 +783,10 @@ mod tests {
             assert!((r / want - 1.0).abs() < 1e-3, "{r} against {want}");
             let p_dis = 30.0 * (l.ocv_v - 30.0) / r;
             assert!((l.power_discharge_w.unwrap() / p_dis - 1.0).abs() < 1e-12);
+            // The charge pulse's: V_max·(V_max − OCV_chg)/R_chg.
+            let c = l.charge.as_ref().expect("a charge pulse");
+            let p_chg = 42.0 * (42.0 - c.voltage_before_v) / (c.resistance_mohm / 1000.0);
+            assert!((l.power_charge_w.unwrap() / p_chg - 1.0).abs() < 1e-12);
             // 0.1 s after the edge: R0 and 0.1 s of R1 and R2's rise.
             let (_, r01) = l.discharge.at_delays[0];
             let want01 = R0
@@ -809,6 +813,24 @@ mod tests {
             (step - (10.0 + 100.0 * 0.25 * Q * 10.0 / 3600.0 / Q)).abs() < 1e-6,
             "{step}"
         );
+    }
+
+    /// A rest shorter than five of the slowest time constant (600 s here)
+    /// leaves the pack unrelaxed: the level is flagged; an hour is enough.
+    #[test]
+    fn a_rest_under_five_time_constants_is_flagged() {
+        let flagged = |rest: f64| {
+            let mut p = Pack::new();
+            p.level(rest);
+            p.seg(3600.0, 0.0, 1.0);
+            let c = read(&p.rows, None);
+            c.levels[0]
+                .flags
+                .iter()
+                .any(|f| f.contains("under five of the slowest time constant"))
+        };
+        assert!(flagged(2000.0));
+        assert!(!flagged(3600.0));
     }
 
     /// A level needs its rest and a short discharge: a pulse after 5 min
@@ -1011,6 +1033,17 @@ mod tests {
         let f = pulse_figure(&sparse, 0, 3).expect("a pulse");
         let delays: Vec<f64> = f.at_delays.iter().map(|d| d.0).collect();
         assert_eq!(delays, [2.0]);
+        // A pulse from a current already flowing (a second level): ΔV over
+        // the change of current, not over the current.
+        let mut second = raw.clone();
+        second[0].i = -4.0;
+        let f = pulse_figure(&second, 0, 25).expect("a pulse");
+        let r2 = 1000.0 * (v(10.0) - 40.0) / (i(10.0) + 4.0);
+        assert!(
+            (f.resistance_mohm - r2).abs() < 1e-9,
+            "{} against {r2}",
+            f.resistance_mohm
+        );
     }
 
     /// The discharge resistance at a state of charge, linear between the
