@@ -48,7 +48,7 @@ pub fn pack_from_args(a: &PackArgs) -> Result<Option<PackSpec>, RunError> {
     }
     // The three words as the console's form reads them: the same
     // refusals, named by the option.
-    let base = crate::session::stations::pack_spec(
+    let base = crate::session::fields::pack_spec(
         a.chemistry.as_deref(),
         a.series.as_deref(),
         a.rated.as_deref(),

@@ -322,7 +322,7 @@ pub fn request(
             ),
         );
     }
-    let pack = match crate::session::stations::pack_spec(
+    let pack = match crate::session::fields::pack_spec(
         Some(&form.chemistry),
         Some(&form.series),
         Some(&form.rated),

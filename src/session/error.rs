@@ -38,7 +38,7 @@ pub enum InputError {
     /// A refusal of one field of what starts a run (the form's field, the
     /// command line's option).
     #[error(transparent)]
-    Field(#[from] crate::session::stations::FieldError),
+    Field(#[from] crate::session::fields::FieldError),
 }
 
 /// Something failed while the session ran.
@@ -92,8 +92,8 @@ impl From<PackIdError> for RunError {
     }
 }
 
-impl From<crate::session::stations::FieldError> for RunError {
-    fn from(e: crate::session::stations::FieldError) -> Self {
+impl From<crate::session::fields::FieldError> for RunError {
+    fn from(e: crate::session::fields::FieldError) -> Self {
         RunError::Input(e.into())
     }
 }

@@ -8,6 +8,7 @@ pub mod calibrate;
 pub mod drive;
 pub mod emergency;
 pub mod error;
+pub mod fields;
 pub mod finish;
 pub mod forecast;
 pub mod links;

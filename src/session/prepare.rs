@@ -3,11 +3,11 @@
 
 use crate::session::error::input_file_err;
 use crate::session::error::RunError;
+use crate::session::fields::{Field, FieldError};
 use crate::session::request::default_sim_pack;
 use crate::session::request::PackSource;
 use crate::session::request::Prepared;
 use crate::session::request::RunRequest;
-use crate::session::stations::{Field, FieldError};
 use instrument::profile::{Profile, ProfileRole};
 use model::location::{InputErrors, LocatedError, Location};
 use model::pack::{check_pack_id, PackSpec};
