@@ -322,9 +322,10 @@ fn sync_pushes_each_run_once_and_the_fleet_from_the_store_is_the_fleet() {
 }
 
 /// `packbench sync --samples` killed with SIGKILL at twelve points of a
-/// sync into an empty store: every run in the store is whole (a run is one
-/// transaction); the next sync pushes exactly what is missing; nothing is
-/// there twice.
+/// sync into an empty store, each aimed by state (once 1/13, 2/13, … of
+/// the runs are in the store): every run in the store is whole (a run is
+/// one transaction); the next sync pushes exactly what is missing; nothing
+/// is there twice.
 #[cfg(unix)]
 #[test]
 #[ignore = "needs a PostgreSQL server named by PACKBENCH_TEST_PG (scripts/pg-test-server.sh); run with -- --ignored"]
@@ -368,7 +369,16 @@ fn a_sync_killed_anywhere_is_completed_by_the_next_with_nothing_twice() {
             .stderr(Stdio::null())
             .spawn()
             .unwrap();
-        std::thread::sleep(whole.mul_f64(f64::from(k) / 13.0));
+        // Aimed by state: killed once k thirteenths of the runs are there
+        // (polled on the test's own connection), not after a time.
+        let target = (u64::from(k) * (packs * runs) as u64).div_ceil(13) as i64;
+        let t0 = Instant::now();
+        while count(&mut c, "SELECT COUNT(*) FROM runs") < target
+            && child.try_wait().ok().flatten().is_none()
+            && t0.elapsed() < whole * 20
+        {
+            std::thread::sleep(std::time::Duration::from_millis(2));
+        }
         let _ = child.kill();
         let _ = child.wait();
         assert_whole(&mut c, &format!("kill {k}"));
@@ -394,8 +404,9 @@ fn a_sync_killed_anywhere_is_completed_by_the_next_with_nothing_twice() {
         );
         assert_eq!(count(&mut c, "SELECT COUNT(*) FROM samples"), 5 * samples);
     }
-    assert!(
-        partial_seen >= 8,
+    // Aimed by state, every kill lands mid-sync.
+    assert_eq!(
+        partial_seen, 12,
         "the kills landed mid-sync only {partial_seen} times of 12"
     );
     let _ = Duration::ZERO;
