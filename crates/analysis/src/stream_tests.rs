@@ -126,6 +126,18 @@ fn worked(t_start_c: f64) -> (Vec<Sample>, Vec<StepInfo>) {
     (s, infos)
 }
 
+/// One sample of cycle 0 with no temperature.
+fn sample(t: f64, step: u32, v: f64, i: f64) -> Sample {
+    Sample {
+        t_s: t,
+        step,
+        cycle: 0,
+        voltage_v: v,
+        current_a: i,
+        temperature_c: None,
+    }
+}
+
 fn close(a: f64, b: f64, tol: f64) -> bool {
     (a - b).abs() <= tol
 }
@@ -556,14 +568,7 @@ fn slow_logs_late_records_drains_and_time_down() {
     let mut a = Analyzer::new(&pack, &[], AnalysisOptions::default());
     a.set_info(info(1, 0, StepType::Rest, EndKind::Time, None));
     a.set_info(info(2, 0, StepType::Drain, EndKind::Time, None));
-    let s = |t: f64, step: u32, i: f64| Sample {
-        t_s: t,
-        step,
-        cycle: 0,
-        voltage_v: 4.0,
-        current_a: i,
-        temperature_c: None,
-    };
+    let s = |t: f64, step: u32, i: f64| sample(t, step, 4.0, i);
     for k in 0..30 {
         let t = 10.0 * f64::from(k) + if k >= 20 { 90.0 } else { 0.0 };
         a.push(&s(t, 1, 0.0));
@@ -629,14 +634,7 @@ fn slow_logs_late_records_drains_and_time_down() {
 #[test]
 fn stretches_sum_and_a_foreign_full_charge_is_a_taper_at_the_top() {
     let pack = pack();
-    let s = |t: f64, step: u32, v: f64, i: f64| Sample {
-        t_s: t,
-        step,
-        cycle: 0,
-        voltage_v: v,
-        current_a: i,
-        temperature_c: None,
-    };
+    let s = sample;
     let mut x = Vec::new();
     for k in 0..=10 {
         x.push(s(f64::from(k), 1, 3.7, -1.0));
@@ -947,14 +945,7 @@ fn the_draw_since_full_counts_slow_samples_whole() {
 /// mean current (charge over time).
 #[test]
 fn a_foreign_step_under_a_hundredth_of_c_is_a_rest() {
-    let s = |t: f64, step: u32, v: f64, i: f64| Sample {
-        t_s: t,
-        step,
-        cycle: 0,
-        voltage_v: v,
-        current_a: i,
-        temperature_c: None,
-    };
+    let s = sample;
     let mut x = Vec::new();
     // (The importer numbers a foreign log's steps where its current
     // changes; the analyzer gives them their kinds.)
@@ -991,14 +982,7 @@ fn a_foreign_step_under_a_hundredth_of_c_is_a_rest() {
 /// energy, are the stretches' sums.
 #[test]
 fn a_charge_in_two_stretches_sums_in_and_net() {
-    let s = |t: f64, step: u32, v: f64, i: f64| Sample {
-        t_s: t,
-        step,
-        cycle: 0,
-        voltage_v: v,
-        current_a: i,
-        temperature_c: None,
-    };
+    let s = sample;
     let mut x = Vec::new();
     for k in 0..=10 {
         x.push(s(f64::from(k), 1, 3.9, 1.0));
@@ -1092,14 +1076,7 @@ fn gaps_are_judged_against_the_median_interval_so_far() {
 /// give more to take its place (of two equal, the first stands).
 #[test]
 fn a_foreign_logs_capacity_is_its_largest_discharge_the_first_of_equals() {
-    let s = |t: f64, step: u32, i: f64| Sample {
-        t_s: t,
-        step,
-        cycle: 0,
-        voltage_v: 3.7,
-        current_a: i,
-        temperature_c: None,
-    };
+    let s = |t: f64, step: u32, i: f64| sample(t, step, 3.7, i);
     let mut x = Vec::new();
     let mut t = 0.0;
     for (step, i, secs) in [(1, 1.0, 100), (2, -1.0, 100), (3, 1.0, 100), (4, -1.0, 100)] {
