@@ -354,6 +354,18 @@ mod tests {
     /// A window made by the model itself (exact update), with a known
     /// OCV: the fit must return its parameters.
     fn window(r0: f64, pairs: &[(f64, f64)], ocv: f64) -> Vec<Point> {
+        window_sampled(r0, pairs, ocv, 0.1, 1.0)
+    }
+
+    /// The same window sampled every `dt_pulse` s through the pulses and
+    /// every `dt_rest` s through the relaxation.
+    fn window_sampled(
+        r0: f64,
+        pairs: &[(f64, f64)],
+        ocv: f64,
+        dt_pulse: f64,
+        dt_rest: f64,
+    ) -> Vec<Point> {
         let mut pts = Vec::new();
         let mut v = vec![0.0; pairs.len()];
         let mut t = 0.0;
@@ -379,11 +391,11 @@ mod tests {
         // 10 s at −10 A, 40 s rest, 10 s at +7.5 A, sampled at 0.1 s;
         // 360 s at −3 A (not counted), then 3600 s of rest at 1 s.
         let plan: [(f64, f64, f64, Role); 5] = [
-            (10.0, -10.0, 0.1, Role::Pulse),
-            (40.0, 0.0, 0.1, Role::Pulse),
-            (10.0, 7.5, 0.1, Role::Pulse),
+            (10.0, -10.0, dt_pulse, Role::Pulse),
+            (40.0, 0.0, dt_pulse, Role::Pulse),
+            (10.0, 7.5, dt_pulse, Role::Pulse),
             (360.0, -3.0, 10.0, Role::Drive),
-            (3600.0, 0.0, 1.0, Role::Relaxation),
+            (3600.0, 0.0, dt_rest, Role::Relaxation),
         ];
         push(t, 0.0, q, Role::Pulse, &v, &mut pts);
         for (dur, i, dt, role) in plan {
@@ -483,5 +495,112 @@ mod tests {
             f.u_r0_ohm > 0.0 && f.pairs.iter().all(|p| p.u_c_f > 0.0),
             "{f:?}"
         );
+    }
+
+    /// The standard deviation of a sample (n − 1).
+    fn sd(xs: &[f64]) -> f64 {
+        let n = xs.len() as f64;
+        let m = xs.iter().sum::<f64>() / n;
+        (xs.iter().map(|x| (x - m) * (x - m)).sum::<f64>() / (n - 1.0)).sqrt()
+    }
+
+    /// Each figure's stated standard uncertainty against the spread of
+    /// the figure itself over many fits of the same circuit with fresh
+    /// noise (a Monte Carlo, GUM Supplement 1's way of checking a
+    /// linearised uncertainty; fact sheet metrology.md): the uncertainty
+    /// `fit` states from one window must be the standard deviation the
+    /// figure shows from window to window. `trials` windows of Gaussian
+    /// noise `sigma_v` on every counted point; returns, per figure (R0,
+    /// then R, τ, C of each pair), (spread, mean stated uncertainty,
+    /// mean, truth).
+    fn monte_carlo(
+        pairs: &[(f64, f64)],
+        sigma_v: f64,
+        trials: usize,
+        seed: u64,
+    ) -> Vec<(&'static str, f64, f64, f64, f64)> {
+        use rand::{rngs::SmallRng, SeedableRng};
+        use rand_distr::{Distribution, Normal};
+        let r0 = 0.020;
+        let clean = window_sampled(r0, pairs, 14.8, 1.0, 10.0);
+        let noise = Normal::new(0.0, sigma_v).expect("normal");
+        let mut rng = SmallRng::seed_from_u64(seed);
+        let mut figures: Vec<Vec<(f64, f64)>> = vec![Vec::new(); 1 + 3 * pairs.len()];
+        for _ in 0..trials {
+            let pts: Vec<Point> = clean
+                .iter()
+                .map(|p| Point {
+                    voltage_v: p.voltage_v
+                        + if p.role == Role::Drive {
+                            0.0
+                        } else {
+                            noise.sample(&mut rng)
+                        },
+                    ..*p
+                })
+                .collect();
+            let f = fit(&pts, pairs.len()).expect("fit");
+            figures[0].push((f.r0_ohm, f.u_r0_ohm));
+            for (i, p) in f.pairs.iter().enumerate() {
+                figures[1 + 3 * i].push((p.r_ohm, p.u_r_ohm));
+                figures[2 + 3 * i].push((p.tau_s, p.u_tau_s));
+                figures[3 + 3 * i].push((p.c_f, p.u_c_f));
+            }
+        }
+        let mut truth = vec![("R0", r0)];
+        for &(r, tau) in pairs {
+            truth.extend([("R", r), ("tau", tau), ("C", tau / r)]);
+        }
+        figures
+            .iter()
+            .zip(truth)
+            .map(|(xs, (name, t))| {
+                let values: Vec<f64> = xs.iter().map(|x| x.0).collect();
+                let n = xs.len() as f64;
+                (
+                    name,
+                    sd(&values),
+                    xs.iter().map(|x| x.1).sum::<f64>() / n,
+                    values.iter().sum::<f64>() / n,
+                    t,
+                )
+            })
+            .collect()
+    }
+
+    /// Stated and observed spread agree within what `trials` samples can
+    /// tell (the standard deviation of a sample of n normal values has a
+    /// relative standard error of 1/√(2(n − 1)): 10 % at 50, so ±35 % is
+    /// 3.5 of them), and each mean is the truth within 4 standard errors
+    /// of the mean (a linearised fit of small noise is nearly unbiased).
+    fn assert_stated_is_observed(rows: &[(&str, f64, f64, f64, f64)], trials: usize) {
+        for &(name, spread, stated, mean, truth) in rows {
+            let ratio = stated / spread;
+            assert!(
+                (0.65..=1.35).contains(&ratio),
+                "{name}: stated {stated:.4e}, observed {spread:.4e} (ratio {ratio:.3})"
+            );
+            let se = spread / (trials as f64).sqrt();
+            assert!(
+                (mean - truth).abs() < 4.0 * se,
+                "{name}: mean {mean} vs truth {truth} (standard error {se:.3e})"
+            );
+        }
+    }
+
+    #[test]
+    fn a_first_order_fits_stated_uncertainties_are_its_spread_over_noisy_windows() {
+        let trials = 50;
+        let rows = monte_carlo(&[(0.012, 20.0)], 2e-3, trials, 11);
+        eprintln!("{rows:?}");
+        assert_stated_is_observed(&rows, trials);
+    }
+
+    #[test]
+    fn a_second_order_fits_stated_uncertainties_are_its_spread_over_noisy_windows() {
+        let trials = 50;
+        let rows = monte_carlo(&[(0.008, 30.0), (0.006, 600.0)], 2e-3, trials, 12);
+        eprintln!("{rows:?}");
+        assert_stated_is_observed(&rows, trials);
     }
 }
