@@ -535,11 +535,7 @@ fn level_of(st: &Settings, o: Open) -> Option<Level> {
         (None, None)
     };
     if let Some(f) = &ecm2 {
-        let total: f64 = f.pairs.iter().map(|p| p.r_ohm.abs()).sum();
-        if f.pairs
-            .iter()
-            .any(|p| p.r_ohm < UNRESOLVED_PAIR_FRACTION * total || p.u_r_ohm > 0.5 * p.r_ohm.abs())
-        {
+        if !resolves_its_pairs(f) {
             flags.push(
                 "the second-order fit does not resolve two RC pairs (one carries almost nothing or is not determined): use the first-order table".into(),
             );
@@ -596,6 +592,16 @@ fn level_of(st: &Settings, o: Open) -> Option<Level> {
         r0_separable,
         flags,
     })
+}
+
+/// Whether each of a fit's pairs carries at least
+/// [`UNRESOLVED_PAIR_FRACTION`] of the pairs' resistance and is
+/// determined (its resistance's standard uncertainty at most half of it).
+fn resolves_its_pairs(f: &EcmFit) -> bool {
+    let total: f64 = f.pairs.iter().map(|p| p.r_ohm.abs()).sum();
+    !f.pairs
+        .iter()
+        .any(|p| p.r_ohm < UNRESOLVED_PAIR_FRACTION * total || p.u_r_ohm > 0.5 * p.r_ohm.abs())
 }
 
 /// (depth of discharge %, discharge power W, charge power W, energy Wh).
@@ -1108,5 +1114,299 @@ mod tests {
         // Charge: 2000 at 0 %, 4000 at 40 %: 3000 from 20 %; 75 Wh there.
         assert!((a.dod_from_pct - 20.0).abs() < 1e-9);
         assert!((a.energy_wh - 200.0).abs() < 1e-9, "{}", a.energy_wh);
+    }
+
+    /// Two levels at one state of charge: the reading there comes from
+    /// the interval that has a width, never from the zero-width one (0/0).
+    #[test]
+    fn the_discharge_resistance_where_two_levels_share_a_state_of_charge() {
+        let c = Characterization {
+            settings: settings(),
+            basis: basis(),
+            levels: vec![
+                table_level(60.0, 70.0, 1.0, 1.0, 0.0),
+                table_level(60.0, 70.0, 1.0, 1.0, 0.0),
+                table_level(40.0, 56.0, 1.0, 1.0, 0.0),
+            ],
+            available_energy: None,
+        };
+        assert_eq!(c.discharge_resistance_at(40.0), Some(70.0));
+        assert_eq!(c.discharge_resistance_at(60.0), Some(56.0));
+    }
+
+    /// A delay read between two samples no further apart than half of it:
+    /// 2 s between samples at 1.6 and 2.4 s (0.8 s apart, under 1 s) is
+    /// interpolated; 10 s between 8 and 12 s (4 s apart) too; 10 s
+    /// between 4 and 16 s is not (12 s apart, over 5 s), nor 1 s between
+    /// 0.5 and 1.6 s.
+    #[test]
+    fn a_delay_is_read_between_samples_up_to_half_of_it_apart() {
+        let v = |t: f64| 39.5 - 0.01 * t;
+        let i = |t: f64| -10.0 - 0.1 * t;
+        let s = |t: f64| S {
+            t,
+            v: if t == 0.0 { 40.0 } else { v(t) },
+            i: if t == 0.0 { 0.0 } else { i(t) },
+            temp: None,
+            q: 0.0,
+            wh: 0.0,
+        };
+        let r = |t: f64| 1000.0 * (v(t) - 40.0) / i(t);
+        let raw: Vec<S> = [0.0, 0.5, 1.6, 2.4, 8.0, 12.0, 20.0]
+            .into_iter()
+            .map(s)
+            .collect();
+        let f = pulse_figure(&raw, 0, raw.len() - 1).expect("a pulse");
+        let delays: Vec<f64> = f.at_delays.iter().map(|d| d.0).collect();
+        // (18 s between 12 and 20 s: 8 s apart, under 9 s.)
+        assert_eq!(delays, [2.0, 10.0, 18.0]);
+        for &(d, got) in &f.at_delays {
+            assert!((got - r(d)).abs() < 1e-9, "{d} s: {got} against {}", r(d));
+        }
+        let raw: Vec<S> = [0.0, 4.0, 16.0, 20.0].into_iter().map(s).collect();
+        let f = pulse_figure(&raw, 0, raw.len() - 1).expect("a pulse");
+        let delays: Vec<f64> = f.at_delays.iter().map(|d| d.0).collect();
+        assert_eq!(delays, [18.0]);
+    }
+
+    /// A sample with a time, voltage or current that is not a number, or
+    /// one earlier than the last, is skipped: the levels read exactly as
+    /// from the clean log.
+    #[test]
+    fn samples_not_numbers_or_back_in_time_are_skipped() {
+        let mut p = Pack::new();
+        p.level(3600.0);
+        p.level(3600.0);
+        p.seg(3600.0, 0.0, 1.0);
+        let clean = read(&p.rows, None);
+        assert_eq!(clean.levels.len(), 2);
+        let mut rows = Vec::new();
+        for (k, &r) in p.rows.iter().enumerate() {
+            rows.push(r);
+            // In rests, pulses and relaxations alike.
+            if k % 97 == 5 {
+                let (t, v, i) = r;
+                rows.push((t + 0.05, f64::NAN, -50.0));
+                rows.push((t + 0.05, 50.0, f64::NAN));
+                rows.push((t + 0.05, f64::INFINITY, 0.0));
+                rows.push((f64::NAN, v, i));
+                rows.push((t - 0.5, v + 3.0, -50.0));
+            }
+        }
+        let dirty = read(&rows, None);
+        assert_eq!(dirty, clean);
+    }
+
+    /// A current of exactly the rest threshold, either way, is rest: an
+    /// hour at ±0.14 A before the pulse is the level's rest (not a
+    /// charge or discharge of an hour).
+    #[test]
+    fn the_rest_threshold_itself_is_rest() {
+        for i in [0.14, -0.14] {
+            let mut p = Pack::new();
+            p.seg(3600.0, i, 1.0);
+            p.seg(10.0, -Q, 0.1);
+            p.seg(600.0, 0.0, 1.0);
+            let c = read(&p.rows, None);
+            assert_eq!(c.levels.len(), 1, "rest at {i} A");
+            assert_eq!(c.levels[0].rest_s, 3600.0);
+        }
+        // Just over it, an hour's charge is a full charge and no rest.
+        let mut p = Pack::new();
+        p.seg(3600.0, 0.1401, 1.0);
+        p.seg(10.0, -Q, 0.1);
+        p.seg(600.0, 0.0, 1.0);
+        assert!(read(&p.rows, None).levels.is_empty());
+    }
+
+    /// A rest of exactly the least rest (600 s) opens a level; a second
+    /// less does not.
+    #[test]
+    fn the_least_rest_opens_a_level() {
+        for (rest, n) in [(LEVEL_REST_MIN_S, 1), (LEVEL_REST_MIN_S - 1.0, 0)] {
+            let mut p = Pack::new();
+            p.seg(60.0, -Q / 3.0, 1.0);
+            p.seg(rest, 0.0, 1.0);
+            p.seg(10.0, -Q, 0.1);
+            p.seg(600.0, 0.0, 1.0);
+            let c = read(&p.rows, None);
+            assert_eq!(c.levels.len(), n, "after {rest} s of rest");
+        }
+    }
+
+    /// The rest between the discharge and the charge pulse may last up to
+    /// 300 s; a longer one ends the profile, and the charge after it is
+    /// no pulse of the level.
+    #[test]
+    fn a_charge_pulse_after_the_longest_rest_between() {
+        for (between, has_charge) in [
+            (PROFILE_REST_MAX_S, true),
+            (PROFILE_REST_MAX_S + 1.0, false),
+        ] {
+            let mut p = Pack::new();
+            p.seg(3600.0, 0.0, 1.0);
+            p.seg(10.0, -Q, 0.1);
+            p.seg(between, 0.0, 1.0);
+            p.seg(10.0, 0.75 * Q, 0.1);
+            p.seg(1080.0, -Q / 3.0, 10.0);
+            p.seg(3600.0, 0.0, 1.0);
+            let c = read(&p.rows, None);
+            assert_eq!(c.levels.len(), 1);
+            assert_eq!(
+                c.levels[0].charge.is_some(),
+                has_charge,
+                "after {between} s between"
+            );
+        }
+    }
+
+    /// The relaxation the circuits are fitted to is the last rest of the
+    /// level: a partial discharge interrupted by a short rest drives the
+    /// pairs through that rest (its voltages do not count as settled), so
+    /// the noise-free model is still fitted to within a microvolt and
+    /// returns its own parameters.
+    #[test]
+    fn only_the_last_rest_of_a_level_is_its_relaxation() {
+        let mut p = Pack::new();
+        p.seg(3600.0, 0.0, 1.0);
+        p.seg(10.0, -Q, 0.1);
+        p.seg(40.0, 0.0, 0.1);
+        p.seg(10.0, 0.75 * Q, 0.1);
+        p.seg(600.0, -Q / 3.0, 10.0);
+        p.seg(120.0, 0.0, 1.0);
+        p.seg(480.0, -Q / 3.0, 10.0);
+        p.seg(3600.0, 0.0, 1.0);
+        let c = read(&p.rows, None);
+        let f = c.levels[0].ecm2.as_ref().expect("a second-order fit");
+        assert!(f.rms_v < 1e-6, "{f:?}");
+        assert!((f.r0_ohm / R0 - 1.0).abs() < 2e-3, "{f:?}");
+        assert!((f.pairs[1].tau_s / T2 - 1.0).abs() < 1e-2, "{f:?}");
+    }
+
+    /// Thinning, checked on every kept sample of a level's window (sampled
+    /// every 10 ms at times k/100 s): two
+    /// kept samples in one segment are at least max((t − edge)/50, 0.1 s)
+    /// apart, and the sample before the later one was not yet that far
+    /// (none kept late); no sample is kept twice; and a segment of length
+    /// T keeps about 1 + 5 s/0.1 s + 50·ln(T/5 s) samples (the integral of
+    /// 1/spacing, less the spacing's rounding up to the sampling: within
+    /// 8 %). The window's count is the reading's peak.
+    #[test]
+    fn a_levels_window_keeps_samples_spaced_by_the_time_since_the_edge() {
+        let mut c = Characterizer::new(settings());
+        let dt = 0.01;
+        // (start, end, current): rest, 10 s pulse, 290 s rest.
+        let segs: [(f64, f64, f64); 3] = [
+            (0.0, 3600.0, 0.0),
+            (3600.0, 3610.0, -Q),
+            (3610.0, 3900.0, 0.0),
+        ];
+        let mut k0 = 0i64;
+        for (start, end, i) in segs {
+            let n = ((end - start) / dt).round() as i64;
+            // A bench row at the edge: the new current at the old time.
+            let first = if start == 0.0 { 0 } else { k0 };
+            for k in first..=k0 + n {
+                let t = k as f64 / 100.0;
+                if start == 0.0 && k % 100 != 0 {
+                    continue;
+                }
+                c.push(t, 36.0 + 0.05 * i, i, None);
+            }
+            k0 += n;
+        }
+        let o = c.open.as_ref().expect("an open level");
+        assert_eq!(c.peak_window(), o.points.len());
+        let gap = |t: f64, edge: f64| ((t - edge) / KEEP_PER_EDGE).max(KEEP_SPACING_MIN_S);
+        for (edge, end) in [(3600.0, 3610.0), (3610.0, 3900.0)] {
+            let kept: Vec<&Point> = o
+                .points
+                .iter()
+                .filter(|p| p.t_s > edge + 1e-9 && p.t_s <= end + 1e-9)
+                .collect();
+            for w in kept.windows(2) {
+                let (a, b) = (w[0].t_s, w[1].t_s);
+                if (b - end).abs() < 1e-9 {
+                    // (The sample before the next edge is always kept.)
+                    continue;
+                }
+                assert!(b - a >= gap(b, edge) - 1e-9, "{a} → {b} after {edge}");
+                // (A sample due exactly at its spacing may go either way
+                // on rounding: a nanosecond's slack.)
+                assert!(
+                    b - dt - a < gap(b - dt, edge) + 1e-9,
+                    "{a} → {b} after {edge}: {} was due",
+                    b - dt
+                );
+            }
+            let t = end - edge;
+            let want = 1.0 + 5.0 / 0.1 + 50.0 * (t / 5.0).ln();
+            let n = kept.len() as f64;
+            assert!(
+                n <= want + 2.0 && n > 0.92 * want,
+                "{n} kept over {t} s, about {want}"
+            );
+        }
+        for w in o.points.windows(2) {
+            assert!(
+                w[1].t_s > w[0].t_s || w[1].current_a != w[0].current_a,
+                "{:?} twice",
+                w[1]
+            );
+        }
+    }
+
+    /// A second-order fit resolves its pairs when each carries at least
+    /// 2 % of the pairs' resistance and its resistance is known to half of
+    /// itself: the boundaries of both, and a negative pair.
+    #[test]
+    fn a_fit_resolves_its_pairs_by_share_and_by_uncertainty() {
+        let pair = |r: f64, u: f64| ecm::RcPair {
+            r_ohm: r,
+            u_r_ohm: u,
+            tau_s: 30.0,
+            u_tau_s: 1.0,
+            c_f: 30.0 / r,
+            u_c_f: 1.0,
+        };
+        let fit = |pairs: Vec<ecm::RcPair>| EcmFit {
+            order: 2,
+            r0_ohm: 0.02,
+            u_r0_ohm: 1e-5,
+            pairs,
+            settled_v: 36.0,
+            ocv_slope_v_per_ah: 0.1,
+            rms_v: 1e-4,
+            points: 500,
+            starts: 5,
+            starts_agreeing: 5,
+        };
+        // 0.2 of 10 mΩ is 2 %: resolved; 0.19 of 9.99 is not.
+        assert!(resolves_its_pairs(&fit(vec![
+            pair(0.0098, 1e-5),
+            pair(0.0002, 1e-6)
+        ])));
+        assert!(!resolves_its_pairs(&fit(vec![
+            pair(0.0098, 1e-5),
+            pair(0.00019, 1e-6)
+        ])));
+        // Known to exactly half of itself: resolved; a little worse: not.
+        assert!(resolves_its_pairs(&fit(vec![
+            pair(0.008, 0.004),
+            pair(0.006, 1e-5)
+        ])));
+        assert!(!resolves_its_pairs(&fit(vec![
+            pair(0.008, 0.0041),
+            pair(0.006, 1e-5)
+        ])));
+        assert!(!resolves_its_pairs(&fit(vec![
+            pair(0.008, 1e-5),
+            pair(0.006, 0.0031)
+        ])));
+        // A negative pair carries less than nothing.
+        assert!(!resolves_its_pairs(&fit(vec![
+            pair(0.012, 1e-5),
+            pair(-0.002, 1e-6)
+        ])));
     }
 }
