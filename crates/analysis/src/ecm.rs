@@ -592,7 +592,6 @@ mod tests {
     fn a_first_order_fits_stated_uncertainties_are_its_spread_over_noisy_windows() {
         let trials = 50;
         let rows = monte_carlo(&[(0.012, 20.0)], 2e-3, trials, 11);
-        eprintln!("{rows:?}");
         assert_stated_is_observed(&rows, trials);
     }
 
@@ -600,7 +599,45 @@ mod tests {
     fn a_second_order_fits_stated_uncertainties_are_its_spread_over_noisy_windows() {
         let trials = 50;
         let rows = monte_carlo(&[(0.008, 30.0), (0.006, 600.0)], 2e-3, trials, 12);
-        eprintln!("{rows:?}");
         assert_stated_is_observed(&rows, trials);
+    }
+
+    /// The search stays in its bounds: a second pair at least three times
+    /// slower than the first (fitting a one-pair window with two, where
+    /// the best would merge them), and time constants between 0.1 s and
+    /// 20,000 s (a pair of 0.02 s or 50,000 s is fitted at the bound).
+    /// Every start of a noise-free window ends at its best (within 1 %).
+    #[test]
+    fn the_time_constants_stay_within_their_bounds() {
+        let f = fit(&window(0.030, &[(0.012, 20.0)], 12.0), 2).expect("fit");
+        let (t1, t2) = (f.pairs[0].tau_s, f.pairs[1].tau_s);
+        assert!(t2 >= TAU_RATIO_MIN * t1 * (1.0 - 1e-9), "{t1} {t2}");
+        assert_eq!(f.starts, 5);
+        let f = fit(&window(0.030, &[(0.012, 0.02)], 12.0), 1).expect("fit");
+        assert!(f.pairs[0].tau_s >= TAU_MIN_S * (1.0 - 1e-9), "{f:?}");
+        assert!(f.pairs[0].tau_s < 0.2, "{f:?}");
+        let f = fit(&window(0.030, &[(0.012, 50_000.0)], 12.0), 1).expect("fit");
+        assert!(f.pairs[0].tau_s <= TAU_MAX_S * (1.0 + 1e-9), "{f:?}");
+        assert!(f.pairs[0].tau_s > 10_000.0, "{f:?}");
+        // With noise (2 mV), the starts that converge end at the same
+        // residual, the best among them.
+        for (pairs, n) in [
+            (vec![(0.008, 30.0), (0.006, 600.0)], 5),
+            (vec![(0.012, 20.0)], 4),
+        ] {
+            let mut k = 0u32;
+            let pts: Vec<Point> = window_sampled(0.020, &pairs, 14.8, 1.0, 10.0)
+                .into_iter()
+                .map(|p| {
+                    k += 1;
+                    Point {
+                        voltage_v: p.voltage_v + 2e-3 * f64::from(k % 7) / 3.0 - 2e-3,
+                        ..p
+                    }
+                })
+                .collect();
+            let f = fit(&pts, pairs.len()).expect("fit");
+            assert_eq!((f.starts, f.starts_agreeing), (n, n));
+        }
     }
 }
