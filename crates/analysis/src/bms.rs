@@ -274,4 +274,26 @@ mod tests {
             (Some(9.5), Some("at 2 A"))
         );
     }
+
+    /// When the capacity step is the last, the state of charge at the end
+    /// is nothing charged after it: 0 %, not −0 %.
+    #[test]
+    fn the_state_of_charge_after_a_last_capacity_step_is_a_plain_zero() {
+        let steps = [
+            step(1, StepType::Charge, 3.8),
+            step(2, StepType::Rest, 0.0),
+            step(3, StepType::Discharge, -9.5),
+        ];
+        let bms = BmsReadings {
+            full_charge_capacity_ah: Some(10.4),
+            design_capacity_ah: Some(11.0),
+            cycle_count: None,
+            soc_start_pct: Some(62.0),
+            soc_end_pct: Some(1.0),
+        };
+        let c = compare(&bms, &steps, Some(&capacity(3, 9.5)), None);
+        let end = c.soc_end_measured_pct.expect("anchored");
+        assert!(end == 0.0 && end.is_sign_positive(), "{end}");
+        assert!((c.soc_end_error_pp.unwrap() - 1.0).abs() < 1e-12);
+    }
 }

@@ -579,4 +579,33 @@ mod tests {
         assert_eq!(p.len(), 1);
         assert_eq!(p[0].index, 3);
     }
+
+    /// A step's grid has a point every 0.1 % of the rated capacity: a
+    /// 10 Ah pack discharged 1 Ah at 1 A (sampled each second) has points
+    /// every 10 mAh, 101 of them, and the end.
+    #[test]
+    fn a_steps_grid_has_a_point_every_tenth_of_a_percent_of_rated() {
+        let samples: Vec<Sample> = (0..=3600)
+            .map(|k| Sample {
+                t_s: f64::from(k),
+                step: 1,
+                cycle: 0,
+                voltage_v: 4.0 - 1e-4 * f64::from(k),
+                current_a: -1.0,
+                temperature_c: None,
+            })
+            .collect();
+        let g = grid_of(&samples, 10.0);
+        let c = g.curve();
+        assert_eq!(c.len(), 101, "{:?}", &c[..3]);
+        for (k, &(q, v)) in c.iter().enumerate() {
+            let q_want = 0.01 * k as f64;
+            assert!((q - q_want).abs() < 1e-9, "{k}: {q}");
+            // 1 Ah an hour: the voltage at q is that of second 3600·q.
+            assert!(
+                (v - (4.0 - 1e-4 * 3600.0 * q_want)).abs() < 1e-9,
+                "{k}: {v}"
+            );
+        }
+    }
 }

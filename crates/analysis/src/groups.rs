@@ -870,4 +870,133 @@ mod tests {
         );
         assert!(off.groups.iter().all(|r| r.charge_to_cutoff_ah.is_none()));
     }
+
+    fn result(group: u32, charge_ah: f64, r_mohm: f64) -> GroupResult {
+        GroupResult {
+            group,
+            charge_to_cutoff_ah: Some(charge_ah),
+            how: "measured".into(),
+            share_of_mean_pct: None,
+            end_of_charge_v: None,
+            end_of_discharge_v: None,
+            resistance_mohm: Some(r_mohm),
+            max_temperature_c: None,
+            fit_rms_mv: None,
+            relative_capacity_pct: None,
+        }
+    }
+
+    /// The weakest group's reason names its resistance only when it is
+    /// more than 1.1 times the others' mean: 10.9 mΩ against 10 is not
+    /// named, 11.2 is.
+    #[test]
+    fn the_weakest_groups_resistance_is_named_only_when_it_is_high() {
+        for (r, named) in [(10.9, false), (11.2, true)] {
+            let mut out = GroupsResult {
+                step: Some(3),
+                groups: vec![
+                    result(1, 9.0, r),
+                    result(2, 10.0, 10.0),
+                    result(3, 10.2, 10.0),
+                ],
+                weakest: None,
+                weakest_reason: None,
+                weakest_share_pct: None,
+                capacity_spread_pct: None,
+                end_of_charge_spread_mv: None,
+                end_of_discharge_spread_mv: None,
+                temperatures: Vec::new(),
+                notes: Vec::new(),
+            };
+            // (Group 4 ended the discharge: none of these.)
+            shares(&mut out, 3);
+            let why = out.weakest_reason.expect("a weakest group");
+            assert_eq!(why.contains("its resistance is"), named, "{why}");
+            assert!(!why.contains("ended the discharge"), "{why}");
+        }
+    }
+
+    /// A curve is read from its first point on (none before it), linearly
+    /// between points and along its last slope past its end.
+    #[test]
+    fn a_curve_is_read_from_its_start_and_past_its_end_along_its_last_slope() {
+        let c = Curve {
+            q: vec![1.0, 2.0, 3.0],
+            v: vec![4.0, 3.8, 3.4],
+        };
+        assert_eq!(c.at(0.999), None);
+        assert_eq!(c.at(0.0), None);
+        assert_eq!(c.at(1.0), Some(4.0));
+        assert!((c.at(1.5).unwrap() - 3.9).abs() < 1e-12);
+        assert!((c.at(2.5).unwrap() - 3.6).abs() < 1e-12);
+        assert!((c.at(3.5).unwrap() - 3.2).abs() < 1e-12);
+    }
+
+    /// A group's points that land past the reference's end are left out
+    /// of the lay (the reference is not carried on): a group whose curve
+    /// bends down past there (a knee the reference does not have) is
+    /// still laid exactly, q = 0.5 Ah, r = 1.1, o = 10 mV.
+    #[test]
+    fn a_lay_leaves_out_what_falls_past_the_reference() {
+        let f = |q: f64| 3.3 + 0.9 * (-q / 3.0).exp() - 0.02 * q;
+        let reference = Curve {
+            q: (0..=200).map(|k| f64::from(k) * 0.05).collect(),
+            v: (0..=200).map(|k| f(f64::from(k) * 0.05)).collect(),
+        };
+        let (q0, r, o) = (0.5, 1.1, 0.010);
+        let pts: Vec<(f64, f64)> = (0..=200)
+            .map(|k| {
+                let x = f64::from(k) * 0.05;
+                let at = q0 + r * x;
+                let knee = if at > 10.0 { 0.3 * (at - 10.0) } else { 0.0 };
+                (x, f(at) + o - knee)
+            })
+            .collect();
+        let lay = lay_on(&reference, &pts).expect("a lay");
+        assert!((lay.q - q0).abs() < 1e-3, "{lay:?}");
+        // (The search's grid and the reference's linear reading between
+        // its points, 50 mAh apart, leave about 10 µV.)
+        assert!((lay.r - r).abs() < 5e-4, "{lay:?}");
+        assert!((lay.o - o).abs() < 2e-4, "{lay:?}");
+        assert!(lay.rms_v < 5e-5, "{lay:?}");
+    }
+
+    /// Each group scan takes the pack's charge at the pack sample of its
+    /// own time (up to a millisecond before it); a scan with none is left
+    /// out (one 0.5 ms before a sample is read there, 2 ms after is not), and
+    /// the reading stops at the first scan past the pack's samples.
+    #[test]
+    fn group_scans_take_the_charge_at_their_own_pack_sample() {
+        let pack: Vec<PackPoint> = (0..=4)
+            .map(|k| PackPoint {
+                t_s: 10.0 * f64::from(k),
+                step: 3,
+                current_a: -3.6,
+            })
+            .chain([PackPoint {
+                t_s: 45.0,
+                step: 4,
+                current_a: 0.0,
+            }])
+            .collect();
+        let scan = |t_s: f64| GroupSample {
+            t_s,
+            step: 3,
+            cycle: 1,
+            voltage_v: vec![3.6, 3.6],
+            temperature_c: Vec::new(),
+            inferred: None,
+        };
+        let scans: Vec<GroupSample> = [10.0, 15.0, 19.9995, 30.002, 40.0, 50.0, 20.0]
+            .into_iter()
+            .map(scan)
+            .collect();
+        let refs: Vec<&GroupSample> = scans.iter().collect();
+        let (qs, ts) = curves_of(3, &pack, &refs);
+        // 3.6 A for 10 s is 10 mAh.
+        assert_eq!(ts, [10.0, 19.9995, 40.0]);
+        for (q, want) in qs.iter().zip([0.01, 0.02, 0.04]) {
+            assert!((q - want).abs() < 1e-12, "{qs:?}");
+        }
+    }
 }

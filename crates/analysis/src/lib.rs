@@ -719,4 +719,50 @@ mod tests {
             c.conditions()
         );
     }
+
+    /// A slow capacity step's curves carry the bins they were made with,
+    /// in the units they are reported in: dQ/dV bins of 5 mV per cell
+    /// (0.005 V, the default), dV/dQ bins of 1 % of rated (10 mAh of
+    /// 1 Ah), each smoothed over 2 bins.
+    #[test]
+    fn a_capacity_steps_curves_say_their_bins() {
+        let pack = PackSpec {
+            chemistry: Chemistry::Nimh,
+            series: 1,
+            rated_capacity_ah: 1.0,
+            rated_energy_wh: None,
+            rated_rate_c: None,
+            rated_resistance_mohm: None,
+        };
+        // C/5 for 5 h, 1.40 V falling to 1.00 V.
+        let samples: Vec<Sample> = (0..=1800)
+            .map(|k| Sample {
+                t_s: 10.0 * f64::from(k),
+                step: 1,
+                cycle: 0,
+                voltage_v: 1.4 - 0.4 * f64::from(k) / 1800.0,
+                current_a: -0.2,
+                temperature_c: None,
+            })
+            .collect();
+        let info = StepInfo {
+            step: 1,
+            phase: "p".into(),
+            cycle: 0,
+            kind: StepType::Discharge,
+            name: None,
+            result: Some(ResultTag::Capacity),
+            end_kind: Some(EndKind::VoltageBelow),
+            end_reason: None,
+        };
+        let a = analyze(&samples, &[info], &pack);
+        let c = a.curves.expect("curves of a C/5 step");
+        assert_eq!(c.ica.len(), 1, "{c:?}");
+        assert!((c.ica[0].bin_mv_per_cell - 5.0).abs() < 1e-12, "{c:?}");
+        assert_eq!(c.ica[0].smoothing_bins, 2.0);
+        assert!((c.ica[0].rate_c - 0.2).abs() < 1e-9, "{c:?}");
+        assert_eq!(c.dva.len(), 1, "{c:?}");
+        assert!((c.dva[0].bin_ah - 0.01).abs() < 1e-12, "{c:?}");
+        assert_eq!(c.dva[0].smoothing_bins, 2.0);
+    }
 }

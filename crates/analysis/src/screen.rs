@@ -629,4 +629,43 @@ mod tests {
         assert!(far.upper_ah - far.lower_ah > mid.upper_ah - mid.lower_ah);
         assert!(((mid.upper_ah + mid.lower_ah) / 2.0 - mid.capacity_ah).abs() < 1e-12);
     }
+
+    /// A relaxation of two samples has its fall per cell, in mV, and no
+    /// time constant (three samples are the least); one with no fall has
+    /// a fall of zero and none either.
+    #[test]
+    fn a_short_or_flat_relaxation_gives_its_fall_and_no_time() {
+        let (fall, tau) = relaxation(&[(0.0, 14.0), (60.0, 14.4)], 4.0);
+        assert!((fall.unwrap() + 100.0).abs() < 1e-9, "{fall:?}");
+        assert_eq!(tau, None);
+        let (fall, tau) = relaxation(&[(0.0, 14.0), (30.0, 14.0), (60.0, 14.0)], 4.0);
+        assert_eq!((fall, tau), (Some(0.0), None));
+        assert_eq!(relaxation(&[], 4.0), (None, None));
+    }
+
+    /// The taper begins below 95 % of the charge's first current, not at
+    /// it: 2.0 A, ten seconds at exactly 1.9 A, then 1.8 A; the taper's
+    /// charge is counted from the last 1.9 A sample on (by trapezoids).
+    #[test]
+    fn the_taper_begins_below_ninety_five_percent_of_the_first_current() {
+        let mut f = FeatureTracker::new(vec![(1, ScreenStep::Charge)], 4);
+        for k in 0..=30 {
+            let i = match k {
+                0..=9 => 2.0,
+                10..=19 => 1.9,
+                _ => 1.8,
+            };
+            f.push(&Sample {
+                t_s: f64::from(k),
+                step: 1,
+                cycle: 0,
+                voltage_v: 14.0,
+                current_a: i,
+                temperature_c: None,
+            });
+        }
+        let taper = f.finish(None, None).taper_ah.expect("a taper");
+        let want = (0.5 * (1.9 + 1.8) + 10.0 * 1.8) / 3600.0;
+        assert!((taper - want).abs() < 1e-12, "{taper} against {want}");
+    }
 }
