@@ -40,9 +40,10 @@ impl LinearFit {
         let ym = y.iter().sum::<f64>() / nf;
         let (mut sxx, mut sxy, mut syy) = (0.0, 0.0, 0.0);
         for (xi, yi) in x.iter().zip(y) {
-            sxx += (xi - xm) * (xi - xm);
-            sxy += (xi - xm) * (yi - ym);
-            syy += (yi - ym) * (yi - ym);
+            // (Σ(x − x̄)·y is Sxy: Σ(x − x̄) = 0.)
+            sxx += (xi - xm).powi(2);
+            sxy += (xi - xm) * yi;
+            syy += (yi - ym).powi(2);
         }
         if sxx <= 0.0 {
             return None;

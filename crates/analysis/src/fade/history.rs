@@ -62,7 +62,8 @@ fn scatter(kept: &[(f64, f64)]) -> f64 {
     let mx = kept.iter().map(|p| p.0).sum::<f64>() / nf;
     let my = kept.iter().map(|p| p.1).sum::<f64>() / nf;
     let sxx: f64 = kept.iter().map(|p| (p.0 - mx).powi(2)).sum();
-    let sxy: f64 = kept.iter().map(|p| (p.0 - mx) * (p.1 - my)).sum();
+    // (Σ(x − x̄)·y is Sxy: Σ(x − x̄) = 0.)
+    let sxy: f64 = kept.iter().map(|p| (p.0 - mx) * p.1).sum();
     let b = if sxx > 0.0 { sxy / sxx } else { 0.0 };
     let ssr: f64 = kept
         .iter()
