@@ -98,10 +98,8 @@ pub fn fit(points: &[Point], u_ref: &dyn Fn(f64) -> f64) -> Result<Line, FitErro
     if sxx <= 0.0 {
         return Err(FitError::NoSpan);
     }
-    let sxy: f64 = points
-        .iter()
-        .map(|p| (p.reference - mx) * (p.reading - my))
-        .sum();
+    // (Σ(x − x̄)·y is Sxy: Σ(x − x̄) = 0.)
+    let sxy: f64 = points.iter().map(|p| (p.reference - mx) * p.reading).sum();
     let a = sxy / sxx;
     let b = my - a * mx;
     let resid: Vec<f64> = points
@@ -124,13 +122,10 @@ pub fn fit(points: &[Point], u_ref: &dyn Fn(f64) -> f64) -> Result<Line, FitErro
     let cov = -mx * sigma2 / sxx;
     // The reference's own uncertainty: an offset of the reference moves b,
     // a gain error of it moves a (taken at the largest point).
+    // (Some point is off zero: the points span a range, sxx > 0.)
     let top = points.iter().map(|p| p.reference.abs()).fold(0.0, f64::max);
     let u0 = u_ref(0.0);
-    let ug = if top > 0.0 {
-        ((u_ref(top).powi(2) - u0 * u0).max(0.0)).sqrt() / top
-    } else {
-        0.0
-    };
+    let ug = ((u_ref(top).powi(2) - u0 * u0).max(0.0)).sqrt() / top;
     Ok(Line {
         a,
         b,

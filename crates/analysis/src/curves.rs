@@ -608,4 +608,38 @@ mod tests {
             );
         }
     }
+
+    /// After a break (a resumed run) the grid goes on from its count: no
+    /// second point at zero charge, and the charge across the break is not
+    /// counted.
+    #[test]
+    fn a_grid_goes_on_from_its_count_after_a_break() {
+        let mut g = ChargeGrid::new(0.1, 100);
+        for k in 0..=360 {
+            g.push(f64::from(k), 4.0 - 0.001 * f64::from(k), 1.0);
+        }
+        g.break_segment();
+        for k in 1000..=1360 {
+            g.push(f64::from(k), 3.5 - 0.001 * f64::from(k - 1000), 1.0);
+        }
+        let c = g.curve();
+        let zeros = c.iter().filter(|p| p.0 == 0.0).count();
+        assert_eq!(zeros, 1, "{c:?}");
+        // 0.1 Ah before, 0.1 Ah after: points at 0, 0.1 and 0.2 Ah.
+        assert_eq!(c.len(), 3, "{c:?}");
+        assert!(
+            (c[2].0 - 0.2).abs() < 1e-12 && (c[2].1 - 3.14).abs() < 1e-9,
+            "{c:?}"
+        );
+    }
+
+    /// dV/dQ has at most its bound of bins, however fine the bins asked.
+    #[test]
+    fn dv_dq_bins_are_bounded() {
+        let mut g = ChargeGrid::new(1e-4, GRID_MAX_POINTS);
+        for k in 0..=3600 {
+            g.push(f64::from(k), 4.0 - 1e-4 * f64::from(k), 1.0);
+        }
+        assert_eq!(differential_voltage(&g, 1e-5).len(), MAX_BINS);
+    }
 }

@@ -930,6 +930,32 @@ mod tests {
         assert!((c.at(1.5).unwrap() - 3.9).abs() < 1e-12);
         assert!((c.at(2.5).unwrap() - 3.6).abs() < 1e-12);
         assert!((c.at(3.5).unwrap() - 3.2).abs() < 1e-12);
+        // Two points are a curve; one is not.
+        let two = Curve {
+            q: vec![1.0, 2.0],
+            v: vec![4.0, 3.8],
+        };
+        assert!((two.at(1.5).unwrap() - 3.9).abs() < 1e-12);
+        let one = Curve {
+            q: vec![1.0],
+            v: vec![4.0],
+        };
+        assert_eq!(one.at(1.0), None);
+    }
+
+    /// Where a curve rises again at its end (a bump), a level equal to its
+    /// last voltage is where the curve first falls through it, searched
+    /// from the end, not carried on along a slope that does not fall.
+    #[test]
+    fn a_level_at_the_last_voltage_of_a_curve_that_rises_at_its_end() {
+        let c = Curve {
+            q: vec![0.0, 1.0, 2.0],
+            v: vec![4.0, 3.5, 3.6],
+        };
+        let q = c.charge_at_level(3.6).expect("a crossing");
+        assert!((q - 0.8).abs() < 1e-12, "{q}");
+        // Below the last voltage, along a rising end: none.
+        assert_eq!(c.charge_at_level(3.4), None);
     }
 
     /// A group's points that land past the reference's end are left out
