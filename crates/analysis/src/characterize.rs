@@ -1354,6 +1354,16 @@ mod tests {
                 w[1]
             );
         }
+        // Both sides of the pulse's end are kept: its last sample (the
+        // pulse's figure is read there) and the rest's first.
+        for i in [-Q, 0.0] {
+            assert!(
+                o.points
+                    .iter()
+                    .any(|p| (p.t_s - 3610.0).abs() < 1e-9 && p.current_a == i),
+                "no sample at the edge with {i} A"
+            );
+        }
     }
 
     /// A second-order fit resolves its pairs when each carries at least
