@@ -430,12 +430,10 @@ fn end_slope(ring: &std::collections::VecDeque<(f64, f64)>, q_total: f64) -> Opt
     }
     let n = pts.len() as f64;
     let mq = pts.iter().map(|p| p.0).sum::<f64>() / n;
-    let mv = pts.iter().map(|p| p.1).sum::<f64>() / n;
     let sqq: f64 = pts.iter().map(|p| (p.0 - mq).powi(2)).sum();
-    let sqv: f64 = pts.iter().map(|p| (p.0 - mq) * (p.1 - mv)).sum();
-    (sqq > 0.0)
-        .then(|| (sqv / sqq).abs())
-        .filter(|s| s.is_finite())
+    // (Σ(q − q̄)·v is Sqv: Σ(q − q̄) = 0. No spread of charge: 0/0, none.)
+    let sqv: f64 = pts.iter().map(|p| (p.0 - mq) * p.1).sum();
+    Some((sqv / sqq).abs()).filter(|s| s.is_finite())
 }
 
 /// The current's offset after the run's zero tare: the tare's own
