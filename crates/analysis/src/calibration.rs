@@ -143,7 +143,8 @@ pub fn fit(points: &[Point], u_ref: &dyn Fn(f64) -> f64) -> Result<Line, FitErro
 pub struct Conformity {
     /// The largest |error| over the points, in the quantity's unit.
     pub max_error: f64,
-    /// The largest |error| / limit (≤ 1: within).
+    /// The largest |error| / limit over the points with a limit (≤ 1 and
+    /// no error where the limit is zero: within).
     pub worst_share: f64,
     pub within: bool,
 }
@@ -151,6 +152,9 @@ pub struct Conformity {
 pub fn conformity(points: &[Point], limit: &Spec, correct: Option<&Line>) -> Conformity {
     let mut max_error: f64 = 0.0;
     let mut worst: f64 = 0.0;
+    // A limit of zero (a spec of reading only, at a reference of zero)
+    // allows no error at all: an error there is out, with no share.
+    let mut out_where_none_allowed = false;
     for p in points {
         let x = correct.map_or(p.reading, |l| l.correct(p.reading));
         let e = (x - p.reference).abs();
@@ -158,12 +162,14 @@ pub fn conformity(points: &[Point], limit: &Spec, correct: Option<&Line>) -> Con
         let lim = limit.limit_at(p.reference);
         if lim > 0.0 {
             worst = worst.max(e / lim);
+        } else if e > 0.0 {
+            out_where_none_allowed = true;
         }
     }
     Conformity {
         max_error,
         worst_share: worst,
-        within: worst <= 1.0,
+        within: worst <= 1.0 && !out_where_none_allowed,
     }
 }
 
@@ -362,5 +368,32 @@ mod tests {
             n: 1,
         }];
         assert!(!conformity(&over, &spec, None).within);
+    }
+
+    /// A spec of reading only (0.1 %, no offset) allows no error at a
+    /// reference of zero: 1 mA there is out of it, though the share over
+    /// the points with a limit (5 mA of 10 mA at 10 A) is a half; with no
+    /// error at zero the same points are within.
+    #[test]
+    fn an_error_where_the_spec_allows_none_is_out() {
+        let spec = Spec {
+            reading_pct: 0.1,
+            range_pct: 0.0,
+            offset: 0.0,
+            resolution: 0.0,
+            calibrated: false,
+        };
+        let pt = |reference: f64, reading: f64| Point {
+            reference,
+            reading,
+            s: 0.0,
+            n: 1,
+        };
+        let k = conformity(&[pt(0.0, 0.001), pt(10.0, 10.005)], &spec, None);
+        assert!((k.worst_share - 0.5).abs() < 1e-9, "{k:?}");
+        assert!((k.max_error - 0.005).abs() < 1e-12, "{k:?}");
+        assert!(!k.within);
+        let k = conformity(&[pt(0.0, 0.0), pt(10.0, 10.005)], &spec, None);
+        assert!((k.worst_share - 0.5).abs() < 1e-9 && k.within, "{k:?}");
     }
 }

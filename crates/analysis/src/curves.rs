@@ -51,11 +51,8 @@ pub fn incremental_capacity(curve: &[(f64, f64)], bin_v: f64) -> Vec<(f64, f64)>
                 // whose voltage leaps by kilovolts gives no more work.
                 break 'walk;
             }
-            let f = if v1 > v0 {
-                ((next_edge - v0) / (v1 - v0)).clamp(0.0, 1.0)
-            } else {
-                1.0
-            };
+            // (v0 ≤ best < v1: the step rises.)
+            let f = ((next_edge - v0) / (v1 - v0)).clamp(0.0, 1.0);
             edges.push((next_edge, q0 + f * (q1 - q0)));
             next_edge += bin_v;
         }
@@ -165,12 +162,9 @@ fn voltage_on(c: &[(f64, f64)], q: f64) -> Option<f64> {
     if k >= c.len() {
         return Some(c[c.len() - 1].1);
     }
+    // (a.0 < q ≤ b.0: the interval has a width.)
     let (a, b) = (c[k - 1], c[k]);
-    let f = if b.0 > a.0 {
-        (q - a.0) / (b.0 - a.0)
-    } else {
-        1.0
-    };
+    let f = (q - a.0) / (b.0 - a.0);
     Some(a.1 + f * (b.1 - a.1))
 }
 
@@ -560,12 +554,13 @@ mod tests {
         assert_eq!(c[2].1, 3.8);
     }
 
-    /// Nothing to bin: one point, or a bin of no width.
+    /// Nothing to bin: one point, or a bin of no width or less.
     #[test]
     fn no_incremental_capacity_from_one_point_or_no_bin() {
         assert!(incremental_capacity(&[(0.0, 3.7)], 0.01).is_empty());
         let line = [(0.0, 3.6), (1.0, 3.8), (2.0, 4.0)];
         assert!(incremental_capacity(&line, 0.0).is_empty());
+        assert!(incremental_capacity(&line, -0.01).is_empty());
         assert!(!incremental_capacity(&line, 0.01).is_empty());
     }
 
