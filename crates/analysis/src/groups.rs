@@ -987,6 +987,42 @@ mod tests {
         assert!(lay.rms_v < 5e-5, "{lay:?}");
     }
 
+    /// A lay needs three quarters of the group's points on the reference:
+    /// a group of 40 Ah laid on a reference of 10 Ah has none (at the
+    /// search's narrowest scale, 0.6, and its lowest start, −3 Ah, under
+    /// 55 % of its points land on it).
+    #[test]
+    fn no_lay_with_too_few_points_on_the_reference() {
+        let f = |q: f64| 3.3 + 0.9 * (-q / 3.0).exp() - 0.02 * q;
+        let reference = Curve {
+            q: (0..=200).map(|k| f64::from(k) * 0.05).collect(),
+            v: (0..=200).map(|k| f(f64::from(k) * 0.05)).collect(),
+        };
+        let pts: Vec<(f64, f64)> = (0..=200)
+            .map(|k| {
+                let x = f64::from(k) * 0.2;
+                (x, f(0.25 * x))
+            })
+            .collect();
+        assert_eq!(lay_on(&reference, &pts), None);
+    }
+
+    /// Below its last voltage a curve is carried on along the slope of its
+    /// last 0.5 % of charge, not of the whole nor of its last interval: a
+    /// knee v = 4 − 0.05·q − 10·(q − 9.9)² past 9.9 Ah, 10 Ah sampled
+    /// every 20 mAh. The last 0.5 % (50 mAh) begins at the point at 9.96 Ah
+    /// (3.466 V; 3.400 V at 10 Ah): −1.65 V/Ah, so 3.235 V is 0.1 Ah on.
+    #[test]
+    fn a_curve_is_carried_on_along_the_slope_of_its_end() {
+        let v = |q: f64| 4.0 - 0.05 * q - 10.0 * (q - 9.9).max(0.0).powi(2);
+        let c = Curve {
+            q: (0..=500).map(|k| f64::from(k) * 0.02).collect(),
+            v: (0..=500).map(|k| v(f64::from(k) * 0.02)).collect(),
+        };
+        let q = c.charge_at_level(3.4 - 0.165).expect("carried on");
+        assert!((q - 10.1).abs() < 1e-9, "{q}");
+    }
+
     /// Each group scan takes the pack's charge at the pack sample of its
     /// own time (up to a millisecond before it); a scan with none is left
     /// out (one 0.5 ms before a sample is read there, 2 ms after is not), and
