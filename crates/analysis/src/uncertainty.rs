@@ -1420,6 +1420,15 @@ mod tests {
         });
         let n0 = t0.iter().find(|t| t.name == "noise (Type A)").unwrap();
         assert!(near(n0.u, 0.0004 * 3.5 * 18_000f64.sqrt() / 3600.0));
+        // With a duration the mean voltage is the time-weighted one
+        // (3.6 V here), not E/Q (3.5 V).
+        let m36 = StepMeasure {
+            v_dt_vs: 3.6 * 18_000.0,
+            ..m
+        };
+        let t36 = energy_terms(&StepInputs { measure: &m36, ..x });
+        let o36 = t36.iter().find(|t| t.name == "current offset").unwrap();
+        assert!(near(o36.u, 0.005 / r3 * 3.6 * 18_000.0 / 3600.0));
     }
 
     #[test]
@@ -1583,6 +1592,11 @@ mod tests {
         );
         assert_eq!(mm.last_dt_s, 3.0);
         assert!(near(mm.sum_dt2_s2, mb.sum_dt2_s2));
+        // A stretch of one sample has no interval: the last one stands.
+        let mut lone = MeasureAcc::default();
+        lone.push(60.0, 3.1, -2.0);
+        ma.merge(&lone);
+        assert_eq!(ma.finish().last_dt_s, 3.0);
         // The noise: every difference is a plateau (≤ 1 % of 2 A): the
         // voltage's successive differences within each stretch.
         let dv2: f64 = [&a, &b]
