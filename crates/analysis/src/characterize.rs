@@ -1231,6 +1231,10 @@ mod tests {
             p.seg(600.0, 0.0, 1.0);
             let c = read(&p.rows, None);
             assert_eq!(c.levels.len(), n, "after {rest} s of rest");
+            // The rest is counted from its own start (60 s into the log).
+            if let Some(l) = c.levels.first() {
+                assert_eq!(l.rest_s, rest);
+            }
         }
     }
 

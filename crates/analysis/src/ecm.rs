@@ -640,4 +640,47 @@ mod tests {
             assert_eq!((f.starts, f.starts_agreeing), (n, n));
         }
     }
+
+    /// The least window a fit takes: more counted points than the
+    /// parameters (the linear ones and the time constants) plus the time
+    /// constants: 8 counted points for two pairs (7 parameters) give a
+    /// fit of the noise-free circuit, 7 give none.
+    #[test]
+    fn the_least_window_for_a_second_order_fit() {
+        let all = window(0.020, &[(0.008, 30.0), (0.006, 600.0)], 14.8);
+        let pulse: Vec<usize> = (0..all.len())
+            .filter(|&k| all[k].role == Role::Pulse)
+            .collect();
+        let relax: Vec<usize> = (0..all.len())
+            .filter(|&k| all[k].role == Role::Relaxation)
+            .collect();
+        let pick = |keep: &[usize]| -> Vec<Point> {
+            all.iter()
+                .enumerate()
+                .map(|(k, p)| Point {
+                    role: if keep.contains(&k) {
+                        p.role
+                    } else {
+                        Role::Drive
+                    },
+                    ..*p
+                })
+                .collect()
+        };
+        let (np, nr) = (pulse.len(), relax.len());
+        let eight = [
+            pulse[1],
+            pulse[50],
+            pulse[100],
+            pulse[300],
+            pulse[np - 1],
+            relax[0],
+            relax[nr / 4],
+            relax[nr - 1],
+        ];
+        let f = fit(&pick(&eight), 2).expect("a fit of 8 points");
+        assert_eq!(f.points, 8);
+        assert!((f.r0_ohm / 0.020 - 1.0).abs() < 1e-3, "{f:?}");
+        assert!(fit(&pick(&eight[..7]), 2).is_none());
+    }
 }

@@ -611,9 +611,11 @@ mod tests {
         // sample after the resume is written to the millisecond and falls
         // 0.4 ms before the resume time kept in the events (issue: then
         // the 60 s outage was integrated as a gap, +16.7 mAh).
-        let mut samples = flat(1, 0.0, 100.0, 3.6, -1.0);
-        let resumed_at = 160.0004;
-        samples.extend(flat(1, 160.0, 200.0, 3.6, -1.0));
+        // (The log starts at 1000 s: the step's span is from its own
+        // first sample.)
+        let mut samples = flat(1, 1000.0, 1100.0, 3.6, -1.0);
+        let resumed_at = 1160.0004;
+        samples.extend(flat(1, 1160.0, 1200.0, 3.6, -1.0));
         let pack = pack_2ah();
         let mut a = Analyzer::new(
             &pack,
@@ -621,7 +623,7 @@ mod tests {
             AnalysisOptions::default(),
         );
         a.set_breaks(vec![integrate::Interruption {
-            last_before_s: 100.0,
+            last_before_s: 1100.0,
             resumed_at_s: resumed_at,
         }]);
         for s in &samples {
@@ -644,6 +646,9 @@ mod tests {
         );
         assert!((c.duration_s - 140.0).abs() < 1e-9);
         assert!((r.steps[0].down_s - 60.0).abs() < 1e-9);
+        // The step's own mean current: over its 140 s active too.
+        let mean = r.steps[0].mean_current_a.expect("a mean current");
+        assert!((mean + 1.0).abs() < 1e-9, "{mean}");
     }
 
     /// A standby drain worked by hand: 2 mA for a 730.5 h month is 1.461

@@ -1607,6 +1607,16 @@ mod tests {
             near(mm.noise_v.unwrap(), (dv2 / (2.0 * 19.0)).sqrt()),
             "{mm:?}"
         );
+        // And the current's: every successive difference is within the
+        // plateau's 1 % (a 2 mA alternation on a 2 mA/s ramp).
+        let di2: f64 = [&a, &b]
+            .iter()
+            .flat_map(|x| x.windows(2).map(|w| (w[1].2 - w[0].2).powi(2)))
+            .sum();
+        assert!(
+            near(mm.noise_a.unwrap(), (di2 / (2.0 * 19.0)).sqrt()),
+            "{mm:?}"
+        );
     }
 
     /// |dV/dQ| at a step's end: the least-squares slope over the samples
