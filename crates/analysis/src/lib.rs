@@ -770,4 +770,84 @@ mod tests {
         assert!((c.dva[0].bin_ah - 0.01).abs() < 1e-12, "{c:?}");
         assert_eq!(c.dva[0].smoothing_bins, 2.0);
     }
+
+    /// A resistance step's two levels give a reading only when the step
+    /// finished: 1 A then 5 A out, 3.70 V then 3.62 V at their ends, is
+    /// ΔV/ΔI = 0.08 V / 4 A = 20 mΩ; the same step aborted gives none,
+    /// and says so.
+    #[test]
+    fn a_resistance_step_reads_only_when_it_finished() {
+        let pack = pack_2ah();
+        let mut samples = flat(1, 0.0, 10.0, 3.70, -1.0);
+        samples.extend(flat(1, 11.0, 20.0, 3.62, -5.0));
+        for (end, reads) in [("time", true), ("aborted", false)] {
+            let a = analyze(&samples, &[info(1, "pulse", end, Some("dcir"))], &pack);
+            let r = a.resistance.as_ref().map(|r| r.dcir_mohm);
+            if reads {
+                let r = r.expect("a reading");
+                assert!((r - 20.0).abs() < 1e-9, "{r}");
+            } else {
+                assert_eq!(r, None);
+                assert!(
+                    a.warnings.iter().any(|w| w.contains("gave no reading")),
+                    "{:?}",
+                    a.warnings
+                );
+            }
+        }
+    }
+
+    /// A step's record given while the log is read is added once, in the
+    /// order first given; a record given again completes it in place.
+    #[test]
+    fn step_records_given_while_reading_are_each_summarised_once() {
+        let pack = pack_2ah();
+        let mut a = Analyzer::new(
+            &pack,
+            &[info(1, "charge", "time", None)],
+            AnalysisOptions::default(),
+        );
+        a.set_info(info(2, "discharge", "time", None));
+        a.set_info(info(1, "charge", "current_below", None));
+        let mut samples = flat(1, 0.0, 60.0, 3.9, 1.0);
+        samples.extend(flat(2, 61.0, 120.0, 3.7, -1.0));
+        for s in &samples {
+            a.push(s);
+        }
+        let r = a.finish();
+        let steps: Vec<u32> = r.steps.iter().map(|s| s.step).collect();
+        assert_eq!(steps, [1, 2]);
+        assert_eq!(r.steps[0].end_kind, Some(EndKind::CurrentBelow));
+    }
+
+    /// The pulse levels' state of charge counts against a capacity this
+    /// log measured only from a full charge to the cutoff: a discharge to
+    /// the cutoff from a pack of unknown charge leaves the rated 2 Ah.
+    #[test]
+    fn the_state_of_charge_basis_needs_a_capacity_from_full() {
+        let pack = pack_2ah();
+        // The discharge, an hour's rest, a 10 s pulse at 1C, a rest.
+        let mut samples = flat(1, 0.0, 3600.0, 3.6, -1.0);
+        samples.extend(flat(2, 3601.0, 7200.0, 3.65, 0.0));
+        samples.extend(flat(3, 7201.0, 7210.0, 3.55, -2.0));
+        samples.extend(flat(4, 7211.0, 7800.0, 3.64, 0.0));
+        let a = analyze(
+            &samples,
+            &[
+                info(1, "discharge", "voltage_below", Some("capacity")),
+                info(2, "rest", "time", None),
+                info(3, "pulse", "time", None),
+                info(4, "rest", "time", None),
+            ],
+            &pack,
+        );
+        let c = a.capacity.as_ref().expect("a capacity");
+        assert!(
+            !c.from_full_charge && c.ended_on_cutoff == Some(true),
+            "{c:?}"
+        );
+        let basis = &a.characterization.as_ref().expect("read").basis;
+        assert!(basis.source.starts_with("rated"), "{basis:?}");
+        assert_eq!(basis.capacity_ah, 2.0);
+    }
 }
