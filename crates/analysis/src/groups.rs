@@ -59,7 +59,7 @@ pub struct GroupResult {
 }
 
 /// The groups of one run.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
 pub struct GroupsResult {
     /// The discharge the charges to cutoff are of.
     pub step: Option<u32>,
@@ -283,14 +283,7 @@ pub fn analyze(x: &GroupInputs<'_>) -> GroupsResult {
                 relative_capacity_pct: None,
             })
             .collect(),
-        weakest: None,
-        weakest_reason: None,
-        weakest_share_pct: None,
-        capacity_spread_pct: None,
-        end_of_charge_spread_mv: None,
-        end_of_discharge_spread_mv: None,
-        temperatures: Vec::new(),
-        notes: Vec::new(),
+        ..GroupsResult::default()
     };
     let rows_of = |step: u32| -> Vec<&GroupSample> {
         x.groups
@@ -899,14 +892,7 @@ mod tests {
                     result(2, 10.0, 10.0),
                     result(3, 10.2, 10.0),
                 ],
-                weakest: None,
-                weakest_reason: None,
-                weakest_share_pct: None,
-                capacity_spread_pct: None,
-                end_of_charge_spread_mv: None,
-                end_of_discharge_spread_mv: None,
-                temperatures: Vec::new(),
-                notes: Vec::new(),
+                ..GroupsResult::default()
             };
             // (Group 4 ended the discharge: none of these.)
             shares(&mut out, 3);

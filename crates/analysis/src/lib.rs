@@ -732,35 +732,25 @@ mod tests {
     #[test]
     fn a_capacity_steps_curves_say_their_bins() {
         let pack = PackSpec {
-            chemistry: Chemistry::Nimh,
-            series: 1,
             rated_capacity_ah: 1.0,
-            rated_energy_wh: None,
-            rated_rate_c: None,
-            rated_resistance_mohm: None,
+            ..pack_2ah()
         };
-        // C/5 for 5 h, 1.40 V falling to 1.00 V.
+        // C/5 for 5 h, 4.10 V falling to 3.00 V.
         let samples: Vec<Sample> = (0..=1800)
             .map(|k| Sample {
                 t_s: 10.0 * f64::from(k),
                 step: 1,
-                cycle: 0,
-                voltage_v: 1.4 - 0.4 * f64::from(k) / 1800.0,
+                cycle: 1,
+                voltage_v: 4.1 - 1.1 * f64::from(k) / 1800.0,
                 current_a: -0.2,
                 temperature_c: None,
             })
             .collect();
-        let info = StepInfo {
-            step: 1,
-            phase: "p".into(),
-            cycle: 0,
-            kind: StepType::Discharge,
-            name: None,
-            result: Some(ResultTag::Capacity),
-            end_kind: Some(EndKind::VoltageBelow),
-            end_reason: None,
-        };
-        let a = analyze(&samples, &[info], &pack);
+        let a = analyze(
+            &samples,
+            &[info(1, "discharge", "voltage_below", Some("capacity"))],
+            &pack,
+        );
         let c = a.curves.expect("curves of a C/5 step");
         assert_eq!(c.ica.len(), 1, "{c:?}");
         assert!((c.ica[0].bin_mv_per_cell - 5.0).abs() < 1e-12, "{c:?}");
